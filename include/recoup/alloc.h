@@ -1,0 +1,10 @@
+/* Allocation hook for fault-injection tests. */
+#ifndef RECOUP_ALLOC_H
+#define RECOUP_ALLOC_H
+
+/* Make the n-th allocation from now on fail (n >= 1); n = 0 turns failures off.
+ * Returns how many allocations have been made since the last call. This is
+ * process-wide test instrumentation: the only mutable global in the library. */
+long rc_alloc_set_fail_after(long n);
+
+#endif

@@ -1,0 +1,49 @@
+#include "core/status.h"
+
+#include <stdarg.h>
+#include <stdio.h>
+#include <string.h>
+
+const char *rc_strerror(int status) {
+  switch (status) {
+#define RC_STATUS_CASE(name, value, text) \
+  case value:                             \
+    return text;
+    RC_STATUS_LIST(RC_STATUS_CASE)
+#undef RC_STATUS_CASE
+  }
+  return "unknown status";
+}
+
+rc_status rc__fail(rc_err *e, rc_status code, const char *fmt, ...) {
+  if (e) {
+    /* Keep the first, most specific message: callers higher up may add context
+     * with rc__wrap but never overwrite what went wrong. */
+    e->code = code;
+    va_list ap;
+    va_start(ap, fmt);
+    vsnprintf(e->msg, sizeof e->msg, fmt, ap);
+    va_end(ap);
+  }
+  return code;
+}
+
+rc_status rc__wrap(rc_err *e, const char *fmt, ...) {
+  if (!e) return RC_ERR_INVALID;
+  char prefix[256];
+  va_list ap;
+  va_start(ap, fmt);
+  vsnprintf(prefix, sizeof prefix, fmt, ap);
+  va_end(ap);
+  char joined[sizeof e->msg];
+  snprintf(joined, sizeof joined, "%s: %s", prefix, e->msg);
+  memcpy(e->msg, joined, sizeof e->msg);
+  return e->code;
+}
+
+void rc__err_clear(rc_err *e) {
+  if (e) {
+    e->code = RC_OK;
+    e->msg[0] = '\0';
+  }
+}

@@ -1,0 +1,58 @@
+/* A plan: the graph compiled for concrete input shapes (one batch size).
+ * Shapes and dtypes of every value are inferred, integer subgraphs that only
+ * depend on shapes and constants are evaluated once, and one arena holds
+ * every activation (and, for training plans, every gradient and the buffers
+ * backward needs). Running a plan allocates nothing. */
+#ifndef RC_GRAPH_PLAN_H
+#define RC_GRAPH_PLAN_H
+
+#include "core/status.h"
+#include "graph/ir.h"
+#include "ops/op.h"
+
+typedef struct rc_plan_opts {
+  /* Training plan: keeps every activation backward needs and allocates
+   * gradient buffers for values between a trainable value and the graph's
+   * outputs (or the `keep` values, which losses may read). */
+  int training;
+  /* Per value (graph->n_values entries) or NULL: initializers to train.
+   * Such values are never folded into constants. */
+  const unsigned char *trainable;
+  /* Per value or NULL: values that must stay readable after forward (inner
+   * features read by losses, graph outputs always are). */
+  const unsigned char *keep;
+  /* BatchNormalization uses batch statistics (and updates running stats). */
+  int bn_batch_stats;
+} rc_plan_opts;
+
+typedef struct rc_plan rc_plan;
+
+/* Build a plan. `inputs` holds one tensor per graph input (g->inputs order)
+ * giving dtype and concrete shape; data pointers are ignored. */
+rc_status rc_plan_create(rc_plan **out, const rc_graph *g, const rc_tensor *inputs,
+                         const rc_plan_opts *opts, rc_err *e);
+void rc_plan_free(rc_plan *p);
+
+/* The tensor of a value in this plan: concrete shape, data in the arena (or
+ * the graph's initializer data). Graph inputs are written here before forward.
+ * NULL data for values not kept (intermediate values of inference plans
+ * share memory). */
+rc_tensor *rc_plan_tensor(rc_plan *p, int value);
+/* Gradient of a value (training plans), or NULL where none is tracked. */
+rc_tensor *rc_plan_grad(rc_plan *p, int value);
+/* 1 if the value is a constant known at plan time (folded). */
+int rc_plan_is_const(const rc_plan *p, int value);
+
+rc_status rc_plan_forward(rc_plan *p, rc_err *e);
+/* Zero every gradient buffer (one memset over the gradient block). */
+void rc_plan_zero_grad(rc_plan *p);
+/* Reverse pass. The caller has written d(loss)/d(value) into the gradient
+ * buffers of the values it computed the loss from. Gradients of trainable
+ * initializers are then in rc_plan_grad(p, v). */
+rc_status rc_plan_backward(rc_plan *p, rc_err *e);
+
+/* Bytes held by the plan's arena (activations, gradients, workspace). */
+size_t rc_plan_bytes(const rc_plan *p);
+const rc_graph *rc_plan_graph(const rc_plan *p);
+
+#endif

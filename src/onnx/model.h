@@ -1,0 +1,57 @@
+/* ONNX files in and out. A model is the graph IR plus the message it was read
+ * from, kept so that saving writes back everything the caller did not change:
+ * names, attributes, doc strings, metadata, opset imports, value_info and
+ * unknown fields. */
+#ifndef RC_ONNX_MODEL_H
+#define RC_ONNX_MODEL_H
+
+#include <stddef.h>
+
+#include "core/status.h"
+#include "graph/ir.h"
+
+/* Limits on what a file may ask for, checked before anything is allocated. */
+typedef struct rc_load_limits {
+  size_t max_file_bytes;      /* whole .onnx file */
+  size_t max_tensor_bytes;    /* one initializer or attribute tensor */
+  size_t max_total_bytes;     /* every initializer together, external data included */
+  int max_nodes;
+  int max_rank;               /* at most RC_MAX_RANK */
+  size_t max_string;          /* one name or string attribute */
+} rc_load_limits;
+
+/* Generous defaults for real models: 4 GiB file, 2 GiB tensor, 8 GiB total,
+ * 1,000,000 nodes, rank 8, 64 KiB strings. */
+void rc_load_limits_default(rc_load_limits *l);
+
+typedef struct rc_model {
+  rc_graph graph;
+  void *proto;          /* Onnx__ModelProto*, opaque outside src/onnx */
+  char *path;           /* as given to rc_model_load */
+  char *dir;            /* folder that external data resolves against */
+  size_t file_bytes;
+} rc_model;
+
+/* Read path; limits may be NULL for the defaults. Refuses IR versions outside
+ * 3..10, default-domain opsets outside 9..21, external data that escapes the
+ * model's folder or runs past its file's end, and unsupported ops (via
+ * rc__graph_finalize). Errors name the file and the node or field. */
+rc_status rc_model_load(rc_model **out, const char *path, const rc_load_limits *limits, rc_err *e);
+
+/* Write the model to path: the loaded message with the initializers listed in
+ * `changed` (value indices) replaced by their current data in graph.values
+ * (converted back to the file's dtype: float stays float32, int8/uint8 as
+ * bytes, int4/uint4 packed two per byte, int32 as int32). Unchanged
+ * initializers keep their exact bytes, external ones are embedded only when
+ * changed. The write goes to a temp file in path's folder, is flushed and
+ * fsync'd, then renamed over path; on any failure path is left as it was.
+ * Refuses to write over the file the model was read from. */
+rc_status rc_model_save(rc_model *m, const char *path, const int *changed, int n_changed, rc_err *e);
+
+void rc_model_free(rc_model *m);
+
+/* Write bytes to path atomically (temp file in the same folder, fsync,
+ * rename). Shared by every writer of recoup's outputs. */
+rc_status rc__write_atomic(const char *path, const void *data, size_t n, rc_err *e);
+
+#endif
