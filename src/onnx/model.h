@@ -54,4 +54,12 @@ void rc_model_free(rc_model *m);
  * rename). Shared by every writer of recoup's outputs. */
 rc_status rc__write_atomic(const char *path, const void *data, size_t n, rc_err *e);
 
+
+
+/* Read one ONNX TensorProto file (*.pb, the format of ONNX's own test data)
+ * into a tensor whose data is allocated with rc__malloc and returned in
+ * *owned (free with rc__free). Refuses tensors over max_bytes. */
+rc_status rc__tensorproto_file_read(const char *path, rc_tensor *out, void **owned, size_t max_bytes,
+                                    rc_err *e);
+
 #endif
