@@ -50,6 +50,12 @@ rc_status rc_model_save(rc_model *m, const char *path, const int *changed, int n
 
 void rc_model_free(rc_model *m);
 
+/* rc_model_load without rc__graph_finalize: the graph in file order, ops not
+ * looked up, attributes not parsed. For tests and tools that inspect the
+ * structure of files whose ops recoup may not run. */
+rc_status rc__model_load_unbound(rc_model **out, const char *path, const rc_load_limits *limits,
+                                 rc_err *e);
+
 /* Write bytes to path atomically (temp file in the same folder, fsync,
  * rename). Shared by every writer of recoup's outputs. */
 rc_status rc__write_atomic(const char *path, const void *data, size_t n, rc_err *e);
