@@ -1,2 +1,54 @@
+/* recoup: recover the accuracy a compressed model lost, by distilling it from
+ * its dense original on CPU. This file only dispatches to the commands. */
+#include <signal.h>
 #include <stdio.h>
-int main(int argc, char **argv) { (void)argc; (void)argv; printf("recoup\n"); return 0; }
+#include <string.h>
+
+#include "cli/cli.h"
+
+static const rc_command commands[] = {
+    {"inspect", "show a model's inputs, outputs, ops, sparsity and quantization grids", rc_cmd_inspect},
+    {"eval", "run a model over data: accuracy, agreement with another model, outputs", rc_cmd_eval},
+};
+
+#define N_COMMANDS ((int)(sizeof commands / sizeof commands[0]))
+
+static void print_help(void) {
+  printf(
+      "Usage: recoup COMMAND [OPTIONS]\n"
+      "\n"
+      "Recover the accuracy a pruned or quantized ONNX model lost, by distilling it\n"
+      "from its dense original on CPU, keeping its masks and integer grids.\n"
+      "\n"
+      "Commands:\n");
+  for (int i = 0; i < N_COMMANDS; i++) printf("  %-10s %s\n", commands[i].name, commands[i].summary);
+  printf(
+      "\n"
+      "Options:\n"
+      "  -h, --help     show this help\n"
+      "  -V, --version  show the version\n"
+      "\n"
+      "Run 'recoup COMMAND --help' for a command's options.\n"
+      "Exit status: 0 success, 1 failure, 2 usage error.\n");
+}
+
+int main(int argc, char **argv) {
+  /* A write past a file-size limit must fail with EFBIG, not kill us. */
+  signal(SIGXFSZ, SIG_IGN);
+  if (argc < 2) {
+    print_help();
+    return RC_EXIT_USAGE;
+  }
+  const char *cmd = argv[1];
+  if (!strcmp(cmd, "-h") || !strcmp(cmd, "--help") || !strcmp(cmd, "help")) {
+    print_help();
+    return RC_EXIT_OK;
+  }
+  if (!strcmp(cmd, "-V") || !strcmp(cmd, "--version")) {
+    printf("recoup %s\n", RECOUP_VERSION);
+    return RC_EXIT_OK;
+  }
+  for (int i = 0; i < N_COMMANDS; i++)
+    if (!strcmp(cmd, commands[i].name)) return commands[i].run(argc - 1, argv + 1);
+  return cli_usage_error(NULL, "unknown command '%s'", cmd);
+}

@@ -1,0 +1,136 @@
+#include "cli/cli_data.h"
+
+#include <string.h>
+
+#include "cli/cli.h"
+
+void cli_data_opts_init(cli_data_opts *o) {
+  memset(o, 0, sizeof *o);
+  o->scale = 1.0;
+}
+
+int cli_data_option(cli_data_opts *o, const char *cmd, const char *name, const char *value) {
+  rc_err e = {0};
+  if (!strcmp(name, "scale")) {
+    if (cli_parse_float(value, &o->scale) || o->scale == 0)
+      return cli_usage_error(cmd, "--scale expects a non-zero number, got '%s'", value);
+    return 0;
+  }
+  float *dst = !strcmp(name, "mean") ? o->mean : o->std;
+  int *n = !strcmp(name, "mean") ? &o->n_mean : &o->n_std;
+  if (rc_data_parse_floats(value, dst, CLI_MAX_CHANNELS, n, &e) != RC_OK)
+    return cli_usage_error(cmd, "--%s: %s", name, e.msg);
+  if (!strcmp(name, "std"))
+    for (int i = 0; i < *n; i++)
+      if (dst[i] == 0) return cli_usage_error(cmd, "--std values must be non-zero");
+  return 0;
+}
+
+/* "NAME=FILE" when NAME is one of the graph's inputs; else the whole text is a path. */
+static int split_named(const rc_graph *g, const char *arg, const char **file) {
+  const char *eq = strchr(arg, '=');
+  *file = arg;
+  if (!eq) return -1;
+  for (int i = 0; i < g->n_inputs; i++) {
+    const char *name = g->values[g->inputs[i]].name;
+    if (strlen(name) == (size_t)(eq - arg) && !strncmp(name, arg, (size_t)(eq - arg))) {
+      *file = eq + 1;
+      return i;
+    }
+  }
+  return -1;
+}
+
+static rc_status prepare_input(rc_array *a, const rc_value *input, const cli_data_opts *o, const char *file,
+                               rc_err *e) {
+  if (input->decl.dtype == RC_DTYPE_FLOAT) {
+    rc_data_norm norm = {(float)o->scale, o->mean, o->n_mean, o->std, o->n_std};
+    rc_array f = {0};
+    rc_status st = rc_data_to_float_array(&f, a, &norm, e);
+    if (st != RC_OK) return rc__wrap(e, "%s", file);
+    rc_array_free(a);
+    *a = f;
+  } else if (a->t.dtype != input->decl.dtype) {
+    return rc__fail(e, RC_ERR_SHAPE, "%s: input '%s' takes %s, the file holds %s", file, input->name,
+                    rc_dtype_name(input->decl.dtype), rc_dtype_name(a->t.dtype));
+  }
+  if (input->decl.rank >= 1) {
+    rc_tensor sample = {input->decl.dtype, input->decl.rank - 1, {0}, NULL};
+    int concrete = 1;
+    for (int d = 1; d < input->decl.rank; d++) {
+      sample.dims[d - 1] = input->decl.dims[d];
+      if (input->decl.dims[d] < 0) concrete = 0;
+    }
+    if (concrete && rc_data_fit(a, &sample, e) != RC_OK)
+      return rc__wrap(e, "%s: input '%s'", file, input->name);
+  }
+  return RC_OK;
+}
+
+rc_status cli_samples_load(cli_samples *s, const cli_data_opts *o, const rc_graph *g, rc_err *e) {
+  memset(s, 0, sizeof *s);
+  if (g->n_inputs > CLI_MAX_DATA)
+    return rc__fail(e, RC_ERR_UNSUPPORTED, "%s: more than %d inputs", g->path, CLI_MAX_DATA);
+  s->n_inputs = g->n_inputs;
+  const char *files[CLI_MAX_DATA] = {0};
+  for (int i = 0; i < o->n_data; i++) {
+    const char *file;
+    int idx = split_named(g, o->data[i], &file);
+    if (idx < 0) {
+      if (o->n_data != 1 || g->n_inputs != 1)
+        return rc__fail(e, RC_ERR_INVALID,
+                        "%s has %d inputs: give each as --data NAME=FILE ('%s' names none of them)",
+                        g->path, g->n_inputs, o->data[i]);
+      idx = 0;
+    }
+    if (files[idx])
+      return rc__fail(e, RC_ERR_INVALID, "input '%s' is given twice", g->values[g->inputs[idx]].name);
+    files[idx] = file;
+  }
+  for (int i = 0; i < g->n_inputs; i++) {
+    const rc_value *input = &g->values[g->inputs[i]];
+    if (!files[i]) return rc__fail(e, RC_ERR_INVALID, "no --data for input '%s' of %s", input->name, g->path);
+    RC_TRY(rc_array_read(&s->inputs[i], files[i], NULL, 0, e));
+    if (s->inputs[i].t.rank < 1)
+      return rc__fail(e, RC_ERR_SHAPE, "%s: a scalar is not a set of samples", files[i]);
+    RC_TRY(prepare_input(&s->inputs[i], input, o, files[i], e));
+    int64_t n = s->inputs[i].t.dims[0];
+    if (i && n != s->n)
+      return rc__fail(e, RC_ERR_SHAPE, "%s holds %lld samples, the other inputs %lld", files[i],
+                      (long long)n, (long long)s->n);
+    s->n = n;
+  }
+  if (s->n == 0) return rc__fail(e, RC_ERR_INVALID, "%s: no samples", files[0]);
+  return RC_OK;
+}
+
+rc_status cli_samples_load_labels(cli_samples *s, const char *path, int64_t n_classes, rc_err *e) {
+  rc_array raw = {0};
+  RC_TRY(rc_array_read(&raw, path, NULL, 0, e));
+  rc_status st = rc_labels_to_int32(&s->labels, &raw, s->n, n_classes, e);
+  rc_array_free(&raw);
+  if (st != RC_OK) return rc__wrap(e, "%s", path);
+  s->has_labels = 1;
+  return RC_OK;
+}
+
+void cli_samples_free(cli_samples *s) {
+  for (int i = 0; i < s->n_inputs; i++) rc_array_free(&s->inputs[i]);
+  rc_array_free(&s->labels);
+  memset(s, 0, sizeof *s);
+}
+
+void cli_samples_shapes(const cli_samples *s, int64_t b, rc_tensor *shapes) {
+  for (int i = 0; i < s->n_inputs; i++) {
+    shapes[i] = s->inputs[i].t;
+    shapes[i].data = NULL;
+    shapes[i].dims[0] = b;
+  }
+}
+
+rc_status cli_samples_dataset(rc_dataset *d, const cli_samples *s, const int64_t *index, int64_t n_index,
+                              rc_err *e) {
+  rc_tensor ins[CLI_MAX_DATA];
+  for (int i = 0; i < s->n_inputs; i++) ins[i] = s->inputs[i].t;
+  return rc_dataset_init(d, ins, s->n_inputs, s->has_labels ? &s->labels.t : NULL, index, n_index, e);
+}

@@ -1,0 +1,76 @@
+#include <cblas.h>
+#include <errno.h>
+#include <limits.h>
+#include <math.h>
+#include <omp.h>
+#include <stdarg.h>
+#include <stdlib.h>
+#include <string.h>
+#include <unistd.h>
+
+#include "cli/cli.h"
+
+int cli_fail(const rc_err *e) {
+  fprintf(stderr, "recoup: error: %s\n", e && e->msg[0] ? e->msg : rc_strerror(e ? e->code : -1));
+  return RC_EXIT_FAIL;
+}
+
+int cli_usage_error(const char *cmd, const char *fmt, ...) {
+  va_list ap;
+  va_start(ap, fmt);
+  fprintf(stderr, "recoup%s%s: ", cmd ? " " : "", cmd ? cmd : "");
+  vfprintf(stderr, fmt, ap);
+  va_end(ap);
+  fprintf(stderr, "\nTry 'recoup%s%s --help'.\n", cmd ? " " : "", cmd ? cmd : "");
+  return RC_EXIT_USAGE;
+}
+
+int cli_parse_int(const char *s, long lo, long hi, long *out) {
+  if (!s || !*s) return -1;
+  char *end;
+  errno = 0;
+  long v = strtol(s, &end, 10);
+  if (errno || *end || v < lo || v > hi) return -1;
+  *out = v;
+  return 0;
+}
+
+int cli_parse_float(const char *s, double *out) {
+  if (!s || !*s) return -1;
+  char *end;
+  errno = 0;
+  double v = strtod(s, &end);
+  if (errno || *end || !isfinite(v)) return -1;
+  *out = v;
+  return 0;
+}
+
+void cli_set_threads(int n) {
+  if (n <= 0) {
+    long c = sysconf(_SC_NPROCESSORS_ONLN);
+    n = c > 0 ? (int)c : 1;
+  }
+  openblas_set_num_threads(n);
+  omp_set_num_threads(n);
+}
+
+const char *cli_group_digits(long long v, char *buf, size_t n) {
+  char raw[32];
+  snprintf(raw, sizeof raw, "%lld", v < 0 ? -v : v);
+  size_t len = strlen(raw), o = 0;
+  if (v < 0 && o + 1 < n) buf[o++] = '-';
+  for (size_t i = 0; i < len && o + 1 < n; i++) {
+    if (i && (len - i) % 3 == 0 && o + 1 < n) buf[o++] = ',';
+    if (o + 1 < n) buf[o++] = raw[i];
+  }
+  buf[o] = '\0';
+  return buf;
+}
+
+void cli_log_stderr(void *user, int level, const char *msg) {
+  (void)user;
+  static const char *names[] = {"error", "warning", "info", "debug"};
+  fprintf(stderr, "recoup: %s: %s\n", names[level < 0 ? 0 : level > 3 ? 3 : level], msg);
+}
+
+int cli_isatty_stderr(void) { return isatty(STDERR_FILENO); }

@@ -1,0 +1,245 @@
+/* recoup eval MODEL.onnx --data FILE ...: run a model over data and measure it. */
+#include <cJSON.h>
+#include <getopt.h>
+#include <stdlib.h>
+#include <string.h>
+
+#include "cli/cli.h"
+#include "cli/cli_data.h"
+#include "core/alloc.h"
+#include "data/npy_write.h"
+#include "graph/plan.h"
+#include "onnx/model.h"
+#include "train/evaluate.h"
+
+static void usage(FILE *f) {
+  fprintf(f,
+          "Usage: recoup eval MODEL.onnx --data FILE [--data NAME=FILE ...] [OPTIONS]\n"
+          "\n"
+          "Run a model over samples in batches. With labels, report top-1 (and top-5\n"
+          "where there are at least 5 classes) accuracy; with --ref, top-1 agreement\n"
+          "with the other model and the mean KL(other || model) of their softmax outputs.\n"
+          "\n"
+          "Data files: NumPy .npy/.npz, IDX (plain or .gz, as the MNIST family ships),\n"
+          "ONNX TensorProto .pb. A model with several inputs takes --data NAME=FILE each.\n"
+          "\n"
+          "Options:\n"
+          "  --data FILE|NAME=FILE  samples, first axis = sample (repeatable)\n"
+          "  --labels FILE          integer class labels, one per sample\n"
+          "  --batch N              samples per batch (default 64)\n"
+          "  --scale S              multiply raw values by S (default 1; 0.00392 maps 0..255 to 0..1)\n"
+          "  --mean M[,M...]        subtract after scaling, one value or one per channel\n"
+          "  --std D[,D...]         then divide, one value or one per channel\n"
+          "  --ref OTHER.onnx       compare with another model on the same samples\n"
+          "  --out FILE             X.npy: first output; X.npz: every output by name\n"
+          "  --threads N            threads for compute (default: all cores)\n"
+          "  --json                 print results as one JSON object on stdout\n"
+          "  -h, --help             show this help\n"
+          "\n"
+          "Accuracy holds only for the data measured: validate on your own held-out data.\n");
+}
+
+typedef struct eval_args {
+  const char *model, *ref, *out;
+  cli_data_opts data;
+  long batch, threads;
+  int json;
+} eval_args;
+
+static int parse_args(eval_args *a, int argc, char **argv) {
+  static const struct option longopts[] = {
+      {"data", required_argument, NULL, 'd'},  {"labels", required_argument, NULL, 'l'},
+      {"batch", required_argument, NULL, 'b'}, {"scale", required_argument, NULL, 'S'},
+      {"mean", required_argument, NULL, 'M'},  {"std", required_argument, NULL, 'D'},
+      {"ref", required_argument, NULL, 'r'},   {"out", required_argument, NULL, 'o'},
+      {"threads", required_argument, NULL, 't'}, {"json", no_argument, NULL, 'j'},
+      {"help", no_argument, NULL, 'h'},        {NULL, 0, NULL, 0}};
+  memset(a, 0, sizeof *a);
+  cli_data_opts_init(&a->data);
+  a->batch = 64;
+  int c;
+  optind = 1;
+  while ((c = getopt_long(argc, argv, "h", longopts, NULL)) != -1) {
+    switch (c) {
+      case 'd':
+        if (a->data.n_data == CLI_MAX_DATA) return cli_usage_error("eval", "too many --data");
+        a->data.data[a->data.n_data++] = optarg;
+        break;
+      case 'l': a->data.labels = optarg; break;
+      case 'b':
+        if (cli_parse_int(optarg, 1, 1 << 20, &a->batch))
+          return cli_usage_error("eval", "--batch expects a positive integer, got '%s'", optarg);
+        break;
+      case 'S': if (cli_data_option(&a->data, "eval", "scale", optarg)) return RC_EXIT_USAGE; break;
+      case 'M': if (cli_data_option(&a->data, "eval", "mean", optarg)) return RC_EXIT_USAGE; break;
+      case 'D': if (cli_data_option(&a->data, "eval", "std", optarg)) return RC_EXIT_USAGE; break;
+      case 'r': a->ref = optarg; break;
+      case 'o': a->out = optarg; break;
+      case 't':
+        if (cli_parse_int(optarg, 0, 1024, &a->threads))
+          return cli_usage_error("eval", "--threads expects a count, got '%s'", optarg);
+        break;
+      case 'j': a->json = 1; break;
+      case 'h': usage(stdout); return -1;
+      default: return cli_usage_error("eval", "unknown option");
+    }
+  }
+  if (optind != argc - 1) return cli_usage_error("eval", "expects exactly one MODEL.onnx");
+  a->model = argv[optind];
+  if (!a->data.n_data) return cli_usage_error("eval", "--data is required");
+  if (a->out) {
+    size_t n = strlen(a->out);
+    if (n < 5 || (strcmp(a->out + n - 4, ".npy") && strcmp(a->out + n - 4, ".npz")))
+      return cli_usage_error("eval", "--out must end in .npy or .npz");
+  }
+  return 0;
+}
+
+/* A model planned at batch b with every output collected over the samples. */
+typedef struct run_result {
+  rc_model *model;
+  rc_plan *plan;
+  void *outs[64];
+  int n_outs;
+} run_result;
+
+static void run_result_free(run_result *r) {
+  for (int i = 0; i < r->n_outs; i++) rc__free(r->outs[i]);
+  rc_plan_free(r->plan);
+  rc_model_free(r->model);
+  memset(r, 0, sizeof *r);
+}
+
+/* r->model is loaded already (or is loaded here when NULL). */
+static rc_status run_model(run_result *r, const char *path, const cli_samples *s, int64_t batch,
+                           const rc_dataset *d, rc_err *e) {
+  if (!r->model) RC_TRY(rc_model_load(&r->model, path, NULL, e));
+  const rc_graph *g = &r->model->graph;
+  if (g->n_inputs != s->n_inputs)
+    return rc__fail(e, RC_ERR_SHAPE, "%s has %d inputs, the data %d", path, g->n_inputs, s->n_inputs);
+  if (g->n_outputs > 64) return rc__fail(e, RC_ERR_UNSUPPORTED, "%s: more than 64 outputs", path);
+  rc_tensor shapes[CLI_MAX_DATA];
+  cli_samples_shapes(s, batch, shapes);
+  RC_TRY(rc_plan_create(&r->plan, g, shapes, NULL, e));
+  for (int j = 0; j < g->n_outputs; j++) {
+    const rc_tensor *t = rc_plan_tensor(r->plan, g->outputs[j]);
+    if (t->rank < 1 || t->dims[0] != batch)
+      return rc__fail(e, RC_ERR_SHAPE, "%s: output '%s' does not have the batch as its first axis", path,
+                      g->values[g->outputs[j]].name);
+    size_t per = rc_tensor_nbytes(t) / (size_t)batch;
+    r->outs[j] = rc__malloc(per * (size_t)s->n + 1);
+    if (!r->outs[j]) return rc__fail(e, RC_ERR_NOMEM, "out of memory for the outputs of %s", path);
+    r->n_outs = j + 1;
+  }
+  return rc__run_dataset(r->plan, d, g->outputs, g->n_outputs, r->outs, e);
+}
+
+/* (N, K) view of the first output, or an error when it is not float (N, K). */
+static rc_status logits_of(const run_result *r, int64_t *k, rc_err *e) {
+  const rc_graph *g = &r->model->graph;
+  const rc_tensor *t = rc_plan_tensor(r->plan, g->outputs[0]);
+  if (t->dtype != RC_DTYPE_FLOAT || t->rank != 2)
+    return rc__fail(e, RC_ERR_SHAPE, "%s: accuracy needs a float (N, classes) first output; '%s' is %s of rank %d",
+                    g->path, g->values[g->outputs[0]].name, rc_dtype_name(t->dtype), t->rank);
+  *k = t->dims[1];
+  return RC_OK;
+}
+
+static rc_status write_outputs(const run_result *r, const char *path, int64_t n, rc_err *e) {
+  const rc_graph *g = &r->model->graph;
+  rc_tensor ts[64];
+  const char *names[64];
+  for (int j = 0; j < g->n_outputs; j++) {
+    ts[j] = *rc_plan_tensor(r->plan, g->outputs[j]);
+    ts[j].dims[0] = n;
+    ts[j].data = r->outs[j];
+    names[j] = g->values[g->outputs[j]].name;
+  }
+  if (!strcmp(path + strlen(path) - 4, ".npy")) return rc_npy_write(path, &ts[0], e);
+  return rc_npz_write(path, names, ts, g->n_outputs, e);
+}
+
+static void print_result(const eval_args *a, const cli_samples *s, const rc_metrics *m, int64_t k) {
+  if (a->json) {
+    cJSON *root = cJSON_CreateObject();
+    cJSON_AddStringToObject(root, "model", a->model);
+    cJSON_AddNumberToObject(root, "samples", (double)s->n);
+    if (m && m->has_labels) {
+      cJSON_AddNumberToObject(root, "top1_accuracy", m->top1);
+      if (m->top5 >= 0) cJSON_AddNumberToObject(root, "top5_accuracy", m->top5);
+    }
+    if (m && m->has_ref) {
+      cJSON_AddStringToObject(root, "ref", a->ref);
+      cJSON_AddNumberToObject(root, "top1_agreement", m->agreement);
+      cJSON_AddNumberToObject(root, "mean_kl_ref_to_model", m->kl);
+    }
+    if (k) cJSON_AddNumberToObject(root, "classes", (double)k);
+    if (a->out) cJSON_AddStringToObject(root, "out", a->out);
+    char *text = cJSON_Print(root);
+    if (text) puts(text);
+    free(text);
+    cJSON_Delete(root);
+    return;
+  }
+  printf("model            %s\n", a->model);
+  printf("samples          %lld\n", (long long)s->n);
+  if (m && m->has_labels) {
+    printf("top-1 accuracy   %.2f%% (%lld of %lld)\n", 100 * m->top1, (long long)(m->top1 * (double)m->n + 0.5),
+           (long long)m->n);
+    if (m->top5 >= 0) printf("top-5 accuracy   %.2f%%\n", 100 * m->top5);
+  }
+  if (m && m->has_ref) {
+    printf("reference        %s\n", a->ref);
+    printf("top-1 agreement  %.2f%%\n", 100 * m->agreement);
+    printf("mean KL(ref||model) %.6f\n", m->kl);
+  }
+  if (a->out) printf("outputs written  %s\n", a->out);
+}
+
+int rc_cmd_eval(int argc, char **argv) {
+  eval_args a;
+  int pr = parse_args(&a, argc, argv);
+  if (pr) return pr < 0 ? RC_EXIT_OK : pr;
+  cli_set_threads((int)a.threads);
+  rc_err e = {0};
+  cli_samples s;
+  rc_dataset d;
+  memset(&s, 0, sizeof s);
+  memset(&d, 0, sizeof d);
+  run_result r = {0}, ref = {0};
+  int rc = RC_EXIT_FAIL;
+  if (rc_model_load(&r.model, a.model, NULL, &e) != RC_OK) goto out;
+  if (cli_samples_load(&s, &a.data, &r.model->graph, &e) != RC_OK) goto out;
+  int64_t batch = a.batch < s.n ? a.batch : s.n;
+  if (cli_samples_dataset(&d, &s, NULL, 0, &e) != RC_OK) goto out;
+  if (run_model(&r, a.model, &s, batch, &d, &e) != RC_OK) goto out;
+  int64_t k = 0;
+  rc_metrics m;
+  int want_metrics = a.data.labels || a.ref;
+  if (want_metrics) {
+    if (logits_of(&r, &k, &e) != RC_OK) goto out;
+    if (a.data.labels && cli_samples_load_labels(&s, a.data.labels, k, &e) != RC_OK) goto out;
+    const float *ref_logits = NULL;
+    if (a.ref) {
+      int64_t k2;
+      if (run_model(&ref, a.ref, &s, batch, &d, &e) != RC_OK || logits_of(&ref, &k2, &e) != RC_OK) goto out;
+      if (k2 != k) {
+        rc__fail(&e, RC_ERR_SHAPE, "%s has %lld classes, %s %lld", a.model, (long long)k, a.ref, (long long)k2);
+        goto out;
+      }
+      ref_logits = ref.outs[0];
+    }
+    if (rc__metrics_compute(&m, r.outs[0], s.has_labels ? s.labels.t.data : NULL, ref_logits, s.n, k, &e) != RC_OK)
+      goto out;
+  }
+  if (a.out && write_outputs(&r, a.out, s.n, &e) != RC_OK) goto out;
+  print_result(&a, &s, want_metrics ? &m : NULL, k);
+  rc = RC_EXIT_OK;
+out:
+  if (rc != RC_EXIT_OK) cli_fail(&e);
+  rc_dataset_free(&d);
+  cli_samples_free(&s);
+  run_result_free(&r);
+  run_result_free(&ref);
+  return rc;
+}
