@@ -1,0 +1,171 @@
+/* Data files in, batches out.
+ *
+ * Readers turn NumPy .npy/.npz, IDX (plain or gzip) and ONNX TensorProto .pb
+ * files into owned arrays; helpers turn arrays into normalised float32 model
+ * inputs and checked integer labels; a dataset view serves batches in a
+ * seeded shuffled order into caller buffers without allocating per batch.
+ *
+ * Every size read from a file is checked for overflow and against max_bytes
+ * before anything is allocated. Every error names the file and what is wrong.
+ */
+#ifndef RECOUP_DATA_H
+#define RECOUP_DATA_H
+
+#include <stddef.h>
+#include <stdint.h>
+
+#include "recoup/status.h"
+#include "recoup/tensor.h"
+
+/* An array that owns its data: t.data points into `owned` (or is `owned`). */
+typedef struct rc_array {
+  rc_tensor t;
+  void *owned;
+} rc_array;
+
+/* Frees the data and leaves an empty array; safe on a zeroed array. */
+void rc_array_free(rc_array *a);
+
+typedef enum rc_data_format {
+  RC_DATA_AUTO = 0,        /* by magic bytes first, file extension second */
+  RC_DATA_NPY = 1,         /* NumPy .npy, format versions 1.0, 2.0, 3.0 */
+  RC_DATA_NPZ = 2,         /* zip of .npy members, stored or deflated */
+  RC_DATA_IDX = 3,         /* IDX (big-endian dims), plain */
+  RC_DATA_GZIP = 4,        /* gzip around an IDX or .npy payload */
+  RC_DATA_TENSORPROTO = 5  /* one serialised onnx.TensorProto (.pb) */
+} rc_data_format;
+
+/* Default limit on one decoded array or one decompressed member: 8 GiB. */
+#define RC_DATA_DEFAULT_MAX_BYTES ((size_t)8 << 30)
+
+const char *rc_data_format_name(rc_data_format f);
+
+/* Read an array from path. `member` selects an .npz member by name ("x" or
+ * "x.npy"); NULL takes the first member. Other formats refuse a member name.
+ * max_bytes 0 means RC_DATA_DEFAULT_MAX_BYTES. On error *out is empty. */
+rc_status rc_array_read(rc_array *out, const char *path, const char *member, size_t max_bytes,
+                        rc_err *e);
+
+/* The same readers on a memory buffer (the fuzzing entry point). `name` is
+ * used in error messages. fmt RC_DATA_AUTO detects by magic bytes only.
+ * TensorProto data is read from files only (RC_ERR_UNSUPPORTED here). */
+rc_status rc_array_read_mem(rc_array *out, const void *buf, size_t n, rc_data_format fmt,
+                            const char *name, const char *member, size_t max_bytes, rc_err *e);
+
+/* The format of a buffer by its magic bytes, or RC_DATA_AUTO if unknown. */
+rc_data_format rc_data_detect(const void *buf, size_t n);
+
+/* Member names of an .npz (zip) file in archive order. *names is one
+ * allocation holding the pointer array and the strings: free it with
+ * rc_data_names_free. */
+rc_status rc_npz_list(char ***names, int *count, const char *path, rc_err *e);
+rc_status rc_npz_list_mem(char ***names, int *count, const void *buf, size_t n,
+                          const char *name, rc_err *e);
+void rc_data_names_free(char **names);
+
+/* ---- Conversion into model input ------------------------------------- */
+
+/* x' = (x * scale - mean[c]) / std[c], c the channel (axis 1 of the array's
+ * (N, C, ...) layout). n_mean/n_std are 1 (one value for all elements) or C;
+ * 0 means mean 0 / std 1. */
+typedef struct rc_data_norm {
+  float scale;
+  const float *mean;
+  int n_mean;
+  const float *std;
+  int n_std;
+} rc_data_norm;
+
+/* scale 1, no mean, no std. */
+void rc_data_norm_identity(rc_data_norm *n);
+
+/* Parse "0.5,0.5, 0.5" into out (at most max values); *n receives the count.
+ * Refuses empty items, trailing text, non-finite values, too many values.
+ * Decimal point per the C locale in force (recoup's CLI keeps "C"). */
+rc_status rc_data_parse_floats(const char *s, float *out, int max, int *n, rc_err *e);
+
+/* Convert samples [first, first + count) of `in` (any numeric dtype) to
+ * float32 into out (count * per-sample elements) with the normalisation
+ * `norm` (NULL = identity). Refuses a non-finite result naming the sample
+ * index and element position ("sample 12, element 40: NaN"). */
+rc_status rc_data_to_float(float *out, const rc_array *in, int64_t first, int64_t count,
+                           const rc_data_norm *norm, rc_err *e);
+
+/* Whole-array form: *out becomes a new float32 array of in's shape. */
+rc_status rc_data_to_float_array(rc_array *out, const rc_array *in, const rc_data_norm *norm,
+                                 rc_err *e);
+
+/* Make a's per-sample shape (dims after axis 0) equal sample_shape: accepted
+ * as is, or after inserting/removing size-1 dims when the remaining dims and
+ * the element count per sample agree; a's dims are rewritten in place (data
+ * untouched). Otherwise RC_ERR_SHAPE naming both shapes. */
+rc_status rc_data_fit(rc_array *a, const rc_tensor *sample_shape, rc_err *e);
+
+/* ---- Labels ------------------------------------------------------------ */
+
+/* Labels are an array of shape (N) or (N, 1) of an integer dtype, bool, or a
+ * float dtype holding whole numbers. Refuses another shape, a count other than
+ * n_samples and a label outside 0..n_classes-1, naming the position. */
+rc_status rc_labels_check(const rc_array *labels, int64_t n_samples, int64_t n_classes, rc_err *e);
+
+/* Check as rc_labels_check, then *out becomes an int32 array of shape (N). */
+rc_status rc_labels_to_int32(rc_array *out, const rc_array *labels, int64_t n_samples,
+                             int64_t n_classes, rc_err *e);
+
+/* ---- Batching ---------------------------------------------------------- */
+
+#define RC_DATASET_MAX_INPUTS 8
+
+/* A view over the samples `index` of one or more arrays that share axis 0,
+ * with optional int32 labels (N). The view does not own the arrays. */
+typedef struct rc_dataset {
+  int n_inputs;
+  rc_tensor inputs[RC_DATASET_MAX_INPUTS];
+  size_t sample_bytes[RC_DATASET_MAX_INPUTS];
+  const int32_t *labels; /* NULL when there are none */
+  int64_t n;             /* samples in the view */
+  int64_t *index;        /* n sample indices into the arrays (owned) */
+  int64_t *order;        /* n positions into index, the current epoch's order (owned) */
+} rc_dataset;
+
+/* inputs: n_inputs arrays with equal dims[0]; labels NULL or int32 (N) as made
+ * by rc_labels_to_int32. index NULL takes every sample 0..N-1 in order; else
+ * n_index indices, each checked to be in range. The order starts unshuffled. */
+rc_status rc_dataset_init(rc_dataset *d, const rc_tensor *inputs, int n_inputs,
+                          const rc_tensor *labels, const int64_t *index, int64_t n_index,
+                          rc_err *e);
+void rc_dataset_free(rc_dataset *d);
+
+/* Put the view in the order for (seed, epoch): a Fisher-Yates shuffle driven
+ * by PCG32 seeded with `seed` on stream `epoch`, so the order of any epoch is
+ * a pure function of the two numbers and resuming needs nothing else. */
+void rc_dataset_shuffle(rc_dataset *d, uint64_t seed, uint64_t epoch);
+/* Back to the view's own order (validation passes). */
+void rc_dataset_unshuffle(rc_dataset *d);
+
+/* Batches of batch_size in the view; drop_last drops a short final batch. */
+int64_t rc_dataset_n_batches(const rc_dataset *d, int64_t batch_size, int drop_last);
+
+/* Copy batch `batch` (samples [batch*batch_size, ...) of the current order)
+ * into out[i] (one buffer per input, batch_size * sample bytes, the input's
+ * dtype) and labels_out (batch_size int32, may be NULL). *count receives the
+ * samples copied (short for the last batch). Allocates nothing. */
+rc_status rc_dataset_gather(void *const *out, int32_t *labels_out, int64_t *count,
+                            const rc_dataset *d, int64_t batch, int64_t batch_size, rc_err *e);
+
+/* A training/validation split of n samples: a PCG32 permutation from seed,
+ * the last round(n * val_fraction) positions (at least one when the fraction
+ * is above 0) for validation, the rest for training; each list sorted
+ * ascending. Disjoint, and together every sample exactly once. */
+typedef struct rc_data_split {
+  int64_t *train;
+  int64_t n_train;
+  int64_t *val;
+  int64_t n_val;
+} rc_data_split;
+
+rc_status rc_data_split_make(rc_data_split *out, int64_t n, double val_fraction, uint64_t seed,
+                             rc_err *e);
+void rc_data_split_free(rc_data_split *s);
+
+#endif
