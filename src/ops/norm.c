@@ -1,5 +1,472 @@
-/* Op family: norm. Forward and backward side by side. */
+/* Op family: norm. Forward and backward side by side.
+ *
+ * Statistics are computed in two passes with double accumulators (mean, then
+ * squared deviations) so that large offsets do not cancel. Per-row or
+ * per-channel mean and 1/sqrt(var + eps) are kept in k->saved for backward. */
+#include <math.h>
+#include <string.h>
+
+#include "ops/broadcast.h"
 #include "ops/op.h"
 
-const rc_op_def rc__ops_norm[] = {{0}};
-const int rc__ops_norm_count = 0;
+/* Where statistics go: k->saved in training plans, else the workspace. */
+static float *stats_buffer(const rc_kernel *k) { return k->saved ? k->saved : k->work; }
+
+/* Mean and inverse standard deviation (biased variance) of n values. */
+static void run_stats(const float *x, int64_t n, float eps, float *mean, float *invstd) {
+  double s = 0;
+  for (int64_t j = 0; j < n; j++) s += x[j];
+  double m = n ? s / (double)n : 0;
+  double v = 0;
+  for (int64_t j = 0; j < n; j++) {
+    double dlt = x[j] - m;
+    v += dlt * dlt;
+  }
+  v = n ? v / (double)n : 0;
+  *mean = (float)m;
+  *invstd = (float)(1.0 / sqrt(v + eps));
+}
+
+/* dx += a * (dy - mean(dy) - xhat * mean(dy * xhat)) over one run, with
+ * xhat = (x - mean) * invstd: the normalisation's backward for a run whose
+ * statistics came from itself. Returns sum(dy) and sum(dy*xhat) for the
+ * affine parameters. */
+static void run_norm_backward(float *dx, const float *x, const float *dy, int64_t n, float mean,
+                              float invstd, float a, double *sdy_out, double *sdyx_out) {
+  double sdy = 0, sdyx = 0;
+  for (int64_t j = 0; j < n; j++) {
+    sdy += dy[j];
+    sdyx += (double)dy[j] * (x[j] - mean) * invstd;
+  }
+  if (dx) {
+    float mdy = (float)(sdy / (double)n), mdyx = (float)(sdyx / (double)n);
+    for (int64_t j = 0; j < n; j++) {
+      float xh = (x[j] - mean) * invstd;
+      dx[j] += a * (dy[j] - mdy - xh * mdyx);
+    }
+  }
+  *sdy_out = sdy;
+  *sdyx_out = sdyx;
+}
+
+static rc_status need_param_vector(const rc_node *n, const rc_tensor *const *in, int i, int64_t len,
+                                   const char *what, rc_err *e) {
+  if (i >= n->n_in || !in[i])
+    return rc__fail(e, RC_ERR_INVALID, "node '%s' (%s): input %s is required", n->label, n->op_type, what);
+  RC_TRY(rc__need_float(n, in[i], i, e));
+  if (rc_tensor_numel(in[i]) != len || in[i]->rank != 1) {
+    char s[96];
+    return rc__fail(e, RC_ERR_SHAPE, "node '%s' (%s): %s has shape %s, expected (%lld)", n->label,
+                    n->op_type, what, rc_shape_str(in[i], s, sizeof s), (long long)len);
+  }
+  return RC_OK;
+}
+
+/* ======================= BatchNormalization ======================= */
+typedef struct bn_params {
+  float epsilon, momentum;
+  int training_mode;
+} bn_params;
+
+static rc_status bn_parse(rc_node *n, rc_arena *a, rc_err *e) {
+  bn_params *p = rc__arena_zalloc(a, sizeof *p);
+  if (!p) return rc__fail(e, RC_ERR_NOMEM, "node '%s' (%s): out of memory", n->label, n->op_type);
+  p->epsilon = rc__attr_float(n, "epsilon", 1e-5f);
+  p->momentum = rc__attr_float(n, "momentum", 0.9f);
+  p->training_mode = (int)rc__attr_int(n, "training_mode", 0);
+  if (!(p->epsilon >= 0) || !isfinite(p->momentum))
+    return rc__fail(e, RC_ERR_INVALID, "node '%s' (%s): invalid epsilon or momentum", n->label, n->op_type);
+  /* spatial=0 (opsets 7-8: statistics per C*D1*...*Dn feature) is deprecated;
+   * the spec suggests flattening the input instead. */
+  if (n->opset < 9 && rc__attr_int(n, "spatial", 1) == 0)
+    return rc__fail(e, RC_ERR_UNSUPPORTED, "node '%s' (%s): spatial=0 is not supported", n->label,
+                    n->op_type);
+  if (n->n_out > (n->opset >= 14 ? 3 : 5))
+    return rc__fail(e, RC_ERR_INVALID, "node '%s' (%s): %d outputs", n->label, n->op_type, n->n_out);
+  n->params = p;
+  return RC_OK;
+}
+
+/* x (N,C,D1..Dn), scale/B/mean/var (C) -> y (N,C,D1..Dn)
+ * [, running_mean (C), running_var (C) [, saved_mean (C), saved_var (C)]] */
+static rc_status bn_infer(const rc_node *n, const rc_tensor *const *in, rc_tensor *out, rc_err *e) {
+  RC_TRY(rc__infer_unary_float(n, in, out, e));
+  if (in[0]->rank < 2)
+    return rc__fail(e, RC_ERR_SHAPE, "node '%s' (%s): X has rank %d, expected (N, C, ...)", n->label,
+                    n->op_type, in[0]->rank);
+  int64_t c = in[0]->dims[1];
+  static const char *names[] = {"scale", "B", "input_mean", "input_var"};
+  for (int i = 1; i <= 4; i++) RC_TRY(need_param_vector(n, in, i, c, names[i - 1], e));
+  for (int o = 1; o < n->n_out; o++) {
+    out[o].dtype = RC_DTYPE_FLOAT;
+    out[o].rank = 1;
+    out[o].dims[0] = c;
+    out[o].data = NULL;
+  }
+  return RC_OK;
+}
+
+static int bn_batch_stats(const rc_kernel *k) {
+  const bn_params *p = k->params;
+  return k->training || p->training_mode;
+}
+
+static size_t bn_saved(const rc_kernel *k) { return 2 * (size_t)k->in[0]->dims[1] * sizeof(float); }
+static size_t bn_workspace(const rc_kernel *k, int backward) { return backward ? 0 : bn_saved(k); }
+
+static void bn_dims(const rc_tensor *x, int64_t *n, int64_t *c, int64_t *s) {
+  *n = x->dims[0];
+  *c = x->dims[1];
+  *s = 1;
+  for (int d = 2; d < x->rank; d++) *s *= x->dims[d];
+}
+
+static void write_vec(const rc_kernel *k, int o, int64_t c, float v) {
+  if (o < k->n_out && k->out[o]) ((float *)k->out[o]->data)[c] = v;
+}
+
+static rc_status bn_forward(const rc_kernel *k, rc_err *e) {
+  const bn_params *p = k->params;
+  int64_t N, C, S;
+  bn_dims(k->in[0], &N, &C, &S);
+  const float *x = k->in[0]->data, *scale = k->in[1]->data, *bias = k->in[2]->data;
+  const float *rmean = k->in[3]->data, *rvar = k->in[4]->data;
+  float *y = k->out[0]->data;
+  float *st = stats_buffer(k); /* mean[C], invstd[C] */
+  int batch = bn_batch_stats(k);
+  int64_t M = N * S;
+#pragma omp parallel for schedule(static) if (N * C * S > RC__PAR_MIN)
+  for (int64_t c = 0; c < C; c++) {
+    float mean, var;
+    if (batch) {
+      /* Batch statistics over N and the spatial dims; the population
+       * (biased) variance, as the spec's ReduceVar, both for normalising and
+       * for the running update (PyTorch would use the unbiased one there). */
+      double s = 0, v = 0;
+      for (int64_t n = 0; n < N; n++) {
+        const float *xr = x + (n * C + c) * S;
+        for (int64_t j = 0; j < S; j++) s += xr[j];
+      }
+      double m = M ? s / (double)M : 0;
+      for (int64_t n = 0; n < N; n++) {
+        const float *xr = x + (n * C + c) * S;
+        for (int64_t j = 0; j < S; j++) v += (xr[j] - m) * (xr[j] - m);
+      }
+      mean = (float)m;
+      var = M ? (float)(v / (double)M) : 0.0f;
+      /* running = input * momentum + batch * (1 - momentum) (spec text). */
+      write_vec(k, 1, c, rmean[c] * p->momentum + mean * (1.0f - p->momentum));
+      write_vec(k, 2, c, rvar[c] * p->momentum + var * (1.0f - p->momentum));
+    } else {
+      mean = rmean[c];
+      var = rvar[c];
+      /* Inference: running statistics pass through unchanged. */
+      write_vec(k, 1, c, mean);
+      write_vec(k, 2, c, var);
+    }
+    write_vec(k, 3, c, mean); /* opsets < 14: saved_mean, saved_var */
+    write_vec(k, 4, c, var);
+    float inv = 1.0f / sqrtf(var + p->epsilon);
+    st[c] = mean;
+    st[C + c] = inv;
+    float a = scale[c] * inv, b = bias[c] - mean * a;
+    for (int64_t n = 0; n < N; n++) {
+      const float *xr = x + (n * C + c) * S;
+      float *yr = y + (n * C + c) * S;
+      for (int64_t j = 0; j < S; j++) yr[j] = xr[j] * a + b;
+    }
+  }
+  (void)e;
+  return RC_OK;
+}
+
+/* Batch statistics: the full normalisation backward (the statistics depend
+ * on x). Inference: y is affine in x, dx = scale/sqrt(var+eps) * dy, and
+ * input_mean / input_var receive their gradients too. */
+static void bn_backward(const rc_kernel *k) {
+  if (!k->dout[0]) return;
+  int64_t N, C, S;
+  bn_dims(k->in[0], &N, &C, &S);
+  const float *x = k->in[0]->data, *scale = k->in[1]->data, *dy = k->dout[0]->data;
+  const float *st = k->saved;
+  float *dx = k->din[0] ? k->din[0]->data : NULL;
+  float *dscale = k->din[1] ? k->din[1]->data : NULL, *dbias = k->din[2] ? k->din[2]->data : NULL;
+  float *dmean = k->din[3] ? k->din[3]->data : NULL, *dvar = k->din[4] ? k->din[4]->data : NULL;
+  int batch = bn_batch_stats(k);
+  int64_t M = N * S;
+#pragma omp parallel for schedule(static) if (N * C * S > RC__PAR_MIN)
+  for (int64_t c = 0; c < C; c++) {
+    float mean = st[c], inv = st[C + c], a = scale[c] * inv;
+    double sdy = 0, sdyx = 0;
+    for (int64_t n = 0; n < N; n++) {
+      const float *xr = x + (n * C + c) * S, *dr = dy + (n * C + c) * S;
+      for (int64_t j = 0; j < S; j++) {
+        sdy += dr[j];
+        sdyx += (double)dr[j] * (xr[j] - mean) * inv;
+      }
+    }
+    if (dx) {
+      float mdy = batch ? (float)(sdy / (double)M) : 0.0f;
+      float mdyx = batch ? (float)(sdyx / (double)M) : 0.0f;
+      for (int64_t n = 0; n < N; n++) {
+        const float *xr = x + (n * C + c) * S, *dr = dy + (n * C + c) * S;
+        float *gr = dx + (n * C + c) * S;
+        for (int64_t j = 0; j < S; j++) gr[j] += a * (dr[j] - mdy - (xr[j] - mean) * inv * mdyx);
+      }
+    }
+    if (dscale) dscale[c] += (float)sdyx;
+    if (dbias) dbias[c] += (float)sdy;
+    if (!batch) {
+      if (dmean) dmean[c] += (float)(-sdy * a);
+      if (dvar) dvar[c] += (float)(-0.5 * sdyx * scale[c] * inv * inv);
+    }
+  }
+}
+
+/* ======================= LayerNormalization ======================= */
+typedef struct ln_params {
+  int64_t axis;
+  float epsilon;
+} ln_params;
+
+static rc_status ln_parse(rc_node *n, rc_arena *a, rc_err *e) {
+  ln_params *p = rc__arena_zalloc(a, sizeof *p);
+  if (!p) return rc__fail(e, RC_ERR_NOMEM, "node '%s' (%s): out of memory", n->label, n->op_type);
+  p->axis = rc__attr_int(n, "axis", -1);
+  p->epsilon = rc__attr_float(n, "epsilon", 1e-5f);
+  int64_t stash = rc__attr_int(n, "stash_type", 1);
+  /* stash_type 1 = float32 statistics, which is what we compute. */
+  if (stash != 1)
+    return rc__fail(e, RC_ERR_UNSUPPORTED, "node '%s' (%s): stash_type=%lld (only 1, float32, is supported)",
+                    n->label, n->op_type, (long long)stash);
+  if (!(p->epsilon >= 0))
+    return rc__fail(e, RC_ERR_INVALID, "node '%s' (%s): invalid epsilon", n->label, n->op_type);
+  n->params = p;
+  return RC_OK;
+}
+
+static int ln_axis(const rc_kernel *k) {
+  const ln_params *p = k->params;
+  return (int)(p->axis < 0 ? p->axis + k->in[0]->rank : p->axis);
+}
+
+/* Scale / B: the normalised dims X.shape[axis:] (leading 1s allowed). */
+static rc_status ln_check_param(const rc_node *n, const rc_tensor *x, int axis, const rc_tensor *t,
+                                int idx, rc_err *e) {
+  RC_TRY(rc__need_float(n, t, idx, e));
+  int ok = t->rank <= x->rank;
+  for (int d = 0; ok && d < t->rank; d++) {
+    int xd = x->rank - t->rank + d;
+    ok = xd >= axis ? t->dims[d] == x->dims[xd] : t->dims[d] == 1;
+  }
+  int64_t want = 1;
+  for (int d = axis; d < x->rank; d++) want *= x->dims[d];
+  if (!ok || rc_tensor_numel(t) != want) {
+    char sx[96], st[96];
+    return rc__fail(e, RC_ERR_SHAPE, "node '%s' (%s): %s %s does not match X %s normalised from axis %d",
+                    n->label, n->op_type, idx == 1 ? "Scale" : "B", rc_shape_str(t, st, sizeof st),
+                    rc_shape_str(x, sx, sizeof sx), axis);
+  }
+  return RC_OK;
+}
+
+/* x (d0..d[axis-1], d[axis]..d[r-1]), scale and B (d[axis]..) -> y (same as x)
+ * [, mean (d0..d[axis-1], 1..1), inv_std_dev (same)] */
+static rc_status ln_infer(const rc_node *n, const rc_tensor *const *in, rc_tensor *out, rc_err *e) {
+  RC_TRY(rc__infer_unary_float(n, in, out, e));
+  const ln_params *p = n->params;
+  int axis;
+  if (in[0]->rank == 0)
+    return rc__fail(e, RC_ERR_SHAPE, "node '%s' (%s): X is a scalar", n->label, n->op_type);
+  RC_TRY(rc__axis(n, p->axis, in[0]->rank, &axis, e));
+  if (n->n_in < 2 || !in[1])
+    return rc__fail(e, RC_ERR_INVALID, "node '%s' (%s): input Scale is required", n->label, n->op_type);
+  RC_TRY(ln_check_param(n, in[0], axis, in[1], 1, e));
+  if (n->n_in > 2 && in[2]) RC_TRY(ln_check_param(n, in[0], axis, in[2], 2, e));
+  for (int o = 1; o < n->n_out && o < 3; o++) {
+    out[o] = *in[0];
+    out[o].data = NULL;
+    for (int d = axis; d < in[0]->rank; d++) out[o].dims[d] = 1;
+  }
+  if (n->n_out > 3)
+    return rc__fail(e, RC_ERR_INVALID, "node '%s' (%s): %d outputs", n->label, n->op_type, n->n_out);
+  return RC_OK;
+}
+
+static void ln_layout(const rc_kernel *k, int64_t *rows, int64_t *len) {
+  int axis = ln_axis(k);
+  *rows = *len = 1;
+  for (int d = 0; d < k->in[0]->rank; d++) *(d < axis ? rows : len) *= k->in[0]->dims[d];
+}
+
+static size_t ln_saved(const rc_kernel *k) {
+  int64_t rows, len;
+  ln_layout(k, &rows, &len);
+  return 2 * (size_t)rows * sizeof(float);
+}
+static size_t ln_workspace(const rc_kernel *k, int backward) { return backward ? 0 : ln_saved(k); }
+
+static rc_status ln_forward(const rc_kernel *k, rc_err *e) {
+  const ln_params *p = k->params;
+  int64_t rows, len;
+  ln_layout(k, &rows, &len);
+  const float *x = k->in[0]->data, *scale = k->in[1]->data;
+  const float *bias = k->n_in > 2 && k->in[2] ? k->in[2]->data : NULL;
+  float *y = k->out[0]->data, *st = stats_buffer(k);
+  float *omean = k->n_out > 1 && k->out[1] ? k->out[1]->data : NULL;
+  float *oinv = k->n_out > 2 && k->out[2] ? k->out[2]->data : NULL;
+#pragma omp parallel for schedule(static) if (rows * len > RC__PAR_MIN)
+  for (int64_t r = 0; r < rows; r++) {
+    const float *xr = x + r * len;
+    float *yr = y + r * len;
+    float mean, inv;
+    run_stats(xr, len, p->epsilon, &mean, &inv);
+    st[r] = mean;
+    st[rows + r] = inv;
+    if (omean) omean[r] = mean;
+    if (oinv) oinv[r] = inv;
+    if (bias)
+      for (int64_t j = 0; j < len; j++) yr[j] = (xr[j] - mean) * inv * scale[j] + bias[j];
+    else
+      for (int64_t j = 0; j < len; j++) yr[j] = (xr[j] - mean) * inv * scale[j];
+  }
+  (void)e;
+  return RC_OK;
+}
+
+/* Column block for the Scale/B gradient sums: each thread owns a block of
+ * columns and walks every row in order, so sums are deterministic. */
+#define LN_COL_BLOCK 256
+
+static void ln_backward(const rc_kernel *k) {
+  if (!k->dout[0]) return; /* Mean / InvStdDev outputs carry no gradient here */
+  int64_t rows, len;
+  ln_layout(k, &rows, &len);
+  const float *x = k->in[0]->data, *scale = k->in[1]->data, *dy = k->dout[0]->data;
+  const float *st = k->saved;
+  if (k->din[0]) {
+    float *dx = k->din[0]->data;
+#pragma omp parallel for schedule(static) if (rows * len > RC__PAR_MIN)
+    for (int64_t r = 0; r < rows; r++) {
+      const float *xr = x + r * len, *dr = dy + r * len;
+      float mean = st[r], inv = st[rows + r];
+      /* g = dy * scale; dx = inv * (g - mean(g) - xhat * mean(g * xhat)) */
+      double sg = 0, sgx = 0;
+      for (int64_t j = 0; j < len; j++) {
+        float g = dr[j] * scale[j];
+        sg += g;
+        sgx += (double)g * (xr[j] - mean) * inv;
+      }
+      float mg = (float)(sg / (double)len), mgx = (float)(sgx / (double)len);
+      float *gr = dx + r * len;
+      for (int64_t j = 0; j < len; j++)
+        gr[j] += inv * (dr[j] * scale[j] - mg - (xr[j] - mean) * inv * mgx);
+    }
+  }
+  float *dscale = k->din[1] ? k->din[1]->data : NULL;
+  float *dbias = k->n_in > 2 && k->din[2] ? k->din[2]->data : NULL;
+  if (!dscale && !dbias) return;
+  int64_t nblk = (len + LN_COL_BLOCK - 1) / LN_COL_BLOCK;
+#pragma omp parallel for schedule(static) if (rows * len > RC__PAR_MIN)
+  for (int64_t b = 0; b < nblk; b++) {
+    int64_t j0 = b * LN_COL_BLOCK, nj = len - j0 < LN_COL_BLOCK ? len - j0 : LN_COL_BLOCK;
+    double ss[LN_COL_BLOCK], sb[LN_COL_BLOCK];
+    memset(ss, 0, sizeof ss);
+    memset(sb, 0, sizeof sb);
+    for (int64_t r = 0; r < rows; r++) {
+      const float *xr = x + r * len + j0, *dr = dy + r * len + j0;
+      float mean = st[r], inv = st[rows + r];
+      for (int64_t j = 0; j < nj; j++) {
+        ss[j] += (double)dr[j] * (xr[j] - mean) * inv;
+        sb[j] += dr[j];
+      }
+    }
+    for (int64_t j = 0; j < nj; j++) {
+      if (dscale) dscale[j0 + j] += (float)ss[j];
+      if (dbias) dbias[j0 + j] += (float)sb[j];
+    }
+  }
+}
+
+/* ======================= InstanceNormalization ======================= */
+static rc_status in_parse(rc_node *n, rc_arena *a, rc_err *e) {
+  float *eps = rc__arena_zalloc(a, sizeof *eps);
+  if (!eps) return rc__fail(e, RC_ERR_NOMEM, "node '%s' (%s): out of memory", n->label, n->op_type);
+  *eps = rc__attr_float(n, "epsilon", 1e-5f);
+  if (!(*eps >= 0)) return rc__fail(e, RC_ERR_INVALID, "node '%s' (%s): invalid epsilon", n->label, n->op_type);
+  n->params = eps;
+  return RC_OK;
+}
+
+/* x (N,C,D1..Dn), scale (C), B (C) -> y (N,C,D1..Dn) */
+static rc_status in_infer(const rc_node *n, const rc_tensor *const *in, rc_tensor *out, rc_err *e) {
+  RC_TRY(rc__infer_unary_float(n, in, out, e));
+  if (in[0]->rank < 3)
+    return rc__fail(e, RC_ERR_SHAPE, "node '%s' (%s): X has rank %d, expected (N, C, D1, ...)", n->label,
+                    n->op_type, in[0]->rank);
+  RC_TRY(need_param_vector(n, in, 1, in[0]->dims[1], "scale", e));
+  return need_param_vector(n, in, 2, in[0]->dims[1], "B", e);
+}
+
+static size_t in_saved(const rc_kernel *k) {
+  return 2 * (size_t)(k->in[0]->dims[0] * k->in[0]->dims[1]) * sizeof(float);
+}
+static size_t in_workspace(const rc_kernel *k, int backward) { return backward ? 0 : in_saved(k); }
+
+static rc_status in_forward(const rc_kernel *k, rc_err *e) {
+  float eps = *(const float *)k->params;
+  int64_t N, C, S;
+  bn_dims(k->in[0], &N, &C, &S);
+  const float *x = k->in[0]->data, *scale = k->in[1]->data, *bias = k->in[2]->data;
+  float *y = k->out[0]->data, *st = stats_buffer(k);
+  int64_t rows = N * C;
+#pragma omp parallel for schedule(static) if (rows * S > RC__PAR_MIN)
+  for (int64_t r = 0; r < rows; r++) {
+    int64_t c = r % C;
+    float mean, inv;
+    run_stats(x + r * S, S, eps, &mean, &inv);
+    st[r] = mean;
+    st[rows + r] = inv;
+    float a = scale[c] * inv, b = bias[c] - mean * a;
+    const float *xr = x + r * S;
+    float *yr = y + r * S;
+    for (int64_t j = 0; j < S; j++) yr[j] = xr[j] * a + b;
+  }
+  (void)e;
+  return RC_OK;
+}
+
+static void in_backward(const rc_kernel *k) {
+  if (!k->dout[0]) return;
+  int64_t N, C, S;
+  bn_dims(k->in[0], &N, &C, &S);
+  const float *x = k->in[0]->data, *scale = k->in[1]->data, *dy = k->dout[0]->data;
+  const float *st = k->saved;
+  float *dx = k->din[0] ? k->din[0]->data : NULL;
+  float *dscale = k->din[1] ? k->din[1]->data : NULL, *dbias = k->din[2] ? k->din[2]->data : NULL;
+  int64_t rows = N * C;
+  /* Parallel over channels: each owns its scale/B sums, rows in fixed order. */
+#pragma omp parallel for schedule(static) if (rows * S > RC__PAR_MIN)
+  for (int64_t c = 0; c < C; c++) {
+    double tdy = 0, tdyx = 0;
+    for (int64_t n = 0; n < N; n++) {
+      int64_t r = n * C + c;
+      double sdy, sdyx;
+      run_norm_backward(dx ? dx + r * S : NULL, x + r * S, dy + r * S, S, st[r], st[rows + r],
+                        scale[c] * st[rows + r], &sdy, &sdyx);
+      tdy += sdy;
+      tdyx += sdyx;
+    }
+    if (dscale) dscale[c] += (float)tdyx;
+    if (dbias) dbias[c] += (float)tdy;
+  }
+}
+
+/* BatchNormalization: 7-8 (spatial attribute), 9-13 (five outputs), 14+
+ * (training_mode, three outputs). InstanceNormalization unchanged from 6. */
+const rc_op_def rc__ops_norm[] = {
+    {"BatchNormalization", "", 7, 21, 0, bn_parse, bn_infer, bn_workspace, bn_saved, bn_forward, bn_backward},
+    {"LayerNormalization", "", 17, 21, 0, ln_parse, ln_infer, ln_workspace, ln_saved, ln_forward, ln_backward},
+    {"InstanceNormalization", "", 6, 21, 0, in_parse, in_infer, in_workspace, in_saved, in_forward, in_backward},
+};
+const int rc__ops_norm_count = (int)(sizeof rc__ops_norm / sizeof rc__ops_norm[0]);
