@@ -1,0 +1,58 @@
+/* Small helpers on top of op_harness.h shared by the pointwise, softmax and
+ * normalisation op tests. */
+#ifndef RC_OPS_CHECK_H
+#define RC_OPS_CHECK_H
+
+#include "op_harness.h"
+#include "test.h"
+
+/* parse + infer + forward; prints the error on failure. */
+static int run_ok(oh_case *c) {
+  rc_err e = {0};
+  rc_status s = oh_run(c, &e);
+  if (s != RC_OK) fprintf(stderr, "unexpected failure: %s\n", e.msg);
+  return s == RC_OK;
+}
+
+/* Expect oh_run to fail with `code` and a message naming the node and containing `needle`. */
+#define CHECK_REFUSED(c, code, needle)              \
+  do {                                              \
+    rc_err e_ = {0};                                \
+    CHECK_INT(oh_run((c), &e_), (code));            \
+    CHECK_STR_CONTAINS(e_.msg, (c)->node.label);    \
+    CHECK_STR_CONTAINS(e_.msg, (needle));           \
+  } while (0)
+
+/* Finite-difference check of every listed input (-1 terminated). */
+#define CHECK_GRAD(c, tol, ...)                            \
+  do {                                                     \
+    const int in_[] = {__VA_ARGS__, -1};                   \
+    double worst_ = oh_gradcheck((c), in_, 1e-3);          \
+    CHECK_NEAR(worst_, 0.0, (tol), 0.0);                   \
+  } while (0)
+
+/* Backward with d(out0) = g (NULL: all ones); gradients of the listed inputs
+ * land in c->din_t[i].data (zeroed first). */
+static void run_backward(oh_case *c, const float *g, const int *inputs) {
+  int64_t m = rc_tensor_numel(&c->out_t[0]);
+  float *w = rc__arena_alloc(&c->arena, sizeof(float) * (size_t)(m ? m : 1));
+  for (int64_t i = 0; i < m; i++) w[i] = g ? g[i] : 1.0f;
+  for (int o = 0; o < OH_MAX_IO; o++) c->dout[o] = NULL;
+  c->dout_t[0] = c->out_t[0];
+  c->dout_t[0].data = w;
+  c->dout[0] = &c->dout_t[0];
+  for (int i = 0; i < OH_MAX_IO; i++) c->din[i] = NULL;
+  for (int k = 0; inputs[k] >= 0; k++) {
+    int i = inputs[k];
+    c->din_t[i] = c->in_t[i];
+    c->din_t[i].data = rc__arena_zalloc(&c->arena, rc_tensor_nbytes(&c->in_t[i]));
+    c->din[i] = &c->din_t[i];
+  }
+  rc_node *n = &c->node;
+  rc_kernel k = {n, n->params, n->n_in, n->n_out, c->in, c->out, c->din, c->dout, c->work, c->saved,
+                 c->training};
+  n->def->backward(&k);
+}
+static const float *grad_of(oh_case *c, int i) { return (const float *)c->din_t[i].data; }
+
+#endif
