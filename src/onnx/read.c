@@ -139,8 +139,9 @@ static rc_status check_versions(builder *b, const Onnx__ModelProto *mp) {
     }
   }
   if (!found)
-    return rc__fail(b->e, RC_ERR_FORMAT, "%s: the file imports no opset for the default ONNX domain",
-                    path);
+    return rc__fail(b->e, RC_ERR_UNSUPPORTED,
+                    "%s: the file imports no opset for the default ONNX domain; recoup runs only "
+                    "default-domain graphs", path);
   if (opset < 9 || opset > 21)
     return rc__fail(b->e, RC_ERR_UNSUPPORTED,
                     "%s: default-domain opset %lld is not supported (recoup reads opsets 9 to 21)",
@@ -429,6 +430,16 @@ static rc_status add_outputs(builder *b, const Onnx__GraphProto *gp) {
   for (size_t i = 0; i < gp->n_output; i++) {
     const char *name = str_or_empty(gp->output[i]->name);
     if (!*name) return rc__fail(b->e, RC_ERR_FORMAT, "%s: graph output %zu has no name", b->m->path, i);
+    const Onnx__TypeProto *tp = gp->output[i]->type;
+    if (tp && tp->value_case != ONNX__TYPE_PROTO__VALUE_TENSOR_TYPE)
+      return rc__fail(b->e, RC_ERR_UNSUPPORTED,
+                      "%s: graph output '%s' is not a dense tensor (sequence, map, optional or "
+                      "sparse outputs are not supported)", b->m->path, name);
+    int32_t dt = tp && tp->tensor_type->has_elem_type ? tp->tensor_type->elem_type : 0;
+    if (dt && !rc__onnx_dtype_supported(dt))
+      return rc__fail(b->e, RC_ERR_UNSUPPORTED,
+                      "%s: graph output '%s' has data type %d (%s), which is not supported",
+                      b->m->path, name, (int)dt, rc__onnx_dtype_label(dt));
     RC_TRY(value_get(b, name, &b->g->outputs[i]));
   }
   b->g->n_outputs = (int)gp->n_output;

@@ -106,8 +106,10 @@ const char *rc__onnx_dtype_label(int32_t dt) {
   }
 }
 
+/* Walks backwards so that out may be packed itself: element i reads byte
+ * i/2 <= i, which no later step has overwritten yet. */
 static void unpack_4bit(uint8_t *out, const uint8_t *packed, int64_t numel, int is_signed) {
-  for (int64_t i = 0; i < numel; i++) {
+  for (int64_t i = numel; i-- > 0;) {
     uint8_t nib = (uint8_t)((packed[i / 2] >> ((i & 1) * 4)) & 0x0f);
     out[i] = is_signed ? (uint8_t)(int8_t)((int8_t)(nib << 4) >> 4) : nib;
   }
@@ -169,6 +171,11 @@ static rc_status decode_typed(const Onnx__TensorProto *t, const char *what, cons
     if (t->int32_data[i] < lo || t->int32_data[i] > hi)
       return rc__fail(e, RC_ERR_FORMAT, "%s: %s: int32_data value %d at %zu is out of range for %s",
                       file, what, (int)t->int32_data[i], i, rc_dtype_name(dt));
+  if (is_sub_byte(dt)) {
+    for (size_t i = 0; i < have; i++) dst[i] = (uint8_t)t->int32_data[i];
+    unpack_4bit(dst, dst, numel, dt == RC_DTYPE_INT4);
+    return RC_OK;
+  }
   size_t es = rc_dtype_size(dt);
   for (size_t i = 0; i < have; i++) {
     int32_t v = t->int32_data[i];
