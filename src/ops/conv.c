@@ -1,5 +1,611 @@
-/* Op family: conv. Forward and backward side by side. */
-#include "ops/op.h"
+/* Op family: conv (Conv, ConvTranspose). Forward and backward side by side.
+ *
+ * Both ops work per sample and per group through an unfolded-patch ("column")
+ * matrix: Conv unfolds its input and multiplies by the weights; ConvTranspose
+ * multiplies by the transposed weights and folds the columns back into its
+ * output. The same two helpers (unfold = im2col, fold = col2im) serve Conv's
+ * forward and input gradient and ConvTranspose's forward and input gradient,
+ * since each op is the other's adjoint. Spatial axes are canonicalised to 3
+ * (missing leading axes have size 1), so 1-D, 2-D and 3-D share one path. */
+#include <cblas.h>
+#include <string.h>
 
-const rc_op_def rc__ops_conv[] = {{0}};
-const int rc__ops_conv_count = 0;
+#include "ops/op.h"
+#include "ops/window.h"
+
+#define AX RC_WIN_MAX_AXES
+
+/* ---- window attributes (shared with pool.c through window.h) ---- */
+
+static rc_status read_axes(const rc_node *n, const char *name, int64_t *dst, int max, int *count,
+                           int64_t min_value, rc_err *e) {
+  const rc_attr *a = rc__attr_find(n, name);
+  *count = 0;
+  if (!a) return RC_OK;
+  if (a->type != RC_ATTR_INTS)
+    return rc__fail(e, RC_ERR_FORMAT, "node '%s' (%s): attribute '%s' must be a list of ints", n->label,
+                    n->op_type, name);
+  if (a->n > max)
+    return rc__fail(e, RC_ERR_UNSUPPORTED,
+                    "node '%s' (%s): attribute '%s' has %d values; at most %d are supported (up to %d "
+                    "spatial axes)", n->label, n->op_type, name, a->n, max, AX);
+  for (int i = 0; i < a->n; i++) {
+    if (a->ints[i] < min_value || a->ints[i] > ((int64_t)1 << 30))
+      return rc__fail(e, RC_ERR_INVALID, "node '%s' (%s): attribute '%s' value %lld out of range",
+                      n->label, n->op_type, name, (long long)a->ints[i]);
+    dst[i] = a->ints[i];
+  }
+  *count = a->n;
+  return RC_OK;
+}
+
+rc_status rc__window_parse(const rc_node *n, rc__window *w, int allow_dilations, rc_err *e) {
+  memset(w, 0, sizeof *w);
+  RC_TRY(read_axes(n, "kernel_shape", w->kernel, AX, &w->n_kernel, 1, e));
+  RC_TRY(read_axes(n, "strides", w->strides, AX, &w->n_strides, 1, e));
+  RC_TRY(read_axes(n, "pads", w->pads, 2 * AX, &w->n_pads, 0, e));
+  if (!allow_dilations && rc__attr_find(n, "dilations"))
+    return rc__fail(e, RC_ERR_INVALID, "node '%s' (%s): attribute 'dilations' is not defined at opset %d",
+                    n->label, n->op_type, n->opset);
+  RC_TRY(read_axes(n, "dilations", w->dilations, AX, &w->n_dilations, 1, e));
+  if (w->n_pads % 2)
+    return rc__fail(e, RC_ERR_INVALID, "node '%s' (%s): attribute 'pads' needs an even count, got %d",
+                    n->label, n->op_type, w->n_pads);
+  const char *ap = rc__attr_string(n, "auto_pad", "NOTSET");
+  if (!strcmp(ap, "NOTSET") || !*ap) w->auto_pad = RC_AUTO_PAD_NOTSET;
+  else if (!strcmp(ap, "VALID")) w->auto_pad = RC_AUTO_PAD_VALID;
+  else if (!strcmp(ap, "SAME_UPPER")) w->auto_pad = RC_AUTO_PAD_SAME_UPPER;
+  else if (!strcmp(ap, "SAME_LOWER")) w->auto_pad = RC_AUTO_PAD_SAME_LOWER;
+  else
+    return rc__fail(e, RC_ERR_INVALID, "node '%s' (%s): auto_pad '%s' is not one of NOTSET, VALID, "
+                    "SAME_UPPER, SAME_LOWER", n->label, n->op_type, ap);
+  /* The spec forbids pads together with auto_pad; all-zero pads are harmless. */
+  if (w->auto_pad != RC_AUTO_PAD_NOTSET)
+    for (int i = 0; i < w->n_pads; i++)
+      if (w->pads[i])
+        return rc__fail(e, RC_ERR_INVALID, "node '%s' (%s): 'pads' cannot be combined with auto_pad '%s'",
+                        n->label, n->op_type, ap);
+  return RC_OK;
+}
+
+static rc_status check_count(const rc_node *n, const char *name, int count, int want, rc_err *e) {
+  if (count && count != want)
+    return rc__fail(e, RC_ERR_SHAPE, "node '%s' (%s): attribute '%s' has %d values for %d spatial axes",
+                    n->label, n->op_type, name, count, want);
+  return RC_OK;
+}
+
+rc_status rc__window_resolve(const rc_node *n, const rc__window *w, int nsp, const int64_t *in,
+                             const int64_t *k, int ceil_mode, int64_t *out, int64_t *pad_begin,
+                             int64_t *pad_end, int64_t *s, int64_t *d, rc_err *e) {
+  if (nsp < 1 || nsp > AX)
+    return rc__fail(e, RC_ERR_UNSUPPORTED, "node '%s' (%s): %d spatial axes; 1 to %d are supported",
+                    n->label, n->op_type, nsp, AX);
+  RC_TRY(check_count(n, "strides", w->n_strides, nsp, e));
+  RC_TRY(check_count(n, "dilations", w->n_dilations, nsp, e));
+  RC_TRY(check_count(n, "pads", w->n_pads, 2 * nsp, e));
+  for (int i = 0; i < nsp; i++) {
+    s[i] = w->n_strides ? w->strides[i] : 1;
+    d[i] = w->n_dilations ? w->dilations[i] : 1;
+    int64_t extent = (k[i] - 1) * d[i] + 1;
+    int64_t pb = w->n_pads ? w->pads[i] : 0, pe = w->n_pads ? w->pads[nsp + i] : 0;
+    int64_t o;
+    switch (w->auto_pad) {
+      case RC_AUTO_PAD_VALID:
+        pb = pe = 0;
+        o = in[i] >= extent ? (in[i] - extent) / s[i] + 1 : 0;
+        break;
+      case RC_AUTO_PAD_SAME_UPPER:
+      case RC_AUTO_PAD_SAME_LOWER: {
+        o = (in[i] + s[i] - 1) / s[i];
+        int64_t total = (o - 1) * s[i] + extent - in[i];
+        if (total < 0) total = 0;
+        /* Odd padding: the extra cell goes at the end for SAME_UPPER. */
+        pb = w->auto_pad == RC_AUTO_PAD_SAME_UPPER ? total / 2 : total - total / 2;
+        pe = total - pb;
+        break;
+      }
+      default: {
+        int64_t span = in[i] + pb + pe - extent;
+        if (span < 0) {
+          o = 0;
+          break;
+        }
+        o = (ceil_mode ? (span + s[i] - 1) / s[i] : span / s[i]) + 1;
+        /* ceil_mode: a window starting in the end padding would see no input. */
+        if (ceil_mode && (o - 1) * s[i] >= in[i] + pb) o--;
+        break;
+      }
+    }
+    if (o <= 0)
+      return rc__fail(e, RC_ERR_SHAPE,
+                      "node '%s' (%s): spatial axis %d of size %lld is smaller than the window "
+                      "(kernel %lld, dilation %lld, pads %lld+%lld)",
+                      n->label, n->op_type, i, (long long)in[i], (long long)k[i], (long long)d[i],
+                      (long long)pb, (long long)pe);
+    out[i] = o;
+    pad_begin[i] = pb;
+    pad_end[i] = pe;
+  }
+  return RC_OK;
+}
+
+/* ---- unfold / fold ---- */
+
+/* One unfolding: an image of `channels` planes of size img[], windows of
+ * size k[] placed at positions pos[] (image cell = p*s - pad + kk*d). */
+typedef struct patch {
+  int64_t img[AX], pos[AX], k[AX], s[AX], d[AX], pad[AX];
+} patch;
+
+static int64_t prod3(const int64_t *v) { return v[0] * v[1] * v[2]; }
+
+/* Positions p in [0, npos) with 0 <= p*s + off < size, as [*lo, *hi). */
+static void valid_range(int64_t off, int64_t s, int64_t size, int64_t npos, int64_t *lo, int64_t *hi) {
+  int64_t l = off >= 0 ? 0 : (-off + s - 1) / s;
+  int64_t h = size - off <= 0 ? 0 : (size - off - 1) / s + 1;
+  if (h > npos) h = npos;
+  if (l > h) l = h;
+  *lo = l;
+  *hi = h;
+}
+
+/* col (channels*K, P) <- unfolded img (channels, img...). Rows are written
+ * independently, so they are spread over threads. */
+static void unfold(float *col, const float *img, const patch *g, int64_t channels) {
+  const int64_t K = prod3(g->k), P = prod3(g->pos), plane = prod3(g->img), rows = channels * K;
+#pragma omp parallel for schedule(static) if (rows * P > 32768)
+  for (int64_t r = 0; r < rows; r++) {
+    int64_t c = r / K, kr = r % K;
+    int64_t ka = kr / (g->k[1] * g->k[2]), kb = (kr / g->k[2]) % g->k[1], kc = kr % g->k[2];
+    int64_t off0 = ka * g->d[0] - g->pad[0], off1 = kb * g->d[1] - g->pad[1], off2 = kc * g->d[2] - g->pad[2];
+    int64_t lo0, hi0, lo1, hi1, lo2, hi2;
+    valid_range(off0, g->s[0], g->img[0], g->pos[0], &lo0, &hi0);
+    valid_range(off1, g->s[1], g->img[1], g->pos[1], &lo1, &hi1);
+    valid_range(off2, g->s[2], g->img[2], g->pos[2], &lo2, &hi2);
+    const float *src = img + c * plane;
+    float *dst = col + r * P;
+    const int64_t run = g->pos[1] * g->pos[2];
+    for (int64_t p0 = 0; p0 < g->pos[0]; p0++) {
+      float *d0 = dst + p0 * run;
+      if (p0 < lo0 || p0 >= hi0) {
+        memset(d0, 0, sizeof(float) * (size_t)run);
+        continue;
+      }
+      const float *s0 = src + (p0 * g->s[0] + off0) * g->img[1] * g->img[2];
+      for (int64_t p1 = 0; p1 < g->pos[1]; p1++) {
+        float *drow = d0 + p1 * g->pos[2];
+        if (p1 < lo1 || p1 >= hi1) {
+          memset(drow, 0, sizeof(float) * (size_t)g->pos[2]);
+          continue;
+        }
+        const float *srow = s0 + (p1 * g->s[1] + off1) * g->img[2] + off2;
+        for (int64_t p = 0; p < lo2; p++) drow[p] = 0;
+        if (g->s[2] == 1) {
+          memcpy(drow + lo2, srow + lo2, sizeof(float) * (size_t)(hi2 - lo2));
+        } else {
+          const int64_t st = g->s[2];
+          for (int64_t p = lo2; p < hi2; p++) drow[p] = srow[p * st];
+        }
+        for (int64_t p = hi2; p < g->pos[2]; p++) drow[p] = 0;
+      }
+    }
+  }
+}
+
+/* img (channels, img...) += folded col (channels*K, P): the adjoint of
+ * unfold. Rows of one channel overlap in img, so threads split channels and
+ * each channel is summed in a fixed order (deterministic). */
+static void fold_add(float *img, const float *col, const patch *g, int64_t channels) {
+  const int64_t K = prod3(g->k), P = prod3(g->pos), plane = prod3(g->img);
+#pragma omp parallel for schedule(static) if (channels * K * P > 32768)
+  for (int64_t c = 0; c < channels; c++) {
+    float *dstc = img + c * plane;
+    for (int64_t kr = 0; kr < K; kr++) {
+      int64_t ka = kr / (g->k[1] * g->k[2]), kb = (kr / g->k[2]) % g->k[1], kc = kr % g->k[2];
+      int64_t off0 = ka * g->d[0] - g->pad[0], off1 = kb * g->d[1] - g->pad[1],
+              off2 = kc * g->d[2] - g->pad[2];
+      int64_t lo0, hi0, lo1, hi1, lo2, hi2;
+      valid_range(off0, g->s[0], g->img[0], g->pos[0], &lo0, &hi0);
+      valid_range(off1, g->s[1], g->img[1], g->pos[1], &lo1, &hi1);
+      valid_range(off2, g->s[2], g->img[2], g->pos[2], &lo2, &hi2);
+      const float *src = col + (c * K + kr) * P;
+      for (int64_t p0 = lo0; p0 < hi0; p0++) {
+        float *d0 = dstc + (p0 * g->s[0] + off0) * g->img[1] * g->img[2];
+        for (int64_t p1 = lo1; p1 < hi1; p1++) {
+          float *drow = d0 + (p1 * g->s[1] + off1) * g->img[2] + off2;
+          const float *srow = src + (p0 * g->pos[1] + p1) * g->pos[2];
+          const int64_t st = g->s[2];
+          for (int64_t p = lo2; p < hi2; p++) drow[p * st] += srow[p];
+        }
+      }
+    }
+  }
+}
+
+/* ---- Conv / ConvTranspose geometry ---- */
+
+typedef struct conv_params {
+  rc__window w;
+  int64_t group;
+  int transpose;
+  int n_out_pad, n_out_shape;
+  int64_t out_pad[AX], out_shape[AX];
+} conv_params;
+
+/* Everything a kernel needs, resolved from the input shapes. For Conv the
+ * unfolded image is x and positions are y's cells; for ConvTranspose the
+ * image is y and positions are x's cells. */
+typedef struct conv_geom {
+  int nsp;
+  int64_t N, C, M, G;   /* batch, input channels, output channels, groups */
+  int64_t Cg, Mg, K;    /* channels per group, kernel cells */
+  int64_t in_sp, out_sp; /* spatial cells of x and y */
+  int64_t out[AX];      /* y spatial dims (canonical) */
+  patch p;
+  int direct;           /* 1x1, stride 1, no padding: the column matrix is x itself */
+} conv_geom;
+
+static rc_status conv_parse(rc_node *n, rc_arena *a, rc_err *e) {
+  conv_params *p = rc__arena_zalloc(a, sizeof *p);
+  if (!p) return rc__fail(e, RC_ERR_NOMEM, "node '%s' (%s): out of memory", n->label, n->op_type);
+  p->transpose = !strcmp(n->op_type, "ConvTranspose");
+  RC_TRY(rc__window_parse(n, &p->w, 1, e));
+  p->group = rc__attr_int(n, "group", 1);
+  if (p->group < 1 || p->group > ((int64_t)1 << 30))
+    return rc__fail(e, RC_ERR_INVALID, "node '%s' (%s): group %lld must be positive", n->label,
+                    n->op_type, (long long)p->group);
+  if (p->transpose) {
+    RC_TRY(read_axes(n, "output_padding", p->out_pad, AX, &p->n_out_pad, 0, e));
+    const rc_attr *os = rc__attr_find(n, "output_shape");
+    if (os) {
+      /* Some exporters write the full (N, C, spatial...) shape. */
+      int skip = os->type == RC_ATTR_INTS && os->n > AX ? 2 : 0;
+      if (os->type != RC_ATTR_INTS || os->n - skip > AX || os->n - skip < 1)
+        return rc__fail(e, RC_ERR_UNSUPPORTED, "node '%s' (%s): attribute 'output_shape' must list "
+                        "1 to %d spatial sizes", n->label, n->op_type, AX);
+      for (int i = skip; i < os->n; i++) {
+        if (os->ints[i] < 1 || os->ints[i] > ((int64_t)1 << 30))
+          return rc__fail(e, RC_ERR_INVALID, "node '%s' (%s): output_shape value %lld out of range",
+                          n->label, n->op_type, (long long)os->ints[i]);
+        p->out_shape[i - skip] = os->ints[i];
+      }
+      p->n_out_shape = os->n - skip;
+    }
+  }
+  n->params = p;
+  return RC_OK;
+}
+
+static rc_status need_float(const rc_node *n, const rc_tensor *t, const char *what, rc_err *e) {
+  if (t->dtype != RC_DTYPE_FLOAT)
+    return rc__fail(e, RC_ERR_UNSUPPORTED, "node '%s' (%s): input %s has dtype %s; only float is supported",
+                    n->label, n->op_type, what, rc_dtype_name(t->dtype));
+  return RC_OK;
+}
+
+/* ConvTranspose pads and output sizes, following the spec's equations. */
+static rc_status transpose_resolve(const rc_node *n, const conv_params *cp, int nsp, const int64_t *in,
+                                   const int64_t *k, int64_t *out, int64_t *pb, int64_t *s, int64_t *d,
+                                   rc_err *e) {
+  const rc__window *w = &cp->w;
+  RC_TRY(check_count(n, "strides", w->n_strides, nsp, e));
+  RC_TRY(check_count(n, "dilations", w->n_dilations, nsp, e));
+  RC_TRY(check_count(n, "pads", w->n_pads, 2 * nsp, e));
+  RC_TRY(check_count(n, "output_padding", cp->n_out_pad, nsp, e));
+  RC_TRY(check_count(n, "output_shape", cp->n_out_shape, nsp, e));
+  for (int i = 0; i < nsp; i++) {
+    s[i] = w->n_strides ? w->strides[i] : 1;
+    d[i] = w->n_dilations ? w->dilations[i] : 1;
+    int64_t op = cp->n_out_pad ? cp->out_pad[i] : 0;
+    if (op && op >= s[i] && op >= d[i])
+      return rc__fail(e, RC_ERR_INVALID, "node '%s' (%s): output_padding %lld must be less than the "
+                      "stride or the dilation of axis %d", n->label, n->op_type, (long long)op, i);
+    int64_t full = s[i] * (in[i] - 1) + op + (k[i] - 1) * d[i] + 1;
+    int64_t o, begin;
+    if (cp->n_out_shape || w->auto_pad == RC_AUTO_PAD_SAME_UPPER || w->auto_pad == RC_AUTO_PAD_SAME_LOWER) {
+      o = cp->n_out_shape ? cp->out_shape[i] : in[i] * s[i];
+      int64_t total = full - o;
+      /* Where the odd cell of padding goes changed at opset 11. */
+      int small_begin = w->auto_pad == RC_AUTO_PAD_SAME_UPPER;
+      if (cp->n_out_shape && n->opset < 11) small_begin = !small_begin;
+      /* An output larger than the natural one (negative total) gets its
+       * extra cells at the end, as output_padding would give them. */
+      begin = total <= 0 ? 0 : small_begin ? total / 2 : total - total / 2;
+    } else if (w->auto_pad == RC_AUTO_PAD_VALID) {
+      o = full;
+      begin = 0;
+    } else {
+      begin = w->n_pads ? w->pads[i] : 0;
+      o = full - begin - (w->n_pads ? w->pads[nsp + i] : 0);
+    }
+    if (o <= 0)
+      return rc__fail(e, RC_ERR_SHAPE, "node '%s' (%s): spatial axis %d would have size %lld", n->label,
+                      n->op_type, i, (long long)o);
+    out[i] = o;
+    pb[i] = begin;
+  }
+  return RC_OK;
+}
+
+static rc_status conv_geometry(const rc_node *n, const conv_params *cp, const rc_tensor *x,
+                               const rc_tensor *w, const rc_tensor *b, conv_geom *g, rc_err *e) {
+  memset(g, 0, sizeof *g);
+  RC_TRY(need_float(n, x, "X", e));
+  RC_TRY(need_float(n, w, "W", e));
+  if (b) RC_TRY(need_float(n, b, "B", e));
+  if (x->rank < 3 || x->rank > 2 + AX)
+    return rc__fail(e, RC_ERR_UNSUPPORTED, "node '%s' (%s): input X has rank %d; ranks 3 to %d are supported",
+                    n->label, n->op_type, x->rank, 2 + AX);
+  if (w->rank != x->rank)
+    return rc__fail(e, RC_ERR_SHAPE, "node '%s' (%s): W has rank %d but X has rank %d", n->label,
+                    n->op_type, w->rank, x->rank);
+  int nsp = x->rank - 2;
+  g->nsp = nsp;
+  g->N = x->dims[0];
+  g->C = x->dims[1];
+  g->G = cp->group;
+  int64_t k[AX];
+  for (int i = 0; i < nsp; i++) {
+    k[i] = w->dims[2 + i];
+    if (k[i] < 1)
+      return rc__fail(e, RC_ERR_SHAPE, "node '%s' (%s): W has an empty kernel axis", n->label, n->op_type);
+    if (cp->w.n_kernel && (cp->w.n_kernel != nsp || cp->w.kernel[i] != k[i]))
+      return rc__fail(e, RC_ERR_SHAPE, "node '%s' (%s): kernel_shape does not match W's spatial dims",
+                      n->label, n->op_type);
+  }
+  if (g->C % g->G)
+    return rc__fail(e, RC_ERR_SHAPE, "node '%s' (%s): %lld input channels do not divide into %lld groups",
+                    n->label, n->op_type, (long long)g->C, (long long)g->G);
+  g->Cg = g->C / g->G;
+  if (!cp->transpose) {
+    if (w->dims[1] != g->Cg)
+      return rc__fail(e, RC_ERR_SHAPE, "node '%s' (%s): W has %lld input channels per group, X gives %lld",
+                      n->label, n->op_type, (long long)w->dims[1], (long long)g->Cg);
+    g->M = w->dims[0];
+    if (g->M % g->G)
+      return rc__fail(e, RC_ERR_SHAPE, "node '%s' (%s): %lld output channels do not divide into %lld groups",
+                      n->label, n->op_type, (long long)g->M, (long long)g->G);
+    g->Mg = g->M / g->G;
+  } else {
+    if (w->dims[0] != g->C)
+      return rc__fail(e, RC_ERR_SHAPE, "node '%s' (%s): W has %lld input channels, X has %lld", n->label,
+                      n->op_type, (long long)w->dims[0], (long long)g->C);
+    g->Mg = w->dims[1];
+    g->M = g->Mg * g->G;
+  }
+  if (b && (b->rank != 1 || b->dims[0] != g->M))
+    return rc__fail(e, RC_ERR_SHAPE, "node '%s' (%s): B must have shape (%lld)", n->label, n->op_type,
+                    (long long)g->M);
+  int64_t in[AX], out[AX], pb[AX], pe[AX], s[AX], d[AX];
+  for (int i = 0; i < nsp; i++) in[i] = x->dims[2 + i];
+  if (!cp->transpose)
+    RC_TRY(rc__window_resolve(n, &cp->w, nsp, in, k, 0, out, pb, pe, s, d, e));
+  else
+    RC_TRY(transpose_resolve(n, cp, nsp, in, k, out, pb, s, d, e));
+  /* Canonical 3 axes: leading axes of size 1. */
+  patch *p = &g->p;
+  int64_t cin[AX], cout[AX];
+  for (int j = 0; j < AX; j++) {
+    int i = j - (AX - nsp);
+    cin[j] = i >= 0 ? in[i] : 1;
+    cout[j] = i >= 0 ? out[i] : 1;
+    p->k[j] = i >= 0 ? k[i] : 1;
+    p->s[j] = i >= 0 ? s[i] : 1;
+    p->d[j] = i >= 0 ? d[i] : 1;
+    p->pad[j] = i >= 0 ? pb[i] : 0;
+    g->out[j] = cout[j];
+  }
+  for (int j = 0; j < AX; j++) {
+    p->img[j] = cp->transpose ? cout[j] : cin[j];
+    p->pos[j] = cp->transpose ? cin[j] : cout[j];
+  }
+  g->K = prod3(p->k);
+  g->in_sp = prod3(cin);
+  g->out_sp = prod3(cout);
+  g->direct = g->K == 1 && prod3(p->s) == 1 && !p->pad[0] && !p->pad[1] && !p->pad[2] &&
+              g->in_sp == g->out_sp;
+  /* The column matrix of one group must stay addressable. */
+  int64_t rows = (cp->transpose ? g->Mg : g->Cg) * g->K;
+  if (rows > 0 && prod3(p->pos) > RC_MAX_ELEMENTS / rows)
+    return rc__fail(e, RC_ERR_LIMIT, "node '%s' (%s): unfolded patch matrix too large", n->label, n->op_type);
+  return RC_OK;
+}
+
+static rc_status conv_infer(const rc_node *n, const rc_tensor *const *in, rc_tensor *out, rc_err *e) {
+  if (n->n_in < 2 || !in[0] || !in[1])
+    return rc__fail(e, RC_ERR_INVALID, "node '%s' (%s): inputs X and W are required", n->label, n->op_type);
+  conv_geom g;
+  RC_TRY(conv_geometry(n, n->params, in[0], in[1], n->n_in > 2 ? in[2] : NULL, &g, e));
+  out[0].dtype = RC_DTYPE_FLOAT;
+  out[0].rank = in[0]->rank;
+  out[0].dims[0] = g.N;
+  out[0].dims[1] = g.M;
+  for (int i = 0; i < g.nsp; i++) out[0].dims[2 + i] = g.out[AX - g.nsp + i];
+  return rc__check_shape(n, &out[0], e);
+}
+
+static const rc_tensor *opt_in(const rc_kernel *k, int i) { return i < k->n_in ? k->in[i] : NULL; }
+
+static void geometry_of(const rc_kernel *k, conv_geom *g) {
+  rc_err e;
+  /* Validated by infer for these very shapes; cannot fail here. */
+  conv_geometry(k->node, k->params, k->in[0], k->in[1], opt_in(k, 2), g, &e);
+}
+
+static size_t conv_workspace(const rc_kernel *k, int backward) {
+  conv_geom g;
+  geometry_of(k, &g);
+  if (g.direct) return 0;
+  const conv_params *cp = k->params;
+  int64_t rows = (cp->transpose ? g.Mg : g.Cg) * g.K;
+  return sizeof(float) * (size_t)rows * (size_t)prod3(g.p.pos);
+}
+
+/* Set each of the `channels` rows of y (length len) to its bias, or to zero. */
+static void fill_bias(float *y, const float *b, int64_t channels, int64_t len) {
+  for (int64_t c = 0; c < channels; c++) {
+    float v = b ? b[c] : 0.0f;
+    float *row = y + c * len;
+    for (int64_t i = 0; i < len; i++) row[i] = v;
+  }
+}
+
+/* db (M) += sum of dy (N, M, len) over batch and space. */
+static void bias_grad(float *db, const float *dy, int64_t N, int64_t M, int64_t len) {
+#pragma omp parallel for schedule(static) if (N * M * len > 32768)
+  for (int64_t m = 0; m < M; m++) {
+    double acc = 0;
+    for (int64_t nn = 0; nn < N; nn++) {
+      const float *row = dy + (nn * M + m) * len;
+      float part = 0;
+      for (int64_t i = 0; i < len; i++) part += row[i];
+      acc += part;
+    }
+    db[m] += (float)acc;
+  }
+}
+
+/* x (N,C,D...), W (M,C/G,k...), B (M) -> y (N,M,O...).
+ * Per sample and group: y_g (Mg, P) = W_g (Mg, Cg*K) . col (Cg*K, P). */
+static rc_status conv_forward(const rc_kernel *k, rc_err *e) {
+  conv_geom g;
+  geometry_of(k, &g);
+  const float *x = k->in[0]->data, *w = k->in[1]->data;
+  const rc_tensor *bt = opt_in(k, 2);
+  const float *b = bt ? bt->data : NULL;
+  float *y = k->out[0]->data, *col = k->work;
+  const int64_t CgK = g.Cg * g.K, P = g.out_sp;
+  if (!g.N || !g.M || !P) return RC_OK;
+  for (int64_t n = 0; n < g.N; n++)
+    for (int64_t grp = 0; grp < g.G; grp++) {
+      const float *xg = x + (n * g.C + grp * g.Cg) * g.in_sp;
+      float *yg = y + (n * g.M + grp * g.Mg) * P;
+      fill_bias(yg, b ? b + grp * g.Mg : NULL, g.Mg, P);
+      if (!CgK) continue;
+      const float *cm = xg;
+      if (!g.direct) {
+        unfold(col, xg, &g.p, g.Cg);
+        cm = col;
+      }
+      cblas_sgemm(CblasRowMajor, CblasNoTrans, CblasNoTrans, (int)g.Mg, (int)P, (int)CgK, 1.0f,
+                  w + grp * g.Mg * CgK, (int)CgK, cm, (int)P, 1.0f, yg, (int)P);
+    }
+  return RC_OK;
+}
+
+static void conv_backward(const rc_kernel *k) {
+  const rc_tensor *dyt = k->dout[0];
+  if (!dyt) return;
+  conv_geom g;
+  geometry_of(k, &g);
+  const float *x = k->in[0]->data, *w = k->in[1]->data, *dy = dyt->data;
+  float *dx = k->din[0] ? k->din[0]->data : NULL;
+  float *dw = k->din[1] ? k->din[1]->data : NULL;
+  float *db = k->n_in > 2 && k->in[2] && k->din[2] ? k->din[2]->data : NULL;
+  float *col = k->work;
+  const int64_t CgK = g.Cg * g.K, P = g.out_sp;
+  if (!g.N || !g.M || !P) return;
+  if (db) bias_grad(db, dy, g.N, g.M, P);
+  if (!CgK || (!dx && !dw)) return;
+  for (int64_t n = 0; n < g.N; n++)
+    for (int64_t grp = 0; grp < g.G; grp++) {
+      const float *xg = x + (n * g.C + grp * g.Cg) * g.in_sp;
+      const float *dyg = dy + (n * g.M + grp * g.Mg) * P;
+      const float *wg = w + grp * g.Mg * CgK;
+      if (dw) {
+        const float *cm = xg;
+        if (!g.direct) {
+          unfold(col, xg, &g.p, g.Cg);
+          cm = col;
+        }
+        /* dW_g (Mg, CgK) += dy_g (Mg, P) . col^T */
+        cblas_sgemm(CblasRowMajor, CblasNoTrans, CblasTrans, (int)g.Mg, (int)CgK, (int)P, 1.0f, dyg,
+                    (int)P, cm, (int)P, 1.0f, dw + grp * g.Mg * CgK, (int)CgK);
+      }
+      if (dx) {
+        float *dxg = dx + (n * g.C + grp * g.Cg) * g.in_sp;
+        /* dcol (CgK, P) = W_g^T . dy_g, folded back onto dx */
+        if (g.direct) {
+          cblas_sgemm(CblasRowMajor, CblasTrans, CblasNoTrans, (int)g.Cg, (int)P, (int)g.Mg, 1.0f, wg,
+                      (int)CgK, dyg, (int)P, 1.0f, dxg, (int)P);
+        } else {
+          cblas_sgemm(CblasRowMajor, CblasTrans, CblasNoTrans, (int)CgK, (int)P, (int)g.Mg, 1.0f, wg,
+                      (int)CgK, dyg, (int)P, 0.0f, col, (int)P);
+          fold_add(dxg, col, &g.p, g.Cg);
+        }
+      }
+    }
+}
+
+/* x (N,C,D...), W (C,M/G,k...), B (M) -> y (N,M,O...).
+ * Per sample and group: col (Mg*K, D) = W_g^T . x_g (Cg, D), folded onto y_g. */
+static rc_status convt_forward(const rc_kernel *k, rc_err *e) {
+  conv_geom g;
+  geometry_of(k, &g);
+  const float *x = k->in[0]->data, *w = k->in[1]->data;
+  const rc_tensor *bt = opt_in(k, 2);
+  const float *b = bt ? bt->data : NULL;
+  float *y = k->out[0]->data, *col = k->work;
+  const int64_t MgK = g.Mg * g.K, D = g.in_sp, P = g.out_sp;
+  if (!g.N || !g.M || !P) return RC_OK;
+  for (int64_t n = 0; n < g.N; n++)
+    for (int64_t grp = 0; grp < g.G; grp++) {
+      const float *xg = x + (n * g.C + grp * g.Cg) * D;
+      const float *wg = w + grp * g.Cg * MgK;
+      float *yg = y + (n * g.M + grp * g.Mg) * P;
+      fill_bias(yg, b ? b + grp * g.Mg : NULL, g.Mg, P);
+      if (!g.Cg || !D) continue;
+      if (g.direct) {
+        cblas_sgemm(CblasRowMajor, CblasTrans, CblasNoTrans, (int)g.Mg, (int)D, (int)g.Cg, 1.0f, wg,
+                    (int)MgK, xg, (int)D, 1.0f, yg, (int)D);
+      } else {
+        cblas_sgemm(CblasRowMajor, CblasTrans, CblasNoTrans, (int)MgK, (int)D, (int)g.Cg, 1.0f, wg,
+                    (int)MgK, xg, (int)D, 0.0f, col, (int)D);
+        fold_add(yg, col, &g.p, g.Mg);
+      }
+    }
+  return RC_OK;
+}
+
+static void convt_backward(const rc_kernel *k) {
+  const rc_tensor *dyt = k->dout[0];
+  if (!dyt) return;
+  conv_geom g;
+  geometry_of(k, &g);
+  const float *x = k->in[0]->data, *w = k->in[1]->data, *dy = dyt->data;
+  float *dx = k->din[0] ? k->din[0]->data : NULL;
+  float *dw = k->din[1] ? k->din[1]->data : NULL;
+  float *db = k->n_in > 2 && k->in[2] && k->din[2] ? k->din[2]->data : NULL;
+  float *col = k->work;
+  const int64_t MgK = g.Mg * g.K, D = g.in_sp, P = g.out_sp;
+  if (!g.N || !g.M || !P) return;
+  if (db) bias_grad(db, dy, g.N, g.M, P);
+  if (!g.Cg || !D || (!dx && !dw)) return;
+  for (int64_t n = 0; n < g.N; n++)
+    for (int64_t grp = 0; grp < g.G; grp++) {
+      const float *dyg = dy + (n * g.M + grp * g.Mg) * P;
+      const float *cm = dyg;
+      if (!g.direct) {
+        unfold(col, dyg, &g.p, g.Mg);
+        cm = col;
+      }
+      /* dx_g (Cg, D) += W_g (Cg, MgK) . col (MgK, D) */
+      if (dx)
+        cblas_sgemm(CblasRowMajor, CblasNoTrans, CblasNoTrans, (int)g.Cg, (int)D, (int)MgK, 1.0f,
+                    w + grp * g.Cg * MgK, (int)MgK, cm, (int)D, 1.0f, dx + (n * g.C + grp * g.Cg) * D,
+                    (int)D);
+      /* dW_g (Cg, MgK) += x_g (Cg, D) . col^T */
+      if (dw)
+        cblas_sgemm(CblasRowMajor, CblasNoTrans, CblasTrans, (int)g.Cg, (int)MgK, (int)D, 1.0f,
+                    x + (n * g.C + grp * g.Cg) * D, (int)D, cm, (int)D, 1.0f, dw + grp * g.Cg * MgK,
+                    (int)MgK);
+    }
+}
+
+const rc_op_def rc__ops_conv[] = {
+    {"Conv", "", 1, 21, 0, conv_parse, conv_infer, conv_workspace, NULL, conv_forward, conv_backward},
+    {"ConvTranspose", "", 1, 21, 0, conv_parse, conv_infer, conv_workspace, NULL, convt_forward,
+     convt_backward},
+};
+const int rc__ops_conv_count = (int)(sizeof rc__ops_conv / sizeof rc__ops_conv[0]);
