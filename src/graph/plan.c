@@ -404,6 +404,13 @@ rc_tensor *rc_plan_grad(rc_plan *p, int value) {
   return &p->grad[value];
 }
 
+rc_status rc_plan_bind_grad(rc_plan *p, int value, float *buf, rc_err *e) {
+  if (value < 0 || value >= p->g->n_values || !p->needs_grad[value])
+    return rc__fail(e, RC_ERR_INVALID, "%s: value %d has no gradient in this plan", p->g->path, value);
+  p->grad[value].data = buf;
+  return RC_OK;
+}
+
 int rc_plan_is_const(const rc_plan *p, int value) {
   return value >= 0 && value < p->g->n_values && p->is_const[value];
 }

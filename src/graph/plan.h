@@ -40,6 +40,9 @@ void rc_plan_free(rc_plan *p);
 rc_tensor *rc_plan_tensor(rc_plan *p, int value);
 /* Gradient of a value (training plans), or NULL where none is tracked. */
 rc_tensor *rc_plan_grad(rc_plan *p, int value);
+/* Make the gradient of a value (a trainable initializer) accumulate into buf,
+ * e.g. the parameter store's gradient block; the caller zeroes it. */
+rc_status rc_plan_bind_grad(rc_plan *p, int value, float *buf, rc_err *e);
 /* 1 if the value is a constant known at plan time (folded). */
 int rc_plan_is_const(const rc_plan *p, int value);
 

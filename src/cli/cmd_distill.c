@@ -1,0 +1,513 @@
+/* recoup distill: fine-tune the compressed copy against the dense model. */
+#define _DEFAULT_SOURCE /* realpath */
+#include <cJSON.h>
+#include <getopt.h>
+#include <libgen.h>
+#include <limits.h>
+#include <stdlib.h>
+#include <string.h>
+#include <sys/stat.h>
+#include <unistd.h>
+
+#include "cli/cli.h"
+#include "cli/cli_data.h"
+#include "onnx/model.h"
+#include "train/distill.h"
+
+#define MAX_GLOBS 32
+
+static void usage(FILE *f) {
+  fprintf(f,
+      "Usage: recoup distill --teacher DENSE.onnx --student COMPRESSED.onnx --data X\n"
+      "                      --out RECOVERED.onnx [OPTIONS]\n"
+      "\n"
+      "Fine-tune a pruned (or otherwise compressed) model on CPU so that its outputs\n"
+      "match the dense model's (knowledge distillation). Weights that are exactly zero\n"
+      "in the student stay exactly zero. Labels are optional: the teacher's outputs\n"
+      "are the target; labels, when given, add a cross-entropy term.\n"
+      "\n"
+      "Data:\n"
+      "  --data FILE|NAME=FILE    training samples (.npy, .npz, IDX, .gz, .pb); repeatable\n"
+      "  --labels FILE            class labels of --data (optional)\n"
+      "  --val-data FILE|NAME=FILE  validation samples (default: hold out --val-split)\n"
+      "  --val-labels FILE        labels of --val-data\n"
+      "  --val-split F            fraction of --data held out for validation (default 0.1)\n"
+      "  --scale S, --mean M[,..], --std D[,..]   x' = (x*S - M) / D, as for eval\n"
+      "\n"
+      "Training (defaults chosen for recovery fine-tuning from a good start):\n"
+      "  --epochs E               passes over the training samples (default 3)\n"
+      "  --steps N                optimizer steps instead of epochs\n"
+      "  --batch B                samples per step (default 64)\n"
+      "  --optimizer adamw|sgd    (default adamw)\n"
+      "  --lr R                   peak learning rate (default 5e-4 adamw, 0.01 sgd)\n"
+      "  --schedule cosine|step|constant  (default cosine, linear warm-up over 3%%)\n"
+      "  --warmup N               warm-up steps (overrides the 3%% default)\n"
+      "  --step-size N            steps between decays for --schedule step (default: an epoch)\n"
+      "  --gamma G                decay factor for --schedule step (default 0.1)\n"
+      "  --weight-decay W         (default 0 adamw, 1e-4 sgd; never on pruned entries\n"
+      "                           or normalisation parameters)\n"
+      "  --momentum M             SGD momentum (default 0.9, Nesterov)\n"
+      "  --no-nesterov            plain momentum for SGD\n"
+      "  --clip N                 clip the global gradient norm at N (default 5; 0 = off)\n"
+      "  --loss kd|logit-mse      distillation term (default kd)\n"
+      "  --temperature T          kd temperature (default 4)\n"
+      "  --alpha A                weight of the distillation term against cross-entropy\n"
+      "                           (default 0.9 with labels, 1 without)\n"
+      "  --bn frozen|recalibrate|train  BatchNormalization statistics (default frozen)\n"
+      "  --train PATTERN          also train float initializers matching this glob\n"
+      "  --freeze PATTERN         do not train initializers matching this glob\n"
+      "  --seed S                 data order and split (default 1); same seed and\n"
+      "                           threads give a byte-identical output file\n"
+      "  --threads N              compute threads (default: all cores)\n"
+      "\n"
+      "Output:\n"
+      "  --out FILE               the recovered model (never one of the inputs)\n"
+      "  --json                   print the before/after results as JSON on stdout\n"
+      "  -h, --help               show this help\n"
+      "\n"
+      "The best state by validation (accuracy with labels, else agreement with the\n"
+      "teacher) is written. Validate the recovered model on your own held-out data\n"
+      "before deploying it: the figures hold only for the samples measured.\n");
+}
+
+typedef struct distill_args {
+  const char *teacher, *student, *out, *val_labels;
+  cli_data_opts data;
+  const char *val_data[CLI_MAX_DATA];
+  int n_val_data;
+  double val_split;
+  const char *train[MAX_GLOBS], *freeze[MAX_GLOBS];
+  int n_train, n_freeze;
+  long threads;
+  int json;
+  int lr_set, wd_set;
+  rc_distill_config cfg;
+} distill_args;
+
+enum {
+  OPT_TEACHER = 256, OPT_STUDENT, OPT_DATA, OPT_LABELS, OPT_VAL_DATA, OPT_VAL_LABELS, OPT_VAL_SPLIT,
+  OPT_SCALE, OPT_MEAN, OPT_STD, OPT_EPOCHS, OPT_STEPS, OPT_BATCH, OPT_OPTIMIZER, OPT_LR, OPT_SCHEDULE,
+  OPT_WARMUP, OPT_STEP_SIZE, OPT_GAMMA, OPT_WD, OPT_MOMENTUM, OPT_NO_NESTEROV, OPT_CLIP, OPT_LOSS,
+  OPT_TEMPERATURE, OPT_ALPHA, OPT_BN, OPT_TRAIN, OPT_FREEZE, OPT_SEED, OPT_THREADS, OPT_OUT, OPT_JSON
+};
+
+static int number(const char *opt, const char *v, double lo, double hi, double *out) {
+  if (cli_parse_float(v, out) || *out < lo || *out > hi)
+    return cli_usage_error("distill", "--%s expects a number in [%g, %g], got '%s'", opt, lo, hi, v);
+  return 0;
+}
+
+static int integer(const char *opt, const char *v, long lo, long hi, long *out) {
+  if (cli_parse_int(v, lo, hi, out))
+    return cli_usage_error("distill", "--%s expects an integer in [%ld, %ld], got '%s'", opt, lo, hi, v);
+  return 0;
+}
+
+static int choice(const char *opt, const char *v, const char *const *names, int n, int *out) {
+  for (int i = 0; i < n; i++)
+    if (!strcmp(v, names[i])) {
+      *out = i;
+      return 0;
+    }
+  return cli_usage_error("distill", "--%s: unknown value '%s'", opt, v);
+}
+
+static int apply_option(distill_args *a, int c, const char *v) {
+  rc_distill_config *cfg = &a->cfg;
+  double d;
+  long l;
+  int k = 0;
+  switch (c) {
+    case OPT_TEACHER: a->teacher = v; return 0;
+    case OPT_STUDENT: a->student = v; return 0;
+    case OPT_OUT: a->out = v; return 0;
+    case OPT_DATA:
+      if (a->data.n_data == CLI_MAX_DATA) return cli_usage_error("distill", "too many --data");
+      a->data.data[a->data.n_data++] = v;
+      return 0;
+    case OPT_LABELS: a->data.labels = v; return 0;
+    case OPT_VAL_DATA:
+      if (a->n_val_data == CLI_MAX_DATA) return cli_usage_error("distill", "too many --val-data");
+      a->val_data[a->n_val_data++] = v;
+      return 0;
+    case OPT_VAL_LABELS: a->val_labels = v; return 0;
+    case OPT_VAL_SPLIT:
+      if (number("val-split", v, 1e-6, 0.9, &d)) return RC_EXIT_USAGE;
+      a->val_split = d;
+      return 0;
+    case OPT_SCALE: return cli_data_option(&a->data, "distill", "scale", v);
+    case OPT_MEAN: return cli_data_option(&a->data, "distill", "mean", v);
+    case OPT_STD: return cli_data_option(&a->data, "distill", "std", v);
+    case OPT_EPOCHS:
+      if (integer("epochs", v, 1, 1000000, &l)) return RC_EXIT_USAGE;
+      cfg->epochs = l;
+      return 0;
+    case OPT_STEPS:
+      if (integer("steps", v, 1, LONG_MAX, &l)) return RC_EXIT_USAGE;
+      cfg->steps = l;
+      return 0;
+    case OPT_BATCH:
+      if (integer("batch", v, 1, 1 << 16, &l)) return RC_EXIT_USAGE;
+      cfg->batch = l;
+      return 0;
+    case OPT_OPTIMIZER: {
+      static const char *const names[] = {"sgd", "adamw"};
+      if (choice("optimizer", v, names, 2, &k)) return RC_EXIT_USAGE;
+      rc_optim_config keep = cfg->optim;
+      rc_optim_defaults(&cfg->optim, k == 0 ? RC_OPTIM_SGD : RC_OPTIM_ADAMW);
+      if (a->lr_set) cfg->optim.lr = keep.lr;
+      if (a->wd_set) cfg->optim.weight_decay = keep.weight_decay;
+      return 0;
+    }
+    case OPT_LR:
+      if (number("lr", v, 1e-12, 10, &d)) return RC_EXIT_USAGE;
+      cfg->optim.lr = (float)d;
+      a->lr_set = 1;
+      return 0;
+    case OPT_SCHEDULE: {
+      static const char *const names[] = {"constant", "step", "cosine"};
+      if (choice("schedule", v, names, 3, &k)) return RC_EXIT_USAGE;
+      cfg->sched.kind = k == 0 ? RC_SCHED_CONSTANT : k == 1 ? RC_SCHED_STEP : RC_SCHED_COSINE;
+      return 0;
+    }
+    case OPT_WARMUP:
+      if (integer("warmup", v, 0, LONG_MAX, &l)) return RC_EXIT_USAGE;
+      cfg->sched.warmup = l;
+      return 0;
+    case OPT_STEP_SIZE:
+      if (integer("step-size", v, 1, LONG_MAX, &l)) return RC_EXIT_USAGE;
+      cfg->sched.step_size = l;
+      return 0;
+    case OPT_GAMMA:
+      if (number("gamma", v, 1e-9, 1, &d)) return RC_EXIT_USAGE;
+      cfg->sched.gamma = (float)d;
+      return 0;
+    case OPT_WD:
+      if (number("weight-decay", v, 0, 1, &d)) return RC_EXIT_USAGE;
+      cfg->optim.weight_decay = (float)d;
+      a->wd_set = 1;
+      return 0;
+    case OPT_MOMENTUM:
+      if (number("momentum", v, 0, 0.9999, &d)) return RC_EXIT_USAGE;
+      cfg->optim.momentum = (float)d;
+      return 0;
+    case OPT_NO_NESTEROV: cfg->optim.nesterov = 0; return 0;
+    case OPT_CLIP:
+      if (number("clip", v, 0, 1e9, &d)) return RC_EXIT_USAGE;
+      cfg->clip = d;
+      return 0;
+    case OPT_LOSS: {
+      static const char *const names[] = {"kd", "logit-mse"};
+      if (choice("loss", v, names, 2, &k)) return RC_EXIT_USAGE;
+      cfg->loss = k == 0 ? RC_LOSS_KD : RC_LOSS_LOGIT_MSE;
+      return 0;
+    }
+    case OPT_TEMPERATURE:
+      if (number("temperature", v, 1e-3, 1e3, &d)) return RC_EXIT_USAGE;
+      cfg->temperature = (float)d;
+      return 0;
+    case OPT_ALPHA:
+      if (number("alpha", v, 0, 1, &d)) return RC_EXIT_USAGE;
+      cfg->alpha = (float)d;
+      return 0;
+    case OPT_BN: {
+      static const char *const names[] = {"frozen", "recalibrate", "train"};
+      if (choice("bn", v, names, 3, &k)) return RC_EXIT_USAGE;
+      cfg->bn = (rc_bn_mode)k;
+      return 0;
+    }
+    case OPT_TRAIN:
+      if (a->n_train == MAX_GLOBS) return cli_usage_error("distill", "too many --train");
+      a->train[a->n_train++] = v;
+      return 0;
+    case OPT_FREEZE:
+      if (a->n_freeze == MAX_GLOBS) return cli_usage_error("distill", "too many --freeze");
+      a->freeze[a->n_freeze++] = v;
+      return 0;
+    case OPT_SEED:
+      if (integer("seed", v, 0, LONG_MAX, &l)) return RC_EXIT_USAGE;
+      cfg->seed = (uint64_t)l;
+      return 0;
+    case OPT_THREADS:
+      if (integer("threads", v, 0, 1024, &l)) return RC_EXIT_USAGE;
+      a->threads = l;
+      return 0;
+    case OPT_JSON: a->json = 1; return 0;
+  }
+  return cli_usage_error("distill", "unknown option");
+}
+
+static int parse_args(distill_args *a, int argc, char **argv) {
+  static const struct option longopts[] = {
+      {"teacher", required_argument, NULL, OPT_TEACHER}, {"student", required_argument, NULL, OPT_STUDENT},
+      {"data", required_argument, NULL, OPT_DATA}, {"labels", required_argument, NULL, OPT_LABELS},
+      {"val-data", required_argument, NULL, OPT_VAL_DATA}, {"val-labels", required_argument, NULL, OPT_VAL_LABELS},
+      {"val-split", required_argument, NULL, OPT_VAL_SPLIT}, {"scale", required_argument, NULL, OPT_SCALE},
+      {"mean", required_argument, NULL, OPT_MEAN}, {"std", required_argument, NULL, OPT_STD},
+      {"epochs", required_argument, NULL, OPT_EPOCHS}, {"steps", required_argument, NULL, OPT_STEPS},
+      {"batch", required_argument, NULL, OPT_BATCH}, {"optimizer", required_argument, NULL, OPT_OPTIMIZER},
+      {"lr", required_argument, NULL, OPT_LR}, {"schedule", required_argument, NULL, OPT_SCHEDULE},
+      {"warmup", required_argument, NULL, OPT_WARMUP}, {"step-size", required_argument, NULL, OPT_STEP_SIZE},
+      {"gamma", required_argument, NULL, OPT_GAMMA}, {"weight-decay", required_argument, NULL, OPT_WD},
+      {"momentum", required_argument, NULL, OPT_MOMENTUM}, {"no-nesterov", no_argument, NULL, OPT_NO_NESTEROV},
+      {"clip", required_argument, NULL, OPT_CLIP}, {"loss", required_argument, NULL, OPT_LOSS},
+      {"temperature", required_argument, NULL, OPT_TEMPERATURE}, {"alpha", required_argument, NULL, OPT_ALPHA},
+      {"bn", required_argument, NULL, OPT_BN}, {"train", required_argument, NULL, OPT_TRAIN},
+      {"freeze", required_argument, NULL, OPT_FREEZE}, {"seed", required_argument, NULL, OPT_SEED},
+      {"threads", required_argument, NULL, OPT_THREADS}, {"out", required_argument, NULL, OPT_OUT},
+      {"json", no_argument, NULL, OPT_JSON}, {"help", no_argument, NULL, 'h'}, {NULL, 0, NULL, 0}};
+  memset(a, 0, sizeof *a);
+  cli_data_opts_init(&a->data);
+  rc_distill_config_defaults(&a->cfg);
+  a->val_split = 0.1;
+  int c;
+  optind = 1;
+  while ((c = getopt_long(argc, argv, "h", longopts, NULL)) != -1) {
+    if (c == 'h') {
+      usage(stdout);
+      return -1;
+    }
+    if (c == '?') return cli_usage_error("distill", "unknown option");
+    int r = apply_option(a, c, optarg);
+    if (r) return r;
+  }
+  if (optind != argc) return cli_usage_error("distill", "unexpected argument '%s'", argv[optind]);
+  if (!a->teacher || !a->student || !a->data.n_data || !a->out)
+    return cli_usage_error("distill", "--teacher, --student, --data and --out are required");
+  if (a->val_labels && !a->n_val_data) return cli_usage_error("distill", "--val-labels needs --val-data");
+  a->cfg.sched.lr = a->cfg.optim.lr;
+  a->cfg.train_globs = a->train;
+  a->cfg.n_train = a->n_train;
+  a->cfg.freeze_globs = a->freeze;
+  a->cfg.n_freeze = a->n_freeze;
+  return 0;
+}
+
+/* The output must not be any input: compare resolved paths (the output may
+ * not exist yet, so resolve its folder and append its name). */
+static int same_file(const char *out, const char *in) {
+  char a[PATH_MAX], b[PATH_MAX], dir_buf[PATH_MAX], base_buf[PATH_MAX];
+  if (!realpath(in, b)) return 0;
+  if (realpath(out, a)) return !strcmp(a, b);
+  snprintf(dir_buf, sizeof dir_buf, "%s", out);
+  snprintf(base_buf, sizeof base_buf, "%s", out);
+  char resolved[PATH_MAX];
+  if (!realpath(dirname(dir_buf), resolved)) return 0;
+  snprintf(a, sizeof a, "%s/%s", resolved, basename(base_buf));
+  return !strcmp(a, b);
+}
+
+static const char *data_path(const char *arg) {
+  const char *eq = strchr(arg, '=');
+  return eq && access(arg, F_OK) != 0 ? eq + 1 : arg;
+}
+
+static int check_output_path(const distill_args *a, rc_err *e) {
+  const char *inputs[2 + 2 * CLI_MAX_DATA + 2];
+  int n = 0;
+  inputs[n++] = a->teacher;
+  inputs[n++] = a->student;
+  for (int i = 0; i < a->data.n_data; i++) inputs[n++] = data_path(a->data.data[i]);
+  for (int i = 0; i < a->n_val_data; i++) inputs[n++] = data_path(a->val_data[i]);
+  if (a->data.labels) inputs[n++] = a->data.labels;
+  if (a->val_labels) inputs[n++] = a->val_labels;
+  for (int i = 0; i < n; i++)
+    if (same_file(a->out, inputs[i])) {
+      rc__fail(e, RC_ERR_INVALID, "--out %s is the input file %s: refusing to overwrite an input", a->out, inputs[i]);
+      return -1;
+    }
+  char dir_buf[PATH_MAX];
+  snprintf(dir_buf, sizeof dir_buf, "%s", a->out);
+  const char *dir = dirname(dir_buf);
+  struct stat st;
+  if (stat(dir, &st) != 0 || !S_ISDIR(st.st_mode)) {
+    rc__fail(e, RC_ERR_IO, "--out %s: folder %s does not exist", a->out, dir);
+    return -1;
+  }
+  if (access(dir, W_OK) != 0) {
+    rc__fail(e, RC_ERR_IO, "--out %s: folder %s is not writable", a->out, dir);
+    return -1;
+  }
+  return 0;
+}
+
+/* ---- Progress -------------------------------------------------------------- */
+
+typedef struct progress_state {
+  int tty;
+  double last_print;
+  int json;
+} progress_state;
+
+static void fmt_time(double s, char *buf, size_t n) {
+  long t = (long)(s + 0.5);
+  snprintf(buf, n, "%ld:%02ld:%02ld", t / 3600, t / 60 % 60, t % 60);
+}
+
+static void on_progress(void *user, const rc_distill_progress *p) {
+  progress_state *ps = user;
+  char eta[32];
+  if (p->event == RC_DISTILL_NOTE) {
+    fprintf(stderr, "%srecoup: %s\n", ps->tty ? "\r\033[K" : "", p->note);
+    return;
+  }
+  if (p->event == RC_DISTILL_EPOCH) {
+    if (ps->tty) fprintf(stderr, "\r\033[K");
+    fprintf(stderr, "epoch %lld/%lld  loss %.4f", (long long)p->epoch, (long long)p->epochs, p->loss);
+    if (p->val.has_labels) fprintf(stderr, "  val accuracy %.2f%%", 100 * p->val.top1);
+    fprintf(stderr, "  agreement %.2f%%  KL %.4f%s\n", 100 * p->val.agreement, p->val.kl,
+            p->is_best ? "  (best so far)" : "");
+    return;
+  }
+  fmt_time(p->eta_s, eta, sizeof eta);
+  if (ps->tty) {
+    if (p->elapsed_s - ps->last_print < 0.2 && p->step != p->steps) return;
+    ps->last_print = p->elapsed_s;
+    fprintf(stderr, "\r\033[Kepoch %lld/%lld  step %lld/%lld  loss %.4f  %.0f samples/s  %s left",
+            (long long)p->epoch, (long long)p->epochs, (long long)p->step, (long long)p->steps, p->loss,
+            p->samples_per_s, eta);
+    fflush(stderr);
+  } else if (p->elapsed_s - ps->last_print >= 10 || p->step == p->steps) {
+    ps->last_print = p->elapsed_s;
+    fprintf(stderr, "epoch %lld/%lld step %lld/%lld loss %.4f %.0f samples/s %s left\n", (long long)p->epoch,
+            (long long)p->epochs, (long long)p->step, (long long)p->steps, p->loss, p->samples_per_s, eta);
+  }
+}
+
+/* ---- Results ------------------------------------------------------------------ */
+
+static void table_row(const char *name, const rc_metrics *m) {
+  char acc[32] = "-";
+  if (m->has_labels) snprintf(acc, sizeof acc, "%.2f%%", 100 * m->top1);
+  printf("  %-22s %10s %12.2f%% %14.5f\n", name, acc, 100 * m->agreement, m->kl);
+}
+
+static cJSON *metrics_json(const rc_metrics *m) {
+  cJSON *o = cJSON_CreateObject();
+  if (m->has_labels) cJSON_AddNumberToObject(o, "accuracy", m->top1);
+  else cJSON_AddNullToObject(o, "accuracy");
+  cJSON_AddNumberToObject(o, "agreement", m->agreement);
+  cJSON_AddNumberToObject(o, "kl", m->kl);
+  return o;
+}
+
+static void print_results(const distill_args *a, const rc_distill_result *r, double verify_diff) {
+  if (a->json) {
+    cJSON *root = cJSON_CreateObject();
+    cJSON_AddStringToObject(root, "teacher", a->teacher);
+    cJSON_AddStringToObject(root, "student", a->student);
+    cJSON_AddStringToObject(root, "out", a->out);
+    cJSON_AddNumberToObject(root, "train_samples", (double)r->n_train);
+    cJSON_AddNumberToObject(root, "val_samples", (double)r->n_val);
+    cJSON_AddItemToObject(root, "dense", metrics_json(&r->teacher));
+    cJSON_AddItemToObject(root, "compressed", metrics_json(&r->before));
+    cJSON_AddItemToObject(root, "recovered", metrics_json(&r->after));
+    cJSON_AddBoolToObject(root, "improved", r->improved);
+    cJSON_AddNumberToObject(root, "best_epoch", (double)r->best_epoch);
+    cJSON_AddNumberToObject(root, "steps", (double)r->steps_done);
+    cJSON_AddNumberToObject(root, "seconds", r->seconds);
+    cJSON_AddNumberToObject(root, "samples_per_s", r->samples_per_s);
+    cJSON_AddNumberToObject(root, "trainable_tensors", r->n_trainable_tensors);
+    cJSON_AddNumberToObject(root, "trainable_values", (double)r->n_trainable);
+    cJSON_AddNumberToObject(root, "pruned_zeros_kept", (double)r->n_frozen_zeros);
+    cJSON_AddBoolToObject(root, "masks_intact", r->mask_ok);
+    cJSON_AddNumberToObject(root, "rollbacks", r->rollbacks);
+    cJSON_AddNumberToObject(root, "reload_max_diff", verify_diff);
+    cJSON *hist = cJSON_AddArrayToObject(root, "epochs");
+    for (int64_t i = 0; i < r->n_epochs; i++) {
+      cJSON *o = metrics_json(&r->epoch_val[i]);
+      cJSON_AddNumberToObject(o, "train_loss", r->epoch_loss[i]);
+      cJSON_AddItemToArray(hist, o);
+    }
+    char *text = cJSON_Print(root);
+    if (text) puts(text);
+    free(text);
+    cJSON_Delete(root);
+    return;
+  }
+  char b1[32], b2[32];
+  printf("\nValidation on %lld held-out samples (%s):\n", (long long)r->n_val,
+         a->n_val_data ? "--val-data" : "a seeded slice of --data");
+  printf("  %-22s %10s %13s %14s\n", "model", "accuracy", "agreement", "KL to dense");
+  table_row("dense (teacher)", &r->teacher);
+  table_row("compressed (input)", &r->before);
+  table_row("recovered (output)", &r->after);
+  printf("\n%lld steps in %.1f s (%.0f samples/s); %s values trained in %d tensors\n", (long long)r->steps_done,
+         r->seconds, r->samples_per_s, cli_group_digits(r->n_trainable, b1, sizeof b1), r->n_trainable_tensors);
+  printf("masks: %s pruned entries checked, all still exactly zero\n",
+         cli_group_digits(r->n_frozen_zeros, b2, sizeof b2));
+  if (r->improved)
+    printf("wrote %s (best epoch %lld; reloaded and checked: outputs identical)\n", a->out, (long long)r->best_epoch);
+  else
+    printf("training never beat the input on validation: wrote %s with the input's values unchanged\n", a->out);
+  if (r->rollbacks) printf("non-finite steps rolled back: %d%s\n", r->rollbacks, r->stopped_nonfinite ? " (stopped early)" : "");
+  printf("\nValidate the recovered model on your own held-out data before deploying it;\n"
+         "these figures hold only for the samples measured.\n");
+}
+
+/* ---- The command ------------------------------------------------------------- */
+
+static rc_status load_val(cli_samples *val, const distill_args *a, const rc_graph *g, rc_err *e) {
+  cli_data_opts vo = a->data;
+  memcpy(vo.data, a->val_data, sizeof vo.data);
+  vo.n_data = a->n_val_data;
+  vo.labels = NULL;
+  return cli_samples_load(val, &vo, g, e);
+}
+
+int rc_cmd_distill(int argc, char **argv) {
+  distill_args a;
+  int pr = parse_args(&a, argc, argv);
+  if (pr) return pr < 0 ? RC_EXIT_OK : pr;
+  cli_set_threads((int)a.threads);
+  rc_err e = {0};
+  rc_model *teacher = NULL, *student = NULL;
+  cli_samples train, val;
+  memset(&train, 0, sizeof train);
+  memset(&val, 0, sizeof val);
+  rc_distill_result r;
+  memset(&r, 0, sizeof r);
+  int rc = RC_EXIT_FAIL;
+  double diff = 0;
+  if (check_output_path(&a, &e)) goto out;
+  if (rc_model_load(&teacher, a.teacher, NULL, &e) != RC_OK || rc_model_load(&student, a.student, NULL, &e) != RC_OK)
+    goto out;
+  if (rc_distill_check_pair(&teacher->graph, &student->graph, &e) != RC_OK) goto out;
+  if (cli_samples_load(&train, &a.data, &student->graph, &e) != RC_OK) goto out;
+  if (a.n_val_data && load_val(&val, &a, &student->graph, &e) != RC_OK) goto out;
+  {
+    /* Class count from the student's output declaration, else unchecked here
+     * (distill checks logits' width against the teacher once planned). */
+    const rc_value *o = &student->graph.values[student->graph.outputs[0]];
+    int64_t k = o->decl.rank == 2 && o->decl.dims[1] > 0 ? o->decl.dims[1] : INT32_MAX;
+    if (a.data.labels && cli_samples_load_labels(&train, a.data.labels, k, &e) != RC_OK) goto out;
+    if (a.val_labels && cli_samples_load_labels(&val, a.val_labels, k, &e) != RC_OK) goto out;
+  }
+  rc_tensor ins[CLI_MAX_DATA], vins[CLI_MAX_DATA];
+  for (int i = 0; i < train.n_inputs; i++) ins[i] = train.inputs[i].t;
+  for (int i = 0; i < val.n_inputs; i++) vins[i] = val.inputs[i].t;
+  rc_distill_data d = {ins, train.n_inputs, train.has_labels ? train.labels.t.data : NULL,
+                       a.n_val_data ? vins : NULL, val.has_labels ? val.labels.t.data : NULL, a.val_split};
+  if (a.n_val_data && train.has_labels != val.has_labels) {
+    rc__fail(&e, RC_ERR_INVALID, "give labels for both --data and --val-data, or for neither");
+    goto out;
+  }
+  progress_state ps = {cli_isatty_stderr(), -1e9, a.json};
+  a.cfg.progress = on_progress;
+  a.cfg.user = &ps;
+  if (rc_distill_run(&r, teacher, student, &d, &a.cfg, &e) != RC_OK) goto out;
+  if (rc_model_save(student, a.out, r.changed, r.n_changed, &e) != RC_OK) goto out;
+  if (rc_distill_verify_written(a.out, student, a.n_val_data ? vins : ins, train.n_inputs, a.cfg.batch, &diff, &e) !=
+      RC_OK)
+    goto out;
+  print_results(&a, &r, diff);
+  rc = RC_EXIT_OK;
+out:
+  if (rc != RC_EXIT_OK) cli_fail(&e);
+  rc_distill_result_free(&r);
+  cli_samples_free(&train);
+  cli_samples_free(&val);
+  rc_model_free(teacher);
+  rc_model_free(student);
+  return rc;
+}

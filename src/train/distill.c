@@ -1,0 +1,765 @@
+#include "train/distill.h"
+
+#include <fnmatch.h>
+#include <math.h>
+#include <string.h>
+#include <time.h>
+
+#include "core/alloc.h"
+#include "graph/inspect.h"
+#include "graph/plan.h"
+#include "train/loss.h"
+#include "train/params.h"
+
+void rc_distill_config_defaults(rc_distill_config *c) {
+  memset(c, 0, sizeof *c);
+  c->epochs = 3;
+  c->batch = 64;
+  c->loss = RC_LOSS_KD;
+  c->temperature = RC_KD_DEFAULT_TEMPERATURE;
+  c->alpha = -1;
+  rc_optim_defaults(&c->optim, RC_OPTIM_ADAMW);
+  c->sched.kind = RC_SCHED_COSINE;
+  c->sched.lr = c->optim.lr;
+  c->sched.lr_min = -1;
+  c->sched.warmup = -1;
+  c->sched.gamma = 0.1f;
+  c->clip = RC_CLIP_DEFAULT_MAX_NORM;
+  c->seed = 1;
+  c->bn = RC_BN_FROZEN;
+  c->max_rollbacks = 3;
+}
+
+void rc_distill_result_free(rc_distill_result *r) {
+  rc__free(r->epoch_loss);
+  rc__free(r->epoch_val);
+  rc__free(r->changed);
+  memset(r, 0, sizeof *r);
+}
+
+static double now_s(void) {
+  struct timespec ts;
+  clock_gettime(CLOCK_MONOTONIC, &ts);
+  return (double)ts.tv_sec + 1e-9 * (double)ts.tv_nsec;
+}
+
+/* ---- Teacher and student must agree -------------------------------------- */
+
+static int find_by_name(const rc_graph *g, const int *vals, int n, const char *name) {
+  for (int i = 0; i < n; i++)
+    if (!strcmp(g->values[vals[i]].name, name)) return i;
+  return -1;
+}
+
+static rc_status check_io(const rc_graph *t, const int *tv, int tn, const rc_graph *s, const int *sv, int sn,
+                          const char *what, rc_err *e) {
+  if (tn != sn)
+    return rc__fail(e, RC_ERR_SHAPE, "teacher %s has %d %ss, student %s has %d", t->path, tn, what, s->path, sn);
+  for (int i = 0; i < sn; i++) {
+    const rc_value *b = &s->values[sv[i]];
+    int j = find_by_name(t, tv, tn, b->name);
+    if (j < 0)
+      return rc__fail(e, RC_ERR_SHAPE, "student %s '%s' (%s) has no %s of that name in teacher %s", what, b->name,
+                      s->path, what, t->path);
+    const rc_value *a = &t->values[tv[j]];
+    if (a->decl.dtype != b->decl.dtype)
+      return rc__fail(e, RC_ERR_SHAPE, "%s '%s': teacher dtype %s, student %s", what, b->name,
+                      rc_dtype_name(a->decl.dtype), rc_dtype_name(b->decl.dtype));
+    if (a->decl.rank >= 0 && b->decl.rank >= 0) {
+      int ok = a->decl.rank == b->decl.rank;
+      for (int d = 0; ok && d < a->decl.rank; d++)
+        if (a->decl.dims[d] >= 0 && b->decl.dims[d] >= 0 && a->decl.dims[d] != b->decl.dims[d]) ok = 0;
+      if (!ok) {
+        char sa[128], sb[128];
+        return rc__fail(e, RC_ERR_SHAPE, "%s '%s': teacher shape %s, student %s", what, b->name,
+                        rc_shape_str(&a->decl, sa, sizeof sa), rc_shape_str(&b->decl, sb, sizeof sb));
+      }
+    }
+  }
+  return RC_OK;
+}
+
+rc_status rc_distill_check_pair(const rc_graph *t, const rc_graph *s, rc_err *e) {
+  RC_TRY(check_io(t, t->inputs, t->n_inputs, s, s->inputs, s->n_inputs, "input", e));
+  return check_io(t, t->outputs, t->n_outputs, s, s->outputs, s->n_outputs, "output", e);
+}
+
+/* ---- What trains ----------------------------------------------------------- */
+
+static int matches_any(const char *name, const char *const *globs, int n) {
+  for (int i = 0; i < n; i++)
+    if (fnmatch(globs[i], name, 0) == 0) return 1;
+  return 0;
+}
+
+typedef struct trainable {
+  int value;
+  unsigned flags;
+  int entry;
+  void *orig; /* the graph's own buffer, restored at the end */
+} trainable;
+
+typedef struct run_state {
+  const rc_distill_config *c;
+  rc_model *teacher, *student;
+  rc_graph *sg;
+  trainable *tr;
+  int n_tr;
+  int *bn_nodes;      /* BatchNormalization nodes of the student */
+  int n_bn;
+  rc_params *ps;
+  unsigned char *trainable_mask; /* per student value */
+  rc_plan *train_plan, *eval_plan, *teacher_plan;
+  int64_t batch, k;
+  rc_dataset train, val;
+  float *teacher_logits;     /* per training-pool sample (N_pool, K) */
+  float *teacher_val_logits; /* (n_val, K) */
+  float *val_logits;
+  const int32_t *val_labels;
+  rc_data_split split;
+  int own_val;               /* val is a separate dataset */
+} run_state;
+
+static rc_status add_trainable(run_state *st, int v, unsigned flags, rc_err *e) {
+  for (int i = 0; i < st->n_tr; i++)
+    if (st->tr[i].value == v) return RC_OK;
+  trainable *grown = rc__realloc(st->tr, sizeof *grown * (size_t)(st->n_tr + 1));
+  if (!grown) return rc__fail(e, RC_ERR_NOMEM, "out of memory");
+  st->tr = grown;
+  st->tr[st->n_tr++] = (trainable){v, flags, -1, NULL};
+  return RC_OK;
+}
+
+static rc_status select_trainables(run_state *st, rc_err *e) {
+  const rc_graph *g = st->sg;
+  const rc_distill_config *c = st->c;
+  rc_weight_info *w = NULL;
+  int n_w = 0;
+  RC_TRY(rc__weights_collect(g, &w, &n_w, e));
+  rc_status s = RC_OK;
+  for (int i = 0; i < n_w && s == RC_OK; i++) {
+    const rc_value *val = &g->values[w[i].value];
+    if (w[i].quantized || val->decl.dtype != RC_DTYPE_FLOAT) continue;
+    if (matches_any(val->name, c->freeze_globs, c->n_freeze)) continue;
+    unsigned flags = w[i].role == RC_ROLE_WEIGHT ? RC_PARAM_KEEP_ZEROS
+                     : w[i].role == RC_ROLE_NORM ? RC_PARAM_NORM
+                                                 : RC_PARAM_NO_DECAY;
+    s = add_trainable(st, w[i].value, flags, e);
+  }
+  rc__free(w);
+  RC_TRY(s);
+  /* --train adds float initializers beyond the default set. */
+  for (int v = 0; v < g->n_values && c->n_train; v++) {
+    const rc_value *val = &g->values[v];
+    if (val->kind != RC_VALUE_INITIALIZER || val->decl.dtype != RC_DTYPE_FLOAT) continue;
+    if (!matches_any(val->name, c->train_globs, c->n_train) ||
+        matches_any(val->name, c->freeze_globs, c->n_freeze))
+      continue;
+    RC_TRY(add_trainable(st, v, RC_PARAM_KEEP_ZEROS, e));
+  }
+  if (!st->n_tr)
+    return rc__fail(e, RC_ERR_INVALID, "%s: nothing to train (no float weights of Conv, ConvTranspose, Gemm, "
+                    "MatMul, PRelu or normalisation layers after --train/--freeze)", g->path);
+  return RC_OK;
+}
+
+static int is_bn(const rc_node *n) { return !strcmp(n->op_type, "BatchNormalization"); }
+
+/* BatchNormalization running statistics join the store (never decayed, no
+ * gradient) when they change, so snapshots and the best state include them. */
+static rc_status collect_bn(run_state *st, rc_err *e) {
+  const rc_graph *g = st->sg;
+  st->bn_nodes = rc__calloc((size_t)g->n_nodes + 1, sizeof(int));
+  if (!st->bn_nodes) return rc__fail(e, RC_ERR_NOMEM, "out of memory");
+  for (int i = 0; i < g->n_nodes; i++) {
+    const rc_node *n = &g->nodes[i];
+    if (!is_bn(n) || n->n_in < 5) continue;
+    st->bn_nodes[st->n_bn++] = i;
+    if (st->c->bn == RC_BN_FROZEN) continue;
+    for (int k = 3; k <= 4; k++) {
+      int v = n->in[k];
+      if (v < 0 || g->values[v].kind != RC_VALUE_INITIALIZER || g->values[v].decl.dtype != RC_DTYPE_FLOAT)
+        return rc__fail(e, RC_ERR_UNSUPPORTED, "%s: node '%s': running statistics must be float initializers "
+                        "to re-estimate them", g->path, n->label);
+      RC_TRY(add_trainable(st, v, RC_PARAM_NO_DECAY, e));
+    }
+  }
+  return RC_OK;
+}
+
+static rc_status build_store(run_state *st, rc_err *e) {
+  rc_graph *g = st->sg;
+  RC_TRY(rc_params_create(&st->ps, e));
+  for (int i = 0; i < st->n_tr; i++) {
+    rc_value *val = &g->values[st->tr[i].value];
+    RC_TRY(rc_params_add(st->ps, &st->tr[i].entry, val->name, rc_tensor_numel(&val->decl), val->decl.data,
+                         st->tr[i].flags, e));
+  }
+  RC_TRY(rc_params_finalize(st->ps, rc_optim_moments(&st->c->optim), e));
+  RC_TRY(rc_params_build_masks(st->ps, e));
+  /* From here on the graph reads its initializers from the store. */
+  for (int i = 0; i < st->n_tr; i++) {
+    rc_value *val = &g->values[st->tr[i].value];
+    st->tr[i].orig = val->decl.data;
+    val->decl.data = rc_params_value(st->ps, st->tr[i].entry);
+  }
+  return RC_OK;
+}
+
+/* Put the graph's own buffers back, holding the store's current values. */
+static void restore_graph_buffers(run_state *st) {
+  if (!st->ps) return;
+  for (int i = 0; i < st->n_tr; i++) {
+    rc_value *val = &st->sg->values[st->tr[i].value];
+    if (!st->tr[i].orig) continue;
+    memcpy(st->tr[i].orig, rc_params_value(st->ps, st->tr[i].entry), sizeof(float) * (size_t)rc_tensor_numel(&val->decl));
+    val->decl.data = st->tr[i].orig;
+    st->tr[i].orig = NULL;
+  }
+}
+
+/* ---- Plans ------------------------------------------------------------------ */
+
+static void input_shapes(const rc_graph *g, const rc_tensor *data, int64_t b, rc_tensor *shapes) {
+  for (int i = 0; i < g->n_inputs; i++) {
+    shapes[i] = data[i];
+    shapes[i].data = NULL;
+    shapes[i].dims[0] = b;
+  }
+}
+
+static rc_status logits_width(const rc_plan *p, const rc_graph *g, int64_t b, int64_t *k, rc_err *e) {
+  const rc_tensor *t = rc_plan_tensor((rc_plan *)p, g->outputs[0]);
+  if (t->dtype != RC_DTYPE_FLOAT || t->rank != 2 || t->dims[0] != b)
+    return rc__fail(e, RC_ERR_SHAPE, "%s: distillation needs a float (N, classes) first output; '%s' is not",
+                    g->path, g->values[g->outputs[0]].name);
+  *k = t->dims[1];
+  return RC_OK;
+}
+
+/* Inputs of the teacher in the student's order (names match, checked). */
+static void teacher_order(const rc_graph *t, const rc_graph *s, const rc_tensor *in, rc_tensor *out) {
+  for (int i = 0; i < t->n_inputs; i++) {
+    int j = find_by_name(s, s->inputs, s->n_inputs, t->values[t->inputs[i]].name);
+    out[i] = in[j < 0 ? i : j];
+  }
+}
+
+static rc_status build_plans(run_state *st, const rc_tensor *data, rc_err *e) {
+  const rc_graph *tg = &st->teacher->graph, *sg = st->sg;
+  rc_tensor shapes[RC_DATASET_MAX_INPUTS], tin[RC_DATASET_MAX_INPUTS];
+  input_shapes(sg, data, st->batch, shapes);
+  st->trainable_mask = rc__calloc((size_t)sg->n_values + 1, 1);
+  unsigned char *live = rc__calloc((size_t)sg->n_values + 1, 1);
+  if (!st->trainable_mask || !live) {
+    rc__free(live);
+    return rc__fail(e, RC_ERR_NOMEM, "out of memory");
+  }
+  /* Everything in the store changes during the run, so no plan may fold it
+   * into a constant; running statistics change but take no gradient. */
+  for (int i = 0; i < st->n_tr; i++) st->trainable_mask[st->tr[i].value] = live[st->tr[i].value] = 1;
+  for (int b = 0; b < st->n_bn; b++) {
+    const rc_node *n = &sg->nodes[st->bn_nodes[b]];
+    for (int k = 3; k <= 4 && k < n->n_in; k++)
+      if (n->in[k] >= 0) st->trainable_mask[n->in[k]] = 0;
+  }
+  rc_plan_opts eval_opts = {0, live, NULL, 0};
+  rc_status s = rc_plan_create(&st->eval_plan, sg, shapes, &eval_opts, e);
+  rc__free(live);
+  RC_TRY(s);
+  rc_plan_opts train_opts = {1, st->trainable_mask, NULL, st->c->bn == RC_BN_TRAIN};
+  RC_TRY(rc_plan_create(&st->train_plan, sg, shapes, &train_opts, e));
+  teacher_order(tg, sg, shapes, tin);
+  RC_TRY(rc_plan_create(&st->teacher_plan, tg, tin, NULL, e));
+  int64_t kt;
+  RC_TRY(logits_width(st->eval_plan, sg, st->batch, &st->k, e));
+  RC_TRY(logits_width(st->teacher_plan, tg, st->batch, &kt, e));
+  if (kt != st->k)
+    return rc__fail(e, RC_ERR_SHAPE, "teacher %s gives %lld classes, student %s %lld", tg->path, (long long)kt,
+                    sg->path, (long long)st->k);
+  for (int i = 0; i < st->n_tr; i++) {
+    int v = st->tr[i].value;
+    if (!st->trainable_mask[v]) continue;
+    if (!rc_plan_grad(st->train_plan, v)) continue; /* feeds no output: stays as it is */
+    RC_TRY(rc_plan_bind_grad(st->train_plan, v, rc_params_grad(st->ps, st->tr[i].entry), e));
+  }
+  return RC_OK;
+}
+
+/* Teacher logits for every sample of a dataset, in the dataset's own order. */
+static rc_status teacher_pass(run_state *st, const rc_dataset *d, float *out, rc_err *e) {
+  const rc_graph *tg = &st->teacher->graph, *sg = st->sg;
+  /* The dataset's inputs are in the student's order; the teacher's plan may
+   * order them differently, so gather into the student's order first. */
+  rc_dataset td = *d;
+  for (int i = 0; i < tg->n_inputs; i++) {
+    int j = find_by_name(sg, sg->inputs, sg->n_inputs, tg->values[tg->inputs[i]].name);
+    td.inputs[i] = d->inputs[j];
+    td.sample_bytes[i] = d->sample_bytes[j];
+  }
+  void *outs[1] = {out};
+  return rc__run_dataset(st->teacher_plan, &td, tg->outputs, 1, outs, e);
+}
+
+/* ---- BatchNormalization statistics --------------------------------------- */
+
+/* Per-channel mean and biased variance of x (N, C, ...) accumulated in double. */
+static void channel_moments(double *sum, double *sq, const rc_tensor *x, int64_t rows) {
+  int64_t c = x->rank > 1 ? x->dims[1] : 1, inner = 1;
+  for (int d = 2; d < x->rank; d++) inner *= x->dims[d];
+  const float *p = x->data;
+  for (int64_t n = 0; n < rows; n++)
+    for (int64_t ch = 0; ch < c; ch++) {
+      const float *q = p + (n * c + ch) * inner;
+      double s = 0, s2 = 0;
+      for (int64_t i = 0; i < inner; i++) {
+        s += q[i];
+        s2 += (double)q[i] * q[i];
+      }
+      sum[ch] += s;
+      sq[ch] += s2;
+    }
+}
+
+static float *bn_stat(run_state *st, const rc_node *n, int k) {
+  return (float *)st->sg->values[n->in[k]].decl.data;
+}
+
+/* Re-estimate every BatchNormalization's running mean and variance over the
+ * training samples, with each layer normalising by batch statistics as it
+ * would in training mode (so later layers see what they will see). */
+static rc_status recalibrate_bn(run_state *st, rc_err *e) {
+  const rc_graph *g = st->sg;
+  unsigned char *keep = rc__calloc((size_t)g->n_values + 1, 1);
+  double *acc = NULL;
+  rc_plan *p = NULL;
+  rc_status s = RC_OK;
+  int64_t max_c = 1;
+  if (!keep) return rc__fail(e, RC_ERR_NOMEM, "out of memory");
+  for (int b = 0; b < st->n_bn; b++) keep[g->nodes[st->bn_nodes[b]].in[0]] = 1;
+  rc_tensor shapes[RC_DATASET_MAX_INPUTS];
+  input_shapes(g, st->train.inputs, st->batch, shapes);
+  rc_plan_opts o = {0, NULL, keep, 1};
+  if ((s = rc_plan_create(&p, g, shapes, &o, e)) != RC_OK) goto out;
+  for (int b = 0; b < st->n_bn; b++) {
+    const rc_tensor *x = rc_plan_tensor(p, g->nodes[st->bn_nodes[b]].in[0]);
+    if (x->rank > 1 && x->dims[1] > max_c) max_c = x->dims[1];
+  }
+  acc = rc__calloc((size_t)(2 * max_c * st->n_bn), sizeof(double));
+  if (!acc) {
+    s = rc__fail(e, RC_ERR_NOMEM, "out of memory");
+    goto out;
+  }
+  void *in_bufs[RC_DATASET_MAX_INPUTS];
+  for (int i = 0; i < g->n_inputs; i++) in_bufs[i] = rc_plan_tensor(p, g->inputs[i])->data;
+  rc_dataset_unshuffle(&st->train);
+  int64_t nb = rc_dataset_n_batches(&st->train, st->batch, 1), rows = 0;
+  for (int64_t b = 0; b < nb; b++) {
+    int64_t count;
+    if ((s = rc_dataset_gather(in_bufs, NULL, &count, &st->train, b, st->batch, e)) != RC_OK) goto out;
+    if ((s = rc_plan_forward(p, e)) != RC_OK) goto out;
+    for (int j = 0; j < st->n_bn; j++)
+      channel_moments(acc + 2 * max_c * j, acc + 2 * max_c * j + max_c,
+                      rc_plan_tensor(p, g->nodes[st->bn_nodes[j]].in[0]), count);
+    rows += count;
+  }
+  for (int j = 0; j < st->n_bn; j++) {
+    const rc_node *n = &g->nodes[st->bn_nodes[j]];
+    const rc_tensor *x = rc_plan_tensor(p, n->in[0]);
+    int64_t c = x->rank > 1 ? x->dims[1] : 1, inner = 1;
+    for (int d = 2; d < x->rank; d++) inner *= x->dims[d];
+    double cnt = (double)rows * (double)inner;
+    float *mean = bn_stat(st, n, 3), *var = bn_stat(st, n, 4);
+    for (int64_t ch = 0; ch < c && cnt > 0; ch++) {
+      double m = acc[2 * max_c * j + ch] / cnt;
+      double v = acc[2 * max_c * j + max_c + ch] / cnt - m * m;
+      mean[ch] = (float)m;
+      var[ch] = (float)(v > 0 ? v : 0);
+    }
+  }
+out:
+  rc_plan_free(p);
+  rc__free(acc);
+  rc__free(keep);
+  return s;
+}
+
+/* After a training-mode forward: running = running * momentum + batch * (1 -
+ * momentum), the update ONNX's training-mode BatchNormalization defines (with
+ * the batch's biased variance, as its reference implementation computes). */
+static void update_running_stats(run_state *st, double *scratch, int64_t max_c) {
+  const rc_graph *g = st->sg;
+  for (int j = 0; j < st->n_bn; j++) {
+    const rc_node *n = &g->nodes[st->bn_nodes[j]];
+    const rc_tensor *x = rc_plan_tensor(st->train_plan, n->in[0]);
+    int64_t c = x->rank > 1 ? x->dims[1] : 1, inner = 1;
+    if (c > max_c) continue;
+    for (int d = 2; d < x->rank; d++) inner *= x->dims[d];
+    memset(scratch, 0, sizeof(double) * 2 * (size_t)max_c);
+    channel_moments(scratch, scratch + max_c, x, x->dims[0]);
+    double cnt = (double)x->dims[0] * (double)inner;
+    float mom = rc__attr_float(n, "momentum", 0.9f);
+    float *mean = bn_stat(st, n, 3), *var = bn_stat(st, n, 4);
+    for (int64_t ch = 0; ch < c; ch++) {
+      double m = scratch[ch] / cnt, v = scratch[max_c + ch] / cnt - m * m;
+      mean[ch] = (float)(mean[ch] * mom + m * (1 - mom));
+      var[ch] = (float)(var[ch] * mom + (v > 0 ? v : 0) * (1 - mom));
+    }
+  }
+}
+
+/* ---- Data ----------------------------------------------------------------- */
+
+static rc_status setup_data(run_state *st, const rc_distill_data *d, rc_err *e) {
+  int64_t n = d->inputs[0].dims[0];
+  if (d->val_inputs) {
+    RC_TRY(rc_dataset_init(&st->train, d->inputs, d->n_inputs, NULL, NULL, 0, e));
+    RC_TRY(rc_dataset_init(&st->val, d->val_inputs, d->n_inputs, NULL, NULL, 0, e));
+    st->own_val = 1;
+    st->val_labels = d->val_labels;
+    return RC_OK;
+  }
+  if (d->val_split <= 0 || d->val_split >= 1)
+    return rc__fail(e, RC_ERR_INVALID, "the validation split must lie strictly between 0 and 1");
+  RC_TRY(rc_data_split_make(&st->split, n, d->val_split, st->c->seed, e));
+  if (st->split.n_train < 1 || st->split.n_val < 1)
+    return rc__fail(e, RC_ERR_INVALID, "%lld samples are too few to hold out a validation slice", (long long)n);
+  RC_TRY(rc_dataset_init(&st->train, d->inputs, d->n_inputs, NULL, st->split.train, st->split.n_train, e));
+  RC_TRY(rc_dataset_init(&st->val, d->inputs, d->n_inputs, NULL, st->split.val, st->split.n_val, e));
+  return RC_OK;
+}
+
+/* Labels of the validation samples, in the validation view's order. */
+static rc_status val_labels_of(run_state *st, const rc_distill_data *d, int32_t **owned, rc_err *e) {
+  *owned = NULL;
+  if (st->own_val || !d->labels) return RC_OK;
+  int32_t *l = rc__malloc(sizeof(int32_t) * (size_t)st->val.n + 1);
+  if (!l) return rc__fail(e, RC_ERR_NOMEM, "out of memory");
+  for (int64_t i = 0; i < st->val.n; i++) l[i] = d->labels[st->val.index[i]];
+  *owned = l;
+  st->val_labels = l;
+  return RC_OK;
+}
+
+static rc_status validate(run_state *st, rc_metrics *m, rc_err *e) {
+  void *outs[1] = {st->val_logits};
+  RC_TRY(rc__run_dataset(st->eval_plan, &st->val, st->sg->outputs, 1, outs, e));
+  return rc__metrics_compute(m, st->val_logits, st->val_labels, st->teacher_val_logits, st->val.n, st->k, e);
+}
+
+/* Better by accuracy when labels exist, else agreement; ties by lower KL. */
+static int better(const rc_metrics *a, const rc_metrics *b) {
+  double pa = a->has_labels ? a->top1 : a->agreement, pb = b->has_labels ? b->top1 : b->agreement;
+  if (pa != pb) return pa > pb;
+  return a->kl < b->kl;
+}
+
+/* ---- One step --------------------------------------------------------------- */
+
+typedef struct step_buffers {
+  void *in[RC_DATASET_MAX_INPUTS];
+  int32_t *labels;
+  float *teacher;   /* (B, K) rows of the cached teacher logits */
+  int64_t *samples; /* sample indices of the batch */
+} step_buffers;
+
+static rc_status loss_and_seed(run_state *st, const step_buffers *sb, const int32_t *labels, double *loss,
+                               rc_err *e) {
+  const rc_distill_config *c = st->c;
+  const rc_graph *g = st->sg;
+  const float *s = rc_plan_tensor(st->train_plan, g->outputs[0])->data;
+  rc_tensor *gt = rc_plan_grad(st->train_plan, g->outputs[0]);
+  if (!gt) return rc__fail(e, RC_ERR_INVALID, "%s: no trainable tensor reaches output '%s'", g->path,
+                           g->values[g->outputs[0]].name);
+  float *grad = gt->data;
+  float alpha = c->alpha >= 0 ? c->alpha : labels ? 0.9f : 1.0f;
+  double dl = 0, ce = 0;
+  if (c->loss == RC_LOSS_KD)
+    RC_TRY(rc_loss_kd(&dl, NULL, grad, alpha, s, sb->teacher, st->batch, st->k, c->temperature, e));
+  else
+    RC_TRY(rc_loss_logit_mse(&dl, NULL, grad, alpha, s, sb->teacher, st->batch, st->k, e));
+  if (labels && alpha < 1)
+    RC_TRY(rc_loss_cross_entropy(&ce, NULL, grad, 1 - alpha, s, labels, st->batch, st->k, e));
+  *loss = alpha * dl + (labels && alpha < 1 ? (1 - alpha) * ce : 0);
+  return RC_OK;
+}
+
+static void gather_teacher_rows(run_state *st, const step_buffers *sb, int64_t b) {
+  for (int64_t j = 0; j < st->batch; j++) {
+    int64_t pos = st->train.order[b * st->batch + j];
+    int64_t sample = st->train.index[pos];
+    memcpy(sb->teacher + j * st->k, st->teacher_logits + sample * st->k, sizeof(float) * (size_t)st->k);
+  }
+}
+
+/* ---- The run ------------------------------------------------------------------ */
+
+static void notify(const rc_distill_config *c, rc_distill_progress *p) {
+  if (c->progress) c->progress(c->user, p);
+}
+
+static rc_status train_loop(run_state *st, rc_distill_result *r, const rc_distill_data *d, rc_err *e) {
+  const rc_distill_config *c = st->c;
+  const rc_graph *g = st->sg;
+  int64_t spe = rc_dataset_n_batches(&st->train, st->batch, 1);
+  int64_t total = c->steps > 0 ? c->steps : c->epochs * spe;
+  int64_t epochs = (total + spe - 1) / spe;
+  rc_sched sched = c->sched;
+  float lr_min = sched.lr_min;
+  rc_sched_defaults(&sched, c->optim.lr, total);
+  sched.kind = c->sched.kind;
+  if (c->sched.warmup >= 0) sched.warmup = c->sched.warmup;
+  if (lr_min >= 0) sched.lr_min = lr_min;
+  if (c->sched.step_size > 0) sched.step_size = c->sched.step_size;
+  else if (sched.kind == RC_SCHED_STEP) sched.step_size = spe > 0 ? spe : 1;
+  sched.gamma = c->sched.gamma;
+  RC_TRY(rc_sched_check(&sched, e));
+  step_buffers sb = {0};
+  int best_slot, good_slot;
+  double *bn_scratch = NULL;
+  int64_t max_c = 1;
+  RC_TRY(rc_params_add_snapshot(st->ps, &best_slot, 0, e));
+  RC_TRY(rc_params_add_snapshot(st->ps, &good_slot, 1, e));
+  RC_TRY(rc_params_save(st->ps, best_slot, e));
+  RC_TRY(rc_params_save(st->ps, good_slot, e));
+  r->epoch_loss = rc__calloc((size_t)epochs + 1, sizeof(double));
+  r->epoch_val = rc__calloc((size_t)epochs + 1, sizeof(rc_metrics));
+  sb.teacher = rc__malloc(sizeof(float) * (size_t)(st->batch * st->k));
+  sb.labels = d->labels ? rc__malloc(sizeof(int32_t) * (size_t)st->batch) : NULL;
+  for (int j = 0; j < st->n_bn; j++) {
+    const rc_tensor *x = rc_plan_tensor(st->train_plan, g->nodes[st->bn_nodes[j]].in[0]);
+    if (x->rank > 1 && x->dims[1] > max_c) max_c = x->dims[1];
+  }
+  bn_scratch = rc__malloc(sizeof(double) * 2 * (size_t)max_c);
+  rc_status s = RC_OK;
+  if (!r->epoch_loss || !r->epoch_val || !sb.teacher || (d->labels && !sb.labels) || !bn_scratch) {
+    s = rc__fail(e, RC_ERR_NOMEM, "out of memory");
+    goto out;
+  }
+  st->train.labels = d->labels; /* indexed by sample, like the inputs */
+  for (int i = 0; i < g->n_inputs; i++) sb.in[i] = rc_plan_tensor(st->train_plan, g->inputs[i])->data;
+  rc_metrics best = r->before;
+  double t0 = now_s(), lr_scale = 1.0;
+  int64_t step = 0, snap_every = spe / 4 > 0 ? spe / 4 : 1;
+  rc_distill_progress pg = {0};
+  pg.epochs = epochs;
+  pg.steps = total;
+  for (int64_t ep = 0; ep < epochs && step < total && !r->stopped_nonfinite; ep++) {
+    rc_dataset_shuffle(&st->train, c->seed, (uint64_t)ep);
+    double ep_loss = 0;
+    int64_t ep_steps = 0;
+    for (int64_t b = 0; b < spe && step < total; b++) {
+      int64_t count;
+      if ((s = rc_dataset_gather(sb.in, sb.labels, &count, &st->train, b, st->batch, e)) != RC_OK) goto out;
+      gather_teacher_rows(st, &sb, b);
+      rc_params_zero_grad(st->ps);
+      rc_plan_zero_grad(st->train_plan);
+      if ((s = rc_plan_forward(st->train_plan, e)) != RC_OK) goto out;
+      double loss = 0;
+      if ((s = loss_and_seed(st, &sb, sb.labels, &loss, e)) != RC_OK) goto out;
+      if ((s = rc_plan_backward(st->train_plan, e)) != RC_OK) goto out;
+      double norm = rc_clip_grad_norm(st->ps, c->clip);
+      if (!isfinite(loss) || !isfinite(norm)) {
+        /* Roll back to the last good state with a smaller rate. */
+        r->rollbacks++;
+        if ((s = rc_params_restore(st->ps, good_slot, e)) != RC_OK) goto out;
+        lr_scale *= 0.5;
+        pg.event = RC_DISTILL_NOTE;
+        pg.note = "non-finite loss or gradient: rolled back to the last good state, learning rate halved";
+        notify(c, &pg);
+        if (r->rollbacks > c->max_rollbacks) {
+          r->stopped_nonfinite = 1;
+          break;
+        }
+        step++;
+        continue;
+      }
+      if (c->bn == RC_BN_TRAIN) update_running_stats(st, bn_scratch, max_c);
+      float lr = (float)(rc_sched_lr(&sched, rc_params_steps(st->ps) + 1) * lr_scale);
+      if ((s = rc_optim_step(st->ps, &c->optim, lr, e)) != RC_OK) goto out;
+      step++;
+      ep_loss += loss;
+      ep_steps++;
+      if (step % snap_every == 0 && (s = rc_params_save(st->ps, good_slot, e)) != RC_OK) goto out;
+      double el = now_s() - t0;
+      pg.event = RC_DISTILL_STEP;
+      pg.epoch = ep + 1;
+      pg.step = step;
+      pg.loss = ep_loss / (double)ep_steps;
+      pg.lr = lr;
+      pg.elapsed_s = el;
+      pg.samples_per_s = el > 0 ? (double)(step * st->batch) / el : 0;
+      pg.eta_s = step ? el / (double)step * (double)(total - step) : 0;
+      notify(c, &pg);
+    }
+    rc_metrics m;
+    if ((s = validate(st, &m, e)) != RC_OK) goto out;
+    r->epoch_loss[r->n_epochs] = ep_steps ? ep_loss / (double)ep_steps : NAN;
+    r->epoch_val[r->n_epochs++] = m;
+    pg.event = RC_DISTILL_EPOCH;
+    pg.epoch = ep + 1;
+    pg.val = m;
+    pg.is_best = better(&m, &best);
+    if (pg.is_best) {
+      best = m;
+      r->best_epoch = ep + 1;
+      if ((s = rc_params_save(st->ps, best_slot, e)) != RC_OK) goto out;
+    }
+    notify(c, &pg);
+  }
+  r->steps_done = step;
+  r->seconds = now_s() - t0;
+  r->samples_per_s = r->seconds > 0 ? (double)(step * st->batch) / r->seconds : 0;
+  r->improved = r->best_epoch > 0;
+  if ((s = rc_params_restore(st->ps, best_slot, e)) != RC_OK) goto out;
+  r->after = best;
+out:
+  rc__free(sb.teacher);
+  rc__free(sb.labels);
+  rc__free(bn_scratch);
+  return s;
+}
+
+static void free_state(run_state *st) {
+  restore_graph_buffers(st);
+  rc_plan_free(st->train_plan);
+  rc_plan_free(st->eval_plan);
+  rc_plan_free(st->teacher_plan);
+  rc_dataset_free(&st->train);
+  rc_dataset_free(&st->val);
+  rc_data_split_free(&st->split);
+  rc_params_free(st->ps);
+  rc__free(st->tr);
+  rc__free(st->bn_nodes);
+  rc__free(st->trainable_mask);
+  rc__free(st->teacher_logits);
+  rc__free(st->teacher_val_logits);
+  rc__free(st->val_logits);
+}
+
+static rc_status record_changes(run_state *st, rc_distill_result *r, rc_err *e) {
+  r->changed = rc__malloc(sizeof(int) * (size_t)(st->n_tr + 1));
+  if (!r->changed) return rc__fail(e, RC_ERR_NOMEM, "out of memory");
+  for (int i = 0; i < st->n_tr; i++) {
+    const rc_param_entry *pe = rc_params_entry(st->ps, st->tr[i].entry);
+    r->changed[r->n_changed++] = st->tr[i].value;
+    if (st->trainable_mask[st->tr[i].value]) {
+      r->n_trainable_tensors++;
+      r->n_trainable += pe->numel - pe->n_frozen;
+    }
+    r->n_frozen_zeros += pe->n_frozen;
+  }
+  int entry;
+  int64_t pos;
+  r->mask_ok = rc_params_mask_intact(st->ps, &entry, &pos);
+  if (!r->mask_ok)
+    return rc__fail(e, RC_ERR_NUMERIC, "%s: pruned entry %lld of '%s' is no longer zero: refusing to write",
+                    st->sg->path, (long long)pos, rc_params_entry(st->ps, entry)->name);
+  return RC_OK;
+}
+
+rc_status rc_distill_run(rc_distill_result *r, rc_model *teacher, rc_model *student, const rc_distill_data *d,
+                         const rc_distill_config *c, rc_err *e) {
+  memset(r, 0, sizeof *r);
+  run_state st;
+  memset(&st, 0, sizeof st);
+  st.c = c;
+  st.teacher = teacher;
+  st.student = student;
+  st.sg = &student->graph;
+  int32_t *val_labels = NULL;
+  rc_status s;
+  if ((s = rc_distill_check_pair(&teacher->graph, st.sg, e)) != RC_OK) goto out;
+  if (d->n_inputs != st.sg->n_inputs) {
+    s = rc__fail(e, RC_ERR_INVALID, "%s has %d inputs, the data %d", st.sg->path, st.sg->n_inputs, d->n_inputs);
+    goto out;
+  }
+  if ((s = rc_optim_check(&c->optim, e)) != RC_OK) goto out;
+  if (c->temperature <= 0 || !isfinite(c->temperature)) {
+    s = rc__fail(e, RC_ERR_INVALID, "the temperature must be positive");
+    goto out;
+  }
+  if ((s = setup_data(&st, d, e)) != RC_OK) goto out;
+  st.batch = c->batch < st.train.n ? c->batch : st.train.n;
+  r->n_train = st.train.n;
+  r->n_val = st.val.n;
+  if ((s = select_trainables(&st, e)) != RC_OK || (s = collect_bn(&st, e)) != RC_OK ||
+      (s = build_store(&st, e)) != RC_OK || (s = build_plans(&st, d->inputs, e)) != RC_OK)
+    goto out;
+  if ((s = val_labels_of(&st, d, &val_labels, e)) != RC_OK) goto out;
+  int64_t pool = d->inputs[0].dims[0];
+  st.teacher_logits = rc__malloc(sizeof(float) * (size_t)(pool * st.k));
+  st.teacher_val_logits = rc__malloc(sizeof(float) * (size_t)(st.val.n * st.k));
+  st.val_logits = rc__malloc(sizeof(float) * (size_t)(st.val.n * st.k));
+  if (!st.teacher_logits || !st.teacher_val_logits || !st.val_logits) {
+    s = rc__fail(e, RC_ERR_NOMEM, "out of memory for logits");
+    goto out;
+  }
+  {
+    /* Teacher logits over the whole pool once, indexed by sample. */
+    rc_dataset all;
+    if ((s = rc_dataset_init(&all, d->inputs, d->n_inputs, NULL, NULL, 0, e)) != RC_OK) goto out;
+    s = teacher_pass(&st, &all, st.teacher_logits, e);
+    rc_dataset_free(&all);
+    if (s != RC_OK) goto out;
+    if ((s = teacher_pass(&st, &st.val, st.teacher_val_logits, e)) != RC_OK) goto out;
+  }
+  {
+    /* The teacher measured against itself gives its accuracy and the 100%/0 baseline. */
+    if ((s = rc__metrics_compute(&r->teacher, st.teacher_val_logits, st.val_labels, st.teacher_val_logits,
+                                 st.val.n, st.k, e)) != RC_OK)
+      goto out;
+  }
+  if ((s = validate(&st, &r->before, e)) != RC_OK) goto out;
+  if (c->bn == RC_BN_RECALIBRATE) {
+    if ((s = recalibrate_bn(&st, e)) != RC_OK) goto out;
+    rc_distill_progress pg = {0};
+    pg.event = RC_DISTILL_NOTE;
+    pg.note = "BatchNormalization running statistics re-estimated over the training samples";
+    notify(c, &pg);
+  }
+  if ((s = train_loop(&st, r, d, e)) != RC_OK) goto out;
+  s = record_changes(&st, r, e);
+out:
+  rc__free(val_labels);
+  free_state(&st);
+  return s;
+}
+
+rc_status rc_distill_verify_written(const char *path, rc_model *student, const rc_tensor *inputs, int n_inputs,
+                                    int64_t batch, double *max_diff, rc_err *e) {
+  rc_model *back = NULL;
+  rc_plan *pa = NULL, *pb = NULL;
+  rc_status s = rc_model_load(&back, path, NULL, e);
+  if (s != RC_OK) return rc__wrap(e, "reloading the written file");
+  const rc_graph *ga = &student->graph, *gb = &back->graph;
+  rc_tensor shapes[RC_DATASET_MAX_INPUTS];
+  int64_t b = inputs[0].dims[0] < batch ? inputs[0].dims[0] : batch;
+  input_shapes(ga, inputs, b, shapes);
+  *max_diff = 0;
+  if ((s = rc_plan_create(&pa, ga, shapes, NULL, e)) != RC_OK || (s = rc_plan_create(&pb, gb, shapes, NULL, e)) != RC_OK)
+    goto out;
+  for (int i = 0; i < n_inputs && i < ga->n_inputs; i++) {
+    size_t nb = rc_tensor_nbytes(rc_plan_tensor(pa, ga->inputs[i]));
+    memcpy(rc_plan_tensor(pa, ga->inputs[i])->data, inputs[i].data, nb);
+    memcpy(rc_plan_tensor(pb, gb->inputs[i])->data, inputs[i].data, nb);
+  }
+  if ((s = rc_plan_forward(pa, e)) != RC_OK || (s = rc_plan_forward(pb, e)) != RC_OK) goto out;
+  for (int j = 0; j < ga->n_outputs; j++) {
+    const rc_tensor *ta = rc_plan_tensor(pa, ga->outputs[j]), *tb = rc_plan_tensor(pb, gb->outputs[j]);
+    if (ta->dtype != RC_DTYPE_FLOAT) continue;
+    int64_t n = rc_tensor_numel(ta);
+    for (int64_t i = 0; i < n; i++) {
+      double dd = fabs((double)((float *)ta->data)[i] - ((float *)tb->data)[i]);
+      if (!(dd <= *max_diff)) *max_diff = isnan(dd) ? INFINITY : dd;
+    }
+  }
+  if (*max_diff > 0)
+    s = rc__fail(e, RC_ERR_IO, "%s: the written model's outputs differ from the trained model's by %g", path,
+                 *max_diff);
+out:
+  rc_plan_free(pa);
+  rc_plan_free(pb);
+  rc_model_free(back);
+  return s;
+}

@@ -1,0 +1,105 @@
+/* Distillation of a compressed student from its dense teacher on CPU.
+ *
+ * The teacher runs forward only; its logits over every sample are computed
+ * once (no augmentation, so they never change) and reused every epoch. The
+ * student trains through its plan's reverse pass; its trainable initializers
+ * live in one flat parameter store that the plan reads and writes in place.
+ * Pruning masks hold exactly, the best state by validation is kept, and on
+ * return the student model's initializers hold that state, ready to save. */
+#ifndef RC_TRAIN_DISTILL_H
+#define RC_TRAIN_DISTILL_H
+
+#include <stdint.h>
+
+#include "core/status.h"
+#include "onnx/model.h"
+#include "train/evaluate.h"
+#include "train/optim.h"
+
+typedef enum rc_bn_mode {
+  RC_BN_FROZEN = 0,      /* running statistics stay as deployed */
+  RC_BN_RECALIBRATE = 1, /* re-estimated over the training data first, then frozen */
+  RC_BN_TRAIN = 2        /* batch statistics in training, running stats updated */
+} rc_bn_mode;
+
+typedef enum rc_distill_loss { RC_LOSS_KD = 0, RC_LOSS_LOGIT_MSE = 1 } rc_distill_loss;
+
+typedef struct rc_distill_data {
+  const rc_tensor *inputs; /* one per student input (graph order), dims[0] = samples */
+  int n_inputs;
+  const int32_t *labels;   /* per sample, or NULL */
+  const rc_tensor *val_inputs; /* NULL: hold out val_split of `inputs` */
+  const int32_t *val_labels;
+  double val_split;
+} rc_distill_data;
+
+typedef enum rc_distill_event { RC_DISTILL_STEP = 0, RC_DISTILL_EPOCH = 1, RC_DISTILL_NOTE = 2 } rc_distill_event;
+
+typedef struct rc_distill_progress {
+  rc_distill_event event;
+  int64_t epoch, epochs;     /* 1-based epoch */
+  int64_t step, steps;       /* steps done, total */
+  double loss;               /* running mean over the epoch so far */
+  double lr;
+  double samples_per_s;
+  double elapsed_s, eta_s;
+  rc_metrics val;            /* RC_DISTILL_EPOCH: validation of this epoch */
+  int is_best;
+  const char *note;          /* RC_DISTILL_NOTE */
+} rc_distill_progress;
+
+typedef struct rc_distill_config {
+  int64_t epochs;            /* used when steps == 0 */
+  int64_t steps;
+  int64_t batch;
+  rc_distill_loss loss;
+  float temperature;
+  float alpha;               /* weight of the distillation term; < 0 = default */
+  rc_optim_config optim;
+  rc_sched sched;            /* kind, lr, lr_min, warmup (<0: default), step_size, gamma */
+  double clip;               /* max gradient norm, <= 0 = off */
+  uint64_t seed;
+  rc_bn_mode bn;
+  const char *const *train_globs;
+  int n_train;
+  const char *const *freeze_globs;
+  int n_freeze;
+  int max_rollbacks;         /* non-finite steps rolled back before stopping */
+  void (*progress)(void *user, const rc_distill_progress *p);
+  void *user;
+} rc_distill_config;
+
+void rc_distill_config_defaults(rc_distill_config *c);
+
+typedef struct rc_distill_result {
+  rc_metrics teacher, before, after; /* on the validation samples */
+  int64_t n_train, n_val;
+  int64_t steps_done;
+  int64_t best_epoch;                /* 0 = the input was never beaten */
+  int improved;
+  double seconds, samples_per_s;
+  int n_trainable_tensors;
+  int64_t n_trainable, n_frozen_zeros;
+  int mask_ok;
+  int rollbacks, stopped_nonfinite;
+  double *epoch_loss;                /* per epoch (n_epochs) */
+  rc_metrics *epoch_val;
+  int64_t n_epochs;
+  int *changed;                      /* student values whose data changed: save these */
+  int n_changed;
+} rc_distill_result;
+
+void rc_distill_result_free(rc_distill_result *r);
+
+/* Check that teacher and student agree on input and output names and shapes. */
+rc_status rc_distill_check_pair(const rc_graph *teacher, const rc_graph *student, rc_err *e);
+
+rc_status rc_distill_run(rc_distill_result *r, rc_model *teacher, rc_model *student,
+                         const rc_distill_data *d, const rc_distill_config *c, rc_err *e);
+
+/* Reload a written file and check its outputs on one batch of samples equal
+ * those of the in-memory model. */
+rc_status rc_distill_verify_written(const char *path, rc_model *student, const rc_tensor *inputs,
+                                    int n_inputs, int64_t batch, double *max_diff, rc_err *e);
+
+#endif
