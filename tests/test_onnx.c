@@ -125,7 +125,8 @@ static Onnx__TensorProto *mk_tensor(const char *name, int dtype, int rank, const
   t->has_data_type = 1;
   t->data_type = dtype;
   t->n_dims = (size_t)rank;
-  t->dims = pdup(dims ? (const void *)dims : (const void *)"", sizeof(int64_t) * (size_t)rank + 1);
+  t->dims = ARR(int64_t, rank + 1);
+  if (rank) memcpy(t->dims, dims, sizeof(int64_t) * (size_t)rank);
   return t;
 }
 
@@ -502,7 +503,12 @@ static void *malloc_cb(void *unused, size_t n) { return rc__malloc(n); }
 
 static rc_status decode(const Onnx__TensorProto *t, rc_tensor *out, rc_err *e) {
   rc__decode_ctx ctx = {"mem", NULL, (size_t)1 << 30, NULL, 0, RC_MAX_RANK, malloc_cb, NULL};
-  return rc__tensor_decode(t, "tensor 'x'", &ctx, out, e);
+  rc_status st = rc__tensor_decode(t, "tensor 'x'", &ctx, out, e);
+  if (st != RC_OK) {
+    rc__free(out->data);
+    out->data = NULL;
+  }
+  return st;
 }
 
 /* Decode raw and typed forms of the same values; both must give `expect`. */
@@ -935,6 +941,47 @@ static void test_alloc_failures(void) {
     rc_model_free(m);
   }
   CHECK(ok);
+  /* Saving under failing allocations: a clean error, and the loaded message
+   * restored afterwards (the next save gives the same bytes as a normal one). */
+  rc_model *m = NULL;
+  CHECK_INT(rc__model_load_unbound(&m, tpath("oom.onnx"), NULL, &e), RC_OK);
+  if (m) {
+    int w = find(m, "conv.weight");
+    ((float *)m->graph.values[w].decl.data)[0] = 7.0f;
+    CHECK_INT(rc_model_save(m, tpath("oom_ref.onnx"), &w, 1, &e), RC_OK);
+    ok = 0;
+    for (long k = 1; k < 200 && !ok; k++) {
+      rc_alloc_set_fail_after(k);
+      rc_status st = rc_model_save(m, tpath("oom_out.onnx"), &w, 1, &e);
+      rc_alloc_set_fail_after(0);
+      ok = st == RC_OK;
+      if (!ok) CHECK_INT(st, RC_ERR_NOMEM);
+    }
+    CHECK(ok);
+    size_t na, nb;
+    uint8_t *a = read_file(tpath("oom_ref.onnx"), &na), *b = read_file(tpath("oom_out.onnx"), &nb);
+    CHECK(a && b && na == nb && !memcmp(a, b, na));
+    free(a);
+    free(b);
+    rc_model_free(m);
+  }
+  pool_free();
+}
+
+/* The unpacker's allocator stops at its cap, and counts frees. */
+static void test_unpack_cap(void) {
+  size_t n;
+  uint8_t *b = pack_model(mk_main_fixture(), &n);
+  rc__pb_alloc pa;
+  rc__pb_alloc_init(&pa, 1000);
+  CHECK(onnx__model_proto__unpack(&pa.base, n, b) == NULL);
+  CHECK(pa.hit_cap);
+  rc__pb_alloc_init(&pa, rc__pb_alloc_cap(n));
+  Onnx__ModelProto *m = onnx__model_proto__unpack(&pa.base, n, b);
+  CHECK(m != NULL && !pa.hit_cap && pa.used > 0);
+  if (m) onnx__model_proto__free_unpacked(m, &pa.base);
+  CHECK_INT(pa.used, 0);
+  free(b);
   pool_free();
 }
 
@@ -1325,6 +1372,7 @@ int main(void) {
   RUN(test_bad_files);
   RUN(test_corrupt);
   RUN(test_alloc_failures);
+  RUN(test_unpack_cap);
   RUN(test_graph_errors);
   RUN(test_bound_load);
   RUN(test_write_atomic);

@@ -74,7 +74,9 @@ typedef struct rc__decode_ctx {
 
 /* Decode t (named `what` in messages, e.g. "initializer 'w'") into out:
  * dtype, dims, data in native layout (int4/uint4 unpacked one per byte,
- * bool as 0/1). Raw and typed fields must hold exactly the element count. */
+ * bool as 0/1). Raw and typed fields must hold exactly the element count.
+ * On failure out->data may hold memory from ctx->alloc: the caller frees it
+ * (arena callers free nothing). */
 rc_status rc__tensor_decode(const Onnx__TensorProto *t, const char *what, const rc__decode_ctx *ctx,
                             rc_tensor *out, rc_err *e);
 
