@@ -1,6 +1,7 @@
 /* Reduce-family kernels. Expected values are the ONNX operator
  * specification's examples (ReduceSum/ReduceMean/ReduceMax "keepdims"
- * examples), named beside each check; gradients against finite differences. */
+ * examples, recalled from memory and re-derived by hand), named beside each
+ * check; gradients against finite differences. */
 #include "op_harness.h"
 #include "test.h"
 

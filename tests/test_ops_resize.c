@@ -1,7 +1,8 @@
 /* Resize / Upsample kernels. Expected values are either the ONNX operator
  * specification's examples (named) or computed here by hand from the spec's
  * coordinate formulas (each case spells the formula and its values).
- * Gradients against finite differences. */
+ * Gradients against finite differences. Spec example values are recalled
+ * from memory; each one was re-derived from the spec's formula before use. */
 #include "op_harness.h"
 #include "test.h"
 

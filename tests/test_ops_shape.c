@@ -1,6 +1,7 @@
 /* Shape-family kernels. Expected values come from the ONNX operator
  * specification (its worked examples and stated formulas), named beside each
- * check; gradients are checked against central finite differences. */
+ * check; gradients are checked against central finite differences. Example
+ * values are recalled from memory and were re-derived from the spec's text. */
 #include "op_harness.h"
 #include "test.h"
 
