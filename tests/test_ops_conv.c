@@ -267,6 +267,11 @@ static void conv_gradients(void) {
       {"Conv", 1, 3, 3, 3, 2, {7, 7}, {3, 3}, {1, 1}, {2, 2}, {2, 2, 2, 2}, {0}, 1, NULL},
       /* 1x1 stride-1 (plain GEMM path) */
       {"Conv", 3, 4, 5, 1, 2, {3, 4}, {1, 1}, {0}, {0}, {0}, {0}, 1, NULL},
+      /* depthwise 1x1 (direct, per-channel path) and grouped 1x1 */
+      {"Conv", 2, 4, 4, 4, 2, {3, 3}, {1, 1}, {0}, {0}, {0}, {0}, 1, NULL},
+      {"Conv", 2, 4, 6, 2, 2, {3, 2}, {1, 1}, {0}, {0}, {0}, {0}, 1, NULL},
+      /* depth multiplier 2 (one input channel, two outputs per group), strided */
+      {"Conv", 2, 3, 6, 3, 2, {5, 6}, {3, 3}, {2, 2}, {0}, {1, 1, 1, 1}, {0}, 1, NULL},
       /* 1-D, stride 2, SAME_UPPER */
       {"Conv", 2, 2, 3, 1, 1, {9}, {4}, {2}, {0}, {0}, {0}, 1, "SAME_UPPER"},
       /* 3-D */
@@ -277,6 +282,8 @@ static void conv_gradients(void) {
       {"ConvTranspose", 2, 3, 2, 1, 1, {5}, {3}, {1}, {2}, {1, 0}, {0}, 1, NULL},
       /* ConvTranspose: 1x1 stride-1 (plain GEMM path), no bias */
       {"ConvTranspose", 2, 3, 4, 1, 2, {2, 3}, {1, 1}, {0}, {0}, {0}, {0}, 0, NULL},
+      /* ConvTranspose: grouped 1x1 (direct) */
+      {"ConvTranspose", 2, 4, 6, 2, 2, {2, 3}, {1, 1}, {0}, {0}, {0}, {0}, 1, NULL},
       /* ConvTranspose: depthwise, SAME_LOWER */
       {"ConvTranspose", 1, 3, 3, 3, 2, {3, 3}, {2, 3}, {2, 2}, {0}, {0}, {0}, 1, "SAME_LOWER"},
   };

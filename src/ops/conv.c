@@ -406,7 +406,7 @@ static rc_status conv_geometry(const rc_node *n, const conv_params *cp, const rc
   g->direct = g->K == 1 && prod3(p->s) == 1 && !p->pad[0] && !p->pad[1] && !p->pad[2] &&
               g->in_sp == g->out_sp;
   /* The column matrix of one group must stay addressable. */
-  int64_t rows = (cp->transpose ? g->Mg : g->Cg) * g->K;
+  int64_t rows = (cp->transpose ? g->M : g->C) * g->K;
   if (rows > 0 && prod3(p->pos) > RC_MAX_ELEMENTS / rows)
     return rc__fail(e, RC_ERR_LIMIT, "node '%s' (%s): unfolded patch matrix too large", n->label, n->op_type);
   return RC_OK;
@@ -438,7 +438,9 @@ static size_t conv_workspace(const rc_kernel *k, int backward) {
   geometry_of(k, &g);
   if (g.direct) return 0;
   const conv_params *cp = k->params;
-  int64_t rows = (cp->transpose ? g.Mg : g.Cg) * g.K;
+  /* One sample's column matrix, all groups: unfolding and folding then run
+   * once per sample over every channel (more rows to spread over threads). */
+  int64_t rows = (cp->transpose ? g.M : g.C) * g.K;
   return sizeof(float) * (size_t)rows * (size_t)prod3(g.p.pos);
 }
 
@@ -466,31 +468,83 @@ static void bias_grad(float *db, const float *dy, int64_t N, int64_t M, int64_t 
   }
 }
 
+/* Depthwise (one input and one output channel per group): per channel a
+ * K-tap weighted sum of column rows, spread over channels. No GEMM of one row. */
+static int depthwise(const conv_geom *g) { return g->Cg == 1 && g->Mg == 1 && g->G > 1; }
+
+/* y (C, P) = bias + sum_k w[c,k] * col[c*K+k] */
+static void depthwise_forward(float *y, const float *col, const float *w, const float *b, int64_t C,
+                              int64_t K, int64_t P) {
+#pragma omp parallel for schedule(static) if (C * K * P > 32768)
+  for (int64_t c = 0; c < C; c++) {
+    float *yc = y + c * P;
+    float bias = b ? b[c] : 0.0f;
+    for (int64_t i = 0; i < P; i++) yc[i] = bias;
+    for (int64_t kk = 0; kk < K; kk++) {
+      const float wv = w[c * K + kk], *row = col + (c * K + kk) * P;
+      for (int64_t i = 0; i < P; i++) yc[i] += wv * row[i];
+    }
+  }
+}
+
+/* dw[c,k] += <dy[c], col[c*K+k]> */
+static void depthwise_dw(float *dw, const float *col, const float *dy, int64_t C, int64_t K, int64_t P) {
+#pragma omp parallel for schedule(static) if (C * K * P > 32768)
+  for (int64_t r = 0; r < C * K; r++) {
+    const float *row = col + r * P, *d = dy + (r / K) * P;
+    float acc = 0;
+    for (int64_t i = 0; i < P; i++) acc += d[i] * row[i];
+    dw[r] += acc;
+  }
+}
+
+/* dcol[c*K+k] = w[c,k] * dy[c] */
+static void depthwise_dcol(float *dcol, const float *w, const float *dy, int64_t C, int64_t K, int64_t P) {
+#pragma omp parallel for schedule(static) if (C * K * P > 32768)
+  for (int64_t r = 0; r < C * K; r++) {
+    const float wv = w[r], *d = dy + (r / K) * P;
+    float *row = dcol + r * P;
+    for (int64_t i = 0; i < P; i++) row[i] = wv * d[i];
+  }
+}
+
+/* dx[c] += w[c] * dy[c] (depthwise 1x1) */
+static void depthwise_axpy(float *dx, const float *w, const float *dy, int64_t C, int64_t P) {
+#pragma omp parallel for schedule(static) if (C * P > 32768)
+  for (int64_t c = 0; c < C; c++)
+    for (int64_t i = 0; i < P; i++) dx[c * P + i] += w[c] * dy[c * P + i];
+}
+
 /* x (N,C,D...), W (M,C/G,k...), B (M) -> y (N,M,O...).
- * Per sample and group: y_g (Mg, P) = W_g (Mg, Cg*K) . col (Cg*K, P). */
+ * Per sample: col (C*K, P) = unfold(x_n); per group
+ * y_g (Mg, P) = W_g (Mg, Cg*K) . col_g (Cg*K, P). */
 static rc_status conv_forward(const rc_kernel *k, rc_err *e) {
   conv_geom g;
   geometry_of(k, &g);
   const float *x = k->in[0]->data, *w = k->in[1]->data;
   const rc_tensor *bt = opt_in(k, 2);
   const float *b = bt ? bt->data : NULL;
-  float *y = k->out[0]->data, *col = k->work;
+  float *y = k->out[0]->data;
   const int64_t CgK = g.Cg * g.K, P = g.out_sp;
   if (!g.N || !g.M || !P) return RC_OK;
-  for (int64_t n = 0; n < g.N; n++)
-    for (int64_t grp = 0; grp < g.G; grp++) {
-      const float *xg = x + (n * g.C + grp * g.Cg) * g.in_sp;
-      float *yg = y + (n * g.M + grp * g.Mg) * P;
-      fill_bias(yg, b ? b + grp * g.Mg : NULL, g.Mg, P);
-      if (!CgK) continue;
-      const float *cm = xg;
-      if (!g.direct) {
-        unfold(col, xg, &g.p, g.Cg);
-        cm = col;
-      }
-      cblas_sgemm(CblasRowMajor, CblasNoTrans, CblasNoTrans, (int)g.Mg, (int)P, (int)CgK, 1.0f,
-                  w + grp * g.Mg * CgK, (int)CgK, cm, (int)P, 1.0f, yg, (int)P);
+  for (int64_t n = 0; n < g.N; n++) {
+    const float *col = x + n * g.C * g.in_sp;
+    float *yn = y + n * g.M * P;
+    if (!g.direct && CgK) {
+      unfold(k->work, col, &g.p, g.C);
+      col = k->work;
     }
+    if (depthwise(&g)) {
+      depthwise_forward(yn, col, w, b, g.C, g.K, P);
+      continue;
+    }
+    fill_bias(yn, b, g.M, P);
+    if (!CgK) continue;
+    for (int64_t grp = 0; grp < g.G; grp++)
+      cblas_sgemm(CblasRowMajor, CblasNoTrans, CblasNoTrans, (int)g.Mg, (int)P, (int)CgK, 1.0f,
+                  w + grp * g.Mg * CgK, (int)CgK, col + grp * CgK * P, (int)P, 1.0f, yn + grp * g.Mg * P,
+                  (int)P);
+  }
   return RC_OK;
 }
 
@@ -503,43 +557,60 @@ static void conv_backward(const rc_kernel *k) {
   float *dx = k->din[0] ? k->din[0]->data : NULL;
   float *dw = k->din[1] ? k->din[1]->data : NULL;
   float *db = k->n_in > 2 && k->in[2] && k->din[2] ? k->din[2]->data : NULL;
-  float *col = k->work;
+  float *work = k->work;
   const int64_t CgK = g.Cg * g.K, P = g.out_sp;
   if (!g.N || !g.M || !P) return;
   if (db) bias_grad(db, dy, g.N, g.M, P);
   if (!CgK || (!dx && !dw)) return;
-  for (int64_t n = 0; n < g.N; n++)
-    for (int64_t grp = 0; grp < g.G; grp++) {
-      const float *xg = x + (n * g.C + grp * g.Cg) * g.in_sp;
-      const float *dyg = dy + (n * g.M + grp * g.Mg) * P;
-      const float *wg = w + grp * g.Mg * CgK;
-      if (dw) {
-        const float *cm = xg;
-        if (!g.direct) {
-          unfold(col, xg, &g.p, g.Cg);
-          cm = col;
-        }
-        /* dW_g (Mg, CgK) += dy_g (Mg, P) . col^T */
-        cblas_sgemm(CblasRowMajor, CblasNoTrans, CblasTrans, (int)g.Mg, (int)CgK, (int)P, 1.0f, dyg,
-                    (int)P, cm, (int)P, 1.0f, dw + grp * g.Mg * CgK, (int)CgK);
+  for (int64_t n = 0; n < g.N; n++) {
+    const float *dyn = dy + n * g.M * P;
+    if (dw) {
+      const float *col = x + n * g.C * g.in_sp;
+      if (!g.direct) {
+        unfold(work, col, &g.p, g.C);
+        col = work;
       }
-      if (dx) {
-        float *dxg = dx + (n * g.C + grp * g.Cg) * g.in_sp;
-        /* dcol (CgK, P) = W_g^T . dy_g, folded back onto dx */
-        if (g.direct) {
-          cblas_sgemm(CblasRowMajor, CblasTrans, CblasNoTrans, (int)g.Cg, (int)P, (int)g.Mg, 1.0f, wg,
-                      (int)CgK, dyg, (int)P, 1.0f, dxg, (int)P);
-        } else {
-          cblas_sgemm(CblasRowMajor, CblasTrans, CblasNoTrans, (int)CgK, (int)P, (int)g.Mg, 1.0f, wg,
-                      (int)CgK, dyg, (int)P, 0.0f, col, (int)P);
-          fold_add(dxg, col, &g.p, g.Cg);
-        }
+      if (depthwise(&g)) {
+        depthwise_dw(dw, col, dyn, g.C, g.K, P);
+      } else {
+        /* dW_g (Mg, CgK) += dy_g (Mg, P) . col_g^T */
+        for (int64_t grp = 0; grp < g.G; grp++)
+          cblas_sgemm(CblasRowMajor, CblasNoTrans, CblasTrans, (int)g.Mg, (int)CgK, (int)P, 1.0f,
+                      dyn + grp * g.Mg * P, (int)P, col + grp * CgK * P, (int)P, 1.0f, dw + grp * g.Mg * CgK,
+                      (int)CgK);
       }
     }
+    if (dx) {
+      float *dxn = dx + n * g.C * g.in_sp;
+      if (g.direct) {
+        /* The column matrix is x itself: dx_g (Cg, P) += W_g^T . dy_g. */
+        if (depthwise(&g)) {
+          depthwise_axpy(dxn, w, dyn, g.C, P);
+          continue;
+        }
+        for (int64_t grp = 0; grp < g.G; grp++)
+          cblas_sgemm(CblasRowMajor, CblasTrans, CblasNoTrans, (int)g.Cg, (int)P, (int)g.Mg, 1.0f,
+                      w + grp * g.Mg * CgK, (int)CgK, dyn + grp * g.Mg * P, (int)P, 1.0f,
+                      dxn + grp * g.Cg * P, (int)P);
+        continue;
+      }
+      /* dcol_g (CgK, P) = W_g^T . dy_g, then folded back onto dx */
+      if (depthwise(&g)) {
+        depthwise_dcol(work, w, dyn, g.C, g.K, P);
+      } else {
+        for (int64_t grp = 0; grp < g.G; grp++)
+          cblas_sgemm(CblasRowMajor, CblasTrans, CblasNoTrans, (int)CgK, (int)P, (int)g.Mg, 1.0f,
+                      w + grp * g.Mg * CgK, (int)CgK, dyn + grp * g.Mg * P, (int)P, 0.0f, work + grp * CgK * P,
+                      (int)P);
+      }
+      fold_add(dxn, work, &g.p, g.C);
+    }
+  }
 }
 
 /* x (N,C,D...), W (C,M/G,k...), B (M) -> y (N,M,O...).
- * Per sample and group: col (Mg*K, D) = W_g^T . x_g (Cg, D), folded onto y_g. */
+ * Per sample and group: col_g (Mg*K, D) = W_g^T . x_g (Cg, D); the column
+ * matrix of all groups is then folded onto y_n at once. */
 static rc_status convt_forward(const rc_kernel *k, rc_err *e) {
   conv_geom g;
   geometry_of(k, &g);
@@ -549,22 +620,19 @@ static rc_status convt_forward(const rc_kernel *k, rc_err *e) {
   float *y = k->out[0]->data, *col = k->work;
   const int64_t MgK = g.Mg * g.K, D = g.in_sp, P = g.out_sp;
   if (!g.N || !g.M || !P) return RC_OK;
-  for (int64_t n = 0; n < g.N; n++)
+  for (int64_t n = 0; n < g.N; n++) {
+    float *yn = y + n * g.M * P;
+    fill_bias(yn, b, g.M, P);
+    if (!g.Cg || !D) continue;
     for (int64_t grp = 0; grp < g.G; grp++) {
-      const float *xg = x + (n * g.C + grp * g.Cg) * D;
-      const float *wg = w + grp * g.Cg * MgK;
-      float *yg = y + (n * g.M + grp * g.Mg) * P;
-      fill_bias(yg, b ? b + grp * g.Mg : NULL, g.Mg, P);
-      if (!g.Cg || !D) continue;
-      if (g.direct) {
-        cblas_sgemm(CblasRowMajor, CblasTrans, CblasNoTrans, (int)g.Mg, (int)D, (int)g.Cg, 1.0f, wg,
-                    (int)MgK, xg, (int)D, 1.0f, yg, (int)D);
-      } else {
-        cblas_sgemm(CblasRowMajor, CblasTrans, CblasNoTrans, (int)MgK, (int)D, (int)g.Cg, 1.0f, wg,
-                    (int)MgK, xg, (int)D, 0.0f, col, (int)D);
-        fold_add(yg, col, &g.p, g.Mg);
-      }
+      const float *xg = x + (n * g.C + grp * g.Cg) * D, *wg = w + grp * g.Cg * MgK;
+      /* direct: y_g += W_g^T x_g without a column matrix */
+      cblas_sgemm(CblasRowMajor, CblasTrans, CblasNoTrans, (int)MgK, (int)D, (int)g.Cg, 1.0f, wg, (int)MgK,
+                  xg, (int)D, g.direct ? 1.0f : 0.0f, g.direct ? yn + grp * g.Mg * P : col + grp * MgK * D,
+                  (int)D);
     }
+    if (!g.direct) fold_add(yn, col, &g.p, g.M);
+  }
   return RC_OK;
 }
 
@@ -577,30 +645,28 @@ static void convt_backward(const rc_kernel *k) {
   float *dx = k->din[0] ? k->din[0]->data : NULL;
   float *dw = k->din[1] ? k->din[1]->data : NULL;
   float *db = k->n_in > 2 && k->in[2] && k->din[2] ? k->din[2]->data : NULL;
-  float *col = k->work;
   const int64_t MgK = g.Mg * g.K, D = g.in_sp, P = g.out_sp;
   if (!g.N || !g.M || !P) return;
   if (db) bias_grad(db, dy, g.N, g.M, P);
   if (!g.Cg || !D || (!dx && !dw)) return;
-  for (int64_t n = 0; n < g.N; n++)
+  for (int64_t n = 0; n < g.N; n++) {
+    const float *col = dy + n * g.M * P;
+    if (!g.direct) {
+      unfold(k->work, col, &g.p, g.M);
+      col = k->work;
+    }
     for (int64_t grp = 0; grp < g.G; grp++) {
-      const float *dyg = dy + (n * g.M + grp * g.Mg) * P;
-      const float *cm = dyg;
-      if (!g.direct) {
-        unfold(col, dyg, &g.p, g.Mg);
-        cm = col;
-      }
-      /* dx_g (Cg, D) += W_g (Cg, MgK) . col (MgK, D) */
+      const float *colg = col + grp * MgK * D;
+      /* dx_g (Cg, D) += W_g (Cg, MgK) . col_g (MgK, D) */
       if (dx)
         cblas_sgemm(CblasRowMajor, CblasNoTrans, CblasNoTrans, (int)g.Cg, (int)D, (int)MgK, 1.0f,
-                    w + grp * g.Cg * MgK, (int)MgK, cm, (int)D, 1.0f, dx + (n * g.C + grp * g.Cg) * D,
-                    (int)D);
-      /* dW_g (Cg, MgK) += x_g (Cg, D) . col^T */
+                    w + grp * g.Cg * MgK, (int)MgK, colg, (int)D, 1.0f, dx + (n * g.C + grp * g.Cg) * D, (int)D);
+      /* dW_g (Cg, MgK) += x_g (Cg, D) . col_g^T */
       if (dw)
         cblas_sgemm(CblasRowMajor, CblasNoTrans, CblasTrans, (int)g.Cg, (int)MgK, (int)D, 1.0f,
-                    x + (n * g.C + grp * g.Cg) * D, (int)D, cm, (int)D, 1.0f, dw + grp * g.Cg * MgK,
-                    (int)MgK);
+                    x + (n * g.C + grp * g.Cg) * D, (int)D, colg, (int)D, 1.0f, dw + grp * g.Cg * MgK, (int)MgK);
     }
+  }
 }
 
 const rc_op_def rc__ops_conv[] = {
