@@ -1145,6 +1145,19 @@ static void test_write_atomic(void) {
   CHECK(b && n == 7 && !memcmp(b, "second!", 7));
   free(b);
   CHECK_INT(count_hidden(tpath("w")), 0);
+  /* A bare file name writes into the current folder. */
+  char cwd[4096];
+  CHECK(getcwd(cwd, sizeof cwd) != NULL);
+  CHECK(chdir(tpath("w")) == 0);
+  CHECK_INT(rc__write_atomic("bare.bin", "xy", 2, &e), RC_OK);
+  CHECK(chdir(cwd) == 0);
+  CHECK_INT(access(tpath("w/bare.bin"), F_OK), 0);
+  const char *cases[][2] = {{"a", "."}, {"/x", "/"}, {"d/e/f", "d/e"}, {"./f", "."}};
+  for (int i = 0; i < 4; i++) {
+    char *d = rc__path_dir(cases[i][0]);
+    CHECK(d && !strcmp(d, cases[i][1]));
+    rc__free(d);
+  }
   /* A missing folder. */
   CHECK_INT(rc__write_atomic(tpath("w/missing/out.bin"), "x", 1, &e), RC_ERR_IO);
   CHECK_STR_CONTAINS(e.msg, "w/missing/out.bin");

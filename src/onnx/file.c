@@ -65,6 +65,17 @@ rc_status rc__file_read_all(const char *path, size_t max_bytes, uint8_t **data, 
   return RC_OK;
 }
 
+char *rc__path_dir(const char *path) {
+  const char *slash = strrchr(path, '/');
+  size_t n = !slash ? 0 : slash == path ? 1 : (size_t)(slash - path);
+  char *d = rc__malloc(n + 2);
+  if (!d) return NULL;
+  if (n) memcpy(d, path, n);
+  else strcpy(d, ".");
+  if (n) d[n] = '\0';
+  return d;
+}
+
 /* ---- capped allocator ---- */
 
 /* Each allocation carries a header with its size so frees can be counted. */
@@ -176,20 +187,14 @@ rc_status rc__write_atomic(const char *path, const void *data, size_t n, rc_err 
   size_t base_len = strlen(base);
   if (base_len > 200) base_len = 200;
   char *tmp = rc__malloc(len + 16);
-  char *dir = rc__malloc(dir_len + 2);
+  char *dir = rc__path_dir(path);
   if (!tmp || !dir) {
     rc__free(tmp);
     rc__free(dir);
     return rc__fail(e, RC_ERR_NOMEM, "%s: out of memory", path);
   }
-  if (slash) {
-    memcpy(dir, path, dir_len ? dir_len : 1); /* "/x" -> "/" */
-    dir[dir_len ? dir_len : 1] = '\0';
-    snprintf(tmp, len + 16, "%.*s/.%.*s.XXXXXX", (int)dir_len, path, (int)base_len, base);
-  } else {
-    strcpy(dir, ".");
-    snprintf(tmp, len + 16, ".%.*s.XXXXXX", (int)base_len, base);
-  }
+  if (slash) snprintf(tmp, len + 16, "%.*s/.%.*s.XXXXXX", (int)dir_len, path, (int)base_len, base);
+  else snprintf(tmp, len + 16, ".%.*s.XXXXXX", (int)base_len, base);
   rc_status st = RC_OK;
   mode_t mode = new_file_mode(path);
   int fd = mkstemp(tmp);

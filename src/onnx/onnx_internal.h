@@ -23,6 +23,10 @@
  * max_bytes before reading. Errors name the path. */
 rc_status rc__file_read_all(const char *path, size_t max_bytes, uint8_t **data, size_t *n, rc_err *e);
 
+/* The folder part of path ("." when there is none, "/" for "/x"), from
+ * rc__malloc; NULL when out of memory. */
+char *rc__path_dir(const char *path);
+
 /* A protobuf-c allocator that goes through rc__malloc and refuses to hand out
  * more than `cap` bytes in total, so a small hostile file cannot make the
  * unpacker allocate without bound. */

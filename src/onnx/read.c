@@ -202,20 +202,32 @@ static rc_status add_initializers(builder *b, const Onnx__GraphProto *gp) {
   return RC_OK;
 }
 
+/* A graph input or output must be a dense tensor of a dtype we hold;
+ * *dtype is 0 when the file does not say. */
+static rc_status check_tensor_type(builder *b, const char *role, const char *name,
+                                   const Onnx__TypeProto *tp, int32_t *dtype) {
+  *dtype = 0;
+  if (!tp) return RC_OK;
+  if (tp->value_case != ONNX__TYPE_PROTO__VALUE_TENSOR_TYPE || !tp->tensor_type)
+    return rc__fail(b->e, RC_ERR_UNSUPPORTED,
+                    "%s: %s '%s' is not a dense tensor (sequence, map, optional or sparse values "
+                    "are not supported)", b->m->path, role, name);
+  int32_t dt = tp->tensor_type->has_elem_type ? tp->tensor_type->elem_type : 0;
+  if (dt && !rc__onnx_dtype_supported(dt))
+    return rc__fail(b->e, RC_ERR_UNSUPPORTED, "%s: %s '%s' has data type %d (%s), which is not "
+                    "supported", b->m->path, role, name, (int)dt, rc__onnx_dtype_label(dt));
+  *dtype = dt;
+  return RC_OK;
+}
+
 static rc_status decl_from_type(builder *b, const char *name, const Onnx__TypeProto *tp,
                                 rc_tensor *decl) {
   memset(decl, 0, sizeof *decl);
   decl->rank = -1;
+  int32_t dt;
+  RC_TRY(check_tensor_type(b, "graph input", name, tp, &dt));
   if (!tp) return RC_OK;
-  if (tp->value_case != ONNX__TYPE_PROTO__VALUE_TENSOR_TYPE || !tp->tensor_type)
-    return rc__fail(b->e, RC_ERR_UNSUPPORTED,
-                    "%s: graph input '%s' is not a dense tensor (sequence, map, optional or sparse "
-                    "inputs are not supported)", b->m->path, name);
   const Onnx__TypeProto__Tensor *tt = tp->tensor_type;
-  int32_t dt = tt->has_elem_type ? tt->elem_type : 0;
-  if (dt && !rc__onnx_dtype_supported(dt))
-    return rc__fail(b->e, RC_ERR_UNSUPPORTED, "%s: graph input '%s' has data type %d (%s), which is "
-                    "not supported", b->m->path, name, (int)dt, rc__onnx_dtype_label(dt));
   decl->dtype = (rc_dtype)dt;
   if (!tt->shape) return RC_OK;
   int max_rank = b->lim->max_rank > 0 && b->lim->max_rank < RC_MAX_RANK ? b->lim->max_rank
@@ -430,16 +442,8 @@ static rc_status add_outputs(builder *b, const Onnx__GraphProto *gp) {
   for (size_t i = 0; i < gp->n_output; i++) {
     const char *name = str_or_empty(gp->output[i]->name);
     if (!*name) return rc__fail(b->e, RC_ERR_FORMAT, "%s: graph output %zu has no name", b->m->path, i);
-    const Onnx__TypeProto *tp = gp->output[i]->type;
-    if (tp && tp->value_case != ONNX__TYPE_PROTO__VALUE_TENSOR_TYPE)
-      return rc__fail(b->e, RC_ERR_UNSUPPORTED,
-                      "%s: graph output '%s' is not a dense tensor (sequence, map, optional or "
-                      "sparse outputs are not supported)", b->m->path, name);
-    int32_t dt = tp && tp->tensor_type->has_elem_type ? tp->tensor_type->elem_type : 0;
-    if (dt && !rc__onnx_dtype_supported(dt))
-      return rc__fail(b->e, RC_ERR_UNSUPPORTED,
-                      "%s: graph output '%s' has data type %d (%s), which is not supported",
-                      b->m->path, name, (int)dt, rc__onnx_dtype_label(dt));
+    int32_t dt;
+    RC_TRY(check_tensor_type(b, "graph output", name, gp->output[i]->type, &dt));
     RC_TRY(value_get(b, name, &b->g->outputs[i]));
   }
   b->g->n_outputs = (int)gp->n_output;
@@ -468,15 +472,6 @@ static rc_status build_graph(builder *b, const Onnx__ModelProto *mp) {
   return add_outputs(b, gp);
 }
 
-static rc_status dir_of(const char *path, char **out) {
-  *out = rc__strdup(path);
-  if (!*out) return RC_ERR_NOMEM;
-  char *slash = strrchr(*out, '/');
-  if (!slash) strcpy(*out, "."); /* fits: path is non-empty */
-  else *(slash == *out ? slash + 1 : slash) = '\0';
-  return RC_OK;
-}
-
 rc_status rc__model_load_unbound(rc_model **out, const char *path, const rc_load_limits *limits,
                                  rc_err *e) {
   *out = NULL;
@@ -495,7 +490,8 @@ rc_status rc__model_load_unbound(rc_model **out, const char *path, const rc_load
   rc__arena_init(&m->graph.arena, 0);
   m->file_bytes = n;
   m->path = rc__strdup(path);
-  if (!m->path || dir_of(path, &m->dir) != RC_OK) {
+  m->dir = rc__path_dir(path);
+  if (!m->path || !m->dir) {
     rc__free(buf);
     rc_model_free(m);
     return rc__fail(e, RC_ERR_NOMEM, "%s: out of memory", path);

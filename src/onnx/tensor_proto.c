@@ -432,14 +432,11 @@ rc_status rc__tensorproto_file_read(const char *path, rc_tensor *out, void **own
     return rc__fail(e, pa.hit_cap ? RC_ERR_LIMIT : RC_ERR_FORMAT, "%s: %s", path,
                     pa.hit_cap ? "message needs more memory than its size allows"
                                : "not an ONNX TensorProto file");
-  char *dir = rc__strdup(path);
+  char *dir = rc__path_dir(path);
   if (!dir) {
     onnx__tensor_proto__free_unpacked(t, &pa.base);
     return rc__fail(e, RC_ERR_NOMEM, "%s: out of memory", path);
   }
-  char *slash = strrchr(dir, '/');
-  if (slash) *(slash == dir ? slash + 1 : slash) = '\0';
-  else strcpy(dir, ".");
   char what[320];
   snprintf(what, sizeof what, "tensor '%.256s'", t->name ? t->name : "");
   rc__decode_ctx ctx = {path, dir, max_bytes, NULL, 0, RC_MAX_RANK, malloc_cb, NULL};

@@ -110,18 +110,9 @@ static int same_file(const char *a, const char *b) {
   return stat(a, &sa) == 0 && stat(b, &sb) == 0 && sa.st_dev == sb.st_dev && sa.st_ino == sb.st_ino;
 }
 
-static char *parent_dir(const char *path) {
-  char *d = rc__strdup(path);
-  if (!d) return NULL;
-  char *slash = strrchr(d, '/');
-  if (!slash) strcpy(d, ".");
-  else *(slash == d ? slash + 1 : slash) = '\0';
-  return d;
-}
-
 /* 1 when the output lands in the folder the model's external data lives in. */
 static rc_status same_folder(const rc_model *m, const char *path, int *same, rc_err *e) {
-  char *d = parent_dir(path);
+  char *d = rc__path_dir(path);
   if (!d) return rc__fail(e, RC_ERR_NOMEM, "%s: out of memory", path);
   *same = same_file(d, m->dir);
   rc__free(d);
