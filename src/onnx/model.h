@@ -42,8 +42,12 @@ rc_status rc_model_load(rc_model **out, const char *path, const rc_load_limits *
  * `changed` (value indices) replaced by their current data in graph.values
  * (converted back to the file's dtype: float stays float32, int8/uint8 as
  * bytes, int4/uint4 packed two per byte, int32 as int32). Unchanged
- * initializers keep their exact bytes, external ones are embedded only when
- * changed. The write goes to a temp file in path's folder, is flushed and
+ * initializers keep their exact bytes. External data: changed initializers
+ * are embedded; unchanged ones stay references when path is in the model's
+ * own folder (refusing to overwrite a referenced data file) and are embedded
+ * when it is anywhere else, where the reference would dangle. NaN in a
+ * changed float initializer, or a float value off an integer initializer's
+ * grid or range, is refused. The write goes to a temp file in path's folder, is flushed and
  * fsync'd, then renamed over path; on any failure path is left as it was.
  * Refuses to write over the file the model was read from. */
 rc_status rc_model_save(rc_model *m, const char *path, const int *changed, int n_changed, rc_err *e);
