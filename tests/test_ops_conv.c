@@ -3,27 +3,13 @@
  * gradient checks over a spread of attribute combinations. */
 #include "op_harness.h"
 #include "test.h"
+#include "op_expect.h"
 
 static void iota(float *x, int64_t n, float start) {
   for (int64_t i = 0; i < n; i++) x[i] = start + (float)i;
 }
 static void ones(float *x, int64_t n) {
   for (int64_t i = 0; i < n; i++) x[i] = 1.0f;
-}
-
-/* Runs a case and compares output 0 with want (exact small integers). */
-static void expect_out(oh_case *c, const int64_t *dims, int rank, const float *want) {
-  rc_err e = {0};
-  rc_status st = oh_run(c, &e);
-  CHECK_INT(st, RC_OK);
-  if (st != RC_OK) {
-    fprintf(stderr, "  %s\n", e.msg);
-    return;
-  }
-  CHECK_INT(c->out_t[0].rank, rank);
-  for (int i = 0; i < rank && i < c->out_t[0].rank; i++) CHECK_INT(c->out_t[0].dims[i], dims[i]);
-  int64_t n = rc_tensor_numel(&c->out_t[0]);
-  for (int64_t i = 0; i < n; i++) CHECK_NEAR(oh_out_f(c, 0)[i], want[i], 1e-5, 1e-6);
 }
 
 /* ONNX spec, Conv example "conv_with_strides_padding": x = 0..34 as (1,1,7,5),
@@ -40,7 +26,7 @@ static void conv_spec_strides_padding(void) {
   oh_attr_ints(&c, "pads", 4, (int64_t[]){1, 1, 1, 1});
   oh_attr_ints(&c, "strides", 2, (int64_t[]){2, 2});
   const float want[] = {12, 27, 24, 63, 108, 81, 123, 198, 141, 112, 177, 124};
-  expect_out(&c, (int64_t[]){1, 1, 4, 3}, 4, want);
+  oe_expect_out(&c, (int64_t[]){1, 1, 4, 3}, 4, want);
   oh_free(&c);
 }
 
@@ -55,7 +41,7 @@ static void conv_spec_strides_no_padding(void) {
   oh_input(&c, RC_DTYPE_FLOAT, 4, (int64_t[]){1, 1, 3, 3}, w);
   oh_attr_ints(&c, "strides", 2, (int64_t[]){2, 2});
   const float want[] = {54, 72, 144, 162, 234, 252};
-  expect_out(&c, (int64_t[]){1, 1, 3, 2}, 4, want);
+  oe_expect_out(&c, (int64_t[]){1, 1, 3, 2}, 4, want);
   oh_free(&c);
 }
 
@@ -73,7 +59,7 @@ static void conv_spec_autopad_same(void) {
   oh_attr_string(&c, "auto_pad", "SAME_LOWER");
   oh_attr_ints(&c, "strides", 2, (int64_t[]){2, 2});
   const float want[] = {12, 27, 24, 63, 108, 81, 72, 117, 84};
-  expect_out(&c, (int64_t[]){1, 1, 3, 3}, 4, want);
+  oe_expect_out(&c, (int64_t[]){1, 1, 3, 3}, 4, want);
   oh_free(&c);
 }
 
@@ -90,7 +76,7 @@ static void conv_1d_auto_pad_modes(void) {
     oh_input(&c, RC_DTYPE_FLOAT, 3, (int64_t[]){1, 1, 4}, (float[]){1, 2, 3, 4});
     oh_input(&c, RC_DTYPE_FLOAT, 3, (int64_t[]){1, 1, 2}, (float[]){1, 1});
     oh_attr_string(&c, "auto_pad", modes[m]);
-    expect_out(&c, (int64_t[]){1, 1, len[m]}, 3, want[m]);
+    oe_expect_out(&c, (int64_t[]){1, 1, len[m]}, 3, want[m]);
     oh_free(&c);
   }
 }
@@ -105,7 +91,7 @@ static void conv_depthwise_bias(void) {
   oh_input(&c, RC_DTYPE_FLOAT, 1, (int64_t[]){2}, (float[]){1, -1});
   oh_attr_int(&c, "group", 2);
   const float want[] = {3, 5, 7, 9, 14, 17, 20, 23};
-  expect_out(&c, (int64_t[]){1, 2, 2, 2}, 4, want);
+  oe_expect_out(&c, (int64_t[]){1, 2, 2, 2}, 4, want);
   oh_free(&c);
 }
 
@@ -118,7 +104,7 @@ static void conv_1d_dilation(void) {
   oh_input(&c, RC_DTYPE_FLOAT, 3, (int64_t[]){1, 1, 2}, (float[]){1, 1});
   oh_attr_ints(&c, "dilations", 1, (int64_t[]){2});
   const float want[] = {4, 6, 8};
-  expect_out(&c, (int64_t[]){1, 1, 3}, 3, want);
+  oe_expect_out(&c, (int64_t[]){1, 1, 3}, 3, want);
   oh_free(&c);
 }
 
@@ -133,7 +119,7 @@ static void convt_spec_1d(void) {
   oh_input(&c, RC_DTYPE_FLOAT, 3, (int64_t[]){1, 1, 3}, (float[]){0, 1, 2});
   oh_input(&c, RC_DTYPE_FLOAT, 3, (int64_t[]){1, 2, 3}, w);
   const float want[] = {0, 1, 3, 3, 2, 0, 1, 3, 3, 2};
-  expect_out(&c, (int64_t[]){1, 2, 5}, 3, want);
+  oe_expect_out(&c, (int64_t[]){1, 2, 5}, 3, want);
   oh_free(&c);
 }
 
@@ -151,7 +137,7 @@ static void convt_spec_2d(void) {
   float want[50];
   memcpy(want, ch, sizeof ch);
   memcpy(want + 25, ch, sizeof ch);
-  expect_out(&c, (int64_t[]){1, 2, 5, 5}, 4, want);
+  oe_expect_out(&c, (int64_t[]){1, 2, 5, 5}, 4, want);
   oh_free(&c);
 }
 
@@ -204,7 +190,7 @@ static void convt_1d_shapes_and_pads(void) {
     float want[16];
     scatter_1d(want, cases[t].out, x, 4, w, 3, 2, 1, cases[t].pb);
     int before = test_failed_checks_;
-    expect_out(&c, (int64_t[]){1, 1, cases[t].out}, 3, want);
+    oe_expect_out(&c, (int64_t[]){1, 1, cases[t].out}, 3, want);
     if (test_failed_checks_ != before) fprintf(stderr, "  in case '%s'\n", cases[t].what);
     oh_free(&c);
   }
@@ -320,13 +306,6 @@ static void conv_backward_accumulates(void) {
 
 /* ---- refusals: one clear error naming the node ---- */
 
-static void expect_refused(oh_case *c, const char *needle) {
-  rc_err e = {0};
-  CHECK(oh_run(c, &e) != RC_OK);
-  CHECK_STR_CONTAINS(e.msg, c->node.label);
-  CHECK_STR_CONTAINS(e.msg, needle);
-}
-
 static void conv_refusals(void) {
   oh_case c;
   float x[16] = {0}, w[4] = {0};
@@ -334,41 +313,41 @@ static void conv_refusals(void) {
   oh_init(&c, "Conv", 13);
   oh_input(&c, RC_DTYPE_INT8, 4, (int64_t[]){1, 1, 4, 4}, NULL);
   oh_input(&c, RC_DTYPE_FLOAT, 4, (int64_t[]){1, 1, 2, 2}, w);
-  expect_refused(&c, "only float");
+  oe_expect_refused(&c, "only float");
   oh_free(&c);
   /* unknown auto_pad */
   oh_init(&c, "Conv", 13);
   oh_input(&c, RC_DTYPE_FLOAT, 4, (int64_t[]){1, 1, 4, 4}, x);
   oh_input(&c, RC_DTYPE_FLOAT, 4, (int64_t[]){1, 1, 2, 2}, w);
   oh_attr_string(&c, "auto_pad", "SAME");
-  expect_refused(&c, "auto_pad");
+  oe_expect_refused(&c, "auto_pad");
   oh_free(&c);
   /* channels not matching the group count */
   oh_init(&c, "Conv", 13);
   oh_input(&c, RC_DTYPE_FLOAT, 4, (int64_t[]){1, 1, 4, 4}, x);
   oh_input(&c, RC_DTYPE_FLOAT, 4, (int64_t[]){1, 1, 2, 2}, w);
   oh_attr_int(&c, "group", 2);
-  expect_refused(&c, "groups");
+  oe_expect_refused(&c, "groups");
   oh_free(&c);
   /* kernel larger than the input */
   oh_init(&c, "Conv", 13);
   oh_input(&c, RC_DTYPE_FLOAT, 4, (int64_t[]){1, 1, 1, 16}, x);
   oh_input(&c, RC_DTYPE_FLOAT, 4, (int64_t[]){1, 1, 2, 2}, w);
-  expect_refused(&c, "smaller than the window");
+  oe_expect_refused(&c, "smaller than the window");
   oh_free(&c);
   /* kernel_shape disagreeing with W */
   oh_init(&c, "Conv", 13);
   oh_input(&c, RC_DTYPE_FLOAT, 4, (int64_t[]){1, 1, 4, 4}, x);
   oh_input(&c, RC_DTYPE_FLOAT, 4, (int64_t[]){1, 1, 2, 2}, w);
   oh_attr_ints(&c, "kernel_shape", 2, (int64_t[]){3, 3});
-  expect_refused(&c, "kernel_shape");
+  oe_expect_refused(&c, "kernel_shape");
   oh_free(&c);
   /* output_padding not below stride or dilation */
   oh_init(&c, "ConvTranspose", 13);
   oh_input(&c, RC_DTYPE_FLOAT, 4, (int64_t[]){1, 1, 4, 4}, x);
   oh_input(&c, RC_DTYPE_FLOAT, 4, (int64_t[]){1, 1, 2, 2}, w);
   oh_attr_ints(&c, "output_padding", 2, (int64_t[]){1, 1});
-  expect_refused(&c, "output_padding");
+  oe_expect_refused(&c, "output_padding");
   oh_free(&c);
 }
 

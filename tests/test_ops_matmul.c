@@ -4,22 +4,7 @@
  * gradient checks. */
 #include "op_harness.h"
 #include "test.h"
-
-static int run_ok(oh_case *c) {
-  rc_err e = {0};
-  rc_status st = oh_run(c, &e);
-  CHECK_INT(st, RC_OK);
-  if (st != RC_OK) fprintf(stderr, "  %s\n", e.msg);
-  return st == RC_OK;
-}
-
-static void expect_f(oh_case *c, const int64_t *dims, int rank, const float *want) {
-  if (!run_ok(c)) return;
-  CHECK_INT(c->out_t[0].rank, rank);
-  for (int i = 0; i < rank && i < c->out_t[0].rank; i++) CHECK_INT(c->out_t[0].dims[i], dims[i]);
-  int64_t n = rc_tensor_numel(&c->out_t[0]);
-  for (int64_t i = 0; i < n; i++) CHECK_NEAR(oh_out_f(c, 0)[i], want[i], 1e-5, 1e-5);
-}
+#include "op_expect.h"
 
 /* A = [[1,2,3],[4,5,6]], B = [[1,0],[0,1],[1,1]]: AB = [[4,5],[10,11]].
  * alpha 2, beta 0.5, C = [10,20] (shape (2,), broadcast over rows):
@@ -39,7 +24,7 @@ static void gemm_hand(void) {
       oh_attr_int(&c, "transB", tb);
       oh_attr_float(&c, "alpha", 2.0f);
       oh_attr_float(&c, "beta", 0.5f);
-      expect_f(&c, (int64_t[]){2, 2}, 2, want);
+      oe_expect_out(&c, (int64_t[]){2, 2}, 2, want);
       oh_free(&c);
     }
 }
@@ -52,19 +37,19 @@ static void gemm_c_shapes(void) {
   oh_input(&c, RC_DTYPE_FLOAT, 2, (int64_t[]){2, 3}, a);
   oh_input(&c, RC_DTYPE_FLOAT, 2, (int64_t[]){3, 2}, b);
   oh_input(&c, RC_DTYPE_FLOAT, 2, (int64_t[]){2, 1}, (float[]){1, -1});
-  expect_f(&c, (int64_t[]){2, 2}, 2, (float[]){5, 6, 9, 10});
+  oe_expect_out(&c, (int64_t[]){2, 2}, 2, (float[]){5, 6, 9, 10});
   oh_free(&c);
   oh_init(&c, "Gemm", 13);
   oh_input(&c, RC_DTYPE_FLOAT, 2, (int64_t[]){2, 3}, a);
   oh_input(&c, RC_DTYPE_FLOAT, 2, (int64_t[]){3, 2}, b);
-  expect_f(&c, (int64_t[]){2, 2}, 2, (float[]){4, 5, 10, 11});
+  oe_expect_out(&c, (int64_t[]){2, 2}, 2, (float[]){4, 5, 10, 11});
   oh_free(&c);
   /* scalar C */
   oh_init(&c, "Gemm", 13);
   oh_input(&c, RC_DTYPE_FLOAT, 2, (int64_t[]){2, 3}, a);
   oh_input(&c, RC_DTYPE_FLOAT, 2, (int64_t[]){3, 2}, b);
   oh_input(&c, RC_DTYPE_FLOAT, 0, NULL, (float[]){100});
-  expect_f(&c, (int64_t[]){2, 2}, 2, (float[]){104, 105, 110, 111});
+  oe_expect_out(&c, (int64_t[]){2, 2}, 2, (float[]){104, 105, 110, 111});
   oh_free(&c);
 }
 
@@ -75,17 +60,17 @@ static void matmul_one_d(void) {
   oh_init(&c, "MatMul", 13);
   oh_input(&c, RC_DTYPE_FLOAT, 1, (int64_t[]){3}, (float[]){1, 2, 3});
   oh_input(&c, RC_DTYPE_FLOAT, 1, (int64_t[]){3}, (float[]){4, 5, 6});
-  expect_f(&c, NULL, 0, (float[]){32});
+  oe_expect_out(&c, NULL, 0, (float[]){32});
   oh_free(&c);
   oh_init(&c, "MatMul", 13);
   oh_input(&c, RC_DTYPE_FLOAT, 2, (int64_t[]){2, 3}, (float[]){1, 2, 3, 4, 5, 6});
   oh_input(&c, RC_DTYPE_FLOAT, 1, (int64_t[]){3}, (float[]){1, 0, -1});
-  expect_f(&c, (int64_t[]){2}, 1, (float[]){-2, -2});
+  oe_expect_out(&c, (int64_t[]){2}, 1, (float[]){-2, -2});
   oh_free(&c);
   oh_init(&c, "MatMul", 13);
   oh_input(&c, RC_DTYPE_FLOAT, 1, (int64_t[]){3}, (float[]){1, 0, -1});
   oh_input(&c, RC_DTYPE_FLOAT, 2, (int64_t[]){3, 2}, (float[]){1, 2, 3, 4, 5, 6});
-  expect_f(&c, (int64_t[]){2}, 1, (float[]){-4, -4});
+  oe_expect_out(&c, (int64_t[]){2}, 1, (float[]){-4, -4});
   oh_free(&c);
 }
 
@@ -110,7 +95,7 @@ static void matmul_broadcast_batch(void) {
       o[2] = p[2] * q[0] + p[3] * q[2];
       o[3] = p[2] * q[1] + p[3] * q[3];
     }
-  expect_f(&c, (int64_t[]){2, 3, 2, 2}, 4, want);
+  oe_expect_out(&c, (int64_t[]){2, 3, 2, 2}, 4, want);
   oh_free(&c);
 }
 
@@ -181,41 +166,34 @@ static void matmul_gradients(void) {
 
 /* ---- refusals ---- */
 
-static void expect_refused(oh_case *c, const char *needle) {
-  rc_err e = {0};
-  CHECK(oh_run(c, &e) != RC_OK);
-  CHECK_STR_CONTAINS(e.msg, c->node.label);
-  CHECK_STR_CONTAINS(e.msg, needle);
-}
-
 static void matmul_refusals(void) {
   oh_case c;
   float z[24] = {0};
   oh_init(&c, "Gemm", 9); /* C was required before opset 11 */
   oh_input(&c, RC_DTYPE_FLOAT, 2, (int64_t[]){2, 3}, z);
   oh_input(&c, RC_DTYPE_FLOAT, 2, (int64_t[]){3, 2}, z);
-  expect_refused(&c, "C is required");
+  oe_expect_refused(&c, "C is required");
   oh_free(&c);
   oh_init(&c, "Gemm", 13); /* C (3,) does not broadcast to (2,2) */
   oh_input(&c, RC_DTYPE_FLOAT, 2, (int64_t[]){2, 3}, z);
   oh_input(&c, RC_DTYPE_FLOAT, 2, (int64_t[]){3, 2}, z);
   oh_input(&c, RC_DTYPE_FLOAT, 1, (int64_t[]){3}, z);
-  expect_refused(&c, "broadcast");
+  oe_expect_refused(&c, "broadcast");
   oh_free(&c);
   oh_init(&c, "MatMul", 13); /* inner dimensions */
   oh_input(&c, RC_DTYPE_FLOAT, 2, (int64_t[]){2, 3}, z);
   oh_input(&c, RC_DTYPE_FLOAT, 2, (int64_t[]){2, 3}, z);
-  expect_refused(&c, "inner");
+  oe_expect_refused(&c, "inner");
   oh_free(&c);
   oh_init(&c, "MatMul", 13); /* batch axes 2 vs 3 */
   oh_input(&c, RC_DTYPE_FLOAT, 3, (int64_t[]){2, 2, 3}, z);
   oh_input(&c, RC_DTYPE_FLOAT, 3, (int64_t[]){3, 3, 2}, z);
-  expect_refused(&c, "do not broadcast");
+  oe_expect_refused(&c, "do not broadcast");
   oh_free(&c);
   oh_init(&c, "MatMul", 13); /* integer matmul is not computed */
   oh_input(&c, RC_DTYPE_INT32, 2, (int64_t[]){2, 3}, NULL);
   oh_input(&c, RC_DTYPE_INT32, 2, (int64_t[]){3, 2}, NULL);
-  expect_refused(&c, "only float");
+  oe_expect_refused(&c, "only float");
   oh_free(&c);
 }
 

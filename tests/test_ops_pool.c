@@ -3,25 +3,10 @@
  * output-shape equations) and finite-difference gradient checks. */
 #include "op_harness.h"
 #include "test.h"
+#include "op_expect.h"
 
 static void iota(float *x, int64_t n, float start) {
   for (int64_t i = 0; i < n; i++) x[i] = start + (float)i;
-}
-
-static int run_ok(oh_case *c) {
-  rc_err e = {0};
-  rc_status st = oh_run(c, &e);
-  CHECK_INT(st, RC_OK);
-  if (st != RC_OK) fprintf(stderr, "  %s\n", e.msg);
-  return st == RC_OK;
-}
-
-static void expect_f(oh_case *c, const int64_t *dims, int rank, const float *want) {
-  if (!run_ok(c)) return;
-  CHECK_INT(c->out_t[0].rank, rank);
-  for (int i = 0; i < rank && i < c->out_t[0].rank; i++) CHECK_INT(c->out_t[0].dims[i], dims[i]);
-  int64_t n = rc_tensor_numel(&c->out_t[0]);
-  for (int64_t i = 0; i < n; i++) CHECK_NEAR(oh_out_f(c, 0)[i], want[i], 1e-5, 1e-5);
 }
 
 static void pool_case(oh_case *c, const char *op, int opset, int rank, const int64_t *dims, const float *x) {
@@ -39,7 +24,7 @@ static void maxpool_spec_ceil(void) {
   oh_attr_ints(&c, "kernel_shape", 2, (int64_t[]){3, 3});
   oh_attr_ints(&c, "strides", 2, (int64_t[]){2, 2});
   oh_attr_int(&c, "ceil_mode", 1);
-  expect_f(&c, (int64_t[]){1, 1, 2, 2}, 4, (float[]){11, 12, 15, 16});
+  oe_expect_out(&c, (int64_t[]){1, 1, 2, 2}, 4, (float[]){11, 12, 15, 16});
   oh_free(&c);
 }
 
@@ -55,7 +40,7 @@ static void maxpool_ceil_drops_padding_window(void) {
   oh_attr_ints(&c, "pads", 2, (int64_t[]){1, 1});
   oh_attr_int(&c, "ceil_mode", 1);
   /* windows [-1,0] [1,2] [3,4] */
-  expect_f(&c, (int64_t[]){1, 1, 3}, 3, (float[]){1, 5, 4});
+  oe_expect_out(&c, (int64_t[]){1, 1, 3}, 3, (float[]){1, 5, 4});
   oh_free(&c);
 }
 
@@ -70,7 +55,7 @@ static void maxpool_spec_pads(void) {
   oh_attr_ints(&c, "pads", 4, (int64_t[]){2, 2, 2, 2});
   const float want[] = {13, 14, 15, 15, 15, 18, 19, 20, 20, 20, 23, 24, 25, 25, 25,
                         23, 24, 25, 25, 25, 23, 24, 25, 25, 25};
-  expect_f(&c, (int64_t[]){1, 1, 5, 5}, 4, want);
+  oe_expect_out(&c, (int64_t[]){1, 1, 5, 5}, 4, want);
   oh_free(&c);
 }
 
@@ -83,7 +68,7 @@ static void maxpool_spec_dilations(void) {
   pool_case(&c, "MaxPool", 12, 4, (int64_t[]){1, 1, 4, 4}, x);
   oh_attr_ints(&c, "kernel_shape", 2, (int64_t[]){2, 2});
   oh_attr_ints(&c, "dilations", 2, (int64_t[]){2, 2});
-  expect_f(&c, (int64_t[]){1, 1, 2, 2}, 4, (float[]){11, 12, 15, 16});
+  oe_expect_out(&c, (int64_t[]){1, 1, 2, 2}, 4, (float[]){11, 12, 15, 16});
   oh_free(&c);
 }
 
@@ -100,7 +85,7 @@ static void maxpool_auto_pad(void) {
     pool_case(&c, "MaxPool", 12, 3, (int64_t[]){1, 1, 5}, x);
     oh_attr_ints(&c, "kernel_shape", 1, (int64_t[]){2});
     oh_attr_string(&c, "auto_pad", modes[m]);
-    expect_f(&c, (int64_t[]){1, 1, len[m]}, 3, want[m]);
+    oe_expect_out(&c, (int64_t[]){1, 1, len[m]}, 3, want[m]);
     oh_free(&c);
   }
 }
@@ -119,7 +104,7 @@ static void maxpool_spec_indices(void) {
     oh_attr_ints(&c, "kernel_shape", 2, (int64_t[]){2, 2});
     oh_attr_ints(&c, "strides", 2, (int64_t[]){2, 2});
     oh_attr_int(&c, "storage_order", order);
-    expect_f(&c, (int64_t[]){1, 2, 2, 2}, 4, (float[]){7, 9, 17, 19, 7, 9, 17, 19});
+    oe_expect_out(&c, (int64_t[]){1, 2, 2, 2}, 4, (float[]){7, 9, 17, 19, 7, 9, 17, 19});
     CHECK_INT(c.out_t[1].dtype, RC_DTYPE_INT64);
     const int64_t *ind = c.out_t[1].data;
     const int64_t want_row[] = {6, 8, 16, 18}, want_col[] = {6, 16, 8, 18};
@@ -137,7 +122,7 @@ static void maxpool_ties_route_to_first(void) {
   oh_case c;
   pool_case(&c, "MaxPool", 12, 3, (int64_t[]){1, 1, 4}, (float[]){2, 2, 1, 1});
   oh_attr_ints(&c, "kernel_shape", 1, (int64_t[]){4});
-  if (!run_ok(&c)) return;
+  if (!oe_run_ok(&c)) return;
   float dy = 1.0f, dx[4] = {0};
   rc_tensor dyt = c.out_t[0], dxt = c.in_t[0];
   dyt.data = &dy;
@@ -161,7 +146,7 @@ static void avgpool_spec_ceil(void) {
   oh_attr_ints(&c, "kernel_shape", 2, (int64_t[]){3, 3});
   oh_attr_ints(&c, "strides", 2, (int64_t[]){2, 2});
   oh_attr_int(&c, "ceil_mode", 1);
-  expect_f(&c, (int64_t[]){1, 1, 2, 2}, 4, (float[]){6, 7.5f, 12, 13.5f});
+  oe_expect_out(&c, (int64_t[]){1, 1, 2, 2}, 4, (float[]){6, 7.5f, 12, 13.5f});
   oh_free(&c);
 }
 
@@ -178,7 +163,7 @@ static void avgpool_spec_count_include_pad(void) {
     oh_attr_ints(&c, "kernel_shape", 2, (int64_t[]){3, 3});
     oh_attr_ints(&c, "pads", 4, (int64_t[]){2, 2, 2, 2});
     oh_attr_int(&c, "count_include_pad", cip);
-    if (!run_ok(&c)) continue;
+    if (!oe_run_ok(&c)) continue;
     CHECK_INT(c.out_t[0].dims[2], 7);
     const float *y = oh_out_f(&c, 0);
     CHECK_NEAR(y[0], cip ? 1.0 / 9 : 1.0, 1e-6, 1e-6);
@@ -203,7 +188,7 @@ static void avgpool_ceil_with_include_pad(void) {
     oh_attr_ints(&c, "pads", 2, (int64_t[]){1, 1});
     oh_attr_int(&c, "ceil_mode", 1);
     oh_attr_int(&c, "count_include_pad", cip);
-    expect_f(&c, (int64_t[]){1, 1, 4}, 3, want[cip]);
+    oe_expect_out(&c, (int64_t[]){1, 1, 4}, 3, want[cip]);
     oh_free(&c);
   }
 }
@@ -216,7 +201,7 @@ static void avgpool_same_upper(void) {
   pool_case(&c, "AveragePool", 11, 3, (int64_t[]){1, 1, 4}, (float[]){1, 2, 3, 4});
   oh_attr_ints(&c, "kernel_shape", 1, (int64_t[]){2});
   oh_attr_string(&c, "auto_pad", "SAME_UPPER");
-  expect_f(&c, (int64_t[]){1, 1, 4}, 3, (float[]){1.5f, 2.5f, 3.5f, 4});
+  oe_expect_out(&c, (int64_t[]){1, 1, 4}, 3, (float[]){1.5f, 2.5f, 3.5f, 4});
   oh_free(&c);
 }
 
@@ -227,7 +212,7 @@ static void avgpool_dilations(void) {
   pool_case(&c, "AveragePool", 19, 3, (int64_t[]){1, 1, 5}, (float[]){1, 2, 3, 4, 5});
   oh_attr_ints(&c, "kernel_shape", 1, (int64_t[]){2});
   oh_attr_ints(&c, "dilations", 1, (int64_t[]){2});
-  expect_f(&c, (int64_t[]){1, 1, 3}, 3, (float[]){2, 3, 4});
+  oe_expect_out(&c, (int64_t[]){1, 1, 3}, 3, (float[]){2, 3, 4});
   oh_free(&c);
 }
 
@@ -238,10 +223,10 @@ static void global_pools_spec(void) {
   iota(x, 9, 1);
   oh_case c;
   pool_case(&c, "GlobalAveragePool", 13, 4, (int64_t[]){1, 1, 3, 3}, x);
-  expect_f(&c, (int64_t[]){1, 1, 1, 1}, 4, (float[]){5});
+  oe_expect_out(&c, (int64_t[]){1, 1, 1, 1}, 4, (float[]){5});
   oh_free(&c);
   pool_case(&c, "GlobalMaxPool", 13, 4, (int64_t[]){1, 1, 3, 3}, x);
-  expect_f(&c, (int64_t[]){1, 1, 1, 1}, 4, (float[]){9});
+  oe_expect_out(&c, (int64_t[]){1, 1, 1, 1}, 4, (float[]){9});
   oh_free(&c);
 }
 
@@ -301,13 +286,6 @@ static void pool_gradients(void) {
 
 /* ---- refusals ---- */
 
-static void expect_refused(oh_case *c, const char *needle) {
-  rc_err e = {0};
-  CHECK(oh_run(c, &e) != RC_OK);
-  CHECK_STR_CONTAINS(e.msg, c->node.label);
-  CHECK_STR_CONTAINS(e.msg, needle);
-}
-
 static void pool_refusals(void) {
   oh_case c;
   float x[16] = {0};
@@ -315,30 +293,30 @@ static void pool_refusals(void) {
   pool_case(&c, "MaxPool", 9, 4, (int64_t[]){1, 1, 4, 4}, x);
   oh_attr_ints(&c, "kernel_shape", 2, (int64_t[]){2, 2});
   oh_attr_ints(&c, "dilations", 2, (int64_t[]){2, 2});
-  expect_refused(&c, "dilations");
+  oe_expect_refused(&c, "dilations");
   oh_free(&c);
   /* nor for AveragePool before opset 19 */
   pool_case(&c, "AveragePool", 18, 4, (int64_t[]){1, 1, 4, 4}, x);
   oh_attr_ints(&c, "kernel_shape", 2, (int64_t[]){2, 2});
   oh_attr_ints(&c, "dilations", 2, (int64_t[]){2, 2});
-  expect_refused(&c, "dilations");
+  oe_expect_refused(&c, "dilations");
   oh_free(&c);
   /* kernel_shape is required */
   pool_case(&c, "MaxPool", 12, 4, (int64_t[]){1, 1, 4, 4}, x);
-  expect_refused(&c, "kernel_shape");
+  oe_expect_refused(&c, "kernel_shape");
   oh_free(&c);
   /* integer input */
   oh_init(&c, "MaxPool", 12);
   oh_input(&c, RC_DTYPE_UINT8, 4, (int64_t[]){1, 1, 4, 4}, NULL);
   oh_attr_ints(&c, "kernel_shape", 2, (int64_t[]){2, 2});
-  expect_refused(&c, "only float");
+  oe_expect_refused(&c, "only float");
   oh_free(&c);
   /* pads together with auto_pad */
   pool_case(&c, "AveragePool", 11, 4, (int64_t[]){1, 1, 4, 4}, x);
   oh_attr_ints(&c, "kernel_shape", 2, (int64_t[]){2, 2});
   oh_attr_ints(&c, "pads", 4, (int64_t[]){1, 1, 1, 1});
   oh_attr_string(&c, "auto_pad", "SAME_UPPER");
-  expect_refused(&c, "auto_pad");
+  oe_expect_refused(&c, "auto_pad");
   oh_free(&c);
 }
 

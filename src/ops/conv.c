@@ -548,20 +548,37 @@ static rc_status conv_forward(const rc_kernel *k, rc_err *e) {
   return RC_OK;
 }
 
-static void conv_backward(const rc_kernel *k) {
-  const rc_tensor *dyt = k->dout[0];
-  if (!dyt) return;
+/* What both backward passes start from: geometry, data and the gradients
+ * wanted; the bias gradient is taken here. Returns 0 when x and W need no
+ * gradient (or there is none to give). */
+typedef struct conv_grads {
   conv_geom g;
-  geometry_of(k, &g);
-  const float *x = k->in[0]->data, *w = k->in[1]->data, *dy = dyt->data;
-  float *dx = k->din[0] ? k->din[0]->data : NULL;
-  float *dw = k->din[1] ? k->din[1]->data : NULL;
+  const float *x, *w, *dy;
+  float *dx, *dw;
+} conv_grads;
+
+static int begin_backward(const rc_kernel *k, conv_grads *cg) {
+  if (!k->dout[0]) return 0;
+  conv_geom *g = &cg->g;
+  geometry_of(k, g);
+  cg->x = k->in[0]->data;
+  cg->w = k->in[1]->data;
+  cg->dy = k->dout[0]->data;
+  cg->dx = k->din[0] ? k->din[0]->data : NULL;
+  cg->dw = k->din[1] ? k->din[1]->data : NULL;
   float *db = k->n_in > 2 && k->in[2] && k->din[2] ? k->din[2]->data : NULL;
-  float *work = k->work;
+  if (!g->N || !g->M || !g->out_sp) return 0;
+  if (db) bias_grad(db, cg->dy, g->N, g->M, g->out_sp);
+  return (cg->dx || cg->dw) && g->Cg && g->K && g->in_sp;
+}
+
+static void conv_backward(const rc_kernel *k) {
+  conv_grads cg;
+  if (!begin_backward(k, &cg)) return;
+  const conv_geom g = cg.g;
+  const float *x = cg.x, *w = cg.w, *dy = cg.dy;
+  float *dx = cg.dx, *dw = cg.dw, *work = k->work;
   const int64_t CgK = g.Cg * g.K, P = g.out_sp;
-  if (!g.N || !g.M || !P) return;
-  if (db) bias_grad(db, dy, g.N, g.M, P);
-  if (!CgK || (!dx && !dw)) return;
   for (int64_t n = 0; n < g.N; n++) {
     const float *dyn = dy + n * g.M * P;
     if (dw) {
@@ -637,18 +654,12 @@ static rc_status convt_forward(const rc_kernel *k, rc_err *e) {
 }
 
 static void convt_backward(const rc_kernel *k) {
-  const rc_tensor *dyt = k->dout[0];
-  if (!dyt) return;
-  conv_geom g;
-  geometry_of(k, &g);
-  const float *x = k->in[0]->data, *w = k->in[1]->data, *dy = dyt->data;
-  float *dx = k->din[0] ? k->din[0]->data : NULL;
-  float *dw = k->din[1] ? k->din[1]->data : NULL;
-  float *db = k->n_in > 2 && k->in[2] && k->din[2] ? k->din[2]->data : NULL;
+  conv_grads cg;
+  if (!begin_backward(k, &cg)) return;
+  const conv_geom g = cg.g;
+  const float *x = cg.x, *w = cg.w, *dy = cg.dy;
+  float *dx = cg.dx, *dw = cg.dw;
   const int64_t MgK = g.Mg * g.K, D = g.in_sp, P = g.out_sp;
-  if (!g.N || !g.M || !P) return;
-  if (db) bias_grad(db, dy, g.N, g.M, P);
-  if (!g.Cg || !D || (!dx && !dw)) return;
   for (int64_t n = 0; n < g.N; n++) {
     const float *col = dy + n * g.M * P;
     if (!g.direct) {

@@ -268,6 +268,31 @@ static int64_t avg_divisor(const pool_geom *g, int include_pad, const int64_t *s
   return cnt;
 }
 
+/* One plane of AveragePool: forward (src x, dst y) or backward (src dy,
+ * dst dx, which it adds into). Both walk the same windows. */
+static void avg_plane(const pool_geom *g, int include_pad, const float *src, float *dst, int backward) {
+  for (int64_t o0 = 0; o0 < g->out[0]; o0++)
+    for (int64_t o1 = 0; o1 < g->out[1]; o1++)
+      for (int64_t o2 = 0; o2 < g->out[2]; o2++) {
+        int64_t st[AX], lo[AX], hi[AX];
+        taps(g, 0, o0, &st[0], &lo[0], &hi[0]);
+        taps(g, 1, o1, &st[1], &lo[1], &hi[1]);
+        taps(g, 2, o2, &st[2], &lo[2], &hi[2]);
+        const int64_t oi = (o0 * g->out[1] + o1) * g->out[2] + o2, div = avg_divisor(g, include_pad, st, lo, hi);
+        const float gv = backward && div ? src[oi] / (float)div : 0.0f;
+        double sum = 0;
+        for (int64_t t0 = lo[0]; t0 < hi[0]; t0++)
+          for (int64_t t1 = lo[1]; t1 < hi[1]; t1++) {
+            const int64_t row = ((st[0] + t0 * g->d[0]) * g->in[1] + st[1] + t1 * g->d[1]) * g->in[2] + st[2];
+            if (backward)
+              for (int64_t t2 = lo[2]; t2 < hi[2]; t2++) dst[row + t2 * g->d[2]] += gv;
+            else
+              for (int64_t t2 = lo[2]; t2 < hi[2]; t2++) sum += src[row + t2 * g->d[2]];
+          }
+        if (!backward) dst[oi] = div ? (float)(sum / (double)div) : 0.0f;
+      }
+}
+
 /* x (N,C,D...) -> y (N,C,O...): mean over each window. */
 static rc_status avg_forward(const rc_kernel *k, rc_err *e) {
   pool_geom g;
@@ -277,25 +302,7 @@ static rc_status avg_forward(const rc_kernel *k, rc_err *e) {
   float *y = k->out[0]->data;
   const int64_t O = g.out_sp, I = g.in_sp;
 #pragma omp parallel for schedule(static) if (g.planes * (O + I) > 16384)
-  for (int64_t pl = 0; pl < g.planes; pl++) {
-    const float *xp = x + pl * I;
-    for (int64_t o0 = 0; o0 < g.out[0]; o0++)
-      for (int64_t o1 = 0; o1 < g.out[1]; o1++)
-        for (int64_t o2 = 0; o2 < g.out[2]; o2++) {
-          int64_t st[AX], lo[AX], hi[AX];
-          taps(&g, 0, o0, &st[0], &lo[0], &hi[0]);
-          taps(&g, 1, o1, &st[1], &lo[1], &hi[1]);
-          taps(&g, 2, o2, &st[2], &lo[2], &hi[2]);
-          double sum = 0;
-          for (int64_t t0 = lo[0]; t0 < hi[0]; t0++)
-            for (int64_t t1 = lo[1]; t1 < hi[1]; t1++) {
-              const float *row = xp + ((st[0] + t0 * g.d[0]) * g.in[1] + st[1] + t1 * g.d[1]) * g.in[2] + st[2];
-              for (int64_t t2 = lo[2]; t2 < hi[2]; t2++) sum += row[t2 * g.d[2]];
-            }
-          int64_t div = avg_divisor(&g, p->count_include_pad, st, lo, hi);
-          y[pl * O + (o0 * g.out[1] + o1) * g.out[2] + o2] = div ? (float)(sum / (double)div) : 0.0f;
-        }
-  }
+  for (int64_t pl = 0; pl < g.planes; pl++) avg_plane(&g, p->count_include_pad, x + pl * I, y + pl * O, 0);
   return RC_OK;
 }
 
@@ -308,25 +315,7 @@ static void avg_backward(const rc_kernel *k) {
   float *dx = k->din[0]->data;
   const int64_t O = g.out_sp, I = g.in_sp;
 #pragma omp parallel for schedule(static) if (g.planes * (O + I) > 16384)
-  for (int64_t pl = 0; pl < g.planes; pl++) {
-    float *dxp = dx + pl * I;
-    for (int64_t o0 = 0; o0 < g.out[0]; o0++)
-      for (int64_t o1 = 0; o1 < g.out[1]; o1++)
-        for (int64_t o2 = 0; o2 < g.out[2]; o2++) {
-          int64_t st[AX], lo[AX], hi[AX];
-          taps(&g, 0, o0, &st[0], &lo[0], &hi[0]);
-          taps(&g, 1, o1, &st[1], &lo[1], &hi[1]);
-          taps(&g, 2, o2, &st[2], &lo[2], &hi[2]);
-          int64_t div = avg_divisor(&g, p->count_include_pad, st, lo, hi);
-          if (!div) continue;
-          float gv = dy[pl * O + (o0 * g.out[1] + o1) * g.out[2] + o2] / (float)div;
-          for (int64_t t0 = lo[0]; t0 < hi[0]; t0++)
-            for (int64_t t1 = lo[1]; t1 < hi[1]; t1++) {
-              float *row = dxp + ((st[0] + t0 * g.d[0]) * g.in[1] + st[1] + t1 * g.d[1]) * g.in[2] + st[2];
-              for (int64_t t2 = lo[2]; t2 < hi[2]; t2++) row[t2 * g.d[2]] += gv;
-            }
-        }
-  }
+  for (int64_t pl = 0; pl < g.planes; pl++) avg_plane(&g, p->count_include_pad, dy + pl * O, dx + pl * I, 1);
 }
 
 const rc_op_def rc__ops_pool[] = {
