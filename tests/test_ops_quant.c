@@ -3,19 +3,8 @@
  * its formulas y = saturate(round_half_even(x / s) + z), y = (x - z) * s,
  * worked out by hand beside each check. The spec example values are
  * recalled from memory; each one was re-derived from the formula before use. */
-#include "op_harness.h"
 #include "ops/quant.h"
-#include "test.h"
-
-#define I64(...) ((const int64_t[]){__VA_ARGS__})
-#define F32(...) ((const float[]){__VA_ARGS__})
-
-static int run_ok(oh_case *c) {
-  rc_err e = {0};
-  rc_status s = oh_run(c, &e);
-  if (s != RC_OK) fprintf(stderr, "unexpected error: %s\n", e.msg);
-  return s == RC_OK;
-}
+#include "ops_expect.h"
 
 static void test_round_half_even_and_saturate(void) {
   oh_case c;

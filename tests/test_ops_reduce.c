@@ -2,26 +2,11 @@
  * specification's examples (ReduceSum/ReduceMean/ReduceMax "keepdims"
  * examples, recalled from memory and re-derived by hand), named beside each
  * check; gradients against finite differences. */
-#include "op_harness.h"
-#include "test.h"
-
-#define I64(...) ((const int64_t[]){__VA_ARGS__})
-#define F32(...) ((const float[]){__VA_ARGS__})
+#include "ops_expect.h"
 
 static const int CHECK0[] = {0, -1};
 static const float SUM_X[] = {1, 2, 3, 4, 5, 6, 7, 8, 9, 10, 11, 12};
 static const float MEAN_X[] = {5, 1, 20, 2, 30, 1, 40, 2, 55, 1, 60, 2};
-
-static int run_ok(oh_case *c) {
-  rc_err e = {0};
-  rc_status s = oh_run(c, &e);
-  if (s != RC_OK) fprintf(stderr, "unexpected error: %s\n", e.msg);
-  return s == RC_OK;
-}
-
-static void check_floats(const float *got, const float *want, int n) {
-  for (int i = 0; i < n; i++) CHECK_NEAR(got[i], want[i], 1e-5, 1e-6);
-}
 
 static void test_reduce_sum_spec(void) {
   oh_case c;
@@ -123,13 +108,8 @@ static void test_reduce_max_spec(void) {
   oh_input(&c, RC_DTYPE_FLOAT, 1, I64(4), F32(1, 3, 3, 2));
   CHECK(run_ok(&c));
   CHECK(oh_out_f(&c, 0)[0] == 3.0f);
-  float g[4] = {0}, one = 1;
-  rc_tensor din = c.in_t[0], dout = c.out_t[0];
-  din.data = g;
-  dout.data = &one;
-  rc_tensor *dinp[1] = {&din}, *doutp[1] = {&dout};
-  rc_kernel k = {&c.node, c.node.params, 1, 1, c.in, c.out, dinp, doutp, c.work, c.saved, 0};
-  c.node.def->backward(&k);
+  run_backward(&c, NULL, CHECK0);
+  const float *g = grad_of(&c, 0);
   CHECK(g[0] == 0 && g[1] == 1 && g[2] == 0 && g[3] == 0);
   oh_free(&c);
   /* int64 max */

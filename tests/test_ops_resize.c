@@ -3,25 +3,10 @@
  * coordinate formulas (each case spells the formula and its values).
  * Gradients against finite differences. Spec example values are recalled
  * from memory; each one was re-derived from the spec's formula before use. */
-#include "op_harness.h"
-#include "test.h"
-
-#define I64(...) ((const int64_t[]){__VA_ARGS__})
-#define F32(...) ((const float[]){__VA_ARGS__})
+#include "ops_expect.h"
 
 static const int CHECK0[] = {0, -1};
 static const float X22[] = {1, 2, 3, 4};
-
-static int run_ok(oh_case *c) {
-  rc_err e = {0};
-  rc_status s = oh_run(c, &e);
-  if (s != RC_OK) fprintf(stderr, "unexpected error: %s\n", e.msg);
-  return s == RC_OK;
-}
-
-static void check_floats(const float *got, const float *want, int n) {
-  for (int i = 0; i < n; i++) CHECK_NEAR(got[i], want[i], 1e-5, 1e-5);
-}
 
 /* Resize-13 with X, roi (absent), scales or sizes. */
 static void resize_case(oh_case *c, int opset, const char *mode, const char *coord, const float *x,

@@ -2,20 +2,9 @@
  * specification (its worked examples and stated formulas), named beside each
  * check; gradients are checked against central finite differences. Example
  * values are recalled from memory and were re-derived from the spec's text. */
-#include "op_harness.h"
-#include "test.h"
-
-#define I64(...) ((const int64_t[]){__VA_ARGS__})
-#define F32(...) ((const float[]){__VA_ARGS__})
+#include "ops_expect.h"
 
 static const int CHECK0[] = {0, -1};
-
-static int run_ok(oh_case *c) {
-  rc_err e = {0};
-  rc_status s = oh_run(c, &e);
-  if (s != RC_OK) fprintf(stderr, "unexpected error: %s\n", e.msg);
-  return s == RC_OK;
-}
 
 static int64_t *out_i64(oh_case *c, int i) { return (int64_t *)c->out_t[i].data; }
 
@@ -184,10 +173,6 @@ static void pad_case(oh_case *c, int opset, const char *mode, const int64_t *pad
   oh_attr_string(c, "mode", mode);
   oh_input(c, RC_DTYPE_FLOAT, 2, I64(3, 2), PAD_X);
   oh_input(c, RC_DTYPE_INT64, 1, I64(npads), pads);
-}
-
-static void check_floats(const float *got, const float *want, int n) {
-  for (int i = 0; i < n; i++) CHECK_NEAR(got[i], want[i], 1e-6, 0);
 }
 
 static void test_pad_spec_examples(void) {

@@ -138,54 +138,49 @@ void rc__view_copy(void *dst, const void *src, int64_t base, int rank, const int
   }
 }
 
-void rc__view_gather_add(float *dst, const float *src, int64_t base, int rank, const int64_t *dims,
-                         const int64_t *stride) {
+/* dst[i] += src[view(i)] (gather) or dst[view(i)] += src[i] (scatter), in
+ * index order so that repeated view targets accumulate deterministically. */
+static void view_accumulate(float *dst, const float *src, int64_t base, int rank, const int64_t *dims,
+                            const int64_t *stride, int scatter) {
   int64_t d[RC_VIEW_MAX_RANK], s[RC_VIEW_MAX_RANK], idx[RC_VIEW_MAX_RANK] = {0};
   int r = simplify(rank, dims, stride, d, s);
   if (r < 0) return;
   if (r == 0) {
-    dst[0] += src[base];
+    if (scatter)
+      dst[base] += src[0];
+    else
+      dst[0] += src[base];
     return;
   }
-  int64_t inner = d[r - 1], sin = s[r - 1], n_outer = 1;
+  int64_t inner = d[r - 1], sv = s[r - 1], n_outer = 1;
   for (int k = 0; k < r - 1; k++) n_outer *= d[k];
   int64_t off = base, pos = 0;
   for (int64_t o = 0; o < n_outer; o++, pos += inner) {
-    float *op = dst + pos;
-    const float *ip = src + off;
-    if (sin == 1)
+    float *op = scatter ? dst + off : dst + pos;
+    const float *ip = scatter ? src + pos : src + off;
+    if (sv == 1) {
       for (int64_t j = 0; j < inner; j++) op[j] += ip[j];
-    else
-      for (int64_t j = 0; j < inner; j++) op[j] += ip[j * sin];
+    } else if (!scatter) {
+      for (int64_t j = 0; j < inner; j++) op[j] += ip[j * sv];
+    } else if (sv == 0) {
+      float acc = 0;
+      for (int64_t j = 0; j < inner; j++) acc += ip[j];
+      op[0] += acc;
+    } else {
+      for (int64_t j = 0; j < inner; j++) op[j * sv] += ip[j];
+    }
     off += step_outer(r, d, s, idx);
   }
 }
 
+void rc__view_gather_add(float *dst, const float *src, int64_t base, int rank, const int64_t *dims,
+                         const int64_t *stride) {
+  view_accumulate(dst, src, base, rank, dims, stride, 0);
+}
+
 void rc__view_scatter_add(float *dst, int64_t base, const float *src, int rank, const int64_t *dims,
                           const int64_t *stride) {
-  int64_t d[RC_VIEW_MAX_RANK], s[RC_VIEW_MAX_RANK], idx[RC_VIEW_MAX_RANK] = {0};
-  int r = simplify(rank, dims, stride, d, s);
-  if (r < 0) return;
-  if (r == 0) {
-    dst[base] += src[0];
-    return;
-  }
-  int64_t inner = d[r - 1], sin = s[r - 1], n_outer = 1;
-  for (int k = 0; k < r - 1; k++) n_outer *= d[k];
-  int64_t off = base, pos = 0;
-  for (int64_t o = 0; o < n_outer; o++, pos += inner) {
-    float *op = dst + off;
-    const float *ip = src + pos;
-    if (sin == 1)
-      for (int64_t j = 0; j < inner; j++) op[j] += ip[j];
-    else if (sin == 0) {
-      float acc = 0;
-      for (int64_t j = 0; j < inner; j++) acc += ip[j];
-      op[0] += acc;
-    } else
-      for (int64_t j = 0; j < inner; j++) op[j * sin] += ip[j];
-    off += step_outer(r, d, s, idx);
-  }
+  view_accumulate(dst, src, base, rank, dims, stride, 1);
 }
 
 void rc__add_into(float *dst, const float *src, int64_t n) {

@@ -264,11 +264,34 @@ static int row_corners(int r, tap *const *taps, const int *interp, const int64_t
   return nc;
 }
 
-static void next_row(int r, const int64_t *dims, int64_t *idx) {
-  for (int d = r - 2; d >= 0; d--) {
-    if (++idx[d] < dims[d]) return;
-    idx[d] = 0;
+/* The walk over output rows shared by forward and backward. */
+typedef struct row_walk {
+  tap *taps[RC_MAX_RANK];
+  int interp[RC_MAX_RANK];
+  int rank;
+  int64_t xs[RC_MAX_RANK], idx[RC_MAX_RANK], width, rows;
+  int64_t off[1 << (RC_MAX_RANK - 1)];
+  float wt[1 << (RC_MAX_RANK - 1)];
+} row_walk;
+
+static void walk_begin(const rc_kernel *k, row_walk *w) {
+  const rc_tensor *x = k->in[0], *y = k->out[0];
+  w->rank = x->rank;
+  resize_taps(k, w->taps, w->interp);
+  rc__contig_strides(w->xs, x->rank, x->dims);
+  memset(w->idx, 0, sizeof w->idx);
+  w->width = y->dims[x->rank - 1];
+  w->rows = rc_tensor_numel(y) / w->width;
+}
+
+/* Corners of the current row; then moves idx to the next row. */
+static int walk_row(row_walk *w, const int64_t *ydims) {
+  int nc = row_corners(w->rank, w->taps, w->interp, w->idx, w->xs, w->off, w->wt);
+  for (int d = w->rank - 2; d >= 0; d--) {
+    if (++w->idx[d] < ydims[d]) break;
+    w->idx[d] = 0;
   }
+  return nc;
 }
 
 /* x (.., L_d, ..) -> y (.., M_d, ..) */
@@ -276,34 +299,28 @@ static rc_status resize_forward(const rc_kernel *k, rc_err *e) {
   (void)e;
   const rc_tensor *x = k->in[0];
   rc_tensor *y = k->out[0];
-  int r = x->rank;
   if (rc_tensor_numel(y) == 0) return RC_OK;
-  if (r == 0) {
+  if (x->rank == 0) {
     *(float *)y->data = *(const float *)x->data;
     return RC_OK;
   }
-  tap *taps[RC_MAX_RANK];
-  int interp[RC_MAX_RANK];
-  resize_taps(k, taps, interp);
-  int64_t xs[RC_MAX_RANK], idx[RC_MAX_RANK] = {0}, off[1 << (RC_MAX_RANK - 1)];
-  float wt[1 << (RC_MAX_RANK - 1)];
-  rc__contig_strides(xs, r, x->dims);
+  row_walk w;
+  walk_begin(k, &w);
   const float *xd = x->data;
   float *yd = y->data;
-  int64_t width = y->dims[r - 1], rows = rc_tensor_numel(y) / width;
-  const tap *last = taps[r - 1];
-  for (int64_t row = 0; row < rows; row++, yd += width) {
-    int nc = row_corners(r, taps, interp, idx, xs, off, wt);
-    for (int64_t j = 0; j < width; j++) {
+  const tap *last = w.taps[w.rank - 1];
+  int lerp = w.interp[w.rank - 1];
+  for (int64_t row = 0; row < w.rows; row++, yd += w.width) {
+    int nc = walk_row(&w, y->dims);
+    for (int64_t j = 0; j < w.width; j++) {
       const tap *t = &last[j];
       float acc = 0;
       for (int c = 0; c < nc; c++) {
-        const float *p = xd + off[c];
-        acc += interp[r - 1] ? wt[c] * (t->w0 * p[t->i0] + t->w1 * p[t->i1]) : wt[c] * p[t->i0];
+        const float *p = xd + w.off[c];
+        acc += lerp ? w.wt[c] * (t->w0 * p[t->i0] + t->w1 * p[t->i1]) : w.wt[c] * p[t->i0];
       }
       yd[j] = acc;
     }
-    next_row(r, y->dims, idx);
   }
   return RC_OK;
 }
@@ -313,29 +330,24 @@ static rc_status resize_forward(const rc_kernel *k, rc_err *e) {
 static void resize_backward(const rc_kernel *k) {
   if (!k->din[0] || !k->dout[0]) return;
   const rc_tensor *x = k->in[0], *y = k->out[0];
-  int r = x->rank;
   if (rc_tensor_numel(y) == 0) return;
-  if (r == 0) {
+  if (x->rank == 0) {
     *(float *)k->din[0]->data += *(const float *)k->dout[0]->data;
     return;
   }
-  tap *taps[RC_MAX_RANK];
-  int interp[RC_MAX_RANK];
-  resize_taps(k, taps, interp);
-  int64_t xs[RC_MAX_RANK], idx[RC_MAX_RANK] = {0}, off[1 << (RC_MAX_RANK - 1)];
-  float wt[1 << (RC_MAX_RANK - 1)];
-  rc__contig_strides(xs, r, x->dims);
+  row_walk w;
+  walk_begin(k, &w);
   float *gx = k->din[0]->data;
   const float *gy = k->dout[0]->data;
-  int64_t width = y->dims[r - 1], rows = rc_tensor_numel(y) / width;
-  const tap *last = taps[r - 1];
-  for (int64_t row = 0; row < rows; row++, gy += width) {
-    int nc = row_corners(r, taps, interp, idx, xs, off, wt);
-    for (int64_t j = 0; j < width; j++) {
+  const tap *last = w.taps[w.rank - 1];
+  int lerp = w.interp[w.rank - 1];
+  for (int64_t row = 0; row < w.rows; row++, gy += w.width) {
+    int nc = walk_row(&w, y->dims);
+    for (int64_t j = 0; j < w.width; j++) {
       const tap *t = &last[j];
       for (int c = 0; c < nc; c++) {
-        float *p = gx + off[c], g = wt[c] * gy[j];
-        if (interp[r - 1]) {
+        float *p = gx + w.off[c], g = w.wt[c] * gy[j];
+        if (lerp) {
           p[t->i0] += t->w0 * g;
           p[t->i1] += t->w1 * g;
         } else {
@@ -343,7 +355,6 @@ static void resize_backward(const rc_kernel *k) {
         }
       }
     }
-    next_row(r, y->dims, idx);
   }
 }
 
