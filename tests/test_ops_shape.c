@@ -531,6 +531,14 @@ static void test_flatten_identity_dropout(void) {
   CHECK(oh_run(&c, &e) == RC_ERR_UNSUPPORTED);
   CHECK_STR_CONTAINS(e.msg, "training_mode");
   oh_free(&c);
+  oh_init(&c, "Dropout", 13); /* a training_mode known only per batch is refused at plan time */
+  oh_input(&c, RC_DTYPE_FLOAT, 1, I64(5), x);
+  oh_input_absent(&c);
+  oh_input(&c, RC_DTYPE_BOOL, 0, NULL, NULL);
+  c.in_t[2].data = NULL;
+  CHECK(oh_run(&c, &e) == RC_ERR_UNSUPPORTED);
+  CHECK_STR_CONTAINS(e.msg, "input 2");
+  oh_free(&c);
 }
 
 /* ---- Transpose, Concat, Split, Expand, Tile ---- */

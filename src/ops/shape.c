@@ -210,6 +210,9 @@ static rc_status unsqueeze_infer(const rc_node *n, const rc_tensor *const *in, r
  * training_mode) would give a different answer, so it is refused. */
 
 static rc_status dropout_check_mode(const rc_node *n, const rc_tensor *const *in, rc_err *e) {
+  /* A mode that varies per batch cannot be honoured by an identity: refuse
+   * it when planning rather than on the first batch. */
+  if (n->opset >= 12 && n->n_in >= 3 && in[2]) RC_TRY(rc__need_const(n, in, 2, e));
   if (n->opset >= 12 && n->n_in >= 3 && in[2] && in[2]->data && rc_tensor_numel(in[2]) > 0 &&
       rc__load_f64(in[2]->data, in[2]->dtype, 0) != 0)
     return RC_NODE_FAIL(e, n, RC_ERR_UNSUPPORTED,
