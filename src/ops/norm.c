@@ -49,6 +49,24 @@ static void run_norm_backward(float *dx, const float *x, const float *dy, int64_
   *sdyx_out = sdyx;
 }
 
+/* What every normalisation backward reads: x (N, C, ...) or rows, the
+ * per-channel scale, dy, the saved statistics and the gradient buffers
+ * (NULL where no gradient is wanted). */
+typedef struct norm_grads {
+  const float *x, *scale, *dy, *st;
+  float *dx, *dscale, *dbias;
+} norm_grads;
+
+static void norm_grads_init(const rc_kernel *k, norm_grads *g) {
+  g->x = k->in[0]->data;
+  g->scale = k->in[1]->data;
+  g->dy = k->dout[0]->data;
+  g->st = k->saved;
+  g->dx = k->din[0] ? k->din[0]->data : NULL;
+  g->dscale = k->din[1] ? k->din[1]->data : NULL;
+  g->dbias = k->n_in > 2 && k->din[2] ? k->din[2]->data : NULL;
+}
+
 static rc_status need_param_vector(const rc_node *n, const rc_tensor *const *in, int i, int64_t len,
                                    const char *what, rc_err *e) {
   if (i >= n->n_in || !in[i])
@@ -187,10 +205,10 @@ static void bn_backward(const rc_kernel *k) {
   if (!k->dout[0]) return;
   int64_t N, C, S;
   bn_dims(k->in[0], &N, &C, &S);
-  const float *x = k->in[0]->data, *scale = k->in[1]->data, *dy = k->dout[0]->data;
-  const float *st = k->saved;
-  float *dx = k->din[0] ? k->din[0]->data : NULL;
-  float *dscale = k->din[1] ? k->din[1]->data : NULL, *dbias = k->din[2] ? k->din[2]->data : NULL;
+  norm_grads b;
+  norm_grads_init(k, &b);
+  const float *x = b.x, *scale = b.scale, *dy = b.dy, *st = b.st;
+  float *dx = b.dx, *dscale = b.dscale, *dbias = b.dbias;
   float *dmean = k->din[3] ? k->din[3]->data : NULL, *dvar = k->din[4] ? k->din[4]->data : NULL;
   int batch = bn_batch_stats(k);
   int64_t M = N * S;
@@ -342,10 +360,11 @@ static void ln_backward(const rc_kernel *k) {
   if (!k->dout[0]) return; /* Mean / InvStdDev outputs carry no gradient here */
   int64_t rows, len;
   ln_layout(k, &rows, &len);
-  const float *x = k->in[0]->data, *scale = k->in[1]->data, *dy = k->dout[0]->data;
-  const float *st = k->saved;
-  if (k->din[0]) {
-    float *dx = k->din[0]->data;
+  norm_grads ng;
+  norm_grads_init(k, &ng);
+  const float *x = ng.x, *scale = ng.scale, *dy = ng.dy, *st = ng.st;
+  float *dx = ng.dx, *dscale = ng.dscale, *dbias = ng.dbias;
+  if (dx) {
 #pragma omp parallel for schedule(static) if (rows * len > RC__PAR_MIN)
     for (int64_t r = 0; r < rows; r++) {
       const float *xr = x + r * len, *dr = dy + r * len;
@@ -363,8 +382,6 @@ static void ln_backward(const rc_kernel *k) {
         gr[j] += inv * (dr[j] * scale[j] - mg - (xr[j] - mean) * inv * mgx);
     }
   }
-  float *dscale = k->din[1] ? k->din[1]->data : NULL;
-  float *dbias = k->n_in > 2 && k->din[2] ? k->din[2]->data : NULL;
   if (!dscale && !dbias) return;
   int64_t nblk = (len + LN_COL_BLOCK - 1) / LN_COL_BLOCK;
 #pragma omp parallel for schedule(static) if (rows * len > RC__PAR_MIN)
@@ -440,10 +457,10 @@ static void in_backward(const rc_kernel *k) {
   if (!k->dout[0]) return;
   int64_t N, C, S;
   bn_dims(k->in[0], &N, &C, &S);
-  const float *x = k->in[0]->data, *scale = k->in[1]->data, *dy = k->dout[0]->data;
-  const float *st = k->saved;
-  float *dx = k->din[0] ? k->din[0]->data : NULL;
-  float *dscale = k->din[1] ? k->din[1]->data : NULL, *dbias = k->din[2] ? k->din[2]->data : NULL;
+  norm_grads b;
+  norm_grads_init(k, &b);
+  const float *x = b.x, *scale = b.scale, *dy = b.dy, *st = b.st;
+  float *dx = b.dx, *dscale = b.dscale, *dbias = b.dbias;
   int64_t rows = N * C;
   /* Parallel over channels: each owns its scale/B sums, rows in fixed order. */
 #pragma omp parallel for schedule(static) if (rows * S > RC__PAR_MIN)
