@@ -123,6 +123,21 @@ typedef struct zmember {
   int deflated;
 } zmember;
 
+/* The fields local and central headers share, from "version needed" to the
+ * name length; zip64 moves the sizes into the extra field. */
+static void put_zip_common(buf *b, int zip64, int deflated, uint32_t crc, size_t csize, size_t usize,
+                           size_t nlen) {
+  put_le(b, zip64 ? 45 : 20, 2);
+  put_le(b, 0, 2);                /* flags */
+  put_le(b, deflated ? 8 : 0, 2); /* method */
+  put_le(b, 0, 2);                /* time */
+  put_le(b, 0x21, 2);             /* date: 1980-01-01 */
+  put_le(b, crc, 4);
+  put_le(b, zip64 ? 0xFFFFFFFFu : csize, 4);
+  put_le(b, zip64 ? 0xFFFFFFFFu : usize, 4);
+  put_le(b, nlen, 2);
+}
+
 /* A zip archive per APPNOTE. zip64: sizes and offsets in the central
  * directory go through zip64 extra fields and the end record through the
  * zip64 end record, as writers do for large members. */
@@ -136,15 +151,7 @@ static buf make_zip(const zmember *m, int count, int zip64) {
     uint32_t crc = (uint32_t)crc32(0L, m[i].data, (uInt)m[i].n);
     size_t off = out.n, nlen = strlen(m[i].name);
     put_le(&out, 0x04034b50u, 4);
-    put_le(&out, zip64 ? 45 : 20, 2);
-    put_le(&out, 0, 2);
-    put_le(&out, m[i].deflated ? 8 : 0, 2);
-    put_le(&out, 0, 2);
-    put_le(&out, 0x21, 2);
-    put_le(&out, crc, 4);
-    put_le(&out, zip64 ? 0xFFFFFFFFu : csize, 4);
-    put_le(&out, zip64 ? 0xFFFFFFFFu : m[i].n, 4);
-    put_le(&out, nlen, 2);
+    put_zip_common(&out, zip64, m[i].deflated, crc, csize, m[i].n, nlen);
     put_le(&out, zip64 ? 20 : 0, 2);
     put(&out, m[i].name, nlen);
     if (zip64) {
@@ -155,16 +162,8 @@ static buf make_zip(const zmember *m, int count, int zip64) {
     }
     put(&out, body, csize);
     put_le(&cd, 0x02014b50u, 4);
-    put_le(&cd, 20, 2);
-    put_le(&cd, zip64 ? 45 : 20, 2);
-    put_le(&cd, 0, 2);
-    put_le(&cd, m[i].deflated ? 8 : 0, 2);
-    put_le(&cd, 0, 2);
-    put_le(&cd, 0x21, 2);
-    put_le(&cd, crc, 4);
-    put_le(&cd, zip64 ? 0xFFFFFFFFu : csize, 4);
-    put_le(&cd, zip64 ? 0xFFFFFFFFu : m[i].n, 4);
-    put_le(&cd, nlen, 2);
+    put_le(&cd, 20, 2); /* version made by */
+    put_zip_common(&cd, zip64, m[i].deflated, crc, csize, m[i].n, nlen);
     put_le(&cd, zip64 ? 28 : 0, 2);
     put_le(&cd, 0, 2);
     put_le(&cd, 0, 2);
@@ -632,6 +631,42 @@ static void npz_and_gzip_out_of_memory(void) {
   free(nx.p);
   free(z.p);
   free(g.p);
+}
+
+/* Seeded random byte damage to every container: each read succeeds or
+ * fails with a message, never crashes (run under the sanitizer build to also
+ * catch out-of-bounds reads). */
+static void random_damage(void) {
+  const float x[40] = {1, 2, 3};
+  buf nx = npy_image(3, "{'descr': '<f4', 'fortran_order': False, 'shape': (5, 8), }", x, sizeof x);
+  zmember ms = {"x.npy", nx.p, nx.n, 0}, md = {"x.npy", nx.p, nx.n, 1};
+  buf idx = idx_image(0x0D, 2, (uint32_t[]){5, 8}, x, sizeof x);
+  buf images[5] = {nx, make_zip(&ms, 1, 0), make_zip(&md, 1, 0), make_zip(&md, 1, 1), deflate_raw(idx.p, idx.n, 1)};
+  rc_rng r;
+  rc__rng_seed(&r, 2024, 3);
+  int failures = 0, successes = 0;
+  for (int k = 0; k < 5; k++) {
+    unsigned char *copy = malloc(images[k].n);
+    for (int trial = 0; trial < 400; trial++) {
+      memcpy(copy, images[k].p, images[k].n);
+      int flips = 1 + (int)rc__rng_below(&r, 4);
+      for (int f = 0; f < flips; f++) copy[rc__rng_below(&r, images[k].n)] = (unsigned char)rc__rng_next32(&r);
+      rc_array a;
+      rc_err e = {0};
+      rc_status st = rc_array_read_mem(&a, copy, images[k].n, RC_DATA_AUTO, "damaged", NULL, 1 << 20, &e);
+      if (st == RC_OK) {
+        successes++;
+        rc_array_free(&a);
+      } else {
+        failures++;
+        CHECK_STR_CONTAINS(e.msg, "damaged: ");
+      }
+    }
+    free(copy);
+  }
+  CHECK(failures > 0 && successes > 0);
+  for (int k = 0; k < 5; k++) free(images[k].p);
+  free(idx.p);
 }
 
 /* ---- IDX ---------------------------------------------------------------- */
@@ -1119,6 +1154,7 @@ int main(void) {
   RUN(npz_members);
   RUN(npz_corrupt_files);
   RUN(npz_and_gzip_out_of_memory);
+  RUN(random_damage);
   RUN(idx_types);
   RUN(idx_corrupt_and_bombs);
   RUN(fashion_mnist_files);

@@ -114,6 +114,22 @@ static rc_data_format format_by_extension(const char *path) {
   return RC_DATA_AUTO;
 }
 
+/* The first (up to) 8 bytes as "68 65 6c ..." for messages. */
+static const char *first_bytes(char hex[3 * 8 + 1], const unsigned char *p, size_t n) {
+  hex[0] = '\0';
+  for (size_t i = 0; i < n && i < 8; i++) snprintf(hex + 3 * i, 4, "%02x ", p[i]);
+  if (hex[0]) hex[strlen(hex) - 1] = '\0';
+  return n ? hex : "none";
+}
+
+static rc_status unknown_format(const unsigned char *p, size_t n, rc_err *e) {
+  char hex[3 * 8 + 1];
+  return rc__fail(e, RC_ERR_FORMAT,
+                  "not a recognised data file (first bytes: %s); expected NumPy .npy or .npz, IDX "
+                  "(plain or gzip), or ONNX TensorProto .pb",
+                  n ? first_bytes(hex, p, n) : "none, the file is empty");
+}
+
 static rc_status read_gzip(rc_array *out, const rc__src *s, rc_err *e) {
   unsigned char *raw = NULL;
   size_t raw_n = 0;
@@ -125,10 +141,11 @@ static rc_status read_gzip(rc_array *out, const rc__src *s, rc_err *e) {
   switch (rc_data_detect(raw, raw_n)) {
     case RC_DATA_IDX: st = rc__idx_read(out, &inner, e); break;
     case RC_DATA_NPY: st = rc__npy_read(out, &inner, e); break;
-    default:
-      st = rc__fail(e, RC_ERR_FORMAT,
-                    "gzip data holds neither IDX nor .npy data (first bytes after inflating: %s)",
-                    raw_n >= 4 ? "not a known magic" : "fewer than 4 bytes");
+    default: {
+      char hex[3 * 8 + 1];
+      st = rc__fail(e, RC_ERR_FORMAT, "gzip data holds neither IDX nor .npy data (first bytes inflated: %s)",
+                    first_bytes(hex, raw, raw_n));
+    }
   }
   rc__free(inner.heap); /* NULL when the reader adopted the block */
   return st;
@@ -150,15 +167,6 @@ static rc_status read_known(rc_array *out, const rc__src *src, rc_data_format fm
   }
 }
 
-static rc_status unknown_format(const unsigned char *p, size_t n, rc_err *e) {
-  char hex[3 * 8 + 1] = "";
-  for (size_t i = 0; i < n && i < 8; i++) snprintf(hex + 3 * i, 4, "%02x ", p[i]);
-  if (n && hex[0]) hex[strlen(hex) - 1] = '\0';
-  return rc__fail(e, RC_ERR_FORMAT,
-                  "not a recognised data file (first bytes: %s); expected NumPy .npy or .npz, IDX "
-                  "(plain or gzip), or ONNX TensorProto .pb",
-                  n ? hex : "none, the file is empty");
-}
 
 static rc_status named(rc_status st, rc_err *e, const char *name) {
   if (st != RC_OK && e) rc__wrap(e, "%s", name);

@@ -65,6 +65,11 @@ static int all_zero(const unsigned char *p, size_t n) {
   return 1;
 }
 
+static rc_status over_limit(size_t limit, rc_err *e) {
+  return rc__fail(e, RC_ERR_LIMIT,
+                  "gzip data inflates past the limit of %zu bytes (a decompression bomb, or raise the limit)", limit);
+}
+
 rc_status rc__gunzip(unsigned char **out, size_t *out_n, const unsigned char *p, size_t n, size_t limit,
                      rc_err *e) {
   *out = NULL;
@@ -94,16 +99,14 @@ rc_status rc__gunzip(unsigned char **out, size_t *out_n, const unsigned char *p,
       in_pos += k;
     }
     if (got > limit) {
-      st = rc__fail(e, RC_ERR_LIMIT, "gzip data inflates past the limit of %zu bytes (a decompression bomb, "
-                    "or raise the limit)", limit);
+      st = over_limit(limit, e);
       break;
     }
     if (got == cap + 1) {
       /* Full: grow, but never past limit + 1 (the byte that proves excess). */
       size_t ncap = cap > limit / 2 ? limit : cap * 2;
       if (ncap <= cap) {
-        st = rc__fail(e, RC_ERR_LIMIT, "gzip data inflates past the limit of %zu bytes (a decompression bomb, "
-                      "or raise the limit)", limit);
+        st = over_limit(limit, e);
         break;
       }
       unsigned char *nb = rc__realloc(buf, ncap + 1);
@@ -143,7 +146,7 @@ rc_status rc__gunzip(unsigned char **out, size_t *out_n, const unsigned char *p,
   }
   inflateEnd(&zs);
   if (st == RC_OK && got > limit)
-    st = rc__fail(e, RC_ERR_LIMIT, "gzip data inflates past the limit of %zu bytes", limit);
+    st = over_limit(limit, e);
   if (st != RC_OK) {
     rc__free(buf);
     return st;

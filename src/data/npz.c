@@ -287,6 +287,14 @@ static uint32_t crc_of(const unsigned char *p, uint64_t n) {
   return (uint32_t)c;
 }
 
+static rc_status check_crc(const unsigned char *p, uint64_t n, uint32_t want, rc_err *e) {
+  uint32_t crc = crc_of(p, n);
+  if (crc != want)
+    return rc__fail(e, RC_ERR_FORMAT, "CRC-32 mismatch (directory 0x%08x, data 0x%08x): the file is damaged", want,
+                    crc);
+  return RC_OK;
+}
+
 static rc_status read_member(rc_array *out, const zip_dir *z, const zip_entry *en, size_t max_bytes, rc_err *e) {
   if (en->flags & 1u) return rc__fail(e, RC_ERR_UNSUPPORTED, "member is encrypted");
   if (en->method != 0 && en->method != 8)
@@ -307,22 +315,14 @@ static rc_status read_member(rc_array *out, const zip_dir *z, const zip_entry *e
     if (en->csize != en->usize)
       return rc__fail(e, RC_ERR_FORMAT, "stored member sizes disagree (%llu compressed, %llu uncompressed)",
                       (unsigned long long)en->csize, (unsigned long long)en->usize);
-    uint32_t crc = crc_of(src, en->usize);
-    if (crc != en->crc)
-      return rc__fail(e, RC_ERR_FORMAT, "CRC-32 mismatch (directory 0x%08x, data 0x%08x): the file is damaged",
-                      en->crc, crc);
+    RC_TRY(check_crc(src, en->usize, en->crc, e));
     rc__src s = {src, (size_t)en->usize, NULL, max_bytes};
     return rc__npy_read(out, &s, e);
   }
   unsigned char *buf = rc__malloc((size_t)en->usize);
   if (!buf) return rc__fail(e, RC_ERR_NOMEM, "out of memory for %llu bytes", (unsigned long long)en->usize);
   rc_status st = inflate_exact(buf, en->usize, src, en->csize, e);
-  if (st == RC_OK) {
-    uint32_t crc = crc_of(buf, en->usize);
-    if (crc != en->crc)
-      st = rc__fail(e, RC_ERR_FORMAT, "CRC-32 mismatch (directory 0x%08x, data 0x%08x): the file is damaged",
-                    en->crc, crc);
-  }
+  if (st == RC_OK) st = check_crc(buf, en->usize, en->crc, e);
   rc__src s = {buf, (size_t)en->usize, buf, max_bytes};
   if (st == RC_OK) st = rc__npy_read(out, &s, e);
   rc__free(s.heap); /* NULL once adopted */
