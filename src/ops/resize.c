@@ -177,7 +177,10 @@ static double source_coord(int coord, double o, double s, int64_t in_len, int64_
       return center * (1 - adj) + (o + 0.5) / s - 0.5;
     }
     case CT_PYTORCH_HALF_PIXEL: return out_len > 1 ? (o + 0.5) / s - 0.5 : 0.0;
-    case CT_ALIGN_CORNERS: return out_len == 1 ? 0.0 : o * (double)(in_len - 1) / (double)(out_len - 1);
+    case CT_ALIGN_CORNERS: { /* the spec's length_resized is scale * length, not the rounded size */
+      double len = s * (double)in_len;
+      return out_len == 1 || len == 1 ? 0.0 : o * (double)(in_len - 1) / (len - 1);
+    }
     case CT_TF_HALF_PIXEL_FOR_NN: return (o + 0.5) / s;
     default: return o / s;
   }
