@@ -1,7 +1,7 @@
 #!/usr/bin/python3
 """Reference data files written by NumPy, for tests/test_data_ref.c.
 
-Run with Debian's python3 (python3-numpy): ref_data_files.py OUT_DIR.
+Run with Debian's python3 (python3-numpy, python3-onnx): ref_data_files.py OUT_DIR.
 Every array is made from a simple formula that the C test recomputes, so the
 check is "what NumPy wrote is what recoup reads":
 
@@ -18,6 +18,9 @@ check is "what NumPy wrote is what recoup reads":
   big_endian.npy   np.save of a '>f4' array (refused on read)
   images-idx3-ubyte.gz  IDX uint8 (4,5,6) = (i * 7) % 256, gzip
   floats-idx2.gz   IDX float32 (3,4) = arange(12) * 0.5 - 1, gzip
+  raw_f4.pb        onnx.numpy_helper.from_array (raw_data): arange(6) * 1.5 - 2,
+                   float32 (2,3)
+  typed_i64.pb     onnx.helper.make_tensor (int64_data): [-7, 0, 9, 2**40], (4,)
 
 dtypes.npz members: signed ints are [-3,-2,-1,0,1,2,3,100], unsigned ints
 [0,1,2,3,4,5,6,200], floats the signed values * 0.5, bool (i % 3 == 0).
@@ -28,6 +31,8 @@ import struct
 import sys
 
 import numpy as np
+import onnx
+from onnx import helper, numpy_helper
 
 
 def write_idx_gz(path, arr, code):
@@ -72,6 +77,11 @@ def main():
 
     write_idx_gz(p("images-idx3-ubyte.gz"), ((np.arange(120) * 7) % 256).astype(np.uint8).reshape(4, 5, 6), 0x08)
     write_idx_gz(p("floats-idx2.gz"), (np.arange(12) * 0.5 - 1).astype(np.float32).reshape(3, 4), 0x0D)
+    with open(p("raw_f4.pb"), "wb") as f:
+        f.write(numpy_helper.from_array((np.arange(6) * 1.5 - 2).astype(np.float32).reshape(2, 3),
+                                        "raw").SerializeToString())
+    with open(p("typed_i64.pb"), "wb") as f:
+        f.write(helper.make_tensor("typed", onnx.TensorProto.INT64, [4], [-7, 0, 9, 2**40]).SerializeToString())
     print("reference data files written to", out)
 
 

@@ -470,6 +470,12 @@ static void detection_and_plain_errors(void) {
   CHECK_INT(rc_data_detect("PK\x03\x04", 4), RC_DATA_NPZ);
   CHECK_INT(rc_data_detect("\x1f\x8b\x08", 3), RC_DATA_GZIP);
   CHECK_INT(rc_data_detect("\x08\x01\x12\x00", 4), RC_DATA_AUTO); /* protobuf tag, not IDX */
+  /* .pb goes to the ONNX module's TensorProto reader, which names the file. */
+  path = tmp_path("junk.pb");
+  write_file(path, "\xff\xff\xff\xff", 4);
+  CHECK(rc_array_read(&a, path, NULL, 0, &e) != RC_OK);
+  CHECK_STR_CONTAINS(e.msg, "junk.pb");
+  CHECK(a.t.data == NULL && a.owned == NULL);
   /* TensorProto needs a file. */
   CHECK_INT(rc_array_read_mem(&a, "\x08\x01", 2, RC_DATA_TENSORPROTO, "t.pb", NULL, 0, &e), RC_ERR_UNSUPPORTED);
 }

@@ -2,7 +2,8 @@
  * scripts/ref_data_files.py: np.save (format 1.0), np.lib.format.write_array
  * (2.0, 3.0), np.savez (stored zip with zip64 local headers),
  * np.savez_compressed (deflated), and gzipped IDX files. Each array follows
- * a formula stated in the script, recomputed here. */
+ * a formula stated in the script, recomputed here. TensorProto .pb files
+ * come from the onnx package (Debian python3-onnx). */
 #include <stdint.h>
 #include <stdlib.h>
 
@@ -143,6 +144,23 @@ static void idx_gzip(void) {
   }
 }
 
+static void tensorproto_files(void) {
+  rc_array a;
+  /* Source: onnx (Debian python3-onnx), numpy_helper.from_array: raw_data. */
+  if (read_ok(&a, "raw_f4.pb", NULL)) {
+    CHECK(a.t.dtype == RC_DTYPE_FLOAT && a.t.rank == 2 && a.t.dims[0] == 2 && a.t.dims[1] == 3);
+    for (int i = 0; i < 6; i++) CHECK_NEAR(((float *)a.t.data)[i], i * 1.5 - 2, 0, 0);
+    rc_array_free(&a);
+  }
+  /* Source: onnx (Debian python3-onnx), helper.make_tensor: int64_data. */
+  if (read_ok(&a, "typed_i64.pb", NULL)) {
+    CHECK(a.t.dtype == RC_DTYPE_INT64 && a.t.rank == 1 && a.t.dims[0] == 4);
+    const int64_t want[4] = {-7, 0, 9, 1LL << 40};
+    for (int i = 0; i < 4; i++) CHECK_INT(((int64_t *)a.t.data)[i], want[i]);
+    rc_array_free(&a);
+  }
+}
+
 int main(void) {
   const char *bin = getenv("RECOUP_BINARY_DIR");
   if (!bin) {
@@ -155,5 +173,6 @@ int main(void) {
   RUN(npz_compressed);
   RUN(refused_layouts);
   RUN(idx_gzip);
+  RUN(tensorproto_files);
   return TEST_REPORT();
 }
