@@ -3,6 +3,7 @@
 #include <string.h>
 
 #include "cli/cli.h"
+#include "graph/plan.h"
 
 void cli_data_opts_init(cli_data_opts *o) {
   memset(o, 0, sizeof *o);
@@ -133,4 +134,20 @@ rc_status cli_samples_dataset(rc_dataset *d, const cli_samples *s, const int64_t
   rc_tensor ins[CLI_MAX_DATA];
   for (int i = 0; i < s->n_inputs; i++) ins[i] = s->inputs[i].t;
   return rc_dataset_init(d, ins, s->n_inputs, s->has_labels ? &s->labels.t : NULL, index, n_index, e);
+}
+
+rc_status cli_output_classes(const rc_graph *g, const cli_samples *s, int64_t *k, rc_err *e) {
+  rc_tensor shapes[CLI_MAX_DATA];
+  cli_samples_shapes(s, 1, shapes);
+  rc_plan *p = NULL;
+  RC_TRY(rc_plan_create(&p, g, shapes, NULL, e));
+  const rc_tensor *t = rc_plan_tensor(p, g->outputs[0]);
+  rc_status st = RC_OK;
+  if (t->dtype != RC_DTYPE_FLOAT || t->rank != 2)
+    st = rc__fail(e, RC_ERR_SHAPE, "%s: labels need a float (N, classes) first output; '%s' has rank %d", g->path,
+                  g->values[g->outputs[0]].name, t->rank);
+  else
+    *k = t->dims[1];
+  rc_plan_free(p);
+  return st;
 }

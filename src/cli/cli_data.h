@@ -39,6 +39,8 @@ rc_status cli_samples_load(cli_samples *s, const cli_data_opts *o, const rc_grap
 /* Read labels for the loaded samples, checked against the count and n_classes. */
 rc_status cli_samples_load_labels(cli_samples *s, const char *path, int64_t n_classes, rc_err *e);
 void cli_samples_free(cli_samples *s);
+/* Number of classes: the width of the first output, planned at batch 1. */
+rc_status cli_output_classes(const rc_graph *g, const cli_samples *s, int64_t *k, rc_err *e);
 /* Tensor shapes for planning at batch b (dims[0] = b). */
 void cli_samples_shapes(const cli_samples *s, int64_t b, rc_tensor *shapes);
 /* Dataset view over every sample (labels included when present). */

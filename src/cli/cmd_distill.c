@@ -476,10 +476,8 @@ int rc_cmd_distill(int argc, char **argv) {
   if (cli_samples_load(&train, &a.data, &student->graph, &e) != RC_OK) goto out;
   if (a.n_val_data && load_val(&val, &a, &student->graph, &e) != RC_OK) goto out;
   {
-    /* Class count from the student's output declaration, else unchecked here
-     * (distill checks logits' width against the teacher once planned). */
-    const rc_value *o = &student->graph.values[student->graph.outputs[0]];
-    int64_t k = o->decl.rank == 2 && o->decl.dims[1] > 0 ? o->decl.dims[1] : INT32_MAX;
+    int64_t k = 0;
+    if (cli_output_classes(&student->graph, &train, &k, &e) != RC_OK) goto out;
     if (a.data.labels && cli_samples_load_labels(&train, a.data.labels, k, &e) != RC_OK) goto out;
     if (a.val_labels && cli_samples_load_labels(&val, a.val_labels, k, &e) != RC_OK) goto out;
   }

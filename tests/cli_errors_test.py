@@ -1,0 +1,144 @@
+#!/usr/bin/python3
+"""Command-line behaviour on bad input: every case must end with exit status 1
+(or 2 for a usage error), exactly one error line on stderr that names the file
+or field at fault, no signal, nothing written, and inputs untouched.
+
+Models are built here with the onnx package (Debian python3-onnx) so that the
+test depends on no other fixture; the ONNX checker accepts each of them first.
+
+Usage: cli_errors_test.py RECOUP_BINARY WORK_DIR
+"""
+
+import hashlib
+import os
+import subprocess
+import sys
+
+import numpy as np
+import onnx
+from onnx import TensorProto, helper, numpy_helper
+
+RECOUP, WORK = sys.argv[1], sys.argv[2]
+os.makedirs(WORK, exist_ok=True)
+failures = []
+passed = 0
+
+
+def classifier(path, classes=4, zero_fraction=0.0, seed=0):
+    """x (N, 6) -> Gemm -> Relu -> Gemm -> logits (N, classes)."""
+    rng = np.random.RandomState(seed)
+    w1 = rng.randn(8, 6).astype(np.float32)
+    w2 = rng.randn(classes, 8).astype(np.float32)
+    if zero_fraction:
+        w1[np.abs(w1) < np.quantile(np.abs(w1), zero_fraction)] = 0
+    inits = [numpy_helper.from_array(w1, "w1"), numpy_helper.from_array(np.zeros(8, np.float32), "b1"),
+             numpy_helper.from_array(w2, "w2"), numpy_helper.from_array(np.zeros(classes, np.float32), "b2")]
+    nodes = [helper.make_node("Gemm", ["x", "w1", "b1"], ["h"], transB=1, name="fc1"),
+             helper.make_node("Relu", ["h"], ["r"], name="act"),
+             helper.make_node("Gemm", ["r", "w2", "b2"], ["logits"], transB=1, name="fc2")]
+    g = helper.make_graph(nodes, "clf", [helper.make_tensor_value_info("x", TensorProto.FLOAT, ["N", 6])],
+                          [helper.make_tensor_value_info("logits", TensorProto.FLOAT, ["N", classes])], inits)
+    m = helper.make_model(g, opset_imports=[helper.make_opsetid("", 13)])
+    m.ir_version = 8
+    onnx.checker.check_model(m)
+    onnx.save(m, path)
+    return path
+
+
+def digest(path):
+    with open(path, "rb") as f:
+        return hashlib.sha256(f.read()).hexdigest()
+
+
+def expect_error(name, args, must_name, code=1, absent=None):
+    """Run recoup; require the exit code, one stderr line naming `must_name`."""
+    global passed
+    watched = [a for a in args if os.path.isfile(a)]
+    before = {p: digest(p) for p in watched}
+    r = subprocess.run([RECOUP] + args, capture_output=True, text=True, timeout=300)
+    err_lines = [l for l in r.stderr.splitlines() if l.strip()]
+    problems = []
+    if r.returncode < 0:
+        problems.append(f"killed by signal {-r.returncode}")
+    elif r.returncode != code:
+        problems.append(f"exit status {r.returncode}, expected {code}")
+    if code == 1 and len(err_lines) != 1:
+        problems.append(f"{len(err_lines)} stderr lines, expected one")
+    if must_name not in r.stderr:
+        problems.append(f"stderr does not name '{must_name}'")
+    if absent and os.path.exists(absent):
+        problems.append(f"{absent} was written")
+    for p, d in before.items():
+        if digest(p) != d:
+            problems.append(f"input {p} was modified")
+    if problems:
+        failures.append(f"{name}: {'; '.join(problems)}\n    stderr: {r.stderr.strip()[:400]}")
+    else:
+        passed += 1
+        print(f"ok   {name}: {err_lines[0] if err_lines else ''}")
+
+
+def w(name):
+    return os.path.join(WORK, name)
+
+
+dense = classifier(w("dense.onnx"))
+pruned = classifier(w("pruned.onnx"), zero_fraction=0.5)
+wide = classifier(w("wide.onnx"), classes=5)
+x = np.random.RandomState(1).randn(200, 6).astype(np.float32)
+np.save(w("x.npy"), x)
+np.save(w("x_wrong.npy"), np.random.RandomState(1).randn(200, 7).astype(np.float32))
+xn = x.copy()
+xn[17, 3] = np.nan
+np.save(w("x_nan.npy"), xn)
+np.save(w("labels_bad.npy"), np.full(200, 9, np.int64))
+np.save(w("labels_short.npy"), np.zeros(150, np.int64))
+with open(w("not_onnx.onnx"), "wb") as f:
+    f.write(b"this is plain text, not a model\n" * 20)
+raw = open(dense, "rb").read()
+with open(w("truncated.onnx"), "wb") as f:
+    f.write(raw[: len(raw) // 2])
+with open(w("x_trunc.npy"), "wb") as f:
+    f.write(open(w("x.npy"), "rb").read()[:1000])
+out = w("out.onnx")
+base = ["distill", "--teacher", dense, "--student", pruned, "--steps", "2"]
+
+expect_error("missing model", ["inspect", w("nope.onnx")], "nope.onnx")
+expect_error("not ONNX", ["inspect", w("not_onnx.onnx")], "not_onnx.onnx")
+expect_error("truncated ONNX", ["eval", w("truncated.onnx"), "--data", w("x.npy")], "truncated.onnx")
+expect_error("truncated .npy", ["eval", dense, "--data", w("x_trunc.npy")], "x_trunc.npy")
+expect_error("data of the wrong shape", ["eval", dense, "--data", w("x_wrong.npy")], "x_wrong.npy")
+expect_error("NaN in data", ["eval", dense, "--data", w("x_nan.npy")], "sample 17")
+expect_error("labels out of range", ["eval", dense, "--data", w("x.npy"), "--labels", w("labels_bad.npy")],
+             "labels_bad.npy")
+expect_error("label count", ["eval", dense, "--data", w("x.npy"), "--labels", w("labels_short.npy")],
+             "labels_short.npy")
+expect_error("unknown command", ["frobnicate"], "frobnicate", code=2)
+expect_error("missing required option", ["distill", "--teacher", dense], "required", code=2)
+expect_error("bad option value", base + ["--data", w("x.npy"), "--out", out, "--lr", "-1"], "--lr", code=2,
+             absent=out)
+expect_error("output is the student", base + ["--data", w("x.npy"), "--out", pruned], "refusing", absent=None)
+expect_error("output is the data", base + ["--data", w("x.npy"), "--out", w("x.npy")], "refusing")
+expect_error("output folder missing", base + ["--data", w("x.npy"), "--out", w("no/such/dir/out.onnx")],
+             "no/such/dir")
+expect_error("teacher and student disagree", ["distill", "--teacher", wide, "--student", pruned, "--steps", "2",
+                                              "--data", w("x.npy"), "--out", out], "wide.onnx", absent=out)
+expect_error("distill on NaN data", base + ["--data", w("x_nan.npy"), "--out", out], "sample 17", absent=out)
+expect_error("distill labels out of range",
+             base + ["--data", w("x.npy"), "--labels", w("labels_bad.npy"), "--out", out], "labels_bad.npy",
+             absent=out)
+expect_error("distill wrong data shape", base + ["--data", w("x_wrong.npy"), "--out", out], "x_wrong.npy",
+             absent=out)
+
+# Every command answers --help with usage on stdout and exit status 0.
+for cmd in ([], ["inspect"], ["eval"], ["distill"]):
+    r = subprocess.run([RECOUP] + cmd + ["--help"], capture_output=True, text=True, timeout=60)
+    if r.returncode != 0 or "Usage: recoup" not in r.stdout:
+        failures.append(f"--help for '{' '.join(cmd) or 'recoup'}': status {r.returncode}")
+    else:
+        passed += 1
+
+for f in failures:
+    print("FAIL", f)
+print(f"{passed} passed, {len(failures)} failed")
+sys.exit(1 if failures else 0)
