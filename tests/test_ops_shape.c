@@ -66,6 +66,12 @@ static void test_reshape_needs_plan_time_shape(void) {
   CHECK(oh_run(&c, &e) == RC_ERR_UNSUPPORTED);
   CHECK_STR_CONTAINS(e.msg, "before the first batch");
   oh_free(&c);
+  /* 16-bit floats are refused (no float16 gradients or consumers) */
+  oh_init(&c, "Reshape", 13);
+  oh_input(&c, RC_DTYPE_FLOAT16, 1, I64(6), NULL);
+  oh_input(&c, RC_DTYPE_INT64, 1, I64(2), I64(2, 3));
+  CHECK_REFUSED(&c, RC_ERR_UNSUPPORTED, "float16");
+  oh_free(&c);
 }
 
 /* ---- Slice (spec: clamping rules; examples slice_neg_steps, end_out_of_bounds) ---- */

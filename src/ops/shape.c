@@ -25,9 +25,15 @@ void rc__shape_copy_backward(const rc_kernel *k) {
     rc__add_into(k->din[0]->data, k->dout[0]->data, rc_tensor_numel(k->din[0]));
 }
 
+/* Dtypes these ops move: every numeric type except the 16-bit floats, whose
+ * gradients (float32 buffers) and consumers recoup does not have. */
+static int movable(rc_dtype dt) {
+  return rc_dtype_size(dt) != 0 && dt != RC_DTYPE_FLOAT16 && dt != RC_DTYPE_BFLOAT16;
+}
+
 rc_status rc__shape_need_numeric(const rc_node *n, const rc_tensor *t, int idx, rc_err *e) {
   if (!t) return RC_NODE_FAIL(e, n, RC_ERR_INVALID, "input %d is required", idx);
-  if (rc_dtype_size(t->dtype) == 0)
+  if (!movable(t->dtype))
     return RC_NODE_FAIL(e, n, RC_ERR_UNSUPPORTED, "input %d has dtype %s, which recoup does not compute with",
                         idx, rc_dtype_name(t->dtype));
   return RC_OK;
@@ -551,7 +557,7 @@ static rc_status constant_parse(rc_node *n, rc_arena *a, rc_err *e) {
     const char *nm = at->name;
     if (!strcmp(nm, "value") && at->type == RC_ATTR_TENSOR) {
       *t = at->t;
-      if (rc_dtype_size(t->dtype) == 0)
+      if (!movable(t->dtype))
         return RC_NODE_FAIL(e, n, RC_ERR_UNSUPPORTED, "value has dtype %s", rc_dtype_name(t->dtype));
       if (!t->data && rc_tensor_numel(t) > 0)
         return RC_NODE_FAIL(e, n, RC_ERR_FORMAT, "value holds no data%s", "");
@@ -609,7 +615,7 @@ static rc_status cos_parse(rc_node *n, rc_arena *a, rc_err *e) {
   if (!v) return RC_OK;
   if (v->type != RC_ATTR_TENSOR || rc_tensor_numel(&v->t) != 1 || !v->t.data)
     return RC_NODE_FAIL(e, n, RC_ERR_INVALID, "value must be a one-element tensor%s", "");
-  if (rc_dtype_size(v->t.dtype) == 0)
+  if (!movable(v->t.dtype))
     return RC_NODE_FAIL(e, n, RC_ERR_UNSUPPORTED, "value has dtype %s", rc_dtype_name(v->t.dtype));
   n->params = (void *)&v->t;
   return RC_OK;
