@@ -3,6 +3,8 @@
  * definitions (numpy broadcasting: "Broadcasting in ONNX", the spec's
  * Broadcasting.md), checked element by element against an index-by-index
  * evaluation of that rule written here. */
+#include <omp.h>
+
 #include "ops_check.h"
 
 /* Flat index into an input of shape in_dims for output element `flat`, by the
@@ -125,6 +127,30 @@ static void test_bias_gradient_large(void) {
   CHECK_INT(bad, 0);
   CHECK_NEAR(grad_of(&c, 0)[12345], g[12345], 0, 0);
   oh_free(&c);
+}
+
+/* Sums over broadcast dims are owned by one thread each and taken in a fixed
+ * order, so the bias gradient is bit-identical for 1 and 2 threads. */
+static void test_thread_count_invariance(void) {
+  float first[64];
+  for (int threads = 1; threads <= 2; threads++) {
+    omp_set_num_threads(threads);
+    oh_case c;
+    oh_init(&c, "Mul", 14);
+    const int64_t x[] = {8, 64, 24, 24}, b[] = {1, 64, 1, 1};
+    oh_input(&c, RC_DTYPE_FLOAT, 4, x, NULL);
+    oh_input(&c, RC_DTYPE_FLOAT, 4, b, NULL);
+    oh_fill(oh_in_f(&c, 0), rc_tensor_numel(&c.in_t[0]), 21);
+    oh_fill(oh_in_f(&c, 1), 64, 22);
+    CHECK(run_ok(&c));
+    run_backward(&c, NULL, (const int[]){1, -1});
+    if (threads == 1)
+      memcpy(first, grad_of(&c, 1), sizeof first);
+    else
+      CHECK(memcmp(first, grad_of(&c, 1), sizeof first) == 0);
+    oh_free(&c);
+  }
+  omp_set_num_threads(omp_get_num_procs());
 }
 
 static void test_broadcast_refused(void) {
@@ -370,6 +396,7 @@ int main(void) {
   RUN(test_add_values);
   RUN(test_broadcast_shapes);
   RUN(test_bias_gradient_large);
+  RUN(test_thread_count_invariance);
   RUN(test_broadcast_refused);
   RUN(test_integer_forms);
   RUN(test_pow);

@@ -51,6 +51,12 @@ typedef void (*rc__bc_grad_fn)(float *g, int gs, int which, const float *dy, con
 void rc__bc_grad(const rc__bc *p, int which, float *g, const float *dy, const void *const *x,
                  const size_t *xsize, const float *y, rc__bc_grad_fn fn);
 
+/* Lane count for sums: partial sums by j % RC__LANES, added in a fixed tree. */
+#define RC__LANES 8
+static inline double rc__lanes_total(const double *s) {
+  return ((s[0] + s[1]) + (s[2] + s[3])) + ((s[4] + s[5]) + (s[6] + s[7]));
+}
+
 /* Generate row and gradient functions for a float binary op.
  * FWD uses x (first input) and w (second); GA / GB are d(out)/d(x), d(out)/d(w)
  * times the incoming gradient d, and may use the output o. */
@@ -81,20 +87,28 @@ void rc__bc_grad(const rc__bc *p, int which, float *g, const float *dy, const vo
     }                                                                                          \
     return 0;                                                                                  \
   }                                                                                            \
+  static inline __attribute__((always_inline)) float name##_gj(                                \
+      const float *restrict dy, const float *restrict a, const float *restrict b,              \
+      const float *restrict y, int64_t j, const int ia, const int ib, const int which) {       \
+    float xa = a[ia ? j : 0], xb = b[ib ? j : 0];                                              \
+    return which ? name##_gb(xa, xb, y[j], dy[j]) : name##_ga(xa, xb, y[j], dy[j]);            \
+  }                                                                                            \
   static inline __attribute__((always_inline)) void name##_grad_k(                              \
       float *restrict g, const float *restrict dy, const float *restrict a,                    \
       const float *restrict b, const float *restrict y, int64_t n, const int ia, const int ib, \
       const int gs, const int which) {                                                         \
-    double s = 0;                                                                              \
-    for (int64_t j = 0; j < n; j++) {                                                          \
-      float xa = a[ia ? j : 0], xb = b[ib ? j : 0];                                            \
-      float v = which ? name##_gb(xa, xb, y[j], dy[j]) : name##_ga(xa, xb, y[j], dy[j]);       \
-      if (gs)                                                                                  \
-        g[j] += v;                                                                             \
-      else                                                                                     \
-        s += v;                                                                                \
+    if (gs) {                                                                                  \
+      for (int64_t j = 0; j < n; j++) g[j] += name##_gj(dy, a, b, y, j, ia, ib, which);        \
+      return;                                                                                  \
     }                                                                                          \
-    if (!gs) g[0] += (float)s;                                                                 \
+    /* Sums use RC__LANES independent accumulators: a fixed order (so still \
+     * deterministic) without one long dependency chain. */                                  \
+    double s[RC__LANES] = {0};                                                                 \
+    int64_t j = 0;                                                                             \
+    for (; j + RC__LANES <= n; j += RC__LANES)                                                 \
+      for (int u = 0; u < RC__LANES; u++) s[u] += name##_gj(dy, a, b, y, j + u, ia, ib, which); \
+    for (; j < n; j++) s[0] += name##_gj(dy, a, b, y, j, ia, ib, which);                       \
+    g[0] += (float)rc__lanes_total(s);                                                         \
   }                                                                                            \
   static void name##_grad(float *g, int gs, int which, const float *dy, const void *const *in, \
                           const int *inner, const float *y, int64_t n) {                       \
