@@ -208,8 +208,9 @@ static size_t resize_workspace(const rc_kernel *k, int backward) {
   return s * sizeof(tap);
 }
 
-/* Fills taps for every axis (in k->work); interp[d] = 1 where the axis mixes two inputs. */
-static void resize_taps(const rc_kernel *k, tap **taps, int *interp) {
+/* Fills taps for every axis (in k->work); interp[d] = 1 where the axis mixes
+ * two inputs; returns how many leading axes map onto themselves. */
+static int resize_taps(const rc_kernel *k, tap **taps, int *interp) {
   const resize_params *p = k->params;
   const rc_tensor *x = k->in[0], *y = k->out[0];
   double scale[RC_MAX_RANK];
@@ -217,11 +218,14 @@ static void resize_taps(const rc_kernel *k, tap **taps, int *interp) {
   rc_err e;
   resize_plan(k->node, (const rc_tensor *const *)k->in, scale, dims, &e);
   tap *w = k->work;
+  int lead = 0, leading = 1;
   for (int d = 0; d < x->rank; d++) {
     taps[d] = w;
     interp[d] = 0;
     int64_t L = x->dims[d], M = y->dims[d];
     int same = L == M && scale[d] == 1.0;
+    leading = leading && same;
+    lead += leading;
     for (int64_t o = 0; o < M; o++, w++) {
       if (same) { /* every mode maps an unscaled axis onto itself */
         *w = (tap){o, o, 1.0f, 0.0f};
@@ -241,6 +245,7 @@ static void resize_taps(const rc_kernel *k, tap **taps, int *interp) {
       if (f != 0) interp[d] = 1;
     }
   }
+  return lead;
 }
 
 /* Offsets and weights of the input points one output row (all axes but the
@@ -267,34 +272,42 @@ static int row_corners(int r, tap *const *taps, const int *interp, const int64_t
   return nc;
 }
 
-/* The walk over output rows shared by forward and backward. */
+/* The walk over output rows (all axes but the last fixed) shared by forward
+ * and backward. Rows are independent for forward; for backward, rows of
+ * different planes (the leading axes that map onto themselves, e.g. N and C)
+ * write disjoint parts of dx, so planes run in parallel deterministically. */
 typedef struct row_walk {
   tap *taps[RC_MAX_RANK];
   int interp[RC_MAX_RANK];
-  int rank;
-  int64_t xs[RC_MAX_RANK], idx[RC_MAX_RANK], width, rows;
-  int64_t off[1 << (RC_MAX_RANK - 1)];
-  float wt[1 << (RC_MAX_RANK - 1)];
+  int rank, lerp;
+  int64_t xs[RC_MAX_RANK], ydims[RC_MAX_RANK], width, rows, planes;
 } row_walk;
+
+#define CORNERS (1 << (RC_MAX_RANK - 1))
+#define PARALLEL_MIN 16384 /* output elements below which threads cost more than they give */
 
 static void walk_begin(const rc_kernel *k, row_walk *w) {
   const rc_tensor *x = k->in[0], *y = k->out[0];
   w->rank = x->rank;
-  resize_taps(k, w->taps, w->interp);
+  int lead = resize_taps(k, w->taps, w->interp);
+  if (lead > w->rank - 1) lead = w->rank - 1;
+  w->lerp = w->interp[w->rank - 1];
   rc__contig_strides(w->xs, x->rank, x->dims);
-  memset(w->idx, 0, sizeof w->idx);
+  memcpy(w->ydims, y->dims, sizeof w->ydims);
   w->width = y->dims[x->rank - 1];
   w->rows = rc_tensor_numel(y) / w->width;
+  w->planes = 1;
+  for (int d = 0; d < lead; d++) w->planes *= y->dims[d];
 }
 
-/* Corners of the current row; then moves idx to the next row. */
-static int walk_row(row_walk *w, const int64_t *ydims) {
-  int nc = row_corners(w->rank, w->taps, w->interp, w->idx, w->xs, w->off, w->wt);
+/* Offsets and weights of the input points output row `row` reads. */
+static int walk_row(const row_walk *w, int64_t row, int64_t *off, float *wt) {
+  int64_t idx[RC_MAX_RANK];
   for (int d = w->rank - 2; d >= 0; d--) {
-    if (++w->idx[d] < ydims[d]) break;
-    w->idx[d] = 0;
+    idx[d] = row % w->ydims[d];
+    row /= w->ydims[d];
   }
-  return nc;
+  return row_corners(w->rank, w->taps, w->interp, idx, w->xs, off, wt);
 }
 
 /* x (.., L_d, ..) -> y (.., M_d, ..) */
@@ -310,17 +323,18 @@ static rc_status resize_forward(const rc_kernel *k, rc_err *e) {
   row_walk w;
   walk_begin(k, &w);
   const float *xd = x->data;
-  float *yd = y->data;
   const tap *last = w.taps[w.rank - 1];
-  int lerp = w.interp[w.rank - 1];
-  for (int64_t row = 0; row < w.rows; row++, yd += w.width) {
-    int nc = walk_row(&w, y->dims);
+#pragma omp parallel for schedule(static) if (w.rows * w.width >= PARALLEL_MIN)
+  for (int64_t row = 0; row < w.rows; row++) {
+    int64_t off[CORNERS];
+    float wt[CORNERS], *yd = (float *)y->data + row * w.width;
+    int nc = walk_row(&w, row, off, wt);
     for (int64_t j = 0; j < w.width; j++) {
       const tap *t = &last[j];
       float acc = 0;
       for (int c = 0; c < nc; c++) {
-        const float *p = xd + w.off[c];
-        acc += lerp ? w.wt[c] * (t->w0 * p[t->i0] + t->w1 * p[t->i1]) : w.wt[c] * p[t->i0];
+        const float *p = xd + off[c];
+        acc += w.lerp ? wt[c] * (t->w0 * p[t->i0] + t->w1 * p[t->i1]) : wt[c] * p[t->i0];
       }
       yd[j] = acc;
     }
@@ -341,24 +355,28 @@ static void resize_backward(const rc_kernel *k) {
   row_walk w;
   walk_begin(k, &w);
   float *gx = k->din[0]->data;
-  const float *gy = k->dout[0]->data;
   const tap *last = w.taps[w.rank - 1];
-  int lerp = w.interp[w.rank - 1];
-  for (int64_t row = 0; row < w.rows; row++, gy += w.width) {
-    int nc = walk_row(&w, y->dims);
-    for (int64_t j = 0; j < w.width; j++) {
-      const tap *t = &last[j];
-      for (int c = 0; c < nc; c++) {
-        float *p = gx + w.off[c], g = w.wt[c] * gy[j];
-        if (lerp) {
-          p[t->i0] += t->w0 * g;
-          p[t->i1] += t->w1 * g;
-        } else {
-          p[t->i0] += g;
+  int64_t per_plane = w.rows / w.planes;
+#pragma omp parallel for schedule(static) if (w.planes > 1 && w.rows * w.width >= PARALLEL_MIN)
+  for (int64_t plane = 0; plane < w.planes; plane++)
+    for (int64_t row = plane * per_plane; row < (plane + 1) * per_plane; row++) {
+      int64_t off[CORNERS];
+      float wt[CORNERS];
+      const float *gy = (const float *)k->dout[0]->data + row * w.width;
+      int nc = walk_row(&w, row, off, wt);
+      for (int64_t j = 0; j < w.width; j++) {
+        const tap *t = &last[j];
+        for (int c = 0; c < nc; c++) {
+          float *p = gx + off[c], g = wt[c] * gy[j];
+          if (w.lerp) {
+            p[t->i0] += t->w0 * g;
+            p[t->i1] += t->w1 * g;
+          } else {
+            p[t->i0] += g;
+          }
         }
       }
     }
-  }
 }
 
 const rc_op_def rc__ops_resize[] = {
