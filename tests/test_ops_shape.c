@@ -260,12 +260,12 @@ static void test_pad_negative_and_attr_forms(void) {
 }
 
 static void test_pad_gradients(void) {
-  static const char *modes[] = {"constant", "reflect", "edge"};
-  for (int m = 0; m < 3; m++) {
+  static const char *modes[] = {"constant", "reflect", "edge", "wrap"};
+  for (int m = 0; m < 4; m++) {
     oh_case c;
     float x[2 * 3 * 4];
     oh_fill(x, 24, 11 + m);
-    oh_init(&c, "Pad", 13);
+    oh_init(&c, "Pad", 19);
     oh_attr_string(&c, "mode", modes[m]);
     oh_input(&c, RC_DTYPE_FLOAT, 3, I64(2, 3, 4), x);
     oh_input(&c, RC_DTYPE_INT64, 1, I64(6), I64(0, 2, -1, 1, 2, 3));
