@@ -150,77 +150,66 @@ static void valid_range(int64_t off, int64_t s, int64_t size, int64_t npos, int6
   *hi = h;
 }
 
-/* col (channels*K, P) <- unfolded img (channels, img...). Rows are written
- * independently, so they are spread over threads. */
-static void unfold(float *col, const float *img, const patch *g, int64_t channels) {
-  const int64_t K = prod3(g->k), P = prod3(g->pos), plane = prod3(g->img), rows = channels * K;
-#pragma omp parallel for schedule(static) if (rows * P > 32768)
-  for (int64_t r = 0; r < rows; r++) {
-    int64_t c = r / K, kr = r % K;
-    int64_t ka = kr / (g->k[1] * g->k[2]), kb = (kr / g->k[2]) % g->k[1], kc = kr % g->k[2];
-    int64_t off0 = ka * g->d[0] - g->pad[0], off1 = kb * g->d[1] - g->pad[1], off2 = kc * g->d[2] - g->pad[2];
-    int64_t lo0, hi0, lo1, hi1, lo2, hi2;
-    valid_range(off0, g->s[0], g->img[0], g->pos[0], &lo0, &hi0);
-    valid_range(off1, g->s[1], g->img[1], g->pos[1], &lo1, &hi1);
-    valid_range(off2, g->s[2], g->img[2], g->pos[2], &lo2, &hi2);
-    const float *src = img + c * plane;
-    float *dst = col + r * P;
-    const int64_t run = g->pos[1] * g->pos[2];
-    for (int64_t p0 = 0; p0 < g->pos[0]; p0++) {
-      float *d0 = dst + p0 * run;
-      if (p0 < lo0 || p0 >= hi0) {
-        memset(d0, 0, sizeof(float) * (size_t)run);
-        continue;
-      }
-      const float *s0 = src + (p0 * g->s[0] + off0) * g->img[1] * g->img[2];
-      for (int64_t p1 = 0; p1 < g->pos[1]; p1++) {
-        float *drow = d0 + p1 * g->pos[2];
-        if (p1 < lo1 || p1 >= hi1) {
-          memset(drow, 0, sizeof(float) * (size_t)g->pos[2]);
-          continue;
+/* What a walk over one kernel tap does between a position plane (length P)
+ * and one image plane. */
+typedef enum tap_mode {
+  TAP_GATHER,     /* pos[p] = img[cell], 0 where the tap falls in padding (unfold) */
+  TAP_SCATTER,    /* img[cell] += v * pos[p] (fold; depthwise input gradient) */
+  TAP_ACCUMULATE, /* pos[p] += v * img[cell] (depthwise forward) */
+  TAP_DOT         /* returns sum of pos[p] * img[cell] (depthwise weight gradient) */
+} tap_mode;
+
+/* Walks kernel tap kr (index into k[0]*k[1]*k[2]) over every position. */
+static double tap_walk(tap_mode mode, float *pos, float *img, const patch *g, int64_t kr, float v) {
+  int64_t ka = kr / (g->k[1] * g->k[2]), kb = (kr / g->k[2]) % g->k[1], kc = kr % g->k[2];
+  int64_t off0 = ka * g->d[0] - g->pad[0], off1 = kb * g->d[1] - g->pad[1], off2 = kc * g->d[2] - g->pad[2];
+  int64_t lo0, hi0, lo1, hi1, lo2, hi2;
+  valid_range(off0, g->s[0], g->img[0], g->pos[0], &lo0, &hi0);
+  valid_range(off1, g->s[1], g->img[1], g->pos[1], &lo1, &hi1);
+  valid_range(off2, g->s[2], g->img[2], g->pos[2], &lo2, &hi2);
+  if (mode == TAP_GATHER) memset(pos, 0, sizeof(float) * (size_t)prod3(g->pos));
+  const int64_t st = g->s[2];
+  double dot = 0;
+  for (int64_t p0 = lo0; p0 < hi0; p0++)
+    for (int64_t p1 = lo1; p1 < hi1; p1++) {
+      float *irow = img + ((p0 * g->s[0] + off0) * g->img[1] + p1 * g->s[1] + off1) * g->img[2] + off2;
+      float *prow = pos + (p0 * g->pos[1] + p1) * g->pos[2];
+      switch (mode) {
+        case TAP_GATHER:
+          if (st == 1) memcpy(prow + lo2, irow + lo2, sizeof(float) * (size_t)(hi2 - lo2));
+          else for (int64_t p = lo2; p < hi2; p++) prow[p] = irow[p * st];
+          break;
+        case TAP_SCATTER:
+          for (int64_t p = lo2; p < hi2; p++) irow[p * st] += v * prow[p];
+          break;
+        case TAP_ACCUMULATE:
+          for (int64_t p = lo2; p < hi2; p++) prow[p] += v * irow[p * st];
+          break;
+        case TAP_DOT: {
+          float part = 0;
+          for (int64_t p = lo2; p < hi2; p++) part += prow[p] * irow[p * st];
+          dot += part;
+          break;
         }
-        const float *srow = s0 + (p1 * g->s[1] + off1) * g->img[2] + off2;
-        for (int64_t p = 0; p < lo2; p++) drow[p] = 0;
-        if (g->s[2] == 1) {
-          memcpy(drow + lo2, srow + lo2, sizeof(float) * (size_t)(hi2 - lo2));
-        } else {
-          const int64_t st = g->s[2];
-          for (int64_t p = lo2; p < hi2; p++) drow[p] = srow[p * st];
-        }
-        for (int64_t p = hi2; p < g->pos[2]; p++) drow[p] = 0;
       }
     }
-  }
+  return dot;
 }
 
-/* img (channels, img...) += folded col (channels*K, P): the adjoint of
- * unfold. Rows of one channel overlap in img, so threads split channels and
- * each channel is summed in a fixed order (deterministic). */
+/* col (channels*K, P) <- unfolded img (channels, img...). Runs on the calling
+ * thread: it sits between GEMMs that OpenBLAS threads, and a thread team
+ * spinning here would compete with them for the cores. */
+static void unfold(float *col, const float *img, const patch *g, int64_t channels) {
+  const int64_t K = prod3(g->k), P = prod3(g->pos), plane = prod3(g->img);
+  for (int64_t r = 0; r < channels * K; r++)
+    tap_walk(TAP_GATHER, col + r * P, (float *)(img + (r / K) * plane), g, r % K, 1.0f);
+}
+
+/* img (channels, img...) += folded col (channels*K, P): the adjoint of unfold. */
 static void fold_add(float *img, const float *col, const patch *g, int64_t channels) {
   const int64_t K = prod3(g->k), P = prod3(g->pos), plane = prod3(g->img);
-#pragma omp parallel for schedule(static) if (channels * K * P > 32768)
-  for (int64_t c = 0; c < channels; c++) {
-    float *dstc = img + c * plane;
-    for (int64_t kr = 0; kr < K; kr++) {
-      int64_t ka = kr / (g->k[1] * g->k[2]), kb = (kr / g->k[2]) % g->k[1], kc = kr % g->k[2];
-      int64_t off0 = ka * g->d[0] - g->pad[0], off1 = kb * g->d[1] - g->pad[1],
-              off2 = kc * g->d[2] - g->pad[2];
-      int64_t lo0, hi0, lo1, hi1, lo2, hi2;
-      valid_range(off0, g->s[0], g->img[0], g->pos[0], &lo0, &hi0);
-      valid_range(off1, g->s[1], g->img[1], g->pos[1], &lo1, &hi1);
-      valid_range(off2, g->s[2], g->img[2], g->pos[2], &lo2, &hi2);
-      const float *src = col + (c * K + kr) * P;
-      for (int64_t p0 = lo0; p0 < hi0; p0++) {
-        float *d0 = dstc + (p0 * g->s[0] + off0) * g->img[1] * g->img[2];
-        for (int64_t p1 = lo1; p1 < hi1; p1++) {
-          float *drow = d0 + (p1 * g->s[1] + off1) * g->img[2] + off2;
-          const float *srow = src + (p0 * g->pos[1] + p1) * g->pos[2];
-          const int64_t st = g->s[2];
-          for (int64_t p = lo2; p < hi2; p++) drow[p * st] += srow[p];
-        }
-      }
-    }
-  }
+  for (int64_t r = 0; r < channels * K; r++)
+    tap_walk(TAP_SCATTER, (float *)(col + r * P), img + (r / K) * plane, g, r % K, 1.0f);
 }
 
 /* ---- Conv / ConvTranspose geometry ---- */
@@ -245,6 +234,9 @@ typedef struct conv_geom {
   patch p;
   int direct;           /* 1x1, stride 1, no padding: the column matrix is x itself */
 } conv_geom;
+
+/* One input and one output channel per group. */
+static int depthwise(const conv_geom *g) { return g->Cg == 1 && g->Mg == 1 && g->G > 1; }
 
 static rc_status conv_parse(rc_node *n, rc_arena *a, rc_err *e) {
   conv_params *p = rc__arena_zalloc(a, sizeof *p);
@@ -436,8 +428,8 @@ static void geometry_of(const rc_kernel *k, conv_geom *g) {
 static size_t conv_workspace(const rc_kernel *k, int backward) {
   conv_geom g;
   geometry_of(k, &g);
-  if (g.direct) return 0;
   const conv_params *cp = k->params;
+  if (g.direct || (!cp->transpose && depthwise(&g))) return 0;
   /* One sample's column matrix, all groups: unfolding and folding then run
    * once per sample over every channel (more rows to spread over threads). */
   int64_t rows = (cp->transpose ? g.M : g.C) * g.K;
@@ -453,9 +445,9 @@ static void fill_bias(float *y, const float *b, int64_t channels, int64_t len) {
   }
 }
 
-/* db (M) += sum of dy (N, M, len) over batch and space. */
+/* db (M) += sum of dy (N, M, len) over batch and space. On the calling
+ * thread, like unfold: GEMMs follow. */
 static void bias_grad(float *db, const float *dy, int64_t N, int64_t M, int64_t len) {
-#pragma omp parallel for schedule(static) if (N * M * len > 32768)
   for (int64_t m = 0; m < M; m++) {
     double acc = 0;
     for (int64_t nn = 0; nn < N; nn++) {
@@ -468,51 +460,45 @@ static void bias_grad(float *db, const float *dy, int64_t N, int64_t M, int64_t 
   }
 }
 
-/* Depthwise (one input and one output channel per group): per channel a
- * K-tap weighted sum of column rows, spread over channels. No GEMM of one row. */
-static int depthwise(const conv_geom *g) { return g->Cg == 1 && g->Mg == 1 && g->G > 1; }
+/* Depthwise convolution (one input and one output channel per group): each
+ * plane is a K-tap stencil of its own channel. Planes are independent, so one
+ * thread team covers the whole batch and no column matrix is needed. */
 
-/* y (C, P) = bias + sum_k w[c,k] * col[c*K+k] */
-static void depthwise_forward(float *y, const float *col, const float *w, const float *b, int64_t C,
-                              int64_t K, int64_t P) {
-#pragma omp parallel for schedule(static) if (C * K * P > 32768)
-  for (int64_t c = 0; c < C; c++) {
-    float *yc = y + c * P;
-    float bias = b ? b[c] : 0.0f;
-    for (int64_t i = 0; i < P; i++) yc[i] = bias;
-    for (int64_t kk = 0; kk < K; kk++) {
-      const float wv = w[c * K + kk], *row = col + (c * K + kk) * P;
-      for (int64_t i = 0; i < P; i++) yc[i] += wv * row[i];
+/* y (N,C,P) = b + sum_k w[c,k] * x shifted by tap k */
+static void depthwise_forward(const conv_geom *g, float *y, const float *x, const float *w, const float *b) {
+  const int64_t P = g->out_sp, S = g->in_sp, K = g->K, planes = g->N * g->C;
+#pragma omp parallel for schedule(static) if (planes * K * P > 32768)
+  for (int64_t pl = 0; pl < planes; pl++) {
+    const int64_t c = pl % g->C;
+    float *yp = y + pl * P;
+    const float bias = b ? b[c] : 0.0f;
+    for (int64_t i = 0; i < P; i++) yp[i] = bias;
+    for (int64_t kr = 0; kr < K; kr++) tap_walk(TAP_ACCUMULATE, yp, (float *)(x + pl * S), &g->p, kr, w[c * K + kr]);
+  }
+}
+
+/* dx += w-weighted scatter of dy; dw[c,k] += sum over the batch (in order) of
+ * <dy plane, x shifted by tap k>. */
+static void depthwise_backward(const conv_geom *g, float *dx, float *dw, const float *x, const float *w,
+                               const float *dy) {
+  const int64_t P = g->out_sp, S = g->in_sp, K = g->K, planes = g->N * g->C;
+  if (dx) {
+#pragma omp parallel for schedule(static) if (planes * K * P > 32768)
+    for (int64_t pl = 0; pl < planes; pl++)
+      for (int64_t kr = 0; kr < K; kr++)
+        tap_walk(TAP_SCATTER, (float *)(dy + pl * P), dx + pl * S, &g->p, kr, w[(pl % g->C) * K + kr]);
+  }
+  if (dw) {
+#pragma omp parallel for schedule(static) if (planes * K * P > 32768)
+    for (int64_t r = 0; r < g->C * K; r++) {
+      const int64_t c = r / K;
+      double acc = 0;
+      for (int64_t n = 0; n < g->N; n++)
+        acc += tap_walk(TAP_DOT, (float *)(dy + (n * g->C + c) * P), (float *)(x + (n * g->C + c) * S), &g->p,
+                        r % K, 1.0f);
+      dw[r] += (float)acc;
     }
   }
-}
-
-/* dw[c,k] += <dy[c], col[c*K+k]> */
-static void depthwise_dw(float *dw, const float *col, const float *dy, int64_t C, int64_t K, int64_t P) {
-#pragma omp parallel for schedule(static) if (C * K * P > 32768)
-  for (int64_t r = 0; r < C * K; r++) {
-    const float *row = col + r * P, *d = dy + (r / K) * P;
-    float acc = 0;
-    for (int64_t i = 0; i < P; i++) acc += d[i] * row[i];
-    dw[r] += acc;
-  }
-}
-
-/* dcol[c*K+k] = w[c,k] * dy[c] */
-static void depthwise_dcol(float *dcol, const float *w, const float *dy, int64_t C, int64_t K, int64_t P) {
-#pragma omp parallel for schedule(static) if (C * K * P > 32768)
-  for (int64_t r = 0; r < C * K; r++) {
-    const float wv = w[r], *d = dy + (r / K) * P;
-    float *row = dcol + r * P;
-    for (int64_t i = 0; i < P; i++) row[i] = wv * d[i];
-  }
-}
-
-/* dx[c] += w[c] * dy[c] (depthwise 1x1) */
-static void depthwise_axpy(float *dx, const float *w, const float *dy, int64_t C, int64_t P) {
-#pragma omp parallel for schedule(static) if (C * P > 32768)
-  for (int64_t c = 0; c < C; c++)
-    for (int64_t i = 0; i < P; i++) dx[c * P + i] += w[c] * dy[c * P + i];
 }
 
 /* x (N,C,D...), W (M,C/G,k...), B (M) -> y (N,M,O...).
@@ -527,16 +513,16 @@ static rc_status conv_forward(const rc_kernel *k, rc_err *e) {
   float *y = k->out[0]->data;
   const int64_t CgK = g.Cg * g.K, P = g.out_sp;
   if (!g.N || !g.M || !P) return RC_OK;
+  if (depthwise(&g)) {
+    depthwise_forward(&g, y, x, w, b);
+    return RC_OK;
+  }
   for (int64_t n = 0; n < g.N; n++) {
     const float *col = x + n * g.C * g.in_sp;
     float *yn = y + n * g.M * P;
     if (!g.direct && CgK) {
       unfold(k->work, col, &g.p, g.C);
       col = k->work;
-    }
-    if (depthwise(&g)) {
-      depthwise_forward(yn, col, w, b, g.C, g.K, P);
-      continue;
     }
     fill_bias(yn, b, g.M, P);
     if (!CgK) continue;
@@ -579,6 +565,10 @@ static void conv_backward(const rc_kernel *k) {
   const float *x = cg.x, *w = cg.w, *dy = cg.dy;
   float *dx = cg.dx, *dw = cg.dw, *work = k->work;
   const int64_t CgK = g.Cg * g.K, P = g.out_sp;
+  if (depthwise(&g)) {
+    depthwise_backward(&g, dx, dw, x, w, dy);
+    return;
+  }
   for (int64_t n = 0; n < g.N; n++) {
     const float *dyn = dy + n * g.M * P;
     if (dw) {
@@ -587,24 +577,16 @@ static void conv_backward(const rc_kernel *k) {
         unfold(work, col, &g.p, g.C);
         col = work;
       }
-      if (depthwise(&g)) {
-        depthwise_dw(dw, col, dyn, g.C, g.K, P);
-      } else {
-        /* dW_g (Mg, CgK) += dy_g (Mg, P) . col_g^T */
-        for (int64_t grp = 0; grp < g.G; grp++)
-          cblas_sgemm(CblasRowMajor, CblasNoTrans, CblasTrans, (int)g.Mg, (int)CgK, (int)P, 1.0f,
-                      dyn + grp * g.Mg * P, (int)P, col + grp * CgK * P, (int)P, 1.0f, dw + grp * g.Mg * CgK,
-                      (int)CgK);
-      }
+      /* dW_g (Mg, CgK) += dy_g (Mg, P) . col_g^T */
+      for (int64_t grp = 0; grp < g.G; grp++)
+        cblas_sgemm(CblasRowMajor, CblasNoTrans, CblasTrans, (int)g.Mg, (int)CgK, (int)P, 1.0f,
+                    dyn + grp * g.Mg * P, (int)P, col + grp * CgK * P, (int)P, 1.0f, dw + grp * g.Mg * CgK,
+                    (int)CgK);
     }
     if (dx) {
       float *dxn = dx + n * g.C * g.in_sp;
       if (g.direct) {
         /* The column matrix is x itself: dx_g (Cg, P) += W_g^T . dy_g. */
-        if (depthwise(&g)) {
-          depthwise_axpy(dxn, w, dyn, g.C, P);
-          continue;
-        }
         for (int64_t grp = 0; grp < g.G; grp++)
           cblas_sgemm(CblasRowMajor, CblasTrans, CblasNoTrans, (int)g.Cg, (int)P, (int)g.Mg, 1.0f,
                       w + grp * g.Mg * CgK, (int)CgK, dyn + grp * g.Mg * P, (int)P, 1.0f,
@@ -612,14 +594,10 @@ static void conv_backward(const rc_kernel *k) {
         continue;
       }
       /* dcol_g (CgK, P) = W_g^T . dy_g, then folded back onto dx */
-      if (depthwise(&g)) {
-        depthwise_dcol(work, w, dyn, g.C, g.K, P);
-      } else {
-        for (int64_t grp = 0; grp < g.G; grp++)
-          cblas_sgemm(CblasRowMajor, CblasTrans, CblasNoTrans, (int)CgK, (int)P, (int)g.Mg, 1.0f,
-                      w + grp * g.Mg * CgK, (int)CgK, dyn + grp * g.Mg * P, (int)P, 0.0f, work + grp * CgK * P,
-                      (int)P);
-      }
+      for (int64_t grp = 0; grp < g.G; grp++)
+        cblas_sgemm(CblasRowMajor, CblasTrans, CblasNoTrans, (int)CgK, (int)P, (int)g.Mg, 1.0f,
+                    w + grp * g.Mg * CgK, (int)CgK, dyn + grp * g.Mg * P, (int)P, 0.0f, work + grp * CgK * P,
+                    (int)P);
       fold_add(dxn, work, &g.p, g.C);
     }
   }
