@@ -489,6 +489,11 @@ static void test_squeeze_unsqueeze(void) {
   rc_err e = {0};
   CHECK(oh_run(&c, &e) == RC_ERR_SHAPE); /* squeezing a dim that is not 1 */
   oh_free(&c);
+  oh_init(&c, "Squeeze", 13); /* from opset 13 axes is an input: an attribute is not ignored but refused */
+  oh_attr_ints(&c, "axes", 1, I64(1));
+  oh_input(&c, RC_DTYPE_FLOAT, 3, I64(3, 1, 4), x);
+  CHECK_REFUSED(&c, RC_ERR_INVALID, "axes");
+  oh_free(&c);
   oh_init(&c, "Squeeze", 13);
   oh_input(&c, RC_DTYPE_FLOAT, 3, I64(3, 1, 4), x);
   oh_input(&c, RC_DTYPE_INT64, 1, I64(1), I64(-2));

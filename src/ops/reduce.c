@@ -24,6 +24,8 @@ static int axes_are_input(const rc_node *n) { return n->opset >= (reduce_kind(n)
 static rc_status reduce_mask(const rc_node *n, const rc_tensor *const *in, int *mask, rc_err *e) {
   int rank = in[0]->rank, cnt = 0, norm[RC_MAX_RANK];
   int64_t axes[RC_MAX_RANK];
+  if (axes_are_input(n) && rc__attr_find(n, "axes"))
+    return RC_NODE_FAIL(e, n, RC_ERR_INVALID, "attribute 'axes' is not allowed at opset %d (an input)", n->opset);
   if (!axes_are_input(n)) {
     const rc_attr *a = rc__attr_find(n, "axes");
     if (a) {

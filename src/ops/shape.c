@@ -56,6 +56,13 @@ rc_status rc__shape_read_ints(const rc_node *n, const rc_tensor *const *in, int 
   return RC_OK;
 }
 
+rc_status rc__shape_moved_attr(const rc_node *n, const char *name, int since, rc_err *e) {
+  if (n->opset >= since && rc__attr_find(n, name))
+    return RC_NODE_FAIL(e, n, RC_ERR_INVALID, "attribute '%s' is not allowed at opset %d (an input since opset %d)",
+                        name, n->opset, since);
+  return RC_OK;
+}
+
 /* Normalises a list of axes against rank, refusing duplicates. */
 rc_status rc__shape_axes(const rc_node *n, const int64_t *axes, int count, int rank, int *out, rc_err *e) {
   for (int i = 0; i < count; i++) {
@@ -154,6 +161,7 @@ static rc_status axes_of(const rc_node *n, const rc_tensor *const *in, int64_t *
                          rc_err *e) {
   *cnt = 0;
   *given = 0;
+  RC_TRY(rc__shape_moved_attr(n, "axes", 13, e));
   if (n->opset < 13) {
     const rc_attr *a = rc__attr_find(n, "axes");
     if (!a) return RC_OK;

@@ -93,6 +93,7 @@ static rc_status split_sizes(const rc_node *n, const rc_tensor *const *in, int64
                              rc_err *e) {
   int cnt = 0, given = 0;
   int64_t v[64];
+  RC_TRY(rc__shape_moved_attr(n, "split", 13, e));
   if (n->n_out > 64) return RC_NODE_FAIL(e, n, RC_ERR_LIMIT, "more than %d outputs", 64);
   if (n->opset < 13) {
     const rc_attr *a = rc__attr_find(n, "split");
@@ -223,6 +224,9 @@ static rc_status attr_list(const rc_node *n, const char *name, int64_t *v, int *
 
 static rc_status slice_read(const rc_node *n, const rc_tensor *const *in, slice_lists *L, rc_err *e) {
   int cs, ce, ca = -1, cp = -1;
+  RC_TRY(rc__shape_moved_attr(n, "starts", 10, e));
+  RC_TRY(rc__shape_moved_attr(n, "ends", 10, e));
+  RC_TRY(rc__shape_moved_attr(n, "axes", 10, e));
   if (n->opset < 10) {
     RC_TRY(attr_list(n, "starts", L->starts, &cs, 1, e));
     RC_TRY(attr_list(n, "ends", L->ends, &ce, 1, e));
@@ -414,6 +418,8 @@ rc_status rc__pad_parse(rc_node *n, rc_arena *a, rc_err *e) {
   if (!p) return rc__fail(e, RC_ERR_NOMEM, "node '%s' (%s): out of memory", n->label, n->op_type);
   *p = mode;
   n->params = p;
+  RC_TRY(rc__shape_moved_attr(n, "pads", 11, e));
+  RC_TRY(rc__shape_moved_attr(n, "value", 11, e));
   if (n->opset < 11 && !rc__attr_find(n, "pads"))
     return RC_NODE_FAIL(e, n, RC_ERR_INVALID, "attribute 'pads' is required%s", "");
   return RC_OK;

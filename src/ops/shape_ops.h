@@ -13,6 +13,9 @@ rc_status rc__shape_need_numeric(const rc_node *n, const rc_tensor *t, int idx, 
 /* Values of a 1-D integer input known at plan time (at most max of them). */
 rc_status rc__shape_read_ints(const rc_node *n, const rc_tensor *const *in, int idx, int64_t *v, int max,
                               int *count, rc_err *e);
+/* Refuses attribute `name` on a node of opset >= since, where the spec moved
+ * it to an input: ignoring it would silently change the result. */
+rc_status rc__shape_moved_attr(const rc_node *n, const char *name, int since, rc_err *e);
 /* Normalise axes against rank, refusing duplicates and out-of-range ones. */
 rc_status rc__shape_axes(const rc_node *n, const int64_t *axes, int count, int rank, int *out, rc_err *e);
 
