@@ -27,6 +27,11 @@ static void run_stats(const float *x, int64_t n, float eps, float *mean, float *
   *invstd = (float)(1.0 / sqrt(v + eps));
 }
 
+/* y = a * x + b over one run: normalisation and affine folded per channel. */
+static void affine_run(float *restrict y, const float *restrict x, int64_t n, float a, float b) {
+  for (int64_t j = 0; j < n; j++) y[j] = x[j] * a + b;
+}
+
 /* dx += a * (dy - mean(dy) - xhat * mean(dy * xhat)) over one run, with
  * xhat = (x - mean) * invstd: the normalisation's backward for a run whose
  * statistics came from itself. Returns sum(dy) and sum(dy*xhat) for the
@@ -187,12 +192,8 @@ static rc_status bn_forward(const rc_kernel *k, rc_err *e) {
     float inv = 1.0f / sqrtf(var + p->epsilon);
     st[c] = mean;
     st[C + c] = inv;
-    float a = scale[c] * inv, b = bias[c] - mean * a;
-    for (int64_t n = 0; n < N; n++) {
-      const float *xr = x + (n * C + c) * S;
-      float *yr = y + (n * C + c) * S;
-      for (int64_t j = 0; j < S; j++) yr[j] = xr[j] * a + b;
-    }
+    float a = scale[c] * inv;
+    for (int64_t n = 0; n < N; n++) affine_run(y + (n * C + c) * S, x + (n * C + c) * S, S, a, bias[c] - mean * a);
   }
   (void)e;
   return RC_OK;
@@ -444,10 +445,8 @@ static rc_status in_forward(const rc_kernel *k, rc_err *e) {
     run_stats(x + r * S, S, eps, &mean, &inv);
     st[r] = mean;
     st[rows + r] = inv;
-    float a = scale[c] * inv, b = bias[c] - mean * a;
-    const float *xr = x + r * S;
-    float *yr = y + r * S;
-    for (int64_t j = 0; j < S; j++) yr[j] = xr[j] * a + b;
+    float a = scale[c] * inv;
+    affine_run(y + r * S, x + r * S, S, a, bias[c] - mean * a);
   }
   (void)e;
   return RC_OK;
