@@ -8,6 +8,7 @@
  * since each op is the other's adjoint. Spatial axes are canonicalised to 3
  * (missing leading axes have size 1), so 1-D, 2-D and 3-D share one path. */
 #include <cblas.h>
+#include <limits.h>
 #include <string.h>
 
 #include "ops/op.h"
@@ -401,6 +402,10 @@ static rc_status conv_geometry(const rc_node *n, const conv_params *cp, const rc
   int64_t rows = (cp->transpose ? g->M : g->C) * g->K;
   if (rows > 0 && prod3(p->pos) > RC_MAX_ELEMENTS / rows)
     return rc__fail(e, RC_ERR_LIMIT, "node '%s' (%s): unfolded patch matrix too large", n->label, n->op_type);
+  /* GEMM sizes are ints. */
+  if (rows > INT_MAX || g->in_sp > INT_MAX || g->out_sp > INT_MAX || g->C * g->K > INT_MAX ||
+      g->M * g->K > INT_MAX)
+    return rc__fail(e, RC_ERR_LIMIT, "node '%s' (%s): matrix dimension beyond %d", n->label, n->op_type, INT_MAX);
   return RC_OK;
 }
 

@@ -221,6 +221,9 @@ static rc_status mm_geometry(const rc_node *n, const rc_tensor *a, const rc_tens
     bs *= db;
     g->nb *= g->bdims[i];
   }
+  /* The shared-B path multiplies (batch*M, K) as one matrix; GEMM sizes are ints. */
+  if (big_int(g->nb * g->M))
+    return rc__fail(e, RC_ERR_LIMIT, "node '%s' (%s): matrix too large", n->label, n->op_type);
   if (out) {
     out->dtype = RC_DTYPE_FLOAT;
     out->rank = 0;
