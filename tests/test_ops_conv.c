@@ -171,6 +171,8 @@ static void convt_1d_shapes_and_pads(void) {
       {"output_padding", 10, 0, 0, 0, 1, 11, NULL},
       /* output_shape 8: total 1, NOTSET puts the odd cell first: pb = 1 */
       {"output_shape", 8, 1, 0, 1, 0, 11, NULL},
+      /* output_shape written in full as (N, C, 8) */
+      {"output_shape (N, C, L)", 8, 1, 0, 2, 0, 11, NULL},
       /* opset 10 text: pb = total/2 = 0 unless SAME_UPPER */
       {"output_shape opset 10", 8, 0, 0, 1, 0, 10, NULL},
       /* SAME_UPPER: out = in*s = 8, total 1, pb = 0 */
@@ -185,7 +187,8 @@ static void convt_1d_shapes_and_pads(void) {
     oh_attr_ints(&c, "strides", 1, (int64_t[]){2});
     if (cases[t].use_pads) oh_attr_ints(&c, "pads", 2, (int64_t[]){1, 2});
     if (cases[t].out_pad) oh_attr_ints(&c, "output_padding", 1, (int64_t[]){1});
-    if (cases[t].use_out_shape) oh_attr_ints(&c, "output_shape", 1, (int64_t[]){8});
+    if (cases[t].use_out_shape == 1) oh_attr_ints(&c, "output_shape", 1, (int64_t[]){8});
+    if (cases[t].use_out_shape == 2) oh_attr_ints(&c, "output_shape", 3, (int64_t[]){1, 1, 8});
     if (cases[t].auto_pad) oh_attr_string(&c, "auto_pad", cases[t].auto_pad);
     float want[16];
     scatter_1d(want, cases[t].out, x, 4, w, 3, 2, 1, cases[t].pb);

@@ -1,12 +1,16 @@
 /* Op family: conv (Conv, ConvTranspose). Forward and backward side by side.
  *
- * Both ops work per sample and per group through an unfolded-patch ("column")
- * matrix: Conv unfolds its input and multiplies by the weights; ConvTranspose
- * multiplies by the transposed weights and folds the columns back into its
- * output. The same two helpers (unfold = im2col, fold = col2im) serve Conv's
- * forward and input gradient and ConvTranspose's forward and input gradient,
- * since each op is the other's adjoint. Spatial axes are canonicalised to 3
- * (missing leading axes have size 1), so 1-D, 2-D and 3-D share one path. */
+ * Both ops work per sample through an unfolded-patch ("column") matrix and
+ * one GEMM per group: Conv unfolds its input and multiplies by the weights;
+ * ConvTranspose multiplies by the transposed weights and folds the columns
+ * back into its output. The same helpers (unfold = im2col, fold = col2im,
+ * both built on one walk over a kernel tap) serve Conv's forward and input
+ * gradient and ConvTranspose's forward and input gradient, since each op is
+ * the other's adjoint. A 1x1, stride-1, unpadded convolution skips the
+ * unfolding (the input already is the column matrix); depthwise Conv walks
+ * the taps directly, one thread per plane, with no column matrix. Spatial
+ * axes are canonicalised to 3 (missing leading axes have size 1), so 1-D,
+ * 2-D and 3-D share one path. */
 #include <cblas.h>
 #include <limits.h>
 #include <string.h>
@@ -220,7 +224,7 @@ typedef struct conv_params {
   int64_t group;
   int transpose;
   int n_out_pad, n_out_shape;
-  int64_t out_pad[AX], out_shape[AX];
+  int64_t out_pad[AX], out_shape[AX + 2]; /* output_shape as written: spatial, or (N, C, spatial...) */
 } conv_params;
 
 /* Everything a kernel needs, resolved from the input shapes. For Conv the
@@ -252,18 +256,16 @@ static rc_status conv_parse(rc_node *n, rc_arena *a, rc_err *e) {
     RC_TRY(read_axes(n, "output_padding", p->out_pad, AX, &p->n_out_pad, 0, e));
     const rc_attr *os = rc__attr_find(n, "output_shape");
     if (os) {
-      /* Some exporters write the full (N, C, spatial...) shape. */
-      int skip = os->type == RC_ATTR_INTS && os->n > AX ? 2 : 0;
-      if (os->type != RC_ATTR_INTS || os->n - skip > AX || os->n - skip < 1)
+      if (os->type != RC_ATTR_INTS || os->n < 1 || os->n > AX + 2)
         return rc__fail(e, RC_ERR_UNSUPPORTED, "node '%s' (%s): attribute 'output_shape' must list "
-                        "1 to %d spatial sizes", n->label, n->op_type, AX);
-      for (int i = skip; i < os->n; i++) {
+                        "1 to %d sizes", n->label, n->op_type, AX + 2);
+      for (int i = 0; i < os->n; i++) {
         if (os->ints[i] < 1 || os->ints[i] > ((int64_t)1 << 30))
           return rc__fail(e, RC_ERR_INVALID, "node '%s' (%s): output_shape value %lld out of range",
                           n->label, n->op_type, (long long)os->ints[i]);
-        p->out_shape[i - skip] = os->ints[i];
+        p->out_shape[i] = os->ints[i];
       }
-      p->n_out_shape = os->n - skip;
+      p->n_out_shape = os->n;
     }
   }
   n->params = p;
@@ -286,7 +288,11 @@ static rc_status transpose_resolve(const rc_node *n, const conv_params *cp, int 
   RC_TRY(check_count(n, "dilations", w->n_dilations, nsp, e));
   RC_TRY(check_count(n, "pads", w->n_pads, 2 * nsp, e));
   RC_TRY(check_count(n, "output_padding", cp->n_out_pad, nsp, e));
-  RC_TRY(check_count(n, "output_shape", cp->n_out_shape, nsp, e));
+  /* Some exporters write output_shape in full, (N, C, spatial...). */
+  const int64_t *out_shape = cp->n_out_shape == nsp + 2 ? cp->out_shape + 2 : cp->out_shape;
+  if (cp->n_out_shape && cp->n_out_shape != nsp && cp->n_out_shape != nsp + 2)
+    return rc__fail(e, RC_ERR_SHAPE, "node '%s' (%s): attribute 'output_shape' has %d values for %d spatial axes",
+                    n->label, n->op_type, cp->n_out_shape, nsp);
   for (int i = 0; i < nsp; i++) {
     s[i] = w->n_strides ? w->strides[i] : 1;
     d[i] = w->n_dilations ? w->dilations[i] : 1;
@@ -297,7 +303,7 @@ static rc_status transpose_resolve(const rc_node *n, const conv_params *cp, int 
     int64_t full = s[i] * (in[i] - 1) + op + (k[i] - 1) * d[i] + 1;
     int64_t o, begin;
     if (cp->n_out_shape || w->auto_pad == RC_AUTO_PAD_SAME_UPPER || w->auto_pad == RC_AUTO_PAD_SAME_LOWER) {
-      o = cp->n_out_shape ? cp->out_shape[i] : in[i] * s[i];
+      o = cp->n_out_shape ? out_shape[i] : in[i] * s[i];
       int64_t total = full - o;
       /* Where the odd cell of padding goes changed at opset 11. */
       int small_begin = w->auto_pad == RC_AUTO_PAD_SAME_UPPER;
