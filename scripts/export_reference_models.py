@@ -26,10 +26,12 @@ and for the bn variant also
                     where L = sum(output * R), BatchNormalization in eval
                     mode (running statistics).
 OUT_DIR/manifest.txt lists the case folders, one per line, with the model,
-opset, variant, input shape and output shape.
+opset, variant, input shape and output shape. A complete OUT_DIR made by the
+same script and library versions is kept as it is (--force re-exports).
 """
 
 import argparse
+import hashlib
 import os
 import shutil
 import sys
@@ -350,13 +352,50 @@ def export_model(name, out_dir, manifest):
                   f"output {tuple(y.shape)}", flush=True)
 
 
+def stamp_of(names):
+    """Identifies what an export depends on: this script, the library
+    versions and the models asked for."""
+    h = hashlib.sha256()
+    with open(os.path.abspath(__file__), "rb") as f:
+        h.update(f.read())
+    h.update(f"{torch.__version__} {torchvision.__version__} {onnx.__version__} {' '.join(names)}".encode())
+    return h.hexdigest()[:16]
+
+
+def up_to_date(out_dir, stamp):
+    """True when out_dir holds a complete export with the same stamp."""
+    try:
+        with open(os.path.join(out_dir, "manifest.txt")) as f:
+            lines = f.read().splitlines()
+    except OSError:
+        return False
+    if f"# stamp {stamp}" not in lines:
+        return False
+    for line in lines:
+        if not line or line.startswith("#"):
+            continue
+        case, variant = line.split()[0], line.split()[3]
+        need = ["model.onnx", "input_0.npy", "output_0.npy"]
+        if variant == "bn":
+            need += ["loss_weights.npy", "grads.npz"]
+        if not all(os.path.isfile(os.path.join(out_dir, case, n)) for n in need):
+            return False
+    return True
+
+
 def main():
     ap = argparse.ArgumentParser(description="Export reference models with PyTorch.")
     ap.add_argument("out_dir")
     ap.add_argument("--only", nargs="+", choices=sorted(MODELS), help="export only these models")
+    ap.add_argument("--force", action="store_true", help="export even if OUT_DIR is up to date")
     args = ap.parse_args()
     torch.set_num_threads(2)
     out_dir = os.path.abspath(args.out_dir)
+    names = list(args.only or MODELS)
+    stamp = stamp_of(names)
+    if not args.force and up_to_date(out_dir, stamp):
+        print(f"{out_dir} is up to date (stamp {stamp}); --force exports again")
+        return
     # Start clean so the manifest never lists stale cases; write into a
     # sibling folder and swap it in at the end so a failed run leaves no
     # half-written set behind.
@@ -367,11 +406,12 @@ def main():
     t0 = time.time()
     import warnings
     warnings.filterwarnings("ignore")  # torch.onnx tracer warnings are expected
-    for name in (args.only or MODELS):
+    for name in names:
         print(f"{name}:", flush=True)
         export_model(name, tmp, manifest)
     with open(os.path.join(tmp, "manifest.txt"), "w") as f:
         f.write("# case model opset variant input_shape output_shape\n")
+        f.write(f"# stamp {stamp}\n")
         f.write(f"# exported by torch {torch.__version__}, torchvision {torchvision.__version__}, "
                 f"onnx {onnx.__version__}\n")
         f.write("\n".join(manifest) + "\n")
