@@ -3,6 +3,7 @@
 #include <cJSON.h>
 #include <getopt.h>
 #include <libgen.h>
+#include <signal.h>
 #include <limits.h>
 #include <stdlib.h>
 #include <string.h>
@@ -60,6 +61,14 @@ static void usage(FILE *f) {
       "                           threads give a byte-identical output file\n"
       "  --threads N              compute threads (default: all cores)\n"
       "\n"
+      "Interruption:\n"
+      "  --checkpoint FILE        where to keep the run's state (default OUT.ckpt; the\n"
+      "                           previous one is kept as FILE.1); removed on success\n"
+      "  --checkpoint-every N     also every N steps (default 500; 0 = epoch ends only)\n"
+      "  --resume FILE            continue an interrupted run from its checkpoint; the\n"
+      "                           result is byte-identical to an uninterrupted run\n"
+      "  SIGINT or SIGTERM writes a checkpoint and exits with status 1.\n"
+      "\n"
       "Output:\n"
       "  --out FILE               the recovered model (never one of the inputs)\n"
       "  --json                   print the before/after results as JSON on stdout\n"
@@ -81,6 +90,8 @@ typedef struct distill_args {
   long threads;
   int json;
   int lr_set, wd_set;
+  const char *checkpoint;
+  char checkpoint_buf[4096];
   rc_distill_config cfg;
 } distill_args;
 
@@ -88,7 +99,8 @@ enum {
   OPT_TEACHER = 256, OPT_STUDENT, OPT_DATA, OPT_LABELS, OPT_VAL_DATA, OPT_VAL_LABELS, OPT_VAL_SPLIT,
   OPT_SCALE, OPT_MEAN, OPT_STD, OPT_EPOCHS, OPT_STEPS, OPT_BATCH, OPT_OPTIMIZER, OPT_LR, OPT_SCHEDULE,
   OPT_WARMUP, OPT_STEP_SIZE, OPT_GAMMA, OPT_WD, OPT_MOMENTUM, OPT_NO_NESTEROV, OPT_CLIP, OPT_LOSS,
-  OPT_TEMPERATURE, OPT_ALPHA, OPT_BN, OPT_TRAIN, OPT_FREEZE, OPT_SEED, OPT_THREADS, OPT_OUT, OPT_JSON
+  OPT_TEMPERATURE, OPT_ALPHA, OPT_BN, OPT_TRAIN, OPT_FREEZE, OPT_SEED, OPT_THREADS, OPT_OUT, OPT_JSON,
+  OPT_CHECKPOINT, OPT_CHECKPOINT_EVERY, OPT_RESUME
 };
 
 static int number(const char *opt, const char *v, double lo, double hi, double *out) {
@@ -233,6 +245,12 @@ static int apply_option(distill_args *a, int c, const char *v) {
       a->threads = l;
       return 0;
     case OPT_JSON: a->json = 1; return 0;
+    case OPT_CHECKPOINT: a->checkpoint = v; return 0;
+    case OPT_CHECKPOINT_EVERY:
+      if (integer("checkpoint-every", v, 0, LONG_MAX, &l)) return RC_EXIT_USAGE;
+      cfg->checkpoint_every = l;
+      return 0;
+    case OPT_RESUME: cfg->resume_path = v; return 0;
   }
   return cli_usage_error("distill", "unknown option");
 }
@@ -255,10 +273,13 @@ static int parse_args(distill_args *a, int argc, char **argv) {
       {"bn", required_argument, NULL, OPT_BN}, {"train", required_argument, NULL, OPT_TRAIN},
       {"freeze", required_argument, NULL, OPT_FREEZE}, {"seed", required_argument, NULL, OPT_SEED},
       {"threads", required_argument, NULL, OPT_THREADS}, {"out", required_argument, NULL, OPT_OUT},
-      {"json", no_argument, NULL, OPT_JSON}, {"help", no_argument, NULL, 'h'}, {NULL, 0, NULL, 0}};
+      {"json", no_argument, NULL, OPT_JSON}, {"checkpoint", required_argument, NULL, OPT_CHECKPOINT},
+      {"checkpoint-every", required_argument, NULL, OPT_CHECKPOINT_EVERY},
+      {"resume", required_argument, NULL, OPT_RESUME}, {"help", no_argument, NULL, 'h'}, {NULL, 0, NULL, 0}};
   memset(a, 0, sizeof *a);
   cli_data_opts_init(&a->data);
   rc_distill_config_defaults(&a->cfg);
+  a->cfg.checkpoint_every = 500;
   a->val_split = 0.1;
   int c;
   optind = 1;
@@ -276,6 +297,11 @@ static int parse_args(distill_args *a, int argc, char **argv) {
     return cli_usage_error("distill", "--teacher, --student, --data and --out are required");
   if (a->val_labels && !a->n_val_data) return cli_usage_error("distill", "--val-labels needs --val-data");
   a->cfg.sched.lr = a->cfg.optim.lr;
+  if (!a->checkpoint) {
+    snprintf(a->checkpoint_buf, sizeof a->checkpoint_buf, "%s.ckpt", a->out);
+    a->checkpoint = a->checkpoint_buf;
+  }
+  a->cfg.checkpoint_path = a->checkpoint;
   a->cfg.train_globs = a->train;
   a->cfg.n_train = a->n_train;
   a->cfg.freeze_globs = a->freeze;
@@ -445,6 +471,33 @@ static void print_results(const distill_args *a, const rc_distill_result *r, dou
          "these figures hold only for the samples measured.\n");
 }
 
+/* ---- Signals --------------------------------------------------------------- */
+
+/* Set by SIGINT/SIGTERM; the training loop checkpoints and stops at the end of
+ * the current step. The only state a signal handler may touch. */
+static volatile sig_atomic_t stop_requested;
+
+static void on_stop_signal(int sig) {
+  (void)sig;
+  stop_requested = 1;
+}
+
+static void catch_stop_signals(void) {
+  struct sigaction sa;
+  memset(&sa, 0, sizeof sa);
+  sa.sa_handler = on_stop_signal;
+  sigemptyset(&sa.sa_mask);
+  sigaction(SIGINT, &sa, NULL);
+  sigaction(SIGTERM, &sa, NULL);
+}
+
+static void remove_checkpoints(const char *path) {
+  char prev[4200];
+  snprintf(prev, sizeof prev, "%s.1", path);
+  unlink(path);
+  unlink(prev);
+}
+
 /* ---- The command ------------------------------------------------------------- */
 
 static rc_status load_val(cli_samples *val, const distill_args *a, const rc_graph *g, rc_err *e) {
@@ -493,12 +546,19 @@ int rc_cmd_distill(int argc, char **argv) {
   progress_state ps = {cli_isatty_stderr(), -1e9, a.json};
   a.cfg.progress = on_progress;
   a.cfg.user = &ps;
+  a.cfg.stop = &stop_requested;
+  catch_stop_signals();
+  if (a.cfg.resume_path && same_file(a.out, a.cfg.resume_path)) {
+    rc__fail(&e, RC_ERR_INVALID, "--resume %s is the output file", a.cfg.resume_path);
+    goto out;
+  }
   if (rc_distill_run(&r, teacher, student, &d, &a.cfg, &e) != RC_OK) goto out;
   if (rc_model_save(student, a.out, r.changed, r.n_changed, &e) != RC_OK) goto out;
   if (rc_distill_verify_written(a.out, student, a.n_val_data ? vins : ins, train.n_inputs, a.cfg.batch, &diff, &e) !=
       RC_OK)
     goto out;
   print_results(&a, &r, diff);
+  remove_checkpoints(a.checkpoint);
   rc = RC_EXIT_OK;
 out:
   if (rc != RC_EXIT_OK) cli_fail(&e);

@@ -1,6 +1,9 @@
 #include "train/distill.h"
 
+#include <errno.h>
 #include <fnmatch.h>
+#include <stdio.h>
+#include <zlib.h>
 #include <math.h>
 #include <string.h>
 #include <time.h>
@@ -460,7 +463,9 @@ typedef struct step_buffers {
   void *in[RC_DATASET_MAX_INPUTS];
   int32_t *labels;
   float *teacher;   /* (B, K) rows of the cached teacher logits */
-  int64_t *samples; /* sample indices of the batch */
+  double *bn_scratch; /* per-channel sums for --bn train */
+  int64_t max_c;
+  float lr;           /* the last step's learning rate, for progress */
 } step_buffers;
 
 static rc_status loss_and_seed(run_state *st, const step_buffers *sb, const int32_t *labels, double *loss,
@@ -498,125 +503,324 @@ static void notify(const rc_distill_config *c, rc_distill_progress *p) {
   if (c->progress) c->progress(c->user, p);
 }
 
+/* Everything the loop needs to continue exactly where it stopped. */
+typedef struct loop_state {
+  int64_t step;        /* optimizer steps taken (rolled-back steps count too) */
+  int64_t epoch;       /* current epoch, 0-based */
+  int64_t batch;       /* next batch within the epoch */
+  int64_t ep_steps;
+  double ep_loss;
+  double lr_scale;
+  int64_t rollbacks, stopped;
+  int64_t best_epoch;
+  int64_t n_epochs;    /* history entries */
+  rc_metrics best;
+} loop_state;
+
+typedef struct loop_ctx {
+  run_state *st;
+  rc_distill_result *r;
+  rc_sched sched;
+  int64_t spe, total, epochs;
+  int best_slot, good_slot;
+  uint64_t fingerprint;
+} loop_ctx;
+
+static uint64_t fnv1a(uint64_t h, const void *p, size_t n) {
+  const unsigned char *b = p;
+  for (size_t i = 0; i < n; i++) h = (h ^ b[i]) * 1099511628211ull;
+  return h;
+}
+
+/* Identifies a run: the student's starting values, the teacher's logits over
+ * the data (which cover teacher, data and normalisation), and every setting
+ * that shapes the trajectory. A checkpoint from another run is refused. */
+static uint64_t run_fingerprint(const loop_ctx *lc) {
+  const run_state *st = lc->st;
+  const rc_distill_config *c = st->c;
+  uint64_t h = 1469598103934665603ull;
+  h = fnv1a(h, rc_params_block(st->ps, RC_BLOCK_VALUE, -1), rc_params_total(st->ps) * sizeof(float));
+  int64_t pool = st->train.n + (st->own_val ? 0 : st->val.n);
+  h = fnv1a(h, st->teacher_logits, sizeof(float) * (size_t)(pool * st->k));
+  int64_t ints[] = {c->seed, st->batch, lc->total, lc->spe, c->loss, c->bn, st->train.n, st->val.n,
+                    c->optim.kind, c->optim.nesterov, c->optim.decay_norm, c->sched.kind, lc->sched.warmup,
+                    lc->sched.step_size, (int64_t)sizeof(loop_state)};
+  double reals[] = {c->temperature, c->alpha, c->optim.lr, c->optim.weight_decay, c->optim.momentum,
+                    c->optim.beta1, c->optim.beta2, c->optim.eps, lc->sched.lr_min, lc->sched.gamma, c->clip};
+  h = fnv1a(h, ints, sizeof ints);
+  return fnv1a(h, reals, sizeof reals);
+}
+
+static const char CKPT_MAGIC[16] = "recoup-ckpt-v1\n";
+
+/* Layout: magic, fingerprint, loop_state, history (loss, metrics per epoch),
+ * parameter state size and image, CRC-32 of everything before it. */
+static rc_status checkpoint_write(const loop_ctx *lc, const loop_state *ls, rc_err *e) {
+  const run_state *st = lc->st;
+  const char *path = st->c->checkpoint_path;
+  size_t ps_bytes = rc_params_state_bytes(st->ps);
+  size_t hist = (size_t)ls->n_epochs * (sizeof(double) + sizeof(rc_metrics));
+  size_t n = sizeof CKPT_MAGIC + 8 + sizeof *ls + hist + 8 + ps_bytes + 4;
+  unsigned char *buf = rc__malloc(n), *p = buf;
+  if (!buf) return rc__fail(e, RC_ERR_NOMEM, "%s: out of memory writing a checkpoint", path);
+  memcpy(p, CKPT_MAGIC, sizeof CKPT_MAGIC);
+  p += sizeof CKPT_MAGIC;
+  memcpy(p, &lc->fingerprint, 8);
+  p += 8;
+  memcpy(p, ls, sizeof *ls);
+  p += sizeof *ls;
+  memcpy(p, lc->r->epoch_loss, sizeof(double) * (size_t)ls->n_epochs);
+  p += sizeof(double) * (size_t)ls->n_epochs;
+  memcpy(p, lc->r->epoch_val, sizeof(rc_metrics) * (size_t)ls->n_epochs);
+  p += sizeof(rc_metrics) * (size_t)ls->n_epochs;
+  uint64_t psb = ps_bytes;
+  memcpy(p, &psb, 8);
+  p += 8;
+  rc_params_state_write(st->ps, p);
+  p += ps_bytes;
+  uint32_t crc = (uint32_t)crc32(0L, buf, (uInt)(p - buf));
+  memcpy(p, &crc, 4);
+  /* Keep the previous checkpoint as PATH.1 until the new one is in place. */
+  char prev[4096];
+  snprintf(prev, sizeof prev, "%s.1", path);
+  rename(path, prev);
+  rc_status s = rc__write_atomic(path, buf, n, e);
+  rc__free(buf);
+  return s;
+}
+
+static rc_status checkpoint_read(const loop_ctx *lc, loop_state *ls, rc_err *e) {
+  const char *path = lc->st->c->resume_path;
+  FILE *f = fopen(path, "rb");
+  if (!f) return rc__fail(e, RC_ERR_IO, "%s: cannot open checkpoint: %s", path, strerror(errno));
+  size_t ps_bytes = rc_params_state_bytes(lc->st->ps);
+  size_t max = sizeof CKPT_MAGIC + 8 + sizeof *ls + (size_t)lc->epochs * (sizeof(double) + sizeof(rc_metrics)) +
+               8 + ps_bytes + 4;
+  unsigned char *buf = rc__malloc(max + 1);
+  rc_status s = RC_OK;
+  if (!buf) {
+    fclose(f);
+    return rc__fail(e, RC_ERR_NOMEM, "%s: out of memory reading the checkpoint", path);
+  }
+  size_t n = fread(buf, 1, max + 1, f);
+  fclose(f);
+  const unsigned char *p = buf;
+  uint32_t crc;
+  uint64_t fp, psb;
+  if (n < sizeof CKPT_MAGIC + 8 + sizeof *ls + 12 || n > max || memcmp(buf, CKPT_MAGIC, sizeof CKPT_MAGIC)) {
+    s = rc__fail(e, RC_ERR_FORMAT, "%s: not a recoup checkpoint of this run (wrong size or header)", path);
+    goto out;
+  }
+  memcpy(&crc, buf + n - 4, 4);
+  if (crc != (uint32_t)crc32(0L, buf, (uInt)(n - 4))) {
+    s = rc__fail(e, RC_ERR_FORMAT, "%s: corrupt checkpoint (checksum mismatch)", path);
+    goto out;
+  }
+  p += sizeof CKPT_MAGIC;
+  memcpy(&fp, p, 8);
+  p += 8;
+  if (fp != lc->fingerprint) {
+    s = rc__fail(e, RC_ERR_INVALID, "%s: checkpoint of a different run (teacher, student, data or settings differ)",
+                 path);
+    goto out;
+  }
+  memcpy(ls, p, sizeof *ls);
+  p += sizeof *ls;
+  if (ls->n_epochs < 0 || ls->n_epochs > lc->epochs ||
+      (size_t)(buf + n - p) != (size_t)ls->n_epochs * (sizeof(double) + sizeof(rc_metrics)) + 8 + ps_bytes + 4) {
+    s = rc__fail(e, RC_ERR_FORMAT, "%s: checkpoint sections do not add up", path);
+    goto out;
+  }
+  memcpy(lc->r->epoch_loss, p, sizeof(double) * (size_t)ls->n_epochs);
+  p += sizeof(double) * (size_t)ls->n_epochs;
+  memcpy(lc->r->epoch_val, p, sizeof(rc_metrics) * (size_t)ls->n_epochs);
+  p += sizeof(rc_metrics) * (size_t)ls->n_epochs;
+  memcpy(&psb, p, 8);
+  p += 8;
+  if (psb != ps_bytes) {
+    s = rc__fail(e, RC_ERR_FORMAT, "%s: parameter state of another shape", path);
+    goto out;
+  }
+  s = rc_params_state_read(lc->st->ps, p, ps_bytes, e);
+  if (s != RC_OK) rc__wrap(e, "%s", path);
+out:
+  rc__free(buf);
+  return s;
+}
+
+static rc_status setup_schedule(loop_ctx *lc, rc_err *e) {
+  const rc_distill_config *c = lc->st->c;
+  rc_sched *sched = &lc->sched;
+  rc_sched_defaults(sched, c->optim.lr, lc->total);
+  sched->kind = c->sched.kind;
+  if (c->sched.warmup >= 0) sched->warmup = c->sched.warmup;
+  if (c->sched.lr_min >= 0) sched->lr_min = c->sched.lr_min;
+  if (c->sched.step_size > 0)
+    sched->step_size = c->sched.step_size;
+  else if (sched->kind == RC_SCHED_STEP)
+    sched->step_size = lc->spe > 0 ? lc->spe : 1;
+  sched->gamma = c->sched.gamma;
+  return rc_sched_check(sched, e);
+}
+
+/* One optimizer step on batch b of the current epoch's order. Returns the
+ * loss through *loss; a non-finite loss or gradient is reported by *bad. */
+static rc_status train_step(loop_ctx *lc, const loop_state *ls, step_buffers *sb, double *loss, int *bad,
+                            rc_err *e) {
+  run_state *st = lc->st;
+  int64_t count;
+  RC_TRY(rc_dataset_gather(sb->in, sb->labels, &count, &st->train, ls->batch, st->batch, e));
+  gather_teacher_rows(st, sb, ls->batch);
+  rc_params_zero_grad(st->ps);
+  rc_plan_zero_grad(st->train_plan);
+  RC_TRY(rc_plan_forward(st->train_plan, e));
+  RC_TRY(loss_and_seed(st, sb, sb->labels, loss, e));
+  RC_TRY(rc_plan_backward(st->train_plan, e));
+  double norm = rc_clip_grad_norm(st->ps, st->c->clip);
+  *bad = !isfinite(*loss) || !isfinite(norm);
+  if (*bad) return RC_OK;
+  if (st->c->bn == RC_BN_TRAIN) update_running_stats(st, sb->bn_scratch, sb->max_c);
+  float lr = (float)(rc_sched_lr(&lc->sched, rc_params_steps(st->ps) + 1) * ls->lr_scale);
+  sb->lr = lr;
+  return rc_optim_step(st->ps, &st->c->optim, lr, e);
+}
+
+static rc_status end_epoch(loop_ctx *lc, loop_state *ls, rc_distill_progress *pg, rc_err *e) {
+  run_state *st = lc->st;
+  rc_metrics m;
+  RC_TRY(validate(st, &m, e));
+  lc->r->epoch_loss[ls->n_epochs] = ls->ep_steps ? ls->ep_loss / (double)ls->ep_steps : NAN;
+  lc->r->epoch_val[ls->n_epochs++] = m;
+  pg->event = RC_DISTILL_EPOCH;
+  pg->epoch = ls->epoch + 1;
+  pg->val = m;
+  pg->is_best = better(&m, &ls->best);
+  if (pg->is_best) {
+    ls->best = m;
+    ls->best_epoch = ls->epoch + 1;
+    RC_TRY(rc_params_save(st->ps, lc->best_slot, e));
+  }
+  notify(st->c, pg);
+  ls->epoch++;
+  ls->batch = 0;
+  ls->ep_loss = 0;
+  ls->ep_steps = 0;
+  return RC_OK;
+}
+
 static rc_status train_loop(run_state *st, rc_distill_result *r, const rc_distill_data *d, rc_err *e) {
   const rc_distill_config *c = st->c;
   const rc_graph *g = st->sg;
-  int64_t spe = rc_dataset_n_batches(&st->train, st->batch, 1);
-  int64_t total = c->steps > 0 ? c->steps : c->epochs * spe;
-  int64_t epochs = (total + spe - 1) / spe;
-  rc_sched sched = c->sched;
-  float lr_min = sched.lr_min;
-  rc_sched_defaults(&sched, c->optim.lr, total);
-  sched.kind = c->sched.kind;
-  if (c->sched.warmup >= 0) sched.warmup = c->sched.warmup;
-  if (lr_min >= 0) sched.lr_min = lr_min;
-  if (c->sched.step_size > 0) sched.step_size = c->sched.step_size;
-  else if (sched.kind == RC_SCHED_STEP) sched.step_size = spe > 0 ? spe : 1;
-  sched.gamma = c->sched.gamma;
-  RC_TRY(rc_sched_check(&sched, e));
+  loop_ctx lc = {st, r, {0}, 0, 0, 0, 0, 0, 0};
+  lc.spe = rc_dataset_n_batches(&st->train, st->batch, 1);
+  lc.total = c->steps > 0 ? c->steps : c->epochs * lc.spe;
+  lc.epochs = (lc.total + lc.spe - 1) / lc.spe;
+  RC_TRY(setup_schedule(&lc, e));
   step_buffers sb = {0};
-  int best_slot, good_slot;
-  double *bn_scratch = NULL;
-  int64_t max_c = 1;
-  RC_TRY(rc_params_add_snapshot(st->ps, &best_slot, 0, e));
-  RC_TRY(rc_params_add_snapshot(st->ps, &good_slot, 1, e));
-  RC_TRY(rc_params_save(st->ps, best_slot, e));
-  RC_TRY(rc_params_save(st->ps, good_slot, e));
-  r->epoch_loss = rc__calloc((size_t)epochs + 1, sizeof(double));
-  r->epoch_val = rc__calloc((size_t)epochs + 1, sizeof(rc_metrics));
+  RC_TRY(rc_params_add_snapshot(st->ps, &lc.best_slot, 0, e));
+  RC_TRY(rc_params_add_snapshot(st->ps, &lc.good_slot, 1, e));
+  RC_TRY(rc_params_save(st->ps, lc.best_slot, e));
+  RC_TRY(rc_params_save(st->ps, lc.good_slot, e));
+  r->epoch_loss = rc__calloc((size_t)lc.epochs + 1, sizeof(double));
+  r->epoch_val = rc__calloc((size_t)lc.epochs + 1, sizeof(rc_metrics));
   sb.teacher = rc__malloc(sizeof(float) * (size_t)(st->batch * st->k));
   sb.labels = d->labels ? rc__malloc(sizeof(int32_t) * (size_t)st->batch) : NULL;
+  sb.max_c = 1;
   for (int j = 0; j < st->n_bn; j++) {
     const rc_tensor *x = rc_plan_tensor(st->train_plan, g->nodes[st->bn_nodes[j]].in[0]);
-    if (x->rank > 1 && x->dims[1] > max_c) max_c = x->dims[1];
+    if (x->rank > 1 && x->dims[1] > sb.max_c) sb.max_c = x->dims[1];
   }
-  bn_scratch = rc__malloc(sizeof(double) * 2 * (size_t)max_c);
+  sb.bn_scratch = rc__malloc(sizeof(double) * 2 * (size_t)sb.max_c);
   rc_status s = RC_OK;
-  if (!r->epoch_loss || !r->epoch_val || !sb.teacher || (d->labels && !sb.labels) || !bn_scratch) {
+  if (!r->epoch_loss || !r->epoch_val || !sb.teacher || (d->labels && !sb.labels) || !sb.bn_scratch) {
     s = rc__fail(e, RC_ERR_NOMEM, "out of memory");
     goto out;
   }
   st->train.labels = d->labels; /* indexed by sample, like the inputs */
   for (int i = 0; i < g->n_inputs; i++) sb.in[i] = rc_plan_tensor(st->train_plan, g->inputs[i])->data;
-  rc_metrics best = r->before;
-  double t0 = now_s(), lr_scale = 1.0;
-  int64_t step = 0, snap_every = spe / 4 > 0 ? spe / 4 : 1;
-  rc_distill_progress pg = {0};
-  pg.epochs = epochs;
-  pg.steps = total;
-  for (int64_t ep = 0; ep < epochs && step < total && !r->stopped_nonfinite; ep++) {
-    rc_dataset_shuffle(&st->train, c->seed, (uint64_t)ep);
-    double ep_loss = 0;
-    int64_t ep_steps = 0;
-    for (int64_t b = 0; b < spe && step < total; b++) {
-      int64_t count;
-      if ((s = rc_dataset_gather(sb.in, sb.labels, &count, &st->train, b, st->batch, e)) != RC_OK) goto out;
-      gather_teacher_rows(st, &sb, b);
-      rc_params_zero_grad(st->ps);
-      rc_plan_zero_grad(st->train_plan);
-      if ((s = rc_plan_forward(st->train_plan, e)) != RC_OK) goto out;
-      double loss = 0;
-      if ((s = loss_and_seed(st, &sb, sb.labels, &loss, e)) != RC_OK) goto out;
-      if ((s = rc_plan_backward(st->train_plan, e)) != RC_OK) goto out;
-      double norm = rc_clip_grad_norm(st->ps, c->clip);
-      if (!isfinite(loss) || !isfinite(norm)) {
-        /* Roll back to the last good state with a smaller rate. */
-        r->rollbacks++;
-        if ((s = rc_params_restore(st->ps, good_slot, e)) != RC_OK) goto out;
-        lr_scale *= 0.5;
-        pg.event = RC_DISTILL_NOTE;
-        pg.note = "non-finite loss or gradient: rolled back to the last good state, learning rate halved";
-        notify(c, &pg);
-        if (r->rollbacks > c->max_rollbacks) {
-          r->stopped_nonfinite = 1;
-          break;
-        }
-        step++;
-        continue;
-      }
-      if (c->bn == RC_BN_TRAIN) update_running_stats(st, bn_scratch, max_c);
-      float lr = (float)(rc_sched_lr(&sched, rc_params_steps(st->ps) + 1) * lr_scale);
-      if ((s = rc_optim_step(st->ps, &c->optim, lr, e)) != RC_OK) goto out;
-      step++;
-      ep_loss += loss;
-      ep_steps++;
-      if (step % snap_every == 0 && (s = rc_params_save(st->ps, good_slot, e)) != RC_OK) goto out;
-      double el = now_s() - t0;
-      pg.event = RC_DISTILL_STEP;
-      pg.epoch = ep + 1;
-      pg.step = step;
-      pg.loss = ep_loss / (double)ep_steps;
-      pg.lr = lr;
-      pg.elapsed_s = el;
-      pg.samples_per_s = el > 0 ? (double)(step * st->batch) / el : 0;
-      pg.eta_s = step ? el / (double)step * (double)(total - step) : 0;
-      notify(c, &pg);
-    }
-    rc_metrics m;
-    if ((s = validate(st, &m, e)) != RC_OK) goto out;
-    r->epoch_loss[r->n_epochs] = ep_steps ? ep_loss / (double)ep_steps : NAN;
-    r->epoch_val[r->n_epochs++] = m;
-    pg.event = RC_DISTILL_EPOCH;
-    pg.epoch = ep + 1;
-    pg.val = m;
-    pg.is_best = better(&m, &best);
-    if (pg.is_best) {
-      best = m;
-      r->best_epoch = ep + 1;
-      if ((s = rc_params_save(st->ps, best_slot, e)) != RC_OK) goto out;
-    }
-    notify(c, &pg);
+  loop_state ls = {0};
+  ls.lr_scale = 1.0;
+  ls.best = r->before;
+  lc.fingerprint = run_fingerprint(&lc);
+  if (c->resume_path) {
+    if ((s = checkpoint_read(&lc, &ls, e)) != RC_OK) goto out;
+    rc_distill_progress note = {0};
+    note.event = RC_DISTILL_NOTE;
+    note.note = "resumed from the checkpoint";
+    notify(c, &note);
+  } else if (c->bn == RC_BN_RECALIBRATE) {
+    /* Done here, not on resume: the re-estimated statistics are in the store. */
+    if ((s = recalibrate_bn(st, e)) != RC_OK) goto out;
+    if ((s = rc_params_save(st->ps, lc.good_slot, e)) != RC_OK) goto out;
+    rc_distill_progress note = {0};
+    note.event = RC_DISTILL_NOTE;
+    note.note = "BatchNormalization running statistics re-estimated over the training samples";
+    notify(c, &note);
   }
-  r->steps_done = step;
+  double t0 = now_s();
+  int64_t start_step = ls.step, snap_every = lc.spe / 4 > 0 ? lc.spe / 4 : 1;
+  rc_distill_progress pg = {0};
+  pg.epochs = lc.epochs;
+  pg.steps = lc.total;
+  while (ls.step < lc.total && !ls.stopped) {
+    if (ls.batch == 0 || ls.step == start_step) rc_dataset_shuffle(&st->train, c->seed, (uint64_t)ls.epoch);
+    double loss = 0;
+    int bad = 0;
+    if ((s = train_step(&lc, &ls, &sb, &loss, &bad, e)) != RC_OK) goto out;
+    ls.step++;
+    ls.batch++;
+    if (bad) {
+      /* Roll back to the last good state with half the rate. */
+      ls.rollbacks++;
+      if ((s = rc_params_restore(st->ps, lc.good_slot, e)) != RC_OK) goto out;
+      ls.lr_scale *= 0.5;
+      pg.event = RC_DISTILL_NOTE;
+      pg.note = "non-finite loss or gradient: rolled back to the last good state, learning rate halved";
+      notify(c, &pg);
+      if (ls.rollbacks > c->max_rollbacks) ls.stopped = 1;
+    } else {
+      ls.ep_loss += loss;
+      ls.ep_steps++;
+      if (ls.step % snap_every == 0 && (s = rc_params_save(st->ps, lc.good_slot, e)) != RC_OK) goto out;
+    }
+    double el = now_s() - t0;
+    pg.event = RC_DISTILL_STEP;
+    pg.epoch = ls.epoch + 1;
+    pg.step = ls.step;
+    pg.loss = ls.ep_steps ? ls.ep_loss / (double)ls.ep_steps : NAN;
+    pg.lr = sb.lr;
+    pg.elapsed_s = el;
+    pg.samples_per_s = el > 0 ? (double)((ls.step - start_step) * st->batch) / el : 0;
+    pg.eta_s = ls.step > start_step ? el / (double)(ls.step - start_step) * (double)(lc.total - ls.step) : 0;
+    notify(c, &pg);
+    int epoch_done = ls.batch == lc.spe || ls.step == lc.total || ls.stopped;
+    if (epoch_done && (s = end_epoch(&lc, &ls, &pg, e)) != RC_OK) goto out;
+    int interrupted = c->stop && *c->stop;
+    if (c->checkpoint_path &&
+        (epoch_done || interrupted || (c->checkpoint_every > 0 && ls.step % c->checkpoint_every == 0)) &&
+        ls.step < lc.total && (s = checkpoint_write(&lc, &ls, e)) != RC_OK)
+      goto out;
+    if (interrupted && ls.step < lc.total) {
+      s = rc__fail(e, RC_ERR_INTERRUPTED, "interrupted at step %lld of %lld%s%s", (long long)ls.step,
+                   (long long)lc.total, c->checkpoint_path ? "; checkpoint written to " : "",
+                   c->checkpoint_path ? c->checkpoint_path : "");
+      goto out;
+    }
+  }
+  r->steps_done = ls.step;
   r->seconds = now_s() - t0;
-  r->samples_per_s = r->seconds > 0 ? (double)(step * st->batch) / r->seconds : 0;
-  r->improved = r->best_epoch > 0;
-  if ((s = rc_params_restore(st->ps, best_slot, e)) != RC_OK) goto out;
-  r->after = best;
+  r->samples_per_s = r->seconds > 0 ? (double)((ls.step - start_step) * st->batch) / r->seconds : 0;
+  r->best_epoch = ls.best_epoch;
+  r->improved = ls.best_epoch > 0;
+  r->rollbacks = (int)ls.rollbacks;
+  r->stopped_nonfinite = (int)ls.stopped;
+  r->n_epochs = ls.n_epochs;
+  if ((s = rc_params_restore(st->ps, lc.best_slot, e)) != RC_OK) goto out;
+  r->after = ls.best;
 out:
   rc__free(sb.teacher);
   rc__free(sb.labels);
-  rc__free(bn_scratch);
+  rc__free(sb.bn_scratch);
   return s;
 }
 
@@ -711,13 +915,6 @@ rc_status rc_distill_run(rc_distill_result *r, rc_model *teacher, rc_model *stud
       goto out;
   }
   if ((s = validate(&st, &r->before, e)) != RC_OK) goto out;
-  if (c->bn == RC_BN_RECALIBRATE) {
-    if ((s = recalibrate_bn(&st, e)) != RC_OK) goto out;
-    rc_distill_progress pg = {0};
-    pg.event = RC_DISTILL_NOTE;
-    pg.note = "BatchNormalization running statistics re-estimated over the training samples";
-    notify(c, &pg);
-  }
   if ((s = train_loop(&st, r, d, e)) != RC_OK) goto out;
   s = record_changes(&st, r, e);
 out:

@@ -9,6 +9,7 @@
 #ifndef RC_TRAIN_DISTILL_H
 #define RC_TRAIN_DISTILL_H
 
+#include <signal.h>
 #include <stdint.h>
 
 #include "core/status.h"
@@ -67,6 +68,15 @@ typedef struct rc_distill_config {
   int max_rollbacks;         /* non-finite steps rolled back before stopping */
   void (*progress)(void *user, const rc_distill_progress *p);
   void *user;
+  /* Checkpoints: written atomically every checkpoint_every steps (0: only at
+   * epoch ends) and when *stop becomes non-zero (a signal handler sets it);
+   * the previous one is kept as PATH.1. NULL: no checkpoints. */
+  const char *checkpoint_path;
+  int64_t checkpoint_every;
+  /* Continue from this checkpoint; the result is byte-identical to an
+   * uninterrupted run with the same inputs and settings. */
+  const char *resume_path;
+  const volatile sig_atomic_t *stop;
 } rc_distill_config;
 
 void rc_distill_config_defaults(rc_distill_config *c);

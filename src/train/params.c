@@ -270,3 +270,76 @@ rc_status rc_params_restore(rc_params *ps, int slot, rc_err *e) {
   rc_params_zero_grad(ps);
   return RC_OK;
 }
+
+/* ---- Serialised state (checkpoints) ---------------------------------------
+ * Layout: u64 total, u32 n_moments, u32 n_snap, i64 steps, values, moments,
+ * then per snapshot: u32 saved, u32 with_moments, i64 steps, its floats.
+ * Little-endian, as the machines recoup runs on. */
+
+typedef struct state_head {
+  uint64_t total;
+  uint32_t n_moments, n_snap;
+  int64_t steps;
+} state_head;
+
+typedef struct snap_head {
+  uint32_t saved, with_moments;
+  int64_t steps;
+} snap_head;
+
+size_t rc_params_state_bytes(const rc_params *ps) {
+  size_t n = sizeof(state_head) + ps->total * sizeof(float) * (size_t)(1 + ps->n_moments);
+  for (int i = 0; i < ps->n_snap; i++)
+    n += sizeof(snap_head) + snapshot_floats(ps, ps->snaps[i].with_moments) * sizeof(float);
+  return n;
+}
+
+void rc_params_state_write(const rc_params *ps, unsigned char *buf) {
+  state_head h = {ps->total, (uint32_t)ps->n_moments, (uint32_t)ps->n_snap, ps->steps};
+  memcpy(buf, &h, sizeof h);
+  buf += sizeof h;
+  size_t nb = ps->total * sizeof(float);
+  memcpy(buf, ps->blocks[RC_BLOCK_VALUE], nb);
+  buf += nb;
+  for (int m = 0; m < ps->n_moments; m++, buf += nb) memcpy(buf, ps->blocks[RC_BLOCK_MOMENT1 + m], nb);
+  for (int i = 0; i < ps->n_snap; i++) {
+    const snapshot *s = &ps->snaps[i];
+    snap_head sh = {(uint32_t)s->saved, (uint32_t)s->with_moments, s->steps};
+    memcpy(buf, &sh, sizeof sh);
+    buf += sizeof sh;
+    size_t sb = snapshot_floats(ps, s->with_moments) * sizeof(float);
+    memcpy(buf, s->mem, sb);
+    buf += sb;
+  }
+}
+
+rc_status rc_params_state_read(rc_params *ps, const unsigned char *buf, size_t n, rc_err *e) {
+  state_head h;
+  if (n != rc_params_state_bytes(ps) || n < sizeof h)
+    return rc__fail(e, RC_ERR_FORMAT, "parameter state of %zu bytes, this run's store needs %zu", n,
+                    rc_params_state_bytes(ps));
+  memcpy(&h, buf, sizeof h);
+  if (h.total != ps->total || h.n_moments != (uint32_t)ps->n_moments || h.n_snap != (uint32_t)ps->n_snap)
+    return rc__fail(e, RC_ERR_FORMAT, "parameter state does not match this run's parameters");
+  buf += sizeof h;
+  size_t nb = ps->total * sizeof(float);
+  memcpy(ps->blocks[RC_BLOCK_VALUE], buf, nb);
+  buf += nb;
+  for (int m = 0; m < ps->n_moments; m++, buf += nb) memcpy(ps->blocks[RC_BLOCK_MOMENT1 + m], buf, nb);
+  for (int i = 0; i < ps->n_snap; i++) {
+    snapshot *s = &ps->snaps[i];
+    snap_head sh;
+    memcpy(&sh, buf, sizeof sh);
+    buf += sizeof sh;
+    if (sh.with_moments != (uint32_t)s->with_moments)
+      return rc__fail(e, RC_ERR_FORMAT, "parameter state: snapshot %d differs in kind", i);
+    size_t sb = snapshot_floats(ps, s->with_moments) * sizeof(float);
+    memcpy(s->mem, buf, sb);
+    buf += sb;
+    s->saved = (int)sh.saved;
+    s->steps = sh.steps;
+  }
+  ps->steps = h.steps;
+  rc_params_zero_grad(ps);
+  return RC_OK;
+}

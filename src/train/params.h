@@ -106,4 +106,11 @@ rc_status rc_params_save(rc_params *ps, int slot, rc_err *e);
 /* Restore a saved slot; refuses a slot never saved. Gradients are zeroed. */
 rc_status rc_params_restore(rc_params *ps, int slot, rc_err *e);
 
+/* Checkpoint support: the whole mutable state (step counter, values,
+ * moments, every snapshot slot) as one byte image of rc_params_state_bytes()
+ * bytes. Reading refuses an image made for a differently shaped store. */
+size_t rc_params_state_bytes(const rc_params *ps);
+void rc_params_state_write(const rc_params *ps, unsigned char *buf);
+rc_status rc_params_state_read(rc_params *ps, const unsigned char *buf, size_t n, rc_err *e);
+
 #endif
