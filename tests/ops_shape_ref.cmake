@@ -7,3 +7,10 @@ set_tests_properties(ops_shape_ref_data PROPERTIES FIXTURES_SETUP ops_shape_ref 
 if(TEST test_ops_shape_ref)
   set_tests_properties(test_ops_shape_ref PROPERTIES FIXTURES_REQUIRED ops_shape_ref)
 endif()
+
+# Exported models full of run-time shape computations (torch.onnx, opsets 11,
+# 13, 17) run through `recoup eval` and compared with PyTorch's outputs.
+add_test(NAME ops_shape_export
+         COMMAND ${RECOUP_PYTHON} ${PROJECT_SOURCE_DIR}/scripts/check_shape_export.py
+                 $<TARGET_FILE:recoup> ${CMAKE_BINARY_DIR}/shape_export)
+set_tests_properties(ops_shape_export PROPERTIES TIMEOUT 300)
