@@ -38,6 +38,12 @@ typedef struct rc_model {
  * rc__graph_finalize). Errors name the file and the node or field. */
 rc_status rc_model_load(rc_model **out, const char *path, const rc_load_limits *limits, rc_err *e);
 
+/* rc_model_load on bytes in memory (the fuzzing entry point). `name` stands
+ * for the path in messages; external data is refused, there being no folder
+ * to resolve it against. */
+rc_status rc_model_load_mem(rc_model **out, const void *buf, size_t n, const char *name,
+                            const rc_load_limits *limits, rc_err *e);
+
 /* Write the model to path: the loaded message with the initializers listed in
  * `changed` (value indices) replaced by their current data in graph.values
  * (converted back to the file's dtype: float stays float32, int8/uint8 as
@@ -71,5 +77,9 @@ rc_status rc__write_atomic(const char *path, const void *data, size_t n, rc_err 
  * *owned (free with rc__free). Refuses tensors over max_bytes. */
 rc_status rc__tensorproto_file_read(const char *path, rc_tensor *out, void **owned, size_t max_bytes,
                                     rc_err *e);
+/* The same on bytes in memory (the fuzzing entry point); external data is
+ * refused. `name` stands for the path in messages. */
+rc_status rc__tensorproto_mem_read(const void *buf, size_t n, const char *name, rc_tensor *out,
+                                   void **owned, size_t max_bytes, rc_err *e);
 
 #endif

@@ -472,34 +472,29 @@ static rc_status build_graph(builder *b, const Onnx__ModelProto *mp) {
   return add_outputs(b, gp);
 }
 
-rc_status rc__model_load_unbound(rc_model **out, const char *path, const rc_load_limits *limits,
-                                 rc_err *e) {
-  *out = NULL;
-  if (!path || !*path) return rc__fail(e, RC_ERR_INVALID, "no model path given");
-  rc_load_limits lim;
-  if (limits) lim = *limits;
-  else rc_load_limits_default(&lim);
-  uint8_t *buf;
-  size_t n;
-  RC_TRY(rc__file_read_all(path, lim.max_file_bytes, &buf, &n, e));
+/* Unpack and build from bytes in memory. Without a folder (with_dir 0)
+ * external data is refused. `owned` (buf or NULL) is freed as soon as the
+ * message is unpacked, which copies what it keeps. */
+static rc_status load_bytes(rc_model **out, const uint8_t *buf, size_t n, uint8_t *owned,
+                            const char *path, int with_dir, const rc_load_limits *lim, rc_err *e) {
   rc_model *m = rc__calloc(1, sizeof *m);
   if (!m) {
-    rc__free(buf);
+    rc__free(owned);
     return rc__fail(e, RC_ERR_NOMEM, "%s: out of memory", path);
   }
   rc__arena_init(&m->graph.arena, 0);
   m->file_bytes = n;
   m->path = rc__strdup(path);
-  m->dir = rc__path_dir(path);
-  if (!m->path || !m->dir) {
-    rc__free(buf);
+  m->dir = with_dir ? rc__path_dir(path) : NULL;
+  if (!m->path || (with_dir && !m->dir)) {
+    rc__free(owned);
     rc_model_free(m);
     return rc__fail(e, RC_ERR_NOMEM, "%s: out of memory", path);
   }
   rc__pb_alloc pa;
   rc__pb_alloc_init(&pa, rc__pb_alloc_cap(n));
   Onnx__ModelProto *mp = onnx__model_proto__unpack(&pa.base, n, buf);
-  rc__free(buf);
+  rc__free(owned);
   if (!mp) {
     rc_model_free(m);
     if (pa.hit_cap)
@@ -513,14 +508,14 @@ rc_status rc__model_load_unbound(rc_model **out, const char *path, const rc_load
   builder b = {0};
   b.m = m;
   b.g = &m->graph;
-  b.lim = &lim;
+  b.lim = lim;
   b.e = e;
   b.ctx.file = m->path;
   b.ctx.dir = m->dir;
-  b.ctx.max_tensor_bytes = lim.max_tensor_bytes;
+  b.ctx.max_tensor_bytes = lim->max_tensor_bytes;
   b.ctx.total_bytes = &b.total_bytes;
-  b.ctx.max_total_bytes = lim.max_total_bytes;
-  b.ctx.max_rank = lim.max_rank;
+  b.ctx.max_total_bytes = lim->max_total_bytes;
+  b.ctx.max_rank = lim->max_rank;
   b.ctx.alloc = arena_cb;
   b.ctx.alloc_data = &m->graph.arena;
   rc_status st = build_graph(&b, mp);
@@ -533,9 +528,20 @@ rc_status rc__model_load_unbound(rc_model **out, const char *path, const rc_load
   return RC_OK;
 }
 
-rc_status rc_model_load(rc_model **out, const char *path, const rc_load_limits *limits, rc_err *e) {
-  rc_model *m;
-  RC_TRY(rc__model_load_unbound(&m, path, limits, e));
+rc_status rc__model_load_unbound(rc_model **out, const char *path, const rc_load_limits *limits,
+                                 rc_err *e) {
+  *out = NULL;
+  if (!path || !*path) return rc__fail(e, RC_ERR_INVALID, "no model path given");
+  rc_load_limits lim;
+  if (limits) lim = *limits;
+  else rc_load_limits_default(&lim);
+  uint8_t *buf;
+  size_t n;
+  RC_TRY(rc__file_read_all(path, lim.max_file_bytes, &buf, &n, e));
+  return load_bytes(out, buf, n, buf, path, 1, &lim, e);
+}
+
+static rc_status finalize_or_free(rc_model **out, rc_model *m, rc_err *e) {
   rc_status st = rc__graph_finalize(&m->graph, e);
   if (st != RC_OK) {
     rc_model_free(m);
@@ -543,4 +549,25 @@ rc_status rc_model_load(rc_model **out, const char *path, const rc_load_limits *
   }
   *out = m;
   return RC_OK;
+}
+
+rc_status rc_model_load_mem(rc_model **out, const void *buf, size_t n, const char *name,
+                            const rc_load_limits *limits, rc_err *e) {
+  *out = NULL;
+  if (!name || !*name) name = "(memory)";
+  rc_load_limits lim;
+  if (limits) lim = *limits;
+  else rc_load_limits_default(&lim);
+  if (n > lim.max_file_bytes)
+    return rc__fail(e, RC_ERR_LIMIT, "%s: %zu bytes are over the limit of %zu", name, n,
+                    lim.max_file_bytes);
+  rc_model *m;
+  RC_TRY(load_bytes(&m, buf, n, NULL, name, 0, &lim, e));
+  return finalize_or_free(out, m, e);
+}
+
+rc_status rc_model_load(rc_model **out, const char *path, const rc_load_limits *limits, rc_err *e) {
+  rc_model *m;
+  RC_TRY(rc__model_load_unbound(&m, path, limits, e));
+  return finalize_or_free(out, m, e);
 }

@@ -414,35 +414,28 @@ rc_status rc__tensor_encode_raw(const rc_tensor *t, rc_dtype fdt, const char *wh
 
 static void *malloc_cb(void *unused, size_t n) { return rc__malloc(n); }
 
-rc_status rc__tensorproto_file_read(const char *path, rc_tensor *out, void **owned, size_t max_bytes,
-                                    rc_err *e) {
-  *owned = NULL;
-  memset(out, 0, sizeof *out);
-  /* Typed fields may take up to 10 bytes per element (negative varints). */
-  size_t max_file = max_bytes > (SIZE_MAX - ((size_t)1 << 20)) / 10 ? SIZE_MAX
-                                                                      : max_bytes * 10 + ((size_t)1 << 20);
-  uint8_t *buf;
-  size_t n;
-  RC_TRY(rc__file_read_all(path, max_file, &buf, &n, e));
+/* Typed fields may take up to 10 bytes per element (negative varints). */
+static size_t tensorproto_max_file(size_t max_bytes) {
+  return max_bytes > (SIZE_MAX - ((size_t)1 << 20)) / 10 ? SIZE_MAX
+                                                         : max_bytes * 10 + ((size_t)1 << 20);
+}
+
+/* Unpack and decode; `dir` NULL refuses external data. */
+static rc_status tensorproto_decode_bytes(const uint8_t *buf, size_t n, const char *path,
+                                          const char *dir, rc_tensor *out, void **owned,
+                                          size_t max_bytes, rc_err *e) {
   rc__pb_alloc pa;
   rc__pb_alloc_init(&pa, rc__pb_alloc_cap(n));
   Onnx__TensorProto *t = onnx__tensor_proto__unpack(&pa.base, n, buf);
-  rc__free(buf);
   if (!t)
     return rc__fail(e, pa.hit_cap ? RC_ERR_LIMIT : RC_ERR_FORMAT, "%s: %s", path,
                     pa.hit_cap ? "message needs more memory than its size allows"
                                : "not an ONNX TensorProto file");
-  char *dir = rc__path_dir(path);
-  if (!dir) {
-    onnx__tensor_proto__free_unpacked(t, &pa.base);
-    return rc__fail(e, RC_ERR_NOMEM, "%s: out of memory", path);
-  }
   char what[320];
   snprintf(what, sizeof what, "tensor '%.256s'", t->name ? t->name : "");
   rc__decode_ctx ctx = {path, dir, max_bytes, NULL, 0, RC_MAX_RANK, malloc_cb, NULL};
   rc_status st = rc__tensor_decode(t, what, &ctx, out, e);
   onnx__tensor_proto__free_unpacked(t, &pa.base);
-  rc__free(dir);
   if (st != RC_OK) {
     rc__free(out->data);
     memset(out, 0, sizeof *out);
@@ -450,4 +443,33 @@ rc_status rc__tensorproto_file_read(const char *path, rc_tensor *out, void **own
   }
   *owned = out->data;
   return RC_OK;
+}
+
+rc_status rc__tensorproto_file_read(const char *path, rc_tensor *out, void **owned, size_t max_bytes,
+                                    rc_err *e) {
+  *owned = NULL;
+  memset(out, 0, sizeof *out);
+  uint8_t *buf;
+  size_t n;
+  RC_TRY(rc__file_read_all(path, tensorproto_max_file(max_bytes), &buf, &n, e));
+  char *dir = rc__path_dir(path);
+  if (!dir) {
+    rc__free(buf);
+    return rc__fail(e, RC_ERR_NOMEM, "%s: out of memory", path);
+  }
+  rc_status st = tensorproto_decode_bytes(buf, n, path, dir, out, owned, max_bytes, e);
+  rc__free(buf);
+  rc__free(dir);
+  return st;
+}
+
+rc_status rc__tensorproto_mem_read(const void *buf, size_t n, const char *name, rc_tensor *out,
+                                   void **owned, size_t max_bytes, rc_err *e) {
+  *owned = NULL;
+  memset(out, 0, sizeof *out);
+  if (!name || !*name) name = "(memory)";
+  if (n > tensorproto_max_file(max_bytes))
+    return rc__fail(e, RC_ERR_LIMIT, "%s: %zu bytes are over the limit of %zu", name, n,
+                    tensorproto_max_file(max_bytes));
+  return tensorproto_decode_bytes(buf, n, name, NULL, out, owned, max_bytes, e);
 }

@@ -114,7 +114,7 @@ static int same_file(const char *a, const char *b) {
 static rc_status same_folder(const rc_model *m, const char *path, int *same, rc_err *e) {
   char *d = rc__path_dir(path);
   if (!d) return rc__fail(e, RC_ERR_NOMEM, "%s: out of memory", path);
-  *same = same_file(d, m->dir);
+  *same = m->dir && same_file(d, m->dir); /* models read from memory have no folder */
   rc__free(d);
   return RC_OK;
 }
