@@ -685,6 +685,68 @@ static void test_expand_tile(void) {
   oh_free(&c);
 }
 
+/* Views big enough for the threaded paths, against direct loops. */
+static void test_large_views(void) {
+  enum { A = 64, B = 130, C = 70 };
+  static float x[A * B * C], g[A * B * C];
+  oh_fill(x, A * B * C, 51);
+  oh_case c;
+  oh_init(&c, "Transpose", 13); /* (A,B,C) -> (B,A,C): row copies */
+  oh_attr_ints(&c, "perm", 3, I64(1, 0, 2));
+  oh_input(&c, RC_DTYPE_FLOAT, 3, I64(A, B, C), x);
+  CHECK(run_ok(&c));
+  const float *y = oh_out_f(&c, 0);
+  int bad = 0;
+  for (int a = 0; a < A; a++)
+    for (int b = 0; b < B; b++)
+      for (int k = 0; k < C; k++) bad += y[(b * A + a) * C + k] != x[(a * B + b) * C + k];
+  CHECK_INT(bad, 0);
+  oh_fill(g, A * B * C, 52);
+  run_backward(&c, g, (const int[]){0, -1});
+  bad = 0;
+  for (int a = 0; a < A; a++)
+    for (int b = 0; b < B; b++)
+      for (int k = 0; k < C; k++) bad += grad_of(&c, 0)[(a * B + b) * C + k] != g[(b * A + a) * C + k];
+  CHECK_INT(bad, 0);
+  oh_free(&c);
+  /* Slice with steps (a one-to-one scatter in backward) */
+  oh_init(&c, "Slice", 13);
+  oh_input(&c, RC_DTYPE_FLOAT, 3, I64(A, B, C), x);
+  oh_input(&c, RC_DTYPE_INT64, 1, I64(2), I64(-1, 1));
+  oh_input(&c, RC_DTYPE_INT64, 1, I64(2), I64(INT64_MIN, C));
+  oh_input(&c, RC_DTYPE_INT64, 1, I64(2), I64(1, 2));
+  oh_input(&c, RC_DTYPE_INT64, 1, I64(2), I64(-1, 2));
+  CHECK(run_ok(&c));
+  CHECK(c.out_t[0].dims[1] == B && c.out_t[0].dims[2] == (C - 1 + 1) / 2);
+  int64_t oc = c.out_t[0].dims[2];
+  run_backward(&c, NULL, (const int[]){0, -1});
+  bad = 0;
+  for (int a = 0; a < A; a++)
+    for (int b = 0; b < B; b++)
+      for (int k = 0; k < C; k++) {
+        float want = (k >= 1 && (k - 1) % 2 == 0 && (k - 1) / 2 < oc) ? 1.0f : 0.0f;
+        bad += grad_of(&c, 0)[(a * B + b) * C + k] != want;
+        if (k >= 1 && (k - 1) % 2 == 0) bad += oh_out_f(&c, 0)[(a * (int64_t)B + (B - 1 - b)) * oc + (k - 1) / 2] != x[(a * B + b) * C + k];
+      }
+  CHECK_INT(bad, 0);
+  oh_free(&c);
+  /* Expand backward sums over the broadcast axis */
+  oh_init(&c, "Expand", 13);
+  oh_input(&c, RC_DTYPE_FLOAT, 3, I64(A, 1, C), x);
+  oh_input(&c, RC_DTYPE_INT64, 1, I64(3), I64(A, B, C));
+  CHECK(run_ok(&c));
+  run_backward(&c, g, (const int[]){0, -1});
+  bad = 0;
+  for (int a = 0; a < A; a++)
+    for (int k = 0; k < C; k++) {
+      double s = 0;
+      for (int b = 0; b < B; b++) s += g[(a * B + b) * C + k];
+      bad += fabs(grad_of(&c, 0)[a * C + k] - s) > 1e-4;
+    }
+  CHECK_INT(bad, 0);
+  oh_free(&c);
+}
+
 /* The exported dynamic-shape chain: Shape -> Gather -> Unsqueeze -> Concat -> Reshape. */
 static void test_shape_chain(void) {
   oh_case s, g, u, cc, r;
@@ -739,6 +801,7 @@ int main(void) {
   RUN(test_transpose);
   RUN(test_concat_split);
   RUN(test_expand_tile);
+  RUN(test_large_views);
   RUN(test_shape_chain);
   return TEST_REPORT();
 }

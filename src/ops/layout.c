@@ -44,6 +44,24 @@ static int64_t step_outer(int r, const int64_t *d, const int64_t *s, int64_t *id
   return delta;
 }
 
+/* Offset of outer row o (axes 0..r-2 of the view) and its counters. */
+static int64_t row_start(int r, const int64_t *d, const int64_t *s, int64_t o, int64_t *idx) {
+  int64_t off = 0;
+  for (int k = r - 2; k >= 0; k--) {
+    idx[k] = o % d[k];
+    o /= d[k];
+    off += idx[k] * s[k];
+  }
+  return off;
+}
+
+/* Row chunks for the threads: one unless the view is big enough to pay. */
+#define PARALLEL_MIN 65536
+static int chunk_count(int64_t n_outer, int64_t inner) {
+  if (n_outer < 2 || n_outer * inner < PARALLEL_MIN) return 1;
+  return n_outer < 64 ? (int)n_outer : 64;
+}
+
 #define COPY_ROW(T)                                                  \
   do {                                                               \
     T *o_ = (T *)dst + pos;                                          \
@@ -111,7 +129,7 @@ static int try_tiled(void *dst, const void *src, int64_t base, int r, const int6
 
 void rc__view_copy(void *dst, const void *src, int64_t base, int rank, const int64_t *dims,
                    const int64_t *stride, size_t esz) {
-  int64_t d[RC_VIEW_MAX_RANK], s[RC_VIEW_MAX_RANK], idx[RC_VIEW_MAX_RANK] = {0};
+  int64_t d[RC_VIEW_MAX_RANK], s[RC_VIEW_MAX_RANK];
   int r = simplify(rank, dims, stride, d, s);
   if (r < 0) return;
   if (r == 0) {
@@ -121,20 +139,24 @@ void rc__view_copy(void *dst, const void *src, int64_t base, int rank, const int
   if (try_tiled(dst, src, base, r, d, s, esz)) return;
   int64_t inner = d[r - 1], sin = s[r - 1], n_outer = 1;
   for (int k = 0; k < r - 1; k++) n_outer *= d[k];
-  int64_t off = base, pos = 0;
-  for (int64_t o = 0; o < n_outer; o++, pos += inner) {
-    if (sin == 1)
-      memcpy((char *)dst + pos * (int64_t)esz, (const char *)src + off * (int64_t)esz,
-             (size_t)inner * esz);
-    else if (esz == 4)
-      COPY_ROW(uint32_t);
-    else if (esz == 8)
-      COPY_ROW(uint64_t);
-    else if (esz == 2)
-      COPY_ROW(uint16_t);
-    else
-      COPY_ROW(uint8_t);
-    off += step_outer(r, d, s, idx);
+  int chunks = chunk_count(n_outer, inner);
+#pragma omp parallel for schedule(static) if (chunks > 1)
+  for (int c = 0; c < chunks; c++) {
+    int64_t o0 = n_outer * c / chunks, o1 = n_outer * (c + 1) / chunks, idx[RC_VIEW_MAX_RANK];
+    int64_t off = base + row_start(r, d, s, o0, idx), pos = o0 * inner;
+    for (int64_t o = o0; o < o1; o++, pos += inner) {
+      if (sin == 1)
+        memcpy((char *)dst + pos * (int64_t)esz, (const char *)src + off * (int64_t)esz, (size_t)inner * esz);
+      else if (esz == 4)
+        COPY_ROW(uint32_t);
+      else if (esz == 8)
+        COPY_ROW(uint64_t);
+      else if (esz == 2)
+        COPY_ROW(uint16_t);
+      else
+        COPY_ROW(uint8_t);
+      off += step_outer(r, d, s, idx);
+    }
   }
 }
 
@@ -142,7 +164,7 @@ void rc__view_copy(void *dst, const void *src, int64_t base, int rank, const int
  * index order so that repeated view targets accumulate deterministically. */
 static void view_accumulate(float *dst, const float *src, int64_t base, int rank, const int64_t *dims,
                             const int64_t *stride, int scatter) {
-  int64_t d[RC_VIEW_MAX_RANK], s[RC_VIEW_MAX_RANK], idx[RC_VIEW_MAX_RANK] = {0};
+  int64_t d[RC_VIEW_MAX_RANK], s[RC_VIEW_MAX_RANK];
   int r = simplify(rank, dims, stride, d, s);
   if (r < 0) return;
   if (r == 0) {
@@ -153,23 +175,32 @@ static void view_accumulate(float *dst, const float *src, int64_t base, int rank
     return;
   }
   int64_t inner = d[r - 1], sv = s[r - 1], n_outer = 1;
-  for (int k = 0; k < r - 1; k++) n_outer *= d[k];
-  int64_t off = base, pos = 0;
-  for (int64_t o = 0; o < n_outer; o++, pos += inner) {
-    float *op = scatter ? dst + off : dst + pos;
-    const float *ip = scatter ? src + pos : src + off;
-    if (sv == 1) {
-      for (int64_t j = 0; j < inner; j++) op[j] += ip[j];
-    } else if (!scatter) {
-      for (int64_t j = 0; j < inner; j++) op[j] += ip[j * sv];
-    } else if (sv == 0) {
-      float acc = 0;
-      for (int64_t j = 0; j < inner; j++) acc += ip[j];
-      op[0] += acc;
-    } else {
-      for (int64_t j = 0; j < inner; j++) op[j * sv] += ip[j];
+  int one_to_one = 1; /* scatters race only where targets repeat (zero strides) */
+  for (int k = 0; k < r; k++) {
+    n_outer *= k < r - 1 ? d[k] : 1;
+    one_to_one = one_to_one && s[k] != 0;
+  }
+  int chunks = scatter && !one_to_one ? 1 : chunk_count(n_outer, inner);
+#pragma omp parallel for schedule(static) if (chunks > 1)
+  for (int c = 0; c < chunks; c++) {
+    int64_t o0 = n_outer * c / chunks, o1 = n_outer * (c + 1) / chunks, idx[RC_VIEW_MAX_RANK];
+    int64_t off = base + row_start(r, d, s, o0, idx), pos = o0 * inner;
+    for (int64_t o = o0; o < o1; o++, pos += inner) {
+      float *op = scatter ? dst + off : dst + pos;
+      const float *ip = scatter ? src + pos : src + off;
+      if (sv == 1) {
+        for (int64_t j = 0; j < inner; j++) op[j] += ip[j];
+      } else if (!scatter) {
+        for (int64_t j = 0; j < inner; j++) op[j] += ip[j * sv];
+      } else if (sv == 0) {
+        float acc = 0;
+        for (int64_t j = 0; j < inner; j++) acc += ip[j];
+        op[0] += acc;
+      } else {
+        for (int64_t j = 0; j < inner; j++) op[j * sv] += ip[j];
+      }
+      off += step_outer(r, d, s, idx);
     }
-    off += step_outer(r, d, s, idx);
   }
 }
 

@@ -28,7 +28,9 @@ void rc__view_copy(void *dst, const void *src, int64_t base, int rank, const int
 void rc__view_gather_add(float *dst, const float *src, int64_t base, int rank, const int64_t *dims,
                          const int64_t *stride);
 /* dst[view(i)] += src[i]: scatters a contiguous float buffer into a view,
- * in index order (so repeated targets accumulate deterministically). */
+ * in index order (so repeated targets accumulate deterministically). A view
+ * without zero strides is taken to be one-to-one (as Slice and Transpose
+ * views are) and may be scattered by several threads. */
 void rc__view_scatter_add(float *dst, int64_t base, const float *src, int rank, const int64_t *dims,
                           const int64_t *stride);
 
