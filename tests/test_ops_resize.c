@@ -32,20 +32,17 @@ static void test_nearest_spec_examples(void) {
   CHECK(c.out_t[0].dims[2] == 4 && c.out_t[0].dims[3] == 6);
   check_floats(oh_out_f(&c, 0), want, 24);
   oh_free(&c);
-  /* spec example upsample_nearest (Upsample, opset 9): same output */
-  oh_init(&c, "Upsample", 9);
-  oh_input(&c, RC_DTYPE_FLOAT, 4, I64(1, 1, 2, 2), X22);
-  oh_input(&c, RC_DTYPE_FLOAT, 1, I64(4), F32(1, 1, 2, 3));
-  CHECK(run_ok(&c));
-  check_floats(oh_out_f(&c, 0), want, 24);
-  oh_free(&c);
-  /* Resize-10: scales are input 1 */
-  oh_init(&c, "Resize", 10);
-  oh_input(&c, RC_DTYPE_FLOAT, 4, I64(1, 1, 2, 2), X22);
-  oh_input(&c, RC_DTYPE_FLOAT, 1, I64(4), F32(1, 1, 2, 3));
-  CHECK(run_ok(&c));
-  check_floats(oh_out_f(&c, 0), want, 24);
-  oh_free(&c);
+  /* spec example upsample_nearest (Upsample, opset 9) and Resize-10: scales
+   * are input 1, same output */
+  static const char *ops[2] = {"Upsample", "Resize"};
+  for (int i = 0; i < 2; i++) {
+    oh_init(&c, ops[i], 9 + i);
+    oh_input(&c, RC_DTYPE_FLOAT, 4, I64(1, 1, 2, 2), X22);
+    oh_input(&c, RC_DTYPE_FLOAT, 1, I64(4), F32(1, 1, 2, 3));
+    CHECK(run_ok(&c));
+    check_floats(oh_out_f(&c, 0), want, 24);
+    oh_free(&c);
+  }
 }
 
 static void test_linear_coordinate_modes(void) {
