@@ -744,17 +744,18 @@ int main(int argc, char **argv) {
     suite_title = NULL;
     RUN(test_suite);
   }
-  /* The PyTorch-made suites are opset 6, which recoup refuses; ONNX's
-   * version converter upgrades them (scripts/conformance_upgrade.py, run as
+  /* The PyTorch-made suites are opset 6 and some node cases opset 1 to 8,
+   * which recoup refuses; ONNX's version converter upgrades them (scripts/conformance_upgrade.py, run as
    * a ctest fixture from tests/conformance.cmake) so that their Conv,
    * BatchNormalization, pool and Gemm graphs run against the same expected
    * outputs. */
   const char *upgraded = getenv("RECOUP_CONFORMANCE_UPGRADED");
   if (upgraded && *upgraded) {
-    const char *up[] = {"pytorch-converted", "pytorch-operator"};
-    const char *titles[] = {"pytorch-converted (upgraded to opset 13)", "pytorch-operator (upgraded to opset 13)"};
+    const char *up[] = {"node", "pytorch-converted", "pytorch-operator"};
+    const char *titles[] = {"node opsets 1-8 (upgraded to opset 13)", "pytorch-converted (upgraded to opset 13)",
+                            "pytorch-operator (upgraded to opset 13)"};
     suite_root = upgraded;
-    for (int i = 0; i < 2; i++) {
+    for (int i = 0; i < 3; i++) {
       suite_now = up[i];
       suite_title = titles[i];
       RUN(test_suite);
