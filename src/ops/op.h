@@ -86,7 +86,7 @@ rc_status rc__check_shape(const rc_node *n, const rc_tensor *t, rc_err *e);
 /* Family tables. */
 #define RC_OP_FAMILIES(X) \
   X(conv) X(pool) X(matmul) X(elementwise) X(activation) X(softmax) X(norm) \
-  X(shape) X(reduce) X(resize) X(quant)
+  X(shape) X(reduce) X(resize) X(quant) X(fakequant)
 
 #define RC_OP_FAMILY_DECL(fam)                 \
   extern const rc_op_def rc__ops_##fam[];      \

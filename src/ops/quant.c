@@ -15,7 +15,7 @@
 
 #include "ops/layout.h"
 
-static int quant_range(rc_dtype dt, int32_t *lo, int32_t *hi) {
+int rc__quant_range(rc_dtype dt, int32_t *lo, int32_t *hi) {
   switch (dt) {
     case RC_DTYPE_UINT8: *lo = 0; *hi = 255; return 1;
     case RC_DTYPE_INT8: *lo = -128; *hi = 127; return 1;
@@ -94,7 +94,7 @@ static rc_status quant_check_values(const rc_node *n, const rc_tensor *s, const 
       return RC_NODE_FAIL(e, n, RC_ERR_INVALID, "scale[%lld] is %g; scales must be positive and finite",
                           (long long)i, sv[i]);
   int32_t lo, hi;
-  if (z && z->data && quant_range(z->dtype, &lo, &hi))
+  if (z && z->data && rc__quant_range(z->dtype, &lo, &hi))
     for (int64_t i = 0; i < ns; i++) {
       int64_t v = rc__int_at(z, i);
       if (v < lo || v > hi)
@@ -157,7 +157,7 @@ static rc_status quantize_forward(const rc_kernel *k, rc_err *e) {
   RC_TRY(quant_shape(n, (const rc_tensor *const *)k->in, &L, e));
   RC_TRY(quant_check_values(n, s, z, e));
   int32_t lo, hi;
-  quant_range(y->dtype, &lo, &hi);
+  rc__quant_range(y->dtype, &lo, &hi);
   const float *sv = s->data;
   for (int64_t i = 0; i < L.n; i++) {
     int64_t c = (i / L.inner) % L.channels;

@@ -12,6 +12,8 @@
 
 #include <stdint.h>
 
+#include "recoup/tensor.h"
+
 /* y = (clamp(round(x / s) + z, qmin, qmax) - z) * s; y may alias x. */
 void rc__fake_quant_forward(float *y, const float *x, int64_t n, const float *scale, const int32_t *zero_point,
                             int64_t channels, int64_t inner, int32_t qmin, int32_t qmax);
@@ -19,5 +21,9 @@ void rc__fake_quant_forward(float *y, const float *x, int64_t n, const float *sc
 void rc__fake_quant_backward(float *dx, const float *dy, const float *x, int64_t n, const float *scale,
                              const int32_t *zero_point, int64_t channels, int64_t inner, int32_t qmin,
                              int32_t qmax);
+
+/* Range of a quantized integer type (int8, uint8, int16, uint16, int4,
+ * uint4); 0 for other types. */
+int rc__quant_range(rc_dtype dt, int32_t *lo, int32_t *hi);
 
 #endif

@@ -13,6 +13,7 @@
 #include "graph/plan.h"
 #include "train/loss.h"
 #include "train/params.h"
+#include "train/qat.h"
 
 void rc_distill_config_defaults(rc_distill_config *c) {
   memset(c, 0, sizeof *c);
@@ -121,6 +122,7 @@ typedef struct run_state {
   const int32_t *val_labels;
   rc_data_split split;
   int own_val;               /* val is a separate dataset */
+  rc_qat qat;                /* QDQ sites rewritten for training on their grids */
 } run_state;
 
 static rc_status add_trainable(run_state *st, int v, unsigned flags, rc_err *e) {
@@ -151,6 +153,15 @@ static rc_status select_trainables(run_state *st, rc_err *e) {
   }
   rc__free(w);
   RC_TRY(s);
+  /* Quantized weights train through their float shadows (or, for float
+   * weights feeding QuantizeLinear, directly), on fixed grids. */
+  for (int i = 0; i < st->qat.n; i++) {
+    const rc_qat_site *q = &st->qat.sites[i];
+    int file_value = q->int_value >= 0 ? q->int_value : q->float_weight;
+    int v = q->int_value >= 0 ? q->shadow : q->float_weight;
+    if (v < 0 || matches_any(g->values[file_value].name, c->freeze_globs, c->n_freeze)) continue;
+    RC_TRY(add_trainable(st, v, q->is_bias ? RC_PARAM_NO_DECAY : RC_PARAM_KEEP_ZEROS, e));
+  }
   /* --train adds float initializers beyond the default set. */
   for (int v = 0; v < g->n_values && c->n_train; v++) {
     const rc_value *val = &g->values[v];
@@ -826,6 +837,8 @@ out:
 
 static void free_state(run_state *st) {
   restore_graph_buffers(st);
+  rc__qat_restore(st->sg, &st->qat);
+  rc__qat_free(&st->qat);
   rc_plan_free(st->train_plan);
   rc_plan_free(st->eval_plan);
   rc_plan_free(st->teacher_plan);
@@ -842,17 +855,24 @@ static void free_state(run_state *st) {
 }
 
 static rc_status record_changes(run_state *st, rc_distill_result *r, rc_err *e) {
-  r->changed = rc__malloc(sizeof(int) * (size_t)(st->n_tr + 1));
+  r->changed = rc__malloc(sizeof(int) * (size_t)(st->n_tr + st->qat.n + 1));
   if (!r->changed) return rc__fail(e, RC_ERR_NOMEM, "out of memory");
   for (int i = 0; i < st->n_tr; i++) {
     const rc_param_entry *pe = rc_params_entry(st->ps, st->tr[i].entry);
-    r->changed[r->n_changed++] = st->tr[i].value;
+    /* Shadows live only in memory; their integer initializers are saved. */
+    if (st->sg->values[st->tr[i].value].init_index >= 0)
+      r->changed[r->n_changed++] = st->tr[i].value;
     if (st->trainable_mask[st->tr[i].value]) {
       r->n_trainable_tensors++;
       r->n_trainable += pe->numel - pe->n_frozen;
     }
     r->n_frozen_zeros += pe->n_frozen;
   }
+  for (int i = 0; i < st->qat.n; i++)
+    if (st->qat.sites[i].int_value >= 0) {
+      r->changed[r->n_changed++] = st->qat.sites[i].int_value;
+      r->n_grids++;
+    }
   int entry;
   int64_t pos;
   r->mask_ok = rc_params_mask_intact(st->ps, &entry, &pos);
@@ -874,6 +894,7 @@ rc_status rc_distill_run(rc_distill_result *r, rc_model *teacher, rc_model *stud
   int32_t *val_labels = NULL;
   rc_status s;
   if ((s = rc_distill_check_pair(&teacher->graph, st.sg, e)) != RC_OK) goto out;
+  if ((s = rc__qat_prepare(st.sg, &st.qat, e)) != RC_OK) goto out;
   if (d->n_inputs != st.sg->n_inputs) {
     s = rc__fail(e, RC_ERR_INVALID, "%s has %d inputs, the data %d", st.sg->path, st.sg->n_inputs, d->n_inputs);
     goto out;
@@ -916,6 +937,7 @@ rc_status rc_distill_run(rc_distill_result *r, rc_model *teacher, rc_model *stud
   }
   if ((s = validate(&st, &r->before, e)) != RC_OK) goto out;
   if ((s = train_loop(&st, r, d, e)) != RC_OK) goto out;
+  if ((s = rc__qat_write_back(st.sg, &st.qat, e)) != RC_OK) goto out;
   s = record_changes(&st, r, e);
 out:
   rc__free(val_labels);

@@ -91,6 +91,7 @@ typedef struct rc_distill_result {
   int n_trainable_tensors;
   int64_t n_trainable, n_frozen_zeros;
   int mask_ok;
+  int n_grids;                       /* integer initializers rewritten on their unchanged grids */
   int rollbacks, stopped_nonfinite;
   double *epoch_loss;                /* per epoch (n_epochs) */
   rc_metrics *epoch_val;

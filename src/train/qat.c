@@ -1,0 +1,245 @@
+#include "train/qat.h"
+
+#include <math.h>
+#include <stdio.h>
+#include <string.h>
+
+#include "core/alloc.h"
+#include "ops/fakequant.h"
+#include "ops/quant.h"
+
+static int is_op(const rc_node *n, const char *op) { return !strcmp(n->op_type, op) && !(n->domain && n->domain[0] && strcmp(n->domain, "ai.onnx")); }
+
+static int initializer_in(const rc_graph *g, const rc_node *n, int i) {
+  return i < n->n_in && n->in[i] >= 0 && g->values[n->in[i]].kind == RC_VALUE_INITIALIZER ? n->in[i] : -1;
+}
+
+/* Integer range of a grid: int32 biases included. */
+static int grid_range(rc_dtype dt, int32_t *lo, int32_t *hi) {
+  if (dt == RC_DTYPE_INT32) {
+    *lo = INT32_MIN;
+    *hi = INT32_MAX;
+    return 1;
+  }
+  return rc__quant_range(dt, lo, hi);
+}
+
+/* The dtype a QuantizeLinear produces: its zero point's, output_dtype
+ * (opset 21), or uint8 by default, as the operator specification says. */
+static rc_dtype quantize_output_dtype(const rc_graph *g, const rc_node *n) {
+  if (n->n_in > 2 && n->in[2] >= 0) return g->values[n->in[2]].decl.dtype;
+  int64_t od = rc__attr_int(n, "output_dtype", 0);
+  return od ? (rc_dtype)od : RC_DTYPE_UINT8;
+}
+
+/* Layout of a tensor against its scale: (outer, channels, inner). */
+static void layout(const rc_tensor *x, int64_t n_scale, int64_t axis, int64_t *channels, int64_t *inner) {
+  *channels = 1;
+  *inner = rc_tensor_numel(x);
+  if (n_scale <= 1) return;
+  int a = (int)(axis < 0 ? axis + x->rank : axis);
+  *channels = n_scale;
+  *inner = 1;
+  for (int d = a + 1; d < x->rank; d++) *inner *= x->dims[d];
+}
+
+static int64_t zero_point_at(const rc_graph *g, const rc_node *n, int64_t c) {
+  int zv = initializer_in(g, n, 2);
+  return zv >= 0 ? rc__int_at(&g->values[zv].decl, c) : 0;
+}
+
+static rc_status grow_values(rc_graph *g, int extra, rc_err *e) {
+  rc_value *nv = rc__arena_alloc(&g->arena, sizeof(rc_value) * (size_t)(g->n_values + extra));
+  if (!nv) return rc__fail(e, RC_ERR_NOMEM, "%s: out of memory preparing quantized training", g->path);
+  memcpy(nv, g->values, sizeof(rc_value) * (size_t)g->n_values);
+  g->values = nv;
+  return RC_OK;
+}
+
+static rc_status add_site(rc_qat *q, const rc_qat_site *s, rc_err *e) {
+  rc_qat_site *grown = rc__realloc(q->sites, sizeof *grown * (size_t)(q->n + 1));
+  if (!grown) return rc__fail(e, RC_ERR_NOMEM, "out of memory");
+  q->sites = grown;
+  q->sites[q->n++] = *s;
+  return RC_OK;
+}
+
+static rc_fake_quant_params *fq_params(rc_graph *g, const rc_node *dq, rc_dtype dt, rc_err *e) {
+  rc_fake_quant_params *p = rc__arena_zalloc(&g->arena, sizeof *p);
+  if (!p) {
+    rc__fail(e, RC_ERR_NOMEM, "out of memory");
+    return NULL;
+  }
+  p->axis = rc__attr_int(dq, "axis", 1);
+  if (!grid_range(dt, &p->qmin, &p->qmax)) {
+    rc__fail(e, RC_ERR_UNSUPPORTED, "%s: node '%s': cannot train on a %s grid", g->path, dq->label,
+             rc_dtype_name(dt));
+    return NULL;
+  }
+  return p;
+}
+
+static const rc_op_def *fake_quant_def(void) { return rc__op_find(RC_FAKE_QUANT_OP, RC_TRAINING_DOMAIN, 1); }
+
+/* Integer initializer -> DequantizeLinear: a float shadow and FakeQuantLinear. */
+static rc_status rewrite_int_weight(rc_graph *g, rc_qat *q, int dqi, rc_err *e) {
+  rc_node *dq = &g->nodes[dqi];
+  int qv = dq->in[0], sv = initializer_in(g, dq, 1);
+  const rc_tensor *qt = &g->values[qv].decl, *st = &g->values[sv].decl;
+  rc_fake_quant_params *p = fq_params(g, dq, qt->dtype, e);
+  if (!p) return e->code;
+  int shadow = g->n_values++;
+  rc_value *sh = &g->values[shadow];
+  memset(sh, 0, sizeof *sh);
+  char name[512];
+  snprintf(name, sizeof name, "%s (float shadow)", g->values[qv].name);
+  sh->name = rc__arena_strdup(&g->arena, name);
+  sh->kind = RC_VALUE_INITIALIZER;
+  sh->producer = -1;
+  sh->init_index = -1;
+  sh->decl = *qt;
+  sh->decl.dtype = RC_DTYPE_FLOAT;
+  int64_t n = rc_tensor_numel(qt), channels, inner;
+  float *x = rc__arena_alloc(&g->arena, sizeof(float) * (size_t)(n ? n : 1));
+  if (!sh->name || !x) return rc__fail(e, RC_ERR_NOMEM, "out of memory");
+  layout(qt, rc_tensor_numel(st), p->axis, &channels, &inner);
+  for (int64_t i = 0; i < n; i++) {
+    int64_t c = (i / inner) % channels;
+    x[i] = (float)((double)(rc__int_at(qt, i) - zero_point_at(g, dq, c)) * ((const float *)st->data)[c]);
+  }
+  sh->decl.data = x;
+  rc_qat_site s = {dqi, -1, qv, shadow, -1, qt->dtype == RC_DTYPE_INT32, dq->def, NULL, dq->op_type, NULL,
+                   dq->domain, NULL, dq->params, NULL, dq->in[0], dq->n_in};
+  dq->op_type = RC_FAKE_QUANT_OP;
+  dq->domain = RC_TRAINING_DOMAIN;
+  dq->def = fake_quant_def();
+  dq->params = p;
+  dq->in[0] = shadow;
+  return add_site(q, &s, e);
+}
+
+/* QuantizeLinear -> DequantizeLinear: FakeQuantLinear -> Identity. */
+static rc_status rewrite_pair(rc_graph *g, rc_qat *q, int dqi, int qi, rc_err *e) {
+  rc_node *dq = &g->nodes[dqi], *qn = &g->nodes[qi];
+  rc_fake_quant_params *p = fq_params(g, qn, quantize_output_dtype(g, qn), e);
+  if (!p) return e->code;
+  int fw = initializer_in(g, qn, 0);
+  if (fw >= 0 && g->values[fw].decl.dtype != RC_DTYPE_FLOAT) fw = -1;
+  rc_qat_site s = {dqi, qi, -1, -1, fw, 0, dq->def, qn->def, dq->op_type, qn->op_type, dq->domain, qn->domain,
+                   dq->params, qn->params, dq->in[0], dq->n_in};
+  qn->op_type = RC_FAKE_QUANT_OP;
+  qn->domain = RC_TRAINING_DOMAIN;
+  qn->def = fake_quant_def();
+  qn->params = p;
+  dq->op_type = "Identity";
+  dq->domain = "";
+  dq->def = rc__op_find("Identity", "", 13);
+  dq->params = NULL;
+  dq->n_in = 1;
+  return add_site(q, &s, e);
+}
+
+rc_status rc__qat_prepare(rc_graph *g, rc_qat *q, rc_err *e) {
+  memset(q, 0, sizeof *q);
+  int shadows = 0;
+  for (int i = 0; i < g->n_nodes; i++) {
+    const rc_node *n = &g->nodes[i];
+    if (is_op(n, "DequantizeLinear") && initializer_in(g, n, 0) >= 0 && initializer_in(g, n, 1) >= 0 &&
+        rc_dtype_is_integer(g->values[n->in[0]].decl.dtype))
+      shadows++;
+  }
+  if (shadows) RC_TRY(grow_values(g, shadows, e));
+  for (int i = 0; i < g->n_nodes; i++) {
+    const rc_node *n = &g->nodes[i];
+    if (!is_op(n, "DequantizeLinear") || n->in[0] < 0) continue;
+    const rc_value *x = &g->values[n->in[0]];
+    if (x->kind == RC_VALUE_INITIALIZER) {
+      if (initializer_in(g, n, 1) >= 0 && rc_dtype_is_integer(x->decl.dtype)) RC_TRY(rewrite_int_weight(g, q, i, e));
+      continue;
+    }
+    if (x->producer >= 0 && is_op(&g->nodes[x->producer], "QuantizeLinear") &&
+        initializer_in(g, &g->nodes[x->producer], 1) >= 0)
+      RC_TRY(rewrite_pair(g, q, i, x->producer, e));
+  }
+  q->rewritten = 1;
+  return RC_OK;
+}
+
+/* q = clamp(round_half_even(x / s) + z, qmin, qmax), in double so that int32
+ * biases do not lose their low bits. */
+static int64_t quantize_value(float x, float s, int64_t z, int32_t lo, int32_t hi) {
+  double r = rint((double)(x / s)) + (double)z;
+  if (r != r) return z;
+  return r < lo ? lo : r > hi ? hi : (int64_t)r;
+}
+
+static void store_int(rc_tensor *t, int64_t i, int64_t v) {
+  switch (t->dtype) {
+    case RC_DTYPE_INT8: case RC_DTYPE_INT4: ((int8_t *)t->data)[i] = (int8_t)v; break;
+    case RC_DTYPE_UINT8: case RC_DTYPE_UINT4: ((uint8_t *)t->data)[i] = (uint8_t)v; break;
+    case RC_DTYPE_INT16: ((int16_t *)t->data)[i] = (int16_t)v; break;
+    case RC_DTYPE_UINT16: ((uint16_t *)t->data)[i] = (uint16_t)v; break;
+    case RC_DTYPE_INT32: ((int32_t *)t->data)[i] = (int32_t)v; break;
+    default: break;
+  }
+}
+
+rc_status rc__qat_write_back(rc_graph *g, const rc_qat *q, rc_err *e) {
+  for (int k = 0; k < q->n; k++) {
+    const rc_qat_site *s = &q->sites[k];
+    const rc_node *grid = &g->nodes[s->q >= 0 ? s->q : s->dq];
+    const rc_fake_quant_params *p = grid->params;
+    int sv = initializer_in(g, grid, 1);
+    const rc_tensor *st = &g->values[sv].decl;
+    if (s->int_value >= 0) {
+      rc_tensor *qt = &g->values[s->int_value].decl;
+      const float *x = g->values[s->shadow].decl.data;
+      int64_t n = rc_tensor_numel(qt), channels, inner;
+      layout(qt, rc_tensor_numel(st), p->axis, &channels, &inner);
+      for (int64_t i = 0; i < n; i++) {
+        int64_t c = (i / inner) % channels;
+        store_int(qt, i, quantize_value(x[i], ((const float *)st->data)[c], zero_point_at(g, grid, c), p->qmin, p->qmax));
+      }
+    } else if (s->float_weight >= 0) {
+      rc_tensor *wt = &g->values[s->float_weight].decl;
+      int64_t n = rc_tensor_numel(wt), channels, inner;
+      layout(wt, rc_tensor_numel(st), p->axis, &channels, &inner);
+      float *w = wt->data;
+      for (int64_t i = 0; i < n; i++) {
+        int64_t c = (i / inner) % channels;
+        float sc = ((const float *)st->data)[c];
+        int64_t z = zero_point_at(g, grid, c);
+        w[i] = (float)((double)(quantize_value(w[i], sc, z, p->qmin, p->qmax) - z) * sc);
+      }
+    }
+  }
+  (void)e;
+  return RC_OK;
+}
+
+void rc__qat_restore(rc_graph *g, rc_qat *q) {
+  if (!q->rewritten) return;
+  for (int k = 0; k < q->n; k++) {
+    const rc_qat_site *s = &q->sites[k];
+    rc_node *dq = &g->nodes[s->dq];
+    dq->def = s->dq_def;
+    dq->op_type = s->dq_op;
+    dq->domain = s->dq_domain;
+    dq->params = s->dq_params;
+    dq->in[0] = s->dq_in0;
+    dq->n_in = s->dq_n_in;
+    if (s->q >= 0) {
+      rc_node *qn = &g->nodes[s->q];
+      qn->def = s->q_def;
+      qn->op_type = s->q_op;
+      qn->domain = s->q_domain;
+      qn->params = s->q_params;
+    }
+  }
+  q->rewritten = 0;
+}
+
+void rc__qat_free(rc_qat *q) {
+  rc__free(q->sites);
+  memset(q, 0, sizeof *q);
+}

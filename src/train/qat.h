@@ -1,0 +1,48 @@
+/* Training a quantized (QDQ) student on its fixed integer grids.
+ *
+ * For training, the student graph is rewritten in memory (never in the file):
+ * - an integer initializer feeding DequantizeLinear gets a float shadow,
+ *   initialised from its dequantized value, and the DequantizeLinear becomes
+ *   FakeQuantLinear(shadow) on the same scale and zero point;
+ * - a QuantizeLinear -> DequantizeLinear pair (on a float weight or on an
+ *   activation) becomes FakeQuantLinear -> Identity.
+ * Scales, zero points, dtypes and axes are never touched. After training the
+ * shadows are requantized into their integer initializers on the unchanged
+ * grid, float weights feeding QuantizeLinear are snapped to grid values, and
+ * the graph is put back as it was. */
+#ifndef RC_TRAIN_QAT_H
+#define RC_TRAIN_QAT_H
+
+#include "core/status.h"
+#include "graph/ir.h"
+
+typedef struct rc_qat_site {
+  int dq;            /* the DequantizeLinear node */
+  int q;             /* its QuantizeLinear node, -1 for an integer initializer */
+  int int_value;     /* the integer initializer, -1 for a pair */
+  int shadow;        /* the float shadow of int_value, -1 for a pair */
+  int float_weight;  /* a float initializer feeding the pair, -1 otherwise */
+  int is_bias;       /* int32 bias */
+  /* What the rewritten nodes were. */
+  const struct rc_op_def *dq_def, *q_def;
+  const char *dq_op, *q_op, *dq_domain, *q_domain;
+  void *dq_params, *q_params;
+  int dq_in0, dq_n_in;
+} rc_qat_site;
+
+typedef struct rc_qat {
+  rc_qat_site *sites;
+  int n;
+  int rewritten;
+} rc_qat;
+
+/* Rewrite every QDQ site of g for training. Adds shadow values to g. */
+rc_status rc__qat_prepare(rc_graph *g, rc_qat *q, rc_err *e);
+/* Requantize shadows into their integer initializers and snap float weights
+ * feeding QuantizeLinear onto their grids (in the data the graph points at). */
+rc_status rc__qat_write_back(rc_graph *g, const rc_qat *q, rc_err *e);
+/* Put every rewritten node back (idempotent). */
+void rc__qat_restore(rc_graph *g, rc_qat *q);
+void rc__qat_free(rc_qat *q);
+
+#endif
