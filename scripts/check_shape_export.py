@@ -46,6 +46,8 @@ def main():
     if len(sys.argv) != 3:
         sys.exit("usage: check_shape_export.py RECOUP_BIN OUT_DIR")
     recoup, out_dir = sys.argv[1], sys.argv[2]
+    if not os.access(recoup, os.X_OK):
+        sys.exit("recoup binary %s is missing: build the 'recoup' target first" % recoup)
     os.makedirs(out_dir, exist_ok=True)
     torch.manual_seed(7)
     model = ShapeHeavy().eval()
