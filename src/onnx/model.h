@@ -71,6 +71,48 @@ rc_status rc__model_load_unbound(rc_model **out, const char *path, const rc_load
 rc_status rc__write_atomic(const char *path, const void *data, size_t n, rc_err *e);
 
 
+/* ---- Editing the kept message (edit.c) ----
+ * For tools that rewrite a model's structure (quantize). Edits change only
+ * m->proto, the message rc_model_save writes; m->graph keeps describing the
+ * file as it was read (its init_index entries follow removed initializers,
+ * so saving changed initializers still works). The usual flow: read facts
+ * from m->graph, edit, rc_model_edit_sort, rc_model_save(m, path, NULL, 0),
+ * then load the written file to run it. Nodes are addressed by their index
+ * in the message's node list (file order, which edits may change); names are
+ * copied. Lookups are linear scans: for one-off rewrites, not hot loops. */
+
+int rc_model_edit_node_count(const rc_model *m);
+/* Index of the node that outputs `value`, or -1. */
+int rc_model_edit_producer(const rc_model *m, const char *value);
+/* 1 if name is a tensor (input, output, initializer, node input or output) or node name. */
+int rc_model_edit_name_used(const rc_model *m, const char *name);
+/* base, or base_1, base_2, ... : the first name not in use, into buf. */
+rc_status rc_model_edit_unique_name(const rc_model *m, const char *base, char *buf, size_t n, rc_err *e);
+/* Append an initializer holding t (t->dtype is the file's dtype: float32,
+ * integer types, int4/uint4 held one byte per element and packed two per
+ * byte on write). Refuses a name in use and IR versions below 4 (where
+ * initializers must also be graph inputs). */
+rc_status rc_model_edit_add_initializer(rc_model *m, const char *name, const rc_tensor *t, rc_err *e);
+/* Append a node in the default domain (name may be NULL or ""; an input
+ * "" is an absent optional input). Attributes: INT, FLOAT, STRING, INTS. */
+rc_status rc_model_edit_add_node(rc_model *m, const char *op_type, const char *name, const char *const *inputs,
+                                 int n_in, const char *const *outputs, int n_out, const rc_attr *attrs,
+                                 int n_attrs, rc_err *e);
+/* slot may equal the node's input count: appends an optional input. */
+rc_status rc_model_edit_set_input(rc_model *m, int node, int slot, const char *name, rc_err *e);
+/* Refuses a name another node already outputs. */
+rc_status rc_model_edit_set_output(rc_model *m, int node, int slot, const char *name, rc_err *e);
+/* Every node input reading `from` reads `to` instead (graph outputs are
+ * left alone); *count (may be NULL) receives how many were changed. */
+rc_status rc_model_edit_rewire(rc_model *m, const char *from, const char *to, int *count, rc_err *e);
+rc_status rc_model_edit_remove_node(rc_model *m, int node, rc_err *e);
+/* Remove initializers no node or graph output reads (and their graph-input
+ * entries), and value_info entries of names that no longer exist. Returns
+ * the number of initializers removed. */
+int rc_model_edit_drop_unused(rc_model *m);
+/* Reorder nodes topologically (stable: a sorted list is left as it is), as
+ * ONNX requires; refuses cycles and values nobody produces. */
+rc_status rc_model_edit_sort(rc_model *m, rc_err *e);
 
 /* Read one ONNX TensorProto file (*.pb, the format of ONNX's own test data)
  * into a tensor whose data is allocated with rc__malloc and returned in
