@@ -1,0 +1,369 @@
+/* recoup quantize DENSE.onnx --data CALIB --out Q.onnx: post-training
+ * quantization into a QDQ model for users who hold only the dense model. */
+#define _DEFAULT_SOURCE /* realpath */
+#include <cJSON.h>
+#include <getopt.h>
+#include <libgen.h>
+#include <limits.h>
+#include <math.h>
+#include <stdlib.h>
+#include <string.h>
+#include <sys/stat.h>
+#include <unistd.h>
+
+#include "cli/cli.h"
+#include "cli/cli_data.h"
+#include "core/alloc.h"
+#include "graph/plan.h"
+#include "graph/quantize.h"
+#include "onnx/model.h"
+#include "train/evaluate.h"
+
+static void usage(FILE *f) {
+  fprintf(f,
+          "Usage: recoup quantize DENSE.onnx --data CALIB --out QUANTIZED.onnx [OPTIONS]\n"
+          "\n"
+          "Quantize a dense float model after training: BatchNormalization is folded\n"
+          "into the Conv before it, weights go on symmetric per-output-channel integer\n"
+          "grids, and activation ranges are measured by running the float model on the\n"
+          "calibration samples. The result is a QDQ model (integer initializers and\n"
+          "QuantizeLinear/DequantizeLinear pairs) that ONNX runtimes run as is and\n"
+          "integer runtimes fuse into integer kernels; `recoup distill` can fine-tune it.\n"
+          "\n"
+          "Options:\n"
+          "  --data FILE|NAME=FILE    calibration samples (.npy, .npz, IDX, .gz, .pb); repeatable\n"
+          "  --out FILE               the quantized model (never the input)\n"
+          "  --weight-bits 8|4        weight grid: int8 [-127,127] or int4 [-7,7] (default 8)\n"
+          "  --activation-bits 8|none uint8 activation grids, or weights only (default 8)\n"
+          "  --calibration minmax|percentile  activation range (default percentile)\n"
+          "  --percentile P           central share of values kept (default 99.99)\n"
+          "  --batch N                calibration batch size (default 64)\n"
+          "  --scale S, --mean M[,..], --std D[,..]   x' = (x*S - M) / D, as for eval\n"
+          "  --threads N              compute threads (default: all cores)\n"
+          "  --json                   print the summary as one JSON object on stdout\n"
+          "  -h, --help               show this help\n"
+          "\n"
+          "4-bit weights are stored as int4 when the model's opset is 21 or later;\n"
+          "older opsets get int8 tensors holding values in [-7, 7].\n"
+          "The agreement printed is measured on the calibration samples only: validate\n"
+          "the quantized model on your own held-out data before deploying it.\n");
+}
+
+typedef struct quantize_args {
+  const char *model, *out;
+  cli_data_opts data;
+  rc_quant_config cfg;
+  long threads;
+  int json;
+} quantize_args;
+
+enum { OPT_DATA = 256, OPT_OUT, OPT_WBITS, OPT_ABITS, OPT_CALIB, OPT_PCT, OPT_BATCH, OPT_SCALE, OPT_MEAN, OPT_STD,
+       OPT_THREADS, OPT_JSON };
+
+static int apply_option(quantize_args *a, int c, const char *v) {
+  long l;
+  double d;
+  switch (c) {
+    case OPT_DATA:
+      if (a->data.n_data == CLI_MAX_DATA) return cli_usage_error("quantize", "too many --data");
+      a->data.data[a->data.n_data++] = v;
+      return 0;
+    case OPT_OUT: a->out = v; return 0;
+    case OPT_WBITS:
+      if (strcmp(v, "8") && strcmp(v, "4")) return cli_usage_error("quantize", "--weight-bits expects 8 or 4, got '%s'", v);
+      a->cfg.weight_bits = atoi(v);
+      return 0;
+    case OPT_ABITS:
+      if (!strcmp(v, "8")) a->cfg.activation_bits = 8;
+      else if (!strcmp(v, "none")) a->cfg.activation_bits = 0;
+      else return cli_usage_error("quantize", "--activation-bits expects 8 or none, got '%s'", v);
+      return 0;
+    case OPT_CALIB:
+      if (!strcmp(v, "minmax")) a->cfg.calib = RC_CALIB_MINMAX;
+      else if (!strcmp(v, "percentile")) a->cfg.calib = RC_CALIB_PERCENTILE;
+      else return cli_usage_error("quantize", "--calibration expects minmax or percentile, got '%s'", v);
+      return 0;
+    case OPT_PCT:
+      if (cli_parse_float(v, &d) || !(d > 50 && d <= 100))
+        return cli_usage_error("quantize", "--percentile expects a number in (50, 100], got '%s'", v);
+      a->cfg.percentile = d;
+      return 0;
+    case OPT_BATCH:
+      if (cli_parse_int(v, 1, 1 << 16, &l)) return cli_usage_error("quantize", "--batch expects a positive integer, got '%s'", v);
+      a->cfg.batch = l;
+      return 0;
+    case OPT_SCALE: return cli_data_option(&a->data, "quantize", "scale", v);
+    case OPT_MEAN: return cli_data_option(&a->data, "quantize", "mean", v);
+    case OPT_STD: return cli_data_option(&a->data, "quantize", "std", v);
+    case OPT_THREADS:
+      if (cli_parse_int(v, 0, 1024, &l)) return cli_usage_error("quantize", "--threads expects a count, got '%s'", v);
+      a->threads = l;
+      return 0;
+    case OPT_JSON: a->json = 1; return 0;
+  }
+  return cli_usage_error("quantize", "unknown option");
+}
+
+static int parse_args(quantize_args *a, int argc, char **argv) {
+  static const struct option longopts[] = {
+      {"data", required_argument, NULL, OPT_DATA},         {"out", required_argument, NULL, OPT_OUT},
+      {"weight-bits", required_argument, NULL, OPT_WBITS}, {"activation-bits", required_argument, NULL, OPT_ABITS},
+      {"calibration", required_argument, NULL, OPT_CALIB}, {"percentile", required_argument, NULL, OPT_PCT},
+      {"batch", required_argument, NULL, OPT_BATCH},       {"scale", required_argument, NULL, OPT_SCALE},
+      {"mean", required_argument, NULL, OPT_MEAN},         {"std", required_argument, NULL, OPT_STD},
+      {"threads", required_argument, NULL, OPT_THREADS},   {"json", no_argument, NULL, OPT_JSON},
+      {"help", no_argument, NULL, 'h'},                    {NULL, 0, NULL, 0}};
+  memset(a, 0, sizeof *a);
+  cli_data_opts_init(&a->data);
+  rc_quant_config_defaults(&a->cfg);
+  int c;
+  optind = 1;
+  while ((c = getopt_long(argc, argv, "h", longopts, NULL)) != -1) {
+    if (c == 'h') {
+      usage(stdout);
+      return -1;
+    }
+    if (c == '?') return cli_usage_error("quantize", "unknown option");
+    int r = apply_option(a, c, optarg);
+    if (r) return r;
+  }
+  if (optind != argc - 1) return cli_usage_error("quantize", "expects exactly one DENSE.onnx");
+  a->model = argv[optind];
+  if (!a->data.n_data || !a->out) return cli_usage_error("quantize", "--data and --out are required");
+  if (a->data.labels) return cli_usage_error("quantize", "calibration needs no labels");
+  return 0;
+}
+
+/* Resolved path of a file that may not exist yet: its folder resolved, its name appended. */
+static int resolve_out(const char *out, char *buf) {
+  if (realpath(out, buf)) return 1;
+  char d[PATH_MAX], b[PATH_MAX], r[PATH_MAX];
+  snprintf(d, sizeof d, "%s", out);
+  snprintf(b, sizeof b, "%s", out);
+  if (!realpath(dirname(d), r)) return 0;
+  return snprintf(buf, PATH_MAX, "%s/%s", r, basename(b)) < PATH_MAX;
+}
+
+static rc_status check_output_path(const quantize_args *a, rc_err *e) {
+  char out[PATH_MAX], in[PATH_MAX];
+  if (!resolve_out(a->out, out)) return rc__fail(e, RC_ERR_IO, "--out %s: its folder does not exist", a->out);
+  const char *inputs[1 + CLI_MAX_DATA];
+  int n = 0;
+  inputs[n++] = a->model;
+  for (int i = 0; i < a->data.n_data; i++) {
+    const char *eq = strchr(a->data.data[i], '=');
+    inputs[n++] = eq && access(a->data.data[i], F_OK) != 0 ? eq + 1 : a->data.data[i];
+  }
+  for (int i = 0; i < n; i++)
+    if (realpath(inputs[i], in) && !strcmp(in, out))
+      return rc__fail(e, RC_ERR_INVALID, "--out %s is the input file %s: refusing to overwrite an input", a->out,
+                      inputs[i]);
+  char d[PATH_MAX];
+  snprintf(d, sizeof d, "%s", a->out);
+  if (access(dirname(d), W_OK) != 0) return rc__fail(e, RC_ERR_IO, "--out %s: its folder is not writable", a->out);
+  return RC_OK;
+}
+
+/* The first output of a graph over every sample: owned buffer of n * per floats. */
+typedef struct first_output {
+  float *data;
+  int64_t per;   /* floats per sample */
+  int64_t k;     /* classes when the output is (N, K), else 0 */
+} first_output;
+
+static rc_status run_first_output(first_output *o, const rc_graph *g, const cli_samples *s, const rc_dataset *d,
+                                  int64_t batch, rc_err *e) {
+  memset(o, 0, sizeof *o);
+  rc_tensor shapes[CLI_MAX_DATA];
+  cli_samples_shapes(s, batch, shapes);
+  rc_plan *p = NULL;
+  RC_TRY(rc_plan_create(&p, g, shapes, NULL, e));
+  const rc_tensor *t = rc_plan_tensor(p, g->outputs[0]);
+  rc_status st = RC_OK;
+  if (t->dtype != RC_DTYPE_FLOAT || t->rank < 1 || t->dims[0] != batch)
+    st = rc__fail(e, RC_ERR_SHAPE, "%s: first output '%s' is not float32 with the batch first", g->path,
+                  g->values[g->outputs[0]].name);
+  if (st == RC_OK) {
+    o->per = rc_tensor_numel(t) / batch;
+    o->k = t->rank == 2 ? t->dims[1] : 0;
+    o->data = rc__malloc(sizeof(float) * (size_t)(o->per * s->n) + 1);
+    if (!o->data) st = rc__fail(e, RC_ERR_NOMEM, "out of memory for the outputs of %s", g->path);
+  }
+  if (st == RC_OK) {
+    void *outs[1] = {o->data};
+    st = rc__run_dataset(p, d, g->outputs, 1, outs, e);
+  }
+  rc_plan_free(p);
+  return st;
+}
+
+typedef struct comparison {
+  int have_metrics;
+  rc_metrics m;
+  double max_abs_diff;
+} comparison;
+
+/* Reload the written file (so what is reported is the file), run it and the
+ * float model on the calibration samples and compare their first outputs. */
+static rc_status verify_written(comparison *c, const char *out, const rc_graph *dense, const cli_samples *s,
+                                const rc_dataset *d, int64_t batch, rc_err *e) {
+  memset(c, 0, sizeof *c);
+  rc_model *q = NULL;
+  first_output fo = {0}, qo = {0};
+  rc_status st = rc_model_load(&q, out, NULL, e);
+  if (st != RC_OK) rc__wrap(e, "the written model does not load back");
+  if (st == RC_OK) st = run_first_output(&fo, dense, s, d, batch, e);
+  if (st == RC_OK) st = run_first_output(&qo, &q->graph, s, d, batch, e);
+  if (st == RC_OK && qo.per != fo.per)
+    st = rc__fail(e, RC_ERR_SHAPE, "%s: first output has %lld values per sample, the float model %lld", out,
+                  (long long)qo.per, (long long)fo.per);
+  for (int64_t i = 0; st == RC_OK && i < fo.per * s->n; i++) {
+    double diff = fabs((double)qo.data[i] - fo.data[i]);
+    if (!(diff == diff))
+      st = rc__fail(e, RC_ERR_NUMERIC, "%s: output value %lld is not finite", out, (long long)i);
+    else if (diff > c->max_abs_diff)
+      c->max_abs_diff = diff;
+  }
+  if (st == RC_OK && fo.k > 1) {
+    st = rc__metrics_compute(&c->m, qo.data, NULL, fo.data, s->n, fo.k, e);
+    c->have_metrics = st == RC_OK;
+  }
+  rc__free(fo.data);
+  rc__free(qo.data);
+  rc_model_free(q);
+  return st;
+}
+
+static long long file_size(const char *path) {
+  struct stat st;
+  return stat(path, &st) == 0 ? (long long)st.st_size : -1;
+}
+
+static const char *bias_text(int b) { return b == 2 ? "int32" : b == 1 ? "float" : "-"; }
+
+static void print_json(const quantize_args *a, const rc_quant_report *r, const comparison *c, long long before,
+                       long long after) {
+  cJSON *root = cJSON_CreateObject();
+  cJSON_AddStringToObject(root, "model", a->model);
+  cJSON_AddStringToObject(root, "out", a->out);
+  cJSON_AddNumberToObject(root, "weight_bits", a->cfg.weight_bits);
+  cJSON_AddStringToObject(root, "weight_dtype", rc_dtype_name(r->weight_dtype));
+  cJSON_AddBoolToObject(root, "int4_stored_as_int8", r->int4_as_int8);
+  if (a->cfg.activation_bits) cJSON_AddNumberToObject(root, "activation_bits", a->cfg.activation_bits);
+  else cJSON_AddNullToObject(root, "activation_bits");
+  cJSON_AddStringToObject(root, "calibration", a->cfg.calib == RC_CALIB_MINMAX ? "minmax" : "percentile");
+  if (a->cfg.calib == RC_CALIB_PERCENTILE) cJSON_AddNumberToObject(root, "percentile", a->cfg.percentile);
+  cJSON_AddNumberToObject(root, "calibration_samples", (double)r->calib_samples);
+  cJSON_AddNumberToObject(root, "bn_folded", r->n_bn_folded);
+  cJSON_AddNumberToObject(root, "biases_float", r->n_bias_float);
+  cJSON *layers = cJSON_AddArrayToObject(root, "layers");
+  for (int i = 0; i < r->n_layers; i++) {
+    const rc_quant_layer *L = &r->layers[i];
+    cJSON *o = cJSON_CreateObject();
+    cJSON_AddStringToObject(o, "name", L->name);
+    cJSON_AddStringToObject(o, "op", L->op_type);
+    cJSON_AddNumberToObject(o, "channels", (double)L->channels);
+    cJSON_AddNumberToObject(o, "axis", L->axis);
+    cJSON_AddNumberToObject(o, "scale_min", L->scale_min);
+    cJSON_AddNumberToObject(o, "scale_max", L->scale_max);
+    cJSON_AddBoolToObject(o, "bn_folded", L->bn_folded);
+    if (L->bias) cJSON_AddStringToObject(o, "bias", bias_text(L->bias));
+    else cJSON_AddNullToObject(o, "bias");
+    cJSON_AddItemToArray(layers, o);
+  }
+  cJSON *grids = cJSON_AddArrayToObject(root, "activation_grids");
+  for (int i = 0; i < r->n_grids; i++) {
+    const rc_quant_grid *g = &r->grids[i];
+    cJSON *o = cJSON_CreateObject();
+    cJSON_AddStringToObject(o, "tensor", g->tensor);
+    cJSON_AddNumberToObject(o, "min", g->lo);
+    cJSON_AddNumberToObject(o, "max", g->hi);
+    cJSON_AddNumberToObject(o, "scale", g->scale);
+    cJSON_AddNumberToObject(o, "zero_point", g->zero_point);
+    cJSON_AddItemToArray(grids, o);
+  }
+  cJSON_AddNumberToObject(root, "bytes_before", (double)before);
+  cJSON_AddNumberToObject(root, "bytes_after", (double)after);
+  cJSON_AddNumberToObject(root, "max_abs_output_diff", c->max_abs_diff);
+  if (c->have_metrics) {
+    cJSON_AddNumberToObject(root, "top1_agreement", c->m.agreement);
+    cJSON_AddNumberToObject(root, "mean_kl_float_to_quantized", c->m.kl);
+  }
+  char *text = cJSON_Print(root);
+  if (text) puts(text);
+  free(text);
+  cJSON_Delete(root);
+}
+
+static void print_table(const quantize_args *a, const rc_quant_report *r, const comparison *c, long long before,
+                        long long after) {
+  char b1[32], b2[32];
+  printf("quantized %s -> %s\n", a->model, a->out);
+  printf("weights      %d-bit symmetric per channel, stored as %s%s\n", a->cfg.weight_bits,
+         rc_dtype_name(r->weight_dtype),
+         r->int4_as_int8 ? " (opset below 21 has no int4: values kept in [-7, 7] on int8 tensors)" : "");
+  if (a->cfg.activation_bits)
+    printf("activations  uint8 per tensor, %d grids, %s calibration on %lld samples\n", r->n_grids,
+           a->cfg.calib == RC_CALIB_MINMAX ? "min/max" : "percentile", (long long)r->calib_samples);
+  else
+    printf("activations  float (weights only)\n");
+  printf("BatchNormalization folded into Conv: %d\n\n", r->n_bn_folded);
+  printf("  %-28s %-14s %8s %12s %12s %6s\n", "layer", "op", "channels", "scale min", "scale max", "bias");
+  for (int i = 0; i < r->n_layers; i++) {
+    const rc_quant_layer *L = &r->layers[i];
+    printf("  %-28.28s %-14s %8lld %12.4g %12.4g %6s%s\n", L->name, L->op_type, (long long)L->channels, L->scale_min,
+           L->scale_max, bias_text(L->bias), L->bn_folded ? "  (BN folded)" : "");
+  }
+  if (r->n_grids) {
+    printf("\n  %-40s %11s %11s %11s %5s\n", "activation tensor", "min", "max", "scale", "zero");
+    for (int i = 0; i < r->n_grids; i++) {
+      const rc_quant_grid *g = &r->grids[i];
+      printf("  %-40.40s %11.4g %11.4g %11.4g %5d\n", g->tensor, g->lo, g->hi, g->scale, g->zero_point);
+    }
+  }
+  printf("\nfile size    %s -> %s bytes\n", cli_group_digits(before, b1, sizeof b1), cli_group_digits(after, b2, sizeof b2));
+  if (c->have_metrics)
+    printf("vs float     top-1 agreement %.2f%%, mean KL(float||quantized) %.6f (calibration samples)\n",
+           100 * c->m.agreement, c->m.kl);
+  printf("             largest output difference %.4g\n", c->max_abs_diff);
+  printf("Validate on your own held-out data before deploying: these figures hold only for\nthe samples measured.\n");
+}
+
+int rc_cmd_quantize(int argc, char **argv) {
+  quantize_args a;
+  int pr = parse_args(&a, argc, argv);
+  if (pr) return pr < 0 ? RC_EXIT_OK : pr;
+  cli_set_threads((int)a.threads);
+  rc_err e = {0};
+  cli_samples s;
+  rc_dataset d;
+  memset(&s, 0, sizeof s);
+  memset(&d, 0, sizeof d);
+  rc_quant_report rep;
+  memset(&rep, 0, sizeof rep);
+  rc_model *m = NULL;
+  int rc = RC_EXIT_FAIL, written = 0;
+  comparison cmp;
+  if (check_output_path(&a, &e) != RC_OK) goto out;
+  if (rc_model_load(&m, a.model, NULL, &e) != RC_OK) goto out;
+  if (cli_samples_load(&s, &a.data, &m->graph, &e) != RC_OK) goto out;
+  if (cli_samples_dataset(&d, &s, NULL, 0, &e) != RC_OK) goto out;
+  if (rc_quantize_model(m, &d, &a.cfg, &rep, &e) != RC_OK) goto out;
+  if (rc_model_save(m, a.out, NULL, 0, &e) != RC_OK) goto out;
+  written = 1;
+  int64_t batch = a.cfg.batch < s.n ? a.cfg.batch : s.n;
+  if (verify_written(&cmp, a.out, &m->graph, &s, &d, batch, &e) != RC_OK) goto out;
+  if (a.json) print_json(&a, &rep, &cmp, (long long)m->file_bytes, file_size(a.out));
+  else print_table(&a, &rep, &cmp, (long long)m->file_bytes, file_size(a.out));
+  rc = RC_EXIT_OK;
+out:
+  if (rc != RC_EXIT_OK) {
+    if (written && unlink(a.out) == 0) rc__wrap(&e, "removed %s, which failed its check", a.out);
+    cli_fail(&e);
+  }
+  rc_quant_report_free(&rep);
+  rc_dataset_free(&d);
+  cli_samples_free(&s);
+  rc_model_free(m);
+  return rc;
+}
