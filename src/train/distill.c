@@ -1,3 +1,5 @@
+#define _POSIX_C_SOURCE 200809L /* clock_gettime, CLOCK_MONOTONIC under -std=c11 */
+
 #include "train/distill.h"
 
 #include <errno.h>
