@@ -437,6 +437,7 @@ static void print_results(const distill_args *a, const rc_distill_result *r, dou
     cJSON_AddNumberToObject(root, "trainable_values", (double)r->n_trainable);
     cJSON_AddNumberToObject(root, "pruned_zeros_kept", (double)r->n_frozen_zeros);
     cJSON_AddBoolToObject(root, "masks_intact", r->mask_ok);
+    cJSON_AddNumberToObject(root, "quantized_weights_rewritten", r->n_grids);
     cJSON_AddNumberToObject(root, "rollbacks", r->rollbacks);
     cJSON_AddNumberToObject(root, "reload_max_diff", verify_diff);
     cJSON *hist = cJSON_AddArrayToObject(root, "epochs");
@@ -462,6 +463,9 @@ static void print_results(const distill_args *a, const rc_distill_result *r, dou
          r->seconds, r->samples_per_s, cli_group_digits(r->n_trainable, b1, sizeof b1), r->n_trainable_tensors);
   printf("masks: %s pruned entries checked, all still exactly zero\n",
          cli_group_digits(r->n_frozen_zeros, b2, sizeof b2));
+  if (r->n_grids)
+    printf("grids: %d quantized weights rewritten on their unchanged grids (scales, zero points, dtypes, axes)\n",
+           r->n_grids);
   if (r->improved)
     printf("wrote %s (best epoch %lld; reloaded and checked: outputs identical)\n", a->out, (long long)r->best_epoch);
   else
