@@ -28,6 +28,7 @@
 #include <unistd.h>
 
 #include "core/alloc.h"
+#include "graph/inspect.h"
 #include "graph/plan.h"
 #include "onnx/model.h"
 #include "test.h"
@@ -58,6 +59,7 @@ enum { OUT_PASS = 0, OUT_SKIP = 1, OUT_FAIL = 2, OUT_BAD_DATA = 3 };
 typedef struct case_result {
   int outcome;
   int bound;         /* ran with its graph inputs bound as constants (see bind_inputs) */
+  int grad_checked;  /* its reverse pass was compared with finite differences */
   char reason[200];  /* skips: the refusal, with file and node names removed */
   char detail[1200]; /* the full message, or the worst element of a mismatch */
 } case_result;
@@ -318,6 +320,93 @@ static int forward_and_compare(rc_plan *p, const rc_graph *g, data_set *s, const
   return OUT_PASS;
 }
 
+/* Fixed weights in [-1, 1] for the loss and the perturbation direction. */
+static double pattern(int64_t i, int salt) { return (double)((i * 7919 + salt * 104729) % 13 - 6) / 6.0; }
+
+/* L = sum over the float outputs that carry a gradient of pattern . output,
+ * accumulated in double. */
+static double weighted_loss(rc_plan *p, const rc_graph *g) {
+  double l = 0;
+  for (int k = 0; k < g->n_outputs; k++) {
+    const rc_tensor *t = rc_plan_tensor(p, g->outputs[k]);
+    if (t->dtype != RC_DTYPE_FLOAT || !rc_plan_grad(p, g->outputs[k])) continue;
+    int64_t n = rc_tensor_numel(t);
+    for (int64_t i = 0; i < n; i++) l += pattern(i, k) * ((const float *)t->data)[i];
+  }
+  return l;
+}
+
+/* The reverse pass of a training plan against central differences of the
+ * whole graph along one direction d over every trainable weight:
+ * sum(grad . d) ~ (L(w + h d) - L(w - h d)) / 2h, the loss weighting the
+ * outputs with a fixed pattern. Kernels' own gradients are checked op by
+ * op in test_ops_*; this checks how the planner chains them (fan-out,
+ * broadcasting, folded constants in between) on real graphs. */
+static int check_gradients(rc_plan *p, const rc_graph *g, const unsigned char *trainable, const char *what,
+                           case_result *r) {
+  rc_err e = {0};
+  char msg[600];
+  int any_out = 0;
+  rc_plan_zero_grad(p);
+  for (int k = 0; k < g->n_outputs; k++) {
+    rc_tensor *gt = rc_plan_grad(p, g->outputs[k]);
+    const rc_tensor *t = rc_plan_tensor(p, g->outputs[k]);
+    if (!gt || t->dtype != RC_DTYPE_FLOAT) continue;
+    int64_t n = rc_tensor_numel(gt);
+    for (int64_t i = 0; i < n; i++) {
+      float v = ((const float *)t->data)[i];
+      if (!isfinite(v)) return OUT_PASS; /* no derivative to check through inf/NaN */
+      ((float *)gt->data)[i] = (float)pattern(i, k);
+    }
+    any_out = 1;
+  }
+  if (!any_out) return OUT_PASS;
+  if (rc_plan_backward(p, &e) != RC_OK) return fail(r, "%s: backward: %s", what, e.msg);
+  double analytic = 0, scale = 0;
+  for (int v = 0; v < g->n_values; v++) {
+    if (!trainable[v]) continue;
+    const rc_tensor *gt = rc_plan_grad(p, v);
+    if (!gt) continue;
+    int64_t n = rc_tensor_numel(gt);
+    for (int64_t i = 0; i < n; i++) {
+      double gv = ((const float *)gt->data)[i];
+      if (!isfinite(gv)) {
+        snprintf(msg, sizeof msg, "%s: gradient of '%.200s' is not finite at %lld", what, g->values[v].name,
+                 (long long)i);
+        return fail(r, "%s%s", msg, "");
+      }
+      analytic += gv * pattern(i, v);
+      scale += fabs(gv * pattern(i, v));
+    }
+  }
+  /* A step of 1e-3 along d; central differences of a float32 forward
+   * agree to about 1e-4 of sum|grad . d| on these graphs (measured), so
+   * 2e-3 leaves room and still catches a gradient off by a percent. */
+  double losses[2];
+  for (int side = 0; side < 2; side++) {
+    for (int v = 0; v < g->n_values; v++) {
+      if (!trainable[v] || !rc_plan_grad(p, v)) continue;
+      float *w = g->values[v].decl.data;
+      int64_t n = rc_tensor_numel(&g->values[v].decl);
+      for (int64_t i = 0; i < n; i++) w[i] += (float)((side ? -2e-3 : 1e-3) * pattern(i, v));
+    }
+    if (rc_plan_forward(p, &e) != RC_OK) return fail(r, "%s: forward in the gradient check: %s", what, e.msg);
+    losses[side] = weighted_loss(p, g);
+  }
+  for (int v = 0; v < g->n_values; v++) {
+    if (!trainable[v] || !rc_plan_grad(p, v)) continue;
+    float *w = g->values[v].decl.data;
+    int64_t n = rc_tensor_numel(&g->values[v].decl);
+    for (int64_t i = 0; i < n; i++) w[i] += (float)(1e-3 * pattern(i, v));
+  }
+  double numeric = (losses[0] - losses[1]) / 2e-3;
+  r->grad_checked = 1;
+  if (fabs(numeric - analytic) <= 2e-3 * fmax(scale, 1e-3) + 1e-4) return OUT_PASS;
+  snprintf(msg, sizeof msg, "%s: backward disagrees with central differences: sum(grad . d) = %.6g, "
+           "numeric %.6g (scale %.3g)", what, analytic, numeric, scale);
+  return fail(r, "%s%s", msg, "");
+}
+
 /* A plan built with opts at the data set's shapes, run twice (a second run
  * catches kernels that depend on what the previous batch left behind). */
 static int run_plan(const rc_graph *g, data_set *s, const rc_plan_opts *opts, const char *what,
@@ -345,13 +434,16 @@ static int run_plan(const rc_graph *g, data_set *s, const rc_plan_opts *opts, co
     snprintf(label, sizeof label, "%s%s", what, run ? ", second run" : "");
     result = forward_and_compare(p, g, s, label, r);
   }
+  if (result == OUT_PASS && opts && opts->training && opts->trainable)
+    result = check_gradients(p, g, opts->trainable, what, r);
   rc_plan_free(p);
   return result;
 }
 
 /* One data set: an inference plan, then a training plan (which keeps every
- * activation and gives kernels their saved-state buffers) at the same
- * shapes; both must give the expected outputs. */
+ * activation, gives kernels their saved-state buffers and leaves the layer
+ * weights live) at the same shapes; both must give the expected outputs,
+ * and the training plan's reverse pass must agree with finite differences. */
 static int run_data_set(rc_model *m, const char *set_dir, const char *set_name, case_result *r) {
   rc_graph *g = &m->graph;
   rc_err e = {0};
@@ -400,11 +492,27 @@ static int run_data_set(rc_model *m, const char *set_dir, const char *set_name, 
     result = run_plan(g, &s, NULL, what, r, &e);
   }
   if (result == OUT_PASS) {
+    /* The weights distillation trains by default (float weights of Conv,
+     * Gemm, MatMul, PRelu and normalisation layers) become trainable, so
+     * they stay live instead of folding, as in a distillation run. */
+    unsigned char *trainable = rc__calloc((size_t)g->n_values + 1, 1);
+    rc_weight_info *w = NULL;
+    int n_w = 0;
+    if (!trainable || rc__weights_collect(g, &w, &n_w, &e) != RC_OK) {
+      rc__free(trainable);
+      data_set_free(&s);
+      return fail(r, "%s: cannot collect the weights: %s", set_name, e.msg);
+    }
+    for (int i = 0; i < n_w; i++)
+      if (!w[i].quantized && g->values[w[i].value].decl.dtype == RC_DTYPE_FLOAT) trainable[w[i].value] = 1;
+    rc__free(w);
     rc_plan_opts train = {0};
     train.training = 1;
+    train.trainable = trainable;
     char twhat[340];
     snprintf(twhat, sizeof twhat, "%s, training plan", what);
     result = run_plan(g, &s, &train, twhat, r, &e);
+    rc__free(trainable);
     if (result == OUT_SKIP) { /* refused only for training: not a refusal of the case */
       snprintf(msg, sizeof msg, "%s", e.msg);
       result = fail(r, "%s: plan: %s", twhat, msg);
@@ -548,7 +656,7 @@ static void run_case_isolated(const char *case_dir, case_result *r) {
 
 #define MAX_REASONS 512
 typedef struct tally {
-  int ran, passed, skipped, failed, no_data, bad_data, bound, not_converted;
+  int ran, passed, skipped, failed, no_data, bad_data, bound, not_converted, grad_checked;
   int n_reasons;
   char reasons[MAX_REASONS][200];
   int reason_count[MAX_REASONS];
@@ -630,6 +738,7 @@ static int run_suite(const char *root, const char *suite, const char *title, int
     if (r.outcome == OUT_PASS) {
       t->passed++;
       t->bound += r.bound;
+      t->grad_checked += r.grad_checked;
       if (verbose) printf("  pass  %s/%s%s\n", title, cases[i], r.bound ? " (inputs bound as constants)" : "");
     } else if (r.outcome == OUT_SKIP) {
       t->skipped++;
@@ -648,6 +757,7 @@ static int run_suite(const char *root, const char *suite, const char *title, int
   printf("%s: ran %d, passed %d, skipped %d (unsupported), failed %d", title, t->ran, t->passed, t->skipped,
          t->failed);
   if (t->bound) printf(" (%d of the passes with graph inputs bound as plan-time constants)", t->bound);
+  if (t->grad_checked) printf("; %d passes include a reverse-pass check", t->grad_checked);
   if (t->not_converted) printf("; %d models the version converter could not upgrade", t->not_converted);
   if (t->no_data) printf("; %d folders without model.onnx or test data not counted", t->no_data);
   if (t->bad_data) printf("; %d cases not run: their data contradicts the model (listed above)", t->bad_data);
