@@ -287,8 +287,13 @@ static rc_status layout_memory(rc_plan *p, const rc_plan_opts *o, rc_err *e) {
   }
   p->block_bytes = total;
   unsigned char *base = (unsigned char *)(((uintptr_t)p->block + ALIGN - 1) & ~(uintptr_t)(ALIGN - 1));
-  for (int v = 0; v < nv; v++)
+  for (int v = 0; v < nv; v++) {
     if (sl[v].size) p->t[v].data = base + sl[v].offset;
+    /* An empty activation still gets a valid address (of no bytes), so
+     * kernels may offset and memcpy it by zero without special cases. */
+    else if (sl[v].first >= 0 && g->values[v].kind != RC_VALUE_INITIALIZER && !p->is_const[v])
+      p->t[v].data = base;
+  }
   unsigned char *cur = base + act;
   for (int s = 0; s < p->n_steps; s++) {
     const rc_node *n = &g->nodes[p->steps[s].node];
