@@ -9,18 +9,26 @@
 #include "graph/inspect.h"
 #include "graph/plan.h"
 #include "onnx/model.h"
+#include "train/pairing.h"
 
 static void usage(FILE *f) {
   fprintf(f,
           "Usage: recoup inspect MODEL.onnx [--json]\n"
+          "       recoup inspect --pairs DENSE.onnx STUDENT.onnx [--pair T=S ...] [--json]\n"
           "\n"
           "Show a model's inputs and outputs (shapes, dtypes), IR version and opset,\n"
           "op counts, parameter count, per-tensor weight sparsity with any N:M pattern,\n"
           "quantization grids (dtype, scale, zero point, axis) and multiply-accumulates\n"
           "for a batch of one.\n"
           "\n"
+          "With --pairs: the teacher and student tensors feature losses would match\n"
+          "(automatic pairing, or the --pair overrides), with their shapes at batch 1\n"
+          "and whether a projector bridges different widths.\n"
+          "\n"
           "Options:\n"
           "  --json      print one JSON object on stdout instead of tables\n"
+          "  --pairs     show the pairing of two models\n"
+          "  --pair T=S  pair teacher tensor T with student tensor S (repeatable)\n"
           "  -h, --help  show this help\n");
 }
 
@@ -40,16 +48,24 @@ static int count_ops(const rc_graph *g, op_count *counts) {
   return n;
 }
 
-/* Plan at batch 1 (every symbolic dim taken as 1) and add up MACs. */
-static int64_t macs_batch_one(const rc_graph *g, rc_err *e) {
+/* Input shapes at batch 1: every symbolic dim taken as 1. */
+static rc_tensor *batch_one_shapes(const rc_graph *g) {
   rc_tensor *ins = rc__calloc((size_t)g->n_inputs + 1, sizeof(rc_tensor));
-  if (!ins) return -1;
+  if (!ins) return NULL;
   for (int i = 0; i < g->n_inputs; i++) {
     ins[i] = g->values[g->inputs[i]].decl;
+    ins[i].data = NULL;
     if (ins[i].rank < 0) ins[i].rank = 0;
     for (int d = 0; d < ins[i].rank; d++)
       if (ins[i].dims[d] < 0) ins[i].dims[d] = 1;
   }
+  return ins;
+}
+
+/* Plan at batch 1 and add up MACs. */
+static int64_t macs_batch_one(const rc_graph *g, rc_err *e) {
+  rc_tensor *ins = batch_one_shapes(g);
+  if (!ins) return -1;
   rc_plan *p = NULL;
   int64_t total = -1;
   if (rc_plan_create(&p, g, ins, NULL, e) == RC_OK) {
@@ -236,19 +252,80 @@ static void print_tables(const rc_model *m, const op_count *ops, int n_ops, cons
   }
 }
 
+static int inspect_pairs(const char *tpath, const char *spath, const char *const *pairs, int n_pairs, int json) {
+  rc_err e = {0};
+  rc_model *t = NULL, *s = NULL;
+  rc_pairing pg = {0};
+  rc_tensor *ins = NULL;
+  int rc = RC_EXIT_FAIL;
+  if (rc_model_load(&t, tpath, NULL, &e) != RC_OK || rc_model_load(&s, spath, NULL, &e) != RC_OK) goto out;
+  if (!(ins = batch_one_shapes(&s->graph))) goto out;
+  if (rc_pairing_make(&pg, &t->graph, &s->graph, ins, pairs, n_pairs, 1, &e) != RC_OK) goto out;
+  if (json) {
+    cJSON *arr = cJSON_CreateArray();
+    for (int i = 0; i < pg.n; i++) {
+      const rc_pair *p = &pg.pairs[i];
+      cJSON *o = cJSON_CreateObject();
+      cJSON_AddStringToObject(o, "teacher", t->graph.values[p->teacher].name);
+      cJSON_AddStringToObject(o, "student", s->graph.values[p->student].name);
+      cJSON_AddItemToObject(o, "teacher_shape", shape_json(&p->t_shape));
+      cJSON_AddItemToObject(o, "student_shape", shape_json(&p->s_shape));
+      cJSON_AddStringToObject(o, "matched_by", p->explicit_pair ? "given" : p->by_name ? "name" : "position");
+      cJSON_AddBoolToObject(o, "projector", rc_pair_needs_projector(p));
+      cJSON_AddItemToArray(arr, o);
+    }
+    char *text = cJSON_Print(arr);
+    if (text) puts(text);
+    free(text);
+    cJSON_Delete(arr);
+  } else {
+    printf("%-32s %-18s %-32s %-18s %-9s %s\n", "teacher tensor", "shape", "student tensor", "shape", "matched",
+           "projector");
+    for (int i = 0; i < pg.n; i++) {
+      const rc_pair *p = &pg.pairs[i];
+      char a[96], b[96];
+      printf("%-32s %-18s %-32s %-18s %-9s %s\n", t->graph.values[p->teacher].name, rc_shape_str(&p->t_shape, a, sizeof a),
+             s->graph.values[p->student].name, rc_shape_str(&p->s_shape, b, sizeof b),
+             p->explicit_pair ? "given" : p->by_name ? "name" : "position", rc_pair_needs_projector(p) ? "yes" : "no");
+    }
+    if (!pg.n) printf("no pairs: give them with --pair TEACHER_TENSOR=STUDENT_TENSOR\n");
+  }
+  rc = RC_EXIT_OK;
+out:
+  if (rc != RC_EXIT_OK) cli_fail(&e);
+  rc_pairing_free(&pg);
+  rc__free(ins);
+  rc_model_free(t);
+  rc_model_free(s);
+  return rc;
+}
+
 int rc_cmd_inspect(int argc, char **argv) {
-  static const struct option longopts[] = {
-      {"json", no_argument, NULL, 'j'}, {"help", no_argument, NULL, 'h'}, {NULL, 0, NULL, 0}};
-  int json = 0, c;
+  static const struct option longopts[] = {{"json", no_argument, NULL, 'j'},
+                                           {"pairs", no_argument, NULL, 'p'},
+                                           {"pair", required_argument, NULL, 'P'},
+                                           {"help", no_argument, NULL, 'h'},
+                                           {NULL, 0, NULL, 0}};
+  int json = 0, want_pairs = 0, n_pairs = 0, c;
+  const char *pairs[64];
   optind = 1;
   while ((c = getopt_long(argc, argv, "h", longopts, NULL)) != -1) {
     if (c == 'j') json = 1;
-    else if (c == 'h') {
+    else if (c == 'p') want_pairs = 1;
+    else if (c == 'P') {
+      if (n_pairs == 64) return cli_usage_error("inspect", "too many --pair");
+      pairs[n_pairs++] = optarg;
+    } else if (c == 'h') {
       usage(stdout);
       return RC_EXIT_OK;
     } else
       return cli_usage_error("inspect", "unknown option");
   }
+  if (want_pairs) {
+    if (optind != argc - 2) return cli_usage_error("inspect", "--pairs expects DENSE.onnx STUDENT.onnx");
+    return inspect_pairs(argv[optind], argv[optind + 1], pairs, n_pairs, json);
+  }
+  if (n_pairs) return cli_usage_error("inspect", "--pair needs --pairs");
   if (optind != argc - 1) return cli_usage_error("inspect", "expects exactly one MODEL.onnx");
   rc_err e = {0};
   rc_model *m = NULL;
