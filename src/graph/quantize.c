@@ -89,6 +89,8 @@ typedef struct layer_plan {
   const char *w_name;
   float *b;       /* bias (C): initializer data, folded copy, or NULL */
   int b_value;    /* bias initializer, -1 when none (or folded) */
+  const char *b_name; /* name new bias tensors derive from */
+  int bias_other;     /* a bias not of one value per channel, left as it is */
   int bn;         /* folded BatchNormalization node, -1 if none */
   int in_value;   /* data input */
   int out_value;  /* output after a folded BN and a fused activation */
@@ -231,9 +233,16 @@ static rc_status plan_layer(qstate *q, int ni) {
   const rc_value *bias = is_op(n, "MatMul") ? NULL : float_init(g, n, 2);
   L->b = bias ? bias->decl.data : NULL;
   L->b_value = bias ? n->in[2] : -1;
+  L->b_name = bias ? bias->name : NULL;
   L->bn = foldable_bn(q, n, L->channels);
   if (bias && L->bn >= 0 && rc_tensor_numel(&bias->decl) != L->channels) L->bn = -1;
   if (n->n_in > 2 && n->in[2] >= 0 && !bias) L->bn = -1; /* a computed bias cannot be folded into */
+  if (bias && rc_tensor_numel(&bias->decl) != L->channels) { /* a broadcast bias stays float, untouched */
+    L->b = NULL;
+    L->b_value = -1;
+    L->b_name = NULL;
+    L->bias_other = 1;
+  }
   L->out_value = n->out[0];
   if (L->bn >= 0) {
     RC_TRY(fold_layer(q, L, bias));
@@ -444,7 +453,7 @@ static rc_status apply_folds(qstate *q) {
 
 static rc_status add_float_bias(qstate *q, layer_plan *L, int node) {
   char name[512];
-  RC_TRY(unique(q, L->w_name, "bias_folded", name, sizeof name));
+  RC_TRY(unique(q, L->b_name ? L->b_name : L->w_name, L->b_name ? "folded" : "bias_folded", name, sizeof name));
   rc_tensor t = {RC_DTYPE_FLOAT, 1, {L->channels}, L->b};
   RC_TRY(rc_model_edit_add_initializer(q->m, name, &t, q->e));
   return rc_model_edit_set_input(q->m, node, 2, name, q->e);
@@ -453,8 +462,7 @@ static rc_status add_float_bias(qstate *q, layer_plan *L, int node) {
 /* int32 bias on the accumulator's grid; 0 when a value would overflow int32. */
 static rc_status add_int_bias(qstate *q, layer_plan *L, int node, const float *w_scale, float in_scale, int *done) {
   *done = 0;
-  const rc_node *n = &q->g->nodes[L->node];
-  int rank = L->b_value >= 0 ? q->g->values[L->b_value].decl.rank : 1;
+  int rank = L->b_value >= 0 ? q->g->values[L->b_value].decl.rank : 1; /* a folded bias is (C) */
   if (rank != 1) return RC_OK;
   int32_t *qb = rc__malloc(sizeof(int32_t) * (size_t)L->channels);
   float *sb = rc__malloc(sizeof(float) * (size_t)L->channels);
@@ -472,19 +480,18 @@ static rc_status add_int_bias(qstate *q, layer_plan *L, int node, const float *w
   }
   rc_status st = RC_OK;
   if (ok) {
-    const char *base = L->b_value >= 0 ? q->g->values[L->b_value].name : L->w_name;
+    const char *base = L->b_name ? L->b_name : L->w_name;
     char qn[512], sn[512], dn[512];
     rc_tensor tq = {RC_DTYPE_INT32, 1, {L->channels}, qb}, ts = {RC_DTYPE_FLOAT, 1, {L->channels}, sb};
-    st = unique(q, base, L->b_value >= 0 ? "quantized" : "bias_quantized", qn, sizeof qn);
+    st = unique(q, base, L->b_name ? "quantized" : "bias_quantized", qn, sizeof qn);
     if (st == RC_OK) st = rc_model_edit_add_initializer(q->m, qn, &tq, q->e);
-    if (st == RC_OK) st = unique(q, base, L->b_value >= 0 ? "scale" : "bias_scale", sn, sizeof sn);
+    if (st == RC_OK) st = unique(q, base, L->b_name ? "scale" : "bias_scale", sn, sizeof sn);
     if (st == RC_OK) st = rc_model_edit_add_initializer(q->m, sn, &ts, q->e);
-    if (st == RC_OK) st = unique(q, base, L->b_value >= 0 ? "dequantized" : "bias_dequantized", dn, sizeof dn);
+    if (st == RC_OK) st = unique(q, base, L->b_name ? "dequantized" : "bias_dequantized", dn, sizeof dn);
     if (st == RC_OK) st = add_dequantize(q, qn, sn, NULL, 0, dn);
     if (st == RC_OK) st = rc_model_edit_set_input(q->m, node, 2, dn, q->e);
     *done = st == RC_OK;
   }
-  (void)n;
   rc__free(qb);
   rc__free(sb);
   return st;
@@ -536,6 +543,9 @@ static rc_status quantize_layer(qstate *q, layer_plan *L, rc_quant_layer *info) 
     if (st == RC_OK && !done && L->bn >= 0) st = add_float_bias(q, L, node);
     info->bias = done ? 2 : 1;
     if (!done) q->rep->n_bias_float++;
+  } else if (L->bias_other) {
+    info->bias = 1;
+    q->rep->n_bias_float++;
   }
   rc__free(wq);
   rc__free(ws);
