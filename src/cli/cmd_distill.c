@@ -5,6 +5,7 @@
 #include <libgen.h>
 #include <signal.h>
 #include <limits.h>
+#include <math.h>
 #include <stdlib.h>
 #include <string.h>
 #include <sys/stat.h>
@@ -440,6 +441,18 @@ static void print_results(const distill_args *a, const rc_distill_result *r, dou
     cJSON_AddNumberToObject(root, "quantized_weights_rewritten", r->n_grids);
     cJSON_AddNumberToObject(root, "rollbacks", r->rollbacks);
     cJSON_AddNumberToObject(root, "reload_max_diff", verify_diff);
+    cJSON *layers = cJSON_AddArrayToObject(root, "layers");
+    for (int i = 0; i < r->n_layers; i++) {
+      cJSON *o = cJSON_CreateObject();
+      cJSON_AddStringToObject(o, "teacher", r->layers[i].teacher);
+      cJSON_AddStringToObject(o, "student", r->layers[i].student);
+      /* JSON has no infinity: identical activations are reported as null. */
+      if (isfinite(r->layers[i].sqnr_before_db)) cJSON_AddNumberToObject(o, "sqnr_before_db", r->layers[i].sqnr_before_db);
+      else cJSON_AddNullToObject(o, "sqnr_before_db");
+      if (isfinite(r->layers[i].sqnr_after_db)) cJSON_AddNumberToObject(o, "sqnr_after_db", r->layers[i].sqnr_after_db);
+      else cJSON_AddNullToObject(o, "sqnr_after_db");
+      cJSON_AddItemToArray(layers, o);
+    }
     cJSON *hist = cJSON_AddArrayToObject(root, "epochs");
     for (int64_t i = 0; i < r->n_epochs; i++) {
       cJSON *o = metrics_json(&r->epoch_val[i]);
@@ -459,6 +472,12 @@ static void print_results(const distill_args *a, const rc_distill_result *r, dou
   table_row("dense (teacher)", &r->teacher);
   table_row("compressed (input)", &r->before);
   table_row("recovered (output)", &r->after);
+  if (r->n_layers) {
+    printf("\nLayer outputs against the dense model (signal-to-noise ratio, dB; higher is closer):\n");
+    printf("  %-44s %10s %10s\n", "student tensor", "before", "after");
+    for (int i = 0; i < r->n_layers; i++)
+      printf("  %-44s %10.1f %10.1f\n", r->layers[i].student, r->layers[i].sqnr_before_db, r->layers[i].sqnr_after_db);
+  }
   printf("\n%lld steps in %.1f s (%.0f samples/s); %s values trained in %d tensors\n", (long long)r->steps_done,
          r->seconds, r->samples_per_s, cli_group_digits(r->n_trainable, b1, sizeof b1), r->n_trainable_tensors);
   printf("masks: %s pruned entries checked, all still exactly zero\n",

@@ -81,6 +81,12 @@ typedef struct rc_distill_config {
 
 void rc_distill_config_defaults(rc_distill_config *c);
 
+/* Per-layer agreement of student with teacher activations (equal shapes). */
+typedef struct rc_layer_error {
+  char teacher[128], student[128];
+  double sqnr_before_db, sqnr_after_db; /* 10·log10(Σt² / Σ(t−s)²); +inf when identical */
+} rc_layer_error;
+
 typedef struct rc_distill_result {
   rc_metrics teacher, before, after; /* on the validation samples */
   int64_t n_train, n_val;
@@ -96,6 +102,8 @@ typedef struct rc_distill_result {
   double *epoch_loss;                /* per epoch (n_epochs) */
   rc_metrics *epoch_val;
   int64_t n_epochs;
+  rc_layer_error *layers;            /* automatically paired layer outputs of equal shape */
+  int n_layers;
   int *changed;                      /* student values whose data changed: save these */
   int n_changed;
 } rc_distill_result;
