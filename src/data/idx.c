@@ -78,6 +78,10 @@ rc_status rc__gunzip(unsigned char **out, size_t *out_n, const unsigned char *p,
   /* The trailer's ISIZE (size mod 2^32) is a good first guess; growth is
    * bounded by limit whatever the stream claims. */
   size_t cap = rc__le32(p + n - 4);
+  /* Deflate expands at most about 1032:1 (zlib's documented bound, quoted
+   * from memory), so a short stream that claims gigabytes is not believed
+   * up front: a damaged trailer would otherwise allocate up to the limit. */
+  if (n < SIZE_MAX / 1032 && cap > n * 1032) cap = n * 1032;
   if (cap < 4096) cap = 4096;
   if (cap > limit) cap = limit;
   if (cap == SIZE_MAX) cap--;
