@@ -146,6 +146,8 @@ rc_status rc_data_to_float(float *out, const rc_array *in, int64_t first, int64_
   RC_TRY(norm_channels(&channels, t, norm, e));
   size_t per = 1;
   for (int i = 1; i < t->rank; i++) per *= (size_t)t->dims[i]; /* bounded: the data exists */
+  /* Empty samples: nothing to convert, however many a header declares. */
+  if (per == 0) return RC_OK;
   size_t inner = per / (size_t)channels;
   size_t total = per * (size_t)count;
   cast_to_float(out, t->data, t->dtype, per * (size_t)first, total);
