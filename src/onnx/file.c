@@ -91,7 +91,10 @@ static void *pb_alloc(void *data, size_t size) {
     return NULL;
   }
   pb_hdr *h = rc__malloc(sizeof(pb_hdr) + size);
-  if (!h) return NULL;
+  if (!h) {
+    a->out_of_memory = 1;
+    return NULL;
+  }
   h->size = size;
   a->used += size;
   return h + 1;
@@ -112,6 +115,7 @@ void rc__pb_alloc_init(rc__pb_alloc *a, size_t cap) {
   a->used = 0;
   a->cap = cap;
   a->hit_cap = 0;
+  a->out_of_memory = 0;
 }
 
 /* In memory, an unpacked message is at most a few tens of times its encoded

@@ -34,6 +34,7 @@ typedef struct rc__pb_alloc {
   ProtobufCAllocator base; /* first: passed to protobuf-c */
   size_t used, cap;
   int hit_cap;
+  int out_of_memory; /* rc__malloc failed: not the file's fault */
 } rc__pb_alloc;
 
 void rc__pb_alloc_init(rc__pb_alloc *a, size_t cap);

@@ -497,6 +497,7 @@ static rc_status load_bytes(rc_model **out, const uint8_t *buf, size_t n, uint8_
   rc__free(owned);
   if (!mp) {
     rc_model_free(m);
+    if (pa.out_of_memory) return rc__fail(e, RC_ERR_NOMEM, "%s: out of memory reading the model", path);
     if (pa.hit_cap)
       return rc__fail(e, RC_ERR_LIMIT, "%s: the file needs more memory to read than its size allows",
                       path);

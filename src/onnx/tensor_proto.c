@@ -427,6 +427,7 @@ static rc_status tensorproto_decode_bytes(const uint8_t *buf, size_t n, const ch
   rc__pb_alloc pa;
   rc__pb_alloc_init(&pa, rc__pb_alloc_cap(n));
   Onnx__TensorProto *t = onnx__tensor_proto__unpack(&pa.base, n, buf);
+  if (!t && pa.out_of_memory) return rc__fail(e, RC_ERR_NOMEM, "%s: out of memory reading the tensor", path);
   if (!t)
     return rc__fail(e, pa.hit_cap ? RC_ERR_LIMIT : RC_ERR_FORMAT, "%s: %s", path,
                     pa.hit_cap ? "message needs more memory than its size allows"
