@@ -153,7 +153,7 @@ static rc_status infer_and_fold(rc_plan *p, const rc_plan_opts *o, unsigned char
 
 /* Which values need a gradient: reachable from a trainable value through
  * differentiable steps, and leading to a value a loss reads. */
-static void mark_gradients(rc_plan *p, const rc_plan_opts *o) {
+static rc_status mark_gradients(rc_plan *p, const rc_plan_opts *o, rc_err *e) {
   const rc_graph *g = p->g;
   int nv = g->n_values;
   unsigned char *req = p->needs_grad; /* first "requires", then narrowed */
@@ -169,7 +169,7 @@ static void mark_gradients(rc_plan *p, const rc_plan_opts *o) {
       if (n->out[j] >= 0 && rc_dtype_is_float(p->t[n->out[j]].dtype)) req[n->out[j]] = 1;
   }
   unsigned char *useful = rc__calloc((size_t)nv + 1, 1);
-  if (!useful) return; /* caller checks p->needs_grad allocation only; degrade to all */
+  if (!useful) return rc__fail(e, RC_ERR_NOMEM, "%s: out of memory while planning", g->path);
   for (int i = 0; i < g->n_outputs; i++) useful[g->outputs[i]] = 1;
   if (o->keep)
     for (int v = 0; v < nv; v++)
@@ -194,6 +194,7 @@ static void mark_gradients(rc_plan *p, const rc_plan_opts *o) {
       if (n->out[j] >= 0 && req[n->out[j]]) out_g = 1;
     p->steps[s].wants_backward = in_g && out_g && n->def->backward != NULL;
   }
+  return RC_OK;
 }
 
 typedef struct slot {
@@ -381,7 +382,7 @@ rc_status rc_plan_create(rc_plan **out, const rc_graph *g, const rc_tensor *inpu
   for (int i = 0; i < g->n_inputs; i++) live[g->inputs[i]] = 1;
   if ((st = check_inputs(p, inputs, e)) != RC_OK) goto fail;
   if ((st = infer_and_fold(p, o, live, e)) != RC_OK) goto fail;
-  if (p->training) mark_gradients(p, o);
+  if (p->training && (st = mark_gradients(p, o, e)) != RC_OK) goto fail;
   if ((st = layout_memory(p, o, e)) != RC_OK) goto fail;
   if ((st = build_gradient_views(p, e)) != RC_OK) goto fail;
   rc__free(live);
