@@ -1,6 +1,7 @@
 /* recoup distill: fine-tune the compressed copy against the dense model. */
 #define _DEFAULT_SOURCE /* realpath */
 #include <cJSON.h>
+#include <errno.h>
 #include <getopt.h>
 #include <libgen.h>
 #include <signal.h>
@@ -51,7 +52,13 @@ static void usage(FILE *f) {
       "  --momentum M             SGD momentum (default 0.9, Nesterov)\n"
       "  --no-nesterov            plain momentum for SGD\n"
       "  --clip N                 clip the global gradient norm at N (default 5; 0 = off)\n"
-      "  --loss kd|logit-mse      distillation term (default kd)\n"
+      "  --loss TERMS             loss terms with weights, e.g. kd=1,hint=0.5,attention=1000\n"
+      "                           (default kd): kd, logit-mse, hint, attention, boundary,\n"
+      "                           fsp, rkd-distance, rkd-angle, attention-map, weight-anchor\n"
+      "  --pair T=S               match teacher tensor T with student tensor S for the\n"
+      "                           feature terms (repeatable; default: automatic pairing)\n"
+      "  --config FILE            JSON with \"loss\" (term: weight) and \"pairs\"\n"
+      "                           ([{\"teacher\", \"student\", \"weight\"}]), see README\n"
       "  --temperature T          kd temperature (default 4)\n"
       "  --alpha A                weight of the distillation term against cross-entropy\n"
       "                           (default 0.9 with labels, 1 without)\n"
@@ -93,6 +100,11 @@ typedef struct distill_args {
   int lr_set, wd_set;
   const char *checkpoint;
   char checkpoint_buf[4096];
+  const char *pairs[MAX_GLOBS];
+  float pair_weights[MAX_GLOBS];
+  int n_pairs;
+  const char *config;
+  char *config_strings; /* pair names read from --config, freed at exit */
   rc_distill_config cfg;
 } distill_args;
 
@@ -101,7 +113,7 @@ enum {
   OPT_SCALE, OPT_MEAN, OPT_STD, OPT_EPOCHS, OPT_STEPS, OPT_BATCH, OPT_OPTIMIZER, OPT_LR, OPT_SCHEDULE,
   OPT_WARMUP, OPT_STEP_SIZE, OPT_GAMMA, OPT_WD, OPT_MOMENTUM, OPT_NO_NESTEROV, OPT_CLIP, OPT_LOSS,
   OPT_TEMPERATURE, OPT_ALPHA, OPT_BN, OPT_TRAIN, OPT_FREEZE, OPT_SEED, OPT_THREADS, OPT_OUT, OPT_JSON,
-  OPT_CHECKPOINT, OPT_CHECKPOINT_EVERY, OPT_RESUME
+  OPT_CHECKPOINT, OPT_CHECKPOINT_EVERY, OPT_RESUME, OPT_PAIR, OPT_CONFIG
 };
 
 static int number(const char *opt, const char *v, double lo, double hi, double *out) {
@@ -210,11 +222,16 @@ static int apply_option(distill_args *a, int c, const char *v) {
       cfg->clip = d;
       return 0;
     case OPT_LOSS: {
-      static const char *const names[] = {"kd", "logit-mse"};
-      if (choice("loss", v, names, 2, &k)) return RC_EXIT_USAGE;
-      cfg->loss = k == 0 ? RC_LOSS_KD : RC_LOSS_LOGIT_MSE;
+      rc_err e = {0};
+      if (rc_loss_spec_parse(&cfg->terms, v, &e) != RC_OK) return cli_usage_error("distill", "%s", e.msg);
       return 0;
     }
+    case OPT_PAIR:
+      if (a->n_pairs == MAX_GLOBS) return cli_usage_error("distill", "too many --pair");
+      a->pairs[a->n_pairs] = v;
+      a->pair_weights[a->n_pairs++] = 1.0f;
+      return 0;
+    case OPT_CONFIG: a->config = v; return 0;
     case OPT_TEMPERATURE:
       if (number("temperature", v, 1e-3, 1e3, &d)) return RC_EXIT_USAGE;
       cfg->temperature = (float)d;
@@ -256,6 +273,82 @@ static int apply_option(distill_args *a, int c, const char *v) {
   return cli_usage_error("distill", "unknown option");
 }
 
+/* --config FILE: {"loss": {"kd": 1, "hint": 0.5}, "pairs": [{"teacher": T,
+ * "student": S, "weight": W}]}. Keys other than these are refused. */
+static int read_config(distill_args *a) {
+  FILE *f = fopen(a->config, "rb");
+  if (!f) return cli_usage_error("distill", "--config %s: %s", a->config, strerror(errno));
+  char *text = malloc(1 << 20);
+  size_t n = text ? fread(text, 1, (1 << 20) - 1, f) : 0;
+  fclose(f);
+  if (!text) return cli_usage_error("distill", "--config: out of memory");
+  text[n] = 0;
+  cJSON *root = cJSON_Parse(text);
+  free(text);
+  int rc = 0;
+  if (!cJSON_IsObject(root)) {
+    rc = cli_usage_error("distill", "--config %s: not a JSON object", a->config);
+    goto out;
+  }
+  for (cJSON *it = root->child; it; it = it->next)
+    if (strcmp(it->string, "loss") && strcmp(it->string, "pairs")) {
+      rc = cli_usage_error("distill", "--config %s: unknown key '%s' (expected loss, pairs)", a->config, it->string);
+      goto out;
+    }
+  cJSON *loss = cJSON_GetObjectItemCaseSensitive(root, "loss");
+  if (loss) {
+    char spec[2048] = "";
+    size_t used = 0;
+    if (!cJSON_IsObject(loss)) {
+      rc = cli_usage_error("distill", "--config %s: \"loss\" must be an object of term: weight", a->config);
+      goto out;
+    }
+    for (cJSON *t = loss->child; t; t = t->next) {
+      if (!cJSON_IsNumber(t)) {
+        rc = cli_usage_error("distill", "--config %s: loss term '%s' needs a number", a->config, t->string);
+        goto out;
+      }
+      used += (size_t)snprintf(spec + used, used < sizeof spec ? sizeof spec - used : 0, "%s%s=%.9g", used ? "," : "",
+                               t->string, t->valuedouble);
+    }
+    rc_err e = {0};
+    if (rc_loss_spec_parse(&a->cfg.terms, spec, &e) != RC_OK) {
+      rc = cli_usage_error("distill", "--config %s: %s", a->config, e.msg);
+      goto out;
+    }
+  }
+  cJSON *pairs = cJSON_GetObjectItemCaseSensitive(root, "pairs");
+  if (pairs) {
+    int count = cJSON_GetArraySize(pairs);
+    size_t bytes = 0;
+    for (cJSON *p = pairs->child; p; p = p->next) {
+      cJSON *t = cJSON_GetObjectItemCaseSensitive(p, "teacher"), *s = cJSON_GetObjectItemCaseSensitive(p, "student");
+      if (!cJSON_IsString(t) || !cJSON_IsString(s)) {
+        rc = cli_usage_error("distill", "--config %s: each pair needs \"teacher\" and \"student\" strings", a->config);
+        goto out;
+      }
+      bytes += strlen(t->valuestring) + strlen(s->valuestring) + 2;
+    }
+    if (!cJSON_IsArray(pairs) || a->n_pairs + count > MAX_GLOBS) {
+      rc = cli_usage_error("distill", "--config %s: \"pairs\" must be an array of at most %d pairs", a->config, MAX_GLOBS);
+      goto out;
+    }
+    a->config_strings = malloc(bytes + 1);
+    char *cur = a->config_strings;
+    for (cJSON *p = pairs->child; p && cur; p = p->next) {
+      cJSON *w = cJSON_GetObjectItemCaseSensitive(p, "weight");
+      int len = sprintf(cur, "%s=%s", cJSON_GetObjectItemCaseSensitive(p, "teacher")->valuestring,
+                        cJSON_GetObjectItemCaseSensitive(p, "student")->valuestring);
+      a->pairs[a->n_pairs] = cur;
+      a->pair_weights[a->n_pairs++] = cJSON_IsNumber(w) ? (float)w->valuedouble : 1.0f;
+      cur += len + 1;
+    }
+  }
+out:
+  cJSON_Delete(root);
+  return rc;
+}
+
 static int parse_args(distill_args *a, int argc, char **argv) {
   static const struct option longopts[] = {
       {"teacher", required_argument, NULL, OPT_TEACHER}, {"student", required_argument, NULL, OPT_STUDENT},
@@ -276,7 +369,8 @@ static int parse_args(distill_args *a, int argc, char **argv) {
       {"threads", required_argument, NULL, OPT_THREADS}, {"out", required_argument, NULL, OPT_OUT},
       {"json", no_argument, NULL, OPT_JSON}, {"checkpoint", required_argument, NULL, OPT_CHECKPOINT},
       {"checkpoint-every", required_argument, NULL, OPT_CHECKPOINT_EVERY},
-      {"resume", required_argument, NULL, OPT_RESUME}, {"help", no_argument, NULL, 'h'}, {NULL, 0, NULL, 0}};
+      {"resume", required_argument, NULL, OPT_RESUME}, {"pair", required_argument, NULL, OPT_PAIR},
+      {"config", required_argument, NULL, OPT_CONFIG}, {"help", no_argument, NULL, 'h'}, {NULL, 0, NULL, 0}};
   memset(a, 0, sizeof *a);
   cli_data_opts_init(&a->data);
   rc_distill_config_defaults(&a->cfg);
@@ -303,6 +397,10 @@ static int parse_args(distill_args *a, int argc, char **argv) {
     a->checkpoint = a->checkpoint_buf;
   }
   a->cfg.checkpoint_path = a->checkpoint;
+  if (a->config && read_config(a)) return RC_EXIT_USAGE;
+  a->cfg.pairs = a->pairs;
+  a->cfg.pair_weights = a->pair_weights;
+  a->cfg.n_pairs = a->n_pairs;
   a->cfg.train_globs = a->train;
   a->cfg.n_train = a->n_train;
   a->cfg.freeze_globs = a->freeze;
@@ -588,6 +686,7 @@ out:
   rc_distill_result_free(&r);
   cli_samples_free(&train);
   cli_samples_free(&val);
+  free(a.config_strings);
   rc_model_free(teacher);
   rc_model_free(student);
   return rc;

@@ -15,6 +15,7 @@
 #include "graph/plan.h"
 #include "train/loss.h"
 #include "train/params.h"
+#include "train/features.h"
 #include "train/pairing.h"
 #include "train/qat.h"
 
@@ -23,6 +24,7 @@ void rc_distill_config_defaults(rc_distill_config *c) {
   c->epochs = 3;
   c->batch = 64;
   c->loss = RC_LOSS_KD;
+  c->terms.weight[RC_TERM_KD] = 1;
   c->temperature = RC_KD_DEFAULT_TEMPERATURE;
   c->alpha = -1;
   rc_optim_defaults(&c->optim, RC_OPTIM_ADAMW);
@@ -127,6 +129,9 @@ typedef struct run_state {
   rc_data_split split;
   int own_val;               /* val is a separate dataset */
   rc_qat qat;                /* QDQ sites rewritten for training on their grids */
+  rc_features *feat;         /* feature-level terms, NULL when only logits are matched */
+  rc_plan *teacher_step;     /* teacher run every step for inner tensors */
+  unsigned char *tkeep, *skeep;
 } run_state;
 
 static rc_status add_trainable(run_state *st, int v, unsigned flags, rc_err *e) {
@@ -205,7 +210,25 @@ static rc_status collect_bn(run_state *st, rc_err *e) {
   return RC_OK;
 }
 
-static rc_status build_store(run_state *st, rc_err *e) {
+static void input_shapes(const rc_graph *g, const rc_tensor *data, int64_t b, rc_tensor *shapes);
+
+/* Feature terms: pairs, projectors (store entries), tensors to keep. */
+static rc_status setup_features(run_state *st, const rc_tensor *data, rc_err *e) {
+  const rc_distill_config *c = st->c;
+  int any = 0;
+  for (int t = RC_TERM_HINT; t < RC_TERM_COUNT; t++)
+    if (c->terms.weight[t] > 0) any = 1;
+  if (!any) return RC_OK;
+  st->tkeep = rc__calloc((size_t)st->teacher->graph.n_values + 1, 1);
+  st->skeep = rc__calloc((size_t)st->sg->n_values + 1, 1);
+  if (!st->tkeep || !st->skeep) return rc__fail(e, RC_ERR_NOMEM, "out of memory");
+  rc_tensor shapes[RC_DATASET_MAX_INPUTS];
+  input_shapes(st->sg, data, 1, shapes);
+  return rc__features_setup(&st->feat, &c->terms, &st->teacher->graph, st->sg, shapes, c->pairs, c->pair_weights,
+                            c->n_pairs, st->ps, st->tkeep, st->skeep, e);
+}
+
+static rc_status build_store(run_state *st, const rc_tensor *data, rc_err *e) {
   rc_graph *g = st->sg;
   RC_TRY(rc_params_create(&st->ps, e));
   for (int i = 0; i < st->n_tr; i++) {
@@ -213,8 +236,10 @@ static rc_status build_store(run_state *st, rc_err *e) {
     RC_TRY(rc_params_add(st->ps, &st->tr[i].entry, val->name, rc_tensor_numel(&val->decl), val->decl.data,
                          st->tr[i].flags, e));
   }
+  RC_TRY(setup_features(st, data, e));
   RC_TRY(rc_params_finalize(st->ps, rc_optim_moments(&st->c->optim), e));
   RC_TRY(rc_params_build_masks(st->ps, e));
+  if (st->feat) RC_TRY(rc__features_init(st->feat, st->ps, st->c->seed, e));
   /* From here on the graph reads its initializers from the store. */
   for (int i = 0; i < st->n_tr; i++) {
     rc_value *val = &g->values[st->tr[i].value];
@@ -285,10 +310,14 @@ static rc_status build_plans(run_state *st, const rc_tensor *data, rc_err *e) {
   rc_status s = rc_plan_create(&st->eval_plan, sg, shapes, &eval_opts, e);
   rc__free(live);
   RC_TRY(s);
-  rc_plan_opts train_opts = {1, st->trainable_mask, NULL, st->c->bn == RC_BN_TRAIN};
+  rc_plan_opts train_opts = {1, st->trainable_mask, st->skeep, st->c->bn == RC_BN_TRAIN};
   RC_TRY(rc_plan_create(&st->train_plan, sg, shapes, &train_opts, e));
   teacher_order(tg, sg, shapes, tin);
   RC_TRY(rc_plan_create(&st->teacher_plan, tg, tin, NULL, e));
+  if (st->feat && rc_loss_spec_needs_features(&st->c->terms)) {
+    rc_plan_opts keep = {0, NULL, st->tkeep, 0};
+    RC_TRY(rc_plan_create(&st->teacher_step, tg, tin, &keep, e));
+  }
   int64_t kt;
   RC_TRY(logits_width(st->eval_plan, sg, st->batch, &st->k, e));
   RC_TRY(logits_width(st->teacher_plan, tg, st->batch, &kt, e));
@@ -494,10 +523,12 @@ static rc_status loss_and_seed(run_state *st, const step_buffers *sb, const int3
   float *grad = gt->data;
   float alpha = c->alpha >= 0 ? c->alpha : labels ? 0.9f : 1.0f;
   double dl = 0, ce = 0;
-  if (c->loss == RC_LOSS_KD)
-    RC_TRY(rc_loss_kd(&dl, NULL, grad, alpha, s, sb->teacher, st->batch, st->k, c->temperature, e));
-  else
-    RC_TRY(rc_loss_logit_mse(&dl, NULL, grad, alpha, s, sb->teacher, st->batch, st->k, e));
+  float wkd = c->terms.weight[RC_TERM_KD], wmse = c->terms.weight[RC_TERM_LOGIT_MSE];
+  if (wkd > 0)
+    RC_TRY(rc_loss_kd(&dl, NULL, grad, alpha * wkd, s, sb->teacher, st->batch, st->k, c->temperature, e));
+  else if (wmse > 0)
+    RC_TRY(rc_loss_logit_mse(&dl, NULL, grad, alpha * wmse, s, sb->teacher, st->batch, st->k, e));
+  dl *= wkd > 0 ? wkd : wmse;
   if (labels && alpha < 1)
     RC_TRY(rc_loss_cross_entropy(&ce, NULL, grad, 1 - alpha, s, labels, st->batch, st->k, e));
   *loss = alpha * dl + (labels && alpha < 1 ? (1 - alpha) * ce : 0);
@@ -563,6 +594,7 @@ static uint64_t run_fingerprint(const loop_ctx *lc) {
   double reals[] = {c->temperature, c->alpha, c->optim.lr, c->optim.weight_decay, c->optim.momentum,
                     c->optim.beta1, c->optim.beta2, c->optim.eps, lc->sched.lr_min, lc->sched.gamma, c->clip};
   h = fnv1a(h, ints, sizeof ints);
+  h = fnv1a(h, c->terms.weight, sizeof c->terms.weight);
   return fnv1a(h, reals, sizeof reals);
 }
 
@@ -690,6 +722,20 @@ static rc_status train_step(loop_ctx *lc, const loop_state *ls, step_buffers *sb
   rc_plan_zero_grad(st->train_plan);
   RC_TRY(rc_plan_forward(st->train_plan, e));
   RC_TRY(loss_and_seed(st, sb, sb->labels, loss, e));
+  if (st->feat) {
+    if (st->teacher_step) {
+      const rc_graph *tg = &st->teacher->graph, *sg = st->sg;
+      for (int i = 0; i < tg->n_inputs; i++) {
+        int j = find_by_name(sg, sg->inputs, sg->n_inputs, tg->values[tg->inputs[i]].name);
+        memcpy(rc_plan_tensor(st->teacher_step, tg->inputs[i])->data, sb->in[j],
+               rc_tensor_nbytes(rc_plan_tensor(st->teacher_step, tg->inputs[i])));
+      }
+      RC_TRY(rc_plan_forward(st->teacher_step, e));
+    }
+    double fl = 0;
+    RC_TRY(rc__features_step(st->feat, st->teacher_step, st->train_plan, st->ps, sb->teacher, &fl, e));
+    *loss += fl;
+  }
   RC_TRY(rc_plan_backward(st->train_plan, e));
   double norm = rc_clip_grad_norm(st->ps, st->c->clip);
   *bad = !isfinite(*loss) || !isfinite(norm);
@@ -939,6 +985,10 @@ static void free_state(run_state *st) {
   rc_plan_free(st->train_plan);
   rc_plan_free(st->eval_plan);
   rc_plan_free(st->teacher_plan);
+  rc_plan_free(st->teacher_step);
+  rc__features_free(st->feat);
+  rc__free(st->tkeep);
+  rc__free(st->skeep);
   rc_dataset_free(&st->train);
   rc_dataset_free(&st->val);
   rc_data_split_free(&st->split);
@@ -1007,7 +1057,7 @@ rc_status rc_distill_run(rc_distill_result *r, rc_model *teacher, rc_model *stud
   r->n_train = st.train.n;
   r->n_val = st.val.n;
   if ((s = select_trainables(&st, e)) != RC_OK || (s = collect_bn(&st, e)) != RC_OK ||
-      (s = build_store(&st, e)) != RC_OK || (s = build_plans(&st, d->inputs, e)) != RC_OK)
+      (s = build_store(&st, d->inputs, e)) != RC_OK || (s = build_plans(&st, d->inputs, e)) != RC_OK)
     goto out;
   if ((s = val_labels_of(&st, d, &val_labels, e)) != RC_OK) goto out;
   int64_t pool = d->inputs[0].dims[0];

@@ -15,6 +15,7 @@
 #include "core/status.h"
 #include "onnx/model.h"
 #include "train/evaluate.h"
+#include "train/features.h"
 #include "train/optim.h"
 
 typedef enum rc_bn_mode {
@@ -53,7 +54,11 @@ typedef struct rc_distill_config {
   int64_t epochs;            /* used when steps == 0 */
   int64_t steps;
   int64_t batch;
-  rc_distill_loss loss;
+  rc_distill_loss loss;       /* kept for callers; terms decides */
+  rc_loss_spec terms;         /* weights of kd, logit-mse and the feature terms */
+  const char *const *pairs;   /* "TEACHER=STUDENT" overrides of automatic pairing */
+  const float *pair_weights;  /* per given pair, or NULL */
+  int n_pairs;
   float temperature;
   float alpha;               /* weight of the distillation term; < 0 = default */
   rc_optim_config optim;
