@@ -10,64 +10,7 @@
 #include "train/optim.h"
 #include "train/params.h"
 #include "test.h"
-
-#define MAX_ARRAYS 64
-
-static struct {
-  char name[64];
-  long n;
-  float *data;
-} arrays[MAX_ARRAYS];
-static int n_arrays;
-
-static int load_reference(void) {
-  const char *bin = getenv("RECOUP_BINARY_DIR");
-  if (!bin) {
-    fprintf(stderr, "RECOUP_BINARY_DIR is not set\n");
-    return 0;
-  }
-  char path[4096];
-  snprintf(path, sizeof path, "%s/train_ref/index.txt", bin);
-  FILE *idx = fopen(path, "r");
-  if (!idx) {
-    fprintf(stderr, "%s: cannot open (run the train_ref_data fixture)\n", path);
-    return 0;
-  }
-  char name[64];
-  long n;
-  while (n_arrays < MAX_ARRAYS && fscanf(idx, "%63s %ld", name, &n) == 2) {
-    if (n < 1 || n > 1000000) break;
-    snprintf(path, sizeof path, "%s/train_ref/%s.f32", bin, name);
-    FILE *f = fopen(path, "rb");
-    float *d = malloc((size_t)n * sizeof(float));
-    int ok = f && d && fread(d, sizeof(float), (size_t)n, f) == (size_t)n;
-    if (f) fclose(f);
-    if (!ok) {
-      fprintf(stderr, "%s: cannot read %ld floats\n", path, n);
-      free(d);
-      fclose(idx);
-      return 0;
-    }
-    snprintf(arrays[n_arrays].name, sizeof arrays[n_arrays].name, "%s", name);
-    arrays[n_arrays].n = n;
-    arrays[n_arrays].data = d;
-    n_arrays++;
-  }
-  fclose(idx);
-  return n_arrays > 0;
-}
-
-/* The array called name with exactly n floats; a failed check otherwise. */
-static const float *ref(const char *name, long n) {
-  for (int i = 0; i < n_arrays; i++)
-    if (!strcmp(arrays[i].name, name)) {
-      CHECK_INT(arrays[i].n, n);
-      return arrays[i].n == n ? arrays[i].data : NULL;
-    }
-  fprintf(stderr, "reference array %s missing\n", name);
-  CHECK(0);
-  return NULL;
-}
+#include "ref_arrays.h"
 
 enum { N = 6, K = 7 };
 
@@ -242,13 +185,13 @@ static void clipping_matches_torch(void) {
 }
 
 int main(void) {
-  if (!load_reference()) return 1;
+  if (!ref_load("train_ref", "train_ref_data")) return 1;
   RUN(kd_matches_torch);
   RUN(ce_and_mse_match_torch);
   RUN(sgd_matches_torch);
   RUN(adamw_matches_torch);
   RUN(masked_zeros_survive_torch_gradients);
   RUN(clipping_matches_torch);
-  for (int i = 0; i < n_arrays; i++) free(arrays[i].data);
+  ref_free();
   return TEST_REPORT();
 }

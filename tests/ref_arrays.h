@@ -1,0 +1,75 @@
+/* Named float32 arrays written by a reference script (scripts/ref_*.py run
+ * with Debian's python3 and python3-torch) into $RECOUP_BINARY_DIR/<dir>:
+ * index.txt holds one "<name> <count>" line per array, <name>.f32 its raw
+ * little-endian float32 values. Include after test.h. */
+#ifndef RC_TEST_REF_ARRAYS_H
+#define RC_TEST_REF_ARRAYS_H
+
+#ifndef REF_MAX_ARRAYS
+#define REF_MAX_ARRAYS 128
+#endif
+
+static struct {
+  char name[64];
+  long n;
+  float *data;
+} ref_arrays_[REF_MAX_ARRAYS];
+static int ref_n_arrays_;
+
+/* Read every array of the index in $RECOUP_BINARY_DIR/dir; 0 (with a message
+ * naming the fixture) when the data is missing or unreadable. */
+static int ref_load(const char *dir, const char *fixture) {
+  const char *bin = getenv("RECOUP_BINARY_DIR");
+  if (!bin) {
+    fprintf(stderr, "RECOUP_BINARY_DIR is not set\n");
+    return 0;
+  }
+  char path[4096];
+  snprintf(path, sizeof path, "%s/%s/index.txt", bin, dir);
+  FILE *idx = fopen(path, "r");
+  if (!idx) {
+    fprintf(stderr, "%s: cannot open (run the %s fixture through ctest)\n", path, fixture);
+    return 0;
+  }
+  char name[64];
+  long n;
+  while (ref_n_arrays_ < REF_MAX_ARRAYS && fscanf(idx, "%63s %ld", name, &n) == 2) {
+    if (n < 1 || n > 1000000) break;
+    snprintf(path, sizeof path, "%s/%s/%s.f32", bin, dir, name);
+    FILE *f = fopen(path, "rb");
+    float *d = malloc((size_t)n * sizeof(float));
+    int ok = f && d && fread(d, sizeof(float), (size_t)n, f) == (size_t)n;
+    if (f) fclose(f);
+    if (!ok) {
+      fprintf(stderr, "%s: cannot read %ld floats\n", path, n);
+      free(d);
+      fclose(idx);
+      return 0;
+    }
+    snprintf(ref_arrays_[ref_n_arrays_].name, sizeof ref_arrays_[ref_n_arrays_].name, "%s", name);
+    ref_arrays_[ref_n_arrays_].n = n;
+    ref_arrays_[ref_n_arrays_].data = d;
+    ref_n_arrays_++;
+  }
+  fclose(idx);
+  return ref_n_arrays_ > 0;
+}
+
+/* The array called name with exactly n floats; a failed check otherwise. */
+static const float *ref(const char *name, long n) {
+  for (int i = 0; i < ref_n_arrays_; i++)
+    if (!strcmp(ref_arrays_[i].name, name)) {
+      CHECK_INT(ref_arrays_[i].n, n);
+      return ref_arrays_[i].n == n ? ref_arrays_[i].data : NULL;
+    }
+  fprintf(stderr, "reference array %s missing\n", name);
+  CHECK(0);
+  return NULL;
+}
+
+static void ref_free(void) {
+  for (int i = 0; i < ref_n_arrays_; i++) free(ref_arrays_[i].data);
+  ref_n_arrays_ = 0;
+}
+
+#endif
