@@ -3,3 +3,21 @@ add_test(NAME cli_errors
          COMMAND ${RECOUP_PYTHON} ${CMAKE_CURRENT_SOURCE_DIR}/cli_errors_test.py $<TARGET_FILE:recoup>
                  ${CMAKE_BINARY_DIR}/cli_errors)
 set_tests_properties(cli_errors PROPERTIES TIMEOUT 600)
+
+# End-to-end recovery of the bundled pruned demo model on Fashion-MNIST.
+add_test(NAME distill_fashion_mnist
+         COMMAND ${RECOUP_PYTHON} ${CMAKE_CURRENT_SOURCE_DIR}/distill_test.py $<TARGET_FILE:recoup>
+                 ${PROJECT_SOURCE_DIR} ${CMAKE_BINARY_DIR}/distill_test)
+set_tests_properties(distill_fashion_mnist PROPERTIES TIMEOUT 1200)
+
+# Recovery of a 4-bit-weight quantized copy made by `recoup quantize`.
+add_test(NAME distill_quantized_fashion_mnist
+         COMMAND ${RECOUP_PYTHON} ${CMAKE_CURRENT_SOURCE_DIR}/qat_test.py $<TARGET_FILE:recoup>
+                 ${PROJECT_SOURCE_DIR} ${CMAKE_BINARY_DIR}/qat_test)
+set_tests_properties(distill_quantized_fashion_mnist PROPERTIES TIMEOUT 1500)
+
+# Feature-level distillation of a channel-pruned (narrower) student.
+add_test(NAME distill_features_fashion_mnist
+         COMMAND ${RECOUP_PYTHON} ${CMAKE_CURRENT_SOURCE_DIR}/features_test.py $<TARGET_FILE:recoup>
+                 ${PROJECT_SOURCE_DIR} ${CMAKE_BINARY_DIR}/features_test)
+set_tests_properties(distill_features_fashion_mnist PROPERTIES TIMEOUT 1500)
