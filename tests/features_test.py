@@ -14,38 +14,20 @@ Usage: features_test.py RECOUP SOURCE_DIR WORK_DIR
 
 import json
 import os
-import subprocess
 import sys
 
 import onnx
 
+from e2e import Run, SCALE, TRAIN_IMAGES, require
+
 RECOUP, SRC, WORK = sys.argv[1:4]
 os.makedirs(WORK, exist_ok=True)
-DATA = "/usr/share/datasets/fashion-mnist"
-SCALE = "0.00392156862745098"
 DENSE = os.path.join(SRC, "models", "garment_dense.onnx")
 STEPS = "300"
 MARGIN = 0.0  # kd+hint must not lose to kd alone; the measured gap is printed
-failures = []
-
-
-def run(args):
-    r = subprocess.run([RECOUP] + args, capture_output=True, text=True, timeout=1800)
-    if r.returncode != 0:
-        raise SystemExit(f"recoup {' '.join(args)} failed ({r.returncode}):\n{r.stderr}")
-    return r
-
-
-def test_accuracy(model):
-    r = run(["eval", model, "--data", f"{DATA}/t10k-images-idx3-ubyte.gz", "--labels",
-             f"{DATA}/t10k-labels-idx1-ubyte.gz", "--scale", SCALE, "--json"])
-    return json.loads(r.stdout)["top1_accuracy"]
-
-
-def check(name, ok, detail=""):
-    print(("ok   " if ok else "FAIL ") + name + " " + detail)
-    if not ok:
-        failures.append(name)
+run = Run(RECOUP)
+check, test_accuracy = run.check, run.test_accuracy
+require(DENSE, TRAIN_IMAGES)
 
 
 narrow = os.path.join(WORK, "garment_channels50.onnx")
@@ -57,7 +39,7 @@ check("pairing finds narrower layers", n_proj > 0, f"({n_proj} pairs need a proj
 accs = {}
 for name, loss in (("kd", "kd"), ("kd+hint", "kd=1,hint=1")):
     out = os.path.join(WORK, f"recovered_{name.replace('+', '_')}.onnx")
-    run(["distill", "--teacher", DENSE, "--student", narrow, "--data", f"{DATA}/train-images-idx3-ubyte.gz",
+    run(["distill", "--teacher", DENSE, "--student", narrow, "--data", TRAIN_IMAGES,
          "--scale", SCALE, "--steps", STEPS, "--seed", "5", "--threads", "2", "--loss", loss, "--out", out])
     accs[name] = test_accuracy(out)
     m_in, m_out = onnx.load(narrow), onnx.load(out)
@@ -71,5 +53,4 @@ print(f"test accuracy: channel-pruned {acc_narrow:.4f}, kd {accs['kd']:.4f}, kd+
       f"({STEPS} steps each)")
 check("kd+hint beats kd alone at the same budget", accs["kd+hint"] - accs["kd"] > MARGIN,
       f"({accs['kd+hint']:.4f} vs {accs['kd']:.4f})")
-print(f"{2 + 2 - len(failures)} passed, {len(failures)} failed")
-sys.exit(1 if failures else 0)
+run.finish()

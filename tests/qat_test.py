@@ -15,6 +15,7 @@
 Usage: qat_test.py RECOUP SOURCE_DIR WORK_DIR
 """
 
+import gzip
 import json
 import os
 import shutil
@@ -25,45 +26,19 @@ import numpy as np
 import onnx
 from onnx import numpy_helper
 
+from e2e import Run, SCALE, TRAIN_IMAGES, require
+
 RECOUP, SRC, WORK = sys.argv[1:4]
 os.makedirs(WORK, exist_ok=True)
-DATA = "/usr/share/datasets/fashion-mnist"
-SCALE = "0.00392156862745098"
 DENSE = os.path.join(SRC, "models", "garment_dense.onnx")
-MARGIN = 0.01  # replaced below by the measured numbers' comment
-failures = []
-passed = 0
-
-
-def check(name, ok, detail=""):
-    global passed
-    print(("ok   " if ok else "FAIL ") + name + " " + detail)
-    if ok:
-        passed += 1
-    else:
-        failures.append(name)
-
-
-def run(args):
-    r = subprocess.run([RECOUP] + args, capture_output=True, text=True, timeout=1800)
-    if r.returncode != 0:
-        raise SystemExit(f"recoup {' '.join(args)} failed ({r.returncode}):\n{r.stderr}")
-    return r
-
-
-def test_accuracy(model):
-    r = run(["eval", model, "--data", f"{DATA}/t10k-images-idx3-ubyte.gz", "--labels",
-             f"{DATA}/t10k-labels-idx1-ubyte.gz", "--scale", SCALE, "--json"])
-    return json.loads(r.stdout)["top1_accuracy"]
-
-
-if not os.path.exists(DENSE):
-    raise SystemExit(f"missing {DENSE}")
+MARGIN = 0.01
+run = Run(RECOUP)
+check, test_accuracy = run.check, run.test_accuracy
+require(DENSE, TRAIN_IMAGES)
 q4 = os.path.join(WORK, "garment_w4a8.onnx")
 calib = os.path.join(WORK, "calib.npy")
 # 1,000 training images for calibration, read with NumPy from the IDX file.
-import gzip
-with gzip.open(f"{DATA}/train-images-idx3-ubyte.gz", "rb") as f:
+with gzip.open(TRAIN_IMAGES, "rb") as f:
     raw = f.read()
 imgs = np.frombuffer(raw, np.uint8, offset=16).reshape(-1, 1, 28, 28)[:1000]
 np.save(calib, imgs)
@@ -72,9 +47,8 @@ run(["quantize", DENSE, "--data", calib, "--scale", SCALE, "--weight-bits", "4",
 
 acc_dense, acc_q = test_accuracy(DENSE), test_accuracy(q4)
 rec = os.path.join(WORK, "recovered_w4a8.onnx")
-res = json.loads(run(["distill", "--teacher", DENSE, "--student", q4, "--data", f"{DATA}/train-images-idx3-ubyte.gz",
-                      "--scale", SCALE, "--steps", "400", "--seed", "3", "--threads", "2", "--json",
-                      "--out", rec]).stdout)
+res = run.json(["distill", "--teacher", DENSE, "--student", q4, "--data", TRAIN_IMAGES, "--scale", SCALE,
+                "--steps", "400", "--seed", "3", "--threads", "2", "--json", "--out", rec])
 acc_rec = test_accuracy(rec)
 print(f"test accuracy: dense {acc_dense:.4f}, 4-bit weights / 8-bit activations {acc_q:.4f}, "
       f"recovered {acc_rec:.4f}")
@@ -129,5 +103,4 @@ else:
     check("onnxruntime-web matches recoup within a few quantization steps", diff <= 4 * step,
           f"(max |diff| {diff:.4g}, step {step:.4g}; top-1 agreement {agree:.4f})")
 
-print(f"{passed} passed, {len(failures)} failed")
-sys.exit(1 if failures else 0)
+run.finish()

@@ -1,0 +1,53 @@
+"""Shared pieces of the end-to-end tests that drive the `recoup` binary on
+Fashion-MNIST (Xiao, Rasul and Vollgraf 2017; Debian package
+dataset-fashion-mnist): running commands, measuring test accuracy, and
+counting checks into the closing "N passed, M failed" line."""
+
+import json
+import os
+import subprocess
+import sys
+
+DATA = "/usr/share/datasets/fashion-mnist"
+SCALE = "0.00392156862745098"  # 1/255: the bundled models take pixels in [0, 1]
+TRAIN_IMAGES = f"{DATA}/train-images-idx3-ubyte.gz"
+TEST_IMAGES = f"{DATA}/t10k-images-idx3-ubyte.gz"
+TEST_LABELS = f"{DATA}/t10k-labels-idx1-ubyte.gz"
+
+
+class Run:
+    def __init__(self, recoup):
+        self.recoup = recoup
+        self.passed = 0
+        self.failed = []
+
+    def __call__(self, args, timeout=1800):
+        r = subprocess.run([self.recoup] + args, capture_output=True, text=True, timeout=timeout)
+        if r.returncode != 0:
+            raise SystemExit(f"recoup {' '.join(args)} failed ({r.returncode}):\n{r.stderr}")
+        return r
+
+    def json(self, args):
+        return json.loads(self(args).stdout)
+
+    def test_accuracy(self, model):
+        """Top-1 accuracy on the 10,000 test images, measured by recoup eval."""
+        return self.json(["eval", model, "--data", TEST_IMAGES, "--labels", TEST_LABELS, "--scale", SCALE,
+                          "--json"])["top1_accuracy"]
+
+    def check(self, name, ok, detail=""):
+        print(("ok   " if ok else "FAIL ") + name + (" " + detail if detail else ""), flush=True)
+        if ok:
+            self.passed += 1
+        else:
+            self.failed.append(name)
+
+    def finish(self):
+        print(f"{self.passed} passed, {len(self.failed)} failed")
+        sys.exit(1 if self.failed else 0)
+
+
+def require(*paths):
+    for p in paths:
+        if not os.path.exists(p):
+            raise SystemExit(f"missing {p}: run scripts/setup.sh (models come from the scripts in scripts/)")
