@@ -31,6 +31,8 @@ struct rc_plan {
   size_t grad_bytes;
   void *work;
   int training;
+  size_t max_bytes;    /* limit on folded constants and the block together */
+  size_t folded_bytes; /* constants folded so far */
 };
 
 static const size_t ALIGN = 64;
@@ -80,6 +82,9 @@ static rc_status run_folded(rc_plan *p, const rc_node *n, rc_tensor **in, rc_ten
   rc_kernel k = {n, n->params, n->n_in, n->n_out, in, out, NULL, NULL, NULL, NULL, 0};
   size_t ws = n->def->workspace ? n->def->workspace(&k, 0) : 0;
   size_t sv = n->def->saved ? n->def->saved(&k) : 0;
+  if (ws > p->max_bytes || sv > p->max_bytes - ws)
+    return rc__fail(e, RC_ERR_LIMIT, "node '%s' (%s): folding needs %zu bytes of scratch, over the plan limit of %zu",
+                    n->label, n->op_type, ws + sv, p->max_bytes);
   void *work = ws ? rc__malloc(ws) : NULL;
   void *saved = sv ? rc__malloc(sv) : NULL;
   rc_status st;
@@ -125,6 +130,10 @@ static rc_status infer_and_fold(rc_plan *p, const rc_plan_opts *o, unsigned char
         rc_tensor *t = out[j];
         if (!t) continue;
         size_t nb = rc_tensor_nbytes(t);
+        if (nb > p->max_bytes - p->folded_bytes)
+          return rc__fail(e, RC_ERR_LIMIT, "%s: node '%s' (%s): folded output of %zu bytes is over the plan limit of %zu",
+                          g->path, n->label, n->op_type, nb, p->max_bytes);
+        p->folded_bytes += nb;
         t->data = rc__arena_zalloc(&p->meta, nb ? nb : 1);
         if (!t->data) return rc__fail(e, RC_ERR_NOMEM, "%s: out of memory folding node '%s'", g->path, n->label);
         p->is_const[n->out[j]] = 1;
@@ -134,6 +143,10 @@ static rc_status infer_and_fold(rc_plan *p, const rc_plan_opts *o, unsigned char
         if (!out[j]) {
           rc_tensor *t = &inferred[j];
           size_t nb = rc_tensor_nbytes(t);
+          if (nb > p->max_bytes - p->folded_bytes)
+            return rc__fail(e, RC_ERR_LIMIT, "%s: node '%s' (%s): folded output of %zu bytes is over the plan limit of %zu",
+                            g->path, n->label, n->op_type, nb, p->max_bytes);
+          p->folded_bytes += nb;
           t->data = rc__arena_zalloc(&p->meta, nb ? nb : 1);
           if (!t->data) return rc__fail(e, RC_ERR_NOMEM, "%s: out of memory", g->path);
           out[j] = t;
@@ -281,6 +294,11 @@ static rc_status layout_memory(rc_plan *p, const rc_plan_opts *o, rc_err *e) {
   }
   work = round_up(work);
   size_t total = act + extra + grads + saved + work + ALIGN;
+  if (total > p->max_bytes - p->folded_bytes) {
+    rc__free(sl);
+    return rc__fail(e, RC_ERR_LIMIT, "%s: the plan needs %zu bytes, over its limit of %zu", g->path,
+                    total + p->folded_bytes, p->max_bytes);
+  }
   p->block = rc__malloc(total);
   if (!p->block) {
     rc__free(sl);
@@ -357,6 +375,7 @@ rc_status rc_plan_create(rc_plan **out, const rc_graph *g, const rc_tensor *inpu
   if (!p) return rc__fail(e, RC_ERR_NOMEM, "%s: out of memory while planning", g->path);
   p->g = g;
   p->training = o->training;
+  p->max_bytes = o->max_bytes ? o->max_bytes : RC_PLAN_DEFAULT_MAX_BYTES;
   rc__arena_init(&p->meta, 1 << 16);
   int nv = g->n_values;
   unsigned char *live = NULL;

@@ -23,7 +23,14 @@ typedef struct rc_plan_opts {
   const unsigned char *keep;
   /* BatchNormalization uses batch statistics (and updates running stats). */
   int bn_batch_stats;
+  /* Most bytes the plan may hold (constants folded at plan time, the
+   * activation block, folding scratch); 0 means RC_PLAN_DEFAULT_MAX_BYTES.
+   * Sizes follow from the file, so a hostile model is refused with
+   * RC_ERR_LIMIT before it can make the planner allocate without bound. */
+  size_t max_bytes;
 } rc_plan_opts;
+
+#define RC_PLAN_DEFAULT_MAX_BYTES ((size_t)64 << 30)
 
 typedef struct rc_plan rc_plan;
 
