@@ -114,8 +114,36 @@ static void seeds_are_valid_files(void) {
   CHECK(n >= 5);
 }
 
+/* A model whose ConstantOfShape asks for 198M floats at plan time: the
+ * planner refuses it against its byte limit before allocating, naming the
+ * node (the fuzzer found it spending seconds zeroing 792 MB). */
+static void plan_limit_refuses_huge_constant(void) {
+  char path[4096];
+  snprintf(path, sizeof path, "%s/tests/fuzz/regressions/onnx/constant_of_shape_792mb.onnx", source_dir());
+  size_t n = 0;
+  uint8_t *buf = read_file(path, &n);
+  CHECK(buf != NULL);
+  if (!buf) return;
+  rc_err e;
+  rc_model *m = NULL;
+  CHECK_INT(rc_model_load_mem(&m, buf, n, "huge.onnx", NULL, &e), RC_OK);
+  if (m) {
+    rc_tensor in = m->graph.values[m->graph.inputs[0]].decl;
+    rc_plan_opts o = {0};
+    o.max_bytes = (size_t)64 << 20;
+    rc_plan *p = NULL;
+    CHECK_INT(rc_plan_create(&p, &m->graph, &in, &o, &e), RC_ERR_LIMIT);
+    CHECK_STR_CONTAINS(e.msg, "ConstantOfShape");
+    CHECK(p == NULL);
+    rc_plan_free(p);
+  }
+  rc_model_free(m);
+  free(buf);
+}
+
 int main(void) {
   RUN(regressions_end_cleanly);
+  RUN(plan_limit_refuses_huge_constant);
   RUN(seeds_are_valid_files);
   return TEST_REPORT();
 }
