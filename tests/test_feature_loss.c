@@ -568,6 +568,35 @@ static void views_and_refusals(void) {
             RC_ERR_INVALID);
 }
 
+/* A NaN anywhere in the student or teacher reaches the loss, so the
+ * training driver's non-finite check sees it; no clamp or branch hides it. */
+static void nan_reaches_the_loss(void) {
+  for (int k = HINT; k <= ANCHOR; k++)
+    for (int side = 0; side < 2; side++) {
+      ctx c = {0};
+      c.k = (kind)k;
+      c.sv = view(2, 3, 4, CF);
+      c.tv = c.sv;
+      c.s2v = c.t2v = c.sv;
+      c.n = k == ANCHOR ? 24 : (k == ATTN_MAP ? 2 : 4);
+      c.ds = c.dt = 6;
+      c.heads = 1, c.lq = 3, c.lk = 4;
+      c.param = 1.0f;
+      int64_t cnt = 24; /* every term's student and teacher hold 24 floats here */
+      c.s = alloc_fill(cnt, 111);
+      c.t = alloc_fill(cnt, 112);
+      if (k == ATTN_MAP)
+        for (int i = 0; i < cnt; i++) c.s[i] = fabsf(c.s[i]), c.t[i] = fabsf(c.t[i]);
+      if (k == FSP) c.s2 = alloc_fill(cnt, 113), c.t2 = alloc_fill(cnt, 114);
+      (side ? c.t : c.s)[5] = NAN;
+      ctx_ready(&c);
+      double loss = eval(&c, 1);
+      if (!isnan(loss)) fprintf(stderr, "term %d, NaN in the %s: loss %g\n", k, side ? "teacher" : "student", loss);
+      CHECK(isnan(loss));
+      ctx_free(&c);
+    }
+}
+
 int main(void) {
   RUN(hint_gradients);
   RUN(boundary_gradients);
@@ -585,5 +614,6 @@ int main(void) {
   RUN(attention_map_by_hand);
   RUN(weight_anchor_by_hand);
   RUN(views_and_refusals);
+  RUN(nan_reaches_the_loss);
   return TEST_REPORT();
 }

@@ -191,13 +191,18 @@ static double elementwise(float *dy, int overwrite, const float *y, const float 
       sum += d * d;
       g = 2.0 * d;
     } else if (t[i] > 0.0f) { /* teacher neuron active: push y above +margin */
-      double a = margin - v > 0.0 ? margin - v : 0.0;
+      double a = margin - v;
+      if (a < 0.0) a = 0.0; /* written so that a NaN y stays NaN */
       sum += a * a;
       g = -2.0 * a;
-    } else { /* inactive: push y below -margin */
-      double a = margin + v > 0.0 ? margin + v : 0.0;
+    } else if (t[i] <= 0.0f) { /* inactive: push y below -margin */
+      double a = margin + v;
+      if (a < 0.0) a = 0.0;
       sum += a * a;
       g = 2.0 * a;
+    } else { /* a NaN teacher must not pass for an inactive neuron */
+      sum += NAN;
+      g = NAN;
     }
     if (dy) {
       if (overwrite)
@@ -537,8 +542,9 @@ rc_status rc_loss_rkd_distance(double *loss, float *grad_student, float grad_sca
         w.dr[i * n + j] = 0.0;
         continue;
       }
-      double ps = mus > 0.0 ? w.rs[i * n + j] / mus : 0.0;
-      double pt = mut > 0.0 ? w.rt[i * n + j] / mut : 0.0;
+      /* mu = 0: all samples coincide. A NaN mu must reach the loss. */
+      double ps = mus == 0.0 ? 0.0 : w.rs[i * n + j] / mus;
+      double pt = mut == 0.0 ? 0.0 : w.rt[i * n + j] / mut;
       total += huber(ps - pt);
       double c = huber_grad(ps - pt) / pairs; /* dL/d psi_s(i, j) */
       w.dr[i * n + j] = c;
@@ -563,7 +569,7 @@ rc_status rc_loss_rkd_distance(double *loss, float *grad_student, float grad_sca
 static double angle_cos(const double *g, const double *r, int64_t n, int64_t i, int64_t j,
                         int64_t k) {
   double den = r[i * n + j] * r[k * n + j];
-  if (!(den > 0.0)) return 0.0;
+  if (den == 0.0) return 0.0; /* NaN goes on into the loss */
   return (g[i * n + k] - g[i * n + j] - g[j * n + k] + g[j * n + j]) / den;
 }
 
@@ -636,7 +642,7 @@ rc_status rc_loss_attention_map(double *loss, float *grad_student, float grad_sc
       double tj = t[j];
       if (tj == 0.0) continue; /* 0 log 0 = 0, and no gradient */
       double sj = s[j];
-      int clamped = !(sj >= RC_ATTN_KL_EPS);
+      int clamped = sj < RC_ATTN_KL_EPS; /* NaN is not clamped: it shows in the loss */
       double ls = log(clamped ? (double)RC_ATTN_KL_EPS : sj);
       row += tj * (log(tj) - ls);
       if (grad_student && !clamped) grad_student[r * lk + j] += (float)(-k * tj / sj);

@@ -12,6 +12,8 @@
  *  - nothing allocates: scratch memory comes from the caller's `work`, at
  *    least <term>_workspace_floats(...) floats (terms without such a function
  *    need none), aligned to 8 bytes (any rc__malloc'd or arena block is);
+ *  - a NaN in any input reaches *loss (no clamp or branch hides it), so the
+ *    caller's non-finite check sees it;
  *  - gradient GEMMs go through OpenBLAS, so a call may use its threads;
  *    results do not depend on the thread count except through OpenBLAS.
  *
