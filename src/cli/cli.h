@@ -18,6 +18,7 @@ typedef struct rc_command {
 int rc_cmd_inspect(int argc, char **argv);
 int rc_cmd_eval(int argc, char **argv);
 int rc_cmd_distill(int argc, char **argv);
+int rc_cmd_batch(int argc, char **argv);
 int rc_cmd_prune(int argc, char **argv);
 int rc_cmd_quantize(int argc, char **argv);
 

@@ -10,6 +10,7 @@ static const rc_command commands[] = {
     {"inspect", "show a model's inputs, outputs, ops, sparsity and quantization grids", rc_cmd_inspect},
     {"eval", "run a model over data: accuracy, agreement with another model, outputs", rc_cmd_eval},
     {"distill", "fine-tune a compressed model against its dense original, masks kept", rc_cmd_distill},
+    {"batch", "run a manifest's zoo of distill jobs: parallel, resumable, sharded, with reports", rc_cmd_batch},
     {"prune", "make a sparse or narrower student from a dense model", rc_cmd_prune},
     {"quantize", "quantize a dense model to integer grids (QDQ) from calibration samples", rc_cmd_quantize},
 };

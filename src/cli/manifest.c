@@ -1,0 +1,589 @@
+/* Batch manifests: reading, checking and turning jobs into distill arguments. */
+#define _DEFAULT_SOURCE /* realpath */
+#include "cli/manifest.h"
+
+#include <cJSON.h>
+#include <errno.h>
+#include <limits.h>
+#include <math.h>
+#include <stdarg.h>
+#include <stdio.h>
+#include <stdlib.h>
+#include <string.h>
+#include <sys/stat.h>
+
+#include "cli/cli_data.h"
+#include "cli/sha256.h"
+#include "core/alloc.h"
+
+#define MANIFEST_MAX_BYTES (16 << 20)
+#define MAX_JOBS 100000
+#define MAX_NAME 100
+#define MAX_LIST 32
+#define MAX_INT 9007199254740992.0 /* 2^53: larger integers are not exact in JSON numbers */
+
+typedef enum kind {
+  K_PATH,    /* string: a file */
+  K_DATA,    /* string, array of strings, or object input name -> file */
+  K_INT,
+  K_NUM,
+  K_CHOICE,  /* string, one of `choices` */
+  K_NUMLIST, /* number or array of numbers, joined with ',' */
+  K_STRLIST, /* string or array of strings, the option repeated */
+  K_FLAG     /* boolean: true gives the option */
+} kind;
+
+typedef enum where { ANYWHERE, JOB_ONLY, BATCH_OWNED } where;
+
+typedef struct key_def {
+  const char *key;
+  kind k;
+  where w;
+  double lo, hi;
+  const char *const *choices;
+} key_def;
+
+static const char *const OPTIMIZERS[] = {"adamw", "sgd", NULL};
+static const char *const SCHEDULES[] = {"cosine", "step", "constant", NULL};
+static const char *const LOSSES[] = {"kd", "logit-mse", NULL};
+static const char *const BN_MODES[] = {"frozen", "recalibrate", "train", NULL};
+
+/* Every `recoup distill` option; ranges as distill checks them. The order is
+ * the order of the arguments given to distill. */
+static const key_def KEYS[] = {
+    {"name", K_CHOICE, JOB_ONLY, 0, 0, NULL},
+    {"teacher", K_PATH, ANYWHERE, 0, 0, NULL},
+    {"student", K_PATH, ANYWHERE, 0, 0, NULL},
+    {"data", K_DATA, ANYWHERE, 0, 0, NULL},
+    {"labels", K_PATH, ANYWHERE, 0, 0, NULL},
+    {"val_data", K_DATA, ANYWHERE, 0, 0, NULL},
+    {"val_labels", K_PATH, ANYWHERE, 0, 0, NULL},
+    {"out", K_PATH, JOB_ONLY, 0, 0, NULL},
+    {"val_split", K_NUM, ANYWHERE, 1e-6, 0.9, NULL},
+    {"scale", K_NUM, ANYWHERE, -HUGE_VAL, HUGE_VAL, NULL},
+    {"mean", K_NUMLIST, ANYWHERE, -HUGE_VAL, HUGE_VAL, NULL},
+    {"std", K_NUMLIST, ANYWHERE, -HUGE_VAL, HUGE_VAL, NULL},
+    {"epochs", K_INT, ANYWHERE, 1, 1000000, NULL},
+    {"steps", K_INT, ANYWHERE, 1, MAX_INT, NULL},
+    {"batch", K_INT, ANYWHERE, 1, 65536, NULL},
+    {"optimizer", K_CHOICE, ANYWHERE, 0, 0, OPTIMIZERS},
+    {"lr", K_NUM, ANYWHERE, 1e-12, 10, NULL},
+    {"schedule", K_CHOICE, ANYWHERE, 0, 0, SCHEDULES},
+    {"warmup", K_INT, ANYWHERE, 0, MAX_INT, NULL},
+    {"step_size", K_INT, ANYWHERE, 1, MAX_INT, NULL},
+    {"gamma", K_NUM, ANYWHERE, 1e-9, 1, NULL},
+    {"weight_decay", K_NUM, ANYWHERE, 0, 1, NULL},
+    {"momentum", K_NUM, ANYWHERE, 0, 0.9999, NULL},
+    {"no_nesterov", K_FLAG, ANYWHERE, 0, 0, NULL},
+    {"clip", K_NUM, ANYWHERE, 0, 1e9, NULL},
+    {"loss", K_CHOICE, ANYWHERE, 0, 0, LOSSES},
+    {"temperature", K_NUM, ANYWHERE, 1e-3, 1e3, NULL},
+    {"alpha", K_NUM, ANYWHERE, 0, 1, NULL},
+    {"bn", K_CHOICE, ANYWHERE, 0, 0, BN_MODES},
+    {"train", K_STRLIST, ANYWHERE, 0, 0, NULL},
+    {"freeze", K_STRLIST, ANYWHERE, 0, 0, NULL},
+    {"seed", K_INT, ANYWHERE, 0, MAX_INT, NULL},
+    {"checkpoint_every", K_INT, ANYWHERE, 0, MAX_INT, NULL},
+    /* recoup batch sets these itself. */
+    {"threads", K_INT, BATCH_OWNED, 0, 0, NULL},
+    {"json", K_FLAG, BATCH_OWNED, 0, 0, NULL},
+    {"checkpoint", K_PATH, BATCH_OWNED, 0, 0, NULL},
+    {"resume", K_PATH, BATCH_OWNED, 0, 0, NULL},
+    {"report", K_PATH, BATCH_OWNED, 0, 0, NULL},
+};
+#define N_KEYS ((int)(sizeof KEYS / sizeof KEYS[0]))
+
+/* ---- Growing string lists ---------------------------------------------------- */
+
+typedef struct strlist {
+  char **v;
+  int n, cap;
+} strlist;
+
+static rc_status push(strlist *l, const char *s, rc_err *e) {
+  if (l->n == l->cap) {
+    int cap = l->cap ? 2 * l->cap : 16;
+    char **v = rc__realloc(l->v, (size_t)cap * sizeof *v);
+    if (!v) return rc__fail(e, RC_ERR_NOMEM, "out of memory reading the manifest");
+    l->v = v;
+    l->cap = cap;
+  }
+  if (!(l->v[l->n] = rc__strdup(s))) return rc__fail(e, RC_ERR_NOMEM, "out of memory reading the manifest");
+  l->n++;
+  return RC_OK;
+}
+
+static void strlist_free(char **v, int n) {
+  for (int i = 0; i < n; i++) rc__free(v[i]);
+  rc__free(v);
+}
+
+/* ---- Error context ---------------------------------------------------------------- */
+
+typedef struct ctx {
+  const char *file;
+  char where[160]; /* "defaults" or "job 'name' (jobs[3])" */
+  const char *dir;
+  int allow_outside;
+  rc_err *e;
+} ctx;
+
+static rc_status field_error(ctx *c, const char *field, const char *fmt, ...) RC_PRINTF(3, 4);
+static rc_status field_error(ctx *c, const char *field, const char *fmt, ...) {
+  char msg[320];
+  va_list ap;
+  va_start(ap, fmt);
+  vsnprintf(msg, sizeof msg, fmt, ap);
+  va_end(ap);
+  if (field) return rc__fail(c->e, RC_ERR_INVALID, "manifest %s: %s: field '%s': %s", c->file, c->where, field, msg);
+  return rc__fail(c->e, RC_ERR_INVALID, "manifest %s: %s: %s", c->file, c->where, msg);
+}
+
+static const char *type_name(const cJSON *v) {
+  if (cJSON_IsString(v)) return "a string";
+  if (cJSON_IsNumber(v)) return "a number";
+  if (cJSON_IsBool(v)) return "a boolean";
+  if (cJSON_IsNull(v)) return "null";
+  if (cJSON_IsArray(v)) return "an array";
+  if (cJSON_IsObject(v)) return "an object";
+  return "an unknown value";
+}
+
+/* ---- Paths -------------------------------------------------------------------- */
+
+/* Collapse "." and ".." and repeated '/' in place. Returns 1 when ".." climbs
+ * above the start of a relative path (or above '/'). */
+static int normalize(char *p) {
+  int absolute = p[0] == '/', escaped = 0;
+  char *out = p, *seg = p;
+  char *starts[PATH_MAX / 2];
+  int depth = 0;
+  if (absolute) out++, seg++;
+  while (*seg) {
+    char *end = strchr(seg, '/');
+    size_t len = end ? (size_t)(end - seg) : strlen(seg);
+    if (len == 0 || (len == 1 && seg[0] == '.')) {
+      /* skip */
+    } else if (len == 2 && seg[0] == '.' && seg[1] == '.') {
+      if (depth > 0) out = starts[--depth];
+      else escaped = 1;
+    } else if (depth < PATH_MAX / 2) {
+      starts[depth++] = out;
+      if (out != (absolute ? p + 1 : p)) *out++ = '/';
+      memmove(out, seg, len);
+      out += len;
+    }
+    seg += len + (end ? 1 : 0);
+  }
+  *out = '\0';
+  if (out == p) strcpy(p, ".");
+  return escaped;
+}
+
+static int inside(const char *path, const char *dir) {
+  size_t n = strlen(dir);
+  return !strcmp(dir, "/") || (!strncmp(path, dir, n) && (path[n] == '/' || path[n] == '\0'));
+}
+
+/* Resolve `given` against the manifest folder; refuse absolute paths and
+ * escapes unless allowed. `must_exist` = 0 for outputs (their folder is
+ * checked for symbolic-link escapes instead). */
+static rc_status resolve_path(ctx *c, const char *field, const char *given, int must_exist, char *out) {
+  if (!*given) return field_error(c, field, "empty path");
+  if (given[0] == '/') {
+    if (!c->allow_outside)
+      return field_error(c, field, "absolute path '%s' refused (paths are relative to the manifest's folder; "
+                         "--allow-outside permits others)", given);
+    if (strlen(given) >= PATH_MAX) return field_error(c, field, "path too long");
+    strcpy(out, given);
+    normalize(out);
+  } else {
+    if (strlen(c->dir) + strlen(given) + 2 > PATH_MAX) return field_error(c, field, "path too long");
+    char rel[PATH_MAX];
+    strcpy(rel, given);
+    if (normalize(rel) && !c->allow_outside)
+      return field_error(c, field, "path '%s' leaves the manifest's folder (--allow-outside permits it)", given);
+    snprintf(out, PATH_MAX, "%s/%s", c->dir, rel);
+    normalize(out);
+  }
+  if (c->allow_outside) return RC_OK;
+  /* A symbolic link inside the folder may still point out of it. */
+  char real[PATH_MAX], probe[PATH_MAX];
+  strcpy(probe, out);
+  if (!must_exist) {
+    char *slash = strrchr(probe, '/');
+    if (slash && slash != probe) *slash = '\0';
+  }
+  if (realpath(probe, real) && !inside(real, c->dir))
+    return field_error(c, field, "path '%s' leads out of the manifest's folder through a symbolic link "
+                       "(--allow-outside permits it)", given);
+  return RC_OK;
+}
+
+/* ---- Values --------------------------------------------------------------------- */
+
+static const key_def *find_key(const char *key) {
+  for (int i = 0; i < N_KEYS; i++)
+    if (!strcmp(KEYS[i].key, key)) return &KEYS[i];
+  return NULL;
+}
+
+static void option_name(const key_def *k, char *buf, size_t n) {
+  snprintf(buf, n, "--%s", k->key);
+  for (char *p = buf; *p; p++)
+    if (*p == '_') *p = '-';
+}
+
+static rc_status check_number(ctx *c, const key_def *k, const cJSON *v) {
+  if (!cJSON_IsNumber(v)) return field_error(c, k->key, "expected a number, got %s", type_name(v));
+  double d = v->valuedouble;
+  if (!isfinite(d)) return field_error(c, k->key, "not a finite number");
+  if (k->k == K_INT && (d != floor(d) || d < k->lo || d > k->hi))
+    return field_error(c, k->key, "expected an integer in [%.0f, %.0f], got %.17g", k->lo, k->hi, d);
+  if (k->k == K_NUM && (d < k->lo || d > k->hi))
+    return field_error(c, k->key, "expected a number in [%g, %g], got %.17g", k->lo, k->hi, d);
+  if (!strcmp(k->key, "scale") && d == 0) return field_error(c, k->key, "must not be zero");
+  return RC_OK;
+}
+
+/* Check one key's value without building anything: used for every key of
+ * "defaults" and of each job before arguments are made. */
+static rc_status check_value(ctx *c, const key_def *k, const cJSON *v) {
+  switch (k->k) {
+    case K_PATH:
+      if (!cJSON_IsString(v)) return field_error(c, k->key, "expected a path (string), got %s", type_name(v));
+      return RC_OK;
+    case K_DATA: {
+      if (cJSON_IsString(v)) return RC_OK;
+      if (!cJSON_IsArray(v) && !cJSON_IsObject(v))
+        return field_error(c, k->key, "expected a path, an array of paths or an object of input name to path, "
+                           "got %s", type_name(v));
+      int n = cJSON_GetArraySize(v);
+      if (n == 0) return field_error(c, k->key, "empty");
+      if (n > CLI_MAX_DATA) return field_error(c, k->key, "more than %d files", CLI_MAX_DATA);
+      const cJSON *it;
+      cJSON_ArrayForEach(it, v) if (!cJSON_IsString(it))
+          return field_error(c, k->key, "every entry must be a path (string), got %s", type_name(it));
+      return RC_OK;
+    }
+    case K_INT:
+    case K_NUM: return check_number(c, k, v);
+    case K_CHOICE:
+      if (!cJSON_IsString(v)) return field_error(c, k->key, "expected a string, got %s", type_name(v));
+      if (k->choices) {
+        for (const char *const *s = k->choices; *s; s++)
+          if (!strcmp(*s, v->valuestring)) return RC_OK;
+        return field_error(c, k->key, "unknown value '%s'", v->valuestring);
+      }
+      return RC_OK;
+    case K_NUMLIST: {
+      if (cJSON_IsNumber(v)) return check_number(c, k, v);
+      if (!cJSON_IsArray(v)) return field_error(c, k->key, "expected a number or an array of numbers, got %s",
+                                                type_name(v));
+      int n = cJSON_GetArraySize(v);
+      if (n == 0 || n > CLI_MAX_CHANNELS) return field_error(c, k->key, "expected 1 to %d numbers", CLI_MAX_CHANNELS);
+      const cJSON *it;
+      cJSON_ArrayForEach(it, v) {
+        if (!cJSON_IsNumber(it) || !isfinite(it->valuedouble))
+          return field_error(c, k->key, "every entry must be a finite number, got %s", type_name(it));
+        if (!strcmp(k->key, "std") && it->valuedouble == 0) return field_error(c, k->key, "zero standard deviation");
+      }
+      return RC_OK;
+    }
+    case K_STRLIST: {
+      if (cJSON_IsString(v)) return RC_OK;
+      if (!cJSON_IsArray(v)) return field_error(c, k->key, "expected a string or an array of strings, got %s",
+                                                type_name(v));
+      if (cJSON_GetArraySize(v) > MAX_LIST) return field_error(c, k->key, "more than %d patterns", MAX_LIST);
+      const cJSON *it;
+      cJSON_ArrayForEach(it, v) if (!cJSON_IsString(it))
+          return field_error(c, k->key, "every entry must be a string, got %s", type_name(it));
+      return RC_OK;
+    }
+    case K_FLAG:
+      if (!cJSON_IsBool(v)) return field_error(c, k->key, "expected true or false, got %s", type_name(v));
+      return RC_OK;
+  }
+  return RC_OK;
+}
+
+static rc_status check_object(ctx *c, const cJSON *obj, int is_job) {
+  const cJSON *it;
+  cJSON_ArrayForEach(it, obj) {
+    const key_def *k = find_key(it->string);
+    if (!k) {
+      const char *hint = strchr(it->string, '-') ? " (write '-' as '_')" : "";
+      return field_error(c, it->string, "unknown key%s", hint);
+    }
+    if (k->w == BATCH_OWNED) return field_error(c, it->string, "set by recoup batch itself, not by the manifest");
+    if (k->w == JOB_ONLY && !is_job) return field_error(c, it->string, "belongs in each job, not in \"defaults\"");
+    for (const cJSON *o = obj->child; o != it; o = o->next)
+      if (!strcmp(o->string, it->string)) return field_error(c, it->string, "given twice");
+    RC_TRY(check_value(c, k, it));
+  }
+  return RC_OK;
+}
+
+/* ---- Building one job --------------------------------------------------------------- */
+
+static const cJSON *value_of(const cJSON *job, const cJSON *defaults, const char *key) {
+  const cJSON *v = cJSON_GetObjectItemCaseSensitive(job, key);
+  return v ? v : defaults ? cJSON_GetObjectItemCaseSensitive(defaults, key) : NULL;
+}
+
+static rc_status add_input(ctx *c, strlist *args, strlist *ins, const char *opt, const char *field,
+                           const char *prefix, const char *given) {
+  char resolved[PATH_MAX], arg[PATH_MAX + 256];
+  RC_TRY(resolve_path(c, field, given, 1, resolved));
+  RC_TRY(push(ins, resolved, c->e));
+  snprintf(arg, sizeof arg, "%s%s%s", prefix ? prefix : "", prefix ? "=" : "", resolved);
+  RC_TRY(push(args, opt, c->e));
+  return push(args, arg, c->e);
+}
+
+static rc_status add_option(ctx *c, cli_job *j, const key_def *k, const cJSON *v, strlist *args, strlist *ins) {
+  char opt[64], buf[64 * 32];
+  option_name(k, opt, sizeof opt);
+  switch (k->k) {
+    case K_PATH:
+      if (!strcmp(k->key, "out")) {
+        char resolved[PATH_MAX];
+        RC_TRY(resolve_path(c, "out", v->valuestring, 0, resolved));
+        if (!(j->out = rc__strdup(resolved)) || !(j->out_given = rc__strdup(v->valuestring)))
+          return rc__fail(c->e, RC_ERR_NOMEM, "out of memory");
+        RC_TRY(push(args, opt, c->e));
+        return push(args, resolved, c->e);
+      }
+      if (!strcmp(k->key, "teacher") && !(j->teacher_given = rc__strdup(v->valuestring)))
+        return rc__fail(c->e, RC_ERR_NOMEM, "out of memory");
+      if (!strcmp(k->key, "student") && !(j->student_given = rc__strdup(v->valuestring)))
+        return rc__fail(c->e, RC_ERR_NOMEM, "out of memory");
+      return add_input(c, args, ins, opt, k->key, NULL, v->valuestring);
+    case K_DATA: {
+      if (cJSON_IsString(v)) return add_input(c, args, ins, opt, k->key, NULL, v->valuestring);
+      const cJSON *it;
+      cJSON_ArrayForEach(it, v)
+          RC_TRY(add_input(c, args, ins, opt, k->key, cJSON_IsObject(v) ? it->string : NULL, it->valuestring));
+      return RC_OK;
+    }
+    case K_INT:
+    case K_NUM: snprintf(buf, sizeof buf, "%.17g", v->valuedouble); break;
+    case K_CHOICE: snprintf(buf, sizeof buf, "%s", v->valuestring); break;
+    case K_NUMLIST: {
+      if (cJSON_IsNumber(v)) {
+        snprintf(buf, sizeof buf, "%.9g", v->valuedouble);
+        break;
+      }
+      size_t o = 0;
+      const cJSON *it;
+      cJSON_ArrayForEach(it, v) o += (size_t)snprintf(buf + o, sizeof buf - o, "%s%.9g", o ? "," : "", it->valuedouble);
+      break;
+    }
+    case K_STRLIST: {
+      if (cJSON_IsString(v)) {
+        RC_TRY(push(args, opt, c->e));
+        return push(args, v->valuestring, c->e);
+      }
+      const cJSON *it;
+      cJSON_ArrayForEach(it, v) {
+        RC_TRY(push(args, opt, c->e));
+        RC_TRY(push(args, it->valuestring, c->e));
+      }
+      return RC_OK;
+    }
+    case K_FLAG: return cJSON_IsTrue(v) ? push(args, opt, c->e) : RC_OK;
+  }
+  RC_TRY(push(args, opt, c->e));
+  return push(args, buf, c->e);
+}
+
+static int valid_name(const char *s) {
+  size_t n = strlen(s);
+  if (n == 0 || n > MAX_NAME || s[0] == '.' || s[0] == '-') return 0;
+  for (const char *p = s; *p; p++)
+    if (!((*p >= 'a' && *p <= 'z') || (*p >= 'A' && *p <= 'Z') || (*p >= '0' && *p <= '9') || *p == '_' ||
+          *p == '-' || *p == '.'))
+      return 0;
+  return 1;
+}
+
+static rc_status build_job(ctx *c, cli_job *j, int index, const cJSON *job, const cJSON *defaults) {
+  j->index = index;
+  snprintf(c->where, sizeof c->where, "jobs[%d]", index);
+  if (!cJSON_IsObject(job)) return field_error(c, NULL, "expected an object, got %s", type_name(job));
+  const cJSON *name = cJSON_GetObjectItemCaseSensitive(job, "name");
+  if (!name) return field_error(c, "name", "missing");
+  if (!cJSON_IsString(name)) return field_error(c, "name", "expected a string, got %s", type_name(name));
+  if (!valid_name(name->valuestring))
+    return field_error(c, "name", "'%.100s' is not a usable name (1 to %d letters, digits, '_', '-' or '.', "
+                       "not starting with '.' or '-'; it names log and report files)", name->valuestring, MAX_NAME);
+  snprintf(c->where, sizeof c->where, "job '%s' (jobs[%d])", name->valuestring, index);
+  if (!(j->name = rc__strdup(name->valuestring))) return rc__fail(c->e, RC_ERR_NOMEM, "out of memory");
+  RC_TRY(check_object(c, job, 1));
+  static const char *const required[] = {"teacher", "student", "data", "out"};
+  for (int i = 0; i < 4; i++)
+    if (!value_of(job, defaults, required[i])) return field_error(c, required[i], "missing");
+  if (value_of(job, defaults, "val_labels") && !value_of(job, defaults, "val_data"))
+    return field_error(c, "val_labels", "needs 'val_data'");
+  strlist args = {0}, ins = {0};
+  rc_status s = RC_OK;
+  for (int i = 1; i < N_KEYS && s == RC_OK; i++) {
+    if (KEYS[i].w == BATCH_OWNED) continue;
+    const cJSON *v = value_of(job, defaults, KEYS[i].key);
+    if (v) s = add_option(c, j, &KEYS[i], v, &args, &ins);
+  }
+  j->args = args.v, j->n_args = args.n;
+  j->inputs = ins.v, j->n_inputs = ins.n;
+  return s;
+}
+
+/* ---- Whole-manifest checks ------------------------------------------------------------ */
+
+static int same_path(const char *a, const char *b) {
+  if (!strcmp(a, b)) return 1;
+  char ra[PATH_MAX], rb[PATH_MAX];
+  return realpath(a, ra) && realpath(b, rb) && !strcmp(ra, rb);
+}
+
+static rc_status check_across_jobs(ctx *c, const cli_manifest *m) {
+  for (int i = 0; i < m->n_jobs; i++) {
+    const cli_job *a = &m->jobs[i];
+    snprintf(c->where, sizeof c->where, "job '%s' (jobs[%d])", a->name, i);
+    for (int k = 0; k < i; k++) {
+      if (!strcmp(a->name, m->jobs[k].name))
+        return field_error(c, "name", "'%s' is also the name of jobs[%d]", a->name, k);
+      if (same_path(a->out, m->jobs[k].out))
+        return field_error(c, "out", "'%s' is also the output of job '%s'", a->out_given, m->jobs[k].name);
+    }
+    for (int k = 0; k < m->n_jobs; k++)
+      for (int f = 0; f < m->jobs[k].n_inputs; f++)
+        if (same_path(a->out, m->jobs[k].inputs[f])) {
+          if (k == i) return field_error(c, "out", "'%s' is one of this job's inputs", a->out_given);
+          return field_error(c, "out", "'%s' is an input of job '%s'", a->out_given, m->jobs[k].name);
+        }
+  }
+  return RC_OK;
+}
+
+static rc_status read_file(const char *path, char **text, size_t *len, rc_err *e) {
+  FILE *f = fopen(path, "rb");
+  if (!f) return rc__fail(e, RC_ERR_IO, "manifest %s: %s", path, strerror(errno));
+  struct stat st;
+  if (fstat(fileno(f), &st) != 0 || !S_ISREG(st.st_mode)) {
+    fclose(f);
+    return rc__fail(e, RC_ERR_IO, "manifest %s: not a regular file", path);
+  }
+  if (st.st_size > MANIFEST_MAX_BYTES) {
+    fclose(f);
+    return rc__fail(e, RC_ERR_LIMIT, "manifest %s: larger than %d MiB", path, MANIFEST_MAX_BYTES >> 20);
+  }
+  char *buf = rc__malloc((size_t)st.st_size + 1);
+  if (!buf) {
+    fclose(f);
+    return rc__fail(e, RC_ERR_NOMEM, "manifest %s: out of memory", path);
+  }
+  size_t n = fread(buf, 1, (size_t)st.st_size, f);
+  int bad = ferror(f);
+  fclose(f);
+  if (bad || n != (size_t)st.st_size) {
+    rc__free(buf);
+    return rc__fail(e, RC_ERR_IO, "manifest %s: read error", path);
+  }
+  buf[n] = '\0';
+  *text = buf;
+  *len = n;
+  return RC_OK;
+}
+
+static rc_status parse_error(const char *path, const char *text, rc_err *e) {
+  const char *at = cJSON_GetErrorPtr();
+  int line = 1;
+  if (at)
+    for (const char *p = text; p < at && *p; p++) line += *p == '\n';
+  return rc__fail(e, RC_ERR_FORMAT, "manifest %s: not valid JSON (near line %d)", path, line);
+}
+
+static rc_status load_jobs(cli_manifest *m, ctx *c, const cJSON *root) {
+  if (!cJSON_IsObject(root)) return field_error(c, NULL, "expected a JSON object with \"jobs\"");
+  const cJSON *it;
+  cJSON_ArrayForEach(it, root) if (strcmp(it->string, "defaults") && strcmp(it->string, "jobs") &&
+                                   strcmp(it->string, "title")) return field_error(c, it->string,
+                                                                                   "unknown key (expected "
+                                                                                   "\"title\", \"defaults\", "
+                                                                                   "\"jobs\")");
+  const cJSON *title = cJSON_GetObjectItemCaseSensitive(root, "title");
+  if (title && !cJSON_IsString(title)) return field_error(c, "title", "expected a string, got %s", type_name(title));
+  if (title && !(m->title = rc__strdup(title->valuestring))) return rc__fail(c->e, RC_ERR_NOMEM, "out of memory");
+  const cJSON *defaults = cJSON_GetObjectItemCaseSensitive(root, "defaults");
+  snprintf(c->where, sizeof c->where, "defaults");
+  if (defaults) {
+    if (!cJSON_IsObject(defaults)) return field_error(c, NULL, "expected an object, got %s", type_name(defaults));
+    RC_TRY(check_object(c, defaults, 0));
+  }
+  const cJSON *jobs = cJSON_GetObjectItemCaseSensitive(root, "jobs");
+  snprintf(c->where, sizeof c->where, "top level");
+  if (!jobs) return field_error(c, "jobs", "missing");
+  if (!cJSON_IsArray(jobs)) return field_error(c, "jobs", "expected an array, got %s", type_name(jobs));
+  int n = cJSON_GetArraySize(jobs);
+  if (n == 0) return field_error(c, "jobs", "no jobs");
+  if (n > MAX_JOBS) return field_error(c, "jobs", "more than %d jobs", MAX_JOBS);
+  if (!(m->jobs = rc__calloc((size_t)n, sizeof *m->jobs))) return rc__fail(c->e, RC_ERR_NOMEM, "out of memory");
+  int i = 0;
+  cJSON_ArrayForEach(it, jobs) {
+    m->n_jobs = i + 1;
+    RC_TRY(build_job(c, &m->jobs[i], i, it, defaults));
+    i++;
+  }
+  return check_across_jobs(c, m);
+}
+
+rc_status cli_manifest_load(cli_manifest *m, const char *path, int allow_outside, rc_err *e) {
+  memset(m, 0, sizeof *m);
+  char *text = NULL;
+  size_t len = 0;
+  RC_TRY(read_file(path, &text, &len, e));
+  cli_sha256 h;
+  cli_sha256_init(&h);
+  cli_sha256_update(&h, text, len);
+  cli_sha256_hex(&h, m->sha256);
+  char real[PATH_MAX];
+  if (!realpath(path, real)) {
+    rc__free(text);
+    return rc__fail(e, RC_ERR_IO, "manifest %s: %s", path, strerror(errno));
+  }
+  char *slash = strrchr(real, '/');
+  if (slash == real) slash[1] = '\0';
+  else *slash = '\0';
+  m->path = rc__strdup(path);
+  m->dir = rc__strdup(real);
+  cJSON *root = cJSON_ParseWithLength(text, len);
+  rc_status s;
+  if (!m->path || !m->dir) s = rc__fail(e, RC_ERR_NOMEM, "out of memory");
+  else if (!root) s = parse_error(path, text, e);
+  else {
+    ctx c = {path, "", m->dir, allow_outside, e};
+    s = load_jobs(m, &c, root);
+  }
+  cJSON_Delete(root);
+  rc__free(text);
+  if (s != RC_OK) cli_manifest_free(m);
+  return s;
+}
+
+void cli_manifest_free(cli_manifest *m) {
+  for (int i = 0; i < m->n_jobs; i++) {
+    cli_job *j = &m->jobs[i];
+    rc__free(j->name);
+    rc__free(j->out);
+    rc__free(j->out_given);
+    rc__free(j->teacher_given);
+    rc__free(j->student_given);
+    strlist_free(j->args, j->n_args);
+    strlist_free(j->inputs, j->n_inputs);
+  }
+  rc__free(m->jobs);
+  rc__free(m->path);
+  rc__free(m->dir);
+  rc__free(m->title);
+  memset(m, 0, sizeof *m);
+}

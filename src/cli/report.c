@@ -1,0 +1,760 @@
+/* Reports: JSON records, CSV and Markdown summaries, and one HTML page with
+ * SVG charts drawn here (no scripts, nothing fetched: it opens offline). */
+#include "cli/report.h"
+
+#include <errno.h>
+#include <fcntl.h>
+#include <math.h>
+#include <stdarg.h>
+#include <stdio.h>
+#include <stdlib.h>
+#include <string.h>
+#include <sys/stat.h>
+#include <time.h>
+#include <unistd.h>
+
+#include "core/alloc.h"
+
+/* Our palette: distinct in hue and lightness (also for the common forms of
+ * colour blindness), every colour dark enough for text on white. */
+#define C_COMPRESSED "#c0562f"
+#define C_RECOVERED "#1f5f99"
+#define C_DENSE "#1a1a1a"
+#define C_LOSS "#7a3db8"
+#define C_VALID "#0d7a5f"
+#define C_GRID "#e3e6ea"
+#define C_AXIS "#5b6169"
+
+#define CAUTION                                                                                             \
+  "Validate every recovered model on your own held-out data before deploying it. The figures in this "     \
+  "report hold only for the samples they were measured on (a held-out slice of the training data unless "  \
+  "validation data was given), and follow the rules of your domain for deploying models."
+
+/* ---- A growing text buffer ----------------------------------------------------- */
+
+typedef struct sbuf {
+  char *p;
+  size_t n, cap;
+  int oom;
+} sbuf;
+
+static void sb_add(sbuf *b, const char *s, size_t n) {
+  if (b->oom) return;
+  if (b->n + n + 1 > b->cap) {
+    size_t cap = b->cap ? b->cap : 4096;
+    while (cap < b->n + n + 1) cap *= 2;
+    char *p = rc__realloc(b->p, cap);
+    if (!p) {
+      b->oom = 1;
+      return;
+    }
+    b->p = p;
+    b->cap = cap;
+  }
+  memcpy(b->p + b->n, s, n);
+  b->n += n;
+  b->p[b->n] = '\0';
+}
+
+static void sb_printf(sbuf *b, const char *fmt, ...) RC_PRINTF(2, 3);
+static void sb_printf(sbuf *b, const char *fmt, ...) {
+  char small[1024];
+  va_list ap;
+  va_start(ap, fmt);
+  int n = vsnprintf(small, sizeof small, fmt, ap);
+  va_end(ap);
+  if (n < 0) return;
+  if ((size_t)n < sizeof small) {
+    sb_add(b, small, (size_t)n);
+    return;
+  }
+  char *big = rc__malloc((size_t)n + 1);
+  if (!big) {
+    b->oom = 1;
+    return;
+  }
+  va_start(ap, fmt);
+  vsnprintf(big, (size_t)n + 1, fmt, ap);
+  va_end(ap);
+  sb_add(b, big, (size_t)n);
+  rc__free(big);
+}
+
+/* Text for HTML and SVG: the five characters with meaning escaped. */
+static void sb_esc(sbuf *b, const char *s) {
+  for (; s && *s; s++) {
+    switch (*s) {
+      case '&': sb_add(b, "&amp;", 5); break;
+      case '<': sb_add(b, "&lt;", 4); break;
+      case '>': sb_add(b, "&gt;", 4); break;
+      case '"': sb_add(b, "&quot;", 6); break;
+      case '\'': sb_add(b, "&#39;", 5); break;
+      default: sb_add(b, s, 1);
+    }
+  }
+}
+
+/* ---- Files ---------------------------------------------------------------------- */
+
+rc_status cli_write_atomic(const char *path, const char *text, size_t n, rc_err *e) {
+  char tmp[4200];
+  snprintf(tmp, sizeof tmp, "%s.tmp.%ld", path, (long)getpid());
+  int fd = open(tmp, O_WRONLY | O_CREAT | O_TRUNC, 0644);
+  if (fd < 0) return rc__fail(e, RC_ERR_IO, "%s: %s", tmp, strerror(errno));
+  size_t done = 0;
+  while (done < n) {
+    ssize_t w = write(fd, text + done, n - done);
+    if (w < 0 && errno == EINTR) continue;
+    if (w <= 0) {
+      int err = errno;
+      close(fd);
+      unlink(tmp);
+      return rc__fail(e, RC_ERR_IO, "%s: %s", path, strerror(err));
+    }
+    done += (size_t)w;
+  }
+  if (fsync(fd) != 0 || close(fd) != 0) {
+    int err = errno;
+    unlink(tmp);
+    return rc__fail(e, RC_ERR_IO, "%s: %s", path, strerror(err));
+  }
+  if (rename(tmp, path) != 0) {
+    int err = errno;
+    unlink(tmp);
+    return rc__fail(e, RC_ERR_IO, "%s: %s", path, strerror(err));
+  }
+  return RC_OK;
+}
+
+static rc_status write_sbuf(const char *dir, const char *name, sbuf *b, rc_err *e) {
+  char path[4200];
+  snprintf(path, sizeof path, "%s/%s", dir, name);
+  if (b->oom) return rc__fail(e, RC_ERR_NOMEM, "%s: out of memory", path);
+  return cli_write_atomic(path, b->p ? b->p : "", b->n, e);
+}
+
+static rc_status write_json(const char *path, const cJSON *j, rc_err *e) {
+  char *text = cJSON_Print(j);
+  if (!text) return rc__fail(e, RC_ERR_NOMEM, "%s: out of memory", path);
+  size_t n = strlen(text);
+  text[n] = '\n'; /* cJSON_Print's NUL becomes the final newline */
+  rc_status s = cli_write_atomic(path, text, n + 1, e);
+  free(text);
+  return s;
+}
+
+static rc_status make_dir(const char *path, rc_err *e) {
+  if (mkdir(path, 0755) == 0 || errno == EEXIST) {
+    struct stat st;
+    if (stat(path, &st) == 0 && S_ISDIR(st.st_mode)) return RC_OK;
+    return rc__fail(e, RC_ERR_IO, "report folder %s: exists and is not a folder", path);
+  }
+  return rc__fail(e, RC_ERR_IO, "report folder %s: %s", path, strerror(errno));
+}
+
+rc_status cli_report_prepare(const char *dir, rc_err *e) {
+  char path[4200];
+  snprintf(path, sizeof path, "%s", dir);
+  /* Parents first, as `mkdir -p` does. */
+  for (char *p = path + 1; *p; p++)
+    if (*p == '/') {
+      *p = '\0';
+      if (mkdir(path, 0755) != 0 && errno != EEXIST) return rc__fail(e, RC_ERR_IO, "report folder %s: %s", path,
+                                                                     strerror(errno));
+      *p = '/';
+    }
+  RC_TRY(make_dir(path, e));
+  snprintf(path, sizeof path, "%s/logs", dir);
+  RC_TRY(make_dir(path, e));
+  snprintf(path, sizeof path, "%s/jobs", dir);
+  RC_TRY(make_dir(path, e));
+  if (access(dir, W_OK) != 0) return rc__fail(e, RC_ERR_IO, "report folder %s: not writable", dir);
+  return RC_OK;
+}
+
+rc_status cli_report_read(const char *dir, cJSON **report, rc_err *e) {
+  char path[4200];
+  snprintf(path, sizeof path, "%s/report.json", dir);
+  FILE *f = fopen(path, "rb");
+  if (!f) return rc__fail(e, RC_ERR_IO, "%s: %s", path, strerror(errno));
+  sbuf b = {0};
+  char buf[1 << 14];
+  size_t n;
+  while ((n = fread(buf, 1, sizeof buf, f)) > 0 && b.n < (64u << 20)) sb_add(&b, buf, n);
+  int bad = ferror(f) || b.n >= (64u << 20);
+  fclose(f);
+  if (bad || b.oom) {
+    rc__free(b.p);
+    return rc__fail(e, RC_ERR_IO, "%s: read error or too large", path);
+  }
+  *report = b.p ? cJSON_Parse(b.p) : NULL;
+  rc__free(b.p);
+  if (!*report || !cJSON_IsArray(cJSON_GetObjectItemCaseSensitive(*report, "jobs"))) {
+    cJSON_Delete(*report);
+    *report = NULL;
+    return rc__fail(e, RC_ERR_FORMAT, "%s: not a recoup report (expected an object with \"jobs\")", path);
+  }
+  return RC_OK;
+}
+
+/* ---- Records -------------------------------------------------------------------- */
+
+cJSON *cli_report_record(const char *name, int index, const char *teacher, const char *student, const char *out,
+                         const char *status, const char *error, const char *log, cJSON *result,
+                         double wall_seconds) {
+  cJSON *r = cJSON_CreateObject();
+  if (!r) {
+    cJSON_Delete(result);
+    return NULL;
+  }
+  cJSON_AddStringToObject(r, "name", name);
+  cJSON_AddNumberToObject(r, "index", index);
+  cJSON_AddStringToObject(r, "status", status);
+  if (error) cJSON_AddStringToObject(r, "error", error);
+  else cJSON_AddNullToObject(r, "error");
+  cJSON_AddStringToObject(r, "teacher", teacher ? teacher : "");
+  cJSON_AddStringToObject(r, "student", student ? student : "");
+  cJSON_AddStringToObject(r, "out", out ? out : "");
+  if (log) cJSON_AddStringToObject(r, "log", log);
+  cJSON_AddNumberToObject(r, "wall_seconds", wall_seconds);
+  if (result) {
+    /* Move the distill results over, after the identity fields. */
+    while (result->child) {
+      cJSON *it = cJSON_DetachItemViaPointer(result, result->child);
+      if (!strcmp(it->string, "teacher") || !strcmp(it->string, "student") || !strcmp(it->string, "out") ||
+          cJSON_GetObjectItemCaseSensitive(r, it->string)) {
+        cJSON_Delete(it);
+        continue;
+      }
+      cJSON_AddItemToObject(r, it->string, it);
+    }
+    cJSON_Delete(result);
+  }
+  return r;
+}
+
+static double num(const cJSON *o, const char *key) {
+  const cJSON *v = o ? cJSON_GetObjectItemCaseSensitive(o, key) : NULL;
+  return cJSON_IsNumber(v) ? v->valuedouble : NAN;
+}
+
+static const char *str(const cJSON *o, const char *key) {
+  const cJSON *v = o ? cJSON_GetObjectItemCaseSensitive(o, key) : NULL;
+  return cJSON_IsString(v) ? v->valuestring : "";
+}
+
+static double metric(const cJSON *rec, const char *model, const char *key) {
+  return num(cJSON_GetObjectItemCaseSensitive(rec, model), key);
+}
+
+static int is_ok(const cJSON *rec) { return !strcmp(str(rec, "status"), CLI_JOB_OK); }
+
+static int has_results(const cJSON *rec) {
+  return is_ok(rec) && cJSON_IsObject(cJSON_GetObjectItemCaseSensitive(rec, "recovered"));
+}
+
+/* The figure compared across the zoo: accuracy when every job measured it
+ * (labels given), else agreement with the dense model. */
+static const char *zoo_metric(const cJSON *records) {
+  const cJSON *r;
+  int any = 0;
+  cJSON_ArrayForEach(r, records) if (has_results(r)) {
+    any = 1;
+    if (isnan(metric(r, "recovered", "accuracy"))) return "agreement";
+  }
+  return any ? "accuracy" : "agreement";
+}
+
+static void pct(char *buf, size_t n, double v) {
+  if (isnan(v)) snprintf(buf, n, "–");
+  else snprintf(buf, n, "%.2f%%", 100 * v);
+}
+
+static void fmt_duration(char *buf, size_t n, double s) {
+  if (isnan(s)) snprintf(buf, n, "–");
+  else if (s < 60) snprintf(buf, n, "%.1f s", s);
+  else {
+    long t = (long)(s + 0.5);
+    snprintf(buf, n, "%ld:%02ld:%02ld", t / 3600, t / 60 % 60, t % 60);
+  }
+}
+
+static const char *masks_text(const cJSON *rec) {
+  const cJSON *m = cJSON_GetObjectItemCaseSensitive(rec, "masks_intact");
+  if (!cJSON_IsBool(m)) return "–";
+  return cJSON_IsTrue(m) ? "intact" : "BROKEN";
+}
+
+/* ---- CSV and Markdown ------------------------------------------------------------- */
+
+static void csv_field(sbuf *b, const char *s, int last) {
+  /* RFC 4180: quote fields holding a comma, quote or line break. */
+  if (strpbrk(s, ",\"\r\n")) {
+    sb_add(b, "\"", 1);
+    for (const char *p = s; *p; p++) {
+      if (*p == '"') sb_add(b, "\"", 1);
+      sb_add(b, p, 1);
+    }
+    sb_add(b, "\"", 1);
+  } else {
+    sb_add(b, s, strlen(s));
+  }
+  sb_add(b, last ? "\r\n" : ",", last ? 2 : 1);
+}
+
+static void csv_num(sbuf *b, double v) {
+  if (isnan(v)) sb_add(b, ",", 1);
+  else sb_printf(b, "%.6g,", v);
+}
+
+static void write_csv(sbuf *b, const cJSON *records) {
+  static const char *const models[] = {"dense", "compressed", "recovered"};
+  sb_printf(b, "name,status,teacher,student,out");
+  for (int m = 0; m < 3; m++) sb_printf(b, ",%s_accuracy,%s_agreement,%s_kl", models[m], models[m], models[m]);
+  sb_printf(b, ",improved,best_epoch,steps,seconds,samples_per_s,masks_intact,error\r\n");
+  const cJSON *r;
+  cJSON_ArrayForEach(r, records) {
+    csv_field(b, str(r, "name"), 0);
+    csv_field(b, str(r, "status"), 0);
+    csv_field(b, str(r, "teacher"), 0);
+    csv_field(b, str(r, "student"), 0);
+    csv_field(b, str(r, "out"), 0);
+    for (int m = 0; m < 3; m++) {
+      csv_num(b, metric(r, models[m], "accuracy"));
+      csv_num(b, metric(r, models[m], "agreement"));
+      csv_num(b, metric(r, models[m], "kl"));
+    }
+    const cJSON *imp = cJSON_GetObjectItemCaseSensitive(r, "improved");
+    csv_field(b, cJSON_IsBool(imp) ? (cJSON_IsTrue(imp) ? "true" : "false") : "", 0);
+    csv_num(b, num(r, "best_epoch"));
+    csv_num(b, num(r, "steps"));
+    csv_num(b, num(r, "seconds"));
+    csv_num(b, num(r, "samples_per_s"));
+    const cJSON *mk = cJSON_GetObjectItemCaseSensitive(r, "masks_intact");
+    csv_field(b, cJSON_IsBool(mk) ? (cJSON_IsTrue(mk) ? "true" : "false") : "", 0);
+    csv_field(b, str(r, "error"), 1);
+  }
+}
+
+static void md_text(sbuf *b, const char *s) {
+  for (; *s; s++) {
+    if (*s == '|') sb_add(b, "\\|", 2);
+    else if (*s == '\n' || *s == '\r') sb_add(b, " ", 1);
+    else sb_add(b, s, 1);
+  }
+}
+
+static void write_markdown(sbuf *b, const char *title, const cJSON *records) {
+  const char *metric_name = zoo_metric(records);
+  sb_printf(b, "# %s\n\n", title);
+  sb_printf(b, "Figures are %s on each job's validation samples (%s).\n\n", metric_name,
+            strcmp(metric_name, "accuracy") ? "top-1 agreement with the dense model" : "top-1 against labels");
+  sb_printf(b, "| job | status | dense | compressed | recovered | change | steps | time | samples/s | masks |\n");
+  sb_printf(b, "|---|---|---:|---:|---:|---:|---:|---:|---:|---|\n");
+  const cJSON *r;
+  cJSON_ArrayForEach(r, records) {
+    char d[32], c[32], v[32], ch[32] = "–", t[32];
+    pct(d, sizeof d, metric(r, "dense", metric_name));
+    pct(c, sizeof c, metric(r, "compressed", metric_name));
+    pct(v, sizeof v, metric(r, "recovered", metric_name));
+    double delta = metric(r, "recovered", metric_name) - metric(r, "compressed", metric_name);
+    if (!isnan(delta)) snprintf(ch, sizeof ch, "%+.2f pt", 100 * delta);
+    fmt_duration(t, sizeof t, num(r, "seconds"));
+    sb_add(b, "| ", 2);
+    md_text(b, str(r, "name"));
+    sb_add(b, " | ", 3);
+    md_text(b, str(r, "status"));
+    if (!is_ok(r) && *str(r, "error")) {
+      sb_add(b, ": ", 2);
+      md_text(b, str(r, "error"));
+    }
+    double sps = num(r, "samples_per_s"), steps = num(r, "steps");
+    char sps_s[32] = "–", steps_s[32] = "–";
+    if (!isnan(sps)) snprintf(sps_s, sizeof sps_s, "%.0f", sps);
+    if (!isnan(steps)) snprintf(steps_s, sizeof steps_s, "%.0f", steps);
+    sb_printf(b, " | %s | %s | %s | %s | %s | %s | %s | %s |\n", d, c, v, ch, steps_s, t, sps_s, masks_text(r));
+  }
+  sb_printf(b, "\n**Caution.** %s\n", CAUTION);
+}
+
+/* ---- SVG charts ---------------------------------------------------------------------- */
+
+/* A tick step of 1, 2 or 5 times a power of ten giving about `want` ticks. */
+static double nice_step(double range, int want) {
+  if (!(range > 0)) return 1;
+  double raw = range / want, mag = pow(10, floor(log10(raw))), f = raw / mag;
+  return (f <= 1 ? 1 : f <= 2 ? 2 : f <= 5 ? 5 : 10) * mag;
+}
+
+typedef struct frame {
+  double x0, x1, y0, y1; /* plot area in pixels: y0 top, y1 bottom */
+} frame;
+
+static double map(double v, double lo, double hi, double p0, double p1) {
+  return hi > lo ? p0 + (v - lo) / (hi - lo) * (p1 - p0) : (p0 + p1) / 2;
+}
+
+/* Horizontal grid lines and tick labels on the left or right edge. */
+static void y_axis(sbuf *b, const frame *f, double lo, double hi, double step, int right, int percent,
+                   const char *colour, const char *label) {
+  for (double v = lo; v <= hi + step * 1e-6; v += step) {
+    double y = map(v, lo, hi, f->y1, f->y0);
+    if (!right) sb_printf(b, "<line x1=\"%.1f\" x2=\"%.1f\" y1=\"%.1f\" y2=\"%.1f\" stroke=\"%s\"/>", f->x0, f->x1, y,
+                          y, C_GRID);
+    double digits = step >= 1 ? 0 : ceil(-log10(step * (percent ? 100 : 1)) - 1e-9);
+    if (digits < 0) digits = 0;
+    sb_printf(b, "<text x=\"%.1f\" y=\"%.1f\" text-anchor=\"%s\" class=\"tick\">%.*f%s</text>",
+              right ? f->x1 + 6 : f->x0 - 6, y + 4, right ? "start" : "end", (int)digits,
+              percent ? 100 * v : v, percent ? "%" : "");
+  }
+  double cx = right ? f->x1 + 50 : f->x0 - 50, cy = (f->y0 + f->y1) / 2;
+  sb_printf(b, "<text x=\"%.1f\" y=\"%.1f\" transform=\"rotate(-90 %.1f %.1f)\" text-anchor=\"middle\" "
+            "class=\"axis-title\" fill=\"%s\">", cx, cy, cx, cy, colour);
+  sb_esc(b, label);
+  sb_add(b, "</text>", 7);
+  sb_printf(b, "<line x1=\"%.1f\" x2=\"%.1f\" y1=\"%.1f\" y2=\"%.1f\" stroke=\"%s\"/>", right ? f->x1 : f->x0,
+            right ? f->x1 : f->x0, f->y0, f->y1, C_AXIS);
+}
+
+static void legend_item(sbuf *b, double x, double y, const char *colour, const char *shape, const char *label) {
+  if (!strcmp(shape, "line") || !strcmp(shape, "dashed"))
+    sb_printf(b, "<line x1=\"%.1f\" x2=\"%.1f\" y1=\"%.1f\" y2=\"%.1f\" stroke=\"%s\" stroke-width=\"3\"%s/>", x,
+              x + 22, y - 4, y - 4, colour, shape[0] == 'd' ? " stroke-dasharray=\"6 3\"" : "");
+  else
+    sb_printf(b, "<rect x=\"%.1f\" y=\"%.1f\" width=\"14\" height=\"12\" fill=\"%s\"/>", x + 4, y - 10, colour);
+  sb_printf(b, "<text x=\"%.1f\" y=\"%.1f\" class=\"legend\">", x + 28, y);
+  sb_esc(b, label);
+  sb_add(b, "</text>", 7);
+}
+
+/* One job: training loss (left axis) and validation metric (right axis) by
+ * epoch; epoch 0 is the compressed input's validation. */
+static void history_chart(sbuf *b, const cJSON *rec) {
+  const cJSON *epochs = cJSON_GetObjectItemCaseSensitive(rec, "epochs");
+  int n = cJSON_GetArraySize(epochs);
+  const char *vm = isnan(metric(rec, "compressed", "accuracy")) ? "agreement" : "accuracy";
+  double lmax = 0, vlo = metric(rec, "compressed", vm), vhi = vlo;
+  for (int i = 0; i < n; i++) {
+    const cJSON *e = cJSON_GetArrayItem(epochs, i);
+    double l = num(e, "train_loss"), v = num(e, vm);
+    if (!isnan(l) && l > lmax) lmax = l;
+    if (!isnan(v)) vlo = isnan(vlo) || v < vlo ? v : vlo, vhi = isnan(vhi) || v > vhi ? v : vhi;
+  }
+  if (isnan(vlo)) vlo = 0, vhi = 1;
+  double lstep = nice_step(lmax > 0 ? lmax : 1, 5), ltop = lstep * ceil((lmax > 0 ? lmax : 1) / lstep);
+  double vstep = nice_step(fmax(vhi - vlo, 0.02), 5);
+  double vbot = fmax(0, vstep * floor(vlo / vstep - 0.5)), vtop = fmin(1, vstep * ceil(vhi / vstep + 0.5));
+  if (vtop <= vbot) vtop = fmin(1, vbot + vstep);
+  frame f = {72, 488, 44, 236};
+  const char *name = str(rec, "name");
+  sb_printf(b, "<svg xmlns=\"http://www.w3.org/2000/svg\" viewBox=\"0 0 560 290\" width=\"560\" height=\"290\" "
+            "role=\"img\" data-chart=\"history\" data-job=\"");
+  sb_esc(b, name);
+  sb_printf(b, "\"><title>Training loss and validation %s by epoch for ", vm);
+  sb_esc(b, name);
+  sb_add(b, "</title>", 8);
+  char vlabel[64];
+  snprintf(vlabel, sizeof vlabel, "validation %s", vm);
+  y_axis(b, &f, 0, ltop, lstep, 0, 0, C_LOSS, "training loss");
+  y_axis(b, &f, vbot, vtop, vstep, 1, 1, C_VALID, vlabel);
+  int xstep = n <= 10 ? 1 : (int)nice_step(n, 8);
+  for (int i = 0; i <= n; i += xstep) {
+    double x = map(i, 0, n, f.x0, f.x1);
+    sb_printf(b, "<line x1=\"%.1f\" x2=\"%.1f\" y1=\"%.1f\" y2=\"%.1f\" stroke=\"%s\"/>", x, x, f.y1, f.y1 + 5,
+              C_AXIS);
+    sb_printf(b, "<text x=\"%.1f\" y=\"%.1f\" text-anchor=\"middle\" class=\"tick\">%d</text>", x, f.y1 + 18, i);
+  }
+  sb_printf(b, "<line x1=\"%.1f\" x2=\"%.1f\" y1=\"%.1f\" y2=\"%.1f\" stroke=\"%s\"/>", f.x0, f.x1, f.y1, f.y1,
+            C_AXIS);
+  sb_printf(b, "<text x=\"%.1f\" y=\"%.1f\" text-anchor=\"middle\" class=\"axis-title\">epoch "
+            "(0 = compressed input)</text>", (f.x0 + f.x1) / 2, f.y1 + 40);
+  /* Series: a polyline each, with a marker at every point so a single
+   * epoch still shows. */
+  sbuf loss = {0}, val = {0}, marks = {0};
+  double v0 = metric(rec, "compressed", vm);
+  if (!isnan(v0)) {
+    double x = f.x0, y = map(v0, vbot, vtop, f.y1, f.y0);
+    sb_printf(&val, "%.1f,%.1f ", x, y);
+    sb_printf(&marks, "<circle cx=\"%.1f\" cy=\"%.1f\" r=\"3.5\" fill=\"%s\"/>", x, y, C_VALID);
+  }
+  for (int i = 0; i < n; i++) {
+    const cJSON *e = cJSON_GetArrayItem(epochs, i);
+    double x = map(i + 1, 0, n, f.x0, f.x1), l = num(e, "train_loss"), v = num(e, vm);
+    if (!isnan(l)) {
+      double y = map(l, 0, ltop, f.y1, f.y0);
+      sb_printf(&loss, "%.1f,%.1f ", x, y);
+      sb_printf(&marks, "<rect x=\"%.1f\" y=\"%.1f\" width=\"7\" height=\"7\" fill=\"%s\"/>", x - 3.5, y - 3.5,
+                C_LOSS);
+    }
+    if (!isnan(v)) {
+      double y = map(v, vbot, vtop, f.y1, f.y0);
+      sb_printf(&val, "%.1f,%.1f ", x, y);
+      sb_printf(&marks, "<circle cx=\"%.1f\" cy=\"%.1f\" r=\"3.5\" fill=\"%s\"/>", x, y, C_VALID);
+    }
+  }
+  sb_printf(b, "<polyline data-series=\"loss\" fill=\"none\" stroke=\"%s\" stroke-width=\"2.5\" points=\"%s\"/>",
+            C_LOSS, loss.p ? loss.p : "");
+  sb_printf(b, "<polyline data-series=\"validation\" fill=\"none\" stroke=\"%s\" stroke-width=\"2.5\" "
+            "stroke-dasharray=\"7 4\" points=\"%s\"/>", C_VALID, val.p ? val.p : "");
+  if (marks.p) sb_add(b, marks.p, marks.n);
+  b->oom |= loss.oom | val.oom | marks.oom;
+  rc__free(loss.p);
+  rc__free(val.p);
+  rc__free(marks.p);
+  legend_item(b, f.x0, 24, C_LOSS, "line", "training loss (left)");
+  legend_item(b, f.x0 + 200, 24, C_VALID, "dashed", "validation (right)");
+  sb_add(b, "</svg>", 6);
+}
+
+/* Across the zoo: compressed and recovered bars per job, the dense model's
+ * value as a black mark over each group. */
+static void zoo_chart(sbuf *b, const cJSON *records, const char *vm) {
+  int n = 0;
+  const cJSON *r;
+  cJSON_ArrayForEach(r, records) n += has_results(r);
+  if (!n) return;
+  double group = 96, width = fmax(560, 90 + group * n + 30);
+  frame f = {72, width - 30, 50, 260};
+  sb_printf(b, "<svg xmlns=\"http://www.w3.org/2000/svg\" viewBox=\"0 0 %.0f 330\" width=\"%.0f\" height=\"330\" "
+            "role=\"img\" data-chart=\"zoo\"><title>Validation %s of each job before and after recovery</title>",
+            width, width, vm);
+  char label[64];
+  snprintf(label, sizeof label, "validation %s", vm);
+  y_axis(b, &f, 0, 1, 0.2, 0, 1, C_AXIS, label);
+  sb_printf(b, "<line x1=\"%.1f\" x2=\"%.1f\" y1=\"%.1f\" y2=\"%.1f\" stroke=\"%s\"/>", f.x0, f.x1, f.y1, f.y1,
+            C_AXIS);
+  double gw = (f.x1 - f.x0) / n, bw = fmin(30, gw * 0.3);
+  int i = 0;
+  cJSON_ArrayForEach(r, records) {
+    if (!has_results(r)) continue;
+    double cx = f.x0 + gw * (i + 0.5);
+    static const char *const series[] = {"compressed", "recovered"};
+    static const char *const colours[] = {C_COMPRESSED, C_RECOVERED};
+    for (int s = 0; s < 2; s++) {
+      double v = metric(r, series[s], vm);
+      if (isnan(v)) continue;
+      double x = cx + (s ? 2 : -2 - bw), y = map(v, 0, 1, f.y1, f.y0);
+      sb_printf(b, "<rect data-series=\"%s\" x=\"%.1f\" y=\"%.1f\" width=\"%.1f\" height=\"%.1f\" fill=\"%s\">"
+                "<title>", series[s], x, y, bw, f.y1 - y, colours[s]);
+      sb_esc(b, str(r, "name"));
+      sb_printf(b, ", %s: %.2f%%</title></rect>", series[s], 100 * v);
+      sb_printf(b, "<text x=\"%.1f\" y=\"%.1f\" text-anchor=\"middle\" class=\"value\">%.1f</text>", x + bw / 2,
+                y - 4, 100 * v);
+    }
+    double d = metric(r, "dense", vm);
+    if (!isnan(d)) {
+      double y = map(d, 0, 1, f.y1, f.y0);
+      sb_printf(b, "<path data-series=\"dense\" d=\"M%.1f %.1fH%.1f\" stroke=\"%s\" stroke-width=\"3\">"
+                "<title>dense: %.2f%%</title></path>", cx - bw - 10, y, cx + bw + 10, C_DENSE, 100 * d);
+    }
+    /* Job name under its group, shortened to fit; the full name in a tooltip. */
+    const char *name = str(r, "name");
+    int maxc = (int)(gw / 7.5);
+    sb_printf(b, "<text x=\"%.1f\" y=\"%.1f\" text-anchor=\"middle\" class=\"tick\"><title>", cx, f.y1 + 18);
+    sb_esc(b, name);
+    sb_add(b, "</title>", 8);
+    if ((int)strlen(name) > maxc && maxc > 3) {
+      char shortened[128];
+      snprintf(shortened, sizeof shortened, "%.*s…", maxc - 1, name);
+      sb_esc(b, shortened);
+    } else {
+      sb_esc(b, name);
+    }
+    sb_add(b, "</text>", 7);
+    i++;
+  }
+  sb_printf(b, "<text x=\"%.1f\" y=\"%.1f\" text-anchor=\"middle\" class=\"axis-title\">job</text>",
+            (f.x0 + f.x1) / 2, f.y1 + 44);
+  legend_item(b, f.x0, 26, C_COMPRESSED, "box", "compressed (input)");
+  legend_item(b, f.x0 + 170, 26, C_RECOVERED, "box", "recovered (output)");
+  legend_item(b, f.x0 + 340, 26, C_DENSE, "line", "dense (teacher)");
+  sb_add(b, "</svg>", 6);
+}
+
+/* ---- HTML ------------------------------------------------------------------------------ */
+
+static const char *STYLE =
+    "body{font-family:'DejaVu Sans',Helvetica,Arial,sans-serif;color:#1a1a1a;background:#fff;margin:0 auto;"
+    "max-width:1120px;padding:24px 28px 48px;line-height:1.45}"
+    "h1{font-size:26px;margin:0 0 4px}h2{font-size:20px;margin:32px 0 10px;border-bottom:2px solid #d5d9de;"
+    "padding-bottom:4px}h3{font-size:17px;margin:0 0 8px}.sub{color:#4a4f55;margin:0}"
+    ".caution{background:#fff6e0;border-left:6px solid #b26b00;padding:10px 14px;margin:18px 0}"
+    "table{border-collapse:collapse;font-size:14px}th,td{padding:5px 10px;border-bottom:1px solid #dde1e5;"
+    "text-align:right;white-space:nowrap}th{background:#f1f3f5}td.l,th.l{text-align:left}"
+    ".ok{color:#0d6b3f;font-weight:bold}.bad{color:#b3261e;font-weight:bold}.err{white-space:normal;"
+    "text-align:left;color:#b3261e;max-width:420px}"
+    ".job{border:1px solid #d5d9de;border-radius:6px;padding:14px 16px;margin:16px 0}"
+    ".row{display:flex;flex-wrap:wrap;gap:22px;align-items:flex-start}"
+    ".facts{font-size:14px;color:#33383d;margin:8px 0 0}"
+    "svg text{font-family:'DejaVu Sans',Helvetica,Arial,sans-serif}"
+    "svg .tick{font-size:12px;fill:#33383d}svg .axis-title{font-size:13px;font-weight:bold}"
+    "svg .legend{font-size:13px;fill:#1a1a1a}svg .value{font-size:11px;fill:#1a1a1a}";
+
+static void status_cell(sbuf *b, const cJSON *r) {
+  sb_printf(b, "<td class=\"l %s\">", is_ok(r) ? "ok" : "bad");
+  sb_esc(b, str(r, "status"));
+  sb_add(b, "</td>", 5);
+}
+
+static void summary_table(sbuf *b, const cJSON *records, const char *vm) {
+  sb_printf(b, "<table><thead><tr><th class=\"l\">job</th><th class=\"l\">status</th><th>dense</th>"
+            "<th>compressed</th><th>recovered</th><th>change</th><th>KL to dense</th><th>steps</th><th>time</th>"
+            "<th>samples/s</th><th class=\"l\">masks</th></tr></thead><tbody>");
+  const cJSON *r;
+  cJSON_ArrayForEach(r, records) {
+    char d[32], c[32], v[32], ch[32] = "–", t[32], kl[32] = "–", steps[32] = "–", sps[32] = "–";
+    pct(d, sizeof d, metric(r, "dense", vm));
+    pct(c, sizeof c, metric(r, "compressed", vm));
+    pct(v, sizeof v, metric(r, "recovered", vm));
+    double delta = metric(r, "recovered", vm) - metric(r, "compressed", vm);
+    if (!isnan(delta)) snprintf(ch, sizeof ch, "%+.2f pt", 100 * delta);
+    if (!isnan(metric(r, "recovered", "kl"))) snprintf(kl, sizeof kl, "%.4f", metric(r, "recovered", "kl"));
+    if (!isnan(num(r, "steps"))) snprintf(steps, sizeof steps, "%.0f", num(r, "steps"));
+    if (!isnan(num(r, "samples_per_s"))) snprintf(sps, sizeof sps, "%.0f", num(r, "samples_per_s"));
+    fmt_duration(t, sizeof t, num(r, "seconds"));
+    sb_add(b, "<tr><td class=\"l\">", 18);
+    sb_esc(b, str(r, "name"));
+    sb_add(b, "</td>", 5);
+    status_cell(b, r);
+    if (!has_results(r)) {
+      sb_add(b, "<td colspan=\"9\" class=\"err\">", 28);
+      sb_esc(b, *str(r, "error") ? str(r, "error") : "no results");
+      sb_add(b, "</td></tr>", 10);
+      continue;
+    }
+    sb_printf(b, "<td>%s</td><td>%s</td><td><b>%s</b></td><td>%s</td><td>%s</td><td>%s</td><td>%s</td><td>%s</td>"
+              "<td class=\"l\">%s</td></tr>", d, c, v, ch, kl, steps, t, sps, masks_text(r));
+  }
+  sb_add(b, "</tbody></table>", 16);
+}
+
+static void epoch_table(sbuf *b, const cJSON *rec) {
+  const cJSON *epochs = cJSON_GetObjectItemCaseSensitive(rec, "epochs");
+  const char *vm = isnan(metric(rec, "compressed", "accuracy")) ? "agreement" : "accuracy";
+  char v[32];
+  pct(v, sizeof v, metric(rec, "compressed", vm));
+  sb_printf(b, "<table><thead><tr><th>epoch</th><th>training loss</th><th>validation %s</th><th>KL to dense</th>"
+            "</tr></thead><tbody><tr><td>0 (input)</td><td>–</td><td>%s</td><td>%.4f</td></tr>", vm, v,
+            metric(rec, "compressed", "kl"));
+  int best = (int)num(rec, "best_epoch"), i = 0;
+  const cJSON *e;
+  cJSON_ArrayForEach(e, epochs) {
+    i++;
+    char l[32] = "–";
+    if (!isnan(num(e, "train_loss"))) snprintf(l, sizeof l, "%.4f", num(e, "train_loss"));
+    pct(v, sizeof v, num(e, vm));
+    sb_printf(b, "<tr><td>%d%s</td><td>%s</td><td>%s</td><td>%.4f</td></tr>", i, i == best ? " (kept)" : "", l, v,
+              num(e, "kl"));
+  }
+  sb_add(b, "</tbody></table>", 16);
+}
+
+static void job_card(sbuf *b, const cJSON *r) {
+  sb_add(b, "<div class=\"job\"><h3>", 21);
+  sb_esc(b, str(r, "name"));
+  sb_printf(b, " <span class=\"%s\">(", is_ok(r) ? "ok" : "bad");
+  sb_esc(b, str(r, "status"));
+  sb_add(b, ")</span></h3>", 13);
+  sb_add(b, "<p class=\"facts\">", 17);
+  sb_esc(b, str(r, "student"));
+  sb_add(b, " → ", 5);
+  sb_esc(b, str(r, "out"));
+  sb_add(b, " (teacher ", 10);
+  sb_esc(b, str(r, "teacher"));
+  sb_add(b, ")</p>", 5);
+  if (!has_results(r)) {
+    sb_add(b, "<p class=\"err\">", 15);
+    sb_esc(b, *str(r, "error") ? str(r, "error") : "no results");
+    if (*str(r, "log")) {
+      sb_add(b, " (log: ", 7);
+      sb_esc(b, str(r, "log"));
+      sb_add(b, ")", 1);
+    }
+    sb_add(b, "</p></div>", 10);
+    return;
+  }
+  sb_add(b, "<div class=\"row\">", 17);
+  history_chart(b, r);
+  epoch_table(b, r);
+  sb_add(b, "</div>", 6);
+  char t[32];
+  fmt_duration(t, sizeof t, num(r, "seconds"));
+  const cJSON *imp = cJSON_GetObjectItemCaseSensitive(r, "improved");
+  sb_printf(b, "<p class=\"facts\">%.0f steps in %s (%.0f samples/s) on %.0f training and %.0f validation samples; "
+            "pruned entries kept at zero: %.0f (masks %s).%s</p></div>", num(r, "steps"), t,
+            num(r, "samples_per_s"), num(r, "train_samples"), num(r, "val_samples"), num(r, "pruned_zeros_kept"),
+            masks_text(r),
+            cJSON_IsFalse(imp) ? " Training never beat the input on validation: the input's values were written." : "");
+}
+
+static void write_html(sbuf *b, const char *title, const cJSON *meta, const cJSON *records) {
+  int n = 0, ok = 0;
+  const cJSON *r;
+  cJSON_ArrayForEach(r, records) n++, ok += is_ok(r);
+  const char *vm = zoo_metric(records);
+  sb_printf(b, "<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">"
+            "<meta name=\"viewport\" content=\"width=device-width, initial-scale=1\"><title>");
+  sb_esc(b, title);
+  sb_printf(b, "</title><style>%s</style></head><body>\n<h1>", STYLE);
+  sb_esc(b, title);
+  sb_printf(b, "</h1><p class=\"sub\">%d job%s: %d recovered, %d not", n, n == 1 ? "" : "s", ok, n - ok);
+  const char *when = str(meta, "generated"), *shard = str(meta, "shard");
+  if (*shard && strcmp(shard, "all")) sb_printf(b, " · shard %s", shard);
+  if (*when) {
+    sb_add(b, " · ", 4);
+    sb_esc(b, when);
+  }
+  sb_printf(b, " · recoup %s</p>\n", RECOUP_VERSION);
+  sb_printf(b, "<p class=\"caution\"><strong>Caution.</strong> %s</p>\n", CAUTION);
+  sb_printf(b, "<h2>Summary</h2><p>Validation %s of the dense model (teacher), the compressed input and the "
+            "recovered output, measured on each job's validation samples%s.</p>", vm,
+            strcmp(vm, "accuracy") ? " (agreement: how often the top class equals the dense model's)" : "");
+  summary_table(b, records, vm);
+  sb_add(b, "\n", 1);
+  if (ok) {
+    sb_printf(b, "<h2>Across the zoo</h2>");
+    zoo_chart(b, records, vm);
+  }
+  sb_printf(b, "\n<h2>Jobs</h2><p>Per job: training loss by epoch (left axis) and validation accuracy, or "
+            "agreement when there are no labels (right axis). The state written is the best epoch by validation.</p>\n");
+  cJSON_ArrayForEach(r, records) {
+    job_card(b, r);
+    sb_add(b, "\n", 1);
+  }
+  sb_add(b, "</body></html>\n", 15);
+}
+
+/* ---- Writing the folder ------------------------------------------------------------------ */
+
+rc_status cli_report_write(const char *dir, const cJSON *meta, const cJSON *records, rc_err *e) {
+  char path[4200];
+  const cJSON *r;
+  cJSON_ArrayForEach(r, records) {
+    snprintf(path, sizeof path, "%s/jobs/%s.json", dir, str(r, "name"));
+    RC_TRY(write_json(path, r, e));
+  }
+  cJSON *all = cJSON_CreateObject();
+  if (!all) return rc__fail(e, RC_ERR_NOMEM, "out of memory");
+  cJSON_AddItemToObject(all, "meta", cJSON_Duplicate(meta, 1));
+  cJSON_AddItemToObject(all, "jobs", cJSON_Duplicate(records, 1));
+  snprintf(path, sizeof path, "%s/report.json", dir);
+  rc_status s = write_json(path, all, e);
+  cJSON_Delete(all);
+  RC_TRY(s);
+  const char *title = *str(meta, "title") ? str(meta, "title") : "recoup report";
+  sbuf b = {0};
+  write_csv(&b, records);
+  s = write_sbuf(dir, "summary.csv", &b, e);
+  b.n = 0;
+  if (s == RC_OK) {
+    write_markdown(&b, title, records);
+    s = write_sbuf(dir, "summary.md", &b, e);
+    b.n = 0;
+  }
+  if (s == RC_OK) {
+    write_html(&b, title, meta, records);
+    s = write_sbuf(dir, "report.html", &b, e);
+  }
+  rc__free(b.p);
+  return s;
+}

@@ -1,0 +1,48 @@
+/* Reports of distillation runs, for `recoup batch --report DIR` and
+ * `recoup distill --report DIR`.
+ *
+ * A record is one job: its name, paths, outcome, and the object that
+ * `recoup distill --json` prints (dense, compressed and recovered metrics,
+ * per-epoch history, steps, time, samples/s, mask check). A report folder
+ * holds:
+ *   report.json   every record plus "meta" (title, manifest hash, shard)
+ *   jobs/NAME.json one record per job
+ *   summary.csv, summary.md   one row per job
+ *   report.html   one self-contained page: tables and SVG charts drawn here,
+ *                 no scripts, no external resources. */
+#ifndef RC_CLI_REPORT_H
+#define RC_CLI_REPORT_H
+
+#include <cJSON.h>
+#include <stddef.h>
+
+#include "core/status.h"
+
+/* Job outcomes as written in records. */
+#define CLI_JOB_OK "ok"
+#define CLI_JOB_FAILED "failed"
+#define CLI_JOB_INTERRUPTED "interrupted"
+#define CLI_JOB_NOT_RUN "not run"
+
+/* Build a record. `result` (the distill --json object, or NULL) is taken
+ * over; its own teacher/student/out fields give way to the ones given here
+ * (as the manifest wrote them). `log` and `error` may be NULL. */
+cJSON *cli_report_record(const char *name, int index, const char *teacher, const char *student, const char *out,
+                         const char *status, const char *error, const char *log, cJSON *result,
+                         double wall_seconds);
+
+/* Create DIR, DIR/logs and DIR/jobs as needed. */
+rc_status cli_report_prepare(const char *dir, rc_err *e);
+
+/* Write every report file into DIR (see above). `records` is an array of
+ * records in job order; `meta` an object (copied). */
+rc_status cli_report_write(const char *dir, const cJSON *meta, const cJSON *records, rc_err *e);
+
+/* Read DIR/report.json; *report owns the parsed object. */
+rc_status cli_report_read(const char *dir, cJSON **report, rc_err *e);
+
+/* Write a whole file through a temporary file in the same folder and a
+ * rename, so readers never see half a file. */
+rc_status cli_write_atomic(const char *path, const char *text, size_t n, rc_err *e);
+
+#endif
