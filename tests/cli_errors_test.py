@@ -131,7 +131,7 @@ expect_error("distill wrong data shape", base + ["--data", w("x_wrong.npy"), "--
              absent=out)
 
 # Every command answers --help with usage on stdout and exit status 0.
-for cmd in ([], ["inspect"], ["eval"], ["distill"]):
+for cmd in ([], ["inspect"], ["eval"], ["distill"], ["batch"], ["prune"], ["quantize"]):
     r = subprocess.run([RECOUP] + cmd + ["--help"], capture_output=True, text=True, timeout=60)
     if r.returncode != 0 or "Usage: recoup" not in r.stdout:
         failures.append(f"--help for '{' '.join(cmd) or 'recoup'}': status {r.returncode}")
