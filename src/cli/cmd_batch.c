@@ -647,20 +647,13 @@ static void finish_job(batch *b, run *r, int wstatus) {
 /* ---- Reports and summary ---------------------------------------------------------------- */
 
 static cJSON *meta_json(const batch *b) {
-  cJSON *m = cJSON_CreateObject();
-  cJSON_AddStringToObject(m, "title", b->m.title ? b->m.title : "recoup batch report");
+  cJSON *m = cli_report_meta(b->m.title ? b->m.title : "recoup batch report");
   cJSON_AddStringToObject(m, "manifest", b->m.path);
   cJSON_AddStringToObject(m, "manifest_sha256", b->m.sha256);
   cJSON_AddNumberToObject(m, "total_jobs", b->m.n_jobs);
   char shard[48] = "all";
   if (b->a->shard_n > 1) snprintf(shard, sizeof shard, "%ld/%ld", b->a->shard_k, b->a->shard_n);
   cJSON_AddStringToObject(m, "shard", shard);
-  time_t t = time(NULL);
-  struct tm tm;
-  char when[64];
-  gmtime_r(&t, &tm);
-  strftime(when, sizeof when, "%Y-%m-%d %H:%M UTC", &tm);
-  cJSON_AddStringToObject(m, "generated", when);
   return m;
 }
 

@@ -14,6 +14,7 @@
 
 #include "cli/cli.h"
 #include "cli/cli_data.h"
+#include "cli/report.h"
 #include "onnx/model.h"
 #include "train/distill.h"
 
@@ -80,6 +81,8 @@ static void usage(FILE *f) {
       "Output:\n"
       "  --out FILE               the recovered model (never one of the inputs)\n"
       "  --json                   print the before/after results as JSON on stdout\n"
+      "  --report DIR             also write a report into DIR: report.html (charts),\n"
+      "                           summary.csv, summary.md and JSON records\n"
       "  -h, --help               show this help\n"
       "\n"
       "The best state by validation (accuracy with labels, else agreement with the\n"
@@ -104,6 +107,7 @@ typedef struct distill_args {
   float pair_weights[MAX_GLOBS];
   int n_pairs;
   const char *config;
+  const char *report;
   char *config_strings; /* pair names read from --config, freed at exit */
   rc_distill_config cfg;
 } distill_args;
@@ -113,7 +117,7 @@ enum {
   OPT_SCALE, OPT_MEAN, OPT_STD, OPT_EPOCHS, OPT_STEPS, OPT_BATCH, OPT_OPTIMIZER, OPT_LR, OPT_SCHEDULE,
   OPT_WARMUP, OPT_STEP_SIZE, OPT_GAMMA, OPT_WD, OPT_MOMENTUM, OPT_NO_NESTEROV, OPT_CLIP, OPT_LOSS,
   OPT_TEMPERATURE, OPT_ALPHA, OPT_BN, OPT_TRAIN, OPT_FREEZE, OPT_SEED, OPT_THREADS, OPT_OUT, OPT_JSON,
-  OPT_CHECKPOINT, OPT_CHECKPOINT_EVERY, OPT_RESUME, OPT_PAIR, OPT_CONFIG
+  OPT_CHECKPOINT, OPT_CHECKPOINT_EVERY, OPT_RESUME, OPT_PAIR, OPT_CONFIG, OPT_REPORT
 };
 
 static int number(const char *opt, const char *v, double lo, double hi, double *out) {
@@ -232,6 +236,7 @@ static int apply_option(distill_args *a, int c, const char *v) {
       a->pair_weights[a->n_pairs++] = 1.0f;
       return 0;
     case OPT_CONFIG: a->config = v; return 0;
+    case OPT_REPORT: a->report = v; return 0;
     case OPT_TEMPERATURE:
       if (number("temperature", v, 1e-3, 1e3, &d)) return RC_EXIT_USAGE;
       cfg->temperature = (float)d;
@@ -370,7 +375,8 @@ static int parse_args(distill_args *a, int argc, char **argv) {
       {"json", no_argument, NULL, OPT_JSON}, {"checkpoint", required_argument, NULL, OPT_CHECKPOINT},
       {"checkpoint-every", required_argument, NULL, OPT_CHECKPOINT_EVERY},
       {"resume", required_argument, NULL, OPT_RESUME}, {"pair", required_argument, NULL, OPT_PAIR},
-      {"config", required_argument, NULL, OPT_CONFIG}, {"help", no_argument, NULL, 'h'}, {NULL, 0, NULL, 0}};
+      {"config", required_argument, NULL, OPT_CONFIG}, {"report", required_argument, NULL, OPT_REPORT},
+      {"help", no_argument, NULL, 'h'}, {NULL, 0, NULL, 0}};
   memset(a, 0, sizeof *a);
   cli_data_opts_init(&a->data);
   rc_distill_config_defaults(&a->cfg);
@@ -516,47 +522,70 @@ static cJSON *metrics_json(const rc_metrics *m) {
   return o;
 }
 
+static cJSON *results_json(const distill_args *a, const rc_distill_result *r, double verify_diff) {
+  cJSON *root = cJSON_CreateObject();
+  cJSON_AddStringToObject(root, "teacher", a->teacher);
+  cJSON_AddStringToObject(root, "student", a->student);
+  cJSON_AddStringToObject(root, "out", a->out);
+  cJSON_AddNumberToObject(root, "train_samples", (double)r->n_train);
+  cJSON_AddNumberToObject(root, "val_samples", (double)r->n_val);
+  cJSON_AddItemToObject(root, "dense", metrics_json(&r->teacher));
+  cJSON_AddItemToObject(root, "compressed", metrics_json(&r->before));
+  cJSON_AddItemToObject(root, "recovered", metrics_json(&r->after));
+  cJSON_AddBoolToObject(root, "improved", r->improved);
+  cJSON_AddNumberToObject(root, "best_epoch", (double)r->best_epoch);
+  cJSON_AddNumberToObject(root, "steps", (double)r->steps_done);
+  cJSON_AddNumberToObject(root, "seconds", r->seconds);
+  cJSON_AddNumberToObject(root, "samples_per_s", r->samples_per_s);
+  cJSON_AddNumberToObject(root, "trainable_tensors", r->n_trainable_tensors);
+  cJSON_AddNumberToObject(root, "trainable_values", (double)r->n_trainable);
+  cJSON_AddNumberToObject(root, "pruned_zeros_kept", (double)r->n_frozen_zeros);
+  cJSON_AddBoolToObject(root, "masks_intact", r->mask_ok);
+  cJSON_AddNumberToObject(root, "quantized_weights_rewritten", r->n_grids);
+  cJSON_AddNumberToObject(root, "rollbacks", r->rollbacks);
+  cJSON_AddNumberToObject(root, "reload_max_diff", verify_diff);
+  cJSON *layers = cJSON_AddArrayToObject(root, "layers");
+  for (int i = 0; i < r->n_layers; i++) {
+    cJSON *o = cJSON_CreateObject();
+    cJSON_AddStringToObject(o, "teacher", r->layers[i].teacher);
+    cJSON_AddStringToObject(o, "student", r->layers[i].student);
+    /* JSON has no infinity: identical activations are reported as null. */
+    if (isfinite(r->layers[i].sqnr_before_db)) cJSON_AddNumberToObject(o, "sqnr_before_db", r->layers[i].sqnr_before_db);
+    else cJSON_AddNullToObject(o, "sqnr_before_db");
+    if (isfinite(r->layers[i].sqnr_after_db)) cJSON_AddNumberToObject(o, "sqnr_after_db", r->layers[i].sqnr_after_db);
+    else cJSON_AddNullToObject(o, "sqnr_after_db");
+    cJSON_AddItemToArray(layers, o);
+  }
+  cJSON *hist = cJSON_AddArrayToObject(root, "epochs");
+  for (int64_t i = 0; i < r->n_epochs; i++) {
+    cJSON *o = metrics_json(&r->epoch_val[i]);
+    cJSON_AddNumberToObject(o, "train_loss", r->epoch_loss[i]);
+    cJSON_AddItemToArray(hist, o);
+  }
+  return root;
+}
+
+/* --report DIR: the report files recoup batch writes, for this one run. */
+static rc_status write_report(const distill_args *a, const rc_distill_result *r, double verify_diff, rc_err *e) {
+  char name[256];
+  const char *slash = strrchr(a->out, '/');
+  snprintf(name, sizeof name, "%s", slash ? slash + 1 : a->out);
+  size_t n = strlen(name);
+  if (n > 5 && !strcmp(name + n - 5, ".onnx")) name[n - 5] = '\0';
+  char title[300];
+  snprintf(title, sizeof title, "recoup distill: %s", name);
+  cJSON *meta = cli_report_meta(title), *recs = cJSON_CreateArray();
+  cJSON_AddItemToArray(recs, cli_report_record(name, 0, a->teacher, a->student, a->out, CLI_JOB_OK, NULL, NULL,
+                                               results_json(a, r, verify_diff), r->seconds));
+  rc_status s = cli_report_write(a->report, meta, recs, e);
+  cJSON_Delete(meta);
+  cJSON_Delete(recs);
+  return s;
+}
+
 static void print_results(const distill_args *a, const rc_distill_result *r, double verify_diff) {
   if (a->json) {
-    cJSON *root = cJSON_CreateObject();
-    cJSON_AddStringToObject(root, "teacher", a->teacher);
-    cJSON_AddStringToObject(root, "student", a->student);
-    cJSON_AddStringToObject(root, "out", a->out);
-    cJSON_AddNumberToObject(root, "train_samples", (double)r->n_train);
-    cJSON_AddNumberToObject(root, "val_samples", (double)r->n_val);
-    cJSON_AddItemToObject(root, "dense", metrics_json(&r->teacher));
-    cJSON_AddItemToObject(root, "compressed", metrics_json(&r->before));
-    cJSON_AddItemToObject(root, "recovered", metrics_json(&r->after));
-    cJSON_AddBoolToObject(root, "improved", r->improved);
-    cJSON_AddNumberToObject(root, "best_epoch", (double)r->best_epoch);
-    cJSON_AddNumberToObject(root, "steps", (double)r->steps_done);
-    cJSON_AddNumberToObject(root, "seconds", r->seconds);
-    cJSON_AddNumberToObject(root, "samples_per_s", r->samples_per_s);
-    cJSON_AddNumberToObject(root, "trainable_tensors", r->n_trainable_tensors);
-    cJSON_AddNumberToObject(root, "trainable_values", (double)r->n_trainable);
-    cJSON_AddNumberToObject(root, "pruned_zeros_kept", (double)r->n_frozen_zeros);
-    cJSON_AddBoolToObject(root, "masks_intact", r->mask_ok);
-    cJSON_AddNumberToObject(root, "quantized_weights_rewritten", r->n_grids);
-    cJSON_AddNumberToObject(root, "rollbacks", r->rollbacks);
-    cJSON_AddNumberToObject(root, "reload_max_diff", verify_diff);
-    cJSON *layers = cJSON_AddArrayToObject(root, "layers");
-    for (int i = 0; i < r->n_layers; i++) {
-      cJSON *o = cJSON_CreateObject();
-      cJSON_AddStringToObject(o, "teacher", r->layers[i].teacher);
-      cJSON_AddStringToObject(o, "student", r->layers[i].student);
-      /* JSON has no infinity: identical activations are reported as null. */
-      if (isfinite(r->layers[i].sqnr_before_db)) cJSON_AddNumberToObject(o, "sqnr_before_db", r->layers[i].sqnr_before_db);
-      else cJSON_AddNullToObject(o, "sqnr_before_db");
-      if (isfinite(r->layers[i].sqnr_after_db)) cJSON_AddNumberToObject(o, "sqnr_after_db", r->layers[i].sqnr_after_db);
-      else cJSON_AddNullToObject(o, "sqnr_after_db");
-      cJSON_AddItemToArray(layers, o);
-    }
-    cJSON *hist = cJSON_AddArrayToObject(root, "epochs");
-    for (int64_t i = 0; i < r->n_epochs; i++) {
-      cJSON *o = metrics_json(&r->epoch_val[i]);
-      cJSON_AddNumberToObject(o, "train_loss", r->epoch_loss[i]);
-      cJSON_AddItemToArray(hist, o);
-    }
+    cJSON *root = results_json(a, r, verify_diff);
     char *text = cJSON_Print(root);
     if (text) puts(text);
     free(text);
@@ -644,6 +673,7 @@ int rc_cmd_distill(int argc, char **argv) {
   int rc = RC_EXIT_FAIL;
   double diff = 0;
   if (check_output_path(&a, &e)) goto out;
+  if (a.report && cli_report_prepare(a.report, &e) != RC_OK) goto out;
   if (rc_model_load(&teacher, a.teacher, NULL, &e) != RC_OK || rc_model_load(&student, a.student, NULL, &e) != RC_OK)
     goto out;
   if (rc_distill_check_pair(&teacher->graph, &student->graph, &e) != RC_OK) goto out;
@@ -680,6 +710,7 @@ int rc_cmd_distill(int argc, char **argv) {
     goto out;
   print_results(&a, &r, diff);
   remove_checkpoints(a.checkpoint);
+  if (a.report && write_report(&a, &r, diff, &e) != RC_OK) goto out;
   rc = RC_EXIT_OK;
 out:
   if (rc != RC_EXIT_OK) cli_fail(&e);

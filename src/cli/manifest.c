@@ -15,6 +15,7 @@
 #include "cli/cli_data.h"
 #include "cli/sha256.h"
 #include "core/alloc.h"
+#include "train/features.h"
 
 #define MANIFEST_MAX_BYTES (16 << 20)
 #define MAX_JOBS 100000
@@ -30,7 +31,8 @@ typedef enum kind {
   K_CHOICE,  /* string, one of `choices` */
   K_NUMLIST, /* number or array of numbers, joined with ',' */
   K_STRLIST, /* string or array of strings, the option repeated */
-  K_FLAG     /* boolean: true gives the option */
+  K_FLAG,    /* boolean: true gives the option */
+  K_TERMS    /* loss terms: "kd=1,hint=0.5" or {"kd": 1, "hint": 0.5} */
 } kind;
 
 typedef enum where { ANYWHERE, JOB_ONLY, BATCH_OWNED } where;
@@ -45,7 +47,6 @@ typedef struct key_def {
 
 static const char *const OPTIMIZERS[] = {"adamw", "sgd", NULL};
 static const char *const SCHEDULES[] = {"cosine", "step", "constant", NULL};
-static const char *const LOSSES[] = {"kd", "logit-mse", NULL};
 static const char *const BN_MODES[] = {"frozen", "recalibrate", "train", NULL};
 
 /* Every `recoup distill` option; ranges as distill checks them. The order is
@@ -76,7 +77,9 @@ static const key_def KEYS[] = {
     {"momentum", K_NUM, ANYWHERE, 0, 0.9999, NULL},
     {"no_nesterov", K_FLAG, ANYWHERE, 0, 0, NULL},
     {"clip", K_NUM, ANYWHERE, 0, 1e9, NULL},
-    {"loss", K_CHOICE, ANYWHERE, 0, 0, LOSSES},
+    {"loss", K_TERMS, ANYWHERE, 0, 0, NULL},
+    {"pair", K_STRLIST, ANYWHERE, 0, 0, NULL},
+    {"config", K_PATH, ANYWHERE, 0, 0, NULL},
     {"temperature", K_NUM, ANYWHERE, 1e-3, 1e3, NULL},
     {"alpha", K_NUM, ANYWHERE, 0, 1, NULL},
     {"bn", K_CHOICE, ANYWHERE, 0, 0, BN_MODES},
@@ -246,6 +249,23 @@ static rc_status check_number(ctx *c, const key_def *k, const cJSON *v) {
   return RC_OK;
 }
 
+/* Loss terms as distill's --loss text; -1 when the value has the wrong shape. */
+static int terms_text(const cJSON *v, char *buf, size_t n) {
+  if (cJSON_IsString(v)) {
+    snprintf(buf, n, "%s", v->valuestring);
+    return 0;
+  }
+  if (!cJSON_IsObject(v) || !v->child) return -1;
+  size_t o = 0;
+  const cJSON *it;
+  buf[0] = '\0';
+  cJSON_ArrayForEach(it, v) {
+    if (!cJSON_IsNumber(it) || o >= n) return -1;
+    o += (size_t)snprintf(buf + o, n - o, "%s%s=%.9g", o ? "," : "", it->string, it->valuedouble);
+  }
+  return o < n ? 0 : -1;
+}
+
 /* Check one key's value without building anything: used for every key of
  * "defaults" and of each job before arguments are made. */
 static rc_status check_value(ctx *c, const key_def *k, const cJSON *v) {
@@ -303,6 +323,17 @@ static rc_status check_value(ctx *c, const key_def *k, const cJSON *v) {
     case K_FLAG:
       if (!cJSON_IsBool(v)) return field_error(c, k->key, "expected true or false, got %s", type_name(v));
       return RC_OK;
+    case K_TERMS: {
+      char text[1024];
+      if (terms_text(v, text, sizeof text))
+        return field_error(c, k->key, "expected a string such as \"kd=1,hint=0.5\" or an object of term to weight "
+                           "(numbers), got %s", type_name(v));
+      /* The same parser distill uses, so the two can never disagree. */
+      rc_loss_spec spec;
+      rc_err pe = {0};
+      if (rc_loss_spec_parse(&spec, text, &pe) != RC_OK) return field_error(c, k->key, "%s", pe.msg);
+      return RC_OK;
+    }
   }
   return RC_OK;
 }
@@ -392,6 +423,7 @@ static rc_status add_option(ctx *c, cli_job *j, const key_def *k, const cJSON *v
       return RC_OK;
     }
     case K_FLAG: return cJSON_IsTrue(v) ? push(args, opt, c->e) : RC_OK;
+    case K_TERMS: terms_text(v, buf, sizeof buf); break;
   }
   RC_TRY(push(args, opt, c->e));
   return push(args, buf, c->e);

@@ -1,5 +1,6 @@
 /* Reports: JSON records, CSV and Markdown summaries, and one HTML page with
  * SVG charts drawn here (no scripts, nothing fetched: it opens offline). */
+#define _DEFAULT_SOURCE /* gmtime_r, fsync */
 #include "cli/report.h"
 
 #include <errno.h>
@@ -231,6 +232,19 @@ cJSON *cli_report_record(const char *name, int index, const char *teacher, const
     cJSON_Delete(result);
   }
   return r;
+}
+
+cJSON *cli_report_meta(const char *title) {
+  cJSON *m = cJSON_CreateObject();
+  if (!m) return NULL;
+  cJSON_AddStringToObject(m, "title", title);
+  time_t t = time(NULL);
+  struct tm tm;
+  char when[64];
+  gmtime_r(&t, &tm);
+  strftime(when, sizeof when, "%Y-%m-%d %H:%M UTC", &tm);
+  cJSON_AddStringToObject(m, "generated", when);
+  return m;
 }
 
 static double num(const cJSON *o, const char *key) {
@@ -588,7 +602,8 @@ static const char *STYLE =
     ".facts{font-size:14px;color:#33383d;margin:8px 0 0}"
     "svg text{font-family:'DejaVu Sans',Helvetica,Arial,sans-serif}"
     "svg .tick{font-size:12px;fill:#33383d}svg .axis-title{font-size:13px;font-weight:bold}"
-    "svg .legend{font-size:13px;fill:#1a1a1a}svg .value{font-size:11px;fill:#1a1a1a}";
+    "svg .legend{font-size:13px;fill:#1a1a1a}svg .value{font-size:11px;fill:#1a1a1a}"
+    "details{margin:8px 0 0;font-size:14px}summary{cursor:pointer;color:#1f5f99}";
 
 static void status_cell(sbuf *b, const cJSON *r) {
   sb_printf(b, "<td class=\"l %s\">", is_ok(r) ? "ok" : "bad");
@@ -649,6 +664,25 @@ static void epoch_table(sbuf *b, const cJSON *rec) {
   sb_add(b, "</tbody></table>", 16);
 }
 
+/* Per-layer closeness to the dense model, when distill measured it. */
+static void layer_table(sbuf *b, const cJSON *rec) {
+  const cJSON *layers = cJSON_GetObjectItemCaseSensitive(rec, "layers");
+  if (cJSON_GetArraySize(layers) == 0) return;
+  sb_printf(b, "<details><summary>Layer outputs against the dense model (%d layers; signal-to-noise ratio in dB, "
+            "higher is closer)</summary><table><thead><tr><th class=\"l\">student tensor</th><th>before</th>"
+            "<th>after</th></tr></thead><tbody>", cJSON_GetArraySize(layers));
+  const cJSON *l;
+  cJSON_ArrayForEach(l, layers) {
+    char before[32] = "identical", after[32] = "identical";
+    if (!isnan(num(l, "sqnr_before_db"))) snprintf(before, sizeof before, "%.1f", num(l, "sqnr_before_db"));
+    if (!isnan(num(l, "sqnr_after_db"))) snprintf(after, sizeof after, "%.1f", num(l, "sqnr_after_db"));
+    sb_add(b, "<tr><td class=\"l\">", 18);
+    sb_esc(b, str(l, "student"));
+    sb_printf(b, "</td><td>%s</td><td>%s</td></tr>", before, after);
+  }
+  sb_add(b, "</tbody></table></details>", 26);
+}
+
 static void job_card(sbuf *b, const cJSON *r) {
   sb_add(b, "<div class=\"job\"><h3>", 21);
   sb_esc(b, str(r, "name"));
@@ -681,10 +715,12 @@ static void job_card(sbuf *b, const cJSON *r) {
   fmt_duration(t, sizeof t, num(r, "seconds"));
   const cJSON *imp = cJSON_GetObjectItemCaseSensitive(r, "improved");
   sb_printf(b, "<p class=\"facts\">%.0f steps in %s (%.0f samples/s) on %.0f training and %.0f validation samples; "
-            "pruned entries kept at zero: %.0f (masks %s).%s</p></div>", num(r, "steps"), t,
+            "pruned entries kept at zero: %.0f (masks %s).%s</p>", num(r, "steps"), t,
             num(r, "samples_per_s"), num(r, "train_samples"), num(r, "val_samples"), num(r, "pruned_zeros_kept"),
             masks_text(r),
             cJSON_IsFalse(imp) ? " Training never beat the input on validation: the input's values were written." : "");
+  layer_table(b, r);
+  sb_add(b, "</div>", 6);
 }
 
 static void write_html(sbuf *b, const char *title, const cJSON *meta, const cJSON *records) {

@@ -31,6 +31,9 @@ cJSON *cli_report_record(const char *name, int index, const char *teacher, const
                          const char *status, const char *error, const char *log, cJSON *result,
                          double wall_seconds);
 
+/* A report's "meta" object: title and the time it was generated (UTC). */
+cJSON *cli_report_meta(const char *title);
+
 /* Create DIR, DIR/logs and DIR/jobs as needed. */
 rc_status cli_report_prepare(const char *dir, rc_err *e);
 
