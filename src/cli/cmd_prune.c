@@ -64,7 +64,10 @@ static int same_dims(const rc_tensor *a, const rc_tensor *b) {
 static double pct(int64_t a, int64_t b) { return b ? 100.0 * (double)a / (double)b : 0.0; }
 
 static void print_tables(const char *in, const char *out, const rc_prune_report *r) {
-  printf("%-28s %-20s %-20s %9s %5s  %s\n", "layer", "weight before", "after", "sparsity", "N:M", "note");
+  int w = 5;
+  for (int i = 0; i < r->n_layers; i++)
+    if ((int)strlen(r->layers[i].layer) > w) w = (int)strlen(r->layers[i].layer);
+  printf("%-*s %-16s %-16s %9s %5s  %s\n", w, "layer", "weight before", "after", "sparsity", "N:M", "note");
   for (int i = 0; i < r->n_layers; i++) {
     const rc_prune_layer *l = &r->layers[i];
     char b[64], a[64], nm[16] = "-";
@@ -72,7 +75,7 @@ static void print_tables(const char *in, const char *out, const rc_prune_report 
     if (same_dims(&l->before, &l->after)) snprintf(a, sizeof a, "=");
     else shape_text(&l->after, a, sizeof a);
     if (l->nm_m) snprintf(nm, sizeof nm, "%d:%d", l->nm_n, l->nm_m);
-    printf("%-28s %-20s %-20s %8.1f%% %5s  %s\n", l->layer, b, a, pct(l->zeros, rc_tensor_numel(&l->after)),
+    printf("%-*s %-16s %-16s %8.1f%% %5s  %s\n", w, l->layer, b, a, pct(l->zeros, rc_tensor_numel(&l->after)),
            nm, l->note);
   }
   char g1[32], g2[32];

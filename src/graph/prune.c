@@ -874,7 +874,9 @@ static rc_status refusal_notes(cp *c) {
     int r = find(c, i), why = c->why[r];
     if (!c->fixed[r] || why < 0 || seen[why]) continue;
     seen[why] = 1;
-    st = add_note(c->r, c->e, "channels kept: %s", c->reasons[why]);
+    int on_layer = 0; /* already said beside a layer */
+    for (int l = 0; l < c->r->n_layers && !on_layer; l++) on_layer = strstr(c->r->layers[l].note, c->reasons[why]) != NULL;
+    if (!on_layer) st = add_note(c->r, c->e, "channels kept: %s", c->reasons[why]);
   }
   rc__free(seen);
   return st;
