@@ -36,18 +36,12 @@ RUNS = {
     "channels50": ["--channels", "0.5"],
 }
 PRUNABLE = {"Conv", "ConvTranspose", "Gemm", "MatMul"}
-failures = []
-passed = 0
+RESULTS = []  # (name, ok, detail), printed as they come
 
 
 def check(name, ok, detail=""):
-    global passed
-    if ok:
-        passed += 1
-        print(f"ok   {name} {detail}")
-    else:
-        failures.append(f"{name} {detail}")
-        print(f"FAIL {name} {detail}")
+    RESULTS.append((name, bool(ok), detail))
+    print(("ok  " if ok else "FAIL"), name, detail)
 
 
 def recoup(args):
@@ -154,8 +148,11 @@ def check_case(case):
 def main():
     for case in CASES:
         check_case(case)
-    print(f"{passed} passed, {len(failures)} failed")
-    return 1 if failures else 0
+    bad = [r for r in RESULTS if not r[1]]
+    print(f"{len(RESULTS) - len(bad)} passed, {len(bad)} failed")
+    for name, _, detail in bad:
+        print(f"  failed: {name} {detail}")
+    return 1 if bad else 0
 
 
 if __name__ == "__main__":
