@@ -824,7 +824,7 @@ static int run_batch(batch_args *a) {
   }
   b.threads_per_job = threads / a->jobs > 0 ? (int)(threads / a->jobs) : 1;
   if (a->report) {
-    if (cli_report_prepare(a->report, &e) != RC_OK) goto out;
+    if (cli_report_prepare(a->report, 1, &e) != RC_OK) goto out;
     snprintf(b.state_path, sizeof b.state_path, "%s/state.json", a->report);
   } else if (a->shard_n > 1) {
     snprintf(b.state_path, sizeof b.state_path, "%s.shard-%ld-of-%ld.state.json", a->manifest, a->shard_k,
@@ -922,7 +922,7 @@ static int merge_reports(batch_args *a) {
   }
   cJSON *meta = cJSON_Duplicate(cJSON_GetObjectItemCaseSensitive(reports[0], "meta"), 1);
   cJSON_ReplaceItemInObjectCaseSensitive(meta, "shard", cJSON_CreateString("merged"));
-  rc_status s = cli_report_prepare(a->report, &e);
+  rc_status s = cli_report_prepare(a->report, 1, &e);
   if (s == RC_OK) s = cli_report_write(a->report, meta, arr, &e);
   if (s == RC_OK) {
     if (a->json) print_json(meta, arr);

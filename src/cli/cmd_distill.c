@@ -673,7 +673,7 @@ int rc_cmd_distill(int argc, char **argv) {
   int rc = RC_EXIT_FAIL;
   double diff = 0;
   if (check_output_path(&a, &e)) goto out;
-  if (a.report && cli_report_prepare(a.report, &e) != RC_OK) goto out;
+  if (a.report && cli_report_prepare(a.report, 0, &e) != RC_OK) goto out;
   if (rc_model_load(&teacher, a.teacher, NULL, &e) != RC_OK || rc_model_load(&student, a.student, NULL, &e) != RC_OK)
     goto out;
   if (rc_distill_check_pair(&teacher->graph, &student->graph, &e) != RC_OK) goto out;

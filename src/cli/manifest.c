@@ -238,7 +238,8 @@ static void option_name(const key_def *k, char *buf, size_t n) {
 }
 
 static rc_status check_number(ctx *c, const key_def *k, const cJSON *v) {
-  if (!cJSON_IsNumber(v)) return field_error(c, k->key, "expected a number, got %s", type_name(v));
+  if (!cJSON_IsNumber(v))
+    return field_error(c, k->key, "expected %s, got %s", k->k == K_INT ? "an integer" : "a number", type_name(v));
   double d = v->valuedouble;
   if (!isfinite(d)) return field_error(c, k->key, "not a finite number");
   if (k->k == K_INT && (d != floor(d) || d < k->lo || d > k->hi))
@@ -459,10 +460,16 @@ static rc_status build_job(ctx *c, cli_job *j, int index, const cJSON *job, cons
     return field_error(c, "val_labels", "needs 'val_data'");
   strlist args = {0}, ins = {0};
   rc_status s = RC_OK;
+  char job_where[sizeof c->where];
+  memcpy(job_where, c->where, sizeof job_where);
   for (int i = 1; i < N_KEYS && s == RC_OK; i++) {
     if (KEYS[i].w == BATCH_OWNED) continue;
     const cJSON *v = value_of(job, defaults, KEYS[i].key);
+    /* A default's error names "defaults" and the job that used it. */
+    if (v && !cJSON_GetObjectItemCaseSensitive(job, KEYS[i].key))
+      snprintf(c->where, sizeof c->where, "defaults (as used by job '%s')", j->name);
     if (v) s = add_option(c, j, &KEYS[i], v, &args, &ins);
+    if (s == RC_OK) memcpy(c->where, job_where, sizeof job_where);
   }
   j->args = args.v, j->n_args = args.n;
   j->inputs = ins.v, j->n_inputs = ins.n;

@@ -153,7 +153,7 @@ static rc_status make_dir(const char *path, rc_err *e) {
   return rc__fail(e, RC_ERR_IO, "report folder %s: %s", path, strerror(errno));
 }
 
-rc_status cli_report_prepare(const char *dir, rc_err *e) {
+rc_status cli_report_prepare(const char *dir, int with_logs, rc_err *e) {
   char path[4200];
   snprintf(path, sizeof path, "%s", dir);
   /* Parents first, as `mkdir -p` does. */
@@ -166,7 +166,7 @@ rc_status cli_report_prepare(const char *dir, rc_err *e) {
     }
   RC_TRY(make_dir(path, e));
   snprintf(path, sizeof path, "%s/logs", dir);
-  RC_TRY(make_dir(path, e));
+  if (with_logs) RC_TRY(make_dir(path, e));
   snprintf(path, sizeof path, "%s/jobs", dir);
   RC_TRY(make_dir(path, e));
   if (access(dir, W_OK) != 0) return rc__fail(e, RC_ERR_IO, "report folder %s: not writable", dir);

@@ -34,8 +34,8 @@ cJSON *cli_report_record(const char *name, int index, const char *teacher, const
 /* A report's "meta" object: title and the time it was generated (UTC). */
 cJSON *cli_report_meta(const char *title);
 
-/* Create DIR, DIR/logs and DIR/jobs as needed. */
-rc_status cli_report_prepare(const char *dir, rc_err *e);
+/* Create DIR and DIR/jobs (and DIR/logs when with_logs) as needed. */
+rc_status cli_report_prepare(const char *dir, int with_logs, rc_err *e);
 
 /* Write every report file into DIR (see above). `records` is an array of
  * records in job order; `meta` an object (copied). */
