@@ -415,6 +415,9 @@ static void test_weight_and_bias_grids(void) {
     CHECK_NEAR(bs[c], xs[0] * ws[c], 0, 1e-6);
     CHECK_NEAR(((const int32_t *)bq->data)[c], rint(rb[c] / ((double)xs[0] * ws[c])), 1, 0);
   }
+  /* Flatten passes the Relu's grid on unchanged. */
+  CHECK(!strcmp(q.rep.grids[1].tensor, "relu1") && !strcmp(q.rep.grids[2].tensor, "flat"));
+  CHECK(q.rep.grids[2].scale == q.rep.grids[1].scale && q.rep.grids[2].zero_point == q.rep.grids[1].zero_point);
   /* The input grid: min/max of the samples widened to include 0. */
   float lo = 0, hi = 0;
   for (int i = 0; i < N_SAMPLES * C_IN * HW * HW; i++) {

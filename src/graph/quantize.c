@@ -603,6 +603,29 @@ static rc_status apply_rewrite(qstate *q) {
   return rc_model_edit_sort(q->m, q->e);
 }
 
+/* Ops whose output values are a subset of their input's (max pooling, pure
+ * layout changes): an output grid equal to the input's loses nothing. */
+static int grid_preserving(const rc_node *n) {
+  static const char *const ops[] = {"MaxPool", "Flatten", "Reshape", "Transpose", "Squeeze", "Unsqueeze"};
+  for (size_t i = 0; i < sizeof ops / sizeof ops[0]; i++)
+    if (is_op(n, ops[i])) return 1;
+  return 0;
+}
+
+/* The grid that reaches tensor v through a chain of grid-preserving ops
+ * (MaxPool then Flatten, say), or -1. */
+static int grid_passed_through(const qstate *q, int v) {
+  for (int hops = 0; hops < q->g->n_nodes; hops++) {
+    int p = q->g->values[v].producer;
+    if (p < 0) return -1;
+    const rc_node *n = &q->g->nodes[p];
+    if (!grid_preserving(n) || n->n_in < 1 || n->in[0] < 0 || n->out[0] != v) return -1;
+    v = n->in[0];
+    if (q->grid_of[v] >= 0) return q->grid_of[v];
+  }
+  return -1;
+}
+
 static rc_status make_report(qstate *q, const rc_dataset *d) {
   rc_quant_report *r = q->rep;
   r->layers = rc__calloc((size_t)q->n_layers + 1, sizeof *r->layers);
@@ -617,6 +640,13 @@ static rc_status make_report(qstate *q, const rc_dataset *d) {
     gr->lo = (float)(q->lo[gi] < 0 ? q->lo[gi] : 0);
     gr->hi = (float)(q->hi[gi] > 0 ? q->hi[gi] : 0);
     rc__quant_act_grid(gr->lo, gr->hi, &gr->scale, &gr->zero_point);
+    int from = grid_passed_through(q, q->grid_value[gi]);
+    if (from >= 0 && from < gi) { /* same grid: the second pair is lossless and an integer runtime keeps int8 */
+      gr->lo = r->grids[from].lo;
+      gr->hi = r->grids[from].hi;
+      gr->scale = r->grids[from].scale;
+      gr->zero_point = r->grids[from].zero_point;
+    }
   }
   r->n_grids = q->n_grids;
   return RC_OK;

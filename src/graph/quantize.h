@@ -74,6 +74,9 @@ rc_dtype rc_quant_weight_dtype(const rc_model *m, int weight_bits);
  * output, where the output is taken after a folded BatchNormalization and
  * after a Relu or Clip that is its only consumer (integer runtimes fuse the
  * activation into the layer). One pair per tensor, shared by all consumers.
+ * A tensor made by MaxPool or a layout op (Flatten, Reshape, Transpose,
+ * Squeeze, Unsqueeze) from a tensor with a grid takes that same grid, so its
+ * pair changes no value.
  * Refuses models below opset 13 (per-axis DequantizeLinear), models that
  * already hold QuantizeLinear/DequantizeLinear, and models with no layer to
  * quantize. */
