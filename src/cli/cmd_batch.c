@@ -445,18 +445,6 @@ static rc_status remember_job(batch *b, run *r, rc_err *e) {
 
 /* ---- Starting and finishing jobs --------------------------------------------------------- */
 
-static int mkdir_parents(const char *file) {
-  char path[PATH_MAX];
-  snprintf(path, sizeof path, "%s", file);
-  for (char *p = path + 1; *p; p++)
-    if (*p == '/') {
-      *p = '\0';
-      if (mkdir(path, 0755) != 0 && errno != EEXIST) return -1;
-      *p = '/';
-    }
-  return 0;
-}
-
 static void set_record(batch *b, run *r, const char *status, const char *error, cJSON *result) {
   cli_job *j = r->job;
   cJSON_Delete(r->record);
@@ -520,7 +508,7 @@ static void start_job(batch *b, run *r) {
   r->progress[0] = '\0';
   char err[512];
   int pipefd[2] = {-1, -1}, log_fd = -1;
-  if (mkdir_parents(j->out) != 0) {
+  if (cli_make_parents(j->out) != 0) {
     snprintf(err, sizeof err, "cannot create the folder of %s: %s", j->out_given, strerror(errno));
     goto fail;
   }

@@ -153,17 +153,22 @@ static rc_status make_dir(const char *path, rc_err *e) {
   return rc__fail(e, RC_ERR_IO, "report folder %s: %s", path, strerror(errno));
 }
 
-rc_status cli_report_prepare(const char *dir, int with_logs, rc_err *e) {
+int cli_make_parents(const char *file) {
   char path[4200];
-  snprintf(path, sizeof path, "%s", dir);
-  /* Parents first, as `mkdir -p` does. */
+  snprintf(path, sizeof path, "%s", file);
   for (char *p = path + 1; *p; p++)
     if (*p == '/') {
       *p = '\0';
-      if (mkdir(path, 0755) != 0 && errno != EEXIST) return rc__fail(e, RC_ERR_IO, "report folder %s: %s", path,
-                                                                     strerror(errno));
+      if (mkdir(path, 0755) != 0 && errno != EEXIST) return -1;
       *p = '/';
     }
+  return 0;
+}
+
+rc_status cli_report_prepare(const char *dir, int with_logs, rc_err *e) {
+  char path[4200];
+  snprintf(path, sizeof path, "%s", dir);
+  if (cli_make_parents(path) != 0) return rc__fail(e, RC_ERR_IO, "report folder %s: %s", dir, strerror(errno));
   RC_TRY(make_dir(path, e));
   snprintf(path, sizeof path, "%s/logs", dir);
   if (with_logs) RC_TRY(make_dir(path, e));

@@ -34,6 +34,10 @@ cJSON *cli_report_record(const char *name, int index, const char *teacher, const
 /* A report's "meta" object: title and the time it was generated (UTC). */
 cJSON *cli_report_meta(const char *title);
 
+/* Create the missing folders above `file`, as `mkdir -p` would; -1 and errno
+ * on failure. */
+int cli_make_parents(const char *file);
+
 /* Create DIR and DIR/jobs (and DIR/logs when with_logs) as needed. */
 rc_status cli_report_prepare(const char *dir, int with_logs, rc_err *e);
 
