@@ -26,8 +26,8 @@ PACKAGES=(
   # reference tests and demo (Debian's /usr/bin/python3)
   python3 python3-numpy python3-torch python3-torchvision python3-onnx
   dataset-fashion-mnist libonnx-testdata
-  # sanitizers and libFuzzer
-  clang libclang-rt-14-dev
+  # sanitizers and libFuzzer (libomp-dev: OpenMP for clang builds)
+  clang libclang-rt-14-dev libomp-dev
   # report tests
   chromium
 )
