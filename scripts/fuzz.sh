@@ -24,8 +24,13 @@ min_execs=${FUZZ_MIN_EXECS:-10000}
 jobs=${FUZZ_JOBS:-$(nproc)}
 build=${FUZZ_BUILD:-"$here/build-fuzz"}
 
-CC=clang cmake -S "$here" -B "$build" -DRECOUP_FUZZ=ON -DCMAKE_BUILD_TYPE=RelWithDebInfo >/dev/null
-cmake --build "$build" -j "$(nproc)" --target fuzz_targets >/dev/null
+mkdir -p "$build"
+if ! { CC=clang cmake -S "$here" -B "$build" -DRECOUP_FUZZ=ON -DCMAKE_BUILD_TYPE=RelWithDebInfo &&
+  cmake --build "$build" -j "$(nproc)" --target fuzz_targets; } >"$build/build.log" 2>&1; then
+  tail -30 "$build/build.log" >&2
+  echo "fuzz.sh: building the fuzz targets failed (log $build/build.log)" >&2
+  exit 1
+fi
 
 export ASAN_OPTIONS=detect_leaks=1:allocator_may_return_null=0
 export UBSAN_OPTIONS=print_stacktrace=1:halt_on_error=1

@@ -1,0 +1,211 @@
+#!/usr/bin/python3
+"""Damaged model files through the recoup command line.
+
+Usage: /usr/bin/python3 tests/test_corrupt.py RECOUP_BIN WORK_DIR
+
+For the demo models in models/ (when present) and a few reference models
+exported by PyTorch ($RECOUP_BINARY_DIR/reference, the reference_models
+fixture), makes damaged copies:
+  - the file truncated at every 1/64 of its length;
+  - random byte changes with a fixed seed (200 copies, 1 to 8 bytes each);
+  - edits made with the onnx package (Debian python3-onnx): a huge dimension
+    and a negative dimension (on an initializer and on the graph input), a
+    cycle in the graph, a missing initializer, a value produced twice, an
+    unknown op and an unsupported default-domain opset.
+`recoup inspect` and `recoup eval` (on samples of the model's input shape)
+run on each. The rule (recoup's contract, README "Commands"): exit status 0,
+or 1 with exactly one "recoup: error:" line naming the damaged file (or the
+samples file a still-valid model cannot take); never a
+signal, another status, or a sanitizer report. The onnx-made edits (but a
+huge declared input dimension, which ONNX allows) are invalid models and
+must be refused with status 1. The damaged files are
+written to WORK_DIR; the originals are checked unchanged at the end.
+
+RECOUP_CORRUPT_LIGHT=1 (the sanitizer build, where every run is slower)
+makes 60 byte-change copies per model instead of 200.
+"""
+
+import concurrent.futures
+import copy
+import hashlib
+import os
+import random
+import subprocess
+import sys
+
+import numpy as np
+import onnx
+
+REFERENCE_CASES = ("resnet8_op13_bn", "mobilenet_v2_op17_fused", "vit_tiny_op13_fused", "kws_cnn1d_op17_bn")
+SANITIZER_MARKS = ("AddressSanitizer", "LeakSanitizer", "UndefinedBehaviorSanitizer", "runtime error:")
+
+
+def sha256(path):
+    with open(path, "rb") as f:
+        return hashlib.sha256(f.read()).hexdigest()
+
+
+def input_shape(model):
+    """Shape of the first graph input that is not an initializer, symbolic dims as 2."""
+    inits = {t.name for t in model.graph.initializer}
+    for i in model.graph.input:
+        if i.name in inits:
+            continue
+        dims = [d.dim_value if d.HasField("dim_value") and d.dim_value > 0 else 2
+                for d in i.type.tensor_type.shape.dim]
+        return i.name, dims
+    raise ValueError("model has no graph input")
+
+
+def structural_variants(model):
+    """(name, ModelProto, must_fail) triples. A huge declared input dimension
+    is still a valid model (inspect shows it; eval refuses the samples)."""
+    out = []
+    g = model.graph
+    inits = list(g.initializer)
+    big = next((t for t in inits if len(t.dims) >= 1 and t.data_type == onnx.TensorProto.FLOAT), None)
+    if big is not None:
+        for label, value in (("huge_dim_initializer", 1 << 40), ("negative_dim_initializer", -3)):
+            m = copy.deepcopy(model)
+            t = next(t for t in m.graph.initializer if t.name == big.name)
+            t.dims[0] = value
+            out.append((label, m, True))
+        m = copy.deepcopy(model)
+        m.graph.initializer.remove(next(t for t in m.graph.initializer if t.name == big.name))
+        # The missing tensor must not be a graph input either (IR < 4 lists initializers there).
+        for i in list(m.graph.input):
+            if i.name == big.name:
+                m.graph.input.remove(i)
+        out.append(("missing_initializer", m, True))
+    name, _ = input_shape(model)
+    for label, value in (("huge_dim_input", 1 << 40), ("negative_dim_input", -5)):
+        m = copy.deepcopy(model)
+        i = next(i for i in m.graph.input if i.name == name)
+        d = i.type.tensor_type.shape.dim[-1]
+        d.Clear()
+        d.dim_value = value
+        out.append((label, m, value < 0))
+    readers = [k for k, n in enumerate(g.node) if len(n.input) > 0 and n.input[0]]
+    if len(g.node) >= 2 and readers:
+        # The first node that reads something reads the last node's output: a cycle.
+        m = copy.deepcopy(model)
+        m.graph.node[readers[0]].input[0] = m.graph.node[len(m.graph.node) - 1].output[0]
+        out.append(("cycle", m, True))
+        m = copy.deepcopy(model)
+        m.graph.node[1].output[0] = m.graph.node[0].output[0]
+        out.append(("value_produced_twice", m, True))
+    m = copy.deepcopy(model)
+    m.graph.node[0].op_type = "NoSuchOpAnywhere"
+    out.append(("unknown_op", m, True))
+    m = copy.deepcopy(model)
+    for o in m.opset_import:
+        if o.domain in ("", "ai.onnx"):
+            o.version = 99
+    out.append(("opset_99", m, True))
+    return out
+
+
+def byte_variants(data, count, rng):
+    for k in range(64):
+        yield f"truncated_{k:02d}_of_64", data[: len(data) * k // 64]
+    for k in range(count):
+        b = bytearray(data)
+        for _ in range(rng.randint(1, 8)):
+            pos = rng.randrange(len(b))
+            b[pos] ^= rng.randint(1, 255)
+        yield f"bytes_changed_{k:03d}", bytes(b)
+
+
+def check_run(recoup, args, path, data, must_fail):
+    """Returns a problem description, or None when the run kept the contract."""
+    r = subprocess.run([recoup] + args, capture_output=True, text=True, errors="replace", timeout=300,
+                       env=dict(os.environ, OMP_NUM_THREADS="1"))
+    cmd = " ".join(["recoup"] + args)
+    if r.returncode < 0:
+        return f"{cmd}: killed by signal {-r.returncode}\n{r.stderr[-2000:]}"
+    if any(mark in r.stderr for mark in SANITIZER_MARKS):
+        return f"{cmd}: sanitizer report\n{r.stderr[-4000:]}"
+    if r.returncode not in (0, 1):
+        return f"{cmd}: exit status {r.returncode}\n{r.stderr[-2000:]}"
+    if r.returncode == 0:
+        return f"{cmd}: accepted an invalid model" if must_fail else None
+    errors = [ln for ln in r.stderr.splitlines() if ln.startswith("recoup: error:")]
+    if len(errors) != 1:
+        return f"{cmd}: {len(errors)} error lines, want 1\n{r.stderr[-2000:]}"
+    # The file at fault: the damaged model, or the samples it cannot take.
+    if os.path.basename(path) not in errors[0] and os.path.basename(data) not in errors[0]:
+        return f"{cmd}: the error does not name the file: {errors[0]}"
+    return None
+
+
+def models_to_damage(source_dir, binary_dir):
+    found = []
+    mdir = os.path.join(source_dir, "models")
+    if os.path.isdir(mdir):
+        found += [os.path.join(mdir, f) for f in sorted(os.listdir(mdir)) if f.endswith(".onnx")]
+    missing = []
+    for case in REFERENCE_CASES:
+        p = os.path.join(binary_dir, "reference", case, "model.onnx")
+        (found if os.path.exists(p) else missing).append(p)
+    return found, missing
+
+
+def main():
+    recoup, work = sys.argv[1], sys.argv[2]
+    source_dir = os.environ.get("RECOUP_SOURCE_DIR", os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
+    binary_dir = os.environ.get("RECOUP_BINARY_DIR", ".")
+    light = os.environ.get("RECOUP_CORRUPT_LIGHT") == "1"
+    os.makedirs(work, exist_ok=True)
+    models, missing = models_to_damage(source_dir, binary_dir)
+    if missing:
+        print("missing reference models (the reference_models fixture did not run):", *missing, sep="\n  ")
+        return 1
+    before = {p: sha256(p) for p in models}
+    problems, runs, accepted, refused = [], 0, 0, 0
+    rng = random.Random(20240611)
+    jobs = []
+    for src in models:
+        model = onnx.load(src)
+        tag = os.path.basename(os.path.dirname(src)) if src.endswith("model.onnx") else os.path.splitext(os.path.basename(src))[0]
+        folder = os.path.join(work, tag)
+        os.makedirs(folder, exist_ok=True)
+        _, shape = input_shape(model)
+        data = os.path.join(folder, "samples.npy")
+        np.save(data, np.random.default_rng(5).standard_normal(shape).astype(np.float32))
+        with open(src, "rb") as f:
+            raw = f.read()
+        for name, blob in byte_variants(raw, 60 if light else 200, rng):
+            path = os.path.join(folder, name + ".onnx")
+            with open(path, "wb") as f:
+                f.write(blob)
+            jobs.append((path, data, False))
+        for name, m, must_fail in structural_variants(model):
+            path = os.path.join(folder, name + ".onnx")
+            with open(path, "wb") as f:
+                f.write(m.SerializeToString())
+            jobs.append((path, data, must_fail))
+
+    def run(job):
+        path, data, must_fail = job
+        out = []
+        for args in (["inspect", path], ["eval", path, "--data", data, "--batch", "2"]):
+            out.append(check_run(recoup, args, path, data, must_fail))
+        return out
+
+    with concurrent.futures.ThreadPoolExecutor(max_workers=2) as pool:
+        for result in pool.map(run, jobs):
+            for p in result:
+                runs += 1
+                if p:
+                    problems.append(p)
+    for p, h in before.items():
+        if sha256(p) != h:
+            problems.append(f"{p}: the original changed")
+    for p in problems[:20]:
+        print("PROBLEM:", p)
+    print(f"{len(models)} models, {len(jobs)} damaged copies, {runs} runs, {len(problems)} problems")
+    return 1 if problems else 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
