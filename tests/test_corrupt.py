@@ -21,8 +21,9 @@ huge declared input dimension, which ONNX allows) are invalid models and
 must be refused with status 1. The damaged files are
 written to WORK_DIR; the originals are checked unchanged at the end.
 
-RECOUP_CORRUPT_LIGHT=1 (the sanitizer build, where every run is slower)
-makes 60 byte-change copies per model instead of 200.
+RECOUP_CORRUPT_LIGHT=1 (the sanitizer build, where every run is several
+times slower) damages two reference models instead of four, truncates at
+every 1/16 instead of 1/64 and makes 40 byte-change copies instead of 200.
 """
 
 import concurrent.futures
@@ -36,7 +37,8 @@ import sys
 import numpy as np
 import onnx
 
-REFERENCE_CASES = ("resnet8_op13_bn", "mobilenet_v2_op17_fused", "vit_tiny_op13_fused", "kws_cnn1d_op17_bn")
+REFERENCE_CASES = ("resnet8_op13_bn", "kws_cnn1d_op17_bn", "mobilenet_v2_op17_fused", "vit_tiny_op13_fused")
+REFERENCE_CASES_LIGHT = 2
 SANITIZER_MARKS = ("AddressSanitizer", "LeakSanitizer", "UndefinedBehaviorSanitizer", "runtime error:")
 
 
@@ -105,9 +107,9 @@ def structural_variants(model):
     return out
 
 
-def byte_variants(data, count, rng):
-    for k in range(64):
-        yield f"truncated_{k:02d}_of_64", data[: len(data) * k // 64]
+def byte_variants(data, parts, count, rng):
+    for k in range(parts):
+        yield f"truncated_{k:02d}_of_{parts}", data[: len(data) * k // parts]
     for k in range(count):
         b = bytearray(data)
         for _ in range(rng.randint(1, 8)):
@@ -138,13 +140,13 @@ def check_run(recoup, args, path, data, must_fail):
     return None
 
 
-def models_to_damage(source_dir, binary_dir):
+def models_to_damage(source_dir, binary_dir, n_reference):
     found = []
     mdir = os.path.join(source_dir, "models")
     if os.path.isdir(mdir):
         found += [os.path.join(mdir, f) for f in sorted(os.listdir(mdir)) if f.endswith(".onnx")]
     missing = []
-    for case in REFERENCE_CASES:
+    for case in REFERENCE_CASES[:n_reference]:
         p = os.path.join(binary_dir, "reference", case, "model.onnx")
         (found if os.path.exists(p) else missing).append(p)
     return found, missing
@@ -156,7 +158,8 @@ def main():
     binary_dir = os.environ.get("RECOUP_BINARY_DIR", ".")
     light = os.environ.get("RECOUP_CORRUPT_LIGHT") == "1"
     os.makedirs(work, exist_ok=True)
-    models, missing = models_to_damage(source_dir, binary_dir)
+    models, missing = models_to_damage(source_dir, binary_dir,
+                                       REFERENCE_CASES_LIGHT if light else len(REFERENCE_CASES))
     if missing:
         print("missing reference models (the reference_models fixture did not run):", *missing, sep="\n  ")
         return 1
@@ -174,7 +177,7 @@ def main():
         np.save(data, np.random.default_rng(5).standard_normal(shape).astype(np.float32))
         with open(src, "rb") as f:
             raw = f.read()
-        for name, blob in byte_variants(raw, 60 if light else 200, rng):
+        for name, blob in byte_variants(raw, 16 if light else 64, 40 if light else 200, rng):
             path = os.path.join(folder, name + ".onnx")
             with open(path, "wb") as f:
                 f.write(blob)
