@@ -221,7 +221,7 @@ static rc_status plan_layer(qstate *q, int ni) {
   const rc_value *w = float_init(g, n, 1);
   if (!w || n->n_out < 1 || n->out[0] < 0) return RC_OK;
   int axis = weight_axis(g, n, w);
-  if (axis < 0) return RC_OK;
+  if (axis < 0 || rc_tensor_numel(&w->decl) < 1) return RC_OK;
   layer_plan *L = &q->layers[q->n_layers];
   memset(L, 0, sizeof *L);
   L->node = ni;
@@ -285,6 +285,10 @@ static rc_status plan_rewrite(qstate *q) {
 static void observe_range(qstate *q, int gi, const float *x, int64_t n) {
   double lo = q->lo[gi], hi = q->hi[gi];
   for (int64_t i = 0; i < n; i++) {
+    if (x[i] != x[i]) { /* NaN: remembered, reported once the pass is over */
+      q->lo[gi] = NAN;
+      return;
+    }
     if (x[i] < lo) lo = x[i];
     if (x[i] > hi) hi = x[i];
   }
@@ -306,6 +310,7 @@ static void observe_hist(qstate *q, int gi, const float *x, int64_t n) {
 static void percentile_range(qstate *q, int gi) {
   const int64_t *h = q->hist + (size_t)gi * HIST_BINS;
   double lo = q->lo[gi], width = (q->hi[gi] - lo) / HIST_BINS;
+  if (q->count[gi] == 0) return;
   int64_t clip = (int64_t)floor((double)q->count[gi] * (100.0 - q->cfg->percentile) / 100.0);
   int64_t seen = 0;
   int b_lo = 0, b_hi = HIST_BINS - 1;
