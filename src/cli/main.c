@@ -1,6 +1,9 @@
 /* recoup: recover the accuracy a compressed model lost, by distilling it from
  * its dense original on CPU. This file only dispatches to the commands. */
+#define _DEFAULT_SOURCE /* setenv */
 #include <signal.h>
+#include <stdlib.h>
+#include <unistd.h>
 #include <stdio.h>
 #include <string.h>
 
@@ -36,7 +39,20 @@ static void print_help(void) {
       "Exit status: 0 success, 1 failure, 2 usage error.\n");
 }
 
+/* OpenMP threads that finish a parallel region spin before they sleep. On a
+ * shared build server, or with several recoup jobs side by side, a spinning
+ * thread takes the core another thread needs and a step can cost ten times
+ * its CPU time. The wait policy is read once when the OpenMP runtime loads,
+ * so when the user has not chosen one, recoup sets it and starts itself again. */
+static void wait_passively(char **argv) {
+  if (getenv("OMP_WAIT_POLICY")) return;
+  if (setenv("OMP_WAIT_POLICY", "PASSIVE", 1) != 0) return;
+  execv("/proc/self/exe", argv);
+  /* If re-executing fails, carry on with the default policy. */
+}
+
 int main(int argc, char **argv) {
+  wait_passively(argv);
   /* A write past a file-size limit must fail with EFBIG, not kill us. */
   signal(SIGXFSZ, SIG_IGN);
   if (argc < 2) {
