@@ -4,6 +4,11 @@ add_test(NAME cli_errors
                  ${CMAKE_BINARY_DIR}/cli_errors)
 set_tests_properties(cli_errors PROPERTIES TIMEOUT 600)
 
+# The Fashion-MNIST training runs below take minutes in a release build; the
+# sanitizer build runs the same code paths on small data (cli_errors, batch,
+# the reference and conformance tests) instead of repeating them ten times
+# slower.
+if(NOT RECOUP_SANITIZE)
 # End-to-end recovery of the bundled pruned demo model on Fashion-MNIST.
 add_test(NAME distill_fashion_mnist
          COMMAND ${RECOUP_PYTHON} ${CMAKE_CURRENT_SOURCE_DIR}/distill_test.py $<TARGET_FILE:recoup>
@@ -21,3 +26,4 @@ add_test(NAME distill_features_fashion_mnist
          COMMAND ${RECOUP_PYTHON} ${CMAKE_CURRENT_SOURCE_DIR}/features_test.py $<TARGET_FILE:recoup>
                  ${PROJECT_SOURCE_DIR} ${CMAKE_BINARY_DIR}/features_test)
 set_tests_properties(distill_features_fashion_mnist PROPERTIES TIMEOUT 1500)
+endif()
