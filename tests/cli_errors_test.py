@@ -10,6 +10,7 @@ Usage: cli_errors_test.py RECOUP_BINARY WORK_DIR
 """
 
 import hashlib
+import json
 import os
 import subprocess
 import sys
@@ -129,6 +130,26 @@ expect_error("distill labels out of range",
              absent=out)
 expect_error("distill wrong data shape", base + ["--data", w("x_wrong.npy"), "--out", out], "x_wrong.npy",
              absent=out)
+
+# A learning rate that blows up: non-finite steps roll back to the last good
+# state with half the rate, at most three times, then training stops and the
+# best state (here the input's) is written with its zeros intact.
+blown = w("blown.onnx")
+r = subprocess.run([RECOUP] + base + ["--data", w("x.npy"), "--steps", "60", "--optimizer", "sgd", "--lr", "10",
+                                      "--clip", "0", "--json", "--out", blown], capture_output=True, text=True,
+                   timeout=300)
+try:
+    res = json.loads(r.stdout) if r.returncode == 0 else {}
+except ValueError:
+    res = {}
+zeros_kept = os.path.exists(blown) and all(
+    np.array_equal(numpy_helper.to_array(a) == 0, numpy_helper.to_array(b) == 0)
+    for a, b in zip(onnx.load(pruned).graph.initializer, onnx.load(blown).graph.initializer))
+if r.returncode == 0 and res.get("rollbacks", 0) >= 1 and "rolled back" in r.stderr and zeros_kept:
+    passed += 1
+    print(f"ok   non-finite steps rolled back: {res['rollbacks']} rollbacks, best state written")
+else:
+    failures.append(f"rollback on a blown-up learning rate: status {r.returncode}, {r.stderr.strip()[-300:]}")
 
 # Every command answers --help with usage on stdout and exit status 0.
 for cmd in ([], ["inspect"], ["eval"], ["distill"], ["batch"], ["prune"], ["quantize"]):
