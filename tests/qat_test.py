@@ -31,7 +31,10 @@ from e2e import Run, SCALE, TRAIN_IMAGES, require
 RECOUP, SRC, WORK = sys.argv[1:4]
 os.makedirs(WORK, exist_ok=True)
 DENSE = os.path.join(SRC, "models", "garment_dense.onnx")
-MARGIN = 0.01
+# Measured on our run: dense 0.9201, 4-bit weights / 8-bit activations 0.9099,
+# recovered after 400 steps (seed 3, 2 threads, no labels) 0.9206 (+0.0107);
+# onnxruntime-web's outputs equal recoup's exactly on 256 images.
+MARGIN = 0.005
 run = Run(RECOUP)
 check, test_accuracy = run.check, run.test_accuracy
 require(DENSE, TRAIN_IMAGES)
