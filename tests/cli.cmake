@@ -27,3 +27,9 @@ add_test(NAME distill_features_fashion_mnist
                  ${PROJECT_SOURCE_DIR} ${CMAKE_BINARY_DIR}/features_test)
 set_tests_properties(distill_features_fashion_mnist PROPERTIES TIMEOUT 1500)
 endif()
+
+# Pairing of teacher and student tensors on the PyTorch reference exports.
+add_test(NAME pairing_reference
+         COMMAND ${RECOUP_PYTHON} ${CMAKE_CURRENT_SOURCE_DIR}/pairing_test.py $<TARGET_FILE:recoup>
+                 ${CMAKE_BINARY_DIR}/reference ${CMAKE_BINARY_DIR}/pairing_test)
+set_tests_properties(pairing_reference PROPERTIES FIXTURES_REQUIRED reference_models TIMEOUT 600)
