@@ -120,9 +120,14 @@ def byte_variants(data, parts, count, rng):
 
 def check_run(recoup, args, path, data, must_fail):
     """Returns a problem description, or None when the run kept the contract."""
-    r = subprocess.run([recoup] + args, capture_output=True, text=True, errors="replace", timeout=300,
-                       env=dict(os.environ, OMP_NUM_THREADS="1"))
     cmd = " ".join(["recoup"] + args)
+    try:
+        r = subprocess.run([recoup] + args, capture_output=True, text=True, errors="replace", timeout=300,
+                           env=dict(os.environ, OMP_NUM_THREADS="1"))
+    except subprocess.TimeoutExpired:
+        return f"{cmd}: still running after 300 s"
+    except OSError as err:
+        return f"{cmd}: cannot run recoup: {err}"
     if r.returncode < 0:
         return f"{cmd}: killed by signal {-r.returncode}\n{r.stderr[-2000:]}"
     if any(mark in r.stderr for mark in SANITIZER_MARKS):
