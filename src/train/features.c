@@ -150,6 +150,24 @@ rc_status rc__features_setup(rc_features **out, const rc_loss_spec *spec, const 
                    "with --pair TEACHER_TENSOR=STUDENT_TENSOR (see recoup inspect --pairs)", tg->path, sg->path);
       goto fail;
     }
+    if (!n_pairs) {
+      /* Automatic pairs match inner features; the outputs are the logit
+       * terms' business, and a second, unscaled match of them fights kd. */
+      int k = 0;
+      for (int i = 0; i < f->pairing.n; i++) {
+        int is_output = 0;
+        for (int o = 0; o < sg->n_outputs; o++)
+          if (sg->outputs[o] == f->pairing.pairs[i].student) is_output = 1;
+        if (!is_output) f->pairing.pairs[k++] = f->pairing.pairs[i];
+      }
+      f->pairing.n = k;
+    }
+    if (!f->pairing.n) {
+      s = rc__fail(e, RC_ERR_INVALID, "feature losses need pairs of inner tensors: none were found between %s and "
+                   "%s; give them with --pair TEACHER_TENSOR=STUDENT_TENSOR (see recoup inspect --pairs)", tg->path,
+                   sg->path);
+      goto fail;
+    }
     for (int i = 0; i < f->pairing.n; i++) {
       if (pair_weights && i < n_pairs) f->pairing.pairs[i].weight = pair_weights[i];
       tk[f->pairing.pairs[i].teacher] = 1;
