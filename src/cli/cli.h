@@ -2,6 +2,7 @@
 #ifndef RC_CLI_H
 #define RC_CLI_H
 
+#include <signal.h>
 #include <stdio.h>
 
 #include "core/status.h"
@@ -39,6 +40,18 @@ void cli_set_threads(int n);
 const char *cli_group_digits(long long v, char *buf, size_t n);
 /* Library log messages go to stderr with a prefix. */
 void cli_log_stderr(void *user, int level, const char *msg);
+/* Set by SIGINT/SIGTERM/SIGHUP once cli_catch_stop_signals ran: long work
+ * checkpoints and stops. The one piece of state a signal handler may touch. */
+extern volatile sig_atomic_t cli_stop_requested;
+void cli_catch_stop_signals(void);
+
+struct option;
+/* getopt_long over argv, handing every option to apply(ctx, opt, value).
+ * Returns 0, a usage status from apply, RC_EXIT_USAGE for an unknown option,
+ * or -1 after printing usage for --help/-h. */
+int cli_parse_options(int argc, char **argv, const struct option *longopts, const char *cmd,
+                      int (*apply)(void *ctx, int opt, const char *value), void *ctx, void (*usage)(FILE *));
+
 /* 1 when stdout/stderr is a terminal (progress lines redraw in place). */
 int cli_isatty_stderr(void);
 

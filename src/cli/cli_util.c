@@ -1,5 +1,7 @@
+#define _POSIX_C_SOURCE 200809L /* sigaction */
 #include <cblas.h>
 #include <errno.h>
+#include <getopt.h>
 #include <limits.h>
 #include <math.h>
 #include <omp.h>
@@ -74,3 +76,36 @@ void cli_log_stderr(void *user, int level, const char *msg) {
 }
 
 int cli_isatty_stderr(void) { return isatty(STDERR_FILENO); }
+
+volatile sig_atomic_t cli_stop_requested;
+
+static void on_stop_signal(int sig) {
+  (void)sig;
+  cli_stop_requested = 1;
+}
+
+void cli_catch_stop_signals(void) {
+  struct sigaction sa;
+  memset(&sa, 0, sizeof sa);
+  sa.sa_handler = on_stop_signal;
+  sigemptyset(&sa.sa_mask);
+  sigaction(SIGINT, &sa, NULL);
+  sigaction(SIGTERM, &sa, NULL);
+  sigaction(SIGHUP, &sa, NULL);
+}
+
+int cli_parse_options(int argc, char **argv, const struct option *longopts, const char *cmd,
+                      int (*apply)(void *ctx, int opt, const char *value), void *ctx, void (*usage)(FILE *)) {
+  int c;
+  optind = 1;
+  while ((c = getopt_long(argc, argv, "h", longopts, NULL)) != -1) {
+    if (c == 'h') {
+      usage(stdout);
+      return -1;
+    }
+    if (c == '?') return cli_usage_error(cmd, "unknown option");
+    int r = apply(ctx, c, optarg);
+    if (r) return r;
+  }
+  return 0;
+}

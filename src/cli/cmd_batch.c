@@ -141,22 +141,6 @@ static int parse_args(batch_args *a, int argc, char **argv) {
 
 /* ---- Signals --------------------------------------------------------------------- */
 
-static volatile sig_atomic_t stop_requested;
-
-static void on_stop(int sig) {
-  (void)sig;
-  stop_requested = 1;
-}
-
-static void catch_stop_signals(void) {
-  struct sigaction sa;
-  memset(&sa, 0, sizeof sa);
-  sa.sa_handler = on_stop;
-  sigemptyset(&sa.sa_mask);
-  sigaction(SIGINT, &sa, NULL);
-  sigaction(SIGTERM, &sa, NULL);
-  sigaction(SIGHUP, &sa, NULL);
-}
 
 static double now_s(void) {
   struct timespec t;
@@ -738,7 +722,7 @@ static int count_state(const batch *b, run_state s) {
 static void run_all(batch *b) {
   int next = 0, stopping = 0;
   while (count_state(b, R_PENDING) + count_state(b, R_RUNNING) > 0) {
-    if (stop_requested && !stopping) {
+    if (cli_stop_requested && !stopping) {
       stopping = 1;
       event(b, "stopping: asking %d running job%s to checkpoint and stop", count_state(b, R_RUNNING),
             count_state(b, R_RUNNING) == 1 ? "" : "s");
@@ -823,7 +807,7 @@ static int run_batch(batch_args *a) {
   if (lock_state(&b, &e) != RC_OK || load_state(&b, &e) != RC_OK || plan_runs(&b, &e) != RC_OK) goto out;
   event(&b, "%d job%s%s, %ld at once, %d thread%s each", b.n_runs, b.n_runs == 1 ? "" : "s",
         a->shard_n > 1 ? " in this shard" : "", a->jobs, b.threads_per_job, b.threads_per_job == 1 ? "" : "s");
-  catch_stop_signals();
+  cli_catch_stop_signals();
   run_all(&b);
   write_reports(&b);
   cJSON *recs = records_json(&b), *meta = meta_json(&b);
@@ -831,8 +815,8 @@ static int run_batch(batch_args *a) {
   else print_summary(recs, a->report);
   cJSON_Delete(recs);
   cJSON_Delete(meta);
-  rc = b.n_ok == b.n_runs && !stop_requested ? RC_EXIT_OK : RC_EXIT_FAIL;
-  if (stop_requested) fprintf(stderr, "recoup batch: stopped by a signal; run again with --resume to continue\n");
+  rc = b.n_ok == b.n_runs && !cli_stop_requested ? RC_EXIT_OK : RC_EXIT_FAIL;
+  if (cli_stop_requested) fprintf(stderr, "recoup batch: stopped by a signal; run again with --resume to continue\n");
 out:
   if (e.code) cli_fail(&e);
   for (int i = 0; i < b.n_runs; i++) {

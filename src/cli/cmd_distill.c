@@ -354,6 +354,8 @@ out:
   return rc;
 }
 
+static int apply_option_ctx(void *a, int c, const char *v) { return apply_option(a, c, v); }
+
 static int parse_args(distill_args *a, int argc, char **argv) {
   static const struct option longopts[] = {
       {"teacher", required_argument, NULL, OPT_TEACHER}, {"student", required_argument, NULL, OPT_STUDENT},
@@ -382,17 +384,8 @@ static int parse_args(distill_args *a, int argc, char **argv) {
   rc_distill_config_defaults(&a->cfg);
   a->cfg.checkpoint_every = 500;
   a->val_split = 0.1;
-  int c;
-  optind = 1;
-  while ((c = getopt_long(argc, argv, "h", longopts, NULL)) != -1) {
-    if (c == 'h') {
-      usage(stdout);
-      return -1;
-    }
-    if (c == '?') return cli_usage_error("distill", "unknown option");
-    int r = apply_option(a, c, optarg);
-    if (r) return r;
-  }
+  int pr = cli_parse_options(argc, argv, longopts, "distill", apply_option_ctx, a, usage);
+  if (pr) return pr;
   if (optind != argc) return cli_usage_error("distill", "unexpected argument '%s'", argv[optind]);
   if (!a->teacher || !a->student || !a->data.n_data || !a->out)
     return cli_usage_error("distill", "--teacher, --student, --data and --out are required");
@@ -623,24 +616,6 @@ static void print_results(const distill_args *a, const rc_distill_result *r, dou
 
 /* ---- Signals --------------------------------------------------------------- */
 
-/* Set by SIGINT/SIGTERM; the training loop checkpoints and stops at the end of
- * the current step. The only state a signal handler may touch. */
-static volatile sig_atomic_t stop_requested;
-
-static void on_stop_signal(int sig) {
-  (void)sig;
-  stop_requested = 1;
-}
-
-static void catch_stop_signals(void) {
-  struct sigaction sa;
-  memset(&sa, 0, sizeof sa);
-  sa.sa_handler = on_stop_signal;
-  sigemptyset(&sa.sa_mask);
-  sigaction(SIGINT, &sa, NULL);
-  sigaction(SIGTERM, &sa, NULL);
-}
-
 static void remove_checkpoints(const char *path) {
   char prev[4200];
   snprintf(prev, sizeof prev, "%s.1", path);
@@ -697,8 +672,8 @@ int rc_cmd_distill(int argc, char **argv) {
   progress_state ps = {cli_isatty_stderr(), -1e9, a.json};
   a.cfg.progress = on_progress;
   a.cfg.user = &ps;
-  a.cfg.stop = &stop_requested;
-  catch_stop_signals();
+  a.cfg.stop = &cli_stop_requested;
+  cli_catch_stop_signals();
   if (a.cfg.resume_path && same_file(a.out, a.cfg.resume_path)) {
     rc__fail(&e, RC_ERR_INVALID, "--resume %s is the output file", a.cfg.resume_path);
     goto out;

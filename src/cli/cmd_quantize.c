@@ -60,6 +60,9 @@ typedef struct quantize_args {
 enum { OPT_DATA = 256, OPT_OUT, OPT_WBITS, OPT_ABITS, OPT_CALIB, OPT_PCT, OPT_BATCH, OPT_SCALE, OPT_MEAN, OPT_STD,
        OPT_THREADS, OPT_JSON };
 
+static int apply_option(quantize_args *a, int c, const char *v);
+static int apply_option_ctx(void *a, int c, const char *v) { return apply_option(a, c, v); }
+
 static int apply_option(quantize_args *a, int c, const char *v) {
   long l;
   double d;
@@ -116,17 +119,8 @@ static int parse_args(quantize_args *a, int argc, char **argv) {
   memset(a, 0, sizeof *a);
   cli_data_opts_init(&a->data);
   rc_quant_config_defaults(&a->cfg);
-  int c;
-  optind = 1;
-  while ((c = getopt_long(argc, argv, "h", longopts, NULL)) != -1) {
-    if (c == 'h') {
-      usage(stdout);
-      return -1;
-    }
-    if (c == '?') return cli_usage_error("quantize", "unknown option");
-    int r = apply_option(a, c, optarg);
-    if (r) return r;
-  }
+  int pr = cli_parse_options(argc, argv, longopts, "quantize", apply_option_ctx, a, usage);
+  if (pr) return pr;
   if (optind != argc - 1) return cli_usage_error("quantize", "expects exactly one DENSE.onnx");
   a->model = argv[optind];
   if (!a->data.n_data || !a->out) return cli_usage_error("quantize", "--data and --out are required");
