@@ -164,7 +164,7 @@ static void reverse_pass_matches_finite_differences(void) {
   unsigned char *trainable = rc__calloc((size_t)b.g.n_values, 1);
   trainable[wv] = 1;
   rc_tensor in = {RC_DTYPE_FLOAT, 3, {3, 2, 3}, NULL};
-  rc_plan_opts o = {1, trainable, NULL, 0};
+  rc_plan_opts o = {.training = 1, .trainable = trainable, .keep = NULL, .bn_batch_stats = 0};
   rc_plan *p = NULL;
   CHECK_INT(rc_plan_create(&p, &b.g, &in, &o, &e), RC_OK);
   if (!p) return;
@@ -211,7 +211,7 @@ static void inference_plans_reuse_memory(void) {
   rc_tensor in = {RC_DTYPE_FLOAT, 2, {16, 1000}, NULL};
   rc_plan *inf = NULL, *tr = NULL;
   CHECK_INT(rc_plan_create(&inf, &b.g, &in, NULL, &e), RC_OK);
-  rc_plan_opts o = {1, NULL, NULL, 0};
+  rc_plan_opts o = {.training = 1, .trainable = NULL, .keep = NULL, .bn_batch_stats = 0};
   CHECK_INT(rc_plan_create(&tr, &b.g, &in, &o, &e), RC_OK);
   if (inf && tr) {
     size_t one = 16 * 1000 * sizeof(float);

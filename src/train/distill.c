@@ -306,16 +306,16 @@ static rc_status build_plans(run_state *st, const rc_tensor *data, rc_err *e) {
     for (int k = 3; k <= 4 && k < n->n_in; k++)
       if (n->in[k] >= 0) st->trainable_mask[n->in[k]] = 0;
   }
-  rc_plan_opts eval_opts = {0, live, NULL, 0};
+  rc_plan_opts eval_opts = {.training = 0, .trainable = live, .keep = NULL, .bn_batch_stats = 0};
   rc_status s = rc_plan_create(&st->eval_plan, sg, shapes, &eval_opts, e);
   rc__free(live);
   RC_TRY(s);
-  rc_plan_opts train_opts = {1, st->trainable_mask, st->skeep, st->c->bn == RC_BN_TRAIN};
+  rc_plan_opts train_opts = {.training = 1, .trainable = st->trainable_mask, .keep = st->skeep, .bn_batch_stats = st->c->bn == RC_BN_TRAIN};
   RC_TRY(rc_plan_create(&st->train_plan, sg, shapes, &train_opts, e));
   teacher_order(tg, sg, shapes, tin);
   RC_TRY(rc_plan_create(&st->teacher_plan, tg, tin, NULL, e));
   if (st->feat && rc_loss_spec_needs_features(&st->c->terms)) {
-    rc_plan_opts keep = {0, NULL, st->tkeep, 0};
+    rc_plan_opts keep = {.training = 0, .trainable = NULL, .keep = st->tkeep, .bn_batch_stats = 0};
     RC_TRY(rc_plan_create(&st->teacher_step, tg, tin, &keep, e));
   }
   int64_t kt;
@@ -386,7 +386,7 @@ static rc_status recalibrate_bn(run_state *st, rc_err *e) {
   for (int b = 0; b < st->n_bn; b++) keep[g->nodes[st->bn_nodes[b]].in[0]] = 1;
   rc_tensor shapes[RC_DATASET_MAX_INPUTS];
   input_shapes(g, st->train.inputs, st->batch, shapes);
-  rc_plan_opts o = {0, NULL, keep, 1};
+  rc_plan_opts o = {.training = 0, .trainable = NULL, .keep = keep, .bn_batch_stats = 1};
   if ((s = rc_plan_create(&p, g, shapes, &o, e)) != RC_OK) goto out;
   for (int b = 0; b < st->n_bn; b++) {
     const rc_tensor *x = rc_plan_tensor(p, g->nodes[st->bn_nodes[b]].in[0]);
@@ -909,7 +909,7 @@ static rc_status layer_errors(run_state *st, const rc_pairing *pg, double *db, r
   rc_tensor shapes[RC_DATASET_MAX_INPUTS], tin[RC_DATASET_MAX_INPUTS];
   input_shapes(sg, st->val.inputs, st->batch, shapes);
   teacher_order(tg, sg, shapes, tin);
-  rc_plan_opts to = {0, NULL, tkeep, 0}, so = {0, live, skeep, 0};
+  rc_plan_opts to = {.training = 0, .trainable = NULL, .keep = tkeep, .bn_batch_stats = 0}, so = {.training = 0, .trainable = live, .keep = skeep, .bn_batch_stats = 0};
   if ((s = rc_plan_create(&tp, tg, tin, &to, e)) != RC_OK || (s = rc_plan_create(&sp, sg, shapes, &so, e)) != RC_OK)
     goto out;
   void *tb[RC_DATASET_MAX_INPUTS], *sb[RC_DATASET_MAX_INPUTS];

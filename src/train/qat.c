@@ -48,6 +48,27 @@ static int64_t zero_point_at(const rc_graph *g, const rc_node *n, int64_t c) {
   return zv >= 0 ? rc__int_at(&g->values[zv].decl, c) : 0;
 }
 
+static uint64_t fnv(uint64_t h, const void *p, size_t n) {
+  const unsigned char *b = p;
+  for (size_t i = 0; i < n; i++) h = (h ^ b[i]) * 1099511628211ull;
+  return h;
+}
+
+/* Fingerprint of the grid a QDQ node quantizes on. */
+static uint64_t grid_hash(const rc_graph *g, const rc_node *n) {
+  uint64_t h = 1469598103934665603ull;
+  for (int i = 1; i <= 2; i++) {
+    int v = initializer_in(g, n, i);
+    if (v < 0) continue;
+    const rc_tensor *t = &g->values[v].decl;
+    h = fnv(h, &t->dtype, sizeof t->dtype);
+    h = fnv(h, t->dims, sizeof(int64_t) * (size_t)t->rank);
+    if (t->data) h = fnv(h, t->data, rc_tensor_nbytes(t));
+  }
+  int64_t axis = rc__attr_int(n, "axis", 1);
+  return fnv(h, &axis, sizeof axis);
+}
+
 static rc_status grow_values(rc_graph *g, int extra, rc_err *e) {
   rc_value *nv = rc__arena_alloc(&g->arena, sizeof(rc_value) * (size_t)(g->n_values + extra));
   if (!nv) return rc__fail(e, RC_ERR_NOMEM, "%s: out of memory preparing quantized training", g->path);
@@ -109,7 +130,7 @@ static rc_status rewrite_int_weight(rc_graph *g, rc_qat *q, int dqi, rc_err *e) 
   }
   sh->decl.data = x;
   rc_qat_site s = {dqi, -1, qv, shadow, -1, qt->dtype == RC_DTYPE_INT32, dq->def, NULL, dq->op_type, NULL,
-                   dq->domain, NULL, dq->params, NULL, dq->in[0], dq->n_in};
+                   dq->domain, NULL, dq->params, NULL, dq->in[0], dq->n_in, grid_hash(g, dq)};
   dq->op_type = RC_FAKE_QUANT_OP;
   dq->domain = RC_TRAINING_DOMAIN;
   dq->def = fake_quant_def();
@@ -126,7 +147,7 @@ static rc_status rewrite_pair(rc_graph *g, rc_qat *q, int dqi, int qi, rc_err *e
   int fw = initializer_in(g, qn, 0);
   if (fw >= 0 && g->values[fw].decl.dtype != RC_DTYPE_FLOAT) fw = -1;
   rc_qat_site s = {dqi, qi, -1, -1, fw, 0, dq->def, qn->def, dq->op_type, qn->op_type, dq->domain, qn->domain,
-                   dq->params, qn->params, dq->in[0], dq->n_in};
+                   dq->params, qn->params, dq->in[0], dq->n_in, grid_hash(g, qn)};
   qn->op_type = RC_FAKE_QUANT_OP;
   qn->domain = RC_TRAINING_DOMAIN;
   qn->def = fake_quant_def();
@@ -188,6 +209,13 @@ rc_status rc__qat_write_back(rc_graph *g, const rc_qat *q, rc_err *e) {
   for (int k = 0; k < q->n; k++) {
     const rc_qat_site *s = &q->sites[k];
     const rc_node *grid = &g->nodes[s->q >= 0 ? s->q : s->dq];
+    if (grid_hash(g, grid) != s->grid_hash)
+      return rc__fail(e, RC_ERR_NUMERIC, "%s: node '%s': its quantization grid changed during training; refusing to "
+                      "write", g->path, grid->label);
+  }
+  for (int k = 0; k < q->n; k++) {
+    const rc_qat_site *s = &q->sites[k];
+    const rc_node *grid = &g->nodes[s->q >= 0 ? s->q : s->dq];
     const rc_fake_quant_params *p = grid->params;
     int sv = initializer_in(g, grid, 1);
     const rc_tensor *st = &g->values[sv].decl;
@@ -213,7 +241,6 @@ rc_status rc__qat_write_back(rc_graph *g, const rc_qat *q, rc_err *e) {
       }
     }
   }
-  (void)e;
   return RC_OK;
 }
 

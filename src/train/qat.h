@@ -13,6 +13,8 @@
 #ifndef RC_TRAIN_QAT_H
 #define RC_TRAIN_QAT_H
 
+#include <stdint.h>
+
 #include "core/status.h"
 #include "graph/ir.h"
 
@@ -28,6 +30,7 @@ typedef struct rc_qat_site {
   const char *dq_op, *q_op, *dq_domain, *q_domain;
   void *dq_params, *q_params;
   int dq_in0, dq_n_in;
+  uint64_t grid_hash;  /* scale, zero point, their dtypes and the axis, at load */
 } rc_qat_site;
 
 typedef struct rc_qat {
@@ -39,7 +42,9 @@ typedef struct rc_qat {
 /* Rewrite every QDQ site of g for training. Adds shadow values to g. */
 rc_status rc__qat_prepare(rc_graph *g, rc_qat *q, rc_err *e);
 /* Requantize shadows into their integer initializers and snap float weights
- * feeding QuantizeLinear onto their grids (in the data the graph points at). */
+ * feeding QuantizeLinear onto their grids (in the data the graph points at).
+ * First verifies that every grid (scale and zero point bytes, dtypes, axis)
+ * is exactly as it was loaded, refusing to go on otherwise. */
 rc_status rc__qat_write_back(rc_graph *g, const rc_qat *q, rc_err *e);
 /* Put every rewritten node back (idempotent). */
 void rc__qat_restore(rc_graph *g, rc_qat *q);
