@@ -11,9 +11,10 @@ pass onnx.checker (Debian python3-onnx), keep the student's shapes, and
 export no projector. Both accuracies are printed.
 
 Measured on our run (300 steps, seed 5, 2 threads): channel-pruned 0.2818,
-kd 0.8519, kd=1,hint=1 0.8359, kd=1,hint=0.3 0.8519 (kd=1,attention=1000 at
-one thread 0.8193). At this short budget the hint does not beat kd alone on
-this pair, so the test does not claim it does.
+kd 0.8519, kd=1,hint=0.3 0.8519 (different weights, the same count of
+correct images); with the logits also in the hint pairs, as an earlier
+version paired them, kd=1,hint=1 gave 0.8359. At this short budget the hint
+does not beat kd alone on this pair, so the test does not claim it does.
 
 Usage: features_test.py RECOUP SOURCE_DIR WORK_DIR
 """
