@@ -16,6 +16,7 @@
 #include "graph/plan.h"
 #include "onnx/model.h"
 #include "recoup/data.h"
+#include "reference_cases.h"
 #include "test.h"
 
 static double rel_error(const float *a, const float *b, int64_t n, double *norm_b) {
@@ -137,32 +138,17 @@ out:
   return ok;
 }
 
+static int run_case(const char *dir, const char *model, int opset, const char *variant) {
+  (void)model, (void)opset, (void)variant;
+  int ok = check_case(dir);
+  CHECK(ok);
+  return ok;
+}
+
 static void every_bn_case_matches_pytorch(void) {
-  const char *bin = getenv("RECOUP_BINARY_DIR");
-  char manifest[1024];
-  snprintf(manifest, sizeof manifest, "%s/reference/manifest.txt", bin ? bin : ".");
-  FILE *f = fopen(manifest, "r");
-  if (!f) {
-    fprintf(stderr, "missing %s: the reference_models fixture (scripts/export_reference_models.py) did not run\n",
-            manifest);
-    CHECK(f != NULL);
-    return;
-  }
-  char line[1024];
-  int ran = 0, passed = 0;
-  while (fgets(line, sizeof line, f)) {
-    char cas[256], model[128], variant[32];
-    int opset;
-    if (line[0] == '#' || sscanf(line, "%255s %127s %d %31s", cas, model, &opset, variant) != 4) continue;
-    if (strcmp(variant, "bn")) continue;
-    char dir[1400];
-    snprintf(dir, sizeof dir, "%s/reference/%s", bin ? bin : ".", cas);
-    ran++;
-    int ok = check_case(dir);
-    passed += ok;
-    CHECK(ok);
-  }
-  fclose(f);
+  int passed;
+  int ran = ref_each_case("bn", run_case, &passed);
+  CHECK(ran >= 0);
   printf("gradient cases: %d ran, %d matched PyTorch\n", ran, passed);
   CHECK(ran >= 10);
 }

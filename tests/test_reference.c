@@ -14,6 +14,7 @@
 #include "graph/plan.h"
 #include "onnx/model.h"
 #include "recoup/data.h"
+#include "reference_cases.h"
 #include "test.h"
 
 #define TOL 1e-4
@@ -94,30 +95,17 @@ out:
   return ok;
 }
 
+static int run_case(const char *dir, const char *model, int opset, const char *variant) {
+  (void)model, (void)opset, (void)variant;
+  int ok = check_case(dir, strrchr(dir, '/') + 1);
+  CHECK(ok);
+  return ok;
+}
+
 static void every_case_matches_pytorch(void) {
-  const char *bin = getenv("RECOUP_BINARY_DIR");
-  char manifest[1024];
-  snprintf(manifest, sizeof manifest, "%s/reference/manifest.txt", bin ? bin : ".");
-  FILE *f = fopen(manifest, "r");
-  if (!f) {
-    fprintf(stderr, "missing %s: the reference_models fixture (scripts/export_reference_models.py) did not run\n",
-            manifest);
-    CHECK(f != NULL);
-    return;
-  }
-  char line[1024];
-  int ran = 0, passed = 0;
-  while (fgets(line, sizeof line, f)) {
-    char cas[256];
-    if (line[0] == '#' || sscanf(line, "%255s", cas) != 1) continue;
-    char dir[1400];
-    snprintf(dir, sizeof dir, "%s/reference/%s", bin ? bin : ".", cas);
-    ran++;
-    int ok = check_case(dir, cas);
-    passed += ok;
-    CHECK(ok);
-  }
-  fclose(f);
+  int passed;
+  int ran = ref_each_case(NULL, run_case, &passed);
+  CHECK(ran >= 0);
   printf("%d of %d reference models match PyTorch (Debian python3-torch)\n", passed, ran);
   /* Eleven models x two opsets x two variants. */
   CHECK(ran >= 44);
