@@ -5,6 +5,7 @@
 #include <errno.h>
 #include <fnmatch.h>
 #include <stdio.h>
+#include <unistd.h>
 #include <zlib.h>
 #include <math.h>
 #include <string.h>
@@ -627,10 +628,14 @@ static rc_status checkpoint_write(const loop_ctx *lc, const loop_state *ls, rc_e
   p += ps_bytes;
   uint32_t crc = (uint32_t)crc32(0L, buf, (uInt)(p - buf));
   memcpy(p, &crc, 4);
-  /* Keep the previous checkpoint as PATH.1 until the new one is in place. */
-  char prev[4096];
+  /* Keep the previous checkpoint as PATH.1. PATH itself must exist at every
+   * instant (a kill may come at any time), so the old one is hard-linked to
+   * PATH.1 and the new one renamed over PATH, never PATH moved away first. */
+  char prev[4096], prev_tmp[4200];
   snprintf(prev, sizeof prev, "%s.1", path);
-  rename(path, prev);
+  snprintf(prev_tmp, sizeof prev_tmp, "%s.1.tmp", path);
+  unlink(prev_tmp);
+  if (link(path, prev_tmp) == 0) rename(prev_tmp, prev);
   rc_status s = rc__write_atomic(path, buf, n, e);
   rc__free(buf);
   return s;
