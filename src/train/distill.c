@@ -24,7 +24,6 @@ void rc_distill_config_defaults(rc_distill_config *c) {
   memset(c, 0, sizeof *c);
   c->epochs = 3;
   c->batch = 64;
-  c->loss = RC_LOSS_KD;
   c->terms.weight[RC_TERM_KD] = 1;
   c->temperature = RC_KD_DEFAULT_TEMPERATURE;
   c->alpha = -1;
@@ -589,7 +588,7 @@ static uint64_t run_fingerprint(const loop_ctx *lc) {
   h = fnv1a(h, rc_params_block(st->ps, RC_BLOCK_VALUE, -1), rc_params_total(st->ps) * sizeof(float));
   int64_t pool = st->train.n + (st->own_val ? 0 : st->val.n);
   h = fnv1a(h, st->teacher_logits, sizeof(float) * (size_t)(pool * st->k));
-  int64_t ints[] = {c->seed, st->batch, lc->total, lc->spe, c->loss, c->bn, st->train.n, st->val.n,
+  int64_t ints[] = {c->seed, st->batch, lc->total, lc->spe, c->bn, st->train.n, st->val.n,
                     c->optim.kind, c->optim.nesterov, c->optim.decay_norm, c->sched.kind, lc->sched.warmup,
                     lc->sched.step_size, (int64_t)sizeof(loop_state)};
   double reals[] = {c->temperature, c->alpha, c->optim.lr, c->optim.weight_decay, c->optim.momentum,

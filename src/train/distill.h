@@ -24,8 +24,6 @@ typedef enum rc_bn_mode {
   RC_BN_TRAIN = 2        /* batch statistics in training, running stats updated */
 } rc_bn_mode;
 
-typedef enum rc_distill_loss { RC_LOSS_KD = 0, RC_LOSS_LOGIT_MSE = 1 } rc_distill_loss;
-
 typedef struct rc_distill_data {
   const rc_tensor *inputs; /* one per student input (graph order), dims[0] = samples */
   int n_inputs;
@@ -54,7 +52,6 @@ typedef struct rc_distill_config {
   int64_t epochs;            /* used when steps == 0 */
   int64_t steps;
   int64_t batch;
-  rc_distill_loss loss;       /* kept for callers; terms decides */
   rc_loss_spec terms;         /* weights of kd, logit-mse and the feature terms */
   const char *const *pairs;   /* "TEACHER=STUDENT" overrides of automatic pairing */
   const float *pair_weights;  /* per given pair, or NULL */
