@@ -19,6 +19,8 @@ float32 inputs, and differentiated by autograd:
              potentials under smooth L1 (Huber, delta 1)
   attnmap    KL(teacher || student) over attention probabilities
   anchor     L2-SP penalty (Li, Grandvalet and Davoine 2018), masked
+  fit        least-squares (ridge) start of a projector: the normal
+             equations of [s, 1] -> t solved by torch.linalg.solve
 """
 import itertools
 import os
@@ -208,6 +210,28 @@ def anchor_case(name, gen, count):
     put(name + "_gs", x.grad)
 
 
+def fit_case(name, gen, s_shape, ct, channels_first, ridge=0.1):
+    """Ridge regression from student to teacher channels over every sample
+    and position: minimise |W s + b - t|^2 + lam |W|^2 with lam = ridge *
+    trace(S^T S) / Cs (b not penalised)."""
+    cs = s_shape[1] if channels_first else s_shape[-1]
+    s = rand(gen, *s_shape)
+    w0 = rand(gen, ct, cs)
+    t = project(s, w0, rand(gen, ct), channels_first)
+    t = (t + rand(gen, *t.shape, scale=0.3)).float().double()  # noise: no exact fit
+    rows_s = s.movedim(1, -1).reshape(-1, cs) if channels_first else s.reshape(-1, cs)
+    rows_t = t.movedim(1, -1).reshape(-1, ct) if channels_first else t.reshape(-1, ct)
+    x = torch.cat([rows_s, torch.ones(rows_s.shape[0], 1, dtype=torch.float64)], 1)
+    lam = ridge * torch.trace(rows_s.T @ rows_s) / cs
+    penalty = torch.diag(torch.cat([torch.full((cs,), float(lam), dtype=torch.float64),
+                                    torch.zeros(1, dtype=torch.float64)]))
+    theta = torch.linalg.solve(x.T @ x + penalty, x.T @ rows_t)  # (cs + 1, ct)
+    put(name + "_s", s)
+    put(name + "_t", t)
+    put(name + "_w", theta[:cs].T)
+    put(name + "_b", theta[cs])
+
+
 def main():
     if len(sys.argv) != 2:
         sys.exit("usage: ref_feature_loss.py OUT_DIR")
@@ -229,6 +253,8 @@ def main():
     rkd_case("rkd", gen, 7, 5, 9)
     attnmap_case("attnmap", gen, 2, 3, 4, 5)
     anchor_case("anchor", gen, 40)
+    fit_case("fit_cf", gen, (3, 4, 5, 2), 6, True)
+    fit_case("fit_tok", gen, (2, 9, 5), 3, False)
     for name, arr in arrays:
         arr.tofile(os.path.join(out, name + ".f32"))
     tmp = os.path.join(out, "index.txt.tmp")

@@ -379,6 +379,42 @@ static void projector_init(void) {
   CHECK_INT(rc_feat_projector_init(id, NULL, 0, 3, RC_FEAT_INIT_AUTO, 7, &e), RC_ERR_SHAPE);
 }
 
+/* Least-squares start: a student with all-zero features is explained by
+ * the bias alone (W = 0, b = the teacher's channel means); a NaN leaves the
+ * given projector as it was and says so; a hint after the fit is below the
+ * hint with the random start it replaces. */
+static void projector_fit(void) {
+  enum { N = 4, CS = 3, CT = 5, P = 6 };
+  static double fit_work[256];
+  float s[N * CS * P] = {0}, t[N * CT * P], w[CT * CS], b[CT];
+  fill(t, N * CT * P, 11);
+  rc_feat_view sv = view(N, CS, P, CF), tv = view(N, CT, P, CF);
+  CHECK(rc_feat_projector_fit_workspace_doubles(CS, CT) <= 256);
+  rc_err e;
+  int fitted = 0;
+  CHECK_INT(rc_feat_projector_fit(&fitted, w, b, s, t, &sv, &tv, fit_work, &e), RC_OK);
+  CHECK_INT(fitted, 1);
+  for (int i = 0; i < CT * CS; i++) CHECK_NEAR(w[i], 0.0, 1e-6, 0);
+  for (int c = 0; c < CT; c++) {
+    double mean = 0;
+    for (int n = 0; n < N; n++)
+      for (int j = 0; j < P; j++) mean += t[(n * CT + c) * P + j];
+    CHECK_NEAR(b[c], mean / (N * P), 1e-5, 1e-5);
+  }
+  fill(s, N * CS * P, 12);
+  CHECK_INT(rc_feat_projector_init(w, b, CT, CS, RC_FEAT_INIT_UNIFORM, 3, &e), RC_OK);
+  double before = call_hint(NULL, s, t, w, b, sv, tv);
+  CHECK_INT(rc_feat_projector_fit(&fitted, w, b, s, t, &sv, &tv, fit_work, &e), RC_OK);
+  CHECK(fitted && call_hint(NULL, s, t, w, b, sv, tv) < before);
+  float kept[CT * CS];
+  memcpy(kept, w, sizeof kept);
+  s[4] = NAN;
+  CHECK_INT(rc_feat_projector_fit(&fitted, w, b, s, t, &sv, &tv, fit_work, &e), RC_OK);
+  CHECK_INT(fitted, 0);
+  CHECK(!memcmp(kept, w, sizeof kept));
+  CHECK_INT(rc_feat_projector_fit(&fitted, w, NULL, s, t, &sv, &tv, fit_work, &e), RC_ERR_INVALID);
+}
+
 /* Heo et al. 2019: active teacher neurons with y >= mu and inactive ones
  * with y <= -mu cost nothing; y = 0 costs mu^2 either way. */
 static void boundary_by_hand(void) {
@@ -607,6 +643,7 @@ int main(void) {
   RUN(weight_anchor_gradients);
   RUN(hint_by_hand);
   RUN(projector_init);
+  RUN(projector_fit);
   RUN(boundary_by_hand);
   RUN(attention_by_hand);
   RUN(fsp_by_hand);

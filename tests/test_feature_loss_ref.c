@@ -193,6 +193,34 @@ static void weight_anchor_matches_torch(void) {
   check_grad("weight anchor", g, gs, CNT);
 }
 
+/* The least-squares start of a projector against the normal equations
+ * solved by torch.linalg.solve in float64 (GEMM sums here run in float32:
+ * relative 1e-4). */
+static void fit_case(const char *name, rc_feat_view sv, int64_t ct) {
+  rc_feat_view tv = sv;
+  tv.c = ct;
+  long ns = (long)(sv.n * sv.c * sv.positions), nt = (long)(tv.n * tv.c * tv.positions);
+  char k[96];
+#define R(suffix, count) (snprintf(k, sizeof k, "%s_%s", name, suffix), ref(k, count))
+  const float *s = R("s", ns), *t = R("t", nt), *w = R("w", ct * sv.c), *b = R("b", ct);
+#undef R
+  if (!s || !t || !w || !b) return;
+  CHECK(rc_feat_projector_fit_workspace_doubles(sv.c, ct) <= sizeof work_store / sizeof(double));
+  float *gw = zeros(ct * sv.c), *gb = zeros(ct);
+  int fitted = 0;
+  rc_err e;
+  CHECK_INT(rc_feat_projector_fit(&fitted, gw, gb, s, t, &sv, &tv, work_store, &e), RC_OK);
+  CHECK_INT(fitted, 1);
+  check_grad("fitted weight", gw, w, (long)(ct * sv.c));
+  check_grad("fitted bias", gb, b, (long)ct);
+  free(gw), free(gb);
+}
+
+static void projector_fit_matches_torch(void) {
+  fit_case("fit_cf", view(3, 4, 10, RC_FEAT_CHANNELS_FIRST), 6);
+  fit_case("fit_tok", view(2, 5, 9, RC_FEAT_CHANNELS_LAST), 3);
+}
+
 int main(void) {
   if (!ref_load("feature_loss_ref", "feature_loss_ref_data")) return 1;
   RUN(hint_matches_torch);
@@ -202,6 +230,7 @@ int main(void) {
   RUN(rkd_matches_torch);
   RUN(attention_map_matches_torch);
   RUN(weight_anchor_matches_torch);
+  RUN(projector_fit_matches_torch);
   ref_free();
   return TEST_REPORT();
 }

@@ -132,6 +132,7 @@ typedef struct run_state {
   rc_features *feat;         /* feature-level terms, NULL when only logits are matched */
   rc_plan *teacher_step;     /* teacher run every step for inner tensors */
   unsigned char *tkeep, *skeep;
+  int projectors_started;    /* least-squares start done (or a resumed run) */
 } run_state;
 
 static rc_status add_trainable(run_state *st, int v, unsigned flags, rc_err *e) {
@@ -735,6 +736,11 @@ static rc_status train_step(loop_ctx *lc, const loop_state *ls, step_buffers *sb
                rc_tensor_nbytes(rc_plan_tensor(st->teacher_step, tg->inputs[i])));
       }
       RC_TRY(rc_plan_forward(st->teacher_step, e));
+      if (!st->projectors_started && rc_params_steps(st->ps) == 0) {
+        int fitted;
+        RC_TRY(rc__features_fit_projectors(st->feat, st->teacher_step, st->train_plan, st->ps, &fitted, e));
+      }
+      st->projectors_started = 1;
     }
     double fl = 0;
     RC_TRY(rc__features_step(st->feat, st->teacher_step, st->train_plan, st->ps, sb->teacher, &fl, e));

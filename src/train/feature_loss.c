@@ -670,3 +670,113 @@ rc_status rc_loss_weight_anchor(double *loss, float *grad, float grad_scale, con
   *loss = 0.5 * total;
   return RC_OK;
 }
+
+/* ---- Least-squares start of a projector -------------------------------- */
+
+size_t rc_feat_projector_fit_workspace_doubles(int64_t cs, int64_t ct) {
+  size_t a = (size_t)(cs + 1) * (size_t)(cs + 1), b = (size_t)(cs + 1) * (size_t)ct;
+  /* Doubles for the normal equations, then floats for the GEMM sums. */
+  return a + b + ((size_t)cs * (size_t)cs + (size_t)cs * (size_t)ct + 1) / 2 + 1;
+}
+
+/* G (Cs, Cs) = sum s s^T and C (Cs, Ct) = sum s t^T over samples and
+ * positions, through OpenBLAS. */
+static void feature_moments(float *g, float *c, const float *s, const float *t, const rc_feat_view *sv,
+                            int64_t ct) {
+  int cs = (int)sv->c, p = (int)sv->positions, ict = (int)ct;
+  if (sv->layout == RC_FEAT_CHANNELS_FIRST) {
+    memset(g, 0, sizeof(float) * (size_t)cs * (size_t)cs);
+    memset(c, 0, sizeof(float) * (size_t)cs * (size_t)ict);
+    for (int64_t i = 0; i < sv->n; i++) {
+      const float *si = s + i * cs * p, *ti = t + i * ct * p;
+      cblas_sgemm(CblasRowMajor, CblasNoTrans, CblasTrans, cs, cs, p, 1.0f, si, p, si, p, 1.0f, g, cs);
+      cblas_sgemm(CblasRowMajor, CblasNoTrans, CblasTrans, cs, ict, p, 1.0f, si, p, ti, p, 1.0f, c, ict);
+    }
+  } else {
+    int m = (int)(sv->n * sv->positions);
+    cblas_sgemm(CblasRowMajor, CblasTrans, CblasNoTrans, cs, cs, m, 1.0f, s, cs, s, cs, 0.0f, g, cs);
+    cblas_sgemm(CblasRowMajor, CblasTrans, CblasNoTrans, cs, ict, m, 1.0f, s, cs, t, ict, 0.0f, c, ict);
+  }
+}
+
+/* Sum over samples and positions of every channel of x. */
+static void channel_sums(double *sum, const float *x, const rc_feat_view *v) {
+  memset(sum, 0, sizeof(double) * (size_t)v->c);
+  for (int64_t i = 0; i < v->n; i++)
+    if (v->layout == RC_FEAT_CHANNELS_FIRST) {
+      for (int64_t c = 0; c < v->c; c++)
+        for (int64_t j = 0; j < v->positions; j++) sum[c] += x[(i * v->c + c) * v->positions + j];
+    } else {
+      for (int64_t j = 0; j < v->positions; j++)
+        for (int64_t c = 0; c < v->c; c++) sum[c] += x[(i * v->positions + j) * v->c + c];
+    }
+}
+
+/* In-place Cholesky factor (lower) of the symmetric positive definite
+ * a (n, n); 0 when a is not positive definite (or holds NaN). */
+static int cholesky(double *a, int64_t n) {
+  for (int64_t j = 0; j < n; j++) {
+    double d = a[j * n + j];
+    for (int64_t k = 0; k < j; k++) d -= a[j * n + k] * a[j * n + k];
+    if (!(d > 0)) return 0;
+    a[j * n + j] = sqrt(d);
+    for (int64_t i = j + 1; i < n; i++) {
+      double v = a[i * n + j];
+      for (int64_t k = 0; k < j; k++) v -= a[i * n + k] * a[j * n + k];
+      a[i * n + j] = v / a[j * n + j];
+    }
+  }
+  return 1;
+}
+
+/* Solve L L^T x = b for every column of b (n, m), in place. */
+static void cholesky_solve(const double *l, double *b, int64_t n, int64_t m) {
+  for (int64_t col = 0; col < m; col++) {
+    for (int64_t i = 0; i < n; i++) {
+      double v = b[i * m + col];
+      for (int64_t k = 0; k < i; k++) v -= l[i * n + k] * b[k * m + col];
+      b[i * m + col] = v / l[i * n + i];
+    }
+    for (int64_t i = n - 1; i >= 0; i--) {
+      double v = b[i * m + col];
+      for (int64_t k = i + 1; k < n; k++) v -= l[k * n + i] * b[k * m + col];
+      b[i * m + col] = v / l[i * n + i];
+    }
+  }
+}
+
+rc_status rc_feat_projector_fit(int *fitted, float *weight, float *bias, const float *student,
+                                const float *teacher, const rc_feat_view *sv,
+                                const rc_feat_view *tv, double *work, rc_err *e) {
+  *fitted = 0;
+  RC_TRY(check_projected("projector fit", student, teacher, weight, sv, tv, (const float *)work, e));
+  if (!weight || !bias) return rc__fail(e, RC_ERR_INVALID, "projector fit: missing weight or bias");
+  int64_t cs = sv->c, ct = tv->c, n1 = cs + 1;
+  double *a = work, *b = a + n1 * n1;
+  float *g = (float *)(b + n1 * ct), *c = g + cs * cs;
+  feature_moments(g, c, student, teacher, sv, ct);
+  /* Normal equations of [s, 1] -> t: a = [G, sum s; sum s^T, count]. */
+  double *ss = a + cs * n1, *st = b + cs * ct; /* the last rows, filled first */
+  channel_sums(ss, student, sv);
+  channel_sums(st, teacher, tv);
+  double count = (double)(sv->n * sv->positions), trace = 0;
+  for (int64_t i = 0; i < cs; i++) trace += g[i * cs + i];
+  /* The ridge on W (not on the bias): see feature_loss.h. */
+  double ridge = 1e-1 * trace / (double)cs + 1e-12;
+  for (int64_t i = 0; i < cs; i++) {
+    for (int64_t j = 0; j < cs; j++) a[i * n1 + j] = g[i * cs + j] + (i == j ? ridge : 0.0);
+    a[i * n1 + cs] = ss[i];
+    for (int64_t o = 0; o < ct; o++) b[i * ct + o] = c[i * ct + o];
+  }
+  a[cs * n1 + cs] = count;
+  if (!cholesky(a, n1)) return RC_OK; /* degenerate or non-finite: keep the given start */
+  cholesky_solve(a, b, n1, ct);
+  for (int64_t i = 0; i < n1 * ct; i++)
+    if (!isfinite(b[i])) return RC_OK;
+  for (int64_t o = 0; o < ct; o++) {
+    for (int64_t i = 0; i < cs; i++) weight[o * cs + i] = (float)b[i * ct + o];
+    bias[o] = (float)b[cs * ct + o];
+  }
+  *fitted = 1;
+  return RC_OK;
+}

@@ -70,6 +70,23 @@ typedef enum rc_feat_init {
 rc_status rc_feat_projector_init(float *weight, float *bias, int64_t ct, int64_t cs,
                                  rc_feat_init init, uint64_t seed, rc_err *e);
 
+/* Least-squares start for a projector, from one batch of paired features:
+ * W, b = argmin over the batch's samples and positions of |W s + b - t|^2
+ * + lambda |W|^2 (ridge regression, b not penalised; lambda = 0.1 * mean
+ * diagonal of sum s s^T keeps the system solvable when student channels are
+ * dead or collinear, and keeps W small: a stronger ridge trained better on
+ * the demo pair than a near-exact fit). A projector drawn at random makes the
+ * hint term push the student towards a random mix of the teacher's channels
+ * until it has learned better; the fitted one starts from the best linear
+ * map between the two, so the term's gradient is useful from the first step.
+ * Writes W (Ct, Cs) and b (Ct) and sets *fitted = 1; leaves them as they
+ * were with *fitted = 0 when the system is degenerate or not finite.
+ * Work: rc_feat_projector_fit_workspace_doubles(Cs, Ct) doubles. */
+size_t rc_feat_projector_fit_workspace_doubles(int64_t cs, int64_t ct);
+rc_status rc_feat_projector_fit(int *fitted, float *weight, float *bias, const float *student,
+                                const float *teacher, const rc_feat_view *sv,
+                                const rc_feat_view *tv, double *work, rc_err *e);
+
 /* ---- Hint (Romero et al. 2015, FitNets) ---------------------------------
  * Student s (view sv, Cs channels), teacher t (view tv, Ct channels); same
  * N, P and layout. With y = W s + b (or y = s without a projector):

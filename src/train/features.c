@@ -320,6 +320,27 @@ static rc_status attention_map_terms(rc_features *f, rc_plan *tp, rc_plan *sp, d
   return RC_OK;
 }
 
+rc_status rc__features_fit_projectors(rc_features *f, rc_plan *tp, rc_plan *sp, rc_params *ps, int *fitted,
+                                      rc_err *e) {
+  *fitted = 0;
+  for (int i = 0; i < f->pairing.n; i++) {
+    const projector *pr = &f->proj[i];
+    if (pr->w_entry < 0) continue;
+    const rc_pair *p = &f->pairing.pairs[i];
+    const rc_tensor *t = rc_plan_tensor(tp, p->teacher), *s = rc_plan_tensor(sp, p->student);
+    rc_feat_view sv, tv;
+    RC_TRY(view_of(s, &sv, e));
+    RC_TRY(view_of(t, &tv, e));
+    size_t doubles = rc_feat_projector_fit_workspace_doubles(sv.c, tv.c);
+    RC_TRY(ensure_work(f, 2 * doubles, e)); /* floats; the fit counts doubles */
+    int ok;
+    RC_TRY(rc_feat_projector_fit(&ok, pw(ps, pr->w_entry, 0), pw(ps, pr->b_entry, 0), s->data, t->data, &sv, &tv,
+                                 (double *)(void *)f->work, e));
+    *fitted += ok;
+  }
+  return RC_OK;
+}
+
 rc_status rc__features_step(rc_features *f, rc_plan *tp, rc_plan *sp, rc_params *ps, const float *teacher_logits,
                             double *loss, rc_err *e) {
   double total = 0;

@@ -59,6 +59,11 @@ rc_status rc__features_setup(rc_features **out, const rc_loss_spec *spec, const 
 /* After rc_params_finalize: initialise projectors (deterministic from seed)
  * and bind weight anchors to store entries (entry index by initializer name). */
 rc_status rc__features_init(rc_features *f, rc_params *ps, uint64_t seed, rc_err *e);
+/* Before the first step of a run (not a resumed one), after both forwards
+ * on its batch: start every projector from the least-squares map between
+ * the paired features (feature_loss.h). *fitted counts the projectors fitted. */
+rc_status rc__features_fit_projectors(rc_features *f, rc_plan *teacher, rc_plan *student, rc_params *ps,
+                                      int *fitted, rc_err *e);
 /* After both forwards: add every feature term's gradient into the student
  * plan's gradient buffers and the store; *loss receives their weighted sum.
  * teacher may be NULL when no term reads inner tensors; teacher_logits are
