@@ -90,25 +90,51 @@ static int uses_pairs(const rc_loss_spec *s) {
 
 static int channels_of(const rc_tensor *t) { return (int)(t->rank == 3 ? t->dims[2] : t->dims[1]); }
 
-/* Softmax outputs of rank 4 (attention probabilities), in node order. */
-static int softmax_outputs(const rc_graph *g, int *out) {
+/* Softmax outputs of rank 4 (attention probabilities (N, heads, L, L)), in
+ * node order; a Softmax over logits or anything else is not attention. */
+static int attention_softmaxes(const rc_graph *g, rc_plan *p, int *out) {
   int n = 0;
-  for (int i = 0; i < g->n_nodes; i++)
-    if (!strcmp(g->nodes[i].op_type, "Softmax") && g->nodes[i].out[0] >= 0) out[n++] = g->nodes[i].out[0];
+  for (int i = 0; i < g->n_nodes; i++) {
+    int v = g->nodes[i].out[0];
+    if (!strcmp(g->nodes[i].op_type, "Softmax") && v >= 0 && rc_plan_tensor(p, v)->rank == 4) out[n++] = v;
+  }
   return n;
+}
+
+/* Teacher and student attention maps pair in order: the counts and each
+ * pair's shape must agree, checked here before any training. */
+static rc_status match_attention_maps(rc_features *f, rc_plan *tp, rc_plan *sp, rc_err *e) {
+  int nt = attention_softmaxes(f->tg, tp, f->amap_t), ns = attention_softmaxes(f->sg, sp, f->amap_s);
+  if (!nt || !ns)
+    return rc__fail(e, RC_ERR_INVALID, "--loss attention-map: %s has %d and %s has %d attention maps (Softmax "
+                    "outputs of rank 4, (N, heads, L, L)); both need some", f->tg->path, nt, f->sg->path, ns);
+  if (nt != ns)
+    return rc__fail(e, RC_ERR_SHAPE, "--loss attention-map: %s has %d attention maps and %s has %d; they pair in "
+                    "order, so the counts must agree", f->tg->path, nt, f->sg->path, ns);
+  for (int i = 0; i < nt; i++) {
+    const rc_tensor *t = rc_plan_tensor(tp, f->amap_t[i]), *s = rc_plan_tensor(sp, f->amap_s[i]);
+    if (!rc_shape_equal(t, s)) {
+      char a[96], b[96];
+      return rc__fail(e, RC_ERR_SHAPE, "--loss attention-map: teacher '%s' %s and student '%s' %s must have the "
+                      "same (heads, L, L)", f->tg->values[f->amap_t[i]].name, rc_shape_str(t, a, sizeof a),
+                      f->sg->values[f->amap_s[i]].name, rc_shape_str(s, b, sizeof b));
+    }
+  }
+  f->n_amap = nt;
+  return RC_OK;
 }
 
 static rc_status setup_attention_maps(rc_features *f, const rc_tensor *shapes, unsigned char *tk, unsigned char *sk,
                                       rc_err *e) {
-  (void)shapes;
   f->amap_t = rc__malloc(sizeof(int) * (size_t)(f->tg->n_nodes + 1));
   f->amap_s = rc__malloc(sizeof(int) * (size_t)(f->sg->n_nodes + 1));
   if (!f->amap_t || !f->amap_s) return rc__fail(e, RC_ERR_NOMEM, "out of memory");
-  int nt = softmax_outputs(f->tg, f->amap_t), ns = softmax_outputs(f->sg, f->amap_s);
-  f->n_amap = nt < ns ? nt : ns;
-  if (!f->n_amap)
-    return rc__fail(e, RC_ERR_INVALID, "--loss attention-map: %s and %s do not both expose Softmax outputs",
-                    f->tg->path, f->sg->path);
+  rc_plan *tp, *sp;
+  RC_TRY(rc__pairing_plans(&tp, &sp, f->tg, f->sg, shapes, e));
+  rc_status s = match_attention_maps(f, tp, sp, e);
+  rc_plan_free(tp);
+  rc_plan_free(sp);
+  RC_TRY(s);
   for (int i = 0; i < f->n_amap; i++) {
     tk[f->amap_t[i]] = 1;
     sk[f->amap_s[i]] = 1;
@@ -306,7 +332,7 @@ static rc_status attention_map_terms(rc_features *f, rc_plan *tp, rc_plan *sp, d
   float w = f->spec.weight[RC_TERM_ATTENTION_MAP];
   for (int i = 0; i < f->n_amap; i++) {
     const rc_tensor *t = rc_plan_tensor(tp, f->amap_t[i]), *s = rc_plan_tensor(sp, f->amap_s[i]);
-    if (t->rank != 4 || !rc_shape_equal(t, s)) {
+    if (t->rank != 4 || !rc_shape_equal(t, s)) { /* checked at setup; a batch cannot change it */
       char a[96], b[96];
       return rc__fail(e, RC_ERR_SHAPE, "attention-map: Softmax outputs %s and %s must be equal (N, heads, L, L)",
                       rc_shape_str(t, a, sizeof a), rc_shape_str(s, b, sizeof b));

@@ -122,19 +122,30 @@ static rc_status automatic(rc_pairing *out, rc_plan *tp, rc_plan *sp, const rc_g
   return st;
 }
 
-rc_status rc_pairing_make(rc_pairing *out, const rc_graph *tg, const rc_graph *sg, const rc_tensor *input_shapes,
-                          const char *const *explicit_pairs, int n_explicit, int automatic_pairs, rc_err *e) {
-  memset(out, 0, sizeof *out);
-  rc_plan *tp = NULL, *sp = NULL;
+rc_status rc__pairing_plans(rc_plan **tp, rc_plan **sp, const rc_graph *tg, const rc_graph *sg,
+                            const rc_tensor *input_shapes, rc_err *e) {
+  *tp = *sp = NULL;
   rc_tensor tin[16];
-  if (sg->n_inputs > 16) return rc__fail(e, RC_ERR_UNSUPPORTED, "more than 16 inputs");
+  if (sg->n_inputs > 16 || tg->n_inputs > 16) return rc__fail(e, RC_ERR_UNSUPPORTED, "more than 16 inputs");
   for (int i = 0; i < tg->n_inputs; i++) {
     tin[i] = input_shapes[0];
     for (int j = 0; j < sg->n_inputs; j++)
       if (!strcmp(sg->values[sg->inputs[j]].name, tg->values[tg->inputs[i]].name)) tin[i] = input_shapes[j];
   }
-  rc_status st = rc_plan_create(&tp, tg, tin, NULL, e);
-  if (st == RC_OK) st = rc_plan_create(&sp, sg, input_shapes, NULL, e);
+  rc_status st = rc_plan_create(tp, tg, tin, NULL, e);
+  if (st == RC_OK) st = rc_plan_create(sp, sg, input_shapes, NULL, e);
+  if (st != RC_OK) {
+    rc_plan_free(*tp);
+    *tp = NULL;
+  }
+  return st;
+}
+
+rc_status rc_pairing_make(rc_pairing *out, const rc_graph *tg, const rc_graph *sg, const rc_tensor *input_shapes,
+                          const char *const *explicit_pairs, int n_explicit, int automatic_pairs, rc_err *e) {
+  memset(out, 0, sizeof *out);
+  rc_plan *tp, *sp;
+  rc_status st = rc__pairing_plans(&tp, &sp, tg, sg, input_shapes, e);
   for (int i = 0; i < n_explicit && st == RC_OK; i++) st = add_explicit(out, tp, sp, tg, sg, explicit_pairs[i], e);
   if (st == RC_OK && automatic_pairs && n_explicit == 0) st = automatic(out, tp, sp, tg, sg, e);
   rc_plan_free(tp);

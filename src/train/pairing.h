@@ -12,6 +12,7 @@
 
 #include "core/status.h"
 #include "graph/ir.h"
+#include "graph/plan.h"
 #include "recoup/tensor.h"
 
 typedef struct rc_pair {
@@ -35,6 +36,12 @@ rc_status rc_pairing_make(rc_pairing *out, const rc_graph *teacher, const rc_gra
                           const rc_tensor *input_shapes, const char *const *explicit_pairs, int n_explicit,
                           int automatic, rc_err *e);
 void rc_pairing_free(rc_pairing *p);
+
+/* Plans of both graphs at the given input shapes (the teacher's inputs take
+ * the shapes of the student's inputs of the same name), for reading the
+ * shapes of inner tensors. Free both with rc_plan_free. */
+rc_status rc__pairing_plans(rc_plan **teacher, rc_plan **student, const rc_graph *tg, const rc_graph *sg,
+                            const rc_tensor *input_shapes, rc_err *e);
 
 /* 1 when the channel widths differ (a projector is needed). */
 int rc_pair_needs_projector(const rc_pair *p);
