@@ -25,8 +25,9 @@ failures = []
 passed = 0
 
 
-def classifier(path, classes=4, zero_fraction=0.0, seed=0):
-    """x (N, 6) -> Gemm -> Relu -> Gemm -> logits (N, classes)."""
+def classifier(path, classes=4, zero_fraction=0.0, seed=0, batch="N"):
+    """x (N, 6) -> Gemm -> Relu -> Gemm -> logits (N, classes); batch may be
+    fixed (an int), as some exporters write it."""
     rng = np.random.RandomState(seed)
     w1 = rng.randn(8, 6).astype(np.float32)
     w2 = rng.randn(classes, 8).astype(np.float32)
@@ -37,8 +38,8 @@ def classifier(path, classes=4, zero_fraction=0.0, seed=0):
     nodes = [helper.make_node("Gemm", ["x", "w1", "b1"], ["h"], transB=1, name="fc1"),
              helper.make_node("Relu", ["h"], ["r"], name="act"),
              helper.make_node("Gemm", ["r", "w2", "b2"], ["logits"], transB=1, name="fc2")]
-    g = helper.make_graph(nodes, "clf", [helper.make_tensor_value_info("x", TensorProto.FLOAT, ["N", 6])],
-                          [helper.make_tensor_value_info("logits", TensorProto.FLOAT, ["N", classes])], inits)
+    g = helper.make_graph(nodes, "clf", [helper.make_tensor_value_info("x", TensorProto.FLOAT, [batch, 6])],
+                          [helper.make_tensor_value_info("logits", TensorProto.FLOAT, [batch, classes])], inits)
     m = helper.make_model(g, opset_imports=[helper.make_opsetid("", 13)])
     m.ir_version = 8
     onnx.checker.check_model(m)
@@ -129,6 +130,12 @@ expect_error("distill labels out of range",
              base + ["--data", w("x.npy"), "--labels", w("labels_bad.npy"), "--out", out], "labels_bad.npy",
              absent=out)
 expect_error("distill wrong data shape", base + ["--data", w("x_wrong.npy"), "--out", out], "x_wrong.npy",
+             absent=out)
+fixed = classifier(w("fixed_batch.onnx"), zero_fraction=0.5, batch=2)
+expect_error("student with a fixed batch size", ["distill", "--teacher", dense, "--student", fixed, "--steps", "2",
+                                                 "--data", w("x.npy"), "--out", out], "fixed_batch.onnx", absent=out)
+expect_error("attention-map without attention maps",
+             base + ["--data", w("x.npy"), "--loss", "kd=1,attention-map=1", "--out", out], "attention maps",
              absent=out)
 
 # A learning rate that blows up: non-finite steps roll back to the last good

@@ -553,7 +553,16 @@ static cJSON *results_json(const distill_args *a, const rc_distill_result *r, do
   for (int64_t i = 0; i < r->n_epochs; i++) {
     cJSON *o = metrics_json(&r->epoch_val[i]);
     cJSON_AddNumberToObject(o, "train_loss", r->epoch_loss[i]);
+    int64_t end = (i + 1) * r->steps_per_epoch;
+    cJSON_AddNumberToObject(o, "step", (double)(end < r->steps_done ? end : r->steps_done));
     cJSON_AddItemToArray(hist, o);
+  }
+  cJSON *trace = cJSON_AddArrayToObject(root, "loss_trace");
+  for (int i = 0; i < r->n_trace; i++) {
+    cJSON *pt = cJSON_CreateArray();
+    cJSON_AddItemToArray(pt, cJSON_CreateNumber((double)r->trace_step[i]));
+    cJSON_AddItemToArray(pt, cJSON_CreateNumber(r->trace_loss[i]));
+    cJSON_AddItemToArray(trace, pt);
   }
   return root;
 }

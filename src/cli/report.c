@@ -446,19 +446,62 @@ static void legend_item(sbuf *b, double x, double y, const char *colour, const c
   sb_add(b, "</text>", 7);
 }
 
-/* One job: training loss (left axis) and validation metric (right axis) by
- * epoch; epoch 0 is the compressed input's validation. */
-static void history_chart(sbuf *b, const cJSON *rec) {
+/* Points of a job's history on the step axis: the loss trace (or, in a
+ * record without one, the per-epoch mean loss at each epoch's last step) and
+ * the validation metric at step 0 (the compressed input) and at each epoch's
+ * last step. */
+typedef struct history {
+  double *ls, *lv, *vs, *vv; /* loss steps/values, validation steps/values */
+  int nl, nv;
+  double steps;
+} history;
+
+static double epoch_step(const cJSON *e, int i, int n, double steps) {
+  double st = num(e, "step");
+  return isnan(st) ? steps * (i + 1) / n : st;
+}
+
+static int history_read(history *h, const cJSON *rec, const char *vm) {
   const cJSON *epochs = cJSON_GetObjectItemCaseSensitive(rec, "epochs");
-  int n = cJSON_GetArraySize(epochs);
-  const char *vm = isnan(metric(rec, "compressed", "accuracy")) ? "agreement" : "accuracy";
-  double lmax = 0, vlo = metric(rec, "compressed", vm), vhi = vlo;
-  for (int i = 0; i < n; i++) {
-    const cJSON *e = cJSON_GetArrayItem(epochs, i);
-    double l = num(e, "train_loss"), v = num(e, vm);
-    if (!isnan(l) && l > lmax) lmax = l;
-    if (!isnan(v)) vlo = isnan(vlo) || v < vlo ? v : vlo, vhi = isnan(vhi) || v > vhi ? v : vhi;
+  const cJSON *trace = cJSON_GetObjectItemCaseSensitive(rec, "loss_trace");
+  int ne = cJSON_GetArraySize(epochs), nt = cJSON_GetArraySize(trace);
+  memset(h, 0, sizeof *h);
+  h->steps = num(rec, "steps");
+  if (isnan(h->steps) || h->steps < 1) h->steps = ne > 0 ? ne : 1;
+  int cap = (nt > ne ? nt : ne) + 2;
+  h->ls = rc__calloc((size_t)cap * 4, sizeof(double));
+  if (!h->ls) return 0;
+  h->lv = h->ls + cap, h->vs = h->lv + cap, h->vv = h->vs + cap;
+  for (int i = 0; i < nt; i++) {
+    const cJSON *pt = cJSON_GetArrayItem(trace, i);
+    const cJSON *x = cJSON_GetArrayItem(pt, 0), *y = cJSON_GetArrayItem(pt, 1);
+    if (cJSON_IsNumber(x) && cJSON_IsNumber(y) && isfinite(y->valuedouble))
+      h->ls[h->nl] = x->valuedouble, h->lv[h->nl++] = y->valuedouble;
   }
+  double v0 = metric(rec, "compressed", vm);
+  if (!isnan(v0)) h->vs[h->nv] = 0, h->vv[h->nv++] = v0;
+  for (int i = 0; i < ne; i++) {
+    const cJSON *e = cJSON_GetArrayItem(epochs, i);
+    double x = epoch_step(e, i, ne, h->steps), l = num(e, "train_loss"), v = num(e, vm);
+    if (!nt && !isnan(l)) h->ls[h->nl] = x, h->lv[h->nl++] = l;
+    if (!isnan(v)) h->vs[h->nv] = x, h->vv[h->nv++] = v;
+  }
+  return 1;
+}
+
+/* One job: training loss (left axis) along the optimizer steps and the
+ * validation metric (right axis) at step 0 and at every epoch's end. */
+static void history_chart(sbuf *b, const cJSON *rec) {
+  const char *vm = isnan(metric(rec, "compressed", "accuracy")) ? "agreement" : "accuracy";
+  history h;
+  if (!history_read(&h, rec, vm)) {
+    b->oom = 1;
+    return;
+  }
+  double lmax = 0, vlo = NAN, vhi = NAN;
+  for (int i = 0; i < h.nl; i++) lmax = fmax(lmax, h.lv[i]);
+  for (int i = 0; i < h.nv; i++)
+    vlo = isnan(vlo) || h.vv[i] < vlo ? h.vv[i] : vlo, vhi = isnan(vhi) || h.vv[i] > vhi ? h.vv[i] : vhi;
   if (isnan(vlo)) vlo = 0, vhi = 1;
   double lstep = nice_step(lmax > 0 ? lmax : 1, 5), ltop = lstep * ceil((lmax > 0 ? lmax : 1) / lstep);
   double vstep = nice_step(fmax(vhi - vlo, 0.02), 5);
@@ -469,49 +512,41 @@ static void history_chart(sbuf *b, const cJSON *rec) {
   sb_printf(b, "<svg xmlns=\"http://www.w3.org/2000/svg\" viewBox=\"0 0 560 290\" width=\"560\" height=\"290\" "
             "role=\"img\" data-chart=\"history\" data-job=\"");
   sb_esc(b, name);
-  sb_printf(b, "\"><title>Training loss and validation %s by epoch for ", vm);
+  sb_printf(b, "\"><title>Training loss and validation %s along the steps of ", vm);
   sb_esc(b, name);
   sb_add(b, "</title>", 8);
   char vlabel[64];
   snprintf(vlabel, sizeof vlabel, "validation %s", vm);
   y_axis(b, &f, 0, ltop, lstep, 0, 0, C_LOSS, "training loss");
   y_axis(b, &f, vbot, vtop, vstep, 1, 1, C_VALID, vlabel);
-  int xstep = n <= 10 ? 1 : (int)nice_step(n, 8);
-  for (int i = 0; i <= n; i += xstep) {
-    double x = map(i, 0, n, f.x0, f.x1);
+  double xstep = fmax(1, nice_step(h.steps, 6));
+  for (double i = 0; i <= h.steps + xstep * 1e-6; i += xstep) {
+    double x = map(i, 0, h.steps, f.x0, f.x1);
     sb_printf(b, "<line x1=\"%.1f\" x2=\"%.1f\" y1=\"%.1f\" y2=\"%.1f\" stroke=\"%s\"/>", x, x, f.y1, f.y1 + 5,
               C_AXIS);
-    sb_printf(b, "<text x=\"%.1f\" y=\"%.1f\" text-anchor=\"middle\" class=\"tick\">%d</text>", x, f.y1 + 18, i);
+    sb_printf(b, "<text x=\"%.1f\" y=\"%.1f\" text-anchor=\"middle\" class=\"tick\">%.0f</text>", x, f.y1 + 18, i);
   }
   sb_printf(b, "<line x1=\"%.1f\" x2=\"%.1f\" y1=\"%.1f\" y2=\"%.1f\" stroke=\"%s\"/>", f.x0, f.x1, f.y1, f.y1,
             C_AXIS);
-  sb_printf(b, "<text x=\"%.1f\" y=\"%.1f\" text-anchor=\"middle\" class=\"axis-title\">epoch "
-            "(0 = compressed input)</text>", (f.x0 + f.x1) / 2, f.y1 + 40);
-  /* Series: a polyline each, with a marker at every point so a single
-   * epoch still shows. */
+  sb_printf(b, "<text x=\"%.1f\" y=\"%.1f\" text-anchor=\"middle\" class=\"axis-title\">optimizer step "
+            "(validation at 0 = compressed input and at each epoch's end)</text>", (f.x0 + f.x1) / 2, f.y1 + 40);
+  /* A polyline per series; validation points carry markers (they are few),
+   * and so does the loss when it has few points, so a single one shows. */
   sbuf loss = {0}, val = {0}, marks = {0};
-  double v0 = metric(rec, "compressed", vm);
-  if (!isnan(v0)) {
-    double x = f.x0, y = map(v0, vbot, vtop, f.y1, f.y0);
+  for (int i = 0; i < h.nl; i++) {
+    double x = map(h.ls[i], 0, h.steps, f.x0, f.x1), y = map(h.lv[i], 0, ltop, f.y1, f.y0);
+    sb_printf(&loss, "%.1f,%.1f ", x, y);
+    if (h.nl <= 12)
+      sb_printf(&marks, "<rect x=\"%.1f\" y=\"%.1f\" width=\"7\" height=\"7\" fill=\"%s\"/>", x - 3.5, y - 3.5,
+                C_LOSS);
+  }
+  for (int i = 0; i < h.nv; i++) {
+    double x = map(h.vs[i], 0, h.steps, f.x0, f.x1), y = map(h.vv[i], vbot, vtop, f.y1, f.y0);
     sb_printf(&val, "%.1f,%.1f ", x, y);
     sb_printf(&marks, "<circle cx=\"%.1f\" cy=\"%.1f\" r=\"3.5\" fill=\"%s\"/>", x, y, C_VALID);
   }
-  for (int i = 0; i < n; i++) {
-    const cJSON *e = cJSON_GetArrayItem(epochs, i);
-    double x = map(i + 1, 0, n, f.x0, f.x1), l = num(e, "train_loss"), v = num(e, vm);
-    if (!isnan(l)) {
-      double y = map(l, 0, ltop, f.y1, f.y0);
-      sb_printf(&loss, "%.1f,%.1f ", x, y);
-      sb_printf(&marks, "<rect x=\"%.1f\" y=\"%.1f\" width=\"7\" height=\"7\" fill=\"%s\"/>", x - 3.5, y - 3.5,
-                C_LOSS);
-    }
-    if (!isnan(v)) {
-      double y = map(v, vbot, vtop, f.y1, f.y0);
-      sb_printf(&val, "%.1f,%.1f ", x, y);
-      sb_printf(&marks, "<circle cx=\"%.1f\" cy=\"%.1f\" r=\"3.5\" fill=\"%s\"/>", x, y, C_VALID);
-    }
-  }
-  sb_printf(b, "<polyline data-series=\"loss\" fill=\"none\" stroke=\"%s\" stroke-width=\"2.5\" points=\"%s\"/>",
+  rc__free(h.ls);
+  sb_printf(b, "<polyline data-series=\"loss\" fill=\"none\" stroke=\"%s\" stroke-width=\"2\" points=\"%s\"/>",
             C_LOSS, loss.p ? loss.p : "");
   sb_printf(b, "<polyline data-series=\"validation\" fill=\"none\" stroke=\"%s\" stroke-width=\"2.5\" "
             "stroke-dasharray=\"7 4\" points=\"%s\"/>", C_VALID, val.p ? val.p : "");
@@ -756,8 +791,9 @@ static void write_html(sbuf *b, const char *title, const cJSON *meta, const cJSO
     sb_printf(b, "<h2>Across the zoo</h2>");
     zoo_chart(b, records, vm);
   }
-  sb_printf(b, "\n<h2>Jobs</h2><p>Per job: training loss by epoch (left axis) and validation accuracy, or "
-            "agreement when there are no labels (right axis). The state written is the best epoch by validation.</p>\n");
+  sb_printf(b, "\n<h2>Jobs</h2><p>Per job: training loss along the optimizer steps (left axis) and validation "
+            "accuracy, or agreement when there are no labels (right axis), measured on the compressed input and at "
+            "the end of every epoch. The state written is the best epoch by validation.</p>\n");
   cJSON_ArrayForEach(r, records) {
     job_card(b, r);
     sb_add(b, "\n", 1);

@@ -89,7 +89,23 @@ static rc_status check_io(const rc_graph *t, const int *tv, int tn, const rc_gra
   return RC_OK;
 }
 
+/* Training runs batches of any size (--batch, the last partial batch, single
+ * samples for pairing), so a model exported with a fixed batch dimension
+ * cannot be trained as it is; say so instead of failing on a shape later. */
+static rc_status check_free_batch(const rc_graph *g, const char *role, rc_err *e) {
+  for (int i = 0; i < g->n_inputs; i++) {
+    const rc_value *v = &g->values[g->inputs[i]];
+    if (v->decl.rank >= 1 && v->decl.dims[0] >= 0)
+      return rc__fail(e, RC_ERR_UNSUPPORTED, "%s %s: input '%s' has a fixed batch size of %lld; distillation needs a "
+                      "free first axis (re-export the model with a dynamic batch dimension)", role, g->path, v->name,
+                      (long long)v->decl.dims[0]);
+  }
+  return RC_OK;
+}
+
 rc_status rc_distill_check_pair(const rc_graph *t, const rc_graph *s, rc_err *e) {
+  RC_TRY(check_free_batch(t, "teacher", e));
+  RC_TRY(check_free_batch(s, "student", e));
   RC_TRY(check_io(t, t->inputs, t->n_inputs, s, s->inputs, s->n_inputs, "input", e));
   return check_io(t, t->outputs, t->n_outputs, s, s->outputs, s->n_outputs, "output", e);
 }
@@ -183,7 +199,7 @@ static rc_status select_trainables(run_state *st, rc_err *e) {
   }
   if (!st->n_tr)
     return rc__fail(e, RC_ERR_INVALID, "%s: nothing to train (no float weights of Conv, ConvTranspose, Gemm, "
-                    "MatMul, PRelu or normalisation layers after --train/--freeze)", g->path);
+                    "MatMul, PRelu, normalisation layers or Add/Mul parameters after --train/--freeze)", g->path);
   return RC_OK;
 }
 
@@ -562,6 +578,11 @@ typedef struct loop_state {
   int64_t best_epoch;
   int64_t n_epochs;    /* history entries */
   rc_metrics best;
+  /* The loss trace (rc_distill_result), kept here so checkpoints carry it. */
+  int64_t trace_step[RC_DISTILL_TRACE_MAX];
+  double trace_loss[RC_DISTILL_TRACE_MAX];
+  int64_t n_trace, window_steps;
+  double window_loss;
 } loop_state;
 
 typedef struct loop_ctx {
@@ -599,7 +620,7 @@ static uint64_t run_fingerprint(const loop_ctx *lc) {
   return fnv1a(h, reals, sizeof reals);
 }
 
-static const char CKPT_MAGIC[16] = "recoup-ckpt-v1\n";
+static const char CKPT_MAGIC[16] = "recoup-ckpt-v2\n";
 
 /* Layout: magic, fingerprint, loop_state, history (loss, metrics per epoch),
  * parameter state size and image, CRC-32 of everything before it. */
@@ -678,7 +699,7 @@ static rc_status checkpoint_read(const loop_ctx *lc, loop_state *ls, rc_err *e) 
   }
   memcpy(ls, p, sizeof *ls);
   p += sizeof *ls;
-  if (ls->n_epochs < 0 || ls->n_epochs > lc->epochs ||
+  if (ls->n_epochs < 0 || ls->n_epochs > lc->epochs || ls->n_trace < 0 || ls->n_trace > RC_DISTILL_TRACE_MAX ||
       (size_t)(buf + n - p) != (size_t)ls->n_epochs * (sizeof(double) + sizeof(rc_metrics)) + 8 + ps_bytes + 4) {
     s = rc__fail(e, RC_ERR_FORMAT, "%s: checkpoint sections do not add up", path);
     goto out;
@@ -779,6 +800,19 @@ static rc_status end_epoch(loop_ctx *lc, loop_state *ls, rc_distill_progress *pg
   return RC_OK;
 }
 
+/* One point per window of ceil(total / RC_DISTILL_TRACE_MAX) good steps:
+ * enough to see the curve, a fixed size whatever the run's length. */
+static void trace_loss(loop_state *ls, double loss, int64_t total) {
+  int64_t window = (total + RC_DISTILL_TRACE_MAX - 1) / RC_DISTILL_TRACE_MAX;
+  ls->window_loss += loss;
+  ls->window_steps++;
+  if ((ls->window_steps < window && ls->step < total) || ls->n_trace >= RC_DISTILL_TRACE_MAX) return;
+  ls->trace_step[ls->n_trace] = ls->step;
+  ls->trace_loss[ls->n_trace++] = ls->window_loss / (double)ls->window_steps;
+  ls->window_loss = 0;
+  ls->window_steps = 0;
+}
+
 static rc_status train_loop(run_state *st, rc_distill_result *r, const rc_distill_data *d, rc_err *e) {
   const rc_distill_config *c = st->c;
   const rc_graph *g = st->sg;
@@ -852,6 +886,7 @@ static rc_status train_loop(run_state *st, rc_distill_result *r, const rc_distil
     } else {
       ls.ep_loss += loss;
       ls.ep_steps++;
+      trace_loss(&ls, loss, lc.total);
       if (ls.step % snap_every == 0 && (s = rc_params_save(st->ps, lc.good_slot, e)) != RC_OK) goto out;
     }
     double el = now_s() - t0;
@@ -886,6 +921,10 @@ static rc_status train_loop(run_state *st, rc_distill_result *r, const rc_distil
   r->rollbacks = (int)ls.rollbacks;
   r->stopped_nonfinite = (int)ls.stopped;
   r->n_epochs = ls.n_epochs;
+  r->steps_per_epoch = lc.spe;
+  r->n_trace = (int)ls.n_trace;
+  memcpy(r->trace_step, ls.trace_step, sizeof r->trace_step);
+  memcpy(r->trace_loss, ls.trace_loss, sizeof r->trace_loss);
   if ((s = rc_params_restore(st->ps, lc.best_slot, e)) != RC_OK) goto out;
   r->after = ls.best;
 out:

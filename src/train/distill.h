@@ -89,6 +89,8 @@ typedef struct rc_layer_error {
   double sqnr_before_db, sqnr_after_db; /* 10·log10(Σt² / Σ(t−s)²); +inf when identical */
 } rc_layer_error;
 
+#define RC_DISTILL_TRACE_MAX 120
+
 typedef struct rc_distill_result {
   rc_metrics teacher, before, after; /* on the validation samples */
   int64_t n_train, n_val;
@@ -104,6 +106,12 @@ typedef struct rc_distill_result {
   double *epoch_loss;                /* per epoch (n_epochs) */
   rc_metrics *epoch_val;
   int64_t n_epochs;
+  int64_t steps_per_epoch;
+  /* Training loss along the run: the mean over each window of steps, at
+   * most RC_DISTILL_TRACE_MAX points (trace_step = the window's last step). */
+  int64_t trace_step[RC_DISTILL_TRACE_MAX];
+  double trace_loss[RC_DISTILL_TRACE_MAX];
+  int n_trace;
   rc_layer_error *layers;            /* automatically paired layer outputs of equal shape */
   int n_layers;
   int *changed;                      /* student values whose data changed: save these */
