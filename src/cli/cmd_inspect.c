@@ -91,7 +91,7 @@ static const char *dim_str(const rc_tensor *t, char *buf, size_t n) {
 }
 
 static const char *role_name(rc_weight_role r) {
-  return r == RC_ROLE_BIAS ? "bias" : r == RC_ROLE_NORM ? "norm" : "weight";
+  return r == RC_ROLE_BIAS ? "bias" : r == RC_ROLE_NORM ? "norm" : r == RC_ROLE_AFFINE ? "affine" : "weight";
 }
 
 static int64_t param_count(const rc_graph *g) {

@@ -118,6 +118,18 @@ static int role_of(const rc_node *n, int input, rc_weight_role *role) {
   return 0;
 }
 
+/* Add or Mul of an activation and a float initializer of more than one
+ * entry (scalars there are constants such as epsilon, not parameters). */
+static int is_affine(const rc_graph *g, const rc_node *n, int input, rc_weight_role *role) {
+  if ((!is_op(n, "Add") && !is_op(n, "Mul")) || n->n_in != 2 || n->in[0] < 0 || n->in[1] < 0) return 0;
+  const rc_value *p = &g->values[n->in[input]], *other = &g->values[n->in[1 - input]];
+  if (p->kind != RC_VALUE_INITIALIZER || other->kind == RC_VALUE_INITIALIZER || !rc_dtype_is_float(p->decl.dtype) ||
+      rc_tensor_numel(&p->decl) < 2)
+    return 0;
+  *role = RC_ROLE_AFFINE;
+  return 1;
+}
+
 rc_status rc__weights_collect(const rc_graph *g, rc_weight_info **out, int *count, rc_err *e) {
   *out = NULL;
   *count = 0;
@@ -129,7 +141,7 @@ rc_status rc__weights_collect(const rc_graph *g, rc_weight_info **out, int *coun
     const rc_node *n = &g->nodes[ni];
     for (int i = 0; i < n->n_in; i++) {
       rc_weight_role role;
-      if (!role_of(n, i, &role)) continue;
+      if (!role_of(n, i, &role) && !is_affine(g, n, i, &role)) continue;
       int quantized;
       int64_t zp;
       int v = source_initializer(g, n->in[i], &quantized, &zp);

@@ -7,7 +7,11 @@
 #include "graph/ir.h"
 #include "graph/plan.h"
 
-typedef enum rc_weight_role { RC_ROLE_WEIGHT = 0, RC_ROLE_BIAS = 1, RC_ROLE_NORM = 2 } rc_weight_role;
+/* RC_ROLE_AFFINE: a float initializer of more than one entry added to or
+ * multiplied with an activation: the bias of a MatMul written as MatMul +
+ * Add, the scale and shift of a normalisation written in basic ops (as
+ * exporters do below opset 17), position embeddings. */
+typedef enum rc_weight_role { RC_ROLE_WEIGHT = 0, RC_ROLE_BIAS = 1, RC_ROLE_NORM = 2, RC_ROLE_AFFINE = 3 } rc_weight_role;
 
 typedef struct rc_weight_info {
   int value;          /* the initializer */
@@ -21,7 +25,8 @@ typedef struct rc_weight_info {
 } rc_weight_info;
 
 /* Weights, biases and normalisation parameters of Conv, ConvTranspose, Gemm,
- * MatMul, PRelu, BatchNormalization and LayerNormalization, in node order.
+ * MatMul, PRelu, BatchNormalization and LayerNormalization, and affine
+ * parameters of Add and Mul (see RC_ROLE_AFFINE), in node order.
  * *out is allocated with rc__malloc. */
 rc_status rc__weights_collect(const rc_graph *g, rc_weight_info **out, int *n, rc_err *e);
 
