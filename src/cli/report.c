@@ -528,8 +528,7 @@ static void history_chart(sbuf *b, const cJSON *rec) {
   }
   sb_printf(b, "<line x1=\"%.1f\" x2=\"%.1f\" y1=\"%.1f\" y2=\"%.1f\" stroke=\"%s\"/>", f.x0, f.x1, f.y1, f.y1,
             C_AXIS);
-  sb_printf(b, "<text x=\"%.1f\" y=\"%.1f\" text-anchor=\"middle\" class=\"axis-title\">optimizer step "
-            "(validation at 0 = compressed input and at each epoch's end)</text>", (f.x0 + f.x1) / 2, f.y1 + 40);
+  sb_printf(b, "<text x=\"%.1f\" y=\"%.1f\" text-anchor=\"middle\" class=\"axis-title\">optimizer step</text>", (f.x0 + f.x1) / 2, f.y1 + 40);
   /* A polyline per series; validation points carry markers (they are few),
    * and so does the loss when it has few points, so a single one shows. */
   sbuf loss = {0}, val = {0}, marks = {0};
