@@ -279,6 +279,10 @@ log = open(os.path.join(kill_report, "logs", "p90.log")).read()
 check("the interrupted job resumed from its checkpoint", "resuming from" in log and not os.path.exists(kill_out["p90"] + ".ckpt"))
 check("every output byte-identical to the uninterrupted run's",
       all(digest(kill_out[n]) == ref_digests[n] for n in GOOD))
+resumed = {x["name"]: x for x in records(kill_report)}
+check("the resumed job's history and loss trace equal the uninterrupted run's (checkpoints carry them)",
+      resumed["p90"]["epochs"] == recs["p90"]["epochs"] and resumed["p90"]["loss_trace"] == recs["p90"]["loss_trace"]
+      and len(recs["p90"]["loss_trace"]) >= 10)
 
 # ---- 4. SIGTERM: jobs checkpoint, the batch exits 1 with a summary -----------------------
 
@@ -346,6 +350,9 @@ else:
     series_ok = all(sorted(set(re.findall(r'data-series="([a-z]+)"', h))) == ["loss", "validation"] for h in histories)
     check("one history chart per finished job, two series each", len(histories) == len(GOOD) and series_ok,
           f"({len(histories)} charts)")
+    loss_points = [len(re.search(r'data-series="loss"[^>]*points="([^"]*)"', h).group(1).split()) for h in histories]
+    check("each loss curve has a point per trace entry", loss_points ==
+          [len(recs[n]["loss_trace"]) for n in GOOD], str(loss_points))
     zoo = re.findall(r'<svg[^>]*data-chart="zoo".*?</svg>', dom, re.S)
     counts = {s: len(re.findall(rf'<(rect|path)[^>]*data-series="{s}"', zoo[0] if zoo else ""))
               for s in ("compressed", "recovered", "dense")}
