@@ -320,10 +320,11 @@ static void weight_anchor_gradients(void) {
 
 static double call_hint(float *gs, const float *s, const float *t, const float *w, const float *b,
                         rc_feat_view sv, rc_feat_view tv) {
-  double wk[32];
+  double wk[128];
   float *work = (float *)wk;
   double loss = NAN;
   rc_err e;
+  CHECK(rc_loss_hint_workspace_floats(&sv, &tv) <= 2 * sizeof wk / sizeof wk[0]);
   CHECK_INT(rc_loss_hint(&loss, gs, NULL, NULL, 1.0f, s, t, w, b, &sv, &tv, work, &e), RC_OK);
   return loss;
 }
