@@ -221,7 +221,7 @@ int rc_cmd_eval(int argc, char **argv) {
     if (a.data.labels && cli_samples_load_labels(&s, a.data.labels, k, &e) != RC_OK) goto out;
     const float *ref_logits = NULL;
     if (a.ref) {
-      int64_t k2;
+      int64_t k2 = 0;
       if (run_model(&ref, a.ref, &s, batch, &d, &e) != RC_OK || logits_of(&ref, &k2, &e) != RC_OK) goto out;
       if (k2 != k) {
         rc__fail(&e, RC_ERR_SHAPE, "%s has %lld classes, %s %lld", a.model, (long long)k, a.ref, (long long)k2);

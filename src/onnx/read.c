@@ -458,7 +458,7 @@ static rc_status build_graph(builder *b, const Onnx__ModelProto *mp) {
   if (gp->n_node > (size_t)(b->lim->max_nodes > 0 ? b->lim->max_nodes : 0))
     return rc__fail(b->e, RC_ERR_LIMIT, "%s: %zu nodes are over the limit of %d", b->m->path,
                     gp->n_node, b->lim->max_nodes);
-  size_t n_names;
+  size_t n_names = 0;
   RC_TRY(count_names(b, gp, &n_names));
   if (!map_init(&b->names, n_names)) return nomem(b);
   b->cap_values = (int)n_names;

@@ -197,7 +197,7 @@ rc_status rc_model_save(rc_model *m, const char *path, const int *changed, int n
     return rc__fail(e, RC_ERR_INVALID, "%s: invalid list of changed initializers", path);
   RC_TRY(refuse_input_path(m, path, e));
   patch_list pl = {0};
-  int same;
+  int same = 0;
   rc_status st = same_folder(m, path, &same, e);
   if (st == RC_OK) st = patch_changed(m, &pl, changed, n_changed, e);
   if (st == RC_OK) st = same ? check_not_external_target(m, path, e) : embed_all_external(m, &pl, e);

@@ -335,7 +335,7 @@ static rc_status build_plans(run_state *st, const rc_tensor *data, rc_err *e) {
     rc_plan_opts keep = {.training = 0, .trainable = NULL, .keep = st->tkeep, .bn_batch_stats = 0};
     RC_TRY(rc_plan_create(&st->teacher_step, tg, tin, &keep, e));
   }
-  int64_t kt;
+  int64_t kt = 0;
   RC_TRY(logits_width(st->eval_plan, sg, st->batch, &st->k, e));
   RC_TRY(logits_width(st->teacher_plan, tg, st->batch, &kt, e));
   if (kt != st->k)
