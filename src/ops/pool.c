@@ -153,9 +153,14 @@ static void geometry_of(const rc_kernel *k, pool_geom *g) {
 /* Window of output cell o along axis j: kernel taps [*lo, *hi) land inside
  * the input; *start is the input cell of tap 0. */
 static void taps(const pool_geom *g, int j, int64_t o, int64_t *start, int64_t *lo, int64_t *hi) {
-  int64_t st = o * g->s[j] - g->pb[j], d = g->d[j];
-  int64_t l = st >= 0 ? 0 : (-st + d - 1) / d;
-  int64_t h = g->in[j] - st <= 0 ? 0 : (g->in[j] - st - 1) / d + 1;
+  int64_t st = o * g->s[j] - g->pb[j], d = g->d[j], l, h;
+  if (d == 1) { /* the common case, without the divisions that dominated pooling */
+    l = st >= 0 ? 0 : -st;
+    h = g->in[j] - st <= 0 ? 0 : g->in[j] - st;
+  } else {
+    l = st >= 0 ? 0 : (-st + d - 1) / d;
+    h = g->in[j] - st <= 0 ? 0 : (g->in[j] - st - 1) / d + 1;
+  }
   if (h > g->k[j]) h = g->k[j];
   if (l > h) l = h;
   *start = st;
@@ -191,6 +196,63 @@ static int64_t spec_index(const pool_geom *g, int storage_order, int64_t plane, 
 /* x (N,C,D...) -> y (N,C,O...), optional indices (N,C,O...) int64;
  * argmax per output cell (plane-local, -1 if the window saw no input) saved
  * for backward. The first maximum in scan order wins; NaN propagates. */
+/* Maximum of a window and whether it saw a NaN. `v > best ? v : best` is
+ * exactly what the maxss instruction computes, so the compiler needs no
+ * branch: with branches, the comparisons' random outcomes (about half
+ * mispredicted) made pooling cost more than the convolutions. */
+static float window_max(const float *xp, int64_t W, int64_t a0, int64_t a1, int64_t c0, int64_t c1, int *nan) {
+  float best = -INFINITY;
+  int seen_nan = 0;
+  for (int64_t a = a0; a < a1; a++)
+    for (int64_t c = c0; c < c1; c++) {
+      float v = xp[a * W + c];
+      best = v > best ? v : best;
+      seen_nan |= v != v;
+    }
+  *nan = seen_nan;
+  return best;
+}
+
+/* The common case: windows over the last two axes with dilation 1 and no
+ * Indices output. Same result as the general loop below: the first maximum
+ * in scan order (the first NaN if any) is the one whose position is saved. */
+static void max_forward_plain(const pool_geom *g, const float *x, float *y, int32_t *arg) {
+  const int64_t O = g->out_sp, I = g->in_sp, W = g->in[2];
+#pragma omp parallel for schedule(static) if (g->planes * (O + I) > 16384)
+  for (int64_t pl = 0; pl < g->planes; pl++) {
+    const float *xp = x + pl * I;
+    for (int64_t o1 = 0; o1 < g->out[1]; o1++) {
+      int64_t st1, lo1, hi1;
+      taps(g, 1, o1, &st1, &lo1, &hi1);
+      for (int64_t o2 = 0; o2 < g->out[2]; o2++) {
+        int64_t st2, lo2, hi2;
+        taps(g, 2, o2, &st2, &lo2, &hi2);
+        int64_t oi = pl * O + o1 * g->out[2] + o2, a0 = st1 + lo1, a1 = st1 + hi1, c0 = st2 + lo2, c1 = st2 + hi2;
+        if (a0 >= a1 || c0 >= c1) {
+          y[oi] = -FLT_MAX;
+          if (arg) arg[oi] = -1;
+          continue;
+        }
+        int nan;
+        float best = window_max(xp, W, a0, a1, c0, c1, &nan);
+        y[oi] = nan ? NAN : best;
+        if (!arg) continue;
+        int32_t where = -1;
+        for (int64_t a = a0; a < a1 && where < 0; a++)
+          for (int64_t c = c0; c < c1; c++) {
+            float v = xp[a * W + c];
+            if (nan ? v != v : v == best) {
+              where = (int32_t)(a * W + c);
+              break;
+            }
+          }
+        arg[oi] = where;
+        if (nan) y[oi] = xp[where]; /* the first NaN itself, as the general loop keeps it */
+      }
+    }
+  }
+}
+
 static rc_status max_forward(const rc_kernel *k, rc_err *e) {
   pool_geom g;
   geometry_of(k, &g);
@@ -200,6 +262,10 @@ static rc_status max_forward(const rc_kernel *k, rc_err *e) {
   int64_t *ind = k->n_out > 1 && k->out[1] ? k->out[1]->data : NULL;
   int32_t *arg = k->saved;
   const int64_t O = g.out_sp, I = g.in_sp;
+  if (!ind && g.in[0] == 1 && g.out[0] == 1 && g.d[1] == 1 && g.d[2] == 1) {
+    max_forward_plain(&g, x, y, arg);
+    return RC_OK;
+  }
 #pragma omp parallel for schedule(static) if (g.planes * (O + I) > 16384)
   for (int64_t pl = 0; pl < g.planes; pl++) {
     const float *xp = x + pl * I;
