@@ -119,6 +119,7 @@ static rc_status oh_run(oh_case *c, rc_err *e) {
   if (!c->work) c->work = rc__arena_zalloc(&c->arena, (ws > wb ? ws : wb) + 64);
   if (!c->saved) c->saved = rc__arena_zalloc(&c->arena, (n->def->saved ? n->def->saved(&k) : 0) + 64);
   k.work = c->work;
+  k.work_bytes = ws > wb ? ws : wb;
   k.saved = c->saved;
   return n->def->forward(&k, e);
 }

@@ -79,7 +79,7 @@ static int node_is_foldable(const rc_plan *p, const rc_node *n, const unsigned c
 }
 
 static rc_status run_folded(rc_plan *p, const rc_node *n, rc_tensor **in, rc_tensor **out, rc_err *e) {
-  rc_kernel k = {n, n->params, n->n_in, n->n_out, in, out, NULL, NULL, NULL, NULL, 0};
+  rc_kernel k = {n, n->params, n->n_in, n->n_out, in, out, NULL, NULL, NULL, NULL, 0, 0};
   size_t ws = n->def->workspace ? n->def->workspace(&k, 0) : 0;
   size_t sv = n->def->saved ? n->def->saved(&k) : 0;
   if (ws > p->max_bytes || sv > p->max_bytes - ws)
@@ -92,6 +92,7 @@ static rc_status run_folded(rc_plan *p, const rc_node *n, rc_tensor **in, rc_ten
     st = rc__fail(e, RC_ERR_NOMEM, "node '%s' (%s): out of memory while folding", n->label, n->op_type);
   } else {
     k.work = work;
+    k.work_bytes = ws;
     k.saved = saved;
     st = n->def->forward(&k, e);
   }
@@ -159,7 +160,7 @@ static rc_status infer_and_fold(rc_plan *p, const rc_plan_opts *o, unsigned char
     plan_step *s = &p->steps[p->n_steps++];
     s->node = ni;
     s->k = (rc_kernel){n, n->params, n->n_in, n->n_out, in, out, NULL, NULL, NULL, NULL,
-                       o->bn_batch_stats};
+                       o->bn_batch_stats, 0};
   }
   return RC_OK;
 }
@@ -343,7 +344,10 @@ static rc_status layout_memory(rc_plan *p, const rc_plan_opts *o, rc_err *e) {
     }
   }
   p->work = cur;
-  for (int s = 0; s < p->n_steps; s++) p->steps[s].k.work = p->work;
+  for (int s = 0; s < p->n_steps; s++) {
+    p->steps[s].k.work = p->work;
+    p->steps[s].k.work_bytes = work;
+  }
   rc__free(sl);
   return RC_OK;
 }

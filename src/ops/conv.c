@@ -13,6 +13,7 @@
  * 2-D and 3-D share one path. */
 #include <cblas.h>
 #include <limits.h>
+#include <omp.h>
 #include <string.h>
 
 #include "ops/op.h"
@@ -436,15 +437,44 @@ static void geometry_of(const rc_kernel *k, conv_geom *g) {
   conv_geometry(k->node, k->params, k->in[0], k->in[1], opt_in(k, 2), g, &e);
 }
 
+/* Conv runs its samples in parallel, each thread with single-threaded
+ * GEMMs (OpenBLAS does not thread inside a parallel region): one team per
+ * call instead of a team per small per-sample GEMM, whose start-up cost made
+ * two threads slower than one on small models. Per thread: one sample's
+ * column matrix and, for backward, a private weight gradient that is summed
+ * in thread order afterwards (deterministic for a given thread count). */
+static size_t col_floats(const conv_geom *g) {
+  return g->direct ? 0 : (size_t)(g->C * g->K) * (size_t)prod3(g->p.pos);
+}
+
+static size_t thread_floats(const conv_geom *g, int backward) {
+  return col_floats(g) + (backward ? (size_t)g->M * (size_t)(g->Cg * g->K) : 0);
+}
+
+/* Threads for the sample loop: no more than samples, cores, or workspace
+ * copies. One means the plain serial loop (OpenBLAS may then thread). */
+static int sample_threads(const rc_kernel *k, const conv_geom *g, size_t per) {
+  int64_t t = omp_get_max_threads();
+  if (t > g->N) t = g->N;
+  if (per && (size_t)t > k->work_bytes / (sizeof(float) * per)) t = (int64_t)(k->work_bytes / (sizeof(float) * per));
+  return t > 1 ? (int)t : 1;
+}
+
 static size_t conv_workspace(const rc_kernel *k, int backward) {
   conv_geom g;
   geometry_of(k, &g);
   const conv_params *cp = k->params;
-  if (g.direct || (!cp->transpose && depthwise(&g))) return 0;
-  /* One sample's column matrix, all groups: unfolding and folding then run
-   * once per sample over every channel (more rows to spread over threads). */
-  int64_t rows = (cp->transpose ? g.M : g.C) * g.K;
-  return sizeof(float) * (size_t)rows * (size_t)prod3(g.p.pos);
+  if (cp->transpose) {
+    /* One sample's column matrix, all groups: unfolding and folding then
+     * run once per sample over every channel. */
+    if (g.direct) return 0;
+    return sizeof(float) * (size_t)(g.M * g.K) * (size_t)prod3(g.p.pos);
+  }
+  if (depthwise(&g)) return 0;
+  int64_t t = omp_get_max_threads();
+  if (t > g.N) t = g.N;
+  if (t < 1) t = 1;
+  return sizeof(float) * (size_t)t * thread_floats(&g, backward);
 }
 
 /* Set each of the `channels` rows of y (length len) to its bias, or to zero. */
@@ -515,6 +545,22 @@ static void depthwise_backward(const conv_geom *g, float *dx, float *dw, const f
 /* x (N,C,D...), W (M,C/G,k...), B (M) -> y (N,M,O...).
  * Per sample: col (C*K, P) = unfold(x_n); per group
  * y_g (Mg, P) = W_g (Mg, Cg*K) . col_g (Cg*K, P). */
+/* y_n (M, P) = b + W . unfold(x_n), group by group. */
+static void forward_sample(const conv_geom *g, float *yn, const float *xn, const float *w, const float *b,
+                           float *work) {
+  const int64_t CgK = g->Cg * g->K, P = g->out_sp;
+  const float *col = xn;
+  if (!g->direct && CgK) {
+    unfold(work, xn, &g->p, g->C);
+    col = work;
+  }
+  fill_bias(yn, b, g->M, P);
+  if (!CgK) return;
+  for (int64_t grp = 0; grp < g->G; grp++)
+    cblas_sgemm(CblasRowMajor, CblasNoTrans, CblasNoTrans, (int)g->Mg, (int)P, (int)CgK, 1.0f, w + grp * g->Mg * CgK,
+                (int)CgK, col + grp * CgK * P, (int)P, 1.0f, yn + grp * g->Mg * P, (int)P);
+}
+
 static rc_status conv_forward(const rc_kernel *k, rc_err *e) {
   conv_geom g;
   geometry_of(k, &g);
@@ -522,26 +568,17 @@ static rc_status conv_forward(const rc_kernel *k, rc_err *e) {
   const rc_tensor *bt = opt_in(k, 2);
   const float *b = bt ? bt->data : NULL;
   float *y = k->out[0]->data;
-  const int64_t CgK = g.Cg * g.K, P = g.out_sp;
-  if (!g.N || !g.M || !P) return RC_OK;
+  if (!g.N || !g.M || !g.out_sp) return RC_OK;
   if (depthwise(&g)) {
     depthwise_forward(&g, y, x, w, b);
     return RC_OK;
   }
-  for (int64_t n = 0; n < g.N; n++) {
-    const float *col = x + n * g.C * g.in_sp;
-    float *yn = y + n * g.M * P;
-    if (!g.direct && CgK) {
-      unfold(k->work, col, &g.p, g.C);
-      col = k->work;
-    }
-    fill_bias(yn, b, g.M, P);
-    if (!CgK) continue;
-    for (int64_t grp = 0; grp < g.G; grp++)
-      cblas_sgemm(CblasRowMajor, CblasNoTrans, CblasNoTrans, (int)g.Mg, (int)P, (int)CgK, 1.0f,
-                  w + grp * g.Mg * CgK, (int)CgK, col + grp * CgK * P, (int)P, 1.0f, yn + grp * g.Mg * P,
-                  (int)P);
-  }
+  const size_t per = col_floats(&g);
+  const int T = sample_threads(k, &g, per);
+#pragma omp parallel for num_threads(T) schedule(static) if (T > 1)
+  for (int64_t n = 0; n < g.N; n++)
+    forward_sample(&g, y + n * g.M * g.out_sp, x + n * g.C * g.in_sp, w, b,
+                   (float *)k->work + (size_t)omp_get_thread_num() * per);
   return RC_OK;
 }
 
@@ -569,49 +606,64 @@ static int begin_backward(const rc_kernel *k, conv_grads *cg) {
   return (cg->dx || cg->dw) && g->Cg && g->K && g->in_sp;
 }
 
+/* One sample's share of backward: dw (M, CgK) += dy_n . unfold(x_n)^T and
+ * dx_n += fold(W^T . dy_n), group by group. */
+static void backward_sample(const conv_geom *g, int64_t n, const float *x, const float *w, const float *dy,
+                            float *dx, float *dw, float *work) {
+  const int64_t CgK = g->Cg * g->K, P = g->out_sp;
+  const float *dyn = dy + n * g->M * P;
+  if (dw) {
+    const float *col = x + n * g->C * g->in_sp;
+    if (!g->direct) {
+      unfold(work, col, &g->p, g->C);
+      col = work;
+    }
+    for (int64_t grp = 0; grp < g->G; grp++)
+      cblas_sgemm(CblasRowMajor, CblasNoTrans, CblasTrans, (int)g->Mg, (int)CgK, (int)P, 1.0f, dyn + grp * g->Mg * P,
+                  (int)P, col + grp * CgK * P, (int)P, 1.0f, dw + grp * g->Mg * CgK, (int)CgK);
+  }
+  if (!dx) return;
+  float *dxn = dx + n * g->C * g->in_sp;
+  if (g->direct) {
+    /* The column matrix is x itself: dx_g (Cg, P) += W_g^T . dy_g. */
+    for (int64_t grp = 0; grp < g->G; grp++)
+      cblas_sgemm(CblasRowMajor, CblasTrans, CblasNoTrans, (int)g->Cg, (int)P, (int)g->Mg, 1.0f,
+                  w + grp * g->Mg * CgK, (int)CgK, dyn + grp * g->Mg * P, (int)P, 1.0f, dxn + grp * g->Cg * P, (int)P);
+    return;
+  }
+  /* dcol_g (CgK, P) = W_g^T . dy_g, then folded back onto dx */
+  for (int64_t grp = 0; grp < g->G; grp++)
+    cblas_sgemm(CblasRowMajor, CblasTrans, CblasNoTrans, (int)CgK, (int)P, (int)g->Mg, 1.0f, w + grp * g->Mg * CgK,
+                (int)CgK, dyn + grp * g->Mg * P, (int)P, 0.0f, work + grp * CgK * P, (int)P);
+  fold_add(dxn, work, &g->p, g->C);
+}
+
 static void conv_backward(const rc_kernel *k) {
   conv_grads cg;
   if (!begin_backward(k, &cg)) return;
   const conv_geom g = cg.g;
-  const float *x = cg.x, *w = cg.w, *dy = cg.dy;
-  float *dx = cg.dx, *dw = cg.dw, *work = k->work;
-  const int64_t CgK = g.Cg * g.K, P = g.out_sp;
   if (depthwise(&g)) {
-    depthwise_backward(&g, dx, dw, x, w, dy);
+    depthwise_backward(&g, cg.dx, cg.dw, cg.x, cg.w, cg.dy);
     return;
   }
-  for (int64_t n = 0; n < g.N; n++) {
-    const float *dyn = dy + n * g.M * P;
-    if (dw) {
-      const float *col = x + n * g.C * g.in_sp;
-      if (!g.direct) {
-        unfold(work, col, &g.p, g.C);
-        col = work;
-      }
-      /* dW_g (Mg, CgK) += dy_g (Mg, P) . col_g^T */
-      for (int64_t grp = 0; grp < g.G; grp++)
-        cblas_sgemm(CblasRowMajor, CblasNoTrans, CblasTrans, (int)g.Mg, (int)CgK, (int)P, 1.0f,
-                    dyn + grp * g.Mg * P, (int)P, col + grp * CgK * P, (int)P, 1.0f, dw + grp * g.Mg * CgK,
-                    (int)CgK);
-    }
-    if (dx) {
-      float *dxn = dx + n * g.C * g.in_sp;
-      if (g.direct) {
-        /* The column matrix is x itself: dx_g (Cg, P) += W_g^T . dy_g. */
-        for (int64_t grp = 0; grp < g.G; grp++)
-          cblas_sgemm(CblasRowMajor, CblasTrans, CblasNoTrans, (int)g.Cg, (int)P, (int)g.Mg, 1.0f,
-                      w + grp * g.Mg * CgK, (int)CgK, dyn + grp * g.Mg * P, (int)P, 1.0f,
-                      dxn + grp * g.Cg * P, (int)P);
-        continue;
-      }
-      /* dcol_g (CgK, P) = W_g^T . dy_g, then folded back onto dx */
-      for (int64_t grp = 0; grp < g.G; grp++)
-        cblas_sgemm(CblasRowMajor, CblasTrans, CblasNoTrans, (int)CgK, (int)P, (int)g.Mg, 1.0f,
-                    w + grp * g.Mg * CgK, (int)CgK, dyn + grp * g.Mg * P, (int)P, 0.0f, work + grp * CgK * P,
-                    (int)P);
-      fold_add(dxn, work, &g.p, g.C);
-    }
+  const size_t col = col_floats(&g), per = thread_floats(&g, 1), dw_n = per - col;
+  const int T = sample_threads(k, &g, per);
+  if (T == 1) {
+    for (int64_t n = 0; n < g.N; n++) backward_sample(&g, n, cg.x, cg.w, cg.dy, cg.dx, cg.dw, k->work);
+    return;
   }
+#pragma omp parallel num_threads(T)
+  {
+    float *work = (float *)k->work + (size_t)omp_get_thread_num() * per, *dw = cg.dw ? work + col : NULL;
+    if (dw) memset(dw, 0, sizeof(float) * dw_n);
+#pragma omp for schedule(static)
+    for (int64_t n = 0; n < g.N; n++) backward_sample(&g, n, cg.x, cg.w, cg.dy, cg.dx, dw, work);
+  }
+  if (cg.dw)
+    for (int t = 0; t < T; t++) {
+      const float *part = (float *)k->work + (size_t)t * per + col;
+      for (size_t i = 0; i < dw_n; i++) cg.dw[i] += part[i];
+    }
 }
 
 /* x (N,C,D...), W (C,M/G,k...), B (M) -> y (N,M,O...).

@@ -30,6 +30,7 @@ typedef struct rc_kernel {
   void *work;                  /* transient workspace, size from def->workspace */
   void *saved;                 /* kept from forward to backward, size from def->saved */
   int training;                /* batch statistics for BatchNormalization */
+  size_t work_bytes;           /* size of work: at least def->workspace, maybe more */
 } rc_kernel;
 
 typedef enum rc_op_flags {
