@@ -23,6 +23,7 @@
 #include "onnx/onnx_internal.h"
 #include "ops/op.h"
 #include "recoup/alloc.h"
+#include "onnx_build.h"
 #include "test.h"
 
 /* ---- temp folder ---- */
@@ -100,159 +101,7 @@ static int count_hidden(const char *dir) {
   return c;
 }
 
-/* ---- building protos: everything from a pool freed after each case ---- */
-
-static void *pool[100000];
-static int pool_n;
-
-static void *pnew(size_t n) {
-  void *p = calloc(1, n ? n : 1);
-  pool[pool_n++] = p;
-  return p;
-}
-static char *pstr(const char *s) { return strcpy(pnew(strlen(s) + 1), s); }
-static void pool_free(void) {
-  while (pool_n) free(pool[--pool_n]);
-}
-static void *pdup(const void *p, size_t n) { return memcpy(pnew(n), p, n); }
-
-#define ARR(T, n) ((T *)pnew(sizeof(T) * (size_t)(n)))
-
-static Onnx__TensorProto *mk_tensor(const char *name, int dtype, int rank, const int64_t *dims) {
-  Onnx__TensorProto *t = pnew(sizeof *t);
-  onnx__tensor_proto__init(t);
-  if (name) t->name = pstr(name);
-  t->has_data_type = 1;
-  t->data_type = dtype;
-  t->n_dims = (size_t)rank;
-  t->dims = ARR(int64_t, rank + 1);
-  if (rank) memcpy(t->dims, dims, sizeof(int64_t) * (size_t)rank);
-  return t;
-}
-
-static void set_raw(Onnx__TensorProto *t, const void *data, size_t n) {
-  t->has_raw_data = 1;
-  t->raw_data.len = n;
-  t->raw_data.data = pdup(data, n);
-}
-
-static Onnx__TensorProto *mk_raw_tensor(const char *name, int dtype, int rank, const int64_t *dims,
-                                        const void *data, size_t n) {
-  Onnx__TensorProto *t = mk_tensor(name, dtype, rank, dims);
-  set_raw(t, data, n);
-  return t;
-}
-
-static Onnx__ValueInfoProto *mk_vi(const char *name, int dtype, int rank, const int64_t *dims) {
-  Onnx__ValueInfoProto *v = pnew(sizeof *v);
-  onnx__value_info_proto__init(v);
-  v->name = pstr(name);
-  Onnx__TypeProto *tp = pnew(sizeof *tp);
-  onnx__type_proto__init(tp);
-  Onnx__TypeProto__Tensor *tt = pnew(sizeof *tt);
-  onnx__type_proto__tensor__init(tt);
-  tt->has_elem_type = 1;
-  tt->elem_type = dtype;
-  tp->value_case = ONNX__TYPE_PROTO__VALUE_TENSOR_TYPE;
-  tp->tensor_type = tt;
-  v->type = tp;
-  if (rank >= 0) {
-    Onnx__TensorShapeProto *sh = pnew(sizeof *sh);
-    onnx__tensor_shape_proto__init(sh);
-    sh->n_dim = (size_t)rank;
-    sh->dim = ARR(Onnx__TensorShapeProto__Dimension *, rank + 1);
-    for (int i = 0; i < rank; i++) {
-      Onnx__TensorShapeProto__Dimension *d = pnew(sizeof *d);
-      onnx__tensor_shape_proto__dimension__init(d);
-      if (dims[i] >= 0) {
-        d->value_case = ONNX__TENSOR_SHAPE_PROTO__DIMENSION__VALUE_DIM_VALUE;
-        d->dim_value = dims[i];
-      } else {
-        d->value_case = ONNX__TENSOR_SHAPE_PROTO__DIMENSION__VALUE_DIM_PARAM;
-        d->dim_param = pstr("batch");
-      }
-      sh->dim[i] = d;
-    }
-    tt->shape = sh;
-  }
-  return v;
-}
-
-/* ins/outs: arrays terminated by NULL; "" marks an absent optional. */
-static Onnx__NodeProto *mk_node(const char *op, const char *name, const char **ins,
-                                const char **outs) {
-  Onnx__NodeProto *n = pnew(sizeof *n);
-  onnx__node_proto__init(n);
-  n->op_type = pstr(op);
-  if (name) n->name = pstr(name);
-  n->input = ARR(char *, 16);
-  n->output = ARR(char *, 16);
-  n->attribute = ARR(Onnx__AttributeProto *, 16);
-  for (; ins && *ins; ins++) n->input[n->n_input++] = pstr(*ins);
-  for (; outs && *outs; outs++) n->output[n->n_output++] = pstr(*outs);
-  return n;
-}
-
-static Onnx__AttributeProto *add_attr(Onnx__NodeProto *n, const char *name, int type) {
-  Onnx__AttributeProto *a = pnew(sizeof *a);
-  onnx__attribute_proto__init(a);
-  a->name = pstr(name);
-  a->has_type = 1;
-  a->type = (Onnx__AttributeProto__AttributeType)type;
-  n->attribute[n->n_attribute++] = a;
-  return a;
-}
-
-static void add_ints(Onnx__NodeProto *n, const char *name, int cnt, const int64_t *v) {
-  Onnx__AttributeProto *a = add_attr(n, name, RC_ATTR_INTS);
-  a->n_ints = (size_t)cnt;
-  a->ints = pdup(v, sizeof(int64_t) * (size_t)cnt);
-}
-
-typedef struct fixture {
-  Onnx__ModelProto m;
-  Onnx__GraphProto g;
-} fixture;
-
-static Onnx__ModelProto *mk_model(int64_t ir, int64_t opset) {
-  fixture *f = pnew(sizeof *f);
-  onnx__model_proto__init(&f->m);
-  onnx__graph_proto__init(&f->g);
-  f->m.has_ir_version = 1;
-  f->m.ir_version = ir;
-  f->m.opset_import = ARR(Onnx__OperatorSetIdProto *, 4);
-  Onnx__OperatorSetIdProto *op = pnew(sizeof *op);
-  onnx__operator_set_id_proto__init(op);
-  op->domain = pstr("");
-  op->has_version = 1;
-  op->version = opset;
-  f->m.opset_import[f->m.n_opset_import++] = op;
-  f->m.graph = &f->g;
-  f->g.name = pstr("g");
-  f->g.node = ARR(Onnx__NodeProto *, 64);
-  f->g.initializer = ARR(Onnx__TensorProto *, 64);
-  f->g.input = ARR(Onnx__ValueInfoProto *, 64);
-  f->g.output = ARR(Onnx__ValueInfoProto *, 64);
-  f->g.value_info = ARR(Onnx__ValueInfoProto *, 64);
-  return &f->m;
-}
-
-#define ADD(arr, n, x) ((arr)[(n)++] = (x))
-
-static uint8_t *pack_model(const Onnx__ModelProto *m, size_t *n) {
-  *n = onnx__model_proto__get_packed_size(m);
-  uint8_t *b = malloc(*n + 1);
-  onnx__model_proto__pack(m, b);
-  return b;
-}
-
-static int save_proto(const Onnx__ModelProto *m, const char *path) {
-  size_t n;
-  uint8_t *b = pack_model(m, &n);
-  int ok = write_file(path, b, n);
-  free(b);
-  return ok;
-}
+/* ---- building protos: onnx_build.h, its pool freed after each case ---- */
 
 static Onnx__ModelProto *reread_proto(const char *path) {
   size_t n;
@@ -265,7 +114,7 @@ static Onnx__ModelProto *reread_proto(const char *path) {
 
 /* Load a model built in memory through a file; unbound (ops not looked up). */
 static rc_status load_built(const Onnx__ModelProto *mp, const char *file, rc_model **m, rc_err *e) {
-  CHECK(save_proto(mp, tpath(file)));
+  CHECK(ob_save(mp, tpath(file)));
   return rc__model_load_unbound(m, tpath(file), NULL, e);
 }
 
@@ -277,66 +126,54 @@ static const float B_DATA[2] = {0.125f, -4.0f};
 static const int8_t Q_DATA[4] = {-128, -1, 0, 127};
 
 static Onnx__ModelProto *mk_main_fixture(void) {
-  Onnx__ModelProto *m = mk_model(8, 13);
-  Onnx__GraphProto *g = m->graph;
-  m->producer_name = pstr("fixture-writer");
-  m->doc_string = pstr("a model doc string");
-  m->metadata_props = ARR(Onnx__StringStringEntryProto *, 2);
-  Onnx__StringStringEntryProto *kv = pnew(sizeof *kv);
+  Onnx__ModelProto *m = ob_model(8, 13, "g");
+  m->producer_name = ob_str("fixture-writer");
+  m->doc_string = ob_str("a model doc string");
+  m->metadata_props = ob_alloc(2 * sizeof *m->metadata_props);
+  Onnx__StringStringEntryProto *kv = ob_alloc(sizeof *kv);
   onnx__string_string_entry_proto__init(kv);
-  kv->key = pstr("owner");
-  kv->value = pstr("fixture team");
+  kv->key = ob_str("owner");
+  kv->value = ob_str("fixture team");
   m->metadata_props[m->n_metadata_props++] = kv;
   /* An unknown field (number 4242, length-delimited): must survive a save.
    * protobuf-c keeps an unknown field's bytes after the tag, length prefix
    * included. */
   m->base.n_unknown_fields = 1;
-  m->base.unknown_fields = pnew(sizeof(ProtobufCMessageUnknownField));
+  m->base.unknown_fields = ob_alloc(sizeof(ProtobufCMessageUnknownField));
   m->base.unknown_fields[0].tag = 4242;
   m->base.unknown_fields[0].wire_type = PROTOBUF_C_WIRE_TYPE_LENGTH_PREFIXED;
   m->base.unknown_fields[0].len = 6;
-  m->base.unknown_fields[0].data = pdup("\x05hello", 6);
+  m->base.unknown_fields[0].data = ob_dup("\x05hello", 6);
 
   int64_t xd[4] = {-1, 3, 4, 4}, wd[4] = {2, 3, 1, 1}, bd[1] = {2}, qd[1] = {4};
-  ADD(g->input, g->n_input, mk_vi("input.1", RC_DTYPE_FLOAT, 4, xd));
+  ob_input(m, "input.1", RC_DTYPE_FLOAT, 4, xd);
   /* IR < 4 habit: an initializer also listed as a graph input. */
-  ADD(g->input, g->n_input, mk_vi("conv.weight", RC_DTYPE_FLOAT, 4, wd));
-  ADD(g->initializer, g->n_initializer,
-      mk_raw_tensor("conv.weight", RC_DTYPE_FLOAT, 4, wd, W_DATA, sizeof W_DATA));
-  Onnx__TensorProto *b = mk_tensor("conv.bias", RC_DTYPE_FLOAT, 1, bd);
+  ob_input(m, "conv.weight", RC_DTYPE_FLOAT, 4, wd);
+  ob_init(m, ob_tensor_raw("conv.weight", RC_DTYPE_FLOAT, 4, wd, W_DATA, sizeof W_DATA));
+  Onnx__TensorProto *b = ob_init(m, ob_tensor("conv.bias", RC_DTYPE_FLOAT, 1, bd));
   b->n_float_data = 2;
-  b->float_data = pdup(B_DATA, sizeof B_DATA);
-  b->doc_string = pstr("bias doc");
-  ADD(g->initializer, g->n_initializer, b);
-  ADD(g->initializer, g->n_initializer,
-      mk_raw_tensor("q", RC_DTYPE_INT8, 1, qd, Q_DATA, sizeof Q_DATA));
-  Onnx__NodeProto *conv = mk_node("Conv", "onnx::Conv_89", (const char *[]){"input.1", "conv.weight", "conv.bias", NULL},
-                                  (const char *[]){"conv_out", NULL});
-  conv->doc_string = pstr("conv node doc");
+  b->float_data = ob_dup(B_DATA, sizeof B_DATA);
+  b->doc_string = ob_str("bias doc");
+  ob_init(m, ob_tensor_raw("q", RC_DTYPE_INT8, 1, qd, Q_DATA, sizeof Q_DATA));
+  Onnx__NodeProto *conv = ob_node(m, "Conv", "onnx::Conv_89", "input.1 conv.weight conv.bias", "conv_out");
+  conv->doc_string = ob_str("conv node doc");
   int64_t ks[2] = {1, 1}, pads[4] = {0, 0, 0, 0};
-  add_ints(conv, "kernel_shape", 2, ks);
-  add_ints(conv, "pads", 4, pads);
-  Onnx__AttributeProto *grp = add_attr(conv, "group", RC_ATTR_INT);
-  grp->has_i = 1;
-  grp->i = 1;
-  ADD(g->node, g->n_node, conv);
-  Onnx__NodeProto *relu = mk_node("Relu", NULL, (const char *[]){"conv_out", NULL},
-                                  (const char *[]){"out", NULL});
-  ADD(g->node, g->n_node, relu);
+  ob_attr_ints(conv, "kernel_shape", 2, ks);
+  ob_attr_ints(conv, "pads", 4, pads);
+  ob_attr_int(conv, "group", 1);
+  ob_node(m, "Relu", NULL, "conv_out", "out");
   /* Dropout with an absent optional input and an unused optional output. */
-  Onnx__NodeProto *drop = mk_node("Dropout", "drop", (const char *[]){"out", "", NULL},
-                                  (const char *[]){"final", "", NULL});
-  Onnx__AttributeProto *s = add_attr(drop, "note", RC_ATTR_STRING);
+  Onnx__NodeProto *drop = ob_node(m, "Dropout", "drop", "out -", "final -");
+  Onnx__AttributeProto *s = ob_attr(drop, "note", RC_ATTR_STRING);
   s->has_s = 1;
   s->s.len = 3;
-  s->s.data = pdup("abc", 3);
-  Onnx__AttributeProto *fl = add_attr(drop, "ratio_f", RC_ATTR_FLOAT);
+  s->s.data = ob_dup("abc", 3);
+  Onnx__AttributeProto *fl = ob_attr(drop, "ratio_f", RC_ATTR_FLOAT);
   fl->has_f = 1;
   fl->f = 0.5f;
-  ADD(g->node, g->n_node, drop);
   int64_t od[4] = {-1, 2, 4, 4};
-  ADD(g->output, g->n_output, mk_vi("final", RC_DTYPE_FLOAT, 4, od));
-  ADD(g->value_info, g->n_value_info, mk_vi("conv_out", RC_DTYPE_FLOAT, 4, od));
+  ob_output(m, "final", RC_DTYPE_FLOAT, 4, od);
+  ob_value_info(m, "conv_out", RC_DTYPE_FLOAT, 4, od);
   return m;
 }
 
@@ -348,7 +185,7 @@ static void test_load_structure(void) {
   CHECK_INT(load_built(mk_main_fixture(), "main.onnx", &m, &e), RC_OK);
   if (!m) {
     fprintf(stderr, "%s\n", e.msg);
-    pool_free();
+    ob_free_all();
     return;
   }
   const rc_graph *g = &m->graph;
@@ -390,7 +227,7 @@ static void test_load_structure(void) {
   CHECK_INT(g->n_outputs, 1);
   CHECK_INT(g->outputs[0], find(m, "final"));
   rc_model_free(m);
-  pool_free();
+  ob_free_all();
 }
 
 static int proto_has_unknown_4242(const Onnx__ModelProto *p) {
@@ -406,7 +243,7 @@ static void test_round_trip(void) {
   rc_model *m = NULL;
   CHECK_INT(load_built(mk_main_fixture(), "rt_in.onnx", &m, &e), RC_OK);
   if (!m) {
-    pool_free();
+    ob_free_all();
     return;
   }
   /* Unchanged save: byte-identical to what protobuf-c packed. */
@@ -494,7 +331,7 @@ static void test_round_trip(void) {
   qf[1] = 300.0f; /* out of int8 range */
   CHECK_INT(rc_model_save(m, tpath("rt_q2.onnx"), &q, 1, &e), RC_ERR_NUMERIC);
   rc_model_free(m);
-  pool_free();
+  ob_free_all();
 }
 
 /* ---- tensor decoding ---- */
@@ -516,7 +353,7 @@ static void check_both_forms(int dtype, int n, const void *raw, size_t raw_n, co
                              const void *expect, size_t expect_n) {
   rc_err e = {0};
   int64_t d[1] = {n};
-  Onnx__TensorProto *t = mk_raw_tensor("x", dtype, 1, d, raw, raw_n);
+  Onnx__TensorProto *t = ob_tensor_raw("x", dtype, 1, d, raw, raw_n);
   rc_tensor a, b;
   CHECK_INT(decode(t, &a, &e), RC_OK);
   CHECK_INT(decode(typed, &b, &e), RC_OK);
@@ -532,16 +369,16 @@ static void test_raw_vs_typed(void) {
   int64_t d3[1] = {3};
   { /* float */
     float v[3] = {1.5f, -2.0f, 0.25f};
-    Onnx__TensorProto *t = mk_tensor("x", RC_DTYPE_FLOAT, 1, d3);
+    Onnx__TensorProto *t = ob_tensor("x", RC_DTYPE_FLOAT, 1, d3);
     t->n_float_data = 3;
-    t->float_data = pdup(v, sizeof v);
+    t->float_data = ob_dup(v, sizeof v);
     check_both_forms(RC_DTYPE_FLOAT, 3, v, sizeof v, t, v, sizeof v);
   }
   { /* double */
     double v[3] = {1e300, -2.5, 0};
-    Onnx__TensorProto *t = mk_tensor("x", RC_DTYPE_DOUBLE, 1, d3);
+    Onnx__TensorProto *t = ob_tensor("x", RC_DTYPE_DOUBLE, 1, d3);
     t->n_double_data = 3;
-    t->double_data = pdup(v, sizeof v);
+    t->double_data = ob_dup(v, sizeof v);
     check_both_forms(RC_DTYPE_DOUBLE, 3, v, sizeof v, t, v, sizeof v);
   }
   /* int32_data carries int8/uint8/int16/uint16/bool/float16/bfloat16 one
@@ -558,29 +395,29 @@ static void test_raw_vs_typed(void) {
       {RC_DTYPE_INT32, {-7, 1 << 30, 0}, {0xf9, 0xff, 0xff, 0xff, 0, 0, 0, 0x40, 0, 0, 0, 0}, 4},
   };
   for (size_t c = 0; c < sizeof cases / sizeof cases[0]; c++) {
-    Onnx__TensorProto *t = mk_tensor("x", cases[c].dtype, 1, d3);
+    Onnx__TensorProto *t = ob_tensor("x", cases[c].dtype, 1, d3);
     t->n_int32_data = 3;
-    t->int32_data = pdup(cases[c].ints, sizeof cases[c].ints);
+    t->int32_data = ob_dup(cases[c].ints, sizeof cases[c].ints);
     check_both_forms(cases[c].dtype, 3, cases[c].raw, 3 * cases[c].es, t, cases[c].raw, 3 * cases[c].es);
   }
   { /* int64 */
     int64_t v[3] = {INT64_MIN, -1, 1ll << 40};
-    Onnx__TensorProto *t = mk_tensor("x", RC_DTYPE_INT64, 1, d3);
+    Onnx__TensorProto *t = ob_tensor("x", RC_DTYPE_INT64, 1, d3);
     t->n_int64_data = 3;
-    t->int64_data = pdup(v, sizeof v);
+    t->int64_data = ob_dup(v, sizeof v);
     check_both_forms(RC_DTYPE_INT64, 3, v, sizeof v, t, v, sizeof v);
   }
   { /* uint32 and uint64 through uint64_data */
     uint64_t v64[3] = {UINT64_MAX, 0, 12345};
     uint32_t v32[3] = {UINT32_MAX, 0, 12345};
     uint64_t v32w[3] = {UINT32_MAX, 0, 12345};
-    Onnx__TensorProto *t = mk_tensor("x", RC_DTYPE_UINT64, 1, d3);
+    Onnx__TensorProto *t = ob_tensor("x", RC_DTYPE_UINT64, 1, d3);
     t->n_uint64_data = 3;
-    t->uint64_data = pdup(v64, sizeof v64);
+    t->uint64_data = ob_dup(v64, sizeof v64);
     check_both_forms(RC_DTYPE_UINT64, 3, v64, sizeof v64, t, v64, sizeof v64);
-    t = mk_tensor("x", RC_DTYPE_UINT32, 1, d3);
+    t = ob_tensor("x", RC_DTYPE_UINT32, 1, d3);
     t->n_uint64_data = 3;
-    t->uint64_data = pdup(v32w, sizeof v32w);
+    t->uint64_data = ob_dup(v32w, sizeof v32w);
     check_both_forms(RC_DTYPE_UINT32, 3, v32, sizeof v32, t, v32, sizeof v32);
   }
   /* Raw bool bytes other than 0/1 read as true. */
@@ -588,12 +425,12 @@ static void test_raw_vs_typed(void) {
     rc_err e = {0};
     rc_tensor out;
     uint8_t raw[3] = {0, 2, 255};
-    CHECK_INT(decode(mk_raw_tensor("x", RC_DTYPE_BOOL, 1, d3, raw, 3), &out, &e), RC_OK);
+    CHECK_INT(decode(ob_tensor_raw("x", RC_DTYPE_BOOL, 1, d3, raw, 3), &out, &e), RC_OK);
     const uint8_t *o = out.data;
     CHECK(o && o[0] == 0 && o[1] == 1 && o[2] == 1);
     rc__free(out.data);
   }
-  pool_free();
+  ob_free_all();
 }
 
 static void test_decode_errors(void) {
@@ -602,55 +439,55 @@ static void test_decode_errors(void) {
   int64_t d3[1] = {3};
   float v[4] = {1, 2, 3, 4};
   /* raw_data one element short, one long */
-  CHECK_INT(decode(mk_raw_tensor("x", RC_DTYPE_FLOAT, 1, d3, v, 8), &out, &e), RC_ERR_FORMAT);
+  CHECK_INT(decode(ob_tensor_raw("x", RC_DTYPE_FLOAT, 1, d3, v, 8), &out, &e), RC_ERR_FORMAT);
   CHECK_STR_CONTAINS(e.msg, "tensor 'x'");
   CHECK_STR_CONTAINS(e.msg, "raw_data has 8 bytes but the shape needs 12");
-  CHECK_INT(decode(mk_raw_tensor("x", RC_DTYPE_FLOAT, 1, d3, v, 16), &out, &e), RC_ERR_FORMAT);
+  CHECK_INT(decode(ob_tensor_raw("x", RC_DTYPE_FLOAT, 1, d3, v, 16), &out, &e), RC_ERR_FORMAT);
   /* typed count mismatch */
-  Onnx__TensorProto *t = mk_tensor("x", RC_DTYPE_FLOAT, 1, d3);
+  Onnx__TensorProto *t = ob_tensor("x", RC_DTYPE_FLOAT, 1, d3);
   t->n_float_data = 4;
-  t->float_data = pdup(v, sizeof v);
+  t->float_data = ob_dup(v, sizeof v);
   CHECK_INT(decode(t, &out, &e), RC_ERR_FORMAT);
   CHECK_STR_CONTAINS(e.msg, "float_data holds 4 values but the shape needs 3");
   /* wrong field for the dtype */
-  t = mk_tensor("x", RC_DTYPE_INT8, 1, d3);
+  t = ob_tensor("x", RC_DTYPE_INT8, 1, d3);
   t->n_float_data = 3;
-  t->float_data = pdup(v, sizeof v);
+  t->float_data = ob_dup(v, sizeof v);
   CHECK_INT(decode(t, &out, &e), RC_ERR_FORMAT);
   /* int32_data out of range for int8 */
   int32_t big[3] = {1, 200, 3};
-  t = mk_tensor("x", RC_DTYPE_INT8, 1, d3);
+  t = ob_tensor("x", RC_DTYPE_INT8, 1, d3);
   t->n_int32_data = 3;
-  t->int32_data = pdup(big, sizeof big);
+  t->int32_data = ob_dup(big, sizeof big);
   CHECK_INT(decode(t, &out, &e), RC_ERR_FORMAT);
   CHECK_STR_CONTAINS(e.msg, "out of range");
   /* no data at all */
-  CHECK_INT(decode(mk_tensor("x", RC_DTYPE_FLOAT, 1, d3), &out, &e), RC_ERR_FORMAT);
+  CHECK_INT(decode(ob_tensor("x", RC_DTYPE_FLOAT, 1, d3), &out, &e), RC_ERR_FORMAT);
   /* both raw and typed */
-  t = mk_raw_tensor("x", RC_DTYPE_FLOAT, 1, d3, v, 12);
+  t = ob_tensor_raw("x", RC_DTYPE_FLOAT, 1, d3, v, 12);
   t->n_float_data = 3;
-  t->float_data = pdup(v, 12);
+  t->float_data = ob_dup(v, 12);
   CHECK_INT(decode(t, &out, &e), RC_ERR_FORMAT);
   /* strings and complex: refused */
-  CHECK_INT(decode(mk_tensor("x", RC_DTYPE_STRING, 1, d3), &out, &e), RC_ERR_UNSUPPORTED);
+  CHECK_INT(decode(ob_tensor("x", RC_DTYPE_STRING, 1, d3), &out, &e), RC_ERR_UNSUPPORTED);
   CHECK_STR_CONTAINS(e.msg, "string");
-  CHECK_INT(decode(mk_tensor("x", 14, 1, d3), &out, &e), RC_ERR_UNSUPPORTED);
+  CHECK_INT(decode(ob_tensor("x", 14, 1, d3), &out, &e), RC_ERR_UNSUPPORTED);
   /* a huge dimension, an overflowing count, a negative one, too many dims */
   int64_t huge[1] = {(int64_t)1 << 40}, ovf[3] = {(int64_t)1 << 40, (int64_t)1 << 40, 1 << 20};
   int64_t neg[2] = {2, -3}, r9[9] = {1, 1, 1, 1, 1, 1, 1, 1, 1};
-  CHECK_INT(decode(mk_raw_tensor("x", RC_DTYPE_FLOAT, 1, huge, v, 4), &out, &e), RC_ERR_LIMIT);
+  CHECK_INT(decode(ob_tensor_raw("x", RC_DTYPE_FLOAT, 1, huge, v, 4), &out, &e), RC_ERR_LIMIT);
   CHECK_STR_CONTAINS(e.msg, "limit");
-  CHECK_INT(decode(mk_raw_tensor("x", RC_DTYPE_FLOAT, 3, ovf, v, 4), &out, &e), RC_ERR_LIMIT);
+  CHECK_INT(decode(ob_tensor_raw("x", RC_DTYPE_FLOAT, 3, ovf, v, 4), &out, &e), RC_ERR_LIMIT);
   CHECK_STR_CONTAINS(e.msg, "overflows");
-  CHECK_INT(decode(mk_raw_tensor("x", RC_DTYPE_FLOAT, 2, neg, v, 4), &out, &e), RC_ERR_FORMAT);
+  CHECK_INT(decode(ob_tensor_raw("x", RC_DTYPE_FLOAT, 2, neg, v, 4), &out, &e), RC_ERR_FORMAT);
   CHECK_STR_CONTAINS(e.msg, "negative");
-  CHECK_INT(decode(mk_raw_tensor("x", RC_DTYPE_FLOAT, 9, r9, v, 4), &out, &e), RC_ERR_LIMIT);
+  CHECK_INT(decode(ob_tensor_raw("x", RC_DTYPE_FLOAT, 9, r9, v, 4), &out, &e), RC_ERR_LIMIT);
   CHECK_STR_CONTAINS(e.msg, "rank 9");
   /* an empty tensor with no data is fine */
   int64_t zero[2] = {0, 5};
-  CHECK_INT(decode(mk_tensor("x", RC_DTYPE_FLOAT, 2, zero), &out, &e), RC_OK);
+  CHECK_INT(decode(ob_tensor("x", RC_DTYPE_FLOAT, 2, zero), &out, &e), RC_OK);
   rc__free(out.data);
-  pool_free();
+  ob_free_all();
 }
 
 /* int4/uint4: two values per byte, first element in the low nibble, int4
@@ -660,14 +497,14 @@ static void test_int4(void) {
   rc_tensor out;
   int64_t d2[1] = {2}, d3[1] = {3};
   uint8_t one[1] = {0xF1};
-  CHECK_INT(decode(mk_raw_tensor("x", RC_DTYPE_INT4, 1, d2, one, 1), &out, &e), RC_OK);
+  CHECK_INT(decode(ob_tensor_raw("x", RC_DTYPE_INT4, 1, d2, one, 1), &out, &e), RC_OK);
   if (out.data) {
     const int8_t *o = out.data;
     CHECK_INT(o[0], 1);
     CHECK_INT(o[1], -1);
   }
   rc__free(out.data);
-  CHECK_INT(decode(mk_raw_tensor("x", RC_DTYPE_UINT4, 1, d2, one, 1), &out, &e), RC_OK);
+  CHECK_INT(decode(ob_tensor_raw("x", RC_DTYPE_UINT4, 1, d2, one, 1), &out, &e), RC_OK);
   if (out.data) {
     const uint8_t *o = out.data;
     CHECK_INT(o[0], 1);
@@ -676,18 +513,18 @@ static void test_int4(void) {
   rc__free(out.data);
   /* odd count: the last byte's high nibble is padding */
   uint8_t two[2] = {0x8F, 0x07};
-  CHECK_INT(decode(mk_raw_tensor("x", RC_DTYPE_INT4, 1, d3, two, 2), &out, &e), RC_OK);
+  CHECK_INT(decode(ob_tensor_raw("x", RC_DTYPE_INT4, 1, d3, two, 2), &out, &e), RC_OK);
   if (out.data) {
     const int8_t *o = out.data;
     CHECK(o[0] == -1 && o[1] == -8 && o[2] == 7);
   }
   rc__free(out.data);
-  CHECK_INT(decode(mk_raw_tensor("x", RC_DTYPE_INT4, 1, d3, two, 1), &out, &e), RC_ERR_FORMAT);
+  CHECK_INT(decode(ob_tensor_raw("x", RC_DTYPE_INT4, 1, d3, two, 1), &out, &e), RC_ERR_FORMAT);
   /* int32_data holds packed bytes, one per entry */
-  Onnx__TensorProto *t = mk_tensor("x", RC_DTYPE_INT4, 1, d3);
+  Onnx__TensorProto *t = ob_tensor("x", RC_DTYPE_INT4, 1, d3);
   int32_t packed[2] = {0xF1, 0x08};
   t->n_int32_data = 2;
-  t->int32_data = pdup(packed, sizeof packed);
+  t->int32_data = ob_dup(packed, sizeof packed);
   CHECK_INT(decode(t, &out, &e), RC_OK);
   if (out.data) {
     const int8_t *o = out.data;
@@ -713,7 +550,7 @@ static void test_int4(void) {
   ((int8_t *)out.data)[2] = 9;
   CHECK_INT(rc__tensor_encode_raw(&out, RC_DTYPE_INT4, "x", &raw, &n, &e), RC_ERR_NUMERIC);
   rc__free(out.data);
-  pool_free();
+  ob_free_all();
 }
 
 static void test_half(void) {
@@ -734,23 +571,23 @@ static void test_half(void) {
 
 static Onnx__ModelProto *mk_external_model(const char *location, const char *offset,
                                            const char *length) {
-  Onnx__ModelProto *m = mk_model(8, 13);
+  Onnx__ModelProto *m = ob_model(8, 13, "g");
   int64_t d[1] = {3};
-  Onnx__TensorProto *t = mk_tensor("ext.w", RC_DTYPE_FLOAT, 1, d);
+  Onnx__TensorProto *t = ob_tensor("ext.w", RC_DTYPE_FLOAT, 1, d);
   t->has_data_location = 1;
   t->data_location = ONNX__TENSOR_PROTO__DATA_LOCATION__EXTERNAL;
-  t->external_data = ARR(Onnx__StringStringEntryProto *, 3);
+  t->external_data = ob_alloc(3 * sizeof *t->external_data);
   const char *keys[3] = {"location", "offset", "length"}, *vals[3] = {location, offset, length};
   for (int i = 0; i < 3; i++) {
     if (!vals[i]) continue;
-    Onnx__StringStringEntryProto *kv = pnew(sizeof *kv);
+    Onnx__StringStringEntryProto *kv = ob_alloc(sizeof *kv);
     onnx__string_string_entry_proto__init(kv);
-    kv->key = pstr(keys[i]);
-    kv->value = pstr(vals[i]);
+    kv->key = ob_str(keys[i]);
+    kv->value = ob_str(vals[i]);
     t->external_data[t->n_external_data++] = kv;
   }
-  ADD(m->graph->initializer, m->graph->n_initializer, t);
-  ADD(m->graph->output, m->graph->n_output, mk_vi("ext.w", RC_DTYPE_FLOAT, 1, d));
+  ob_init(m, t);
+  ob_output(m, "ext.w", RC_DTYPE_FLOAT, 1, d);
   return m;
 }
 
@@ -822,7 +659,7 @@ static void test_external(void) {
     rc_model_free(m);
     m = NULL;
   }
-  pool_free();
+  ob_free_all();
 }
 
 /* ---- hostile and broken files ---- */
@@ -845,7 +682,7 @@ static void test_bad_files(void) {
     CHECK_STR_CONTAINS(e.msg, "Permission denied");
   }
   /* File size limit checked before reading. */
-  save_proto(mk_main_fixture(), tpath("lim.onnx"));
+  ob_save(mk_main_fixture(), tpath("lim.onnx"));
   rc_load_limits lim;
   rc_load_limits_default(&lim);
   lim.max_file_bytes = 10;
@@ -860,7 +697,7 @@ static void test_bad_files(void) {
   rc_load_limits_default(&lim);
   lim.max_string = 8; /* "conv.weight" is longer */
   CHECK_INT(rc__model_load_unbound(&m, tpath("lim.onnx"), &lim, &e), RC_ERR_LIMIT);
-  pool_free();
+  ob_free_all();
 }
 
 static unsigned lcg(unsigned *s) {
@@ -872,7 +709,7 @@ static unsigned lcg(unsigned *s) {
  * (CI runs this under AddressSanitizer). */
 static void test_corrupt(void) {
   size_t n;
-  uint8_t *good = pack_model(mk_main_fixture(), &n);
+  uint8_t *good = ob_pack(mk_main_fixture(), &n);
   uint8_t *buf = malloc(n);
   rc_err e;
   int errors = 0, loads = 0;
@@ -915,12 +752,12 @@ static void test_corrupt(void) {
   CHECK(errors > 0);
   free(buf);
   free(good);
-  pool_free();
+  ob_free_all();
 }
 
 /* Out of memory at every allocation of a load: always a clean error. */
 static void test_alloc_failures(void) {
-  save_proto(mk_main_fixture(), tpath("oom.onnx"));
+  ob_save(mk_main_fixture(), tpath("oom.onnx"));
   rc_err e;
   int ok = 0;
   for (long k = 1; k < 2000 && !ok; k++) {
@@ -965,13 +802,13 @@ static void test_alloc_failures(void) {
     free(b);
     rc_model_free(m);
   }
-  pool_free();
+  ob_free_all();
 }
 
 /* The unpacker's allocator stops at its cap, and counts frees. */
 static void test_unpack_cap(void) {
   size_t n;
-  uint8_t *b = pack_model(mk_main_fixture(), &n);
+  uint8_t *b = ob_pack(mk_main_fixture(), &n);
   rc__pb_alloc pa;
   rc__pb_alloc_init(&pa, 1000);
   CHECK(onnx__model_proto__unpack(&pa.base, n, b) == NULL);
@@ -982,19 +819,18 @@ static void test_unpack_cap(void) {
   if (m) onnx__model_proto__free_unpacked(m, &pa.base);
   CHECK_INT(pa.used, 0);
   free(b);
-  pool_free();
+  ob_free_all();
 }
 
 /* ---- graph-level errors ---- */
 
 static Onnx__ModelProto *mk_chain(int64_t ir, int64_t opset, const char *op2) {
-  Onnx__ModelProto *m = mk_model(ir, opset);
-  Onnx__GraphProto *g = m->graph;
+  Onnx__ModelProto *m = ob_model(ir, opset, "g");
   int64_t d[2] = {2, 3};
-  ADD(g->input, g->n_input, mk_vi("x", RC_DTYPE_FLOAT, 2, d));
-  ADD(g->node, g->n_node, mk_node("Relu", "first", (const char *[]){"x", NULL}, (const char *[]){"h", NULL}));
-  ADD(g->node, g->n_node, mk_node(op2, "second", (const char *[]){"h", NULL}, (const char *[]){"y", NULL}));
-  ADD(g->output, g->n_output, mk_vi("y", RC_DTYPE_FLOAT, 2, d));
+  ob_input(m, "x", RC_DTYPE_FLOAT, 2, d);
+  ob_node(m, "Relu", "first", "x", "h");
+  ob_node(m, op2, "second", "h", "y");
+  ob_output(m, "y", RC_DTYPE_FLOAT, 2, d);
   return m;
 }
 
@@ -1002,7 +838,7 @@ static void expect_load_error(Onnx__ModelProto *mp, int bound, rc_status want, c
                               const char *msg2) {
   rc_err e = {0};
   rc_model *m = NULL;
-  CHECK(save_proto(mp, tpath("graph_err.onnx")));
+  CHECK(ob_save(mp, tpath("graph_err.onnx")));
   rc_status st = bound ? rc_model_load(&m, tpath("graph_err.onnx"), NULL, &e)
                        : rc__model_load_unbound(&m, tpath("graph_err.onnx"), NULL, &e);
   CHECK_INT(st, want);
@@ -1020,38 +856,38 @@ static void test_graph_errors(void) {
   expect_load_error(mk_chain(11, 13, "Relu"), 0, RC_ERR_UNSUPPORTED, "IR version 11", NULL);
   /* ai.onnx spelled out counts as the default domain */
   Onnx__ModelProto *mp = mk_chain(8, 13, "Relu");
-  mp->opset_import[0]->domain = pstr("ai.onnx");
+  mp->opset_import[0]->domain = ob_str("ai.onnx");
   rc_model *m = NULL;
   rc_err e = {0};
   CHECK_INT(load_built(mp, "aionnx.onnx", &m, &e), RC_OK);
   rc_model_free(m);
   mp = mk_chain(8, 13, "Relu");
-  mp->opset_import[0]->domain = pstr("com.example");
+  mp->opset_import[0]->domain = ob_str("com.example");
   expect_load_error(mp, 0, RC_ERR_UNSUPPORTED, "default ONNX domain", NULL);
   expect_load_error(mk_chain(8, 13, "FrobnicateXYZ"), 1, RC_ERR_UNSUPPORTED, "second",
                     "FrobnicateXYZ");
   /* a cycle: first reads y, second makes y */
   mp = mk_chain(8, 13, "Relu");
-  mp->graph->node[0]->input[0] = pstr("y");
+  mp->graph->node[0]->input[0] = ob_str("y");
   mp->graph->n_output = 0;
   expect_load_error(mp, 1, RC_ERR_FORMAT, "cycle", NULL);
   /* a node input nobody produces */
   mp = mk_chain(8, 13, "Relu");
-  mp->graph->node[1]->input[0] = pstr("nowhere");
+  mp->graph->node[1]->input[0] = ob_str("nowhere");
   expect_load_error(mp, 1, RC_ERR_FORMAT, "nowhere", "second");
   /* produced twice */
   mp = mk_chain(8, 13, "Relu");
-  mp->graph->node[1]->output[0] = pstr("h");
+  mp->graph->node[1]->output[0] = ob_str("h");
   expect_load_error(mp, 0, RC_ERR_FORMAT, "already produced by node 'first'", "second");
   /* a node output that is a graph input */
   mp = mk_chain(8, 13, "Relu");
-  mp->graph->node[1]->output[0] = pstr("x");
+  mp->graph->node[1]->output[0] = ob_str("x");
   expect_load_error(mp, 0, RC_ERR_FORMAT, "also a graph input", NULL);
   /* a node output that is an initializer */
   mp = mk_chain(8, 13, "Relu");
   float one = 1;
   int64_t d1[1] = {1};
-  ADD(mp->graph->initializer, mp->graph->n_initializer, mk_raw_tensor("y", RC_DTYPE_FLOAT, 1, d1, &one, 4));
+  ob_init(mp, ob_tensor_raw("y", RC_DTYPE_FLOAT, 1, d1, &one, 4));
   expect_load_error(mp, 0, RC_ERR_FORMAT, "also an initializer", NULL);
   /* negative declared input dimension */
   mp = mk_chain(8, 13, "Relu");
@@ -1060,32 +896,32 @@ static void test_graph_errors(void) {
   /* huge initializer dimension */
   mp = mk_chain(8, 13, "Relu");
   int64_t huge[2] = {1 << 20, 1 << 20};
-  ADD(mp->graph->initializer, mp->graph->n_initializer, mk_raw_tensor("big", RC_DTYPE_FLOAT, 2, huge, &one, 4));
+  ob_init(mp, ob_tensor_raw("big", RC_DTYPE_FLOAT, 2, huge, &one, 4));
   expect_load_error(mp, 0, RC_ERR_LIMIT, "initializer 'big'", NULL);
   /* raw length mismatch names the initializer */
   mp = mk_chain(8, 13, "Relu");
   int64_t d2[1] = {2};
-  ADD(mp->graph->initializer, mp->graph->n_initializer, mk_raw_tensor("short", RC_DTYPE_FLOAT, 1, d2, &one, 4));
+  ob_init(mp, ob_tensor_raw("short", RC_DTYPE_FLOAT, 1, d2, &one, 4));
   expect_load_error(mp, 0, RC_ERR_FORMAT, "initializer 'short'", "raw_data");
   /* control flow: a GRAPH attribute */
   mp = mk_chain(8, 13, "If");
-  Onnx__AttributeProto *a = add_attr(mp->graph->node[1], "then_branch", RC_ATTR_GRAPH);
-  a->g = pnew(sizeof(Onnx__GraphProto));
+  Onnx__AttributeProto *a = ob_attr(mp->graph->node[1], "then_branch", RC_ATTR_GRAPH);
+  a->g = ob_alloc(sizeof(Onnx__GraphProto));
   onnx__graph_proto__init(a->g);
   expect_load_error(mp, 0, RC_ERR_UNSUPPORTED, "'then_branch'", "second");
   /* Constant with sparse_value */
   mp = mk_chain(8, 13, "Constant");
   mp->graph->node[1]->n_input = 0;
-  a = add_attr(mp->graph->node[1], "sparse_value", 11);
-  a->sparse_tensor = pnew(sizeof(Onnx__SparseTensorProto));
+  a = ob_attr(mp->graph->node[1], "sparse_value", 11);
+  a->sparse_tensor = ob_alloc(sizeof(Onnx__SparseTensorProto));
   onnx__sparse_tensor_proto__init(a->sparse_tensor);
   expect_load_error(mp, 0, RC_ERR_UNSUPPORTED, "'sparse_value'", "sparse");
   /* a TENSOR attribute is decoded like an initializer */
   mp = mk_chain(8, 13, "Constant");
   mp->graph->node[1]->n_input = 0;
-  a = add_attr(mp->graph->node[1], "value", RC_ATTR_TENSOR);
+  a = ob_attr(mp->graph->node[1], "value", RC_ATTR_TENSOR);
   int32_t iv[2] = {7, -9};
-  a->t = mk_raw_tensor(NULL, RC_DTYPE_INT32, 1, d2, iv, 8);
+  a->t = ob_tensor_raw(NULL, RC_DTYPE_INT32, 1, d2, iv, 8);
   m = NULL;
   CHECK_INT(load_built(mp, "const.onnx", &m, &e), RC_OK);
   if (m) {
@@ -1094,19 +930,19 @@ static void test_graph_errors(void) {
           !memcmp(va->t.data, iv, 8));
     rc_model_free(m);
   }
-  a->t = mk_raw_tensor(NULL, RC_DTYPE_INT32, 1, d2, iv, 4);
+  a->t = ob_tensor_raw(NULL, RC_DTYPE_INT32, 1, d2, iv, 4);
   expect_load_error(mp, 0, RC_ERR_FORMAT, "'value'", "second");
   /* a node in a domain the file does not import */
   mp = mk_chain(8, 13, "Relu");
-  mp->graph->node[1]->domain = pstr("com.example");
+  mp->graph->node[1]->domain = ob_str("com.example");
   expect_load_error(mp, 0, RC_ERR_FORMAT, "com.example", NULL);
   /* a sequence-typed graph input */
   mp = mk_chain(8, 13, "Relu");
   mp->graph->input[0]->type->value_case = ONNX__TYPE_PROTO__VALUE_SEQUENCE_TYPE;
-  mp->graph->input[0]->type->sequence_type = pnew(sizeof(Onnx__TypeProto__Sequence));
+  mp->graph->input[0]->type->sequence_type = ob_alloc(sizeof(Onnx__TypeProto__Sequence));
   onnx__type_proto__sequence__init(mp->graph->input[0]->type->sequence_type);
   expect_load_error(mp, 0, RC_ERR_UNSUPPORTED, "'x'", "not a dense tensor");
-  pool_free();
+  ob_free_all();
 }
 
 /* Once ops land, a graph of real ops must load bound. Checked only for ops
@@ -1119,7 +955,7 @@ static void test_bound_load(void) {
   }
   rc_err e = {0};
   rc_model *m = NULL;
-  CHECK(save_proto(mk_chain(8, 13, "Relu"), tpath("bound.onnx")));
+  CHECK(ob_save(mk_chain(8, 13, "Relu"), tpath("bound.onnx")));
   CHECK_INT(rc_model_load(&m, tpath("bound.onnx"), NULL, &e), RC_OK);
   if (m) {
     CHECK(m->graph.nodes[0].def != NULL);
@@ -1128,7 +964,7 @@ static void test_bound_load(void) {
     fprintf(stderr, "  %s\n", e.msg);
   }
   rc_model_free(m);
-  pool_free();
+  ob_free_all();
 }
 
 /* ---- atomic writes ---- */
@@ -1217,7 +1053,7 @@ static void test_write_atomic(void) {
     CHECK_INT(count_hidden(tpath("w")), 0);
     rc_model_free(m);
   }
-  pool_free();
+  ob_free_all();
 }
 
 /* ---- TensorProto files ---- */
@@ -1226,9 +1062,9 @@ static void test_tensorproto_file(void) {
   rc_err e = {0};
   int64_t d[2] = {2, 2};
   float v[4] = {1, 2, 3, 4};
-  Onnx__TensorProto *t = mk_tensor("input_0", RC_DTYPE_FLOAT, 2, d);
+  Onnx__TensorProto *t = ob_tensor("input_0", RC_DTYPE_FLOAT, 2, d);
   t->n_float_data = 4;
-  t->float_data = pdup(v, sizeof v);
+  t->float_data = ob_dup(v, sizeof v);
   size_t n = onnx__tensor_proto__get_packed_size(t);
   uint8_t *b = malloc(n);
   onnx__tensor_proto__pack(t, b);
@@ -1245,7 +1081,7 @@ static void test_tensorproto_file(void) {
   CHECK_STR_CONTAINS(e.msg, "t_cut.pb");
   CHECK(owned == NULL);
   free(b);
-  pool_free();
+  ob_free_all();
 }
 
 /* ---- ONNX's own backend test data ---- */

@@ -1,9 +1,8 @@
 /* Pruning library: threshold and tie rules of magnitude pruning, N:M groups
  * (checked with rc__sparsity), channel removal through Conv -> BN -> Relu ->
  * Conv, a residual Add, a depthwise conv, Flatten/Reshape -> Gemm, and a
- * refused structure. Small models are built here with the protobuf-c structs
- * of ONNX's onnx.proto, written to a temp folder, pruned with
- * rc_prune_file and read back. Channel removal is checked two ways: the kept
+ * refused structure. Small models are built here with onnx_build.h,
+ * written to a temp folder, pruned with rc_prune_file and read back. Channel removal is checked two ways: the kept
  * slices are the expected ones, and the pruned model computes exactly what
  * the dense one does when the removed channels feed nothing (their weights
  * in the next layer are zero in the dense model). */
@@ -23,153 +22,10 @@
 #include "graph/prune.h"
 #include "onnx/model.h"
 #include "onnx/onnx.pb-c.h"
+#include "onnx_build.h"
 #include "test.h"
 
-/* ---------------------------------------------------------------- model builder */
-
-static void *heap[4096];
-static int n_heap;
-
-static void *hnew(size_t n) {
-  void *p = calloc(1, n ? n : 1);
-  heap[n_heap++] = p;
-  return p;
-}
-static char *hstr(const char *s) { return strcpy(hnew(strlen(s) + 1), s); }
-static void heap_free(void) {
-  while (n_heap) free(heap[--n_heap]);
-}
-
-typedef struct mb {
-  Onnx__ModelProto m;
-  Onnx__GraphProto g;
-  Onnx__OperatorSetIdProto op;
-  Onnx__OperatorSetIdProto *ops[1];
-  Onnx__NodeProto *nodes[32];
-  Onnx__TensorProto *inits[64];
-  Onnx__ValueInfoProto *ins[2], *outs[2], *vis[16];
-} mb;
-
-static mb *mb_new(void) {
-  mb *b = hnew(sizeof *b);
-  onnx__model_proto__init(&b->m);
-  onnx__graph_proto__init(&b->g);
-  onnx__operator_set_id_proto__init(&b->op);
-  b->op.domain = hstr("");
-  b->op.has_version = 1;
-  b->op.version = 13;
-  b->ops[0] = &b->op;
-  b->m.n_opset_import = 1;
-  b->m.opset_import = b->ops;
-  b->m.has_ir_version = 1;
-  b->m.ir_version = 7;
-  b->m.graph = &b->g;
-  b->g.name = hstr("test");
-  b->g.node = b->nodes;
-  b->g.initializer = b->inits;
-  b->g.input = b->ins;
-  b->g.output = b->outs;
-  b->g.value_info = b->vis;
-  return b;
-}
-
-static Onnx__ValueInfoProto *vinfo(const char *name, int rank, const int64_t *dims) {
-  Onnx__ValueInfoProto *v = hnew(sizeof *v);
-  onnx__value_info_proto__init(v);
-  v->name = hstr(name);
-  Onnx__TypeProto *tp = hnew(sizeof *tp);
-  onnx__type_proto__init(tp);
-  Onnx__TypeProto__Tensor *tt = hnew(sizeof *tt);
-  onnx__type_proto__tensor__init(tt);
-  tt->has_elem_type = 1;
-  tt->elem_type = ONNX__TENSOR_PROTO__DATA_TYPE__FLOAT;
-  Onnx__TensorShapeProto *sh = hnew(sizeof *sh);
-  onnx__tensor_shape_proto__init(sh);
-  sh->n_dim = (size_t)rank;
-  sh->dim = hnew(sizeof(void *) * (size_t)(rank + 1));
-  for (int i = 0; i < rank; i++) {
-    Onnx__TensorShapeProto__Dimension *d = hnew(sizeof *d);
-    onnx__tensor_shape_proto__dimension__init(d);
-    d->value_case = ONNX__TENSOR_SHAPE_PROTO__DIMENSION__VALUE_DIM_VALUE;
-    d->dim_value = dims[i];
-    sh->dim[i] = d;
-  }
-  tt->shape = sh;
-  tp->value_case = ONNX__TYPE_PROTO__VALUE_TENSOR_TYPE;
-  tp->tensor_type = tt;
-  v->type = tp;
-  return v;
-}
-
-static void mb_input(mb *b, const char *name, int rank, const int64_t *dims) {
-  b->ins[b->g.n_input++] = vinfo(name, rank, dims);
-}
-static void mb_output(mb *b, const char *name, int rank, const int64_t *dims) {
-  b->outs[b->g.n_output++] = vinfo(name, rank, dims);
-}
-static void mb_value_info(mb *b, const char *name, int rank, const int64_t *dims) {
-  b->vis[b->g.n_value_info++] = vinfo(name, rank, dims);
-}
-
-static void mb_init(mb *b, const char *name, int rank, const int64_t *dims, const float *data) {
-  Onnx__TensorProto *t = hnew(sizeof *t);
-  onnx__tensor_proto__init(t);
-  t->name = hstr(name);
-  t->has_data_type = 1;
-  t->data_type = ONNX__TENSOR_PROTO__DATA_TYPE__FLOAT;
-  t->n_dims = (size_t)rank;
-  t->dims = hnew(sizeof(int64_t) * (size_t)(rank + 1));
-  int64_t n = 1;
-  for (int i = 0; i < rank; i++) n *= (t->dims[i] = dims[i]);
-  t->has_raw_data = 1;
-  t->raw_data.len = (size_t)n * 4;
-  t->raw_data.data = memcpy(hnew((size_t)n * 4), data, (size_t)n * 4);
-  b->inits[b->g.n_initializer++] = t;
-}
-
-static void mb_init_i64(mb *b, const char *name, int n, const int64_t *data) {
-  Onnx__TensorProto *t = hnew(sizeof *t);
-  onnx__tensor_proto__init(t);
-  t->name = hstr(name);
-  t->has_data_type = 1;
-  t->data_type = ONNX__TENSOR_PROTO__DATA_TYPE__INT64;
-  t->n_dims = 1;
-  t->dims = hnew(sizeof(int64_t));
-  t->dims[0] = n;
-  t->has_raw_data = 1;
-  t->raw_data.len = (size_t)n * 8;
-  t->raw_data.data = memcpy(hnew((size_t)n * 8), data, (size_t)n * 8);
-  b->inits[b->g.n_initializer++] = t;
-}
-
-/* ins, outs: space-separated names ("-" for an absent optional input). */
-static Onnx__NodeProto *mb_node(mb *b, const char *op, const char *name, const char *ins, const char *outs) {
-  Onnx__NodeProto *n = hnew(sizeof *n);
-  onnx__node_proto__init(n);
-  n->op_type = hstr(op);
-  n->name = hstr(name);
-  n->input = hnew(sizeof(char *) * 8);
-  n->output = hnew(sizeof(char *) * 4);
-  n->attribute = hnew(sizeof(void *) * 8);
-  char buf[256];
-  snprintf(buf, sizeof buf, "%s", ins);
-  for (char *s = strtok(buf, " "); s; s = strtok(NULL, " ")) n->input[n->n_input++] = hstr(strcmp(s, "-") ? s : "");
-  snprintf(buf, sizeof buf, "%s", outs);
-  for (char *s = strtok(buf, " "); s; s = strtok(NULL, " ")) n->output[n->n_output++] = hstr(s);
-  b->nodes[b->g.n_node++] = n;
-  return n;
-}
-
-static void attr_int(Onnx__NodeProto *n, const char *name, int64_t v) {
-  Onnx__AttributeProto *a = hnew(sizeof *a);
-  onnx__attribute_proto__init(a);
-  a->name = hstr(name);
-  a->has_type = 1;
-  a->type = ONNX__ATTRIBUTE_PROTO__ATTRIBUTE_TYPE__INT;
-  a->has_i = 1;
-  a->i = v;
-  n->attribute[n->n_attribute++] = a;
-}
+/* ---------------------------------------------------------------- temp files */
 
 static char tmpdir[512];
 
@@ -179,16 +35,6 @@ static const char *tpath(const char *name) {
   char *p = buf[k++ & 3];
   snprintf(p, sizeof buf[0], "%s/%s", tmpdir, name);
   return p;
-}
-
-static void mb_save(mb *b, const char *path) {
-  size_t n = onnx__model_proto__get_packed_size(&b->m);
-  uint8_t *buf = malloc(n + 1);
-  onnx__model_proto__pack(&b->m, buf);
-  FILE *f = fopen(path, "wb");
-  fwrite(buf, 1, n, f);
-  fclose(f);
-  free(buf);
 }
 
 /* ---------------------------------------------------------------- helpers */
@@ -262,17 +108,17 @@ static int64_t int_attr_of(const char *path, const char *node, const char *attr)
 
 /* x (1,4) -> MatMul A (4,4) -> MatMul B (4,4) -> MatMul C (4,4) -> y */
 static void three_matmuls(const float *a, const float *b2, const float *c3) {
-  mb *b = mb_new();
+  Onnx__ModelProto *mp = ob_model(7, 13, "test");
   int64_t x[] = {1, 4}, w[] = {4, 4};
-  mb_input(b, "x", 2, x);
-  mb_output(b, "y", 2, x);
-  mb_init(b, "A", 2, w, a);
-  mb_init(b, "B", 2, w, b2);
-  mb_init(b, "C", 2, w, c3);
-  mb_node(b, "MatMul", "mA", "x A", "h1");
-  mb_node(b, "MatMul", "mB", "h1 B", "h2");
-  mb_node(b, "MatMul", "mC", "h2 C", "y");
-  mb_save(b, tpath("mm.onnx"));
+  ob_input(mp, "x", RC_DTYPE_FLOAT, 2, x);
+  ob_output(mp, "y", RC_DTYPE_FLOAT, 2, x);
+  ob_init_float(mp, "A", 2, w, a);
+  ob_init_float(mp, "B", 2, w, b2);
+  ob_init_float(mp, "C", 2, w, c3);
+  ob_node(mp, "MatMul", "mA", "x A", "h1");
+  ob_node(mp, "MatMul", "mB", "h1 B", "h2");
+  ob_node(mp, "MatMul", "mC", "h2 C", "y");
+  ob_save(mp, tpath("mm.onnx"));
 }
 
 static int64_t zeros_of(const rc_tensor *t) {
@@ -347,22 +193,22 @@ static void test_layer_scope_and_edges(void) {
 /* ---------------------------------------------------------------- N:M */
 
 static void test_n_of_m(void) {
-  mb *b = mb_new();
+  Onnx__ModelProto *mp = ob_model(7, 13, "test");
   int64_t x[] = {1, 8, 3, 3}, w1[] = {4, 8, 1, 1}, w2[] = {6, 4, 1, 1}, w3[] = {2, 6, 1, 1}, y[] = {1, 2, 3, 3};
   float d1[32], d2[24], d3[12];
   uint32_t s = 12345;
   for (int i = 0; i < 32; i++) d1[i] = (float)((s = s * 1664525u + 1013904223u) >> 8) / 16777216.0f - 0.5f;
   for (int i = 0; i < 24; i++) d2[i] = (float)(i % 5) - 2.0f;
   for (int i = 0; i < 12; i++) d3[i] = 1.0f;
-  mb_input(b, "x", 4, x);
-  mb_output(b, "y", 4, y);
-  mb_init(b, "W1", 4, w1, d1);
-  mb_init(b, "W2", 4, w2, d2);
-  mb_init(b, "W3", 4, w3, d3);
-  mb_node(b, "Conv", "c1", "x W1", "h1");
-  mb_node(b, "Conv", "c2", "h1 W2", "h2");
-  mb_node(b, "Conv", "c3", "h2 W3", "y");
-  mb_save(b, tpath("nm.onnx"));
+  ob_input(mp, "x", RC_DTYPE_FLOAT, 4, x);
+  ob_output(mp, "y", RC_DTYPE_FLOAT, 4, y);
+  ob_init_float(mp, "W1", 4, w1, d1);
+  ob_init_float(mp, "W2", 4, w2, d2);
+  ob_init_float(mp, "W3", 4, w3, d3);
+  ob_node(mp, "Conv", "c1", "x W1", "h1");
+  ob_node(mp, "Conv", "c2", "h1 W2", "h2");
+  ob_node(mp, "Conv", "c3", "h2 W3", "y");
+  ob_save(mp, tpath("nm.onnx"));
   rc_prune_opts o = {.nm_n = 2, .nm_m = 4, .include_first_last = 1};
   rc_prune_report r;
   rc_err e = {0};
@@ -404,7 +250,7 @@ static void test_n_of_m(void) {
 /* x (1,3,2,2) -> c1 (4 out) -> BN -> Relu -> c2 (2 out) -> y. Channels 1 and
  * 3 of c1 have the smallest L1 norm; c2 reads nothing from them. */
 static void build_conv_bn_relu_conv(const char *path) {
-  mb *b = mb_new();
+  Onnx__ModelProto *mp = ob_model(7, 13, "test");
   int64_t x[] = {1, 3, 2, 2}, w1[] = {4, 3, 1, 1}, c4[] = {4}, w2[] = {2, 4, 1, 1}, y[] = {1, 2, 2, 2};
   int64_t h[] = {1, 4, 2, 2};
   float d1[12], b1[4] = {0.1f, 0.2f, 0.3f, 0.4f}, sc[4] = {1.0f, 2.0f, 0.5f, 1.5f},
@@ -414,22 +260,22 @@ static void build_conv_bn_relu_conv(const char *path) {
     for (int i = 0; i < 3; i++) d1[o * 3 + i] = (o % 2 ? 0.01f : 1.0f) * (float)(i + 1) * (o == 2 ? -1.0f : 1.0f);
   for (int o = 0; o < 2; o++)
     for (int i = 0; i < 4; i++) d2[o * 4 + i] = i % 2 ? 0.0f : (float)(o + 1) * 0.5f + (float)i;
-  mb_input(b, "x", 4, x);
-  mb_output(b, "y", 4, y);
-  mb_init(b, "W1", 4, w1, d1);
-  mb_init(b, "B1", 1, c4, b1);
-  mb_init(b, "scale", 1, c4, sc);
-  mb_init(b, "bias", 1, c4, bi);
-  mb_init(b, "mean", 1, c4, mean);
-  mb_init(b, "var", 1, c4, var);
-  mb_init(b, "W2", 4, w2, d2);
-  mb_node(b, "Conv", "c1", "x W1 B1", "h1");
-  mb_node(b, "BatchNormalization", "bn", "h1 scale bias mean var", "h2");
-  mb_node(b, "Relu", "relu", "h2", "h3");
-  mb_node(b, "Conv", "c2", "h3 W2", "y");
-  mb_value_info(b, "h1", 4, h);
-  mb_value_info(b, "h3", 4, h);
-  mb_save(b, path);
+  ob_input(mp, "x", RC_DTYPE_FLOAT, 4, x);
+  ob_output(mp, "y", RC_DTYPE_FLOAT, 4, y);
+  ob_init_float(mp, "W1", 4, w1, d1);
+  ob_init_float(mp, "B1", 1, c4, b1);
+  ob_init_float(mp, "scale", 1, c4, sc);
+  ob_init_float(mp, "bias", 1, c4, bi);
+  ob_init_float(mp, "mean", 1, c4, mean);
+  ob_init_float(mp, "var", 1, c4, var);
+  ob_init_float(mp, "W2", 4, w2, d2);
+  ob_node(mp, "Conv", "c1", "x W1 B1", "h1");
+  ob_node(mp, "BatchNormalization", "bn", "h1 scale bias mean var", "h2");
+  ob_node(mp, "Relu", "relu", "h2", "h3");
+  ob_node(mp, "Conv", "c2", "h3 W2", "y");
+  ob_value_info(mp, "h1", RC_DTYPE_FLOAT, 4, h);
+  ob_value_info(mp, "h3", RC_DTYPE_FLOAT, 4, h);
+  ob_save(mp, path);
 }
 
 static const float x12[12] = {0.5f, -1.0f, 2.0f, 0.25f, 1.5f, -0.5f, 0.75f, 1.0f, -2.0f, 0.3f, 0.6f, -0.9f};
@@ -466,7 +312,7 @@ static void test_channels_conv_bn_relu_conv(void) {
  * cA and cB share channels through the Add; their joint scores make
  * channels 0 and 3 the weakest. */
 static void test_channels_residual(void) {
-  mb *b = mb_new();
+  Onnx__ModelProto *mp = ob_model(7, 13, "test");
   int64_t x[] = {1, 2, 2, 2}, wa[] = {4, 2, 1, 1}, wb[] = {4, 4, 1, 1}, wc[] = {2, 4, 1, 1}, y[] = {1, 2, 2, 2};
   float da[8] = {0.1f, 0.1f, 2.0f, 1.0f, 1.0f, 2.0f, 0.5f, 0.5f}; /* L1: .2 3 3 1 */
   float db[16], dc[8];
@@ -475,17 +321,17 @@ static void test_channels_residual(void) {
       db[o * 4 + i] = o == 0 || o == 3 ? 0.05f : i == 0 || i == 3 ? 0.0f : 0.5f * (i % 2 ? 1.0f : -1.0f);
   for (int o = 0; o < 2; o++)
     for (int i = 0; i < 4; i++) dc[o * 4 + i] = i == 0 || i == 3 ? 0.0f : (float)(o + i);
-  mb_input(b, "x", 4, x);
-  mb_output(b, "y", 4, y);
-  mb_init(b, "WA", 4, wa, da);
-  mb_init(b, "WB", 4, wb, db);
-  mb_init(b, "WC", 4, wc, dc);
-  mb_node(b, "Conv", "cA", "x WA", "a0");
-  mb_node(b, "Relu", "rA", "a0", "a");
-  mb_node(b, "Conv", "cB", "a WB", "bo");
-  mb_node(b, "Add", "add", "a bo", "s");
-  mb_node(b, "Conv", "cC", "s WC", "y");
-  mb_save(b, tpath("res.onnx"));
+  ob_input(mp, "x", RC_DTYPE_FLOAT, 4, x);
+  ob_output(mp, "y", RC_DTYPE_FLOAT, 4, y);
+  ob_init_float(mp, "WA", 4, wa, da);
+  ob_init_float(mp, "WB", 4, wb, db);
+  ob_init_float(mp, "WC", 4, wc, dc);
+  ob_node(mp, "Conv", "cA", "x WA", "a0");
+  ob_node(mp, "Relu", "rA", "a0", "a");
+  ob_node(mp, "Conv", "cB", "a WB", "bo");
+  ob_node(mp, "Add", "add", "a bo", "s");
+  ob_node(mp, "Conv", "cC", "s WC", "y");
+  ob_save(mp, tpath("res.onnx"));
   rc_prune_opts o = {.channels = 0.5};
   rc_prune_report r;
   rc_err e = {0};
@@ -508,33 +354,25 @@ static void test_channels_residual(void) {
 
 /* x (1,2,3,3) -> c1 (4) -> depthwise (group 4, 3x3, pad 1) -> c3 (2) -> y */
 static void test_channels_depthwise(void) {
-  mb *b = mb_new();
+  Onnx__ModelProto *mp = ob_model(7, 13, "test");
   int64_t x[] = {1, 2, 3, 3}, w1[] = {4, 2, 1, 1}, wd[] = {4, 1, 3, 3}, c4[] = {4}, w3[] = {2, 4, 1, 1},
           y[] = {1, 2, 3, 3};
   float d1[8] = {1, 1, 0.01f, 0.01f, 2, -1, 0.02f, 0.0f}, dd[36], bd[4] = {0.1f, 0.2f, 0.3f, 0.4f}, d3[8];
   for (int i = 0; i < 36; i++) dd[i] = (float)(i % 7) * 0.1f - 0.2f;
   for (int o = 0; o < 2; o++)
     for (int i = 0; i < 4; i++) d3[o * 4 + i] = i % 2 ? 0.0f : 1.0f + (float)o;
-  mb_input(b, "x", 4, x);
-  mb_output(b, "y", 4, y);
-  mb_init(b, "W1", 4, w1, d1);
-  mb_init(b, "WD", 4, wd, dd);
-  mb_init(b, "BD", 1, c4, bd);
-  mb_init(b, "W3", 4, w3, d3);
-  mb_node(b, "Conv", "c1", "x W1", "h1");
-  Onnx__NodeProto *dw = mb_node(b, "Conv", "dw", "h1 WD BD", "h2");
-  attr_int(dw, "group", 4);
-  Onnx__AttributeProto *pads = hnew(sizeof *pads);
-  onnx__attribute_proto__init(pads);
-  pads->name = hstr("pads");
-  pads->has_type = 1;
-  pads->type = ONNX__ATTRIBUTE_PROTO__ATTRIBUTE_TYPE__INTS;
-  pads->n_ints = 4;
-  pads->ints = hnew(4 * sizeof(int64_t));
-  for (int i = 0; i < 4; i++) pads->ints[i] = 1;
-  dw->attribute[dw->n_attribute++] = pads;
-  mb_node(b, "Conv", "c3", "h2 W3", "y");
-  mb_save(b, tpath("dw.onnx"));
+  ob_input(mp, "x", RC_DTYPE_FLOAT, 4, x);
+  ob_output(mp, "y", RC_DTYPE_FLOAT, 4, y);
+  ob_init_float(mp, "W1", 4, w1, d1);
+  ob_init_float(mp, "WD", 4, wd, dd);
+  ob_init_float(mp, "BD", 1, c4, bd);
+  ob_init_float(mp, "W3", 4, w3, d3);
+  ob_node(mp, "Conv", "c1", "x W1", "h1");
+  Onnx__NodeProto *dw = ob_node(mp, "Conv", "dw", "h1 WD BD", "h2");
+  ob_attr_int(dw, "group", 4);
+  ob_attr_ints(dw, "pads", 4, (const int64_t[]){1, 1, 1, 1});
+  ob_node(mp, "Conv", "c3", "h2 W3", "y");
+  ob_save(mp, tpath("dw.onnx"));
   rc_prune_opts o = {.channels = 0.5};
   rc_prune_report r;
   rc_err e = {0};
@@ -555,28 +393,28 @@ static void test_channels_depthwise(void) {
 
 /* x (1,1,2,2) -> c1 (4 out, 2x2 spatial) -> Flatten | Reshape [1,16] -> Gemm (3). */
 static void flatten_case(int use_reshape) {
-  mb *b = mb_new();
+  Onnx__ModelProto *mp = ob_model(7, 13, "test");
   int64_t x[] = {1, 1, 2, 2}, w1[] = {4, 1, 1, 1}, wg[] = {3, 16}, bg[] = {3}, y[] = {1, 3};
   float d1[4] = {1.0f, 0.01f, -2.0f, 0.02f}, dg[48], dbg[3] = {0.1f, 0.2f, 0.3f};
   for (int o = 0; o < 3; o++)
     for (int f = 0; f < 16; f++) dg[o * 16 + f] = (f / 4) % 2 ? 0.0f : (float)(o + 1) + (float)f * 0.1f;
-  mb_input(b, "x", 4, x);
-  mb_output(b, "y", 2, y);
-  mb_init(b, "W1", 4, w1, d1);
-  mb_init(b, "WG", 2, wg, dg);
-  mb_init(b, "BG", 1, bg, dbg);
-  mb_node(b, "Conv", "c1", "x W1", "h1");
+  ob_input(mp, "x", RC_DTYPE_FLOAT, 4, x);
+  ob_output(mp, "y", RC_DTYPE_FLOAT, 2, y);
+  ob_init_float(mp, "W1", 4, w1, d1);
+  ob_init_float(mp, "WG", 2, wg, dg);
+  ob_init_float(mp, "BG", 1, bg, dbg);
+  ob_node(mp, "Conv", "c1", "x W1", "h1");
   if (use_reshape) {
     int64_t target[] = {1, 16};
-    mb_init_i64(b, "target", 2, target);
-    mb_node(b, "Reshape", "flat", "h1 target", "f");
+    ob_init(mp, ob_tensor_raw("target", RC_DTYPE_INT64, 1, (const int64_t[]){2}, target, sizeof target));
+    ob_node(mp, "Reshape", "flat", "h1 target", "f");
   } else {
-    mb_node(b, "Flatten", "flat", "h1", "f");
+    ob_node(mp, "Flatten", "flat", "h1", "f");
   }
-  attr_int(mb_node(b, "Gemm", "fc", "f WG BG", "y"), "transB", 1);
+  ob_attr_int(ob_node(mp, "Gemm", "fc", "f WG BG", "y"), "transB", 1);
   const char *in = use_reshape ? tpath("rs.onnx") : tpath("fl.onnx");
   const char *out = use_reshape ? tpath("rs_out.onnx") : tpath("fl_out.onnx");
-  mb_save(b, in);
+  ob_save(mp, in);
   rc_prune_opts o = {.channels = 0.5};
   rc_prune_report r;
   rc_err e = {0};
@@ -600,17 +438,17 @@ static void test_channels_reshape_gemm(void) { flatten_case(1); }
 /* A Softmax over channels cannot be narrowed: c1 keeps its channels, says
  * why, and the written model is still valid. */
 static void test_channels_refused(void) {
-  mb *b = mb_new();
+  Onnx__ModelProto *mp = ob_model(7, 13, "test");
   int64_t x[] = {1, 2, 1, 1}, w1[] = {4, 2, 1, 1}, w2[] = {2, 4, 1, 1}, y[] = {1, 2, 1, 1};
   float d1[8] = {1, 2, 3, 4, 5, 6, 7, 8}, d2[8] = {1, 1, 1, 1, 2, 2, 2, 2};
-  mb_input(b, "x", 4, x);
-  mb_output(b, "y", 4, y);
-  mb_init(b, "W1", 4, w1, d1);
-  mb_init(b, "W2", 4, w2, d2);
-  mb_node(b, "Conv", "c1", "x W1", "h1");
-  attr_int(mb_node(b, "Softmax", "sm", "h1", "h2"), "axis", 1);
-  mb_node(b, "Conv", "c2", "h2 W2", "y");
-  mb_save(b, tpath("sm.onnx"));
+  ob_input(mp, "x", RC_DTYPE_FLOAT, 4, x);
+  ob_output(mp, "y", RC_DTYPE_FLOAT, 4, y);
+  ob_init_float(mp, "W1", 4, w1, d1);
+  ob_init_float(mp, "W2", 4, w2, d2);
+  ob_node(mp, "Conv", "c1", "x W1", "h1");
+  ob_attr_int(ob_node(mp, "Softmax", "sm", "h1", "h2"), "axis", 1);
+  ob_node(mp, "Conv", "c2", "h2 W2", "y");
+  ob_save(mp, tpath("sm.onnx"));
   rc_prune_opts o = {.channels = 0.5};
   rc_prune_report r;
   rc_err e = {0};
@@ -650,7 +488,7 @@ int main(void) {
   RUN(test_channels_reshape_gemm);
   RUN(test_channels_refused);
   RUN(test_bad_options);
-  heap_free();
+  ob_free_all();
   char cmd[700];
   snprintf(cmd, sizeof cmd, "rm -rf '%s'", tmpdir);
   if (system(cmd) != 0) fprintf(stderr, "could not remove %s\n", tmpdir);

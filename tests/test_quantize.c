@@ -25,6 +25,7 @@
 #include "graph/quantize.h"
 #include "onnx/onnx.pb-c.h"
 #include "onnx/model.h"
+#include "onnx_build.h"
 #include "recoup/data.h"
 #include "test.h"
 
@@ -36,149 +37,6 @@ static const char *tpath(const char *name) {
   k = (k + 1) % 4;
   snprintf(buf[k], sizeof buf[k], "%s/%s", tmp_dir, name);
   return buf[k];
-}
-
-/* ---- building models in memory: a pool freed after each case ---- */
-
-static void *pool[20000];
-static int pool_n;
-
-static void *pnew(size_t n) {
-  void *p = calloc(1, n ? n : 1);
-  pool[pool_n++] = p;
-  return p;
-}
-static char *pstr(const char *s) { return strcpy(pnew(strlen(s) + 1), s); }
-static void pool_free(void) {
-  while (pool_n) free(pool[--pool_n]);
-}
-
-static Onnx__TensorProto *mk_float(const char *name, int rank, const int64_t *dims, const float *data) {
-  Onnx__TensorProto *t = pnew(sizeof *t);
-  onnx__tensor_proto__init(t);
-  t->name = pstr(name);
-  t->has_data_type = 1;
-  t->data_type = RC_DTYPE_FLOAT;
-  t->n_dims = (size_t)rank;
-  t->dims = pnew(sizeof(int64_t) * (size_t)(rank + 1));
-  int64_t n = 1;
-  for (int i = 0; i < rank; i++) n *= (t->dims[i] = dims[i]);
-  t->has_raw_data = 1;
-  t->raw_data.len = (size_t)n * 4;
-  t->raw_data.data = memcpy(pnew((size_t)n * 4), data, (size_t)n * 4);
-  return t;
-}
-
-static Onnx__ValueInfoProto *mk_vi(const char *name, int rank, const int64_t *dims) {
-  Onnx__ValueInfoProto *v = pnew(sizeof *v);
-  onnx__value_info_proto__init(v);
-  v->name = pstr(name);
-  Onnx__TypeProto *tp = pnew(sizeof *tp);
-  onnx__type_proto__init(tp);
-  Onnx__TypeProto__Tensor *tt = pnew(sizeof *tt);
-  onnx__type_proto__tensor__init(tt);
-  tt->has_elem_type = 1;
-  tt->elem_type = RC_DTYPE_FLOAT;
-  Onnx__TensorShapeProto *sh = pnew(sizeof *sh);
-  onnx__tensor_shape_proto__init(sh);
-  sh->n_dim = (size_t)rank;
-  sh->dim = pnew(sizeof(void *) * (size_t)(rank + 1));
-  for (int i = 0; i < rank; i++) {
-    Onnx__TensorShapeProto__Dimension *d = pnew(sizeof *d);
-    onnx__tensor_shape_proto__dimension__init(d);
-    if (dims[i] >= 0) {
-      d->value_case = ONNX__TENSOR_SHAPE_PROTO__DIMENSION__VALUE_DIM_VALUE;
-      d->dim_value = dims[i];
-    } else {
-      d->value_case = ONNX__TENSOR_SHAPE_PROTO__DIMENSION__VALUE_DIM_PARAM;
-      d->dim_param = pstr("batch");
-    }
-    sh->dim[i] = d;
-  }
-  tt->shape = sh;
-  tp->value_case = ONNX__TYPE_PROTO__VALUE_TENSOR_TYPE;
-  tp->tensor_type = tt;
-  v->type = tp;
-  return v;
-}
-
-typedef struct builder {
-  Onnx__ModelProto m;
-  Onnx__GraphProto g;
-  Onnx__OperatorSetIdProto op;
-  Onnx__OperatorSetIdProto *ops[1];
-} builder;
-
-static Onnx__NodeProto *add_node(builder *b, const char *op, const char *in0, const char *in1, const char *in2,
-                                 const char *in3, const char *in4, const char *out) {
-  Onnx__NodeProto *n = pnew(sizeof *n);
-  onnx__node_proto__init(n);
-  n->op_type = pstr(op);
-  n->input = pnew(sizeof(char *) * 5);
-  const char *ins[5] = {in0, in1, in2, in3, in4};
-  for (int i = 0; i < 5 && ins[i]; i++) n->input[n->n_input++] = pstr(ins[i]);
-  n->output = pnew(sizeof(char *));
-  n->output[n->n_output++] = pstr(out);
-  n->attribute = pnew(sizeof(void *) * 4);
-  b->g.node[b->g.n_node++] = n;
-  return n;
-}
-
-static void add_int(Onnx__NodeProto *n, const char *name, int64_t v) {
-  Onnx__AttributeProto *a = pnew(sizeof *a);
-  onnx__attribute_proto__init(a);
-  a->name = pstr(name);
-  a->has_type = 1;
-  a->type = ONNX__ATTRIBUTE_PROTO__ATTRIBUTE_TYPE__INT;
-  a->has_i = 1;
-  a->i = v;
-  n->attribute[n->n_attribute++] = a;
-}
-
-static void add_ints(Onnx__NodeProto *n, const char *name, int cnt, const int64_t *v) {
-  Onnx__AttributeProto *a = pnew(sizeof *a);
-  onnx__attribute_proto__init(a);
-  a->name = pstr(name);
-  a->has_type = 1;
-  a->type = ONNX__ATTRIBUTE_PROTO__ATTRIBUTE_TYPE__INTS;
-  a->n_ints = (size_t)cnt;
-  a->ints = memcpy(pnew(sizeof(int64_t) * (size_t)cnt), v, sizeof(int64_t) * (size_t)cnt);
-  n->attribute[n->n_attribute++] = a;
-}
-
-static builder *mk_builder(int64_t ir, int64_t opset) {
-  builder *b = pnew(sizeof *b);
-  onnx__model_proto__init(&b->m);
-  onnx__graph_proto__init(&b->g);
-  onnx__operator_set_id_proto__init(&b->op);
-  b->op.domain = pstr("");
-  b->op.has_version = 1;
-  b->op.version = opset;
-  b->ops[0] = &b->op;
-  b->m.has_ir_version = 1;
-  b->m.ir_version = ir;
-  b->m.n_opset_import = 1;
-  b->m.opset_import = b->ops;
-  b->m.graph = &b->g;
-  b->g.name = pstr("hand_made");
-  b->g.node = pnew(sizeof(void *) * 32);
-  b->g.initializer = pnew(sizeof(void *) * 32);
-  b->g.input = pnew(sizeof(void *) * 4);
-  b->g.output = pnew(sizeof(void *) * 4);
-  return b;
-}
-
-static void save_builder(const builder *b, const char *path) {
-  size_t n = onnx__model_proto__get_packed_size(&b->m);
-  uint8_t *buf = malloc(n + 1);
-  onnx__model_proto__pack(&b->m, buf);
-  FILE *f = fopen(path, "wb");
-  CHECK(f != NULL);
-  if (f) {
-    CHECK(fwrite(buf, 1, n, f) == n);
-    fclose(f);
-  }
-  free(buf);
 }
 
 /* ---- the hand-made network ----
@@ -220,36 +78,34 @@ static void net_init(net *n, unsigned seed) {
 
 /* with_bn = 0 writes the conv with the given (already folded) weights. */
 static void write_net(const net *n, int with_bn, int64_t ir, int64_t opset, const char *path) {
-  builder *b = mk_builder(ir, opset);
+  Onnx__ModelProto *mp = ob_model(ir, opset, "hand_made");
   const int64_t xd[4] = {-1, C_IN, HW, HW}, yd[2] = {-1, OUTS};
   const int64_t wcd[4] = {C_OUT, C_IN, 3, 3}, cd[1] = {C_OUT}, w1d[2] = {H1, K1}, h1d[1] = {H1}, w2d[2] = {H1, OUTS};
-  b->g.input[b->g.n_input++] = mk_vi("x", 4, xd);
-  b->g.output[b->g.n_output++] = mk_vi("y", 2, yd);
-  Onnx__TensorProto **init = b->g.initializer;
-  size_t *ni = &b->g.n_initializer;
-  init[(*ni)++] = mk_float("conv.w", 4, wcd, n->wc);
-  init[(*ni)++] = mk_float("conv.b", 1, cd, n->bc);
-  init[(*ni)++] = mk_float("fc1.w", 2, w1d, n->w1);
-  init[(*ni)++] = mk_float("fc1.b", 1, h1d, n->b1);
-  init[(*ni)++] = mk_float("fc2.w", 2, w2d, n->w2);
-  Onnx__NodeProto *conv = add_node(b, "Conv", "x", "conv.w", "conv.b", NULL, NULL, with_bn ? "conv_out" : "bn_out");
+  ob_input(mp, "x", RC_DTYPE_FLOAT, 4, xd);
+  ob_output(mp, "y", RC_DTYPE_FLOAT, 2, yd);
+  ob_init_float(mp, "conv.w", 4, wcd, n->wc);
+  ob_init_float(mp, "conv.b", 1, cd, n->bc);
+  ob_init_float(mp, "fc1.w", 2, w1d, n->w1);
+  ob_init_float(mp, "fc1.b", 1, h1d, n->b1);
+  ob_init_float(mp, "fc2.w", 2, w2d, n->w2);
+  Onnx__NodeProto *conv = ob_node(mp, "Conv", NULL, "x conv.w conv.b", with_bn ? "conv_out" : "bn_out");
   const int64_t pads[4] = {1, 1, 1, 1}, ks[2] = {3, 3};
-  add_ints(conv, "pads", 4, pads);
-  add_ints(conv, "kernel_shape", 2, ks);
+  ob_attr_ints(conv, "pads", 4, pads);
+  ob_attr_ints(conv, "kernel_shape", 2, ks);
   if (with_bn) {
-    init[(*ni)++] = mk_float("bn.gamma", 1, cd, n->gamma);
-    init[(*ni)++] = mk_float("bn.beta", 1, cd, n->beta);
-    init[(*ni)++] = mk_float("bn.mean", 1, cd, n->mean);
-    init[(*ni)++] = mk_float("bn.var", 1, cd, n->var);
-    add_node(b, "BatchNormalization", "conv_out", "bn.gamma", "bn.beta", "bn.mean", "bn.var", "bn_out");
+    ob_init_float(mp, "bn.gamma", 1, cd, n->gamma);
+    ob_init_float(mp, "bn.beta", 1, cd, n->beta);
+    ob_init_float(mp, "bn.mean", 1, cd, n->mean);
+    ob_init_float(mp, "bn.var", 1, cd, n->var);
+    ob_node(mp, "BatchNormalization", NULL, "conv_out bn.gamma bn.beta bn.mean bn.var", "bn_out");
   }
-  add_node(b, "Relu", "bn_out", NULL, NULL, NULL, NULL, "relu1");
-  add_int(add_node(b, "Flatten", "relu1", NULL, NULL, NULL, NULL, "flat"), "axis", 1);
-  add_int(add_node(b, "Gemm", "flat", "fc1.w", "fc1.b", NULL, NULL, "fc1_out"), "transB", 1);
-  add_node(b, "Relu", "fc1_out", NULL, NULL, NULL, NULL, "relu2");
-  add_node(b, "MatMul", "relu2", "fc2.w", NULL, NULL, NULL, "y");
-  save_builder(b, path);
-  pool_free();
+  ob_node(mp, "Relu", NULL, "bn_out", "relu1");
+  ob_attr_int(ob_node(mp, "Flatten", NULL, "relu1", "flat"), "axis", 1);
+  ob_attr_int(ob_node(mp, "Gemm", NULL, "flat fc1.w fc1.b", "fc1_out"), "transB", 1);
+  ob_node(mp, "Relu", NULL, "fc1_out", "relu2");
+  ob_node(mp, "MatMul", NULL, "relu2 fc2.w", "y");
+  CHECK(ob_save(mp, path));
+  ob_free_all();
 }
 
 #define N_SAMPLES 24
