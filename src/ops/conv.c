@@ -202,9 +202,8 @@ static double tap_walk(tap_mode mode, float *pos, float *img, const patch *g, in
   return dot;
 }
 
-/* col (channels*K, P) <- unfolded img (channels, img...). Runs on the calling
- * thread: it sits between GEMMs that OpenBLAS threads, and a thread team
- * spinning here would compete with them for the cores. */
+/* col (channels*K, P) <- unfolded img (channels, img...). No threads of its
+ * own: callers already run one sample per thread. */
 static void unfold(float *col, const float *img, const patch *g, int64_t channels) {
   const int64_t K = prod3(g->k), P = prod3(g->pos), plane = prod3(g->img);
   for (int64_t r = 0; r < channels * K; r++)
@@ -486,8 +485,7 @@ static void fill_bias(float *y, const float *b, int64_t channels, int64_t len) {
   }
 }
 
-/* db (M) += sum of dy (N, M, len) over batch and space. On the calling
- * thread, like unfold: GEMMs follow. */
+/* db (M) += sum of dy (N, M, len) over batch and space, in double. */
 static void bias_grad(float *db, const float *dy, int64_t N, int64_t M, int64_t len) {
   for (int64_t m = 0; m < M; m++) {
     double acc = 0;

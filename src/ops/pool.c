@@ -153,14 +153,9 @@ static void geometry_of(const rc_kernel *k, pool_geom *g) {
 /* Window of output cell o along axis j: kernel taps [*lo, *hi) land inside
  * the input; *start is the input cell of tap 0. */
 static void taps(const pool_geom *g, int j, int64_t o, int64_t *start, int64_t *lo, int64_t *hi) {
-  int64_t st = o * g->s[j] - g->pb[j], d = g->d[j], l, h;
-  if (d == 1) { /* the common case, without the divisions that dominated pooling */
-    l = st >= 0 ? 0 : -st;
-    h = g->in[j] - st <= 0 ? 0 : g->in[j] - st;
-  } else {
-    l = st >= 0 ? 0 : (-st + d - 1) / d;
-    h = g->in[j] - st <= 0 ? 0 : (g->in[j] - st - 1) / d + 1;
-  }
+  int64_t st = o * g->s[j] - g->pb[j], d = g->d[j];
+  int64_t l = st >= 0 ? 0 : (-st + d - 1) / d;
+  int64_t h = g->in[j] - st <= 0 ? 0 : (g->in[j] - st - 1) / d + 1;
   if (h > g->k[j]) h = g->k[j];
   if (l > h) l = h;
   *start = st;
@@ -193,9 +188,6 @@ static int64_t spec_index(const pool_geom *g, int storage_order, int64_t plane, 
   return plane * g->in_sp + within;
 }
 
-/* x (N,C,D...) -> y (N,C,O...), optional indices (N,C,O...) int64;
- * argmax per output cell (plane-local, -1 if the window saw no input) saved
- * for backward. The first maximum in scan order wins; NaN propagates. */
 /* Maximum of a window and whether it saw a NaN. `v > best ? v : best` is
  * exactly what the maxss instruction computes, so the compiler needs no
  * branch: with branches, the comparisons' random outcomes (about half
@@ -253,6 +245,9 @@ static void max_forward_plain(const pool_geom *g, const float *x, float *y, int3
   }
 }
 
+/* x (N,C,D...) -> y (N,C,O...), optional indices (N,C,O...) int64;
+ * argmax per output cell (plane-local, -1 if the window saw no input) saved
+ * for backward. The first maximum in scan order wins; NaN propagates. */
 static rc_status max_forward(const rc_kernel *k, rc_err *e) {
   pool_geom g;
   geometry_of(k, &g);
