@@ -760,6 +760,12 @@ static rc_status train_step(loop_ctx *lc, const loop_state *ls, step_buffers *sb
       if (!st->projectors_started && rc_params_steps(st->ps) == 0) {
         int fitted;
         RC_TRY(rc__features_fit_projectors(st->feat, st->teacher_step, st->train_plan, st->ps, &fitted, e));
+        if (fitted) {
+          rc_distill_progress note = {0};
+          note.event = RC_DISTILL_NOTE;
+          note.note = "projectors started from a least-squares fit on the first batch";
+          notify(st->c, &note);
+        }
       }
       st->projectors_started = 1;
     }
