@@ -22,10 +22,8 @@ onnx package, and what `recoup prune` does with a quantized model.
 Usage: quantize_grids_test.py RECOUP_BINARY WORK_DIR
 """
 
-import json
 import os
 import re
-import shutil
 import subprocess
 import sys
 
@@ -33,32 +31,21 @@ import numpy as np
 import onnx
 from onnx import TensorProto, helper, numpy_helper
 
+from e2e import Run, run_ort
+
 RECOUP, WORK = sys.argv[1:3]
-HERE = os.path.dirname(os.path.abspath(__file__))
-FAILED = []
-PASSED = [0]
+run = Run(RECOUP)
+check = run.check
 
 # The scheme quantize.c documents (grid_names): base, a part, an optional set suffix.
 SCHEME = re.compile(r"^(?P<base>.+)\.(?P<part>grid|grid_step|grid_zero|on_grid|pre_grid|to_grid|from_grid|folded)"
                     r"(?P<k>_\d+)?$")
-# Suffixes a practitioner would take for another program's output (issue 16).
-FOREIGN = (lambda n: n.endswith("_quantized") or n.endswith("_scale") or n.endswith("_zero_point")
-           or "_dequantized" in n)
 
 
-def check(name, ok, detail=""):
-    print(("ok   " if ok else "FAIL ") + name + (" " + detail if detail else ""), flush=True)
-    if ok:
-        PASSED[0] += 1
-    else:
-        FAILED.append(name)
-
-
-def recoup(args, expect=0):
-    r = subprocess.run([RECOUP] + args, capture_output=True, text=True, timeout=300)
-    if r.returncode != expect:
-        raise SystemExit(f"recoup {' '.join(args)}: exit {r.returncode}, expected {expect}:\n{r.stderr}")
-    return r
+def foreign(name):
+    """Suffixes a practitioner would take for another program's output (issue 16)."""
+    return (name.endswith("_quantized") or name.endswith("_scale") or name.endswith("_zero_point")
+            or "_dequantized" in name)
 
 
 def save(graph, path, opset=13):
@@ -82,18 +69,14 @@ def all_names(m):
 def check_written_names(label, before, after_path):
     """Naming rules on the names `after` has and `before` had not."""
     after = onnx.load(after_path)
-    try:
-        onnx.checker.check_model(after, full_check=True)
-        check(f"{label}: onnx.checker accepts the file", True)
-    except Exception as exc:  # noqa: BLE001 - any checker error fails the test
-        check(f"{label}: onnx.checker accepts the file", False, str(exc))
+    run.checker_accepts(label, after)
     t0, n0 = all_names(before)
     t1, n1 = all_names(after)
     new = sorted((t1 - t0) | (set(n1) - set(n0)))
     check(f"{label}: quantize added names", len(new) > 0, str(len(new)))
-    foreign = [n for n in new if FOREIGN(n)]
-    check(f"{label}: no new name ends in _quantized/_scale/_zero_point or contains _dequantized", not foreign,
-          str(foreign))
+    bad = [n for n in new if foreign(n)]
+    check(f"{label}: no new name ends in _quantized/_scale/_zero_point or contains _dequantized", not bad,
+          str(bad))
     off_scheme = [n for n in new if not SCHEME.match(n)]
     check(f"{label}: every new name follows T.grid / T.grid_step / T.grid_zero / T.on_grid / T.pre_grid / "
           f"T.to_grid / T.from_grid", not off_scheme, str(off_scheme))
@@ -160,7 +143,7 @@ def names():
     before = conv_bn_model(src)
     for label, extra in (("conv+bn w8a8", []), ("conv+bn weights only", ["--activation-bits", "none"])):
         out = os.path.join(WORK, f"conv_bn_{len(extra)}.onnx")
-        recoup(["quantize", src, "--data", x, "--out", out] + extra)
+        run(["quantize", src, "--data", x, "--out", out] + extra)
         after, new, _ = check_written_names(label, before, out)
         want = {"conv.w.grid", "conv.w.grid_step", "conv.w.on_grid", "conv.w.from_grid", "fc.w.grid"}
         want |= {"conv.w.bias.grid", "fc.b.grid", "x.grid", "x.to_grid", "y.pre_grid"} if not extra \
@@ -172,7 +155,7 @@ def names():
     src = os.path.join(WORK, "taken.onnx")
     before = taken_names_model(src)
     out = os.path.join(WORK, "taken_q.onnx")
-    recoup(["quantize", src, "--data", pts, "--out", out])
+    run(["quantize", src, "--data", pts, "--out", out])
     after, new, sets = check_written_names("names already taken", before, out)
     check("names already taken: W's set moved to suffix _2 (W.grid and W.from_grid_1 are taken)",
           sets.get("W") == {"_2"} and "W.grid_2" in new and "W.from_grid_2" in new, str(sets.get("W")))
@@ -191,18 +174,6 @@ def names():
     check("names already taken: the output keeps its name y",
           [o.name for o in g.output] == ["y"], str([o.name for o in g.output]))
     return out, pts
-
-
-def run_ort(model, inp, outdir):
-    node = os.environ.get("RECOUP_NODE") or shutil.which("node")
-    if not node or not os.path.isdir(os.path.join(HERE, "ort", "node_modules", "onnxruntime-web")):
-        raise SystemExit("FAIL: node or onnxruntime-web (tests/ort) is missing: run scripts/setup.sh")
-    os.makedirs(outdir, exist_ok=True)
-    p = subprocess.run([node, os.path.join(HERE, "ort", "run.mjs"), model, outdir, inp, "--opt", "disabled"],
-                       capture_output=True, text=True)
-    if p.returncode != 0:
-        raise SystemExit(f"FAIL: onnxruntime-web on {model}: {p.stderr.strip()}")
-    return np.load(os.path.join(outdir, "0.npy"))
 
 
 def qdq(x, scale, zero):
@@ -251,8 +222,7 @@ def margin():
     errs = {}
     for label, extra in (("default margin", []), ("--output-margin 0", ["--output-margin", "0"])):
         out = os.path.join(WORK, f"tight_{len(extra)}.onnx")
-        rep = json.loads(recoup(["quantize", src, "--data", calib, "--out", out, "--calibration", "minmax",
-                                 "--json"] + extra).stdout)
+        rep = run.json(["quantize", src, "--data", calib, "--out", out, "--calibration", "minmax", "--json"] + extra)
         m = onnx.load(out)
         (sx, zx), (sy, zy) = pair_grid(m, "x"), pair_grid(m, "y")
         want_margin = 0.1 if not extra else 0.0
@@ -277,7 +247,7 @@ def margin():
         check(f"{label}: onnxruntime-web equals the operator specification's QDQ in NumPy within one output step",
               d <= sy * 1.001, f"max |diff| {d:.3g}, step {sy:.3g}")
         mine = os.path.join(WORK, f"tight_mine_{len(extra)}.npy")
-        recoup(["eval", out, "--data", probe_path, "--out", mine])
+        run(["eval", out, "--data", probe_path, "--out", mine])
         d = float(np.abs(np.load(mine) - ort).max())
         check(f"{label}: recoup eval equals onnxruntime-web within one output step", d <= sy * 1.001,
               f"max |diff| {d:.3g}")
@@ -312,8 +282,7 @@ def main():
     quantized, _ = names()
     prune_refusal(quantized)
     margin()
-    print(f"{PASSED[0]} passed, {len(FAILED)} failed")
-    sys.exit(1 if FAILED else 0)
+    run.finish()
 
 
 if __name__ == "__main__":
