@@ -72,6 +72,10 @@ def check_written_names(label, before, after_path):
     run.checker_accepts(label, after)
     t0, n0 = all_names(before)
     t1, n1 = all_names(after)
+    # The protobuf reader hands back bytes for a string that is not valid UTF-8.
+    raw = [n for n in t1 | set(n1) if not isinstance(n, str)]
+    check(f"{label}: every name is valid UTF-8", not raw, str(raw[:3]))
+    t1, n1 = {n for n in t1 if isinstance(n, str)}, [n for n in n1 if isinstance(n, str)]
     new = sorted((t1 - t0) | (set(n1) - set(n0)))
     check(f"{label}: quantize added names", len(new) > 0, str(len(new)))
     bad = [n for n in new if foreign(n)]
@@ -173,7 +177,27 @@ def names():
           ops.get("h.to_grid") == "Mul" and ops.get("W.from_grid_1") == "Add", str(ops))
     check("names already taken: the output keeps its name y",
           [o.name for o in g.output] == ["y"], str([o.name for o in g.output]))
+    long_names(pts)
     return out, pts
+
+
+def long_names(pts):
+    """A 601-byte weight name, "a" then two-byte characters: derived names keep at most 400 bytes of
+    it, cut at a character boundary (399 here), so the file still holds valid UTF-8 (protobuf strings
+    must)."""
+    wname = "a" + "\u00e9" * 300
+    g = helper.make_graph([helper.make_node("MatMul", ["x", wname], ["y"], "mm")], "long",
+                          [helper.make_tensor_value_info("x", TensorProto.FLOAT, ["N", 2])],
+                          [helper.make_tensor_value_info("y", TensorProto.FLOAT, ["N", 2])],
+                          [numpy_helper.from_array(np.eye(2, dtype=np.float32), wname)])
+    src = os.path.join(WORK, "long.onnx")
+    before = save(g, src)
+    out = os.path.join(WORK, "long_q.onnx")
+    run(["quantize", src, "--data", pts, "--out", out])
+    _, new, _ = check_written_names("601-byte weight name", before, out)
+    grid = [n for n in new if n.endswith(".grid") and n.startswith("a\u00e9")]
+    check("601-byte weight name: its grid is named after its first 399 bytes (200 characters)",
+          grid == ["a" + "\u00e9" * 199 + ".grid"], str([len(n.encode()) for n in grid]))
 
 
 def qdq(x, scale, zero):
