@@ -213,15 +213,22 @@ static const rc_node *dq_of(const rc_graph *g, const rc_node *n, int slot, const
   return dq;
 }
 
+/* The hand-made net (with BN, opset 13) in `file`, its samples and a
+ * min/max calibration config. */
+static void minmax_setup(net *n, unsigned net_seed, const char *file, float *x, unsigned x_seed,
+                         rc_quant_config *cfg) {
+  net_init(n, net_seed);
+  write_net(n, 1, 8, 13, tpath(file));
+  make_inputs(x, x_seed);
+  rc_quant_config_defaults(cfg);
+  cfg->calib = RC_CALIB_MINMAX;
+}
+
 static void test_weight_and_bias_grids(void) {
   net n;
-  net_init(&n, 11);
-  write_net(&n, 1, 8, 13, tpath("net.onnx"));
   static float x[N_SAMPLES * C_IN * HW * HW];
-  make_inputs(x, 5);
   rc_quant_config cfg;
-  rc_quant_config_defaults(&cfg);
-  cfg.calib = RC_CALIB_MINMAX;
+  minmax_setup(&n, 11, "net.onnx", x, 5, &cfg);
   cfg.batch = 10; /* 24 samples: a short last batch is calibrated through its own plan */
   rc_err e = {0};
   quantized q;
@@ -420,14 +427,10 @@ static void test_weight_only_and_percentile(void) {
  * five) by 1 + margin about zero and leaves every inner grid as calibrated. */
 static void test_output_margin(void) {
   net n;
-  net_init(&n, 29);
-  write_net(&n, 1, 8, 13, tpath("netm.onnx"));
   static float x[N_SAMPLES * C_IN * HW * HW];
-  make_inputs(x, 31);
   rc_quant_config cfg;
-  rc_quant_config_defaults(&cfg);
+  minmax_setup(&n, 29, "netm.onnx", x, 31, &cfg);
   CHECK_NEAR(cfg.output_margin, 0.1, 0, 0);
-  cfg.calib = RC_CALIB_MINMAX;
   rc_err e = {0};
   quantized wide, tight;
   CHECK(quantize_file(tpath("netm.onnx"), tpath("qm_wide.onnx"), &cfg, x, &wide, &e));
