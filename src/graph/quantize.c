@@ -7,7 +7,9 @@
  *   bits (-128 stays unused so the grid is symmetric and negation never
  *   overflows) or [-7, 7] for 4 bits;
  * - activations: asymmetric per-tensor uint8 whose range always includes 0,
- *   so zero (padding, ReLU's floor) is represented exactly;
+ *   so zero (padding, ReLU's floor) is represented exactly; a graph output's
+ *   range is stretched by the output margin (our choice, see
+ *   rc_quant_config_defaults);
  * - biases: int32 with scale = input scale x weight scale per channel, the
  *   scale of the integer accumulator, zero point 0. */
 #include "graph/quantize.h"
