@@ -237,7 +237,7 @@ static void print_tables(const rc_model *m, const op_count *ops, int n_ops, cons
     }
   }
   if (n_gr) {
-    printf("\n%-36s %-10s %-6s %-5s %s\n", "quantized tensor", "kind", "dtype", "axis", "scale / zero point");
+    printf("\n%-36s %-10s %-6s %-5s %s\n", "grid (integer tensor)", "kind", "dtype", "axis", "scale / zero point");
     for (int i = 0; i < n_gr; i++) {
       char axis[16] = "-";
       if (gr[i].axis >= 0) snprintf(axis, sizeof axis, "%d", gr[i].axis);

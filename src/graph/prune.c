@@ -63,7 +63,8 @@ typedef struct layer {
   int node, value, in_axis;
 } layer;
 
-/* Float weights of Conv, ConvTranspose, Gemm and MatMul, in node order. */
+/* Float weights of Conv, ConvTranspose, Gemm and MatMul, in node order; a
+ * layer whose weight comes through DequantizeLinear is refused. */
 static rc_status collect_layers(const rc_graph *g, layer **out, int *n, rc_err *e) {
   rc_weight_info *w;
   int nw;
@@ -75,6 +76,20 @@ static rc_status collect_layers(const rc_graph *g, layer **out, int *n, rc_err *
     return rc__fail(e, RC_ERR_NOMEM, "out of memory");
   }
   *n = 0;
+  for (int i = 0; i < nw; i++)
+    if (w[i].role == RC_ROLE_WEIGHT && w[i].quantized && op_in(&g->nodes[w[i].node], ops)) {
+      /* Pruning on an integer grid would leave the float model it was
+       * calibrated from behind; a pruned float model quantizes its zeros to
+       * exact zeros, so that order loses nothing. */
+      rc_status st = rc__fail(e, RC_ERR_UNSUPPORTED,
+                              "%s: layer '%s' reads its weight '%s' through DequantizeLinear: the model is quantized "
+                              "(QDQ) and prune works on float weights only; prune the float model, then quantize "
+                              "the result (recoup prune, then recoup quantize)",
+                              g->path, g->nodes[w[i].node].label, g->values[w[i].value].name);
+      rc__free(w);
+      rc__free(l);
+      return st;
+    }
   for (int i = 0; i < nw; i++)
     if (w[i].role == RC_ROLE_WEIGHT && !w[i].quantized && op_in(&g->nodes[w[i].node], ops) &&
         is_float_init(g, w[i].value) && g->values[w[i].value].decl.rank >= 1)

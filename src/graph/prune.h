@@ -52,7 +52,9 @@ void rc_prune_report_free(rc_prune_report *r);
  * already in the kept message (onnx/reshape.h). Fills r->layers and notes
  * (not the totals, see rc_prune_file). Order: channels, then N:M, then
  * magnitude (which counts zeros already present, so N:M plus magnitude keeps
- * the pattern and reaches the requested total). */
+ * the pattern and reaches the requested total). A model whose Conv,
+ * ConvTranspose, Gemm or MatMul weight comes through DequantizeLinear (QDQ)
+ * is refused with RC_ERR_UNSUPPORTED: prune the float model, then quantize. */
 rc_status rc_prune_model(rc_model *m, const rc_prune_opts *o, rc_prune_report *r, int **changed,
                          int *n_changed, rc_err *e);
 
