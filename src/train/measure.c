@@ -92,11 +92,13 @@ rc_status rc__measure_prepare(const rc_measure_setup *m, rc_pairing *pg, rc_dist
 /* Rows [0, rows) of the tensor entering one activation grid: count values
  * the grid clamps (round(x / s) + z outside [qmin, qmax], computed as the
  * kernel does) and keep the one furthest outside. */
-static rc_status range_batch(rc_range_stats *st, rc_plan *p, const rc_node *qn, int64_t rows, rc_err *e) {
+static rc_status range_batch(rc_range_stats *st, rc_plan *p, const rc_node *qn, int64_t rows, int64_t batch,
+                             rc_err *e) {
   const rc_fake_quant_params *fp = qn->params;
   const rc_tensor *x = rc_plan_tensor(p, qn->in[0]), *sc = rc_plan_tensor(p, qn->in[1]);
   const rc_tensor *zt = qn->n_in > 2 && qn->in[2] >= 0 ? rc_plan_tensor(p, qn->in[2]) : NULL;
-  if (!x->data || !sc->data || x->rank < 1 || x->dims[0] < rows) return RC_OK;
+  /* Only a tensor with the batch as its first axis splits into samples. */
+  if (!x->data || !sc->data || x->rank < 1 || x->dims[0] != batch) return RC_OK;
   int64_t ns = rc_tensor_numel(sc), channels = 1, inner = rc_tensor_numel(x) / x->dims[0];
   if (ns > 1) {
     int axis;
@@ -235,7 +237,7 @@ rc_status rc__measure_run(const rc_measure_setup *m, const rc_pairing *pg, rc_di
       if (!is_activation_grid(&m->qat->sites[i])) continue;
       rc_range_stats *rs = after ? &r->ranges[k].after : &r->ranges[k].before;
       k++;
-      if ((s = range_batch(rs, sp, &sg->nodes[m->qat->sites[i].q], count, e)) != RC_OK) goto out;
+      if ((s = range_batch(rs, sp, &sg->nodes[m->qat->sites[i].q], count, m->batch, e)) != RC_OK) goto out;
     }
     done += count;
   }
