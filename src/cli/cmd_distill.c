@@ -87,9 +87,10 @@ static void usage(FILE *f) {
       "                           summary.csv, summary.md and JSON records\n"
       "  -h, --help               show this help\n"
       "\n"
-      "The best state by validation (accuracy with labels, else agreement with the\n"
-      "teacher) is written. Validate the recovered model on your own held-out data\n"
-      "before deploying it: the figures hold only for the samples measured.\n");
+      "The state with the lowest validation KL to the teacher is written (with\n"
+      "labels: alpha*KL + (1-alpha)*cross-entropy); accuracy and agreement are shown\n"
+      "beside it but do not decide. Validate the recovered model on your own held-out\n"
+      "data before deploying it: the figures hold only for the samples measured.\n");
 }
 
 typedef struct distill_args {
@@ -679,7 +680,8 @@ static void print_results(const distill_args *a, const rc_distill_result *r, dou
     printf("grids: %d quantized weights rewritten on their unchanged grids (scales, zero points, dtypes, axes)\n",
            r->n_grids);
   printf("best state: lowest validation %s; agreement%s reported beside it\n",
-         strcmp(rc__select_rule_name(&r->before, r->select_alpha), "kl") ? "α·KL + (1−α)·cross-entropy" : "KL to dense",
+         strcmp(rc__select_rule_name(&r->before, r->select_alpha), "kl") ? "alpha*KL + (1-alpha)*cross-entropy"
+                                                                        : "KL to dense",
          r->after.has_labels ? " and accuracy" : "");
   if (r->improved)
     printf("wrote %s (best epoch %lld; reloaded and checked: outputs identical)\n", a->out, (long long)r->best_epoch);
