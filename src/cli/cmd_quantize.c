@@ -14,6 +14,7 @@
 #include "cli/cli.h"
 #include "cli/cli_data.h"
 #include "core/alloc.h"
+#include "core/fmt.h"
 #include "graph/plan.h"
 #include "graph/quantize.h"
 #include "onnx/model.h"
@@ -344,9 +345,11 @@ static void print_table(const quantize_args *a, const rc_quant_report *r, const 
     print_margin(a, r);
   }
   printf("\nfile size    %s -> %s bytes\n", cli_group_digits(before, b1, sizeof b1), cli_group_digits(after, b2, sizeof b2));
-  if (c->have_metrics)
-    printf("vs float     top-1 agreement %.2f%%, mean KL(float||quantized) %.6f (calibration samples)\n",
-           100 * c->m.agreement, c->m.kl);
+  if (c->have_metrics) {
+    char kl[32];
+    printf("vs float     top-1 agreement %.2f%%, mean KL(float||quantized) %s (calibration samples)\n",
+           100 * c->m.agreement, rc__fmt_sig(kl, sizeof kl, c->m.kl, RC_FMT_SIG, 0));
+  }
   printf("             largest output difference %.4g\n", c->max_abs_diff);
   printf("Validate on your own held-out data before deploying: these figures hold only for\nthe samples measured.\n");
 }
