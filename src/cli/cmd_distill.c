@@ -15,7 +15,7 @@
 #include "cli/cli.h"
 #include "cli/cli_data.h"
 #include "cli/report.h"
-#include "onnx/model.h"
+#include "plan/load.h"
 #include "train/distill.h"
 
 #define MAX_GLOBS 32

@@ -8,8 +8,8 @@
 #include "cli/cli_data.h"
 #include "core/alloc.h"
 #include "data/npy_write.h"
-#include "graph/plan.h"
-#include "onnx/model.h"
+#include "plan/load.h"
+#include "plan/plan.h"
 #include "train/evaluate.h"
 
 static void usage(FILE *f) {

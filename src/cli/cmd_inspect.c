@@ -6,9 +6,9 @@
 
 #include "cli/cli.h"
 #include "core/alloc.h"
-#include "graph/inspect.h"
-#include "graph/plan.h"
-#include "onnx/model.h"
+#include "plan/inspect.h"
+#include "plan/load.h"
+#include "plan/plan.h"
 #include "train/pairing.h"
 
 static void usage(FILE *f) {

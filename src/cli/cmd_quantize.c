@@ -13,10 +13,10 @@
 
 #include "cli/cli.h"
 #include "cli/cli_data.h"
+#include "compress/quantize.h"
 #include "core/alloc.h"
-#include "graph/plan.h"
-#include "graph/quantize.h"
-#include "onnx/model.h"
+#include "plan/load.h"
+#include "plan/plan.h"
 #include "train/evaluate.h"
 
 static void usage(FILE *f) {

@@ -12,12 +12,14 @@
 #include <time.h>
 
 #include "core/alloc.h"
-#include "graph/inspect.h"
-#include "graph/plan.h"
-#include "train/loss.h"
-#include "train/params.h"
+#include "core/file.h"
+#include "plan/inspect.h"
+#include "plan/load.h"
+#include "plan/plan.h"
 #include "train/features.h"
+#include "train/loss.h"
 #include "train/pairing.h"
+#include "train/params.h"
 #include "train/qat.h"
 
 void rc_distill_config_defaults(rc_distill_config *c) {

@@ -1,4 +1,4 @@
-#include "graph/inspect.h"
+#include "plan/inspect.h"
 
 #include <math.h>
 #include <string.h>

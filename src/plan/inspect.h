@@ -1,11 +1,11 @@
 /* Facts about a graph that inspect, distill and the reports share: which
  * initializers are layer weights, their sparsity and N:M pattern, the
  * quantization grids of QDQ models, and multiply-accumulate counts. */
-#ifndef RC_GRAPH_INSPECT_H
-#define RC_GRAPH_INSPECT_H
+#ifndef RC_PLAN_INSPECT_H
+#define RC_PLAN_INSPECT_H
 
-#include "graph/ir.h"
-#include "graph/plan.h"
+#include "ir/ir.h"
+#include "plan/plan.h"
 
 /* RC_ROLE_AFFINE: a float initializer of more than one entry added to or
  * multiplied with an activation: the bias of a MatMul written as MatMul +

@@ -4,8 +4,8 @@
  * channels by L1 norm with every consumer rewritten so that the result is a
  * smaller valid model. Layers that cannot be rewritten are left as they are
  * and the report says which and why. Nothing here prints. */
-#ifndef RC_GRAPH_PRUNE_H
-#define RC_GRAPH_PRUNE_H
+#ifndef RC_COMPRESS_PRUNE_H
+#define RC_COMPRESS_PRUNE_H
 
 #include <stdint.h>
 

@@ -11,7 +11,7 @@
  * "fixes" the slots it touches, which are then kept, with the reason
  * reported. Only after the walk is it decided which slot classes go, so the
  * rewrite is all-or-nothing per class and the model stays consistent. */
-#include "graph/prune.h"
+#include "compress/prune.h"
 
 #include <math.h>
 #include <stdarg.h>
@@ -21,10 +21,11 @@
 
 #include "core/alloc.h"
 #include "core/arena.h"
-#include "graph/inspect.h"
-#include "graph/plan.h"
 #include "onnx/reshape.h"
 #include "ops/op.h"
+#include "plan/inspect.h"
+#include "plan/load.h"
+#include "plan/plan.h"
 
 void rc_prune_report_free(rc_prune_report *r) {
   if (!r) return;
