@@ -63,9 +63,4 @@ rc_status rc_prune_model(rc_model *m, const rc_prune_opts *o, rc_prune_report *r
 rc_status rc_prune_file(const char *in, const char *out, const rc_prune_opts *o, rc_prune_report *r,
                         rc_err *e);
 
-/* Parameters (float and integer weight initializers of rank >= 1) of a graph,
- * and multiply-accumulates at batch 1 (-1 with e set when it does not plan). */
-int64_t rc__graph_params(const rc_graph *g);
-int64_t rc__graph_macs_batch1(const rc_graph *g, rc_err *e);
-
 #endif
