@@ -1,4 +1,4 @@
-/* Post-training quantization (src/graph/quantize.c) and the model edit API
+/* Post-training quantization (src/compress/quantize.c) and the model edit API
  * it writes through (src/onnx/edit.c), on small hand-made graphs.
  *
  * Facts checked, with their sources:

@@ -32,7 +32,7 @@ typedef struct rc__pb_alloc {
 } rc__pb_alloc;
 
 void rc__pb_alloc_init(rc__pb_alloc *a, size_t cap);
-/* Cap for a message read from a file of n bytes (see file.c for the factor). */
+/* Cap for a message read from a file of n bytes (see pb_alloc.c for the factor). */
 size_t rc__pb_alloc_cap(size_t file_bytes);
 /* Allocator for freeing what rc__pb_alloc unpacked (no state needed). */
 ProtobufCAllocator *rc__pb_free_allocator(void);

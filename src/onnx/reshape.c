@@ -4,8 +4,9 @@
  * kept message itself, so every later save writes them.
  *
  * Memory in the kept message is owned by the protobuf-c allocator of
- * file.c (each block carries a size header), so everything put into it here
- * comes from that allocator and everything taken out goes back to it. */
+ * ir/pb_alloc.c (each block carries a size header), so everything put into
+ * it here comes from that allocator and everything taken out goes back to
+ * it. */
 #include <stdint.h>
 #include <stdio.h>
 #include <string.h>
