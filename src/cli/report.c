@@ -1,10 +1,9 @@
 /* Reports: JSON records, CSV and Markdown summaries, and one HTML page with
  * SVG charts drawn here (no scripts, nothing fetched: it opens offline). */
-#define _DEFAULT_SOURCE /* gmtime_r, fsync */
+#define _DEFAULT_SOURCE /* gmtime_r */
 #include "cli/report.h"
 
 #include <errno.h>
-#include <fcntl.h>
 #include <math.h>
 #include <stdarg.h>
 #include <stdio.h>
