@@ -1,4 +1,4 @@
-/* Post-training quantization (src/graph/quantize.c) and the model edit API
+/* Post-training quantization (src/compress/quantize.c) and the model edit API
  * it writes through (src/onnx/edit.c), on small hand-made graphs.
  *
  * Facts checked, with their sources:
@@ -21,10 +21,11 @@
 #include <string.h>
 #include <unistd.h>
 
-#include "graph/plan.h"
-#include "graph/quantize.h"
-#include "onnx/onnx.pb-c.h"
+#include "compress/quantize.h"
 #include "onnx/model.h"
+#include "onnx/onnx.pb-c.h"
+#include "plan/load.h"
+#include "plan/plan.h"
 #include "onnx_build.h"
 #include "recoup/data.h"
 #include "test.h"

@@ -17,6 +17,7 @@
 #include "cli/report.h"
 #include "core/fmt.h"
 #include "onnx/model.h"
+#include "plan/load.h"
 #include "train/distill.h"
 #include "train/select.h"
 

@@ -9,8 +9,8 @@
 #include "core/alloc.h"
 #include "core/fmt.h"
 #include "data/npy_write.h"
-#include "graph/plan.h"
-#include "onnx/model.h"
+#include "plan/load.h"
+#include "plan/plan.h"
 #include "train/evaluate.h"
 
 static void usage(FILE *f) {

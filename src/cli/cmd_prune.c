@@ -6,7 +6,7 @@
 #include <string.h>
 
 #include "cli/cli.h"
-#include "graph/prune.h"
+#include "compress/prune.h"
 
 static void usage(FILE *f) {
   fprintf(f,

@@ -13,11 +13,12 @@
 
 #include "cli/cli.h"
 #include "cli/cli_data.h"
+#include "compress/quantize.h"
 #include "core/alloc.h"
 #include "core/fmt.h"
-#include "graph/plan.h"
-#include "graph/quantize.h"
 #include "onnx/model.h"
+#include "plan/load.h"
+#include "plan/plan.h"
 #include "train/evaluate.h"
 
 static void usage(FILE *f) {

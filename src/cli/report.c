@@ -1,10 +1,9 @@
 /* Reports: JSON records, CSV and Markdown summaries, and one HTML page with
  * SVG charts drawn here (no scripts, nothing fetched: it opens offline). */
-#define _DEFAULT_SOURCE /* gmtime_r, fsync */
+#define _DEFAULT_SOURCE /* gmtime_r */
 #include "cli/report.h"
 
 #include <errno.h>
-#include <fcntl.h>
 #include <math.h>
 #include <stdarg.h>
 #include <stdio.h>
@@ -15,6 +14,7 @@
 #include <unistd.h>
 
 #include "core/alloc.h"
+#include "core/file.h"
 #include "core/fmt.h"
 
 /* Our palette: distinct in hue and lightness (also for the common forms of
@@ -98,41 +98,11 @@ static void sb_esc(sbuf *b, const char *s) {
 
 /* ---- Files ---------------------------------------------------------------------- */
 
-rc_status cli_write_atomic(const char *path, const char *text, size_t n, rc_err *e) {
-  char tmp[4200];
-  snprintf(tmp, sizeof tmp, "%s.tmp.%ld", path, (long)getpid());
-  int fd = open(tmp, O_WRONLY | O_CREAT | O_TRUNC, 0644);
-  if (fd < 0) return rc__fail(e, RC_ERR_IO, "%s: %s", tmp, strerror(errno));
-  size_t done = 0;
-  while (done < n) {
-    ssize_t w = write(fd, text + done, n - done);
-    if (w < 0 && errno == EINTR) continue;
-    if (w <= 0) {
-      int err = errno;
-      close(fd);
-      unlink(tmp);
-      return rc__fail(e, RC_ERR_IO, "%s: %s", path, strerror(err));
-    }
-    done += (size_t)w;
-  }
-  if (fsync(fd) != 0 || close(fd) != 0) {
-    int err = errno;
-    unlink(tmp);
-    return rc__fail(e, RC_ERR_IO, "%s: %s", path, strerror(err));
-  }
-  if (rename(tmp, path) != 0) {
-    int err = errno;
-    unlink(tmp);
-    return rc__fail(e, RC_ERR_IO, "%s: %s", path, strerror(err));
-  }
-  return RC_OK;
-}
-
 static rc_status write_sbuf(const char *dir, const char *name, sbuf *b, rc_err *e) {
   char path[4200];
   snprintf(path, sizeof path, "%s/%s", dir, name);
   if (b->oom) return rc__fail(e, RC_ERR_NOMEM, "%s: out of memory", path);
-  return cli_write_atomic(path, b->p ? b->p : "", b->n, e);
+  return rc__write_atomic(path, b->p ? b->p : "", b->n, e);
 }
 
 static rc_status write_json(const char *path, const cJSON *j, rc_err *e) {
@@ -140,7 +110,7 @@ static rc_status write_json(const char *path, const cJSON *j, rc_err *e) {
   if (!text) return rc__fail(e, RC_ERR_NOMEM, "%s: out of memory", path);
   size_t n = strlen(text);
   text[n] = '\n'; /* cJSON_Print's NUL becomes the final newline */
-  rc_status s = cli_write_atomic(path, text, n + 1, e);
+  rc_status s = rc__write_atomic(path, text, n + 1, e);
   free(text);
   return s;
 }

@@ -12,13 +12,17 @@
 #include <time.h>
 
 #include "core/alloc.h"
-#include "graph/inspect.h"
-#include "graph/plan.h"
+#include "core/file.h"
+#include "plan/inspect.h"
+#include "plan/load.h"
+#include "plan/plan.h"
 #include "train/loss.h"
 #include "train/measure.h"
 #include "train/params.h"
 #include "train/features.h"
+#include "train/loss.h"
 #include "train/pairing.h"
+#include "train/params.h"
 #include "train/qat.h"
 #include "train/select.h"
 

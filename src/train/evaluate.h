@@ -6,7 +6,7 @@
 #include <stdint.h>
 
 #include "core/status.h"
-#include "graph/plan.h"
+#include "plan/plan.h"
 #include "recoup/data.h"
 
 /* Run the plan (planned for batch size B = its inputs' dim 0) over every

@@ -15,7 +15,7 @@
 #include <stdint.h>
 
 #include "core/status.h"
-#include "graph/ir.h"
+#include "ir/ir.h"
 #include "recoup/data.h"
 #include "train/distill.h"
 #include "train/pairing.h"

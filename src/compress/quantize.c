@@ -12,14 +12,14 @@
  *   rc_quant_config_defaults);
  * - biases: int32 with scale = input scale x weight scale per channel, the
  *   scale of the integer accumulator, zero point 0. */
-#include "graph/quantize.h"
+#include "compress/quantize.h"
 
 #include <math.h>
 #include <stdio.h>
 #include <string.h>
 
 #include "core/alloc.h"
-#include "graph/plan.h"
+#include "plan/plan.h"
 
 #define HIST_BINS 4096
 #define INT32_LIMIT 2147483647.0

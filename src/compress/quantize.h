@@ -6,13 +6,13 @@
  * integer initializers -> DequantizeLinear and QuantizeLinear ->
  * DequantizeLinear pairs, the form integer runtimes fuse into integer
  * kernels (see rc_quantize_model for the placement rules). */
-#ifndef RC_GRAPH_QUANTIZE_H
-#define RC_GRAPH_QUANTIZE_H
+#ifndef RC_COMPRESS_QUANTIZE_H
+#define RC_COMPRESS_QUANTIZE_H
 
 #include <stdint.h>
 
 #include "core/status.h"
-#include "onnx/model.h"
+#include "plan/load.h"
 #include "recoup/data.h"
 
 typedef enum rc_calib_method { RC_CALIB_MINMAX = 0, RC_CALIB_PERCENTILE = 1 } rc_calib_method;
