@@ -389,7 +389,8 @@ static rc_status read_arrays(const char *path, const unsigned char *buf, size_t 
     char name[NAME_CAP];
     float *dst = rc_params_state_array(ps, i, name, sizeof name);
     rc_array a;
-    RC_TRY(rc_array_read_mem(&a, buf, n, RC_DATA_NPZ, path, name, total * sizeof(float) + 1, e));
+    /* Room for the widest dtype, so that a wrong one gets the message below. */
+    RC_TRY(rc_array_read_mem(&a, buf, n, RC_DATA_NPZ, path, name, total * sizeof(double), e));
     rc_status s = RC_OK;
     if (a.t.dtype != RC_DTYPE_FLOAT || a.t.rank != 1 || a.t.dims[0] != (int64_t)total)
       s = rc__fail(e, RC_ERR_FORMAT, "%s: checkpoint array '%s' is %s of %lld elements, this run needs float32 of %zu",
