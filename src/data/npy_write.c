@@ -3,6 +3,7 @@
  * specification (numpy.lib.format) defines. */
 #include <stdio.h>
 #include <string.h>
+#include <time.h>
 #include <zip.h>
 
 #include "core/alloc.h"
@@ -65,9 +66,16 @@ rc_status rc_npy_write(const char *path, const rc_tensor *t, rc_err *e) {
   return st;
 }
 
-/* Fixed member times (1980-01-01, the zip epoch) so that equal arrays give
- * equal files. */
-#define FIXED_MTIME 315532800
+/* Member times fixed at 1980-01-01 00:00, the zip epoch, so that equal arrays
+ * give equal files. libzip stores local time (DOS fields), so the instant is
+ * that of local midnight: the stored fields are then the same in every zone. */
+static time_t zip_epoch(void) {
+  struct tm t = {0};
+  t.tm_year = 80;
+  t.tm_mday = 1;
+  t.tm_isdst = -1;
+  return mktime(&t);
+}
 
 static rc_status zip_write_fail(rc_err *e, const char *path, zip_error_t *ze) {
   rc_status st = rc__fail(e, zip_error_code_zip(ze) == ZIP_ER_MEMORY ? RC_ERR_NOMEM : RC_ERR_IO,
@@ -135,7 +143,7 @@ rc_status rc_npz_write(const char *path, const char *const *names, const rc_tens
       goto out;
     }
     if (zip_set_file_compression(za, (zip_uint64_t)at, ZIP_CM_STORE, 0) != 0 ||
-        zip_file_set_mtime(za, (zip_uint64_t)at, FIXED_MTIME, 0) != 0) {
+        zip_file_set_mtime(za, (zip_uint64_t)at, zip_epoch(), 0) != 0) {
       st = zip_write_fail(e, path, zip_get_error(za));
       goto out;
     }

@@ -37,21 +37,25 @@ uint64_t rc__ckpt_fp_i64(uint64_t h, const int64_t *v, size_t n) {
   return h;
 }
 
+static uint64_t bits64(double v) {
+  uint64_t u;
+  memcpy(&u, &v, sizeof u);
+  return u;
+}
+
+static uint32_t bits32(float v) {
+  uint32_t u;
+  memcpy(&u, &v, sizeof u);
+  return u;
+}
+
 uint64_t rc__ckpt_fp_f64(uint64_t h, const double *v, size_t n) {
-  for (size_t i = 0; i < n; i++) {
-    uint64_t u;
-    memcpy(&u, &v[i], 8);
-    h = fnv_u64(h, u, 8);
-  }
+  for (size_t i = 0; i < n; i++) h = fnv_u64(h, bits64(v[i]), 8);
   return h;
 }
 
 uint64_t rc__ckpt_fp_f32(uint64_t h, const float *v, size_t n) {
-  for (size_t i = 0; i < n; i++) {
-    uint32_t u;
-    memcpy(&u, &v[i], 4);
-    h = fnv_u64(h, u, 4);
-  }
+  for (size_t i = 0; i < n; i++) h = fnv_u64(h, bits32(v[i]), 4);
   return h;
 }
 
@@ -268,7 +272,8 @@ static const char *get_string(header_reader *r, const cJSON *o, const char *key)
 static void check_identity(header_reader *r, const cJSON *h, const rc_ckpt_run *run) {
   const char *fmt = get_string(r, h, "format");
   if (r->s != RC_OK || strcmp(fmt, FORMAT_NAME)) {
-    if (r->s == RC_OK) r->s = rc__fail(r->e, RC_ERR_FORMAT, "%s: not a recoup checkpoint (format is not '" FORMAT_NAME "')", r->path);
+    if (r->s == RC_OK)
+      r->s = rc__fail(r->e, RC_ERR_FORMAT, "%s: not a recoup checkpoint (format is not '" FORMAT_NAME "')", r->path);
     return;
   }
   const cJSON *ver = field(r, h, "version", "an integer");
@@ -406,13 +411,15 @@ static rc_status read_arrays(const char *path, const unsigned char *buf, size_t 
 static rc_status check_container(const char *path, const unsigned char *buf, size_t n, int want_members,
                                  rc_err *e) {
   static const char OLD_MAGIC[] = "recoup-ckpt-v";
-  if (n >= sizeof OLD_MAGIC - 1 && !memcmp(buf, OLD_MAGIC, sizeof OLD_MAGIC - 1))
+  size_t m = sizeof OLD_MAGIC - 1;
+  if (n >= m && !memcmp(buf, OLD_MAGIC, m)) {
+    char v = n > m && buf[m] >= '0' && buf[m] <= '9' ? (char)buf[m] : '?';
     return rc__fail(e, RC_ERR_UNSUPPORTED,
                     "%s: checkpoint in the raw format of an earlier recoup (build-dependent, version %c); "
                     "this recoup reads format version %d only: resume it with the recoup that wrote it, "
                     "or start the run again",
-                    path, n > sizeof OLD_MAGIC - 1 && buf[sizeof OLD_MAGIC - 1] >= '0' && buf[sizeof OLD_MAGIC - 1] <= '9'
-                              ? buf[sizeof OLD_MAGIC - 1] : '?', RC_CKPT_VERSION);
+                    path, v, RC_CKPT_VERSION);
+  }
   if (rc_data_detect(buf, n) != RC_DATA_NPZ)
     return rc__fail(e, RC_ERR_FORMAT, "%s: not a recoup checkpoint (not an .npz archive)", path);
   char **names;
