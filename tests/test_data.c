@@ -591,7 +591,7 @@ static void npz_corrupt_files(void) {
   for (size_t cut = 0; cut < z.n; cut += 3) CHECK(rc_array_read_mem(&a, z.p, cut, RC_DATA_NPZ, "c.npz", NULL, 0, &e) != RC_OK);
   z.p[z.n - 22 - 20] ^= 0xff;
   CHECK_INT(rc_array_read_mem(&a, z.p, z.n, RC_DATA_NPZ, "loc.npz", NULL, 0, &e), RC_ERR_FORMAT);
-  CHECK_STR_CONTAINS(e.msg, "zip64 locator");
+  CHECK_STR_CONTAINS(e.msg, "loc.npz: zip: ");
   free(z.p);
   /* A member that is not .npy data. */
   zmember text = {"x.npy", (const unsigned char *)"just text", 9, 0};

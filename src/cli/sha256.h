@@ -2,20 +2,18 @@
  * reused only when its content hash equals the one recorded when its job
  * finished. A cryptographic hash, because a checksum such as CRC-32 plus size
  * lets a same-size change through with probability 2^-32 per comparison and
- * is trivially forged; SHA-256 makes "same bytes" a practical certainty. */
+ * is trivially forged; SHA-256 makes "same bytes" a practical certainty.
+ * The hash itself is nettle's (Debian's nettle-dev). */
 #ifndef RC_CLI_SHA256_H
 #define RC_CLI_SHA256_H
 
+#include <nettle/sha2.h>
 #include <stddef.h>
-#include <stdint.h>
 
 #include "core/status.h"
 
 typedef struct cli_sha256 {
-  uint32_t h[8];
-  uint64_t bytes;
-  unsigned char block[64];
-  size_t fill;
+  struct sha256_ctx ctx;
 } cli_sha256;
 
 void cli_sha256_init(cli_sha256 *s);

@@ -1,8 +1,10 @@
 /* Writing arrays: NumPy .npy (format 1.0) and .npz (a stored zip of .npy
- * members), as the NumPy format specification (numpy.lib.format) defines. */
+ * members, the container written by libzip), as the NumPy format
+ * specification (numpy.lib.format) defines. */
 #include <stdio.h>
 #include <string.h>
-#include <zlib.h>
+#include <time.h>
+#include <zip.h>
 
 #include "core/alloc.h"
 #include "core/file.h"
@@ -64,115 +66,102 @@ rc_status rc_npy_write(const char *path, const rc_tensor *t, rc_err *e) {
   return st;
 }
 
-static void put16(unsigned char *p, unsigned v) {
-  p[0] = (unsigned char)v;
-  p[1] = (unsigned char)(v >> 8);
+/* Member times fixed at 1980-01-01 00:00, the zip epoch, so that equal arrays
+ * give equal files. libzip stores local time (DOS fields), so the instant is
+ * that of local midnight: the stored fields are then the same in every zone. */
+static time_t zip_epoch(void) {
+  struct tm t = {0};
+  t.tm_year = 80;
+  t.tm_mday = 1;
+  t.tm_isdst = -1;
+  return mktime(&t);
 }
-static void put32(unsigned char *p, uint32_t v) {
-  put16(p, v & 0xffff);
-  put16(p + 2, v >> 16);
+
+static rc_status zip_write_fail(rc_err *e, const char *path, zip_error_t *ze) {
+  rc_status st = rc__fail(e, zip_error_code_zip(ze) == ZIP_ER_MEMORY ? RC_ERR_NOMEM : RC_ERR_IO,
+                          "%s: writing the zip container: %s", path, zip_error_strerror(ze));
+  zip_error_fini(ze);
+  return st;
+}
+
+/* The finished archive's bytes out of libzip's in-memory target. */
+static rc_status take_bytes(zip_source_t *target, unsigned char **out, size_t *n, const char *path, rc_err *e) {
+  *out = NULL;
+  zip_stat_t st;
+  zip_stat_init(&st);
+  if (zip_source_stat(target, &st) != 0 || !(st.valid & ZIP_STAT_SIZE) || zip_source_open(target) != 0)
+    return zip_write_fail(e, path, zip_source_error(target));
+  unsigned char *buf = rc__malloc((size_t)st.size + 1);
+  zip_int64_t got = buf ? zip_source_read(target, buf, st.size) : -1;
+  zip_source_close(target);
+  if (!buf) return rc__fail(e, RC_ERR_NOMEM, "out of memory writing %s", path);
+  if (got < 0 || (zip_uint64_t)got != st.size) {
+    rc__free(buf);
+    return zip_write_fail(e, path, zip_source_error(target));
+  }
+  *out = buf;
+  *n = (size_t)st.size;
+  return RC_OK;
 }
 
 rc_status rc_npz_write(const char *path, const char *const *names, const rc_tensor *tensors, int n,
                        rc_err *e) {
   unsigned char **members = rc__calloc((size_t)n + 1, sizeof *members);
-  size_t *sizes = rc__calloc((size_t)n + 1, sizeof *sizes);
-  unsigned char *zip = NULL;
+  unsigned char *bytes = NULL;
+  size_t nbytes = 0;
+  zip_error_t ze;
+  zip_error_init(&ze);
+  zip_source_t *target = zip_source_buffer_create(NULL, 0, 0, &ze);
+  zip_t *za = NULL;
   rc_status st = RC_OK;
-  if (!members || !sizes) {
+  if (!members) {
     st = rc__fail(e, RC_ERR_NOMEM, "out of memory writing %s", path);
     goto out;
   }
-  size_t total = 22;
+  if (!target) {
+    st = zip_write_fail(e, path, &ze);
+    goto out;
+  }
+  zip_source_keep(target); /* read back after zip_close */
+  if (!(za = zip_open_from_source(target, ZIP_CREATE | ZIP_TRUNCATE, &ze))) {
+    st = zip_write_fail(e, path, &ze);
+    goto out;
+  }
   for (int i = 0; i < n; i++) {
-    if ((st = rc_npy_encode(&members[i], &sizes[i], &tensors[i], e)) != RC_OK) goto out;
-    size_t name_len = strlen(names[i]) + 4;
-    if (sizes[i] >= 0xffffffffu || name_len > 0xffff) {
-      st = rc__fail(e, RC_ERR_LIMIT, "%s: member '%s' too large for a zip without zip64", path, names[i]);
+    size_t size;
+    if ((st = rc_npy_encode(&members[i], &size, &tensors[i], e)) != RC_OK) goto out;
+    char name[1024];
+    if (snprintf(name, sizeof name, "%s.npy", names[i]) >= (int)sizeof name) {
+      st = rc__fail(e, RC_ERR_LIMIT, "%s: member name '%.64s...' too long", path, names[i]);
       goto out;
     }
-    total += 30 + name_len + sizes[i] + 46 + name_len;
+    zip_source_t *m = zip_source_buffer(za, members[i], size, 0);
+    zip_int64_t at = m ? zip_file_add(za, name, m, ZIP_FL_ENC_UTF_8) : -1;
+    if (at < 0) {
+      zip_source_free(m);
+      st = zip_write_fail(e, path, zip_get_error(za));
+      goto out;
+    }
+    if (zip_set_file_compression(za, (zip_uint64_t)at, ZIP_CM_STORE, 0) != 0 ||
+        zip_file_set_mtime(za, (zip_uint64_t)at, zip_epoch(), 0) != 0) {
+      st = zip_write_fail(e, path, zip_get_error(za));
+      goto out;
+    }
   }
-  if (total >= 0xffffffffu) {
-    st = rc__fail(e, RC_ERR_LIMIT, "%s: archive too large for a zip without zip64", path);
+  if (zip_close(za) != 0) {
+    st = zip_write_fail(e, path, zip_get_error(za));
     goto out;
   }
-  zip = rc__malloc(total);
-  if (!zip) {
-    st = rc__fail(e, RC_ERR_NOMEM, "out of memory writing %s", path);
-    goto out;
-  }
-  size_t off = 0;
-  uint32_t crcs[64];
-  size_t offsets[64], lens[64];
-  if (n > 64) {
-    st = rc__fail(e, RC_ERR_LIMIT, "%s: more than 64 outputs", path);
-    goto out;
-  }
-  for (int i = 0; i < n; i++) {
-    size_t nl = strlen(names[i]) + 4;
-    uint32_t crc = (uint32_t)crc32(0L, members[i], (uInt)sizes[i]);
-    crcs[i] = crc;
-    offsets[i] = off;
-    lens[i] = sizes[i];
-    unsigned char *h = zip + off;
-    put32(h, 0x04034b50);
-    put16(h + 4, 20);
-    put16(h + 6, 0);
-    put16(h + 8, 0); /* stored */
-    put16(h + 10, 0);
-    put16(h + 12, 0x21); /* 1980-01-01: fixed, so equal arrays give equal files */
-    put32(h + 14, crc);
-    put32(h + 18, (uint32_t)sizes[i]);
-    put32(h + 22, (uint32_t)sizes[i]);
-    put16(h + 26, (unsigned)nl);
-    put16(h + 28, 0);
-    memcpy(h + 30, names[i], nl - 4);
-    memcpy(h + 30 + nl - 4, ".npy", 4);
-    memcpy(h + 30 + nl, members[i], sizes[i]);
-    off += 30 + nl + sizes[i];
-  }
-  size_t cd_start = off;
-  for (int i = 0; i < n; i++) {
-    size_t nl = strlen(names[i]) + 4;
-    unsigned char *c = zip + off;
-    put32(c, 0x02014b50);
-    put16(c + 4, 20);
-    put16(c + 6, 20);
-    put16(c + 8, 0);
-    put16(c + 10, 0);
-    put16(c + 12, 0);
-    put16(c + 14, 0x21);
-    put32(c + 16, crcs[i]);
-    put32(c + 20, (uint32_t)lens[i]);
-    put32(c + 24, (uint32_t)lens[i]);
-    put16(c + 28, (unsigned)nl);
-    put16(c + 30, 0);
-    put16(c + 32, 0);
-    put16(c + 34, 0);
-    put16(c + 36, 0);
-    put32(c + 38, 0);
-    put32(c + 42, (uint32_t)offsets[i]);
-    memcpy(c + 46, names[i], nl - 4);
-    memcpy(c + 46 + nl - 4, ".npy", 4);
-    off += 46 + nl;
-  }
-  unsigned char *end = zip + off;
-  put32(end, 0x06054b50);
-  put16(end + 4, 0);
-  put16(end + 6, 0);
-  put16(end + 8, (unsigned)n);
-  put16(end + 10, (unsigned)n);
-  put32(end + 12, (uint32_t)(off - cd_start));
-  put32(end + 16, (uint32_t)cd_start);
-  put16(end + 20, 0);
-  off += 22;
-  st = rc__write_atomic(path, zip, off, e);
+  za = NULL;
+  if ((st = take_bytes(target, &bytes, &nbytes, path, e)) != RC_OK) goto out;
+  st = rc__write_atomic(path, bytes, nbytes, e);
 out:
+  if (za) zip_discard(za);
+  if (target) zip_source_free(target);
   if (members)
     for (int i = 0; i < n; i++) rc__free(members[i]);
   rc__free(members);
-  rc__free(sizes);
-  rc__free(zip);
+  rc__free(bytes);
+  zip_error_fini(&ze);
   return st;
 }

@@ -2,11 +2,8 @@
 
 #include "train/distill.h"
 
-#include <errno.h>
 #include <fnmatch.h>
 #include <stdio.h>
-#include <unistd.h>
-#include <zlib.h>
 #include <math.h>
 #include <string.h>
 #include <time.h>
@@ -16,6 +13,7 @@
 #include "plan/inspect.h"
 #include "plan/load.h"
 #include "plan/plan.h"
+#include "train/checkpoint.h"
 #include "train/loss.h"
 #include "train/measure.h"
 #include "train/params.h"
@@ -572,25 +570,6 @@ static void notify(const rc_distill_config *c, rc_distill_progress *p) {
   if (c->progress) c->progress(c->user, p);
 }
 
-/* Everything the loop needs to continue exactly where it stopped. */
-typedef struct loop_state {
-  int64_t step;        /* optimizer steps taken (rolled-back steps count too) */
-  int64_t epoch;       /* current epoch, 0-based */
-  int64_t batch;       /* next batch within the epoch */
-  int64_t ep_steps;
-  double ep_loss;
-  double lr_scale;
-  int64_t rollbacks, stopped;
-  int64_t best_epoch;
-  int64_t n_epochs;    /* history entries */
-  rc_metrics best;
-  /* The loss trace (rc_distill_result), kept here so checkpoints carry it. */
-  int64_t trace_step[RC_DISTILL_TRACE_MAX];
-  double trace_loss[RC_DISTILL_TRACE_MAX];
-  int64_t n_trace, window_steps;
-  double window_loss;
-} loop_state;
-
 typedef struct loop_ctx {
   run_state *st;
   rc_distill_result *r;
@@ -600,131 +579,35 @@ typedef struct loop_ctx {
   uint64_t fingerprint;
 } loop_ctx;
 
-static uint64_t fnv1a(uint64_t h, const void *p, size_t n) {
-  const unsigned char *b = p;
-  for (size_t i = 0; i < n; i++) h = (h ^ b[i]) * 1099511628211ull;
-  return h;
-}
-
 /* Identifies a run: the student's starting values, the teacher's logits over
  * the data (which cover teacher, data and normalisation), and every setting
- * that shapes the trajectory. A checkpoint from another run is refused. */
+ * that shapes the trajectory, hashed by value. A checkpoint from another run
+ * is refused. */
 static uint64_t run_fingerprint(const loop_ctx *lc) {
   const run_state *st = lc->st;
   const rc_distill_config *c = st->c;
-  uint64_t h = 1469598103934665603ull;
-  h = fnv1a(h, rc_params_block(st->ps, RC_BLOCK_VALUE, -1), rc_params_total(st->ps) * sizeof(float));
+  uint64_t h = RC_CKPT_FP_INIT;
+  h = rc__ckpt_fp_f32(h, rc_params_block(st->ps, RC_BLOCK_VALUE, -1), rc_params_total(st->ps));
   int64_t pool = st->train.n + (st->own_val ? 0 : st->val.n);
-  h = fnv1a(h, st->teacher_logits, sizeof(float) * (size_t)(pool * st->k));
-  int64_t ints[] = {c->seed, st->batch, lc->total, lc->spe, c->bn, st->train.n, st->val.n,
+  h = rc__ckpt_fp_f32(h, st->teacher_logits, (size_t)(pool * st->k));
+  int64_t ints[] = {(int64_t)c->seed, st->batch, lc->total, lc->spe, c->bn, st->train.n, st->val.n,
                     c->optim.kind, c->optim.nesterov, c->optim.decay_norm, c->sched.kind, lc->sched.warmup,
-                    lc->sched.step_size, (int64_t)sizeof(loop_state)};
+                    lc->sched.step_size};
   double reals[] = {c->temperature, c->alpha, c->optim.lr, c->optim.weight_decay, c->optim.momentum,
                     c->optim.beta1, c->optim.beta2, c->optim.eps, lc->sched.lr_min, lc->sched.gamma, c->clip};
-  h = fnv1a(h, ints, sizeof ints);
-  h = fnv1a(h, c->terms.weight, sizeof c->terms.weight);
-  return fnv1a(h, reals, sizeof reals);
+  h = rc__ckpt_fp_i64(h, ints, sizeof ints / sizeof ints[0]);
+  h = rc__ckpt_fp_f32(h, c->terms.weight, sizeof c->terms.weight / sizeof c->terms.weight[0]);
+  return rc__ckpt_fp_f64(h, reals, sizeof reals / sizeof reals[0]);
 }
 
-static const char CKPT_MAGIC[16] = "recoup-ckpt-v2\n";
-
-/* Layout: magic, fingerprint, loop_state, history (loss, metrics per epoch),
- * parameter state size and image, CRC-32 of everything before it. */
 static rc_status checkpoint_write(const loop_ctx *lc, const loop_state *ls, rc_err *e) {
-  const run_state *st = lc->st;
-  const char *path = st->c->checkpoint_path;
-  size_t ps_bytes = rc_params_state_bytes(st->ps);
-  size_t hist = (size_t)ls->n_epochs * (sizeof(double) + sizeof(rc_metrics));
-  size_t n = sizeof CKPT_MAGIC + 8 + sizeof *ls + hist + 8 + ps_bytes + 4;
-  unsigned char *buf = rc__malloc(n), *p = buf;
-  if (!buf) return rc__fail(e, RC_ERR_NOMEM, "%s: out of memory writing a checkpoint", path);
-  memcpy(p, CKPT_MAGIC, sizeof CKPT_MAGIC);
-  p += sizeof CKPT_MAGIC;
-  memcpy(p, &lc->fingerprint, 8);
-  p += 8;
-  memcpy(p, ls, sizeof *ls);
-  p += sizeof *ls;
-  memcpy(p, lc->r->epoch_loss, sizeof(double) * (size_t)ls->n_epochs);
-  p += sizeof(double) * (size_t)ls->n_epochs;
-  memcpy(p, lc->r->epoch_val, sizeof(rc_metrics) * (size_t)ls->n_epochs);
-  p += sizeof(rc_metrics) * (size_t)ls->n_epochs;
-  uint64_t psb = ps_bytes;
-  memcpy(p, &psb, 8);
-  p += 8;
-  rc_params_state_write(st->ps, p);
-  p += ps_bytes;
-  uint32_t crc = (uint32_t)crc32(0L, buf, (uInt)(p - buf));
-  memcpy(p, &crc, 4);
-  /* Keep the previous checkpoint as PATH.1. PATH itself must exist at every
-   * instant (a kill may come at any time), so the old one is hard-linked to
-   * PATH.1 and the new one renamed over PATH, never PATH moved away first. */
-  char prev[4096], prev_tmp[4200];
-  snprintf(prev, sizeof prev, "%s.1", path);
-  snprintf(prev_tmp, sizeof prev_tmp, "%s.1.tmp", path);
-  unlink(prev_tmp);
-  if (link(path, prev_tmp) == 0) rename(prev_tmp, prev);
-  rc_status s = rc__write_atomic(path, buf, n, e);
-  rc__free(buf);
-  return s;
+  rc_ckpt_run run = {lc->fingerprint, lc->st->c->seed, lc->epochs};
+  return rc__ckpt_write(lc->st->c->checkpoint_path, &run, ls, lc->r->epoch_loss, lc->r->epoch_val, lc->st->ps, e);
 }
 
 static rc_status checkpoint_read(const loop_ctx *lc, loop_state *ls, rc_err *e) {
-  const char *path = lc->st->c->resume_path;
-  FILE *f = fopen(path, "rb");
-  if (!f) return rc__fail(e, RC_ERR_IO, "%s: cannot open checkpoint: %s", path, strerror(errno));
-  size_t ps_bytes = rc_params_state_bytes(lc->st->ps);
-  size_t max = sizeof CKPT_MAGIC + 8 + sizeof *ls + (size_t)lc->epochs * (sizeof(double) + sizeof(rc_metrics)) +
-               8 + ps_bytes + 4;
-  unsigned char *buf = rc__malloc(max + 1);
-  rc_status s = RC_OK;
-  if (!buf) {
-    fclose(f);
-    return rc__fail(e, RC_ERR_NOMEM, "%s: out of memory reading the checkpoint", path);
-  }
-  size_t n = fread(buf, 1, max + 1, f);
-  fclose(f);
-  const unsigned char *p = buf;
-  uint32_t crc;
-  uint64_t fp, psb;
-  if (n < sizeof CKPT_MAGIC + 8 + sizeof *ls + 12 || n > max || memcmp(buf, CKPT_MAGIC, sizeof CKPT_MAGIC)) {
-    s = rc__fail(e, RC_ERR_FORMAT, "%s: not a recoup checkpoint of this run (wrong size or header)", path);
-    goto out;
-  }
-  memcpy(&crc, buf + n - 4, 4);
-  if (crc != (uint32_t)crc32(0L, buf, (uInt)(n - 4))) {
-    s = rc__fail(e, RC_ERR_FORMAT, "%s: corrupt checkpoint (checksum mismatch)", path);
-    goto out;
-  }
-  p += sizeof CKPT_MAGIC;
-  memcpy(&fp, p, 8);
-  p += 8;
-  if (fp != lc->fingerprint) {
-    s = rc__fail(e, RC_ERR_INVALID, "%s: checkpoint of a different run (teacher, student, data or settings differ)",
-                 path);
-    goto out;
-  }
-  memcpy(ls, p, sizeof *ls);
-  p += sizeof *ls;
-  if (ls->n_epochs < 0 || ls->n_epochs > lc->epochs || ls->n_trace < 0 || ls->n_trace > RC_DISTILL_TRACE_MAX ||
-      (size_t)(buf + n - p) != (size_t)ls->n_epochs * (sizeof(double) + sizeof(rc_metrics)) + 8 + ps_bytes + 4) {
-    s = rc__fail(e, RC_ERR_FORMAT, "%s: checkpoint sections do not add up", path);
-    goto out;
-  }
-  memcpy(lc->r->epoch_loss, p, sizeof(double) * (size_t)ls->n_epochs);
-  p += sizeof(double) * (size_t)ls->n_epochs;
-  memcpy(lc->r->epoch_val, p, sizeof(rc_metrics) * (size_t)ls->n_epochs);
-  p += sizeof(rc_metrics) * (size_t)ls->n_epochs;
-  memcpy(&psb, p, 8);
-  p += 8;
-  if (psb != ps_bytes) {
-    s = rc__fail(e, RC_ERR_FORMAT, "%s: parameter state of another shape", path);
-    goto out;
-  }
-  s = rc_params_state_read(lc->st->ps, p, ps_bytes, e);
-  if (s != RC_OK) rc__wrap(e, "%s", path);
-out:
-  rc__free(buf);
-  return s;
+  rc_ckpt_run run = {lc->fingerprint, lc->st->c->seed, lc->epochs};
+  return rc__ckpt_read(lc->st->c->resume_path, &run, ls, lc->r->epoch_loss, lc->r->epoch_val, lc->st->ps, e);
 }
 
 static rc_status setup_schedule(loop_ctx *lc, rc_err *e) {

@@ -5,6 +5,7 @@
 
 #include <math.h>
 #include <stdint.h>
+#include <stdio.h>
 #include <string.h>
 
 #include "core/alloc.h"
@@ -271,75 +272,45 @@ rc_status rc_params_restore(rc_params *ps, int slot, rc_err *e) {
   return RC_OK;
 }
 
-/* ---- Serialised state (checkpoints) ---------------------------------------
- * Layout: u64 total, u32 n_moments, u32 n_snap, i64 steps, values, moments,
- * then per snapshot: u32 saved, u32 with_moments, i64 steps, its floats.
- * Little-endian, as the machines recoup runs on. */
+/* ---- State as named arrays (checkpoints) -----------------------------------
+ * Array 0 is the values, 1..n_moments the moments, then per snapshot slot its
+ * values and, for slots with moments, its moments: each rc_params_total()
+ * floats in the store's layout (entries at 16-float offsets, zero padding). */
 
-typedef struct state_head {
-  uint64_t total;
-  uint32_t n_moments, n_snap;
-  int64_t steps;
-} state_head;
+static const char *const BLOCK_NAMES[] = {"value", "moment1", "moment2"};
 
-typedef struct snap_head {
-  uint32_t saved, with_moments;
-  int64_t steps;
-} snap_head;
-
-size_t rc_params_state_bytes(const rc_params *ps) {
-  size_t n = sizeof(state_head) + ps->total * sizeof(float) * (size_t)(1 + ps->n_moments);
-  for (int i = 0; i < ps->n_snap; i++)
-    n += sizeof(snap_head) + snapshot_floats(ps, ps->snaps[i].with_moments) * sizeof(float);
+int rc_params_state_count(const rc_params *ps) {
+  int n = 1 + ps->n_moments;
+  for (int i = 0; i < ps->n_snap; i++) n += 1 + (ps->snaps[i].with_moments ? ps->n_moments : 0);
   return n;
 }
 
-void rc_params_state_write(const rc_params *ps, unsigned char *buf) {
-  state_head h = {ps->total, (uint32_t)ps->n_moments, (uint32_t)ps->n_snap, ps->steps};
-  memcpy(buf, &h, sizeof h);
-  buf += sizeof h;
-  size_t nb = ps->total * sizeof(float);
-  memcpy(buf, ps->blocks[RC_BLOCK_VALUE], nb);
-  buf += nb;
-  for (int m = 0; m < ps->n_moments; m++, buf += nb) memcpy(buf, ps->blocks[RC_BLOCK_MOMENT1 + m], nb);
-  for (int i = 0; i < ps->n_snap; i++) {
-    const snapshot *s = &ps->snaps[i];
-    snap_head sh = {(uint32_t)s->saved, (uint32_t)s->with_moments, s->steps};
-    memcpy(buf, &sh, sizeof sh);
-    buf += sizeof sh;
-    size_t sb = snapshot_floats(ps, s->with_moments) * sizeof(float);
-    memcpy(buf, s->mem, sb);
-    buf += sb;
+float *rc_params_state_array(rc_params *ps, int i, char *name, size_t cap) {
+  if (i < 0) return NULL;
+  if (i <= ps->n_moments) {
+    snprintf(name, cap, "param.%s", BLOCK_NAMES[i]);
+    return i == 0 ? ps->blocks[RC_BLOCK_VALUE] : ps->blocks[RC_BLOCK_MOMENT1 + i - 1];
   }
+  i -= 1 + ps->n_moments;
+  for (int k = 0; k < ps->n_snap; k++) {
+    int parts = 1 + (ps->snaps[k].with_moments ? ps->n_moments : 0);
+    if (i < parts) {
+      snprintf(name, cap, "snapshot%d.%s", k, BLOCK_NAMES[i]);
+      return ps->snaps[k].mem + (size_t)i * ps->total;
+    }
+    i -= parts;
+  }
+  return NULL;
 }
 
-rc_status rc_params_state_read(rc_params *ps, const unsigned char *buf, size_t n, rc_err *e) {
-  state_head h;
-  if (n != rc_params_state_bytes(ps) || n < sizeof h)
-    return rc__fail(e, RC_ERR_FORMAT, "parameter state of %zu bytes, this run's store needs %zu", n,
-                    rc_params_state_bytes(ps));
-  memcpy(&h, buf, sizeof h);
-  if (h.total != ps->total || h.n_moments != (uint32_t)ps->n_moments || h.n_snap != (uint32_t)ps->n_snap)
-    return rc__fail(e, RC_ERR_FORMAT, "parameter state does not match this run's parameters");
-  buf += sizeof h;
-  size_t nb = ps->total * sizeof(float);
-  memcpy(ps->blocks[RC_BLOCK_VALUE], buf, nb);
-  buf += nb;
-  for (int m = 0; m < ps->n_moments; m++, buf += nb) memcpy(ps->blocks[RC_BLOCK_MOMENT1 + m], buf, nb);
-  for (int i = 0; i < ps->n_snap; i++) {
-    snapshot *s = &ps->snaps[i];
-    snap_head sh;
-    memcpy(&sh, buf, sizeof sh);
-    buf += sizeof sh;
-    if (sh.with_moments != (uint32_t)s->with_moments)
-      return rc__fail(e, RC_ERR_FORMAT, "parameter state: snapshot %d differs in kind", i);
-    size_t sb = snapshot_floats(ps, s->with_moments) * sizeof(float);
-    memcpy(s->mem, buf, sb);
-    buf += sb;
-    s->saved = (int)sh.saved;
-    s->steps = sh.steps;
-  }
-  ps->steps = h.steps;
-  rc_params_zero_grad(ps);
-  return RC_OK;
+int rc_params_snapshot_count(const rc_params *ps) { return ps->n_snap; }
+
+void rc_params_snapshot_state(const rc_params *ps, int slot, int *saved, int64_t *steps) {
+  *saved = ps->snaps[slot].saved;
+  *steps = ps->snaps[slot].steps;
+}
+
+void rc_params_snapshot_set_state(rc_params *ps, int slot, int saved, int64_t steps) {
+  ps->snaps[slot].saved = saved != 0;
+  ps->snaps[slot].steps = steps;
 }

@@ -106,11 +106,15 @@ rc_status rc_params_save(rc_params *ps, int slot, rc_err *e);
 /* Restore a saved slot; refuses a slot never saved. Gradients are zeroed. */
 rc_status rc_params_restore(rc_params *ps, int slot, rc_err *e);
 
-/* Checkpoint support: the whole mutable state (step counter, values,
- * moments, every snapshot slot) as one byte image of rc_params_state_bytes()
- * bytes. Reading refuses an image made for a differently shaped store. */
-size_t rc_params_state_bytes(const rc_params *ps);
-void rc_params_state_write(const rc_params *ps, unsigned char *buf);
-rc_status rc_params_state_read(rc_params *ps, const unsigned char *buf, size_t n, rc_err *e);
+/* Checkpoint support: the whole mutable state as named float arrays of
+ * rc_params_total() floats each ("param.value", "param.moment1", ...,
+ * "snapshot1.moment2"), written and read in place, plus the step counters
+ * (rc_params_steps) and each snapshot slot's saved flag and step counter. */
+int rc_params_state_count(const rc_params *ps);
+/* Array i (0 <= i < rc_params_state_count) with its name, or NULL. */
+float *rc_params_state_array(rc_params *ps, int i, char *name, size_t cap);
+int rc_params_snapshot_count(const rc_params *ps);
+void rc_params_snapshot_state(const rc_params *ps, int slot, int *saved, int64_t *steps);
+void rc_params_snapshot_set_state(rc_params *ps, int slot, int saved, int64_t steps);
 
 #endif
