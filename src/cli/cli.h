@@ -31,6 +31,11 @@ int cli_usage_error(const char *cmd, const char *fmt, ...)
     __attribute__((format(printf, 2, 3)))
 #endif
     ;
+/* Check an output path before any work: not one of the n inputs (compared
+ * as files; NULL entries skipped), its folder exists and is writable. The
+ * error names `label out` and the input. */
+rc_status cli_check_output(const char *label, const char *out, const char *const *inputs,
+                           const char *const *in_labels, int n, rc_err *e);
 /* Parse a positive integer option value; 0 on success. */
 int cli_parse_int(const char *s, long lo, long hi, long *out);
 int cli_parse_float(const char *s, double *out);

@@ -1,9 +1,15 @@
 #include "cli/cli_data.h"
 
 #include <string.h>
+#include <unistd.h>
 
 #include "cli/cli.h"
 #include "graph/plan.h"
+
+const char *cli_data_file(const char *arg) {
+  const char *eq = strchr(arg, '=');
+  return eq && access(arg, F_OK) != 0 ? eq + 1 : arg;
+}
 
 void cli_data_opts_init(cli_data_opts *o) {
   memset(o, 0, sizeof *o);

@@ -8,9 +8,11 @@
 #include <stdarg.h>
 #include <stdlib.h>
 #include <string.h>
+#include <sys/stat.h>
 #include <unistd.h>
 
 #include "cli/cli.h"
+#include "core/path.h"
 
 int cli_fail(const rc_err *e) {
   fprintf(stderr, "recoup: error: %s\n", e && e->msg[0] ? e->msg : rc_strerror(e ? e->code : -1));
@@ -25,6 +27,20 @@ int cli_usage_error(const char *cmd, const char *fmt, ...) {
   va_end(ap);
   fprintf(stderr, "\nTry 'recoup%s%s --help'.\n", cmd ? " " : "", cmd ? cmd : "");
   return RC_EXIT_USAGE;
+}
+
+rc_status cli_check_output(const char *label, const char *out, const char *const *inputs,
+                           const char *const *in_labels, int n, rc_err *e) {
+  RC_TRY(rc__path_refuse_inputs(label, out, inputs, in_labels, n, e));
+  char dir[4200];
+  const char *slash = strrchr(out, '/');
+  if (!slash) snprintf(dir, sizeof dir, ".");
+  else snprintf(dir, sizeof dir, "%.*s", slash == out ? 1 : (int)(slash - out), out);
+  struct stat st;
+  if (stat(dir, &st) != 0 || !S_ISDIR(st.st_mode))
+    return rc__fail(e, RC_ERR_IO, "%s %s: folder %s does not exist", label, out, dir);
+  if (access(dir, W_OK) != 0) return rc__fail(e, RC_ERR_IO, "%s %s: folder %s is not writable", label, out, dir);
+  return RC_OK;
 }
 
 int cli_parse_int(const char *s, long lo, long hi, long *out) {

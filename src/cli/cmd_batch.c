@@ -23,6 +23,7 @@
 #include "cli/cli.h"
 #include "cli/manifest.h"
 #include "cli/report.h"
+#include "core/path.h"
 #include "cli/sha256.h"
 #include "core/alloc.h"
 
@@ -780,6 +781,30 @@ static rc_status plan_runs(batch *b, rc_err *e) {
   return RC_OK;
 }
 
+/* The report folder's files and the state file may be none of the files the
+ * jobs read, nor the manifest (compared as files, not names). */
+static rc_status check_outputs(const batch *b, rc_err *e) {
+  int n = 1;
+  for (int i = 0; i < b->m.n_jobs; i++) n += b->m.jobs[i].n_inputs;
+  const char **inputs = rc__calloc((size_t)n, sizeof *inputs);
+  const char **names = rc__calloc((size_t)b->m.n_jobs + 1, sizeof *names);
+  rc_status s = RC_OK;
+  if (!inputs || !names) s = rc__fail(e, RC_ERR_NOMEM, "out of memory");
+  if (s == RC_OK) {
+    n = 0;
+    inputs[n++] = b->m.path;
+    for (int i = 0; i < b->m.n_jobs; i++) {
+      names[i] = b->m.jobs[i].name;
+      for (int f = 0; f < b->m.jobs[i].n_inputs; f++) inputs[n++] = b->m.jobs[i].inputs[f];
+    }
+    if (b->a->report) s = cli_report_refuse_inputs(b->a->report, names, b->m.n_jobs, inputs, NULL, n, e);
+    else s = rc__path_refuse_inputs("state file", b->state_path, inputs, NULL, n, e);
+  }
+  rc__free(inputs);
+  rc__free(names);
+  return s;
+}
+
 static int run_batch(batch_args *a) {
   batch b;
   memset(&b, 0, sizeof b);
@@ -804,7 +829,7 @@ static int run_batch(batch_args *a) {
   } else {
     snprintf(b.state_path, sizeof b.state_path, "%s.state.json", a->manifest);
   }
-  if (lock_state(&b, &e) != RC_OK || load_state(&b, &e) != RC_OK || plan_runs(&b, &e) != RC_OK) goto out;
+  if (check_outputs(&b, &e) != RC_OK || lock_state(&b, &e) != RC_OK || load_state(&b, &e) != RC_OK || plan_runs(&b, &e) != RC_OK) goto out;
   event(&b, "%d job%s%s, %ld at once, %d thread%s each", b.n_runs, b.n_runs == 1 ? "" : "s",
         a->shard_n > 1 ? " in this shard" : "", a->jobs, b.threads_per_job, b.threads_per_job == 1 ? "" : "s");
   cli_catch_stop_signals();
@@ -846,6 +871,12 @@ static int merge_reports(batch_args *a) {
   double total = 0;
   const char *manifest_hash = NULL;
   if (!reports) return cli_fail(&e);
+  for (int i = 0; i < a->n_merge; i++)
+    if (rc__path_same_file(a->report, a->merge_dirs[i])) {
+      rc__fail(&e, RC_ERR_INVALID, "--report %s is the report folder %s being merged: refusing to overwrite an input",
+               a->report, a->merge_dirs[i]);
+      goto out;
+    }
   for (int i = 0; i < a->n_merge; i++) {
     if (cli_report_read(a->merge_dirs[i], &reports[i], &e) != RC_OK) goto out;
     const cJSON *meta = cJSON_GetObjectItemCaseSensitive(reports[i], "meta");

@@ -15,6 +15,7 @@
 #include "cli/cli.h"
 #include "cli/cli_data.h"
 #include "cli/report.h"
+#include "core/path.h"
 #include "onnx/model.h"
 #include "train/distill.h"
 
@@ -407,50 +408,48 @@ static int parse_args(distill_args *a, int argc, char **argv) {
   return 0;
 }
 
-/* The output must not be any input: compare resolved paths (the output may
- * not exist yet, so resolve its folder and append its name). */
-static int same_file(const char *out, const char *in) {
-  char a[PATH_MAX], b[PATH_MAX], dir_buf[PATH_MAX], base_buf[PATH_MAX];
-  if (!realpath(in, b)) return 0;
-  if (realpath(out, a)) return !strcmp(a, b);
-  snprintf(dir_buf, sizeof dir_buf, "%s", out);
-  snprintf(base_buf, sizeof base_buf, "%s", out);
-  char resolved[PATH_MAX];
-  if (!realpath(dirname(dir_buf), resolved)) return 0;
-  snprintf(a, sizeof a, "%s/%s", resolved, basename(base_buf));
-  return !strcmp(a, b);
+/* The report's job name: the output's file name without ".onnx". */
+static void report_name(const char *out, char *name, size_t n) {
+  const char *slash = strrchr(out, '/');
+  snprintf(name, n, "%s", slash ? slash + 1 : out);
+  size_t len = strlen(name);
+  if (len > 5 && !strcmp(name + len - 5, ".onnx")) name[len - 5] = '\0';
 }
 
-static const char *data_path(const char *arg) {
-  const char *eq = strchr(arg, '=');
-  return eq && access(arg, F_OK) != 0 ? eq + 1 : arg;
-}
-
+/* Nothing this run writes (the model, its checkpoints, the report's files)
+ * may be a file it reads: compared as files, so links and "./x" count too. */
 static int check_output_path(const distill_args *a, rc_err *e) {
-  const char *inputs[2 + 2 * CLI_MAX_DATA + 2];
+  const char *inputs[8 + 2 * CLI_MAX_DATA], *labels[8 + 2 * CLI_MAX_DATA];
   int n = 0;
-  inputs[n++] = a->teacher;
-  inputs[n++] = a->student;
-  for (int i = 0; i < a->data.n_data; i++) inputs[n++] = data_path(a->data.data[i]);
-  for (int i = 0; i < a->n_val_data; i++) inputs[n++] = data_path(a->val_data[i]);
-  if (a->data.labels) inputs[n++] = a->data.labels;
-  if (a->val_labels) inputs[n++] = a->val_labels;
-  for (int i = 0; i < n; i++)
-    if (same_file(a->out, inputs[i])) {
-      rc__fail(e, RC_ERR_INVALID, "--out %s is the input file %s: refusing to overwrite an input", a->out, inputs[i]);
-      return -1;
-    }
-  char dir_buf[PATH_MAX];
-  snprintf(dir_buf, sizeof dir_buf, "%s", a->out);
-  const char *dir = dirname(dir_buf);
-  struct stat st;
-  if (stat(dir, &st) != 0 || !S_ISDIR(st.st_mode)) {
-    rc__fail(e, RC_ERR_IO, "--out %s: folder %s does not exist", a->out, dir);
+#define INPUT(path, label) (inputs[n] = (path), labels[n++] = (label))
+  INPUT(a->teacher, "--teacher");
+  INPUT(a->student, "--student");
+  for (int i = 0; i < a->data.n_data; i++) INPUT(cli_data_file(a->data.data[i]), "--data");
+  for (int i = 0; i < a->n_val_data; i++) INPUT(cli_data_file(a->val_data[i]), "--val-data");
+  INPUT(a->data.labels, "--labels");
+  INPUT(a->val_labels, "--val-labels");
+  INPUT(a->config, "--config");
+#undef INPUT
+  char prev[4200];
+  snprintf(prev, sizeof prev, "%s.1", a->checkpoint);
+  if (cli_check_output("--out", a->out, inputs, labels, n, e)) return -1;
+  /* Checkpoints are removed once the output is written: never the output either. */
+  inputs[n] = a->out, labels[n++] = "--out";
+  if (rc__path_refuse_inputs("--checkpoint", a->checkpoint, inputs, labels, n, e) ||
+      rc__path_refuse_inputs("--checkpoint", prev, inputs, labels, n, e))
+    return -1;
+  /* --resume is read, then replaced by the run's own checkpoints; the output never. */
+  if (a->cfg.resume_path && rc__path_same_file(a->out, a->cfg.resume_path)) {
+    rc__fail(e, RC_ERR_INVALID, "--resume %s is the output file", a->cfg.resume_path);
     return -1;
   }
-  if (access(dir, W_OK) != 0) {
-    rc__fail(e, RC_ERR_IO, "--out %s: folder %s is not writable", a->out, dir);
-    return -1;
+  if (a->report) {
+    char name[256];
+    report_name(a->out, name, sizeof name);
+    const char *names[1] = {name};
+    inputs[n] = a->checkpoint, labels[n++] = "--checkpoint";
+    inputs[n] = a->cfg.resume_path, labels[n++] = "--resume";
+    if (cli_report_refuse_inputs(a->report, names, 1, inputs, labels, n, e) != RC_OK) return -1;
   }
   return 0;
 }
@@ -570,10 +569,7 @@ static cJSON *results_json(const distill_args *a, const rc_distill_result *r, do
 /* --report DIR: the report files recoup batch writes, for this one run. */
 static rc_status write_report(const distill_args *a, const rc_distill_result *r, double verify_diff, rc_err *e) {
   char name[256];
-  const char *slash = strrchr(a->out, '/');
-  snprintf(name, sizeof name, "%s", slash ? slash + 1 : a->out);
-  size_t n = strlen(name);
-  if (n > 5 && !strcmp(name + n - 5, ".onnx")) name[n - 5] = '\0';
+  report_name(a->out, name, sizeof name);
   char title[300];
   snprintf(title, sizeof title, "recoup distill: %s", name);
   cJSON *meta = cli_report_meta(title), *recs = cJSON_CreateArray();
@@ -683,10 +679,6 @@ int rc_cmd_distill(int argc, char **argv) {
   a.cfg.user = &ps;
   a.cfg.stop = &cli_stop_requested;
   cli_catch_stop_signals();
-  if (a.cfg.resume_path && same_file(a.out, a.cfg.resume_path)) {
-    rc__fail(&e, RC_ERR_INVALID, "--resume %s is the output file", a.cfg.resume_path);
-    goto out;
-  }
   if (rc_distill_run(&r, teacher, student, &d, &a.cfg, &e) != RC_OK) goto out;
   if (rc_model_save(student, a.out, r.changed, r.n_changed, &e) != RC_OK) goto out;
   if (rc_distill_verify_written(a.out, student, a.n_val_data ? vins : ins, train.n_inputs, a.cfg.batch, &diff, &e) !=

@@ -196,6 +196,17 @@ static void print_result(const eval_args *a, const cli_samples *s, const rc_metr
   if (a->out) printf("outputs written  %s\n", a->out);
 }
 
+/* --out may be none of the files read (compared as files, not names). */
+static rc_status check_output_path(const eval_args *a, rc_err *e) {
+  const char *inputs[3 + CLI_MAX_DATA], *labels[3 + CLI_MAX_DATA];
+  int n = 0;
+  inputs[n] = a->model, labels[n++] = "the model";
+  inputs[n] = a->ref, labels[n++] = "--ref";
+  inputs[n] = a->data.labels, labels[n++] = "--labels";
+  for (int i = 0; i < a->data.n_data; i++) inputs[n] = cli_data_file(a->data.data[i]), labels[n++] = "--data";
+  return cli_check_output("--out", a->out, inputs, labels, n, e);
+}
+
 int rc_cmd_eval(int argc, char **argv) {
   eval_args a;
   int pr = parse_args(&a, argc, argv);
@@ -208,6 +219,7 @@ int rc_cmd_eval(int argc, char **argv) {
   memset(&d, 0, sizeof d);
   run_result r = {0}, ref = {0};
   int rc = RC_EXIT_FAIL;
+  if (a.out && check_output_path(&a, &e) != RC_OK) goto out;
   if (rc_model_load(&r.model, a.model, NULL, &e) != RC_OK) goto out;
   if (cli_samples_load(&s, &a.data, &r.model->graph, &e) != RC_OK) goto out;
   int64_t batch = a.batch < s.n ? a.batch : s.n;

@@ -128,34 +128,12 @@ static int parse_args(quantize_args *a, int argc, char **argv) {
   return 0;
 }
 
-/* Resolved path of a file that may not exist yet: its folder resolved, its name appended. */
-static int resolve_out(const char *out, char *buf) {
-  if (realpath(out, buf)) return 1;
-  char d[PATH_MAX], b[PATH_MAX], r[PATH_MAX];
-  snprintf(d, sizeof d, "%s", out);
-  snprintf(b, sizeof b, "%s", out);
-  if (!realpath(dirname(d), r)) return 0;
-  return snprintf(buf, PATH_MAX, "%s/%s", r, basename(b)) < PATH_MAX;
-}
-
 static rc_status check_output_path(const quantize_args *a, rc_err *e) {
-  char out[PATH_MAX], in[PATH_MAX];
-  if (!resolve_out(a->out, out)) return rc__fail(e, RC_ERR_IO, "--out %s: its folder does not exist", a->out);
-  const char *inputs[1 + CLI_MAX_DATA];
+  const char *inputs[1 + CLI_MAX_DATA], *labels[1 + CLI_MAX_DATA];
   int n = 0;
-  inputs[n++] = a->model;
-  for (int i = 0; i < a->data.n_data; i++) {
-    const char *eq = strchr(a->data.data[i], '=');
-    inputs[n++] = eq && access(a->data.data[i], F_OK) != 0 ? eq + 1 : a->data.data[i];
-  }
-  for (int i = 0; i < n; i++)
-    if (realpath(inputs[i], in) && !strcmp(in, out))
-      return rc__fail(e, RC_ERR_INVALID, "--out %s is the input file %s: refusing to overwrite an input", a->out,
-                      inputs[i]);
-  char d[PATH_MAX];
-  snprintf(d, sizeof d, "%s", a->out);
-  if (access(dirname(d), W_OK) != 0) return rc__fail(e, RC_ERR_IO, "--out %s: its folder is not writable", a->out);
-  return RC_OK;
+  inputs[n] = a->model, labels[n++] = "the model";
+  for (int i = 0; i < a->data.n_data; i++) inputs[n] = cli_data_file(a->data.data[i]), labels[n++] = "--data";
+  return cli_check_output("--out", a->out, inputs, labels, n, e);
 }
 
 /* The first output of a graph over every sample: owned buffer of n * per floats. */

@@ -15,6 +15,7 @@
 #include <unistd.h>
 
 #include "core/alloc.h"
+#include "core/path.h"
 
 /* Our palette: distinct in hue and lightness (also for the common forms of
  * colour blindness), every colour dark enough for text on white. */
@@ -175,6 +176,23 @@ rc_status cli_report_prepare(const char *dir, int with_logs, rc_err *e) {
   snprintf(path, sizeof path, "%s/jobs", dir);
   RC_TRY(make_dir(path, e));
   if (access(dir, W_OK) != 0) return rc__fail(e, RC_ERR_IO, "report folder %s: not writable", dir);
+  return RC_OK;
+}
+
+rc_status cli_report_refuse_inputs(const char *dir, const char *const *names, int n_names,
+                                   const char *const *inputs, const char *const *labels, int n_inputs, rc_err *e) {
+  static const char *const fixed[] = {"report.json", "report.html", "summary.csv", "summary.md", "state.json"};
+  char path[4200];
+  for (size_t i = 0; i < sizeof fixed / sizeof fixed[0]; i++) {
+    snprintf(path, sizeof path, "%s/%s", dir, fixed[i]);
+    RC_TRY(rc__path_refuse_inputs("--report", path, inputs, labels, n_inputs, e));
+  }
+  for (int k = 0; k < n_names; k++) {
+    snprintf(path, sizeof path, "%s/jobs/%s.json", dir, names[k]);
+    RC_TRY(rc__path_refuse_inputs("--report", path, inputs, labels, n_inputs, e));
+    snprintf(path, sizeof path, "%s/logs/%s.log", dir, names[k]);
+    RC_TRY(rc__path_refuse_inputs("--report", path, inputs, labels, n_inputs, e));
+  }
   return RC_OK;
 }
 

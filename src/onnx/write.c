@@ -17,6 +17,7 @@
 #include <sys/stat.h>
 
 #include "core/alloc.h"
+#include "core/path.h"
 #include "onnx/onnx_internal.h"
 
 typedef struct patch {
@@ -176,14 +177,7 @@ static rc_status patch_changed(rc_model *m, patch_list *pl, const int *changed, 
 }
 
 static rc_status refuse_input_path(const rc_model *m, const char *path, rc_err *e) {
-  int same = same_file(path, m->path);
-  if (!same) {
-    char *a = realpath(path, NULL), *b = realpath(m->path, NULL);
-    same = a && b && !strcmp(a, b);
-    free(a);
-    free(b);
-  }
-  if (same)
+  if (rc__path_same_file(path, m->path))
     return rc__fail(e, RC_ERR_INVALID,
                     "%s: is the model that was read; recoup never overwrites its input, choose "
                     "another output path", path);
