@@ -1,4 +1,5 @@
 #define _POSIX_C_SOURCE 200809L /* sigaction */
+#include <cJSON.h>
 #include <cblas.h>
 #include <errno.h>
 #include <getopt.h>
@@ -12,21 +13,64 @@
 #include <unistd.h>
 
 #include "cli/cli.h"
+#include "core/escape.h"
 #include "core/path.h"
 
 int cli_fail(const rc_err *e) {
-  fprintf(stderr, "recoup: error: %s\n", e && e->msg[0] ? e->msg : rc_strerror(e ? e->code : -1));
+  char buf[4 * sizeof e->msg];
+  fprintf(stderr, "recoup: error: %s\n",
+          rc__escape(buf, sizeof buf, e && e->msg[0] ? e->msg : rc_strerror(e ? e->code : -1)));
   return RC_EXIT_FAIL;
 }
 
 int cli_usage_error(const char *cmd, const char *fmt, ...) {
+  char raw[1024], msg[4096];
   va_list ap;
   va_start(ap, fmt);
-  fprintf(stderr, "recoup%s%s: ", cmd ? " " : "", cmd ? cmd : "");
-  vfprintf(stderr, fmt, ap);
+  vsnprintf(raw, sizeof raw, fmt, ap);
   va_end(ap);
-  fprintf(stderr, "\nTry 'recoup%s%s --help'.\n", cmd ? " " : "", cmd ? cmd : "");
+  /* One line: the hint to --help rides on it. */
+  fprintf(stderr, "recoup%s%s: %s (see 'recoup%s%s --help')\n", cmd ? " " : "", cmd ? cmd : "",
+          rc__escape(msg, sizeof msg, raw), cmd ? " " : "", cmd ? cmd : "");
   return RC_EXIT_USAGE;
+}
+
+const char *cli_esc(const char *s, char *buf, size_t n) { return rc__escape(buf, n, s); }
+
+int cli_text_width(const char *s) {
+  int w = 0;
+  for (; s && *s; s++) w += ((unsigned char)*s & 0xc0) != 0x80;
+  return w;
+}
+
+void cli_print_cell(FILE *f, const char *s, int width) {
+  int pad = width - cli_text_width(s);
+  fprintf(f, "%s%*s", s, pad > 0 ? pad : 0, "");
+}
+
+void cli_json_escape_tree(cJSON *j) {
+  for (; j; j = j->next) {
+    char buf[8192];
+    if (j->string && rc__needs_escape(j->string)) {
+      rc__escape(buf, sizeof buf, j->string);
+      char *k = cJSON_malloc(strlen(buf) + 1);
+      /* Keys the tree owns are freed with it; a constant key is only replaced. */
+      if (k) {
+        strcpy(k, buf);
+        if (!(j->type & cJSON_StringIsConst)) cJSON_free(j->string);
+        j->string = k;
+        j->type &= ~cJSON_StringIsConst;
+      }
+    }
+    if (cJSON_IsString(j) && j->valuestring && rc__needs_escape(j->valuestring))
+      cJSON_SetValuestring(j, rc__escape(buf, sizeof buf, j->valuestring));
+    cli_json_escape_tree(j->child);
+  }
+}
+
+char *cli_json_print(cJSON *j) {
+  if (j) cli_json_escape_tree(j->child);
+  return cJSON_Print(j);
 }
 
 rc_status cli_check_output(const char *label, const char *out, const char *const *inputs,

@@ -694,7 +694,7 @@ static void print_json(const cJSON *meta, const cJSON *records) {
   cJSON *root = cJSON_CreateObject();
   cJSON_AddItemToObject(root, "meta", cJSON_Duplicate(meta, 1));
   cJSON_AddItemToObject(root, "jobs", cJSON_Duplicate(records, 1));
-  char *text = cJSON_Print(root);
+  char *text = cli_json_print(root);
   if (text) puts(text);
   free(text);
   cJSON_Delete(root);

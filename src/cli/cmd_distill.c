@@ -584,7 +584,7 @@ static rc_status write_report(const distill_args *a, const rc_distill_result *r,
 static void print_results(const distill_args *a, const rc_distill_result *r, double verify_diff) {
   if (a->json) {
     cJSON *root = results_json(a, r, verify_diff);
-    char *text = cJSON_Print(root);
+    char *text = cli_json_print(root);
     if (text) puts(text);
     free(text);
     cJSON_Delete(root);

@@ -175,7 +175,7 @@ static void print_result(const eval_args *a, const cli_samples *s, const rc_metr
     }
     if (k) cJSON_AddNumberToObject(root, "classes", (double)k);
     if (a->out) cJSON_AddStringToObject(root, "out", a->out);
-    char *text = cJSON_Print(root);
+    char *text = cli_json_print(root);
     if (text) puts(text);
     free(text);
     cJSON_Delete(root);

@@ -150,7 +150,7 @@ static void print_json(const char *in, const char *out, const rc_prune_opts *o, 
   cJSON_AddNumberToObject(t, "channels_removed", (double)r->channels_removed);
   cJSON *notes = cJSON_AddArrayToObject(root, "notes");
   for (int i = 0; i < r->n_notes; i++) cJSON_AddItemToArray(notes, cJSON_CreateString(r->notes[i]));
-  char *text = cJSON_Print(root);
+  char *text = cli_json_print(root);
   if (text) puts(text);
   free(text);
   cJSON_Delete(root);

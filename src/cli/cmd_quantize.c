@@ -261,7 +261,7 @@ static void print_json(const quantize_args *a, const rc_quant_report *r, const c
     cJSON_AddNumberToObject(root, "top1_agreement", c->m.agreement);
     cJSON_AddNumberToObject(root, "mean_kl_float_to_quantized", c->m.kl);
   }
-  char *text = cJSON_Print(root);
+  char *text = cli_json_print(root);
   if (text) puts(text);
   free(text);
   cJSON_Delete(root);

@@ -3,6 +3,8 @@
 #define _DEFAULT_SOURCE /* gmtime_r, fsync */
 #include "cli/report.h"
 
+#include "cli/cli.h"
+
 #include <errno.h>
 #include <fcntl.h>
 #include <math.h>
@@ -820,7 +822,24 @@ static void write_html(sbuf *b, const char *title, const cJSON *meta, const cJSO
 
 /* ---- Writing the folder ------------------------------------------------------------------ */
 
+static rc_status write_escaped(const char *dir, const cJSON *meta, const cJSON *records, rc_err *e);
+
+/* Names and paths in records come from files: every report format gets them
+ * escaped (cli_json_escape_tree), HTML then adds its entities. */
 rc_status cli_report_write(const char *dir, const cJSON *meta, const cJSON *records, rc_err *e) {
+  cJSON *m = cJSON_Duplicate(meta, 1), *r = cJSON_Duplicate(records, 1);
+  rc_status s = m && r ? RC_OK : rc__fail(e, RC_ERR_NOMEM, "out of memory");
+  if (s == RC_OK) {
+    cli_json_escape_tree(m);
+    cli_json_escape_tree(r);
+    s = write_escaped(dir, m, r, e);
+  }
+  cJSON_Delete(m);
+  cJSON_Delete(r);
+  return s;
+}
+
+static rc_status write_escaped(const char *dir, const cJSON *meta, const cJSON *records, rc_err *e) {
   char path[4200];
   const cJSON *r;
   cJSON_ArrayForEach(r, records) {
