@@ -65,6 +65,9 @@ extern volatile sig_atomic_t cli_stop_requested;
 void cli_catch_stop_signals(void);
 
 struct option;
+/* After getopt_long returned '?' (main sets opterr = 0, so getopt printed
+ * nothing): one usage line naming the option and what is wrong with it. */
+int cli_bad_option(const char *cmd, char **argv, const struct option *longopts);
 /* getopt_long over argv, handing every option to apply(ctx, opt, value).
  * Returns 0, a usage status from apply, RC_EXIT_USAGE for an unknown option,
  * or -1 after printing usage for --help/-h. */

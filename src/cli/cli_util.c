@@ -154,6 +154,31 @@ void cli_catch_stop_signals(void) {
   sigaction(SIGHUP, &sa, NULL);
 }
 
+int cli_bad_option(const char *cmd, char **argv, const struct option *longopts) {
+  const char *arg = optind > 0 ? argv[optind - 1] : "";
+  if (arg[0] == '-' && arg[1] == '-') {
+    const char *name = arg + 2, *eq = strchr(name, '=');
+    size_t len = eq ? (size_t)(eq - name) : strlen(name);
+    for (const struct option *o = longopts; o && o->name; o++)
+      if (strlen(o->name) == len && !strncmp(o->name, name, len)) {
+        if (o->has_arg == required_argument && !eq) return cli_usage_error(cmd, "option '--%s' needs a value", o->name);
+        if (o->has_arg == no_argument && eq) return cli_usage_error(cmd, "option '--%s' takes no value", o->name);
+      }
+    /* getopt_long accepts unambiguous prefixes: one that matches several is ambiguous. */
+    int matches = 0;
+    for (const struct option *o = longopts; o && o->name; o++) matches += !strncmp(o->name, name, len);
+    if (matches > 1) return cli_usage_error(cmd, "option '--%.*s' is ambiguous", (int)len, name);
+    return cli_usage_error(cmd, "unknown option '--%.*s'", (int)len, name);
+  }
+  if (optopt) {
+    for (const struct option *o = longopts; o && o->name; o++)
+      if (o->val == optopt && !o->flag && o->has_arg == required_argument)
+        return cli_usage_error(cmd, "option '-%c' needs a value", optopt);
+    return cli_usage_error(cmd, "unknown option '-%c'", optopt);
+  }
+  return cli_usage_error(cmd, "unknown option '%s'", arg);
+}
+
 int cli_parse_options(int argc, char **argv, const struct option *longopts, const char *cmd,
                       int (*apply)(void *ctx, int opt, const char *value), void *ctx, void (*usage)(FILE *)) {
   int c;
@@ -163,7 +188,7 @@ int cli_parse_options(int argc, char **argv, const struct option *longopts, cons
       usage(stdout);
       return -1;
     }
-    if (c == '?') return cli_usage_error(cmd, "unknown option");
+    if (c == '?') return cli_bad_option(cmd, argv, longopts);
     int r = apply(ctx, c, optarg);
     if (r) return r;
   }

@@ -40,8 +40,8 @@ static void usage(FILE *f) {
       "\n"
       "Options:\n"
       "  --jobs N          jobs at once (default 1)\n"
-      "  --threads T       threads for all jobs together (default: all cores); each\n"
-      "                    job gets T/N, at least one\n"
+      "  --threads T       threads for all jobs together; 0 (the default) uses every\n"
+      "                    online core; each job gets T/N, at least one\n"
       "  --shard K/N       run only the jobs whose 0-based index i has i mod N = K-1,\n"
       "                    so N machines given K = 1..N run every job exactly once\n"
       "  --resume          skip jobs whose output still has the content (SHA-256)\n"
@@ -124,7 +124,7 @@ static int parse_args(batch_args *a, int argc, char **argv) {
       case OPT_MERGE: a->merge = 1; break;
       case OPT_ALLOW_OUTSIDE: a->allow_outside = 1; break;
       case OPT_JSON: a->json = 1; break;
-      default: return cli_usage_error("batch", "unknown option");
+      default: return cli_bad_option("batch", argv, longopts);
     }
   }
   if (a->merge) {

@@ -69,7 +69,7 @@ static void usage(FILE *f) {
       "  --freeze PATTERN         do not train initializers matching this glob\n"
       "  --seed S                 data order and split (default 1); same seed and\n"
       "                           threads give a byte-identical output file\n"
-      "  --threads N              compute threads (default: all cores)\n"
+      "  --threads N              compute threads; 0 (the default) uses every online core\n"
       "\n"
       "Interruption:\n"
       "  --checkpoint FILE        where to keep the run's state (default OUT.ckpt; the\n"

@@ -32,7 +32,7 @@ static void usage(FILE *f) {
           "  --std D[,D...]         then divide, one value or one per channel\n"
           "  --ref OTHER.onnx       compare with another model on the same samples\n"
           "  --out FILE             X.npy: first output; X.npz: every output by name\n"
-          "  --threads N            threads for compute (default: all cores)\n"
+          "  --threads N            compute threads; 0 (the default) uses every online core\n"
           "  --json                 print results as one JSON object on stdout\n"
           "  -h, --help             show this help\n"
           "\n"
@@ -81,7 +81,7 @@ static int parse_args(eval_args *a, int argc, char **argv) {
         break;
       case 'j': a->json = 1; break;
       case 'h': usage(stdout); return -1;
-      default: return cli_usage_error("eval", "unknown option");
+      default: return cli_bad_option("eval", argv, longopts);
     }
   }
   if (optind != argc - 1) return cli_usage_error("eval", "expects exactly one MODEL.onnx");

@@ -435,7 +435,7 @@ int rc_cmd_inspect(int argc, char **argv) {
       usage(stdout);
       return RC_EXIT_OK;
     } else
-      return cli_usage_error("inspect", "unknown option");
+      return cli_bad_option("inspect", argv, longopts);
   }
   if (want_pairs) {
     if (optind != argc - 2) return cli_usage_error("inspect", "--pairs expects DENSE.onnx STUDENT.onnx");

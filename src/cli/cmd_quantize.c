@@ -39,7 +39,7 @@ static void usage(FILE *f) {
           "  --percentile P           central share of values kept (default 99.99)\n"
           "  --batch N                calibration batch size (default 64)\n"
           "  --scale S, --mean M[,..], --std D[,..]   x' = (x*S - M) / D, as for eval\n"
-          "  --threads N              compute threads (default: all cores)\n"
+          "  --threads N              compute threads; 0 (the default) uses every online core\n"
           "  --json                   print the summary as one JSON object on stdout\n"
           "  -h, --help               show this help\n"
           "\n"
