@@ -250,12 +250,12 @@ static void draw_status(batch *b) {
 static void event(batch *b, const char *fmt, ...) RC_PRINTF(2, 3);
 static void event(batch *b, const char *fmt, ...) {
   clear_status(b);
+  char raw[2048], msg[4096];
   va_list ap;
   va_start(ap, fmt);
-  fprintf(stderr, "recoup batch: ");
-  vfprintf(stderr, fmt, ap);
-  fprintf(stderr, "\n");
+  vsnprintf(raw, sizeof raw, fmt, ap);
   va_end(ap);
+  fprintf(stderr, "recoup batch: %s\n", cli_esc(raw, msg, sizeof msg)); /* paths and errors from files */
   draw_status(b);
 }
 
@@ -665,7 +665,9 @@ static void print_summary(const cJSON *records, const char *report_dir) {
     const cJSON *name = cJSON_GetObjectItemCaseSensitive(r, "name");
     if (strcmp(status, CLI_JOB_OK)) {
       const cJSON *err = cJSON_GetObjectItemCaseSensitive(r, "error");
-      printf("  %-24.24s %-12s %s\n", name->valuestring, status, cJSON_IsString(err) ? err->valuestring : "");
+      char nb[512], eb[2048];
+      printf("  %-24.24s %-12s %s\n", cli_esc(name->valuestring, nb, sizeof nb), status,
+             cJSON_IsString(err) ? cli_esc(err->valuestring, eb, sizeof eb) : "");
       continue;
     }
     ok++;
@@ -681,7 +683,8 @@ static void print_summary(const cJSON *records, const char *report_dir) {
     const cJSON *secs = cJSON_GetObjectItemCaseSensitive(r, "seconds");
     char t[32] = "-";
     if (cJSON_IsNumber(secs)) fmt_hms(t, sizeof t, secs->valuedouble);
-    printf("  %-24.24s %-12s %12s %12s %12s %10s  (%s)\n", name->valuestring, status, cells[0], cells[1], cells[2], t,
+    char jb[512];
+    printf("  %-24.24s %-12s %12s %12s %12s %10s  (%s)\n", cli_esc(name->valuestring, jb, sizeof jb), status, cells[0], cells[1], cells[2], t,
            vm);
   }
   printf("\n%d of %d jobs succeeded.%s%s\n", ok, n, report_dir ? " Report: " : "", report_dir ? report_dir : "");

@@ -471,7 +471,8 @@ static void on_progress(void *user, const rc_distill_progress *p) {
   progress_state *ps = user;
   char eta[32];
   if (p->event == RC_DISTILL_NOTE) {
-    fprintf(stderr, "%srecoup: %s\n", ps->tty ? "\r\033[K" : "", p->note);
+    char nb[1024];
+    fprintf(stderr, "%srecoup: %s\n", ps->tty ? "\r\033[K" : "", cli_esc(p->note, nb, sizeof nb));
     return;
   }
   if (p->event == RC_DISTILL_EPOCH) {
@@ -591,6 +592,7 @@ static void print_results(const distill_args *a, const rc_distill_result *r, dou
     return;
   }
   char b1[32], b2[32];
+  char ob[1024];
   printf("\nValidation on %lld held-out samples (%s):\n", (long long)r->n_val,
          a->n_val_data ? "--val-data" : "a seeded slice of --data");
   printf("  %-22s %10s %13s %14s\n", "model", "accuracy", "agreement", "KL to dense");
@@ -600,8 +602,11 @@ static void print_results(const distill_args *a, const rc_distill_result *r, dou
   if (r->n_layers) {
     printf("\nLayer outputs against the dense model (signal-to-noise ratio, dB; higher is closer):\n");
     printf("  %-44s %10s %10s\n", "student tensor", "before", "after");
-    for (int i = 0; i < r->n_layers; i++)
-      printf("  %-44s %10.1f %10.1f\n", r->layers[i].student, r->layers[i].sqnr_before_db, r->layers[i].sqnr_after_db);
+    for (int i = 0; i < r->n_layers; i++) {
+      char nb[512];
+      printf("  %-44s %10.1f %10.1f\n", cli_esc(r->layers[i].student, nb, sizeof nb), r->layers[i].sqnr_before_db,
+             r->layers[i].sqnr_after_db);
+    }
   }
   printf("\n%lld steps in %.1f s (%.0f samples/s); %s values trained in %d tensors\n", (long long)r->steps_done,
          r->seconds, r->samples_per_s, cli_group_digits(r->n_trainable, b1, sizeof b1), r->n_trainable_tensors);
@@ -611,9 +616,11 @@ static void print_results(const distill_args *a, const rc_distill_result *r, dou
     printf("grids: %d quantized weights rewritten on their unchanged grids (scales, zero points, dtypes, axes)\n",
            r->n_grids);
   if (r->improved)
-    printf("wrote %s (best epoch %lld; reloaded and checked: outputs identical)\n", a->out, (long long)r->best_epoch);
+    printf("wrote %s (best epoch %lld; reloaded and checked: outputs identical)\n", cli_esc(a->out, ob, sizeof ob),
+           (long long)r->best_epoch);
   else
-    printf("training never beat the input on validation: wrote %s with the input's values unchanged\n", a->out);
+    printf("training never beat the input on validation: wrote %s with the input's values unchanged\n",
+           cli_esc(a->out, ob, sizeof ob));
   if (r->rollbacks) printf("non-finite steps rolled back: %d%s\n", r->rollbacks, r->stopped_nonfinite ? " (stopped early)" : "");
   printf("\nValidate the recovered model on your own held-out data before deploying it;\n"
          "these figures hold only for the samples measured.\n");

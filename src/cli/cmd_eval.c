@@ -181,7 +181,8 @@ static void print_result(const eval_args *a, const cli_samples *s, const rc_metr
     cJSON_Delete(root);
     return;
   }
-  printf("model            %s\n", a->model);
+  char nb[1024];
+  printf("model            %s\n", cli_esc(a->model, nb, sizeof nb));
   printf("samples          %lld\n", (long long)s->n);
   if (m && m->has_labels) {
     printf("top-1 accuracy   %.2f%% (%lld of %lld)\n", 100 * m->top1, (long long)(m->top1 * (double)m->n + 0.5),
@@ -189,11 +190,11 @@ static void print_result(const eval_args *a, const cli_samples *s, const rc_metr
     if (m->top5 >= 0) printf("top-5 accuracy   %.2f%%\n", 100 * m->top5);
   }
   if (m && m->has_ref) {
-    printf("reference        %s\n", a->ref);
+    printf("reference        %s\n", cli_esc(a->ref, nb, sizeof nb));
     printf("top-1 agreement  %.2f%%\n", 100 * m->agreement);
     printf("mean KL(ref||model) %.6f\n", m->kl);
   }
-  if (a->out) printf("outputs written  %s\n", a->out);
+  if (a->out) printf("outputs written  %s\n", cli_esc(a->out, nb, sizeof nb));
 }
 
 /* --out may be none of the files read (compared as files, not names). */

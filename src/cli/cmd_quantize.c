@@ -270,7 +270,8 @@ static void print_json(const quantize_args *a, const rc_quant_report *r, const c
 static void print_table(const quantize_args *a, const rc_quant_report *r, const comparison *c, long long before,
                         long long after) {
   char b1[32], b2[32];
-  printf("quantized %s -> %s\n", a->model, a->out);
+  char mb[1024], ob[1024];
+  printf("quantized %s -> %s\n", cli_esc(a->model, mb, sizeof mb), cli_esc(a->out, ob, sizeof ob));
   printf("weights      %d-bit symmetric per channel, stored as %s%s\n", a->cfg.weight_bits,
          rc_dtype_name(r->weight_dtype),
          r->int4_as_int8 ? " (opset below 21 has no int4: values kept in [-7, 7] on int8 tensors)" : "");
@@ -283,7 +284,8 @@ static void print_table(const quantize_args *a, const rc_quant_report *r, const 
   printf("  %-28s %-14s %8s %12s %12s %6s\n", "layer", "op", "channels", "scale min", "scale max", "bias");
   for (int i = 0; i < r->n_layers; i++) {
     const rc_quant_layer *L = &r->layers[i];
-    printf("  %-28.28s %-14s %8lld %12.4g %12.4g %6s%s\n", L->name, L->op_type, (long long)L->channels, L->scale_min,
+    char nb[512];
+    printf("  %-28.28s %-14s %8lld %12.4g %12.4g %6s%s\n", cli_esc(L->name, nb, sizeof nb), L->op_type, (long long)L->channels, L->scale_min,
            L->scale_max, bias_text(L->bias), L->bn_folded ? "  (BN folded)" : "");
   }
   if (r->n_grids) {
