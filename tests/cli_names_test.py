@@ -28,22 +28,16 @@ import sys
 
 import numpy as np
 import onnx
-from onnx import TensorProto, helper, mapping, numpy_helper, shape_inference
+from onnx import mapping, numpy_helper, shape_inference
+
+from cli_models import mlp
+from e2e import Run
 
 RECOUP, WORK = os.path.abspath(sys.argv[1]), os.path.abspath(sys.argv[2])
 shutil.rmtree(WORK, ignore_errors=True)
 os.makedirs(WORK)
-failures = []
-passed = 0
-
-
-def check(name, ok, detail=""):
-    global passed
-    print(("ok   " if ok else "FAIL ") + name + (": " + detail if detail else ""), flush=True)
-    if ok:
-        passed += 1
-    else:
-        failures.append(name)
+T = Run(RECOUP)
+check = T.check
 
 
 def run(args, cwd=WORK):
@@ -52,40 +46,6 @@ def run(args, cwd=WORK):
 
 def w(*parts):
     return os.path.join(WORK, *parts)
-
-
-def mlp(path, names=None, sizes=(6, 8, 4), batch="N", out_type="full", hidden=None):
-    """x (N, sizes[0]) -> Gemm -> Relu -> ... -> logits. `names` renames
-    values and nodes; out_type "full" declares dtype and shape, "dtype" only
-    the dtype, "none" no type at all."""
-    n = dict(x="x", logits="logits")
-    n.update(names or {})
-    rng = np.random.RandomState(0)
-    inits, nodes, cur = [], [], n["x"]
-    for i in range(len(sizes) - 1):
-        wname, bname = f"w{i}", f"b{i}"
-        inits += [numpy_helper.from_array(rng.randn(sizes[i + 1], sizes[i]).astype(np.float32), wname),
-                  numpy_helper.from_array(np.zeros(sizes[i + 1], np.float32), bname)]
-        last = i == len(sizes) - 2
-        out = n["logits"] if last else n.get(f"h{i}", f"h{i}")
-        nodes.append(helper.make_node("Gemm", [cur, wname, bname], [out], transB=1, name=n.get(f"fc{i}", f"fc{i}")))
-        if not last:
-            nodes.append(helper.make_node("Relu", [out], [out + "_relu"], name=f"act{i}"))
-            cur = out + "_relu"
-    if out_type == "full":
-        out_vi = helper.make_tensor_value_info(n["logits"], TensorProto.FLOAT, [batch, sizes[-1]])
-    elif out_type == "dtype":
-        out_vi = helper.make_tensor_value_info(n["logits"], TensorProto.FLOAT, None)
-    else:
-        out_vi = helper.make_empty_tensor_value_info(n["logits"])
-    g = helper.make_graph(nodes, "mlp", [helper.make_tensor_value_info(n["x"], TensorProto.FLOAT, [batch, sizes[0]])],
-                          [out_vi], inits)
-    m = helper.make_model(g, opset_imports=[helper.make_opsetid("", 13)])
-    m.ir_version = 8
-    if out_type == "full":  # onnx 1.12's checker wants a shape on graph outputs; some exporters write none
-        onnx.checker.check_model(m)
-    onnx.save(m, path)
-    return path
 
 
 def clean(stream, json_text=False):
@@ -309,7 +269,4 @@ r = run(["prune", big, "--sparsity", "0.9", "--out", w("edges_t.onnx")])
 check("prune table prints the overall sparsity and the note", b"overall sparsity" in r.stdout and
       b"note" in r.stdout and b"--include-first-last" in r.stdout)
 
-print(f"{passed} passed, {len(failures)} failed")
-for f in failures:
-    print("FAIL", f)
-sys.exit(1 if failures else 0)
+T.finish()

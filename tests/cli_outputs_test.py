@@ -6,7 +6,7 @@ under another name (a symbolic link, a hard link, "./x", "d/../x") must be
 refused: exit status 1, exactly one line on stderr that says so, and the
 input's bytes unchanged (SHA-256 from Python's hashlib before and after).
 
-Models are built here with the onnx package (Debian python3-onnx) and data
+Models are built by cli_models.py with the onnx package (Debian python3-onnx) and data
 with NumPy (Debian python3-numpy); the ONNX checker accepts each model first.
 
 Usage: cli_outputs_test.py RECOUP_BINARY WORK_DIR
@@ -21,35 +21,14 @@ import subprocess
 import sys
 
 import numpy as np
-import onnx
-from onnx import TensorProto, helper, numpy_helper
+
+from cli_models import mlp
+from e2e import Run
 
 RECOUP, WORK = os.path.abspath(sys.argv[1]), os.path.abspath(sys.argv[2])
 shutil.rmtree(WORK, ignore_errors=True)
 os.makedirs(WORK)
-failures = []
-passed = 0
-
-
-def classifier(path, zero_fraction=0.0):
-    """x (N, 6) -> Gemm -> Relu -> Gemm -> logits (N, 4)."""
-    rng = np.random.RandomState(0)
-    w1 = rng.randn(8, 6).astype(np.float32)
-    w2 = rng.randn(4, 8).astype(np.float32)
-    if zero_fraction:
-        w1[np.abs(w1) < np.quantile(np.abs(w1), zero_fraction)] = 0
-    inits = [numpy_helper.from_array(w1, "w1"), numpy_helper.from_array(np.zeros(8, np.float32), "b1"),
-             numpy_helper.from_array(w2, "w2"), numpy_helper.from_array(np.zeros(4, np.float32), "b2")]
-    nodes = [helper.make_node("Gemm", ["x", "w1", "b1"], ["h"], transB=1, name="fc1"),
-             helper.make_node("Relu", ["h"], ["r"], name="act"),
-             helper.make_node("Gemm", ["r", "w2", "b2"], ["logits"], transB=1, name="fc2")]
-    g = helper.make_graph(nodes, "clf", [helper.make_tensor_value_info("x", TensorProto.FLOAT, ["N", 6])],
-                          [helper.make_tensor_value_info("logits", TensorProto.FLOAT, ["N", 4])], inits)
-    m = helper.make_model(g, opset_imports=[helper.make_opsetid("", 13)])
-    m.ir_version = 8
-    onnx.checker.check_model(m)
-    onnx.save(m, path)
-    return path
+T = Run(RECOUP)
 
 
 def digest(path):
@@ -65,7 +44,6 @@ SAYS_INPUT = re.compile(r"refusing to overwrite an input|never overwrites its in
 def refused(name, args, watched, cwd=WORK):
     """recoup must exit 1 with one stderr line saying it refuses, and every
     watched file must keep its bytes."""
-    global passed
     before = {p: digest(p) for p in watched}
     keep = {p: open(p, "rb").read() for p in watched}
     r = subprocess.run([RECOUP] + args, capture_output=True, text=True, timeout=300, cwd=cwd)
@@ -83,20 +61,16 @@ def refused(name, args, watched, cwd=WORK):
             problems.append(f"{os.path.basename(p)} changed: sha256 {d[:12]} before, {after[:12]} after")
             with open(p, "wb") as f:  # so the next case starts from the same files
                 f.write(keep[p])
-    if problems:
-        failures.append(f"{name}: {'; '.join(problems)}\n    stderr: {r.stderr.strip()[:400]}")
-        print(f"FAIL {name}: {'; '.join(problems)}")
-    else:
-        passed += 1
-        print(f"ok   {name}: {lines[0]}")
+    T.check(name, not problems, f"{'; '.join(problems)}; stderr: {r.stderr.strip()[:400]}" if problems
+            else lines[0])
 
 
 def w(*parts):
     return os.path.join(WORK, *parts)
 
 
-dense = classifier(w("dense.onnx"))
-pruned = classifier(w("pruned.onnx"), zero_fraction=0.5)
+dense = mlp(w("dense.onnx"))
+pruned = mlp(w("pruned.onnx"), zero_fraction=0.5)
 x = np.random.RandomState(1).randn(64, 6).astype(np.float32)
 np.save(w("x.npy"), x)
 np.savez(w("xs.npz"), x=x)
@@ -194,7 +168,4 @@ with open(w("shard", "report.json"), "w") as f:
 refused("batch --merge-reports into a folder being merged",
         ["batch", "--merge-reports", w("shard"), "--report", w("sub", "..", "shard")], [w("shard", "report.json")])
 
-for f in failures:
-    print("FAIL", f)
-print(f"{passed} passed, {len(failures)} failed")
-sys.exit(1 if failures else 0)
+T.finish()
