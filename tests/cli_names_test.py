@@ -132,6 +132,20 @@ err = r.stderr.decode(errors="replace").strip().splitlines()
 check("ambiguous .npz refused with one line listing its arrays",
       r.returncode == 1 and len(err) == 1 and "'a'" in err[0] and "'b'" in err[0] and "'x'" in err[0], str(err))
 
+lab = np.arange(40) % 4
+np.savez(w("labels_multi.npz"), other=np.zeros(41, np.int64), labels=lab)  # "other" first: 41 would not fit
+np.savez(w("labels_ambiguous.npz"), a=lab, b=lab)
+acc = {}
+for f in ("labels_multi.npz", "x_labels.npy"):
+    if f.endswith(".npy"):
+        np.save(w(f), lab)
+    r = run(["eval", model, "--data", w("x.npy"), "--labels", w(f), "--json"])
+    acc[f] = json.loads(r.stdout)["top1_accuracy"] if r.returncode == 0 else None
+check("labels .npz with several arrays uses the one named 'labels'",
+      acc["labels_multi.npz"] is not None and acc["labels_multi.npz"] == acc["x_labels.npy"], str(acc))
+r = run(["eval", model, "--data", w("x.npy"), "--labels", w("labels_ambiguous.npz")])
+check("ambiguous labels .npz refused", r.returncode == 1 and b"'a', 'b'" in r.stderr, repr(r.stderr[:200]))
+
 # ---- Item 12: hostile names --------------------------------------------------------------------
 
 # NumPy writes member names as given: a control sequence and a line break.

@@ -85,10 +85,11 @@ static int looks_like_npz(const char *path) {
   return rc_data_detect(head, n) == RC_DATA_NPZ;
 }
 
-/* The samples for input `name` from file: an .npz with several arrays gives
- * the one named like the input (NumPy's savez(x=...) stores "x.npy"); one
- * array is used whatever its name; anything else is refused with the list. */
-static rc_status read_input_file(rc_array *a, const char *file, const char *name, rc_err *e) {
+/* The array for `name` (a model input, or "labels") from file: an .npz
+ * with several arrays gives the one so named (NumPy's savez(x=...) stores
+ * "x.npy"); one array is used whatever its name; anything else is refused
+ * with the list. `what` says what the name is, for the message. */
+static rc_status read_named_array(rc_array *a, const char *file, const char *name, const char *what, rc_err *e) {
   if (!looks_like_npz(file)) return rc_array_read(a, file, NULL, 0, e);
   char **names = NULL;
   int count = 0;
@@ -111,9 +112,9 @@ static rc_status read_input_file(rc_array *a, const char *file, const char *name
       o += (size_t)snprintf(list + o, sizeof list - o, "%s'%.*s'", i ? ", " : "", (int)(len > 64 ? 64 : len), names[i]);
     }
     st = rc__fail(e, RC_ERR_INVALID,
-                  "%s holds %d arrays (%s) and none is named '%s' like the model's input: save the samples "
-                  "under that name, or one array per file",
-                  file, count, count ? list : "none", name);
+                  "%s holds %d arrays (%s) and none is named '%s' like %s: save it under that name, or "
+                  "one array per file",
+                  file, count, count ? list : "none", name, what);
   }
   rc_data_names_free(names);
   return st;
@@ -142,7 +143,7 @@ rc_status cli_samples_load(cli_samples *s, const cli_data_opts *o, const rc_grap
   for (int i = 0; i < g->n_inputs; i++) {
     const rc_value *input = &g->values[g->inputs[i]];
     if (!files[i]) return rc__fail(e, RC_ERR_INVALID, "no --data for input '%s' of %s", input->name, g->path);
-    RC_TRY(read_input_file(&s->inputs[i], files[i], input->name, e));
+    RC_TRY(read_named_array(&s->inputs[i], files[i], input->name, "the model's input", e));
     if (s->inputs[i].t.rank < 1)
       return rc__fail(e, RC_ERR_SHAPE, "%s: a scalar is not a set of samples", files[i]);
     RC_TRY(prepare_input(&s->inputs[i], input, o, files[i], e));
@@ -158,7 +159,7 @@ rc_status cli_samples_load(cli_samples *s, const cli_data_opts *o, const rc_grap
 
 rc_status cli_samples_load_labels(cli_samples *s, const char *path, int64_t n_classes, rc_err *e) {
   rc_array raw = {0};
-  RC_TRY(rc_array_read(&raw, path, NULL, 0, e));
+  RC_TRY(read_named_array(&raw, path, "labels", "the labels", e));
   rc_status st = rc_labels_to_int32(&s->labels, &raw, s->n, n_classes, e);
   rc_array_free(&raw);
   if (st != RC_OK) return rc__wrap(e, "%s", path);

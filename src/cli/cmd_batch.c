@@ -785,10 +785,10 @@ static rc_status plan_runs(batch *b, rc_err *e) {
 }
 
 /* The report folder's files and the state file may be none of the files the
- * jobs read, nor the manifest (compared as files, not names). */
+ * jobs read or write, nor the manifest (compared as files, not names). */
 static rc_status check_outputs(const batch *b, rc_err *e) {
   int n = 1;
-  for (int i = 0; i < b->m.n_jobs; i++) n += b->m.jobs[i].n_inputs;
+  for (int i = 0; i < b->m.n_jobs; i++) n += b->m.jobs[i].n_inputs + 1;
   const char **inputs = rc__calloc((size_t)n, sizeof *inputs);
   const char **names = rc__calloc((size_t)b->m.n_jobs + 1, sizeof *names);
   rc_status s = RC_OK;
@@ -799,6 +799,7 @@ static rc_status check_outputs(const batch *b, rc_err *e) {
     for (int i = 0; i < b->m.n_jobs; i++) {
       names[i] = b->m.jobs[i].name;
       for (int f = 0; f < b->m.jobs[i].n_inputs; f++) inputs[n++] = b->m.jobs[i].inputs[f];
+      inputs[n++] = b->m.jobs[i].out; /* an output, but a report file must not replace it either */
     }
     if (b->a->report) s = cli_report_refuse_inputs(b->a->report, names, b->m.n_jobs, inputs, NULL, n, e);
     else s = rc__path_refuse_inputs("state file", b->state_path, inputs, NULL, n, e);
