@@ -5,7 +5,7 @@
 #include <unistd.h>
 
 #include "cli/cli.h"
-#include "graph/plan.h"
+#include "plan/plan.h"
 
 const char *cli_data_file(const char *arg) {
   const char *eq = strchr(arg, '=');

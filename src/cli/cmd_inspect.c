@@ -6,10 +6,11 @@
 
 #include "cli/cli.h"
 #include "core/alloc.h"
-#include "graph/inspect.h"
-#include "graph/plan.h"
 #include "onnx/io_decl.h"
-#include "onnx/model.h"
+#include "plan/count.h"
+#include "plan/inspect.h"
+#include "plan/load.h"
+#include "plan/plan.h"
 #include "train/pairing.h"
 
 static void usage(FILE *f) {
@@ -49,7 +50,8 @@ static int count_ops(const rc_graph *g, op_count *counts) {
   return n;
 }
 
-/* Input shapes with every symbolic dim taken as b. */
+/* Input shapes with every symbolic dim taken as b (rc__batch1_inputs is b = 1):
+ * planning at two batch sizes shows which output dims follow the batch. */
 static rc_tensor *batch_shapes(const rc_graph *g, int64_t b) {
   rc_tensor *ins = rc__calloc((size_t)g->n_inputs + 1, sizeof(rc_tensor));
   if (!ins) return NULL;
@@ -63,37 +65,8 @@ static rc_tensor *batch_shapes(const rc_graph *g, int64_t b) {
   return ins;
 }
 
-static rc_tensor *batch_one_shapes(const rc_graph *g) { return batch_shapes(g, 1); }
-
-/* Plan at batch 1 and add up MACs. */
-static int64_t macs_batch_one(const rc_graph *g, rc_err *e) {
-  rc_tensor *ins = batch_one_shapes(g);
-  if (!ins) return -1;
-  rc_plan *p = NULL;
-  int64_t total = -1;
-  if (rc_plan_create(&p, g, ins, NULL, e) == RC_OK) {
-    total = 0;
-    for (int i = 0; i < g->n_nodes; i++) total += rc__node_macs(p, &g->nodes[i]);
-  }
-  rc_plan_free(p);
-  rc__free(ins);
-  return total;
-}
-
 static const char *role_name(rc_weight_role r) {
   return r == RC_ROLE_BIAS ? "bias" : r == RC_ROLE_NORM ? "norm" : r == RC_ROLE_AFFINE ? "affine" : "weight";
-}
-
-static int64_t param_count(const rc_graph *g) {
-  int64_t n = 0;
-  for (int v = 0; v < g->n_values; v++)
-    if (g->values[v].kind == RC_VALUE_INITIALIZER &&
-        (rc_dtype_is_float(g->values[v].decl.dtype) || g->values[v].decl.dtype == RC_DTYPE_INT8 ||
-         g->values[v].decl.dtype == RC_DTYPE_UINT8 || g->values[v].decl.dtype == RC_DTYPE_INT4 ||
-         g->values[v].decl.dtype == RC_DTYPE_UINT4) &&
-        g->values[v].decl.rank > 0)
-      n += rc_tensor_numel(&g->values[v].decl);
-  return n;
 }
 
 static cJSON *shape_json(const rc_tensor *t) {
@@ -230,7 +203,7 @@ static void print_json(const rc_model *m, const io_shape *ins, const io_shape *o
   cJSON *jops = cJSON_AddObjectToObject(root, "ops");
   for (int i = 0; i < n_ops; i++) cJSON_AddNumberToObject(jops, ops[i].op, ops[i].n);
   cJSON_AddNumberToObject(root, "nodes", g->n_nodes);
-  cJSON_AddNumberToObject(root, "parameters", (double)param_count(g));
+  cJSON_AddNumberToObject(root, "parameters", (double)rc__graph_params(g));
   if (macs >= 0)
     cJSON_AddNumberToObject(root, "macs_batch_1", (double)macs);
   else
@@ -319,7 +292,7 @@ static void print_tables(const rc_model *m, const io_shape *ins, const io_shape 
   print_io("outputs", g, g->outputs, outs, g->n_outputs, iow);
   printf("nodes       %d:", g->n_nodes);
   for (int i = 0; i < n_ops; i++) printf("%s %s %d", i ? "," : "", cli_esc(ops[i].op, nb, sizeof nb), ops[i].n);
-  printf("\nparameters  %s\n", cli_group_digits(param_count(g), b1, sizeof b1));
+  printf("\nparameters  %s\n", cli_group_digits(rc__graph_params(g), b1, sizeof b1));
   if (macs >= 0)
     printf("MACs        %s per sample\n", cli_group_digits(macs, b2, sizeof b2));
   else
@@ -339,7 +312,7 @@ static void print_tables(const rc_model *m, const io_shape *ins, const io_shape 
     }
   }
   if (n_gr) {
-    printf("\n%-36s %-10s %-6s %-5s %s\n", "quantized tensor", "kind", "dtype", "axis", "scale / zero point");
+    printf("\n%-36s %-10s %-6s %-5s %s\n", "grid (integer tensor)", "kind", "dtype", "axis", "scale / zero point");
     for (int i = 0; i < n_gr; i++) {
       char axis[16] = "-";
       if (gr[i].axis >= 0) snprintf(axis, sizeof axis, "%d", gr[i].axis);
@@ -362,7 +335,7 @@ static int inspect_pairs(const char *tpath, const char *spath, const char *const
   rc_tensor *ins = NULL;
   int rc = RC_EXIT_FAIL;
   if (rc_model_load(&t, tpath, NULL, &e) != RC_OK || rc_model_load(&s, spath, NULL, &e) != RC_OK) goto out;
-  if (!(ins = batch_one_shapes(&s->graph))) goto out;
+  if (!(ins = rc__batch1_inputs(&s->graph))) goto out;
   if (rc_pairing_make(&pg, &t->graph, &s->graph, ins, pairs, n_pairs, 1, &e) != RC_OK) goto out;
   if (json) {
     cJSON *arr = cJSON_CreateArray();
@@ -457,7 +430,7 @@ int rc_cmd_inspect(int argc, char **argv) {
   }
   int n_ops = count_ops(g, ops);
   rc_err pe = {0}, se = {0};
-  int64_t macs = macs_batch_one(g, &pe);
+  int64_t macs = rc__graph_macs_batch1(g, &pe);
   io_shape *ins = rc__calloc((size_t)g->n_inputs + 1, sizeof *ins), *outs = rc__calloc((size_t)g->n_outputs + 1, sizeof *outs);
   if (!ins || !outs) {
     rc__free(ins);

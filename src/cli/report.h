@@ -54,8 +54,4 @@ rc_status cli_report_refuse_inputs(const char *dir, const char *const *names, in
 /* Read DIR/report.json; *report owns the parsed object. */
 rc_status cli_report_read(const char *dir, cJSON **report, rc_err *e);
 
-/* Write a whole file through a temporary file in the same folder and a
- * rename, so readers never see half a file. */
-rc_status cli_write_atomic(const char *path, const char *text, size_t n, rc_err *e);
-
 #endif

@@ -2,7 +2,7 @@
 
 #include <string.h>
 
-#include "onnx/onnx_internal.h"
+#include "ir/tensor_proto.h"
 
 static void from_value_info(const Onnx__ValueInfoProto *vi, rc_io_decl *d) {
   memset(d, 0, sizeof *d);

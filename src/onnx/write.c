@@ -17,8 +17,10 @@
 #include <sys/stat.h>
 
 #include "core/alloc.h"
+#include "core/file.h"
 #include "core/path.h"
-#include "onnx/onnx_internal.h"
+#include "ir/tensor_proto.h"
+#include "onnx/model.h"
 
 typedef struct patch {
   Onnx__TensorProto *t;

@@ -16,7 +16,7 @@
 #include <stdint.h>
 
 #include "core/status.h"
-#include "graph/ir.h"
+#include "ir/ir.h"
 
 typedef struct rc_qat_site {
   int dq;            /* the DequantizeLinear node */
