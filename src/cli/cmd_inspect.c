@@ -50,21 +50,6 @@ static int count_ops(const rc_graph *g, op_count *counts) {
   return n;
 }
 
-/* Input shapes with every symbolic dim taken as b (rc__batch1_inputs is b = 1):
- * planning at two batch sizes shows which output dims follow the batch. */
-static rc_tensor *batch_shapes(const rc_graph *g, int64_t b) {
-  rc_tensor *ins = rc__calloc((size_t)g->n_inputs + 1, sizeof(rc_tensor));
-  if (!ins) return NULL;
-  for (int i = 0; i < g->n_inputs; i++) {
-    ins[i] = g->values[g->inputs[i]].decl;
-    ins[i].data = NULL;
-    if (ins[i].rank < 0) ins[i].rank = 0;
-    for (int d = 0; d < ins[i].rank; d++)
-      if (ins[i].dims[d] < 0) ins[i].dims[d] = b;
-  }
-  return ins;
-}
-
 static const char *role_name(rc_weight_role r) {
   return r == RC_ROLE_BIAS ? "bias" : r == RC_ROLE_NORM ? "norm" : r == RC_ROLE_AFFINE ? "affine" : "weight";
 }
@@ -109,7 +94,7 @@ static void io_shapes(const rc_model *m, int is_output, io_shape *out, int n, rc
     if (is_output && (!out[i].d.dtype || out[i].d.rank < 0)) need = 1;
   }
   if (!need) return;
-  rc_tensor *s1 = batch_shapes(g, 1), *s2 = batch_shapes(g, 2);
+  rc_tensor *s1 = rc__batch_inputs(g, 1), *s2 = rc__batch_inputs(g, 2);
   rc_plan *p1 = NULL, *p2 = NULL;
   rc_err e2 = {0};
   if (s1 && s2 && rc_plan_create(&p1, g, s1, NULL, pe) == RC_OK) {
