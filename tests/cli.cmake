@@ -33,3 +33,17 @@ add_test(NAME pairing_reference
          COMMAND ${RECOUP_PYTHON} ${CMAKE_CURRENT_SOURCE_DIR}/pairing_test.py $<TARGET_FILE:recoup>
                  ${CMAKE_BINARY_DIR}/reference ${CMAKE_BINARY_DIR}/pairing_test)
 set_tests_properties(pairing_reference PROPERTIES FIXTURES_REQUIRED reference_models TIMEOUT 600)
+
+# No command writes over a file it reads (links, "./x", hard links included).
+add_test(NAME cli_outputs
+         COMMAND ${RECOUP_PYTHON} ${CMAKE_CURRENT_SOURCE_DIR}/cli_outputs_test.py $<TARGET_FILE:recoup>
+                 ${CMAKE_BINARY_DIR}/cli_outputs)
+set_tests_properties(cli_outputs PROPERTIES TIMEOUT 300)
+
+# Names, shapes and data from files: declared output shapes (against the onnx
+# package), .npz inputs by name (NumPy), escaped hostile names, aligned
+# tables, one-line option errors, --threads 0, prune's overall sparsity.
+add_test(NAME cli_names
+         COMMAND ${RECOUP_PYTHON} ${CMAKE_CURRENT_SOURCE_DIR}/cli_names_test.py $<TARGET_FILE:recoup>
+                 ${CMAKE_BINARY_DIR}/cli_names)
+set_tests_properties(cli_names PROPERTIES TIMEOUT 300)

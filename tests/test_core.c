@@ -1,13 +1,18 @@
 /* Core module: status text, arena alignment and reuse, tensor sizes, the
- * allocation fault hook, atomic writes. */
-#define _DEFAULT_SOURCE /* mkdtemp, symlink */
+ * allocation fault hook, atomic writes, escaping names, comparing paths as
+ * files. */
+#define _DEFAULT_SOURCE /* mkdtemp, symlink, link */
 #include <stdint.h>
+#include <stdio.h>
+#include <stdlib.h>
 #include <sys/stat.h>
 #include <unistd.h>
 
 #include "core/alloc.h"
 #include "core/arena.h"
+#include "core/escape.h"
 #include "core/file.h"
+#include "core/path.h"
 #include "core/status.h"
 #include "recoup/alloc.h"
 #include "recoup/tensor.h"
@@ -68,6 +73,85 @@ static void alloc_fault_hook(void) {
   CHECK(rc__mul_size(6, 7, &out) && out == 42);
 }
 
+/* Escaping text from files. What is valid UTF-8 follows RFC 3629 (overlong
+ * forms, surrogates and code points past U+10FFFF are not); the C1 range and
+ * the bidirectional controls are Unicode's (U+0080..U+009F, U+202A..U+202E,
+ * U+2066..U+2069). Both sides are printed escaped by the check. */
+static void escape_case(const char *in, const char *want) {
+  char got[256], twice[256];
+  rc__escape(got, sizeof got, in);
+  rc__escape(twice, sizeof twice, got);
+  if (strcmp(got, want) || strcmp(twice, got)) {
+    fprintf(stderr, "escape: got \"%s\", want \"%s\" (again: \"%s\")\n", got, want, twice);
+    CHECK(0);
+  }
+  CHECK_INT(rc__needs_escape(in), strcmp(in, want) != 0);
+}
+
+static void escape_names(void) {
+  escape_case("conv1/weight", "conv1/weight");
+  escape_case("caf\xc3\xa9 \xe2\x82\xac \xf0\x9f\x98\x80", "caf\xc3\xa9 \xe2\x82\xac \xf0\x9f\x98\x80");
+  escape_case("a\x1b[31mb\nc\rd\te\x7f", "a\\x1B[31mb\\x0Ac\\x0Dd\\x09e\\x7F");
+  escape_case("bad\xff\xfe", "bad\\xFF\\xFE");
+  escape_case("\xc0\x80", "\\xC0\\x80");                 /* overlong NUL */
+  escape_case("\xe0\x80\xaf", "\\xE0\\x80\\xAF");         /* overlong '/' */
+  escape_case("\xed\xa0\x80", "\\xED\\xA0\\x80");         /* surrogate U+D800 */
+  escape_case("\xf4\x90\x80\x80", "\\xF4\\x90\\x80\\x80"); /* U+110000 */
+  escape_case("\xc2\x9b", "\\xC2\\x9B");                 /* C1 CSI */
+  escape_case("x\xe2\x80\xaey", "x\\xE2\\x80\\xAEy");     /* U+202E right-to-left override */
+  escape_case("cut\xe2\x82", "cut\\xE2\\x82");             /* truncated sequence */
+  escape_case("already \\x1B", "already \\x1B");
+  char small[8];
+  rc__escape(small, sizeof small, "ab\x1b\x1b");
+  CHECK(!strcmp(small, "ab\\x1B")); /* cut at a whole escape */
+  rc_err e;
+  rc__fail(&e, RC_ERR_FORMAT, "node '%s'", "n\x1b[2J");
+  CHECK(!strcmp(e.msg, "node 'n\\x1B[2J'"));
+}
+
+/* Outputs compared with inputs as files: links, "./", "d/.." and files not
+ * yet written. */
+static void same_file_paths(void) {
+  char dir[] = "/tmp/recoup_core_XXXXXX";
+  CHECK(mkdtemp(dir) != NULL);
+  char a[128], lnk[128], hard[128], dotted[128], other[128], missing[128], missing2[128];
+  snprintf(a, sizeof a, "%s/a.npy", dir);
+  snprintf(lnk, sizeof lnk, "%s/link.npy", dir);
+  snprintf(hard, sizeof hard, "%s/hard.npy", dir);
+  snprintf(dotted, sizeof dotted, "%s/./sub/../a.npy", dir);
+  snprintf(other, sizeof other, "%s/b.npy", dir);
+  snprintf(missing, sizeof missing, "%s/new.npy", dir);
+  snprintf(missing2, sizeof missing2, "%s/sub/../new.npy", dir);
+  char sub[128];
+  snprintf(sub, sizeof sub, "%s/sub", dir);
+  CHECK(mkdir(sub, 0755) == 0);
+  FILE *f = fopen(a, "wb");
+  CHECK(f != NULL);
+  if (f) fclose(f);
+  f = fopen(other, "wb");
+  if (f) fclose(f);
+  CHECK(symlink("a.npy", lnk) == 0);
+  CHECK(link(a, hard) == 0);
+  CHECK_INT(rc__path_same_file(a, a), 1);
+  CHECK_INT(rc__path_same_file(lnk, a), 1);
+  CHECK_INT(rc__path_same_file(hard, a), 1);
+  CHECK_INT(rc__path_same_file(dotted, a), 1);
+  CHECK_INT(rc__path_same_file(other, a), 0);
+  CHECK_INT(rc__path_same_file(missing, a), 0);
+  CHECK_INT(rc__path_same_file(missing, missing2), 1); /* neither exists yet */
+  const char *ins[2] = {other, a}, *labels[2] = {"--ref", "--data"};
+  rc_err e;
+  CHECK_INT(rc__path_refuse_inputs("--out", lnk, ins, labels, 2, &e), RC_ERR_INVALID);
+  CHECK_STR_CONTAINS(e.msg, "(--data): refusing to overwrite an input");
+  CHECK_INT(rc__path_refuse_inputs("--out", missing, ins, labels, 2, &e), RC_OK);
+  unlink(lnk);
+  unlink(hard);
+  unlink(a);
+  unlink(other);
+  rmdir(sub);
+  rmdir(dir);
+}
+
 static mode_t mode_of(const char *path) {
   struct stat st;
   return stat(path, &st) == 0 ? st.st_mode & 07777 : (mode_t)-1;
@@ -124,5 +208,7 @@ int main(void) {
   RUN(tensor_sizes);
   RUN(alloc_fault_hook);
   RUN(atomic_write_mode);
+  RUN(escape_names);
+  RUN(same_file_paths);
   return TEST_REPORT();
 }

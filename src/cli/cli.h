@@ -31,6 +31,25 @@ int cli_usage_error(const char *cmd, const char *fmt, ...)
     __attribute__((format(printf, 2, 3)))
 #endif
     ;
+/* Check an output path before any work: not one of the n inputs (compared
+ * as files; NULL entries skipped), its folder exists and is writable. The
+ * error names `label out` and the input. */
+rc_status cli_check_output(const char *label, const char *out, const char *const *inputs,
+                           const char *const *in_labels, int n, rc_err *e);
+struct cJSON;
+/* Escape every string value and key of a JSON tree in place (rc__escape:
+ * control bytes and invalid UTF-8 from files become \xNN), so what is
+ * printed is valid JSON and safe on a terminal. */
+void cli_json_escape_tree(struct cJSON *j);
+/* cli_json_escape_tree, then cJSON_Print; free the result with free(). */
+char *cli_json_print(struct cJSON *j);
+/* Escaped copy of a name from a file for tables: into buf, returned. */
+const char *cli_esc(const char *s, char *buf, size_t n);
+/* Columns a valid UTF-8 string takes on a terminal (one per character;
+ * wide East Asian characters are counted as one). */
+int cli_text_width(const char *s);
+/* Print s, then spaces up to `width` columns. */
+void cli_print_cell(FILE *f, const char *s, int width);
 /* Parse a positive integer option value; 0 on success. */
 int cli_parse_int(const char *s, long lo, long hi, long *out);
 int cli_parse_float(const char *s, double *out);
@@ -46,6 +65,9 @@ extern volatile sig_atomic_t cli_stop_requested;
 void cli_catch_stop_signals(void);
 
 struct option;
+/* After getopt_long returned '?' (main sets opterr = 0, so getopt printed
+ * nothing): one usage line naming the option and what is wrong with it. */
+int cli_bad_option(const char *cmd, char **argv, const struct option *longopts);
 /* getopt_long over argv, handing every option to apply(ctx, opt, value).
  * Returns 0, a usage status from apply, RC_EXIT_USAGE for an unknown option,
  * or -1 after printing usage for --help/-h. */

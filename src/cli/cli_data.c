@@ -1,9 +1,16 @@
 #include "cli/cli_data.h"
 
+#include <stdio.h>
 #include <string.h>
+#include <unistd.h>
 
 #include "cli/cli.h"
 #include "plan/plan.h"
+
+const char *cli_data_file(const char *arg) {
+  const char *eq = strchr(arg, '=');
+  return eq && access(arg, F_OK) != 0 ? eq + 1 : arg;
+}
 
 void cli_data_opts_init(cli_data_opts *o) {
   memset(o, 0, sizeof *o);
@@ -68,6 +75,51 @@ static rc_status prepare_input(rc_array *a, const rc_value *input, const cli_dat
   return RC_OK;
 }
 
+/* 1 when path starts like a zip archive (an .npz). */
+static int looks_like_npz(const char *path) {
+  unsigned char head[8] = {0};
+  FILE *f = fopen(path, "rb");
+  if (!f) return 0;
+  size_t n = fread(head, 1, sizeof head, f);
+  fclose(f);
+  return rc_data_detect(head, n) == RC_DATA_NPZ;
+}
+
+/* The array for `name` (a model input, or "labels") from file: an .npz
+ * with several arrays gives the one so named (NumPy's savez(x=...) stores
+ * "x.npy"); one array is used whatever its name; anything else is refused
+ * with the list. `what` says what the name is, for the message. */
+static rc_status read_named_array(rc_array *a, const char *file, const char *name, const char *what, rc_err *e) {
+  if (!looks_like_npz(file)) return rc_array_read(a, file, NULL, 0, e);
+  char **names = NULL;
+  int count = 0;
+  RC_TRY(rc_npz_list(&names, &count, file, e));
+  const char *pick = NULL;
+  size_t nlen = strlen(name);
+  for (int i = 0; i < count && !pick; i++)
+    if (!strcmp(names[i], name) || (!strncmp(names[i], name, nlen) && !strcmp(names[i] + nlen, ".npy")))
+      pick = names[i];
+  if (!pick && count == 1) pick = names[0];
+  rc_status st;
+  if (pick) {
+    st = rc_array_read(a, file, pick, 0, e);
+  } else {
+    char list[320] = "";
+    size_t o = 0;
+    for (int i = 0; i < count && o < sizeof list; i++) {
+      size_t len = strlen(names[i]);
+      if (len > 4 && !strcmp(names[i] + len - 4, ".npy")) len -= 4;
+      o += (size_t)snprintf(list + o, sizeof list - o, "%s'%.*s'", i ? ", " : "", (int)(len > 64 ? 64 : len), names[i]);
+    }
+    st = rc__fail(e, RC_ERR_INVALID,
+                  "%s holds %d arrays (%s) and none is named '%s' like %s: save it under that name, or "
+                  "one array per file",
+                  file, count, count ? list : "none", name, what);
+  }
+  rc_data_names_free(names);
+  return st;
+}
+
 rc_status cli_samples_load(cli_samples *s, const cli_data_opts *o, const rc_graph *g, rc_err *e) {
   memset(s, 0, sizeof *s);
   if (g->n_inputs > CLI_MAX_DATA)
@@ -91,7 +143,7 @@ rc_status cli_samples_load(cli_samples *s, const cli_data_opts *o, const rc_grap
   for (int i = 0; i < g->n_inputs; i++) {
     const rc_value *input = &g->values[g->inputs[i]];
     if (!files[i]) return rc__fail(e, RC_ERR_INVALID, "no --data for input '%s' of %s", input->name, g->path);
-    RC_TRY(rc_array_read(&s->inputs[i], files[i], NULL, 0, e));
+    RC_TRY(read_named_array(&s->inputs[i], files[i], input->name, "the model's input", e));
     if (s->inputs[i].t.rank < 1)
       return rc__fail(e, RC_ERR_SHAPE, "%s: a scalar is not a set of samples", files[i]);
     RC_TRY(prepare_input(&s->inputs[i], input, o, files[i], e));
@@ -107,7 +159,7 @@ rc_status cli_samples_load(cli_samples *s, const cli_data_opts *o, const rc_grap
 
 rc_status cli_samples_load_labels(cli_samples *s, const char *path, int64_t n_classes, rc_err *e) {
   rc_array raw = {0};
-  RC_TRY(rc_array_read(&raw, path, NULL, 0, e));
+  RC_TRY(read_named_array(&raw, path, "labels", "the labels", e));
   rc_status st = rc_labels_to_int32(&s->labels, &raw, s->n, n_classes, e);
   rc_array_free(&raw);
   if (st != RC_OK) return rc__wrap(e, "%s", path);

@@ -28,6 +28,9 @@ typedef struct cli_samples {
   int has_labels;
 } cli_samples;
 
+/* The file of a --data value: "NAME=FILE" gives FILE unless the whole
+ * value names an existing file. */
+const char *cli_data_file(const char *arg);
 void cli_data_opts_init(cli_data_opts *o);
 /* Handle --scale/--mean/--std values; returns 0 or prints a usage error and returns 2. */
 int cli_data_option(cli_data_opts *o, const char *cmd, const char *name, const char *value);

@@ -23,6 +23,7 @@
 #include "cli/cli.h"
 #include "cli/manifest.h"
 #include "cli/report.h"
+#include "core/path.h"
 #include "cli/sha256.h"
 #include "core/alloc.h"
 #include "core/file.h"
@@ -40,8 +41,8 @@ static void usage(FILE *f) {
       "\n"
       "Options:\n"
       "  --jobs N          jobs at once (default 1)\n"
-      "  --threads T       threads for all jobs together (default: all cores); each\n"
-      "                    job gets T/N, at least one\n"
+      "  --threads T       threads for all jobs together; 0 (the default) uses every\n"
+      "                    online core; each job gets T/N, at least one\n"
       "  --shard K/N       run only the jobs whose 0-based index i has i mod N = K-1,\n"
       "                    so N machines given K = 1..N run every job exactly once\n"
       "  --resume          skip jobs whose output still has the content (SHA-256)\n"
@@ -124,7 +125,7 @@ static int parse_args(batch_args *a, int argc, char **argv) {
       case OPT_MERGE: a->merge = 1; break;
       case OPT_ALLOW_OUTSIDE: a->allow_outside = 1; break;
       case OPT_JSON: a->json = 1; break;
-      default: return cli_usage_error("batch", "unknown option");
+      default: return cli_bad_option("batch", argv, longopts);
     }
   }
   if (a->merge) {
@@ -250,12 +251,12 @@ static void draw_status(batch *b) {
 static void event(batch *b, const char *fmt, ...) RC_PRINTF(2, 3);
 static void event(batch *b, const char *fmt, ...) {
   clear_status(b);
+  char raw[2048], msg[4096];
   va_list ap;
   va_start(ap, fmt);
-  fprintf(stderr, "recoup batch: ");
-  vfprintf(stderr, fmt, ap);
-  fprintf(stderr, "\n");
+  vsnprintf(raw, sizeof raw, fmt, ap);
   va_end(ap);
+  fprintf(stderr, "recoup batch: %s\n", cli_esc(raw, msg, sizeof msg)); /* paths and errors from files */
   draw_status(b);
 }
 
@@ -665,7 +666,9 @@ static void print_summary(const cJSON *records, const char *report_dir) {
     const cJSON *name = cJSON_GetObjectItemCaseSensitive(r, "name");
     if (strcmp(status, CLI_JOB_OK)) {
       const cJSON *err = cJSON_GetObjectItemCaseSensitive(r, "error");
-      printf("  %-24.24s %-12s %s\n", name->valuestring, status, cJSON_IsString(err) ? err->valuestring : "");
+      char nb[512], eb[2048];
+      printf("  %-24.24s %-12s %s\n", cli_esc(name->valuestring, nb, sizeof nb), status,
+             cJSON_IsString(err) ? cli_esc(err->valuestring, eb, sizeof eb) : "");
       continue;
     }
     ok++;
@@ -681,7 +684,8 @@ static void print_summary(const cJSON *records, const char *report_dir) {
     const cJSON *secs = cJSON_GetObjectItemCaseSensitive(r, "seconds");
     char t[32] = "-";
     if (cJSON_IsNumber(secs)) fmt_hms(t, sizeof t, secs->valuedouble);
-    printf("  %-24.24s %-12s %12s %12s %12s %10s  (%s)\n", name->valuestring, status, cells[0], cells[1], cells[2], t,
+    char jb[512];
+    printf("  %-24.24s %-12s %12s %12s %12s %10s  (%s)\n", cli_esc(name->valuestring, jb, sizeof jb), status, cells[0], cells[1], cells[2], t,
            vm);
   }
   printf("\n%d of %d jobs succeeded.%s%s\n", ok, n, report_dir ? " Report: " : "", report_dir ? report_dir : "");
@@ -694,7 +698,7 @@ static void print_json(const cJSON *meta, const cJSON *records) {
   cJSON *root = cJSON_CreateObject();
   cJSON_AddItemToObject(root, "meta", cJSON_Duplicate(meta, 1));
   cJSON_AddItemToObject(root, "jobs", cJSON_Duplicate(records, 1));
-  char *text = cJSON_Print(root);
+  char *text = cli_json_print(root);
   if (text) puts(text);
   free(text);
   cJSON_Delete(root);
@@ -781,6 +785,31 @@ static rc_status plan_runs(batch *b, rc_err *e) {
   return RC_OK;
 }
 
+/* The report folder's files and the state file may be none of the files the
+ * jobs read or write, nor the manifest (compared as files, not names). */
+static rc_status check_outputs(const batch *b, rc_err *e) {
+  int n = 1;
+  for (int i = 0; i < b->m.n_jobs; i++) n += b->m.jobs[i].n_inputs + 1;
+  const char **inputs = rc__calloc((size_t)n, sizeof *inputs);
+  const char **names = rc__calloc((size_t)b->m.n_jobs + 1, sizeof *names);
+  rc_status s = RC_OK;
+  if (!inputs || !names) s = rc__fail(e, RC_ERR_NOMEM, "out of memory");
+  if (s == RC_OK) {
+    n = 0;
+    inputs[n++] = b->m.path;
+    for (int i = 0; i < b->m.n_jobs; i++) {
+      names[i] = b->m.jobs[i].name;
+      for (int f = 0; f < b->m.jobs[i].n_inputs; f++) inputs[n++] = b->m.jobs[i].inputs[f];
+      inputs[n++] = b->m.jobs[i].out; /* an output, but a report file must not replace it either */
+    }
+    if (b->a->report) s = cli_report_refuse_inputs(b->a->report, names, b->m.n_jobs, inputs, NULL, n, e);
+    else s = rc__path_refuse_inputs("state file", b->state_path, inputs, NULL, n, e);
+  }
+  rc__free(inputs);
+  rc__free(names);
+  return s;
+}
+
 static int run_batch(batch_args *a) {
   batch b;
   memset(&b, 0, sizeof b);
@@ -805,7 +834,7 @@ static int run_batch(batch_args *a) {
   } else {
     snprintf(b.state_path, sizeof b.state_path, "%s.state.json", a->manifest);
   }
-  if (lock_state(&b, &e) != RC_OK || load_state(&b, &e) != RC_OK || plan_runs(&b, &e) != RC_OK) goto out;
+  if (check_outputs(&b, &e) != RC_OK || lock_state(&b, &e) != RC_OK || load_state(&b, &e) != RC_OK || plan_runs(&b, &e) != RC_OK) goto out;
   event(&b, "%d job%s%s, %ld at once, %d thread%s each", b.n_runs, b.n_runs == 1 ? "" : "s",
         a->shard_n > 1 ? " in this shard" : "", a->jobs, b.threads_per_job, b.threads_per_job == 1 ? "" : "s");
   cli_catch_stop_signals();
@@ -847,6 +876,12 @@ static int merge_reports(batch_args *a) {
   double total = 0;
   const char *manifest_hash = NULL;
   if (!reports) return cli_fail(&e);
+  for (int i = 0; i < a->n_merge; i++)
+    if (rc__path_same_file(a->report, a->merge_dirs[i])) {
+      rc__fail(&e, RC_ERR_INVALID, "--report %s is the report folder %s being merged: refusing to overwrite an input",
+               a->report, a->merge_dirs[i]);
+      goto out;
+    }
   for (int i = 0; i < a->n_merge; i++) {
     if (cli_report_read(a->merge_dirs[i], &reports[i], &e) != RC_OK) goto out;
     const cJSON *meta = cJSON_GetObjectItemCaseSensitive(reports[i], "meta");

@@ -16,6 +16,7 @@
 #include "cli/cli_data.h"
 #include "cli/report.h"
 #include "core/fmt.h"
+#include "core/path.h"
 #include "onnx/model.h"
 #include "plan/load.h"
 #include "train/distill.h"
@@ -71,7 +72,7 @@ static void usage(FILE *f) {
       "  --freeze PATTERN         do not train initializers matching this glob\n"
       "  --seed S                 data order and split (default 1); same seed and\n"
       "                           threads give a byte-identical output file\n"
-      "  --threads N              compute threads (default: all cores)\n"
+      "  --threads N              compute threads; 0 (the default) uses every online core\n"
       "\n"
       "Interruption:\n"
       "  --checkpoint FILE        where to keep the run's state (default OUT.ckpt; the\n"
@@ -411,50 +412,48 @@ static int parse_args(distill_args *a, int argc, char **argv) {
   return 0;
 }
 
-/* The output must not be any input: compare resolved paths (the output may
- * not exist yet, so resolve its folder and append its name). */
-static int same_file(const char *out, const char *in) {
-  char a[PATH_MAX], b[PATH_MAX], dir_buf[PATH_MAX], base_buf[PATH_MAX];
-  if (!realpath(in, b)) return 0;
-  if (realpath(out, a)) return !strcmp(a, b);
-  snprintf(dir_buf, sizeof dir_buf, "%s", out);
-  snprintf(base_buf, sizeof base_buf, "%s", out);
-  char resolved[PATH_MAX];
-  if (!realpath(dirname(dir_buf), resolved)) return 0;
-  snprintf(a, sizeof a, "%s/%s", resolved, basename(base_buf));
-  return !strcmp(a, b);
+/* The report's job name: the output's file name without ".onnx". */
+static void report_name(const char *out, char *name, size_t n) {
+  const char *slash = strrchr(out, '/');
+  snprintf(name, n, "%s", slash ? slash + 1 : out);
+  size_t len = strlen(name);
+  if (len > 5 && !strcmp(name + len - 5, ".onnx")) name[len - 5] = '\0';
 }
 
-static const char *data_path(const char *arg) {
-  const char *eq = strchr(arg, '=');
-  return eq && access(arg, F_OK) != 0 ? eq + 1 : arg;
-}
-
+/* Nothing this run writes (the model, its checkpoints, the report's files)
+ * may be a file it reads: compared as files, so links and "./x" count too. */
 static int check_output_path(const distill_args *a, rc_err *e) {
-  const char *inputs[2 + 2 * CLI_MAX_DATA + 2];
+  const char *inputs[8 + 2 * CLI_MAX_DATA], *labels[8 + 2 * CLI_MAX_DATA];
   int n = 0;
-  inputs[n++] = a->teacher;
-  inputs[n++] = a->student;
-  for (int i = 0; i < a->data.n_data; i++) inputs[n++] = data_path(a->data.data[i]);
-  for (int i = 0; i < a->n_val_data; i++) inputs[n++] = data_path(a->val_data[i]);
-  if (a->data.labels) inputs[n++] = a->data.labels;
-  if (a->val_labels) inputs[n++] = a->val_labels;
-  for (int i = 0; i < n; i++)
-    if (same_file(a->out, inputs[i])) {
-      rc__fail(e, RC_ERR_INVALID, "--out %s is the input file %s: refusing to overwrite an input", a->out, inputs[i]);
-      return -1;
-    }
-  char dir_buf[PATH_MAX];
-  snprintf(dir_buf, sizeof dir_buf, "%s", a->out);
-  const char *dir = dirname(dir_buf);
-  struct stat st;
-  if (stat(dir, &st) != 0 || !S_ISDIR(st.st_mode)) {
-    rc__fail(e, RC_ERR_IO, "--out %s: folder %s does not exist", a->out, dir);
+#define INPUT(path, label) (inputs[n] = (path), labels[n++] = (label))
+  INPUT(a->teacher, "--teacher");
+  INPUT(a->student, "--student");
+  for (int i = 0; i < a->data.n_data; i++) INPUT(cli_data_file(a->data.data[i]), "--data");
+  for (int i = 0; i < a->n_val_data; i++) INPUT(cli_data_file(a->val_data[i]), "--val-data");
+  INPUT(a->data.labels, "--labels");
+  INPUT(a->val_labels, "--val-labels");
+  INPUT(a->config, "--config");
+#undef INPUT
+  char prev[4200];
+  snprintf(prev, sizeof prev, "%s.1", a->checkpoint);
+  if (cli_check_output("--out", a->out, inputs, labels, n, e)) return -1;
+  /* Checkpoints are removed once the output is written: never the output either. */
+  inputs[n] = a->out, labels[n++] = "--out";
+  if (rc__path_refuse_inputs("--checkpoint", a->checkpoint, inputs, labels, n, e) ||
+      rc__path_refuse_inputs("--checkpoint", prev, inputs, labels, n, e))
+    return -1;
+  /* --resume is read, then replaced by the run's own checkpoints; the output never. */
+  if (a->cfg.resume_path && rc__path_same_file(a->out, a->cfg.resume_path)) {
+    rc__fail(e, RC_ERR_INVALID, "--resume %s is the output file", a->cfg.resume_path);
     return -1;
   }
-  if (access(dir, W_OK) != 0) {
-    rc__fail(e, RC_ERR_IO, "--out %s: folder %s is not writable", a->out, dir);
-    return -1;
+  if (a->report) {
+    char name[256];
+    report_name(a->out, name, sizeof name);
+    const char *names[1] = {name};
+    inputs[n] = a->checkpoint, labels[n++] = "--checkpoint";
+    inputs[n] = a->cfg.resume_path, labels[n++] = "--resume";
+    if (cli_report_refuse_inputs(a->report, names, 1, inputs, labels, n, e) != RC_OK) return -1;
   }
   return 0;
 }
@@ -477,7 +476,8 @@ static void on_progress(void *user, const rc_distill_progress *p) {
   char eta[32], loss[32], kl[32];
   rc__fmt_sig(loss, sizeof loss, p->loss, RC_FMT_SIG, 0);
   if (p->event == RC_DISTILL_NOTE) {
-    fprintf(stderr, "%srecoup: %s\n", ps->tty ? "\r\033[K" : "", p->note);
+    char nb[1024];
+    fprintf(stderr, "%srecoup: %s\n", ps->tty ? "\r\033[K" : "", cli_esc(p->note, nb, sizeof nb));
     return;
   }
   if (p->event == RC_DISTILL_EPOCH) {
@@ -632,10 +632,7 @@ static cJSON *results_json(const distill_args *a, const rc_distill_result *r, do
 /* --report DIR: the report files recoup batch writes, for this one run. */
 static rc_status write_report(const distill_args *a, const rc_distill_result *r, double verify_diff, rc_err *e) {
   char name[256];
-  const char *slash = strrchr(a->out, '/');
-  snprintf(name, sizeof name, "%s", slash ? slash + 1 : a->out);
-  size_t n = strlen(name);
-  if (n > 5 && !strcmp(name + n - 5, ".onnx")) name[n - 5] = '\0';
+  report_name(a->out, name, sizeof name);
   char title[300];
   snprintf(title, sizeof title, "recoup distill: %s", name);
   cJSON *meta = cli_report_meta(title), *recs = cJSON_CreateArray();
@@ -651,13 +648,14 @@ static void print_results(const distill_args *a, const rc_distill_result *r, dou
   warn_ranges(r);
   if (a->json) {
     cJSON *root = results_json(a, r, verify_diff);
-    char *text = cJSON_Print(root);
+    char *text = cli_json_print(root);
     if (text) puts(text);
     free(text);
     cJSON_Delete(root);
     return;
   }
   char b1[32], b2[32];
+  char ob[1024];
   printf("\nValidation on %lld held-out samples (%s):\n", (long long)r->n_val,
          a->n_val_data ? "--val-data" : "a seeded slice of --data");
   printf("  %-22s %10s %13s %14s\n", "model", "accuracy", "agreement", "KL to dense");
@@ -669,7 +667,9 @@ static void print_results(const distill_args *a, const rc_distill_result *r, dou
     printf("  %-44s %12s %12s\n", "student tensor", "before", "after");
     for (int i = 0; i < r->n_layers; i++) {
       const rc_layer_error *l = &r->layers[i];
-      printf("  %-44s %12s %12s\n", l->student, layer_cell(b1, sizeof b1, l->sqnr_before_db, l->samples_before),
+      char nb[512];
+      printf("  %-44s %12s %12s\n", cli_esc(l->student, nb, sizeof nb),
+             layer_cell(b1, sizeof b1, l->sqnr_before_db, l->samples_before),
              layer_cell(b2, sizeof b2, l->sqnr_after_db, l->samples_after));
     }
   }
@@ -685,9 +685,11 @@ static void print_results(const distill_args *a, const rc_distill_result *r, dou
                                                                         : "KL to dense",
          r->after.has_labels ? " and accuracy" : "");
   if (r->improved)
-    printf("wrote %s (best epoch %lld; reloaded and checked: outputs identical)\n", a->out, (long long)r->best_epoch);
+    printf("wrote %s (best epoch %lld; reloaded and checked: outputs identical)\n", cli_esc(a->out, ob, sizeof ob),
+           (long long)r->best_epoch);
   else
-    printf("training never beat the input on validation: wrote %s with the input's values unchanged\n", a->out);
+    printf("training never beat the input on validation: wrote %s with the input's values unchanged\n",
+           cli_esc(a->out, ob, sizeof ob));
   if (r->rollbacks) printf("non-finite steps rolled back: %d%s\n", r->rollbacks, r->stopped_nonfinite ? " (stopped early)" : "");
   printf("\nValidate the recovered model on your own held-out data before deploying it;\n"
          "these figures hold only for the samples measured.\n");
@@ -753,10 +755,6 @@ int rc_cmd_distill(int argc, char **argv) {
   a.cfg.user = &ps;
   a.cfg.stop = &cli_stop_requested;
   cli_catch_stop_signals();
-  if (a.cfg.resume_path && same_file(a.out, a.cfg.resume_path)) {
-    rc__fail(&e, RC_ERR_INVALID, "--resume %s is the output file", a.cfg.resume_path);
-    goto out;
-  }
   if (rc_distill_run(&r, teacher, student, &d, &a.cfg, &e) != RC_OK) goto out;
   if (rc_model_save(student, a.out, r.changed, r.n_changed, &e) != RC_OK) goto out;
   if (rc_distill_verify_written(a.out, student, a.n_val_data ? vins : ins, train.n_inputs, a.cfg.batch, &diff, &e) !=

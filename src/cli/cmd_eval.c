@@ -33,7 +33,7 @@ static void usage(FILE *f) {
           "  --std D[,D...]         then divide, one value or one per channel\n"
           "  --ref OTHER.onnx       compare with another model on the same samples\n"
           "  --out FILE             X.npy: first output; X.npz: every output by name\n"
-          "  --threads N            threads for compute (default: all cores)\n"
+          "  --threads N            compute threads; 0 (the default) uses every online core\n"
           "  --json                 print results as one JSON object on stdout\n"
           "  -h, --help             show this help\n"
           "\n"
@@ -82,7 +82,7 @@ static int parse_args(eval_args *a, int argc, char **argv) {
         break;
       case 'j': a->json = 1; break;
       case 'h': usage(stdout); return -1;
-      default: return cli_usage_error("eval", "unknown option");
+      default: return cli_bad_option("eval", argv, longopts);
     }
   }
   if (optind != argc - 1) return cli_usage_error("eval", "expects exactly one MODEL.onnx");
@@ -176,13 +176,14 @@ static void print_result(const eval_args *a, const cli_samples *s, const rc_metr
     }
     if (k) cJSON_AddNumberToObject(root, "classes", (double)k);
     if (a->out) cJSON_AddStringToObject(root, "out", a->out);
-    char *text = cJSON_Print(root);
+    char *text = cli_json_print(root);
     if (text) puts(text);
     free(text);
     cJSON_Delete(root);
     return;
   }
-  printf("model            %s\n", a->model);
+  char nb[1024];
+  printf("model            %s\n", cli_esc(a->model, nb, sizeof nb));
   printf("samples          %lld\n", (long long)s->n);
   if (m && m->has_labels) {
     printf("top-1 accuracy   %.2f%% (%lld of %lld)\n", 100 * m->top1, (long long)(m->top1 * (double)m->n + 0.5),
@@ -190,12 +191,23 @@ static void print_result(const eval_args *a, const cli_samples *s, const rc_metr
     if (m->top5 >= 0) printf("top-5 accuracy   %.2f%%\n", 100 * m->top5);
   }
   if (m && m->has_ref) {
-    printf("reference        %s\n", a->ref);
+    printf("reference        %s\n", cli_esc(a->ref, nb, sizeof nb));
     printf("top-1 agreement  %.2f%%\n", 100 * m->agreement);
     char kl[32];
     printf("mean KL(ref||model) %s\n", rc__fmt_sig(kl, sizeof kl, m->kl, RC_FMT_SIG, 0));
   }
-  if (a->out) printf("outputs written  %s\n", a->out);
+  if (a->out) printf("outputs written  %s\n", cli_esc(a->out, nb, sizeof nb));
+}
+
+/* --out may be none of the files read (compared as files, not names). */
+static rc_status check_output_path(const eval_args *a, rc_err *e) {
+  const char *inputs[3 + CLI_MAX_DATA], *labels[3 + CLI_MAX_DATA];
+  int n = 0;
+  inputs[n] = a->model, labels[n++] = "the model";
+  inputs[n] = a->ref, labels[n++] = "--ref";
+  inputs[n] = a->data.labels, labels[n++] = "--labels";
+  for (int i = 0; i < a->data.n_data; i++) inputs[n] = cli_data_file(a->data.data[i]), labels[n++] = "--data";
+  return cli_check_output("--out", a->out, inputs, labels, n, e);
 }
 
 int rc_cmd_eval(int argc, char **argv) {
@@ -210,6 +222,7 @@ int rc_cmd_eval(int argc, char **argv) {
   memset(&d, 0, sizeof d);
   run_result r = {0}, ref = {0};
   int rc = RC_EXIT_FAIL;
+  if (a.out && check_output_path(&a, &e) != RC_OK) goto out;
   if (rc_model_load(&r.model, a.model, NULL, &e) != RC_OK) goto out;
   if (cli_samples_load(&s, &a.data, &r.model->graph, &e) != RC_OK) goto out;
   int64_t batch = a.batch < s.n ? a.batch : s.n;

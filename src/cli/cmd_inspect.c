@@ -6,6 +6,7 @@
 
 #include "cli/cli.h"
 #include "core/alloc.h"
+#include "onnx/io_decl.h"
 #include "plan/count.h"
 #include "plan/inspect.h"
 #include "plan/load.h"
@@ -49,19 +50,6 @@ static int count_ops(const rc_graph *g, op_count *counts) {
   return n;
 }
 
-static const char *dim_str(const rc_tensor *t, char *buf, size_t n) {
-  if (t->rank < 0) return "(unknown)";
-  size_t used = (size_t)snprintf(buf, n, "(");
-  for (int i = 0; i < t->rank && used < n; i++) {
-    if (t->dims[i] >= 0)
-      used += (size_t)snprintf(buf + used, n - used, "%s%lld", i ? ", " : "", (long long)t->dims[i]);
-    else
-      used += (size_t)snprintf(buf + used, n - used, "%s?", i ? ", " : "");
-  }
-  if (used < n) snprintf(buf + used, n - used, ")");
-  return buf;
-}
-
 static const char *role_name(rc_weight_role r) {
   return r == RC_ROLE_BIAS ? "bias" : r == RC_ROLE_NORM ? "norm" : r == RC_ROLE_AFFINE ? "affine" : "weight";
 }
@@ -73,14 +61,111 @@ static cJSON *shape_json(const rc_tensor *t) {
   return a;
 }
 
-static cJSON *io_json(const rc_graph *g, const int *vals, int n) {
+/* What inspect shows for a graph input or output: the file's declaration,
+ * or, where it declares no type or shape, what planning computes. */
+typedef struct io_shape {
+  rc_io_decl d;
+  int computed;      /* 1: dtype or shape came from the planner */
+  const char *why;   /* no shape at all: the reason */
+} io_shape;
+
+/* The first symbolic dim name of the inputs ("N"): how the computed batch
+ * axis is written. */
+static const char *batch_name(const rc_model *m) {
+  const rc_graph *g = &m->graph;
+  for (int i = 0; i < g->n_inputs; i++) {
+    rc_io_decl d;
+    if (rc_model_io_decl(m, 0, 0, g->values[g->inputs[i]].name, &d, NULL) != RC_OK) continue;
+    for (int k = 0; k < d.rank; k++)
+      if (d.dim_names[k]) return d.dim_names[k];
+  }
+  return "?";
+}
+
+/* Outputs the file leaves undeclared: plan at batch 1 and 2; dims that
+ * follow the batch are written with the inputs' symbolic name. */
+static void io_shapes(const rc_model *m, int is_output, io_shape *out, int n, rc_err *pe) {
+  const rc_graph *g = &m->graph;
+  const int *vals = is_output ? g->outputs : g->inputs;
+  int need = 0;
+  for (int i = 0; i < n; i++) {
+    memset(&out[i], 0, sizeof out[i]);
+    rc_model_io_decl(m, is_output, i, g->values[vals[i]].name, &out[i].d, NULL);
+    if (is_output && (!out[i].d.dtype || out[i].d.rank < 0)) need = 1;
+  }
+  if (!need) return;
+  rc_tensor *s1 = rc__batch_inputs(g, 1), *s2 = rc__batch_inputs(g, 2);
+  rc_plan *p1 = NULL, *p2 = NULL;
+  rc_err e2 = {0};
+  if (s1 && s2 && rc_plan_create(&p1, g, s1, NULL, pe) == RC_OK) {
+    if (rc_plan_create(&p2, g, s2, NULL, &e2) != RC_OK) p2 = NULL;
+    const char *bn = batch_name(m);
+    for (int i = 0; i < n; i++) {
+      rc_io_decl *d = &out[i].d;
+      if (d->dtype && d->rank >= 0) continue;
+      const rc_tensor *t1 = rc_plan_tensor(p1, vals[i]), *t2 = p2 ? rc_plan_tensor(p2, vals[i]) : NULL;
+      out[i].computed = 1;
+      if (!d->dtype) d->dtype = t1->dtype;
+      if (d->rank < 0) {
+        d->rank = t1->rank;
+        for (int k = 0; k < t1->rank; k++) {
+          d->dims[k] = t1->dims[k];
+          d->dim_names[k] = NULL;
+          if (t2 && t2->rank == t1->rank && t2->dims[k] != t1->dims[k]) {
+            d->dims[k] = -1;
+            d->dim_names[k] = bn;
+          }
+        }
+      }
+    }
+  } else {
+    for (int i = 0; i < n; i++)
+      if (!out[i].d.dtype || out[i].d.rank < 0) out[i].why = pe->msg[0] ? pe->msg : "out of memory";
+  }
+  rc_plan_free(p1);
+  rc_plan_free(p2);
+  rc__free(s1);
+  rc__free(s2);
+}
+
+/* "float32 (N, 10)", "(computed)" appended where the planner supplied it. */
+static const char *io_text(const io_shape *s, char *buf, size_t n) {
+  const rc_io_decl *d = &s->d;
+  size_t o = (size_t)snprintf(buf, n, "%s ", d->dtype ? rc_dtype_name(d->dtype) : "undeclared-type");
+  if (d->rank < 0) {
+    snprintf(buf + o, n - o, "shape unknown%s%s%s", s->why ? " (" : "", s->why ? s->why : "", s->why ? ")" : "");
+    return buf;
+  }
+  o += (size_t)snprintf(buf + o, n - o, "(");
+  for (int k = 0; k < d->rank && o < n; k++) {
+    char nb[64];
+    if (d->dims[k] >= 0) o += (size_t)snprintf(buf + o, n - o, "%s%lld", k ? ", " : "", (long long)d->dims[k]);
+    else o += (size_t)snprintf(buf + o, n - o, "%s%s", k ? ", " : "", d->dim_names[k] ? cli_esc(d->dim_names[k], nb, sizeof nb) : "?");
+  }
+  if (o < n) snprintf(buf + o, n - o, ")%s", s->computed ? " (computed)" : "");
+  return buf;
+}
+
+static cJSON *io_json(const rc_model *m, int is_output, const io_shape *sh) {
+  const rc_graph *g = &m->graph;
+  const int *vals = is_output ? g->outputs : g->inputs;
+  int n = is_output ? g->n_outputs : g->n_inputs;
   cJSON *arr = cJSON_CreateArray();
   for (int i = 0; i < n; i++) {
-    const rc_value *v = &g->values[vals[i]];
+    const rc_io_decl *d = &sh[i].d;
     cJSON *o = cJSON_CreateObject();
-    cJSON_AddStringToObject(o, "name", v->name);
-    cJSON_AddStringToObject(o, "dtype", rc_dtype_name(v->decl.dtype));
-    cJSON_AddItemToObject(o, "shape", v->decl.rank >= 0 ? shape_json(&v->decl) : cJSON_CreateNull());
+    cJSON_AddStringToObject(o, "name", g->values[vals[i]].name);
+    if (d->dtype) cJSON_AddStringToObject(o, "dtype", rc_dtype_name(d->dtype));
+    else cJSON_AddNullToObject(o, "dtype");
+    if (d->rank >= 0) {
+      cJSON *a = cJSON_AddArrayToObject(o, "shape");
+      for (int k = 0; k < d->rank; k++)
+        cJSON_AddItemToArray(a, d->dims[k] >= 0 ? cJSON_CreateNumber((double)d->dims[k])
+                                : d->dim_names[k] ? cJSON_CreateString(d->dim_names[k]) : cJSON_CreateNull());
+    } else {
+      cJSON_AddNullToObject(o, "shape");
+    }
+    cJSON_AddStringToObject(o, "source", sh[i].computed ? "computed" : d->rank >= 0 || d->dtype ? "file" : "none");
     cJSON_AddItemToArray(arr, o);
   }
   return arr;
@@ -90,16 +175,16 @@ static double zero_point_at(const rc_grid_info *gi, int64_t i) {
   return gi->zero_point && gi->zero_point->data ? (double)rc__int_at(gi->zero_point, i) : 0.0;
 }
 
-static void print_json(const rc_model *m, const op_count *ops, int n_ops, const rc_weight_info *w,
-                       int n_w, const rc_grid_info *gr, int n_gr, int64_t macs) {
+static void print_json(const rc_model *m, const io_shape *ins, const io_shape *outs, const op_count *ops, int n_ops,
+                       const rc_weight_info *w, int n_w, const rc_grid_info *gr, int n_gr, int64_t macs) {
   const rc_graph *g = &m->graph;
   cJSON *root = cJSON_CreateObject();
   cJSON_AddStringToObject(root, "model", m->path);
   cJSON_AddNumberToObject(root, "file_bytes", (double)m->file_bytes);
   cJSON_AddNumberToObject(root, "ir_version", (double)g->ir_version);
   cJSON_AddNumberToObject(root, "opset", g->opset);
-  cJSON_AddItemToObject(root, "inputs", io_json(g, g->inputs, g->n_inputs));
-  cJSON_AddItemToObject(root, "outputs", io_json(g, g->outputs, g->n_outputs));
+  cJSON_AddItemToObject(root, "inputs", io_json(m, 0, ins));
+  cJSON_AddItemToObject(root, "outputs", io_json(m, 1, outs));
   cJSON *jops = cJSON_AddObjectToObject(root, "ops");
   for (int i = 0; i < n_ops; i++) cJSON_AddNumberToObject(jops, ops[i].op, ops[i].n);
   cJSON_AddNumberToObject(root, "nodes", g->n_nodes);
@@ -152,36 +237,51 @@ static void print_json(const rc_model *m, const op_count *ops, int n_ops, const 
     }
     cJSON_AddItemToArray(jg, o);
   }
-  char *text = cJSON_Print(root);
+  char *text = cli_json_print(root);
   if (text) puts(text);
   free(text);
   cJSON_Delete(root);
 }
 
-static void print_io(const char *title, const rc_graph *g, const int *vals, int n) {
+static int name_width(const rc_graph *g, const int *vals, int n, int lo, int hi) {
+  int w = lo;
   for (int i = 0; i < n; i++) {
-    const rc_value *v = &g->values[vals[i]];
-    char buf[160];
-    printf("%-11s %-20s %-8s %s\n", i ? "" : title, v->name, rc_dtype_name(v->decl.dtype),
-           dim_str(&v->decl, buf, sizeof buf));
+    char nb[512];
+    int len = cli_text_width(cli_esc(g->values[vals[i]].name, nb, sizeof nb));
+    if (len > w) w = len;
+  }
+  return w < hi ? w : hi;
+}
+
+static void print_io(const char *title, const rc_graph *g, const int *vals, const io_shape *sh, int n, int width) {
+  for (int i = 0; i < n; i++) {
+    char buf[512], nb[512];
+    printf("%-11s ", i ? "" : title);
+    cli_print_cell(stdout, cli_esc(g->values[vals[i]].name, nb, sizeof nb), width);
+    printf("  %s\n", io_text(&sh[i], buf, sizeof buf));
   }
 }
 
-static void print_tables(const rc_model *m, const op_count *ops, int n_ops, const rc_weight_info *w,
-                         int n_w, const rc_grid_info *gr, int n_gr, int64_t macs, const char *macs_why) {
+static void print_tables(const rc_model *m, const io_shape *ins, const io_shape *outs, const op_count *ops,
+                         int n_ops, const rc_weight_info *w, int n_w, const rc_grid_info *gr, int n_gr, int64_t macs,
+                         const char *macs_why) {
   const rc_graph *g = &m->graph;
-  char b1[64], b2[64];
-  printf("model       %s (%s bytes)\n", m->path, cli_group_digits((long long)m->file_bytes, b1, sizeof b1));
+  char b1[64], b2[64], nb[512];
+  printf("model       %s (%s bytes)\n", cli_esc(m->path, nb, sizeof nb),
+         cli_group_digits((long long)m->file_bytes, b1, sizeof b1));
   printf("format      ONNX IR version %lld, default-domain opset %d\n", (long long)g->ir_version, g->opset);
-  print_io("inputs", g, g->inputs, g->n_inputs);
-  print_io("outputs", g, g->outputs, g->n_outputs);
+  int iow = name_width(g, g->inputs, g->n_inputs, 8, 60);
+  int w2 = name_width(g, g->outputs, g->n_outputs, 8, 60);
+  if (w2 > iow) iow = w2;
+  print_io("inputs", g, g->inputs, ins, g->n_inputs, iow);
+  print_io("outputs", g, g->outputs, outs, g->n_outputs, iow);
   printf("nodes       %d:", g->n_nodes);
-  for (int i = 0; i < n_ops; i++) printf("%s %s %d", i ? "," : "", ops[i].op, ops[i].n);
+  for (int i = 0; i < n_ops; i++) printf("%s %s %d", i ? "," : "", cli_esc(ops[i].op, nb, sizeof nb), ops[i].n);
   printf("\nparameters  %s\n", cli_group_digits(rc__graph_params(g), b1, sizeof b1));
   if (macs >= 0)
     printf("MACs        %s per sample\n", cli_group_digits(macs, b2, sizeof b2));
   else
-    printf("MACs        unknown (%s)\n", macs_why);
+    printf("MACs        unknown (%s)\n", cli_esc(macs_why, nb, sizeof nb));
   if (n_w) {
     printf("\n%-36s %-7s %-18s %13s %9s %7s\n", "weight", "role", "shape", "zeros/total", "sparsity",
            "N:M");
@@ -190,7 +290,7 @@ static void print_tables(const rc_model *m, const op_count *ops, int n_ops, cons
       char shape[96], frac[48], nm[16] = "-";
       if (w[i].nm_m) snprintf(nm, sizeof nm, "%d:%d", w[i].nm_n, w[i].nm_m);
       snprintf(frac, sizeof frac, "%lld/%lld", (long long)w[i].zeros, (long long)w[i].numel);
-      printf("%-36s %-7s %-18s %13s %8.1f%% %7s%s\n", v->name, role_name(w[i].role),
+      printf("%-36s %-7s %-18s %13s %8.1f%% %7s%s\n", cli_esc(v->name, nb, sizeof nb), role_name(w[i].role),
              rc_shape_str(&v->decl, shape, sizeof shape), frac,
              w[i].numel ? 100.0 * (double)w[i].zeros / (double)w[i].numel : 0.0, nm,
              w[i].quantized ? "  (quantized)" : "");
@@ -201,7 +301,8 @@ static void print_tables(const rc_model *m, const op_count *ops, int n_ops, cons
     for (int i = 0; i < n_gr; i++) {
       char axis[16] = "-";
       if (gr[i].axis >= 0) snprintf(axis, sizeof axis, "%d", gr[i].axis);
-      printf("%-36s %-10s %-6s %-5s ", g->values[gr[i].value].name, gr[i].is_weight ? "weight" : "activation",
+      printf("%-36s %-10s %-6s %-5s ", cli_esc(g->values[gr[i].value].name, nb, sizeof nb),
+             gr[i].is_weight ? "weight" : "activation",
              rc_dtype_name(gr[i].dtype), axis);
       if (gr[i].n_scale == 1)
         printf("%.9g / %g\n", gr[i].scale ? gr[i].scale[0] : 0.0, zero_point_at(&gr[i], 0));
@@ -234,18 +335,31 @@ static int inspect_pairs(const char *tpath, const char *spath, const char *const
       cJSON_AddBoolToObject(o, "projector", rc_pair_needs_projector(p));
       cJSON_AddItemToArray(arr, o);
     }
-    char *text = cJSON_Print(arr);
+    char *text = cli_json_print(arr);
     if (text) puts(text);
     free(text);
     cJSON_Delete(arr);
   } else {
-    printf("%-32s %-18s %-32s %-18s %-9s %s\n", "teacher tensor", "shape", "student tensor", "shape", "matched",
-           "projector");
+    /* Columns as wide as their longest entry, so long names keep the table aligned. */
+    int wt = (int)strlen("teacher tensor"), ws = (int)strlen("student tensor"), wts = 5, wss = 5;
     for (int i = 0; i < pg.n; i++) {
       const rc_pair *p = &pg.pairs[i];
-      char a[96], b[96];
-      printf("%-32s %-18s %-32s %-18s %-9s %s\n", t->graph.values[p->teacher].name, rc_shape_str(&p->t_shape, a, sizeof a),
-             s->graph.values[p->student].name, rc_shape_str(&p->s_shape, b, sizeof b),
+      char nb[512], a[96];
+      int l = cli_text_width(cli_esc(t->graph.values[p->teacher].name, nb, sizeof nb));
+      if (l > wt) wt = l;
+      if ((l = cli_text_width(cli_esc(s->graph.values[p->student].name, nb, sizeof nb))) > ws) ws = l;
+      if ((l = (int)strlen(rc_shape_str(&p->t_shape, a, sizeof a))) > wts) wts = l;
+      if ((l = (int)strlen(rc_shape_str(&p->s_shape, a, sizeof a))) > wss) wss = l;
+    }
+    printf("%-*s  %-*s  %-*s  %-*s  %-8s  %s\n", wt, "teacher tensor", wts, "shape", ws, "student tensor", wss,
+           "shape", "matched", "projector");
+    for (int i = 0; i < pg.n; i++) {
+      const rc_pair *p = &pg.pairs[i];
+      char a[96], b[96], n1[512], n2[512];
+      cli_print_cell(stdout, cli_esc(t->graph.values[p->teacher].name, n1, sizeof n1), wt);
+      printf("  %-*s  ", wts, rc_shape_str(&p->t_shape, a, sizeof a));
+      cli_print_cell(stdout, cli_esc(s->graph.values[p->student].name, n2, sizeof n2), ws);
+      printf("  %-*s  %-8s  %s\n", wss, rc_shape_str(&p->s_shape, b, sizeof b),
              p->explicit_pair ? "given" : p->by_name ? "name" : "position", rc_pair_needs_projector(p) ? "yes" : "no");
     }
     if (!pg.n) printf("no pairs: give them with --pair TEACHER_TENSOR=STUDENT_TENSOR\n");
@@ -279,7 +393,7 @@ int rc_cmd_inspect(int argc, char **argv) {
       usage(stdout);
       return RC_EXIT_OK;
     } else
-      return cli_usage_error("inspect", "unknown option");
+      return cli_bad_option("inspect", argv, longopts);
   }
   if (want_pairs) {
     if (optind != argc - 2) return cli_usage_error("inspect", "--pairs expects DENSE.onnx STUDENT.onnx");
@@ -300,12 +414,23 @@ int rc_cmd_inspect(int argc, char **argv) {
     goto out;
   }
   int n_ops = count_ops(g, ops);
-  rc_err pe = {0};
+  rc_err pe = {0}, se = {0};
   int64_t macs = rc__graph_macs_batch1(g, &pe);
+  io_shape *ins = rc__calloc((size_t)g->n_inputs + 1, sizeof *ins), *outs = rc__calloc((size_t)g->n_outputs + 1, sizeof *outs);
+  if (!ins || !outs) {
+    rc__free(ins);
+    rc__free(outs);
+    rc = cli_fail(&(rc_err){RC_ERR_NOMEM, "out of memory"});
+    goto out;
+  }
+  io_shapes(m, 0, ins, g->n_inputs, &se);
+  io_shapes(m, 1, outs, g->n_outputs, &se);
   if (json)
-    print_json(m, ops, n_ops, w, n_w, gr, n_gr, macs);
+    print_json(m, ins, outs, ops, n_ops, w, n_w, gr, n_gr, macs);
   else
-    print_tables(m, ops, n_ops, w, n_w, gr, n_gr, macs, pe.msg);
+    print_tables(m, ins, outs, ops, n_ops, w, n_w, gr, n_gr, macs, pe.msg);
+  rc__free(ins);
+  rc__free(outs);
 out:
   rc__free(ops);
   rc__free(w);

@@ -64,10 +64,27 @@ static int same_dims(const rc_tensor *a, const rc_tensor *b) {
 
 static double pct(int64_t a, int64_t b) { return b ? 100.0 * (double)a / (double)b : 0.0; }
 
-static void print_tables(const char *in, const char *out, const rc_prune_report *r) {
+/* --sparsity S counts the layers it prunes; the first and last stay dense by
+ * default, so where they hold many weights the whole model reaches less. A
+ * note when it falls short of S by more than a tenth of S. */
+static int sparsity_short(const rc_prune_opts *o, const rc_prune_report *r, char *note, size_t n) {
+  double reached = r->weights_total ? (double)r->weights_zero / (double)r->weights_total : 0;
+  if (o->sparsity <= 0 || reached >= 0.9 * o->sparsity || !r->weights_kept_dense) return 0;
+  snprintf(note, n,
+           "overall sparsity %.1f%% is well below the %.1f%% asked: the first and last layers hold %.1f%% of the "
+           "prunable weights and stay dense (--include-first-last prunes them too)",
+           100 * reached, 100 * o->sparsity, pct(r->weights_kept_dense, r->weights_total));
+  return 1;
+}
+
+static void print_tables(const char *in, const char *out, const rc_prune_opts *o, const rc_prune_report *r) {
   int w = 5;
   for (int i = 0; i < r->n_layers; i++)
-    if ((int)strlen(r->layers[i].layer) > w) w = (int)strlen(r->layers[i].layer);
+  {
+    char nb[512];
+    int len = cli_text_width(cli_esc(r->layers[i].layer, nb, sizeof nb));
+    if (len > w) w = len;
+  }
   printf("%-*s %-16s %-16s %9s %5s  %s\n", w, "layer", "weight before", "after", "sparsity", "N:M", "note");
   for (int i = 0; i < r->n_layers; i++) {
     const rc_prune_layer *l = &r->layers[i];
@@ -76,13 +93,16 @@ static void print_tables(const char *in, const char *out, const rc_prune_report 
     if (same_dims(&l->before, &l->after)) snprintf(a, sizeof a, "=");
     else shape_text(&l->after, a, sizeof a);
     if (l->nm_m) snprintf(nm, sizeof nm, "%d:%d", l->nm_n, l->nm_m);
-    printf("%-*s %-16s %-16s %8.1f%% %5s  %s\n", w, l->layer, b, a, pct(l->zeros, rc_tensor_numel(&l->after)),
-           nm, l->note);
+    char nb[512], nn[1024];
+    cli_print_cell(stdout, cli_esc(l->layer, nb, sizeof nb), w);
+    printf(" %-16s %-16s %8.1f%% %5s  %s\n", b, a, pct(l->zeros, rc_tensor_numel(&l->after)), nm,
+           cli_esc(l->note, nn, sizeof nn));
   }
-  char g1[32], g2[32];
-  printf("\nweights      %s of %s zero (%.1f%%) over the prunable layers\n",
+  char g1[32], g2[32], note[400];
+  printf("\nweights      %s of %s zero (%.1f%% overall sparsity) over the prunable layers\n",
          cli_group_digits(r->weights_zero, g1, sizeof g1), cli_group_digits(r->weights_total, g2, sizeof g2),
          pct(r->weights_zero, r->weights_total));
+  if (sparsity_short(o, r, note, sizeof note)) printf("note         %s\n", note);
   printf("parameters   %s -> ", cli_group_digits(r->params_before, g1, sizeof g1));
   printf("%s (%.1f%%)\n", cli_group_digits(r->params_after, g2, sizeof g2), pct(r->params_after, r->params_before));
   if (r->macs_before >= 0 && r->macs_after >= 0) {
@@ -91,8 +111,10 @@ static void print_tables(const char *in, const char *out, const rc_prune_report 
            pct(r->macs_after, r->macs_before));
   }
   if (r->channels_removed) printf("channels     %lld output channels removed\n", (long long)r->channels_removed);
-  for (int i = 0; i < r->n_notes; i++) printf("note         %s\n", r->notes[i]);
-  printf("\nwrote %s (from %s; loaded and planned again at batch 1)\n", out, in);
+  char nb[1024], ob[1024];
+  for (int i = 0; i < r->n_notes; i++) printf("note         %s\n", cli_esc(r->notes[i], nb, sizeof nb));
+  printf("\nwrote %s (from %s; loaded and planned again at batch 1)\n", cli_esc(out, ob, sizeof ob),
+         cli_esc(in, nb, sizeof nb));
   printf("Sparsity counts zeros; it does not make dense runtimes faster by itself. Recover\n"
          "accuracy with 'recoup distill' and validate on your own held-out data.\n");
 }
@@ -144,6 +166,8 @@ static void print_json(const char *in, const char *out, const rc_prune_opts *o, 
   cJSON *t = cJSON_AddObjectToObject(root, "totals");
   cJSON_AddNumberToObject(t, "weights", (double)r->weights_total);
   cJSON_AddNumberToObject(t, "weights_zero", (double)r->weights_zero);
+  cJSON_AddNumberToObject(t, "overall_sparsity", r->weights_total ? (double)r->weights_zero / (double)r->weights_total : 0);
+  cJSON_AddNumberToObject(t, "weights_kept_dense", (double)r->weights_kept_dense);
   cJSON_AddNumberToObject(t, "parameters_before", (double)r->params_before);
   cJSON_AddNumberToObject(t, "parameters_after", (double)r->params_after);
   cJSON_AddNumberToObject(t, "macs_batch_1_before", (double)r->macs_before);
@@ -151,7 +175,9 @@ static void print_json(const char *in, const char *out, const rc_prune_opts *o, 
   cJSON_AddNumberToObject(t, "channels_removed", (double)r->channels_removed);
   cJSON *notes = cJSON_AddArrayToObject(root, "notes");
   for (int i = 0; i < r->n_notes; i++) cJSON_AddItemToArray(notes, cJSON_CreateString(r->notes[i]));
-  char *text = cJSON_Print(root);
+  char note[400];
+  if (sparsity_short(o, r, note, sizeof note)) cJSON_AddItemToArray(notes, cJSON_CreateString(note));
+  char *text = cli_json_print(root);
   if (text) puts(text);
   free(text);
   cJSON_Delete(root);
@@ -195,7 +221,7 @@ int rc_cmd_prune(int argc, char **argv) {
       case O_EDGES: o.include_first_last = 1; break;
       case O_JSON: json = 1; break;
       case 'h': usage(stdout); return RC_EXIT_OK;
-      default: return cli_usage_error("prune", "unknown option");
+      default: return cli_bad_option("prune", argv, longopts);
     }
   }
   if (optind != argc - 1) return cli_usage_error("prune", "expects exactly one DENSE.onnx");
@@ -207,7 +233,7 @@ int rc_cmd_prune(int argc, char **argv) {
   rc_prune_report r;
   if (rc_prune_file(in, out, &o, &r, &e) != RC_OK) return cli_fail(&e);
   if (json) print_json(in, out, &o, &r);
-  else print_tables(in, out, &r);
+  else print_tables(in, out, &o, &r);
   rc_prune_report_free(&r);
   return RC_EXIT_OK;
 }

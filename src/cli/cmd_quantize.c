@@ -44,7 +44,7 @@ static void usage(FILE *f) {
           "                           calibrated range, so outputs a little beyond the\n"
           "                           calibration samples are not clipped (default 0.1)\n"
           "  --scale S, --mean M[,..], --std D[,..]   x' = (x*S - M) / D, as for eval\n"
-          "  --threads N              compute threads (default: all cores)\n"
+          "  --threads N              compute threads; 0 (the default) uses every online core\n"
           "  --json                   print the summary as one JSON object on stdout\n"
           "  -h, --help               show this help\n"
           "\n"
@@ -143,34 +143,12 @@ static int parse_args(quantize_args *a, int argc, char **argv) {
   return 0;
 }
 
-/* Resolved path of a file that may not exist yet: its folder resolved, its name appended. */
-static int resolve_out(const char *out, char *buf) {
-  if (realpath(out, buf)) return 1;
-  char d[PATH_MAX], b[PATH_MAX], r[PATH_MAX];
-  snprintf(d, sizeof d, "%s", out);
-  snprintf(b, sizeof b, "%s", out);
-  if (!realpath(dirname(d), r)) return 0;
-  return snprintf(buf, PATH_MAX, "%s/%s", r, basename(b)) < PATH_MAX;
-}
-
 static rc_status check_output_path(const quantize_args *a, rc_err *e) {
-  char out[PATH_MAX], in[PATH_MAX];
-  if (!resolve_out(a->out, out)) return rc__fail(e, RC_ERR_IO, "--out %s: its folder does not exist", a->out);
-  const char *inputs[1 + CLI_MAX_DATA];
+  const char *inputs[1 + CLI_MAX_DATA], *labels[1 + CLI_MAX_DATA];
   int n = 0;
-  inputs[n++] = a->model;
-  for (int i = 0; i < a->data.n_data; i++) {
-    const char *eq = strchr(a->data.data[i], '=');
-    inputs[n++] = eq && access(a->data.data[i], F_OK) != 0 ? eq + 1 : a->data.data[i];
-  }
-  for (int i = 0; i < n; i++)
-    if (realpath(inputs[i], in) && !strcmp(in, out))
-      return rc__fail(e, RC_ERR_INVALID, "--out %s is the input file %s: refusing to overwrite an input", a->out,
-                      inputs[i]);
-  char d[PATH_MAX];
-  snprintf(d, sizeof d, "%s", a->out);
-  if (access(dirname(d), W_OK) != 0) return rc__fail(e, RC_ERR_IO, "--out %s: its folder is not writable", a->out);
-  return RC_OK;
+  inputs[n] = a->model, labels[n++] = "the model";
+  for (int i = 0; i < a->data.n_data; i++) inputs[n] = cli_data_file(a->data.data[i]), labels[n++] = "--data";
+  return cli_check_output("--out", a->out, inputs, labels, n, e);
 }
 
 /* The first output of a graph over every sample: owned buffer of n * per floats. */
@@ -300,7 +278,7 @@ static void print_json(const quantize_args *a, const rc_quant_report *r, const c
     cJSON_AddNumberToObject(root, "top1_agreement", c->m.agreement);
     cJSON_AddNumberToObject(root, "mean_kl_float_to_quantized", c->m.kl);
   }
-  char *text = cJSON_Print(root);
+  char *text = cli_json_print(root);
   if (text) puts(text);
   free(text);
   cJSON_Delete(root);
@@ -320,7 +298,8 @@ static void print_margin(const quantize_args *a, const rc_quant_report *r) {
 static void print_table(const quantize_args *a, const rc_quant_report *r, const comparison *c, long long before,
                         long long after) {
   char b1[32], b2[32];
-  printf("quantized %s -> %s\n", a->model, a->out);
+  char mb[1024], ob[1024];
+  printf("quantized %s -> %s\n", cli_esc(a->model, mb, sizeof mb), cli_esc(a->out, ob, sizeof ob));
   printf("weights      %d-bit symmetric per channel, stored as %s%s\n", a->cfg.weight_bits,
          rc_dtype_name(r->weight_dtype),
          r->int4_as_int8 ? " (opset below 21 has no int4: values kept in [-7, 7] on int8 tensors)" : "");
@@ -333,7 +312,8 @@ static void print_table(const quantize_args *a, const rc_quant_report *r, const 
   printf("  %-28s %-14s %8s %12s %12s %6s\n", "layer", "op", "channels", "scale min", "scale max", "bias");
   for (int i = 0; i < r->n_layers; i++) {
     const rc_quant_layer *L = &r->layers[i];
-    printf("  %-28.28s %-14s %8lld %12.4g %12.4g %6s%s\n", L->name, L->op_type, (long long)L->channels, L->scale_min,
+    char nb[512];
+    printf("  %-28.28s %-14s %8lld %12.4g %12.4g %6s%s\n", cli_esc(L->name, nb, sizeof nb), L->op_type, (long long)L->channels, L->scale_min,
            L->scale_max, bias_text(L->bias), L->bn_folded ? "  (BN folded)" : "");
   }
   if (r->n_grids) {

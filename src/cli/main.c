@@ -1,6 +1,7 @@
 /* recoup: recover the accuracy a compressed model lost, by distilling it from
  * its dense original on CPU. This file only dispatches to the commands. */
 #define _DEFAULT_SOURCE /* setenv */
+#include <getopt.h>
 #include <signal.h>
 #include <stdlib.h>
 #include <unistd.h>
@@ -55,6 +56,8 @@ int main(int argc, char **argv) {
   wait_passively(argv);
   /* A write past a file-size limit must fail with EFBIG, not kill us. */
   signal(SIGXFSZ, SIG_IGN);
+  /* getopt stays quiet: each command reports a bad option in one line. */
+  opterr = 0;
   if (argc < 2) {
     print_help();
     return RC_EXIT_USAGE;

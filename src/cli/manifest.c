@@ -15,6 +15,7 @@
 #include "cli/cli_data.h"
 #include "cli/sha256.h"
 #include "core/alloc.h"
+#include "core/path.h"
 #include "train/features.h"
 
 #define MANIFEST_MAX_BYTES (16 << 20)
@@ -478,12 +479,6 @@ static rc_status build_job(ctx *c, cli_job *j, int index, const cJSON *job, cons
 
 /* ---- Whole-manifest checks ------------------------------------------------------------ */
 
-static int same_path(const char *a, const char *b) {
-  if (!strcmp(a, b)) return 1;
-  char ra[PATH_MAX], rb[PATH_MAX];
-  return realpath(a, ra) && realpath(b, rb) && !strcmp(ra, rb);
-}
-
 static rc_status check_across_jobs(ctx *c, const cli_manifest *m) {
   for (int i = 0; i < m->n_jobs; i++) {
     const cli_job *a = &m->jobs[i];
@@ -491,15 +486,24 @@ static rc_status check_across_jobs(ctx *c, const cli_manifest *m) {
     for (int k = 0; k < i; k++) {
       if (!strcmp(a->name, m->jobs[k].name))
         return field_error(c, "name", "'%s' is also the name of jobs[%d]", a->name, k);
-      if (same_path(a->out, m->jobs[k].out))
+      if (rc__path_same_file(a->out, m->jobs[k].out))
         return field_error(c, "out", "'%s' is also the output of job '%s'", a->out_given, m->jobs[k].name);
     }
-    for (int k = 0; k < m->n_jobs; k++)
-      for (int f = 0; f < m->jobs[k].n_inputs; f++)
-        if (same_path(a->out, m->jobs[k].inputs[f])) {
-          if (k == i) return field_error(c, "out", "'%s' is one of this job's inputs", a->out_given);
-          return field_error(c, "out", "'%s' is an input of job '%s'", a->out_given, m->jobs[k].name);
-        }
+    /* The job writes its output, OUT.ckpt, OUT.ckpt.1 and (without a report
+     * folder) OUT.log; none may be a file any job reads, nor the manifest. */
+    static const char *const suffix[] = {"", ".ckpt", ".ckpt.1", ".log"};
+    char w[PATH_MAX + 16];
+    for (size_t s = 0; s < sizeof suffix / sizeof suffix[0]; s++) {
+      snprintf(w, sizeof w, "%s%s", a->out, suffix[s]);
+      if (rc__path_same_file(w, m->path))
+        return field_error(c, "out", "'%s%s' is the manifest itself", a->out_given, suffix[s]);
+      for (int k = 0; k < m->n_jobs; k++)
+        for (int f = 0; f < m->jobs[k].n_inputs; f++)
+          if (rc__path_same_file(w, m->jobs[k].inputs[f])) {
+            if (k == i) return field_error(c, "out", "'%s%s' is one of this job's inputs", a->out_given, suffix[s]);
+            return field_error(c, "out", "'%s%s' is an input of job '%s'", a->out_given, suffix[s], m->jobs[k].name);
+          }
+    }
   }
   return RC_OK;
 }

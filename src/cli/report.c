@@ -13,9 +13,11 @@
 #include <time.h>
 #include <unistd.h>
 
+#include "cli/cli.h"
 #include "core/alloc.h"
 #include "core/file.h"
 #include "core/fmt.h"
+#include "core/path.h"
 
 /* Our palette: distinct in hue and lightness (also for the common forms of
  * colour blindness), every colour dark enough for text on white. */
@@ -146,6 +148,23 @@ rc_status cli_report_prepare(const char *dir, int with_logs, rc_err *e) {
   snprintf(path, sizeof path, "%s/jobs", dir);
   RC_TRY(make_dir(path, e));
   if (access(dir, W_OK) != 0) return rc__fail(e, RC_ERR_IO, "report folder %s: not writable", dir);
+  return RC_OK;
+}
+
+rc_status cli_report_refuse_inputs(const char *dir, const char *const *names, int n_names,
+                                   const char *const *inputs, const char *const *labels, int n_inputs, rc_err *e) {
+  static const char *const fixed[] = {"report.json", "report.html", "summary.csv", "summary.md", "state.json"};
+  char path[4200];
+  for (size_t i = 0; i < sizeof fixed / sizeof fixed[0]; i++) {
+    snprintf(path, sizeof path, "%s/%s", dir, fixed[i]);
+    RC_TRY(rc__path_refuse_inputs("--report", path, inputs, labels, n_inputs, e));
+  }
+  for (int k = 0; k < n_names; k++) {
+    snprintf(path, sizeof path, "%s/jobs/%s.json", dir, names[k]);
+    RC_TRY(rc__path_refuse_inputs("--report", path, inputs, labels, n_inputs, e));
+    snprintf(path, sizeof path, "%s/logs/%s.log", dir, names[k]);
+    RC_TRY(rc__path_refuse_inputs("--report", path, inputs, labels, n_inputs, e));
+  }
   return RC_OK;
 }
 
@@ -842,7 +861,24 @@ static void write_html(sbuf *b, const char *title, const cJSON *meta, const cJSO
 
 /* ---- Writing the folder ------------------------------------------------------------------ */
 
+static rc_status write_escaped(const char *dir, const cJSON *meta, const cJSON *records, rc_err *e);
+
+/* Names and paths in records come from files: every report format gets them
+ * escaped (cli_json_escape_tree), HTML then adds its entities. */
 rc_status cli_report_write(const char *dir, const cJSON *meta, const cJSON *records, rc_err *e) {
+  cJSON *m = cJSON_Duplicate(meta, 1), *r = cJSON_Duplicate(records, 1);
+  rc_status s = m && r ? RC_OK : rc__fail(e, RC_ERR_NOMEM, "out of memory");
+  if (s == RC_OK) {
+    cli_json_escape_tree(m);
+    cli_json_escape_tree(r);
+    s = write_escaped(dir, m, r, e);
+  }
+  cJSON_Delete(m);
+  cJSON_Delete(r);
+  return s;
+}
+
+static rc_status write_escaped(const char *dir, const cJSON *meta, const cJSON *records, rc_err *e) {
   char path[4200];
   const cJSON *r;
   cJSON_ArrayForEach(r, records) {

@@ -45,6 +45,12 @@ rc_status cli_report_prepare(const char *dir, int with_logs, rc_err *e);
  * records in job order; `meta` an object (copied). */
 rc_status cli_report_write(const char *dir, const cJSON *meta, const cJSON *records, rc_err *e);
 
+/* Refuse a report folder where a file it would hold (report.json,
+ * report.html, summary.csv, summary.md, state.json, jobs/NAME.json,
+ * logs/NAME.log for each of the n_names job names) is one of the inputs. */
+rc_status cli_report_refuse_inputs(const char *dir, const char *const *names, int n_names,
+                                   const char *const *inputs, const char *const *labels, int n_inputs, rc_err *e);
+
 /* Read DIR/report.json; *report owns the parsed object. */
 rc_status cli_report_read(const char *dir, cJSON **report, rc_err *e);
 

@@ -140,6 +140,8 @@ rc_status rc_prune_model(rc_model *m, const rc_prune_opts *o, rc_prune_report *r
       note_append(pl, "every weight is zero: the layer passes no signal (try --scope layer)");
     r->weights_total += rc_tensor_numel(t);
     r->weights_zero += pl->zeros;
+    if ((i == 0 || i == nl - 1) && !o->include_first_last && (o->sparsity > 0 || o->nm_m))
+      r->weights_kept_dense += rc_tensor_numel(t);
   }
 out:
   if (st != RC_OK) {

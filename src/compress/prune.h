@@ -40,6 +40,7 @@ typedef struct rc_prune_report {
   int64_t params_before, params_after;
   int64_t macs_before, macs_after;       /* batch of one; -1 when the model does not plan */
   int64_t weights_total, weights_zero;   /* every prunable weight after pruning */
+  int64_t weights_kept_dense;            /* of those, in the first and last layers kept dense */
   int64_t channels_removed;
   int n_notes;
   char (*notes)[240];      /* refusals not tied to one layer (Reshape targets, ...) */

@@ -1,5 +1,7 @@
 #include "core/status.h"
 
+#include "core/escape.h"
+
 #include <stdarg.h>
 #include <stdio.h>
 #include <string.h>
@@ -22,8 +24,11 @@ rc_status rc__fail(rc_err *e, rc_status code, const char *fmt, ...) {
     e->code = code;
     va_list ap;
     va_start(ap, fmt);
-    vsnprintf(e->msg, sizeof e->msg, fmt, ap);
+    char raw[sizeof e->msg];
+    vsnprintf(raw, sizeof raw, fmt, ap);
     va_end(ap);
+    /* Messages quote names from files: escape them where they are made. */
+    rc__escape(e->msg, sizeof e->msg, raw);
   }
   return code;
 }
@@ -33,8 +38,10 @@ rc_status rc__wrap(rc_err *e, const char *fmt, ...) {
   char prefix[256];
   va_list ap;
   va_start(ap, fmt);
-  vsnprintf(prefix, sizeof prefix, fmt, ap);
+  char raw[256];
+  vsnprintf(raw, sizeof raw, fmt, ap);
   va_end(ap);
+  rc__escape(prefix, sizeof prefix, raw);
   char joined[sizeof e->msg];
   snprintf(joined, sizeof joined, "%s: %s", prefix, e->msg);
   memcpy(e->msg, joined, sizeof e->msg);

@@ -18,6 +18,7 @@
 
 #include "core/alloc.h"
 #include "core/file.h"
+#include "core/path.h"
 #include "ir/tensor_proto.h"
 #include "onnx/model.h"
 
@@ -178,14 +179,7 @@ static rc_status patch_changed(rc_model *m, patch_list *pl, const int *changed, 
 }
 
 static rc_status refuse_input_path(const rc_model *m, const char *path, rc_err *e) {
-  int same = same_file(path, m->path);
-  if (!same) {
-    char *a = realpath(path, NULL), *b = realpath(m->path, NULL);
-    same = a && b && !strcmp(a, b);
-    free(a);
-    free(b);
-  }
-  if (same)
+  if (rc__path_same_file(path, m->path))
     return rc__fail(e, RC_ERR_INVALID,
                     "%s: is the model that was read; recoup never overwrites its input, choose "
                     "another output path", path);

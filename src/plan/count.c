@@ -36,7 +36,9 @@ int64_t rc__node_macs(rc_plan *p, const rc_node *n) {
   return 0;
 }
 
-rc_tensor *rc__batch1_inputs(const rc_graph *g) {
+rc_tensor *rc__batch1_inputs(const rc_graph *g) { return rc__batch_inputs(g, 1); }
+
+rc_tensor *rc__batch_inputs(const rc_graph *g, int64_t b) {
   rc_tensor *ins = rc__calloc((size_t)g->n_inputs + 1, sizeof(rc_tensor));
   if (!ins) return NULL;
   for (int i = 0; i < g->n_inputs; i++) {
@@ -44,7 +46,7 @@ rc_tensor *rc__batch1_inputs(const rc_graph *g) {
     ins[i].data = NULL;
     if (ins[i].rank < 0) ins[i].rank = 0;
     for (int d = 0; d < ins[i].rank; d++)
-      if (ins[i].dims[d] < 0) ins[i].dims[d] = 1;
+      if (ins[i].dims[d] < 0) ins[i].dims[d] = b;
   }
   return ins;
 }

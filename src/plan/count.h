@@ -13,6 +13,9 @@
  * taken as 1: the batch of one that counts are quoted for. One rc_tensor
  * per graph input, data NULL, from rc__malloc; NULL when out of memory. */
 rc_tensor *rc__batch1_inputs(const rc_graph *g);
+/* The same with every symbolic dim taken as b (inspect plans at 1 and 2 to
+ * see which output dims follow the batch). */
+rc_tensor *rc__batch_inputs(const rc_graph *g, int64_t b);
 
 /* Plan g for rc__batch1_inputs. */
 rc_status rc__plan_batch1(rc_plan **p, const rc_graph *g, rc_err *e);
