@@ -160,9 +160,14 @@ static rc_status decide(const rc_model *m, const rc_weight_info *w, int n_w, con
   f->masks = rc__calloc((size_t)n_w + 1, sizeof *f->masks);
   f->ranges = rc__calloc((size_t)n_gr + 1, sizeof *f->ranges);
   if (!f->masks || !f->ranges) s = rc__fail(e, RC_ERR_NOMEM, "out of memory");
-  for (int i = 0; s == RC_OK && i < n_gr; i++)
+  for (int i = 0; s == RC_OK && i < n_gr; i++) {
     s = rc__grid_range(g, &notes, gr[i].is_weight ? gr[i].value : -1, gr[i].dtype, g->values[gr[i].value].name,
                        &f->ranges[i], e);
+    int q = g->values[gr[i].value].producer; /* a float weight quantized at run time */
+    if (s == RC_OK && !gr[i].is_weight && q >= 0 && !strcmp(g->nodes[q].op_type, "QuantizeLinear") &&
+        f->ranges[i].source == RC_RANGE_DTYPE)
+      rc__grid_range_of_float_weight(g, q, &f->ranges[i]);
+  }
   for (int i = 0; s == RC_OK && i < n_w; i++) {
     if (w[i].role != RC_ROLE_WEIGHT) continue;
     const rc_value *v = &g->values[w[i].value];

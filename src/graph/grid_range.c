@@ -2,6 +2,7 @@
 
 #include <cJSON.h>
 #include <limits.h>
+#include <math.h>
 #include <stdio.h>
 #include <string.h>
 
@@ -100,6 +101,10 @@ void rc__range_observed(rc_dtype dt, int64_t used_lo, int64_t used_hi, int32_t *
   if (is_signed && used_lo > dlo) *lo = dlo + 1;
 }
 
+static int dtype_is_the_range(rc_dtype dt) {
+  return dt == RC_DTYPE_INT4 || dt == RC_DTYPE_UINT4 || dt == RC_DTYPE_INT32;
+}
+
 static void used_range(const rc_tensor *t, int64_t *lo, int64_t *hi) {
   int64_t n = rc_tensor_numel(t);
   *lo = *hi = n ? rc__int_at(t, 0) : 0;
@@ -148,8 +153,7 @@ rc_status rc__grid_range(const rc_graph *g, const rc_file_notes *notes, int valu
                       r->lo, r->hi, RC_RANGES_METADATA);
     return RC_OK;
   }
-  int dtype_is_the_range = dt == RC_DTYPE_INT4 || dt == RC_DTYPE_UINT4 || dt == RC_DTYPE_INT32;
-  if (r->has_used && !dtype_is_the_range) {
+  if (r->has_used && !dtype_is_the_range(dt)) {
     rc__range_observed(dt, r->used_lo, r->used_hi, &r->lo, &r->hi);
     r->source = RC_RANGE_OBSERVED;
   }
@@ -196,4 +200,35 @@ int rc__constant_source(const rc_graph *g, int v, char *why, size_t n) {
   }
   if (why) snprintf(why, n, "it is not a constant");
   return -1;
+}
+
+void rc__grid_range_of_float_weight(const rc_graph *g, int q, rc_int_range *r) {
+  const rc_node *n = &g->nodes[q];
+  int wv = n->n_in > 0 ? n->in[0] : -1, sv = n->n_in > 1 && n->in[1] >= 0 ? rc__constant_source(g, n->in[1], NULL, 0) : -1;
+  int zv = n->n_in > 2 && n->in[2] >= 0 ? rc__constant_source(g, n->in[2], NULL, 0) : -1;
+  if (wv < 0 || sv < 0 || g->values[wv].kind != RC_VALUE_INITIALIZER) return;
+  const rc_tensor *w = &g->values[wv].decl, *s = &g->values[sv].decl, *z = zv >= 0 ? &g->values[zv].decl : NULL;
+  int64_t n_w = rc_tensor_numel(w), n_s = rc_tensor_numel(s), inner = 1;
+  if (w->dtype != RC_DTYPE_FLOAT || s->dtype != RC_DTYPE_FLOAT || !w->data || !s->data || !n_w || !n_s) return;
+  if (n_s > 1) {
+    int64_t axis = rc__attr_int(n, "axis", 1);
+    if (axis < 0) axis += w->rank;
+    if (axis < 0 || axis >= w->rank || w->dims[axis] != n_s) return;
+    for (int d = (int)axis + 1; d < w->rank; d++) inner *= w->dims[d];
+  }
+  const float *x = w->data, *sc = s->data;
+  for (int64_t i = 0; i < n_w; i++) {
+    int64_t c = n_s > 1 ? (i / inner) % n_s : 0;
+    double zp = z && z->data ? (double)rc__int_at(z, rc_tensor_numel(z) > 1 ? c : 0) : 0.0;
+    double v = rint((double)(x[i] / sc[c])) + zp;
+    if (v != v) v = zp;
+    int64_t k = v < r->lo ? r->lo : v > r->hi ? r->hi : (int64_t)v;
+    if (!r->has_used || k < r->used_lo) r->used_lo = k;
+    if (!r->has_used || k > r->used_hi) r->used_hi = k;
+    r->has_used = 1;
+  }
+  rc_dtype dt = z ? z->dtype : (rc_dtype)rc__attr_int(n, "output_dtype", RC_DTYPE_UINT8);
+  if (dtype_is_the_range(dt)) return;
+  rc__range_observed(dt, r->used_lo, r->used_hi, &r->lo, &r->hi);
+  r->source = RC_RANGE_OBSERVED;
 }

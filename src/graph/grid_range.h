@@ -7,7 +7,8 @@
  *             integers exist only at run time): the dtype's own range;
  *   recorded  the file's RC_RANGES_METADATA entry names the tensor (written
  *             by `recoup quantize`);
- *   observed  any other integer initializer: the narrowest common range
+ *   observed  any other integer initializer, and a float weight's integers
+ *             (QuantizeLinear on an initializer): the narrowest common range
  *             holding every integer the tensor uses, over the whole tensor
  *             (a per-axis grid's channels share one stored width):
  *             signed, the smallest width b with all values in
@@ -65,6 +66,12 @@ int rc__file_notes_pruned(const rc_file_notes *n, const char *tensor);
  * recorded range must lie within the dtype and hold the tensor's integers. */
 rc_status rc__grid_range(const rc_graph *g, const rc_file_notes *notes, int value, rc_dtype dt, const char *name,
                          rc_int_range *r, rc_err *e);
+
+/* A float weight feeding QuantizeLinear node q: its integers are fixed by
+ * the file all the same (round half to even of w / scale plus the zero
+ * point, clamped to r's range), so r becomes the range they use (observed),
+ * unless the dtype fixes the range. r holds the dtype's range on entry. */
+void rc__grid_range_of_float_weight(const rc_graph *g, int q, rc_int_range *r);
 
 /* The narrowest common range holding [used_lo, used_hi] on dtype dt (see above). */
 void rc__range_observed(rc_dtype dt, int64_t used_lo, int64_t used_hi, int32_t *lo, int32_t *hi);

@@ -1098,11 +1098,13 @@ static void free_state(run_state *st) {
 
 /* Rewrite the student's QDQ sites for training, with the ranges and the
  * pruning its file records. */
-static rc_status prepare_grids(run_state *st, rc_err *e) {
+static rc_status prepare_grids(run_state *st, const rc_tensor *data, rc_err *e) {
+  rc_tensor shapes[RC_DATASET_MAX_INPUTS];
+  input_shapes(st->sg, data, 1, shapes);
   rc_file_notes notes;
   RC_TRY(rc__file_notes_parse(&notes, rc_model_metadata(st->student, RC_RANGES_METADATA),
                               rc_model_metadata(st->student, RC_PRUNED_METADATA), st->sg->path, e));
-  rc_status s = rc__qat_prepare(st->sg, &notes, st->c->mask, &st->qat, e);
+  rc_status s = rc__qat_prepare(st->sg, shapes, &notes, st->c->mask, &st->qat, e);
   rc__file_notes_free(&notes);
   return s;
 }
@@ -1155,11 +1157,11 @@ rc_status rc_distill_run(rc_distill_result *r, rc_model *teacher, rc_model *stud
   rc_pairing layers = {0};
   rc_status s;
   if ((s = rc_distill_check_pair(&teacher->graph, st.sg, e)) != RC_OK) goto out;
-  if ((s = prepare_grids(&st, e)) != RC_OK) goto out;
   if (d->n_inputs != st.sg->n_inputs) {
     s = rc__fail(e, RC_ERR_INVALID, "%s has %d inputs, the data %d", st.sg->path, st.sg->n_inputs, d->n_inputs);
     goto out;
   }
+  if ((s = prepare_grids(&st, d->inputs, e)) != RC_OK) goto out;
   if ((s = rc_optim_check(&c->optim, e)) != RC_OK) goto out;
   if (c->temperature <= 0 || !isfinite(c->temperature)) {
     s = rc__fail(e, RC_ERR_INVALID, "the temperature must be positive");

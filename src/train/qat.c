@@ -5,6 +5,7 @@
 #include <string.h>
 
 #include "core/alloc.h"
+#include "graph/plan.h"
 #include "ops/fakequant.h"
 #include "ops/quant.h"
 
@@ -163,12 +164,13 @@ static rc_status rewrite_int_weight(rc_graph *g, const rc_file_notes *notes, rc_
 static rc_status rewrite_pair(rc_graph *g, const rc_file_notes *notes, rc_mask_mode mask, rc_qat *q, int dqi, int qi,
                               rc_err *e) {
   rc_node *dq = &g->nodes[dqi], *qn = &g->nodes[qi];
-  rc_int_range range;
-  RC_TRY(site_range(g, notes, qn, -1, quantize_output_dtype(g, qn), g->values[qn->out[0]].name, &range, e));
-  rc_fake_quant_params *p = fq_params(g, qn, &range, e);
-  if (!p) return e->code;
   int fw = initializer_in(g, qn, 0);
   if (fw >= 0 && g->values[fw].decl.dtype != RC_DTYPE_FLOAT) fw = -1;
+  rc_int_range range;
+  RC_TRY(site_range(g, notes, qn, -1, quantize_output_dtype(g, qn), g->values[qn->out[0]].name, &range, e));
+  if (fw >= 0 && range.source == RC_RANGE_DTYPE) rc__grid_range_of_float_weight(g, qi, &range);
+  rc_fake_quant_params *p = fq_params(g, qn, &range, e);
+  if (!p) return e->code;
   rc_qat_site s = {dqi, qi, -1, -1, fw, 0, dq->def, qn->def, dq->op_type, qn->op_type, dq->domain, qn->domain,
                    dq->params, qn->params, dq->in[0], dq->n_in, grid_hash(g, qn), range, {0}};
   if (fw >= 0) rc__mask_choose(mask, notes, g->values[fw].name, &g->values[fw].decl, 0, NULL, 1, 1, &s.mask);
@@ -184,8 +186,67 @@ static rc_status rewrite_pair(rc_graph *g, const rc_file_notes *notes, rc_mask_m
   return add_site(q, &s, e);
 }
 
-rc_status rc__qat_prepare(rc_graph *g, const rc_file_notes *notes, rc_mask_mode mask, rc_qat *q, rc_err *e) {
+static int is_grid_node(const rc_node *n) { return is_op(n, "DequantizeLinear") || is_op(n, "QuantizeLinear"); }
+
+static rc_status add_rewire(rc_qat *q, int node, int slot, int old_value, rc_err *e) {
+  rc_qat_rewire *grown = rc__realloc(q->rewired, sizeof *grown * (size_t)(q->n_rewired + 1));
+  if (!grown) return rc__fail(e, RC_ERR_NOMEM, "out of memory");
+  q->rewired = grown;
+  q->rewired[q->n_rewired++] = (rc_qat_rewire){node, slot, old_value};
+  return RC_OK;
+}
+
+/* A folded copy of constant value v from plan p, as a value of g's own that
+ * is never written to the file (init_index -1). */
+static rc_status folded_copy(rc_graph *g, rc_plan *p, int v, int *out, rc_err *e) {
+  const rc_tensor *t = rc_plan_tensor(p, v);
+  size_t nb = rc_tensor_nbytes(t);
+  void *data = rc__arena_alloc(&g->arena, nb ? nb : 1);
+  char name[600];
+  snprintf(name, sizeof name, "%s (folded)", g->values[v].name);
+  rc_value *c = &g->values[g->n_values];
+  memset(c, 0, sizeof *c);
+  c->name = rc__arena_strdup(&g->arena, name);
+  if (!data || !c->name) return rc__fail(e, RC_ERR_NOMEM, "out of memory");
+  memcpy(data, t->data, nb);
+  c->kind = RC_VALUE_INITIALIZER;
+  c->producer = -1;
+  c->init_index = -1;
+  c->decl = *t;
+  c->decl.data = data;
+  *out = g->n_values++;
+  return RC_OK;
+}
+
+/* Scales and zero points computed from constants (Constant nodes, Cast,
+ * arithmetic on initializers) are folded by planning g once; each grid input
+ * the plan knows as a constant then reads a folded copy. */
+static rc_status fold_grid_inputs(rc_graph *g, const rc_tensor *shapes, rc_qat *q, rc_err *e) {
+  int want = 0;
+  for (int i = 0; i < g->n_nodes; i++)
+    for (int k = 1; k <= 2 && is_grid_node(&g->nodes[i]) && k < g->nodes[i].n_in; k++)
+      want += g->nodes[i].in[k] >= 0 && constant_in(g, &g->nodes[i], k) < 0;
+  if (!want) return RC_OK;
+  rc_plan *p = NULL;
+  if (rc_plan_create(&p, g, shapes, NULL, e) != RC_OK) return rc__wrap(e, "planning the student to read its grids");
+  rc_status s = grow_values(g, want, e);
+  for (int i = 0; s == RC_OK && i < g->n_nodes; i++) {
+    rc_node *n = &g->nodes[i];
+    for (int k = 1; s == RC_OK && k <= 2 && is_grid_node(n) && k < n->n_in; k++) {
+      int v = n->in[k], c;
+      if (v < 0 || constant_in(g, n, k) >= 0 || !rc_plan_is_const(p, v) || !rc_plan_tensor(p, v)->data) continue;
+      if ((s = folded_copy(g, p, v, &c, e)) == RC_OK && (s = add_rewire(q, i, k, v, e)) == RC_OK) n->in[k] = c;
+    }
+  }
+  rc_plan_free(p);
+  return s;
+}
+
+rc_status rc__qat_prepare(rc_graph *g, const rc_tensor *shapes, const rc_file_notes *notes, rc_mask_mode mask,
+                          rc_qat *q, rc_err *e) {
   memset(q, 0, sizeof *q);
+  q->rewritten = 1;
+  if (shapes) RC_TRY(fold_grid_inputs(g, shapes, q, e));
   int shadows = 0;
   for (int i = 0; i < g->n_nodes; i++) {
     const rc_node *n = &g->nodes[i];
@@ -291,6 +352,7 @@ rc_status rc__qat_write_back(rc_graph *g, const rc_qat *q, rc_err *e) {
 
 void rc__qat_restore(rc_graph *g, rc_qat *q) {
   if (!q->rewritten) return;
+  for (int k = 0; k < q->n_rewired; k++) g->nodes[q->rewired[k].node].in[q->rewired[k].slot] = q->rewired[k].old_value;
   for (int k = 0; k < q->n; k++) {
     const rc_qat_site *s = &q->sites[k];
     rc_node *dq = &g->nodes[s->dq];
@@ -313,5 +375,6 @@ void rc__qat_restore(rc_graph *g, rc_qat *q) {
 
 void rc__qat_free(rc_qat *q) {
   rc__free(q->sites);
+  rc__free(q->rewired);
   memset(q, 0, sizeof *q);
 }

@@ -37,17 +37,29 @@ typedef struct rc_qat_site {
   rc_mask_choice mask; /* whether the weight's zeros are pruned (not for biases or activations) */
 } rc_qat_site;
 
+/* A grid input (scale or zero point) computed from constants (Constant
+ * nodes, Identity, Cast, ...) that was pointed at a folded copy. */
+typedef struct rc_qat_rewire {
+  int node, slot, old_value;
+} rc_qat_rewire;
+
 typedef struct rc_qat {
   rc_qat_site *sites;
   int n;
+  rc_qat_rewire *rewired;
+  int n_rewired;
   int rewritten;
 } rc_qat;
 
-/* Rewrite every QDQ site of g for training. Adds shadow values to g. notes:
- * the file's recorded ranges and pruning (may be NULL); mask: what zeros of
- * quantized weights mean. Refuses a grid whose scale or zero point is not a
- * constant, naming the node, the input and why. */
-rc_status rc__qat_prepare(rc_graph *g, const rc_file_notes *notes, rc_mask_mode mask, rc_qat *q, rc_err *e);
+/* Rewrite every QDQ site of g for training. Adds shadow values to g. shapes:
+ * one tensor per graph input (dtype, concrete shape) to plan g once and fold
+ * scales and zero points computed from constants into values of their own
+ * (NULL: only initializers and Identity chains count). notes: the file's
+ * recorded ranges and pruning (may be NULL); mask: what zeros of quantized
+ * weights mean. Refuses a grid whose scale or zero point is not a constant,
+ * naming the node, the input and why. */
+rc_status rc__qat_prepare(rc_graph *g, const rc_tensor *shapes, const rc_file_notes *notes, rc_mask_mode mask,
+                          rc_qat *q, rc_err *e);
 /* Requantize shadows into their integer initializers and snap float weights
  * feeding QuantizeLinear onto their grids (in the data the graph points at).
  * First verifies that every grid (scale and zero point bytes, dtypes, axis)
