@@ -308,6 +308,18 @@ for k in sorted(bp):
           lost == 0 and rulesp[k]["mask"]["zeros"] == "pruned" and rulesp[k]["mask"]["rule"] == "recorded",
           f"({lost} lost; rule {rulesp[k]['mask']['rule']})")
 
+# Without the record, the zero point's excess over its neighbours decides.
+bare = onnx.load(pq4)
+keep_meta = [p for p in bare.metadata_props if p.key != "recoup.pruned"]
+del bare.metadata_props[:]
+bare.metadata_props.extend(keep_meta)
+onnx.save(bare, W("garment_p50_w4_unrecorded.onnx"))
+bj = {w["name"]: w["mask"] for w in run.json(["inspect", W("garment_p50_w4_unrecorded.onnx"), "--json"])["weights"]
+      if w["mask"]}
+check("auto without the record: pruned tensors found by the zero point's excess",
+      all(bj[k]["zeros"] == "pruned" and bj[k]["rule"] == "excess" for k in checked),
+      "(" + ", ".join(f"{k}: {bj[k]['at_zero']} at zero, {bj[k]['beside_zero']} beside" for k in checked) + ")")
+
 resz = distill(q4, W("w4_zeros_out.onnx"), ["--mask", "zeros"])
 az = ints(W("w4_zeros_out.onnx"))
 lost = sum(int((az[k][z] != 0).sum()) for k, z in zeros4.items())
