@@ -5,6 +5,7 @@ counting checks into the closing "N passed, M failed" line."""
 
 import json
 import os
+import shutil
 import subprocess
 import sys
 
@@ -42,6 +43,15 @@ class Run:
         else:
             self.failed.append(name)
 
+    def checker_accepts(self, label, model):
+        """onnx.checker (Debian python3-onnx) with full shape inference on a loaded model."""
+        import onnx
+        try:
+            onnx.checker.check_model(model, full_check=True)
+            self.check(f"{label}: onnx.checker accepts the file", True)
+        except Exception as exc:  # noqa: BLE001 - any checker error fails the test
+            self.check(f"{label}: onnx.checker accepts the file", False, str(exc))
+
     def finish(self):
         print(f"{self.passed} passed, {len(self.failed)} failed")
         sys.exit(1 if self.failed else 0)
@@ -51,3 +61,19 @@ def require(*paths):
     for p in paths:
         if not os.path.exists(p):
             raise SystemExit(f"missing {p}: run scripts/setup.sh (models come from the scripts in scripts/)")
+
+
+def run_ort(model, inp, outdir):
+    """Outputs of `model` on the .npy `inp` from onnxruntime-web (npm, tests/ort/run.mjs), with graph
+    optimisation disabled so a QDQ graph runs as written; output 0 as an array."""
+    import numpy as np
+    here = os.path.dirname(os.path.abspath(__file__))
+    node = os.environ.get("RECOUP_NODE") or shutil.which("node")
+    if not node or not os.path.isdir(os.path.join(here, "ort", "node_modules", "onnxruntime-web")):
+        raise SystemExit("FAIL: node or onnxruntime-web (tests/ort) is missing: run scripts/setup.sh")
+    os.makedirs(outdir, exist_ok=True)
+    p = subprocess.run([node, os.path.join(here, "ort", "run.mjs"), model, outdir, inp, "--opt", "disabled"],
+                       capture_output=True, text=True)
+    if p.returncode != 0:
+        raise SystemExit(f"FAIL: onnxruntime-web on {model}: {p.stderr.strip()}")
+    return np.load(os.path.join(outdir, "0.npy"))

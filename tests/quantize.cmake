@@ -8,3 +8,11 @@ if(NOT RECOUP_SANITIZE)
                    ${PROJECT_SOURCE_DIR} ${CMAKE_BINARY_DIR}/quantize_test)
   set_tests_properties(quantize_fashion_mnist PROPERTIES TIMEOUT 1200)
 endif()
+
+# What quantize writes (names, output-grid margin) and prune's refusal of a
+# quantized model, on small graphs built with Debian's python3-onnx, run in
+# onnxruntime-web (npm, tests/ort). Seconds, so the sanitizer build runs it too.
+add_test(NAME quantize_grids
+         COMMAND ${RECOUP_PYTHON} ${CMAKE_CURRENT_SOURCE_DIR}/quantize_grids_test.py $<TARGET_FILE:recoup>
+                 ${CMAKE_BINARY_DIR}/quantize_grids_test)
+set_tests_properties(quantize_grids PROPERTIES TIMEOUT 300 ENVIRONMENT "RECOUP_NODE=${RECOUP_NODE}")

@@ -15,8 +15,9 @@
 #include <string.h>
 
 #include "core/alloc.h"
-#include "graph/plan.h"
 #include "onnx/model.h"
+#include "plan/load.h"
+#include "plan/plan.h"
 #include "recoup/alloc.h"
 #include "test.h"
 

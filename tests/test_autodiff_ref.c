@@ -13,8 +13,9 @@
 #include <string.h>
 
 #include "core/alloc.h"
-#include "graph/plan.h"
 #include "onnx/model.h"
+#include "plan/load.h"
+#include "plan/plan.h"
 #include "recoup/data.h"
 #include "reference_cases.h"
 #include "test.h"

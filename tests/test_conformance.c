@@ -28,9 +28,11 @@
 #include <unistd.h>
 
 #include "core/alloc.h"
-#include "graph/inspect.h"
-#include "graph/plan.h"
+#include "data/tensorproto.h"
 #include "onnx/model.h"
+#include "plan/inspect.h"
+#include "plan/load.h"
+#include "plan/plan.h"
 #include "test.h"
 
 #define DEFAULT_DATA_DIR "/usr/share/libonnx-testdata/data"

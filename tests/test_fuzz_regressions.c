@@ -18,6 +18,7 @@
 #include <string.h>
 
 #include "fuzz/fuzz_entries.h"
+#include "plan/load.h"
 #include "test.h"
 
 typedef int (*entry_fn)(const uint8_t *, size_t);

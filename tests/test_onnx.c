@@ -19,9 +19,12 @@
 #include <unistd.h>
 
 #include "core/alloc.h"
+#include "core/file.h"
+#include "data/tensorproto.h"
+#include "ir/tensor_proto.h"
 #include "onnx/model.h"
-#include "onnx/onnx_internal.h"
 #include "ops/op.h"
+#include "plan/load.h"
 #include "recoup/alloc.h"
 #include "onnx_build.h"
 #include "test.h"

@@ -18,8 +18,10 @@
 #include <errno.h>
 
 #include "core/alloc.h"
+#include "data/tensorproto.h"
 #include "onnx/model.h"
 #include "ops/layout.h"
+#include "plan/load.h"
 #include "ops_expect.h"
 
 #define DATA_DIR "/usr/share/libonnx-testdata/data/node"

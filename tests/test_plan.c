@@ -5,8 +5,9 @@
 #include <stdint.h>
 
 #include "core/alloc.h"
+#include "plan/load.h"
+#include "plan/plan.h"
 #include "recoup/alloc.h"
-#include "graph/plan.h"
 #include "test.h"
 
 typedef struct builder {

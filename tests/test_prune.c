@@ -16,12 +16,13 @@
 #include <string.h>
 #include <unistd.h>
 
+#include "compress/prune.h"
 #include "core/alloc.h"
-#include "graph/inspect.h"
-#include "graph/plan.h"
-#include "graph/prune.h"
 #include "onnx/model.h"
 #include "onnx/onnx.pb-c.h"
+#include "plan/inspect.h"
+#include "plan/load.h"
+#include "plan/plan.h"
 #include "onnx_build.h"
 #include "test.h"
 

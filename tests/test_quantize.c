@@ -1,4 +1,4 @@
-/* Post-training quantization (src/graph/quantize.c) and the model edit API
+/* Post-training quantization (src/compress/quantize.c) and the model edit API
  * it writes through (src/onnx/edit.c), on small hand-made graphs.
  *
  * Facts checked, with their sources:
@@ -21,10 +21,11 @@
 #include <string.h>
 #include <unistd.h>
 
-#include "graph/plan.h"
-#include "graph/quantize.h"
-#include "onnx/onnx.pb-c.h"
+#include "compress/quantize.h"
 #include "onnx/model.h"
+#include "onnx/onnx.pb-c.h"
+#include "plan/load.h"
+#include "plan/plan.h"
 #include "onnx_build.h"
 #include "recoup/data.h"
 #include "test.h"
@@ -213,15 +214,22 @@ static const rc_node *dq_of(const rc_graph *g, const rc_node *n, int slot, const
   return dq;
 }
 
+/* The hand-made net (with BN, opset 13) in `file`, its samples and a
+ * min/max calibration config. */
+static void minmax_setup(net *n, unsigned net_seed, const char *file, float *x, unsigned x_seed,
+                         rc_quant_config *cfg) {
+  net_init(n, net_seed);
+  write_net(n, 1, 8, 13, tpath(file));
+  make_inputs(x, x_seed);
+  rc_quant_config_defaults(cfg);
+  cfg->calib = RC_CALIB_MINMAX;
+}
+
 static void test_weight_and_bias_grids(void) {
   net n;
-  net_init(&n, 11);
-  write_net(&n, 1, 8, 13, tpath("net.onnx"));
   static float x[N_SAMPLES * C_IN * HW * HW];
-  make_inputs(x, 5);
   rc_quant_config cfg;
-  rc_quant_config_defaults(&cfg);
-  cfg.calib = RC_CALIB_MINMAX;
+  minmax_setup(&n, 11, "net.onnx", x, 5, &cfg);
   cfg.batch = 10; /* 24 samples: a short last batch is calibrated through its own plan */
   rc_err e = {0};
   quantized q;
@@ -416,6 +424,43 @@ static void test_weight_only_and_percentile(void) {
   quantized_free(&q);
 }
 
+/* The output margin stretches the graph output's grid (y, the last of the
+ * five) by 1 + margin about zero and leaves every inner grid as calibrated. */
+static void test_output_margin(void) {
+  net n;
+  static float x[N_SAMPLES * C_IN * HW * HW];
+  rc_quant_config cfg;
+  minmax_setup(&n, 29, "netm.onnx", x, 31, &cfg);
+  CHECK_NEAR(cfg.output_margin, 0.1, 0, 0);
+  rc_err e = {0};
+  quantized wide, tight;
+  CHECK(quantize_file(tpath("netm.onnx"), tpath("qm_wide.onnx"), &cfg, x, &wide, &e));
+  cfg.output_margin = 0;
+  CHECK(quantize_file(tpath("netm.onnx"), tpath("qm_tight.onnx"), &cfg, x, &tight, &e));
+  if (wide.m && tight.m && wide.rep.n_grids == 5 && tight.rep.n_grids == 5) {
+    for (int i = 0; i < 4; i++) {
+      CHECK(!strcmp(wide.rep.grids[i].tensor, tight.rep.grids[i].tensor));
+      CHECK(wide.rep.grids[i].scale == tight.rep.grids[i].scale);
+      CHECK(wide.rep.grids[i].margin == 0);
+    }
+    const rc_quant_grid *w = &wide.rep.grids[4], *t = &tight.rep.grids[4];
+    CHECK(!strcmp(w->tensor, "y"));
+    CHECK_NEAR(w->margin, 0.1, 0, 1e-7);
+    CHECK_NEAR(w->lo, t->lo * 1.1, 0, 1e-6);
+    CHECK_NEAR(w->hi, t->hi * 1.1, 0, 1e-6);
+    CHECK_NEAR(w->scale, t->scale * 1.1, 0, 1e-5);
+    CHECK(t->lo < 0 && t->hi > 0); /* both ends stretched, so the check means something */
+  } else {
+    CHECK(0);
+  }
+  quantized_free(&wide);
+  quantized_free(&tight);
+  cfg.output_margin = -0.5;
+  CHECK(!quantize_file(tpath("netm.onnx"), tpath("never.onnx"), &cfg, x, &tight, &e));
+  CHECK_STR_CONTAINS(e.msg, "output margin");
+  quantized_free(&tight);
+}
+
 static void test_act_grid(void) {
   float s;
   int z;
@@ -533,7 +578,8 @@ static void remove_tmp(void) {
   static const char *const files[] = {"unfolded.onnx", "folded.onnx", "net.onnx", "q8.onnx", "net13.onnx",
                                       "q4_13.onnx", "net21.onnx", "q4_21.onnx", "netw.onnx", "qw.onnx",
                                       "qmm.onnx", "qpc.onnx", "net12.onnx", "net_ok.onnx", "already.onnx",
-                                      "edit_in.onnx", "edit_out.onnx", "edit_ref.onnx"};
+                                      "edit_in.onnx", "edit_out.onnx", "edit_ref.onnx", "netm.onnx",
+                                      "qm_wide.onnx", "qm_tight.onnx"};
   for (size_t i = 0; i < sizeof files / sizeof files[0]; i++) unlink(tpath(files[i]));
   rmdir(tmp_dir);
 }
@@ -550,6 +596,7 @@ int main(void) {
   RUN(test_weight_and_bias_grids);
   RUN(test_int4_weights);
   RUN(test_weight_only_and_percentile);
+  RUN(test_output_margin);
   RUN(test_refusals);
   RUN(test_edit_api);
   remove_tmp();

@@ -11,8 +11,9 @@
 #include <stdlib.h>
 #include <string.h>
 
-#include "graph/plan.h"
 #include "onnx/model.h"
+#include "plan/load.h"
+#include "plan/plan.h"
 #include "recoup/data.h"
 #include "reference_cases.h"
 #include "test.h"

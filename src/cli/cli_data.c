@@ -3,7 +3,7 @@
 #include <string.h>
 
 #include "cli/cli.h"
-#include "graph/plan.h"
+#include "plan/plan.h"
 
 void cli_data_opts_init(cli_data_opts *o) {
   memset(o, 0, sizeof *o);

@@ -3,7 +3,7 @@
 #ifndef RC_CLI_DATA_H
 #define RC_CLI_DATA_H
 
-#include "graph/ir.h"
+#include "ir/ir.h"
 #include "recoup/data.h"
 
 #define CLI_MAX_DATA 8

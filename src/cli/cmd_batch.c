@@ -25,6 +25,7 @@
 #include "cli/report.h"
 #include "cli/sha256.h"
 #include "core/alloc.h"
+#include "core/file.h"
 
 #define STDOUT_MAX (4 << 20) /* a distill --json result is a few kilobytes */
 
@@ -372,7 +373,7 @@ static rc_status load_state(batch *b, rc_err *e) {
 static rc_status save_state(batch *b, rc_err *e) {
   char *text = cJSON_Print(b->state);
   if (!text) return rc__fail(e, RC_ERR_NOMEM, "out of memory");
-  rc_status s = cli_write_atomic(b->state_path, text, strlen(text), e);
+  rc_status s = rc__write_atomic(b->state_path, text, strlen(text), e);
   free(text);
   return s;
 }

@@ -16,8 +16,11 @@
 #include "cli/cli_data.h"
 #include "cli/report.h"
 #include "cli/weight_rules.h"
+#include "core/fmt.h"
 #include "onnx/model.h"
+#include "plan/load.h"
 #include "train/distill.h"
+#include "train/select.h"
 
 #define MAX_GLOBS 32
 
@@ -91,9 +94,10 @@ static void usage(FILE *f) {
       "                           summary.csv, summary.md and JSON records\n"
       "  -h, --help               show this help\n"
       "\n"
-      "The best state by validation (accuracy with labels, else agreement with the\n"
-      "teacher) is written. Validate the recovered model on your own held-out data\n"
-      "before deploying it: the figures hold only for the samples measured.\n");
+      "The state with the lowest validation KL to the teacher is written (with\n"
+      "labels: alpha*KL + (1-alpha)*cross-entropy); accuracy and agreement are shown\n"
+      "beside it but do not decide. Validate the recovered model on your own held-out\n"
+      "data before deploying it: the figures hold only for the samples measured.\n");
 }
 
 typedef struct distill_args {
@@ -481,49 +485,102 @@ static void fmt_time(double s, char *buf, size_t n) {
 
 static void on_progress(void *user, const rc_distill_progress *p) {
   progress_state *ps = user;
-  char eta[32];
+  char eta[32], loss[32], kl[32];
+  rc__fmt_sig(loss, sizeof loss, p->loss, RC_FMT_SIG, 0);
   if (p->event == RC_DISTILL_NOTE) {
     fprintf(stderr, "%srecoup: %s\n", ps->tty ? "\r\033[K" : "", p->note);
     return;
   }
   if (p->event == RC_DISTILL_EPOCH) {
     if (ps->tty) fprintf(stderr, "\r\033[K");
-    fprintf(stderr, "epoch %lld/%lld  loss %.4f", (long long)p->epoch, (long long)p->epochs, p->loss);
+    fprintf(stderr, "epoch %lld/%lld  loss %s", (long long)p->epoch, (long long)p->epochs, loss);
     if (p->val.has_labels) fprintf(stderr, "  val accuracy %.2f%%", 100 * p->val.top1);
-    fprintf(stderr, "  agreement %.2f%%  KL %.4f%s\n", 100 * p->val.agreement, p->val.kl,
-            p->is_best ? "  (best so far)" : "");
+    fprintf(stderr, "  agreement %.2f%%  KL %s%s\n", 100 * p->val.agreement,
+            rc__fmt_sig(kl, sizeof kl, p->val.kl, RC_FMT_SIG, 0), p->is_best ? "  (best so far)" : "");
     return;
   }
   fmt_time(p->eta_s, eta, sizeof eta);
   if (ps->tty) {
     if (p->elapsed_s - ps->last_print < 0.2 && p->step != p->steps) return;
     ps->last_print = p->elapsed_s;
-    fprintf(stderr, "\r\033[Kepoch %lld/%lld  step %lld/%lld  loss %.4f  %.0f samples/s  %s left",
-            (long long)p->epoch, (long long)p->epochs, (long long)p->step, (long long)p->steps, p->loss,
+    fprintf(stderr, "\r\033[Kepoch %lld/%lld  step %lld/%lld  loss %s  %.0f samples/s  %s left",
+            (long long)p->epoch, (long long)p->epochs, (long long)p->step, (long long)p->steps, loss,
             p->samples_per_s, eta);
     fflush(stderr);
   } else if (p->elapsed_s - ps->last_print >= 10 || p->step == p->steps) {
     ps->last_print = p->elapsed_s;
-    fprintf(stderr, "epoch %lld/%lld step %lld/%lld loss %.4f %.0f samples/s %s left\n", (long long)p->epoch,
-            (long long)p->epochs, (long long)p->step, (long long)p->steps, p->loss, p->samples_per_s, eta);
+    fprintf(stderr, "epoch %lld/%lld step %lld/%lld loss %s %.0f samples/s %s left\n", (long long)p->epoch,
+            (long long)p->epochs, (long long)p->step, (long long)p->steps, loss, p->samples_per_s, eta);
   }
 }
 
 /* ---- Results ------------------------------------------------------------------ */
 
 static void table_row(const char *name, const rc_metrics *m) {
-  char acc[32] = "-";
+  char acc[32] = "-", kl[32];
   if (m->has_labels) snprintf(acc, sizeof acc, "%.2f%%", 100 * m->top1);
-  printf("  %-22s %10s %12.2f%% %14.5f\n", name, acc, 100 * m->agreement, m->kl);
+  printf("  %-22s %10s %12.2f%% %14s\n", name, acc, 100 * m->agreement, rc__fmt_sig(kl, sizeof kl, m->kl, RC_FMT_SIG, 0));
 }
 
-static cJSON *metrics_json(const rc_metrics *m) {
+/* JSON has no infinity or NaN: a number, or null beside a state saying why. */
+static const char *layer_state(double db, int64_t samples) {
+  return samples == 0 ? "not measured" : isinf(db) && db > 0 ? "identical" : "measured";
+}
+
+static const char *layer_cell(char *buf, size_t n, double db, int64_t samples) {
+  if (!strcmp(layer_state(db, samples), "measured")) snprintf(buf, n, "%.1f", db);
+  else snprintf(buf, n, "%s", layer_state(db, samples));
+  return buf;
+}
+
+static void layer_json(cJSON *o, const char *key, const char *state_key, double db, int64_t samples) {
+  if (isfinite(db)) cJSON_AddNumberToObject(o, key, db);
+  else cJSON_AddNullToObject(o, key);
+  cJSON_AddStringToObject(o, state_key, layer_state(db, samples));
+}
+
+/* The deciding figure of train/select.h beside the metrics it is made of. */
+static cJSON *metrics_json(const rc_metrics *m, double alpha) {
   cJSON *o = cJSON_CreateObject();
   if (m->has_labels) cJSON_AddNumberToObject(o, "accuracy", m->top1);
   else cJSON_AddNullToObject(o, "accuracy");
   cJSON_AddNumberToObject(o, "agreement", m->agreement);
   cJSON_AddNumberToObject(o, "kl", m->kl);
+  if (m->has_labels) cJSON_AddNumberToObject(o, "cross_entropy", m->ce);
+  double sel = rc__select_measure(m, alpha);
+  if (isfinite(sel)) cJSON_AddNumberToObject(o, "selection", sel);
   return o;
+}
+
+static cJSON *range_json(const rc_range_check *c) {
+  cJSON *o = cJSON_CreateObject();
+  cJSON_AddStringToObject(o, "tensor", c->tensor);
+  cJSON_AddNumberToObject(o, "worst_value", c->after.worst);
+  cJSON_AddNumberToObject(o, "range_end", c->after.bound);
+  cJSON_AddNumberToObject(o, "beyond", fabs(c->after.worst - c->after.bound));
+  cJSON_AddNumberToObject(o, "values_outside", (double)c->after.values_out);
+  cJSON_AddNumberToObject(o, "values", (double)c->after.values);
+  cJSON_AddNumberToObject(o, "samples_outside", (double)c->after.samples_out);
+  cJSON_AddNumberToObject(o, "samples", (double)c->after.samples);
+  cJSON_AddNumberToObject(o, "values_outside_before", (double)c->before.values_out);
+  return o;
+}
+
+/* Trained values the deployed model clamps: say which tensor, how far, how often. */
+static void warn_ranges(const rc_distill_result *r) {
+  for (int i = 0; i < r->n_ranges; i++) {
+    const rc_range_check *c = &r->ranges[i];
+    if (!c->after.values_out) continue;
+    char w[32], b[32], d[32];
+    fprintf(stderr, "recoup: warning: %lld of %lld values of '%s' on %lld of %lld validation samples lie outside "
+            "its activation grid and are clamped: the furthest is %s against the grid's %s of %s (%s beyond); "
+            "before training: %lld values\n", (long long)c->after.values_out, (long long)c->after.values, c->tensor,
+            (long long)c->after.samples_out, (long long)c->after.samples,
+            rc__fmt_sig(w, sizeof w, c->after.worst, RC_FMT_SIG, 0),
+            c->after.worst > c->after.bound ? "maximum" : "minimum", rc__fmt_sig(b, sizeof b, c->after.bound, RC_FMT_SIG, 0),
+            rc__fmt_sig(d, sizeof d, fabs(c->after.worst - c->after.bound), RC_FMT_SIG, 0),
+            (long long)c->before.values_out);
+  }
 }
 
 static cJSON *results_json(const distill_args *a, const rc_distill_result *r, double verify_diff) {
@@ -533,11 +590,14 @@ static cJSON *results_json(const distill_args *a, const rc_distill_result *r, do
   cJSON_AddStringToObject(root, "out", a->out);
   cJSON_AddNumberToObject(root, "train_samples", (double)r->n_train);
   cJSON_AddNumberToObject(root, "val_samples", (double)r->n_val);
-  cJSON_AddItemToObject(root, "dense", metrics_json(&r->teacher));
-  cJSON_AddItemToObject(root, "compressed", metrics_json(&r->before));
-  cJSON_AddItemToObject(root, "recovered", metrics_json(&r->after));
+  double alpha = r->select_alpha;
+  cJSON_AddItemToObject(root, "dense", metrics_json(&r->teacher, alpha));
+  cJSON_AddItemToObject(root, "compressed", metrics_json(&r->before, alpha));
+  cJSON_AddItemToObject(root, "recovered", metrics_json(&r->after, alpha));
   cJSON_AddBoolToObject(root, "improved", r->improved);
   cJSON_AddNumberToObject(root, "best_epoch", (double)r->best_epoch);
+  cJSON_AddStringToObject(root, "best_by", rc__select_rule_name(&r->before, alpha));
+  cJSON_AddNumberToObject(root, "best_by_alpha", alpha);
   cJSON_AddNumberToObject(root, "steps", (double)r->steps_done);
   cJSON_AddNumberToObject(root, "seconds", r->seconds);
   cJSON_AddNumberToObject(root, "samples_per_s", r->samples_per_s);
@@ -554,16 +614,18 @@ static cJSON *results_json(const distill_args *a, const rc_distill_result *r, do
     cJSON *o = cJSON_CreateObject();
     cJSON_AddStringToObject(o, "teacher", r->layers[i].teacher);
     cJSON_AddStringToObject(o, "student", r->layers[i].student);
-    /* JSON has no infinity: identical activations are reported as null. */
-    if (isfinite(r->layers[i].sqnr_before_db)) cJSON_AddNumberToObject(o, "sqnr_before_db", r->layers[i].sqnr_before_db);
-    else cJSON_AddNullToObject(o, "sqnr_before_db");
-    if (isfinite(r->layers[i].sqnr_after_db)) cJSON_AddNumberToObject(o, "sqnr_after_db", r->layers[i].sqnr_after_db);
-    else cJSON_AddNullToObject(o, "sqnr_after_db");
+    const rc_layer_error *l = &r->layers[i];
+    layer_json(o, "sqnr_before_db", "state_before", l->sqnr_before_db, l->samples_before);
+    layer_json(o, "sqnr_after_db", "state_after", l->sqnr_after_db, l->samples_after);
+    cJSON_AddNumberToObject(o, "samples", (double)l->samples_after);
     cJSON_AddItemToArray(layers, o);
   }
+  cJSON *ranges = cJSON_AddArrayToObject(root, "range_warnings");
+  for (int i = 0; i < r->n_ranges; i++)
+    if (r->ranges[i].after.values_out) cJSON_AddItemToArray(ranges, range_json(&r->ranges[i]));
   cJSON *hist = cJSON_AddArrayToObject(root, "epochs");
   for (int64_t i = 0; i < r->n_epochs; i++) {
-    cJSON *o = metrics_json(&r->epoch_val[i]);
+    cJSON *o = metrics_json(&r->epoch_val[i], alpha);
     cJSON_AddNumberToObject(o, "train_loss", r->epoch_loss[i]);
     int64_t end = (i + 1) * r->steps_per_epoch;
     cJSON_AddNumberToObject(o, "step", (double)(end < r->steps_done ? end : r->steps_done));
@@ -598,6 +660,7 @@ static rc_status write_report(const distill_args *a, const rc_distill_result *r,
 }
 
 static void print_results(const distill_args *a, const rc_distill_result *r, double verify_diff) {
+  warn_ranges(r);
   if (a->json) {
     cJSON *root = results_json(a, r, verify_diff);
     char *text = cJSON_Print(root);
@@ -615,9 +678,12 @@ static void print_results(const distill_args *a, const rc_distill_result *r, dou
   table_row("recovered (output)", &r->after);
   if (r->n_layers) {
     printf("\nLayer outputs against the dense model (signal-to-noise ratio, dB; higher is closer):\n");
-    printf("  %-44s %10s %10s\n", "student tensor", "before", "after");
-    for (int i = 0; i < r->n_layers; i++)
-      printf("  %-44s %10.1f %10.1f\n", r->layers[i].student, r->layers[i].sqnr_before_db, r->layers[i].sqnr_after_db);
+    printf("  %-44s %12s %12s\n", "student tensor", "before", "after");
+    for (int i = 0; i < r->n_layers; i++) {
+      const rc_layer_error *l = &r->layers[i];
+      printf("  %-44s %12s %12s\n", l->student, layer_cell(b1, sizeof b1, l->sqnr_before_db, l->samples_before),
+             layer_cell(b2, sizeof b2, l->sqnr_after_db, l->samples_after));
+    }
   }
   printf("\n%lld steps in %.1f s (%.0f samples/s); %s values trained in %d tensors\n", (long long)r->steps_done,
          r->seconds, r->samples_per_s, cli_group_digits(r->n_trainable, b1, sizeof b1), r->n_trainable_tensors);
@@ -627,6 +693,10 @@ static void print_results(const distill_args *a, const rc_distill_result *r, dou
     printf("grids: %d quantized weights rewritten on their unchanged grids (scales, zero points, dtypes, axes,\n"
            "       integer ranges; every integer checked inside its range)\n", r->n_grids);
   cli_weight_rules_print(r->rules, r->n_rules);
+  printf("best state: lowest validation %s; agreement%s reported beside it\n",
+         strcmp(rc__select_rule_name(&r->before, r->select_alpha), "kl") ? "alpha*KL + (1-alpha)*cross-entropy"
+                                                                        : "KL to dense",
+         r->after.has_labels ? " and accuracy" : "");
   if (r->improved)
     printf("wrote %s (best epoch %lld; reloaded and checked: outputs identical)\n", a->out, (long long)r->best_epoch);
   else

@@ -7,9 +7,10 @@
 #include "cli/cli.h"
 #include "cli/cli_data.h"
 #include "core/alloc.h"
+#include "core/fmt.h"
 #include "data/npy_write.h"
-#include "graph/plan.h"
-#include "onnx/model.h"
+#include "plan/load.h"
+#include "plan/plan.h"
 #include "train/evaluate.h"
 
 static void usage(FILE *f) {
@@ -191,7 +192,8 @@ static void print_result(const eval_args *a, const cli_samples *s, const rc_metr
   if (m && m->has_ref) {
     printf("reference        %s\n", a->ref);
     printf("top-1 agreement  %.2f%%\n", 100 * m->agreement);
-    printf("mean KL(ref||model) %.6f\n", m->kl);
+    char kl[32];
+    printf("mean KL(ref||model) %s\n", rc__fmt_sig(kl, sizeof kl, m->kl, RC_FMT_SIG, 0));
   }
   if (a->out) printf("outputs written  %s\n", a->out);
 }

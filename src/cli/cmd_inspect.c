@@ -7,11 +7,13 @@
 #include "cli/cli.h"
 #include "cli/weight_rules.h"
 #include "core/alloc.h"
-#include "graph/grid_range.h"
-#include "graph/inspect.h"
-#include "graph/mask_rule.h"
-#include "graph/plan.h"
 #include "onnx/model.h"
+#include "plan/count.h"
+#include "plan/grid_range.h"
+#include "plan/inspect.h"
+#include "plan/load.h"
+#include "plan/mask_rule.h"
+#include "plan/plan.h"
 #include "train/pairing.h"
 
 static void usage(FILE *f) {
@@ -55,35 +57,6 @@ static int count_ops(const rc_graph *g, op_count *counts) {
   return n;
 }
 
-/* Input shapes at batch 1: every symbolic dim taken as 1. */
-static rc_tensor *batch_one_shapes(const rc_graph *g) {
-  rc_tensor *ins = rc__calloc((size_t)g->n_inputs + 1, sizeof(rc_tensor));
-  if (!ins) return NULL;
-  for (int i = 0; i < g->n_inputs; i++) {
-    ins[i] = g->values[g->inputs[i]].decl;
-    ins[i].data = NULL;
-    if (ins[i].rank < 0) ins[i].rank = 0;
-    for (int d = 0; d < ins[i].rank; d++)
-      if (ins[i].dims[d] < 0) ins[i].dims[d] = 1;
-  }
-  return ins;
-}
-
-/* Plan at batch 1 and add up MACs. */
-static int64_t macs_batch_one(const rc_graph *g, rc_err *e) {
-  rc_tensor *ins = batch_one_shapes(g);
-  if (!ins) return -1;
-  rc_plan *p = NULL;
-  int64_t total = -1;
-  if (rc_plan_create(&p, g, ins, NULL, e) == RC_OK) {
-    total = 0;
-    for (int i = 0; i < g->n_nodes; i++) total += rc__node_macs(p, &g->nodes[i]);
-  }
-  rc_plan_free(p);
-  rc__free(ins);
-  return total;
-}
-
 static const char *dim_str(const rc_tensor *t, char *buf, size_t n) {
   if (t->rank < 0) return "(unknown)";
   size_t used = (size_t)snprintf(buf, n, "(");
@@ -99,18 +72,6 @@ static const char *dim_str(const rc_tensor *t, char *buf, size_t n) {
 
 static const char *role_name(rc_weight_role r) {
   return r == RC_ROLE_BIAS ? "bias" : r == RC_ROLE_NORM ? "norm" : r == RC_ROLE_AFFINE ? "affine" : "weight";
-}
-
-static int64_t param_count(const rc_graph *g) {
-  int64_t n = 0;
-  for (int v = 0; v < g->n_values; v++)
-    if (g->values[v].kind == RC_VALUE_INITIALIZER &&
-        (rc_dtype_is_float(g->values[v].decl.dtype) || g->values[v].decl.dtype == RC_DTYPE_INT8 ||
-         g->values[v].decl.dtype == RC_DTYPE_UINT8 || g->values[v].decl.dtype == RC_DTYPE_INT4 ||
-         g->values[v].decl.dtype == RC_DTYPE_UINT4) &&
-        g->values[v].decl.rank > 0)
-      n += rc_tensor_numel(&g->values[v].decl);
-  return n;
 }
 
 static cJSON *shape_json(const rc_tensor *t) {
@@ -197,7 +158,7 @@ static void print_json(const rc_model *m, const op_count *ops, int n_ops, const 
   cJSON *jops = cJSON_AddObjectToObject(root, "ops");
   for (int i = 0; i < n_ops; i++) cJSON_AddNumberToObject(jops, ops[i].op, ops[i].n);
   cJSON_AddNumberToObject(root, "nodes", g->n_nodes);
-  cJSON_AddNumberToObject(root, "parameters", (double)param_count(g));
+  cJSON_AddNumberToObject(root, "parameters", (double)rc__graph_params(g));
   if (macs >= 0)
     cJSON_AddNumberToObject(root, "macs_batch_1", (double)macs);
   else
@@ -276,7 +237,7 @@ static void print_tables(const rc_model *m, const op_count *ops, int n_ops, cons
   print_io("outputs", g, g->outputs, g->n_outputs);
   printf("nodes       %d:", g->n_nodes);
   for (int i = 0; i < n_ops; i++) printf("%s %s %d", i ? "," : "", ops[i].op, ops[i].n);
-  printf("\nparameters  %s\n", cli_group_digits(param_count(g), b1, sizeof b1));
+  printf("\nparameters  %s\n", cli_group_digits(rc__graph_params(g), b1, sizeof b1));
   if (macs >= 0)
     printf("MACs        %s per sample\n", cli_group_digits(macs, b2, sizeof b2));
   else
@@ -298,7 +259,7 @@ static void print_tables(const rc_model *m, const op_count *ops, int n_ops, cons
     }
   }
   if (n_gr) {
-    printf("\n%-36s %-10s %-6s %-5s %-30s %s\n", "quantized tensor", "kind", "dtype", "axis",
+    printf("\n%-36s %-10s %-6s %-5s %-30s %s\n", "grid (integer tensor)", "kind", "dtype", "axis",
            "integer range (from; used)", "scale / zero point");
     for (int i = 0; i < n_gr; i++) {
       char axis[16] = "-", rg[96], used[48] = "";
@@ -325,7 +286,7 @@ static int inspect_pairs(const char *tpath, const char *spath, const char *const
   rc_tensor *ins = NULL;
   int rc = RC_EXIT_FAIL;
   if (rc_model_load(&t, tpath, NULL, &e) != RC_OK || rc_model_load(&s, spath, NULL, &e) != RC_OK) goto out;
-  if (!(ins = batch_one_shapes(&s->graph))) goto out;
+  if (!(ins = rc__batch1_inputs(&s->graph))) goto out;
   if (rc_pairing_make(&pg, &t->graph, &s->graph, ins, pairs, n_pairs, 1, &e) != RC_OK) goto out;
   if (json) {
     cJSON *arr = cJSON_CreateArray();
@@ -414,7 +375,7 @@ int rc_cmd_inspect(int argc, char **argv) {
   }
   int n_ops = count_ops(g, ops);
   rc_err pe = {0};
-  int64_t macs = macs_batch_one(g, &pe);
+  int64_t macs = rc__graph_macs_batch1(g, &pe);
   if (json)
     print_json(m, ops, n_ops, w, n_w, gr, n_gr, macs, &facts);
   else

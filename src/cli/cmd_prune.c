@@ -6,7 +6,7 @@
 #include <string.h>
 
 #include "cli/cli.h"
-#include "graph/prune.h"
+#include "compress/prune.h"
 
 static void usage(FILE *f) {
   fprintf(f,
@@ -20,6 +20,7 @@ static void usage(FILE *f) {
           "initializer; biases and normalisation parameters are never zeroed. The written\n"
           "file is loaded and planned again before success is reported. Recover the lost\n"
           "accuracy with 'recoup distill', then validate on your own held-out data.\n"
+          "A quantized (QDQ) model is refused: prune its float model, then quantize.\n"
           "\n"
           "Options:\n"
           "  -o, --out FILE          where to write the student (never over the input)\n"

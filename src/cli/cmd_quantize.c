@@ -13,10 +13,12 @@
 
 #include "cli/cli.h"
 #include "cli/cli_data.h"
+#include "compress/quantize.h"
 #include "core/alloc.h"
-#include "graph/plan.h"
-#include "graph/quantize.h"
+#include "core/fmt.h"
 #include "onnx/model.h"
+#include "plan/load.h"
+#include "plan/plan.h"
 #include "train/evaluate.h"
 
 static void usage(FILE *f) {
@@ -38,6 +40,9 @@ static void usage(FILE *f) {
           "  --calibration minmax|percentile  activation range (default percentile)\n"
           "  --percentile P           central share of values kept (default 99.99)\n"
           "  --batch N                calibration batch size (default 64)\n"
+          "  --output-margin F        grids of the graph outputs span 1+F times their\n"
+          "                           calibrated range, so outputs a little beyond the\n"
+          "                           calibration samples are not clipped (default 0.1)\n"
           "  --scale S, --mean M[,..], --std D[,..]   x' = (x*S - M) / D, as for eval\n"
           "  --threads N              compute threads (default: all cores)\n"
           "  --json                   print the summary as one JSON object on stdout\n"
@@ -45,6 +50,9 @@ static void usage(FILE *f) {
           "\n"
           "4-bit weights are stored as int4 when the model's opset is 21 or later;\n"
           "older opsets get int8 tensors holding values in [-7, 7].\n"
+          "What quantize adds is named after the tensor T it belongs to: T.grid (integers),\n"
+          "T.grid_step and T.grid_zero (scale, zero point), T.on_grid (the float values\n"
+          "consumers read), nodes T.to_grid and T.from_grid.\n"
           "The agreement printed is measured on the calibration samples only: validate\n"
           "the quantized model on your own held-out data before deploying it.\n");
 }
@@ -58,7 +66,7 @@ typedef struct quantize_args {
 } quantize_args;
 
 enum { OPT_DATA = 256, OPT_OUT, OPT_WBITS, OPT_ABITS, OPT_CALIB, OPT_PCT, OPT_BATCH, OPT_SCALE, OPT_MEAN, OPT_STD,
-       OPT_THREADS, OPT_JSON };
+       OPT_THREADS, OPT_JSON, OPT_MARGIN };
 
 static int apply_option(quantize_args *a, int c, const char *v);
 static int apply_option_ctx(void *a, int c, const char *v) { return apply_option(a, c, v); }
@@ -95,6 +103,12 @@ static int apply_option(quantize_args *a, int c, const char *v) {
       if (cli_parse_int(v, 1, 1 << 16, &l)) return cli_usage_error("quantize", "--batch expects a positive integer, got '%s'", v);
       a->cfg.batch = l;
       return 0;
+    case OPT_MARGIN:
+      if (cli_parse_float(v, &d) || !(d >= 0 && d <= RC_QUANT_MARGIN_MAX))
+        return cli_usage_error("quantize", "--output-margin expects a number in [0, %d], got '%s'", RC_QUANT_MARGIN_MAX,
+                               v);
+      a->cfg.output_margin = d;
+      return 0;
     case OPT_SCALE: return cli_data_option(&a->data, "quantize", "scale", v);
     case OPT_MEAN: return cli_data_option(&a->data, "quantize", "mean", v);
     case OPT_STD: return cli_data_option(&a->data, "quantize", "std", v);
@@ -115,6 +129,7 @@ static int parse_args(quantize_args *a, int argc, char **argv) {
       {"batch", required_argument, NULL, OPT_BATCH},       {"scale", required_argument, NULL, OPT_SCALE},
       {"mean", required_argument, NULL, OPT_MEAN},         {"std", required_argument, NULL, OPT_STD},
       {"threads", required_argument, NULL, OPT_THREADS},   {"json", no_argument, NULL, OPT_JSON},
+      {"output-margin", required_argument, NULL, OPT_MARGIN},
       {"help", no_argument, NULL, 'h'},                    {NULL, 0, NULL, 0}};
   memset(a, 0, sizeof *a);
   cli_data_opts_init(&a->data);
@@ -248,6 +263,7 @@ static void print_json(const quantize_args *a, const rc_quant_report *r, const c
   cJSON_AddStringToObject(root, "calibration", a->cfg.calib == RC_CALIB_MINMAX ? "minmax" : "percentile");
   if (a->cfg.calib == RC_CALIB_PERCENTILE) cJSON_AddNumberToObject(root, "percentile", a->cfg.percentile);
   cJSON_AddNumberToObject(root, "calibration_samples", (double)r->calib_samples);
+  cJSON_AddNumberToObject(root, "output_margin", a->cfg.output_margin);
   cJSON_AddNumberToObject(root, "bn_folded", r->n_bn_folded);
   cJSON_AddNumberToObject(root, "biases_float", r->n_bias_float);
   cJSON *layers = cJSON_AddArrayToObject(root, "layers");
@@ -274,6 +290,7 @@ static void print_json(const quantize_args *a, const rc_quant_report *r, const c
     cJSON_AddNumberToObject(o, "max", g->hi);
     cJSON_AddNumberToObject(o, "scale", g->scale);
     cJSON_AddNumberToObject(o, "zero_point", g->zero_point);
+    cJSON_AddNumberToObject(o, "margin", g->margin);
     cJSON_AddItemToArray(grids, o);
   }
   cJSON_AddNumberToObject(root, "bytes_before", (double)before);
@@ -287,6 +304,17 @@ static void print_json(const quantize_args *a, const rc_quant_report *r, const c
   if (text) puts(text);
   free(text);
   cJSON_Delete(root);
+}
+
+/* The output margin, stated where it changed a grid. */
+static void print_margin(const quantize_args *a, const rc_quant_report *r) {
+  int n = 0;
+  for (int i = 0; i < r->n_grids; i++) n += r->grids[i].margin > 0;
+  if (n)
+    printf("  output grids: %d, range stretched %.3g%% beyond the calibrated one (--output-margin %g)\n", n,
+           100 * a->cfg.output_margin, a->cfg.output_margin);
+  else if (a->cfg.output_margin > 0)
+    printf("  output grids: none of their own; --output-margin %g changed no grid\n", a->cfg.output_margin);
 }
 
 static void print_table(const quantize_args *a, const rc_quant_report *r, const comparison *c, long long before,
@@ -312,13 +340,17 @@ static void print_table(const quantize_args *a, const rc_quant_report *r, const 
     printf("\n  %-40s %11s %11s %11s %5s\n", "activation tensor", "min", "max", "scale", "zero");
     for (int i = 0; i < r->n_grids; i++) {
       const rc_quant_grid *g = &r->grids[i];
-      printf("  %-40.40s %11.4g %11.4g %11.4g %5d\n", g->tensor, g->lo, g->hi, g->scale, g->zero_point);
+      printf("  %-40.40s %11.4g %11.4g %11.4g %5d%s\n", g->tensor, g->lo, g->hi, g->scale, g->zero_point,
+             g->margin > 0 ? "  (output)" : "");
     }
+    print_margin(a, r);
   }
   printf("\nfile size    %s -> %s bytes\n", cli_group_digits(before, b1, sizeof b1), cli_group_digits(after, b2, sizeof b2));
-  if (c->have_metrics)
-    printf("vs float     top-1 agreement %.2f%%, mean KL(float||quantized) %.6f (calibration samples)\n",
-           100 * c->m.agreement, c->m.kl);
+  if (c->have_metrics) {
+    char kl[32];
+    printf("vs float     top-1 agreement %.2f%%, mean KL(float||quantized) %s (calibration samples)\n",
+           100 * c->m.agreement, rc__fmt_sig(kl, sizeof kl, c->m.kl, RC_FMT_SIG, 0));
+  }
   printf("             largest output difference %.4g\n", c->max_abs_diff);
   printf("Validate on your own held-out data before deploying: these figures hold only for\nthe samples measured.\n");
 }

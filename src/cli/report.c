@@ -1,10 +1,9 @@
 /* Reports: JSON records, CSV and Markdown summaries, and one HTML page with
  * SVG charts drawn here (no scripts, nothing fetched: it opens offline). */
-#define _DEFAULT_SOURCE /* gmtime_r, fsync */
+#define _DEFAULT_SOURCE /* gmtime_r */
 #include "cli/report.h"
 
 #include <errno.h>
-#include <fcntl.h>
 #include <math.h>
 #include <stdarg.h>
 #include <stdio.h>
@@ -15,6 +14,8 @@
 #include <unistd.h>
 
 #include "core/alloc.h"
+#include "core/file.h"
+#include "core/fmt.h"
 
 /* Our palette: distinct in hue and lightness (also for the common forms of
  * colour blindness), every colour dark enough for text on white. */
@@ -97,41 +98,11 @@ static void sb_esc(sbuf *b, const char *s) {
 
 /* ---- Files ---------------------------------------------------------------------- */
 
-rc_status cli_write_atomic(const char *path, const char *text, size_t n, rc_err *e) {
-  char tmp[4200];
-  snprintf(tmp, sizeof tmp, "%s.tmp.%ld", path, (long)getpid());
-  int fd = open(tmp, O_WRONLY | O_CREAT | O_TRUNC, 0644);
-  if (fd < 0) return rc__fail(e, RC_ERR_IO, "%s: %s", tmp, strerror(errno));
-  size_t done = 0;
-  while (done < n) {
-    ssize_t w = write(fd, text + done, n - done);
-    if (w < 0 && errno == EINTR) continue;
-    if (w <= 0) {
-      int err = errno;
-      close(fd);
-      unlink(tmp);
-      return rc__fail(e, RC_ERR_IO, "%s: %s", path, strerror(err));
-    }
-    done += (size_t)w;
-  }
-  if (fsync(fd) != 0 || close(fd) != 0) {
-    int err = errno;
-    unlink(tmp);
-    return rc__fail(e, RC_ERR_IO, "%s: %s", path, strerror(err));
-  }
-  if (rename(tmp, path) != 0) {
-    int err = errno;
-    unlink(tmp);
-    return rc__fail(e, RC_ERR_IO, "%s: %s", path, strerror(err));
-  }
-  return RC_OK;
-}
-
 static rc_status write_sbuf(const char *dir, const char *name, sbuf *b, rc_err *e) {
   char path[4200];
   snprintf(path, sizeof path, "%s/%s", dir, name);
   if (b->oom) return rc__fail(e, RC_ERR_NOMEM, "%s: out of memory", path);
-  return cli_write_atomic(path, b->p ? b->p : "", b->n, e);
+  return rc__write_atomic(path, b->p ? b->p : "", b->n, e);
 }
 
 static rc_status write_json(const char *path, const cJSON *j, rc_err *e) {
@@ -139,7 +110,7 @@ static rc_status write_json(const char *path, const cJSON *j, rc_err *e) {
   if (!text) return rc__fail(e, RC_ERR_NOMEM, "%s: out of memory", path);
   size_t n = strlen(text);
   text[n] = '\n'; /* cJSON_Print's NUL becomes the final newline */
-  rc_status s = cli_write_atomic(path, text, n + 1, e);
+  rc_status s = rc__write_atomic(path, text, n + 1, e);
   free(text);
   return s;
 }
@@ -289,6 +260,30 @@ static void pct(char *buf, size_t n, double v) {
   else snprintf(buf, n, "%.2f%%", 100 * v);
 }
 
+/* A figure that can be small (KL, loss): significant digits, "–" when absent. */
+static const char *fig(char *buf, size_t n, double v) {
+  if (isnan(v)) snprintf(buf, n, "–");
+  else rc__fmt_sig(buf, n, v, RC_FMT_SIG, 0);
+  return buf;
+}
+
+/* A change of a fraction in percentage points, with the digits it needs. */
+static const char *delta_pt(char *buf, size_t n, double delta) {
+  char d[32];
+  if (isnan(delta)) snprintf(buf, n, "–");
+  else snprintf(buf, n, "%s pt", rc__fmt_sig(d, sizeof d, 100 * delta, 3, 1));
+  return buf;
+}
+
+/* KL to the dense model before and after: "0.03584 → 0.006748". */
+static const char *kl_change(char *buf, size_t n, const cJSON *r) {
+  char a[32], b[32];
+  double before = metric(r, "compressed", "kl"), after = metric(r, "recovered", "kl");
+  if (isnan(before) && isnan(after)) snprintf(buf, n, "–");
+  else snprintf(buf, n, "%s → %s", fig(a, sizeof a, before), fig(b, sizeof b, after));
+  return buf;
+}
+
 static void fmt_duration(char *buf, size_t n, double s) {
   if (isnan(s)) snprintf(buf, n, "–");
   else if (s < 60) snprintf(buf, n, "%.1f s", s);
@@ -368,16 +363,17 @@ static void write_markdown(sbuf *b, const char *title, const cJSON *records) {
   sb_printf(b, "# %s\n\n", title);
   sb_printf(b, "Figures are %s on each job's validation samples (%s).\n\n", metric_name,
             strcmp(metric_name, "accuracy") ? "top-1 agreement with the dense model" : "top-1 against labels");
-  sb_printf(b, "| job | status | dense | compressed | recovered | change | steps | time | samples/s | masks |\n");
-  sb_printf(b, "|---|---|---:|---:|---:|---:|---:|---:|---:|---|\n");
+  sb_printf(b, "| job | status | dense | compressed | recovered | change | KL to dense | steps | time | samples/s | "
+            "masks |\n");
+  sb_printf(b, "|---|---|---:|---:|---:|---:|---:|---:|---:|---:|---|\n");
   const cJSON *r;
   cJSON_ArrayForEach(r, records) {
-    char d[32], c[32], v[32], ch[32] = "–", t[32];
+    char d[32], c[32], v[32], ch[32], t[32], kl[80];
     pct(d, sizeof d, metric(r, "dense", metric_name));
     pct(c, sizeof c, metric(r, "compressed", metric_name));
     pct(v, sizeof v, metric(r, "recovered", metric_name));
-    double delta = metric(r, "recovered", metric_name) - metric(r, "compressed", metric_name);
-    if (!isnan(delta)) snprintf(ch, sizeof ch, "%+.2f pt", 100 * delta);
+    delta_pt(ch, sizeof ch, metric(r, "recovered", metric_name) - metric(r, "compressed", metric_name));
+    kl_change(kl, sizeof kl, r);
     fmt_duration(t, sizeof t, num(r, "seconds"));
     sb_add(b, "| ", 2);
     md_text(b, str(r, "name"));
@@ -391,7 +387,8 @@ static void write_markdown(sbuf *b, const char *title, const cJSON *records) {
     char sps_s[32] = "–", steps_s[32] = "–";
     if (!isnan(sps)) snprintf(sps_s, sizeof sps_s, "%.0f", sps);
     if (!isnan(steps)) snprintf(steps_s, sizeof steps_s, "%.0f", steps);
-    sb_printf(b, " | %s | %s | %s | %s | %s | %s | %s | %s |\n", d, c, v, ch, steps_s, t, sps_s, masks_text(r));
+    sb_printf(b, " | %s | %s | %s | %s | %s | %s | %s | %s | %s |\n", d, c, v, ch, kl, steps_s, t, sps_s,
+              masks_text(r));
   }
   sb_printf(b, "\n**Caution.** %s\n", CAUTION);
 }
@@ -656,13 +653,12 @@ static void summary_table(sbuf *b, const cJSON *records, const char *vm) {
             "<th>samples/s</th><th class=\"l\">masks</th></tr></thead><tbody>");
   const cJSON *r;
   cJSON_ArrayForEach(r, records) {
-    char d[32], c[32], v[32], ch[32] = "–", t[32], kl[32] = "–", steps[32] = "–", sps[32] = "–";
+    char d[32], c[32], v[32], ch[32], t[32], kl[80], steps[32] = "–", sps[32] = "–";
     pct(d, sizeof d, metric(r, "dense", vm));
     pct(c, sizeof c, metric(r, "compressed", vm));
     pct(v, sizeof v, metric(r, "recovered", vm));
-    double delta = metric(r, "recovered", vm) - metric(r, "compressed", vm);
-    if (!isnan(delta)) snprintf(ch, sizeof ch, "%+.2f pt", 100 * delta);
-    if (!isnan(metric(r, "recovered", "kl"))) snprintf(kl, sizeof kl, "%.4f", metric(r, "recovered", "kl"));
+    delta_pt(ch, sizeof ch, metric(r, "recovered", vm) - metric(r, "compressed", vm));
+    kl_change(kl, sizeof kl, r);
     if (!isnan(num(r, "steps"))) snprintf(steps, sizeof steps, "%.0f", num(r, "steps"));
     if (!isnan(num(r, "samples_per_s"))) snprintf(sps, sizeof sps, "%.0f", num(r, "samples_per_s"));
     fmt_duration(t, sizeof t, num(r, "seconds"));
@@ -682,25 +678,66 @@ static void summary_table(sbuf *b, const cJSON *records, const char *vm) {
   sb_add(b, "</tbody></table>", 16);
 }
 
+/* Longer per-epoch tables show the input, the first, the kept and the last
+ * epoch, with every other epoch behind a disclosure. */
+#define EPOCH_TABLE_MAX_ROWS 12
+
+static void epoch_head(sbuf *b, const char *vm) {
+  sb_printf(b, "<table><thead><tr><th>epoch</th><th>training loss</th><th>validation %s</th><th>KL to dense</th>"
+            "</tr></thead><tbody>", vm);
+}
+
+static void epoch_row(sbuf *b, const cJSON *e, int i, int best, const char *vm) {
+  char l[32], v[32], kl[32];
+  pct(v, sizeof v, num(e, vm));
+  sb_printf(b, "<tr data-epoch=\"%d\"><td>%d%s</td><td>%s</td><td>%s</td><td>%s</td></tr>", i, i,
+            i == best ? " (kept)" : "", fig(l, sizeof l, num(e, "train_loss")), v, fig(kl, sizeof kl, num(e, "kl")));
+}
+
 static void epoch_table(sbuf *b, const cJSON *rec) {
   const cJSON *epochs = cJSON_GetObjectItemCaseSensitive(rec, "epochs");
   const char *vm = isnan(metric(rec, "compressed", "accuracy")) ? "agreement" : "accuracy";
-  char v[32];
+  char v[32], kl[32];
   pct(v, sizeof v, metric(rec, "compressed", vm));
-  sb_printf(b, "<table><thead><tr><th>epoch</th><th>training loss</th><th>validation %s</th><th>KL to dense</th>"
-            "</tr></thead><tbody><tr><td>0 (input)</td><td>–</td><td>%s</td><td>%.4f</td></tr>", vm, v,
-            metric(rec, "compressed", "kl"));
-  int best = (int)num(rec, "best_epoch"), i = 0;
-  const cJSON *e;
-  cJSON_ArrayForEach(e, epochs) {
-    i++;
-    char l[32] = "–";
-    if (!isnan(num(e, "train_loss"))) snprintf(l, sizeof l, "%.4f", num(e, "train_loss"));
-    pct(v, sizeof v, num(e, vm));
-    sb_printf(b, "<tr><td>%d%s</td><td>%s</td><td>%s</td><td>%.4f</td></tr>", i, i == best ? " (kept)" : "", l, v,
-              num(e, "kl"));
-  }
+  sb_add(b, "<div>", 5); /* one flex item, whether or not the table collapses */
+  epoch_head(b, vm);
+  sb_printf(b, "<tr data-epoch=\"0\"><td>0 (input)</td><td>–</td><td>%s</td><td>%s</td></tr>", v,
+            fig(kl, sizeof kl, metric(rec, "compressed", "kl")));
+  int best = (int)num(rec, "best_epoch"), n = cJSON_GetArraySize(epochs);
+  int collapse = n + 1 > EPOCH_TABLE_MAX_ROWS;
+  for (int i = 1; i <= n; i++)
+    if (!collapse || i == 1 || i == best || i == n) epoch_row(b, cJSON_GetArrayItem(epochs, i - 1), i, best, vm);
   sb_add(b, "</tbody></table>", 16);
+  if (!collapse) {
+    sb_add(b, "</div>", 6);
+    return;
+  }
+  sb_printf(b, "<details class=\"epochs\"><summary>the other %d epochs</summary>", n - (best > 1 && best < n ? 3 : 2));
+  epoch_head(b, vm);
+  for (int i = 2; i < n; i++)
+    if (i != best) epoch_row(b, cJSON_GetArrayItem(epochs, i - 1), i, best, vm);
+  sb_add(b, "</tbody></table></details></div>", 32);
+}
+
+/* A dB figure, or why there is none ("identical", "not measured"). */
+static void layer_cell(char *buf, size_t n, const cJSON *l, const char *key, const char *state_key) {
+  double db = num(l, key);
+  if (!isnan(db)) snprintf(buf, n, "%.1f", db);
+  else snprintf(buf, n, "%s", *str(l, state_key) ? str(l, state_key) : "not measured");
+}
+
+/* Trained activations the deployed model clamps (distill's range_warnings). */
+static void range_notes(sbuf *b, const cJSON *rec) {
+  const cJSON *w;
+  cJSON_ArrayForEach(w, cJSON_GetObjectItemCaseSensitive(rec, "range_warnings")) {
+    char v[32], end[32], by[32];
+    sb_printf(b, "<p class=\"facts bad\">Outside its activation grid: ");
+    sb_esc(b, str(w, "tensor"));
+    sb_printf(b, ", %.0f of %.0f values on %.0f of %.0f samples clamped; furthest %s against the range end %s "
+              "(%s beyond).</p>", num(w, "values_outside"), num(w, "values"), num(w, "samples_outside"),
+              num(w, "samples"), fig(v, sizeof v, num(w, "worst_value")), fig(end, sizeof end, num(w, "range_end")),
+              fig(by, sizeof by, num(w, "beyond")));
+  }
 }
 
 /* Per-layer closeness to the dense model, when distill measured it. */
@@ -712,9 +749,9 @@ static void layer_table(sbuf *b, const cJSON *rec) {
             "<th>after</th></tr></thead><tbody>", cJSON_GetArraySize(layers));
   const cJSON *l;
   cJSON_ArrayForEach(l, layers) {
-    char before[32] = "identical", after[32] = "identical";
-    if (!isnan(num(l, "sqnr_before_db"))) snprintf(before, sizeof before, "%.1f", num(l, "sqnr_before_db"));
-    if (!isnan(num(l, "sqnr_after_db"))) snprintf(after, sizeof after, "%.1f", num(l, "sqnr_after_db"));
+    char before[32], after[32];
+    layer_cell(before, sizeof before, l, "sqnr_before_db", "state_before");
+    layer_cell(after, sizeof after, l, "sqnr_after_db", "state_after");
     sb_add(b, "<tr><td class=\"l\">", 18);
     sb_esc(b, str(l, "student"));
     sb_printf(b, "</td><td>%s</td><td>%s</td></tr>", before, after);
@@ -758,6 +795,7 @@ static void job_card(sbuf *b, const cJSON *r) {
             num(r, "samples_per_s"), num(r, "train_samples"), num(r, "val_samples"), num(r, "pruned_zeros_kept"),
             masks_text(r),
             cJSON_IsFalse(imp) ? " Training never beat the input on validation: the input's values were written." : "");
+  range_notes(b, r);
   layer_table(b, r);
   sb_add(b, "</div>", 6);
 }
@@ -792,7 +830,9 @@ static void write_html(sbuf *b, const char *title, const cJSON *meta, const cJSO
   }
   sb_printf(b, "\n<h2>Jobs</h2><p>Per job: training loss along the optimizer steps (left axis) and validation "
             "accuracy, or agreement when there are no labels (right axis), measured on the compressed input and at "
-            "the end of every epoch. The state written is the best epoch by validation.</p>\n");
+            "the end of every epoch. The state written (kept) is the one with the lowest validation KL to the dense "
+            "model (with labels: α·KL + (1 − α)·cross-entropy, the mix training minimises); accuracy and agreement are "
+            "shown beside it but do not decide.</p>\n");
   cJSON_ArrayForEach(r, records) {
     job_card(b, r);
     sb_add(b, "\n", 1);

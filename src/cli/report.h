@@ -48,8 +48,4 @@ rc_status cli_report_write(const char *dir, const cJSON *meta, const cJSON *reco
 /* Read DIR/report.json; *report owns the parsed object. */
 rc_status cli_report_read(const char *dir, cJSON **report, rc_err *e);
 
-/* Write a whole file through a temporary file in the same folder and a
- * rename, so readers never see half a file. */
-rc_status cli_write_atomic(const char *path, const char *text, size_t n, rc_err *e);
-
 #endif

@@ -5,8 +5,8 @@
 
 #include <cJSON.h>
 
-#include "graph/grid_range.h"
-#include "graph/mask_rule.h"
+#include "plan/grid_range.h"
+#include "plan/mask_rule.h"
 #include "train/distill.h"
 
 /* {"zeros": "pruned"|"trainable", "rule", "at_zero", "beside_zero"} */

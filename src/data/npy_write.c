@@ -5,8 +5,8 @@
 #include <zlib.h>
 
 #include "core/alloc.h"
+#include "core/file.h"
 #include "data/npy_write.h"
-#include "onnx/model.h"
 
 static const char *descr_of(rc_dtype t) {
   switch (t) {

@@ -13,7 +13,8 @@
 #include <string.h>
 
 #include "core/alloc.h"
-#include "onnx/onnx_internal.h"
+#include "ir/tensor_proto.h"
+#include "onnx/model.h"
 
 /* ---- memory in the message's own format ---- */
 

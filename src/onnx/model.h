@@ -8,7 +8,7 @@
 #include <stddef.h>
 
 #include "core/status.h"
-#include "graph/ir.h"
+#include "ir/ir.h"
 
 /* Limits on what a file may ask for, checked before anything is allocated. */
 typedef struct rc_load_limits {
@@ -33,16 +33,20 @@ typedef struct rc_model {
 } rc_model;
 
 /* Read path; limits may be NULL for the defaults. Refuses IR versions outside
- * 3..10, default-domain opsets outside 9..21, external data that escapes the
- * model's folder or runs past its file's end, and unsupported ops (via
- * rc__graph_finalize). Errors name the file and the node or field. */
-rc_status rc_model_load(rc_model **out, const char *path, const rc_load_limits *limits, rc_err *e);
+ * 3..10, default-domain opsets outside 9..21, and external data that escapes
+ * the model's folder or runs past its file's end. Errors name the file and
+ * the node or field. The graph is as in the file: nodes in file order, ops
+ * not looked up, attributes not parsed. rc_model_load (plan/load.h) adds
+ * those steps; this alone is for tests and tools that inspect the structure
+ * of files whose ops recoup may not run. */
+rc_status rc__model_load_unbound(rc_model **out, const char *path, const rc_load_limits *limits,
+                                 rc_err *e);
 
-/* rc_model_load on bytes in memory (the fuzzing entry point). `name` stands
- * for the path in messages; external data is refused, there being no folder
- * to resolve it against. */
-rc_status rc_model_load_mem(rc_model **out, const void *buf, size_t n, const char *name,
-                            const rc_load_limits *limits, rc_err *e);
+/* rc__model_load_unbound on bytes in memory. `name` stands for the path in
+ * messages; external data is refused, there being no folder to resolve it
+ * against. */
+rc_status rc__model_load_mem_unbound(rc_model **out, const void *buf, size_t n, const char *name,
+                                     const rc_load_limits *limits, rc_err *e);
 
 /* Write the model to path: the loaded message with the initializers listed in
  * `changed` (value indices) replaced by their current data in graph.values
@@ -59,17 +63,6 @@ rc_status rc_model_load_mem(rc_model **out, const void *buf, size_t n, const cha
 rc_status rc_model_save(rc_model *m, const char *path, const int *changed, int n_changed, rc_err *e);
 
 void rc_model_free(rc_model *m);
-
-/* rc_model_load without rc__graph_finalize: the graph in file order, ops not
- * looked up, attributes not parsed. For tests and tools that inspect the
- * structure of files whose ops recoup may not run. */
-rc_status rc__model_load_unbound(rc_model **out, const char *path, const rc_load_limits *limits,
-                                 rc_err *e);
-
-/* Write bytes to path atomically (temp file in the same folder, fsync,
- * rename). Shared by every writer of recoup's outputs. */
-rc_status rc__write_atomic(const char *path, const void *data, size_t n, rc_err *e);
-
 
 /* ---- Editing the kept message (edit.c) ----
  * For tools that rewrite a model's structure (quantize). Edits change only
@@ -118,15 +111,5 @@ rc_status rc_model_edit_sort(rc_model *m, rc_err *e);
 const char *rc_model_metadata(const rc_model *m, const char *key);
 /* Set (replace or append) a metadata_props entry of the model. */
 rc_status rc_model_edit_set_metadata(rc_model *m, const char *key, const char *value, rc_err *e);
-
-/* Read one ONNX TensorProto file (*.pb, the format of ONNX's own test data)
- * into a tensor whose data is allocated with rc__malloc and returned in
- * *owned (free with rc__free). Refuses tensors over max_bytes. */
-rc_status rc__tensorproto_file_read(const char *path, rc_tensor *out, void **owned, size_t max_bytes,
-                                    rc_err *e);
-/* The same on bytes in memory (the fuzzing entry point); external data is
- * refused. `name` stands for the path in messages. */
-rc_status rc__tensorproto_mem_read(const void *buf, size_t n, const char *name, rc_tensor *out,
-                                   void **owned, size_t max_bytes, rc_err *e);
 
 #endif

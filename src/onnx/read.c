@@ -9,7 +9,9 @@
 #include <string.h>
 
 #include "core/alloc.h"
-#include "onnx/onnx_internal.h"
+#include "core/file.h"
+#include "ir/tensor_proto.h"
+#include "onnx/model.h"
 
 void rc_load_limits_default(rc_load_limits *l) {
   l->max_file_bytes = (size_t)4 << 30;
@@ -542,18 +544,8 @@ rc_status rc__model_load_unbound(rc_model **out, const char *path, const rc_load
   return load_bytes(out, buf, n, buf, path, 1, &lim, e);
 }
 
-static rc_status finalize_or_free(rc_model **out, rc_model *m, rc_err *e) {
-  rc_status st = rc__graph_finalize(&m->graph, e);
-  if (st != RC_OK) {
-    rc_model_free(m);
-    return st;
-  }
-  *out = m;
-  return RC_OK;
-}
-
-rc_status rc_model_load_mem(rc_model **out, const void *buf, size_t n, const char *name,
-                            const rc_load_limits *limits, rc_err *e) {
+rc_status rc__model_load_mem_unbound(rc_model **out, const void *buf, size_t n, const char *name,
+                                     const rc_load_limits *limits, rc_err *e) {
   *out = NULL;
   if (!name || !*name) name = "(memory)";
   rc_load_limits lim;
@@ -562,13 +554,5 @@ rc_status rc_model_load_mem(rc_model **out, const void *buf, size_t n, const cha
   if (n > lim.max_file_bytes)
     return rc__fail(e, RC_ERR_LIMIT, "%s: %zu bytes are over the limit of %zu", name, n,
                     lim.max_file_bytes);
-  rc_model *m;
-  RC_TRY(load_bytes(&m, buf, n, NULL, name, 0, &lim, e));
-  return finalize_or_free(out, m, e);
-}
-
-rc_status rc_model_load(rc_model **out, const char *path, const rc_load_limits *limits, rc_err *e) {
-  rc_model *m;
-  RC_TRY(rc__model_load_unbound(&m, path, limits, e));
-  return finalize_or_free(out, m, e);
+  return load_bytes(out, buf, n, NULL, name, 0, &lim, e);
 }

@@ -4,14 +4,16 @@
  * kept message itself, so every later save writes them.
  *
  * Memory in the kept message is owned by the protobuf-c allocator of
- * file.c (each block carries a size header), so everything put into it here
- * comes from that allocator and everything taken out goes back to it. */
+ * ir/pb_alloc.c (each block carries a size header), so everything put into
+ * it here comes from that allocator and everything taken out goes back to
+ * it. */
 #include <stdint.h>
 #include <stdio.h>
 #include <string.h>
 
 #include "core/alloc.h"
-#include "onnx/onnx_internal.h"
+#include "ir/tensor_proto.h"
+#include "onnx/model.h"
 #include "onnx/reshape.h"
 
 static void *pb_new(size_t n) {
@@ -96,7 +98,7 @@ rc_status rc_model_resize_initializer(rc_model *m, int value, const rc_tensor *t
 }
 
 /* The message's node for graph node n: nodes are reordered by
- * rc__graph_finalize, so match on the first named output. */
+ * rc__graph_order, so match on the first named output. */
 static Onnx__NodeProto *proto_node(rc_model *m, const rc_node *n) {
   Onnx__GraphProto *gp = ((Onnx__ModelProto *)m->proto)->graph;
   for (int k = 0; k < n->n_out; k++) {

@@ -17,7 +17,9 @@
 #include <sys/stat.h>
 
 #include "core/alloc.h"
-#include "onnx/onnx_internal.h"
+#include "core/file.h"
+#include "ir/tensor_proto.h"
+#include "onnx/model.h"
 
 typedef struct patch {
   Onnx__TensorProto *t;

@@ -11,7 +11,7 @@
 
 #include "core/arena.h"
 #include "core/status.h"
-#include "graph/ir.h"
+#include "ir/ir.h"
 #include "recoup/tensor.h"
 
 /* What a kernel sees for one node of one plan. Shapes are concrete. */

@@ -12,13 +12,19 @@
 #include <time.h>
 
 #include "core/alloc.h"
-#include "graph/inspect.h"
-#include "graph/plan.h"
+#include "core/file.h"
+#include "plan/inspect.h"
+#include "plan/load.h"
+#include "plan/plan.h"
 #include "train/loss.h"
+#include "train/measure.h"
 #include "train/params.h"
 #include "train/features.h"
+#include "train/loss.h"
 #include "train/pairing.h"
+#include "train/params.h"
 #include "train/qat.h"
+#include "train/select.h"
 
 void rc_distill_config_defaults(rc_distill_config *c) {
   memset(c, 0, sizeof *c);
@@ -42,6 +48,7 @@ void rc_distill_config_defaults(rc_distill_config *c) {
 
 void rc_distill_result_free(rc_distill_result *r) {
   rc__free(r->layers);
+  rc__free(r->ranges);
   rc__free(r->epoch_loss);
   rc__free(r->epoch_val);
   rc__free(r->changed);
@@ -548,11 +555,10 @@ static rc_status validate(run_state *st, rc_metrics *m, rc_err *e) {
   return rc__metrics_compute(m, st->val_logits, st->val_labels, st->teacher_val_logits, st->val.n, st->k, e);
 }
 
-/* Better by accuracy when labels exist, else agreement; ties by lower KL. */
-static int better(const rc_metrics *a, const rc_metrics *b) {
-  double pa = a->has_labels ? a->top1 : a->agreement, pb = b->has_labels ? b->top1 : b->agreement;
-  if (pa != pb) return pa > pb;
-  return a->kl < b->kl;
+/* The weight of the distillation term, as training uses it; the best state
+ * is chosen by the same mix on validation (train/select.h). */
+static double select_alpha(const run_state *st) {
+  return st->c->alpha >= 0 ? st->c->alpha : st->val_labels ? 0.9 : 1.0;
 }
 
 /* ---- One step --------------------------------------------------------------- */
@@ -830,7 +836,7 @@ static rc_status end_epoch(loop_ctx *lc, loop_state *ls, rc_distill_progress *pg
   pg->event = RC_DISTILL_EPOCH;
   pg->epoch = ls->epoch + 1;
   pg->val = m;
-  pg->is_best = better(&m, &ls->best);
+  pg->is_best = rc__select_better(&m, &ls->best, select_alpha(st));
   if (pg->is_best) {
     ls->best = m;
     ls->best_epoch = ls->epoch + 1;
@@ -962,6 +968,7 @@ static rc_status train_loop(run_state *st, rc_distill_result *r, const rc_distil
   r->samples_per_s = r->seconds > 0 ? (double)((ls.step - start_step) * st->batch) / r->seconds : 0;
   r->best_epoch = ls.best_epoch;
   r->improved = ls.best_epoch > 0;
+  r->select_alpha = select_alpha(st);
   r->rollbacks = (int)ls.rollbacks;
   r->stopped_nonfinite = (int)ls.stopped;
   r->n_epochs = ls.n_epochs;
@@ -978,96 +985,29 @@ out:
   return s;
 }
 
-/* ---- Per-layer errors ------------------------------------------------------- */
+/* ---- Inside the models -------------------------------------------------------- */
 
-/* Signal-to-noise ratio in dB of student against teacher activations,
- * 10·log10(Σt² / Σ(t−s)²), for every automatically paired layer output of
- * equal shape, over (at most 1024 of) the validation samples. */
-static rc_status layer_errors(run_state *st, const rc_pairing *pg, double *db, rc_err *e) {
-  const rc_graph *tg = &st->teacher->graph, *sg = st->sg;
-  unsigned char *tkeep = rc__calloc((size_t)tg->n_values + 1, 1), *skeep = rc__calloc((size_t)sg->n_values + 1, 1);
-  unsigned char *live = rc__calloc((size_t)sg->n_values + 1, 1);
-  double *sig = rc__calloc((size_t)pg->n + 1, sizeof(double)), *noise = rc__calloc((size_t)pg->n + 1, sizeof(double));
-  rc_plan *tp = NULL, *sp = NULL;
-  rc_status s = RC_OK;
-  if (!tkeep || !skeep || !live || !sig || !noise) {
-    s = rc__fail(e, RC_ERR_NOMEM, "out of memory");
-    goto out;
-  }
-  for (int i = 0; i < pg->n; i++) {
-    tkeep[pg->pairs[i].teacher] = 1;
-    skeep[pg->pairs[i].student] = 1;
-  }
-  for (int i = 0; i < st->n_tr; i++) live[st->tr[i].value] = 1;
-  rc_tensor shapes[RC_DATASET_MAX_INPUTS], tin[RC_DATASET_MAX_INPUTS];
-  input_shapes(sg, st->val.inputs, st->batch, shapes);
-  teacher_order(tg, sg, shapes, tin);
-  rc_plan_opts to = {.training = 0, .trainable = NULL, .keep = tkeep, .bn_batch_stats = 0}, so = {.training = 0, .trainable = live, .keep = skeep, .bn_batch_stats = 0};
-  if ((s = rc_plan_create(&tp, tg, tin, &to, e)) != RC_OK || (s = rc_plan_create(&sp, sg, shapes, &so, e)) != RC_OK)
-    goto out;
-  void *tb[RC_DATASET_MAX_INPUTS], *sb[RC_DATASET_MAX_INPUTS];
-  for (int i = 0; i < sg->n_inputs; i++) sb[i] = rc_plan_tensor(sp, sg->inputs[i])->data;
-  for (int i = 0; i < tg->n_inputs; i++) tb[i] = rc_plan_tensor(tp, tg->inputs[i])->data;
-  int64_t nb = rc_dataset_n_batches(&st->val, st->batch, 1), max_b = (1024 + st->batch - 1) / st->batch;
-  for (int64_t b = 0; b < nb && b < max_b; b++) {
-    int64_t count;
-    if ((s = rc_dataset_gather(sb, NULL, &count, &st->val, b, st->batch, e)) != RC_OK) goto out;
-    for (int i = 0; i < tg->n_inputs; i++) {
-      int j = find_by_name(sg, sg->inputs, sg->n_inputs, tg->values[tg->inputs[i]].name);
-      memcpy(tb[i], sb[j], rc_tensor_nbytes(rc_plan_tensor(tp, tg->inputs[i])));
-    }
-    if ((s = rc_plan_forward(tp, e)) != RC_OK || (s = rc_plan_forward(sp, e)) != RC_OK) goto out;
-    for (int i = 0; i < pg->n; i++) {
-      const rc_tensor *t = rc_plan_tensor(tp, pg->pairs[i].teacher), *x = rc_plan_tensor(sp, pg->pairs[i].student);
-      const float *a = t->data, *c = x->data;
-      for (int64_t k = 0, n = rc_tensor_numel(t); k < n; k++) {
-        sig[i] += (double)a[k] * a[k];
-        noise[i] += ((double)a[k] - c[k]) * ((double)a[k] - c[k]);
-      }
-    }
-  }
-  for (int i = 0; i < pg->n; i++)
-    db[i] = noise[i] > 0 ? 10.0 * log10(sig[i] / noise[i]) : INFINITY;
-out:
-  rc_plan_free(tp);
-  rc_plan_free(sp);
-  rc__free(tkeep);
-  rc__free(skeep);
-  rc__free(live);
-  rc__free(sig);
-  rc__free(noise);
-  return s;
-}
-
-/* Automatic pairs of equal shape: the layers whose error can be measured. */
-static rc_status measurable_pairs(run_state *st, rc_distill_result *r, rc_pairing *pg, rc_err *e) {
-  rc_tensor shapes[RC_DATASET_MAX_INPUTS];
-  input_shapes(st->sg, st->val.inputs, 1, shapes);
-  RC_TRY(rc_pairing_make(pg, &st->teacher->graph, st->sg, shapes, NULL, 0, 1, e));
-  int k = 0;
-  for (int i = 0; i < pg->n; i++)
-    if (rc_shape_equal(&pg->pairs[i].t_shape, &pg->pairs[i].s_shape)) pg->pairs[k++] = pg->pairs[i];
-  pg->n = k;
-  r->n_layers = k;
-  r->layers = rc__calloc((size_t)k + 1, sizeof(rc_layer_error));
-  if (!r->layers) return rc__fail(e, RC_ERR_NOMEM, "out of memory");
-  for (int i = 0; i < k; i++) {
-    snprintf(r->layers[i].teacher, sizeof r->layers[i].teacher, "%s", st->teacher->graph.values[pg->pairs[i].teacher].name);
-    snprintf(r->layers[i].student, sizeof r->layers[i].student, "%s", st->sg->values[pg->pairs[i].student].name);
-  }
+/* What train/measure.c needs of the run: plans at the run's batch size over
+ * the validation samples, with the student as rewritten for training. */
+static rc_status measure_setup(run_state *st, rc_measure_setup *m, rc_tensor *shapes, rc_tensor *tin,
+                               unsigned char **live, rc_err *e) {
+  *live = rc__calloc((size_t)st->sg->n_values + 1, 1);
+  if (!*live) return rc__fail(e, RC_ERR_NOMEM, "out of memory");
+  for (int i = 0; i < st->n_tr; i++) (*live)[st->tr[i].value] = 1;
+  input_shapes(st->sg, st->val.inputs, st->batch, shapes);
+  teacher_order(&st->teacher->graph, st->sg, shapes, tin);
+  *m = (rc_measure_setup){&st->teacher->graph, st->sg, shapes, tin, &st->val, st->batch, *live, &st->qat};
   return RC_OK;
 }
 
-static rc_status measure_layers(run_state *st, rc_distill_result *r, const rc_pairing *pg, int after, rc_err *e) {
-  if (!pg->n) return RC_OK;
-  double *db = rc__calloc((size_t)pg->n, sizeof(double));
-  if (!db) return rc__fail(e, RC_ERR_NOMEM, "out of memory");
-  rc_status s = layer_errors(st, pg, db, e);
-  for (int i = 0; i < pg->n && s == RC_OK; i++) {
-    if (after) r->layers[i].sqnr_after_db = db[i];
-    else r->layers[i].sqnr_before_db = db[i];
-  }
-  rc__free(db);
+static rc_status measure_inside(run_state *st, rc_distill_result *r, rc_pairing *pg, int after, rc_err *e) {
+  rc_measure_setup m;
+  rc_tensor shapes[RC_DATASET_MAX_INPUTS], tin[RC_DATASET_MAX_INPUTS];
+  unsigned char *live = NULL;
+  rc_status s = measure_setup(st, &m, shapes, tin, &live, e);
+  if (s == RC_OK && !after) s = rc__measure_prepare(&m, pg, r, e);
+  if (s == RC_OK) s = rc__measure_run(&m, pg, r, after, e);
+  rc__free(live);
   return s;
 }
 
@@ -1199,10 +1139,9 @@ rc_status rc_distill_run(rc_distill_result *r, rc_model *teacher, rc_model *stud
       goto out;
   }
   if ((s = validate(&st, &r->before, e)) != RC_OK) goto out;
-  if ((s = measurable_pairs(&st, r, &layers, e)) != RC_OK || (s = measure_layers(&st, r, &layers, 0, e)) != RC_OK)
-    goto out;
+  if ((s = measure_inside(&st, r, &layers, 0, e)) != RC_OK) goto out;
   if ((s = train_loop(&st, r, d, e)) != RC_OK) goto out;
-  if ((s = measure_layers(&st, r, &layers, 1, e)) != RC_OK) goto out;
+  if ((s = measure_inside(&st, r, &layers, 1, e)) != RC_OK) goto out;
   if ((s = rc__qat_write_back(st.sg, &st.qat, e)) != RC_OK) goto out;
   s = record_changes(&st, r, e);
 out:

@@ -13,7 +13,7 @@
 #include <stdint.h>
 
 #include "core/status.h"
-#include "graph/mask_rule.h"
+#include "plan/mask_rule.h"
 #include "onnx/model.h"
 #include "train/evaluate.h"
 #include "train/features.h"
@@ -88,8 +88,25 @@ void rc_distill_config_defaults(rc_distill_config *c);
 /* Per-layer agreement of student with teacher activations (equal shapes). */
 typedef struct rc_layer_error {
   char teacher[128], student[128];
-  double sqnr_before_db, sqnr_after_db; /* 10·log10(Σt² / Σ(t−s)²); +inf when identical */
+  /* 10·log10(Σt² / Σ(t−s)²): +inf when the activations are identical, NaN
+   * when no sample was measured (samples_* == 0). */
+  double sqnr_before_db, sqnr_after_db;
+  int64_t samples_before, samples_after;
 } rc_layer_error;
+
+/* Values entering an activation grid's QuantizeLinear beyond the range the
+ * grid represents (they are clamped in the deployed model). */
+typedef struct rc_range_stats {
+  int64_t values, values_out;    /* values measured, values outside the range */
+  int64_t samples, samples_out;  /* samples measured, samples with any value outside */
+  double worst;                  /* the value furthest outside (0 when none) */
+  double bound;                  /* the end of the range it passed */
+} rc_range_stats;
+
+typedef struct rc_range_check {
+  char tensor[128];              /* the float tensor entering QuantizeLinear */
+  rc_range_stats before, after;
+} rc_range_check;
 
 #define RC_DISTILL_TRACE_MAX 120
 
@@ -107,6 +124,7 @@ typedef struct rc_distill_result {
   int64_t n_train, n_val;
   int64_t steps_done;
   int64_t best_epoch;                /* 0 = the input was never beaten */
+  double select_alpha;               /* weight of KL in the deciding figure (train/select.h) */
   int improved;
   double seconds, samples_per_s;
   int n_trainable_tensors;
@@ -127,6 +145,8 @@ typedef struct rc_distill_result {
   int n_trace;
   rc_layer_error *layers;            /* automatically paired layer outputs of equal shape */
   int n_layers;
+  rc_range_check *ranges;            /* one per activation grid of a QDQ student */
+  int n_ranges;
   int *changed;                      /* student values whose data changed: save these */
   int n_changed;
 } rc_distill_result;

@@ -42,6 +42,7 @@ rc_status rc__metrics_compute(rc_metrics *m, const float *logits, const int32_t 
     RC_TRY(rc_metric_topk(&c1, NULL, logits, labels, n, k, 1, e));
     m->has_labels = 1;
     m->top1 = (double)c1 / (double)n;
+    RC_TRY(rc_loss_cross_entropy(&m->ce, NULL, NULL, 0, logits, labels, n, k, e));
     if (k >= 5) {
       RC_TRY(rc_metric_topk(&c5, NULL, logits, labels, n, k, 5, e));
       m->top5 = (double)c5 / (double)n;

@@ -6,7 +6,7 @@
 #include <stdint.h>
 
 #include "core/status.h"
-#include "graph/plan.h"
+#include "plan/plan.h"
 #include "recoup/data.h"
 
 /* Run the plan (planned for batch size B = its inputs' dim 0) over every
@@ -23,6 +23,7 @@ typedef struct rc_metrics {
   double top1, top5;     /* accuracy in [0,1]; top5 < 0 when K < 5 */
   double agreement;      /* top-1 agreement with the reference */
   double kl;             /* mean KL(reference || model) at T = 1 */
+  double ce;             /* mean cross-entropy against the labels at T = 1 */
 } rc_metrics;
 
 rc_status rc__metrics_compute(rc_metrics *m, const float *logits, const int32_t *labels,

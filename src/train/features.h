@@ -16,8 +16,8 @@
 #define RC_TRAIN_FEATURES_H
 
 #include "core/status.h"
-#include "graph/ir.h"
-#include "graph/plan.h"
+#include "ir/ir.h"
+#include "plan/plan.h"
 #include "train/pairing.h"
 #include "train/params.h"
 

@@ -4,7 +4,7 @@
 #include <string.h>
 
 #include "core/alloc.h"
-#include "graph/plan.h"
+#include "plan/plan.h"
 
 static int is_layer(const rc_node *n) {
   return !strcmp(n->op_type, "Conv") || !strcmp(n->op_type, "ConvTranspose") || !strcmp(n->op_type, "Gemm") ||

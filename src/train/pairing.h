@@ -11,8 +11,8 @@
 #define RC_TRAIN_PAIRING_H
 
 #include "core/status.h"
-#include "graph/ir.h"
-#include "graph/plan.h"
+#include "ir/ir.h"
+#include "plan/plan.h"
 #include "recoup/tensor.h"
 
 typedef struct rc_pair {

@@ -5,7 +5,7 @@
 #include <string.h>
 
 #include "core/alloc.h"
-#include "graph/plan.h"
+#include "plan/plan.h"
 #include "ops/fakequant.h"
 #include "ops/quant.h"
 

@@ -17,8 +17,8 @@
 #include <stdint.h>
 
 #include "core/status.h"
-#include "graph/ir.h"
-#include "graph/mask_rule.h"
+#include "ir/ir.h"
+#include "plan/mask_rule.h"
 
 typedef struct rc_qat_site {
   int dq;            /* the DequantizeLinear node */

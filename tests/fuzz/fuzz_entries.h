@@ -12,8 +12,10 @@
 #include <string.h>
 
 #include "core/alloc.h"
-#include "graph/plan.h"
+#include "data/tensorproto.h"
 #include "onnx/model.h"
+#include "plan/load.h"
+#include "plan/plan.h"
 #include "recoup/data.h"
 
 /* Inputs larger than this are not planned: a fuzz run should spend its time

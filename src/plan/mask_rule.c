@@ -1,4 +1,4 @@
-#include "graph/mask_rule.h"
+#include "plan/mask_rule.h"
 
 #include <string.h>
 

@@ -6,13 +6,13 @@
  * integer initializers -> DequantizeLinear and QuantizeLinear ->
  * DequantizeLinear pairs, the form integer runtimes fuse into integer
  * kernels (see rc_quantize_model for the placement rules). */
-#ifndef RC_GRAPH_QUANTIZE_H
-#define RC_GRAPH_QUANTIZE_H
+#ifndef RC_COMPRESS_QUANTIZE_H
+#define RC_COMPRESS_QUANTIZE_H
 
 #include <stdint.h>
 
 #include "core/status.h"
-#include "onnx/model.h"
+#include "plan/load.h"
 #include "recoup/data.h"
 
 typedef enum rc_calib_method { RC_CALIB_MINMAX = 0, RC_CALIB_PERCENTILE = 1 } rc_calib_method;
@@ -23,9 +23,15 @@ typedef struct rc_quant_config {
   rc_calib_method calib; /* range of each activation tensor */
   double percentile;     /* RC_CALIB_PERCENTILE: keep this share of values, in (50, 100] */
   int64_t batch;         /* calibration batch size */
+  double output_margin;  /* grids of graph outputs span (1 + margin) x the calibrated range, in [0, 10] */
 } rc_quant_config;
 
-/* 8-bit weights and activations, percentile 99.99, batch 64. */
+#define RC_QUANT_MARGIN_MAX 10
+
+/* 8-bit weights and activations, percentile 99.99, batch 64, output margin
+ * 0.1: a 10% wider output grid costs log2(1.1) = 0.14 of its 8 bits of
+ * resolution and keeps outputs up to 10% beyond the largest seen in
+ * calibration apart instead of clipped to one value. */
 void rc_quant_config_defaults(rc_quant_config *c);
 
 /* One quantized layer (Conv, ConvTranspose, Gemm, MatMul). */
@@ -42,9 +48,10 @@ typedef struct rc_quant_layer {
 /* One activation grid: y = (q - zero_point) * scale, q in [0, 255]. */
 typedef struct rc_quant_grid {
   char tensor[96];
-  float lo, hi;          /* calibrated range, widened to include 0 */
+  float lo, hi;          /* calibrated range, widened to include 0 (and by the margin) */
   float scale;
   int zero_point;
+  float margin;          /* share the range was stretched by: the output margin on graph outputs, else 0 */
 } rc_quant_grid;
 
 typedef struct rc_quant_report {
@@ -76,7 +83,10 @@ rc_dtype rc_quant_weight_dtype(const rc_model *m, int weight_bits);
  * activation into the layer). One pair per tensor, shared by all consumers.
  * A tensor made by MaxPool or a layout op (Flatten, Reshape, Transpose,
  * Squeeze, Unsqueeze) from a tensor with a grid takes that same grid, so its
- * pair changes no value.
+ * pair changes no value. Every other grid on a graph output spans its
+ * calibrated range stretched by 1 + cfg->output_margin about zero.
+ * Names: see grid_names in quantize.c (T.grid, T.grid_step, T.grid_zero,
+ * T.on_grid, T.pre_grid; nodes T.to_grid and T.from_grid).
  * Refuses models below opset 13 (per-axis DequantizeLinear), models that
  * already hold QuantizeLinear/DequantizeLinear, and models with no layer to
  * quantize. */

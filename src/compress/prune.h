@@ -4,8 +4,8 @@
  * channels by L1 norm with every consumer rewritten so that the result is a
  * smaller valid model. Layers that cannot be rewritten are left as they are
  * and the report says which and why. Nothing here prints. */
-#ifndef RC_GRAPH_PRUNE_H
-#define RC_GRAPH_PRUNE_H
+#ifndef RC_COMPRESS_PRUNE_H
+#define RC_COMPRESS_PRUNE_H
 
 #include <stdint.h>
 
@@ -52,7 +52,9 @@ void rc_prune_report_free(rc_prune_report *r);
  * already in the kept message (onnx/reshape.h). Fills r->layers and notes
  * (not the totals, see rc_prune_file). Order: channels, then N:M, then
  * magnitude (which counts zeros already present, so N:M plus magnitude keeps
- * the pattern and reaches the requested total). */
+ * the pattern and reaches the requested total). A model whose Conv,
+ * ConvTranspose, Gemm or MatMul weight comes through DequantizeLinear (QDQ)
+ * is refused with RC_ERR_UNSUPPORTED: prune the float model, then quantize. */
 rc_status rc_prune_model(rc_model *m, const rc_prune_opts *o, rc_prune_report *r, int **changed,
                          int *n_changed, rc_err *e);
 
@@ -62,10 +64,5 @@ rc_status rc_prune_model(rc_model *m, const rc_prune_opts *o, rc_prune_report *r
  * dense model's, is an error. Fills every field of r. */
 rc_status rc_prune_file(const char *in, const char *out, const rc_prune_opts *o, rc_prune_report *r,
                         rc_err *e);
-
-/* Parameters (float and integer weight initializers of rank >= 1) of a graph,
- * and multiply-accumulates at batch 1 (-1 with e set when it does not plan). */
-int64_t rc__graph_params(const rc_graph *g);
-int64_t rc__graph_macs_batch1(const rc_graph *g, rc_err *e);
 
 #endif

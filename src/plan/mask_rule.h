@@ -19,7 +19,7 @@
 
 #include <stdint.h>
 
-#include "graph/grid_range.h"
+#include "plan/grid_range.h"
 
 #define RC_MASK_EXCESS 4.0
 

@@ -3,11 +3,11 @@
  * depend on shapes and constants are evaluated once, and one arena holds
  * every activation (and, for training plans, every gradient and the buffers
  * backward needs). Running a plan allocates nothing. */
-#ifndef RC_GRAPH_PLAN_H
-#define RC_GRAPH_PLAN_H
+#ifndef RC_PLAN_PLAN_H
+#define RC_PLAN_PLAN_H
 
 #include "core/status.h"
-#include "graph/ir.h"
+#include "ir/ir.h"
 #include "ops/op.h"
 
 typedef struct rc_plan_opts {

@@ -1,4 +1,4 @@
-/* Pruning a dense model (see prune.h).
+/* Removing whole output channels (see prune.h).
  *
  * Channel removal works on "slots": every output channel of a prunable layer
  * is a slot, and channels that must be removed together (the two branches of
@@ -11,43 +11,18 @@
  * "fixes" the slots it touches, which are then kept, with the reason
  * reported. Only after the walk is it decided which slot classes go, so the
  * rewrite is all-or-nothing per class and the model stays consistent. */
-#include "graph/prune.h"
-
 #include <math.h>
 #include <stdarg.h>
 #include <stdio.h>
 #include <stdlib.h>
 #include <string.h>
 
-#include <cJSON.h>
-
+#include "compress/prune_internal.h"
 #include "core/alloc.h"
 #include "core/arena.h"
-#include "graph/grid_range.h"
-#include "graph/inspect.h"
-#include "graph/plan.h"
 #include "onnx/reshape.h"
-#include "ops/op.h"
-
-void rc_prune_report_free(rc_prune_report *r) {
-  if (!r) return;
-  rc__free(r->layers);
-  rc__free(r->notes);
-  memset(r, 0, sizeof *r);
-}
-
-static int is_op(const rc_node *n, const char *op) { return !strcmp(n->op_type, op); }
-
-static int op_in(const rc_node *n, const char *const *list) {
-  for (; *list; list++)
-    if (is_op(n, *list)) return 1;
-  return 0;
-}
-
-static int is_float_init(const rc_graph *g, int v) {
-  return v >= 0 && g->values[v].kind == RC_VALUE_INITIALIZER && g->values[v].decl.dtype == RC_DTYPE_FLOAT &&
-         g->values[v].decl.data;
-}
+#include "plan/count.h"
+#include "plan/plan.h"
 
 static rc_status add_note(rc_prune_report *r, rc_err *e, const char *fmt, ...) {
   char (*grown)[240] = rc__realloc(r->notes, sizeof *r->notes * (size_t)(r->n_notes + 1));
@@ -58,71 +33,6 @@ static rc_status add_note(rc_prune_report *r, rc_err *e, const char *fmt, ...) {
   vsnprintf(r->notes[r->n_notes++], sizeof *r->notes, fmt, ap);
   va_end(ap);
   return RC_OK;
-}
-
-/* ------------------------------------------------------------ prunable layers */
-
-typedef struct layer {
-  int node, value, in_axis;
-} layer;
-
-/* Float weights of Conv, ConvTranspose, Gemm and MatMul, in node order. */
-static rc_status collect_layers(const rc_graph *g, layer **out, int *n, rc_err *e) {
-  rc_weight_info *w;
-  int nw;
-  RC_TRY(rc__weights_collect(g, &w, &nw, e));
-  static const char *const ops[] = {"Conv", "ConvTranspose", "Gemm", "MatMul", NULL};
-  layer *l = rc__calloc((size_t)nw + 1, sizeof *l);
-  if (!l) {
-    rc__free(w);
-    return rc__fail(e, RC_ERR_NOMEM, "out of memory");
-  }
-  *n = 0;
-  for (int i = 0; i < nw; i++)
-    if (w[i].role == RC_ROLE_WEIGHT && !w[i].quantized && op_in(&g->nodes[w[i].node], ops) &&
-        is_float_init(g, w[i].value) && g->values[w[i].value].decl.rank >= 1)
-      l[(*n)++] = (layer){w[i].node, w[i].value, w[i].in_axis};
-  rc__free(w);
-  *out = l;
-  return RC_OK;
-}
-
-/* ------------------------------------------------------------ plan at batch 1 */
-
-static rc_status plan_batch1(rc_plan **p, const rc_graph *g, rc_err *e) {
-  *p = NULL;
-  rc_tensor *ins = rc__calloc((size_t)g->n_inputs + 1, sizeof(rc_tensor));
-  if (!ins) return rc__fail(e, RC_ERR_NOMEM, "out of memory");
-  for (int i = 0; i < g->n_inputs; i++) {
-    ins[i] = g->values[g->inputs[i]].decl;
-    if (ins[i].rank < 0) ins[i].rank = 0;
-    for (int d = 0; d < ins[i].rank; d++)
-      if (ins[i].dims[d] < 0) ins[i].dims[d] = 1;
-  }
-  rc_status st = rc_plan_create(p, g, ins, NULL, e);
-  rc__free(ins);
-  return st;
-}
-
-int64_t rc__graph_macs_batch1(const rc_graph *g, rc_err *e) {
-  rc_plan *p;
-  if (plan_batch1(&p, g, e) != RC_OK) return -1;
-  int64_t total = 0;
-  for (int i = 0; i < g->n_nodes; i++) total += rc__node_macs(p, &g->nodes[i]);
-  rc_plan_free(p);
-  return total;
-}
-
-int64_t rc__graph_params(const rc_graph *g) {
-  int64_t n = 0;
-  for (int v = 0; v < g->n_values; v++) {
-    const rc_tensor *t = &g->values[v].decl;
-    if (g->values[v].kind == RC_VALUE_INITIALIZER && t->rank > 0 &&
-        (rc_dtype_is_float(t->dtype) || t->dtype == RC_DTYPE_INT8 || t->dtype == RC_DTYPE_UINT8 ||
-         t->dtype == RC_DTYPE_INT4 || t->dtype == RC_DTYPE_UINT4))
-      n += rc_tensor_numel(t);
-  }
-  return n;
 }
 
 /* ------------------------------------------------------------ channel slots */
@@ -765,7 +675,7 @@ out:
 
 /* ------------------------------------------------------------ applying */
 
-static int changed_add(int **list, int *n, int v) {
+int rc__prune_changed_add(int **list, int *n, int v) {
   for (int i = 0; i < *n; i++)
     if ((*list)[i] == v) return 1;
   int *grown = rc__realloc(*list, sizeof(int) * (size_t)(*n + 1));
@@ -829,7 +739,7 @@ static rc_status apply_edits(cp *c, const unsigned char *removed, int **changed,
         return rc__fail(c->e, RC_ERR_UNSUPPORTED, "%s: Reshape target '%s' is not int64", c->m->path,
                         c->g->values[d->value].name);
     }
-    if (!changed_add(changed, n_changed, d->value)) return rc__fail(c->e, RC_ERR_NOMEM, "out of memory");
+    if (!rc__prune_changed_add(changed, n_changed, d->value)) return rc__fail(c->e, RC_ERR_NOMEM, "out of memory");
   }
   for (int v = 0; v < c->g->n_values; v++) {
     const vchan *vc = &c->vc[v];
@@ -885,8 +795,8 @@ static rc_status refusal_notes(cp *c) {
   return st;
 }
 
-static rc_status prune_channels(rc_model *m, double frac, const layer *ls, int nl, rc_prune_report *r,
-                                int **changed, int *n_changed, rc_err *e) {
+rc_status rc__prune_channels(rc_model *m, double frac, const layer *ls, int nl, rc_prune_report *r,
+                             int **changed, int *n_changed, rc_err *e) {
   cp c;
   memset(&c, 0, sizeof c);
   c.m = m;
@@ -897,7 +807,7 @@ static rc_status prune_channels(rc_model *m, double frac, const layer *ls, int n
   c.last_node = nl ? ls[nl - 1].node : -1;
   rc__arena_init(&c.arena, 0);
   unsigned char *removed = NULL;
-  rc_status st = plan_batch1(&c.p, c.g, e);
+  rc_status st = rc__plan_batch1(&c.p, c.g, e);
   if (st != RC_OK) {
     rc__wrap(e, "%s: channel pruning plans the model at batch 1", m->path);
     goto out;
@@ -942,286 +852,5 @@ out:
   rc__free(c.edits);
   rc__free(c.reasons);
   rc__arena_free(&c.arena);
-  return st;
-}
-
-/* ------------------------------------------------------------ sparsity */
-
-/* Order of (|w|, position): float bits of |w| above a 32-bit position. */
-static int key_cmp(const void *pa, const void *pb) {
-  uint64_t a = *(const uint64_t *)pa, b = *(const uint64_t *)pb;
-  return (a > b) - (a < b);
-}
-
-static uint64_t abs_bits(float f) {
-  uint32_t u;
-  memcpy(&u, &f, 4);
-  return u & 0x7fffffffu;
-}
-
-/* Zero the round(S * n) weights of smallest |w| among `sel` layers (all at
- * once, or one layer when only one is selected); ties go to the lower
- * position so the count is exact. */
-static rc_status zero_smallest(rc_graph *g, const layer *ls, const int *sel, int ns, double frac, rc_err *e) {
-  int64_t total = 0;
-  for (int i = 0; i < ns; i++) total += rc_tensor_numel(&g->values[ls[sel[i]].value].decl);
-  if (total == 0) return RC_OK;
-  if (total > (int64_t)UINT32_MAX)
-    return rc__fail(e, RC_ERR_LIMIT, "%s: more than 2^32 prunable weights", g->path);
-  uint64_t *keys = rc__malloc(sizeof(uint64_t) * (size_t)total);
-  if (!keys) return rc__fail(e, RC_ERR_NOMEM, "out of memory for %lld weight keys", (long long)total);
-  int64_t at = 0;
-  for (int i = 0; i < ns; i++) {
-    const rc_tensor *t = &g->values[ls[sel[i]].value].decl;
-    const float *w = t->data;
-    for (int64_t k = 0; k < rc_tensor_numel(t); k++, at++) keys[at] = abs_bits(w[k]) << 32 | (uint64_t)at;
-  }
-  qsort(keys, (size_t)total, sizeof *keys, key_cmp);
-  int64_t kill = (int64_t)floor(frac * (double)total + 0.5);
-  /* Positions back to (layer, element): walk the layer offsets. */
-  int64_t *start = rc__malloc(sizeof(int64_t) * (size_t)(ns + 1));
-  if (!start) {
-    rc__free(keys);
-    return rc__fail(e, RC_ERR_NOMEM, "out of memory");
-  }
-  start[0] = 0;
-  for (int i = 0; i < ns; i++) start[i + 1] = start[i] + rc_tensor_numel(&g->values[ls[sel[i]].value].decl);
-  for (int64_t k = 0; k < kill; k++) {
-    int64_t pos = (int64_t)(keys[k] & 0xffffffffu);
-    int lo = 0, hi = ns - 1;
-    while (lo < hi) {
-      int mid = (lo + hi + 1) / 2;
-      if (start[mid] <= pos) lo = mid;
-      else hi = mid - 1;
-    }
-    ((float *)g->values[ls[sel[lo]].value].decl.data)[pos - start[lo]] = 0.0f;
-  }
-  rc__free(start);
-  rc__free(keys);
-  return RC_OK;
-}
-
-/* In every run of m weights along axis keep the n of largest |w| (ties: the
- * lower index stays). Returns 0 when the axis length is not a multiple of m. */
-static int keep_n_of_m(rc_tensor *t, int axis, int n, int m) {
-  int64_t len = t->dims[axis], inner = 1, outer = 1;
-  if (len % m) return 0;
-  for (int d = axis + 1; d < t->rank; d++) inner *= t->dims[d];
-  for (int d = 0; d < axis; d++) outer *= t->dims[d];
-  float *w = t->data;
-  for (int64_t o = 0; o < outer; o++)
-    for (int64_t in = 0; in < inner; in++)
-      for (int64_t g0 = 0; g0 < len; g0 += m) {
-        unsigned char drop[256];
-        for (int k = 0; k < m; k++) {
-          float a = fabsf(w[(o * len + g0 + k) * inner + in]);
-          int beaten = 0;
-          for (int j = 0; j < m; j++) {
-            float b = fabsf(w[(o * len + g0 + j) * inner + in]);
-            beaten += b > a || (b == a && j < k);
-          }
-          drop[k] = beaten >= n;
-        }
-        for (int k = 0; k < m; k++)
-          if (drop[k]) w[(o * len + g0 + k) * inner + in] = 0.0f;
-      }
-  return 1;
-}
-
-/* ------------------------------------------------------------ driver */
-
-static void layer_init(rc_prune_layer *pl, const rc_graph *g, const layer *l) {
-  memset(pl, 0, sizeof *pl);
-  const rc_node *n = &g->nodes[l->node];
-  snprintf(pl->layer, sizeof pl->layer, "%s", n->label);
-  snprintf(pl->op_type, sizeof pl->op_type, "%s", n->op_type);
-  snprintf(pl->weight, sizeof pl->weight, "%s", g->values[l->value].name);
-  pl->before = g->values[l->value].decl;
-  pl->before.data = NULL;
-}
-
-static void note_append(rc_prune_layer *pl, const char *msg) {
-  size_t len = strlen(pl->note);
-  snprintf(pl->note + len, sizeof pl->note - len, "%s%s", len ? "; " : "", msg);
-}
-
-rc_status rc_prune_model(rc_model *m, const rc_prune_opts *o, rc_prune_report *r, int **changed,
-                         int *n_changed, rc_err *e) {
-  memset(r, 0, sizeof *r);
-  *changed = NULL;
-  *n_changed = 0;
-  if (!(o->sparsity >= 0 && o->sparsity < 1) || !(o->channels >= 0 && o->channels < 1))
-    return rc__fail(e, RC_ERR_INVALID, "sparsity and channel fractions must be in [0, 1)");
-  if (o->nm_m && (o->nm_n < 1 || o->nm_n >= o->nm_m || o->nm_m > 256))
-    return rc__fail(e, RC_ERR_INVALID, "N:M needs 1 <= N < M <= 256");
-  rc_graph *g = &m->graph;
-  layer *ls = NULL;
-  int nl = 0;
-  RC_TRY(collect_layers(g, &ls, &nl, e));
-  rc_status st = RC_OK;
-  int *sel = rc__malloc(sizeof(int) * (size_t)(nl + 1));
-  r->layers = rc__calloc((size_t)nl + 1, sizeof *r->layers);
-  if (!sel || !r->layers) {
-    st = rc__fail(e, RC_ERR_NOMEM, "out of memory");
-    goto out;
-  }
-  r->n_layers = nl;
-  for (int i = 0; i < nl; i++) layer_init(&r->layers[i], g, &ls[i]);
-  if (o->channels > 0 && (st = prune_channels(m, o->channels, ls, nl, r, changed, n_changed, e)) != RC_OK)
-    goto out;
-  int ns = 0;
-  for (int i = 0; i < nl; i++) {
-    int edge = i == 0 || i == nl - 1;
-    if (edge && !o->include_first_last) {
-      if (o->sparsity > 0 || o->nm_m)
-        note_append(&r->layers[i], i == 0 ? "first layer kept dense" : "last layer kept dense");
-      continue;
-    }
-    sel[ns++] = i;
-  }
-  if (o->nm_m) {
-    for (int k = 0; k < ns; k++) {
-      const layer *l = &ls[sel[k]];
-      rc_tensor *t = &g->values[l->value].decl;
-      if (l->in_axis < 0 || !keep_n_of_m(t, l->in_axis, o->nm_n, o->nm_m)) {
-        char msg[120];
-        snprintf(msg, sizeof msg, "left dense: %lld input channels are not a multiple of %d",
-                 l->in_axis < 0 ? 0LL : (long long)t->dims[l->in_axis], o->nm_m);
-        note_append(&r->layers[sel[k]], msg);
-      } else if (!changed_add(changed, n_changed, l->value)) {
-        st = rc__fail(e, RC_ERR_NOMEM, "out of memory");
-        goto out;
-      }
-    }
-  }
-  if (o->sparsity > 0 && ns > 0) {
-    if (o->scope == RC_PRUNE_GLOBAL) st = zero_smallest(g, ls, sel, ns, o->sparsity, e);
-    for (int k = 0; k < ns && st == RC_OK; k++) {
-      if (o->scope == RC_PRUNE_LAYER) st = zero_smallest(g, ls, &sel[k], 1, o->sparsity, e);
-      if (st == RC_OK && !changed_add(changed, n_changed, ls[sel[k]].value))
-        st = rc__fail(e, RC_ERR_NOMEM, "out of memory");
-    }
-    if (st != RC_OK) goto out;
-  }
-  for (int i = 0; i < nl; i++) {
-    rc_prune_layer *pl = &r->layers[i];
-    const rc_tensor *t = &g->values[ls[i].value].decl;
-    pl->after = *t;
-    pl->after.data = NULL;
-    rc__sparsity(t, ls[i].in_axis, 0, &pl->zeros, &pl->nm_n, &pl->nm_m);
-    if (o->sparsity > 0 && pl->zeros == rc_tensor_numel(t) && pl->zeros > 0)
-      note_append(pl, "every weight is zero: the layer passes no signal (try --scope layer)");
-    r->weights_total += rc_tensor_numel(t);
-    r->weights_zero += pl->zeros;
-  }
-out:
-  if (st != RC_OK) {
-    rc__free(*changed);
-    *changed = NULL;
-    *n_changed = 0;
-    rc_prune_report_free(r);
-  }
-  rc__free(sel);
-  rc__free(ls);
-  return st;
-}
-
-/* Output shapes of a graph planned at batch 1, into dims (n_outputs each). */
-static rc_status output_shapes(const rc_graph *g, rc_tensor *shapes, int max, rc_err *e) {
-  rc_plan *p;
-  RC_TRY(plan_batch1(&p, g, e));
-  for (int i = 0; i < g->n_outputs && i < max; i++) {
-    shapes[i] = *rc_plan_tensor(p, g->outputs[i]);
-    shapes[i].data = NULL;
-  }
-  rc_plan_free(p);
-  return RC_OK;
-}
-
-static int same_shape(const rc_tensor *a, const rc_tensor *b) {
-  if (a->rank != b->rank) return 0;
-  for (int d = 0; d < a->rank; d++)
-    if (a->dims[d] != b->dims[d]) return 0;
-  return 1;
-}
-
-enum { MAX_CHECKED_OUTPUTS = 16 };
-
-/* Record in the file which weights were pruned (RC_PRUNED_METADATA), joined
- * with what an earlier pruning recorded, so that distill knows these zeros
- * are pruned even after quantization. */
-static rc_status record_pruned(rc_model *m, const int *changed, int n_changed, rc_err *e) {
-  cJSON *root = NULL, *list = NULL;
-  const char *old = rc_model_metadata(m, RC_PRUNED_METADATA);
-  if (old && (root = cJSON_Parse(old)) && !cJSON_IsArray(list = cJSON_GetObjectItemCaseSensitive(root, "tensors"))) {
-    cJSON_Delete(root);
-    root = NULL;
-  }
-  if (!root) {
-    root = cJSON_CreateObject();
-    cJSON_AddNumberToObject(root, "schema", 1);
-    list = cJSON_AddArrayToObject(root, "tensors");
-  }
-  int added = 0;
-  for (int i = 0; i < n_changed && list; i++) {
-    const rc_value *v = &m->graph.values[changed[i]];
-    int64_t zeros, n = rc_tensor_numel(&v->decl);
-    int nm_n, nm_m;
-    if (v->decl.dtype != RC_DTYPE_FLOAT || !v->decl.data || !n) continue;
-    rc__sparsity(&v->decl, -1, 0, &zeros, &nm_n, &nm_m);
-    int known = 0;
-    const cJSON *it;
-    cJSON_ArrayForEach(it, list) known |= cJSON_IsString(it) && !strcmp(it->valuestring, v->name);
-    if (zeros && !known) added += cJSON_AddItemToArray(list, cJSON_CreateString(v->name));
-  }
-  char *text = added ? cJSON_PrintUnformatted(root) : NULL;
-  rc_status st = !added ? RC_OK : text ? rc_model_edit_set_metadata(m, RC_PRUNED_METADATA, text, e)
-                                       : rc__fail(e, RC_ERR_NOMEM, "%s: out of memory", m->path);
-  cJSON_free(text);
-  cJSON_Delete(root);
-  return st;
-}
-
-rc_status rc_prune_file(const char *in, const char *out, const rc_prune_opts *o, rc_prune_report *r,
-                        rc_err *e) {
-  memset(r, 0, sizeof *r);
-  rc_model *m = NULL, *w = NULL;
-  int *changed = NULL, n_changed = 0;
-  rc_tensor before[MAX_CHECKED_OUTPUTS], after[MAX_CHECKED_OUTPUTS];
-  RC_TRY(rc_model_load(&m, in, NULL, e));
-  rc_status st = output_shapes(&m->graph, before, MAX_CHECKED_OUTPUTS, e);
-  if (st != RC_OK) {
-    rc__wrap(e, "%s: the dense model does not plan at batch 1", in);
-    goto done;
-  }
-  r->params_before = rc__graph_params(&m->graph);
-  r->macs_before = rc__graph_macs_batch1(&m->graph, e);
-  rc_prune_report pr;
-  if ((st = rc_prune_model(m, o, &pr, &changed, &n_changed, e)) != RC_OK) goto done;
-  pr.params_before = r->params_before;
-  pr.macs_before = r->macs_before;
-  *r = pr;
-  if ((st = record_pruned(m, changed, n_changed, e)) != RC_OK) goto done;
-  if ((st = rc_model_save(m, out, changed, n_changed, e)) != RC_OK) goto done;
-  /* Prove the written file is a model recoup can run. */
-  if ((st = rc_model_load(&w, out, NULL, e)) != RC_OK ||
-      (st = output_shapes(&w->graph, after, MAX_CHECKED_OUTPUTS, e)) != RC_OK) {
-    rc__wrap(e, "%s: the pruned model written does not load and plan (a recoup bug; please report it)", out);
-    goto done;
-  }
-  for (int i = 0; i < m->graph.n_outputs && i < MAX_CHECKED_OUTPUTS; i++)
-    if (i >= w->graph.n_outputs || !same_shape(&before[i], &after[i])) {
-      char a[96], b[96];
-      st = rc__fail(e, RC_ERR_SHAPE, "%s: output %d has shape %s where the dense model's is %s (a recoup bug)",
-                    out, i, rc_shape_str(&after[i], a, sizeof a), rc_shape_str(&before[i], b, sizeof b));
-      goto done;
-    }
-  r->params_after = rc__graph_params(&w->graph);
-  r->macs_after = rc__graph_macs_batch1(&w->graph, e);
-done:
-  if (st != RC_OK) rc_prune_report_free(r);
-  rc__free(changed);
-  rc_model_free(m);
-  rc_model_free(w);
   return st;
 }

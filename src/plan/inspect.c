@@ -1,6 +1,6 @@
-#include "graph/inspect.h"
+#include "plan/inspect.h"
 
-#include "graph/grid_range.h"
+#include "plan/grid_range.h"
 
 #include <math.h>
 #include <string.h>
@@ -220,32 +220,4 @@ rc_status rc__grids_collect(const rc_graph *g, rc_grid_info **out, int *count, r
   }
   *out = list;
   return RC_OK;
-}
-
-int64_t rc__node_macs(rc_plan *p, const rc_node *n) {
-  if (n->n_out < 1 || n->out[0] < 0) return 0;
-  const rc_tensor *y = rc_plan_tensor(p, n->out[0]);
-  if (is_op(n, "Conv") && n->n_in >= 2) {
-    const rc_tensor *w = rc_plan_tensor(p, n->in[1]);
-    int64_t per = 1;
-    for (int d = 1; d < w->rank; d++) per *= w->dims[d];
-    return rc_tensor_numel(y) * per;
-  }
-  if (is_op(n, "ConvTranspose") && n->n_in >= 2) {
-    const rc_tensor *x = rc_plan_tensor(p, n->in[0]);
-    const rc_tensor *w = rc_plan_tensor(p, n->in[1]);
-    int64_t per = 1;
-    for (int d = 1; d < w->rank; d++) per *= w->dims[d];
-    return rc_tensor_numel(x) * per;
-  }
-  if ((is_op(n, "Gemm") || is_op(n, "MatMul")) && n->n_in >= 2) {
-    const rc_tensor *a = rc_plan_tensor(p, n->in[0]);
-    int64_t k;
-    if (is_op(n, "Gemm"))
-      k = rc__attr_int(n, "transA", 0) ? a->dims[0] : a->dims[a->rank - 1];
-    else
-      k = a->dims[a->rank - 1];
-    return rc_tensor_numel(y) * k;
-  }
-  return 0;
 }

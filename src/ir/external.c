@@ -14,7 +14,7 @@
 #include <unistd.h>
 
 #include "core/alloc.h"
-#include "onnx/onnx_internal.h"
+#include "ir/tensor_proto.h"
 
 static int parse_int64(const char *s, int64_t *out) {
   if (!s || !*s) return 0;

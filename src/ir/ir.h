@@ -1,9 +1,10 @@
 /* The graph IR: values, nodes with attributes, initializers. Built by the
- * ONNX reader (src/onnx), ordered and checked by rc__graph_finalize, compiled
- * for concrete input shapes by the planner (plan.h). Everything a graph owns
+ * ONNX reader (src/onnx), ordered and checked by rc__graph_order, its ops
+ * bound by rc__graph_finalize and compiled for concrete input shapes by the
+ * planner (plan/load.h, plan/plan.h). Everything a graph owns
  * lives in its arena and is freed at once. */
-#ifndef RC_GRAPH_IR_H
-#define RC_GRAPH_IR_H
+#ifndef RC_IR_IR_H
+#define RC_IR_IR_H
 
 #include <stdint.h>
 
@@ -76,7 +77,7 @@ typedef struct rc_graph {
   int n_values;
   rc_value *values;
   int n_nodes;
-  rc_node *nodes;     /* topological order after rc__graph_finalize */
+  rc_node *nodes;     /* topological order after rc__graph_order */
   int n_inputs;
   int *inputs;        /* values of kind RC_VALUE_INPUT, in file order */
   int n_outputs;
@@ -90,10 +91,9 @@ typedef struct rc_graph {
 /* Index of the value called name, or -1. Linear; call at load time only. */
 int rc__graph_find_value(const rc_graph *g, const char *name);
 
-/* Sort nodes topologically (refusing cycles and values produced twice), look
- * up each op (refusing unsupported ones) and parse its attributes. Messages
- * name the file, node and field. */
-rc_status rc__graph_finalize(rc_graph *g, rc_err *e);
+/* Check that every input is produced by something and sort the nodes
+ * topologically, refusing cycles. Messages name the file and node. */
+rc_status rc__graph_order(rc_graph *g, rc_err *e);
 
 /* Attribute access for op parsers. */
 const rc_attr *rc__attr_find(const rc_node *n, const char *name);

@@ -1,11 +1,12 @@
 /* Facts about a graph that inspect, distill and the reports share: which
- * initializers are layer weights, their sparsity and N:M pattern, the
- * quantization grids of QDQ models, and multiply-accumulate counts. */
-#ifndef RC_GRAPH_INSPECT_H
-#define RC_GRAPH_INSPECT_H
+ * initializers are layer weights, their sparsity and N:M pattern, and the
+ * quantization grids of QDQ models. Parameter and multiply-accumulate counts
+ * are in count.h. */
+#ifndef RC_PLAN_INSPECT_H
+#define RC_PLAN_INSPECT_H
 
-#include "graph/ir.h"
-#include "graph/plan.h"
+#include "ir/ir.h"
+#include "plan/plan.h"
 
 /* RC_ROLE_AFFINE: a float initializer of more than one entry added to or
  * multiplied with an activation: the bias of a MatMul written as MatMul +
@@ -45,9 +46,6 @@ typedef struct rc_grid_info {
  * (directly or through Identity nodes), and every QuantizeLinear feeding one
  * (activation pairs). */
 rc_status rc__grids_collect(const rc_graph *g, rc_grid_info **out, int *n, rc_err *e);
-
-/* Multiply-accumulates of one node in a plan (Conv, ConvTranspose, Gemm, MatMul). */
-int64_t rc__node_macs(rc_plan *p, const rc_node *n);
 
 /* Zero count and N:M pattern of a tensor along axis (pattern checked for
  * M = 4, 8, 16 with N <= M/2; the first M that holds is reported). */

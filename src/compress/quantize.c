@@ -7,10 +7,12 @@
  *   bits (-128 stays unused so the grid is symmetric and negation never
  *   overflows) or [-7, 7] for 4 bits;
  * - activations: asymmetric per-tensor uint8 whose range always includes 0,
- *   so zero (padding, ReLU's floor) is represented exactly;
+ *   so zero (padding, ReLU's floor) is represented exactly; a graph output's
+ *   range is stretched by the output margin (our choice, see
+ *   rc_quant_config_defaults);
  * - biases: int32 with scale = input scale x weight scale per channel, the
  *   scale of the integer accumulator, zero point 0. */
-#include "graph/quantize.h"
+#include "compress/quantize.h"
 
 #include <math.h>
 #include <stdio.h>
@@ -19,8 +21,8 @@
 #include <cJSON.h>
 
 #include "core/alloc.h"
-#include "graph/grid_range.h"
-#include "graph/plan.h"
+#include "plan/grid_range.h"
+#include "plan/plan.h"
 
 #define HIST_BINS 4096
 #define INT32_LIMIT 2147483647.0
@@ -31,6 +33,7 @@ void rc_quant_config_defaults(rc_quant_config *c) {
   c->calib = RC_CALIB_PERCENTILE;
   c->percentile = 99.99;
   c->batch = 64;
+  c->output_margin = 0.1;
 }
 
 void rc_quant_report_free(rc_quant_report *r) {
@@ -419,9 +422,48 @@ static rc_status calibrate(qstate *q, const rc_dataset *d) {
 
 /* ---- applying the rewrite to the message ---- */
 
+/* Names of what one grid adds, in the project's own vocabulary, derived
+ * from the tensor T the grid belongs to:
+ *   T.grid       the integer tensor (initializer, or QuantizeLinear's output)
+ *   T.grid_step  its scale (the distance between neighbouring grid points)
+ *   T.grid_zero  its zero point
+ *   T.on_grid    the float tensor DequantizeLinear gives the consumers
+ *   T.pre_grid   a graph output's float values before its pair (the output keeps T)
+ *   T.to_grid, T.from_grid   the QuantizeLinear and DequantizeLinear nodes
+ * When any of them is taken, all take the same numeric suffix (_1, _2, ...),
+ * so the names of one grid stay recognisable as a set. */
+typedef struct grid_names {
+  char grid[512], step[512], zero[512], on[512], pre[512], to[512], from[512];
+} grid_names;
+
+/* Bytes of base kept in a derived name: at most 400, never splitting a UTF-8 character. */
+static int base_len(const char *base) {
+  size_t n = strlen(base);
+  if (n <= 400) return (int)n;
+  n = 400;
+  while (n > 0 && ((unsigned char)base[n] & 0xC0) == 0x80) n--;
+  return (int)n;
+}
+
+static rc_status name_grid(qstate *q, const char *base, grid_names *gn) {
+  static const char *const parts[] = {"grid", "grid_step", "grid_zero", "on_grid", "pre_grid", "to_grid", "from_grid"};
+  char *dst[] = {gn->grid, gn->step, gn->zero, gn->on, gn->pre, gn->to, gn->from};
+  for (int k = 0; k < 100000; k++) {
+    int free_set = 1;
+    for (int i = 0; i < 7 && free_set; i++) {
+      char sfx[16] = "";
+      if (k) snprintf(sfx, sizeof sfx, "_%d", k);
+      snprintf(dst[i], sizeof gn->grid, "%.*s.%s%s", base_len(base), base, parts[i], sfx);
+      free_set = !rc_model_edit_name_used(q->m, dst[i]);
+    }
+    if (free_set) return RC_OK;
+  }
+  return rc__fail(q->e, RC_ERR_LIMIT, "%s: no free grid names derived from '%.64s'", q->g->path, base);
+}
+
 static rc_status unique(qstate *q, const char *base, const char *suffix, char *buf, size_t n) {
   char want[512];
-  snprintf(want, sizeof want, "%.400s_%s", base, suffix);
+  snprintf(want, sizeof want, "%.*s.%s", base_len(base), base, suffix);
   return rc_model_edit_unique_name(q->m, want, buf, n, q->e);
 }
 
@@ -432,16 +474,14 @@ static rc_status node_of(qstate *q, const char *output, int *idx) {
   return RC_OK;
 }
 
-static rc_status add_dequantize(qstate *q, const char *x, const char *scale, const char *zero_point, int axis,
-                                const char *y) {
+static rc_status add_dequantize(qstate *q, const char *node, const char *x, const char *scale,
+                                const char *zero_point, int axis, const char *y) {
   const char *ins[3] = {x, scale, zero_point};
   rc_attr a = {0};
   a.name = "axis";
   a.type = RC_ATTR_INT;
   a.i = axis;
-  char nm[600];
-  snprintf(nm, sizeof nm, "%.500s_dequantize", y);
-  return rc_model_edit_add_node(q->m, "DequantizeLinear", nm, ins, zero_point ? 3 : 2, &y, 1, &a, axis >= 0 ? 1 : 0,
+  return rc_model_edit_add_node(q->m, "DequantizeLinear", node, ins, zero_point ? 3 : 2, &y, 1, &a, axis >= 0 ? 1 : 0,
                                 q->e);
 }
 
@@ -462,7 +502,7 @@ static rc_status apply_folds(qstate *q) {
 
 static rc_status add_float_bias(qstate *q, layer_plan *L, int node) {
   char name[512];
-  RC_TRY(unique(q, L->b_name ? L->b_name : L->w_name, L->b_name ? "folded" : "bias_folded", name, sizeof name));
+  RC_TRY(unique(q, L->b_name ? L->b_name : L->w_name, L->b_name ? "folded" : "bias.folded", name, sizeof name));
   rc_tensor t = {RC_DTYPE_FLOAT, 1, {L->channels}, L->b};
   RC_TRY(rc_model_edit_add_initializer(q->m, name, &t, q->e));
   return rc_model_edit_set_input(q->m, node, 2, name, q->e);
@@ -489,16 +529,16 @@ static rc_status add_int_bias(qstate *q, layer_plan *L, int node, const float *w
   }
   rc_status st = RC_OK;
   if (ok) {
-    const char *base = L->b_name ? L->b_name : L->w_name;
-    char qn[512], sn[512], dn[512];
+    char base[512];
+    const char *from = L->b_name ? L->b_name : L->w_name;
+    snprintf(base, sizeof base, "%.*s%s", base_len(from), from, L->b_name ? "" : ".bias");
+    grid_names gn;
     rc_tensor tq = {RC_DTYPE_INT32, 1, {L->channels}, qb}, ts = {RC_DTYPE_FLOAT, 1, {L->channels}, sb};
-    st = unique(q, base, L->b_name ? "quantized" : "bias_quantized", qn, sizeof qn);
-    if (st == RC_OK) st = rc_model_edit_add_initializer(q->m, qn, &tq, q->e);
-    if (st == RC_OK) st = unique(q, base, L->b_name ? "scale" : "bias_scale", sn, sizeof sn);
-    if (st == RC_OK) st = rc_model_edit_add_initializer(q->m, sn, &ts, q->e);
-    if (st == RC_OK) st = unique(q, base, L->b_name ? "dequantized" : "bias_dequantized", dn, sizeof dn);
-    if (st == RC_OK) st = add_dequantize(q, qn, sn, NULL, 0, dn);
-    if (st == RC_OK) st = rc_model_edit_set_input(q->m, node, 2, dn, q->e);
+    st = name_grid(q, base, &gn);
+    if (st == RC_OK) st = rc_model_edit_add_initializer(q->m, gn.grid, &tq, q->e);
+    if (st == RC_OK) st = rc_model_edit_add_initializer(q->m, gn.step, &ts, q->e);
+    if (st == RC_OK) st = add_dequantize(q, gn.from, gn.grid, gn.step, NULL, 0, gn.on);
+    if (st == RC_OK) st = rc_model_edit_set_input(q->m, node, 2, gn.on, q->e);
     *done = st == RC_OK;
   }
   rc__free(qb);
@@ -550,15 +590,13 @@ static rc_status quantize_layer(qstate *q, layer_plan *L, rc_quant_layer *info) 
   rc_tensor tq = L->w, ts = {RC_DTYPE_FLOAT, 1, {L->channels}, ws};
   tq.dtype = q->rep->weight_dtype;
   tq.data = wq;
-  char qn[512], sn[512], dn[512];
-  rc_status st = unique(q, L->w_name, "quantized", qn, sizeof qn);
-  if (st == RC_OK) st = rc_model_edit_add_initializer(q->m, qn, &tq, q->e);
-  if (st == RC_OK) st = record_range(q, qn, L->w_name, qmax);
-  if (st == RC_OK) st = unique(q, L->w_name, "scale", sn, sizeof sn);
-  if (st == RC_OK) st = rc_model_edit_add_initializer(q->m, sn, &ts, q->e);
-  if (st == RC_OK) st = unique(q, L->w_name, "dequantized", dn, sizeof dn);
-  if (st == RC_OK) st = add_dequantize(q, qn, sn, NULL, L->axis, dn);
-  if (st == RC_OK) st = rc_model_edit_set_input(q->m, node, 1, dn, q->e);
+  grid_names gn;
+  rc_status st = name_grid(q, L->w_name, &gn);
+  if (st == RC_OK) st = rc_model_edit_add_initializer(q->m, gn.grid, &tq, q->e);
+  if (st == RC_OK) st = record_range(q, gn.grid, L->w_name, qmax);
+  if (st == RC_OK) st = rc_model_edit_add_initializer(q->m, gn.step, &ts, q->e);
+  if (st == RC_OK) st = add_dequantize(q, gn.from, gn.grid, gn.step, NULL, L->axis, gn.on);
+  if (st == RC_OK) st = rc_model_edit_set_input(q->m, node, 1, gn.on, q->e);
   snprintf(info->name, sizeof info->name, "%s", n->label);
   snprintf(info->op_type, sizeof info->op_type, "%s", n->op_type);
   info->channels = L->channels;
@@ -587,40 +625,34 @@ static rc_status quantize_layer(qstate *q, layer_plan *L, rc_quant_layer *info) 
 static rc_status quantize_activation(qstate *q, const rc_quant_grid *gr, int value) {
   const rc_graph *g = q->g;
   const char *t = g->values[value].name;
-  char sn[512], zn[512], qn[512], dn[512];
-  RC_TRY(unique(q, t, "scale", sn, sizeof sn));
+  grid_names gn;
+  RC_TRY(name_grid(q, t, &gn));
   rc_tensor ts = {RC_DTYPE_FLOAT, 0, {0}, (void *)&gr->scale};
-  RC_TRY(rc_model_edit_add_initializer(q->m, sn, &ts, q->e));
-  RC_TRY(unique(q, t, "zero_point", zn, sizeof zn));
+  RC_TRY(rc_model_edit_add_initializer(q->m, gn.step, &ts, q->e));
   uint8_t zp = (uint8_t)gr->zero_point;
   rc_tensor tz = {RC_DTYPE_UINT8, 0, {0}, &zp};
-  RC_TRY(rc_model_edit_add_initializer(q->m, zn, &tz, q->e));
-  RC_TRY(unique(q, t, "quantized", qn, sizeof qn));
+  RC_TRY(rc_model_edit_add_initializer(q->m, gn.zero, &tz, q->e));
   const char *src = t, *dst;
   if (is_graph_output(g, value)) {
     /* Keep the output's name: the producer writes a new float tensor and
      * the DequantizeLinear takes over the original name. */
     int p;
     RC_TRY(node_of(q, t, &p));
-    RC_TRY(unique(q, t, "float", dn, sizeof dn));
     const rc_node *pn = &g->nodes[g->values[value].producer];
     int slot = 0;
     while (slot < pn->n_out && pn->out[slot] != value) slot++;
     if (slot == pn->n_out) slot = 0; /* a folded BN's output, now the Conv's first */
-    RC_TRY(rc_model_edit_set_output(q->m, p, slot, dn, q->e));
-    src = dn;
+    RC_TRY(rc_model_edit_set_output(q->m, p, slot, gn.pre, q->e));
+    src = gn.pre;
     dst = t;
   } else {
-    RC_TRY(unique(q, t, "dequantized", dn, sizeof dn));
-    RC_TRY(rc_model_edit_rewire(q->m, t, dn, NULL, q->e));
-    dst = dn;
+    RC_TRY(rc_model_edit_rewire(q->m, t, gn.on, NULL, q->e));
+    dst = gn.on;
   }
-  const char *ins[3] = {src, sn, zn};
-  char nm[600];
-  snprintf(nm, sizeof nm, "%.500s_quantize", t);
-  const char *outs[1] = {qn};
-  RC_TRY(rc_model_edit_add_node(q->m, "QuantizeLinear", nm, ins, 3, outs, 1, NULL, 0, q->e));
-  return add_dequantize(q, qn, sn, zn, -1, dst);
+  const char *ins[3] = {src, gn.step, gn.zero};
+  const char *outs[1] = {gn.grid};
+  RC_TRY(rc_model_edit_add_node(q->m, "QuantizeLinear", gn.to, ins, 3, outs, 1, NULL, 0, q->e));
+  return add_dequantize(q, gn.from, gn.grid, gn.step, gn.zero, -1, dst);
 }
 
 static rc_status apply_rewrite(qstate *q) {
@@ -659,6 +691,17 @@ static int grid_passed_through(const qstate *q, int v) {
   return -1;
 }
 
+/* Headroom for a graph output: inputs beyond the calibration samples give
+ * outputs beyond their range, and a clipped output loses its order (the
+ * top logits tie at the grid's end). The range is stretched by 1 + margin
+ * about zero, so zero stays exact. */
+static void widen_output_grid(rc_quant_grid *gr, double margin) {
+  gr->lo = (float)(gr->lo * (1.0 + margin));
+  gr->hi = (float)(gr->hi * (1.0 + margin));
+  gr->margin = (float)margin;
+  rc__quant_act_grid(gr->lo, gr->hi, &gr->scale, &gr->zero_point);
+}
+
 static rc_status make_report(qstate *q, const rc_dataset *d) {
   rc_quant_report *r = q->rep;
   r->layers = rc__calloc((size_t)q->n_layers + 1, sizeof *r->layers);
@@ -679,6 +722,8 @@ static rc_status make_report(qstate *q, const rc_dataset *d) {
       gr->hi = r->grids[from].hi;
       gr->scale = r->grids[from].scale;
       gr->zero_point = r->grids[from].zero_point;
+    } else if (is_graph_output(q->g, q->grid_value[gi]) && q->cfg->output_margin > 0) {
+      widen_output_grid(gr, q->cfg->output_margin);
     }
   }
   r->n_grids = q->n_grids;
@@ -693,6 +738,9 @@ static rc_status check_config(const rc_graph *g, const rc_quant_config *c, rc_er
   if (c->calib == RC_CALIB_PERCENTILE && !(c->percentile > 50 && c->percentile <= 100))
     return rc__fail(e, RC_ERR_INVALID, "%s: percentile %g is outside (50, 100]", g->path, c->percentile);
   if (c->batch < 1) return rc__fail(e, RC_ERR_INVALID, "%s: calibration batch must be positive", g->path);
+  if (!(c->output_margin >= 0 && c->output_margin <= RC_QUANT_MARGIN_MAX))
+    return rc__fail(e, RC_ERR_INVALID, "%s: output margin %g is outside [0, %g]", g->path, c->output_margin,
+                    (double)RC_QUANT_MARGIN_MAX);
   return RC_OK;
 }
 

@@ -1,10 +1,10 @@
-/* Graph checks done once at load time: op lookup, attribute parsing,
- * topological order. */
+/* Graph checks done once at load time: references and topological order.
+ * Looking up ops and parsing their attributes is the planner's part
+ * (plan/load.c), so the IR never depends on the kernels. */
 #include <string.h>
 
 #include "core/alloc.h"
-#include "graph/ir.h"
-#include "ops/op.h"
+#include "ir/ir.h"
 
 int rc__graph_find_value(const rc_graph *g, const char *name) {
   for (int i = 0; i < g->n_values; i++)
@@ -130,28 +130,7 @@ out:
   return st;
 }
 
-static rc_status bind_ops(rc_graph *g, rc_err *e) {
-  for (int i = 0; i < g->n_nodes; i++) {
-    rc_node *n = &g->nodes[i];
-    n->def = rc__op_find(n->op_type, n->domain, n->opset);
-    if (!n->def) {
-      if (n->domain && n->domain[0] && strcmp(n->domain, "ai.onnx"))
-        return rc__fail(e, RC_ERR_UNSUPPORTED,
-                        "%s: node '%s': op '%s' of domain '%s' is not supported", g->path, n->label,
-                        n->op_type, n->domain);
-      return rc__fail(e, RC_ERR_UNSUPPORTED, "%s: node '%s': op '%s' (opset %d) is not supported",
-                      g->path, n->label, n->op_type, n->opset);
-    }
-    if (n->def->parse) {
-      rc_status st = n->def->parse(n, &g->arena, e);
-      if (st != RC_OK) return rc__wrap(e, "%s", g->path);
-    }
-  }
-  return RC_OK;
-}
-
-rc_status rc__graph_finalize(rc_graph *g, rc_err *e) {
+rc_status rc__graph_order(rc_graph *g, rc_err *e) {
   RC_TRY(check_references(g, e));
-  RC_TRY(sort_nodes(g, e));
-  return bind_ops(g, e);
+  return sort_nodes(g, e);
 }

@@ -29,7 +29,7 @@
 #include <stdint.h>
 
 #include "core/status.h"
-#include "graph/ir.h"
+#include "ir/ir.h"
 
 #define RC_RANGES_METADATA "recoup.integer_ranges"
 #define RC_PRUNED_METADATA "recoup.pruned"

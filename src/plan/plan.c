@@ -1,7 +1,7 @@
 /* The planner: shape inference over concrete input shapes, folding of
  * everything that is known before the first batch, memory layout, and the
  * forward and reverse passes over the remaining steps. */
-#include "graph/plan.h"
+#include "plan/plan.h"
 
 #include <stdint.h>
 #include <string.h>

@@ -1,7 +1,10 @@
-/* Pieces shared by the ONNX reader, writer and TensorProto file reader. Only
- * files in src/onnx and tests/test_onnx.c include this header. */
-#ifndef RC_ONNX_INTERNAL_H
-#define RC_ONNX_INTERNAL_H
+/* ONNX's TensorProto and native tensors, at the protobuf level: the
+ * size-capped protobuf-c allocator, external data, decoding and encoding.
+ * It sits in the IR layer because both the model reader (src/onnx:
+ * initializers, attribute tensors) and the data readers (src/data: *.pb data
+ * files) decode TensorProto messages, and neither may call the other. */
+#ifndef RC_IR_TENSOR_PROTO_H
+#define RC_IR_TENSOR_PROTO_H
 
 #include <stddef.h>
 #include <stdint.h>
@@ -9,7 +12,6 @@
 #include <protobuf-c/protobuf-c.h>
 
 #include "core/status.h"
-#include "onnx/model.h"
 #include "onnx/onnx.pb-c.h"
 #include "recoup/tensor.h"
 
@@ -17,15 +19,7 @@
 #error "recoup reads ONNX raw_data (little-endian) by copying: a big-endian port needs byte swaps"
 #endif
 
-/* ---- files (file.c) ---- */
-
-/* Read a whole regular file into rc__malloc'd memory. Refuses files over
- * max_bytes before reading. Errors name the path. */
-rc_status rc__file_read_all(const char *path, size_t max_bytes, uint8_t **data, size_t *n, rc_err *e);
-
-/* The folder part of path ("." when there is none, "/" for "/x"), from
- * rc__malloc; NULL when out of memory. */
-char *rc__path_dir(const char *path);
+/* ---- capped allocator (pb_alloc.c) ---- */
 
 /* A protobuf-c allocator that goes through rc__malloc and refuses to hand out
  * more than `cap` bytes in total, so a small hostile file cannot make the
@@ -38,7 +32,7 @@ typedef struct rc__pb_alloc {
 } rc__pb_alloc;
 
 void rc__pb_alloc_init(rc__pb_alloc *a, size_t cap);
-/* Cap for a message read from a file of n bytes (see file.c for the factor). */
+/* Cap for a message read from a file of n bytes (see pb_alloc.c for the factor). */
 size_t rc__pb_alloc_cap(size_t file_bytes);
 /* Allocator for freeing what rc__pb_alloc unpacked (no state needed). */
 ProtobufCAllocator *rc__pb_free_allocator(void);
@@ -84,6 +78,13 @@ typedef struct rc__decode_ctx {
  * (arena callers free nothing). */
 rc_status rc__tensor_decode(const Onnx__TensorProto *t, const char *what, const rc__decode_ctx *ctx,
                             rc_tensor *out, rc_err *e);
+
+/* Unpack one serialised TensorProto (buf, n bytes, named `name` in messages)
+ * and decode it into out, data from rc__malloc returned in *owned (free with
+ * rc__free). External data resolves against dir; dir NULL refuses it.
+ * Refuses tensors over max_bytes. */
+rc_status rc__tensorproto_decode_bytes(const uint8_t *buf, size_t n, const char *name, const char *dir,
+                                       rc_tensor *out, void **owned, size_t max_bytes, rc_err *e);
 
 /* Bytes of raw_data for n elements of dtype in the file (int4 packs two per
  * byte). 0 with *ok = 0 on overflow or unsupported dtype. */

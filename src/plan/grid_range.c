@@ -1,4 +1,4 @@
-#include "graph/grid_range.h"
+#include "plan/grid_range.h"
 
 #include <cJSON.h>
 #include <limits.h>

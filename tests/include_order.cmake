@@ -1,0 +1,5 @@
+# The layer order of src/ (core -> ir -> {onnx, data, ops} -> plan ->
+# {train, compress} -> cli): fails, naming file:line and both layers, on an
+# include of a layer that is not below the including file's own.
+add_test(NAME include_order
+         COMMAND ${RECOUP_PYTHON} ${CMAKE_CURRENT_SOURCE_DIR}/include_order.py ${PROJECT_SOURCE_DIR})
