@@ -89,6 +89,14 @@ static void recorded_and_observed(void) {
   CHECK_STR_CONTAINS(e.msg, "[-7, 7]");
   rc__file_notes_free(&notes);
 
+  /* Out-of-type and non-integer bounds are refused before any conversion. */
+  CHECK_INT(rc__file_notes_parse(&notes, "{\"schema\":1,\"tensors\":{\"w.grid\":{\"min\":-1e300,\"max\":2.5}}}",
+                                 NULL, "model.onnx", &e),
+            RC_OK);
+  CHECK(rc__grid_range(&t.g, &notes, 0, RC_DTYPE_INT8, "w.grid", &r, &e) != RC_OK);
+  CHECK_STR_CONTAINS(e.msg, "within [-128, 127]");
+  rc__file_notes_free(&notes);
+
   /* int4 keeps its dtype's range whatever it uses; bad metadata is refused. */
   t.v.decl.dtype = RC_DTYPE_INT4;
   CHECK_INT(rc__grid_range(&t.g, NULL, 0, RC_DTYPE_INT4, "w.grid", &r, &e), RC_OK);

@@ -118,9 +118,10 @@ static void used_range(const rc_tensor *t, int64_t *lo, int64_t *hi) {
 static rc_status read_recorded(const rc_graph *g, const cJSON *rec, const char *name, int32_t dlo, int32_t dhi,
                                rc_int_range *r, rc_err *e) {
   const cJSON *mn = cJSON_GetObjectItemCaseSensitive(rec, "min"), *mx = cJSON_GetObjectItemCaseSensitive(rec, "max");
-  if (!cJSON_IsNumber(mn) || !cJSON_IsNumber(mx) || mn->valuedouble != (double)(int64_t)mn->valuedouble ||
-      mx->valuedouble != (double)(int64_t)mx->valuedouble || mn->valuedouble > mx->valuedouble ||
-      mn->valuedouble < dlo || mx->valuedouble > dhi)
+  /* Bounds first: only then may the values be cast to integers. */
+  if (!cJSON_IsNumber(mn) || !cJSON_IsNumber(mx) || !(mn->valuedouble >= dlo) || !(mx->valuedouble <= dhi) ||
+      mn->valuedouble > mx->valuedouble || mn->valuedouble != (double)(int64_t)mn->valuedouble ||
+      mx->valuedouble != (double)(int64_t)mx->valuedouble)
     return rc__fail(e, RC_ERR_INVALID, "%s: metadata '%s': tensor '%s' needs integer \"min\" <= \"max\" within "
                     "[%d, %d]", g->path, RC_RANGES_METADATA, name, dlo, dhi);
   r->lo = (int32_t)mn->valuedouble;
