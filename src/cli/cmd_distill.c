@@ -15,6 +15,7 @@
 #include "cli/cli.h"
 #include "cli/cli_data.h"
 #include "cli/report.h"
+#include "cli/weight_rules.h"
 #include "core/fmt.h"
 #include "core/path.h"
 #include "onnx/model.h"
@@ -68,6 +69,11 @@ static void usage(FILE *f) {
       "  --alpha A                weight of the distillation term against cross-entropy\n"
       "                           (default 0.9 with labels, 1 without)\n"
       "  --bn frozen|recalibrate|train  BatchNormalization statistics (default frozen)\n"
+      "  --mask auto|zeros|none   which zero weights stay zero (default auto): zeros =\n"
+      "                           every zero (integer at its zero point); none = no mask;\n"
+      "                           auto = zeros of float weights, and of quantized weights\n"
+      "                           recorded as pruned or far more common than rounding\n"
+      "                           explains (see README)\n"
       "  --train PATTERN          also train float initializers matching this glob\n"
       "  --freeze PATTERN         do not train initializers matching this glob\n"
       "  --seed S                 data order and split (default 1); same seed and\n"
@@ -121,7 +127,7 @@ enum {
   OPT_TEACHER = 256, OPT_STUDENT, OPT_DATA, OPT_LABELS, OPT_VAL_DATA, OPT_VAL_LABELS, OPT_VAL_SPLIT,
   OPT_SCALE, OPT_MEAN, OPT_STD, OPT_EPOCHS, OPT_STEPS, OPT_BATCH, OPT_OPTIMIZER, OPT_LR, OPT_SCHEDULE,
   OPT_WARMUP, OPT_STEP_SIZE, OPT_GAMMA, OPT_WD, OPT_MOMENTUM, OPT_NO_NESTEROV, OPT_CLIP, OPT_LOSS,
-  OPT_TEMPERATURE, OPT_ALPHA, OPT_BN, OPT_TRAIN, OPT_FREEZE, OPT_SEED, OPT_THREADS, OPT_OUT, OPT_JSON,
+  OPT_TEMPERATURE, OPT_ALPHA, OPT_BN, OPT_MASK, OPT_TRAIN, OPT_FREEZE, OPT_SEED, OPT_THREADS, OPT_OUT, OPT_JSON,
   OPT_CHECKPOINT, OPT_CHECKPOINT_EVERY, OPT_RESUME, OPT_PAIR, OPT_CONFIG, OPT_REPORT
 };
 
@@ -256,6 +262,10 @@ static int apply_option(distill_args *a, int c, const char *v) {
       cfg->bn = (rc_bn_mode)k;
       return 0;
     }
+    case OPT_MASK:
+      if (!rc__mask_mode_parse(v, &cfg->mask))
+        return cli_usage_error("distill", "--mask must be auto, zeros or none, not '%s'", v);
+      return 0;
     case OPT_TRAIN:
       if (a->n_train == MAX_GLOBS) return cli_usage_error("distill", "too many --train");
       a->train[a->n_train++] = v;
@@ -376,7 +386,8 @@ static int parse_args(distill_args *a, int argc, char **argv) {
       {"momentum", required_argument, NULL, OPT_MOMENTUM}, {"no-nesterov", no_argument, NULL, OPT_NO_NESTEROV},
       {"clip", required_argument, NULL, OPT_CLIP}, {"loss", required_argument, NULL, OPT_LOSS},
       {"temperature", required_argument, NULL, OPT_TEMPERATURE}, {"alpha", required_argument, NULL, OPT_ALPHA},
-      {"bn", required_argument, NULL, OPT_BN}, {"train", required_argument, NULL, OPT_TRAIN},
+      {"bn", required_argument, NULL, OPT_BN}, {"mask", required_argument, NULL, OPT_MASK},
+      {"train", required_argument, NULL, OPT_TRAIN},
       {"freeze", required_argument, NULL, OPT_FREEZE}, {"seed", required_argument, NULL, OPT_SEED},
       {"threads", required_argument, NULL, OPT_THREADS}, {"out", required_argument, NULL, OPT_OUT},
       {"json", no_argument, NULL, OPT_JSON}, {"checkpoint", required_argument, NULL, OPT_CHECKPOINT},
@@ -595,6 +606,7 @@ static cJSON *results_json(const distill_args *a, const rc_distill_result *r, do
   cJSON_AddNumberToObject(root, "pruned_zeros_kept", (double)r->n_frozen_zeros);
   cJSON_AddBoolToObject(root, "masks_intact", r->mask_ok);
   cJSON_AddNumberToObject(root, "quantized_weights_rewritten", r->n_grids);
+  cJSON_AddItemToObject(root, "weights", cli_weight_rules_json(r->rules, r->n_rules));
   cJSON_AddNumberToObject(root, "rollbacks", r->rollbacks);
   cJSON_AddNumberToObject(root, "reload_max_diff", verify_diff);
   cJSON *layers = cJSON_AddArrayToObject(root, "layers");
@@ -678,8 +690,9 @@ static void print_results(const distill_args *a, const rc_distill_result *r, dou
   printf("masks: %s pruned entries checked, all still exactly zero\n",
          cli_group_digits(r->n_frozen_zeros, b2, sizeof b2));
   if (r->n_grids)
-    printf("grids: %d quantized weights rewritten on their unchanged grids (scales, zero points, dtypes, axes)\n",
-           r->n_grids);
+    printf("grids: %d quantized weights rewritten on their unchanged grids (scales, zero points, dtypes, axes,\n"
+           "       integer ranges; every integer checked inside its range)\n", r->n_grids);
+  cli_weight_rules_print(r->rules, r->n_rules);
   printf("best state: lowest validation %s; agreement%s reported beside it\n",
          strcmp(rc__select_rule_name(&r->before, r->select_alpha), "kl") ? "alpha*KL + (1-alpha)*cross-entropy"
                                                                         : "KL to dense",

@@ -5,23 +5,30 @@
 #include <string.h>
 
 #include "cli/cli.h"
+#include "cli/weight_rules.h"
 #include "core/alloc.h"
 #include "onnx/io_decl.h"
+#include "onnx/model.h"
 #include "plan/count.h"
+#include "plan/grid_range.h"
 #include "plan/inspect.h"
 #include "plan/load.h"
+#include "plan/mask_rule.h"
 #include "plan/plan.h"
 #include "train/pairing.h"
 
 static void usage(FILE *f) {
   fprintf(f,
-          "Usage: recoup inspect MODEL.onnx [--json]\n"
+          "Usage: recoup inspect MODEL.onnx [--mask auto|zeros|none] [--json]\n"
           "       recoup inspect --pairs DENSE.onnx STUDENT.onnx [--pair T=S ...] [--json]\n"
           "\n"
           "Show a model's inputs and outputs (shapes, dtypes), IR version and opset,\n"
           "op counts, parameter count, per-tensor weight sparsity with any N:M pattern,\n"
-          "quantization grids (dtype, scale, zero point, axis) and multiply-accumulates\n"
-          "for a batch of one.\n"
+          "quantization grids (dtype, scale, zero point, axis, integer range and where\n"
+          "the range comes from: the dtype, recorded in the file by recoup quantize, or\n"
+          "observed from the integers the tensor holds), what each weight's zeros mean\n"
+          "to distill (pruned and kept at zero, or trainable; see --mask) and\n"
+          "multiply-accumulates for a batch of one.\n"
           "\n"
           "With --pairs: the teacher and student tensors feature losses would match\n"
           "(automatic pairing, or the --pair overrides), with their shapes at batch 1\n"
@@ -29,6 +36,7 @@ static void usage(FILE *f) {
           "\n"
           "Options:\n"
           "  --json      print one JSON object on stdout instead of tables\n"
+          "  --mask M    what zeros mean, as distill --mask M decides it (default auto)\n"
           "  --pairs     show the pairing of two models\n"
           "  --pair T=S  pair teacher tensor T with student tensor S (repeatable)\n"
           "  -h, --help  show this help\n");
@@ -175,8 +183,56 @@ static double zero_point_at(const rc_grid_info *gi, int64_t i) {
   return gi->zero_point && gi->zero_point->data ? (double)rc__int_at(gi->zero_point, i) : 0.0;
 }
 
+/* What distill would decide for each weight and grid. */
+typedef struct grid_facts {
+  rc_mask_mode mode;
+  rc_mask_choice *masks; /* per weight; rule NULL for biases and normalisation */
+  rc_int_range *ranges;  /* per grid */
+} grid_facts;
+
+static const rc_grid_info *grid_of_value(const rc_grid_info *gr, int n_gr, int v) {
+  for (int i = 0; i < n_gr; i++)
+    if (gr[i].is_weight && gr[i].value == v) return &gr[i];
+  return NULL;
+}
+
+static rc_status decide(const rc_model *m, const rc_weight_info *w, int n_w, const rc_grid_info *gr, int n_gr,
+                        grid_facts *f, rc_err *e) {
+  const rc_graph *g = &m->graph;
+  rc_file_notes notes;
+  RC_TRY(rc__file_notes_parse(&notes, rc_model_metadata(m, RC_RANGES_METADATA),
+                              rc_model_metadata(m, RC_PRUNED_METADATA), g->path, e));
+  rc_status s = RC_OK;
+  f->masks = rc__calloc((size_t)n_w + 1, sizeof *f->masks);
+  f->ranges = rc__calloc((size_t)n_gr + 1, sizeof *f->ranges);
+  if (!f->masks || !f->ranges) s = rc__fail(e, RC_ERR_NOMEM, "out of memory");
+  for (int i = 0; s == RC_OK && i < n_gr; i++) {
+    s = rc__grid_range(g, &notes, gr[i].is_weight ? gr[i].value : -1, gr[i].dtype, g->values[gr[i].value].name,
+                       &f->ranges[i], e);
+    int q = g->values[gr[i].value].producer; /* a float weight quantized at run time */
+    if (s == RC_OK && !gr[i].is_weight && q >= 0 && !strcmp(g->nodes[q].op_type, "QuantizeLinear") &&
+        f->ranges[i].source == RC_RANGE_DTYPE)
+      rc__grid_range_of_float_weight(g, q, &f->ranges[i]);
+  }
+  for (int i = 0; s == RC_OK && i < n_w; i++) {
+    if (w[i].role != RC_ROLE_WEIGHT) continue;
+    const rc_value *v = &g->values[w[i].value];
+    const rc_grid_info *q = w[i].quantized ? grid_of_value(gr, n_gr, w[i].value) : NULL;
+    int64_t channels = 1, inner = 1;
+    if (q && q->axis >= 0) {
+      channels = q->n_scale;
+      for (int d = q->axis + 1; d < v->decl.rank; d++) inner *= v->decl.dims[d];
+    }
+    rc__mask_choose(f->mode, &notes, v->name, &v->decl, q != NULL, q ? q->zero_point : NULL, channels, inner,
+                    &f->masks[i]);
+  }
+  rc__file_notes_free(&notes);
+  return s;
+}
+
 static void print_json(const rc_model *m, const io_shape *ins, const io_shape *outs, const op_count *ops, int n_ops,
-                       const rc_weight_info *w, int n_w, const rc_grid_info *gr, int n_gr, int64_t macs) {
+                       const rc_weight_info *w, int n_w, const rc_grid_info *gr, int n_gr, int64_t macs,
+                       const grid_facts *f) {
   const rc_graph *g = &m->graph;
   cJSON *root = cJSON_CreateObject();
   cJSON_AddStringToObject(root, "model", m->path);
@@ -213,8 +269,11 @@ static void print_json(const rc_model *m, const io_shape *ins, const io_shape *o
       cJSON_AddNullToObject(o, "pattern");
     }
     cJSON_AddBoolToObject(o, "quantized", w[i].quantized);
+    if (f->masks[i].rule) cJSON_AddItemToObject(o, "mask", cli_mask_json(&f->masks[i]));
+    else cJSON_AddNullToObject(o, "mask");
     cJSON_AddItemToArray(jw, o);
   }
+  cJSON_AddStringToObject(root, "mask_mode", rc__mask_mode_name(f->mode));
   cJSON *jg = cJSON_AddArrayToObject(root, "grids");
   for (int i = 0; i < n_gr; i++) {
     cJSON *o = cJSON_CreateObject();
@@ -235,6 +294,7 @@ static void print_json(const rc_model *m, const io_shape *ins, const io_shape *o
                                                                    ? k
                                                                    : 0)));
     }
+    cJSON_AddItemToObject(o, "range", cli_range_json(&f->ranges[i]));
     cJSON_AddItemToArray(jg, o);
   }
   char *text = cli_json_print(root);
@@ -264,7 +324,7 @@ static void print_io(const char *title, const rc_graph *g, const int *vals, cons
 
 static void print_tables(const rc_model *m, const io_shape *ins, const io_shape *outs, const op_count *ops,
                          int n_ops, const rc_weight_info *w, int n_w, const rc_grid_info *gr, int n_gr, int64_t macs,
-                         const char *macs_why) {
+                         const char *macs_why, const grid_facts *f) {
   const rc_graph *g = &m->graph;
   char b1[64], b2[64], nb[512];
   printf("model       %s (%s bytes)\n", cli_esc(m->path, nb, sizeof nb),
@@ -283,27 +343,33 @@ static void print_tables(const rc_model *m, const io_shape *ins, const io_shape 
   else
     printf("MACs        unknown (%s)\n", cli_esc(macs_why, nb, sizeof nb));
   if (n_w) {
-    printf("\n%-36s %-7s %-18s %13s %9s %7s\n", "weight", "role", "shape", "zeros/total", "sparsity",
-           "N:M");
+    printf("\n%-36s %-7s %-18s %13s %9s %7s  zeros under --mask %s\n", "weight", "role", "shape", "zeros/total",
+           "sparsity", "N:M", rc__mask_mode_name(f->mode));
     for (int i = 0; i < n_w; i++) {
       const rc_value *v = &g->values[w[i].value];
       char shape[96], frac[48], nm[16] = "-";
       if (w[i].nm_m) snprintf(nm, sizeof nm, "%d:%d", w[i].nm_n, w[i].nm_m);
       snprintf(frac, sizeof frac, "%lld/%lld", (long long)w[i].zeros, (long long)w[i].numel);
-      printf("%-36s %-7s %-18s %13s %8.1f%% %7s%s\n", cli_esc(v->name, nb, sizeof nb), role_name(w[i].role),
+      char mk[160] = "-";
+      if (f->masks[i].rule) cli_mask_text(&f->masks[i], mk, sizeof mk);
+      printf("%-36s %-7s %-18s %13s %8.1f%% %7s  %s%s\n", cli_esc(v->name, nb, sizeof nb), role_name(w[i].role),
              rc_shape_str(&v->decl, shape, sizeof shape), frac,
-             w[i].numel ? 100.0 * (double)w[i].zeros / (double)w[i].numel : 0.0, nm,
+             w[i].numel ? 100.0 * (double)w[i].zeros / (double)w[i].numel : 0.0, nm, mk,
              w[i].quantized ? "  (quantized)" : "");
     }
   }
   if (n_gr) {
-    printf("\n%-36s %-10s %-6s %-5s %s\n", "grid (integer tensor)", "kind", "dtype", "axis", "scale / zero point");
+    printf("\n%-36s %-10s %-6s %-5s %-30s %s\n", "grid (integer tensor)", "kind", "dtype", "axis",
+           "integer range (from; used)", "scale / zero point");
     for (int i = 0; i < n_gr; i++) {
-      char axis[16] = "-";
+      char axis[16] = "-", rg[96], used[48] = "";
       if (gr[i].axis >= 0) snprintf(axis, sizeof axis, "%d", gr[i].axis);
-      printf("%-36s %-10s %-6s %-5s ", cli_esc(g->values[gr[i].value].name, nb, sizeof nb),
-             gr[i].is_weight ? "weight" : "activation",
-             rc_dtype_name(gr[i].dtype), axis);
+      if (f->ranges[i].has_used)
+        snprintf(used, sizeof used, "; [%lld, %lld]", (long long)f->ranges[i].used_lo, (long long)f->ranges[i].used_hi);
+      snprintf(rg, sizeof rg, "[%d, %d] (%s%s)", f->ranges[i].lo, f->ranges[i].hi,
+               rc__range_source_name(f->ranges[i].source), used);
+      printf("%-36s %-10s %-6s %-5s %-30s ", cli_esc(g->values[gr[i].value].name, nb, sizeof nb), gr[i].is_weight ? "weight" : "activation",
+             rc_dtype_name(gr[i].dtype), axis, rg);
       if (gr[i].n_scale == 1)
         printf("%.9g / %g\n", gr[i].scale ? gr[i].scale[0] : 0.0, zero_point_at(&gr[i], 0));
       else
@@ -376,15 +442,21 @@ out:
 
 int rc_cmd_inspect(int argc, char **argv) {
   static const struct option longopts[] = {{"json", no_argument, NULL, 'j'},
+                                           {"mask", required_argument, NULL, 'M'},
                                            {"pairs", no_argument, NULL, 'p'},
                                            {"pair", required_argument, NULL, 'P'},
                                            {"help", no_argument, NULL, 'h'},
                                            {NULL, 0, NULL, 0}};
   int json = 0, want_pairs = 0, n_pairs = 0, c;
+  grid_facts facts = {RC_MASK_AUTO, NULL, NULL};
   const char *pairs[64];
   optind = 1;
   while ((c = getopt_long(argc, argv, "h", longopts, NULL)) != -1) {
     if (c == 'j') json = 1;
+    else if (c == 'M') {
+      if (!rc__mask_mode_parse(optarg, &facts.mode))
+        return cli_usage_error("inspect", "--mask must be auto, zeros or none, not '%s'", optarg);
+    }
     else if (c == 'p') want_pairs = 1;
     else if (c == 'P') {
       if (n_pairs == 64) return cli_usage_error("inspect", "too many --pair");
@@ -409,7 +481,8 @@ int rc_cmd_inspect(int argc, char **argv) {
   rc_weight_info *w = NULL;
   rc_grid_info *gr = NULL;
   int n_w = 0, n_gr = 0, rc = RC_EXIT_OK;
-  if (!ops || rc__weights_collect(g, &w, &n_w, &e) != RC_OK || rc__grids_collect(g, &gr, &n_gr, &e) != RC_OK) {
+  if (!ops || rc__weights_collect(g, &w, &n_w, &e) != RC_OK || rc__grids_collect(g, &gr, &n_gr, &e) != RC_OK ||
+      decide(m, w, n_w, gr, n_gr, &facts, &e) != RC_OK) {
     rc = cli_fail(&e);
     goto out;
   }
@@ -426,12 +499,14 @@ int rc_cmd_inspect(int argc, char **argv) {
   io_shapes(m, 0, ins, g->n_inputs, &se);
   io_shapes(m, 1, outs, g->n_outputs, &se);
   if (json)
-    print_json(m, ins, outs, ops, n_ops, w, n_w, gr, n_gr, macs);
+    print_json(m, ins, outs, ops, n_ops, w, n_w, gr, n_gr, macs, &facts);
   else
-    print_tables(m, ins, outs, ops, n_ops, w, n_w, gr, n_gr, macs, pe.msg);
+    print_tables(m, ins, outs, ops, n_ops, w, n_w, gr, n_gr, macs, pe.msg, &facts);
   rc__free(ins);
   rc__free(outs);
 out:
+  rc__free(facts.masks);
+  rc__free(facts.ranges);
   rc__free(ops);
   rc__free(w);
   rc__free(gr);

@@ -49,6 +49,7 @@ typedef struct key_def {
 static const char *const OPTIMIZERS[] = {"adamw", "sgd", NULL};
 static const char *const SCHEDULES[] = {"cosine", "step", "constant", NULL};
 static const char *const BN_MODES[] = {"frozen", "recalibrate", "train", NULL};
+static const char *const MASK_MODES[] = {"auto", "zeros", "none", NULL};
 
 /* Every `recoup distill` option; ranges as distill checks them. The order is
  * the order of the arguments given to distill. */
@@ -84,6 +85,7 @@ static const key_def KEYS[] = {
     {"temperature", K_NUM, ANYWHERE, 1e-3, 1e3, NULL},
     {"alpha", K_NUM, ANYWHERE, 0, 1, NULL},
     {"bn", K_CHOICE, ANYWHERE, 0, 0, BN_MODES},
+    {"mask", K_CHOICE, ANYWHERE, 0, 0, MASK_MODES},
     {"train", K_STRLIST, ANYWHERE, 0, 0, NULL},
     {"freeze", K_STRLIST, ANYWHERE, 0, 0, NULL},
     {"seed", K_INT, ANYWHERE, 0, MAX_INT, NULL},

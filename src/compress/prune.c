@@ -7,9 +7,12 @@
 #include <stdio.h>
 #include <string.h>
 
+#include <cJSON.h>
+
 #include "compress/prune_internal.h"
 #include "core/alloc.h"
 #include "plan/count.h"
+#include "plan/grid_range.h"
 #include "plan/inspect.h"
 #include "plan/load.h"
 #include "plan/plan.h"
@@ -176,6 +179,41 @@ static int same_shape(const rc_tensor *a, const rc_tensor *b) {
 
 enum { MAX_CHECKED_OUTPUTS = 16 };
 
+/* Record in the file which weights were pruned (RC_PRUNED_METADATA), joined
+ * with what an earlier pruning recorded, so that distill knows these zeros
+ * are pruned even after quantization. */
+static rc_status record_pruned(rc_model *m, const int *changed, int n_changed, rc_err *e) {
+  cJSON *root = NULL, *list = NULL;
+  const char *old = rc_model_metadata(m, RC_PRUNED_METADATA);
+  if (old && (root = cJSON_Parse(old)) && !cJSON_IsArray(list = cJSON_GetObjectItemCaseSensitive(root, "tensors"))) {
+    cJSON_Delete(root);
+    root = NULL;
+  }
+  if (!root) {
+    root = cJSON_CreateObject();
+    cJSON_AddNumberToObject(root, "schema", 1);
+    list = cJSON_AddArrayToObject(root, "tensors");
+  }
+  int added = 0;
+  for (int i = 0; i < n_changed && list; i++) {
+    const rc_value *v = &m->graph.values[changed[i]];
+    int64_t zeros, n = rc_tensor_numel(&v->decl);
+    int nm_n, nm_m;
+    if (v->decl.dtype != RC_DTYPE_FLOAT || !v->decl.data || !n) continue;
+    rc__sparsity(&v->decl, -1, 0, &zeros, &nm_n, &nm_m);
+    int known = 0;
+    const cJSON *it;
+    cJSON_ArrayForEach(it, list) known |= cJSON_IsString(it) && !strcmp(it->valuestring, v->name);
+    if (zeros && !known) added += cJSON_AddItemToArray(list, cJSON_CreateString(v->name));
+  }
+  char *text = added ? cJSON_PrintUnformatted(root) : NULL;
+  rc_status st = !added ? RC_OK : text ? rc_model_edit_set_metadata(m, RC_PRUNED_METADATA, text, e)
+                                       : rc__fail(e, RC_ERR_NOMEM, "%s: out of memory", m->path);
+  cJSON_free(text);
+  cJSON_Delete(root);
+  return st;
+}
+
 rc_status rc_prune_file(const char *in, const char *out, const rc_prune_opts *o, rc_prune_report *r,
                         rc_err *e) {
   memset(r, 0, sizeof *r);
@@ -195,6 +233,7 @@ rc_status rc_prune_file(const char *in, const char *out, const rc_prune_opts *o,
   pr.params_before = r->params_before;
   pr.macs_before = r->macs_before;
   *r = pr;
+  if ((st = record_pruned(m, changed, n_changed, e)) != RC_OK) goto done;
   if ((st = rc_model_save(m, out, changed, n_changed, e)) != RC_OK) goto done;
   /* Prove the written file is a model recoup can run. */
   if ((st = rc_model_load(&w, out, NULL, e)) != RC_OK ||

@@ -18,7 +18,10 @@
 #include <stdio.h>
 #include <string.h>
 
+#include <cJSON.h>
+
 #include "core/alloc.h"
+#include "plan/grid_range.h"
 #include "plan/plan.h"
 
 #define HIST_BINS 4096
@@ -115,6 +118,7 @@ typedef struct qstate {
   double *lo, *hi;
   int64_t *hist;  /* n_grids x HIST_BINS */
   int64_t *count;
+  cJSON *ranges;  /* RC_RANGES_METADATA being written: integer weight -> range */
   rc_err *e;
 } qstate;
 
@@ -547,6 +551,28 @@ static int int_bias_allowed(const rc_node *n) {
   return is_op(n, "Gemm") && rc__attr_float(n, "alpha", 1.0f) == 1.0f && rc__attr_float(n, "beta", 1.0f) == 1.0f;
 }
 
+/* The weight grid's range is narrower than its dtype's (symmetric, and 4-bit
+ * values in int8 tensors below opset 21): record it so that training keeps it. */
+static rc_status record_range(qstate *q, const char *tensor, const char *from, int qmax) {
+  cJSON *t = q->ranges ? cJSON_GetObjectItemCaseSensitive(q->ranges, "tensors") : NULL;
+  if (!q->ranges && (q->ranges = cJSON_CreateObject()) && cJSON_AddNumberToObject(q->ranges, "schema", 1))
+    t = cJSON_AddObjectToObject(q->ranges, "tensors");
+  cJSON *r = t ? cJSON_AddObjectToObject(t, tensor) : NULL;
+  if (!r || !cJSON_AddNumberToObject(r, "min", -qmax) || !cJSON_AddNumberToObject(r, "max", qmax) ||
+      !cJSON_AddStringToObject(r, "from", from))
+    return nomem(q);
+  return RC_OK;
+}
+
+static rc_status write_ranges(qstate *q) {
+  if (!q->ranges) return RC_OK;
+  char *text = cJSON_PrintUnformatted(q->ranges);
+  if (!text) return nomem(q);
+  rc_status st = rc_model_edit_set_metadata(q->m, RC_RANGES_METADATA, text, q->e);
+  cJSON_free(text);
+  return st;
+}
+
 static rc_status quantize_layer(qstate *q, layer_plan *L, rc_quant_layer *info) {
   const rc_node *n = &q->g->nodes[L->node];
   int node;
@@ -567,6 +593,7 @@ static rc_status quantize_layer(qstate *q, layer_plan *L, rc_quant_layer *info) 
   grid_names gn;
   rc_status st = name_grid(q, L->w_name, &gn);
   if (st == RC_OK) st = rc_model_edit_add_initializer(q->m, gn.grid, &tq, q->e);
+  if (st == RC_OK) st = record_range(q, gn.grid, L->w_name, qmax);
   if (st == RC_OK) st = rc_model_edit_add_initializer(q->m, gn.step, &ts, q->e);
   if (st == RC_OK) st = add_dequantize(q, gn.from, gn.grid, gn.step, NULL, L->axis, gn.on);
   if (st == RC_OK) st = rc_model_edit_set_input(q->m, node, 1, gn.on, q->e);
@@ -636,6 +663,7 @@ static rc_status apply_rewrite(qstate *q) {
     r->n_layers = i + 1;
   }
   for (int gi = 0; gi < q->n_grids; gi++) RC_TRY(quantize_activation(q, &r->grids[gi], q->grid_value[gi]));
+  RC_TRY(write_ranges(q));
   rc_model_edit_drop_unused(q->m);
   return rc_model_edit_sort(q->m, q->e);
 }
@@ -731,6 +759,7 @@ static void qstate_free(qstate *q) {
   rc__free(q->hi);
   rc__free(q->hist);
   rc__free(q->count);
+  cJSON_Delete(q->ranges);
 }
 
 rc_status rc_quantize_model(rc_model *m, const rc_dataset *d, const rc_quant_config *cfg, rc_quant_report *rep,

@@ -441,3 +441,42 @@ rc_status rc_model_edit_sort(rc_model *m, rc_err *e) {
   rc__free(done);
   return st;
 }
+
+/* ---- metadata of our own ---- */
+
+const char *rc_model_metadata(const rc_model *m, const char *key) {
+  const Onnx__ModelProto *mp = m->proto;
+  for (size_t i = 0; i < mp->n_metadata_props; i++)
+    if (is_name(mp->metadata_props[i]->key, key)) return mp->metadata_props[i]->value ? mp->metadata_props[i]->value : "";
+  return NULL;
+}
+
+rc_status rc_model_edit_set_metadata(rc_model *m, const char *key, const char *value, rc_err *e) {
+  Onnx__ModelProto *mp = m->proto;
+  char *v = pb_strdup(value);
+  if (!v) return nomem(m, e);
+  for (size_t i = 0; i < mp->n_metadata_props; i++)
+    if (is_name(mp->metadata_props[i]->key, key)) {
+      pb_delete(mp->metadata_props[i]->value);
+      mp->metadata_props[i]->value = v;
+      return RC_OK;
+    }
+  Onnx__StringStringEntryProto *kv = pb_new(sizeof *kv);
+  char *k = pb_strdup(key);
+  if (!kv || !k) {
+    pb_delete(kv);
+    pb_delete(k);
+    pb_delete(v);
+    return nomem(m, e);
+  }
+  onnx__string_string_entry_proto__init(kv);
+  kv->key = k;
+  kv->value = v;
+  if (!pb_append((void ***)&mp->metadata_props, &mp->n_metadata_props, kv)) {
+    pb_delete(kv);
+    pb_delete(k);
+    pb_delete(v);
+    return nomem(m, e);
+  }
+  return RC_OK;
+}

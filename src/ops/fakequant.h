@@ -12,7 +12,7 @@
 
 typedef struct rc_fake_quant_params {
   int64_t axis;        /* the per-axis scale's axis (ignored for one scale) */
-  int32_t qmin, qmax;  /* the integer type's range */
+  int32_t qmin, qmax;  /* the grid's integer range (plan/grid_range.h), never wider than its type's */
 } rc_fake_quant_params;
 
 #endif

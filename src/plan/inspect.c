@@ -1,5 +1,7 @@
 #include "plan/inspect.h"
 
+#include "plan/grid_range.h"
+
 #include <math.h>
 #include <string.h>
 
@@ -175,8 +177,9 @@ rc_status rc__weights_collect(const rc_graph *g, rc_weight_info **out, int *coun
   return RC_OK;
 }
 
+/* Scale and zero point: initializers, directly or through Identity nodes. */
 static int initializer_of(const rc_graph *g, const rc_node *n, int i) {
-  return i < n->n_in && n->in[i] >= 0 && g->values[n->in[i]].kind == RC_VALUE_INITIALIZER ? n->in[i] : -1;
+  return i < n->n_in && n->in[i] >= 0 ? rc__constant_source(g, n->in[i], NULL, 0) : -1;
 }
 
 rc_status rc__grids_collect(const rc_graph *g, rc_grid_info **out, int *count, rc_err *e) {

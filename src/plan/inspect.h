@@ -42,8 +42,9 @@ typedef struct rc_grid_info {
   const rc_tensor *zero_point; /* NULL when absent (zero) */
 } rc_grid_info;
 
-/* Quantization grids: every DequantizeLinear whose scale is an initializer,
- * and every QuantizeLinear feeding one (activation pairs). */
+/* Quantization grids: every DequantizeLinear whose scale is an initializer
+ * (directly or through Identity nodes), and every QuantizeLinear feeding one
+ * (activation pairs). */
 rc_status rc__grids_collect(const rc_graph *g, rc_grid_info **out, int *n, rc_err *e);
 
 /* Zero count and N:M pattern of a tensor along axis (pattern checked for

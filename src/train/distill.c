@@ -40,6 +40,7 @@ void rc_distill_config_defaults(rc_distill_config *c) {
   c->clip = RC_CLIP_DEFAULT_MAX_NORM;
   c->seed = 1;
   c->bn = RC_BN_FROZEN;
+  c->mask = RC_MASK_AUTO;
   c->max_rollbacks = 3;
 }
 
@@ -49,6 +50,7 @@ void rc_distill_result_free(rc_distill_result *r) {
   rc__free(r->epoch_loss);
   rc__free(r->epoch_val);
   rc__free(r->changed);
+  rc__free(r->rules);
   memset(r, 0, sizeof *r);
 }
 
@@ -154,7 +156,36 @@ typedef struct run_state {
   rc_plan *teacher_step;     /* teacher run every step for inner tensors */
   unsigned char *tkeep, *skeep;
   int projectors_started;    /* least-squares start done (or a resumed run) */
+  rc_distill_tensor_rule *rules; /* per trained weight, moved to the result */
+  int *rule_value;               /* the store's value of each rule */
+  int n_rules;
 } run_state;
+
+/* Remember what the zeros of a trained weight mean; returns its store flags. */
+static rc_status add_rule(run_state *st, int v, const rc_mask_choice *m, const rc_int_range *range, rc_err *e) {
+  rc_distill_tensor_rule *grown = rc__realloc(st->rules, sizeof *grown * (size_t)(st->n_rules + 1));
+  int *gv = grown ? rc__realloc(st->rule_value, sizeof *gv * (size_t)(st->n_rules + 1)) : NULL;
+  if (grown) st->rules = grown;
+  if (!gv) return rc__fail(e, RC_ERR_NOMEM, "out of memory");
+  st->rule_value = gv;
+  rc_distill_tensor_rule *r = &st->rules[st->n_rules];
+  memset(r, 0, sizeof *r);
+  const rc_graph *g = st->sg;
+  /* A shadow is reported under its integer initializer's name. */
+  int named = v;
+  for (int i = 0; i < st->qat.n; i++)
+    if (st->qat.sites[i].shadow == v) named = st->qat.sites[i].int_value;
+  snprintf(r->name, sizeof r->name, "%s", g->values[named].name);
+  r->mask = *m;
+  if (range) {
+    r->quantized = 1;
+    r->range = *range;
+  }
+  st->rule_value[st->n_rules++] = v;
+  return RC_OK;
+}
+
+static unsigned weight_flags(const rc_mask_choice *m) { return m->keep_zeros ? RC_PARAM_KEEP_ZEROS : 0; }
 
 static rc_status add_trainable(run_state *st, int v, unsigned flags, rc_err *e) {
   for (int i = 0; i < st->n_tr; i++)
@@ -177,10 +208,13 @@ static rc_status select_trainables(run_state *st, rc_err *e) {
     const rc_value *val = &g->values[w[i].value];
     if (w[i].quantized || val->decl.dtype != RC_DTYPE_FLOAT) continue;
     if (matches_any(val->name, c->freeze_globs, c->n_freeze)) continue;
-    unsigned flags = w[i].role == RC_ROLE_WEIGHT ? RC_PARAM_KEEP_ZEROS
+    rc_mask_choice m;
+    rc__mask_choose(c->mask, NULL, val->name, &val->decl, 0, NULL, 1, 1, &m);
+    unsigned flags = w[i].role == RC_ROLE_WEIGHT ? weight_flags(&m)
                      : w[i].role == RC_ROLE_NORM ? RC_PARAM_NORM
                                                  : RC_PARAM_NO_DECAY;
-    s = add_trainable(st, w[i].value, flags, e);
+    if (w[i].role == RC_ROLE_WEIGHT) s = add_rule(st, w[i].value, &m, NULL, e);
+    if (s == RC_OK) s = add_trainable(st, w[i].value, flags, e);
   }
   rc__free(w);
   RC_TRY(s);
@@ -191,7 +225,8 @@ static rc_status select_trainables(run_state *st, rc_err *e) {
     int file_value = q->int_value >= 0 ? q->int_value : q->float_weight;
     int v = q->int_value >= 0 ? q->shadow : q->float_weight;
     if (v < 0 || matches_any(g->values[file_value].name, c->freeze_globs, c->n_freeze)) continue;
-    RC_TRY(add_trainable(st, v, q->is_bias ? RC_PARAM_NO_DECAY : RC_PARAM_KEEP_ZEROS, e));
+    if (!q->is_bias) RC_TRY(add_rule(st, v, &q->mask, q->int_value >= 0 ? &q->range : NULL, e));
+    RC_TRY(add_trainable(st, v, q->is_bias ? RC_PARAM_NO_DECAY : weight_flags(&q->mask), e));
   }
   /* --train adds float initializers beyond the default set. */
   for (int v = 0; v < g->n_values && c->n_train; v++) {
@@ -200,7 +235,9 @@ static rc_status select_trainables(run_state *st, rc_err *e) {
     if (!matches_any(val->name, c->train_globs, c->n_train) ||
         matches_any(val->name, c->freeze_globs, c->n_freeze))
       continue;
-    RC_TRY(add_trainable(st, v, RC_PARAM_KEEP_ZEROS, e));
+    rc_mask_choice m;
+    rc__mask_choose(c->mask, NULL, val->name, &val->decl, 0, NULL, 1, 1, &m);
+    RC_TRY(add_trainable(st, v, weight_flags(&m), e));
   }
   if (!st->n_tr)
     return rc__fail(e, RC_ERR_INVALID, "%s: nothing to train (no float weights of Conv, ConvTranspose, Gemm, "
@@ -592,7 +629,7 @@ static uint64_t run_fingerprint(const loop_ctx *lc) {
   h = rc__ckpt_fp_f32(h, st->teacher_logits, (size_t)(pool * st->k));
   int64_t ints[] = {(int64_t)c->seed, st->batch, lc->total, lc->spe, c->bn, st->train.n, st->val.n,
                     c->optim.kind, c->optim.nesterov, c->optim.decay_norm, c->sched.kind, lc->sched.warmup,
-                    lc->sched.step_size};
+                    lc->sched.step_size, c->mask};
   double reals[] = {c->temperature, c->alpha, c->optim.lr, c->optim.weight_decay, c->optim.momentum,
                     c->optim.beta1, c->optim.beta2, c->optim.eps, lc->sched.lr_min, lc->sched.gamma, c->clip};
   h = rc__ckpt_fp_i64(h, ints, sizeof ints / sizeof ints[0]);
@@ -874,9 +911,24 @@ static void free_state(run_state *st) {
   rc__free(st->tr);
   rc__free(st->bn_nodes);
   rc__free(st->trainable_mask);
+  rc__free(st->rules);
+  rc__free(st->rule_value);
   rc__free(st->teacher_logits);
   rc__free(st->teacher_val_logits);
   rc__free(st->val_logits);
+}
+
+/* Rewrite the student's QDQ sites for training, with the ranges and the
+ * pruning its file records. */
+static rc_status prepare_grids(run_state *st, const rc_tensor *data, rc_err *e) {
+  rc_tensor shapes[RC_DATASET_MAX_INPUTS];
+  input_shapes(st->sg, data, 1, shapes);
+  rc_file_notes notes;
+  RC_TRY(rc__file_notes_parse(&notes, rc_model_metadata(st->student, RC_RANGES_METADATA),
+                              rc_model_metadata(st->student, RC_PRUNED_METADATA), st->sg->path, e));
+  rc_status s = rc__qat_prepare(st->sg, shapes, &notes, st->c->mask, &st->qat, e);
+  rc__file_notes_free(&notes);
+  return s;
 }
 
 static rc_status record_changes(run_state *st, rc_distill_result *r, rc_err *e) {
@@ -898,6 +950,13 @@ static rc_status record_changes(run_state *st, rc_distill_result *r, rc_err *e) 
       r->changed[r->n_changed++] = st->qat.sites[i].int_value;
       r->n_grids++;
     }
+  for (int k = 0; k < st->n_rules; k++)
+    for (int i = 0; i < st->n_tr; i++)
+      if (st->tr[i].value == st->rule_value[k]) st->rules[k].frozen = rc_params_entry(st->ps, st->tr[i].entry)->n_frozen;
+  r->rules = st->rules;
+  r->n_rules = st->n_rules;
+  st->rules = NULL;
+  st->n_rules = 0;
   int entry;
   int64_t pos;
   r->mask_ok = rc_params_mask_intact(st->ps, &entry, &pos);
@@ -920,11 +979,11 @@ rc_status rc_distill_run(rc_distill_result *r, rc_model *teacher, rc_model *stud
   rc_pairing layers = {0};
   rc_status s;
   if ((s = rc_distill_check_pair(&teacher->graph, st.sg, e)) != RC_OK) goto out;
-  if ((s = rc__qat_prepare(st.sg, &st.qat, e)) != RC_OK) goto out;
   if (d->n_inputs != st.sg->n_inputs) {
     s = rc__fail(e, RC_ERR_INVALID, "%s has %d inputs, the data %d", st.sg->path, st.sg->n_inputs, d->n_inputs);
     goto out;
   }
+  if ((s = prepare_grids(&st, d->inputs, e)) != RC_OK) goto out;
   if ((s = rc_optim_check(&c->optim, e)) != RC_OK) goto out;
   if (c->temperature <= 0 || !isfinite(c->temperature)) {
     s = rc__fail(e, RC_ERR_INVALID, "the temperature must be positive");

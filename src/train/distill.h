@@ -13,6 +13,7 @@
 #include <stdint.h>
 
 #include "core/status.h"
+#include "plan/mask_rule.h"
 #include "onnx/model.h"
 #include "train/evaluate.h"
 #include "train/features.h"
@@ -63,6 +64,7 @@ typedef struct rc_distill_config {
   double clip;               /* max gradient norm, <= 0 = off */
   uint64_t seed;
   rc_bn_mode bn;
+  rc_mask_mode mask;          /* what zeros in weights mean (graph/mask_rule.h) */
   const char *const *train_globs;
   int n_train;
   const char *const *freeze_globs;
@@ -108,6 +110,15 @@ typedef struct rc_range_check {
 
 #define RC_DISTILL_TRACE_MAX 120
 
+/* One trained weight: what its zeros meant and, if quantized, its integer range. */
+typedef struct rc_distill_tensor_rule {
+  char name[128];
+  rc_mask_choice mask;      /* mask.rule points to a static string */
+  int64_t frozen;           /* entries frozen at zero */
+  int quantized;            /* an integer tensor on a grid: range is set */
+  rc_int_range range;
+} rc_distill_tensor_rule;
+
 typedef struct rc_distill_result {
   rc_metrics teacher, before, after; /* on the validation samples */
   int64_t n_train, n_val;
@@ -119,7 +130,9 @@ typedef struct rc_distill_result {
   int n_trainable_tensors;
   int64_t n_trainable, n_frozen_zeros;
   int mask_ok;
-  int n_grids;                       /* integer initializers rewritten on their unchanged grids */
+  int n_grids;                       /* integer initializers rewritten on their unchanged grids and ranges */
+  rc_distill_tensor_rule *rules;     /* per trained weight (not biases or normalisation) */
+  int n_rules;
   int rollbacks, stopped_nonfinite;
   double *epoch_loss;                /* per epoch (n_epochs) */
   rc_metrics *epoch_val;
