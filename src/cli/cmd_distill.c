@@ -571,10 +571,10 @@ static void warn_ranges(const rc_distill_result *r) {
   for (int i = 0; i < r->n_ranges; i++) {
     const rc_range_check *c = &r->ranges[i];
     if (!c->after.values_out) continue;
-    char w[32], b[32], d[32];
+    char w[32], b[32], d[32], nb[512];
     fprintf(stderr, "recoup: warning: %lld of %lld values of '%s' on %lld of %lld validation samples lie outside "
             "its activation grid and are clamped: the furthest is %s against the grid's %s of %s (%s beyond); "
-            "before training: %lld values\n", (long long)c->after.values_out, (long long)c->after.values, c->tensor,
+            "before training: %lld values\n", (long long)c->after.values_out, (long long)c->after.values, cli_esc(c->tensor, nb, sizeof nb),
             (long long)c->after.samples_out, (long long)c->after.samples,
             rc__fmt_sig(w, sizeof w, c->after.worst, RC_FMT_SIG, 0),
             c->after.worst > c->after.bound ? "maximum" : "minimum", rc__fmt_sig(b, sizeof b, c->after.bound, RC_FMT_SIG, 0),
