@@ -8,6 +8,8 @@
 #include <stdlib.h>
 #include <string.h>
 
+#include "recoup/status.h"
+
 static int test_failed_checks_;
 static int test_case_failed_;
 static int test_passed_, test_failed_;
@@ -16,10 +18,34 @@ static int test_passed_, test_failed_;
   do {                                                                       \
     if (!(cond)) {                                                           \
       fprintf(stderr, "%s:%d: check failed: %s\n", __FILE__, __LINE__, #cond); \
-      test_failed_checks_++;                                                 \
-      test_case_failed_ = 1;                                                 \
+      TEST_FAIL_();                                                          \
     }                                                                        \
   } while (0)
+
+#define TEST_FAIL_() (test_failed_checks_++, test_case_failed_ = 1)
+
+/* Digits that show a value of x's type exactly (integers up to 64 bits are
+ * exact in long double on every platform we build for). */
+#define TEST_DIGITS_(x) _Generic((x), float: 9, double: 17, default: 21)
+
+/* a OP b on numbers of any arithmetic type; prints both sides on failure.
+ * Compared as long double, so mixing signed and unsigned compares values. */
+#define TEST_CMP_(a, op, b)                                                                \
+  do {                                                                                     \
+    long double ta_ = (long double)(a), tb_ = (long double)(b);                            \
+    if (!(ta_ op tb_)) {                                                                   \
+      fprintf(stderr, "%s:%d: %s %s %s failed: %.*Lg vs %.*Lg\n", __FILE__, __LINE__, #a, \
+              #op, #b, TEST_DIGITS_(a), ta_, TEST_DIGITS_(b), tb_);                        \
+      TEST_FAIL_();                                                                        \
+    }                                                                                      \
+  } while (0)
+
+#define CHECK_EQ(a, b) TEST_CMP_(a, ==, b)
+#define CHECK_NE(a, b) TEST_CMP_(a, !=, b)
+#define CHECK_LT(a, b) TEST_CMP_(a, <, b)
+#define CHECK_LE(a, b) TEST_CMP_(a, <=, b)
+#define CHECK_GT(a, b) TEST_CMP_(a, >, b)
+#define CHECK_GE(a, b) TEST_CMP_(a, >=, b)
 
 #define CHECK_INT(a, b)                                                               \
   do {                                                                                \
@@ -27,9 +53,87 @@ static int test_passed_, test_failed_;
     if (ta_ != tb_) {                                                                 \
       fprintf(stderr, "%s:%d: %s == %s failed: %lld vs %lld\n", __FILE__, __LINE__, #a, \
               #b, ta_, tb_);                                                          \
-      test_failed_checks_++;                                                          \
-      test_case_failed_ = 1;                                                          \
+      TEST_FAIL_();                                                                   \
     }                                                                                 \
+  } while (0)
+
+/* A status code against the expected one, both by name. */
+#define CHECK_STATUS(a, b)                                                                    \
+  do {                                                                                        \
+    int ta_ = (int)(a), tb_ = (int)(b);                                                       \
+    if (ta_ != tb_) {                                                                         \
+      fprintf(stderr, "%s:%d: %s == %s failed: %d (%s) vs %d (%s)\n", __FILE__, __LINE__, #a, \
+              #b, ta_, rc_strerror(ta_), tb_, rc_strerror(tb_));                              \
+      TEST_FAIL_();                                                                           \
+    }                                                                                         \
+  } while (0)
+
+/* A call that must fail (any error code); prints the code it returned. */
+#define CHECK_FAILS(a)                                                                   \
+  do {                                                                                   \
+    int ta_ = (int)(a);                                                                  \
+    if (ta_ == RC_OK) {                                                                  \
+      fprintf(stderr, "%s:%d: %s should have failed but returned RC_OK\n", __FILE__,     \
+              __LINE__, #a);                                                             \
+      TEST_FAIL_();                                                                      \
+    }                                                                                    \
+  } while (0)
+
+#define TEST_PTR_(a, op, b)                                                                \
+  do {                                                                                     \
+    const void *ta_ = (const void *)(a), *tb_ = (const void *)(b);                         \
+    if (!(ta_ op tb_)) {                                                                   \
+      fprintf(stderr, "%s:%d: %s %s %s failed: %p vs %p\n", __FILE__, __LINE__, #a, #op, #b, \
+              ta_, tb_);                                                                   \
+      TEST_FAIL_();                                                                        \
+    }                                                                                      \
+  } while (0)
+
+#define CHECK_PTR_EQ(a, b) TEST_PTR_(a, ==, b)
+#define CHECK_PTR_NE(a, b) TEST_PTR_(a, !=, b)
+#define CHECK_NULL(a) TEST_PTR_(a, ==, NULL)
+#define CHECK_NOT_NULL(a) TEST_PTR_(a, !=, NULL)
+
+#define CHECK_STR_EQ(a, b)                                                                 \
+  do {                                                                                     \
+    const char *ta_ = (a), *tb_ = (b);                                                     \
+    if (!ta_ || !tb_ || strcmp(ta_, tb_) != 0) {                                           \
+      fprintf(stderr, "%s:%d: %s == %s failed: \"%s\" vs \"%s\"\n", __FILE__, __LINE__, #a, \
+              #b, ta_ ? ta_ : "(null)", tb_ ? tb_ : "(null)");                             \
+      TEST_FAIL_();                                                                        \
+    }                                                                                      \
+  } while (0)
+
+#define CHECK_STR_NE(a, b)                                                                 \
+  do {                                                                                     \
+    const char *ta_ = (a), *tb_ = (b);                                                     \
+    if (!ta_ || !tb_ || strcmp(ta_, tb_) == 0) {                                           \
+      fprintf(stderr, "%s:%d: %s != %s failed: \"%s\" vs \"%s\"\n", __FILE__, __LINE__, #a, \
+              #b, ta_ ? ta_ : "(null)", tb_ ? tb_ : "(null)");                             \
+      TEST_FAIL_();                                                                        \
+    }                                                                                      \
+  } while (0)
+
+/* n bytes equal; prints the first byte that differs. */
+#define CHECK_MEM_EQ(a, b, n)                                                              \
+  do {                                                                                     \
+    const unsigned char *ta_ = (const unsigned char *)(a), *tb_ = (const unsigned char *)(b); \
+    size_t tn_ = (size_t)(n), ti_ = 0;                                                     \
+    while (ti_ < tn_ && ta_[ti_] == tb_[ti_]) ti_++;                                       \
+    if (ti_ < tn_) {                                                                       \
+      fprintf(stderr, "%s:%d: %s == %s (%zu bytes) failed: byte %zu is 0x%02x vs 0x%02x\n", \
+              __FILE__, __LINE__, #a, #b, tn_, ti_, ta_[ti_], tb_[ti_]);                  \
+      TEST_FAIL_();                                                                        \
+    }                                                                                      \
+  } while (0)
+
+#define CHECK_MEM_NE(a, b, n)                                                              \
+  do {                                                                                     \
+    if (memcmp((a), (b), (size_t)(n)) == 0) {                                              \
+      fprintf(stderr, "%s:%d: %s != %s (%zu bytes) failed: all bytes equal\n", __FILE__,  \
+              __LINE__, #a, #b, (size_t)(n));                                              \
+      TEST_FAIL_();                                                                        \
+    }                                                                                      \
   } while (0)
 
 /* |a - b| <= atol + rtol * |b| */
@@ -39,8 +143,7 @@ static int test_passed_, test_failed_;
     if (!(fabs(ta_ - tb_) <= (atol) + (rtol)*fabs(tb_))) {                                 \
       fprintf(stderr, "%s:%d: %s ~ %s failed: %.9g vs %.9g\n", __FILE__, __LINE__, #a, #b, \
               ta_, tb_);                                                                   \
-      test_failed_checks_++;                                                               \
-      test_case_failed_ = 1;                                                               \
+      TEST_FAIL_();                                                                        \
     }                                                                                      \
   } while (0)
 
@@ -50,8 +153,7 @@ static int test_passed_, test_failed_;
     if (!th_ || !strstr(th_, tn_)) {                                                      \
       fprintf(stderr, "%s:%d: \"%s\" does not contain \"%s\"\n", __FILE__, __LINE__,     \
               th_ ? th_ : "(null)", tn_);                                                 \
-      test_failed_checks_++;                                                              \
-      test_case_failed_ = 1;                                                              \
+      TEST_FAIL_();                                                                       \
     }                                                                                     \
   } while (0)
 
