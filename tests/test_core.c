@@ -10,13 +10,13 @@
 #include "test.h"
 
 static void status_texts(void) {
-  CHECK(!strcmp(rc_strerror(RC_OK), "success"));
-  CHECK(!strcmp(rc_strerror(RC_ERR_FORMAT), "malformed file"));
-  CHECK(!strcmp(rc_strerror(-999), "unknown status"));
+  CHECK_STR_EQ(rc_strerror(RC_OK), "success");
+  CHECK_STR_EQ(rc_strerror(RC_ERR_FORMAT), "malformed file");
+  CHECK_STR_EQ(rc_strerror(-999), "unknown status");
   rc_err e;
   CHECK_INT(rc__fail(&e, RC_ERR_SHAPE, "node '%s' bad", "c1"), RC_ERR_SHAPE);
   rc__wrap(&e, "%s", "m.onnx");
-  CHECK(!strcmp(e.msg, "m.onnx: node 'c1' bad"));
+  CHECK_STR_EQ(e.msg, "m.onnx: node 'c1' bad");
 }
 
 static void arena_alignment_and_blocks(void) {
@@ -24,14 +24,14 @@ static void arena_alignment_and_blocks(void) {
   rc__arena_init(&a, 128);
   for (int i = 1; i < 100; i++) {
     unsigned char *p = rc__arena_alloc(&a, (size_t)i * 7);
-    CHECK(p != NULL);
+    CHECK_NOT_NULL(p);
     CHECK_INT((uintptr_t)p % 64, 0);
     memset(p, 0xab, (size_t)i * 7);
   }
   char *s = rc__arena_strdup(&a, "conv1.weight");
-  CHECK(!strcmp(s, "conv1.weight"));
+  CHECK_STR_EQ(s, "conv1.weight");
   rc__arena_free(&a);
-  CHECK(a.head == NULL);
+  CHECK_NULL(a.head);
 }
 
 static void tensor_sizes(void) {
@@ -39,13 +39,13 @@ static void tensor_sizes(void) {
   CHECK_INT(rc_tensor_numel(&t), 120);
   CHECK_INT(rc_tensor_nbytes(&t), 480);
   char buf[64];
-  CHECK(!strcmp(rc_shape_str(&t, buf, sizeof buf), "(2, 3, 4, 5)"));
+  CHECK_STR_EQ(rc_shape_str(&t, buf, sizeof buf), "(2, 3, 4, 5)");
   rc_tensor huge = {RC_DTYPE_FLOAT, 3, {INT64_MAX / 2, 4, 4}, NULL};
-  CHECK(rc_tensor_nbytes(&huge) == SIZE_MAX);
+  CHECK_EQ(rc_tensor_nbytes(&huge), SIZE_MAX);
   rc_tensor neg = {RC_DTYPE_FLOAT, 1, {-3}, NULL};
-  CHECK(rc_tensor_nbytes(&neg) == SIZE_MAX);
+  CHECK_EQ(rc_tensor_nbytes(&neg), SIZE_MAX);
   CHECK_INT(rc_dtype_size(RC_DTYPE_INT4), 1);
-  CHECK(!strcmp(rc_dtype_name(RC_DTYPE_UINT4), "uint4"));
+  CHECK_STR_EQ(rc_dtype_name(RC_DTYPE_UINT4), "uint4");
 }
 
 static void alloc_fault_hook(void) {
@@ -53,9 +53,9 @@ static void alloc_fault_hook(void) {
   void *a = rc__malloc(8);
   void *b = rc__malloc(8);
   void *c = rc__malloc(8);
-  CHECK(a != NULL);
-  CHECK(b == NULL);
-  CHECK(c != NULL);
+  CHECK_NOT_NULL(a);
+  CHECK_NULL(b);
+  CHECK_NOT_NULL(c);
   rc__free(a);
   rc__free(c);
   rc_alloc_set_fail_after(0);

@@ -243,8 +243,8 @@ static void kl_metric(void) {
   CHECK_INT(rc_metric_kl(&kl, per, s, t, N, K, &e), RC_OK);
   CHECK_INT(rc_loss_kd(&kd, NULL, NULL, 0.0f, s, t, N, K, 1.0f, &e), RC_OK);
   CHECK_NEAR(kl, kd, 1e-12, 0);
-  CHECK(kl > 0.0);
-  for (int i = 0; i < N; i++) CHECK(per[i] >= 0.0f);
+  CHECK_GT(kl, 0.0);
+  for (int i = 0; i < N; i++) CHECK_GE(per[i], 0.0f);
 }
 
 int main(void) {
