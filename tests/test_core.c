@@ -61,7 +61,8 @@ static void alloc_fault_hook(void) {
   rc_alloc_set_fail_after(0);
   size_t out;
   CHECK(!rc__mul_size(SIZE_MAX / 2, 3, &out));
-  CHECK(rc__mul_size(6, 7, &out) && out == 42);
+  CHECK(rc__mul_size(6, 7, &out));
+  CHECK_EQ(out, 42);
 }
 
 int main(void) {

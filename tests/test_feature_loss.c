@@ -146,7 +146,7 @@ static double eval(ctx *c, int grads) { return eval_scaled(c, grads, 1.0f); }
  * gradient g; error relative to the largest analytic entry. */
 static void fd_check(ctx *c, const char *what, float *x, const float *g, int64_t n, double eps,
                      double tol) {
-  double big = 1e-12, worst = 0.0;
+  double big = 1e-12, worst = 0.0, worst_num = 0.0;
   int64_t at = -1;
   for (int64_t i = 0; i < n; i++)
     if (fabs(g[i]) > big) big = fabs(g[i]);
@@ -406,7 +406,8 @@ static void projector_fit(void) {
   CHECK_INT(rc_feat_projector_init(w, b, CT, CS, RC_FEAT_INIT_UNIFORM, 3, &e), RC_OK);
   double before = call_hint(NULL, s, t, w, b, sv, tv);
   CHECK_INT(rc_feat_projector_fit(&fitted, w, b, s, t, &sv, &tv, fit_work, &e), RC_OK);
-  CHECK(fitted && call_hint(NULL, s, t, w, b, sv, tv) < before);
+  CHECK(fitted);
+  CHECK_LT(call_hint(NULL, s, t, w, b, sv, tv), before);
   float kept[CT * CS];
   memcpy(kept, w, sizeof kept);
   s[4] = NAN;

@@ -218,7 +218,12 @@ static void test_load_structure(void) {
   CHECK_INT(g->nodes[0].in[1], w);
   CHECK_INT(g->nodes[0].opset, 13);
   const rc_attr *ks = rc__attr_find(&g->nodes[0], "kernel_shape");
-  CHECK(ks && ks->type == RC_ATTR_INTS && ks->n == 2 && ks->ints[0] == 1);
+  CHECK_NOT_NULL(ks);
+  if (ks) {
+    CHECK_EQ(ks->type, RC_ATTR_INTS);
+    CHECK_EQ(ks->n, 2);
+    if (ks->n > 0) CHECK_EQ(ks->ints[0], 1);
+  }
   CHECK_INT(rc__attr_int(&g->nodes[0], "group", 0), 1);
   CHECK_INT(g->nodes[2].in[1], -1);
   CHECK_INT(g->nodes[2].out[1], -1);
@@ -253,7 +258,12 @@ static void test_round_trip(void) {
   CHECK_INT(rc_model_save(m, tpath("rt_same.onnx"), NULL, 0, &e), RC_OK);
   size_t n0, n1;
   uint8_t *a = read_file(tpath("rt_in.onnx"), &n0), *b = read_file(tpath("rt_same.onnx"), &n1);
-  CHECK(a && b && n0 == n1 && !memcmp(a, b, n0));
+  CHECK_NOT_NULL(a);
+  CHECK_NOT_NULL(b);
+  if (a && b) {
+    CHECK_EQ(n0, n1);
+    CHECK_MEM_EQ(a, b, n0 < n1 ? n0 : n1);
+  }
   free(a);
   free(b);
   /* Change the weight and save. */
@@ -279,17 +289,19 @@ static void test_round_trip(void) {
   CHECK_NOT_NULL(p);
   if (p) {
     CHECK(proto_has_unknown_4242(p));
-    CHECK(p->doc_string && !strcmp(p->doc_string, "a model doc string"));
-    CHECK(p->producer_name && !strcmp(p->producer_name, "fixture-writer"));
+    CHECK_STR_EQ(p->doc_string, "a model doc string");
+    CHECK_STR_EQ(p->producer_name, "fixture-writer");
     CHECK_EQ(p->n_metadata_props, 1);
     CHECK_STR_EQ(p->metadata_props[0]->value, "fixture team");
     CHECK_EQ(p->graph->n_value_info, 1);
     CHECK_STR_EQ(p->graph->value_info[0]->name, "conv_out");
-    CHECK(p->graph->node[0]->doc_string && !strcmp(p->graph->node[0]->doc_string, "conv node doc"));
+    CHECK_STR_EQ(p->graph->node[0]->doc_string, "conv node doc");
     const Onnx__TensorProto *pb = p->graph->initializer[1];
-    CHECK(pb->n_float_data == 2 && !pb->has_raw_data); /* unchanged: typed field kept */
-    CHECK(pb->doc_string && !strcmp(pb->doc_string, "bias doc"));
-    CHECK(p->graph->initializer[0]->has_raw_data && p->graph->initializer[0]->raw_data.len == 24);
+    CHECK_EQ(pb->n_float_data, 2);
+    CHECK(!pb->has_raw_data); /* unchanged: typed field kept */
+    CHECK_STR_EQ(pb->doc_string, "bias doc");
+    CHECK(p->graph->initializer[0]->has_raw_data);
+    CHECK_EQ(p->graph->initializer[0]->raw_data.len, 24);
     CHECK_INT(p->graph->n_input, 2);
     onnx__model_proto__free_unpacked(p, NULL);
   }
@@ -435,7 +447,12 @@ static void test_raw_vs_typed(void) {
     uint8_t raw[3] = {0, 2, 255};
     CHECK_INT(decode(ob_tensor_raw("x", RC_DTYPE_BOOL, 1, d3, raw, 3), &out, &e), RC_OK);
     const uint8_t *o = out.data;
-    CHECK(o && o[0] == 0 && o[1] == 1 && o[2] == 1);
+    CHECK_NOT_NULL(o);
+    if (o) {
+      CHECK_EQ(o[0], 0);
+      CHECK_EQ(o[1], 1);
+      CHECK_EQ(o[2], 1);
+    }
     rc__free(out.data);
   }
   ob_free_all();
@@ -617,11 +634,19 @@ static void test_external(void) {
   CHECK_INT(load_built(mk_external_model("weights.bin", "4", "12"), "ext/ok.onnx", &m, &e), RC_OK);
   if (m) {
     const float *w = m->graph.values[find(m, "ext.w")].decl.data;
-    CHECK(w && w[0] == 1.5f && w[1] == -2.5f && w[2] == 3.5f);
+    CHECK_NOT_NULL(w);
+    if (w) {
+      CHECK_EQ(w[0], 1.5f);
+      CHECK_EQ(w[1], -2.5f);
+      CHECK_EQ(w[2], 3.5f);
+    }
     /* Saved in its own folder: the reference stays. */
     CHECK_INT(rc_model_save(m, tpath("ext/same_dir.onnx"), NULL, 0, &e), RC_OK);
     Onnx__ModelProto *p = reread_proto(tpath("ext/same_dir.onnx"));
-    CHECK(p && p->graph->initializer[0]->n_external_data == 3);
+    CHECK_NOT_NULL(p);
+    if (p) {
+      CHECK_EQ(p->graph->initializer[0]->n_external_data, 3);
+    }
     if (p) onnx__model_proto__free_unpacked(p, NULL);
     /* ...but never over the data file it refers to. */
     CHECK_INT(rc_model_save(m, tpath("ext/weights.bin"), NULL, 0, &e), RC_ERR_INVALID);
@@ -629,8 +654,12 @@ static void test_external(void) {
     /* Saved elsewhere: embedded, and it loads with no data file beside it. */
     CHECK_INT(rc_model_save(m, tpath("ext_other/moved.onnx"), NULL, 0, &e), RC_OK);
     p = reread_proto(tpath("ext_other/moved.onnx"));
-    CHECK(p && p->graph->initializer[0]->n_external_data == 0 &&
-          p->graph->initializer[0]->has_raw_data && !p->graph->initializer[0]->has_data_location);
+    CHECK_NOT_NULL(p);
+    if (p) {
+      CHECK_EQ(p->graph->initializer[0]->n_external_data, 0);
+      CHECK(p->graph->initializer[0]->has_raw_data);
+      CHECK(!p->graph->initializer[0]->has_data_location);
+    }
     if (p) onnx__model_proto__free_unpacked(p, NULL);
     rc_model *r = NULL;
     CHECK_INT(rc__model_load_unbound(&r, tpath("ext_other/moved.onnx"), NULL, &e), RC_OK);
@@ -641,7 +670,11 @@ static void test_external(void) {
     ((float *)m->graph.values[w_idx].decl.data)[0] = 42.0f;
     CHECK_INT(rc_model_save(m, tpath("ext/changed.onnx"), &w_idx, 1, &e), RC_OK);
     p = reread_proto(tpath("ext/changed.onnx"));
-    CHECK(p && p->graph->initializer[0]->n_external_data == 0 && p->graph->initializer[0]->has_raw_data);
+    CHECK_NOT_NULL(p);
+    if (p) {
+      CHECK_EQ(p->graph->initializer[0]->n_external_data, 0);
+      CHECK(p->graph->initializer[0]->has_raw_data);
+    }
     if (p) onnx__model_proto__free_unpacked(p, NULL);
     rc_model_free(m);
     m = NULL;
@@ -811,7 +844,12 @@ static void test_alloc_failures(void) {
     CHECK(ok);
     size_t na, nb;
     uint8_t *a = read_file(tpath("oom_ref.onnx"), &na), *b = read_file(tpath("oom_out.onnx"), &nb);
-    CHECK(a && b && na == nb && !memcmp(a, b, na));
+    CHECK_NOT_NULL(a);
+    CHECK_NOT_NULL(b);
+    if (a && b) {
+      CHECK_EQ(na, nb);
+      CHECK_MEM_EQ(a, b, na < nb ? na : nb);
+    }
     free(a);
     free(b);
     rc_model_free(m);
@@ -829,7 +867,9 @@ static void test_unpack_cap(void) {
   CHECK(pa.hit_cap);
   rc__pb_alloc_init(&pa, rc__pb_alloc_cap(n));
   Onnx__ModelProto *m = onnx__model_proto__unpack(&pa.base, n, b);
-  CHECK(m != NULL && !pa.hit_cap && pa.used > 0);
+  CHECK_NOT_NULL(m);
+  CHECK(!pa.hit_cap);
+  CHECK_GT(pa.used, 0);
   if (m) onnx__model_proto__free_unpacked(m, &pa.base);
   CHECK_INT(pa.used, 0);
   free(b);
@@ -940,8 +980,13 @@ static void test_graph_errors(void) {
   CHECK_INT(load_built(mp, "const.onnx", &m, &e), RC_OK);
   if (m) {
     const rc_attr *va = rc__attr_find(&m->graph.nodes[1], "value");
-    CHECK(va && va->type == RC_ATTR_TENSOR && va->t.dtype == RC_DTYPE_INT32 && va->t.dims[0] == 2 &&
-          !memcmp(va->t.data, iv, 8));
+    CHECK_NOT_NULL(va);
+    if (va) {
+      CHECK_EQ(va->type, RC_ATTR_TENSOR);
+      CHECK_EQ(va->t.dtype, RC_DTYPE_INT32);
+      CHECK_EQ(va->t.dims[0], 2);
+      if (va->type == RC_ATTR_TENSOR && va->t.dims[0] == 2) CHECK_MEM_EQ(va->t.data, iv, 8);
+    }
     rc_model_free(m);
   }
   a->t = ob_tensor_raw(NULL, RC_DTYPE_INT32, 1, d2, iv, 4);
@@ -992,7 +1037,11 @@ static void test_write_atomic(void) {
   CHECK_INT(rc__write_atomic(target, "second!", 7, &e), RC_OK);
   size_t n;
   uint8_t *b = read_file(target, &n);
-  CHECK(b && n == 7 && !memcmp(b, "second!", 7));
+  CHECK_NOT_NULL(b);
+  if (b) {
+    CHECK_EQ(n, 7);
+    CHECK_MEM_EQ(b, "second!", n < 7 ? n : 7);
+  }
   free(b);
   CHECK_INT(count_hidden(tpath("w")), 0);
   /* A bare file name writes into the current folder. */
@@ -1005,7 +1054,7 @@ static void test_write_atomic(void) {
   const char *cases[][2] = {{"a", "."}, {"/x", "/"}, {"d/e/f", "d/e"}, {"./f", "."}};
   for (int i = 0; i < 4; i++) {
     char *d = rc__path_dir(cases[i][0]);
-    CHECK(d && !strcmp(d, cases[i][1]));
+    CHECK_STR_EQ(d, cases[i][1]);
     rc__free(d);
   }
   /* A missing folder. */
@@ -1026,7 +1075,11 @@ static void test_write_atomic(void) {
   CHECK_STR_CONTAINS(e.msg, "File too large");
   CHECK_STR_CONTAINS(e.msg, "w/out.bin");
   b = read_file(target, &n);
-  CHECK(b && n == 7 && !memcmp(b, "second!", 7)); /* old target intact */
+  CHECK_NOT_NULL(b);
+  if (b) {
+    CHECK_EQ(n, 7);
+    CHECK_MEM_EQ(b, "second!", n < 7 ? n : 7); /* old target intact */
+  }
   free(b);
   CHECK_INT(count_hidden(tpath("w")), 0);         /* no temp file left */
   /* A read-only folder (only meaningful when not root). */
@@ -1036,7 +1089,10 @@ static void test_write_atomic(void) {
     CHECK_STR_CONTAINS(e.msg, "Permission denied");
     chmod(tpath("w"), 0755);
     b = read_file(target, &n);
-    CHECK(b && n == 7);
+    CHECK_NOT_NULL(b);
+    if (b) {
+      CHECK_EQ(n, 7);
+    }
     free(b);
   } else {
     printf("write_atomic: running as root, read-only folder case replaced by RLIMIT_FSIZE\n");
@@ -1061,7 +1117,12 @@ static void test_write_atomic(void) {
     p->doc_string = old_doc;
     CHECK_INT(st, RC_ERR_IO);
     uint8_t *after = read_file(target, &n2);
-    CHECK(before && after && n == n2 && !memcmp(before, after, n));
+    CHECK_NOT_NULL(before);
+    CHECK_NOT_NULL(after);
+    if (before && after) {
+      CHECK_EQ(n, n2);
+      CHECK_MEM_EQ(before, after, n < n2 ? n : n2);
+    }
     free(before);
     free(after);
     CHECK_INT(count_hidden(tpath("w")), 0);
@@ -1086,7 +1147,12 @@ static void test_tensorproto_file(void) {
   rc_tensor out;
   void *owned = NULL;
   CHECK_INT(rc__tensorproto_file_read(tpath("t.pb"), &out, &owned, 1 << 20, &e), RC_OK);
-  CHECK(owned && out.rank == 2 && out.dims[1] == 2 && !memcmp(out.data, v, sizeof v));
+  CHECK_NOT_NULL(owned);
+  if (owned) {
+    CHECK_EQ(out.rank, 2);
+    CHECK_EQ(out.dims[1], 2);
+    if (out.rank == 2 && out.dims[1] == 2) CHECK_MEM_EQ(out.data, v, sizeof v);
+  }
   rc__free(owned);
   CHECK_INT(rc__tensorproto_file_read(tpath("t.pb"), &out, &owned, 8, &e), RC_ERR_LIMIT);
   CHECK_STR_CONTAINS(e.msg, "t.pb");

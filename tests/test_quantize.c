@@ -300,7 +300,10 @@ static void test_weight_and_bias_grids(void) {
   }
   /* The graph output keeps its name, now produced by DequantizeLinear. */
   const rc_node *last = producer(g, g->outputs[0]);
-  CHECK(last && !strcmp(last->op_type, "DequantizeLinear"));
+  CHECK_NOT_NULL(last);
+  if (last) {
+    CHECK_STR_EQ(last->op_type, "DequantizeLinear");
+  }
   CHECK_STR_EQ(g->values[g->outputs[0]].name, "y");
   /* And the quantized model stays close to the float one. */
   static float yf[N_SAMPLES * OUTS], yq[N_SAMPLES * OUTS];

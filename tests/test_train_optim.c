@@ -189,8 +189,7 @@ static void snapshots(void) {
   CHECK_INT(rc_params_steps(ps), 1);
   CHECK_MEM_EQ(saved, rc_params_value(ps, -1), total * sizeof(float));
   CHECK_MEM_EQ(saved + total, rc_params_block(ps, RC_BLOCK_MOMENT1, -1), total * sizeof(float));
-  CHECK(!memcmp(saved + 2 * total, rc_params_block(ps, RC_BLOCK_MOMENT2, -1),
-                total * sizeof(float)));
+  CHECK_MEM_EQ(saved + 2 * total, rc_params_block(ps, RC_BLOCK_MOMENT2, -1), total * sizeof(float));
   CHECK_EQ(rc_params_grad(ps, 0)[1], 0.0f); /* gradients cleared */
   fill_grads(ps);
   CHECK_INT(rc_optim_step(ps, &c, 1e-2f, &e), RC_OK);
