@@ -382,6 +382,7 @@ static void test_channels_depthwise(void) {
   rc_err e = {0};
   CHECK_INT(rc_prune_file(tpath("dw.onnx"), tpath("dw_out.onnx"), &o, &r, &e), RC_OK);
   if (e.msg[0]) fprintf(stderr, "%s\n", e.msg);
+  CHECK_INT(r.n_layers, 3);
   if (r.n_layers == 3) CHECK_STR_CONTAINS(r.layers[1].note, "depthwise");
   rc_prune_report_free(&r);
   CHECK_INT(int_attr_of(tpath("dw_out.onnx"), "dw", "group"), 2);
@@ -458,6 +459,7 @@ static void test_channels_refused(void) {
   rc_err e = {0};
   CHECK_INT(rc_prune_file(tpath("sm.onnx"), tpath("sm_out.onnx"), &o, &r, &e), RC_OK);
   CHECK_INT(r.channels_removed, 0);
+  CHECK_INT(r.n_layers, 2);
   if (r.n_layers == 2) CHECK_STR_CONTAINS(r.layers[0].note, "'sm' (Softmax)");
   rc_prune_report_free(&r);
   float xin[2] = {0.3f, -0.4f};
