@@ -157,20 +157,57 @@ static int test_passed_, test_failed_;
     }                                                                                     \
   } while (0)
 
-#define RUN(fn)                                         \
+/* ctest's skip status (SKIP_RETURN_CODE on every C test): a test whose cases
+ * were all skipped, e.g. for want of an installed data set, says so. */
+#define TEST_SKIP_CODE 77
+
+static int test_skipped_, test_case_skipped_;
+static const char *test_only_; /* run just this case (TEST_SELECT) */
+
+/* Ends the current case as skipped, saying why. */
+#define SKIP_CASE(...)         \
+  do {                         \
+    printf("skipped: ");       \
+    printf(__VA_ARGS__);       \
+    printf("\n");              \
+    test_case_skipped_ = 1;    \
+    return;                    \
+  } while (0)
+
+/* `test_x NAME` runs only case NAME; cases registered with RUN_ALONE run
+ * only that way, as their own ctest entry, so their skip shows in ctest. */
+#define TEST_SELECT(argc, argv) (test_only_ = (argc) > 1 ? (argv)[1] : NULL)
+
+#define TEST_RUN_(fn)                                   \
   do {                                                  \
-    test_case_failed_ = 0;                              \
+    test_case_failed_ = test_case_skipped_ = 0;         \
     fn();                                               \
     if (test_case_failed_) {                            \
       test_failed_++;                                   \
       fprintf(stderr, "FAIL %s\n", #fn);                \
+    } else if (test_case_skipped_) {                    \
+      test_skipped_++;                                  \
     } else {                                            \
       test_passed_++;                                   \
     }                                                   \
   } while (0)
 
-#define TEST_REPORT()                                              \
-  (printf("%d passed, %d failed\n", test_passed_, test_failed_), \
-   test_failed_ ? 1 : 0)
+#define RUN(fn)                                          \
+  do {                                                   \
+    if (!test_only_ || !strcmp(test_only_, #fn)) TEST_RUN_(fn); \
+  } while (0)
+
+#define RUN_ALONE(fn)                                   \
+  do {                                                  \
+    if (test_only_ && !strcmp(test_only_, #fn)) TEST_RUN_(fn); \
+  } while (0)
+
+/* 1 on a failure or when no case ran (a selection naming no case), the skip
+ * code when every case that ran was skipped, else 0. */
+#define TEST_REPORT()                                                                          \
+  (printf("%d passed, %d failed, %d skipped\n", test_passed_, test_failed_, test_skipped_),     \
+   test_failed_ || test_passed_ + test_skipped_ == 0 ? 1                                      \
+   : test_passed_ == 0                               ? TEST_SKIP_CODE                          \
+                                                     : 0)
 
 #endif

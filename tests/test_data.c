@@ -825,14 +825,13 @@ static void idx_corrupt_and_bombs(void) {
   rc_array_free(&a);
 }
 
-/* The real Fashion-MNIST test files from Debian's dataset-fashion-mnist. */
+/* The real Fashion-MNIST test files from Debian's dataset-fashion-mnist; its
+ * own ctest entry (test_data_fashion_mnist), skipped when they are absent. */
 static void fashion_mnist_files(void) {
   const char *img = "/usr/share/datasets/fashion-mnist/t10k-images-idx3-ubyte.gz";
   const char *lab = "/usr/share/datasets/fashion-mnist/t10k-labels-idx1-ubyte.gz";
-  if (access(img, R_OK) != 0 || access(lab, R_OK) != 0) {
-    printf("note: Fashion-MNIST files absent (Debian package dataset-fashion-mnist); check skipped\n");
-    return;
-  }
+  if (access(img, R_OK) != 0 || access(lab, R_OK) != 0)
+    SKIP_CASE("Fashion-MNIST files absent (Debian package dataset-fashion-mnist)");
   rc_array x, y, y32, xf;
   rc_err e = {0};
   CHECK_INT(rc_array_read(&x, img, NULL, 0, &e), RC_OK);
@@ -1219,7 +1218,8 @@ static void remove_tmpdir(void) {
   if (system(cmd) != 0) fprintf(stderr, "could not remove %s\n", tmpdir);
 }
 
-int main(void) {
+int main(int argc, char **argv) {
+  TEST_SELECT(argc, argv);
   make_tmpdir();
   RUN(npy_versions_and_dtypes);
   RUN(npy_header_grammar);
@@ -1231,7 +1231,7 @@ int main(void) {
   RUN(random_damage);
   RUN(idx_types);
   RUN(idx_corrupt_and_bombs);
-  RUN(fashion_mnist_files);
+  RUN_ALONE(fashion_mnist_files);
   RUN(parse_float_lists);
   RUN(float_conversion);
   RUN(shape_fitting);

@@ -161,11 +161,7 @@ static int by_name(const void *a, const void *b) { return strcmp(*(char *const *
 
 static void test_node_cases(void) {
   DIR *d = opendir(DATA_DIR);
-  if (!d) {
-    fprintf(stderr, "missing %s (%s): install Debian's libonnx-testdata\n", DATA_DIR, strerror(errno));
-    CHECK(!"ONNX backend test data present");
-    return;
-  }
+  if (!d) SKIP_CASE("%s: %s (Debian package libonnx-testdata)", DATA_DIR, strerror(errno));
   char *names[2048];
   int count = 0;
   struct dirent *ent;
