@@ -47,7 +47,7 @@ import numpy as np
 import onnx
 from onnx import helper, numpy_helper
 
-from e2e import TEST_IMAGES, TRAIN_IMAGES, Run, checker_verdict, diff_detail, require
+from e2e import TEST_IMAGES, TRAIN_IMAGES, Run, checker_verdict, diff_detail, require, require_data
 
 HERE = os.path.dirname(os.path.abspath(__file__))
 SCRIPTS = os.path.normpath(os.path.join(HERE, "..", "scripts"))
@@ -219,7 +219,8 @@ def zeros_kept(student, recovered):
 # ---------------------------------------------------------------- run
 
 fixture = os.path.join(REF, "vit_tiny_op13_fused")
-require(os.path.join(fixture, "model.onnx"), TRAIN_IMAGES, TEST_IMAGES)
+require_data(TRAIN_IMAGES, TEST_IMAGES)
+require(os.path.join(fixture, "model.onnx"))
 teacher = os.path.join(WORK, "teacher.onnx")
 export_teacher(fixture, teacher)
 

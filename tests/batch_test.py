@@ -41,12 +41,13 @@ import numpy as np
 import onnx
 from onnx import TensorProto, helper, numpy_helper
 
-from e2e import checker_verdict, diff_detail
+from e2e import checker_verdict, diff_detail, require_data
 
 RECOUP, WORK = sys.argv[1], sys.argv[2]
 shutil.rmtree(WORK, ignore_errors=True)
 os.makedirs(WORK)
 FMNIST = "/usr/share/datasets/fashion-mnist/train-images-idx3-ubyte.gz"
+require_data(FMNIST)
 CHROMIUM = "/usr/bin/chromium"
 failures = []
 passed = 0

@@ -29,7 +29,7 @@ import numpy as np
 import onnx
 from onnx import numpy_helper
 
-from e2e import DATA, SCALE, TEST_IMAGES, TRAIN_IMAGES, Run, checker_verdict, diff_detail, require
+from e2e import DATA, SCALE, TEST_IMAGES, TRAIN_IMAGES, Run, checker_verdict, diff_detail, require, require_data
 
 RECOUP, SRC, WORK = sys.argv[1:4]
 os.makedirs(WORK, exist_ok=True)
@@ -78,7 +78,8 @@ def read_idx_labels(path):
     return np.frombuffer(raw, np.uint8, offset=8)
 
 
-require(DENSE, PRUNED, TRAIN_IMAGES)
+require_data(TRAIN_IMAGES, TEST_IMAGES)
+require(DENSE, PRUNED)
 
 dense_before = digest(DENSE)
 pruned_before = digest(PRUNED)

@@ -28,7 +28,7 @@ import sys
 
 import onnx
 
-from e2e import Run, SCALE, TRAIN_IMAGES, checker_verdict, diff_detail, require
+from e2e import Run, SCALE, TRAIN_IMAGES, checker_verdict, diff_detail, require, require_data
 
 RECOUP, SRC, WORK = sys.argv[1:4]
 os.makedirs(WORK, exist_ok=True)
@@ -37,7 +37,8 @@ STEPS = "300"
 MARGIN = 0.4  # recovery over the channel-pruned copy, for each loss
 run = Run(RECOUP)
 check, test_accuracy = run.check, run.test_accuracy
-require(DENSE, TRAIN_IMAGES)
+require_data(TRAIN_IMAGES)
+require(DENSE)
 
 
 narrow = os.path.join(WORK, "garment_channels50.onnx")

@@ -26,7 +26,7 @@ import numpy as np
 import onnx
 from onnx import numpy_helper
 
-from e2e import Run, SCALE, TRAIN_IMAGES, checker_verdict, diff_detail, require
+from e2e import Run, SCALE, TRAIN_IMAGES, checker_verdict, diff_detail, require, require_data
 
 RECOUP, SRC, WORK = sys.argv[1:4]
 os.makedirs(WORK, exist_ok=True)
@@ -37,7 +37,8 @@ DENSE = os.path.join(SRC, "models", "garment_dense.onnx")
 MARGIN = 0.005
 run = Run(RECOUP)
 check, test_accuracy = run.check, run.test_accuracy
-require(DENSE, TRAIN_IMAGES)
+require_data(TRAIN_IMAGES, TEST_IMAGES)
+require(DENSE)
 q4 = os.path.join(WORK, "garment_w4a8.onnx")
 calib = os.path.join(WORK, "calib.npy")
 # 1,000 training images for calibration, read with NumPy from the IDX file.

@@ -34,7 +34,7 @@ import numpy as np
 import onnx
 from onnx import TensorProto, helper, numpy_helper
 
-from e2e import DATA, SCALE, TEST_IMAGES, TEST_LABELS, TRAIN_IMAGES, Run
+from e2e import DATA, SCALE, TEST_IMAGES, TEST_LABELS, TRAIN_IMAGES, Run, require_data
 
 RECOUP, SRC, WORK = sys.argv[1:4]
 HERE = os.path.dirname(os.path.abspath(__file__))
@@ -46,6 +46,7 @@ MODEL = os.environ.get("RECOUP_GARMENT_MODEL", os.path.join(SRC, "models", "garm
 MEASURED = ("dense 0.9201, 8-bit weights and activations 0.9235, 4-bit weights with 8-bit activations 0.9099 "
             "(run of 2 Dec 2026; ONNX Runtime Web matched recoup within one output step)")
 
+require_data(TRAIN_IMAGES, TEST_IMAGES, TEST_LABELS)
 run = Run(RECOUP)
 check = run.check
 
