@@ -471,10 +471,6 @@ static void fmt_time(double s, char *buf, size_t n) {
 static void on_progress(void *user, const rc_distill_progress *p) {
   progress_state *ps = user;
   char eta[32];
-  if (p->event == RC_DISTILL_NOTE) {
-    fprintf(stderr, "%srecoup: %s\n", ps->tty ? "\r\033[K" : "", p->note);
-    return;
-  }
   if (p->event == RC_DISTILL_EPOCH) {
     if (ps->tty) fprintf(stderr, "\r\033[K");
     fprintf(stderr, "epoch %lld/%lld  loss %.4f", (long long)p->epoch, (long long)p->epochs, p->loss);
@@ -681,6 +677,7 @@ int rc_cmd_distill(int argc, char **argv) {
   progress_state ps = {cli_isatty_stderr(), -1e9, a.json};
   a.cfg.progress = on_progress;
   a.cfg.user = &ps;
+  a.cfg.log = (rc_logger){cli_log_stderr, &ps.tty, RC_LOG_INFO};
   a.cfg.stop = &cli_stop_requested;
   cli_catch_stop_signals();
   if (a.cfg.resume_path && same_file(a.out, a.cfg.resume_path)) {
