@@ -26,7 +26,7 @@ import numpy as np
 import onnx
 from onnx import numpy_helper
 
-from e2e import Run, SCALE, TRAIN_IMAGES, checker_verdict, diff_detail, require, require_data
+from e2e import SCALE, TEST_IMAGES, TRAIN_IMAGES, Run, checker_verdict, diff_detail, require, require_data
 
 RECOUP, SRC, WORK = sys.argv[1:4]
 os.makedirs(WORK, exist_ok=True)
