@@ -94,25 +94,19 @@ static int test_passed_, test_failed_;
 #define CHECK_NULL(a) TEST_PTR_(a, ==, NULL)
 #define CHECK_NOT_NULL(a) TEST_PTR_(a, !=, NULL)
 
-#define CHECK_STR_EQ(a, b)                                                                 \
+/* Two strings equal (want_equal 1) or different (0); NULL never passes. */
+#define TEST_STR_(a, b, want_equal, op)                                                    \
   do {                                                                                     \
     const char *ta_ = (a), *tb_ = (b);                                                     \
-    if (!ta_ || !tb_ || strcmp(ta_, tb_) != 0) {                                           \
-      fprintf(stderr, "%s:%d: %s == %s failed: \"%s\" vs \"%s\"\n", __FILE__, __LINE__, #a, \
-              #b, ta_ ? ta_ : "(null)", tb_ ? tb_ : "(null)");                             \
+    if (!ta_ || !tb_ || (strcmp(ta_, tb_) == 0) != (want_equal)) {                         \
+      fprintf(stderr, "%s:%d: %s %s %s failed: \"%s\" vs \"%s\"\n", __FILE__, __LINE__, #a, \
+              op, #b, ta_ ? ta_ : "(null)", tb_ ? tb_ : "(null)");                         \
       TEST_FAIL_();                                                                        \
     }                                                                                      \
   } while (0)
 
-#define CHECK_STR_NE(a, b)                                                                 \
-  do {                                                                                     \
-    const char *ta_ = (a), *tb_ = (b);                                                     \
-    if (!ta_ || !tb_ || strcmp(ta_, tb_) == 0) {                                           \
-      fprintf(stderr, "%s:%d: %s != %s failed: \"%s\" vs \"%s\"\n", __FILE__, __LINE__, #a, \
-              #b, ta_ ? ta_ : "(null)", tb_ ? tb_ : "(null)");                             \
-      TEST_FAIL_();                                                                        \
-    }                                                                                      \
-  } while (0)
+#define CHECK_STR_EQ(a, b) TEST_STR_(a, b, 1, "==")
+#define CHECK_STR_NE(a, b) TEST_STR_(a, b, 0, "!=")
 
 /* n bytes equal; prints the first byte that differs. */
 #define CHECK_MEM_EQ(a, b, n)                                                              \
