@@ -1,5 +1,5 @@
 /* A small test harness: checks print both sides and the place, a test file's
- * main() runs its cases and prints "N passed, M failed". */
+ * main() runs its cases and prints "N passed, M failed, K skipped". */
 #ifndef RC_TEST_H
 #define RC_TEST_H
 
