@@ -29,6 +29,8 @@ PACKAGES=(
   dataset-fashion-mnist libonnx-testdata
   # sanitizers and libFuzzer (libomp-dev: OpenMP for clang builds)
   clang libclang-rt-14-dev libomp-dev
+  # formatting (.clang-format)
+  clang-format
   # report tests
   chromium
 )

@@ -51,7 +51,7 @@ static void projected(const char *name, int boundary, rc_feat_view sv, int64_t c
   const float *gw = proj ? R("gw", ct * sv.c) : NULL, *gb = proj ? R("gb", ct) : NULL;
 #undef R
   if (!s || !t || (proj && (!w || !b))) return;
-  CHECK(rc_loss_hint_workspace_floats(&sv, &tv) <= WORK_FLOATS);
+  CHECK_LE(rc_loss_hint_workspace_floats(&sv, &tv), WORK_FLOATS);
   float *ggs = zeros(ns), *ggw = zeros(ct * sv.c), *ggb = zeros(ct);
   double loss = -1;
   rc_err e;
@@ -124,7 +124,7 @@ static void fsp_case(const char *name, int64_t n, int64_t c1, int64_t c2, int64_
               *t2 = ref(k[3], (long)(n * c2 * pt)), *l = ref(k[4], 1), *g1 = ref(k[5], n1),
               *g2 = ref(k[6], n2);
   if (!s1 || !s2 || !t1 || !t2) return;
-  CHECK(rc_loss_fsp_workspace_floats(&s1v, &s2v) <= WORK_FLOATS);
+  CHECK_LE(rc_loss_fsp_workspace_floats(&s1v, &s2v), WORK_FLOATS);
   float *a = zeros(n1), *b = zeros(n2);
   double loss;
   rc_err e;
@@ -149,7 +149,7 @@ static void rkd_matches_torch(void) {
   const float *dl = ref("rkd_dist_loss", 1), *dg = ref("rkd_dist_gs", N * DS);
   const float *al = ref("rkd_angle_loss", 1), *ag = ref("rkd_angle_gs", N * DS);
   if (!s || !t) return;
-  CHECK(rc_loss_rkd_workspace_floats(N) <= WORK_FLOATS);
+  CHECK_LE(rc_loss_rkd_workspace_floats(N), WORK_FLOATS);
   float g[N * DS] = {0};
   double loss;
   rc_err e;
@@ -205,7 +205,7 @@ static void fit_case(const char *name, rc_feat_view sv, int64_t ct) {
   const float *s = R("s", ns), *t = R("t", nt), *w = R("w", ct * sv.c), *b = R("b", ct);
 #undef R
   if (!s || !t || !w || !b) return;
-  CHECK(rc_feat_projector_fit_workspace_doubles(sv.c, ct) <= sizeof work_store / sizeof(double));
+  CHECK_LE(rc_feat_projector_fit_workspace_doubles(sv.c, ct), sizeof work_store / sizeof(double));
   float *gw = zeros(ct * sv.c), *gb = zeros(ct);
   int fitted = 0;
   rc_err e;

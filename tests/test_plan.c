@@ -179,7 +179,7 @@ static void reverse_pass_matches_finite_differences(void) {
   CHECK_INT(rc_plan_backward(p, &e), RC_OK);
   float *gw = rc_plan_grad(p, wv)->data;
   float *wd = b.g.values[wv].decl.data;
-  CHECK(rc_plan_grad(p, b.g.inputs[0]) == NULL); /* the input needs no gradient */
+  CHECK_NULL(rc_plan_grad(p, b.g.inputs[0])); /* the input needs no gradient */
   for (int i = 0; i < 24; i++) {
     double l[2];
     for (int s = 0; s < 2; s++) {
@@ -217,8 +217,8 @@ static void inference_plans_reuse_memory(void) {
   if (inf && tr) {
     size_t one = 16 * 1000 * sizeof(float);
     /* input + output + at most two live intermediates */
-    CHECK(rc_plan_bytes(inf) < 5 * one);
-    CHECK(rc_plan_bytes(tr) >= 9 * one);
+    CHECK_LT(rc_plan_bytes(inf), 5 * one);
+    CHECK_GE(rc_plan_bytes(tr), 9 * one);
     float *x = rc_plan_tensor(inf, b.g.inputs[0])->data;
     for (int i = 0; i < 16000; i++) x[i] = (float)(i % 7) - 3.0f;
     CHECK_INT(rc_plan_forward(inf, &e), RC_OK);
@@ -242,7 +242,7 @@ static void errors_name_what_is_wrong(void) {
   CHECK_INT(rc_plan_create(&p, &b.g, &wrong, NULL, &e), RC_ERR_SHAPE);
   CHECK_STR_CONTAINS(e.msg, "input 'x'");
   CHECK_STR_CONTAINS(e.msg, "handmade.onnx");
-  CHECK(p == NULL);
+  CHECK_NULL(p);
   rc__arena_free(&b.g.arena);
 
   /* A cycle: a = Relu(b), b = Relu(a). */
@@ -290,9 +290,9 @@ static void allocation_failures_end_cleanly(void) {
     }
     failures++;
     CHECK_INT(st, RC_ERR_NOMEM);
-    CHECK(p == NULL);
+    CHECK_NULL(p);
   }
-  CHECK(failures > 3);
+  CHECK_GT(failures, 3);
   rc__arena_free(&b.g.arena);
 }
 

@@ -106,10 +106,10 @@ static int run_case(const char *dir, const char *model, int opset, const char *v
 static void every_case_matches_pytorch(void) {
   int passed;
   int ran = ref_each_case(NULL, run_case, &passed);
-  CHECK(ran >= 0);
+  CHECK_GE(ran, 0);
   printf("%d of %d reference models match PyTorch (Debian python3-torch)\n", passed, ran);
   /* Eleven models x two opsets x two variants. */
-  CHECK(ran >= 44);
+  CHECK_GE(ran, 44);
 }
 
 int main(void) {

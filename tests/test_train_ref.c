@@ -163,7 +163,7 @@ static void masked_zeros_survive_torch_gradients(void) {
       CHECK_INT(bits, 0);
     }
     /* ...while the other weights did move. */
-    CHECK(w[1] != start[1]);
+    CHECK_NE(w[1], start[1]);
     rc_params_free(ps);
   }
 }

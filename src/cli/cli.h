@@ -6,6 +6,7 @@
 #include <stdio.h>
 
 #include "core/status.h"
+#include "recoup/log.h"
 
 /* Exit codes: success, failure, usage error. */
 enum { RC_EXIT_OK = 0, RC_EXIT_FAIL = 1, RC_EXIT_USAGE = 2 };
@@ -57,8 +58,10 @@ int cli_parse_float(const char *s, double *out);
 void cli_set_threads(int n);
 /* Thousands separators: 1234567 -> "1,234,567". */
 const char *cli_group_digits(long long v, char *buf, size_t n);
-/* Library log messages go to stderr with a prefix. */
-void cli_log_stderr(void *user, int level, const char *msg);
+/* An rc_logger sink: library messages to stderr with a prefix. `user` may
+ * point to an int that is non-zero while a progress line is open on a
+ * terminal (the line is cleared first). */
+void cli_log_stderr(void *user, rc_log_level level, const char *msg);
 /* Set by SIGINT/SIGTERM/SIGHUP once cli_catch_stop_signals ran: long work
  * checkpoints and stops. The one piece of state a signal handler may touch. */
 extern volatile sig_atomic_t cli_stop_requested;

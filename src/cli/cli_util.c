@@ -129,10 +129,11 @@ const char *cli_group_digits(long long v, char *buf, size_t n) {
   return buf;
 }
 
-void cli_log_stderr(void *user, int level, const char *msg) {
-  (void)user;
-  static const char *names[] = {"error", "warning", "info", "debug"};
-  fprintf(stderr, "recoup: %s: %s\n", names[level < 0 ? 0 : level > 3 ? 3 : level], msg);
+void cli_log_stderr(void *user, rc_log_level level, const char *msg) {
+  const int *tty = user;
+  const char *tag = level == RC_LOG_ERROR ? "error: " : level == RC_LOG_WARN ? "warning: " : "";
+  char nb[1024];
+  fprintf(stderr, "%srecoup: %s%s\n", tty && *tty ? "\r\033[K" : "", tag, cli_esc(msg, nb, sizeof nb));
 }
 
 int cli_isatty_stderr(void) { return isatty(STDERR_FILENO); }

@@ -486,11 +486,6 @@ static void on_progress(void *user, const rc_distill_progress *p) {
   progress_state *ps = user;
   char eta[32], loss[32], kl[32];
   rc__fmt_sig(loss, sizeof loss, p->loss, RC_FMT_SIG, 0);
-  if (p->event == RC_DISTILL_NOTE) {
-    char nb[1024];
-    fprintf(stderr, "%srecoup: %s\n", ps->tty ? "\r\033[K" : "", cli_esc(p->note, nb, sizeof nb));
-    return;
-  }
   if (p->event == RC_DISTILL_EPOCH) {
     if (ps->tty) fprintf(stderr, "\r\033[K");
     fprintf(stderr, "epoch %lld/%lld  loss %s", (long long)p->epoch, (long long)p->epochs, loss);
@@ -766,6 +761,7 @@ int rc_cmd_distill(int argc, char **argv) {
   progress_state ps = {cli_isatty_stderr(), -1e9, a.json};
   a.cfg.progress = on_progress;
   a.cfg.user = &ps;
+  a.cfg.log = (rc_logger){cli_log_stderr, &ps.tty, RC_LOG_INFO};
   a.cfg.stop = &cli_stop_requested;
   cli_catch_stop_signals();
   if (rc_distill_run(&r, teacher, student, &d, &a.cfg, &e) != RC_OK) goto out;

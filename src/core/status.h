@@ -15,7 +15,6 @@
 rc_status rc__fail(rc_err *e, rc_status code, const char *fmt, ...) RC_PRINTF(3, 4);
 /* Prefix the message already in e with context ("file.onnx: node 'x'"). */
 rc_status rc__wrap(rc_err *e, const char *fmt, ...) RC_PRINTF(2, 3);
-void rc__err_clear(rc_err *e);
 
 #define RC_TRY(expr)                 \
   do {                               \

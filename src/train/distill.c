@@ -10,6 +10,7 @@
 
 #include "core/alloc.h"
 #include "core/file.h"
+#include "core/log.h"
 #include "plan/inspect.h"
 #include "plan/load.h"
 #include "plan/plan.h"
@@ -686,12 +687,7 @@ static rc_status train_step(loop_ctx *lc, const loop_state *ls, step_buffers *sb
       if (!st->projectors_started && rc_params_steps(st->ps) == 0) {
         int fitted;
         RC_TRY(rc__features_fit_projectors(st->feat, st->teacher_step, st->train_plan, st->ps, &fitted, e));
-        if (fitted) {
-          rc_distill_progress note = {0};
-          note.event = RC_DISTILL_NOTE;
-          note.note = "projectors started from a least-squares fit on the first batch";
-          notify(st->c, &note);
-        }
+        if (fitted) rc__log(&st->c->log, RC_LOG_INFO, "projectors started from a least-squares fit on the first batch");
       }
       st->projectors_started = 1;
     }
@@ -781,18 +777,12 @@ static rc_status train_loop(run_state *st, rc_distill_result *r, const rc_distil
   lc.fingerprint = run_fingerprint(&lc);
   if (c->resume_path) {
     if ((s = checkpoint_read(&lc, &ls, e)) != RC_OK) goto out;
-    rc_distill_progress note = {0};
-    note.event = RC_DISTILL_NOTE;
-    note.note = "resumed from the checkpoint";
-    notify(c, &note);
+    rc__log(&c->log, RC_LOG_INFO, "resumed from the checkpoint");
   } else if (c->bn == RC_BN_RECALIBRATE) {
     /* Done here, not on resume: the re-estimated statistics are in the store. */
     if ((s = recalibrate_bn(st, e)) != RC_OK) goto out;
     if ((s = rc_params_save(st->ps, lc.good_slot, e)) != RC_OK) goto out;
-    rc_distill_progress note = {0};
-    note.event = RC_DISTILL_NOTE;
-    note.note = "BatchNormalization running statistics re-estimated over the training samples";
-    notify(c, &note);
+    rc__log(&c->log, RC_LOG_INFO, "BatchNormalization running statistics re-estimated over the training samples");
   }
   double t0 = now_s();
   int64_t start_step = ls.step, snap_every = lc.spe / 4 > 0 ? lc.spe / 4 : 1;
@@ -811,9 +801,8 @@ static rc_status train_loop(run_state *st, rc_distill_result *r, const rc_distil
       ls.rollbacks++;
       if ((s = rc_params_restore(st->ps, lc.good_slot, e)) != RC_OK) goto out;
       ls.lr_scale *= 0.5;
-      pg.event = RC_DISTILL_NOTE;
-      pg.note = "non-finite loss or gradient: rolled back to the last good state, learning rate halved";
-      notify(c, &pg);
+      rc__log(&c->log, RC_LOG_WARN,
+              "non-finite loss or gradient: rolled back to the last good state, learning rate halved");
       if (ls.rollbacks > c->max_rollbacks) ls.stopped = 1;
     } else {
       ls.ep_loss += loss;

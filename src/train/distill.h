@@ -1,7 +1,9 @@
 /* Distillation of a compressed student from its dense teacher on CPU.
  *
  * The teacher runs forward only; its logits over every sample are computed
- * once (no augmentation, so they never change) and reused every epoch. The
+ * once (no augmentation, so they never change) and reused every epoch. Terms
+ * on inner tensors (hint, attention, ...) also run the teacher forward on
+ * each batch: its inner activations are not cached. The
  * student trains through its plan's reverse pass; its trainable initializers
  * live in one flat parameter store that the plan reads and writes in place.
  * Pruning masks hold exactly, the best state by validation is kept, and on
@@ -14,6 +16,7 @@
 
 #include "core/status.h"
 #include "plan/mask_rule.h"
+#include "recoup/log.h"
 #include "onnx/model.h"
 #include "train/evaluate.h"
 #include "train/features.h"
@@ -34,7 +37,7 @@ typedef struct rc_distill_data {
   double val_split;
 } rc_distill_data;
 
-typedef enum rc_distill_event { RC_DISTILL_STEP = 0, RC_DISTILL_EPOCH = 1, RC_DISTILL_NOTE = 2 } rc_distill_event;
+typedef enum rc_distill_event { RC_DISTILL_STEP = 0, RC_DISTILL_EPOCH = 1 } rc_distill_event;
 
 typedef struct rc_distill_progress {
   rc_distill_event event;
@@ -46,7 +49,6 @@ typedef struct rc_distill_progress {
   double elapsed_s, eta_s;
   rc_metrics val;            /* RC_DISTILL_EPOCH: validation of this epoch */
   int is_best;
-  const char *note;          /* RC_DISTILL_NOTE */
 } rc_distill_progress;
 
 typedef struct rc_distill_config {
@@ -64,7 +66,7 @@ typedef struct rc_distill_config {
   double clip;               /* max gradient norm, <= 0 = off */
   uint64_t seed;
   rc_bn_mode bn;
-  rc_mask_mode mask;          /* what zeros in weights mean (graph/mask_rule.h) */
+  rc_mask_mode mask;          /* what zeros in weights mean (plan/mask_rule.h) */
   const char *const *train_globs;
   int n_train;
   const char *const *freeze_globs;
@@ -72,6 +74,9 @@ typedef struct rc_distill_config {
   int max_rollbacks;         /* non-finite steps rolled back before stopping */
   void (*progress)(void *user, const rc_distill_progress *p);
   void *user;
+  /* Notes along the run (resumed, statistics re-estimated, projectors fitted,
+   * steps rolled back); a zeroed logger discards them. */
+  rc_logger log;
   /* Checkpoints: written atomically every checkpoint_every steps (0: only at
    * epoch ends) and when *stop becomes non-zero (a signal handler sets it);
    * the previous one is kept as PATH.1. NULL: no checkpoints. */

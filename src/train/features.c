@@ -14,8 +14,6 @@ static const char *const term_names[RC_TERM_COUNT] = {
 static const float term_defaults[RC_TERM_COUNT] = {1, 1, 1, RC_AT_DEFAULT_BETA, 1, 1, RC_RKD_DEFAULT_DISTANCE_WEIGHT,
                                                    RC_RKD_DEFAULT_ANGLE_WEIGHT, 1, 1e-3f};
 
-const char *rc_term_name(rc_term t) { return t >= 0 && t < RC_TERM_COUNT ? term_names[t] : "?"; }
-
 rc_status rc_loss_spec_parse(rc_loss_spec *spec, const char *text, rc_err *e) {
   memset(spec, 0, sizeof *spec);
   const char *p = text;
@@ -80,8 +78,6 @@ struct rc_features {
   float *work;
   size_t work_floats;
 };
-
-int rc__features_pairs(const rc_features *f) { return f->pairing.n; }
 
 static int uses_pairs(const rc_loss_spec *s) {
   return s->weight[RC_TERM_HINT] > 0 || s->weight[RC_TERM_ATTENTION] > 0 || s->weight[RC_TERM_BOUNDARY] > 0 ||

@@ -39,7 +39,6 @@ typedef struct rc_loss_spec {
   float weight[RC_TERM_COUNT]; /* 0 = term off */
 } rc_loss_spec;
 
-const char *rc_term_name(rc_term t);
 /* "kd=1,hint=0.5,attention" (a term without "=w" takes its default weight).
  * Unknown terms and bad weights are refused, naming them. */
 rc_status rc_loss_spec_parse(rc_loss_spec *spec, const char *text, rc_err *e);
@@ -70,7 +69,6 @@ rc_status rc__features_fit_projectors(rc_features *f, rc_plan *teacher, rc_plan 
  * the batch's cached teacher logits (N, K) for the relational terms. */
 rc_status rc__features_step(rc_features *f, rc_plan *teacher, rc_plan *student, rc_params *ps,
                             const float *teacher_logits, double *loss, rc_err *e);
-int rc__features_pairs(const rc_features *f);
 void rc__features_free(rc_features *f);
 
 #endif
