@@ -242,3 +242,49 @@ void cli_outputs_metrics_json(cJSON *o, const rc_metrics *m) {
   number_or_null(o, "miou_labels", m->miou_labels);
   number_or_null(o, "value_mad", m->value_mad);
 }
+
+/* The default terms of eval: kd over axis 1 of every float output of rank >= 3. */
+static rc_status default_specs(cli_outputs *o, rc_plan *p, const rc_graph *g, rc_err *e) {
+  for (int j = 0; j < g->n_outputs && o->n < RC_OUTPUTS_MAX; j++) {
+    const rc_tensor *t = rc_plan_tensor(p, g->outputs[j]);
+    if (t->dtype != RC_DTYPE_FLOAT || t->rank < 3) continue;
+    char spec[200];
+    snprintf(spec, sizeof spec, "%s=kd:axis=1", g->values[g->outputs[j]].name);
+    if (strlen(g->values[g->outputs[j]].name) > 120) continue;
+    RC_TRY(rc_output_loss_parse(&o->specs[o->n], spec, e));
+    o->n++;
+  }
+  if (!o->n)
+    return rc__fail(e, RC_ERR_INVALID, "%s: no float output of rank 3 or more; name outputs with --output-loss", g->path);
+  return RC_OK;
+}
+
+rc_status cli_outputs_eval(rc_metrics *m, cli_outputs *o, rc_model *model, rc_model *ref,
+                           const cli_samples *s, int64_t batch, const char *labels_path, rc_err *e) {
+  const rc_graph *g = &model->graph;
+  rc_tensor shapes[CLI_MAX_DATA];
+  cli_samples_shapes(s, batch, shapes);
+  rc_plan *pm = NULL, *pr = NULL;
+  rc_outputs *bound = NULL;
+  rc_dataset d;
+  memset(&d, 0, sizeof d);
+  rc_output_side side, val_side;
+  rc_status st = rc_plan_create(&pm, g, shapes, NULL, e);
+  if (st == RC_OK && ref) st = rc_plan_create(&pr, &ref->graph, shapes, NULL, e);
+  if (st == RC_OK && !o->n) st = default_specs(o, pm, g, e);
+  /* eval has no targets: bounded-l2 is a training term; its output is measured as values. */
+  for (int i = 0; i < o->n && st == RC_OK; i++)
+    if (rc_out_term_needs_targets(o->specs[i].term)) o->specs[i].term = RC_OUT_MSE;
+  if (st == RC_OK) st = cli_outputs_load(o, g, s, labels_path, NULL, NULL, &side, &val_side, e);
+  if (st == RC_OK)
+    st = rc__outputs_create(&bound, o->specs, o->n, 1.0f, pr ? pr : pm, pm, o->label_output[0] ? o->label_output : NULL,
+                            e);
+  if (st == RC_OK) st = cli_samples_dataset(&d, s, NULL, 0, e);
+  if (st == RC_OK) st = rc__outputs_validate(bound, pr ? pr : pm, pm, &d, &side, d.index, m, e);
+  if (st == RC_OK && !ref) m->has_ref = 0;
+  rc_dataset_free(&d);
+  rc__outputs_free(bound);
+  rc_plan_free(pm);
+  rc_plan_free(pr);
+  return st;
+}

@@ -5,6 +5,7 @@
 #define RC_CLI_OUTPUTS_H
 
 #include "cli/cli_data.h"
+#include "onnx/model.h"
 #include "train/outputs.h"
 
 /* Segmentation datasets commonly mark unlabelled pixels with 255. */
@@ -48,4 +49,12 @@ void cli_outputs_table_header(void);
 void cli_outputs_table_row(const char *name, const rc_metrics *m);
 void cli_outputs_metrics_json(struct cJSON *o, const rc_metrics *m);
 
+/* eval with per-output figures: `model` against `ref` (NULL: against
+ * itself, for label figures alone) over every sample of s. Outputs without a
+ * term in o get the default: kd over axis 1 for float outputs of rank 3 and
+ * more (class maps); value outputs are named with a regression term, e.g.
+ * --output-loss boxes=smooth-l1. labels_path: dense labels, or NULL. */
+
+rc_status cli_outputs_eval(rc_metrics *m, cli_outputs *o, rc_model *model, rc_model *ref,
+                           const cli_samples *s, int64_t batch, const char *labels_path, rc_err *e);
 #endif

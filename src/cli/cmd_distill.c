@@ -525,7 +525,7 @@ static void on_progress(void *user, const rc_distill_progress *p) {
     if (ps->tty) fprintf(stderr, "\r\033[K");
     fprintf(stderr, "epoch %lld/%lld  loss %s", (long long)p->epoch, (long long)p->epochs, loss);
     if (p->val.has_labels) fprintf(stderr, "  val accuracy %.2f%%", 100 * p->val.top1);
-    fprintf(stderr, "  agreement %.2f%%  KL %s%s\n", 100 * p->val.agreement,
+    fprintf(stderr, "  agreement %.2f%%  %s %s%s\n", 100 * p->val.agreement, p->val.outputs ? "output loss" : "KL",
             rc__fmt_sig(kl, sizeof kl, p->val.kl, RC_FMT_SIG, 0), p->is_best ? "  (best so far)" : "");
     return;
   }
@@ -727,6 +727,7 @@ static void print_results(const distill_args *a, const rc_distill_result *r, dou
     printf("grids: %d quantized weights rewritten on their unchanged grids (scales, zero points, dtypes, axes)\n",
            r->n_grids);
   printf("best state: lowest validation %s; agreement%s reported beside it\n",
+         r->after.outputs ? "output loss (the --output-loss terms; with labels, alpha of it + (1-alpha) cross-entropy)" :
          strcmp(rc__select_rule_name(&r->before, r->select_alpha), "kl") ? "alpha*KL + (1-alpha)*cross-entropy"
                                                                         : "KL to dense",
          r->after.has_labels ? " and accuracy" : "");
