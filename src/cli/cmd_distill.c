@@ -15,6 +15,7 @@
 #include "cli/cli.h"
 #include "cli/cli_data.h"
 #include "cli/cli_outputs.h"
+#include "cli/cli_synth.h"
 #include "cli/report.h"
 #include "core/fmt.h"
 #include "onnx/model.h"
@@ -36,6 +37,8 @@ static void usage(FILE *f) {
       "\n"
       "Data:\n"
       "  --data FILE|NAME=FILE    training samples (.npy, .npz, IDX, .gz, .pb); repeatable\n"
+      "  --data synth:N           N inputs synthesised from the teacher alone (see recoup\n"
+      "                           synthesize; its defaults, seeded by --seed)\n"
       "  --labels FILE            class labels of --data (optional); with --output-loss,\n"
       "                           per-position labels of the first kd output\n"
       "  --val-data FILE|NAME=FILE  validation samples (default: hold out --val-split)\n"
@@ -751,6 +754,24 @@ static void remove_checkpoints(const char *path) {
 
 /* ---- The command ------------------------------------------------------------- */
 
+/* --data synth:N: N inputs made from the teacher (train/synthesize.h), seeded by --seed. */
+static rc_status synth_samples(cli_samples *s, const distill_args *a, rc_model *teacher, rc_err *e) {
+  if (a->data.n_data != 1 || a->data.labels)
+    return rc__fail(e, RC_ERR_INVALID, "--data synth:N stands alone: no other --data, no --labels");
+  rc_synth_config c;
+  rc_synth_defaults(&c);
+  c.count = cli_synth_count(a->data.data[0]);
+  c.seed = a->cfg.seed;
+  cli_synth_progress_state ps = {cli_isatty_stderr(), -1};
+  c.progress = cli_synth_progress;
+  c.user = &ps;
+  rc_synth_stats stats;
+  RC_TRY(cli_synth_make(&s->inputs[0], &stats, teacher, &c, e));
+  s->n_inputs = 1;
+  s->n = c.count;
+  return RC_OK;
+}
+
 static rc_status load_val(cli_samples *val, const distill_args *a, const rc_graph *g, rc_err *e) {
   cli_data_opts vo = a->data;
   memcpy(vo.data, a->val_data, sizeof vo.data);
@@ -778,7 +799,13 @@ int rc_cmd_distill(int argc, char **argv) {
   if (rc_model_load(&teacher, a.teacher, NULL, &e) != RC_OK || rc_model_load(&student, a.student, NULL, &e) != RC_OK)
     goto out;
   if (rc_distill_check_pair(&teacher->graph, &student->graph, &e) != RC_OK) goto out;
-  if (cli_samples_load(&train, &a.data, &student->graph, &e) != RC_OK) goto out;
+  if (cli_synth_count(a.data.data[0]) < 0) {
+    rc__fail(&e, RC_ERR_INVALID, "--data %s: expected synth:N with N > 0", a.data.data[0]);
+    goto out;
+  }
+  if (cli_synth_count(a.data.data[0]) > 0 ? synth_samples(&train, &a, teacher, &e) != RC_OK
+                                           : cli_samples_load(&train, &a.data, &student->graph, &e) != RC_OK)
+    goto out;
   if (a.n_val_data && load_val(&val, &a, &student->graph, &e) != RC_OK) goto out;
   rc_output_side side, val_side;
   memset(&side, 0, sizeof side);
