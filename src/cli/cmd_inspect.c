@@ -167,6 +167,29 @@ static void print_io(const char *title, const rc_graph *g, const int *vals, int 
   }
 }
 
+/* Outputs; where the file declares no type or shape, the one recoup's shape
+ * inference computes at batch 1, with the batch axis shown as N. */
+static void print_outputs(const rc_graph *g) {
+  rc_plan *p = NULL;
+  rc_err e = {0};
+  for (int i = 0; i < g->n_outputs; i++) {
+    const rc_value *v = &g->values[g->outputs[i]];
+    if ((v->decl.rank >= 0 && v->decl.dtype != RC_DTYPE_UNDEFINED) ||
+        (!p && rc__plan_batch1(&p, g, &e) != RC_OK)) {
+      print_io(i ? "" : "outputs", g, g->outputs + i, 1);
+      continue;
+    }
+    rc_tensor t = *rc_plan_tensor(p, g->outputs[i]);
+    char buf[160];
+    t.dims[0] = -1;
+    dim_str(&t, buf, sizeof buf);
+    if (buf[1] == '?') buf[1] = 'N';
+    printf("%-11s %-20s %-8s %s  (not in the file: computed by recoup)\n", i ? "" : "outputs", v->name,
+           rc_dtype_name(t.dtype), buf);
+  }
+  rc_plan_free(p);
+}
+
 static void print_tables(const rc_model *m, const op_count *ops, int n_ops, const rc_weight_info *w,
                          int n_w, const rc_grid_info *gr, int n_gr, int64_t macs, const char *macs_why) {
   const rc_graph *g = &m->graph;
@@ -174,7 +197,7 @@ static void print_tables(const rc_model *m, const op_count *ops, int n_ops, cons
   printf("model       %s (%s bytes)\n", m->path, cli_group_digits((long long)m->file_bytes, b1, sizeof b1));
   printf("format      ONNX IR version %lld, default-domain opset %d\n", (long long)g->ir_version, g->opset);
   print_io("inputs", g, g->inputs, g->n_inputs);
-  print_io("outputs", g, g->outputs, g->n_outputs);
+  print_outputs(g);
   printf("nodes       %d:", g->n_nodes);
   for (int i = 0; i < n_ops; i++) printf("%s %s %d", i ? "," : "", ops[i].op, ops[i].n);
   printf("\nparameters  %s\n", cli_group_digits(rc__graph_params(g), b1, sizeof b1));
