@@ -23,22 +23,11 @@ Shapes and axes are odd on purpose (class axis in the middle or last).
 import os
 import sys
 
-import numpy as np
 import torch
 import torch.nn.functional as F
 
-arrays = []
-
-
-def put(name, tensor):
-    arr = np.ascontiguousarray(
-        tensor.detach().cpu().numpy() if torch.is_tensor(tensor) else np.asarray(tensor),
-        dtype="<f4").reshape(-1)
-    arrays.append((name, arr))
-
-
-def rand(gen, *shape, scale=1.0):
-    return (torch.randn(*shape, generator=gen) * scale).float().double()
+# The array writer and float32 draws of the feature-term references (same folder).
+from ref_feature_loss import arrays, put, rand
 
 
 def kd(s, t, axis, T, w=None):

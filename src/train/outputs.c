@@ -165,6 +165,16 @@ static void rows_dims(int64_t *dims, const rc_tensor *t, int64_t count) {
   dims[0] = count;
 }
 
+/* The student's gradient buffer of b's output when a gradient is wanted (scale > 0). */
+static rc_status output_grad(float **grad, rc_plan *student, const bound *b, float scale, rc_err *e) {
+  *grad = NULL;
+  if (!(scale > 0)) return RC_OK;
+  rc_tensor *g = rc_plan_grad(student, b->sv);
+  if (!g) return rc__fail(e, RC_ERR_INVALID, "no trainable tensor reaches output '%s'", b->spec.output);
+  *grad = g->data;
+  return RC_OK;
+}
+
 /* Weighted terms of the batch's first `count` rows; grad_scale 0: no gradient. */
 static rc_status batch_terms(rc_outputs *o, rc_plan *teacher, rc_plan *student, int64_t count, float scale,
                              double *sum, rc_err *e) {
@@ -174,11 +184,7 @@ static rc_status batch_terms(rc_outputs *o, rc_plan *teacher, rc_plan *student, 
     if (!(b->spec.weight > 0)) continue;
     const rc_tensor *s = rc_plan_tensor(student, b->sv), *t = rc_plan_tensor(teacher, b->tv);
     float *grad = NULL;
-    if (scale > 0) {
-      rc_tensor *g = rc_plan_grad(student, b->sv);
-      if (!g) return rc__fail(e, RC_ERR_INVALID, "no trainable tensor reaches output '%s'", b->spec.output);
-      grad = g->data;
-    }
+    RC_TRY(output_grad(&grad, student, b, scale, e));
     int64_t dims[RC_MAX_RANK];
     rows_dims(dims, s, count);
     double v = 0;
@@ -194,11 +200,7 @@ static rc_status label_ce(rc_outputs *o, rc_plan *student, int64_t count, float 
   const bound *b = &o->b[o->label_spec];
   const rc_tensor *s = rc_plan_tensor(student, b->sv);
   float *grad = NULL;
-  if (scale > 0) {
-    rc_tensor *g = rc_plan_grad(student, b->sv);
-    if (!g) return rc__fail(e, RC_ERR_INVALID, "no trainable tensor reaches output '%s'", b->spec.output);
-    grad = g->data;
-  }
+  RC_TRY(output_grad(&grad, student, b, scale, e));
   int64_t dims[RC_MAX_RANK];
   rows_dims(dims, s, count);
   rc_status st = rc_output_ce(ce, counted, grad, scale, dims, s->rank, b->spec.axis, s->data, o->labels, ignore, e);
