@@ -176,6 +176,27 @@ def segmentation(images, labels):
               f"max |recoup - onnxruntime-web| = {diff:.3g} over {mine.size} values")
 
 
+def refusals():
+    """Bad input: one clear error each (exit status 1 or 2, one line naming the culprit)."""
+    import subprocess
+    teacher, student = os.path.join(WORK, "det.onnx"), os.path.join(WORK, "det_pruned.onnx")
+    data = os.path.join(WORK, "det_scenes.npy")
+    wrong = os.path.join(WORK, "wrong_targets.npy")
+    np.save(wrong, np.zeros((1600, 4, 7, 8), np.float32))
+    base = ["distill", "--teacher", teacher, "--student", student, "--data", data, "--steps", "1",
+            "--out", os.path.join(WORK, "never.onnx")]
+    cases = (("an output that does not exist", ["--output-loss", "nope=kd"], "'nope'"),
+             ("an axis out of range", ["--output-loss", "scores=kd:axis=4"], "axis 4"),
+             ("targets of the wrong shape", ["--output-loss", "boxes=bounded-l2:axis=1", "--targets",
+                                             "boxes=" + wrong], "(1600, 4, 8, 8)"),
+             ("bounded-l2 without targets", ["--output-loss", "boxes=bounded-l2"], "--targets"))
+    for what, extra, needle in cases:
+        r = subprocess.run([RECOUP] + base + extra, capture_output=True, text=True)
+        one = r.stderr.strip().count("\n") == 0
+        run.check(f"refused: {what}", r.returncode in (1, 2) and needle in r.stderr and one
+                  and not os.path.exists(os.path.join(WORK, "never.onnx")), r.stderr.strip())
+
+
 def box_error(boxes, truth):
     on = ~np.isnan(truth)
     return float(np.abs(boxes[on] - truth[on]).mean())
@@ -229,6 +250,7 @@ def main():
     torch.set_num_threads(2)
     segmentation(images, labels)
     detection(images, labels)
+    refusals()
     run.finish()
 
 
