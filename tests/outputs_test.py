@@ -139,11 +139,11 @@ def miou(pred, truth, k=4):
 
 
 def segmentation(images, labels):
-    x, mask, _, _ = compose(images, labels, 1600, 1)
+    x, mask, _, _ = compose(images, labels, 1200, 1)
     vx, vmask, _, _ = compose(images, labels, 300, 2)
     model = SegNet()
     mt = torch.from_numpy(mask)
-    train(model, lambda out, idx: F.cross_entropy(out, mt[idx]), x, 4, 1)
+    train(model, lambda out, idx: F.cross_entropy(out, mt[idx]), x, 3, 1)
     teacher, student, out = (os.path.join(WORK, f) for f in ("seg.onnx", "seg_pruned.onnx", "seg_recovered.onnx"))
     export(model, teacher, ["out"])
     for name, arr in (("scenes", x), ("val_scenes", vx), ("masks", mask.astype(np.uint8)),
@@ -182,13 +182,13 @@ def refusals():
     teacher, student = os.path.join(WORK, "det.onnx"), os.path.join(WORK, "det_pruned.onnx")
     data = os.path.join(WORK, "det_scenes.npy")
     wrong = os.path.join(WORK, "wrong_targets.npy")
-    np.save(wrong, np.zeros((1600, 4, 7, 8), np.float32))
+    np.save(wrong, np.zeros((1200, 4, 7, 8), np.float32))
     base = ["distill", "--teacher", teacher, "--student", student, "--data", data, "--steps", "1",
             "--out", os.path.join(WORK, "never.onnx")]
     cases = (("an output that does not exist", ["--output-loss", "nope=kd"], "'nope'"),
              ("an axis out of range", ["--output-loss", "scores=kd:axis=4"], "axis 4"),
              ("targets of the wrong shape", ["--output-loss", "boxes=bounded-l2:axis=1", "--targets",
-                                             "boxes=" + wrong], "(1600, 4, 8, 8)"),
+                                             "boxes=" + wrong], "(1200, 4, 8, 8)"),
              ("bounded-l2 without targets", ["--output-loss", "boxes=bounded-l2"], "--targets"))
     for what, extra, needle in cases:
         r = subprocess.run([RECOUP] + base + extra, capture_output=True, text=True)
@@ -203,7 +203,7 @@ def box_error(boxes, truth):
 
 
 def detection(images, labels):
-    x, _, cls, box = compose(images, labels, 1600, 3)
+    x, _, cls, box = compose(images, labels, 1200, 3)
     vx, _, vcls, vbox = compose(images, labels, 300, 4)
     model = DetNet()
     ct, bt = torch.from_numpy(cls), torch.from_numpy(box)
@@ -213,7 +213,7 @@ def detection(images, labels):
         t = bt[idx]
         on = ~torch.isnan(t)
         return F.cross_entropy(s, ct[idx]) + F.smooth_l1_loss(b[on], t[on])
-    train(model, loss, x, 4, 2)
+    train(model, loss, x, 3, 2)
     teacher, student, out = (os.path.join(WORK, f) for f in ("det.onnx", "det_pruned.onnx", "det_recovered.onnx"))
     export(model, teacher, ["scores", "boxes"])
     for name, arr in (("det_scenes", x), ("det_val_scenes", vx), ("det_boxes", box), ("det_val_boxes", vbox)):
