@@ -628,6 +628,20 @@ static uint64_t fnv1a(uint64_t h, const void *p, size_t n) {
   return h;
 }
 
+/* Per-output runs cache no teacher outputs, so the teacher's initializers,
+ * the data and the terms stand for them in the fingerprint. */
+static uint64_t outputs_fingerprint(const run_state *st, uint64_t h) {
+  const rc_distill_config *c = st->c;
+  const rc_graph *tg = &st->teacher->graph;
+  h = fnv1a(h, c->output_losses, sizeof *c->output_losses * (size_t)c->n_output_losses);
+  for (int v = 0; v < tg->n_values; v++)
+    if (tg->values[v].kind == RC_VALUE_INITIALIZER && tg->values[v].decl.data)
+      h = fnv1a(h, tg->values[v].decl.data, rc_tensor_nbytes(&tg->values[v].decl));
+  for (int i = 0; i < st->train.n_inputs; i++)
+    h = fnv1a(h, st->train.inputs[i].data, rc_tensor_nbytes(&st->train.inputs[i]));
+  return h;
+}
+
 /* Identifies a run: the student's starting values, the teacher's logits over
  * the data (which cover teacher, data and normalisation), and every setting
  * that shapes the trajectory. A checkpoint from another run is refused. */
@@ -645,7 +659,7 @@ static uint64_t run_fingerprint(const loop_ctx *lc) {
                     c->optim.beta1, c->optim.beta2, c->optim.eps, lc->sched.lr_min, lc->sched.gamma, c->clip};
   h = fnv1a(h, ints, sizeof ints);
   h = fnv1a(h, c->terms.weight, sizeof c->terms.weight);
-  if (c->n_output_losses) h = fnv1a(h, c->output_losses, sizeof *c->output_losses * (size_t)c->n_output_losses);
+  if (st->outs) h = outputs_fingerprint(st, h);
   return fnv1a(h, reals, sizeof reals);
 }
 
