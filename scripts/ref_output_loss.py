@@ -18,6 +18,11 @@ differentiated by autograd:
   edge-kd     Zheng et al. 2022 (localization distillation): KL per box edge
               over its discrete bins, T^2, summed over edges
   ce          F.cross_entropy with ignore_index (dense labels)
+  bnstat      synthesis' statistics term (ZeroQ, Cai et al. 2020; DeepInversion,
+              Yin et al. 2020): ||mean(x) - m||_2 + ||var(x) - v||_2 per
+              channel, biased variance
+  prior       synthesis' priors: w_tv * mean squared neighbour difference +
+              w_l2 * mean x^2
 Shapes and axes are odd on purpose (class axis in the middle or last).
 """
 import os
@@ -119,6 +124,25 @@ def main():
     put("ce_labels", lab.double())
     put("ce_loss", loss.reshape(1))
     put("ce_g", sl.grad)
+    # Synthesis terms on (3, 4, 5, 6): channel statistics against stored ones.
+    x = rand(gen, 3, 4, 5, 6, scale=1.5)
+    rm, rv = rand(gen, 4), rand(gen, 4).abs() + 0.5
+    xl = x.clone().requires_grad_(True)
+    mu, var = xl.mean(dim=(0, 2, 3)), xl.var(dim=(0, 2, 3), unbiased=False)
+    loss = torch.linalg.norm(mu - rm) + torch.linalg.norm(var - rv)
+    loss.backward()
+    put("bnstat_x", x)
+    put("bnstat_m", rm)
+    put("bnstat_v", rv)
+    put("bnstat_loss", loss.reshape(1))
+    put("bnstat_g", xl.grad)
+    xl = x.clone().requires_grad_(True)
+    dx, dy = xl[..., 1:] - xl[..., :-1], xl[..., 1:, :] - xl[..., :-1, :]
+    tv = (dx.pow(2).sum() + dy.pow(2).sum()) / (dx.numel() + dy.numel())
+    loss = 0.05 * tv + 0.001 * xl.pow(2).mean()
+    loss.backward()
+    put("prior_loss", loss.reshape(1))
+    put("prior_g", xl.grad)
     for name, arr in arrays:
         arr.tofile(os.path.join(out, name + ".f32"))
     with open(os.path.join(out, "index.txt"), "w") as f:

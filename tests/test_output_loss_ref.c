@@ -8,6 +8,7 @@
 #include <stdint.h>
 
 #include "train/output_loss.h"
+#include "train/synthesize.h"
 #include "test.h"
 #include "ref_arrays.h"
 
@@ -94,6 +95,25 @@ static void dense_ce_matches_torch(void) {
   check_grad("ce", g, gw, 120);
 }
 
+/* The synthesis objective's terms (train/synthesize.h). */
+static void synthesis_terms_match_torch(void) {
+  int64_t d[] = {3, 4, 5, 6};
+  const float *x = ref("bnstat_x", 360), *m = ref("bnstat_m", 4), *v = ref("bnstat_v", 4);
+  const float *want = ref("bnstat_loss", 1), *gw = ref("bnstat_g", 360);
+  const float *pwant = ref("prior_loss", 1), *pgw = ref("prior_g", 360);
+  if (!x || !m || !v || !want || !gw || !pwant || !pgw) return;
+  float g[360] = {0}, pg[360] = {0};
+  double acc[8];
+  double loss = rc_synth_bn_term(g, x, d, 4, m, v, 1e-5f, acc, NULL, NULL);
+  printf("%-12s %-40s recoup %.9g  PyTorch %.9g\n", "bnstat", "|mu - m| + |var - v|", loss, (double)want[0]);
+  CHECK_NEAR(loss, want[0], 1e-7, 1e-5);
+  check_grad("bnstat", g, gw, 360);
+  double prior = rc_synth_priors(pg, x, d, 4, 0.05f, 0.001f);
+  printf("%-12s %-40s recoup %.9g  PyTorch %.9g\n", "prior", "0.05 tv + 0.001 l2", prior, (double)pwant[0]);
+  CHECK_NEAR(prior, pwant[0], 1e-7, 1e-5);
+  check_grad("prior", pg, pgw, 360);
+}
+
 /* Refusals before any computing: each prints its message. */
 static void bad_specs_are_refused(void) {
   rc_output_loss o;
@@ -131,6 +151,7 @@ int main(void) {
   RUN(regression_matches_torch);
   RUN(edge_kd_matches_torch);
   RUN(dense_ce_matches_torch);
+  RUN(synthesis_terms_match_torch);
   RUN(bad_specs_are_refused);
   RUN(miou_by_hand);
   ref_free();

@@ -124,14 +124,11 @@ out:
   return st;
 }
 
-/* One layer's ||mu - m||_2 + ||var - r||_2 with its gradient added into the
- * input's gradient buffer (when g is not NULL); also the worst errors. */
-static double bn_term(synth *s, const bn_site *site, float *g, double *worst_mean, double *worst_var) {
-  const rc_tensor *t = rc_plan_tensor(s->p, site->x);
-  int64_t n = t->dims[0], c = t->rank > 1 ? t->dims[1] : 1, inner = 1;
-  for (int d = 2; d < t->rank; d++) inner *= t->dims[d];
-  double *mu = s->acc, *var = s->acc + s->max_c, cnt = (double)n * (double)inner;
-  const float *x = t->data;
+double rc_synth_bn_term(float *g, const float *x, const int64_t *dims, int rank, const float *mean,
+                        const float *var_run, float eps, double *acc, double *worst_mean, double *worst_var) {
+  int64_t n = dims[0], c = rank > 1 ? dims[1] : 1, inner = 1;
+  for (int d = 2; d < rank; d++) inner *= dims[d];
+  double *mu = acc, *var = acc + c, cnt = (double)n * (double)inner;
   for (int64_t ch = 0; ch < c; ch++) {
     double sum = 0, sq = 0;
     for (int64_t i = 0; i < n; i++)
@@ -146,20 +143,20 @@ static double bn_term(synth *s, const bn_site *site, float *g, double *worst_mea
   }
   double dm = 0, dv = 0;
   for (int64_t ch = 0; ch < c; ch++) {
-    double a = mu[ch] - site->mean[ch], b = var[ch] - site->var[ch];
+    double a = mu[ch] - mean[ch], b = var[ch] - var_run[ch];
     dm += a * a;
     dv += b * b;
-    double sd = sqrt((double)site->var[ch] + site->eps);
+    double sd = sqrt((double)var_run[ch] + eps), rel = fabs(b) / (var_run[ch] + eps);
     if (worst_mean && fabs(a) / sd > *worst_mean) *worst_mean = fabs(a) / sd;
-    if (worst_var && fabs(b) / (site->var[ch] + site->eps) > *worst_var) *worst_var = fabs(b) / (site->var[ch] + site->eps);
+    if (worst_var && rel > *worst_var) *worst_var = rel;
   }
   dm = sqrt(dm);
   dv = sqrt(dv);
   if (g)
     for (int64_t ch = 0; ch < c; ch++) {
       /* d||a||/d mu_c = a_c / ||a||; d mu_c / dx = 1/cnt; d var_c / dx = 2 (x - mu_c) / cnt. */
-      double gm = dm > 0 ? (mu[ch] - site->mean[ch]) / dm / cnt : 0;
-      double gv = dv > 0 ? (var[ch] - site->var[ch]) / dv * 2 / cnt : 0;
+      double gm = dm > 0 ? (mu[ch] - mean[ch]) / dm / cnt : 0;
+      double gv = dv > 0 ? (var[ch] - var_run[ch]) / dv * 2 / cnt : 0;
       for (int64_t i = 0; i < n; i++)
         for (int64_t k = 0; k < inner; k++) {
           int64_t at = (i * c + ch) * inner + k;
@@ -167,6 +164,12 @@ static double bn_term(synth *s, const bn_site *site, float *g, double *worst_mea
         }
     }
   return dm + dv;
+}
+
+static double bn_term(synth *s, const bn_site *site, float *g, double *worst_mean, double *worst_var) {
+  const rc_tensor *t = rc_plan_tensor(s->p, site->x);
+  return rc_synth_bn_term(g, t->data, t->dims, t->rank, site->mean, site->var, site->eps, s->acc, worst_mean,
+                          worst_var);
 }
 
 /* Cross-entropy of output (B, K) against class i mod K, gradient added. */
@@ -185,31 +188,33 @@ static void class_term(const rc_tensor *out, float *g, float w) {
   }
 }
 
-/* Priors on (B, C, H, W) (or any rank: the last two axes are the image):
- * w_tv * mean over neighbour pairs of (difference)^2 + w_l2 * mean x^2. */
-static void prior_terms(const synth *s, const rc_tensor *shape, float *g, float w_tv, float w_l2) {
-  int64_t n = s->b * s->per;
-  int r = shape->rank;
-  int64_t w = r >= 3 ? shape->dims[r - 1] : 1, h = r >= 3 ? shape->dims[r - 2] : 1;
+double rc_synth_priors(float *g, const float *xs, const int64_t *dims, int rank, float w_tv, float w_l2) {
+  int64_t n = 1;
+  for (int d = 0; d < rank; d++) n *= dims[d];
+  int64_t w = rank >= 3 ? dims[rank - 1] : 1, h = rank >= 3 ? dims[rank - 2] : 1;
   int64_t planes = n / (w * h);
-  double pairs = (double)planes * (double)((w - 1) * h + (h - 1) * w);
-  for (int64_t i = 0; i < n; i++) g[i] += (float)(w_l2 * 2 * s->x[i] / (double)n);
-  if (pairs <= 0 || w_tv <= 0) return;
-  for (int64_t p = 0; p < planes; p++)
-    for (int64_t y = 0; y < h; y++)
-      for (int64_t x = 0; x < w; x++) {
-        int64_t at = (p * h + y) * w + x;
-        if (x + 1 < w) {
-          double d = s->x[at + 1] - s->x[at];
-          g[at + 1] += (float)(w_tv * 2 * d / pairs);
-          g[at] -= (float)(w_tv * 2 * d / pairs);
+  double pairs = (double)planes * (double)((w - 1) * h + (h - 1) * w), l2 = 0, tv = 0;
+  for (int64_t i = 0; i < n; i++) {
+    l2 += (double)xs[i] * xs[i];
+    if (g) g[i] += (float)(w_l2 * 2 * xs[i] / (double)n);
+  }
+  if (pairs > 0)
+    for (int64_t p = 0; p < planes; p++)
+      for (int64_t y = 0; y < h; y++)
+        for (int64_t x = 0; x < w; x++) {
+          int64_t at = (p * h + y) * w + x;
+          for (int dir = 0; dir < 2; dir++) {
+            int64_t next = dir ? at + w : at + 1;
+            if (dir ? y + 1 >= h : x + 1 >= w) continue;
+            double d = (double)xs[next] - xs[at];
+            tv += d * d;
+            if (g) {
+              g[next] += (float)(w_tv * 2 * d / pairs);
+              g[at] -= (float)(w_tv * 2 * d / pairs);
+            }
+          }
         }
-        if (y + 1 < h) {
-          double d = s->x[at + w] - s->x[at];
-          g[at + w] += (float)(w_tv * 2 * d / pairs);
-          g[at] -= (float)(w_tv * 2 * d / pairs);
-        }
-      }
+  return w_l2 * l2 / (double)n + (pairs > 0 ? w_tv * tv / pairs : 0);
 }
 
 /* Forward, seed the gradients, backward; returns L_bn. */
@@ -230,7 +235,7 @@ static rc_status synth_step(synth *s, const rc_synth_config *c, double *bn_loss,
   if (c->w_class > 0 && og && out->rank == 2) class_term(out, og->data, c->w_class);
   RC_TRY(rc_plan_backward(s->p, e));
   rc_tensor *ig = rc_plan_grad(s->p, g->inputs[0]);
-  prior_terms(s, in, ig->data, c->w_tv, c->w_l2);
+  rc_synth_priors(ig->data, s->x, in->dims, in->rank, c->w_tv, c->w_l2);
   return RC_OK;
 }
 

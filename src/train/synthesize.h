@@ -53,4 +53,15 @@ rc_status rc_synth_check(const rc_model *teacher, rc_err *e);
 /* out: count * per-sample floats of the teacher's (single) input. */
 rc_status rc_synthesize(float *out, rc_synth_stats *stats, rc_model *teacher, const rc_synth_config *c, rc_err *e);
 
+/* The terms on their own (for tests against PyTorch). Statistics term of
+ * one layer input x (dims, (N, C, ...)): returns ||mu - mean||_2 +
+ * ||var - var_run||_2 and adds its gradient into g (when not NULL); acc holds
+ * 2*C doubles of scratch; worst_* (when not NULL) are raised to this layer's
+ * worst channel errors as rc_synth_stats defines them. */
+double rc_synth_bn_term(float *g, const float *x, const int64_t *dims, int rank, const float *mean,
+                        const float *var_run, float eps, double *acc, double *worst_mean, double *worst_var);
+/* Priors on x (the last two axes are the image): returns w_tv * mean over
+ * neighbour pairs of the squared difference + w_l2 * mean x^2, gradient added. */
+double rc_synth_priors(float *g, const float *x, const int64_t *dims, int rank, float w_tv, float w_l2);
+
 #endif
