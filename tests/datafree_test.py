@@ -21,7 +21,6 @@ the statistics stored in its BatchNormalization layers (ZeroQ, Cai et al.
 
 Usage: datafree_test.py RECOUP SOURCE_DIR WORK_DIR
 """
-import gzip
 import os
 import subprocess
 import sys
@@ -31,7 +30,7 @@ import onnx
 from onnx import helper, numpy_helper
 
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
-from e2e import DATA, Run, require, run_ort  # noqa: E402
+from e2e import DATA, Run, read_idx, require, run_ort  # noqa: E402
 
 RECOUP, SRC, WORK = sys.argv[1:4]
 os.makedirs(WORK, exist_ok=True)
@@ -39,14 +38,6 @@ run = Run(RECOUP)
 DENSE = os.path.join(SRC, "models", "garment_dense.onnx")
 PRUNED = os.path.join(SRC, "models", "garment_pruned90.onnx")
 COUNT, BATCH, SYNTH_STEPS, STEPS = 1024, 256, 200, 300
-
-
-def read_idx(path):
-    with gzip.open(path, "rb") as f:
-        data = f.read()
-    dims = data[3]
-    shape = [int.from_bytes(data[4 + 4 * i:8 + 4 * i], "big") for i in range(dims)]
-    return np.frombuffer(data, np.uint8, offset=4 + 4 * dims).reshape(shape)
 
 
 def bn_statistics_match(synth):

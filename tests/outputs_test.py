@@ -22,7 +22,6 @@ the composition into scenes and the grouping of the ten classes into three
 
 Usage: outputs_test.py RECOUP WORK_DIR
 """
-import gzip
 import json
 import os
 import sys
@@ -33,21 +32,13 @@ import torch.nn as nn
 import torch.nn.functional as F
 
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
-from e2e import DATA, Run, require, run_ort  # noqa: E402
+from e2e import DATA, Run, read_idx, require, run_ort  # noqa: E402
 
 RECOUP, WORK = sys.argv[1:3]
 os.makedirs(WORK, exist_ok=True)
 run = Run(RECOUP)
 GROUP = np.array([1, 1, 1, 1, 1, 2, 1, 2, 3, 2])  # 0 background; ours: clothing, footwear, bag
 CANVAS, CELL = 32, 4
-
-
-def read_idx(path):
-    with gzip.open(path, "rb") as f:
-        data = f.read()
-    dims = data[3]
-    shape = [int.from_bytes(data[4 + 4 * i:8 + 4 * i], "big") for i in range(dims)]
-    return np.frombuffer(data, np.uint8, offset=4 + 4 * dims).reshape(shape)
 
 
 def compose(images, labels, n, seed):

@@ -12,18 +12,6 @@
 #include "test.h"
 #include "ref_arrays.h"
 
-static void check_grad(const char *what, const float *got, const float *want, long n) {
-  double big = 0.0;
-  for (long i = 0; i < n; i++)
-    if (fabs(want[i]) > big) big = fabs(want[i]);
-  int bad = 0;
-  for (long i = 0; i < n; i++)
-    if (!(fabs(got[i] - want[i]) <= 1e-4 * fabs(want[i]) + 1e-6 * big)) {
-      if (bad++ < 3) fprintf(stderr, "%s[%ld]: recoup %.9g, PyTorch %.9g\n", what, i, got[i], want[i]);
-    }
-  CHECK_INT(bad, 0);
-}
-
 /* One term on dims; spec as the command line writes it, target optional. */
 static void one(const char *name, const char *spec, const int64_t *dims, int rank, const float *target) {
   long n = 1;
@@ -47,7 +35,7 @@ static void one(const char *name, const char *spec, const int64_t *dims, int ran
   CHECK_INT(rc_output_loss_compute(&loss, g, 1.0f, &o, dims, rank, s, t, target, &e), RC_OK);
   printf("%-12s %-40s recoup %.9g  PyTorch %.9g\n", name, spec, loss, (double)want[0]);
   CHECK_NEAR(loss, want[0], 1e-7, 1e-5);
-  check_grad(name, g, gw, n);
+  ref_check_grad(name, g, gw, n);
   free(g);
 }
 
@@ -92,7 +80,7 @@ static void dense_ce_matches_torch(void) {
   printf("%-12s %-40s recoup %.9g  PyTorch %.9g\n", "ce", "cross_entropy(ignore_index=255)", loss, (double)want[0]);
   CHECK_NEAR(loss, want[0], 1e-7, 1e-5);
   CHECK_INT(counted, 28);
-  check_grad("ce", g, gw, 120);
+  ref_check_grad("ce", g, gw, 120);
 }
 
 /* The synthesis objective's terms (train/synthesize.h). */
@@ -107,11 +95,11 @@ static void synthesis_terms_match_torch(void) {
   double loss = rc_synth_bn_term(g, x, d, 4, m, v, 1e-5f, acc, NULL, NULL);
   printf("%-12s %-40s recoup %.9g  PyTorch %.9g\n", "bnstat", "|mu - m| + |var - v|", loss, (double)want[0]);
   CHECK_NEAR(loss, want[0], 1e-7, 1e-5);
-  check_grad("bnstat", g, gw, 360);
+  ref_check_grad("bnstat", g, gw, 360);
   double prior = rc_synth_priors(pg, x, d, 4, 0.05f, 0.001f);
   printf("%-12s %-40s recoup %.9g  PyTorch %.9g\n", "prior", "0.05 tv + 0.001 l2", prior, (double)pwant[0]);
   CHECK_NEAR(prior, pwant[0], 1e-7, 1e-5);
-  check_grad("prior", pg, pgw, 360);
+  ref_check_grad("prior", pg, pgw, 360);
 }
 
 /* Refusals before any computing: each prints its message. */
