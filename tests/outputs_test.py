@@ -22,7 +22,6 @@ the composition into scenes and the grouping of the ten classes into three
 
 Usage: outputs_test.py RECOUP WORK_DIR
 """
-import json
 import os
 import sys
 
