@@ -89,6 +89,17 @@ def require_data(*paths):
         sys.exit(SKIP_STATUS)
 
 
+def read_idx(path):
+    """An IDX file (plain or gzip), the format Fashion-MNIST ships in, as a NumPy array."""
+    import gzip
+    import numpy as np
+    with (gzip.open if path.endswith(".gz") else open)(path, "rb") as f:
+        data = f.read()
+    dims = data[3]
+    shape = [int.from_bytes(data[4 + 4 * i:8 + 4 * i], "big") for i in range(dims)]
+    return np.frombuffer(data, np.uint8, offset=4 + 4 * dims).reshape(shape)
+
+
 def require(*paths):
     for p in paths:
         if not os.path.exists(p):

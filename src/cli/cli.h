@@ -23,6 +23,7 @@ int rc_cmd_distill(int argc, char **argv);
 int rc_cmd_batch(int argc, char **argv);
 int rc_cmd_prune(int argc, char **argv);
 int rc_cmd_quantize(int argc, char **argv);
+int rc_cmd_synthesize(int argc, char **argv);
 
 /* "recoup: error: <msg>" on stderr; returns RC_EXIT_FAIL. */
 int cli_fail(const rc_err *e);

@@ -14,6 +14,8 @@
 
 #include "cli/cli.h"
 #include "cli/cli_data.h"
+#include "cli/cli_outputs.h"
+#include "cli/cli_synth.h"
 #include "cli/report.h"
 #include "cli/weight_rules.h"
 #include "core/fmt.h"
@@ -37,7 +39,10 @@ static void usage(FILE *f) {
       "\n"
       "Data:\n"
       "  --data FILE|NAME=FILE    training samples (.npy, .npz, IDX, .gz, .pb); repeatable\n"
-      "  --labels FILE            class labels of --data (optional)\n"
+      "  --data synth:N           N inputs synthesised from the teacher alone (see recoup\n"
+      "                           synthesize; its defaults, seeded by --seed)\n"
+      "  --labels FILE            class labels of --data (optional); with --output-loss,\n"
+      "                           per-position labels of the first kd output\n"
       "  --val-data FILE|NAME=FILE  validation samples (default: hold out --val-split)\n"
       "  --val-labels FILE        labels of --val-data\n"
       "  --val-split F            fraction of --data held out for validation (default 0.1)\n"
@@ -63,6 +68,14 @@ static void usage(FILE *f) {
       "                           fsp, rkd-distance, rkd-angle, attention-map, weight-anchor\n"
       "  --pair T=S               match teacher tensor T with student tensor S for the\n"
       "                           feature terms (repeatable; default: automatic pairing)\n"
+      "  --output-loss OUT=TERM[:key=value...]  a loss on model output OUT instead of the\n"
+      "                           logit terms (repeatable; outputs not named take none):\n"
+      "                           kd (axis, t, weights), kd-sigmoid (t), mse, smooth-l1\n"
+      "                           (beta), bounded-l2 (axis, margin; needs --targets),\n"
+      "                           edge-kd (axis, bins, t); each takes weight=W\n"
+      "  --targets OUT=FILE       regression targets of output OUT (NaN: no target there)\n"
+      "  --val-targets OUT=FILE   the same for --val-data\n"
+      "  --ignore-label V         dense label value that takes no loss (default 255)\n"
       "  --config FILE            JSON with \"loss\" (term: weight) and \"pairs\"\n"
       "                           ([{\"teacher\", \"student\", \"weight\"}]), see README\n"
       "  --temperature T          kd temperature (default 4)\n"
@@ -121,6 +134,7 @@ typedef struct distill_args {
   const char *report;
   char *config_strings; /* pair names read from --config, freed at exit */
   rc_distill_config cfg;
+  cli_outputs outs;
 } distill_args;
 
 enum {
@@ -128,7 +142,8 @@ enum {
   OPT_SCALE, OPT_MEAN, OPT_STD, OPT_EPOCHS, OPT_STEPS, OPT_BATCH, OPT_OPTIMIZER, OPT_LR, OPT_SCHEDULE,
   OPT_WARMUP, OPT_STEP_SIZE, OPT_GAMMA, OPT_WD, OPT_MOMENTUM, OPT_NO_NESTEROV, OPT_CLIP, OPT_LOSS,
   OPT_TEMPERATURE, OPT_ALPHA, OPT_BN, OPT_MASK, OPT_TRAIN, OPT_FREEZE, OPT_SEED, OPT_THREADS, OPT_OUT, OPT_JSON,
-  OPT_CHECKPOINT, OPT_CHECKPOINT_EVERY, OPT_RESUME, OPT_PAIR, OPT_CONFIG, OPT_REPORT
+  OPT_CHECKPOINT, OPT_CHECKPOINT_EVERY, OPT_RESUME, OPT_PAIR, OPT_CONFIG, OPT_REPORT, OPT_OUTPUT_LOSS, OPT_TARGETS,
+  OPT_VAL_TARGETS, OPT_IGNORE_LABEL
 };
 
 static int number(const char *opt, const char *v, double lo, double hi, double *out) {
@@ -289,8 +304,29 @@ static int apply_option(distill_args *a, int c, const char *v) {
       cfg->checkpoint_every = l;
       return 0;
     case OPT_RESUME: cfg->resume_path = v; return 0;
+    case OPT_OUTPUT_LOSS: return cli_outputs_add_spec(&a->outs, "distill", v);
+    case OPT_TARGETS: return cli_outputs_add_targets(&a->outs, "distill", v, 0);
+    case OPT_VAL_TARGETS: return cli_outputs_add_targets(&a->outs, "distill", v, 1);
+    case OPT_IGNORE_LABEL:
+      if (integer("ignore-label", v, -2147483647L, 2147483647L, &l)) return RC_EXIT_USAGE;
+      a->outs.ignore = l;
+      return 0;
   }
   return cli_usage_error("distill", "unknown option");
+}
+
+/* "output_loss": ["OUT=TERM[:key=value...]", ...], as --output-loss. */
+static int config_output_losses(distill_args *a, const cJSON *list) {
+  if (!list) return 0;
+  if (!cJSON_IsArray(list))
+    return cli_usage_error("distill", "--config %s: \"output_loss\" must be an array of \"OUT=TERM[:key=value...]\"",
+                           a->config);
+  for (const cJSON *it = list->child; it; it = it->next) {
+    if (!cJSON_IsString(it))
+      return cli_usage_error("distill", "--config %s: \"output_loss\" items must be strings", a->config);
+    if (cli_outputs_add_spec(&a->outs, "distill", it->valuestring)) return RC_EXIT_USAGE;
+  }
+  return 0;
 }
 
 /* --config FILE: {"loss": {"kd": 1, "hint": 0.5}, "pairs": [{"teacher": T,
@@ -311,8 +347,9 @@ static int read_config(distill_args *a) {
     goto out;
   }
   for (cJSON *it = root->child; it; it = it->next)
-    if (strcmp(it->string, "loss") && strcmp(it->string, "pairs")) {
-      rc = cli_usage_error("distill", "--config %s: unknown key '%s' (expected loss, pairs)", a->config, it->string);
+    if (strcmp(it->string, "loss") && strcmp(it->string, "pairs") && strcmp(it->string, "output_loss")) {
+      rc = cli_usage_error("distill", "--config %s: unknown key '%s' (expected loss, pairs, output_loss)", a->config,
+                           it->string);
       goto out;
     }
   cJSON *loss = cJSON_GetObjectItemCaseSensitive(root, "loss");
@@ -337,6 +374,7 @@ static int read_config(distill_args *a) {
       goto out;
     }
   }
+  if ((rc = config_output_losses(a, cJSON_GetObjectItemCaseSensitive(root, "output_loss"))) != 0) goto out;
   cJSON *pairs = cJSON_GetObjectItemCaseSensitive(root, "pairs");
   if (pairs) {
     int count = cJSON_GetArraySize(pairs);
@@ -394,9 +432,13 @@ static int parse_args(distill_args *a, int argc, char **argv) {
       {"checkpoint-every", required_argument, NULL, OPT_CHECKPOINT_EVERY},
       {"resume", required_argument, NULL, OPT_RESUME}, {"pair", required_argument, NULL, OPT_PAIR},
       {"config", required_argument, NULL, OPT_CONFIG}, {"report", required_argument, NULL, OPT_REPORT},
+      {"output-loss", required_argument, NULL, OPT_OUTPUT_LOSS}, {"targets", required_argument, NULL, OPT_TARGETS},
+      {"val-targets", required_argument, NULL, OPT_VAL_TARGETS},
+      {"ignore-label", required_argument, NULL, OPT_IGNORE_LABEL},
       {"help", no_argument, NULL, 'h'}, {NULL, 0, NULL, 0}};
   memset(a, 0, sizeof *a);
   cli_data_opts_init(&a->data);
+  cli_outputs_init(&a->outs);
   rc_distill_config_defaults(&a->cfg);
   a->cfg.checkpoint_every = 500;
   a->val_split = 0.1;
@@ -420,6 +462,8 @@ static int parse_args(distill_args *a, int argc, char **argv) {
   a->cfg.n_train = a->n_train;
   a->cfg.freeze_globs = a->freeze;
   a->cfg.n_freeze = a->n_freeze;
+  a->cfg.output_losses = a->outs.specs;
+  a->cfg.n_output_losses = a->outs.n;
   return 0;
 }
 
@@ -490,7 +534,7 @@ static void on_progress(void *user, const rc_distill_progress *p) {
     if (ps->tty) fprintf(stderr, "\r\033[K");
     fprintf(stderr, "epoch %lld/%lld  loss %s", (long long)p->epoch, (long long)p->epochs, loss);
     if (p->val.has_labels) fprintf(stderr, "  val accuracy %.2f%%", 100 * p->val.top1);
-    fprintf(stderr, "  agreement %.2f%%  KL %s%s\n", 100 * p->val.agreement,
+    fprintf(stderr, "  agreement %.2f%%  %s %s%s\n", 100 * p->val.agreement, p->val.outputs ? "output loss" : "KL",
             rc__fmt_sig(kl, sizeof kl, p->val.kl, RC_FMT_SIG, 0), p->is_best ? "  (best so far)" : "");
     return;
   }
@@ -544,6 +588,7 @@ static cJSON *metrics_json(const rc_metrics *m, double alpha) {
   if (m->has_labels) cJSON_AddNumberToObject(o, "cross_entropy", m->ce);
   double sel = rc__select_measure(m, alpha);
   if (isfinite(sel)) cJSON_AddNumberToObject(o, "selection", sel);
+  if (m->outputs) cli_outputs_metrics_json(o, m);
   return o;
 }
 
@@ -665,10 +710,14 @@ static void print_results(const distill_args *a, const rc_distill_result *r, dou
   char ob[1024];
   printf("\nValidation on %lld held-out samples (%s):\n", (long long)r->n_val,
          a->n_val_data ? "--val-data" : "a seeded slice of --data");
-  printf("  %-22s %10s %13s %14s\n", "model", "accuracy", "agreement", "KL to dense");
-  table_row("dense (teacher)", &r->teacher);
-  table_row("compressed (input)", &r->before);
-  table_row("recovered (output)", &r->after);
+  void (*row)(const char *, const rc_metrics *) = r->after.outputs ? cli_outputs_table_row : table_row;
+  if (r->after.outputs)
+    cli_outputs_table_header();
+  else
+    printf("  %-22s %10s %13s %14s\n", "model", "accuracy", "agreement", "KL to dense");
+  row("dense (teacher)", &r->teacher);
+  row("compressed (input)", &r->before);
+  row("recovered (output)", &r->after);
   if (r->n_layers) {
     printf("\nLayer outputs against the dense model (signal-to-noise ratio, dB; higher is closer):\n");
     printf("  %-44s %12s %12s\n", "student tensor", "before", "after");
@@ -689,6 +738,7 @@ static void print_results(const distill_args *a, const rc_distill_result *r, dou
            "       integer ranges; every integer checked inside its range)\n", r->n_grids);
   cli_weight_rules_print(r->rules, r->n_rules);
   printf("best state: lowest validation %s; agreement%s reported beside it\n",
+         r->after.outputs ? "output loss (the --output-loss terms; with labels, alpha of it + (1-alpha) cross-entropy)" :
          strcmp(rc__select_rule_name(&r->before, r->select_alpha), "kl") ? "alpha*KL + (1-alpha)*cross-entropy"
                                                                         : "KL to dense",
          r->after.has_labels ? " and accuracy" : "");
@@ -713,6 +763,24 @@ static void remove_checkpoints(const char *path) {
 }
 
 /* ---- The command ------------------------------------------------------------- */
+
+/* --data synth:N: N inputs made from the teacher (train/synthesize.h), seeded by --seed. */
+static rc_status synth_samples(cli_samples *s, const distill_args *a, rc_model *teacher, rc_err *e) {
+  if (a->data.n_data != 1 || a->data.labels)
+    return rc__fail(e, RC_ERR_INVALID, "--data synth:N stands alone: no other --data, no --labels");
+  rc_synth_config c;
+  rc_synth_defaults(&c);
+  c.count = cli_synth_count(a->data.data[0]);
+  c.seed = a->cfg.seed;
+  cli_synth_progress_state ps = {cli_isatty_stderr(), -1};
+  c.progress = cli_synth_progress;
+  c.user = &ps;
+  rc_synth_stats stats;
+  RC_TRY(cli_synth_make(&s->inputs[0], &stats, teacher, &c, e));
+  s->n_inputs = 1;
+  s->n = c.count;
+  return RC_OK;
+}
 
 static rc_status load_val(cli_samples *val, const distill_args *a, const rc_graph *g, rc_err *e) {
   cli_data_opts vo = a->data;
@@ -741,9 +809,23 @@ int rc_cmd_distill(int argc, char **argv) {
   if (rc_model_load(&teacher, a.teacher, NULL, &e) != RC_OK || rc_model_load(&student, a.student, NULL, &e) != RC_OK)
     goto out;
   if (rc_distill_check_pair(&teacher->graph, &student->graph, &e) != RC_OK) goto out;
-  if (cli_samples_load(&train, &a.data, &student->graph, &e) != RC_OK) goto out;
+  if (cli_synth_count(a.data.data[0]) < 0) {
+    rc__fail(&e, RC_ERR_INVALID, "--data %s: expected synth:N with N > 0", a.data.data[0]);
+    goto out;
+  }
+  if (cli_synth_count(a.data.data[0]) > 0 ? synth_samples(&train, &a, teacher, &e) != RC_OK
+                                           : cli_samples_load(&train, &a.data, &student->graph, &e) != RC_OK)
+    goto out;
   if (a.n_val_data && load_val(&val, &a, &student->graph, &e) != RC_OK) goto out;
-  {
+  rc_output_side side, val_side;
+  memset(&side, 0, sizeof side);
+  memset(&val_side, 0, sizeof val_side);
+  if (a.outs.n) {
+    if (cli_outputs_load(&a.outs, &student->graph, &train, a.data.labels, a.n_val_data ? &val : NULL, a.val_labels,
+                         &side, &val_side, &e) != RC_OK)
+      goto out;
+    a.cfg.label_output = a.outs.label_output[0] ? a.outs.label_output : NULL;
+  } else {
     int64_t k = 0;
     if (cli_output_classes(&student->graph, &train, &k, &e) != RC_OK) goto out;
     if (a.data.labels && cli_samples_load_labels(&train, a.data.labels, k, &e) != RC_OK) goto out;
@@ -753,7 +835,8 @@ int rc_cmd_distill(int argc, char **argv) {
   for (int i = 0; i < train.n_inputs; i++) ins[i] = train.inputs[i].t;
   for (int i = 0; i < val.n_inputs; i++) vins[i] = val.inputs[i].t;
   rc_distill_data d = {ins, train.n_inputs, train.has_labels ? train.labels.t.data : NULL,
-                       a.n_val_data ? vins : NULL, val.has_labels ? val.labels.t.data : NULL, a.val_split};
+                       a.n_val_data ? vins : NULL, val.has_labels ? val.labels.t.data : NULL, a.val_split,
+                       side, val_side};
   if (a.n_val_data && train.has_labels != val.has_labels) {
     rc__fail(&e, RC_ERR_INVALID, "give labels for both --data and --val-data, or for neither");
     goto out;
@@ -779,6 +862,7 @@ out:
   cli_samples_free(&train);
   cli_samples_free(&val);
   free(a.config_strings);
+  cli_outputs_free(&a.outs);
   rc_model_free(teacher);
   rc_model_free(student);
   return rc;

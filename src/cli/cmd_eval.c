@@ -6,6 +6,7 @@
 
 #include "cli/cli.h"
 #include "cli/cli_data.h"
+#include "cli/cli_outputs.h"
 #include "core/alloc.h"
 #include "core/fmt.h"
 #include "data/npy_write.h"
@@ -32,6 +33,13 @@ static void usage(FILE *f) {
           "  --mean M[,M...]        subtract after scaling, one value or one per channel\n"
           "  --std D[,D...]         then divide, one value or one per channel\n"
           "  --ref OTHER.onnx       compare with another model on the same samples\n"
+          "  --output-loss OUT=TERM[:key=value]  measure output OUT as a class map (kd,\n"
+          "                         kd-sigmoid: per-position agreement, mean IoU) or as values\n"
+          "                         (mse, smooth-l1, edge-kd: mean absolute difference);\n"
+          "                         default for models whose first output is not (N, classes):\n"
+          "                         every float output of rank >= 3 is a class map on axis 1;\n"
+          "                         --labels then holds per-position classes of the first one\n"
+          "  --ignore-label V       dense label value left out of the figures (default 255)\n"
           "  --out FILE             X.npy: first output; X.npz: every output by name\n"
           "  --threads N            compute threads; 0 (the default) uses every online core\n"
           "  --json                 print results as one JSON object on stdout\n"
@@ -45,6 +53,7 @@ typedef struct eval_args {
   cli_data_opts data;
   long batch, threads;
   int json;
+  cli_outputs outs;
 } eval_args;
 
 static int parse_args(eval_args *a, int argc, char **argv) {
@@ -54,9 +63,11 @@ static int parse_args(eval_args *a, int argc, char **argv) {
       {"mean", required_argument, NULL, 'M'},  {"std", required_argument, NULL, 'D'},
       {"ref", required_argument, NULL, 'r'},   {"out", required_argument, NULL, 'o'},
       {"threads", required_argument, NULL, 't'}, {"json", no_argument, NULL, 'j'},
+      {"output-loss", required_argument, NULL, 'L'}, {"ignore-label", required_argument, NULL, 'I'},
       {"help", no_argument, NULL, 'h'},        {NULL, 0, NULL, 0}};
   memset(a, 0, sizeof *a);
   cli_data_opts_init(&a->data);
+  cli_outputs_init(&a->outs);
   a->batch = 64;
   int c;
   optind = 1;
@@ -81,6 +92,11 @@ static int parse_args(eval_args *a, int argc, char **argv) {
           return cli_usage_error("eval", "--threads expects a count, got '%s'", optarg);
         break;
       case 'j': a->json = 1; break;
+      case 'L': if (cli_outputs_add_spec(&a->outs, "eval", optarg)) return RC_EXIT_USAGE; break;
+      case 'I':
+        if (cli_parse_int(optarg, -2147483647L, 2147483647L, &a->outs.ignore))
+          return cli_usage_error("eval", "--ignore-label expects an integer, got '%s'", optarg);
+        break;
       case 'h': usage(stdout); return -1;
       default: return cli_bad_option("eval", argv, longopts);
     }
@@ -144,6 +160,37 @@ static rc_status logits_of(const run_result *r, int64_t *k, rc_err *e) {
                     g->path, g->values[g->outputs[0]].name, rc_dtype_name(t->dtype), t->rank);
   *k = t->dims[1];
   return RC_OK;
+}
+
+static int first_output_is_logits(const run_result *r) {
+  const rc_tensor *t = rc_plan_tensor(r->plan, r->model->graph.outputs[0]);
+  return t->dtype == RC_DTYPE_FLOAT && t->rank == 2;
+}
+
+static void print_outputs_result(const eval_args *a, const cli_samples *s, const rc_metrics *m) {
+  if (a->json) {
+    cJSON *root = cJSON_CreateObject();
+    cJSON_AddStringToObject(root, "model", a->model);
+    cJSON_AddNumberToObject(root, "samples", (double)s->n);
+    if (a->ref) cJSON_AddStringToObject(root, "ref", a->ref);
+    if (m->has_ref) cJSON_AddNumberToObject(root, "position_agreement", m->agreement);
+    if (m->has_labels) cJSON_AddNumberToObject(root, "position_accuracy", m->top1);
+    cli_outputs_metrics_json(root, m);
+    if (!m->has_ref) {
+      cJSON_DeleteItemFromObject(root, "output_loss");
+      cJSON_DeleteItemFromObject(root, "miou_dense");
+      cJSON_DeleteItemFromObject(root, "value_mad");
+    }
+    char *text = cJSON_Print(root);
+    if (text) puts(text);
+    free(text);
+    cJSON_Delete(root);
+    return;
+  }
+  printf("model            %s\nsamples          %lld\n", a->model, (long long)s->n);
+  if (a->ref) printf("reference        %s\n", a->ref);
+  cli_outputs_table_header();
+  cli_outputs_table_row(a->ref ? "model vs reference" : "model", m);
 }
 
 static rc_status write_outputs(const run_result *r, const char *path, int64_t n, rc_err *e) {
@@ -231,6 +278,14 @@ int rc_cmd_eval(int argc, char **argv) {
   int64_t k = 0;
   rc_metrics m;
   int want_metrics = a.data.labels || a.ref;
+  if (want_metrics && (a.outs.n || !first_output_is_logits(&r))) {
+    if (a.ref && rc_model_load(&ref.model, a.ref, NULL, &e) != RC_OK) goto out;
+    if (cli_outputs_eval(&m, &a.outs, r.model, ref.model, &s, batch, a.data.labels, &e) != RC_OK) goto out;
+    if (a.out && write_outputs(&r, a.out, s.n, &e) != RC_OK) goto out;
+    print_outputs_result(&a, &s, &m);
+    rc = RC_EXIT_OK;
+    goto out;
+  }
   if (want_metrics) {
     if (logits_of(&r, &k, &e) != RC_OK) goto out;
     if (a.data.labels && cli_samples_load_labels(&s, a.data.labels, k, &e) != RC_OK) goto out;
@@ -256,5 +311,6 @@ out:
   cli_samples_free(&s);
   run_result_free(&r);
   run_result_free(&ref);
+  cli_outputs_free(&a.outs);
   return rc;
 }

@@ -17,6 +17,7 @@ static const rc_command commands[] = {
     {"batch", "run a manifest's zoo of distill jobs: parallel, resumable, sharded, with reports", rc_cmd_batch},
     {"prune", "make a sparse or narrower student from a dense model", rc_cmd_prune},
     {"quantize", "quantize a dense model to integer grids (QDQ) from calibration samples", rc_cmd_quantize},
+    {"synthesize", "make input samples from a teacher's BatchNormalization statistics (no data)", rc_cmd_synthesize},
 };
 
 #define N_COMMANDS ((int)(sizeof commands / sizeof commands[0]))

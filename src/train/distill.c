@@ -155,6 +155,8 @@ typedef struct run_state {
   rc_qat qat;                /* QDQ sites rewritten for training on their grids */
   rc_features *feat;         /* feature-level terms, NULL when only logits are matched */
   rc_plan *teacher_step;     /* teacher run every step for inner tensors */
+  rc_outputs *outs;          /* per-output losses, NULL: the logit terms */
+  const rc_output_side *train_side, *val_side;
   unsigned char *tkeep, *skeep;
   int projectors_started;    /* least-squares start done (or a resumed run) */
   rc_distill_tensor_rule *rules; /* per trained weight, moved to the result */
@@ -374,13 +376,17 @@ static rc_status build_plans(run_state *st, const rc_tensor *data, rc_err *e) {
   RC_TRY(rc_plan_create(&st->train_plan, sg, shapes, &train_opts, e));
   teacher_order(tg, sg, shapes, tin);
   RC_TRY(rc_plan_create(&st->teacher_plan, tg, tin, NULL, e));
-  if (st->feat && rc_loss_spec_needs_features(&st->c->terms)) {
+  if ((st->feat && rc_loss_spec_needs_features(&st->c->terms)) || st->c->n_output_losses) {
     rc_plan_opts keep = {.training = 0, .trainable = NULL, .keep = st->tkeep, .bn_batch_stats = 0};
     RC_TRY(rc_plan_create(&st->teacher_step, tg, tin, &keep, e));
   }
   int64_t kt = 0;
-  RC_TRY(logits_width(st->eval_plan, sg, st->batch, &st->k, e));
-  RC_TRY(logits_width(st->teacher_plan, tg, st->batch, &kt, e));
+  if (st->c->n_output_losses)
+    RC_TRY(rc__outputs_create(&st->outs, st->c->output_losses, st->c->n_output_losses, st->c->temperature,
+                              st->teacher_step, st->train_plan, st->c->label_output, e));
+  else
+    RC_TRY(logits_width(st->eval_plan, sg, st->batch, &st->k, e));
+  if (!st->outs) RC_TRY(logits_width(st->teacher_plan, tg, st->batch, &kt, e));
   if (kt != st->k)
     return rc__fail(e, RC_ERR_SHAPE, "teacher %s gives %lld classes, student %s %lld", tg->path, (long long)kt,
                     sg->path, (long long)st->k);
@@ -549,6 +555,8 @@ static rc_status val_labels_of(run_state *st, const rc_distill_data *d, int32_t 
 }
 
 static rc_status validate(run_state *st, rc_metrics *m, rc_err *e) {
+  if (st->outs)
+    return rc__outputs_validate(st->outs, st->teacher_step, st->eval_plan, &st->val, st->val_side, st->val.index, m, e);
   void *outs[1] = {st->val_logits};
   RC_TRY(rc__run_dataset(st->eval_plan, &st->val, st->sg->outputs, 1, outs, e));
   return rc__metrics_compute(m, st->val_logits, st->val_labels, st->teacher_val_logits, st->val.n, st->k, e);
@@ -557,7 +565,8 @@ static rc_status validate(run_state *st, rc_metrics *m, rc_err *e) {
 /* The weight of the distillation term, as training uses it; the best state
  * is chosen by the same mix on validation (train/select.h). */
 static double select_alpha(const run_state *st) {
-  return st->c->alpha >= 0 ? st->c->alpha : st->val_labels ? 0.9 : 1.0;
+  int dense = st->outs && st->val_side && st->val_side->labels;
+  return st->c->alpha >= 0 ? st->c->alpha : st->val_labels || dense ? 0.9 : 1.0;
 }
 
 /* ---- One step --------------------------------------------------------------- */
@@ -566,6 +575,7 @@ typedef struct step_buffers {
   void *in[RC_DATASET_MAX_INPUTS];
   int32_t *labels;
   float *teacher;   /* (B, K) rows of the cached teacher logits */
+  int64_t *samples; /* the batch's sample numbers (per-output side data) */
   double *bn_scratch; /* per-channel sums for --bn train */
   int64_t max_c;
   float lr;           /* the last step's learning rate, for progress */
@@ -594,7 +604,19 @@ static rc_status loss_and_seed(run_state *st, const step_buffers *sb, const int3
   return RC_OK;
 }
 
+/* Per-output terms: the teacher runs on the same batch, side data is taken
+ * by sample number. */
+static rc_status outputs_loss(run_state *st, const step_buffers *sb, int64_t b, double *loss, rc_err *e) {
+  for (int64_t j = 0; j < st->batch; j++) sb->samples[j] = st->train.index[st->train.order[b * st->batch + j]];
+  RC_TRY(rc__outputs_copy_inputs(st->teacher_step, st->train_plan, e));
+  RC_TRY(rc_plan_forward(st->teacher_step, e));
+  float alpha = st->c->alpha >= 0 ? st->c->alpha : 0.9f;
+  return rc__outputs_step(st->outs, st->teacher_step, st->train_plan, st->train_side, sb->samples, st->batch, alpha,
+                          loss, e);
+}
+
 static void gather_teacher_rows(run_state *st, const step_buffers *sb, int64_t b) {
+  if (!st->k) return;
   for (int64_t j = 0; j < st->batch; j++) {
     int64_t pos = st->train.order[b * st->batch + j];
     int64_t sample = st->train.index[pos];
@@ -617,6 +639,28 @@ typedef struct loop_ctx {
   uint64_t fingerprint;
 } loop_ctx;
 
+/* Per-output runs cache no teacher outputs, so the teacher's initializers,
+ * the data and the terms stand for them in the fingerprint. */
+static uint64_t outputs_fingerprint(const run_state *st, uint64_t h) {
+  const rc_distill_config *c = st->c;
+  for (int i = 0; i < c->n_output_losses; i++) {
+    const rc_output_loss *o = &c->output_losses[i];
+    int64_t ints[] = {o->term, o->axis, o->bins, o->n_class_weights};
+    float reals[] = {o->weight, o->temperature, o->beta, o->margin};
+    h = rc__ckpt_fp_bytes(h, o->output, strlen(o->output));
+    h = rc__ckpt_fp_i64(h, ints, sizeof ints / sizeof ints[0]);
+    h = rc__ckpt_fp_f32(h, reals, sizeof reals / sizeof reals[0]);
+    h = rc__ckpt_fp_f32(h, o->class_weights, (size_t)o->n_class_weights);
+  }
+  const rc_graph *tg = &st->teacher->graph;
+  for (int v = 0; v < tg->n_values; v++)
+    if (tg->values[v].kind == RC_VALUE_INITIALIZER && tg->values[v].decl.data)
+      h = rc__ckpt_fp_bytes(h, tg->values[v].decl.data, rc_tensor_nbytes(&tg->values[v].decl));
+  for (int i = 0; i < st->train.n_inputs; i++)
+    h = rc__ckpt_fp_bytes(h, st->train.inputs[i].data, rc_tensor_nbytes(&st->train.inputs[i]));
+  return h;
+}
+
 /* Identifies a run: the student's starting values, the teacher's logits over
  * the data (which cover teacher, data and normalisation), and every setting
  * that shapes the trajectory, hashed by value. A checkpoint from another run
@@ -635,6 +679,7 @@ static uint64_t run_fingerprint(const loop_ctx *lc) {
                     c->optim.beta1, c->optim.beta2, c->optim.eps, lc->sched.lr_min, lc->sched.gamma, c->clip};
   h = rc__ckpt_fp_i64(h, ints, sizeof ints / sizeof ints[0]);
   h = rc__ckpt_fp_f32(h, c->terms.weight, sizeof c->terms.weight / sizeof c->terms.weight[0]);
+  if (st->outs) h = outputs_fingerprint(st, h);
   return rc__ckpt_fp_f64(h, reals, sizeof reals / sizeof reals[0]);
 }
 
@@ -674,7 +719,10 @@ static rc_status train_step(loop_ctx *lc, const loop_state *ls, step_buffers *sb
   rc_params_zero_grad(st->ps);
   rc_plan_zero_grad(st->train_plan);
   RC_TRY(rc_plan_forward(st->train_plan, e));
-  RC_TRY(loss_and_seed(st, sb, sb->labels, loss, e));
+  if (st->outs)
+    RC_TRY(outputs_loss(st, sb, ls->batch, loss, e));
+  else
+    RC_TRY(loss_and_seed(st, sb, sb->labels, loss, e));
   if (st->feat) {
     if (st->teacher_step) {
       const rc_graph *tg = &st->teacher->graph, *sg = st->sg;
@@ -756,7 +804,8 @@ static rc_status train_loop(run_state *st, rc_distill_result *r, const rc_distil
   RC_TRY(rc_params_save(st->ps, lc.good_slot, e));
   r->epoch_loss = rc__calloc((size_t)lc.epochs + 1, sizeof(double));
   r->epoch_val = rc__calloc((size_t)lc.epochs + 1, sizeof(rc_metrics));
-  sb.teacher = rc__malloc(sizeof(float) * (size_t)(st->batch * st->k));
+  sb.teacher = rc__malloc(sizeof(float) * (size_t)(st->batch * st->k + 1));
+  sb.samples = rc__malloc(sizeof(int64_t) * (size_t)st->batch);
   sb.labels = d->labels ? rc__malloc(sizeof(int32_t) * (size_t)st->batch) : NULL;
   sb.max_c = 1;
   for (int j = 0; j < st->n_bn; j++) {
@@ -765,7 +814,7 @@ static rc_status train_loop(run_state *st, rc_distill_result *r, const rc_distil
   }
   sb.bn_scratch = rc__malloc(sizeof(double) * 2 * (size_t)sb.max_c);
   rc_status s = RC_OK;
-  if (!r->epoch_loss || !r->epoch_val || !sb.teacher || (d->labels && !sb.labels) || !sb.bn_scratch) {
+  if (!r->epoch_loss || !r->epoch_val || !sb.teacher || !sb.samples || (d->labels && !sb.labels) || !sb.bn_scratch) {
     s = rc__fail(e, RC_ERR_NOMEM, "out of memory");
     goto out;
   }
@@ -851,6 +900,7 @@ static rc_status train_loop(run_state *st, rc_distill_result *r, const rc_distil
   r->after = ls.best;
 out:
   rc__free(sb.teacher);
+  rc__free(sb.samples);
   rc__free(sb.labels);
   rc__free(sb.bn_scratch);
   return s;
@@ -890,6 +940,7 @@ static void free_state(run_state *st) {
   rc_plan_free(st->eval_plan);
   rc_plan_free(st->teacher_plan);
   rc_plan_free(st->teacher_step);
+  rc__outputs_free(st->outs);
   rc__features_free(st->feat);
   rc__free(st->tkeep);
   rc__free(st->skeep);
@@ -955,6 +1006,38 @@ static rc_status record_changes(run_state *st, rc_distill_result *r, rc_err *e) 
   return RC_OK;
 }
 
+/* What per-output runs do not combine with (yet): say so before training. */
+static rc_status check_outputs_mode(const rc_distill_config *c, const rc_distill_data *d, rc_err *e) {
+  if (d->labels)
+    return rc__fail(e, RC_ERR_INVALID, "--output-loss: labels must be per position of a kd output (dense labels), "
+                    "not one class per sample");
+  for (int t = RC_TERM_HINT; t < RC_TERM_COUNT; t++)
+    if (c->terms.weight[t] > 0)
+      return rc__fail(e, RC_ERR_UNSUPPORTED, "--output-loss replaces the logit terms and does not combine with the "
+                      "feature terms of --loss");
+  return RC_OK;
+}
+
+/* Teacher logits over the whole pool once, indexed by sample, and over the
+ * validation samples; the teacher's own figures. */
+static rc_status teacher_logits_all(run_state *st, const rc_distill_data *d, rc_distill_result *r, rc_err *e) {
+  int64_t pool = d->inputs[0].dims[0];
+  st->teacher_logits = rc__malloc(sizeof(float) * (size_t)(pool * st->k));
+  st->teacher_val_logits = rc__malloc(sizeof(float) * (size_t)(st->val.n * st->k));
+  st->val_logits = rc__malloc(sizeof(float) * (size_t)(st->val.n * st->k));
+  if (!st->teacher_logits || !st->teacher_val_logits || !st->val_logits)
+    return rc__fail(e, RC_ERR_NOMEM, "out of memory for logits");
+  rc_dataset all;
+  RC_TRY(rc_dataset_init(&all, d->inputs, d->n_inputs, NULL, NULL, 0, e));
+  rc_status s = teacher_pass(st, &all, st->teacher_logits, e);
+  rc_dataset_free(&all);
+  RC_TRY(s);
+  RC_TRY(teacher_pass(st, &st->val, st->teacher_val_logits, e));
+  /* The teacher measured against itself gives its accuracy and the 100%/0 baseline. */
+  return rc__metrics_compute(&r->teacher, st->teacher_val_logits, st->val_labels, st->teacher_val_logits, st->val.n,
+                             st->k, e);
+}
+
 rc_status rc_distill_run(rc_distill_result *r, rc_model *teacher, rc_model *student, const rc_distill_data *d,
                          const rc_distill_config *c, rc_err *e) {
   memset(r, 0, sizeof *r);
@@ -978,6 +1061,9 @@ rc_status rc_distill_run(rc_distill_result *r, rc_model *teacher, rc_model *stud
     s = rc__fail(e, RC_ERR_INVALID, "the temperature must be positive");
     goto out;
   }
+  if (c->n_output_losses && (s = check_outputs_mode(c, d, e)) != RC_OK) goto out;
+  st.train_side = &d->side;
+  st.val_side = d->val_inputs ? &d->val_side : &d->side;
   if ((s = setup_data(&st, d, e)) != RC_OK) goto out;
   st.batch = c->batch < st.train.n ? c->batch : st.train.n;
   r->n_train = st.train.n;
@@ -986,28 +1072,13 @@ rc_status rc_distill_run(rc_distill_result *r, rc_model *teacher, rc_model *stud
       (s = build_store(&st, d->inputs, e)) != RC_OK || (s = build_plans(&st, d->inputs, e)) != RC_OK)
     goto out;
   if ((s = val_labels_of(&st, d, &val_labels, e)) != RC_OK) goto out;
-  int64_t pool = d->inputs[0].dims[0];
-  st.teacher_logits = rc__malloc(sizeof(float) * (size_t)(pool * st.k));
-  st.teacher_val_logits = rc__malloc(sizeof(float) * (size_t)(st.val.n * st.k));
-  st.val_logits = rc__malloc(sizeof(float) * (size_t)(st.val.n * st.k));
-  if (!st.teacher_logits || !st.teacher_val_logits || !st.val_logits) {
-    s = rc__fail(e, RC_ERR_NOMEM, "out of memory for logits");
-    goto out;
-  }
-  {
-    /* Teacher logits over the whole pool once, indexed by sample. */
-    rc_dataset all;
-    if ((s = rc_dataset_init(&all, d->inputs, d->n_inputs, NULL, NULL, 0, e)) != RC_OK) goto out;
-    s = teacher_pass(&st, &all, st.teacher_logits, e);
-    rc_dataset_free(&all);
-    if (s != RC_OK) goto out;
-    if ((s = teacher_pass(&st, &st.val, st.teacher_val_logits, e)) != RC_OK) goto out;
-  }
-  {
-    /* The teacher measured against itself gives its accuracy and the 100%/0 baseline. */
-    if ((s = rc__metrics_compute(&r->teacher, st.teacher_val_logits, st.val_labels, st.teacher_val_logits,
-                                 st.val.n, st.k, e)) != RC_OK)
+  if (st.outs) {
+    /* The teacher measured against itself: the 100%/0 baseline, its label figures. */
+    if ((s = rc__outputs_validate(st.outs, st.teacher_step, st.teacher_step, &st.val, st.val_side, st.val.index,
+                                  &r->teacher, e)) != RC_OK)
       goto out;
+  } else if ((s = teacher_logits_all(&st, d, r, e)) != RC_OK) {
+    goto out;
   }
   if ((s = validate(&st, &r->before, e)) != RC_OK) goto out;
   if ((s = measure_inside(&st, r, &layers, 0, e)) != RC_OK) goto out;

@@ -21,6 +21,7 @@
 #include "train/evaluate.h"
 #include "train/features.h"
 #include "train/optim.h"
+#include "train/outputs.h"
 
 typedef enum rc_bn_mode {
   RC_BN_FROZEN = 0,      /* running statistics stay as deployed */
@@ -35,6 +36,9 @@ typedef struct rc_distill_data {
   const rc_tensor *val_inputs; /* NULL: hold out val_split of `inputs` */
   const int32_t *val_labels;
   double val_split;
+  /* Per-output runs: regression targets and dense labels, indexed by sample
+   * of `inputs` (side) and of `val_inputs` (val_side). */
+  rc_output_side side, val_side;
 } rc_distill_data;
 
 typedef enum rc_distill_event { RC_DISTILL_STEP = 0, RC_DISTILL_EPOCH = 1 } rc_distill_event;
@@ -86,6 +90,12 @@ typedef struct rc_distill_config {
    * uninterrupted run with the same inputs and settings. */
   const char *resume_path;
   const volatile sig_atomic_t *stop;
+  /* Losses per model output (train/output_loss.h). When given they replace
+   * the logit terms, and outputs not named take no loss; label_output names
+   * the output dense labels (rc_distill_data.side.labels) belong to. */
+  const rc_output_loss *output_losses;
+  int n_output_losses;
+  const char *label_output;
 } rc_distill_config;
 
 void rc_distill_config_defaults(rc_distill_config *c);

@@ -24,6 +24,11 @@ typedef struct rc_metrics {
   double agreement;      /* top-1 agreement with the reference */
   double kl;             /* mean KL(reference || model) at T = 1 */
   double ce;             /* mean cross-entropy against the labels at T = 1 */
+  /* Per-output runs (train/outputs.h): kl holds the weighted output terms,
+   * agreement and top1 count positions; NaN where no output of the kind. */
+  int outputs;
+  double miou_ref, miou_labels; /* mean IoU of class maps against the reference / labels */
+  double value_mad;      /* mean absolute difference of value outputs to the reference */
 } rc_metrics;
 
 rc_status rc__metrics_compute(rc_metrics *m, const float *logits, const int32_t *labels,
