@@ -23,8 +23,9 @@ PACKAGES=(
   build-essential cmake pkg-config
   libprotobuf-c-dev protobuf-c-compiler libonnx-dev
   libopenblas-openmp-dev zlib1g-dev libcjson-dev   # GEMM: OpenBLAS OpenMP build, shares our thread pool
+  libjpeg62-turbo-dev libpng-dev                   # image folders (JPEG, PNG)
   # reference tests and demo (Debian's /usr/bin/python3)
-  python3 python3-numpy python3-torch python3-torchvision python3-onnx
+  python3 python3-numpy python3-torch python3-torchvision python3-onnx python3-pil
   dataset-fashion-mnist libonnx-testdata
   # sanitizers and libFuzzer (libomp-dev: OpenMP for clang builds)
   clang libclang-rt-14-dev libomp-dev

@@ -12,6 +12,16 @@ void cli_data_opts_init(cli_data_opts *o) {
 
 int cli_data_option(cli_data_opts *o, const char *cmd, const char *name, const char *value) {
   rc_err e = {0};
+  if (!strcmp(name, "skip-bad")) {
+    o->skip_bad = 1;
+    return 0;
+  }
+  if (!strcmp(name, "resize")) {
+    long v;
+    if (cli_parse_int(value, 1, 1 << 15, &v)) return cli_usage_error(cmd, "--resize expects a size in pixels, got '%s'", value);
+    o->resize = (int)v;
+    return 0;
+  }
   if (!strcmp(name, "scale")) {
     if (cli_parse_float(value, &o->scale) || o->scale == 0)
       return cli_usage_error(cmd, "--scale expects a non-zero number, got '%s'", value);
@@ -91,7 +101,10 @@ rc_status cli_samples_load(cli_samples *s, const cli_data_opts *o, const rc_grap
   for (int i = 0; i < g->n_inputs; i++) {
     const rc_value *input = &g->values[g->inputs[i]];
     if (!files[i]) return rc__fail(e, RC_ERR_INVALID, "no --data for input '%s' of %s", input->name, g->path);
-    RC_TRY(rc_array_read(&s->inputs[i], files[i], NULL, 0, e));
+    if (cli_is_image_source(files[i]))
+      RC_TRY(cli_images_load(s, &s->inputs[i], o, input, files[i], e));
+    else
+      RC_TRY(rc_array_read(&s->inputs[i], files[i], NULL, 0, e));
     if (s->inputs[i].t.rank < 1)
       return rc__fail(e, RC_ERR_SHAPE, "%s: a scalar is not a set of samples", files[i]);
     RC_TRY(prepare_input(&s->inputs[i], input, o, files[i], e));
@@ -106,6 +119,7 @@ rc_status cli_samples_load(cli_samples *s, const cli_data_opts *o, const rc_grap
 }
 
 rc_status cli_samples_load_labels(cli_samples *s, const char *path, int64_t n_classes, rc_err *e) {
+  if (cli_images_labels_word(path)) return cli_images_take_labels(s, n_classes, e);
   rc_array raw = {0};
   RC_TRY(rc_array_read(&raw, path, NULL, 0, e));
   rc_status st = rc_labels_to_int32(&s->labels, &raw, s->n, n_classes, e);
@@ -118,6 +132,8 @@ rc_status cli_samples_load_labels(cli_samples *s, const char *path, int64_t n_cl
 void cli_samples_free(cli_samples *s) {
   for (int i = 0; i < s->n_inputs; i++) rc_array_free(&s->inputs[i]);
   rc_array_free(&s->labels);
+  rc_image_load_free(&s->decoded);
+  rc_image_set_free(&s->images);
   memset(s, 0, sizeof *s);
 }
 

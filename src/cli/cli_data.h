@@ -5,6 +5,7 @@
 
 #include "ir/ir.h"
 #include "recoup/data.h"
+#include "recoup/image.h"
 
 #define CLI_MAX_DATA 8
 #define CLI_MAX_CHANNELS 64
@@ -18,6 +19,8 @@ typedef struct cli_data_opts {
   int n_mean;
   float std[CLI_MAX_CHANNELS];
   int n_std;
+  int resize;   /* --resize S: images' shorter side to S before the centre crop (0 = none) */
+  int skip_bad; /* --skip-bad: leave unreadable images out, listed */
 } cli_data_opts;
 
 typedef struct cli_samples {
@@ -26,7 +29,20 @@ typedef struct cli_samples {
   int64_t n;                     /* samples */
   rc_array labels;               /* int32 (N) when has_labels */
   int has_labels;
+  rc_image_set images;           /* when the data is a folder or list of images */
+  rc_image_load decoded;         /* its labels, skipped images */
+  int from_images;
 } cli_samples;
+
+/* Help lines for the image options, shared by the commands that take --data. */
+#define CLI_IMAGE_HELP \
+  "  --data FOLDER|LIST.txt   JPEG/PNG images: a folder (recursive) or a list file,\n" \
+  "                           one path per line, optionally followed by a label;\n" \
+  "                           converted to the input's channels, centre-cropped to its H x W\n" \
+  "  --labels folders|list    labels from the first level of subfolders (sorted, 0..K-1)\n" \
+  "                           or from the list file's second column\n" \
+  "  --resize S               images: shorter side to S (antialiased bilinear) before cropping\n" \
+  "  --skip-bad               images: skip unreadable files, list them, go on\n"
 
 void cli_data_opts_init(cli_data_opts *o);
 /* Handle --scale/--mean/--std values; returns 0 or prints a usage error and returns 2. */
@@ -39,6 +55,19 @@ rc_status cli_samples_load(cli_samples *s, const cli_data_opts *o, const rc_grap
 /* Read labels for the loaded samples, checked against the count and n_classes. */
 rc_status cli_samples_load_labels(cli_samples *s, const char *path, int64_t n_classes, rc_err *e);
 void cli_samples_free(cli_samples *s);
+
+/* Images (cli_images.c): is file a folder or list file? */
+int cli_is_image_source(const char *file);
+/* Decode the image set at file into a (N, C, H, W) uint8 array for input, with
+ * labels from folders or the list when o->labels says "folders"/"list". */
+rc_status cli_images_load(cli_samples *s, rc_array *out, const cli_data_opts *o, const rc_value *input,
+                          const char *file, rc_err *e);
+/* "--labels folders|list" for loaded images: take the set's labels. */
+int cli_images_labels_word(const char *labels);
+rc_status cli_images_take_labels(cli_samples *s, int64_t n_classes, rc_err *e);
+/* Class names and skipped images into a --json object (nothing without images). */
+struct cJSON;
+void cli_images_json(struct cJSON *root, const cli_samples *s);
 /* Number of classes: the width of the first output, planned at batch 1. */
 rc_status cli_output_classes(const rc_graph *g, const cli_samples *s, int64_t *k, rc_err *e);
 /* Tensor shapes for planning at batch b (dims[0] = b). */

@@ -40,6 +40,7 @@ static void usage(FILE *f) {
       "  --val-labels FILE        labels of --val-data\n"
       "  --val-split F            fraction of --data held out for validation (default 0.1)\n"
       "  --scale S, --mean M[,..], --std D[,..]   x' = (x*S - M) / D, as for eval\n"
+      CLI_IMAGE_HELP
       "\n"
       "Training (defaults chosen for recovery fine-tuning from a good start):\n"
       "  --epochs E               passes over the training samples (default 3)\n"
@@ -104,6 +105,7 @@ typedef struct distill_args {
   int n_train, n_freeze;
   long threads;
   int json;
+  const cli_samples *train_samples; /* for the image summary in --json and reports */
   int lr_set, wd_set;
   const char *checkpoint;
   char checkpoint_buf[4096];
@@ -121,7 +123,7 @@ enum {
   OPT_SCALE, OPT_MEAN, OPT_STD, OPT_EPOCHS, OPT_STEPS, OPT_BATCH, OPT_OPTIMIZER, OPT_LR, OPT_SCHEDULE,
   OPT_WARMUP, OPT_STEP_SIZE, OPT_GAMMA, OPT_WD, OPT_MOMENTUM, OPT_NO_NESTEROV, OPT_CLIP, OPT_LOSS,
   OPT_TEMPERATURE, OPT_ALPHA, OPT_BN, OPT_TRAIN, OPT_FREEZE, OPT_SEED, OPT_THREADS, OPT_OUT, OPT_JSON,
-  OPT_CHECKPOINT, OPT_CHECKPOINT_EVERY, OPT_RESUME, OPT_PAIR, OPT_CONFIG, OPT_REPORT
+  OPT_CHECKPOINT, OPT_CHECKPOINT_EVERY, OPT_RESUME, OPT_PAIR, OPT_CONFIG, OPT_REPORT, OPT_RESIZE, OPT_SKIP_BAD
 };
 
 static int number(const char *opt, const char *v, double lo, double hi, double *out) {
@@ -171,6 +173,8 @@ static int apply_option(distill_args *a, int c, const char *v) {
     case OPT_SCALE: return cli_data_option(&a->data, "distill", "scale", v);
     case OPT_MEAN: return cli_data_option(&a->data, "distill", "mean", v);
     case OPT_STD: return cli_data_option(&a->data, "distill", "std", v);
+    case OPT_RESIZE: return cli_data_option(&a->data, "distill", "resize", v);
+    case OPT_SKIP_BAD: return cli_data_option(&a->data, "distill", "skip-bad", v);
     case OPT_EPOCHS:
       if (integer("epochs", v, 1, 1000000, &l)) return RC_EXIT_USAGE;
       cfg->epochs = l;
@@ -367,6 +371,7 @@ static int parse_args(distill_args *a, int argc, char **argv) {
       {"val-data", required_argument, NULL, OPT_VAL_DATA}, {"val-labels", required_argument, NULL, OPT_VAL_LABELS},
       {"val-split", required_argument, NULL, OPT_VAL_SPLIT}, {"scale", required_argument, NULL, OPT_SCALE},
       {"mean", required_argument, NULL, OPT_MEAN}, {"std", required_argument, NULL, OPT_STD},
+      {"resize", required_argument, NULL, OPT_RESIZE}, {"skip-bad", no_argument, NULL, OPT_SKIP_BAD},
       {"epochs", required_argument, NULL, OPT_EPOCHS}, {"steps", required_argument, NULL, OPT_STEPS},
       {"batch", required_argument, NULL, OPT_BATCH}, {"optimizer", required_argument, NULL, OPT_OPTIMIZER},
       {"lr", required_argument, NULL, OPT_LR}, {"schedule", required_argument, NULL, OPT_SCHEDULE},
@@ -597,6 +602,7 @@ static cJSON *results_json(const distill_args *a, const rc_distill_result *r, do
   cJSON_AddNumberToObject(root, "quantized_weights_rewritten", r->n_grids);
   cJSON_AddNumberToObject(root, "rollbacks", r->rollbacks);
   cJSON_AddNumberToObject(root, "reload_max_diff", verify_diff);
+  if (a->train_samples) cli_images_json(root, a->train_samples);
   cJSON *layers = cJSON_AddArrayToObject(root, "layers");
   for (int i = 0; i < r->n_layers; i++) {
     cJSON *o = cJSON_CreateObject();
@@ -708,7 +714,7 @@ static rc_status load_val(cli_samples *val, const distill_args *a, const rc_grap
   cli_data_opts vo = a->data;
   memcpy(vo.data, a->val_data, sizeof vo.data);
   vo.n_data = a->n_val_data;
-  vo.labels = NULL;
+  vo.labels = cli_images_labels_word(a->val_labels) ? a->val_labels : NULL; /* image sets read their own labels */
   return cli_samples_load(val, &vo, g, e);
 }
 
@@ -762,6 +768,7 @@ int rc_cmd_distill(int argc, char **argv) {
   if (rc_distill_verify_written(a.out, student, a.n_val_data ? vins : ins, train.n_inputs, a.cfg.batch, &diff, &e) !=
       RC_OK)
     goto out;
+  a.train_samples = &train;
   print_results(&a, &r, diff);
   remove_checkpoints(a.checkpoint);
   if (a.report && write_report(&a, &r, diff, &e) != RC_OK) goto out;

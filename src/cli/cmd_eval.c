@@ -31,6 +31,7 @@ static void usage(FILE *f) {
           "  --scale S              multiply raw values by S (default 1; 0.00392 maps 0..255 to 0..1)\n"
           "  --mean M[,M...]        subtract after scaling, one value or one per channel\n"
           "  --std D[,D...]         then divide, one value or one per channel\n"
+          CLI_IMAGE_HELP
           "  --ref OTHER.onnx       compare with another model on the same samples\n"
           "  --out FILE             X.npy: first output; X.npz: every output by name\n"
           "  --threads N            threads for compute (default: all cores)\n"
@@ -54,6 +55,7 @@ static int parse_args(eval_args *a, int argc, char **argv) {
       {"mean", required_argument, NULL, 'M'},  {"std", required_argument, NULL, 'D'},
       {"ref", required_argument, NULL, 'r'},   {"out", required_argument, NULL, 'o'},
       {"threads", required_argument, NULL, 't'}, {"json", no_argument, NULL, 'j'},
+      {"resize", required_argument, NULL, 'R'}, {"skip-bad", no_argument, NULL, 'K'},
       {"help", no_argument, NULL, 'h'},        {NULL, 0, NULL, 0}};
   memset(a, 0, sizeof *a);
   cli_data_opts_init(&a->data);
@@ -74,6 +76,8 @@ static int parse_args(eval_args *a, int argc, char **argv) {
       case 'S': if (cli_data_option(&a->data, "eval", "scale", optarg)) return RC_EXIT_USAGE; break;
       case 'M': if (cli_data_option(&a->data, "eval", "mean", optarg)) return RC_EXIT_USAGE; break;
       case 'D': if (cli_data_option(&a->data, "eval", "std", optarg)) return RC_EXIT_USAGE; break;
+      case 'R': if (cli_data_option(&a->data, "eval", "resize", optarg)) return RC_EXIT_USAGE; break;
+      case 'K': cli_data_option(&a->data, "eval", "skip-bad", NULL); break;
       case 'r': a->ref = optarg; break;
       case 'o': a->out = optarg; break;
       case 't':
@@ -176,6 +180,7 @@ static void print_result(const eval_args *a, const cli_samples *s, const rc_metr
     }
     if (k) cJSON_AddNumberToObject(root, "classes", (double)k);
     if (a->out) cJSON_AddStringToObject(root, "out", a->out);
+    cli_images_json(root, s);
     char *text = cJSON_Print(root);
     if (text) puts(text);
     free(text);

@@ -44,6 +44,7 @@ static void usage(FILE *f) {
           "                           calibrated range, so outputs a little beyond the\n"
           "                           calibration samples are not clipped (default 0.1)\n"
           "  --scale S, --mean M[,..], --std D[,..]   x' = (x*S - M) / D, as for eval\n"
+          CLI_IMAGE_HELP
           "  --threads N              compute threads (default: all cores)\n"
           "  --json                   print the summary as one JSON object on stdout\n"
           "  -h, --help               show this help\n"
@@ -66,7 +67,7 @@ typedef struct quantize_args {
 } quantize_args;
 
 enum { OPT_DATA = 256, OPT_OUT, OPT_WBITS, OPT_ABITS, OPT_CALIB, OPT_PCT, OPT_BATCH, OPT_SCALE, OPT_MEAN, OPT_STD,
-       OPT_THREADS, OPT_JSON, OPT_MARGIN };
+       OPT_THREADS, OPT_JSON, OPT_MARGIN, OPT_RESIZE, OPT_SKIP_BAD };
 
 static int apply_option(quantize_args *a, int c, const char *v);
 static int apply_option_ctx(void *a, int c, const char *v) { return apply_option(a, c, v); }
@@ -112,6 +113,8 @@ static int apply_option(quantize_args *a, int c, const char *v) {
     case OPT_SCALE: return cli_data_option(&a->data, "quantize", "scale", v);
     case OPT_MEAN: return cli_data_option(&a->data, "quantize", "mean", v);
     case OPT_STD: return cli_data_option(&a->data, "quantize", "std", v);
+    case OPT_RESIZE: return cli_data_option(&a->data, "quantize", "resize", v);
+    case OPT_SKIP_BAD: return cli_data_option(&a->data, "quantize", "skip-bad", v);
     case OPT_THREADS:
       if (cli_parse_int(v, 0, 1024, &l)) return cli_usage_error("quantize", "--threads expects a count, got '%s'", v);
       a->threads = l;
@@ -128,6 +131,7 @@ static int parse_args(quantize_args *a, int argc, char **argv) {
       {"calibration", required_argument, NULL, OPT_CALIB}, {"percentile", required_argument, NULL, OPT_PCT},
       {"batch", required_argument, NULL, OPT_BATCH},       {"scale", required_argument, NULL, OPT_SCALE},
       {"mean", required_argument, NULL, OPT_MEAN},         {"std", required_argument, NULL, OPT_STD},
+      {"resize", required_argument, NULL, OPT_RESIZE},     {"skip-bad", no_argument, NULL, OPT_SKIP_BAD},
       {"threads", required_argument, NULL, OPT_THREADS},   {"json", no_argument, NULL, OPT_JSON},
       {"output-margin", required_argument, NULL, OPT_MARGIN},
       {"help", no_argument, NULL, 'h'},                    {NULL, 0, NULL, 0}};
