@@ -737,6 +737,9 @@ int rc_cmd_distill(int argc, char **argv) {
   if (rc_model_load(&teacher, a.teacher, NULL, &e) != RC_OK || rc_model_load(&student, a.student, NULL, &e) != RC_OK)
     goto out;
   if (rc_distill_check_pair(&teacher->graph, &student->graph, &e) != RC_OK) goto out;
+  /* The student's recorded preprocessing, else the teacher's. */
+  if (cli_prep_apply(&a.data, student, &e) != RC_OK) goto out;
+  if (!a.data.recorded && cli_prep_apply(&a.data, teacher, &e) != RC_OK) goto out;
   if (cli_samples_load(&train, &a.data, &student->graph, &e) != RC_OK) goto out;
   if (a.n_val_data && load_val(&val, &a, &student->graph, &e) != RC_OK) goto out;
   {
@@ -749,7 +752,8 @@ int rc_cmd_distill(int argc, char **argv) {
   for (int i = 0; i < train.n_inputs; i++) ins[i] = train.inputs[i].t;
   for (int i = 0; i < val.n_inputs; i++) vins[i] = val.inputs[i].t;
   rc_distill_data d = {ins, train.n_inputs, train.has_labels ? train.labels.t.data : NULL,
-                       a.n_val_data ? vins : NULL, val.has_labels ? val.labels.t.data : NULL, a.val_split};
+                       a.n_val_data ? vins : NULL, val.has_labels ? val.labels.t.data : NULL, a.val_split,
+                       train.norm, train.inputs, a.n_val_data ? val.inputs : NULL};
   if (a.n_val_data && train.has_labels != val.has_labels) {
     rc__fail(&e, RC_ERR_INVALID, "give labels for both --data and --val-data, or for neither");
     goto out;
@@ -764,10 +768,18 @@ int rc_cmd_distill(int argc, char **argv) {
     goto out;
   }
   if (rc_distill_run(&r, teacher, student, &d, &a.cfg, &e) != RC_OK) goto out;
+  if (cli_prep_record(student, &a.data, &e) != RC_OK) goto out;
   if (rc_model_save(student, a.out, r.changed, r.n_changed, &e) != RC_OK) goto out;
-  if (rc_distill_verify_written(a.out, student, a.n_val_data ? vins : ins, train.n_inputs, a.cfg.batch, &diff, &e) !=
-      RC_OK)
-    goto out;
+  {
+    rc_array first[CLI_MAX_DATA];
+    rc_tensor fins[CLI_MAX_DATA];
+    memset(first, 0, sizeof first);
+    rc_status vs = cli_samples_first_batch(first, a.n_val_data ? &val : &train, a.cfg.batch, &e);
+    for (int i = 0; i < train.n_inputs; i++) fins[i] = first[i].t;
+    if (vs == RC_OK) vs = rc_distill_verify_written(a.out, student, fins, train.n_inputs, a.cfg.batch, &diff, &e);
+    for (int i = 0; i < CLI_MAX_DATA; i++) rc_array_free(&first[i]);
+    if (vs != RC_OK) goto out;
+  }
   a.train_samples = &train;
   print_results(&a, &r, diff);
   remove_checkpoints(a.checkpoint);

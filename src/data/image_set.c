@@ -16,30 +16,20 @@
 #include "core/alloc.h"
 #include "core/file.h"
 #include "core/status.h"
+#include "data/data_internal.h"
 #include "recoup/image.h"
 
 #define MAX_DEPTH 32
 #define MAX_PATH_LEN 4096
 
-static int ends_with_ci(const char *s, const char *suffix) {
-  size_t a = strlen(s), b = strlen(suffix);
-  if (b > a) return 0;
-  for (size_t i = 0; i < b; i++) {
-    char c = s[a - b + i];
-    if (c >= 'A' && c <= 'Z') c = (char)(c - 'A' + 'a');
-    if (c != suffix[i]) return 0;
-  }
-  return 1;
-}
-
 static int is_image_name(const char *name) {
-  return ends_with_ci(name, ".jpg") || ends_with_ci(name, ".jpeg") || ends_with_ci(name, ".png");
+  return rc__ends_with_ci(name, ".jpg") || rc__ends_with_ci(name, ".jpeg") || rc__ends_with_ci(name, ".png");
 }
 
 int rc_image_set_is_source(const char *path) {
   struct stat st;
   if (stat(path, &st) == 0 && S_ISDIR(st.st_mode)) return 1;
-  return ends_with_ci(path, ".txt") || ends_with_ci(path, ".lst") || ends_with_ci(path, ".list");
+  return rc__ends_with_ci(path, ".txt") || rc__ends_with_ci(path, ".lst") || rc__ends_with_ci(path, ".list");
 }
 
 /* A growing list of strings and labels. */

@@ -316,14 +316,14 @@ static rc_status read_member(rc_array *out, const zip_dir *z, const zip_entry *e
       return rc__fail(e, RC_ERR_FORMAT, "stored member sizes disagree (%llu compressed, %llu uncompressed)",
                       (unsigned long long)en->csize, (unsigned long long)en->usize);
     RC_TRY(check_crc(src, en->usize, en->crc, e));
-    rc__src s = {src, (size_t)en->usize, NULL, max_bytes};
+    rc__src s = {src, (size_t)en->usize, NULL, max_bytes, 0};
     return rc__npy_read(out, &s, e);
   }
   unsigned char *buf = rc__malloc((size_t)en->usize);
   if (!buf) return rc__fail(e, RC_ERR_NOMEM, "out of memory for %llu bytes", (unsigned long long)en->usize);
   rc_status st = inflate_exact(buf, en->usize, src, en->csize, e);
   if (st == RC_OK) st = check_crc(buf, en->usize, en->crc, e);
-  rc__src s = {buf, (size_t)en->usize, buf, max_bytes};
+  rc__src s = {buf, (size_t)en->usize, buf, max_bytes, 0};
   if (st == RC_OK) st = rc__npy_read(out, &s, e);
   rc__free(s.heap); /* NULL once adopted */
   return st;

@@ -292,6 +292,8 @@ static void input_shapes(const rc_graph *g, const rc_tensor *data, int64_t b, rc
     shapes[i] = data[i];
     shapes[i].data = NULL;
     shapes[i].dims[0] = b;
+    /* Raw sources converted per batch take the input's declared type. */
+    if (g->values[g->inputs[i]].decl.dtype == RC_DTYPE_FLOAT) shapes[i].dtype = RC_DTYPE_FLOAT;
   }
 }
 
@@ -365,8 +367,7 @@ static rc_status teacher_pass(run_state *st, const rc_dataset *d, float *out, rc
   rc_dataset td = *d;
   for (int i = 0; i < tg->n_inputs; i++) {
     int j = find_by_name(sg, sg->inputs, sg->n_inputs, tg->values[tg->inputs[i]].name);
-    td.inputs[i] = d->inputs[j];
-    td.sample_bytes[i] = d->sample_bytes[j];
+    rc_dataset_take_input(&td, i, d, j);
   }
   void *outs[1] = {out};
   return rc__run_dataset(st->teacher_plan, &td, tg->outputs, 1, outs, e);
@@ -481,11 +482,21 @@ static void update_running_stats(run_state *st, double *scratch, int64_t max_c) 
 
 /* ---- Data ----------------------------------------------------------------- */
 
+/* A view over the training (or validation) arrays, converting per batch where asked. */
+static rc_status data_view(rc_dataset *ds, const rc_distill_data *d, int val, const int64_t *index, int64_t n,
+                           rc_err *e) {
+  RC_TRY(rc_dataset_init(ds, val ? d->val_inputs : d->inputs, d->n_inputs, NULL, index, n, e));
+  const rc_array *src = val ? d->val_sources : d->sources;
+  for (int i = 0; d->norms && i < d->n_inputs; i++)
+    if (d->norms[i].scale != 0) rc_dataset_convert(ds, i, &d->norms[i], src ? &src[i] : NULL);
+  return RC_OK;
+}
+
 static rc_status setup_data(run_state *st, const rc_distill_data *d, rc_err *e) {
   int64_t n = d->inputs[0].dims[0];
   if (d->val_inputs) {
-    RC_TRY(rc_dataset_init(&st->train, d->inputs, d->n_inputs, NULL, NULL, 0, e));
-    RC_TRY(rc_dataset_init(&st->val, d->val_inputs, d->n_inputs, NULL, NULL, 0, e));
+    RC_TRY(data_view(&st->train, d, 0, NULL, 0, e));
+    RC_TRY(data_view(&st->val, d, 1, NULL, 0, e));
     st->own_val = 1;
     st->val_labels = d->val_labels;
     return RC_OK;
@@ -495,8 +506,8 @@ static rc_status setup_data(run_state *st, const rc_distill_data *d, rc_err *e) 
   RC_TRY(rc_data_split_make(&st->split, n, d->val_split, st->c->seed, e));
   if (st->split.n_train < 1 || st->split.n_val < 1)
     return rc__fail(e, RC_ERR_INVALID, "%lld samples are too few to hold out a validation slice", (long long)n);
-  RC_TRY(rc_dataset_init(&st->train, d->inputs, d->n_inputs, NULL, st->split.train, st->split.n_train, e));
-  RC_TRY(rc_dataset_init(&st->val, d->inputs, d->n_inputs, NULL, st->split.val, st->split.n_val, e));
+  RC_TRY(data_view(&st->train, d, 0, st->split.train, st->split.n_train, e));
+  RC_TRY(data_view(&st->val, d, 0, st->split.val, st->split.n_val, e));
   return RC_OK;
 }
 
@@ -1066,7 +1077,7 @@ rc_status rc_distill_run(rc_distill_result *r, rc_model *teacher, rc_model *stud
   {
     /* Teacher logits over the whole pool once, indexed by sample. */
     rc_dataset all;
-    if ((s = rc_dataset_init(&all, d->inputs, d->n_inputs, NULL, NULL, 0, e)) != RC_OK) goto out;
+    if ((s = data_view(&all, d, 0, NULL, 0, e)) != RC_OK) goto out;
     s = teacher_pass(&st, &all, st.teacher_logits, e);
     rc_dataset_free(&all);
     if (s != RC_OK) goto out;

@@ -31,6 +31,13 @@ typedef struct rc_distill_data {
   const rc_tensor *val_inputs; /* NULL: hold out val_split of `inputs` */
   const int32_t *val_labels;
   double val_split;
+  /* Per input: converted to float32 per batch with norms[i] when its scale
+   * is non-zero (raw uint8/float16 sources, possibly file mappings); NULL
+   * when the inputs are ready as they are. sources/val_sources (may be NULL)
+   * are the arrays behind inputs/val_inputs, for releasing mapped pages. */
+  const rc_data_norm *norms;
+  const rc_array *sources;
+  const rc_array *val_sources;
 } rc_distill_data;
 
 typedef enum rc_distill_event { RC_DISTILL_STEP = 0, RC_DISTILL_EPOCH = 1, RC_DISTILL_NOTE = 2 } rc_distill_event;
