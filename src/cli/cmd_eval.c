@@ -216,6 +216,7 @@ int rc_cmd_eval(int argc, char **argv) {
   run_result r = {0}, ref = {0};
   int rc = RC_EXIT_FAIL;
   if (rc_model_load(&r.model, a.model, NULL, &e) != RC_OK) goto out;
+  if (cli_prep_apply(&a.data, r.model, &e) != RC_OK) goto out;
   if (cli_samples_load(&s, &a.data, &r.model->graph, &e) != RC_OK) goto out;
   int64_t batch = a.batch < s.n ? a.batch : s.n;
   if (cli_samples_dataset(&d, &s, NULL, 0, &e) != RC_OK) goto out;

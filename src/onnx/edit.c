@@ -441,3 +441,46 @@ rc_status rc_model_edit_sort(rc_model *m, rc_err *e) {
   rc__free(done);
   return st;
 }
+
+/* ---- metadata_props ---- */
+
+const char *rc_model_meta_get(const rc_model *m, const char *key) {
+  const Onnx__ModelProto *mp = m->proto;
+  for (size_t i = 0; mp && i < mp->n_metadata_props; i++) {
+    const Onnx__StringStringEntryProto *p = mp->metadata_props[i];
+    if (p && p->key && !strcmp(p->key, key)) return p->value ? p->value : "";
+  }
+  return NULL;
+}
+
+rc_status rc_model_meta_set(rc_model *m, const char *key, const char *value, rc_err *e) {
+  Onnx__ModelProto *mp = m->proto;
+  char *v = pb_strdup(value);
+  if (!v) return nomem(m, e);
+  for (size_t i = 0; i < mp->n_metadata_props; i++) {
+    Onnx__StringStringEntryProto *p = mp->metadata_props[i];
+    if (p && p->key && !strcmp(p->key, key)) {
+      if (p->value) pb_delete(p->value);
+      p->value = v;
+      return RC_OK;
+    }
+  }
+  Onnx__StringStringEntryProto *p = pb_new(sizeof *p);
+  char *k = pb_strdup(key);
+  if (!p || !k) {
+    if (p) pb_delete(p);
+    if (k) pb_delete(k);
+    pb_delete(v);
+    return nomem(m, e);
+  }
+  onnx__string_string_entry_proto__init(p);
+  p->key = k;
+  p->value = v;
+  if (!pb_append((void ***)&mp->metadata_props, &mp->n_metadata_props, p)) {
+    pb_delete(k);
+    pb_delete(v);
+    pb_delete(p);
+    return nomem(m, e);
+  }
+  return RC_OK;
+}

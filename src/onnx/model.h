@@ -107,4 +107,10 @@ int rc_model_edit_drop_unused(rc_model *m);
  * ONNX requires; refuses cycles and values nobody produces. */
 rc_status rc_model_edit_sort(rc_model *m, rc_err *e);
 
+/* metadata_props (string keys and values for the model's users, the ONNX IR
+ * specification's StringStringEntryProto list): the value under key or NULL;
+ * set adds or replaces the entry, written by the next rc_model_save. */
+const char *rc_model_meta_get(const rc_model *m, const char *key);
+rc_status rc_model_meta_set(rc_model *m, const char *key, const char *value, rc_err *e);
+
 #endif
