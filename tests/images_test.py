@@ -228,5 +228,16 @@ if not quick:
     a, b = output_bytes(model, "2", "--scale", SCALE), output_bytes(model, "2", "--scale", SCALE)
     run.check("model outputs from an image folder are byte-identical for the same thread count", a == b,
               f"{len(a)} bytes each")
+    pruned = os.path.join(src, "models", "garment_pruned90.onnx")
+    written = []
+    for k in range(2):
+        out = os.path.join(work, f"distilled{k}.onnx")
+        js = run.json(["distill", "--teacher", model, "--student", pruned, "--data", os.path.join(work, "fmnist_png"),
+                       "--labels", "folders", "--scale", SCALE, "--steps", "40", "--batch", "32", "--seed", "7",
+                       "--threads", "2", "--out", out, "--json"])
+        written.append(open(out, "rb").read())
+    run.check("distill from a PNG folder (labels folders): same seed and threads give a byte-identical model",
+              written[0] == written[1] and js["images"]["classes"] == [str(k) for k in range(10)],
+              f"{len(written[0])} bytes each, classes {js['images'].get('classes')}")
 
 run.finish()
