@@ -14,6 +14,8 @@
 
 #include "cli/cli.h"
 #include "cli/cli_data.h"
+#include "core/alloc.h"
+#include "core/file.h"
 #include "cli/report.h"
 #include "core/fmt.h"
 #include "onnx/model.h"
@@ -41,6 +43,9 @@ static void usage(FILE *f) {
       "  --val-split F            fraction of --data held out for validation (default 0.1)\n"
       "  --scale S, --mean M[,..], --std D[,..]   x' = (x*S - M) / D, as for eval\n"
       CLI_IMAGE_HELP
+      "  --cache-mb N             keep the teacher's cached outputs in memory up to N MB,\n"
+      "                           beyond that in a mapped temporary file next to --out\n"
+      "                           (default: a quarter of physical memory)\n"
       "\n"
       "Training (defaults chosen for recovery fine-tuning from a good start):\n"
       "  --epochs E               passes over the training samples (default 3)\n"
@@ -123,7 +128,7 @@ enum {
   OPT_SCALE, OPT_MEAN, OPT_STD, OPT_EPOCHS, OPT_STEPS, OPT_BATCH, OPT_OPTIMIZER, OPT_LR, OPT_SCHEDULE,
   OPT_WARMUP, OPT_STEP_SIZE, OPT_GAMMA, OPT_WD, OPT_MOMENTUM, OPT_NO_NESTEROV, OPT_CLIP, OPT_LOSS,
   OPT_TEMPERATURE, OPT_ALPHA, OPT_BN, OPT_TRAIN, OPT_FREEZE, OPT_SEED, OPT_THREADS, OPT_OUT, OPT_JSON,
-  OPT_CHECKPOINT, OPT_CHECKPOINT_EVERY, OPT_RESUME, OPT_PAIR, OPT_CONFIG, OPT_REPORT, OPT_RESIZE, OPT_SKIP_BAD
+  OPT_CHECKPOINT, OPT_CHECKPOINT_EVERY, OPT_RESUME, OPT_PAIR, OPT_CONFIG, OPT_REPORT, OPT_RESIZE, OPT_SKIP_BAD, OPT_CACHE_MB
 };
 
 static int number(const char *opt, const char *v, double lo, double hi, double *out) {
@@ -175,6 +180,10 @@ static int apply_option(distill_args *a, int c, const char *v) {
     case OPT_STD: return cli_data_option(&a->data, "distill", "std", v);
     case OPT_RESIZE: return cli_data_option(&a->data, "distill", "resize", v);
     case OPT_SKIP_BAD: return cli_data_option(&a->data, "distill", "skip-bad", v);
+    case OPT_CACHE_MB:
+      if (integer("cache-mb", v, 1, LONG_MAX / 2, &l)) return RC_EXIT_USAGE;
+      a->cfg.cache_bytes = (size_t)l << 20;
+      return 0;
     case OPT_EPOCHS:
       if (integer("epochs", v, 1, 1000000, &l)) return RC_EXIT_USAGE;
       cfg->epochs = l;
@@ -372,6 +381,7 @@ static int parse_args(distill_args *a, int argc, char **argv) {
       {"val-split", required_argument, NULL, OPT_VAL_SPLIT}, {"scale", required_argument, NULL, OPT_SCALE},
       {"mean", required_argument, NULL, OPT_MEAN}, {"std", required_argument, NULL, OPT_STD},
       {"resize", required_argument, NULL, OPT_RESIZE}, {"skip-bad", no_argument, NULL, OPT_SKIP_BAD},
+      {"cache-mb", required_argument, NULL, OPT_CACHE_MB},
       {"epochs", required_argument, NULL, OPT_EPOCHS}, {"steps", required_argument, NULL, OPT_STEPS},
       {"batch", required_argument, NULL, OPT_BATCH}, {"optimizer", required_argument, NULL, OPT_OPTIMIZER},
       {"lr", required_argument, NULL, OPT_LR}, {"schedule", required_argument, NULL, OPT_SCHEDULE},
@@ -603,6 +613,8 @@ static cJSON *results_json(const distill_args *a, const rc_distill_result *r, do
   cJSON_AddNumberToObject(root, "rollbacks", r->rollbacks);
   cJSON_AddNumberToObject(root, "reload_max_diff", verify_diff);
   if (a->train_samples) cli_images_json(root, a->train_samples);
+  cJSON_AddStringToObject(root, "teacher_cache", r->teacher_cache_in_file ? "file" : "memory");
+  cJSON_AddNumberToObject(root, "teacher_cache_bytes", (double)r->teacher_cache_bytes);
   cJSON *layers = cJSON_AddArrayToObject(root, "layers");
   for (int i = 0; i < r->n_layers; i++) {
     cJSON *o = cJSON_CreateObject();
@@ -732,6 +744,7 @@ int rc_cmd_distill(int argc, char **argv) {
   memset(&r, 0, sizeof r);
   int rc = RC_EXIT_FAIL;
   double diff = 0;
+  char *cache_dir = NULL;
   if (check_output_path(&a, &e)) goto out;
   if (a.report && cli_report_prepare(a.report, 0, &e) != RC_OK) goto out;
   if (rc_model_load(&teacher, a.teacher, NULL, &e) != RC_OK || rc_model_load(&student, a.student, NULL, &e) != RC_OK)
@@ -767,6 +780,8 @@ int rc_cmd_distill(int argc, char **argv) {
     rc__fail(&e, RC_ERR_INVALID, "--resume %s is the output file", a.cfg.resume_path);
     goto out;
   }
+  cache_dir = rc__path_dir(a.out); /* a spilled teacher cache goes beside the output */
+  a.cfg.cache_dir = cache_dir;
   if (rc_distill_run(&r, teacher, student, &d, &a.cfg, &e) != RC_OK) goto out;
   if (cli_prep_record(student, &a.data, &e) != RC_OK) goto out;
   if (rc_model_save(student, a.out, r.changed, r.n_changed, &e) != RC_OK) goto out;
@@ -788,6 +803,7 @@ int rc_cmd_distill(int argc, char **argv) {
 out:
   if (rc != RC_EXIT_OK) cli_fail(&e);
   rc_distill_result_free(&r);
+  rc__free(cache_dir);
   cli_samples_free(&train);
   cli_samples_free(&val);
   free(a.config_strings);

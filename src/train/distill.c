@@ -13,6 +13,7 @@
 
 #include "core/alloc.h"
 #include "core/file.h"
+#include "data/spill.h"
 #include "plan/inspect.h"
 #include "plan/load.h"
 #include "plan/plan.h"
@@ -145,7 +146,8 @@ typedef struct run_state {
   rc_plan *train_plan, *eval_plan, *teacher_plan;
   int64_t batch, k;
   rc_dataset train, val;
-  float *teacher_logits;     /* per training-pool sample (N_pool, K) */
+  float *teacher_logits;     /* per training-pool sample (N_pool, K), in teacher_cache */
+  rc_spill teacher_cache;    /* memory, or a mapped file past config cache_bytes */
   float *teacher_val_logits; /* (n_val, K) */
   float *val_logits;
   const int32_t *val_labels;
@@ -1002,7 +1004,7 @@ static void free_state(run_state *st) {
   rc__free(st->tr);
   rc__free(st->bn_nodes);
   rc__free(st->trainable_mask);
-  rc__free(st->teacher_logits);
+  rc_spill_free(&st->teacher_cache);
   rc__free(st->teacher_val_logits);
   rc__free(st->val_logits);
 }
@@ -1067,7 +1069,12 @@ rc_status rc_distill_run(rc_distill_result *r, rc_model *teacher, rc_model *stud
     goto out;
   if ((s = val_labels_of(&st, d, &val_labels, e)) != RC_OK) goto out;
   int64_t pool = d->inputs[0].dims[0];
-  st.teacher_logits = rc__malloc(sizeof(float) * (size_t)(pool * st.k));
+  if ((s = rc_spill_alloc(&st.teacher_cache, sizeof(float) * (size_t)(pool * st.k), c->cache_bytes, c->cache_dir,
+                          e)) != RC_OK)
+    goto out;
+  st.teacher_logits = st.teacher_cache.p;
+  r->teacher_cache_in_file = st.teacher_cache.in_file;
+  r->teacher_cache_bytes = (int64_t)st.teacher_cache.n;
   st.teacher_val_logits = rc__malloc(sizeof(float) * (size_t)(st.val.n * st.k));
   st.val_logits = rc__malloc(sizeof(float) * (size_t)(st.val.n * st.k));
   if (!st.teacher_logits || !st.teacher_val_logits || !st.val_logits) {

@@ -86,6 +86,11 @@ typedef struct rc_distill_config {
    * uninterrupted run with the same inputs and settings. */
   const char *resume_path;
   const volatile sig_atomic_t *stop;
+  /* The teacher outputs cached per training sample live in memory up to
+   * cache_bytes (0: a quarter of physical memory), beyond it in a mapped
+   * temporary file in cache_dir (NULL: the current folder). */
+  size_t cache_bytes;
+  const char *cache_dir;
 } rc_distill_config;
 
 void rc_distill_config_defaults(rc_distill_config *c);
@@ -128,6 +133,8 @@ typedef struct rc_distill_result {
   int mask_ok;
   int n_grids;                       /* integer initializers rewritten on their unchanged grids */
   int rollbacks, stopped_nonfinite;
+  int teacher_cache_in_file;         /* the teacher-output cache spilled to a mapped file */
+  int64_t teacher_cache_bytes;
   double *epoch_loss;                /* per epoch (n_epochs) */
   rc_metrics *epoch_val;
   int64_t n_epochs;
