@@ -1,9 +1,12 @@
 /* Folders and lists of images as --data: the model's input shape sets the
  * channels and crop, labels come from subfolders or the list, unreadable
  * images stop the run or (--skip-bad) are listed and left out. */
+#define _POSIX_C_SOURCE 200809L /* clock_gettime */
+
 #include <cjson/cJSON.h>
 #include <stdio.h>
 #include <string.h>
+#include <time.h>
 
 #include "cli/cli.h"
 #include "cli/cli_data.h"
@@ -80,8 +83,13 @@ rc_status cli_images_load(cli_samples *s, rc_array *out, const cli_data_opts *o,
   if (o->labels && !strcmp(o->labels, "list")) mode = RC_IMAGE_LABELS_LIST;
   RC_TRY(rc_image_set_open(&s->images, file, mode, e));
   s->from_images = 1;
+  struct timespec t0, t1;
+  clock_gettime(CLOCK_MONOTONIC, &t0);
   RC_TRY(rc_image_set_load(&s->decoded, &s->images, &p, o->skip_bad, 0, e));
+  clock_gettime(CLOCK_MONOTONIC, &t1);
   print_summary(s, &p, file);
+  double secs = (double)(t1.tv_sec - t0.tv_sec) + 1e-9 * (double)(t1.tv_nsec - t0.tv_nsec);
+  if (secs > 0) fprintf(stderr, "images: decoded in %.2f s (%.0f images/s)\n", secs, (double)s->images.n / secs);
   /* The array moves to the caller; the load keeps labels and skipped names. */
   *out = s->decoded.images;
   memset(&s->decoded.images, 0, sizeof s->decoded.images);
