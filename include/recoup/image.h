@@ -8,7 +8,7 @@
  * every other data source goes through (rc_data_to_float).
  *
  * An image set is a folder read recursively (files ending .jpg, .jpeg, .png
- * in any case, in byte order of their relative paths) or a text file with
+ * in any case, in name order folder by folder) or a text file with
  * one path per line (relative paths are taken from the list's folder),
  * optionally followed by whitespace and an integer label. Every error names
  * the file and what is wrong.

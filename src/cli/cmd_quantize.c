@@ -64,7 +64,6 @@ typedef struct quantize_args {
   const char *model, *out;
   cli_data_opts data;
   long limit, seed; /* --limit N samples after a shuffle seeded with --seed */
-  int64_t calib_n;  /* samples calibrated on */
   rc_quant_config cfg;
   long threads;
   int json;
@@ -277,7 +276,6 @@ static void print_json(const quantize_args *a, const rc_quant_report *r, const c
   cJSON_AddBoolToObject(root, "int4_stored_as_int8", r->int4_as_int8);
   if (a->cfg.activation_bits) cJSON_AddNumberToObject(root, "activation_bits", a->cfg.activation_bits);
   else cJSON_AddNullToObject(root, "activation_bits");
-  cJSON_AddNumberToObject(root, "calibration_samples", (double)a->calib_n);
   cJSON_AddStringToObject(root, "calibration", a->cfg.calib == RC_CALIB_MINMAX ? "minmax" : "percentile");
   if (a->cfg.calib == RC_CALIB_PERCENTILE) cJSON_AddNumberToObject(root, "percentile", a->cfg.percentile);
   cJSON_AddNumberToObject(root, "calibration_samples", (double)r->calib_samples);
@@ -398,7 +396,6 @@ int rc_cmd_quantize(int argc, char **argv) {
   if (rc_model_save(m, a.out, NULL, 0, &e) != RC_OK) goto out;
   written = 1;
   int64_t batch = a.cfg.batch < d.n ? a.cfg.batch : d.n;
-  a.calib_n = d.n;
   if (verify_written(&cmp, a.out, &m->graph, &s, &d, batch, &e) != RC_OK) goto out;
   if (a.json) print_json(&a, &rep, &cmp, (long long)m->file_bytes, file_size(a.out));
   else print_table(&a, &rep, &cmp, (long long)m->file_bytes, file_size(a.out));
