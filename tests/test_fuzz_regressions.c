@@ -30,7 +30,8 @@ static const struct {
                {"npy", rc_fuzz_npy},
                {"npz", rc_fuzz_npz},
                {"idx", rc_fuzz_idx},
-               {"tensorproto", rc_fuzz_tensorproto}};
+               {"tensorproto", rc_fuzz_tensorproto},
+               {"image", rc_fuzz_image}};
 
 static const char *source_dir(void) {
   const char *s = getenv("RECOUP_SOURCE_DIR");

@@ -16,6 +16,8 @@
 #include "cli/cli_data.h"
 #include "cli/cli_outputs.h"
 #include "cli/cli_synth.h"
+#include "core/alloc.h"
+#include "core/file.h"
 #include "cli/report.h"
 #include "cli/weight_rules.h"
 #include "core/fmt.h"
@@ -47,6 +49,10 @@ static void usage(FILE *f) {
       "  --val-labels FILE        labels of --val-data\n"
       "  --val-split F            fraction of --data held out for validation (default 0.1)\n"
       "  --scale S, --mean M[,..], --std D[,..]   x' = (x*S - M) / D, as for eval\n"
+      CLI_IMAGE_HELP
+      "  --cache-mb N             keep the teacher's cached outputs in memory up to N MB,\n"
+      "                           beyond that in a mapped temporary file next to --out\n"
+      "                           (default: a quarter of physical memory)\n"
       "\n"
       "Training (defaults chosen for recovery fine-tuning from a good start):\n"
       "  --epochs E               passes over the training samples (default 3)\n"
@@ -124,6 +130,7 @@ typedef struct distill_args {
   int n_train, n_freeze;
   long threads;
   int json;
+  const cli_samples *train_samples; /* for the image summary in --json and reports */
   int lr_set, wd_set;
   const char *checkpoint;
   char checkpoint_buf[4096];
@@ -143,7 +150,7 @@ enum {
   OPT_WARMUP, OPT_STEP_SIZE, OPT_GAMMA, OPT_WD, OPT_MOMENTUM, OPT_NO_NESTEROV, OPT_CLIP, OPT_LOSS,
   OPT_TEMPERATURE, OPT_ALPHA, OPT_BN, OPT_MASK, OPT_TRAIN, OPT_FREEZE, OPT_SEED, OPT_THREADS, OPT_OUT, OPT_JSON,
   OPT_CHECKPOINT, OPT_CHECKPOINT_EVERY, OPT_RESUME, OPT_PAIR, OPT_CONFIG, OPT_REPORT, OPT_OUTPUT_LOSS, OPT_TARGETS,
-  OPT_VAL_TARGETS, OPT_IGNORE_LABEL
+  OPT_VAL_TARGETS, OPT_IGNORE_LABEL, OPT_RESIZE, OPT_SKIP_BAD, OPT_CACHE_MB
 };
 
 static int number(const char *opt, const char *v, double lo, double hi, double *out) {
@@ -193,6 +200,12 @@ static int apply_option(distill_args *a, int c, const char *v) {
     case OPT_SCALE: return cli_data_option(&a->data, "distill", "scale", v);
     case OPT_MEAN: return cli_data_option(&a->data, "distill", "mean", v);
     case OPT_STD: return cli_data_option(&a->data, "distill", "std", v);
+    case OPT_RESIZE: return cli_data_option(&a->data, "distill", "resize", v);
+    case OPT_SKIP_BAD: return cli_data_option(&a->data, "distill", "skip-bad", v);
+    case OPT_CACHE_MB:
+      if (integer("cache-mb", v, 1, LONG_MAX / 2, &l)) return RC_EXIT_USAGE;
+      a->cfg.cache_bytes = (size_t)l << 20;
+      return 0;
     case OPT_EPOCHS:
       if (integer("epochs", v, 1, 1000000, &l)) return RC_EXIT_USAGE;
       cfg->epochs = l;
@@ -416,6 +429,8 @@ static int parse_args(distill_args *a, int argc, char **argv) {
       {"val-data", required_argument, NULL, OPT_VAL_DATA}, {"val-labels", required_argument, NULL, OPT_VAL_LABELS},
       {"val-split", required_argument, NULL, OPT_VAL_SPLIT}, {"scale", required_argument, NULL, OPT_SCALE},
       {"mean", required_argument, NULL, OPT_MEAN}, {"std", required_argument, NULL, OPT_STD},
+      {"resize", required_argument, NULL, OPT_RESIZE}, {"skip-bad", no_argument, NULL, OPT_SKIP_BAD},
+      {"cache-mb", required_argument, NULL, OPT_CACHE_MB},
       {"epochs", required_argument, NULL, OPT_EPOCHS}, {"steps", required_argument, NULL, OPT_STEPS},
       {"batch", required_argument, NULL, OPT_BATCH}, {"optimizer", required_argument, NULL, OPT_OPTIMIZER},
       {"lr", required_argument, NULL, OPT_LR}, {"schedule", required_argument, NULL, OPT_SCHEDULE},
@@ -649,6 +664,9 @@ static cJSON *results_json(const distill_args *a, const rc_distill_result *r, do
   cJSON_AddItemToObject(root, "weights", cli_weight_rules_json(r->rules, r->n_rules));
   cJSON_AddNumberToObject(root, "rollbacks", r->rollbacks);
   cJSON_AddNumberToObject(root, "reload_max_diff", verify_diff);
+  if (a->train_samples) cli_images_json(root, a->train_samples);
+  cJSON_AddStringToObject(root, "teacher_cache", r->teacher_cache_in_file ? "file" : "memory");
+  cJSON_AddNumberToObject(root, "teacher_cache_bytes", (double)r->teacher_cache_bytes);
   cJSON *layers = cJSON_AddArrayToObject(root, "layers");
   for (int i = 0; i < r->n_layers; i++) {
     cJSON *o = cJSON_CreateObject();
@@ -786,7 +804,7 @@ static rc_status load_val(cli_samples *val, const distill_args *a, const rc_grap
   cli_data_opts vo = a->data;
   memcpy(vo.data, a->val_data, sizeof vo.data);
   vo.n_data = a->n_val_data;
-  vo.labels = NULL;
+  vo.labels = cli_images_labels_word(a->val_labels) ? a->val_labels : NULL; /* image sets read their own labels */
   return cli_samples_load(val, &vo, g, e);
 }
 
@@ -804,6 +822,7 @@ int rc_cmd_distill(int argc, char **argv) {
   memset(&r, 0, sizeof r);
   int rc = RC_EXIT_FAIL;
   double diff = 0;
+  char *cache_dir = NULL;
   if (check_output_path(&a, &e)) goto out;
   if (a.report && cli_report_prepare(a.report, 0, &e) != RC_OK) goto out;
   if (rc_model_load(&teacher, a.teacher, NULL, &e) != RC_OK || rc_model_load(&student, a.student, NULL, &e) != RC_OK)
@@ -813,6 +832,9 @@ int rc_cmd_distill(int argc, char **argv) {
     rc__fail(&e, RC_ERR_INVALID, "--data %s: expected synth:N with N > 0", a.data.data[0]);
     goto out;
   }
+  /* The student's recorded preprocessing, else the teacher's. */
+  if (cli_prep_apply(&a.data, student, &e) != RC_OK) goto out;
+  if (!a.data.recorded && cli_prep_apply(&a.data, teacher, &e) != RC_OK) goto out;
   if (cli_synth_count(a.data.data[0]) > 0 ? synth_samples(&train, &a, teacher, &e) != RC_OK
                                            : cli_samples_load(&train, &a.data, &student->graph, &e) != RC_OK)
     goto out;
@@ -836,7 +858,7 @@ int rc_cmd_distill(int argc, char **argv) {
   for (int i = 0; i < val.n_inputs; i++) vins[i] = val.inputs[i].t;
   rc_distill_data d = {ins, train.n_inputs, train.has_labels ? train.labels.t.data : NULL,
                        a.n_val_data ? vins : NULL, val.has_labels ? val.labels.t.data : NULL, a.val_split,
-                       side, val_side};
+                       side, val_side, train.norm, train.inputs, a.n_val_data ? val.inputs : NULL};
   if (a.n_val_data && train.has_labels != val.has_labels) {
     rc__fail(&e, RC_ERR_INVALID, "give labels for both --data and --val-data, or for neither");
     goto out;
@@ -847,11 +869,22 @@ int rc_cmd_distill(int argc, char **argv) {
   a.cfg.log = (rc_logger){cli_log_stderr, &ps.tty, RC_LOG_INFO};
   a.cfg.stop = &cli_stop_requested;
   cli_catch_stop_signals();
+  cache_dir = rc__path_dir(a.out); /* a spilled teacher cache goes beside the output */
+  a.cfg.cache_dir = cache_dir;
   if (rc_distill_run(&r, teacher, student, &d, &a.cfg, &e) != RC_OK) goto out;
+  if (cli_prep_record(student, &a.data, &e) != RC_OK) goto out;
   if (rc_model_save(student, a.out, r.changed, r.n_changed, &e) != RC_OK) goto out;
-  if (rc_distill_verify_written(a.out, student, a.n_val_data ? vins : ins, train.n_inputs, a.cfg.batch, &diff, &e) !=
-      RC_OK)
-    goto out;
+  {
+    rc_array first[CLI_MAX_DATA];
+    rc_tensor fins[CLI_MAX_DATA];
+    memset(first, 0, sizeof first);
+    rc_status vs = cli_samples_first_batch(first, a.n_val_data ? &val : &train, a.cfg.batch, &e);
+    for (int i = 0; i < train.n_inputs; i++) fins[i] = first[i].t;
+    if (vs == RC_OK) vs = rc_distill_verify_written(a.out, student, fins, train.n_inputs, a.cfg.batch, &diff, &e);
+    for (int i = 0; i < CLI_MAX_DATA; i++) rc_array_free(&first[i]);
+    if (vs != RC_OK) goto out;
+  }
+  a.train_samples = &train;
   print_results(&a, &r, diff);
   remove_checkpoints(a.checkpoint);
   if (a.report && write_report(&a, &r, diff, &e) != RC_OK) goto out;
@@ -859,6 +892,7 @@ int rc_cmd_distill(int argc, char **argv) {
 out:
   if (rc != RC_EXIT_OK) cli_fail(&e);
   rc_distill_result_free(&r);
+  rc__free(cache_dir);
   cli_samples_free(&train);
   cli_samples_free(&val);
   free(a.config_strings);

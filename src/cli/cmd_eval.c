@@ -32,6 +32,7 @@ static void usage(FILE *f) {
           "  --scale S              multiply raw values by S (default 1; 0.00392 maps 0..255 to 0..1)\n"
           "  --mean M[,M...]        subtract after scaling, one value or one per channel\n"
           "  --std D[,D...]         then divide, one value or one per channel\n"
+          CLI_IMAGE_HELP
           "  --ref OTHER.onnx       compare with another model on the same samples\n"
           "  --output-loss OUT=TERM[:key=value]  measure output OUT as a class map (kd,\n"
           "                         kd-sigmoid: per-position agreement, mean IoU) or as values\n"
@@ -64,6 +65,7 @@ static int parse_args(eval_args *a, int argc, char **argv) {
       {"ref", required_argument, NULL, 'r'},   {"out", required_argument, NULL, 'o'},
       {"threads", required_argument, NULL, 't'}, {"json", no_argument, NULL, 'j'},
       {"output-loss", required_argument, NULL, 'L'}, {"ignore-label", required_argument, NULL, 'I'},
+      {"resize", required_argument, NULL, 'R'}, {"skip-bad", no_argument, NULL, 'K'},
       {"help", no_argument, NULL, 'h'},        {NULL, 0, NULL, 0}};
   memset(a, 0, sizeof *a);
   cli_data_opts_init(&a->data);
@@ -85,6 +87,8 @@ static int parse_args(eval_args *a, int argc, char **argv) {
       case 'S': if (cli_data_option(&a->data, "eval", "scale", optarg)) return RC_EXIT_USAGE; break;
       case 'M': if (cli_data_option(&a->data, "eval", "mean", optarg)) return RC_EXIT_USAGE; break;
       case 'D': if (cli_data_option(&a->data, "eval", "std", optarg)) return RC_EXIT_USAGE; break;
+      case 'R': if (cli_data_option(&a->data, "eval", "resize", optarg)) return RC_EXIT_USAGE; break;
+      case 'K': cli_data_option(&a->data, "eval", "skip-bad", NULL); break;
       case 'r': a->ref = optarg; break;
       case 'o': a->out = optarg; break;
       case 't':
@@ -223,6 +227,7 @@ static void print_result(const eval_args *a, const cli_samples *s, const rc_metr
     }
     if (k) cJSON_AddNumberToObject(root, "classes", (double)k);
     if (a->out) cJSON_AddStringToObject(root, "out", a->out);
+    cli_images_json(root, s);
     char *text = cli_json_print(root);
     if (text) puts(text);
     free(text);
@@ -271,6 +276,7 @@ int rc_cmd_eval(int argc, char **argv) {
   int rc = RC_EXIT_FAIL;
   if (a.out && check_output_path(&a, &e) != RC_OK) goto out;
   if (rc_model_load(&r.model, a.model, NULL, &e) != RC_OK) goto out;
+  if (cli_prep_apply(&a.data, r.model, &e) != RC_OK) goto out;
   if (cli_samples_load(&s, &a.data, &r.model->graph, &e) != RC_OK) goto out;
   int64_t batch = a.batch < s.n ? a.batch : s.n;
   if (cli_samples_dataset(&d, &s, NULL, 0, &e) != RC_OK) goto out;

@@ -346,6 +346,7 @@ static rc_status make_plan(qstate *q, const rc_dataset *d, int64_t batch, const 
     shapes[i] = d->inputs[i];
     shapes[i].dims[0] = batch;
     shapes[i].data = NULL;
+    if (d->to_float[i]) shapes[i].dtype = RC_DTYPE_FLOAT; /* converted per batch */
   }
   rc_plan_opts opts = {0};
   opts.keep = keep;

@@ -11,6 +11,7 @@
 #include "core/alloc.h"
 #include "core/file.h"
 #include "core/log.h"
+#include "data/spill.h"
 #include "plan/inspect.h"
 #include "plan/load.h"
 #include "plan/plan.h"
@@ -146,7 +147,8 @@ typedef struct run_state {
   rc_plan *train_plan, *eval_plan, *teacher_plan;
   int64_t batch, k;
   rc_dataset train, val;
-  float *teacher_logits;     /* per training-pool sample (N_pool, K) */
+  float *teacher_logits;     /* per training-pool sample (N_pool, K), in teacher_cache */
+  rc_spill teacher_cache;    /* memory, or a mapped file past config cache_bytes */
   float *teacher_val_logits; /* (n_val, K) */
   float *val_logits;
   const int32_t *val_labels;
@@ -330,6 +332,8 @@ static void input_shapes(const rc_graph *g, const rc_tensor *data, int64_t b, rc
     shapes[i] = data[i];
     shapes[i].data = NULL;
     shapes[i].dims[0] = b;
+    /* Raw sources converted per batch take the input's declared type. */
+    if (g->values[g->inputs[i]].decl.dtype == RC_DTYPE_FLOAT) shapes[i].dtype = RC_DTYPE_FLOAT;
   }
 }
 
@@ -407,8 +411,7 @@ static rc_status teacher_pass(run_state *st, const rc_dataset *d, float *out, rc
   rc_dataset td = *d;
   for (int i = 0; i < tg->n_inputs; i++) {
     int j = find_by_name(sg, sg->inputs, sg->n_inputs, tg->values[tg->inputs[i]].name);
-    td.inputs[i] = d->inputs[j];
-    td.sample_bytes[i] = d->sample_bytes[j];
+    rc_dataset_take_input(&td, i, d, j);
   }
   void *outs[1] = {out};
   return rc__run_dataset(st->teacher_plan, &td, tg->outputs, 1, outs, e);
@@ -523,11 +526,21 @@ static void update_running_stats(run_state *st, double *scratch, int64_t max_c) 
 
 /* ---- Data ----------------------------------------------------------------- */
 
+/* A view over the training (or validation) arrays, converting per batch where asked. */
+static rc_status data_view(rc_dataset *ds, const rc_distill_data *d, int val, const int64_t *index, int64_t n,
+                           rc_err *e) {
+  RC_TRY(rc_dataset_init(ds, val ? d->val_inputs : d->inputs, d->n_inputs, NULL, index, n, e));
+  const rc_array *src = val ? d->val_sources : d->sources;
+  for (int i = 0; d->norms && i < d->n_inputs; i++)
+    if (d->norms[i].scale != 0) rc_dataset_convert(ds, i, &d->norms[i], src ? &src[i] : NULL);
+  return RC_OK;
+}
+
 static rc_status setup_data(run_state *st, const rc_distill_data *d, rc_err *e) {
   int64_t n = d->inputs[0].dims[0];
   if (d->val_inputs) {
-    RC_TRY(rc_dataset_init(&st->train, d->inputs, d->n_inputs, NULL, NULL, 0, e));
-    RC_TRY(rc_dataset_init(&st->val, d->val_inputs, d->n_inputs, NULL, NULL, 0, e));
+    RC_TRY(data_view(&st->train, d, 0, NULL, 0, e));
+    RC_TRY(data_view(&st->val, d, 1, NULL, 0, e));
     st->own_val = 1;
     st->val_labels = d->val_labels;
     return RC_OK;
@@ -537,8 +550,8 @@ static rc_status setup_data(run_state *st, const rc_distill_data *d, rc_err *e) 
   RC_TRY(rc_data_split_make(&st->split, n, d->val_split, st->c->seed, e));
   if (st->split.n_train < 1 || st->split.n_val < 1)
     return rc__fail(e, RC_ERR_INVALID, "%lld samples are too few to hold out a validation slice", (long long)n);
-  RC_TRY(rc_dataset_init(&st->train, d->inputs, d->n_inputs, NULL, st->split.train, st->split.n_train, e));
-  RC_TRY(rc_dataset_init(&st->val, d->inputs, d->n_inputs, NULL, st->split.val, st->split.n_val, e));
+  RC_TRY(data_view(&st->train, d, 0, st->split.train, st->split.n_train, e));
+  RC_TRY(data_view(&st->val, d, 0, st->split.val, st->split.n_val, e));
   return RC_OK;
 }
 
@@ -953,7 +966,7 @@ static void free_state(run_state *st) {
   rc__free(st->trainable_mask);
   rc__free(st->rules);
   rc__free(st->rule_value);
-  rc__free(st->teacher_logits);
+  rc_spill_free(&st->teacher_cache);
   rc__free(st->teacher_val_logits);
   rc__free(st->val_logits);
 }
@@ -1020,15 +1033,19 @@ static rc_status check_outputs_mode(const rc_distill_config *c, const rc_distill
 
 /* Teacher logits over the whole pool once, indexed by sample, and over the
  * validation samples; the teacher's own figures. */
-static rc_status teacher_logits_all(run_state *st, const rc_distill_data *d, rc_distill_result *r, rc_err *e) {
+static rc_status teacher_logits_all(run_state *st, const rc_distill_data *d, const rc_distill_config *c,
+                                    rc_distill_result *r, rc_err *e) {
   int64_t pool = d->inputs[0].dims[0];
-  st->teacher_logits = rc__malloc(sizeof(float) * (size_t)(pool * st->k));
+  RC_TRY(rc_spill_alloc(&st->teacher_cache, sizeof(float) * (size_t)(pool * st->k), c->cache_bytes, c->cache_dir, e));
+  st->teacher_logits = st->teacher_cache.p;
+  r->teacher_cache_in_file = st->teacher_cache.in_file;
+  r->teacher_cache_bytes = (int64_t)st->teacher_cache.n;
   st->teacher_val_logits = rc__malloc(sizeof(float) * (size_t)(st->val.n * st->k));
   st->val_logits = rc__malloc(sizeof(float) * (size_t)(st->val.n * st->k));
   if (!st->teacher_logits || !st->teacher_val_logits || !st->val_logits)
     return rc__fail(e, RC_ERR_NOMEM, "out of memory for logits");
   rc_dataset all;
-  RC_TRY(rc_dataset_init(&all, d->inputs, d->n_inputs, NULL, NULL, 0, e));
+  RC_TRY(data_view(&all, d, 0, NULL, 0, e));
   rc_status s = teacher_pass(st, &all, st->teacher_logits, e);
   rc_dataset_free(&all);
   RC_TRY(s);
@@ -1077,7 +1094,7 @@ rc_status rc_distill_run(rc_distill_result *r, rc_model *teacher, rc_model *stud
     if ((s = rc__outputs_validate(st.outs, st.teacher_step, st.teacher_step, &st.val, st.val_side, st.val.index,
                                   &r->teacher, e)) != RC_OK)
       goto out;
-  } else if ((s = teacher_logits_all(&st, d, r, e)) != RC_OK) {
+  } else if ((s = teacher_logits_all(&st, d, c, r, e)) != RC_OK) {
     goto out;
   }
   if ((s = validate(&st, &r->before, e)) != RC_OK) goto out;

@@ -39,6 +39,13 @@ typedef struct rc_distill_data {
   /* Per-output runs: regression targets and dense labels, indexed by sample
    * of `inputs` (side) and of `val_inputs` (val_side). */
   rc_output_side side, val_side;
+  /* Per input: converted to float32 per batch with norms[i] when its scale
+   * is non-zero (raw uint8/float16 sources, possibly file mappings); NULL
+   * when the inputs are ready as they are. sources/val_sources (may be NULL)
+   * are the arrays behind inputs/val_inputs, for releasing mapped pages. */
+  const rc_data_norm *norms;
+  const rc_array *sources;
+  const rc_array *val_sources;
 } rc_distill_data;
 
 typedef enum rc_distill_event { RC_DISTILL_STEP = 0, RC_DISTILL_EPOCH = 1 } rc_distill_event;
@@ -96,6 +103,11 @@ typedef struct rc_distill_config {
   const rc_output_loss *output_losses;
   int n_output_losses;
   const char *label_output;
+  /* The teacher outputs cached per training sample live in memory up to
+   * cache_bytes (0: a quarter of physical memory), beyond it in a mapped
+   * temporary file in cache_dir (NULL: the current folder). */
+  size_t cache_bytes;
+  const char *cache_dir;
 } rc_distill_config;
 
 void rc_distill_config_defaults(rc_distill_config *c);
@@ -149,6 +161,8 @@ typedef struct rc_distill_result {
   rc_distill_tensor_rule *rules;     /* per trained weight (not biases or normalisation) */
   int n_rules;
   int rollbacks, stopped_nonfinite;
+  int teacher_cache_in_file;         /* the teacher-output cache spilled to a mapped file */
+  int64_t teacher_cache_bytes;
   double *epoch_loss;                /* per epoch (n_epochs) */
   rc_metrics *epoch_val;
   int64_t n_epochs;
