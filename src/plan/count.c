@@ -51,6 +51,14 @@ rc_tensor *rc__batch_inputs(const rc_graph *g, int64_t b) {
   return ins;
 }
 
+void rc__input_shapes(const rc_graph *g, const rc_tensor *data, int64_t b, rc_tensor *shapes) {
+  for (int i = 0; i < g->n_inputs; i++) {
+    shapes[i] = data[i];
+    shapes[i].data = NULL;
+    shapes[i].dims[0] = b;
+  }
+}
+
 rc_status rc__plan_batch1(rc_plan **p, const rc_graph *g, rc_err *e) {
   *p = NULL;
   rc_tensor *ins = rc__batch1_inputs(g);
