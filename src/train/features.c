@@ -8,13 +8,22 @@
 #include "core/alloc.h"
 #include "train/feature_loss.h"
 
-static const char *const term_names[RC_TERM_COUNT] = {
-    "kd", "logit-mse", "hint", "attention", "boundary", "fsp", "rkd-distance", "rkd-angle", "attention-map",
-    "weight-anchor"};
-static const float term_defaults[RC_TERM_COUNT] = {1, 1, 1, RC_AT_DEFAULT_BETA, 1, 1, RC_RKD_DEFAULT_DISTANCE_WEIGHT,
-                                                   RC_RKD_DEFAULT_ANGLE_WEIGHT, 1, 1e-3f};
+static const rc_term_info terms[RC_TERM_COUNT] = {
+#define TERM_ROW(id, name, weight, kind, help) {name, weight, kind, help},
+    RC_LOSS_TERMS(TERM_ROW)
+#undef TERM_ROW
+};
 
-const char *rc_term_name(rc_term t) { return t >= 0 && t < RC_TERM_COUNT ? term_names[t] : "?"; }
+const rc_term_info *rc_term_info_of(rc_term t) { return t >= 0 && t < RC_TERM_COUNT ? &terms[t] : NULL; }
+
+/* "kd, logit-mse, ..." for error messages. */
+static const char *known_terms(char *buf, size_t n) {
+  size_t o = 0;
+  buf[0] = '\0';
+  for (int i = 0; i < RC_TERM_COUNT && o < n; i++)
+    o += (size_t)snprintf(buf + o, n - o, "%s%s", i ? ", " : "", terms[i].name);
+  return buf;
+}
 
 rc_status rc_loss_spec_parse(rc_loss_spec *spec, const char *text, rc_err *e) {
   memset(spec, 0, sizeof *spec);
@@ -23,37 +32,37 @@ rc_status rc_loss_spec_parse(rc_loss_spec *spec, const char *text, rc_err *e) {
     const char *end = strchr(p, ',');
     size_t len = end ? (size_t)(end - p) : strlen(p);
     char item[128];
-    if (len == 0 || len >= sizeof item) return rc__fail(e, RC_ERR_INVALID, "--loss '%s': empty or overlong term", text);
+    if (len == 0 || len >= sizeof item) return rc__fail(e, RC_ERR_INVALID, "'%s': empty or overlong loss term", text);
     memcpy(item, p, len);
     item[len] = 0;
     char *eq = strchr(item, '=');
     if (eq) *eq = 0;
     int t = -1;
     for (int i = 0; i < RC_TERM_COUNT; i++)
-      if (!strcmp(item, term_names[i])) t = i;
+      if (!strcmp(item, terms[i].name)) t = i;
+    char known[256];
     if (t < 0)
-      return rc__fail(e, RC_ERR_INVALID, "--loss: unknown term '%s' (known: kd, logit-mse, hint, attention, boundary, "
-                      "fsp, rkd-distance, rkd-angle, attention-map, weight-anchor)", item);
-    float w = term_defaults[t];
+      return rc__fail(e, RC_ERR_INVALID, "unknown loss term '%s' (known: %s)", item, known_terms(known, sizeof known));
+    float w = terms[t].default_weight;
     if (eq) {
       char *stop;
       double v = strtod(eq + 1, &stop);
       if (stop == eq + 1 || *stop || !isfinite(v) || v < 0)
-        return rc__fail(e, RC_ERR_INVALID, "--loss: weight of '%s' must be a non-negative number, got '%s'", item, eq + 1);
+        return rc__fail(e, RC_ERR_INVALID, "the weight of loss term '%s' must be a non-negative number, got '%s'",
+                        item, eq + 1);
       w = (float)v;
     }
     spec->weight[t] = w;
     p = end ? end + 1 : p + len;
   }
   if (spec->weight[RC_TERM_KD] > 0 && spec->weight[RC_TERM_LOGIT_MSE] > 0)
-    return rc__fail(e, RC_ERR_INVALID, "--loss: choose one of kd and logit-mse");
+    return rc__fail(e, RC_ERR_INVALID, "choose one of the loss terms kd and logit-mse");
   return RC_OK;
 }
 
 int rc_loss_spec_needs_features(const rc_loss_spec *spec) {
-  for (int t = RC_TERM_HINT; t < RC_TERM_COUNT; t++)
-    if (spec->weight[t] > 0 && t != RC_TERM_RKD_DISTANCE && t != RC_TERM_RKD_ANGLE && t != RC_TERM_WEIGHT_ANCHOR)
-      return 1;
+  for (int t = 0; t < RC_TERM_COUNT; t++)
+    if (spec->weight[t] > 0 && terms[t].kind == RC_TERM_ON_FEATURES) return 1;
   return 0;
 }
 
