@@ -243,7 +243,8 @@ static rc_status select_trainables(run_state *st, rc_err *e) {
   }
   if (!st->n_tr)
     return rc__fail(e, RC_ERR_INVALID, "%s: nothing to train (no float weights of Conv, ConvTranspose, Gemm, "
-                    "MatMul, PRelu, normalisation layers or Add/Mul parameters after --train/--freeze)", g->path);
+                    "MatMul, PRelu, normalisation layers or Add/Mul parameters after the train and freeze patterns)",
+                    g->path);
   return RC_OK;
 }
 

@@ -115,16 +115,16 @@ static int attention_softmaxes(const rc_graph *g, rc_plan *p, int *out) {
 static rc_status match_attention_maps(rc_features *f, rc_plan *tp, rc_plan *sp, rc_err *e) {
   int nt = attention_softmaxes(f->tg, tp, f->amap_t), ns = attention_softmaxes(f->sg, sp, f->amap_s);
   if (!nt || !ns)
-    return rc__fail(e, RC_ERR_INVALID, "--loss attention-map: %s has %d and %s has %d attention maps (Softmax "
+    return rc__fail(e, RC_ERR_INVALID, "loss term attention-map: %s has %d and %s has %d attention maps (Softmax "
                     "outputs of rank 4, (N, heads, L, L)); both need some", f->tg->path, nt, f->sg->path, ns);
   if (nt != ns)
-    return rc__fail(e, RC_ERR_SHAPE, "--loss attention-map: %s has %d attention maps and %s has %d; they pair in "
+    return rc__fail(e, RC_ERR_SHAPE, "loss term attention-map: %s has %d attention maps and %s has %d; they pair in "
                     "order, so the counts must agree", f->tg->path, nt, f->sg->path, ns);
   for (int i = 0; i < nt; i++) {
     const rc_tensor *t = rc_plan_tensor(tp, f->amap_t[i]), *s = rc_plan_tensor(sp, f->amap_s[i]);
     if (!rc_shape_equal(t, s)) {
       char a[96], b[96];
-      return rc__fail(e, RC_ERR_SHAPE, "--loss attention-map: teacher '%s' %s and student '%s' %s must have the "
+      return rc__fail(e, RC_ERR_SHAPE, "loss term attention-map: teacher '%s' %s and student '%s' %s must have the "
                       "same (heads, L, L)", f->tg->values[f->amap_t[i]].name, rc_shape_str(t, a, sizeof a),
                       f->sg->values[f->amap_s[i]].name, rc_shape_str(s, b, sizeof b));
     }
@@ -181,8 +181,8 @@ rc_status rc__features_setup(rc_features **out, const rc_loss_spec *spec, const 
   if (uses_pairs(spec)) {
     if ((s = rc_pairing_make(&f->pairing, tg, sg, shapes, pairs, n_pairs, 1, e)) != RC_OK) goto fail;
     if (!f->pairing.n) {
-      s = rc__fail(e, RC_ERR_INVALID, "feature losses need pairs: none were found between %s and %s; give them "
-                   "with --pair TEACHER_TENSOR=STUDENT_TENSOR (see recoup inspect --pairs)", tg->path, sg->path);
+      s = rc__fail(e, RC_ERR_INVALID, "feature losses need pairs: none were found between %s and %s; name them "
+                   "as TEACHER_TENSOR=STUDENT_TENSOR pairs (inspect's pairing lists candidates)", tg->path, sg->path);
       goto fail;
     }
     if (!n_pairs) {
@@ -199,8 +199,8 @@ rc_status rc__features_setup(rc_features **out, const rc_loss_spec *spec, const 
     }
     if (!f->pairing.n) {
       s = rc__fail(e, RC_ERR_INVALID, "feature losses need pairs of inner tensors: none were found between %s and "
-                   "%s; give them with --pair TEACHER_TENSOR=STUDENT_TENSOR (see recoup inspect --pairs)", tg->path,
-                   sg->path);
+                   "%s; name them as TEACHER_TENSOR=STUDENT_TENSOR pairs (inspect's pairing lists candidates)",
+                   tg->path, sg->path);
       goto fail;
     }
     for (int i = 0; i < f->pairing.n; i++) {
