@@ -94,8 +94,8 @@
     "data order and split; same seed and threads give a byte-identical output file")                              \
   X(CHECKPOINT_EVERY, "checkpoint-every", CLI_OPT_INT, 0, CLI_OPT_NO_MAX, NULL, CLI_OPT_ANYWHERE,                  \
     CLI_GROUP_INTERRUPTION, "N", "500", "also write a checkpoint every N steps; 0 = epoch ends only")             \
-  X(THREADS, "threads", CLI_OPT_INT, 0, 1024, NULL, CLI_OPT_BATCH_OWNED, CLI_GROUP_TRAINING, "N", "0",             \
-    "compute threads; 0 uses every online core")                                                                   \
+  X(THREADS, "threads", CLI_OPT_INT, 0, 1024, NULL, CLI_OPT_BATCH_OWNED, CLI_GROUP_TRAINING, "N", NULL,            \
+    "compute threads; 0 (the default) uses every online core")                                                                   \
   X(JSON, "json", CLI_OPT_FLAG, 0, 0, NULL, CLI_OPT_BATCH_OWNED, CLI_GROUP_OUTPUT, NULL, NULL,                     \
     "print the before/after results as JSON on stdout")                                                            \
   X(CHECKPOINT, "checkpoint", CLI_OPT_PATH, 0, 0, NULL, CLI_OPT_BATCH_OWNED, CLI_GROUP_INTERRUPTION, "FILE", NULL, \
