@@ -1,16 +1,16 @@
 /* Feature-level distillation inside `distill`: which loss terms, on which
  * pairs of teacher and student tensors, with which learned projectors.
  *
- * Terms and their default weights (the weight given on the command line
- * replaces the default; published methods keep their names):
- *   kd 1, logit-mse 1           logits (train/loss.h)
- *   hint 1                      Romero et al. 2015, every pair, projector where widths differ
- *   attention 1000 (= beta)     Zagoruyko and Komodakis 2017, every pair
- *   boundary 1                  Heo et al. 2019, every pair, projector where widths differ
- *   fsp 1                       Yim et al. 2017, consecutive pairs of equal spatial size
- *   rkd-distance 1, rkd-angle 2 Park et al. 2019, on the logits of the batch
- *   attention-map 1             KL per head over Softmax outputs (N, heads, L, L)
- *   weight-anchor 1e-3          L2 to the teacher's weight of the same name and shape
+ * RC_LOSS_TERMS below lists every term with its default weight (a weight
+ * given by the caller replaces it). Published methods keep their names:
+ * hint (Romero et al. 2015; every pair, projector where widths differ),
+ * attention (Zagoruyko and Komodakis 2017; every pair, default weight =
+ * their beta), boundary (Heo et al. 2019; every pair, projector where widths
+ * differ), fsp (Yim et al. 2017; consecutive pairs of equal spatial size),
+ * rkd-distance and rkd-angle (Park et al. 2019; on the logits of the batch).
+ * kd and logit-mse are in train/loss.h; attention-map is KL per head over
+ * Softmax outputs (N, heads, L, L); weight-anchor is L2 to the teacher's
+ * weight of the same name and shape.
  * Projectors are trainable entries of the parameter store, never exported. */
 #ifndef RC_TRAIN_FEATURES_H
 #define RC_TRAIN_FEATURES_H
