@@ -3,6 +3,7 @@
 #include <string.h>
 
 #include "core/alloc.h"
+#include "plan/count.h"
 #include "plan/plan.h"
 
 /* Per-channel mean and biased variance of x (N, C, ...) accumulated in double. */
@@ -42,7 +43,7 @@ rc_status rc__bn_recalibrate(const rc_graph *g, const int *bn_nodes, int n_bn, r
   rc_tensor shapes[RC_DATASET_MAX_INPUTS];
   rc__input_shapes(g, train->inputs, batch, shapes);
   rc_plan_opts o = {.training = 0, .trainable = NULL, .keep = keep, .bn_batch_stats = 1};
-  if ((s = rc_plan_create(&p, g, shapes, &o, e)) != RC_OK) goto out;
+  if ((s = rc_plan_init(&p, g, shapes, &o, e)) != RC_OK) goto out;
   for (int b = 0; b < n_bn; b++) {
     const rc_tensor *x = rc_plan_tensor(p, g->nodes[bn_nodes[b]].in[0]);
     if (x->rank > 1 && x->dims[1] > max_c) max_c = x->dims[1];
