@@ -63,7 +63,7 @@ rc_status rc__plan_batch1(rc_plan **p, const rc_graph *g, rc_err *e) {
   *p = NULL;
   rc_tensor *ins = rc__batch1_inputs(g);
   if (!ins) return rc__fail(e, RC_ERR_NOMEM, "out of memory");
-  rc_status st = rc_plan_create(p, g, ins, NULL, e);
+  rc_status st = rc_plan_init(p, g, ins, NULL, e);
   rc__free(ins);
   return st;
 }

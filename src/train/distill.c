@@ -284,13 +284,13 @@ static rc_status setup_features(run_state *st, const rc_tensor *data, rc_err *e)
   if (!st->tkeep || !st->skeep) return rc__fail(e, RC_ERR_NOMEM, "out of memory");
   rc_tensor shapes[RC_DATASET_MAX_INPUTS];
   rc__input_shapes(st->sg, data, 1, shapes);
-  return rc__features_setup(&st->feat, &c->terms, &st->teacher->graph, st->sg, shapes, c->pairs, c->pair_weights,
-                            c->n_pairs, st->ps, st->tkeep, st->skeep, e);
+  return rc__features_init(&st->feat, &c->terms, &st->teacher->graph, st->sg, shapes, c->pairs, c->pair_weights,
+                           c->n_pairs, st->ps, st->tkeep, st->skeep, e);
 }
 
 static rc_status build_store(run_state *st, const rc_tensor *data, rc_err *e) {
   rc_graph *g = st->sg;
-  RC_TRY(rc_params_create(&st->ps, e));
+  RC_TRY(rc_params_init(&st->ps, e));
   for (int i = 0; i < st->n_tr; i++) {
     rc_value *val = &g->values[st->tr[i].value];
     RC_TRY(rc_params_add(st->ps, &st->tr[i].entry, val->name, rc_tensor_numel(&val->decl), val->decl.data,
@@ -299,7 +299,7 @@ static rc_status build_store(run_state *st, const rc_tensor *data, rc_err *e) {
   RC_TRY(setup_features(st, data, e));
   RC_TRY(rc_params_finalize(st->ps, rc_optim_moments(&st->c->optim), e));
   RC_TRY(rc_params_build_masks(st->ps, e));
-  if (st->feat) RC_TRY(rc__features_init(st->feat, st->ps, st->c->seed, e));
+  if (st->feat) RC_TRY(rc__features_bind(st->feat, st->ps, st->c->seed, e));
   /* From here on the graph reads its initializers from the store. */
   for (int i = 0; i < st->n_tr; i++) {
     rc_value *val = &g->values[st->tr[i].value];
@@ -359,16 +359,16 @@ static rc_status build_plans(run_state *st, const rc_tensor *data, rc_err *e) {
       if (n->in[k] >= 0) st->trainable_mask[n->in[k]] = 0;
   }
   rc_plan_opts eval_opts = {.training = 0, .trainable = live, .keep = NULL, .bn_batch_stats = 0};
-  rc_status s = rc_plan_create(&st->eval_plan, sg, shapes, &eval_opts, e);
+  rc_status s = rc_plan_init(&st->eval_plan, sg, shapes, &eval_opts, e);
   rc__free(live);
   RC_TRY(s);
   rc_plan_opts train_opts = {.training = 1, .trainable = st->trainable_mask, .keep = st->skeep, .bn_batch_stats = st->c->bn == RC_BN_TRAIN};
-  RC_TRY(rc_plan_create(&st->train_plan, sg, shapes, &train_opts, e));
+  RC_TRY(rc_plan_init(&st->train_plan, sg, shapes, &train_opts, e));
   teacher_order(tg, sg, shapes, tin);
-  RC_TRY(rc_plan_create(&st->teacher_plan, tg, tin, NULL, e));
+  RC_TRY(rc_plan_init(&st->teacher_plan, tg, tin, NULL, e));
   if (st->feat && rc_loss_spec_needs_features(&st->c->terms)) {
     rc_plan_opts keep = {.training = 0, .trainable = NULL, .keep = st->tkeep, .bn_batch_stats = 0};
-    RC_TRY(rc_plan_create(&st->teacher_step, tg, tin, &keep, e));
+    RC_TRY(rc_plan_init(&st->teacher_step, tg, tin, &keep, e));
   }
   int64_t kt = 0;
   RC_TRY(logits_width(st->eval_plan, sg, st->batch, &st->k, e));
@@ -413,7 +413,7 @@ static rc_status setup_data(run_state *st, const rc_distill_data *d, rc_err *e) 
   }
   if (d->val_split <= 0 || d->val_split >= 1)
     return rc__fail(e, RC_ERR_INVALID, "the validation split must lie strictly between 0 and 1");
-  RC_TRY(rc_data_split_make(&st->split, n, d->val_split, st->c->seed, e));
+  RC_TRY(rc_data_split_init(&st->split, n, d->val_split, st->c->seed, e));
   if (st->split.n_train < 1 || st->split.n_val < 1)
     return rc__fail(e, RC_ERR_INVALID, "%lld samples are too few to hold out a validation slice", (long long)n);
   RC_TRY(rc_dataset_init(&st->train, d->inputs, d->n_inputs, NULL, st->split.train, st->split.n_train, e));

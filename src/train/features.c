@@ -168,9 +168,9 @@ static rc_status setup_projectors(rc_features *f, rc_params *ps, rc_err *e) {
   return RC_OK;
 }
 
-rc_status rc__features_setup(rc_features **out, const rc_loss_spec *spec, const rc_graph *tg, const rc_graph *sg,
-                             const rc_tensor *shapes, const char *const *pairs, const float *pair_weights,
-                             int n_pairs, rc_params *ps, unsigned char *tk, unsigned char *sk, rc_err *e) {
+rc_status rc__features_init(rc_features **out, const rc_loss_spec *spec, const rc_graph *tg, const rc_graph *sg,
+                            const rc_tensor *shapes, const char *const *pairs, const float *pair_weights,
+                            int n_pairs, rc_params *ps, unsigned char *tk, unsigned char *sk, rc_err *e) {
   *out = NULL;
   rc_features *f = rc__calloc(1, sizeof *f);
   if (!f) return rc__fail(e, RC_ERR_NOMEM, "out of memory");
@@ -179,7 +179,7 @@ rc_status rc__features_setup(rc_features **out, const rc_loss_spec *spec, const 
   f->sg = sg;
   rc_status s = RC_OK;
   if (uses_pairs(spec)) {
-    if ((s = rc_pairing_make(&f->pairing, tg, sg, shapes, pairs, n_pairs, 1, e)) != RC_OK) goto fail;
+    if ((s = rc_pairing_init(&f->pairing, tg, sg, shapes, pairs, n_pairs, 1, e)) != RC_OK) goto fail;
     if (!f->pairing.n) {
       s = rc__fail(e, RC_ERR_INVALID, "feature losses need pairs: none were found between %s and %s; name them "
                    "as TEACHER_TENSOR=STUDENT_TENSOR pairs (inspect's pairing lists candidates)", tg->path, sg->path);
@@ -218,7 +218,7 @@ fail:
   return s;
 }
 
-rc_status rc__features_init(rc_features *f, rc_params *ps, uint64_t seed, rc_err *e) {
+rc_status rc__features_bind(rc_features *f, rc_params *ps, uint64_t seed, rc_err *e) {
   for (int i = 0; i < f->pairing.n; i++)
     if (f->proj && f->proj[i].w_entry >= 0)
       RC_TRY(rc_feat_projector_init(rc_params_value(ps, f->proj[i].w_entry), rc_params_value(ps, f->proj[i].b_entry),

@@ -77,14 +77,14 @@ typedef struct rc_features rc_features;
 /* Pair the graphs (explicit pairs or automatic), decide projectors and add
  * their entries to the store (call before rc_params_finalize), and mark the
  * tensors each plan must keep. Per-pair weights may be given (NULL = 1). */
-rc_status rc__features_setup(rc_features **out, const rc_loss_spec *spec, const rc_graph *teacher,
-                             const rc_graph *student, const rc_tensor *input_shapes_b1,
-                             const char *const *pairs, const float *pair_weights, int n_pairs,
-                             rc_params *ps, unsigned char *teacher_keep, unsigned char *student_keep,
-                             rc_err *e);
+rc_status rc__features_init(rc_features **out, const rc_loss_spec *spec, const rc_graph *teacher,
+                            const rc_graph *student, const rc_tensor *input_shapes_b1,
+                            const char *const *pairs, const float *pair_weights, int n_pairs,
+                            rc_params *ps, unsigned char *teacher_keep, unsigned char *student_keep,
+                            rc_err *e);
 /* After rc_params_finalize: initialise projectors (deterministic from seed)
  * and bind weight anchors to store entries (entry index by initializer name). */
-rc_status rc__features_init(rc_features *f, rc_params *ps, uint64_t seed, rc_err *e);
+rc_status rc__features_bind(rc_features *f, rc_params *ps, uint64_t seed, rc_err *e);
 /* Before the first step of a run (not a resumed one), after both forwards
  * on its batch: start every projector from the least-squares map between
  * the paired features (feature_loss.h). *fitted counts the projectors fitted. */

@@ -132,8 +132,8 @@ rc_status rc__pairing_plans(rc_plan **tp, rc_plan **sp, const rc_graph *tg, cons
     for (int j = 0; j < sg->n_inputs; j++)
       if (!strcmp(sg->values[sg->inputs[j]].name, tg->values[tg->inputs[i]].name)) tin[i] = input_shapes[j];
   }
-  rc_status st = rc_plan_create(tp, tg, tin, NULL, e);
-  if (st == RC_OK) st = rc_plan_create(sp, sg, input_shapes, NULL, e);
+  rc_status st = rc_plan_init(tp, tg, tin, NULL, e);
+  if (st == RC_OK) st = rc_plan_init(sp, sg, input_shapes, NULL, e);
   if (st != RC_OK) {
     rc_plan_free(*tp);
     *tp = NULL;
@@ -141,7 +141,7 @@ rc_status rc__pairing_plans(rc_plan **tp, rc_plan **sp, const rc_graph *tg, cons
   return st;
 }
 
-rc_status rc_pairing_make(rc_pairing *out, const rc_graph *tg, const rc_graph *sg, const rc_tensor *input_shapes,
+rc_status rc_pairing_init(rc_pairing *out, const rc_graph *tg, const rc_graph *sg, const rc_tensor *input_shapes,
                           const char *const *explicit_pairs, int n_explicit, int automatic_pairs, rc_err *e) {
   memset(out, 0, sizeof *out);
   rc_plan *tp, *sp;

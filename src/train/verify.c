@@ -20,7 +20,7 @@ rc_status rc_distill_verify_written(const char *path, rc_model *student, const r
   int64_t b = inputs[0].dims[0] < batch ? inputs[0].dims[0] : batch;
   rc__input_shapes(ga, inputs, b, shapes);
   *max_diff = 0;
-  if ((s = rc_plan_create(&pa, ga, shapes, NULL, e)) != RC_OK || (s = rc_plan_create(&pb, gb, shapes, NULL, e)) != RC_OK)
+  if ((s = rc_plan_init(&pa, ga, shapes, NULL, e)) != RC_OK || (s = rc_plan_init(&pb, gb, shapes, NULL, e)) != RC_OK)
     goto out;
   for (int i = 0; i < n_inputs && i < ga->n_inputs; i++) {
     size_t nb = rc_tensor_nbytes(rc_plan_tensor(pa, ga->inputs[i]));
