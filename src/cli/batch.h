@@ -75,6 +75,9 @@ void cli_batch_forget_job(batch *b, const char *name);
 rc_status cli_batch_remember_job(batch *b, run *r, rc_err *e);
 
 /* ---- Process pool (batch_pool.c) ---- */
+/* The last size - 1 bytes of a job's log, NUL-terminated; the count read,
+ * or -1 when the log cannot be opened. */
+ssize_t cli_batch_log_tail(const char *path, char *buf, size_t size);
 void cli_batch_set_record(batch *b, run *r, const char *status, const char *error, cJSON *result);
 /* Run every pending job, at most b->a->jobs at once, until all are done or
  * a stop signal has let the running ones checkpoint. */

@@ -1,8 +1,7 @@
 /* recoup batch: status lines on a terminal (plain event lines otherwise)
  * and the closing summary. */
-#define _POSIX_C_SOURCE 200809L /* clock_gettime, pread */
+#define _POSIX_C_SOURCE 200809L /* clock_gettime */
 #include <cJSON.h>
-#include <fcntl.h>
 #include <math.h>
 #include <stdarg.h>
 #include <stdio.h>
@@ -97,15 +96,8 @@ void cli_batch_event(batch *b, const char *fmt, ...) {
 
 /* The last progress line a job wrote to its log ("epoch 1/3 step 40/300 ..."). */
 void cli_batch_read_progress(run *r) {
-  int fd = open(r->log, O_RDONLY);
-  if (fd < 0) return;
   char buf[2048];
-  off_t end = lseek(fd, 0, SEEK_END);
-  off_t from = end > (off_t)sizeof buf - 1 ? end - (off_t)sizeof buf + 1 : 0;
-  ssize_t n = pread(fd, buf, sizeof buf - 1, from);
-  close(fd);
-  if (n <= 0) return;
-  buf[n] = '\0';
+  if (cli_batch_log_tail(r->log, buf, sizeof buf) <= 0) return;
   char *line = NULL;
   for (char *p = buf; (p = strstr(p, "epoch ")) != NULL; p++)
     if (p == buf || p[-1] == '\n') line = p;

@@ -157,20 +157,25 @@ static void append_stdout_to_log(const run *r) {
   close(fd);
 }
 
+ssize_t cli_batch_log_tail(const char *path, char *buf, size_t size) {
+  int fd = open(path, O_RDONLY);
+  if (fd < 0) return -1;
+  off_t end = lseek(fd, 0, SEEK_END);
+  off_t from = end > (off_t)size - 1 ? end - (off_t)size + 1 : 0;
+  ssize_t n = pread(fd, buf, size - 1, from);
+  close(fd);
+  if (n >= 0) buf[n] = '\0';
+  return n;
+}
+
 /* Last non-empty line of the job's log: distill's one-line error, with the
  * manifest's folder left out of paths so reports read the same wherever the
  * zoo lives. */
 static void last_error_line(const run *r, const char *dir, char *out, size_t n) {
   snprintf(out, n, "no error message (see %s)", r->log_shown);
-  int fd = open(r->log, O_RDONLY);
-  if (fd < 0) return;
   char buf[4096];
-  off_t end = lseek(fd, 0, SEEK_END);
-  off_t from = end > (off_t)sizeof buf - 1 ? end - (off_t)sizeof buf + 1 : 0;
-  ssize_t k = pread(fd, buf, sizeof buf - 1, from);
-  close(fd);
+  ssize_t k = cli_batch_log_tail(r->log, buf, sizeof buf);
   if (k <= 0) return;
-  buf[k] = '\0';
   while (k > 0 && (buf[k - 1] == '\n' || buf[k - 1] == '\r' || buf[k - 1] == ' ')) buf[--k] = '\0';
   char *line = strrchr(buf, '\n');
   line = line ? line + 1 : buf;
