@@ -62,63 +62,6 @@ static double now_s(void) {
   return (double)ts.tv_sec + 1e-9 * (double)ts.tv_nsec;
 }
 
-/* ---- Teacher and student must agree -------------------------------------- */
-
-static int find_by_name(const rc_graph *g, const int *vals, int n, const char *name) {
-  for (int i = 0; i < n; i++)
-    if (!strcmp(g->values[vals[i]].name, name)) return i;
-  return -1;
-}
-
-static rc_status check_io(const rc_graph *t, const int *tv, int tn, const rc_graph *s, const int *sv, int sn,
-                          const char *what, rc_err *e) {
-  if (tn != sn)
-    return rc__fail(e, RC_ERR_SHAPE, "teacher %s has %d %ss, student %s has %d", t->path, tn, what, s->path, sn);
-  for (int i = 0; i < sn; i++) {
-    const rc_value *b = &s->values[sv[i]];
-    int j = find_by_name(t, tv, tn, b->name);
-    if (j < 0)
-      return rc__fail(e, RC_ERR_SHAPE, "student %s '%s' (%s) has no %s of that name in teacher %s", what, b->name,
-                      s->path, what, t->path);
-    const rc_value *a = &t->values[tv[j]];
-    if (a->decl.dtype != b->decl.dtype)
-      return rc__fail(e, RC_ERR_SHAPE, "%s '%s': teacher dtype %s, student %s", what, b->name,
-                      rc_dtype_name(a->decl.dtype), rc_dtype_name(b->decl.dtype));
-    if (a->decl.rank >= 0 && b->decl.rank >= 0) {
-      int ok = a->decl.rank == b->decl.rank;
-      for (int d = 0; ok && d < a->decl.rank; d++)
-        if (a->decl.dims[d] >= 0 && b->decl.dims[d] >= 0 && a->decl.dims[d] != b->decl.dims[d]) ok = 0;
-      if (!ok) {
-        char sa[128], sb[128];
-        return rc__fail(e, RC_ERR_SHAPE, "%s '%s': teacher shape %s, student %s", what, b->name,
-                        rc_shape_str(&a->decl, sa, sizeof sa), rc_shape_str(&b->decl, sb, sizeof sb));
-      }
-    }
-  }
-  return RC_OK;
-}
-
-/* Training runs batches of any size (--batch, the last partial batch, single
- * samples for pairing), so a model exported with a fixed batch dimension
- * cannot be trained as it is; say so instead of failing on a shape later. */
-static rc_status check_free_batch(const rc_graph *g, const char *role, rc_err *e) {
-  for (int i = 0; i < g->n_inputs; i++) {
-    const rc_value *v = &g->values[g->inputs[i]];
-    if (v->decl.rank >= 1 && v->decl.dims[0] >= 0)
-      return rc__fail(e, RC_ERR_UNSUPPORTED, "%s %s: input '%s' has a fixed batch size of %lld; distillation needs a "
-                      "free first axis (re-export the model with a dynamic batch dimension)", role, g->path, v->name,
-                      (long long)v->decl.dims[0]);
-  }
-  return RC_OK;
-}
-
-rc_status rc_distill_check_pair(const rc_graph *t, const rc_graph *s, rc_err *e) {
-  RC_TRY(check_free_batch(t, "teacher", e));
-  RC_TRY(check_free_batch(s, "student", e));
-  RC_TRY(check_io(t, t->inputs, t->n_inputs, s, s->inputs, s->n_inputs, "input", e));
-  return check_io(t, t->outputs, t->n_outputs, s, s->outputs, s->n_outputs, "output", e);
-}
-
 /* ---- What trains ----------------------------------------------------------- */
 
 static int matches_any(const char *name, const char *const *globs, int n) {
@@ -335,7 +278,7 @@ static rc_status logits_width(const rc_plan *p, const rc_graph *g, int64_t b, in
 /* Inputs of the teacher in the student's order (names match, checked). */
 static void teacher_order(const rc_graph *t, const rc_graph *s, const rc_tensor *in, rc_tensor *out) {
   for (int i = 0; i < t->n_inputs; i++) {
-    int j = find_by_name(s, s->inputs, s->n_inputs, t->values[t->inputs[i]].name);
+    int j = rc__graph_find_in(s, s->inputs, s->n_inputs, t->values[t->inputs[i]].name);
     out[i] = in[j < 0 ? i : j];
   }
 }
@@ -392,7 +335,7 @@ static rc_status teacher_pass(run_state *st, const rc_dataset *d, float *out, rc
    * order them differently, so gather into the student's order first. */
   rc_dataset td = *d;
   for (int i = 0; i < tg->n_inputs; i++) {
-    int j = find_by_name(sg, sg->inputs, sg->n_inputs, tg->values[tg->inputs[i]].name);
+    int j = rc__graph_find_in(sg, sg->inputs, sg->n_inputs, tg->values[tg->inputs[i]].name);
     td.inputs[i] = d->inputs[j];
     td.sample_bytes[i] = d->sample_bytes[j];
   }
@@ -564,7 +507,7 @@ static rc_status train_step(loop_ctx *lc, const loop_state *ls, step_buffers *sb
     if (st->teacher_step) {
       const rc_graph *tg = &st->teacher->graph, *sg = st->sg;
       for (int i = 0; i < tg->n_inputs; i++) {
-        int j = find_by_name(sg, sg->inputs, sg->n_inputs, tg->values[tg->inputs[i]].name);
+        int j = rc__graph_find_in(sg, sg->inputs, sg->n_inputs, tg->values[tg->inputs[i]].name);
         memcpy(rc_plan_tensor(st->teacher_step, tg->inputs[i])->data, sb->in[j],
                rc_tensor_nbytes(rc_plan_tensor(st->teacher_step, tg->inputs[i])));
       }
