@@ -57,7 +57,7 @@ static rc_status load_and_plan(const uint8_t *bytes, size_t n, const char *name,
     for (int d = 0; d < ins[i].rank; d++)
       if (ins[i].dims[d] < 0) ins[i].dims[d] = 2;
   }
-  st = rc_plan_create(&p, g, ins, NULL, e);
+  st = rc_plan_init(&p, g, ins, NULL, e);
   if (st == RC_OK) {
     trainable = rc__calloc((size_t)g->n_values, 1);
     if (!trainable) st = rc__fail(e, RC_ERR_NOMEM, "%s: out of memory", name);
@@ -69,7 +69,7 @@ static rc_status load_and_plan(const uint8_t *bytes, size_t n, const char *name,
     rc_plan_opts o = {0};
     o.training = 1;
     o.trainable = trainable;
-    st = rc_plan_create(&tp, g, ins, &o, e);
+    st = rc_plan_init(&tp, g, ins, &o, e);
   }
   rc_plan_free(tp);
   rc_plan_free(p);

@@ -1168,7 +1168,7 @@ static void dataset_batches(void) {
 static void validation_split(void) {
   rc_data_split s, t;
   rc_err e = {0};
-  CHECK_INT(rc_data_split_make(&s, 100, 0.2, 99, &e), RC_OK);
+  CHECK_INT(rc_data_split_init(&s, 100, 0.2, 99, &e), RC_OK);
   CHECK_EQ(s.n_train, 80);
   CHECK_EQ(s.n_val, 20);
   int mark[100] = {0};
@@ -1182,25 +1182,25 @@ static void validation_split(void) {
   int64_t tail = 0;
   for (int64_t i = 0; i < s.n_val; i++) tail += s.val[i] >= 80;
   CHECK_LT(tail, 20); /* a random subset, not simply the last samples */
-  CHECK_INT(rc_data_split_make(&t, 100, 0.2, 99, &e), RC_OK);
+  CHECK_INT(rc_data_split_init(&t, 100, 0.2, 99, &e), RC_OK);
   CHECK_MEM_EQ(s.val, t.val, 20 * sizeof(int64_t));
   rc_data_split_free(&t);
-  CHECK_INT(rc_data_split_make(&t, 100, 0.2, 100, &e), RC_OK);
+  CHECK_INT(rc_data_split_init(&t, 100, 0.2, 100, &e), RC_OK);
   CHECK_MEM_NE(s.val, t.val, 20 * sizeof(int64_t));
   rc_data_split_free(&t);
   rc_data_split_free(&s);
-  CHECK_INT(rc_data_split_make(&s, 10, 0.0, 1, &e), RC_OK);
+  CHECK_INT(rc_data_split_init(&s, 10, 0.0, 1, &e), RC_OK);
   CHECK_EQ(s.n_train, 10);
   CHECK_EQ(s.n_val, 0);
   rc_data_split_free(&s);
-  CHECK_INT(rc_data_split_make(&s, 10, 0.01, 1, &e), RC_OK);
+  CHECK_INT(rc_data_split_init(&s, 10, 0.01, 1, &e), RC_OK);
   CHECK_EQ(s.n_train, 9);
   CHECK_EQ(s.n_val, 1);
   rc_data_split_free(&s);
-  CHECK_INT(rc_data_split_make(&s, 10, 0.99, 1, &e), RC_ERR_INVALID);
+  CHECK_INT(rc_data_split_init(&s, 10, 0.99, 1, &e), RC_ERR_INVALID);
   CHECK_STR_CONTAINS(e.msg, "no training samples");
-  CHECK_INT(rc_data_split_make(&s, 10, -0.5, 1, &e), RC_ERR_INVALID);
-  CHECK_INT(rc_data_split_make(&s, 10, NAN, 1, &e), RC_ERR_INVALID);
+  CHECK_INT(rc_data_split_init(&s, 10, -0.5, 1, &e), RC_ERR_INVALID);
+  CHECK_INT(rc_data_split_init(&s, 10, NAN, 1, &e), RC_ERR_INVALID);
 }
 
 static void make_tmpdir(void) {

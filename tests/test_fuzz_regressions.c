@@ -134,7 +134,7 @@ static void plan_limit_refuses_huge_constant(void) {
     rc_plan_opts o = {0};
     o.max_bytes = (size_t)64 << 20;
     rc_plan *p = NULL;
-    CHECK_INT(rc_plan_create(&p, &m->graph, &in, &o, &e), RC_ERR_LIMIT);
+    CHECK_INT(rc_plan_init(&p, &m->graph, &in, &o, &e), RC_ERR_LIMIT);
     CHECK_STR_CONTAINS(e.msg, "ConstantOfShape");
     CHECK_NULL(p);
     rc_plan_free(p);

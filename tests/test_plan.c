@@ -127,7 +127,7 @@ static void shape_subgraph_is_folded(void) {
   for (int64_t batch = 1; batch <= 5; batch += 4) {
     rc_tensor in = {RC_DTYPE_FLOAT, 3, {batch, 2, 3}, NULL};
     rc_plan *p = NULL;
-    CHECK_INT(rc_plan_create(&p, &b.g, &in, NULL, &e), RC_OK);
+    CHECK_INT(rc_plan_init(&p, &b.g, &in, NULL, &e), RC_OK);
     if (!p) return;
     int concat = rc__graph_find_value(&b.g, "concat");
     CHECK(rc_plan_is_const(p, concat));
@@ -167,7 +167,7 @@ static void reverse_pass_matches_finite_differences(void) {
   rc_tensor in = {RC_DTYPE_FLOAT, 3, {3, 2, 3}, NULL};
   rc_plan_opts o = {.training = 1, .trainable = trainable, .keep = NULL, .bn_batch_stats = 0};
   rc_plan *p = NULL;
-  CHECK_INT(rc_plan_create(&p, &b.g, &in, &o, &e), RC_OK);
+  CHECK_INT(rc_plan_init(&p, &b.g, &in, &o, &e), RC_OK);
   if (!p) return;
   fill(rc_plan_tensor(p, b.g.inputs[0])->data, 18, 5);
   float r[12];
@@ -211,9 +211,9 @@ static void inference_plans_reuse_memory(void) {
   CHECK_INT(rc__graph_finalize(&b.g, &e), RC_OK);
   rc_tensor in = {RC_DTYPE_FLOAT, 2, {16, 1000}, NULL};
   rc_plan *inf = NULL, *tr = NULL;
-  CHECK_INT(rc_plan_create(&inf, &b.g, &in, NULL, &e), RC_OK);
+  CHECK_INT(rc_plan_init(&inf, &b.g, &in, NULL, &e), RC_OK);
   rc_plan_opts o = {.training = 1, .trainable = NULL, .keep = NULL, .bn_batch_stats = 0};
-  CHECK_INT(rc_plan_create(&tr, &b.g, &in, &o, &e), RC_OK);
+  CHECK_INT(rc_plan_init(&tr, &b.g, &in, &o, &e), RC_OK);
   if (inf && tr) {
     size_t one = 16 * 1000 * sizeof(float);
     /* input + output + at most two live intermediates */
@@ -239,7 +239,7 @@ static void errors_name_what_is_wrong(void) {
   CHECK_INT(rc__graph_finalize(&b.g, &e), RC_OK);
   rc_tensor wrong = {RC_DTYPE_FLOAT, 3, {2, 3, 3}, NULL};
   rc_plan *p = NULL;
-  CHECK_INT(rc_plan_create(&p, &b.g, &wrong, NULL, &e), RC_ERR_SHAPE);
+  CHECK_INT(rc_plan_init(&p, &b.g, &wrong, NULL, &e), RC_ERR_SHAPE);
   CHECK_STR_CONTAINS(e.msg, "input 'x'");
   CHECK_STR_CONTAINS(e.msg, "handmade.onnx");
   CHECK_NULL(p);
@@ -282,7 +282,7 @@ static void allocation_failures_end_cleanly(void) {
   for (long n = 1; n < 200; n++) {
     rc_plan *p = NULL;
     rc_alloc_set_fail_after(n);
-    rc_status st = rc_plan_create(&p, &b.g, &in, NULL, &e);
+    rc_status st = rc_plan_init(&p, &b.g, &in, NULL, &e);
     rc_alloc_set_fail_after(0);
     if (st == RC_OK) {
       rc_plan_free(p);

@@ -57,7 +57,7 @@ static int run_model(const char *path, const float *x, float *y, int64_t ny) {
   }
   rc_tensor in = m->graph.values[m->graph.inputs[0]].decl;
   rc_plan *p;
-  int ok = rc_plan_create(&p, &m->graph, &in, NULL, &e) == RC_OK;
+  int ok = rc_plan_init(&p, &m->graph, &in, NULL, &e) == RC_OK;
   if (ok) {
     rc_tensor *ti = rc_plan_tensor(p, m->graph.inputs[0]);
     memcpy(ti->data, x, sizeof(float) * (size_t)rc_tensor_numel(ti));

@@ -123,7 +123,7 @@ static int run_file(const char *path, const float *x, float *y) {
   int ok = rc_model_load(&m, path, NULL, &e) == RC_OK;
   if (!ok) fprintf(stderr, "load %s: %s\n", path, e.msg);
   rc_tensor in = {RC_DTYPE_FLOAT, 4, {N_SAMPLES, C_IN, HW, HW}, NULL};
-  if (ok) ok = rc_plan_create(&p, &m->graph, &in, NULL, &e) == RC_OK;
+  if (ok) ok = rc_plan_init(&p, &m->graph, &in, NULL, &e) == RC_OK;
   if (ok) {
     memcpy(rc_plan_tensor(p, m->graph.inputs[0])->data, x, sizeof(float) * N_SAMPLES * C_IN * HW * HW);
     ok = rc_plan_forward(p, &e) == RC_OK;

@@ -32,7 +32,7 @@ static rc_params *make_store(int n_moments) {
   rc_params *ps = NULL;
   rc_err e;
   int iw = -1, is = -1, ib = -1;
-  CHECK_INT(rc_params_create(&ps, &e), RC_OK);
+  CHECK_INT(rc_params_init(&ps, &e), RC_OK);
   CHECK_INT(rc_params_add(ps, &iw, "conv.weight", NW, w_init, RC_PARAM_KEEP_ZEROS, &e), RC_OK);
   CHECK_INT(rc_params_add(ps, &is, "bn.scale", NS, s_init, RC_PARAM_NORM, &e), RC_OK);
   CHECK_INT(rc_params_add(ps, &ib, "conv.bias", NB, b_init, RC_PARAM_NO_DECAY, &e), RC_OK);
@@ -76,7 +76,7 @@ static void store_layout(void) {
   rc_params_free(ps);
 
   /* refusals before finalize */
-  CHECK_INT(rc_params_create(&ps, &e), RC_OK);
+  CHECK_INT(rc_params_init(&ps, &e), RC_OK);
   CHECK_INT(rc_params_add(ps, NULL, "empty", 0, NULL, 0, &e), RC_ERR_SHAPE);
   CHECK_INT(rc_params_add(ps, NULL, "huge", INT64_MAX / 2, NULL, 0, &e), RC_ERR_LIMIT);
   CHECK_INT(rc_params_finalize(ps, 3, &e), RC_ERR_INVALID);
@@ -222,7 +222,7 @@ static void sgd_by_hand(void) {
     c.nesterov = cases[k].nesterov;
     c.weight_decay = cases[k].wd;
     rc_params *ps = NULL;
-    CHECK_INT(rc_params_create(&ps, &e), RC_OK);
+    CHECK_INT(rc_params_init(&ps, &e), RC_OK);
     CHECK_INT(rc_params_add(ps, NULL, "p", 1, &one, 0, &e), RC_OK);
     CHECK_INT(rc_params_finalize(ps, rc_optim_moments(&c), &e), RC_OK);
     rc_params_grad(ps, 0)[0] = 1.0f;
@@ -365,7 +365,7 @@ static void out_of_memory(void) {
     rc_err e;
     rc_params *ps = NULL;
     rc_alloc_set_fail_after(k);
-    rc_status st = rc_params_create(&ps, &e);
+    rc_status st = rc_params_init(&ps, &e);
     for (int i = 0; st == RC_OK && i < 40; i++) {
       char name[16];
       snprintf(name, sizeof name, "t%d", i);

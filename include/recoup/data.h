@@ -196,7 +196,7 @@ typedef struct rc_data_split {
   int64_t n_val;
 } rc_data_split;
 
-rc_status rc_data_split_make(rc_data_split *out, int64_t n, double val_fraction, uint64_t seed,
+rc_status rc_data_split_init(rc_data_split *out, int64_t n, double val_fraction, uint64_t seed,
                              rc_err *e);
 void rc_data_split_free(rc_data_split *s);
 

@@ -259,7 +259,7 @@ rc_status cli_output_classes(const rc_graph *g, const cli_samples *s, int64_t *k
   rc_tensor shapes[CLI_MAX_DATA];
   cli_samples_shapes(s, 1, shapes);
   rc_plan *p = NULL;
-  RC_TRY(rc_plan_create(&p, g, shapes, NULL, e));
+  RC_TRY(rc_plan_init(&p, g, shapes, NULL, e));
   const rc_tensor *t = rc_plan_tensor(p, g->outputs[0]);
   rc_status st = RC_OK;
   if (t->dtype != RC_DTYPE_FLOAT || t->rank != 2)

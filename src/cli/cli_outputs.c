@@ -177,7 +177,7 @@ rc_status cli_outputs_load(cli_outputs *o, const rc_graph *g, const cli_samples 
   rc_tensor shapes[CLI_MAX_DATA];
   cli_samples_shapes(train, 1, shapes);
   rc_plan *p = NULL;
-  RC_TRY(rc_plan_create(&p, g, shapes, NULL, e));
+  RC_TRY(rc_plan_init(&p, g, shapes, NULL, e));
   rc_status s = RC_OK;
   for (int i = 0; i < o->n && s == RC_OK; i++) {
     int v = find_value(g, o->specs[i].output);
@@ -269,8 +269,8 @@ rc_status cli_outputs_eval(rc_metrics *m, cli_outputs *o, rc_model *model, rc_mo
   rc_dataset d;
   memset(&d, 0, sizeof d);
   rc_output_side side, val_side;
-  rc_status st = rc_plan_create(&pm, g, shapes, NULL, e);
-  if (st == RC_OK && ref) st = rc_plan_create(&pr, &ref->graph, shapes, NULL, e);
+  rc_status st = rc_plan_init(&pm, g, shapes, NULL, e);
+  if (st == RC_OK && ref) st = rc_plan_init(&pr, &ref->graph, shapes, NULL, e);
   if (st == RC_OK && !o->n) st = default_specs(o, pm, g, e);
   /* eval has no targets: bounded-l2 is a training term; its output is measured as values. */
   for (int i = 0; i < o->n && st == RC_OK; i++)

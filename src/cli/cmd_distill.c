@@ -18,6 +18,7 @@
 #include "cli/cli_synth.h"
 #include "core/alloc.h"
 #include "core/file.h"
+#include "cli/distill_options.h"
 #include "cli/report.h"
 #include "cli/weight_rules.h"
 #include "core/fmt.h"
@@ -30,6 +31,9 @@
 #define MAX_GLOBS 32
 
 static void usage(FILE *f) {
+  static const char *const heads[CLI_GROUP_COUNT] = {
+      "Models:", "Data:", "Training (defaults chosen for recovery fine-tuning from a good start):", "Interruption:",
+      "Output:"};
   fprintf(f,
       "Usage: recoup distill --teacher DENSE.onnx --student COMPRESSED.onnx --data X\n"
       "                      --out RECOVERED.onnx [OPTIONS]\n"
@@ -37,82 +41,14 @@ static void usage(FILE *f) {
       "Fine-tune a pruned (or otherwise compressed) model on CPU so that its outputs\n"
       "match the dense model's (knowledge distillation). Weights that are exactly zero\n"
       "in the student stay exactly zero. Labels are optional: the teacher's outputs\n"
-      "are the target; labels, when given, add a cross-entropy term.\n"
-      "\n"
-      "Data:\n"
-      "  --data FILE|NAME=FILE    training samples (.npy, .npz, IDX, .gz, .pb); repeatable\n"
-      "  --data synth:N           N inputs synthesised from the teacher alone (see recoup\n"
-      "                           synthesize; its defaults, seeded by --seed)\n"
-      "  --labels FILE            class labels of --data (optional); with --output-loss,\n"
-      "                           per-position labels of the first kd output\n"
-      "  --val-data FILE|NAME=FILE  validation samples (default: hold out --val-split)\n"
-      "  --val-labels FILE        labels of --val-data\n"
-      "  --val-split F            fraction of --data held out for validation (default 0.1)\n"
-      "  --scale S, --mean M[,..], --std D[,..]   x' = (x*S - M) / D, as for eval\n"
-      CLI_IMAGE_HELP
-      "  --cache-mb N             keep the teacher's cached outputs in memory up to N MB,\n"
-      "                           beyond that in a mapped temporary file next to --out\n"
-      "                           (default: a quarter of physical memory)\n"
-      "\n"
-      "Training (defaults chosen for recovery fine-tuning from a good start):\n"
-      "  --epochs E               passes over the training samples (default 3)\n"
-      "  --steps N                optimizer steps instead of epochs\n"
-      "  --batch B                samples per step (default 64)\n"
-      "  --optimizer adamw|sgd    (default adamw)\n"
-      "  --lr R                   peak learning rate (default 5e-4 adamw, 0.01 sgd)\n"
-      "  --schedule cosine|step|constant  (default cosine, linear warm-up over 3%%)\n"
-      "  --warmup N               warm-up steps (overrides the 3%% default)\n"
-      "  --step-size N            steps between decays for --schedule step (default: an epoch)\n"
-      "  --gamma G                decay factor for --schedule step (default 0.1)\n"
-      "  --weight-decay W         (default 0 adamw, 1e-4 sgd; never on pruned entries\n"
-      "                           or normalisation parameters)\n"
-      "  --momentum M             SGD momentum (default 0.9, Nesterov)\n"
-      "  --no-nesterov            plain momentum for SGD\n"
-      "  --clip N                 clip the global gradient norm at N (default 5; 0 = off)\n"
-      "  --loss TERMS             loss terms with weights, e.g. kd=1,hint=0.5,attention=1000\n"
-      "                           (default kd): kd, logit-mse, hint, attention, boundary,\n"
-      "                           fsp, rkd-distance, rkd-angle, attention-map, weight-anchor\n"
-      "  --pair T=S               match teacher tensor T with student tensor S for the\n"
-      "                           feature terms (repeatable; default: automatic pairing)\n"
-      "  --output-loss OUT=TERM[:key=value...]  a loss on model output OUT instead of the\n"
-      "                           logit terms (repeatable; outputs not named take none):\n"
-      "                           kd (axis, t, weights), kd-sigmoid (t), mse, smooth-l1\n"
-      "                           (beta), bounded-l2 (axis, margin; needs --targets),\n"
-      "                           edge-kd (axis, bins, t); each takes weight=W\n"
-      "  --targets OUT=FILE       regression targets of output OUT (NaN: no target there)\n"
-      "  --val-targets OUT=FILE   the same for --val-data\n"
-      "  --ignore-label V         dense label value that takes no loss (default 255)\n"
-      "  --config FILE            JSON with \"loss\" (term: weight) and \"pairs\"\n"
-      "                           ([{\"teacher\", \"student\", \"weight\"}]), see README\n"
-      "  --temperature T          kd temperature (default 4)\n"
-      "  --alpha A                weight of the distillation term against cross-entropy\n"
-      "                           (default 0.9 with labels, 1 without)\n"
-      "  --bn frozen|recalibrate|train  BatchNormalization statistics (default frozen)\n"
-      "  --mask auto|zeros|none   which zero weights stay zero (default auto): zeros =\n"
-      "                           every zero (integer at its zero point); none = no mask;\n"
-      "                           auto = zeros of float weights, and of quantized weights\n"
-      "                           recorded as pruned or far more common than rounding\n"
-      "                           explains (see README)\n"
-      "  --train PATTERN          also train float initializers matching this glob\n"
-      "  --freeze PATTERN         do not train initializers matching this glob\n"
-      "  --seed S                 data order and split (default 1); same seed and\n"
-      "                           threads give a byte-identical output file\n"
-      "  --threads N              compute threads; 0 (the default) uses every online core\n"
-      "\n"
-      "Interruption:\n"
-      "  --checkpoint FILE        where to keep the run's state (default OUT.ckpt; the\n"
-      "                           previous one is kept as FILE.1); removed on success\n"
-      "  --checkpoint-every N     also every N steps (default 500; 0 = epoch ends only)\n"
-      "  --resume FILE            continue an interrupted run from its checkpoint; the\n"
-      "                           result is byte-identical to an uninterrupted run\n"
-      "  SIGINT or SIGTERM writes a checkpoint and exits with status 1.\n"
-      "\n"
-      "Output:\n"
-      "  --out FILE               the recovered model (never one of the inputs)\n"
-      "  --json                   print the before/after results as JSON on stdout\n"
-      "  --report DIR             also write a report into DIR: report.html (charts),\n"
-      "                           summary.csv, summary.md and JSON records\n"
-      "  -h, --help               show this help\n"
+      "are the target; labels, when given, add a cross-entropy term.\n");
+  for (int g = 0; g < CLI_GROUP_COUNT; g++) {
+    fprintf(f, "\n%s\n", heads[g]);
+    cli_distill_options_help(f, (cli_opt_group)g);
+    if (g == CLI_GROUP_INTERRUPTION) fprintf(f, "  SIGINT or SIGTERM writes a checkpoint and exits with status 1.\n");
+    if (g == CLI_GROUP_OUTPUT) fprintf(f, "  -h, --help               show this help\n");
+  }
+  fprintf(f,
       "\n"
       "The state with the lowest validation KL to the teacher is written (with\n"
       "labels: alpha*KL + (1-alpha)*cross-entropy); accuracy and agreement are shown\n"
@@ -144,186 +80,95 @@ typedef struct distill_args {
   cli_outputs outs;
 } distill_args;
 
-enum {
-  OPT_TEACHER = 256, OPT_STUDENT, OPT_DATA, OPT_LABELS, OPT_VAL_DATA, OPT_VAL_LABELS, OPT_VAL_SPLIT,
-  OPT_SCALE, OPT_MEAN, OPT_STD, OPT_EPOCHS, OPT_STEPS, OPT_BATCH, OPT_OPTIMIZER, OPT_LR, OPT_SCHEDULE,
-  OPT_WARMUP, OPT_STEP_SIZE, OPT_GAMMA, OPT_WD, OPT_MOMENTUM, OPT_NO_NESTEROV, OPT_CLIP, OPT_LOSS,
-  OPT_TEMPERATURE, OPT_ALPHA, OPT_BN, OPT_MASK, OPT_TRAIN, OPT_FREEZE, OPT_SEED, OPT_THREADS, OPT_OUT, OPT_JSON,
-  OPT_CHECKPOINT, OPT_CHECKPOINT_EVERY, OPT_RESUME, OPT_PAIR, OPT_CONFIG, OPT_REPORT, OPT_OUTPUT_LOSS, OPT_TARGETS,
-  OPT_VAL_TARGETS, OPT_IGNORE_LABEL, OPT_RESIZE, OPT_SKIP_BAD, OPT_CACHE_MB
-};
-
-static int number(const char *opt, const char *v, double lo, double hi, double *out) {
-  if (cli_parse_float(v, out) || *out < lo || *out > hi)
-    return cli_usage_error("distill", "--%s expects a number in [%g, %g], got '%s'", opt, lo, hi, v);
-  return 0;
-}
-
-static int integer(const char *opt, const char *v, long lo, long hi, long *out) {
-  if (cli_parse_int(v, lo, hi, out))
-    return cli_usage_error("distill", "--%s expects an integer in [%ld, %ld], got '%s'", opt, lo, hi, v);
-  return 0;
-}
-
-static int choice(const char *opt, const char *v, const char *const *names, int n, int *out) {
-  for (int i = 0; i < n; i++)
-    if (!strcmp(v, names[i])) {
-      *out = i;
-      return 0;
-    }
-  return cli_usage_error("distill", "--%s: unknown value '%s'", opt, v);
-}
-
 static int apply_option(distill_args *a, int c, const char *v) {
   rc_distill_config *cfg = &a->cfg;
-  double d;
-  long l;
-  int k = 0;
-  switch (c) {
-    case OPT_TEACHER: a->teacher = v; return 0;
-    case OPT_STUDENT: a->student = v; return 0;
-    case OPT_OUT: a->out = v; return 0;
-    case OPT_DATA:
+  if (c < CLI_OPT_BASE || c >= CLI_OPT_BASE + CLI_DISTILL_N_OPTIONS) return cli_usage_error("distill", "unknown option");
+  double d = 0;
+  long l = 0;
+  if (cli_option_value(&cli_distill_options[c - CLI_OPT_BASE], v, &d, &l)) return RC_EXIT_USAGE;
+  switch ((cli_distill_opt)(c - CLI_OPT_BASE)) {
+    case CLI_DISTILL_TEACHER: a->teacher = v; return 0;
+    case CLI_DISTILL_STUDENT: a->student = v; return 0;
+    case CLI_DISTILL_OUT: a->out = v; return 0;
+    case CLI_DISTILL_DATA:
       if (a->data.n_data == CLI_MAX_DATA) return cli_usage_error("distill", "too many --data");
       a->data.data[a->data.n_data++] = v;
       return 0;
-    case OPT_LABELS: a->data.labels = v; return 0;
-    case OPT_VAL_DATA:
+    case CLI_DISTILL_LABELS: a->data.labels = v; return 0;
+    case CLI_DISTILL_VAL_DATA:
       if (a->n_val_data == CLI_MAX_DATA) return cli_usage_error("distill", "too many --val-data");
       a->val_data[a->n_val_data++] = v;
       return 0;
-    case OPT_VAL_LABELS: a->val_labels = v; return 0;
-    case OPT_VAL_SPLIT:
-      if (number("val-split", v, 1e-6, 0.9, &d)) return RC_EXIT_USAGE;
-      a->val_split = d;
-      return 0;
-    case OPT_SCALE: return cli_data_option(&a->data, "distill", "scale", v);
-    case OPT_MEAN: return cli_data_option(&a->data, "distill", "mean", v);
-    case OPT_STD: return cli_data_option(&a->data, "distill", "std", v);
-    case OPT_RESIZE: return cli_data_option(&a->data, "distill", "resize", v);
-    case OPT_SKIP_BAD: return cli_data_option(&a->data, "distill", "skip-bad", v);
-    case OPT_CACHE_MB:
-      if (integer("cache-mb", v, 1, LONG_MAX / 2, &l)) return RC_EXIT_USAGE;
-      a->cfg.cache_bytes = (size_t)l << 20;
-      return 0;
-    case OPT_EPOCHS:
-      if (integer("epochs", v, 1, 1000000, &l)) return RC_EXIT_USAGE;
-      cfg->epochs = l;
-      return 0;
-    case OPT_STEPS:
-      if (integer("steps", v, 1, LONG_MAX, &l)) return RC_EXIT_USAGE;
-      cfg->steps = l;
-      return 0;
-    case OPT_BATCH:
-      if (integer("batch", v, 1, 1 << 16, &l)) return RC_EXIT_USAGE;
-      cfg->batch = l;
-      return 0;
-    case OPT_OPTIMIZER: {
-      static const char *const names[] = {"sgd", "adamw"};
-      if (choice("optimizer", v, names, 2, &k)) return RC_EXIT_USAGE;
+    case CLI_DISTILL_VAL_LABELS: a->val_labels = v; return 0;
+    case CLI_DISTILL_VAL_SPLIT: a->val_split = d; return 0;
+    case CLI_DISTILL_SCALE: return cli_data_option(&a->data, "distill", "scale", v);
+    case CLI_DISTILL_MEAN: return cli_data_option(&a->data, "distill", "mean", v);
+    case CLI_DISTILL_STD: return cli_data_option(&a->data, "distill", "std", v);
+    case CLI_DISTILL_RESIZE: return cli_data_option(&a->data, "distill", "resize", v);
+    case CLI_DISTILL_SKIP_BAD: return cli_data_option(&a->data, "distill", "skip-bad", v);
+    case CLI_DISTILL_CACHE_MB: a->cfg.cache_bytes = (size_t)l << 20; return 0;
+    case CLI_DISTILL_EPOCHS: cfg->epochs = l; return 0;
+    case CLI_DISTILL_STEPS: cfg->steps = l; return 0;
+    case CLI_DISTILL_BATCH: cfg->batch = l; return 0;
+    case CLI_DISTILL_OPTIMIZER: {
       rc_optim_config keep = cfg->optim;
-      rc_optim_defaults(&cfg->optim, k == 0 ? RC_OPTIM_SGD : RC_OPTIM_ADAMW);
+      rc_optim_defaults(&cfg->optim, l == 1 ? RC_OPTIM_SGD : RC_OPTIM_ADAMW); /* choices: adamw, sgd */
       if (a->lr_set) cfg->optim.lr = keep.lr;
       if (a->wd_set) cfg->optim.weight_decay = keep.weight_decay;
       return 0;
     }
-    case OPT_LR:
-      if (number("lr", v, 1e-12, 10, &d)) return RC_EXIT_USAGE;
+    case CLI_DISTILL_LR:
       cfg->optim.lr = (float)d;
       a->lr_set = 1;
       return 0;
-    case OPT_SCHEDULE: {
-      static const char *const names[] = {"constant", "step", "cosine"};
-      if (choice("schedule", v, names, 3, &k)) return RC_EXIT_USAGE;
-      cfg->sched.kind = k == 0 ? RC_SCHED_CONSTANT : k == 1 ? RC_SCHED_STEP : RC_SCHED_COSINE;
+    case CLI_DISTILL_SCHEDULE: /* choices: cosine, step, constant */
+      cfg->sched.kind = l == 0 ? RC_SCHED_COSINE : l == 1 ? RC_SCHED_STEP : RC_SCHED_CONSTANT;
       return 0;
-    }
-    case OPT_WARMUP:
-      if (integer("warmup", v, 0, LONG_MAX, &l)) return RC_EXIT_USAGE;
-      cfg->sched.warmup = l;
-      return 0;
-    case OPT_STEP_SIZE:
-      if (integer("step-size", v, 1, LONG_MAX, &l)) return RC_EXIT_USAGE;
-      cfg->sched.step_size = l;
-      return 0;
-    case OPT_GAMMA:
-      if (number("gamma", v, 1e-9, 1, &d)) return RC_EXIT_USAGE;
-      cfg->sched.gamma = (float)d;
-      return 0;
-    case OPT_WD:
-      if (number("weight-decay", v, 0, 1, &d)) return RC_EXIT_USAGE;
+    case CLI_DISTILL_WARMUP: cfg->sched.warmup = l; return 0;
+    case CLI_DISTILL_STEP_SIZE: cfg->sched.step_size = l; return 0;
+    case CLI_DISTILL_GAMMA: cfg->sched.gamma = (float)d; return 0;
+    case CLI_DISTILL_WEIGHT_DECAY:
       cfg->optim.weight_decay = (float)d;
       a->wd_set = 1;
       return 0;
-    case OPT_MOMENTUM:
-      if (number("momentum", v, 0, 0.9999, &d)) return RC_EXIT_USAGE;
-      cfg->optim.momentum = (float)d;
-      return 0;
-    case OPT_NO_NESTEROV: cfg->optim.nesterov = 0; return 0;
-    case OPT_CLIP:
-      if (number("clip", v, 0, 1e9, &d)) return RC_EXIT_USAGE;
-      cfg->clip = d;
-      return 0;
-    case OPT_LOSS: {
+    case CLI_DISTILL_MOMENTUM: cfg->optim.momentum = (float)d; return 0;
+    case CLI_DISTILL_NO_NESTEROV: cfg->optim.nesterov = 0; return 0;
+    case CLI_DISTILL_CLIP: cfg->clip = d; return 0;
+    case CLI_DISTILL_LOSS: {
       rc_err e = {0};
-      if (rc_loss_spec_parse(&cfg->terms, v, &e) != RC_OK) return cli_usage_error("distill", "%s", e.msg);
+      if (rc_loss_spec_parse(&cfg->terms, v, &e) != RC_OK) return cli_usage_error("distill", "--loss: %s", e.msg);
       return 0;
     }
-    case OPT_PAIR:
+    case CLI_DISTILL_PAIR:
       if (a->n_pairs == MAX_GLOBS) return cli_usage_error("distill", "too many --pair");
       a->pairs[a->n_pairs] = v;
       a->pair_weights[a->n_pairs++] = 1.0f;
       return 0;
-    case OPT_CONFIG: a->config = v; return 0;
-    case OPT_REPORT: a->report = v; return 0;
-    case OPT_TEMPERATURE:
-      if (number("temperature", v, 1e-3, 1e3, &d)) return RC_EXIT_USAGE;
-      cfg->temperature = (float)d;
-      return 0;
-    case OPT_ALPHA:
-      if (number("alpha", v, 0, 1, &d)) return RC_EXIT_USAGE;
-      cfg->alpha = (float)d;
-      return 0;
-    case OPT_BN: {
-      static const char *const names[] = {"frozen", "recalibrate", "train"};
-      if (choice("bn", v, names, 3, &k)) return RC_EXIT_USAGE;
-      cfg->bn = (rc_bn_mode)k;
-      return 0;
-    }
-    case OPT_MASK:
-      if (!rc__mask_mode_parse(v, &cfg->mask))
-        return cli_usage_error("distill", "--mask must be auto, zeros or none, not '%s'", v);
-      return 0;
-    case OPT_TRAIN:
+    case CLI_DISTILL_CONFIG: a->config = v; return 0;
+    case CLI_DISTILL_REPORT: a->report = v; return 0;
+    case CLI_DISTILL_TEMPERATURE: cfg->temperature = (float)d; return 0;
+    case CLI_DISTILL_ALPHA: cfg->alpha = (float)d; return 0;
+    case CLI_DISTILL_BN: cfg->bn = (rc_bn_mode)l; return 0;       /* choices in rc_bn_mode's order */
+    case CLI_DISTILL_MASK: cfg->mask = (rc_mask_mode)l; return 0; /* choices in rc_mask_mode's order */
+    case CLI_DISTILL_TRAIN:
       if (a->n_train == MAX_GLOBS) return cli_usage_error("distill", "too many --train");
       a->train[a->n_train++] = v;
       return 0;
-    case OPT_FREEZE:
+    case CLI_DISTILL_FREEZE:
       if (a->n_freeze == MAX_GLOBS) return cli_usage_error("distill", "too many --freeze");
       a->freeze[a->n_freeze++] = v;
       return 0;
-    case OPT_SEED:
-      if (integer("seed", v, 0, LONG_MAX, &l)) return RC_EXIT_USAGE;
-      cfg->seed = (uint64_t)l;
-      return 0;
-    case OPT_THREADS:
-      if (integer("threads", v, 0, 1024, &l)) return RC_EXIT_USAGE;
-      a->threads = l;
-      return 0;
-    case OPT_JSON: a->json = 1; return 0;
-    case OPT_CHECKPOINT: a->checkpoint = v; return 0;
-    case OPT_CHECKPOINT_EVERY:
-      if (integer("checkpoint-every", v, 0, LONG_MAX, &l)) return RC_EXIT_USAGE;
-      cfg->checkpoint_every = l;
-      return 0;
-    case OPT_RESUME: cfg->resume_path = v; return 0;
-    case OPT_OUTPUT_LOSS: return cli_outputs_add_spec(&a->outs, "distill", v);
-    case OPT_TARGETS: return cli_outputs_add_targets(&a->outs, "distill", v, 0);
-    case OPT_VAL_TARGETS: return cli_outputs_add_targets(&a->outs, "distill", v, 1);
-    case OPT_IGNORE_LABEL:
-      if (integer("ignore-label", v, -2147483647L, 2147483647L, &l)) return RC_EXIT_USAGE;
-      a->outs.ignore = l;
-      return 0;
+    case CLI_DISTILL_SEED: cfg->seed = (uint64_t)l; return 0;
+    case CLI_DISTILL_THREADS: a->threads = l; return 0;
+    case CLI_DISTILL_JSON: a->json = 1; return 0;
+    case CLI_DISTILL_CHECKPOINT: a->checkpoint = v; return 0;
+    case CLI_DISTILL_CHECKPOINT_EVERY: cfg->checkpoint_every = l; return 0;
+    case CLI_DISTILL_RESUME: cfg->resume_path = v; return 0;
+    case CLI_DISTILL_OUTPUT_LOSS: return cli_outputs_add_spec(&a->outs, "distill", v);
+    case CLI_DISTILL_TARGETS: return cli_outputs_add_targets(&a->outs, "distill", v, 0);
+    case CLI_DISTILL_VAL_TARGETS: return cli_outputs_add_targets(&a->outs, "distill", v, 1);
+    case CLI_DISTILL_IGNORE_LABEL: a->outs.ignore = l; return 0;
+    case CLI_DISTILL_N_OPTIONS: break;
   }
   return cli_usage_error("distill", "unknown option");
 }
@@ -383,7 +228,7 @@ static int read_config(distill_args *a) {
     }
     rc_err e = {0};
     if (rc_loss_spec_parse(&a->cfg.terms, spec, &e) != RC_OK) {
-      rc = cli_usage_error("distill", "--config %s: %s", a->config, e.msg);
+      rc = cli_usage_error("distill", "--config %s: \"loss\": %s", a->config, e.msg);
       goto out;
     }
   }
@@ -423,40 +268,15 @@ out:
 static int apply_option_ctx(void *a, int c, const char *v) { return apply_option(a, c, v); }
 
 static int parse_args(distill_args *a, int argc, char **argv) {
-  static const struct option longopts[] = {
-      {"teacher", required_argument, NULL, OPT_TEACHER}, {"student", required_argument, NULL, OPT_STUDENT},
-      {"data", required_argument, NULL, OPT_DATA}, {"labels", required_argument, NULL, OPT_LABELS},
-      {"val-data", required_argument, NULL, OPT_VAL_DATA}, {"val-labels", required_argument, NULL, OPT_VAL_LABELS},
-      {"val-split", required_argument, NULL, OPT_VAL_SPLIT}, {"scale", required_argument, NULL, OPT_SCALE},
-      {"mean", required_argument, NULL, OPT_MEAN}, {"std", required_argument, NULL, OPT_STD},
-      {"resize", required_argument, NULL, OPT_RESIZE}, {"skip-bad", no_argument, NULL, OPT_SKIP_BAD},
-      {"cache-mb", required_argument, NULL, OPT_CACHE_MB},
-      {"epochs", required_argument, NULL, OPT_EPOCHS}, {"steps", required_argument, NULL, OPT_STEPS},
-      {"batch", required_argument, NULL, OPT_BATCH}, {"optimizer", required_argument, NULL, OPT_OPTIMIZER},
-      {"lr", required_argument, NULL, OPT_LR}, {"schedule", required_argument, NULL, OPT_SCHEDULE},
-      {"warmup", required_argument, NULL, OPT_WARMUP}, {"step-size", required_argument, NULL, OPT_STEP_SIZE},
-      {"gamma", required_argument, NULL, OPT_GAMMA}, {"weight-decay", required_argument, NULL, OPT_WD},
-      {"momentum", required_argument, NULL, OPT_MOMENTUM}, {"no-nesterov", no_argument, NULL, OPT_NO_NESTEROV},
-      {"clip", required_argument, NULL, OPT_CLIP}, {"loss", required_argument, NULL, OPT_LOSS},
-      {"temperature", required_argument, NULL, OPT_TEMPERATURE}, {"alpha", required_argument, NULL, OPT_ALPHA},
-      {"bn", required_argument, NULL, OPT_BN}, {"mask", required_argument, NULL, OPT_MASK},
-      {"train", required_argument, NULL, OPT_TRAIN},
-      {"freeze", required_argument, NULL, OPT_FREEZE}, {"seed", required_argument, NULL, OPT_SEED},
-      {"threads", required_argument, NULL, OPT_THREADS}, {"out", required_argument, NULL, OPT_OUT},
-      {"json", no_argument, NULL, OPT_JSON}, {"checkpoint", required_argument, NULL, OPT_CHECKPOINT},
-      {"checkpoint-every", required_argument, NULL, OPT_CHECKPOINT_EVERY},
-      {"resume", required_argument, NULL, OPT_RESUME}, {"pair", required_argument, NULL, OPT_PAIR},
-      {"config", required_argument, NULL, OPT_CONFIG}, {"report", required_argument, NULL, OPT_REPORT},
-      {"output-loss", required_argument, NULL, OPT_OUTPUT_LOSS}, {"targets", required_argument, NULL, OPT_TARGETS},
-      {"val-targets", required_argument, NULL, OPT_VAL_TARGETS},
-      {"ignore-label", required_argument, NULL, OPT_IGNORE_LABEL},
-      {"help", no_argument, NULL, 'h'}, {NULL, 0, NULL, 0}};
+  struct option longopts[CLI_DISTILL_N_OPTIONS + 2];
+  cli_distill_longopts(longopts);
   memset(a, 0, sizeof *a);
   cli_data_opts_init(&a->data);
   cli_outputs_init(&a->outs);
   rc_distill_config_defaults(&a->cfg);
-  a->cfg.checkpoint_every = 500;
-  a->val_split = 0.1;
+  for (int i = 0; i < CLI_DISTILL_N_OPTIONS; i++)
+    if (cli_distill_options[i].dflt && apply_option(a, CLI_OPT_BASE + i, cli_distill_options[i].dflt))
+      return RC_EXIT_FAIL; /* a default the table itself refuses */
   int pr = cli_parse_options(argc, argv, longopts, "distill", apply_option_ctx, a, usage);
   if (pr) return pr;
   if (optind != argc) return cli_usage_error("distill", "unexpected argument '%s'", argv[optind]);

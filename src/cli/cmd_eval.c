@@ -141,7 +141,7 @@ static rc_status run_model(run_result *r, const char *path, const cli_samples *s
   if (g->n_outputs > 64) return rc__fail(e, RC_ERR_UNSUPPORTED, "%s: more than 64 outputs", path);
   rc_tensor shapes[CLI_MAX_DATA];
   cli_samples_shapes(s, batch, shapes);
-  RC_TRY(rc_plan_create(&r->plan, g, shapes, NULL, e));
+  RC_TRY(rc_plan_init(&r->plan, g, shapes, NULL, e));
   for (int j = 0; j < g->n_outputs; j++) {
     const rc_tensor *t = rc_plan_tensor(r->plan, g->outputs[j]);
     if (t->rank < 1 || t->dims[0] != batch)

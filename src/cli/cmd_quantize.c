@@ -180,7 +180,7 @@ static rc_status run_first_output(first_output *o, const rc_graph *g, const cli_
   rc_tensor shapes[CLI_MAX_DATA];
   cli_samples_shapes(s, batch, shapes);
   rc_plan *p = NULL;
-  RC_TRY(rc_plan_create(&p, g, shapes, NULL, e));
+  RC_TRY(rc_plan_init(&p, g, shapes, NULL, e));
   const rc_tensor *t = rc_plan_tensor(p, g->outputs[0]);
   rc_status st = RC_OK;
   if (t->dtype != RC_DTYPE_FLOAT || t->rank < 1 || t->dims[0] != batch)

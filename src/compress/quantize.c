@@ -350,7 +350,7 @@ static rc_status make_plan(qstate *q, const rc_dataset *d, int64_t batch, const 
   }
   rc_plan_opts opts = {0};
   opts.keep = keep;
-  return rc_plan_create(p, q->g, shapes, &opts, q->e);
+  return rc_plan_init(p, q->g, shapes, &opts, q->e);
 }
 
 static rc_status calib_pass(qstate *q, const rc_dataset *d, calib_plans *cp, int pass) {

@@ -168,7 +168,7 @@ static int cmp_i64(const void *a, const void *b) {
   return (x > y) - (x < y);
 }
 
-rc_status rc_data_split_make(rc_data_split *out, int64_t n, double val_fraction, uint64_t seed, rc_err *e) {
+rc_status rc_data_split_init(rc_data_split *out, int64_t n, double val_fraction, uint64_t seed, rc_err *e) {
   memset(out, 0, sizeof *out);
   if (!(val_fraction >= 0.0 && val_fraction < 1.0))
     return rc__fail(e, RC_ERR_INVALID, "validation fraction %g is outside [0, 1)", val_fraction);

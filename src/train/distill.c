@@ -12,9 +12,11 @@
 #include "core/file.h"
 #include "core/log.h"
 #include "data/spill.h"
+#include "plan/count.h"
 #include "plan/inspect.h"
 #include "plan/load.h"
 #include "plan/plan.h"
+#include "train/bn_stats.h"
 #include "train/checkpoint.h"
 #include "train/loss.h"
 #include "train/measure.h"
@@ -60,63 +62,6 @@ static double now_s(void) {
   struct timespec ts;
   clock_gettime(CLOCK_MONOTONIC, &ts);
   return (double)ts.tv_sec + 1e-9 * (double)ts.tv_nsec;
-}
-
-/* ---- Teacher and student must agree -------------------------------------- */
-
-static int find_by_name(const rc_graph *g, const int *vals, int n, const char *name) {
-  for (int i = 0; i < n; i++)
-    if (!strcmp(g->values[vals[i]].name, name)) return i;
-  return -1;
-}
-
-static rc_status check_io(const rc_graph *t, const int *tv, int tn, const rc_graph *s, const int *sv, int sn,
-                          const char *what, rc_err *e) {
-  if (tn != sn)
-    return rc__fail(e, RC_ERR_SHAPE, "teacher %s has %d %ss, student %s has %d", t->path, tn, what, s->path, sn);
-  for (int i = 0; i < sn; i++) {
-    const rc_value *b = &s->values[sv[i]];
-    int j = find_by_name(t, tv, tn, b->name);
-    if (j < 0)
-      return rc__fail(e, RC_ERR_SHAPE, "student %s '%s' (%s) has no %s of that name in teacher %s", what, b->name,
-                      s->path, what, t->path);
-    const rc_value *a = &t->values[tv[j]];
-    if (a->decl.dtype != b->decl.dtype)
-      return rc__fail(e, RC_ERR_SHAPE, "%s '%s': teacher dtype %s, student %s", what, b->name,
-                      rc_dtype_name(a->decl.dtype), rc_dtype_name(b->decl.dtype));
-    if (a->decl.rank >= 0 && b->decl.rank >= 0) {
-      int ok = a->decl.rank == b->decl.rank;
-      for (int d = 0; ok && d < a->decl.rank; d++)
-        if (a->decl.dims[d] >= 0 && b->decl.dims[d] >= 0 && a->decl.dims[d] != b->decl.dims[d]) ok = 0;
-      if (!ok) {
-        char sa[128], sb[128];
-        return rc__fail(e, RC_ERR_SHAPE, "%s '%s': teacher shape %s, student %s", what, b->name,
-                        rc_shape_str(&a->decl, sa, sizeof sa), rc_shape_str(&b->decl, sb, sizeof sb));
-      }
-    }
-  }
-  return RC_OK;
-}
-
-/* Training runs batches of any size (--batch, the last partial batch, single
- * samples for pairing), so a model exported with a fixed batch dimension
- * cannot be trained as it is; say so instead of failing on a shape later. */
-static rc_status check_free_batch(const rc_graph *g, const char *role, rc_err *e) {
-  for (int i = 0; i < g->n_inputs; i++) {
-    const rc_value *v = &g->values[g->inputs[i]];
-    if (v->decl.rank >= 1 && v->decl.dims[0] >= 0)
-      return rc__fail(e, RC_ERR_UNSUPPORTED, "%s %s: input '%s' has a fixed batch size of %lld; distillation needs a "
-                      "free first axis (re-export the model with a dynamic batch dimension)", role, g->path, v->name,
-                      (long long)v->decl.dims[0]);
-  }
-  return RC_OK;
-}
-
-rc_status rc_distill_check_pair(const rc_graph *t, const rc_graph *s, rc_err *e) {
-  RC_TRY(check_free_batch(t, "teacher", e));
-  RC_TRY(check_free_batch(s, "student", e));
-  RC_TRY(check_io(t, t->inputs, t->n_inputs, s, s->inputs, s->n_inputs, "input", e));
-  return check_io(t, t->outputs, t->n_outputs, s, s->outputs, s->n_outputs, "output", e);
 }
 
 /* ---- What trains ----------------------------------------------------------- */
@@ -246,7 +191,8 @@ static rc_status select_trainables(run_state *st, rc_err *e) {
   }
   if (!st->n_tr)
     return rc__fail(e, RC_ERR_INVALID, "%s: nothing to train (no float weights of Conv, ConvTranspose, Gemm, "
-                    "MatMul, PRelu, normalisation layers or Add/Mul parameters after --train/--freeze)", g->path);
+                    "MatMul, PRelu, normalisation layers or Add/Mul parameters after the train and freeze patterns)",
+                    g->path);
   return RC_OK;
 }
 
@@ -274,8 +220,6 @@ static rc_status collect_bn(run_state *st, rc_err *e) {
   return RC_OK;
 }
 
-static void input_shapes(const rc_graph *g, const rc_tensor *data, int64_t b, rc_tensor *shapes);
-
 /* Feature terms: pairs, projectors (store entries), tensors to keep. */
 static rc_status setup_features(run_state *st, const rc_tensor *data, rc_err *e) {
   const rc_distill_config *c = st->c;
@@ -287,14 +231,14 @@ static rc_status setup_features(run_state *st, const rc_tensor *data, rc_err *e)
   st->skeep = rc__calloc((size_t)st->sg->n_values + 1, 1);
   if (!st->tkeep || !st->skeep) return rc__fail(e, RC_ERR_NOMEM, "out of memory");
   rc_tensor shapes[RC_DATASET_MAX_INPUTS];
-  input_shapes(st->sg, data, 1, shapes);
-  return rc__features_setup(&st->feat, &c->terms, &st->teacher->graph, st->sg, shapes, c->pairs, c->pair_weights,
-                            c->n_pairs, st->ps, st->tkeep, st->skeep, e);
+  rc__input_shapes(st->sg, data, 1, shapes);
+  return rc__features_init(&st->feat, &c->terms, &st->teacher->graph, st->sg, shapes, c->pairs, c->pair_weights,
+                           c->n_pairs, st->ps, st->tkeep, st->skeep, e);
 }
 
 static rc_status build_store(run_state *st, const rc_tensor *data, rc_err *e) {
   rc_graph *g = st->sg;
-  RC_TRY(rc_params_create(&st->ps, e));
+  RC_TRY(rc_params_init(&st->ps, e));
   for (int i = 0; i < st->n_tr; i++) {
     rc_value *val = &g->values[st->tr[i].value];
     RC_TRY(rc_params_add(st->ps, &st->tr[i].entry, val->name, rc_tensor_numel(&val->decl), val->decl.data,
@@ -303,7 +247,7 @@ static rc_status build_store(run_state *st, const rc_tensor *data, rc_err *e) {
   RC_TRY(setup_features(st, data, e));
   RC_TRY(rc_params_finalize(st->ps, rc_optim_moments(&st->c->optim), e));
   RC_TRY(rc_params_build_masks(st->ps, e));
-  if (st->feat) RC_TRY(rc__features_init(st->feat, st->ps, st->c->seed, e));
+  if (st->feat) RC_TRY(rc__features_bind(st->feat, st->ps, st->c->seed, e));
   /* From here on the graph reads its initializers from the store. */
   for (int i = 0; i < st->n_tr; i++) {
     rc_value *val = &g->values[st->tr[i].value];
@@ -327,16 +271,6 @@ static void restore_graph_buffers(run_state *st) {
 
 /* ---- Plans ------------------------------------------------------------------ */
 
-static void input_shapes(const rc_graph *g, const rc_tensor *data, int64_t b, rc_tensor *shapes) {
-  for (int i = 0; i < g->n_inputs; i++) {
-    shapes[i] = data[i];
-    shapes[i].data = NULL;
-    shapes[i].dims[0] = b;
-    /* Raw sources converted per batch take the input's declared type. */
-    if (g->values[g->inputs[i]].decl.dtype == RC_DTYPE_FLOAT) shapes[i].dtype = RC_DTYPE_FLOAT;
-  }
-}
-
 static rc_status logits_width(const rc_plan *p, const rc_graph *g, int64_t b, int64_t *k, rc_err *e) {
   const rc_tensor *t = rc_plan_tensor((rc_plan *)p, g->outputs[0]);
   if (t->dtype != RC_DTYPE_FLOAT || t->rank != 2 || t->dims[0] != b)
@@ -349,7 +283,7 @@ static rc_status logits_width(const rc_plan *p, const rc_graph *g, int64_t b, in
 /* Inputs of the teacher in the student's order (names match, checked). */
 static void teacher_order(const rc_graph *t, const rc_graph *s, const rc_tensor *in, rc_tensor *out) {
   for (int i = 0; i < t->n_inputs; i++) {
-    int j = find_by_name(s, s->inputs, s->n_inputs, t->values[t->inputs[i]].name);
+    int j = rc__graph_find_in(s, s->inputs, s->n_inputs, t->values[t->inputs[i]].name);
     out[i] = in[j < 0 ? i : j];
   }
 }
@@ -357,7 +291,7 @@ static void teacher_order(const rc_graph *t, const rc_graph *s, const rc_tensor 
 static rc_status build_plans(run_state *st, const rc_tensor *data, rc_err *e) {
   const rc_graph *tg = &st->teacher->graph, *sg = st->sg;
   rc_tensor shapes[RC_DATASET_MAX_INPUTS], tin[RC_DATASET_MAX_INPUTS];
-  input_shapes(sg, data, st->batch, shapes);
+  rc__input_shapes(sg, data, st->batch, shapes);
   st->trainable_mask = rc__calloc((size_t)sg->n_values + 1, 1);
   unsigned char *live = rc__calloc((size_t)sg->n_values + 1, 1);
   if (!st->trainable_mask || !live) {
@@ -373,16 +307,16 @@ static rc_status build_plans(run_state *st, const rc_tensor *data, rc_err *e) {
       if (n->in[k] >= 0) st->trainable_mask[n->in[k]] = 0;
   }
   rc_plan_opts eval_opts = {.training = 0, .trainable = live, .keep = NULL, .bn_batch_stats = 0};
-  rc_status s = rc_plan_create(&st->eval_plan, sg, shapes, &eval_opts, e);
+  rc_status s = rc_plan_init(&st->eval_plan, sg, shapes, &eval_opts, e);
   rc__free(live);
   RC_TRY(s);
   rc_plan_opts train_opts = {.training = 1, .trainable = st->trainable_mask, .keep = st->skeep, .bn_batch_stats = st->c->bn == RC_BN_TRAIN};
-  RC_TRY(rc_plan_create(&st->train_plan, sg, shapes, &train_opts, e));
+  RC_TRY(rc_plan_init(&st->train_plan, sg, shapes, &train_opts, e));
   teacher_order(tg, sg, shapes, tin);
-  RC_TRY(rc_plan_create(&st->teacher_plan, tg, tin, NULL, e));
+  RC_TRY(rc_plan_init(&st->teacher_plan, tg, tin, NULL, e));
   if ((st->feat && rc_loss_spec_needs_features(&st->c->terms)) || st->c->n_output_losses) {
     rc_plan_opts keep = {.training = 0, .trainable = NULL, .keep = st->tkeep, .bn_batch_stats = 0};
-    RC_TRY(rc_plan_create(&st->teacher_step, tg, tin, &keep, e));
+    RC_TRY(rc_plan_init(&st->teacher_step, tg, tin, &keep, e));
   }
   int64_t kt = 0;
   if (st->c->n_output_losses)
@@ -410,118 +344,11 @@ static rc_status teacher_pass(run_state *st, const rc_dataset *d, float *out, rc
    * order them differently, so gather into the student's order first. */
   rc_dataset td = *d;
   for (int i = 0; i < tg->n_inputs; i++) {
-    int j = find_by_name(sg, sg->inputs, sg->n_inputs, tg->values[tg->inputs[i]].name);
+    int j = rc__graph_find_in(sg, sg->inputs, sg->n_inputs, tg->values[tg->inputs[i]].name);
     rc_dataset_take_input(&td, i, d, j);
   }
   void *outs[1] = {out};
   return rc__run_dataset(st->teacher_plan, &td, tg->outputs, 1, outs, e);
-}
-
-/* ---- BatchNormalization statistics --------------------------------------- */
-
-/* Per-channel mean and biased variance of x (N, C, ...) accumulated in double. */
-static void channel_moments(double *sum, double *sq, const rc_tensor *x, int64_t rows) {
-  int64_t c = x->rank > 1 ? x->dims[1] : 1, inner = 1;
-  for (int d = 2; d < x->rank; d++) inner *= x->dims[d];
-  const float *p = x->data;
-  for (int64_t n = 0; n < rows; n++)
-    for (int64_t ch = 0; ch < c; ch++) {
-      const float *q = p + (n * c + ch) * inner;
-      double s = 0, s2 = 0;
-      for (int64_t i = 0; i < inner; i++) {
-        s += q[i];
-        s2 += (double)q[i] * q[i];
-      }
-      sum[ch] += s;
-      sq[ch] += s2;
-    }
-}
-
-static float *bn_stat(run_state *st, const rc_node *n, int k) {
-  return (float *)st->sg->values[n->in[k]].decl.data;
-}
-
-/* Re-estimate every BatchNormalization's running mean and variance over the
- * training samples, with each layer normalising by batch statistics as it
- * would in training mode (so later layers see what they will see). */
-static rc_status recalibrate_bn(run_state *st, rc_err *e) {
-  const rc_graph *g = st->sg;
-  unsigned char *keep = rc__calloc((size_t)g->n_values + 1, 1);
-  double *acc = NULL;
-  rc_plan *p = NULL;
-  rc_status s = RC_OK;
-  int64_t max_c = 1;
-  if (!keep) return rc__fail(e, RC_ERR_NOMEM, "out of memory");
-  for (int b = 0; b < st->n_bn; b++) keep[g->nodes[st->bn_nodes[b]].in[0]] = 1;
-  rc_tensor shapes[RC_DATASET_MAX_INPUTS];
-  input_shapes(g, st->train.inputs, st->batch, shapes);
-  rc_plan_opts o = {.training = 0, .trainable = NULL, .keep = keep, .bn_batch_stats = 1};
-  if ((s = rc_plan_create(&p, g, shapes, &o, e)) != RC_OK) goto out;
-  for (int b = 0; b < st->n_bn; b++) {
-    const rc_tensor *x = rc_plan_tensor(p, g->nodes[st->bn_nodes[b]].in[0]);
-    if (x->rank > 1 && x->dims[1] > max_c) max_c = x->dims[1];
-  }
-  acc = rc__calloc((size_t)(2 * max_c * st->n_bn), sizeof(double));
-  if (!acc) {
-    s = rc__fail(e, RC_ERR_NOMEM, "out of memory");
-    goto out;
-  }
-  void *in_bufs[RC_DATASET_MAX_INPUTS];
-  for (int i = 0; i < g->n_inputs; i++) in_bufs[i] = rc_plan_tensor(p, g->inputs[i])->data;
-  rc_dataset_unshuffle(&st->train);
-  int64_t nb = rc_dataset_n_batches(&st->train, st->batch, 1), rows = 0;
-  for (int64_t b = 0; b < nb; b++) {
-    int64_t count;
-    if ((s = rc_dataset_gather(in_bufs, NULL, &count, &st->train, b, st->batch, e)) != RC_OK) goto out;
-    if ((s = rc_plan_forward(p, e)) != RC_OK) goto out;
-    for (int j = 0; j < st->n_bn; j++)
-      channel_moments(acc + 2 * max_c * j, acc + 2 * max_c * j + max_c,
-                      rc_plan_tensor(p, g->nodes[st->bn_nodes[j]].in[0]), count);
-    rows += count;
-  }
-  for (int j = 0; j < st->n_bn; j++) {
-    const rc_node *n = &g->nodes[st->bn_nodes[j]];
-    const rc_tensor *x = rc_plan_tensor(p, n->in[0]);
-    int64_t c = x->rank > 1 ? x->dims[1] : 1, inner = 1;
-    for (int d = 2; d < x->rank; d++) inner *= x->dims[d];
-    double cnt = (double)rows * (double)inner;
-    float *mean = bn_stat(st, n, 3), *var = bn_stat(st, n, 4);
-    for (int64_t ch = 0; ch < c && cnt > 0; ch++) {
-      double m = acc[2 * max_c * j + ch] / cnt;
-      double v = acc[2 * max_c * j + max_c + ch] / cnt - m * m;
-      mean[ch] = (float)m;
-      var[ch] = (float)(v > 0 ? v : 0);
-    }
-  }
-out:
-  rc_plan_free(p);
-  rc__free(acc);
-  rc__free(keep);
-  return s;
-}
-
-/* After a training-mode forward: running = running * momentum + batch * (1 -
- * momentum), the update ONNX's training-mode BatchNormalization defines (with
- * the batch's biased variance, as its reference implementation computes). */
-static void update_running_stats(run_state *st, double *scratch, int64_t max_c) {
-  const rc_graph *g = st->sg;
-  for (int j = 0; j < st->n_bn; j++) {
-    const rc_node *n = &g->nodes[st->bn_nodes[j]];
-    const rc_tensor *x = rc_plan_tensor(st->train_plan, n->in[0]);
-    int64_t c = x->rank > 1 ? x->dims[1] : 1, inner = 1;
-    if (c > max_c) continue;
-    for (int d = 2; d < x->rank; d++) inner *= x->dims[d];
-    memset(scratch, 0, sizeof(double) * 2 * (size_t)max_c);
-    channel_moments(scratch, scratch + max_c, x, x->dims[0]);
-    double cnt = (double)x->dims[0] * (double)inner;
-    float mom = rc__attr_float(n, "momentum", 0.9f);
-    float *mean = bn_stat(st, n, 3), *var = bn_stat(st, n, 4);
-    for (int64_t ch = 0; ch < c; ch++) {
-      double m = scratch[ch] / cnt, v = scratch[max_c + ch] / cnt - m * m;
-      mean[ch] = (float)(mean[ch] * mom + m * (1 - mom));
-      var[ch] = (float)(var[ch] * mom + (v > 0 ? v : 0) * (1 - mom));
-    }
-  }
 }
 
 /* ---- Data ----------------------------------------------------------------- */
@@ -547,7 +374,7 @@ static rc_status setup_data(run_state *st, const rc_distill_data *d, rc_err *e) 
   }
   if (d->val_split <= 0 || d->val_split >= 1)
     return rc__fail(e, RC_ERR_INVALID, "the validation split must lie strictly between 0 and 1");
-  RC_TRY(rc_data_split_make(&st->split, n, d->val_split, st->c->seed, e));
+  RC_TRY(rc_data_split_init(&st->split, n, d->val_split, st->c->seed, e));
   if (st->split.n_train < 1 || st->split.n_val < 1)
     return rc__fail(e, RC_ERR_INVALID, "%lld samples are too few to hold out a validation slice", (long long)n);
   RC_TRY(data_view(&st->train, d, 0, st->split.train, st->split.n_train, e));
@@ -740,7 +567,7 @@ static rc_status train_step(loop_ctx *lc, const loop_state *ls, step_buffers *sb
     if (st->teacher_step) {
       const rc_graph *tg = &st->teacher->graph, *sg = st->sg;
       for (int i = 0; i < tg->n_inputs; i++) {
-        int j = find_by_name(sg, sg->inputs, sg->n_inputs, tg->values[tg->inputs[i]].name);
+        int j = rc__graph_find_in(sg, sg->inputs, sg->n_inputs, tg->values[tg->inputs[i]].name);
         memcpy(rc_plan_tensor(st->teacher_step, tg->inputs[i])->data, sb->in[j],
                rc_tensor_nbytes(rc_plan_tensor(st->teacher_step, tg->inputs[i])));
       }
@@ -760,7 +587,8 @@ static rc_status train_step(loop_ctx *lc, const loop_state *ls, step_buffers *sb
   double norm = rc_clip_grad_norm(st->ps, st->c->clip);
   *bad = !isfinite(*loss) || !isfinite(norm);
   if (*bad) return RC_OK;
-  if (st->c->bn == RC_BN_TRAIN) update_running_stats(st, sb->bn_scratch, sb->max_c);
+  if (st->c->bn == RC_BN_TRAIN)
+    rc__bn_update_running(st->sg, st->train_plan, st->bn_nodes, st->n_bn, sb->bn_scratch, sb->max_c);
   float lr = (float)(rc_sched_lr(&lc->sched, rc_params_steps(st->ps) + 1) * ls->lr_scale);
   sb->lr = lr;
   return rc_optim_step(st->ps, &st->c->optim, lr, e);
@@ -842,7 +670,7 @@ static rc_status train_loop(run_state *st, rc_distill_result *r, const rc_distil
     rc__log(&c->log, RC_LOG_INFO, "resumed from the checkpoint");
   } else if (c->bn == RC_BN_RECALIBRATE) {
     /* Done here, not on resume: the re-estimated statistics are in the store. */
-    if ((s = recalibrate_bn(st, e)) != RC_OK) goto out;
+    if ((s = rc__bn_recalibrate(st->sg, st->bn_nodes, st->n_bn, &st->train, st->batch, e)) != RC_OK) goto out;
     if ((s = rc_params_save(st->ps, lc.good_slot, e)) != RC_OK) goto out;
     rc__log(&c->log, RC_LOG_INFO, "BatchNormalization running statistics re-estimated over the training samples");
   }
@@ -928,7 +756,7 @@ static rc_status measure_setup(run_state *st, rc_measure_setup *m, rc_tensor *sh
   *live = rc__calloc((size_t)st->sg->n_values + 1, 1);
   if (!*live) return rc__fail(e, RC_ERR_NOMEM, "out of memory");
   for (int i = 0; i < st->n_tr; i++) (*live)[st->tr[i].value] = 1;
-  input_shapes(st->sg, st->val.inputs, st->batch, shapes);
+  rc__input_shapes(st->sg, st->val.inputs, st->batch, shapes);
   teacher_order(&st->teacher->graph, st->sg, shapes, tin);
   *m = (rc_measure_setup){&st->teacher->graph, st->sg, shapes, tin, &st->val, st->batch, *live, &st->qat};
   return RC_OK;
@@ -975,7 +803,7 @@ static void free_state(run_state *st) {
  * pruning its file records. */
 static rc_status prepare_grids(run_state *st, const rc_tensor *data, rc_err *e) {
   rc_tensor shapes[RC_DATASET_MAX_INPUTS];
-  input_shapes(st->sg, data, 1, shapes);
+  rc__input_shapes(st->sg, data, 1, shapes);
   rc_file_notes notes;
   RC_TRY(rc__file_notes_parse(&notes, rc_model_metadata(st->student, RC_RANGES_METADATA),
                               rc_model_metadata(st->student, RC_PRUNED_METADATA), st->sg->path, e));
@@ -1107,43 +935,5 @@ out:
   rc__free(val_labels);
   rc_pairing_free(&layers);
   free_state(&st);
-  return s;
-}
-
-rc_status rc_distill_verify_written(const char *path, rc_model *student, const rc_tensor *inputs, int n_inputs,
-                                    int64_t batch, double *max_diff, rc_err *e) {
-  rc_model *back = NULL;
-  rc_plan *pa = NULL, *pb = NULL;
-  rc_status s = rc_model_load(&back, path, NULL, e);
-  if (s != RC_OK) return rc__wrap(e, "reloading the written file");
-  const rc_graph *ga = &student->graph, *gb = &back->graph;
-  rc_tensor shapes[RC_DATASET_MAX_INPUTS];
-  int64_t b = inputs[0].dims[0] < batch ? inputs[0].dims[0] : batch;
-  input_shapes(ga, inputs, b, shapes);
-  *max_diff = 0;
-  if ((s = rc_plan_create(&pa, ga, shapes, NULL, e)) != RC_OK || (s = rc_plan_create(&pb, gb, shapes, NULL, e)) != RC_OK)
-    goto out;
-  for (int i = 0; i < n_inputs && i < ga->n_inputs; i++) {
-    size_t nb = rc_tensor_nbytes(rc_plan_tensor(pa, ga->inputs[i]));
-    memcpy(rc_plan_tensor(pa, ga->inputs[i])->data, inputs[i].data, nb);
-    memcpy(rc_plan_tensor(pb, gb->inputs[i])->data, inputs[i].data, nb);
-  }
-  if ((s = rc_plan_forward(pa, e)) != RC_OK || (s = rc_plan_forward(pb, e)) != RC_OK) goto out;
-  for (int j = 0; j < ga->n_outputs; j++) {
-    const rc_tensor *ta = rc_plan_tensor(pa, ga->outputs[j]), *tb = rc_plan_tensor(pb, gb->outputs[j]);
-    if (ta->dtype != RC_DTYPE_FLOAT) continue;
-    int64_t n = rc_tensor_numel(ta);
-    for (int64_t i = 0; i < n; i++) {
-      double dd = fabs((double)((float *)ta->data)[i] - ((float *)tb->data)[i]);
-      if (!(dd <= *max_diff)) *max_diff = isnan(dd) ? INFINITY : dd;
-    }
-  }
-  if (*max_diff > 0)
-    s = rc__fail(e, RC_ERR_IO, "%s: the written model's outputs differ from the trained model's by %g", path,
-                 *max_diff);
-out:
-  rc_plan_free(pa);
-  rc_plan_free(pb);
-  rc_model_free(back);
   return s;
 }

@@ -100,7 +100,7 @@ static rc_status synth_setup(synth *s, rc_model *teacher, int64_t batch, rc_err 
   shape.data = NULL;
   shape.dims[0] = batch;
   rc_plan_opts o = {.training = 1, .trainable = trainable, .keep = keep, .bn_batch_stats = 0};
-  if ((st = rc_plan_create(&s->p, g, &shape, &o, e)) != RC_OK) goto out;
+  if ((st = rc_plan_init(&s->p, g, &shape, &o, e)) != RC_OK) goto out;
   s->b = batch;
   s->per = rc_tensor_numel(&shape) / batch;
   if (!rc_plan_grad(s->p, g->inputs[0])) {

@@ -45,7 +45,7 @@ static inline rc_status rc_fuzz_plan_model(const rc_graph *g, rc_err *e) {
   rc_plan *p = NULL;
   rc_plan_opts o = {0};
   o.max_bytes = RC_FUZZ_MAX_PLAN_BYTES;
-  if (st == RC_OK) st = rc_plan_create(&p, g, ins, &o, e);
+  if (st == RC_OK) st = rc_plan_init(&p, g, ins, &o, e);
   if (st == RC_OK) {
     for (int i = 0; i < g->n_inputs; i++) {
       rc_tensor *t = rc_plan_tensor(p, g->inputs[i]);
