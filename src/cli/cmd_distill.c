@@ -20,6 +20,7 @@
 #include "core/path.h"
 #include "onnx/model.h"
 #include "plan/load.h"
+#include "train/dist.h"
 #include "train/distill.h"
 #include "train/select.h"
 
@@ -601,6 +602,10 @@ static cJSON *results_json(const distill_args *a, const rc_distill_result *r, do
   cJSON_AddNumberToObject(root, "steps", (double)r->steps_done);
   cJSON_AddNumberToObject(root, "seconds", r->seconds);
   cJSON_AddNumberToObject(root, "samples_per_s", r->samples_per_s);
+  cJSON_AddNumberToObject(root, "ranks", r->ranks);
+  int64_t run_steps = r->steps_done > 0 ? r->steps_done : 1;
+  cJSON_AddNumberToObject(root, "comm_seconds_per_step", r->comm_seconds / (double)run_steps);
+  cJSON_AddNumberToObject(root, "comm_bytes_per_step", 4.0 * (double)r->comm_values_per_step);
   cJSON_AddNumberToObject(root, "trainable_tensors", r->n_trainable_tensors);
   cJSON_AddNumberToObject(root, "trainable_values", (double)r->n_trainable);
   cJSON_AddNumberToObject(root, "pruned_zeros_kept", (double)r->n_frozen_zeros);
@@ -742,7 +747,9 @@ int rc_cmd_distill(int argc, char **argv) {
   int rc = RC_EXIT_FAIL;
   double diff = 0;
   if (check_output_path(&a, &e)) goto out;
-  if (a.report && cli_report_prepare(a.report, 0, &e) != RC_OK) goto out;
+  /* Under mpirun every rank trains; rank 0 alone writes and prints. */
+  int root = rc_dist_rank(cli_dist()) == 0;
+  if (root && a.report && cli_report_prepare(a.report, 0, &e) != RC_OK) goto out;
   if (rc_model_load(&teacher, a.teacher, NULL, &e) != RC_OK || rc_model_load(&student, a.student, NULL, &e) != RC_OK)
     goto out;
   if (rc_distill_check_pair(&teacher->graph, &student->graph, &e) != RC_OK) goto out;
@@ -764,11 +771,16 @@ int rc_cmd_distill(int argc, char **argv) {
     goto out;
   }
   progress_state ps = {cli_isatty_stderr(), -1e9, a.json};
-  a.cfg.progress = on_progress;
+  a.cfg.progress = root ? on_progress : NULL;
+  a.cfg.dist = cli_dist();
   a.cfg.user = &ps;
   a.cfg.stop = &cli_stop_requested;
   cli_catch_stop_signals();
   if (rc_distill_run(&r, teacher, student, &d, &a.cfg, &e) != RC_OK) goto out;
+  if (!root) {
+    rc = RC_EXIT_OK;
+    goto out;
+  }
   if (rc_model_save(student, a.out, r.changed, r.n_changed, &e) != RC_OK) goto out;
   if (rc_distill_verify_written(a.out, student, a.n_val_data ? vins : ins, train.n_inputs, a.cfg.batch, &diff, &e) !=
       RC_OK)

@@ -19,6 +19,8 @@
 #include "train/features.h"
 #include "train/optim.h"
 
+typedef struct rc_dist rc_dist;
+
 typedef enum rc_bn_mode {
   RC_BN_FROZEN = 0,      /* running statistics stay as deployed */
   RC_BN_RECALIBRATE = 1, /* re-estimated over the training data first, then frozen */
@@ -81,6 +83,9 @@ typedef struct rc_distill_config {
    * uninterrupted run with the same inputs and settings. */
   const char *resume_path;
   const volatile sig_atomic_t *stop;
+  /* The ranks sharing this run (train/dist.h); NULL: this process alone.
+   * batch is the global batch, split over the ranks. */
+  rc_dist *dist;
 } rc_distill_config;
 
 void rc_distill_config_defaults(rc_distill_config *c);
@@ -149,6 +154,9 @@ typedef struct rc_distill_result {
   int n_ranges;
   int *changed;                      /* student values whose data changed: save these */
   int n_changed;
+  int ranks;                         /* processes that shared the run */
+  double comm_seconds;               /* spent summing gradients and gathering outputs */
+  int64_t comm_values_per_step;      /* gradient values each step sums (4 bytes each) */
 } rc_distill_result;
 
 void rc_distill_result_free(rc_distill_result *r);
