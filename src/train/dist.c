@@ -105,6 +105,13 @@ void rc_dist_share(int64_t n, int r, int size, int64_t *lo, int64_t *hi) {
   *hi = *lo + base + (r < extra ? 1 : 0);
 }
 
+void rc_dist_share_blocks(int64_t n, int64_t block, int r, int size, int64_t *lo, int64_t *hi) {
+  int64_t blocks = block > 0 ? (n + block - 1) / block : 0;
+  rc_dist_share(blocks, r, size, lo, hi);
+  *lo = *lo * block < n ? *lo * block : n;
+  *hi = *hi * block < n ? *hi * block : n;
+}
+
 static int alone(const rc_dist *d) { return !d || d->size < 2; }
 
 #ifdef RECOUP_HAVE_MPI
@@ -208,7 +215,7 @@ rc_status rc_dist_bcast(rc_dist *d, void *buf, size_t bytes, rc_err *e) {
 #endif
 }
 
-rc_status rc_dist_gather_rows(rc_dist *d, float *buf, int64_t n, int64_t row_floats, rc_err *e) {
+rc_status rc_dist_gather_rows(rc_dist *d, float *buf, int64_t n, int64_t block, int64_t row_floats, rc_err *e) {
   if (alone(d) || n == 0) return RC_OK;
 #ifdef RECOUP_HAVE_MPI
   int N = d->size;
@@ -217,7 +224,7 @@ rc_status rc_dist_gather_rows(rc_dist *d, float *buf, int64_t n, int64_t row_flo
   int *displs = counts + N;
   for (int r = 0; r < N; r++) {
     int64_t lo, hi;
-    rc_dist_share(n, r, N, &lo, &hi);
+    rc_dist_share_blocks(n, block, r, N, &lo, &hi);
     if (hi * row_floats > INT_MAX) {
       rc__free(counts);
       return rc__fail(e, RC_ERR_LIMIT, "%lld rows are too many to gather in one MPI call", (long long)n);
@@ -233,6 +240,7 @@ rc_status rc_dist_gather_rows(rc_dist *d, float *buf, int64_t n, int64_t row_flo
   return RC_OK;
 #else
   (void)buf;
+  (void)block;
   (void)row_floats;
   return rc__fail(e, RC_ERR_UNSUPPORTED, "built without MPI");
 #endif

@@ -402,11 +402,13 @@ static rc_status build_plans(run_state *st, const rc_tensor *data, rc_err *e) {
   return RC_OK;
 }
 
-/* This rank's contiguous share of an unshuffled view (its order is the
- * identity, so the first part.n positions of order serve the slice). */
+/* This rank's share of an unshuffled view (its order is the identity, so
+ * the first part.n positions of order serve the slice), in whole batches
+ * so that every row is computed as one process computes it: the results,
+ * and checkpoints' fingerprints of them, do not depend on the ranks. */
 static rc_dataset rank_slice(const run_state *st, const rc_dataset *d, int64_t *lo) {
   int64_t hi;
-  rc_dist_share(d->n, rc_dist_rank(st->c->dist), rc_dist_size(st->c->dist), lo, &hi);
+  rc_dist_share_blocks(d->n, st->batch, rc_dist_rank(st->c->dist), rc_dist_size(st->c->dist), lo, &hi);
   rc_dataset part = *d;
   part.index = d->index + *lo;
   part.n = hi - *lo;
@@ -420,7 +422,7 @@ static rc_status run_shared(run_state *st, rc_plan *p, const rc_dataset *d, cons
   rc_dataset part = rank_slice(st, d, &lo);
   void *outs[1] = {out + lo * st->k};
   if (part.n > 0) RC_TRY(rc__run_dataset(p, &part, outputs, 1, outs, e));
-  return rc_dist_gather_rows(st->c->dist, out, d->n, st->k, e);
+  return rc_dist_gather_rows(st->c->dist, out, d->n, st->batch, st->k, e);
 }
 
 /* Teacher logits for every sample of a dataset, in the dataset's own order. */
