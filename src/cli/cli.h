@@ -68,6 +68,9 @@ void cli_catch_stop_signals(void);
  * by main before any command runs, NULL-safe everywhere (one process). */
 struct rc_dist;
 struct rc_dist *cli_dist(void);
+/* The command's failure status is one all ranks reached together (batch: a
+ * job failed): end normally instead of stopping the job with MPI_Abort. */
+void cli_dist_agreed_exit(void);
 
 struct option;
 /* After getopt_long returned '?' (main sets opterr = 0, so getopt printed

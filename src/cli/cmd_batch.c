@@ -27,6 +27,7 @@
 #include "cli/sha256.h"
 #include "core/alloc.h"
 #include "core/file.h"
+#include "train/dist.h"
 
 #define STDOUT_MAX (4 << 20) /* a distill --json result is a few kilobytes */
 
@@ -172,6 +173,7 @@ typedef struct run {
   char progress[160];
   double eta;       /* from the job's own progress line; < 0 unknown */
   cJSON *record;
+  int rank;         /* under mpirun: the rank running it (rank 0 only coordinates) */
 } run;
 
 typedef struct batch {
@@ -187,7 +189,15 @@ typedef struct batch {
   int n_done, n_ok;
   double sum_wall;  /* of jobs that really ran to success */
   int n_timed;
+  /* Under mpirun (rank 0): ranks 1..N-1 run one job at a time each. */
+  rc_dist *dist;
+  int *rank_run;    /* per rank: the run it is busy with, or -1 */
+  char *hosts;      /* RC_DIST_MAX_HOST bytes per rank */
 } batch;
+
+enum { TAG_JOB = 21, TAG_DONE = 22, TAG_OUT = 23 };
+
+static int over_ranks(const batch *b) { return rc_dist_size(b->dist) > 1; }
 
 /* ---- Status lines (terminal) or plain log lines ------------------------------------- */
 
@@ -436,7 +446,8 @@ static void set_record(batch *b, run *r, const char *status, const char *error, 
   cJSON_Delete(r->record);
   r->record = cli_report_record(j->name, j->index, j->teacher_given, j->student_given, j->out_given, status, error,
                                 r->log_shown[0] ? r->log_shown : NULL, result, r->wall);
-  (void)b;
+  if (r->record && b->hosts)
+    cJSON_AddStringToObject(r->record, "host", b->hosts + (size_t)r->rank * RC_DIST_MAX_HOST);
 }
 
 static void child_exec(batch *b, run *r, int out_w, int log_fd, pid_t parent) {
@@ -449,6 +460,7 @@ static void child_exec(batch *b, run *r, int out_w, int log_fd, pid_t parent) {
   sigprocmask(SIG_SETMASK, &none, NULL);
   signal(SIGINT, SIG_DFL);
   signal(SIGTERM, SIG_DFL);
+  if (over_ranks(b)) setenv("RECOUP_RANK_CHILD", "1", 1); /* the job runs alone, not as a rank */
   int in = open("/dev/null", O_RDONLY);
   if (in >= 0) dup2(in, STDIN_FILENO);
   dup2(out_w, STDOUT_FILENO);
@@ -476,11 +488,8 @@ static void child_exec(batch *b, run *r, int out_w, int log_fd, pid_t parent) {
   _exit(127);
 }
 
-static void start_job(batch *b, run *r) {
+static void log_paths(batch *b, run *r) {
   cli_job *j = r->job;
-  char ckpt[PATH_MAX + 8];
-  snprintf(ckpt, sizeof ckpt, "%s.ckpt", j->out);
-  r->resumed_ckpt = b->a->resume && access(ckpt, R_OK) == 0;
   if (b->a->report) {
     snprintf(r->log, sizeof r->log, "%s/logs/%s.log", b->a->report, j->name);
     snprintf(r->log_shown, sizeof r->log_shown, "logs/%s.log", j->name);
@@ -488,6 +497,29 @@ static void start_job(batch *b, run *r) {
     snprintf(r->log, sizeof r->log, "%s.log", j->out);
     snprintf(r->log_shown, sizeof r->log_shown, "%s.log", j->out_given);
   }
+}
+
+/* Under mpirun: hand the job to a free rank, which appends to the log. */
+static int hand_out(batch *b, run *r, char *err, size_t n) {
+  int w = 1;
+  while (w < rc_dist_size(b->dist) && b->rank_run[w] >= 0) w++;
+  int64_t msg[4] = {r - b->runs, r->job->index, r->resumed_ckpt, b->threads_per_job};
+  rc_err e = {0};
+  if (w >= rc_dist_size(b->dist) || rc_dist_send(b->dist, w, TAG_JOB, msg, 4, &e) != RC_OK) {
+    snprintf(err, n, "cannot hand the job to a rank: %s", e.msg[0] ? e.msg : "none is free");
+    return -1;
+  }
+  b->rank_run[w] = (int)(r - b->runs);
+  r->rank = w;
+  return 0;
+}
+
+static void start_job(batch *b, run *r) {
+  cli_job *j = r->job;
+  char ckpt[PATH_MAX + 8];
+  snprintf(ckpt, sizeof ckpt, "%s.ckpt", j->out);
+  r->resumed_ckpt = b->a->resume && access(ckpt, R_OK) == 0;
+  log_paths(b, r);
   r->started = now_s();
   r->state = R_RUNNING;
   r->eta = -1;
@@ -504,6 +536,15 @@ static void start_job(batch *b, run *r) {
     goto fail;
   }
   if (r->resumed_ckpt) dprintf(log_fd, "--- recoup batch: resuming from %s ---\n", ckpt);
+  if (over_ranks(b)) {
+    close(log_fd);
+    log_fd = -1;
+    if (hand_out(b, r, err, sizeof err) != 0) goto fail;
+    event(b, "started %s on rank %d (%s)%s (log: %s)", j->name, r->rank,
+          b->hosts + (size_t)r->rank * RC_DIST_MAX_HOST, r->resumed_ckpt ? ", resuming from its checkpoint" : "",
+          b->a->report ? r->log : r->log_shown);
+    return;
+  }
   if (pipe2(pipefd, O_CLOEXEC) != 0) {
     snprintf(err, sizeof err, "pipe: %s", strerror(errno));
     goto fail;
@@ -706,7 +747,33 @@ static void print_json(const cJSON *meta, const cJSON *records) {
 
 /* ---- The batch ---------------------------------------------------------------------------- */
 
+/* Under mpirun: results of jobs the ranks finished. */
+static void collect_ranks(batch *b) {
+  int from;
+  while (rc_dist_probe(b->dist, TAG_DONE, &from)) {
+    int64_t done[3];
+    rc_err e = {0};
+    if (rc_dist_recv(b->dist, from, TAG_DONE, done, 3, &e) != RC_OK) return;
+    run *r = &b->runs[done[0]];
+    char *text = rc__malloc((size_t)done[2] + 1);
+    size_t got = 0;
+    char none[1];
+    if (rc_dist_recv_bytes(b->dist, from, TAG_OUT, text ? text : none, text ? (size_t)done[2] : 0, &got, &e) != RC_OK)
+      got = 0;
+    if (text) text[got] = '\0';
+    rc__free(r->out_text);
+    r->out_text = text;
+    r->out_n = got;
+    b->rank_run[from] = -1;
+    finish_job(b, r, (int)done[1]);
+  }
+}
+
 static void poll_jobs(batch *b) {
+  if (over_ranks(b)) {
+    collect_ranks(b);
+    return;
+  }
   for (int i = 0; i < b->n_runs; i++)
     if (b->runs[i].state == R_RUNNING && b->runs[i].pid > 0) drain(&b->runs[i]);
   for (;;) {
@@ -732,8 +799,8 @@ static void run_all(batch *b) {
       event(b, "stopping: asking %d running job%s to checkpoint and stop", count_state(b, R_RUNNING),
             count_state(b, R_RUNNING) == 1 ? "" : "s");
       for (int i = 0; i < b->n_runs; i++)
-        if (b->runs[i].state == R_RUNNING && b->runs[i].pid > 0) {
-          kill(b->runs[i].pid, SIGTERM);
+        if (b->runs[i].state == R_RUNNING && (b->runs[i].pid > 0 || b->runs[i].rank > 0)) {
+          if (b->runs[i].pid > 0) kill(b->runs[i].pid, SIGTERM); /* ranks' jobs: the launcher signals the ranks */
           b->runs[i].term_sent = 1;
         }
     }
@@ -744,7 +811,8 @@ static void run_all(batch *b) {
           set_record(b, &b->runs[i], CLI_JOB_NOT_RUN, "batch stopped before this job started", NULL);
         }
     }
-    while (!stopping && count_state(b, R_RUNNING) < b->a->jobs && next < b->n_runs) {
+    int slots = over_ranks(b) ? rc_dist_size(b->dist) - 1 : (int)b->a->jobs;
+    while (!stopping && count_state(b, R_RUNNING) < slots && next < b->n_runs) {
       run *r = &b->runs[next++];
       if (r->state == R_PENDING) start_job(b, r);
     }
@@ -810,15 +878,134 @@ static rc_status check_outputs(const batch *b, rc_err *e) {
   return s;
 }
 
+/* ---- Under mpirun: ranks 1..N-1 run the jobs rank 0 hands out ------------------------------ */
+
+/* Run one job here as recoup batch runs any job (its own process, log
+ * appended, stdout captured), passing a stop request on; returns its wait status. */
+static int run_here(batch *b, run *r) {
+  log_paths(b, r);
+  int pipefd[2], log_fd = open(r->log, O_WRONLY | O_CREAT | O_APPEND | O_CLOEXEC, 0644);
+  if (log_fd < 0 || pipe2(pipefd, O_CLOEXEC) != 0) {
+    if (log_fd >= 0) close(log_fd);
+    return 127 << 8; /* as a process that could not start */
+  }
+  pid_t parent = getpid();
+  fflush(NULL);
+  r->pid = fork();
+  if (r->pid == 0) child_exec(b, r, pipefd[1], log_fd, parent);
+  close(pipefd[1]);
+  close(log_fd);
+  if (r->pid < 0) {
+    close(pipefd[0]);
+    return 127 << 8;
+  }
+  r->out_fd = pipefd[0];
+  fcntl(r->out_fd, F_SETFL, fcntl(r->out_fd, F_GETFL) | O_NONBLOCK);
+  int ws = 0;
+  for (;;) {
+    drain(r);
+    pid_t p = waitpid(r->pid, &ws, WNOHANG);
+    if (p == r->pid) break;
+    if (cli_stop_requested && !r->term_sent) {
+      kill(r->pid, SIGTERM);
+      r->term_sent = 1;
+    }
+    struct timespec ts = {0, 50 * 1000 * 1000};
+    nanosleep(&ts, NULL);
+  }
+  drain(r);
+  close(r->out_fd);
+  return ws;
+}
+
+static int serve_rank0(batch_args *a, rc_dist *d) {
+  batch b;
+  memset(&b, 0, sizeof b);
+  b.a = a;
+  b.dist = d;
+  rc_err e = {0};
+  if (cli_manifest_load(&b.m, a->manifest, a->allow_outside, &e) != RC_OK) return cli_fail(&e);
+  cli_catch_stop_signals();
+  int rc = RC_EXIT_OK;
+  for (;;) {
+    int64_t msg[4];
+    if (rc_dist_recv(d, 0, TAG_JOB, msg, 4, &e) != RC_OK) {
+      rc = cli_fail(&e);
+      break;
+    }
+    if (msg[0] < 0) break;
+    if (msg[1] < 0 || msg[1] >= b.m.n_jobs) {
+      rc = cli_fail(&(rc_err){RC_ERR_INVALID, "rank 0 named a job the manifest does not have"});
+      break;
+    }
+    run r;
+    memset(&r, 0, sizeof r);
+    r.job = &b.m.jobs[msg[1]];
+    r.resumed_ckpt = (int)msg[2];
+    b.threads_per_job = (int)msg[3];
+    int64_t done[3] = {msg[0], run_here(&b, &r), 0};
+    done[2] = (int64_t)r.out_n;
+    if (rc_dist_send(d, 0, TAG_DONE, done, 3, &e) != RC_OK ||
+        rc_dist_send_bytes(d, 0, TAG_OUT, r.out_text ? r.out_text : "", r.out_n, &e) != RC_OK) {
+      rc__free(r.out_text);
+      rc = cli_fail(&e);
+      break;
+    }
+    rc__free(r.out_text);
+  }
+  cli_manifest_free(&b.m);
+  if (rc == RC_EXIT_OK) cli_dist_agreed_exit(); /* whatever rank 0 concludes, this rank did its part */
+  return rc;
+}
+
+/* Rank 0, at the end: every other rank may stop waiting for jobs. */
+static void release_ranks(batch *b) {
+  int64_t stop[4] = {-1, -1, 0, 0};
+  rc_err e = {0};
+  for (int w = 1; w < rc_dist_size(b->dist); w++) rc_dist_send(b->dist, w, TAG_JOB, stop, 4, &e);
+}
+
+static int run_coordinated(batch_args *a, rc_dist *d, char *hosts);
+
 static int run_batch(batch_args *a) {
+  rc_dist *d = cli_dist();
+  char *hosts = NULL;
+  if (rc_dist_size(d) > 1) {
+    rc_err he = {0};
+    hosts = rc__calloc((size_t)rc_dist_size(d), RC_DIST_MAX_HOST);
+    if (!hosts || rc_dist_hosts(d, hosts, &he) != RC_OK) {
+      rc__free(hosts);
+      return cli_fail(&he);
+    }
+    if (rc_dist_rank(d) != 0) {
+      rc__free(hosts);
+      return serve_rank0(a, d);
+    }
+  }
+  int rc = run_coordinated(a, d, hosts);
+  rc__free(hosts);
+  return rc;
+}
+
+static int run_coordinated(batch_args *a, rc_dist *d, char *hosts) {
   batch b;
   memset(&b, 0, sizeof b);
   b.a = a;
   b.tty = cli_isatty_stderr();
   b.t0 = now_s();
+  b.dist = d;
+  b.hosts = hosts;
   rc_err e = {0};
   int rc = RC_EXIT_FAIL;
   if (cli_manifest_load(&b.m, a->manifest, a->allow_outside, &e) != RC_OK) return cli_fail(&e);
+  if (over_ranks(&b)) {
+    b.rank_run = rc__malloc(sizeof(int) * (size_t)rc_dist_size(d));
+    if (!b.rank_run) {
+      rc__fail(&e, RC_ERR_NOMEM, "out of memory");
+      goto out;
+    }
+    for (int w = 0; w < rc_dist_size(d); w++) b.rank_run[w] = -1;
+  }
   long threads = a->threads;
   if (threads <= 0) {
     long c = sysconf(_SC_NPROCESSORS_ONLN);
@@ -846,9 +1033,12 @@ static int run_batch(batch_args *a) {
   cJSON_Delete(recs);
   cJSON_Delete(meta);
   rc = b.n_ok == b.n_runs && !cli_stop_requested ? RC_EXIT_OK : RC_EXIT_FAIL;
+  if (over_ranks(&b)) cli_dist_agreed_exit(); /* a failed job is an outcome every rank saw */
   if (cli_stop_requested) fprintf(stderr, "recoup batch: stopped by a signal; run again with --resume to continue\n");
 out:
   if (e.code) cli_fail(&e);
+  if (over_ranks(&b)) release_ranks(&b);
+  rc__free(b.rank_run);
   for (int i = 0; i < b.n_runs; i++) {
     cJSON_Delete(b.runs[i].record);
     rc__free(b.runs[i].out_text);

@@ -55,8 +55,10 @@ static void wait_passively(char **argv) {
 
 /* Written once, before any command runs; MPI itself is one per process. */
 static rc_dist *the_dist;
+static int agreed_exit;
 
 rc_dist *cli_dist(void) { return the_dist; }
+void cli_dist_agreed_exit(void) { agreed_exit = 1; }
 
 /* Under mpirun every rank runs the command; rank 0 alone prints results,
  * the others keep stderr for their errors. */
@@ -70,7 +72,7 @@ static int join_ranks(int *argc, char ***argv) {
 /* A command that failed on one rank of several stops them all: the others
  * may wait in a collective call for it. cli_fail has named rank and host. */
 static int leave_ranks(int rc) {
-  if (rc != RC_EXIT_OK) {
+  if (rc != RC_EXIT_OK && !agreed_exit) {
     fflush(stdout);
     fflush(stderr);
     rc_dist_abort(the_dist, rc);

@@ -42,6 +42,8 @@ int rc_dist_built_with_mpi(void) {
  * PMIx or PMI for srun and other launchers. Without one, stay a single
  * process rather than start MPI's singleton machinery for nothing. */
 static int launched_by_mpi(void) {
+  /* A process that a rank started for itself (batch's jobs) stays alone. */
+  if (getenv("RECOUP_RANK_CHILD")) return 0;
   static const char *const vars[] = {"OMPI_COMM_WORLD_SIZE", "PMIX_RANK", "PMI_RANK", "PMI_SIZE"};
   for (size_t i = 0; i < sizeof vars / sizeof vars[0]; i++)
     if (getenv(vars[i])) return 1;
@@ -302,6 +304,47 @@ rc_status rc_dist_recv_any(rc_dist *d, int tag, int *from, int64_t *v, int n, rc
 #else
   (void)d, (void)tag, (void)from, (void)v, (void)n;
   return rc__fail(e, RC_ERR_UNSUPPORTED, "built without MPI");
+#endif
+}
+
+rc_status rc_dist_send_bytes(rc_dist *d, int to, int tag, const void *buf, size_t n, rc_err *e) {
+#ifdef RECOUP_HAVE_MPI
+  if (alone(d)) return rc__fail(e, RC_ERR_INVALID, "no other rank to send to");
+  if (n > INT_MAX) return rc__fail(e, RC_ERR_LIMIT, "a message of %zu bytes is too large", n);
+  MPI_TRY(MPI_Send(buf, (int)n, MPI_BYTE, to, tag, MPI_COMM_WORLD), "MPI_Send");
+  return RC_OK;
+#else
+  (void)d, (void)to, (void)tag, (void)buf, (void)n;
+  return rc__fail(e, RC_ERR_UNSUPPORTED, "built without MPI");
+#endif
+}
+
+rc_status rc_dist_recv_bytes(rc_dist *d, int from, int tag, void *buf, size_t cap, size_t *n, rc_err *e) {
+#ifdef RECOUP_HAVE_MPI
+  if (alone(d)) return rc__fail(e, RC_ERR_INVALID, "no other rank to receive from");
+  MPI_Status st;
+  int got = 0;
+  MPI_TRY(MPI_Recv(buf, cap > INT_MAX ? INT_MAX : (int)cap, MPI_BYTE, from, tag, MPI_COMM_WORLD, &st), "MPI_Recv");
+  MPI_Get_count(&st, MPI_BYTE, &got);
+  *n = got > 0 ? (size_t)got : 0;
+  return RC_OK;
+#else
+  (void)d, (void)from, (void)tag, (void)buf, (void)cap, (void)n;
+  return rc__fail(e, RC_ERR_UNSUPPORTED, "built without MPI");
+#endif
+}
+
+int rc_dist_probe(rc_dist *d, int tag, int *from) {
+#ifdef RECOUP_HAVE_MPI
+  if (alone(d)) return 0;
+  int flag = 0;
+  MPI_Status st;
+  if (MPI_Iprobe(MPI_ANY_SOURCE, tag, MPI_COMM_WORLD, &flag, &st) != MPI_SUCCESS || !flag) return 0;
+  *from = st.MPI_SOURCE;
+  return 1;
+#else
+  (void)d, (void)tag, (void)from;
+  return 0;
 #endif
 }
 

@@ -59,6 +59,12 @@ rc_status rc_dist_check_equal(rc_dist *d, uint64_t sum, const char *what, rc_err
 rc_status rc_dist_send(rc_dist *d, int to, int tag, const int64_t *v, int n, rc_err *e);
 rc_status rc_dist_recv(rc_dist *d, int from, int tag, int64_t *v, int n, rc_err *e);
 rc_status rc_dist_recv_any(rc_dist *d, int tag, int *from, int64_t *v, int n, rc_err *e);
+/* Bytes, for a job's printed results. recv_bytes takes up to cap bytes and
+ * gives the count received. */
+rc_status rc_dist_send_bytes(rc_dist *d, int to, int tag, const void *buf, size_t n, rc_err *e);
+rc_status rc_dist_recv_bytes(rc_dist *d, int from, int tag, void *buf, size_t cap, size_t *n, rc_err *e);
+/* 1 when a message of that tag waits (its sender in *from); never blocks. */
+int rc_dist_probe(rc_dist *d, int tag, int *from);
 /* Host names of all ranks, MAX_HOST bytes each, rank order (out: size rows). */
 #define RC_DIST_MAX_HOST 256
 rc_status rc_dist_hosts(rc_dist *d, char *out, rc_err *e);
