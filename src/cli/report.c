@@ -790,6 +790,10 @@ static void job_card(sbuf *b, const cJSON *r) {
   sb_esc(b, str(r, "out"));
   sb_add(b, " (teacher ", 10);
   sb_esc(b, str(r, "teacher"));
+  if (*str(r, "host")) { /* batch under mpirun: where the job ran */
+    sb_add(b, "; ran on ", 9);
+    sb_esc(b, str(r, "host"));
+  }
   sb_add(b, ")</p>", 5);
   if (!has_results(r)) {
     sb_add(b, "<p class=\"err\">", 15);

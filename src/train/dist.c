@@ -24,11 +24,13 @@ struct rc_dist {
   size_t scratch_bytes;
 };
 
+#ifdef RECOUP_HAVE_MPI
 static double now_s(void) {
   struct timespec ts;
   clock_gettime(CLOCK_MONOTONIC, &ts);
   return (double)ts.tv_sec + 1e-9 * (double)ts.tv_nsec;
 }
+#endif
 
 int rc_dist_built_with_mpi(void) {
 #ifdef RECOUP_HAVE_MPI
