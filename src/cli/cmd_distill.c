@@ -603,8 +603,7 @@ static cJSON *results_json(const distill_args *a, const rc_distill_result *r, do
   cJSON_AddNumberToObject(root, "seconds", r->seconds);
   cJSON_AddNumberToObject(root, "samples_per_s", r->samples_per_s);
   cJSON_AddNumberToObject(root, "ranks", r->ranks);
-  int64_t run_steps = r->steps_done > 0 ? r->steps_done : 1;
-  cJSON_AddNumberToObject(root, "comm_seconds_per_step", r->comm_seconds / (double)run_steps);
+  cJSON_AddNumberToObject(root, "comm_seconds_per_step", r->comm_seconds_per_step);
   cJSON_AddNumberToObject(root, "comm_bytes_per_step", 4.0 * (double)r->comm_values_per_step);
   cJSON_AddNumberToObject(root, "trainable_tensors", r->n_trainable_tensors);
   cJSON_AddNumberToObject(root, "trainable_values", (double)r->n_trainable);

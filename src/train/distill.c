@@ -921,7 +921,8 @@ static rc_status train_loop(run_state *st, rc_distill_result *r, const rc_distil
   }
   r->steps_done = ls.step;
   r->seconds = now_s() - t0;
-  r->comm_seconds = rc_dist_comm_seconds(c->dist) - comm0;
+  if (ls.step > start_step)
+    r->comm_seconds_per_step = (rc_dist_comm_seconds(c->dist) - comm0) / (double)(ls.step - start_step);
   r->samples_per_s = r->seconds > 0 ? (double)((ls.step - start_step) * st->batch) / r->seconds : 0;
   r->best_epoch = ls.best_epoch;
   r->improved = ls.best_epoch > 0;

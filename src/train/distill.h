@@ -155,7 +155,8 @@ typedef struct rc_distill_result {
   int *changed;                      /* student values whose data changed: save these */
   int n_changed;
   int ranks;                         /* processes that shared the run */
-  double comm_seconds;               /* spent summing gradients and gathering outputs */
+  double comm_seconds_per_step;      /* communicating (gradient sums, validation outputs, checks),
+                                      * over the steps this run took (after a resume: since it) */
   int64_t comm_values_per_step;      /* gradient values each step sums (4 bytes each) */
 } rc_distill_result;
 
