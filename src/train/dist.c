@@ -75,7 +75,14 @@ rc_status rc_dist_start(rc_dist **out, int *argc, char ***argv, rc_err *e) {
 #else
   (void)argc;
   (void)argv;
-  (void)launched_by_mpi;
+  /* N copies of a one-process build would each train alone and race to
+   * write the same files: refuse instead. */
+  const char *n = getenv("OMPI_COMM_WORLD_SIZE") ? getenv("OMPI_COMM_WORLD_SIZE") : getenv("PMI_SIZE");
+  if (launched_by_mpi() && n && atoi(n) > 1) {
+    rc__free(d);
+    return rc__fail(e, RC_ERR_UNSUPPORTED, "started as one of %s MPI ranks, but this recoup was built without MPI "
+                    "(install libopenmpi-dev and rebuild)", n);
+  }
 #endif
   *out = d;
   return RC_OK;
