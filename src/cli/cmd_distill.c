@@ -789,7 +789,10 @@ int rc_cmd_distill(int argc, char **argv) {
   if (a.report && write_report(&a, &r, diff, &e) != RC_OK) goto out;
   rc = RC_EXIT_OK;
 out:
-  if (rc != RC_EXIT_OK) cli_fail(&e);
+  /* A stop request is summed with every step, so all ranks stop together
+   * after rank 0's checkpoint: rank 0 says so, and the job ends normally. */
+  if (e.code == RC_ERR_INTERRUPTED) cli_dist_agreed_exit();
+  if (rc != RC_EXIT_OK && (e.code != RC_ERR_INTERRUPTED || rc_dist_rank(cli_dist()) == 0)) cli_fail(&e);
   rc_distill_result_free(&r);
   cli_samples_free(&train);
   cli_samples_free(&val);
