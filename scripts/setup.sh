@@ -25,6 +25,7 @@ PACKAGES=(
   libopenblas-openmp-dev zlib1g-dev libcjson-dev   # GEMM: OpenBLAS OpenMP build, shares our thread pool
   nettle-dev libzip-dev                            # SHA-256 of the batch ledger; the zip container of .npz
   libjpeg62-turbo-dev libpng-dev                   # image folders (JPEG, PNG)
+  libopenmpi-dev openmpi-bin                       # optional: distill and batch over MPI ranks
   # reference tests and demo (Debian's /usr/bin/python3)
   python3 python3-numpy python3-torch python3-torchvision python3-onnx python3-pil
   dataset-fashion-mnist libonnx-testdata

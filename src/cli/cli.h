@@ -68,6 +68,14 @@ void cli_log_stderr(void *user, rc_log_level level, const char *msg);
 extern volatile sig_atomic_t cli_stop_requested;
 void cli_catch_stop_signals(void);
 
+/* The ranks of an MPI job this process belongs to (train/dist.h): set once
+ * by main before any command runs, NULL-safe everywhere (one process). */
+struct rc_dist;
+struct rc_dist *cli_dist(void);
+/* The command's failure status is one all ranks reached together (batch: a
+ * job failed): end normally instead of stopping the job with MPI_Abort. */
+void cli_dist_agreed_exit(void);
+
 struct option;
 /* After getopt_long returned '?' (main sets opterr = 0, so getopt printed
  * nothing): one usage line naming the option and what is wrong with it. */

@@ -15,10 +15,14 @@
 #include "cli/cli.h"
 #include "core/escape.h"
 #include "core/path.h"
+#include "train/dist.h"
 
 int cli_fail(const rc_err *e) {
-  char buf[4 * sizeof e->msg];
-  fprintf(stderr, "recoup: error: %s\n",
+  char buf[4 * sizeof e->msg], where[RC_DIST_MAX_HOST + 64] = "";
+  if (rc_dist_size(cli_dist()) > 1) /* which process of the job failed, and where */
+    snprintf(where, sizeof where, "rank %d of %d on %s: ", rc_dist_rank(cli_dist()), rc_dist_size(cli_dist()),
+             rc_dist_host(cli_dist()));
+  fprintf(stderr, "recoup: error: %s%s\n", where,
           rc__escape(buf, sizeof buf, e && e->msg[0] ? e->msg : rc_strerror(e ? e->code : -1)));
   return RC_EXIT_FAIL;
 }

@@ -14,6 +14,7 @@
 #include "cli/report.h"
 #include "core/alloc.h"
 #include "core/path.h"
+#include "train/dist.h"
 
 static void usage(FILE *f) {
   fprintf(f,
@@ -266,5 +267,12 @@ int rc_cmd_batch(int argc, char **argv) {
   batch_args a;
   int pr = parse_args(&a, argc, argv);
   if (pr) return pr < 0 ? RC_EXIT_OK : pr;
+  if (rc_dist_size(cli_dist()) > 1) {
+    /* Every rank would run every job and write the same outputs. */
+    if (rc_dist_rank(cli_dist()) == 0)
+      fprintf(stderr, "recoup: error: recoup batch does not run under mpirun yet: start it as one process "
+                      "(--jobs N), or one per machine with --shard K/N\n");
+    return RC_EXIT_FAIL;
+  }
   return a.merge ? cli_batch_merge_reports(&a) : run_batch(&a);
 }

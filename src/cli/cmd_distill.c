@@ -25,6 +25,7 @@
 #include "core/path.h"
 #include "onnx/model.h"
 #include "plan/load.h"
+#include "train/dist.h"
 #include "train/distill.h"
 #include "train/select.h"
 
@@ -476,6 +477,9 @@ static cJSON *results_json(const distill_args *a, const rc_distill_result *r, do
   cJSON_AddNumberToObject(root, "steps", (double)r->steps_done);
   cJSON_AddNumberToObject(root, "seconds", r->seconds);
   cJSON_AddNumberToObject(root, "samples_per_s", r->samples_per_s);
+  cJSON_AddNumberToObject(root, "ranks", r->ranks);
+  cJSON_AddNumberToObject(root, "comm_seconds_per_step", r->comm_seconds_per_step);
+  cJSON_AddNumberToObject(root, "comm_bytes_per_step", 4.0 * (double)r->comm_values_per_step);
   cJSON_AddNumberToObject(root, "trainable_tensors", r->n_trainable_tensors);
   cJSON_AddNumberToObject(root, "trainable_values", (double)r->n_trainable);
   cJSON_AddNumberToObject(root, "pruned_zeros_kept", (double)r->n_frozen_zeros);
@@ -644,7 +648,9 @@ int rc_cmd_distill(int argc, char **argv) {
   double diff = 0;
   char *cache_dir = NULL;
   if (check_output_path(&a, &e)) goto out;
-  if (a.report && cli_report_prepare(a.report, 0, &e) != RC_OK) goto out;
+  /* Under mpirun every rank trains; rank 0 alone writes and prints. */
+  int root = rc_dist_rank(cli_dist()) == 0;
+  if (root && a.report && cli_report_prepare(a.report, 0, &e) != RC_OK) goto out;
   if (rc_model_load(&teacher, a.teacher, NULL, &e) != RC_OK || rc_model_load(&student, a.student, NULL, &e) != RC_OK)
     goto out;
   if (rc_distill_check_pair(&teacher->graph, &student->graph, &e) != RC_OK) goto out;
@@ -684,7 +690,8 @@ int rc_cmd_distill(int argc, char **argv) {
     goto out;
   }
   progress_state ps = {cli_isatty_stderr(), -1e9, a.json};
-  a.cfg.progress = on_progress;
+  a.cfg.progress = root ? on_progress : NULL;
+  a.cfg.dist = cli_dist();
   a.cfg.user = &ps;
   a.cfg.log = (rc_logger){cli_log_stderr, &ps.tty, RC_LOG_INFO};
   a.cfg.stop = &cli_stop_requested;
@@ -692,6 +699,10 @@ int rc_cmd_distill(int argc, char **argv) {
   cache_dir = rc__path_dir(a.out); /* a spilled teacher cache goes beside the output */
   a.cfg.cache_dir = cache_dir;
   if (rc_distill_run(&r, teacher, student, &d, &a.cfg, &e) != RC_OK) goto out;
+  if (!root) {
+    rc = RC_EXIT_OK;
+    goto out;
+  }
   if (cli_prep_record(student, &a.data, &e) != RC_OK) goto out;
   if (rc_model_save(student, a.out, r.changed, r.n_changed, &e) != RC_OK) goto out;
   {
@@ -710,7 +721,10 @@ int rc_cmd_distill(int argc, char **argv) {
   if (a.report && write_report(&a, &r, diff, &e) != RC_OK) goto out;
   rc = RC_EXIT_OK;
 out:
-  if (rc != RC_EXIT_OK) cli_fail(&e);
+  /* A stop request is summed with every step, so all ranks stop together
+   * after rank 0's checkpoint: rank 0 says so, and the job ends normally. */
+  if (e.code == RC_ERR_INTERRUPTED) cli_dist_agreed_exit();
+  if (rc != RC_EXIT_OK && (e.code != RC_ERR_INTERRUPTED || rc_dist_rank(cli_dist()) == 0)) cli_fail(&e);
   rc_distill_result_free(&r);
   rc__free(cache_dir);
   cli_samples_free(&train);

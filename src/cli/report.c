@@ -679,6 +679,10 @@ static void job_card(cli_sbuf *b, const cJSON *r) {
   cli_sb_esc(b, str(r, "out"));
   cli_sb_add(b, " (teacher ", 10);
   cli_sb_esc(b, str(r, "teacher"));
+  if (*str(r, "host")) { /* batch under mpirun: where the job ran */
+    cli_sb_add(b, "; ran on ", 9);
+    cli_sb_esc(b, str(r, "host"));
+  }
   cli_sb_add(b, ")</p>", 5);
   if (!has_results(r)) {
     cli_sb_add(b, "<p class=\"err\">", 15);

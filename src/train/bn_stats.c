@@ -32,7 +32,7 @@ static float *bn_stat(const rc_graph *g, const rc_node *n, int k) {
  * training samples, with each layer normalising by batch statistics as it
  * would in training mode (so later layers see what they will see). */
 rc_status rc__bn_recalibrate(const rc_graph *g, const int *bn_nodes, int n_bn, rc_dataset *train, int64_t batch,
-                            rc_err *e) {
+                            rc_dist *dist, rc_err *e) {
   unsigned char *keep = rc__calloc((size_t)g->n_values + 1, 1);
   double *acc = NULL;
   rc_plan *p = NULL;
@@ -48,7 +48,8 @@ rc_status rc__bn_recalibrate(const rc_graph *g, const int *bn_nodes, int n_bn, r
     const rc_tensor *x = rc_plan_tensor(p, g->nodes[bn_nodes[b]].in[0]);
     if (x->rank > 1 && x->dims[1] > max_c) max_c = x->dims[1];
   }
-  acc = rc__calloc((size_t)(2 * max_c * n_bn), sizeof(double));
+  size_t n_acc = (size_t)(2 * max_c * n_bn);
+  acc = rc__calloc(n_acc + 1, sizeof(double)); /* + the row count, summed with them over ranks */
   if (!acc) {
     s = rc__fail(e, RC_ERR_NOMEM, "out of memory");
     goto out;
@@ -59,6 +60,7 @@ rc_status rc__bn_recalibrate(const rc_graph *g, const int *bn_nodes, int n_bn, r
   int64_t nb = rc_dataset_n_batches(train, batch, 1), rows = 0;
   for (int64_t b = 0; b < nb; b++) {
     int64_t count;
+    if (b % rc_dist_size(dist) != rc_dist_rank(dist)) continue; /* another rank's batch */
     if ((s = rc_dataset_gather(in_bufs, NULL, &count, train, b, batch, e)) != RC_OK) goto out;
     if ((s = rc_plan_forward(p, e)) != RC_OK) goto out;
     for (int j = 0; j < n_bn; j++)
@@ -66,6 +68,9 @@ rc_status rc__bn_recalibrate(const rc_graph *g, const int *bn_nodes, int n_bn, r
                       rc_plan_tensor(p, g->nodes[bn_nodes[j]].in[0]), count);
     rows += count;
   }
+  acc[n_acc] = (double)rows;
+  if ((s = rc_dist_sum_f64(dist, acc, n_acc + 1, e)) != RC_OK) goto out;
+  rows = (int64_t)acc[n_acc];
   for (int j = 0; j < n_bn; j++) {
     const rc_node *n = &g->nodes[bn_nodes[j]];
     const rc_tensor *x = rc_plan_tensor(p, n->in[0]);

@@ -18,6 +18,8 @@
 #include "plan/plan.h"
 #include "train/bn_stats.h"
 #include "train/checkpoint.h"
+#include "train/dist.h"
+#include "train/dist_grads.h"
 #include "train/loss.h"
 #include "train/measure.h"
 #include "train/params.h"
@@ -109,6 +111,10 @@ typedef struct run_state {
   rc_distill_tensor_rule *rules; /* per trained weight, moved to the result */
   int *rule_value;               /* the store's value of each rule */
   int n_rules;
+  /* Under MPI (train/dist.h) each rank trains on rows [offset, offset +
+   * local) of every global batch; alone, offset 0 and local = batch. */
+  int64_t local, offset;
+  rc_grad_sync sync;
 } run_state;
 
 /* Remember what the zeros of a trained weight mean; returns its store flags. */
@@ -311,12 +317,16 @@ static rc_status build_plans(run_state *st, const rc_tensor *data, rc_err *e) {
   rc__free(live);
   RC_TRY(s);
   rc_plan_opts train_opts = {.training = 1, .trainable = st->trainable_mask, .keep = st->skeep, .bn_batch_stats = st->c->bn == RC_BN_TRAIN};
-  RC_TRY(rc_plan_init(&st->train_plan, sg, shapes, &train_opts, e));
   teacher_order(tg, sg, shapes, tin);
   RC_TRY(rc_plan_init(&st->teacher_plan, tg, tin, NULL, e));
+  /* The step's plans take this rank's part of the global batch. */
+  rc_tensor part[RC_DATASET_MAX_INPUTS], tpart[RC_DATASET_MAX_INPUTS];
+  rc__input_shapes(sg, data, st->local, part);
+  teacher_order(tg, sg, part, tpart);
+  RC_TRY(rc_plan_init(&st->train_plan, sg, part, &train_opts, e));
   if ((st->feat && rc_loss_spec_needs_features(&st->c->terms)) || st->c->n_output_losses) {
     rc_plan_opts keep = {.training = 0, .trainable = NULL, .keep = st->tkeep, .bn_batch_stats = 0};
-    RC_TRY(rc_plan_init(&st->teacher_step, tg, tin, &keep, e));
+    RC_TRY(rc_plan_init(&st->teacher_step, tg, tpart, &keep, e));
   }
   int64_t kt = 0;
   if (st->c->n_output_losses)
@@ -337,6 +347,29 @@ static rc_status build_plans(run_state *st, const rc_tensor *data, rc_err *e) {
   return RC_OK;
 }
 
+/* This rank's share of an unshuffled view (its order is the identity, so
+ * the first part.n positions of order serve the slice), in whole batches
+ * so that every row is computed as one process computes it: the results,
+ * and checkpoints' fingerprints of them, do not depend on the ranks. */
+static rc_dataset rank_slice(const run_state *st, const rc_dataset *d, int64_t *lo) {
+  int64_t hi;
+  rc_dist_share_blocks(d->n, st->batch, rc_dist_rank(st->c->dist), rc_dist_size(st->c->dist), lo, &hi);
+  rc_dataset part = *d;
+  part.index = d->index + *lo;
+  part.n = hi - *lo;
+  return part;
+}
+
+/* Outputs of plan p over a view, in the view's order: each rank runs its
+ * share, then every rank receives all rows. */
+static rc_status run_shared(run_state *st, rc_plan *p, const rc_dataset *d, const int *outputs, float *out, rc_err *e) {
+  int64_t lo;
+  rc_dataset part = rank_slice(st, d, &lo);
+  void *outs[1] = {out + lo * st->k};
+  if (part.n > 0) RC_TRY(rc__run_dataset(p, &part, outputs, 1, outs, e));
+  return rc_dist_gather_rows(st->c->dist, out, d->n, st->batch, st->k, e);
+}
+
 /* Teacher logits for every sample of a dataset, in the dataset's own order. */
 static rc_status teacher_pass(run_state *st, const rc_dataset *d, float *out, rc_err *e) {
   const rc_graph *tg = &st->teacher->graph, *sg = st->sg;
@@ -347,8 +380,7 @@ static rc_status teacher_pass(run_state *st, const rc_dataset *d, float *out, rc
     int j = rc__graph_find_in(sg, sg->inputs, sg->n_inputs, tg->values[tg->inputs[i]].name);
     rc_dataset_take_input(&td, i, d, j);
   }
-  void *outs[1] = {out};
-  return rc__run_dataset(st->teacher_plan, &td, tg->outputs, 1, outs, e);
+  return run_shared(st, st->teacher_plan, &td, tg->outputs, out, e);
 }
 
 /* ---- Data ----------------------------------------------------------------- */
@@ -397,8 +429,7 @@ static rc_status val_labels_of(run_state *st, const rc_distill_data *d, int32_t 
 static rc_status validate(run_state *st, rc_metrics *m, rc_err *e) {
   if (st->outs)
     return rc__outputs_validate(st->outs, st->teacher_step, st->eval_plan, &st->val, st->val_side, st->val.index, m, e);
-  void *outs[1] = {st->val_logits};
-  RC_TRY(rc__run_dataset(st->eval_plan, &st->val, st->sg->outputs, 1, outs, e));
+  RC_TRY(run_shared(st, st->eval_plan, &st->val, st->sg->outputs, st->val_logits, e));
   return rc__metrics_compute(m, st->val_logits, st->val_labels, st->teacher_val_logits, st->val.n, st->k, e);
 }
 
@@ -434,12 +465,12 @@ static rc_status loss_and_seed(run_state *st, const step_buffers *sb, const int3
   double dl = 0, ce = 0;
   float wkd = c->terms.weight[RC_TERM_KD], wmse = c->terms.weight[RC_TERM_LOGIT_MSE];
   if (wkd > 0)
-    RC_TRY(rc_loss_kd(&dl, NULL, grad, alpha * wkd, s, sb->teacher, st->batch, st->k, c->temperature, e));
+    RC_TRY(rc_loss_kd(&dl, NULL, grad, alpha * wkd, s, sb->teacher, st->local, st->k, c->temperature, e));
   else if (wmse > 0)
-    RC_TRY(rc_loss_logit_mse(&dl, NULL, grad, alpha * wmse, s, sb->teacher, st->batch, st->k, e));
+    RC_TRY(rc_loss_logit_mse(&dl, NULL, grad, alpha * wmse, s, sb->teacher, st->local, st->k, e));
   dl *= wkd > 0 ? wkd : wmse;
   if (labels && alpha < 1)
-    RC_TRY(rc_loss_cross_entropy(&ce, NULL, grad, 1 - alpha, s, labels, st->batch, st->k, e));
+    RC_TRY(rc_loss_cross_entropy(&ce, NULL, grad, 1 - alpha, s, labels, st->local, st->k, e));
   *loss = alpha * dl + (labels && alpha < 1 ? (1 - alpha) * ce : 0);
   return RC_OK;
 }
@@ -457,8 +488,8 @@ static rc_status outputs_loss(run_state *st, const step_buffers *sb, int64_t b, 
 
 static void gather_teacher_rows(run_state *st, const step_buffers *sb, int64_t b) {
   if (!st->k) return;
-  for (int64_t j = 0; j < st->batch; j++) {
-    int64_t pos = st->train.order[b * st->batch + j];
+  for (int64_t j = 0; j < st->local; j++) {
+    int64_t pos = st->train.order[b * st->batch + st->offset + j];
     int64_t sample = st->train.index[pos];
     memcpy(sb->teacher + j * st->k, st->teacher_logits + sample * st->k, sizeof(float) * (size_t)st->k);
   }
@@ -477,6 +508,7 @@ typedef struct loop_ctx {
   int64_t spe, total, epochs;
   int best_slot, good_slot;
   uint64_t fingerprint;
+  int stop_all;              /* a rank was asked to stop (summed with the step) */
 } loop_ctx;
 
 /* Per-output runs cache no teacher outputs, so the teacher's initializers,
@@ -524,6 +556,7 @@ static uint64_t run_fingerprint(const loop_ctx *lc) {
 }
 
 static rc_status checkpoint_write(const loop_ctx *lc, const loop_state *ls, rc_err *e) {
+  if (rc_dist_rank(lc->st->c->dist) != 0) return RC_OK; /* the ranks' states are equal: one writes */
   rc_ckpt_run run = {lc->fingerprint, lc->st->c->seed, lc->epochs};
   return rc__ckpt_write(lc->st->c->checkpoint_path, &run, ls, lc->r->epoch_loss, lc->r->epoch_val, lc->st->ps, e);
 }
@@ -548,13 +581,43 @@ static rc_status setup_schedule(loop_ctx *lc, rc_err *e) {
   return rc_sched_check(sched, e);
 }
 
+/* Under MPI: the global batch's mean gradient and loss from the ranks'
+ * parts, and whether any rank was asked to stop. */
+static rc_status sum_over_ranks(loop_ctx *lc, double *loss, rc_err *e) {
+  run_state *st = lc->st;
+  if (rc_dist_size(st->c->dist) < 2) return RC_OK;
+  double extra[2] = {*loss, st->c->stop && *st->c->stop ? 1.0 : 0.0};
+  RC_TRY(rc__grad_sync_run(&st->sync, st->c->dist, st->ps, (float)st->local / (float)st->batch, extra, e));
+  *loss = extra[0];
+  lc->stop_all = extra[1] > 0;
+  return RC_OK;
+}
+
+static int stop_asked(const loop_ctx *lc) {
+  const rc_distill_config *c = lc->st->c;
+  return rc_dist_size(c->dist) > 1 ? lc->stop_all : c->stop && *c->stop;
+}
+
+/* Every RC_DIST_CHECK_EVERY steps and at the end, the ranks' parameters
+ * must still be equal: a difference means a rank computed something else. */
+#define RC_DIST_CHECK_EVERY 50
+static rc_status check_ranks_agree(const run_state *st, int64_t step, rc_err *e) {
+  if (rc_dist_size(st->c->dist) < 2) return RC_OK;
+  char what[64];
+  snprintf(what, sizeof what, "parameters after step %lld", (long long)step);
+  return rc_dist_check_equal(st->c->dist, rc__params_checksum(st->ps), what, e);
+}
+
 /* One optimizer step on batch b of the current epoch's order. Returns the
  * loss through *loss; a non-finite loss or gradient is reported by *bad. */
 static rc_status train_step(loop_ctx *lc, const loop_state *ls, step_buffers *sb, double *loss, int *bad,
                             rc_err *e) {
   run_state *st = lc->st;
   int64_t count;
-  RC_TRY(rc_dataset_gather(sb->in, sb->labels, &count, &st->train, ls->batch, st->batch, e));
+  rc_dataset part = st->train; /* this rank's rows of global batch ls->batch */
+  part.order = st->train.order + ls->batch * st->batch + st->offset;
+  part.n = st->local;
+  RC_TRY(rc_dataset_gather(sb->in, sb->labels, &count, &part, 0, st->local, e));
   gather_teacher_rows(st, sb, ls->batch);
   rc_params_zero_grad(st->ps);
   rc_plan_zero_grad(st->train_plan);
@@ -576,6 +639,9 @@ static rc_status train_step(loop_ctx *lc, const loop_state *ls, step_buffers *sb
         int fitted;
         RC_TRY(rc__features_fit_projectors(st->feat, st->teacher_step, st->train_plan, st->ps, &fitted, e));
         if (fitted) rc__log(&st->c->log, RC_LOG_INFO, "projectors started from a least-squares fit on the first batch");
+        /* Each rank fitted on its own rows: all take rank 0's projectors. */
+        RC_TRY(rc_dist_bcast(st->c->dist, rc_params_block(st->ps, RC_BLOCK_VALUE, -1),
+                             sizeof(float) * rc_params_total(st->ps), e));
       }
       st->projectors_started = 1;
     }
@@ -584,6 +650,7 @@ static rc_status train_step(loop_ctx *lc, const loop_state *ls, step_buffers *sb
     *loss += fl;
   }
   RC_TRY(rc_plan_backward(st->train_plan, e));
+  RC_TRY(sum_over_ranks(lc, loss, e));
   double norm = rc_clip_grad_norm(st->ps, st->c->clip);
   *bad = !isfinite(*loss) || !isfinite(norm);
   if (*bad) return RC_OK;
@@ -633,7 +700,7 @@ static void trace_loss(loop_state *ls, double loss, int64_t total) {
 static rc_status train_loop(run_state *st, rc_distill_result *r, const rc_distill_data *d, rc_err *e) {
   const rc_distill_config *c = st->c;
   const rc_graph *g = st->sg;
-  loop_ctx lc = {st, r, {0}, 0, 0, 0, 0, 0, 0};
+  loop_ctx lc = {st, r, {0}, 0, 0, 0, 0, 0, 0, 0};
   lc.spe = rc_dataset_n_batches(&st->train, st->batch, 1);
   lc.total = c->steps > 0 ? c->steps : c->epochs * lc.spe;
   lc.epochs = (lc.total + lc.spe - 1) / lc.spe;
@@ -670,11 +737,11 @@ static rc_status train_loop(run_state *st, rc_distill_result *r, const rc_distil
     rc__log(&c->log, RC_LOG_INFO, "resumed from the checkpoint");
   } else if (c->bn == RC_BN_RECALIBRATE) {
     /* Done here, not on resume: the re-estimated statistics are in the store. */
-    if ((s = rc__bn_recalibrate(st->sg, st->bn_nodes, st->n_bn, &st->train, st->batch, e)) != RC_OK) goto out;
+    if ((s = rc__bn_recalibrate(st->sg, st->bn_nodes, st->n_bn, &st->train, st->batch, st->c->dist, e)) != RC_OK) goto out;
     if ((s = rc_params_save(st->ps, lc.good_slot, e)) != RC_OK) goto out;
     rc__log(&c->log, RC_LOG_INFO, "BatchNormalization running statistics re-estimated over the training samples");
   }
-  double t0 = now_s();
+  double t0 = now_s(), comm0 = rc_dist_comm_seconds(c->dist);
   int64_t start_step = ls.step, snap_every = lc.spe / 4 > 0 ? lc.spe / 4 : 1;
   rc_distill_progress pg = {0};
   pg.epochs = lc.epochs;
@@ -712,7 +779,9 @@ static rc_status train_loop(run_state *st, rc_distill_result *r, const rc_distil
     notify(c, &pg);
     int epoch_done = ls.batch == lc.spe || ls.step == lc.total || ls.stopped;
     if (epoch_done && (s = end_epoch(&lc, &ls, &pg, e)) != RC_OK) goto out;
-    int interrupted = c->stop && *c->stop;
+    int interrupted = stop_asked(&lc);
+    if ((ls.step % RC_DIST_CHECK_EVERY == 0 || ls.step == lc.total) && (s = check_ranks_agree(st, ls.step, e)) != RC_OK)
+      goto out;
     if (c->checkpoint_path &&
         (epoch_done || interrupted || (c->checkpoint_every > 0 && ls.step % c->checkpoint_every == 0)) &&
         ls.step < lc.total && (s = checkpoint_write(&lc, &ls, e)) != RC_OK)
@@ -726,6 +795,8 @@ static rc_status train_loop(run_state *st, rc_distill_result *r, const rc_distil
   }
   r->steps_done = ls.step;
   r->seconds = now_s() - t0;
+  if (ls.step > start_step)
+    r->comm_seconds_per_step = (rc_dist_comm_seconds(c->dist) - comm0) / (double)(ls.step - start_step);
   r->samples_per_s = r->seconds > 0 ? (double)((ls.step - start_step) * st->batch) / r->seconds : 0;
   r->best_epoch = ls.best_epoch;
   r->improved = ls.best_epoch > 0;
@@ -738,6 +809,7 @@ static rc_status train_loop(run_state *st, rc_distill_result *r, const rc_distil
   memcpy(r->trace_step, ls.trace_step, sizeof r->trace_step);
   memcpy(r->trace_loss, ls.trace_loss, sizeof r->trace_loss);
   if ((s = rc_params_restore(st->ps, lc.best_slot, e)) != RC_OK) goto out;
+  if ((s = check_ranks_agree(st, ls.step, e)) != RC_OK) goto out;
   r->after = ls.best;
 out:
   rc__free(sb.teacher);
@@ -773,7 +845,35 @@ static rc_status measure_inside(run_state *st, rc_distill_result *r, rc_pairing 
   return s;
 }
 
+/* Under MPI: every rank starts from rank 0's values, and sends the
+ * gradients of entries that train (not frozen tensors, not running
+ * statistics, not a tensor that feeds no output). */
+static rc_status setup_ranks(run_state *st, rc_err *e) {
+  rc_dist *d = st->c->dist;
+  if (rc_dist_size(d) < 2) return RC_OK;
+  if (st->c->bn == RC_BN_TRAIN)
+    return rc__fail(e, RC_ERR_UNSUPPORTED, "BatchNormalization in training mode is not supported over %d ranks yet: "
+                    "each rank would normalise by its own part of the batch; keep the statistics frozen or "
+                    "recalibrated, or run one process", rc_dist_size(d));
+  if (st->c->n_output_losses)
+    return rc__fail(e, RC_ERR_UNSUPPORTED, "per-output losses are not supported over %d ranks yet (their validation "
+                    "is not shared between ranks); run one process", rc_dist_size(d));
+  RC_TRY(rc_dist_bcast(d, rc_params_block(st->ps, RC_BLOCK_VALUE, -1), sizeof(float) * rc_params_total(st->ps), e));
+  int n = rc_params_count(st->ps);
+  unsigned char *send = rc__malloc((size_t)n + 1);
+  if (!send) return rc__fail(e, RC_ERR_NOMEM, "out of memory");
+  memset(send, 1, (size_t)n);
+  for (int i = 0; i < st->n_tr; i++) {
+    int v = st->tr[i].value;
+    if (!st->trainable_mask[v] || !rc_plan_grad(st->train_plan, v)) send[st->tr[i].entry] = 0;
+  }
+  rc_status s = rc__grad_sync_init(&st->sync, st->ps, send, 2, e);
+  rc__free(send);
+  return s;
+}
+
 static void free_state(run_state *st) {
+  rc__grad_sync_free(&st->sync);
   restore_graph_buffers(st);
   rc__qat_restore(st->sg, &st->qat);
   rc__qat_free(&st->qat);
@@ -911,10 +1011,21 @@ rc_status rc_distill_run(rc_distill_result *r, rc_model *teacher, rc_model *stud
   st.val_side = d->val_inputs ? &d->val_side : &d->side;
   if ((s = setup_data(&st, d, e)) != RC_OK) goto out;
   st.batch = c->batch < st.train.n ? c->batch : st.train.n;
+  {
+    int64_t hi;
+    rc_dist_share(st.batch, rc_dist_rank(c->dist), rc_dist_size(c->dist), &st.offset, &hi);
+    st.local = hi - st.offset;
+    if (st.local < 1) {
+      s = rc__fail(e, RC_ERR_INVALID, "the global batch of %lld samples is smaller than the %d ranks",
+                   (long long)st.batch, rc_dist_size(c->dist));
+      goto out;
+    }
+  }
   r->n_train = st.train.n;
   r->n_val = st.val.n;
   if ((s = select_trainables(&st, e)) != RC_OK || (s = collect_bn(&st, e)) != RC_OK ||
-      (s = build_store(&st, d->inputs, e)) != RC_OK || (s = build_plans(&st, d->inputs, e)) != RC_OK)
+      (s = build_store(&st, d->inputs, e)) != RC_OK || (s = build_plans(&st, d->inputs, e)) != RC_OK ||
+      (s = setup_ranks(&st, e)) != RC_OK)
     goto out;
   if ((s = val_labels_of(&st, d, &val_labels, e)) != RC_OK) goto out;
   if (st.outs) {
@@ -926,9 +1037,13 @@ rc_status rc_distill_run(rc_distill_result *r, rc_model *teacher, rc_model *stud
     goto out;
   }
   if ((s = validate(&st, &r->before, e)) != RC_OK) goto out;
-  if ((s = measure_inside(&st, r, &layers, 0, e)) != RC_OK) goto out;
+  /* The layer table is rank 0's to report; the other ranks skip it. */
+  int reports = rc_dist_rank(c->dist) == 0;
+  if (reports && (s = measure_inside(&st, r, &layers, 0, e)) != RC_OK) goto out;
   if ((s = train_loop(&st, r, d, e)) != RC_OK) goto out;
-  if ((s = measure_inside(&st, r, &layers, 1, e)) != RC_OK) goto out;
+  if (reports && (s = measure_inside(&st, r, &layers, 1, e)) != RC_OK) goto out;
+  r->ranks = rc_dist_size(c->dist);
+  r->comm_values_per_step = (int64_t)st.sync.n;
   if ((s = rc__qat_write_back(st.sg, &st.qat, e)) != RC_OK) goto out;
   s = record_changes(&st, r, e);
 out:

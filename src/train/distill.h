@@ -23,6 +23,8 @@
 #include "train/optim.h"
 #include "train/outputs.h"
 
+typedef struct rc_dist rc_dist;
+
 typedef enum rc_bn_mode {
   RC_BN_FROZEN = 0,      /* running statistics stay as deployed */
   RC_BN_RECALIBRATE = 1, /* re-estimated over the training data first, then frozen */
@@ -108,6 +110,9 @@ typedef struct rc_distill_config {
    * temporary file in cache_dir (NULL: the current folder). */
   size_t cache_bytes;
   const char *cache_dir;
+  /* The ranks sharing this run (train/dist.h); NULL: this process alone.
+   * batch is the global batch, split over the ranks. */
+  rc_dist *dist;
 } rc_distill_config;
 
 void rc_distill_config_defaults(rc_distill_config *c);
@@ -178,6 +183,10 @@ typedef struct rc_distill_result {
   int n_ranges;
   int *changed;                      /* student values whose data changed: save these */
   int n_changed;
+  int ranks;                         /* processes that shared the run */
+  double comm_seconds_per_step;      /* communicating (gradient sums, validation outputs, checks),
+                                      * over the steps this run took (after a resume: since it) */
+  int64_t comm_values_per_step;      /* gradient values each step sums (4 bytes each) */
 } rc_distill_result;
 
 void rc_distill_result_free(rc_distill_result *r);
