@@ -17,7 +17,6 @@
 #include <string.h>
 
 #include "ops/op.h"
-#include "ops/rowsum.h"
 #include "ops/window.h"
 
 #define AX RC_WIN_MAX_AXES
@@ -196,10 +195,8 @@ static double tap_walk(tap_mode mode, float *pos, float *img, const patch *g, in
           else for (int64_t p = lo2; p < hi2; p++) prow[p] += v * irow[p * st];
           break;
         case TAP_DOT: {
-          if (st == 1) {
-            dot += rc__row_dot_dev(prow + lo2, irow + lo2, hi2 - lo2, 0.0f);
-            break;
-          }
+          /* Rows here are short (a few to 64 cells): a plain serial sum
+           * beats a vector reduction's set-up (perf, mobilenet_v2 step). */
           float part = 0;
           for (int64_t p = lo2; p < hi2; p++) part += prow[p] * irow[p * st];
           dot += part;

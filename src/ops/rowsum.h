@@ -1,6 +1,6 @@
 /* Sums over one contiguous run of floats, vectorised, with the instruction
  * set picked at run time (AVX-512, AVX2 or the baseline). Each sum keeps 16
- * float partial sums in a fixed order and adds them up in double, so the
+ * float partial sums in a fixed order and adds them pairwise, so the
  * result is the same bit for bit on every instruction set and thread count. */
 #ifndef RC_OPS_ROWSUM_H
 #define RC_OPS_ROWSUM_H
