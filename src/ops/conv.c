@@ -164,11 +164,6 @@ typedef enum tap_mode {
   TAP_DOT         /* returns sum of pos[p] * img[cell] (depthwise weight gradient) */
 } tap_mode;
 
-/* dst[i] += v * src[i] */
-static void scatter_run(float *restrict dst, const float *restrict src, int64_t n, float v) {
-  for (int64_t i = 0; i < n; i++) dst[i] += v * src[i];
-}
-
 /* Walks kernel tap kr (index into k[0]*k[1]*k[2]) over every position. */
 static double tap_walk(tap_mode mode, float *pos, float *img, const patch *g, int64_t kr, float v) {
   int64_t ka = kr / (g->k[1] * g->k[2]), kb = (kr / g->k[2]) % g->k[1], kc = kr % g->k[2];
@@ -183,16 +178,12 @@ static double tap_walk(tap_mode mode, float *pos, float *img, const patch *g, in
     for (int64_t p1 = lo1; p1 < hi1; p1++) {
       float *irow = img + ((p0 * g->s[0] + off0) * g->img[1] + p1 * g->s[1] + off1) * g->img[2] + off2;
       float *prow = pos + (p0 * g->pos[1] + p1) * g->pos[2];
-      /* Unit stride gets loops of its own: the compiler vectorises those
-       * (pos and img never overlap), not the strided ones. */
       switch (mode) {
         case TAP_SCATTER:
-          if (st == 1) scatter_run(irow + lo2, prow + lo2, hi2 - lo2, v);
-          else for (int64_t p = lo2; p < hi2; p++) irow[p * st] += v * prow[p];
+          for (int64_t p = lo2; p < hi2; p++) irow[p * st] += v * prow[p];
           break;
         case TAP_ACCUMULATE:
-          if (st == 1) scatter_run(prow + lo2, irow + lo2, hi2 - lo2, v);
-          else for (int64_t p = lo2; p < hi2; p++) prow[p] += v * irow[p * st];
+          for (int64_t p = lo2; p < hi2; p++) prow[p] += v * irow[p * st];
           break;
         case TAP_DOT: {
           /* Rows here are short (a few to 64 cells): a plain serial sum
