@@ -156,6 +156,19 @@ static void valid_range(int64_t off, int64_t s, int64_t size, int64_t npos, int6
   *hi = h;
 }
 
+/* Where kernel tap kr reads: the image offset on each axis and the valid
+ * positions [lo, hi) whose cell lies inside the image. */
+static void tap_ranges(const patch *g, int64_t kr, int64_t *off0, int64_t *off1, int64_t *off2, int64_t *lo0,
+                       int64_t *hi0, int64_t *lo1, int64_t *hi1, int64_t *lo2, int64_t *hi2) {
+  int64_t ka = kr / (g->k[1] * g->k[2]), kb = (kr / g->k[2]) % g->k[1], kc = kr % g->k[2];
+  *off0 = ka * g->d[0] - g->pad[0];
+  *off1 = kb * g->d[1] - g->pad[1];
+  *off2 = kc * g->d[2] - g->pad[2];
+  valid_range(*off0, g->s[0], g->img[0], g->pos[0], lo0, hi0);
+  valid_range(*off1, g->s[1], g->img[1], g->pos[1], lo1, hi1);
+  valid_range(*off2, g->s[2], g->img[2], g->pos[2], lo2, hi2);
+}
+
 /* What a walk over one kernel tap does between a position plane (length P)
  * and one image plane. */
 typedef enum tap_mode {
@@ -166,12 +179,8 @@ typedef enum tap_mode {
 
 /* Walks kernel tap kr (index into k[0]*k[1]*k[2]) over every position. */
 static double tap_walk(tap_mode mode, float *pos, float *img, const patch *g, int64_t kr, float v) {
-  int64_t ka = kr / (g->k[1] * g->k[2]), kb = (kr / g->k[2]) % g->k[1], kc = kr % g->k[2];
-  int64_t off0 = ka * g->d[0] - g->pad[0], off1 = kb * g->d[1] - g->pad[1], off2 = kc * g->d[2] - g->pad[2];
-  int64_t lo0, hi0, lo1, hi1, lo2, hi2;
-  valid_range(off0, g->s[0], g->img[0], g->pos[0], &lo0, &hi0);
-  valid_range(off1, g->s[1], g->img[1], g->pos[1], &lo1, &hi1);
-  valid_range(off2, g->s[2], g->img[2], g->pos[2], &lo2, &hi2);
+  int64_t off0, off1, off2, lo0, hi0, lo1, hi1, lo2, hi2;
+  tap_ranges(g, kr, &off0, &off1, &off2, &lo0, &hi0, &lo1, &hi1, &lo2, &hi2);
   const int64_t st = g->s[2];
   double dot = 0;
   for (int64_t p0 = lo0; p0 < hi0; p0++)
@@ -206,12 +215,8 @@ static void zero(float *p, int64_t n) {
  * Each output cell is written once: zeros go only where padding is, instead
  * of clearing the whole plane before the copy. */
 static void tap_gather(float *pos, const float *img, const patch *g, int64_t kr) {
-  int64_t ka = kr / (g->k[1] * g->k[2]), kb = (kr / g->k[2]) % g->k[1], kc = kr % g->k[2];
-  int64_t off0 = ka * g->d[0] - g->pad[0], off1 = kb * g->d[1] - g->pad[1], off2 = kc * g->d[2] - g->pad[2];
-  int64_t lo0, hi0, lo1, hi1, lo2, hi2;
-  valid_range(off0, g->s[0], g->img[0], g->pos[0], &lo0, &hi0);
-  valid_range(off1, g->s[1], g->img[1], g->pos[1], &lo1, &hi1);
-  valid_range(off2, g->s[2], g->img[2], g->pos[2], &lo2, &hi2);
+  int64_t off0, off1, off2, lo0, hi0, lo1, hi1, lo2, hi2;
+  tap_ranges(g, kr, &off0, &off1, &off2, &lo0, &hi0, &lo1, &hi1, &lo2, &hi2);
   const int64_t P1 = g->pos[1], P2 = g->pos[2], st = g->s[2];
   if (lo0 >= hi0 || lo1 >= hi1 || lo2 >= hi2) {
     zero(pos, prod3(g->pos));
