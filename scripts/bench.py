@@ -209,7 +209,9 @@ def torch_loop(a):
     torch.set_num_threads(a.threads)
     torch.manual_seed(1)
     _, bn = NETWORKS[a.net]
-    x = torch.from_numpy(np.load(a.samples_file).astype(np.float32) * (1.0 / 255.0))
+    x = np.load(a.samples_file).astype(np.float32)
+    x *= 1.0 / 255.0  # in place: one float copy, as recoup holds
+    x = torch.from_numpy(x)
     teacher = torch_model(a.net, a.teacher).eval()
     student = torch_model(a.net, a.student)
     student.train(bn == "train")
