@@ -103,6 +103,19 @@ static rc_status run_folded(rc_plan *p, const rc_node *n, rc_tensor **in, rc_ten
 
 /* Infer every node's outputs in order; fold the nodes whose inputs are all
  * known; collect the rest as steps. */
+
+/* Room for a folded node's output in the plan's arena, within the plan's limit. */
+static rc_status alloc_folded(rc_plan *p, const rc_graph *g, const rc_node *n, rc_tensor *t, rc_err *e) {
+  size_t nb = rc_tensor_nbytes(t);
+  if (nb > p->max_bytes - p->folded_bytes)
+    return rc__fail(e, RC_ERR_LIMIT, "%s: node '%s' (%s): folded output of %zu bytes is over the plan limit of %zu",
+                    g->path, n->label, n->op_type, nb, p->max_bytes);
+  p->folded_bytes += nb;
+  t->data = rc__arena_zalloc(&p->meta, nb ? nb : 1);
+  if (!t->data) return rc__fail(e, RC_ERR_NOMEM, "%s: out of memory folding node '%s'", g->path, n->label);
+  return RC_OK;
+}
+
 static rc_status infer_and_fold(rc_plan *p, const rc_plan_opts *o, unsigned char *live, rc_err *e) {
   const rc_graph *g = p->g;
   p->steps = rc__arena_zalloc(&p->meta, sizeof(plan_step) * (size_t)(g->n_nodes ? g->n_nodes : 1));
@@ -128,29 +141,15 @@ static rc_status infer_and_fold(rc_plan *p, const rc_plan_opts *o, unsigned char
     }
     if (fold) {
       for (int j = 0; j < n->n_out; j++) {
-        rc_tensor *t = out[j];
-        if (!t) continue;
-        size_t nb = rc_tensor_nbytes(t);
-        if (nb > p->max_bytes - p->folded_bytes)
-          return rc__fail(e, RC_ERR_LIMIT, "%s: node '%s' (%s): folded output of %zu bytes is over the plan limit of %zu",
-                          g->path, n->label, n->op_type, nb, p->max_bytes);
-        p->folded_bytes += nb;
-        t->data = rc__arena_zalloc(&p->meta, nb ? nb : 1);
-        if (!t->data) return rc__fail(e, RC_ERR_NOMEM, "%s: out of memory folding node '%s'", g->path, n->label);
+        if (!out[j]) continue;
+        RC_TRY(alloc_folded(p, g, n, out[j], e));
         p->is_const[n->out[j]] = 1;
       }
       /* Optional outputs that nobody reads still need somewhere to go. */
       for (int j = 0; j < n->n_out; j++)
         if (!out[j]) {
-          rc_tensor *t = &inferred[j];
-          size_t nb = rc_tensor_nbytes(t);
-          if (nb > p->max_bytes - p->folded_bytes)
-            return rc__fail(e, RC_ERR_LIMIT, "%s: node '%s' (%s): folded output of %zu bytes is over the plan limit of %zu",
-                            g->path, n->label, n->op_type, nb, p->max_bytes);
-          p->folded_bytes += nb;
-          t->data = rc__arena_zalloc(&p->meta, nb ? nb : 1);
-          if (!t->data) return rc__fail(e, RC_ERR_NOMEM, "%s: out of memory", g->path);
-          out[j] = t;
+          RC_TRY(alloc_folded(p, g, n, &inferred[j], e));
+          out[j] = &inferred[j];
         }
       if (run_folded(p, n, in, out, e) != RC_OK) return rc__wrap(e, "%s", g->path);
       continue;
