@@ -204,11 +204,50 @@ d = max_diff(weights("full.onnx"), weights("resumed1.onnx"))
 check(f"resumed with 1 process: equal to the uninterrupted run within {RESUME_TOL}", d <= RESUME_TOL,
       f"(max |diff| {d:.3g})")
 
-# ---- batch under mpirun: refused until it hands out jobs as a work queue ------------
-r3 = run(mpirun(2, ["batch", "nowhere.json"]), expect_ok=False)
-check("batch under 2 ranks is refused with one clear line, exit status non-zero",
-      r3.returncode != 0 and "does not run under mpirun" in r3.stderr,
-      f"(exit {r3.returncode}, stderr: {r3.stderr.strip()[:200]})")
+# ---- batch as a work queue over 3 ranks, against one process -------------------------
+def make_zoo(folder):
+    os.makedirs(os.path.join(folder, "students"), exist_ok=True)
+    shutil.copy(DENSE, os.path.join(folder, "dense.onnx"))
+    shutil.copy(PRUNED, os.path.join(folder, "students", "p90.onnx"))
+    with open(PRUNED, "rb") as f, open(os.path.join(folder, "students", "broken.onnx"), "wb") as g:
+        g.write(f.read()[:300] + b"\xff" * 64)
+    shutil.copy("images.npy", os.path.join(folder, "images.npy"))
+    jobs = [{"name": f"t{t}", "student": "students/p90.onnx", "out": f"recovered/t{t}.onnx", "temperature": t}
+            for t in (1, 2, 4, 8)]
+    jobs.insert(2, {"name": "broken", "student": "students/broken.onnx", "out": "recovered/broken.onnx"})
+    with open(os.path.join(folder, "zoo.json"), "w") as f:
+        json.dump({"title": "MPI work queue test", "defaults": {"teacher": "dense.onnx", "data": "images.npy",
+                   "scale": float(SCALE), "steps": 15, "batch": 32, "seed": 5}, "jobs": jobs}, f)
+    return [j["name"] for j in jobs]
+
+
+names = make_zoo("zoo_one")
+make_zoo("zoo_ranks")
+r1 = run([RECOUP, "batch", "zoo_one/zoo.json", "--threads", "1", "--json"], expect_ok=False)
+r3 = run(mpirun(3, ["batch", "zoo_ranks/zoo.json", "--threads", "1", "--json", "--report", "zoo_ranks/report"]),
+         expect_ok=False)
+one_jobs = {j["name"]: j for j in json.loads(r1.stdout)["jobs"]}
+try:
+    rank_jobs = {j["name"]: j for j in json.loads(r3.stdout)["jobs"]}
+except ValueError:
+    rank_jobs = {}
+    print(r3.stderr)
+good = [n for n in names if n != "broken"]
+check("batch over 3 ranks: every good job succeeded", all(rank_jobs.get(n, {}).get("status") == "ok" for n in good),
+      f"({[(n, rank_jobs.get(n, {}).get('status')) for n in names]})")
+check("... the broken job reported as failed, exit status 1",
+      rank_jobs.get("broken", {}).get("status") == "failed" and r3.returncode == 1,
+      f"(status {rank_jobs.get('broken', {}).get('status')}, exit {r3.returncode}, error: "
+      f"{rank_jobs.get('broken', {}).get('error', '')[:100]})")
+started = [l for l in r3.stderr.splitlines() if "started " in l]
+check("... each job started exactly once", sorted(len([l for l in started if f"started {n} " in l]) for n in names)
+      == [1] * len(names), f"({len(started)} starts for {len(names)} jobs)")
+check("... the report names the host of each job",
+      all(rank_jobs.get(n, {}).get("host") for n in names) and os.path.exists("zoo_ranks/report/report.html"),
+      f"({sorted(set(rank_jobs.get(n, {}).get('host', '') for n in names))})")
+check("... outputs byte-identical to a one-process batch",
+      all(one_jobs[n]["status"] == "ok" and same_bytes(f"zoo_one/recovered/{n}.onnx", f"zoo_ranks/recovered/{n}.onnx")
+          for n in good))
 
 print(f"{passed} passed, {len(failed)} failed")
 sys.exit(1 if failed else 0)

@@ -1,6 +1,7 @@
 /* recoup batch, shared by its parts: the jobs in flight and the batch's
  * state. cmd_batch.c reads the arguments and runs the batch; batch_pool.c
- * starts, watches and finishes the distill processes; batch_display.c draws
+ * starts, watches and finishes the distill processes, here or (under
+ * mpirun) on the ranks rank 0 hands them to; batch_display.c draws
  * status lines and the summary; batch_ledger.c keeps the resume state;
  * batch_merge.c merges shard reports. */
 #ifndef RC_CLI_BATCH_H
@@ -13,6 +14,8 @@
 
 #include "cli/manifest.h"
 #include "core/status.h"
+
+struct rc_dist; /* train/dist.h */
 
 typedef struct batch_args {
   const char *manifest, *report;
@@ -38,6 +41,7 @@ typedef struct run {
   char progress[160];
   double eta;       /* from the job's own progress line; < 0 unknown */
   cJSON *record;
+  int rank;         /* under mpirun: the rank running it; 0 while none does */
 } run;
 
 typedef struct batch {
@@ -53,7 +57,13 @@ typedef struct batch {
   int n_done, n_ok;
   double sum_wall;  /* of jobs that really ran to success */
   int n_timed;
+  /* Under mpirun (rank 0 coordinates): ranks 1..N-1 run one job at a time. */
+  struct rc_dist *dist;
+  int *rank_run;    /* per rank: the run it is busy with, or RANK_FREE, RANK_LOST */
+  char *hosts;      /* RC_DIST_MAX_HOST bytes per rank, rank order */
 } batch;
+
+enum { RANK_FREE = -1, RANK_LOST = -2 };
 
 /* ---- Display (batch_display.c) ---- */
 double cli_batch_now(void);
@@ -79,9 +89,15 @@ rc_status cli_batch_remember_job(batch *b, run *r, rc_err *e);
  * or -1 when the log cannot be opened. */
 ssize_t cli_batch_log_tail(const char *path, char *buf, size_t size);
 void cli_batch_set_record(batch *b, run *r, const char *status, const char *error, cJSON *result);
-/* Run every pending job, at most b->a->jobs at once, until all are done or
- * a stop signal has let the running ones checkpoint. */
+/* Run every pending job, at most b->a->jobs at once (under mpirun: one on
+ * each free rank), until all are done or a stop signal has let the running
+ * ones checkpoint. */
 void cli_batch_run_all(batch *b);
+/* Under mpirun, ranks 1..N-1: run the jobs rank 0 hands out until it says
+ * stop. */
+int cli_batch_serve(batch_args *a, struct rc_dist *d);
+/* Rank 0, at the end: every other rank may stop waiting for jobs. */
+void cli_batch_release_ranks(batch *b);
 
 /* ---- Reports (cmd_batch.c) and merging (batch_merge.c) ---- */
 void cli_batch_write_reports(batch *b);

@@ -1,5 +1,8 @@
 /* recoup batch: the process pool. Each job is its own `recoup distill`
- * process; its stdout (JSON results) is captured, its stderr logged. */
+ * process; its stdout (JSON results) is captured, its stderr logged. Under
+ * mpirun the pool is the ranks: rank 0 hands each job to the next free rank,
+ * which runs it as its own process the same way and sends back its status
+ * and stdout. */
 #define _GNU_SOURCE /* pipe2, prctl */
 #include <cJSON.h>
 #include <errno.h>
@@ -19,15 +22,25 @@
 #include "cli/cli.h"
 #include "cli/report.h"
 #include "core/alloc.h"
+#include "train/dist.h"
 
 #define STDOUT_MAX (4 << 20) /* a distill --json result is a few kilobytes */
+
+/* Messages between rank 0 and the ranks that run jobs. TAG_JOB: {run index,
+ * job index, resume from checkpoint, threads}, run index -1 = stop. TAG_DONE:
+ * {run index, wait status, stdout bytes}, then TAG_OUT: those bytes. */
+enum { TAG_JOB = 21, TAG_DONE = 22, TAG_OUT = 23 };
+
+static int over_ranks(const batch *b) { return rc_dist_size(b->dist) > 1; }
+
+static const char *host_of(const batch *b, int rank) { return b->hosts + (size_t)rank * RC_DIST_MAX_HOST; }
 
 void cli_batch_set_record(batch *b, run *r, const char *status, const char *error, cJSON *result) {
   cli_job *j = r->job;
   cJSON_Delete(r->record);
   r->record = cli_report_record(j->name, j->index, j->teacher_given, j->student_given, j->out_given, status, error,
                                 r->log_shown[0] ? r->log_shown : NULL, result, r->wall);
-  (void)b;
+  if (r->record && b->hosts && r->rank > 0) cJSON_AddStringToObject(r->record, "host", host_of(b, r->rank));
 }
 
 static void child_exec(batch *b, run *r, int out_w, int log_fd, pid_t parent) {
@@ -40,6 +53,7 @@ static void child_exec(batch *b, run *r, int out_w, int log_fd, pid_t parent) {
   sigprocmask(SIG_SETMASK, &none, NULL);
   signal(SIGINT, SIG_DFL);
   signal(SIGTERM, SIG_DFL);
+  if (over_ranks(b)) setenv("RECOUP_RANK_CHILD", "1", 1); /* the job runs alone, not as a rank */
   int in = open("/dev/null", O_RDONLY);
   if (in >= 0) dup2(in, STDIN_FILENO);
   dup2(out_w, STDOUT_FILENO);
@@ -67,11 +81,32 @@ static void child_exec(batch *b, run *r, int out_w, int log_fd, pid_t parent) {
   _exit(127);
 }
 
-static void start_job(batch *b, run *r) {
+/* Start the job's process, its stderr into log_fd (the caller closes it),
+ * its stdout into a pipe read without blocking. */
+static int spawn(batch *b, run *r, int log_fd, char *err, size_t n) {
+  int pipefd[2];
+  if (pipe2(pipefd, O_CLOEXEC) != 0) {
+    snprintf(err, n, "pipe: %s", strerror(errno));
+    return -1;
+  }
+  pid_t parent = getpid();
+  fflush(NULL);
+  r->pid = fork();
+  if (r->pid == 0) child_exec(b, r, pipefd[1], log_fd, parent);
+  close(pipefd[1]);
+  if (r->pid < 0) {
+    snprintf(err, n, "fork: %s", strerror(errno));
+    close(pipefd[0]);
+    r->pid = 0;
+    return -1;
+  }
+  r->out_fd = pipefd[0];
+  fcntl(r->out_fd, F_SETFL, fcntl(r->out_fd, F_GETFL) | O_NONBLOCK);
+  return 0;
+}
+
+static void log_paths(const batch *b, run *r) {
   cli_job *j = r->job;
-  char ckpt[PATH_MAX + 8];
-  snprintf(ckpt, sizeof ckpt, "%s.ckpt", j->out);
-  r->resumed_ckpt = b->a->resume && access(ckpt, R_OK) == 0;
   if (b->a->report) {
     snprintf(r->log, sizeof r->log, "%s/logs/%s.log", b->a->report, j->name);
     snprintf(r->log_shown, sizeof r->log_shown, "logs/%s.log", j->name);
@@ -79,12 +114,45 @@ static void start_job(batch *b, run *r) {
     snprintf(r->log, sizeof r->log, "%s.log", j->out);
     snprintf(r->log_shown, sizeof r->log_shown, "%s.log", j->out_given);
   }
+}
+
+static int free_rank(const batch *b) {
+  for (int w = 1; w < rc_dist_size(b->dist); w++)
+    if (b->rank_run[w] == RANK_FREE) return w;
+  return -1;
+}
+
+/* Under mpirun: hand the job to a free rank, which appends to its log. */
+static int hand_out(batch *b, run *r, char *err, size_t n) {
+  int w = free_rank(b);
+  if (w < 0) {
+    snprintf(err, n, "no rank is left to run it (every other rank was lost)");
+    return -1;
+  }
+  int64_t msg[4] = {r - b->runs, r->job->index, r->resumed_ckpt, b->threads_per_job};
+  rc_err e = {0};
+  if (rc_dist_send(b->dist, w, TAG_JOB, msg, 4, &e) != RC_OK) {
+    b->rank_run[w] = RANK_LOST;
+    snprintf(err, n, "cannot hand the job to rank %d (%s): %s", w, host_of(b, w), e.msg);
+    return -1;
+  }
+  b->rank_run[w] = (int)(r - b->runs);
+  r->rank = w;
+  return 0;
+}
+
+static void start_job(batch *b, run *r) {
+  cli_job *j = r->job;
+  char ckpt[PATH_MAX + 8];
+  snprintf(ckpt, sizeof ckpt, "%s.ckpt", j->out);
+  r->resumed_ckpt = b->a->resume && access(ckpt, R_OK) == 0;
+  log_paths(b, r);
   r->started = cli_batch_now();
   r->state = R_RUNNING;
   r->eta = -1;
   r->progress[0] = '\0';
   char err[512];
-  int pipefd[2] = {-1, -1}, log_fd = -1;
+  int log_fd = -1;
   if (cli_make_parents(j->out) != 0) {
     snprintf(err, sizeof err, "cannot create the folder of %s: %s", j->out_given, strerror(errno));
     goto fail;
@@ -95,27 +163,20 @@ static void start_job(batch *b, run *r) {
     goto fail;
   }
   if (r->resumed_ckpt) dprintf(log_fd, "--- recoup batch: resuming from %s ---\n", ckpt);
-  if (pipe2(pipefd, O_CLOEXEC) != 0) {
-    snprintf(err, sizeof err, "pipe: %s", strerror(errno));
-    goto fail;
+  if (over_ranks(b)) {
+    close(log_fd);
+    log_fd = -1;
+    if (hand_out(b, r, err, sizeof err) != 0) goto fail;
+    cli_batch_event(b, "started %s on rank %d (%s)%s (log: %s)", j->name, r->rank, host_of(b, r->rank),
+                    r->resumed_ckpt ? ", resuming from its checkpoint" : "", b->a->report ? r->log : r->log_shown);
+    return;
   }
-  pid_t parent = getpid();
-  fflush(NULL);
-  r->pid = fork();
-  if (r->pid < 0) {
-    snprintf(err, sizeof err, "fork: %s", strerror(errno));
-    goto fail;
-  }
-  if (r->pid == 0) child_exec(b, r, pipefd[1], log_fd, parent);
-  close(pipefd[1]);
+  if (spawn(b, r, log_fd, err, sizeof err) != 0) goto fail;
   close(log_fd);
-  r->out_fd = pipefd[0];
-  fcntl(r->out_fd, F_SETFL, fcntl(r->out_fd, F_GETFL) | O_NONBLOCK);
   cli_batch_event(b, "started %s%s (log: %s)", j->name, r->resumed_ckpt ? ", resuming from its checkpoint" : "",
         b->a->report ? r->log : r->log_shown);
   return;
 fail:
-  if (pipefd[0] >= 0) close(pipefd[0]), close(pipefd[1]);
   if (log_fd >= 0) close(log_fd);
   r->state = R_DONE;
   r->pid = 0;
@@ -245,7 +306,54 @@ static void finish_job(batch *b, run *r, int wstatus) {
   cli_batch_write_reports(b);
 }
 
+/* Under mpirun: the results of jobs the ranks finished. A rank that cannot
+ * be heard from any more fails its job and gets no other. */
+static void collect_ranks(batch *b) {
+  int from;
+  while (rc_dist_probe(b->dist, TAG_DONE, &from)) {
+    int64_t done[3];
+    rc_err e = {0};
+    char *text = NULL;
+    size_t got = 0;
+    rc_status s = rc_dist_recv(b->dist, from, TAG_DONE, done, 3, &e);
+    if (s == RC_OK && (done[2] < 0 || done[2] > 2 * (int64_t)STDOUT_MAX))
+      s = rc__fail(&e, RC_ERR_INVALID, "it announced %lld bytes of results", (long long)done[2]);
+    if (s == RC_OK && !(text = rc__malloc((size_t)done[2] + 1))) s = rc__fail(&e, RC_ERR_NOMEM, "out of memory");
+    if (s == RC_OK) s = rc_dist_recv_bytes(b->dist, from, TAG_OUT, text, (size_t)done[2], &got, &e);
+    int i = b->rank_run[from];
+    if (i < 0) { /* not busy with a job of ours: nothing to finish */
+      rc__free(text);
+      continue;
+    }
+    run *r = &b->runs[i];
+    b->rank_run[from] = RANK_FREE;
+    if (s == RC_OK && done[0] != i) s = rc__fail(&e, RC_ERR_INVALID, "it answered for another job");
+    if (s != RC_OK) {
+      rc__free(text);
+      b->rank_run[from] = RANK_LOST;
+      r->state = R_DONE;
+      r->wall = cli_batch_now() - r->started;
+      b->n_done++;
+      char err[512];
+      snprintf(err, sizeof err, "lost rank %d (%s): %s", from, host_of(b, from), e.msg);
+      cli_batch_set_record(b, r, CLI_JOB_FAILED, err, NULL);
+      cli_batch_event(b, "%s failed: %s", r->job->name, err);
+      cli_batch_write_reports(b);
+      continue;
+    }
+    text[got] = '\0';
+    rc__free(r->out_text);
+    r->out_text = text;
+    r->out_n = got;
+    finish_job(b, r, (int)done[1]);
+  }
+}
+
 static void poll_jobs(batch *b) {
+  if (over_ranks(b)) {
+    collect_ranks(b);
+    return;
+  }
   for (int i = 0; i < b->n_runs; i++)
     if (b->runs[i].state == R_RUNNING && b->runs[i].pid > 0) drain(&b->runs[i]);
   for (;;) {
@@ -263,6 +371,13 @@ static int count_state(const batch *b, run_state s) {
   return n;
 }
 
+/* One more job may start now: below --jobs here; under mpirun, a rank is
+ * free (or every rank is lost, so that the pending jobs fail, not wait). */
+static int can_start(const batch *b) {
+  if (!over_ranks(b)) return count_state(b, R_RUNNING) < b->a->jobs;
+  return free_rank(b) > 0 || count_state(b, R_RUNNING) == 0;
+}
+
 void cli_batch_run_all(batch *b) {
   int next = 0, stopping = 0;
   while (count_state(b, R_PENDING) + count_state(b, R_RUNNING) > 0) {
@@ -271,8 +386,8 @@ void cli_batch_run_all(batch *b) {
       cli_batch_event(b, "stopping: asking %d running job%s to checkpoint and stop", count_state(b, R_RUNNING),
             count_state(b, R_RUNNING) == 1 ? "" : "s");
       for (int i = 0; i < b->n_runs; i++)
-        if (b->runs[i].state == R_RUNNING && b->runs[i].pid > 0) {
-          kill(b->runs[i].pid, SIGTERM);
+        if (b->runs[i].state == R_RUNNING && (b->runs[i].pid > 0 || b->runs[i].rank > 0)) {
+          if (b->runs[i].pid > 0) kill(b->runs[i].pid, SIGTERM); /* the ranks' jobs: the launcher signals the ranks */
           b->runs[i].term_sent = 1;
         }
     }
@@ -283,7 +398,7 @@ void cli_batch_run_all(batch *b) {
           cli_batch_set_record(b, &b->runs[i], CLI_JOB_NOT_RUN, "batch stopped before this job started", NULL);
         }
     }
-    while (!stopping && count_state(b, R_RUNNING) < b->a->jobs && next < b->n_runs) {
+    while (!stopping && can_start(b) && next < b->n_runs) {
       run *r = &b->runs[next++];
       if (r->state == R_PENDING) start_job(b, r);
     }
@@ -297,4 +412,106 @@ void cli_batch_run_all(batch *b) {
     nanosleep(&ts, NULL);
   }
   cli_batch_clear_status(b);
+}
+
+/* ---- Under mpirun: ranks 1..N-1 run the jobs rank 0 hands out ------------------------------ */
+
+/* Run one job here as the pool runs any job (its own process, stdout
+ * captured, stderr appended to the log rank 0 opened), passing a stop request
+ * on; returns its wait status. */
+static int run_here(batch *b, run *r) {
+  log_paths(b, r);
+  char err[512];
+  int log_fd = open(r->log, O_WRONLY | O_CREAT | O_APPEND | O_CLOEXEC, 0644);
+  if (log_fd < 0) snprintf(err, sizeof err, "%s: %s", r->log, strerror(errno));
+  int started = log_fd >= 0 && spawn(b, r, log_fd, err, sizeof err) == 0;
+  if (log_fd >= 0) {
+    if (!started) dprintf(log_fd, "recoup: error: %s\n", err); /* the last line, which rank 0 reports */
+    close(log_fd);
+  }
+  if (!started) {
+    cli_batch_event(b, "rank %d (%s) cannot start %s: %s", rc_dist_rank(b->dist), rc_dist_host(b->dist), r->job->name,
+                    err);
+    return 127 << 8; /* as a process that could not start */
+  }
+  int ws = 0;
+  for (;;) {
+    drain(r);
+    pid_t p = waitpid(r->pid, &ws, WNOHANG);
+    if (p == r->pid) break;
+    if (p < 0 && errno != EINTR) {
+      ws = 127 << 8;
+      break;
+    }
+    if (cli_stop_requested && !r->term_sent) {
+      kill(r->pid, SIGTERM);
+      r->term_sent = 1;
+    }
+    struct timespec ts = {0, 50 * 1000 * 1000};
+    nanosleep(&ts, NULL);
+  }
+  drain(r);
+  close(r->out_fd);
+  return ws;
+}
+
+/* Run the job a TAG_JOB message names and send rank 0 its outcome. */
+static rc_status serve_job(batch *b, const int64_t msg[4], rc_err *e) {
+  if (msg[1] < 0 || msg[1] >= b->m.n_jobs)
+    return rc__fail(e, RC_ERR_INVALID, "rank 0 named job %lld, which the manifest does not have", (long long)msg[1]);
+  run r;
+  memset(&r, 0, sizeof r);
+  r.job = &b->m.jobs[msg[1]];
+  r.out_fd = -1;
+  r.resumed_ckpt = (int)msg[2];
+  long cores = sysconf(_SC_NPROCESSORS_ONLN);
+  b->threads_per_job = msg[3] > 0 ? (int)msg[3] : cores > 0 ? (int)cores : 1; /* 0: this machine's cores */
+  int64_t done[3] = {msg[0], run_here(b, &r), 0};
+  done[2] = (int64_t)r.out_n;
+  rc_status s = rc_dist_send(b->dist, 0, TAG_DONE, done, 3, e);
+  if (s == RC_OK) s = rc_dist_send_bytes(b->dist, 0, TAG_OUT, r.out_text ? r.out_text : "", r.out_n, e);
+  rc__free(r.out_text);
+  return s;
+}
+
+int cli_batch_serve(batch_args *a, rc_dist *d) {
+  batch b;
+  memset(&b, 0, sizeof b);
+  b.a = a;
+  b.dist = d;
+  rc_err e = {0};
+  int loaded = 0, rc = RC_EXIT_OK;
+  cli_catch_stop_signals();
+  for (;;) {
+    int64_t msg[4];
+    if (rc_dist_recv(d, 0, TAG_JOB, msg, 4, &e) != RC_OK) {
+      rc = cli_fail(&e);
+      break;
+    }
+    if (msg[0] < 0) break;
+    /* Read the manifest at the first job, so that one rank 0 refused alone
+     * reports its error once. */
+    if (!loaded && cli_manifest_load(&b.m, a->manifest, a->allow_outside, &e) != RC_OK) {
+      rc = cli_fail(&e);
+      break;
+    }
+    loaded = 1;
+    if (serve_job(&b, msg, &e) != RC_OK) {
+      rc = cli_fail(&e);
+      break;
+    }
+  }
+  if (loaded) cli_manifest_free(&b.m);
+  if (rc == RC_EXIT_OK) cli_dist_agreed_exit(); /* whatever rank 0 concludes, this rank did its part */
+  return rc;
+}
+
+void cli_batch_release_ranks(batch *b) {
+  int64_t stop[4] = {-1, -1, 0, 0};
+  for (int w = 1; w < rc_dist_size(b->dist); w++) {
+    rc_err e = {0};
+    if (b->rank_run && b->rank_run[w] == RANK_LOST) continue;
+    if (rc_dist_send(b->dist, w, TAG_JOB, stop, 4, &e) != RC_OK)
+      fprintf(stderr, "recoup: warning: cannot tell rank %d to stop: %s\n", w, e.msg);
+  }
 }

@@ -48,6 +48,12 @@ static void usage(FILE *f) {
       "any 'recoup distill' option without dashes, '-' written '_' (\"val_split\").\n"
       "Relative paths are relative to the manifest's folder.\n"
       "\n"
+      "Under 'mpirun -np N' (or srun) the batch is a work queue: rank 0 reads the\n"
+      "manifest, keeps the state and reports, and hands each job to the next free\n"
+      "rank; ranks 1..N-1 run one job at a time each, with --threads T per job (0:\n"
+      "that machine's cores); --jobs is not used. Every file must be visible to\n"
+      "every rank (a shared file system).\n"
+      "\n"
       "SIGINT or SIGTERM stops the batch: running jobs are sent SIGTERM, write a\n"
       "checkpoint and stop; 'recoup batch --resume' continues them. Exit status is 0\n"
       "only when every job succeeded.\n"
@@ -214,21 +220,52 @@ static rc_status check_outputs(const batch *b, rc_err *e) {
   return s;
 }
 
-static int run_batch(batch_args *a) {
+/* Under mpirun: ranks 1..N-1 free to take jobs. */
+static rc_status prepare_ranks(batch *b, rc_err *e) {
+  int n = rc_dist_size(b->dist);
+  b->rank_run = rc__malloc(sizeof *b->rank_run * (size_t)n);
+  if (!b->rank_run) return rc__fail(e, RC_ERR_NOMEM, "out of memory");
+  for (int w = 0; w < n; w++) b->rank_run[w] = RANK_FREE;
+  b->rank_run[0] = RANK_LOST; /* rank 0 coordinates and runs no job */
+  return RC_OK;
+}
+
+static void announce(batch *b) {
+  const batch_args *a = b->a;
+  const char *in_shard = a->shard_n > 1 ? " in this shard" : "";
+  if (b->rank_run) {
+    int n = rc_dist_size(b->dist) - 1;
+    char t[48] = "this machine's cores";
+    if (a->threads > 0) snprintf(t, sizeof t, "%ld thread%s", a->threads, a->threads == 1 ? "" : "s");
+    cli_batch_event(b, "%d job%s%s over %d rank%s, one at a time each, %s per job", b->n_runs,
+                    b->n_runs == 1 ? "" : "s", in_shard, n, n == 1 ? "" : "s", t);
+  } else {
+    cli_batch_event(b, "%d job%s%s, %ld at once, %d thread%s each", b->n_runs, b->n_runs == 1 ? "" : "s", in_shard,
+                    a->jobs, b->threads_per_job, b->threads_per_job == 1 ? "" : "s");
+  }
+}
+
+static int run_batch(batch_args *a, char *hosts) {
   batch b;
   memset(&b, 0, sizeof b);
   b.a = a;
   b.tty = cli_isatty_stderr();
   b.t0 = cli_batch_now();
+  b.dist = cli_dist();
+  b.hosts = hosts;
   rc_err e = {0};
   int rc = RC_EXIT_FAIL;
-  if (cli_manifest_load(&b.m, a->manifest, a->allow_outside, &e) != RC_OK) return cli_fail(&e);
+  if (cli_manifest_load(&b.m, a->manifest, a->allow_outside, &e) != RC_OK) goto out;
+  if (hosts && prepare_ranks(&b, &e) != RC_OK) goto out;
   long threads = a->threads;
   if (threads <= 0) {
     long c = sysconf(_SC_NPROCESSORS_ONLN);
     threads = c > 0 ? c : 1;
   }
-  b.threads_per_job = threads / a->jobs > 0 ? (int)(threads / a->jobs) : 1;
+  /* Under mpirun each rank runs one job: --threads is per job; 0 lets each
+   * rank use its own machine's cores. */
+  if (b.rank_run) b.threads_per_job = (int)a->threads;
+  else b.threads_per_job = threads / a->jobs > 0 ? (int)(threads / a->jobs) : 1;
   if (a->report) {
     if (cli_report_prepare(a->report, 1, &e) != RC_OK) goto out;
     snprintf(b.state_path, sizeof b.state_path, "%s/state.json", a->report);
@@ -239,8 +276,7 @@ static int run_batch(batch_args *a) {
     snprintf(b.state_path, sizeof b.state_path, "%s.state.json", a->manifest);
   }
   if (check_outputs(&b, &e) != RC_OK || cli_batch_lock_state(&b, &e) != RC_OK || cli_batch_load_state(&b, &e) != RC_OK || plan_runs(&b, &e) != RC_OK) goto out;
-  cli_batch_event(&b, "%d job%s%s, %ld at once, %d thread%s each", b.n_runs, b.n_runs == 1 ? "" : "s",
-        a->shard_n > 1 ? " in this shard" : "", a->jobs, b.threads_per_job, b.threads_per_job == 1 ? "" : "s");
+  announce(&b);
   cli_catch_stop_signals();
   cli_batch_run_all(&b);
   cli_batch_write_reports(&b);
@@ -253,6 +289,11 @@ static int run_batch(batch_args *a) {
   if (cli_stop_requested) fprintf(stderr, "recoup batch: stopped by a signal; run again with --resume to continue\n");
 out:
   if (e.code) cli_fail(&e);
+  if (hosts) {
+    cli_batch_release_ranks(&b);
+    cli_dist_agreed_exit(); /* every rank was told the batch is over: no need to abort them */
+  }
+  rc__free(b.rank_run);
   for (int i = 0; i < b.n_runs; i++) {
     cJSON_Delete(b.runs[i].record);
     rc__free(b.runs[i].out_text);
@@ -263,16 +304,33 @@ out:
   return rc;
 }
 
+/* Under mpirun rank 0 coordinates and ranks 1..N-1 run the jobs it hands
+ * out; one process runs its own pool. */
+static int run_on_ranks(batch_args *a) {
+  rc_dist *d = cli_dist();
+  if (rc_dist_size(d) <= 1) return run_batch(a, NULL);
+  rc_err e = {0};
+  char *hosts = rc__calloc((size_t)rc_dist_size(d), RC_DIST_MAX_HOST);
+  if (!hosts) rc__fail(&e, RC_ERR_NOMEM, "out of memory"); /* the job aborts: the others wait in rc_dist_hosts */
+  if (!hosts || rc_dist_hosts(d, hosts, &e) != RC_OK) {
+    rc__free(hosts);
+    return cli_fail(&e);
+  }
+  int rc = rc_dist_rank(d) == 0 ? run_batch(a, hosts) : cli_batch_serve(a, d);
+  rc__free(hosts);
+  return rc;
+}
+
+/* Merging is one process's work: under mpirun rank 0 does it alone. */
+static int merge_on_rank0(batch_args *a) {
+  if (rc_dist_size(cli_dist()) <= 1) return cli_batch_merge_reports(a);
+  cli_dist_agreed_exit();
+  return rc_dist_rank(cli_dist()) == 0 ? cli_batch_merge_reports(a) : RC_EXIT_OK;
+}
+
 int rc_cmd_batch(int argc, char **argv) {
   batch_args a;
   int pr = parse_args(&a, argc, argv);
   if (pr) return pr < 0 ? RC_EXIT_OK : pr;
-  if (rc_dist_size(cli_dist()) > 1) {
-    /* Every rank would run every job and write the same outputs. */
-    if (rc_dist_rank(cli_dist()) == 0)
-      fprintf(stderr, "recoup: error: recoup batch does not run under mpirun yet: start it as one process "
-                      "(--jobs N), or one per machine with --shard K/N\n");
-    return RC_EXIT_FAIL;
-  }
-  return a.merge ? cli_batch_merge_reports(&a) : run_batch(&a);
+  return a.merge ? merge_on_rank0(&a) : run_on_ranks(&a);
 }
