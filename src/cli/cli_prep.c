@@ -94,8 +94,22 @@ void cli_prep_norm(rc_data_norm *norm, float *mean, float *std, const cli_data_o
   norm->n_mean = use && !o->given_mean ? o->rec_n_mean : o->n_mean;
   norm->std = std;
   norm->n_std = use && !o->given_std ? o->rec_n_std : o->n_std;
-  if (use && !(o->given_scale && o->given_mean && o->given_std))
-    fprintf(stderr, "note: %s: using the preprocessing recorded in %s:%s%s\n", file, o->rec_model, o->rec_text,
+  /* Say only what the record supplies, not what the command line gave. */
+  char used[256] = "", num[CLI_MAX_CHANNELS * 20 + 16];
+  if (use && !o->given_scale) {
+    snprintf(num, sizeof num, "%.9g", o->rec_scale);
+    add_text(used, sizeof used, " --%s %s", "scale", num);
+  }
+  if (use && !o->given_mean && o->rec_n_mean) {
+    floats_text(num, sizeof num, o->rec_mean, o->rec_n_mean);
+    add_text(used, sizeof used, " --%s %s", "mean", num);
+  }
+  if (use && !o->given_std && o->rec_n_std) {
+    floats_text(num, sizeof num, o->rec_std, o->rec_n_std);
+    add_text(used, sizeof used, " --%s %s", "std", num);
+  }
+  if (*used)
+    fprintf(stderr, "note: %s: using the preprocessing recorded in %s:%s%s\n", file, o->rec_model, used,
             given ? " (where the command line gives none)" : "");
   else if (o->recorded && !integer && !given)
     fprintf(stderr,
