@@ -2,6 +2,8 @@
 #ifndef RECOUP_STATUS_H
 #define RECOUP_STATUS_H
 
+#include "recoup/export.h"
+
 /* One list drives the enum and rc_strerror(); values are negative so that
  * functions may return a count or an index on success. */
 #define RC_STATUS_LIST(X)                                                   \
@@ -23,7 +25,7 @@ typedef enum rc_status {
 } rc_status;
 
 /* Short text for a status code; never NULL. */
-const char *rc_strerror(int status);
+RC_API const char *rc_strerror(int status);
 
 /* An error: the code plus one line naming the file, node or field at fault. */
 typedef struct rc_err {

@@ -133,7 +133,7 @@ static int parse_args(quantize_args *a, int argc, char **argv) {
       {"help", no_argument, NULL, 'h'},                    {NULL, 0, NULL, 0}};
   memset(a, 0, sizeof *a);
   cli_data_opts_init(&a->data);
-  rc_quant_config_defaults(&a->cfg);
+  rc_quant_config_init(&a->cfg);
   int pr = cli_parse_options(argc, argv, longopts, "quantize", apply_option_ctx, a, usage);
   if (pr) return pr;
   if (optind != argc - 1) return cli_usage_error("quantize", "expects exactly one DENSE.onnx");
