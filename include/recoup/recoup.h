@@ -62,5 +62,6 @@
 #include "recoup/quantize.h"
 #include "recoup/status.h"
 #include "recoup/tensor.h"
+#include "recoup/util.h"
 
 #endif

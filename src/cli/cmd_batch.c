@@ -23,10 +23,8 @@
 #include "cli/cli.h"
 #include "cli/manifest.h"
 #include "cli/report.h"
-#include "core/path.h"
+#include "recoup/util.h"
 #include "cli/sha256.h"
-#include "core/alloc.h"
-#include "core/file.h"
 
 #define STDOUT_MAX (4 << 20) /* a distill --json result is a few kilobytes */
 
@@ -248,7 +246,7 @@ static void draw_status(batch *b) {
   b->last_draw = t;
 }
 
-static void event(batch *b, const char *fmt, ...) RC_PRINTF(2, 3);
+static void event(batch *b, const char *fmt, ...) CLI_PRINTF(2, 3);
 static void event(batch *b, const char *fmt, ...) {
   clear_status(b);
   char raw[2048], msg[4096];
@@ -346,7 +344,7 @@ static void job_fingerprint(const cli_manifest *m, const cli_job *j, char hex[65
 static rc_status load_state(batch *b, rc_err *e) {
   FILE *f = fopen(b->state_path, "rb");
   if (!f) {
-    if (errno != ENOENT) return rc__fail(e, RC_ERR_IO, "%s: %s", b->state_path, strerror(errno));
+    if (errno != ENOENT) return rc_err_set(e, RC_ERR_IO, "%s: %s", b->state_path, strerror(errno));
     b->state = cJSON_CreateObject();
     cJSON_AddNumberToObject(b->state, "version", 1);
     cJSON_AddObjectToObject(b->state, "jobs");
@@ -355,26 +353,26 @@ static rc_status load_state(batch *b, rc_err *e) {
   fseek(f, 0, SEEK_END);
   long n = ftell(f);
   rewind(f);
-  char *text = n >= 0 && n < (64L << 20) ? rc__malloc((size_t)n + 1) : NULL;
+  char *text = n >= 0 && n < (64L << 20) ? malloc((size_t)n + 1) : NULL;
   size_t got = text ? fread(text, 1, (size_t)n, f) : 0;
   fclose(f);
   if (!text || got != (size_t)n) {
-    rc__free(text);
-    return rc__fail(e, RC_ERR_IO, "%s: cannot read", b->state_path);
+    free(text);
+    return rc_err_set(e, RC_ERR_IO, "%s: cannot read", b->state_path);
   }
   text[n] = '\0';
   b->state = cJSON_Parse(text);
-  rc__free(text);
+  free(text);
   if (!b->state || !cJSON_IsObject(cJSON_GetObjectItemCaseSensitive(b->state, "jobs")))
-    return rc__fail(e, RC_ERR_FORMAT, "%s: not a recoup batch state file (remove it to start afresh)",
+    return rc_err_set(e, RC_ERR_FORMAT, "%s: not a recoup batch state file (remove it to start afresh)",
                     b->state_path);
   return RC_OK;
 }
 
 static rc_status save_state(batch *b, rc_err *e) {
   char *text = cJSON_Print(b->state);
-  if (!text) return rc__fail(e, RC_ERR_NOMEM, "out of memory");
-  rc_status s = rc__write_atomic(b->state_path, text, strlen(text), e);
+  if (!text) return rc_err_set(e, RC_ERR_NOMEM, "out of memory");
+  rc_status s = rc_file_write_atomic(b->state_path, text, strlen(text), e);
   free(text);
   return s;
 }
@@ -383,10 +381,10 @@ static rc_status lock_state(batch *b, rc_err *e) {
   char path[PATH_MAX + 8];
   snprintf(path, sizeof path, "%s.lock", b->state_path);
   int fd = open(path, O_RDWR | O_CREAT | O_CLOEXEC, 0644);
-  if (fd < 0) return rc__fail(e, RC_ERR_IO, "%s: %s", path, strerror(errno));
+  if (fd < 0) return rc_err_set(e, RC_ERR_IO, "%s: %s", path, strerror(errno));
   if (flock(fd, LOCK_EX | LOCK_NB) != 0) {
     close(fd);
-    return rc__fail(e, RC_ERR_IO, "%s is in use by another recoup batch (one batch per report folder)",
+    return rc_err_set(e, RC_ERR_IO, "%s is in use by another recoup batch (one batch per report folder)",
                     b->state_path);
   }
   return RC_OK; /* held until exit */
@@ -543,7 +541,7 @@ static void drain(run *r) {
     if (r->out_n + (size_t)n + 1 > r->out_cap && r->out_n < STDOUT_MAX) {
       size_t cap = r->out_cap ? r->out_cap * 2 : 16384;
       while (cap < r->out_n + (size_t)n + 1) cap *= 2;
-      char *p = rc__realloc(r->out_text, cap);
+      char *p = realloc(r->out_text, cap);
       if (!p) return;
       r->out_text = p;
       r->out_cap = cap;
@@ -763,8 +761,8 @@ static void run_all(batch *b) {
 /* Select this shard's jobs; with --resume, take the records of finished jobs
  * whose outputs are unchanged. */
 static rc_status plan_runs(batch *b, rc_err *e) {
-  b->runs = rc__calloc((size_t)b->m.n_jobs, sizeof *b->runs);
-  if (!b->runs) return rc__fail(e, RC_ERR_NOMEM, "out of memory");
+  b->runs = calloc((size_t)b->m.n_jobs, sizeof *b->runs);
+  if (!b->runs) return rc_err_set(e, RC_ERR_NOMEM, "out of memory");
   for (int i = 0; i < b->m.n_jobs; i++) {
     if (i % b->a->shard_n != b->a->shard_k - 1) continue;
     run *r = &b->runs[b->n_runs++];
@@ -790,10 +788,10 @@ static rc_status plan_runs(batch *b, rc_err *e) {
 static rc_status check_outputs(const batch *b, rc_err *e) {
   int n = 1;
   for (int i = 0; i < b->m.n_jobs; i++) n += b->m.jobs[i].n_inputs + 1;
-  const char **inputs = rc__calloc((size_t)n, sizeof *inputs);
-  const char **names = rc__calloc((size_t)b->m.n_jobs + 1, sizeof *names);
+  const char **inputs = calloc((size_t)n, sizeof *inputs);
+  const char **names = calloc((size_t)b->m.n_jobs + 1, sizeof *names);
   rc_status s = RC_OK;
-  if (!inputs || !names) s = rc__fail(e, RC_ERR_NOMEM, "out of memory");
+  if (!inputs || !names) s = rc_err_set(e, RC_ERR_NOMEM, "out of memory");
   if (s == RC_OK) {
     n = 0;
     inputs[n++] = b->m.path;
@@ -803,10 +801,10 @@ static rc_status check_outputs(const batch *b, rc_err *e) {
       inputs[n++] = b->m.jobs[i].out; /* an output, but a report file must not replace it either */
     }
     if (b->a->report) s = cli_report_refuse_inputs(b->a->report, names, b->m.n_jobs, inputs, NULL, n, e);
-    else s = rc__path_refuse_inputs("state file", b->state_path, inputs, NULL, n, e);
+    else s = rc_path_refuse_inputs("state file", b->state_path, inputs, NULL, n, e);
   }
-  rc__free(inputs);
-  rc__free(names);
+  free(inputs);
+  free(names);
   return s;
 }
 
@@ -851,9 +849,9 @@ out:
   if (e.code) cli_fail(&e);
   for (int i = 0; i < b.n_runs; i++) {
     cJSON_Delete(b.runs[i].record);
-    rc__free(b.runs[i].out_text);
+    free(b.runs[i].out_text);
   }
-  rc__free(b.runs);
+  free(b.runs);
   cJSON_Delete(b.state);
   cli_manifest_free(&b.m);
   return rc;
@@ -870,15 +868,15 @@ static int by_index(const void *x, const void *y) {
 
 static int merge_reports(batch_args *a) {
   rc_err e = {0};
-  cJSON **reports = rc__calloc((size_t)a->n_merge, sizeof *reports);
+  cJSON **reports = calloc((size_t)a->n_merge, sizeof *reports);
   cJSON **recs = NULL;
   int n = 0, rc = RC_EXIT_FAIL, ok = 0;
   double total = 0;
   const char *manifest_hash = NULL;
   if (!reports) return cli_fail(&e);
   for (int i = 0; i < a->n_merge; i++)
-    if (rc__path_same_file(a->report, a->merge_dirs[i])) {
-      rc__fail(&e, RC_ERR_INVALID, "--report %s is the report folder %s being merged: refusing to overwrite an input",
+    if (rc_path_same_file(a->report, a->merge_dirs[i])) {
+      rc_err_set(&e, RC_ERR_INVALID, "--report %s is the report folder %s being merged: refusing to overwrite an input",
                a->report, a->merge_dirs[i]);
       goto out;
     }
@@ -887,11 +885,11 @@ static int merge_reports(batch_args *a) {
     const cJSON *meta = cJSON_GetObjectItemCaseSensitive(reports[i], "meta");
     const cJSON *h = cJSON_GetObjectItemCaseSensitive(meta, "manifest_sha256");
     if (!cJSON_IsString(h)) {
-      rc__fail(&e, RC_ERR_FORMAT, "%s/report.json: no manifest_sha256 in \"meta\"", a->merge_dirs[i]);
+      rc_err_set(&e, RC_ERR_FORMAT, "%s/report.json: no manifest_sha256 in \"meta\"", a->merge_dirs[i]);
       goto out;
     }
     if (manifest_hash && strcmp(manifest_hash, h->valuestring)) {
-      rc__fail(&e, RC_ERR_INVALID, "%s/report.json comes from another manifest than %s/report.json",
+      rc_err_set(&e, RC_ERR_INVALID, "%s/report.json comes from another manifest than %s/report.json",
                a->merge_dirs[i], a->merge_dirs[0]);
       goto out;
     }
@@ -899,9 +897,9 @@ static int merge_reports(batch_args *a) {
     total = cJSON_GetObjectItemCaseSensitive(meta, "total_jobs") ? cJSON_GetObjectItemCaseSensitive(meta, "total_jobs")->valuedouble : 0;
     n += cJSON_GetArraySize(cJSON_GetObjectItemCaseSensitive(reports[i], "jobs"));
   }
-  recs = rc__calloc((size_t)n + 1, sizeof *recs);
+  recs = calloc((size_t)n + 1, sizeof *recs);
   if (!recs) {
-    rc__fail(&e, RC_ERR_NOMEM, "out of memory");
+    rc_err_set(&e, RC_ERR_NOMEM, "out of memory");
     goto out;
   }
   int k = 0;
@@ -910,12 +908,12 @@ static int merge_reports(batch_args *a) {
     cJSON_ArrayForEach(r, cJSON_GetObjectItemCaseSensitive(reports[i], "jobs")) {
       const cJSON *name = cJSON_GetObjectItemCaseSensitive(r, "name");
       if (!cJSON_IsString(name) || !cJSON_IsNumber(cJSON_GetObjectItemCaseSensitive(r, "index"))) {
-        rc__fail(&e, RC_ERR_FORMAT, "%s/report.json: a job without name or index", a->merge_dirs[i]);
+        rc_err_set(&e, RC_ERR_FORMAT, "%s/report.json: a job without name or index", a->merge_dirs[i]);
         goto out;
       }
       for (int q = 0; q < k; q++)
         if (!strcmp(cJSON_GetObjectItemCaseSensitive(recs[q], "name")->valuestring, name->valuestring)) {
-          rc__fail(&e, RC_ERR_INVALID, "job '%s' appears in more than one report (%s among them)", name->valuestring,
+          rc_err_set(&e, RC_ERR_INVALID, "job '%s' appears in more than one report (%s among them)", name->valuestring,
                    a->merge_dirs[i]);
           goto out;
         }
@@ -944,8 +942,8 @@ static int merge_reports(batch_args *a) {
 out:
   if (e.code) cli_fail(&e);
   for (int i = 0; i < a->n_merge; i++) cJSON_Delete(reports[i]);
-  rc__free(reports);
-  rc__free(recs);
+  free(reports);
+  free(recs);
   return rc;
 }
 

@@ -17,10 +17,6 @@ rc_status rc__fail(rc_err *e, rc_status code, const char *fmt, ...) RC_PRINTF(3,
 rc_status rc__wrap(rc_err *e, const char *fmt, ...) RC_PRINTF(2, 3);
 void rc__err_clear(rc_err *e);
 
-#define RC_TRY(expr)                 \
-  do {                               \
-    rc_status rc_try_s_ = (expr);    \
-    if (rc_try_s_ != RC_OK) return rc_try_s_; \
-  } while (0)
+/* RC_TRY is in recoup/status.h. */
 
 #endif
