@@ -36,10 +36,7 @@ LEVEL = {
 # cli files that still include library headers from src/, each with what it
 # takes from there. Not to be extended: new cli code uses include/recoup/.
 CLI_PENDING = {
-    "src/cli/cli_data.c": "plans a model to count its classes (rc_model_output gives it)",
-    "src/cli/cli_data.h": "takes an rc_graph (rc_model and rc_model_input would do)",
     "src/cli/cmd_distill.c": "the full training configuration, pairing, selection rules",
-    "src/cli/cmd_eval.c": "plans and runs models itself (rc_eval_run does), .npy/.npz writers",
     "src/cli/cmd_inspect.c": "weights, grids, mask rules, grid ranges, pairing, I/O declarations",
     "src/cli/cmd_quantize.c": "calibration data views, plans, the model editor",
     "src/cli/manifest.c": "loss-term and feature names of the training configuration",

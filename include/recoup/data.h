@@ -65,6 +65,12 @@ RC_API rc_status rc_npz_list_mem(char ***names, int *count, const void *buf, siz
                           const char *name, rc_err *e);
 RC_API void rc_data_names_free(char **names);
 
+/* Write t to path as NumPy .npy (format 1.0), atomically. */
+RC_API rc_status rc_npy_write(const char *path, const rc_tensor *t, rc_err *e);
+/* Write n tensors as members "<name>.npy" of a stored zip (.npz), atomically. */
+RC_API rc_status rc_npz_write(const char *path, const char *const *names, const rc_tensor *tensors, int n,
+                              rc_err *e);
+
 /* ---- Conversion into model input ------------------------------------- */
 
 /* x' = (x * scale - mean[c]) / std[c], c the channel (axis 1 of the array's

@@ -5,7 +5,7 @@
 #include <unistd.h>
 
 #include "cli/cli.h"
-#include "plan/plan.h"
+#include "recoup/model.h"
 
 const char *cli_data_file(const char *arg) {
   const char *eq = strchr(arg, '=');
@@ -35,12 +35,12 @@ int cli_data_option(cli_data_opts *o, const char *cmd, const char *name, const c
 }
 
 /* "NAME=FILE" when NAME is one of the graph's inputs; else the whole text is a path. */
-static int split_named(const rc_graph *g, const char *arg, const char **file) {
+static int split_named(const rc_model_io *ins, int n_inputs, const char *arg, const char **file) {
   const char *eq = strchr(arg, '=');
   *file = arg;
   if (!eq) return -1;
-  for (int i = 0; i < g->n_inputs; i++) {
-    const char *name = g->values[g->inputs[i]].name;
+  for (int i = 0; i < n_inputs; i++) {
+    const char *name = ins[i].name;
     if (strlen(name) == (size_t)(eq - arg) && !strncmp(name, arg, (size_t)(eq - arg))) {
       *file = eq + 1;
       return i;
@@ -49,28 +49,28 @@ static int split_named(const rc_graph *g, const char *arg, const char **file) {
   return -1;
 }
 
-static rc_status prepare_input(rc_array *a, const rc_value *input, const cli_data_opts *o, const char *file,
+static rc_status prepare_input(rc_array *a, const rc_model_io *input, const cli_data_opts *o, const char *file,
                                rc_err *e) {
-  if (input->decl.dtype == RC_DTYPE_FLOAT) {
+  if (input->shape.dtype == RC_DTYPE_FLOAT) {
     rc_data_norm norm = {(float)o->scale, o->mean, o->n_mean, o->std, o->n_std};
     rc_array f = {0};
     rc_status st = rc_data_to_float_array(&f, a, &norm, e);
-    if (st != RC_OK) return rc__wrap(e, "%s", file);
+    if (st != RC_OK) return rc_err_prefix(e, "%s", file);
     rc_array_free(a);
     *a = f;
-  } else if (a->t.dtype != input->decl.dtype) {
-    return rc__fail(e, RC_ERR_SHAPE, "%s: input '%s' takes %s, the file holds %s", file, input->name,
-                    rc_dtype_name(input->decl.dtype), rc_dtype_name(a->t.dtype));
+  } else if (a->t.dtype != input->shape.dtype) {
+    return rc_err_set(e, RC_ERR_SHAPE, "%s: input '%s' takes %s, the file holds %s", file, input->name,
+                    rc_dtype_name(input->shape.dtype), rc_dtype_name(a->t.dtype));
   }
-  if (input->decl.rank >= 1) {
-    rc_tensor sample = {input->decl.dtype, input->decl.rank - 1, {0}, NULL};
+  if (input->shape.rank >= 1) {
+    rc_tensor sample = {input->shape.dtype, input->shape.rank - 1, {0}, NULL};
     int concrete = 1;
-    for (int d = 1; d < input->decl.rank; d++) {
-      sample.dims[d - 1] = input->decl.dims[d];
-      if (input->decl.dims[d] < 0) concrete = 0;
+    for (int d = 1; d < input->shape.rank; d++) {
+      sample.dims[d - 1] = input->shape.dims[d];
+      if (input->shape.dims[d] < 0) concrete = 0;
     }
     if (concrete && rc_data_fit(a, &sample, e) != RC_OK)
-      return rc__wrap(e, "%s: input '%s'", file, input->name);
+      return rc_err_prefix(e, "%s: input '%s'", file, input->name);
   }
   return RC_OK;
 }
@@ -111,7 +111,7 @@ static rc_status read_named_array(rc_array *a, const char *file, const char *nam
       if (len > 4 && !strcmp(names[i] + len - 4, ".npy")) len -= 4;
       o += (size_t)snprintf(list + o, sizeof list - o, "%s'%.*s'", i ? ", " : "", (int)(len > 64 ? 64 : len), names[i]);
     }
-    st = rc__fail(e, RC_ERR_INVALID,
+    st = rc_err_set(e, RC_ERR_INVALID,
                   "%s holds %d arrays (%s) and none is named '%s' like %s: save it under that name, or "
                   "one array per file",
                   file, count, count ? list : "none", name, what);
@@ -120,40 +120,44 @@ static rc_status read_named_array(rc_array *a, const char *file, const char *nam
   return st;
 }
 
-rc_status cli_samples_load(cli_samples *s, const cli_data_opts *o, const rc_graph *g, rc_err *e) {
+rc_status cli_samples_load(cli_samples *s, const cli_data_opts *o, const rc_model *m, rc_err *e) {
   memset(s, 0, sizeof *s);
-  if (g->n_inputs > CLI_MAX_DATA)
-    return rc__fail(e, RC_ERR_UNSUPPORTED, "%s: more than %d inputs", g->path, CLI_MAX_DATA);
-  s->n_inputs = g->n_inputs;
+  int n_inputs = rc_model_n_inputs(m);
+  if (n_inputs > CLI_MAX_DATA)
+    return rc_err_set(e, RC_ERR_UNSUPPORTED, "%s: more than %d inputs", rc_model_path(m), CLI_MAX_DATA);
+  rc_model_io ins[CLI_MAX_DATA];
+  for (int i = 0; i < n_inputs; i++) RC_TRY(rc_model_input(m, i, &ins[i], e));
+  s->n_inputs = n_inputs;
   const char *files[CLI_MAX_DATA] = {0};
   for (int i = 0; i < o->n_data; i++) {
     const char *file;
-    int idx = split_named(g, o->data[i], &file);
+    int idx = split_named(ins, n_inputs, o->data[i], &file);
     if (idx < 0) {
-      if (o->n_data != 1 || g->n_inputs != 1)
-        return rc__fail(e, RC_ERR_INVALID,
+      if (o->n_data != 1 || n_inputs != 1)
+        return rc_err_set(e, RC_ERR_INVALID,
                         "%s has %d inputs: give each as --data NAME=FILE ('%s' names none of them)",
-                        g->path, g->n_inputs, o->data[i]);
+                        rc_model_path(m), n_inputs, o->data[i]);
       idx = 0;
     }
     if (files[idx])
-      return rc__fail(e, RC_ERR_INVALID, "input '%s' is given twice", g->values[g->inputs[idx]].name);
+      return rc_err_set(e, RC_ERR_INVALID, "input '%s' is given twice", ins[idx].name);
     files[idx] = file;
   }
-  for (int i = 0; i < g->n_inputs; i++) {
-    const rc_value *input = &g->values[g->inputs[i]];
-    if (!files[i]) return rc__fail(e, RC_ERR_INVALID, "no --data for input '%s' of %s", input->name, g->path);
+  for (int i = 0; i < n_inputs; i++) {
+    const rc_model_io *input = &ins[i];
+    if (!files[i])
+      return rc_err_set(e, RC_ERR_INVALID, "no --data for input '%s' of %s", input->name, rc_model_path(m));
     RC_TRY(read_named_array(&s->inputs[i], files[i], input->name, "the model's input", e));
     if (s->inputs[i].t.rank < 1)
-      return rc__fail(e, RC_ERR_SHAPE, "%s: a scalar is not a set of samples", files[i]);
+      return rc_err_set(e, RC_ERR_SHAPE, "%s: a scalar is not a set of samples", files[i]);
     RC_TRY(prepare_input(&s->inputs[i], input, o, files[i], e));
     int64_t n = s->inputs[i].t.dims[0];
     if (i && n != s->n)
-      return rc__fail(e, RC_ERR_SHAPE, "%s holds %lld samples, the other inputs %lld", files[i],
+      return rc_err_set(e, RC_ERR_SHAPE, "%s holds %lld samples, the other inputs %lld", files[i],
                       (long long)n, (long long)s->n);
     s->n = n;
   }
-  if (s->n == 0) return rc__fail(e, RC_ERR_INVALID, "%s: no samples", files[0]);
+  if (s->n == 0) return rc_err_set(e, RC_ERR_INVALID, "%s: no samples", files[0]);
   return RC_OK;
 }
 
@@ -162,7 +166,7 @@ rc_status cli_samples_load_labels(cli_samples *s, const char *path, int64_t n_cl
   RC_TRY(read_named_array(&raw, path, "labels", "the labels", e));
   rc_status st = rc_labels_to_int32(&s->labels, &raw, s->n, n_classes, e);
   rc_array_free(&raw);
-  if (st != RC_OK) return rc__wrap(e, "%s", path);
+  if (st != RC_OK) return rc_err_prefix(e, "%s", path);
   s->has_labels = 1;
   return RC_OK;
 }
@@ -188,18 +192,12 @@ rc_status cli_samples_dataset(rc_dataset *d, const cli_samples *s, const int64_t
   return rc_dataset_init(d, ins, s->n_inputs, s->has_labels ? &s->labels.t : NULL, index, n_index, e);
 }
 
-rc_status cli_output_classes(const rc_graph *g, const cli_samples *s, int64_t *k, rc_err *e) {
-  rc_tensor shapes[CLI_MAX_DATA];
-  cli_samples_shapes(s, 1, shapes);
-  rc_plan *p = NULL;
-  RC_TRY(rc_plan_create(&p, g, shapes, NULL, e));
-  const rc_tensor *t = rc_plan_tensor(p, g->outputs[0]);
-  rc_status st = RC_OK;
-  if (t->dtype != RC_DTYPE_FLOAT || t->rank != 2)
-    st = rc__fail(e, RC_ERR_SHAPE, "%s: labels need a float (N, classes) first output; '%s' has rank %d", g->path,
-                  g->values[g->outputs[0]].name, t->rank);
-  else
-    *k = t->dims[1];
-  rc_plan_free(p);
-  return st;
+rc_status cli_output_classes(const rc_model *m, int64_t *k, rc_err *e) {
+  rc_model_io out;
+  RC_TRY(rc_model_output(m, 0, &out, e));
+  if (out.shape.dtype != RC_DTYPE_FLOAT || out.shape.rank != 2 || out.shape.dims[1] < 1)
+    return rc_err_set(e, RC_ERR_SHAPE, "%s: labels need a float (N, classes) first output; '%s' has rank %d",
+                    rc_model_path(m), out.name, out.shape.rank);
+  *k = out.shape.dims[1];
+  return RC_OK;
 }

@@ -719,12 +719,12 @@ static void remove_checkpoints(const char *path) {
 
 /* ---- The command ------------------------------------------------------------- */
 
-static rc_status load_val(cli_samples *val, const distill_args *a, const rc_graph *g, rc_err *e) {
+static rc_status load_val(cli_samples *val, const distill_args *a, const rc_model *m, rc_err *e) {
   cli_data_opts vo = a->data;
   memcpy(vo.data, a->val_data, sizeof vo.data);
   vo.n_data = a->n_val_data;
   vo.labels = NULL;
-  return cli_samples_load(val, &vo, g, e);
+  return cli_samples_load(val, &vo, m, e);
 }
 
 int rc_cmd_distill(int argc, char **argv) {
@@ -746,11 +746,11 @@ int rc_cmd_distill(int argc, char **argv) {
   if (rc_model_load(&teacher, a.teacher, NULL, &e) != RC_OK || rc_model_load(&student, a.student, NULL, &e) != RC_OK)
     goto out;
   if (rc_distill_check_pair(&teacher->graph, &student->graph, &e) != RC_OK) goto out;
-  if (cli_samples_load(&train, &a.data, &student->graph, &e) != RC_OK) goto out;
-  if (a.n_val_data && load_val(&val, &a, &student->graph, &e) != RC_OK) goto out;
+  if (cli_samples_load(&train, &a.data, student, &e) != RC_OK) goto out;
+  if (a.n_val_data && load_val(&val, &a, student, &e) != RC_OK) goto out;
   {
     int64_t k = 0;
-    if (cli_output_classes(&student->graph, &train, &k, &e) != RC_OK) goto out;
+    if (cli_output_classes(student, &k, &e) != RC_OK) goto out;
     if (a.data.labels && cli_samples_load_labels(&train, a.data.labels, k, &e) != RC_OK) goto out;
     if (a.val_labels && cli_samples_load_labels(&val, a.val_labels, k, &e) != RC_OK) goto out;
   }

@@ -352,7 +352,7 @@ int rc_cmd_quantize(int argc, char **argv) {
   comparison cmp;
   if (check_output_path(&a, &e) != RC_OK) goto out;
   if (rc_model_load(&m, a.model, NULL, &e) != RC_OK) goto out;
-  if (cli_samples_load(&s, &a.data, &m->graph, &e) != RC_OK) goto out;
+  if (cli_samples_load(&s, &a.data, m, &e) != RC_OK) goto out;
   if (cli_samples_dataset(&d, &s, NULL, 0, &e) != RC_OK) goto out;
   if (rc_quantize_model(m, &d, &a.cfg, &rep, &e) != RC_OK) goto out;
   if (rc_model_save(m, a.out, NULL, 0, &e) != RC_OK) goto out;
