@@ -17,6 +17,8 @@
  *   recoup/prune.h     magnitude, N:M and channel pruning of a dense model
  *   recoup/quantize.h  post-training quantization into a QDQ model
  *   recoup/status.h    rc_status codes and rc_err, the message of a failure
+ *   recoup/util.h      escaping names for printing, refusing outputs that are
+ *                      inputs, atomic file writes, figures to 4 digits
  *
  * Conventions: functions are named rc_<module>_<verb>; every function that
  * can fail returns an rc_status and fills an rc_err whose message names the

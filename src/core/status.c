@@ -17,62 +17,35 @@ const char *rc_strerror(int status) {
   return "unknown status";
 }
 
-/* One body for rc__fail (the library's name) and rc_err_set (the public one). */
-static rc_status err_vset(rc_err *e, rc_status code, const char *fmt, va_list ap) {
+rc_status rc_err_set(rc_err *e, rc_status code, const char *fmt, ...) {
   if (e) {
     /* Keep the first, most specific message: callers higher up may add context
      * with rc__wrap but never overwrite what went wrong. */
     e->code = code;
+    va_list ap;
+    va_start(ap, fmt);
     char raw[sizeof e->msg];
     vsnprintf(raw, sizeof raw, fmt, ap);
+    va_end(ap);
     /* Messages quote names from files: escape them where they are made. */
     rc__escape(e->msg, sizeof e->msg, raw);
   }
   return code;
 }
 
-static rc_status err_vprefix(rc_err *e, const char *fmt, va_list ap) {
+rc_status rc_err_prefix(rc_err *e, const char *fmt, ...) {
   if (!e) return RC_ERR_INVALID;
   char prefix[256];
+  va_list ap;
+  va_start(ap, fmt);
   char raw[256];
   vsnprintf(raw, sizeof raw, fmt, ap);
+  va_end(ap);
   rc__escape(prefix, sizeof prefix, raw);
   char joined[sizeof e->msg];
   snprintf(joined, sizeof joined, "%s: %s", prefix, e->msg);
   memcpy(e->msg, joined, sizeof e->msg);
   return e->code;
-}
-
-rc_status rc__fail(rc_err *e, rc_status code, const char *fmt, ...) {
-  va_list ap;
-  va_start(ap, fmt);
-  rc_status s = err_vset(e, code, fmt, ap);
-  va_end(ap);
-  return s;
-}
-
-rc_status rc_err_set(rc_err *e, rc_status code, const char *fmt, ...) {
-  va_list ap;
-  va_start(ap, fmt);
-  rc_status s = err_vset(e, code, fmt, ap);
-  va_end(ap);
-  return s;
-}
-
-rc_status rc__wrap(rc_err *e, const char *fmt, ...) {
-  va_list ap;
-  va_start(ap, fmt);
-  rc_status s = err_vprefix(e, fmt, ap);
-  va_end(ap);
-  return s;
-}
-
-rc_status rc_err_prefix(rc_err *e, const char *fmt, ...) {
-  va_list ap;
-  va_start(ap, fmt);
-  rc_status s = err_vprefix(e, fmt, ap);
-  va_end(ap);
-  return s;
 }
 
 void rc__err_clear(rc_err *e) {
