@@ -1,28 +1,29 @@
 /* A program built against the installed library through pkg-config
  * (tests/api.cmake): it distils the bundled pruned garment classifier
  * against its dense original on Fashion-MNIST (Debian's
- * dataset-fashion-mnist) for a few dozen steps and checks, on the 1,000
+ * dataset-fashion-mnist) for a few dozen steps and checks, on the 500
  * first test images, that the saved student reloads and agrees with the
  * teacher more often than the student it started from.
  *
  * Usage: api_example MODELS_DIR FASHION_MNIST_DIR OUT_DIR
  * Exit 0 pass, 1 fail, 77 skip (dataset missing). */
+#include <stdint.h>
 #include <stdio.h>
 #include <string.h>
 
 #include <recoup/recoup.h>
 
-#define N_TRAIN 2000
-#define N_TEST 1000
+#define N_TRAIN 1200
+#define N_TEST 500
 
 static int fail(const char *what, const rc_err *e) {
   fprintf(stderr, "api_example: %s: %s\n", what, e->msg);
   return 1;
 }
 
-/* Images as float (N, 1, 28, 28) scaled to [0, 1], labels as int32. */
-static rc_status load_split(const char *dir, const char *prefix, const rc_model *m, rc_array *x, rc_array *y,
-                            rc_err *e) {
+/* The first n images as float (n, 1, 28, 28) scaled to [0, 1], their labels as int32. */
+static rc_status load_split(const char *dir, const char *prefix, int64_t n, const rc_model *m, rc_array *x,
+                            rc_array *y, rc_err *e) {
   char path[1024];
   rc_array raw = {0}, raw_labels = {0};
   rc_model_io in;
@@ -33,12 +34,14 @@ static rc_status load_split(const char *dir, const char *prefix, const rc_model 
   sample.rank = in.shape.rank - 1;
   for (int i = 0; i < sample.rank; i++) sample.dims[i] = in.shape.dims[i + 1];
   if (s == RC_OK) s = rc_data_fit(&raw, &sample, e);
+  if (s == RC_OK && raw.t.dims[0] > n) raw.t.dims[0] = n; /* a view of the first n */
   rc_data_norm norm;
   rc_data_norm_identity(&norm);
   norm.scale = 1.0f / 255.0f;
   if (s == RC_OK) s = rc_data_to_float_array(x, &raw, &norm, e);
   snprintf(path, sizeof path, "%s/%s-labels-idx1-ubyte.gz", dir, prefix);
   if (s == RC_OK) s = rc_array_read(&raw_labels, path, NULL, 0, e);
+  if (s == RC_OK && raw_labels.t.dims[0] > n) raw_labels.t.dims[0] = n;
   if (s == RC_OK) s = rc_labels_to_int32(y, &raw_labels, x->t.dims[0], 10, e);
   rc_array_free(&raw);
   rc_array_free(&raw_labels);
@@ -83,26 +86,22 @@ int main(int argc, char **argv) {
          (long long)sum.params, (long long)sum.macs, 100.0 * (double)sum.weights_zero / (double)sum.weights_total);
 
   rc_array train_x = {0}, train_y = {0}, test_x = {0}, test_y = {0};
-  if (load_split(argv[2], "train", student, &train_x, &train_y, &e) != RC_OK) return fail("training data", &e);
-  if (load_split(argv[2], "t10k", student, &test_x, &test_y, &e) != RC_OK) return fail("test data", &e);
+  if (load_split(argv[2], "train", N_TRAIN, student, &train_x, &train_y, &e) != RC_OK) return fail("training data", &e);
+  if (load_split(argv[2], "t10k", N_TEST, student, &test_x, &test_y, &e) != RC_OK) return fail("test data", &e);
 
   /* The first N_TEST test images, measured before and after. */
   rc_dataset test;
-  rc_tensor test_in = test_x.t, test_labels = test_y.t;
-  test_in.dims[0] = test_labels.dims[0] = N_TEST;
-  if (rc_dataset_init(&test, &test_in, 1, &test_labels, NULL, 0, &e) != RC_OK) return fail("test view", &e);
+  if (rc_dataset_init(&test, &test_x.t, 1, &test_y.t, NULL, 0, &e) != RC_OK) return fail("test view", &e);
   rc_eval_settings es;
   rc_eval_settings_init(&es);
   rc_eval_result before, after;
   if (rc_eval_run(&before, student, teacher, &test, &es, &e) != RC_OK) return fail("evaluating the student", &e);
 
-  rc_tensor train_in = train_x.t;
-  train_in.dims[0] = N_TRAIN; /* a view of the first N_TRAIN images */
-  rc_distill_data data = {.inputs = &train_in, .n_inputs = 1, .labels = train_y.t.data, .val_split = 0.2};
+  rc_distill_data data = {.inputs = &train_x.t, .n_inputs = 1, .labels = train_y.t.data, .val_split = 0.25};
   rc_distill_settings s;
   rc_distill_settings_init(&s);
-  s.steps = 40;
-  s.batch = 64;
+  s.steps = 30;
+  s.batch = 32;
   int epochs_seen = 0;
   s.progress = on_progress;
   s.user = &epochs_seen;
