@@ -14,3 +14,8 @@ add_test(NAME api_example
          COMMAND sh ${CMAKE_CURRENT_SOURCE_DIR}/api_example.sh ${RECOUP_API_PREFIX} ${CMAKE_CURRENT_SOURCE_DIR}/api_example.c
                  ${PROJECT_SOURCE_DIR}/models /usr/share/datasets/fashion-mnist ${CMAKE_BINARY_DIR}/api_example_out)
 set_tests_properties(api_example PROPERTIES FIXTURES_REQUIRED api_installed SKIP_RETURN_CODE 77 TIMEOUT 300)
+if(RECOUP_SANITIZE)
+  # The installed library carries the sanitizers: the example must too.
+  set_property(TEST api_example APPEND PROPERTY ENVIRONMENT
+               "RECOUP_EXAMPLE_CFLAGS=-fsanitize=address,undefined -fno-omit-frame-pointer")
+endif()

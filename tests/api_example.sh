@@ -15,7 +15,7 @@ echo "pkg-config --cflags recoup: $cflags"
 echo "pkg-config --libs recoup:   $libs"
 rm -rf "$out"
 mkdir -p "$out"
-${CC:-cc} -std=c11 -Wall -Wextra -Werror $cflags -o "$out/api_example" "$example" $libs -Wl,-rpath,"$libdir"
+${CC:-cc} -std=c11 -Wall -Wextra -Werror ${RECOUP_EXAMPLE_CFLAGS:-} $cflags -o "$out/api_example" "$example" $libs -Wl,-rpath,"$libdir"
 # The program must use the installed shared library, not a build-tree copy.
 ldd "$out/api_example" | grep librecoup
 case $(ldd "$out/api_example" | grep librecoup) in
