@@ -5,7 +5,7 @@
 #
 # Usage: scripts/fuzz.sh [SECONDS_PER_TARGET] [TARGET ...]
 #   SECONDS_PER_TARGET  default 60 (or $FUZZ_SECONDS)
-#   TARGET              onnx npy npz idx tensorproto (default: all)
+#   TARGET              onnx npy npz idx tensorproto image (default: all)
 # Environment: FUZZ_MIN_EXECS (default 10000) executions each target must
 # reach; FUZZ_JOBS (default: number of cores) targets run at once;
 # FUZZ_BUILD (default build-fuzz) the build folder.
@@ -19,7 +19,7 @@ here=$(cd "$(dirname "$0")/.." && pwd)
 seconds=${1:-${FUZZ_SECONDS:-60}}
 shift || true
 targets=("$@")
-[ ${#targets[@]} -gt 0 ] || targets=(onnx npy npz idx tensorproto)
+[ ${#targets[@]} -gt 0 ] || targets=(onnx npy npz idx tensorproto image)
 min_execs=${FUZZ_MIN_EXECS:-10000}
 jobs=${FUZZ_JOBS:-$(nproc)}
 build=${FUZZ_BUILD:-"$here/build-fuzz"}

@@ -243,6 +243,37 @@ def onnx_seeds(out):
         write(os.path.join(out, "onnx", name + ".onnx"), data)
 
 
+# ------------------------------------------------------------------ images
+def image_seeds(out):
+    """Small PNG and JPEG files written by Debian's python3-pil: the colour types and
+    bit depths libpng expands (gray, RGB, RGBA, palette, 1-bit, 16-bit, interlaced) and
+    baseline, progressive and grayscale JPEG; refused_* are cut in half."""
+    from PIL import Image
+    rng = np.random.default_rng(5)
+    rgb = Image.fromarray(rng.integers(0, 256, (12, 10, 3), dtype=np.uint8), "RGB")
+    gray = rgb.convert("L")
+    seeds = {}
+
+    def save(name, img, **kw):
+        buf = io.BytesIO()
+        img.save(buf, **kw)
+        seeds[name] = buf.getvalue()
+
+    save("rgb.png", rgb, format="PNG")
+    save("gray.png", gray, format="PNG")
+    save("rgba.png", rgb.convert("RGBA"), format="PNG")
+    save("palette.png", rgb.convert("P", palette=Image.Palette.ADAPTIVE, colors=16), format="PNG")
+    save("bits1.png", gray.convert("1"), format="PNG")
+    save("gray16.png", Image.fromarray((np.asarray(gray, np.uint16) * 257), "I;16"), format="PNG")
+    save("rgb.jpg", rgb, format="JPEG", quality=80)
+    save("gray.jpg", gray, format="JPEG", quality=80)
+    save("progressive.jpg", rgb, format="JPEG", quality=80, progressive=True)
+    seeds["refused_truncated.jpg"] = seeds["rgb.jpg"][:len(seeds["rgb.jpg"]) // 2]
+    seeds["refused_truncated.png"] = seeds["rgb.png"][:len(seeds["rgb.png"]) // 2]
+    for name, data in seeds.items():
+        write(os.path.join(out, "image", name), data)
+
+
 def main():
     root = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
     out = sys.argv[1] if len(sys.argv) > 1 else os.path.join(root, "tests", "fuzz", "corpus")
@@ -251,6 +282,7 @@ def main():
     idx_seeds(out)
     tensorproto_seeds(out)
     onnx_seeds(out)
+    image_seeds(out)
     total = 0
     for d, _, files in os.walk(out):
         for fn in files:

@@ -24,11 +24,15 @@ PACKAGES=(
   libprotobuf-c-dev protobuf-c-compiler libonnx-dev
   libopenblas-openmp-dev zlib1g-dev libcjson-dev   # GEMM: OpenBLAS OpenMP build, shares our thread pool
   nettle-dev libzip-dev                            # SHA-256 of the batch ledger; the zip container of .npz
+  libjpeg62-turbo-dev libpng-dev                   # image folders (JPEG, PNG)
+  libopenmpi-dev openmpi-bin                       # optional: distill and batch over MPI ranks
   # reference tests and demo (Debian's /usr/bin/python3)
-  python3 python3-numpy python3-torch python3-torchvision python3-onnx
+  python3 python3-numpy python3-torch python3-torchvision python3-onnx python3-pil
   dataset-fashion-mnist libonnx-testdata
   # sanitizers and libFuzzer (libomp-dev: OpenMP for clang builds)
   clang libclang-rt-14-dev libomp-dev
+  # formatting (.clang-format)
+  clang-format
   # report tests
   chromium
 )

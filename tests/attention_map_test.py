@@ -47,7 +47,7 @@ import numpy as np
 import onnx
 from onnx import helper, numpy_helper
 
-from e2e import TEST_IMAGES, TRAIN_IMAGES, Run, require
+from e2e import TEST_IMAGES, TRAIN_IMAGES, Run, checker_verdict, diff_detail, require, require_data
 
 HERE = os.path.dirname(os.path.abspath(__file__))
 SCRIPTS = os.path.normpath(os.path.join(HERE, "..", "scripts"))
@@ -105,8 +105,10 @@ def export_teacher(fixture_dir, path):
     erm.scale_output_to_unit(model, x)
     with torch.no_grad():
         y = model(x).numpy()
-    same_out = (np.array_equal(x.numpy(), np.load(os.path.join(fixture_dir, "input_0.npy")))
-                and np.array_equal(y, np.load(os.path.join(fixture_dir, "output_0.npy"))))
+    x_fix, y_fix = np.load(os.path.join(fixture_dir, "input_0.npy")), np.load(os.path.join(fixture_dir, "output_0.npy"))
+    same_in, same_y = np.array_equal(x.numpy(), x_fix), np.array_equal(y, y_fix)
+    same_out = same_in and same_y
+    out_gap = float(np.abs(y - y_fix).max()) if y.shape == y_fix.shape else float("nan")
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # tracer warnings are expected
         torch.onnx.export(model, x, path, opset_version=13, input_names=["input"], output_names=["output"],
@@ -114,7 +116,8 @@ def export_teacher(fixture_dir, path):
     mine = onnx.load(path)
     onnx.checker.check_model(mine)
     fixture = onnx.load(os.path.join(fixture_dir, "model.onnx"))
-    run.check("rebuilt TinyViT gives the fixture's PyTorch output bit for bit", same_out)
+    run.check("rebuilt TinyViT gives the fixture's PyTorch output bit for bit", same_out,
+              f"(input identical {same_in}, output identical {same_y}, largest |difference| {out_gap:.3g})")
     arrays = {t.name: numpy_helper.to_array(t) for t in mine.graph.initializer}
     by_name = {n.name: n for n in mine.graph.node}
     fixed = {t.name: numpy_helper.to_array(t) for t in fixture.graph.initializer}
@@ -216,7 +219,8 @@ def zeros_kept(student, recovered):
 # ---------------------------------------------------------------- run
 
 fixture = os.path.join(REF, "vit_tiny_op13_fused")
-require(os.path.join(fixture, "model.onnx"), TRAIN_IMAGES, TEST_IMAGES)
+require_data(TRAIN_IMAGES, TEST_IMAGES)
+require(os.path.join(fixture, "model.onnx"))
 teacher = os.path.join(WORK, "teacher.onnx")
 export_teacher(fixture, teacher)
 
@@ -255,14 +259,11 @@ run.check(f"attention-map term: attention KL at most {MAX_RATIO}x the pruned stu
           kl_map <= MAX_RATIO * kl_pruned, f"({kl_map:.6f} vs {kl_pruned:.6f})")
 
 s_model, r_model = onnx.load(student), onnx.load(with_map)
-try:
-    onnx.checker.check_model(r_model, full_check=True)
-    checker_ok, why = True, ""
-except Exception as err:  # onnx raises several checker error types
-    checker_ok, why = False, str(err).splitlines()[0]
-run.check("recovered file passes onnx.checker (full check)", checker_ok, why)
+run.check("recovered file passes onnx.checker (full check)", *checker_verdict(r_model, full_check=True))
+r_sig, s_sig = graph_signature(r_model), graph_signature(s_model)
 run.check("recovered file keeps the student's graph: nodes, inputs, outputs, initializer names/dtypes/shapes",
-          graph_signature(r_model) == graph_signature(s_model))
+          r_sig == s_sig, "nodes " + diff_detail(r_sig[0], s_sig[0]) + ", initializers " + diff_detail(r_sig[1], s_sig[1])
+          + ", inputs/outputs " + diff_detail(r_sig[2], s_sig[2]))
 total, kept = zeros_kept(s_model, r_model)
 run.check("every pruned weight is still exactly zero", total > 0 and kept == total,
           f"({kept} of {total}; recoup reports masks_intact={res_map['masks_intact']})")

@@ -41,10 +41,13 @@ import numpy as np
 import onnx
 from onnx import TensorProto, helper, numpy_helper
 
+from e2e import checker_verdict, diff_detail, require_data
+
 RECOUP, WORK = sys.argv[1], sys.argv[2]
 shutil.rmtree(WORK, ignore_errors=True)
 os.makedirs(WORK)
 FMNIST = "/usr/share/datasets/fashion-mnist/train-images-idx3-ubyte.gz"
+require_data(FMNIST)
 CHROMIUM = "/usr/bin/chromium"
 failures = []
 passed = 0
@@ -54,7 +57,7 @@ def check(name, ok, detail=""):
     global passed
     if ok:
         passed += 1
-        print(f"ok   {name}")
+        print(f"ok   {name} {detail}")
     else:
         failures.append(f"{name} {detail}")
         print(f"FAIL {name} {detail}")
@@ -234,27 +237,29 @@ recs = {x["name"]: x for x in records(ref_report)}
 broken = recs["p60-broken"]
 check("broken job reported with its error", broken["status"] == "failed" and "p60_corrupt.onnx" in broken["error"],
       broken.get("error", ""))
-check("the others succeeded", all(recs[n]["status"] == "ok" for n in GOOD))
+check("the others succeeded", all(recs[n]["status"] == "ok" for n in GOOD), str({n: recs[n]["status"] for n in GOOD}))
 ref_out = outputs(ref)
-ok = True
 for n in GOOD:
-    m = onnx.load(ref_out[n])
-    onnx.checker.check_model(m, full_check=True)
+    check(f"{n}: recovered file passes onnx.checker", *checker_verdict(onnx.load(ref_out[n]), full_check=True))
     before = initializers(os.path.join(ref, [j for j in MANIFEST["jobs"] if j["name"] == n][0]["student"]))
     after = initializers(ref_out[n])
-    ok = ok and all(np.array_equal(before[k] == 0, after[k] == 0) for k in before if k.endswith(".w"))
-check("recovered files pass onnx.checker and keep zero positions", ok)
+    moved = [k for k in before if k.endswith(".w") and not np.array_equal(before[k] == 0, after[k] == 0)]
+    check(f"{n}: zero positions kept", not moved, f"(tensors whose zeros moved: {moved})")
 check("recovery improved agreement on every good job",
-      all(recs[n]["recovered"]["agreement"] >= recs[n]["compressed"]["agreement"] for n in GOOD))
+      all(recs[n]["recovered"]["agreement"] >= recs[n]["compressed"]["agreement"] for n in GOOD),
+      str({n: (recs[n]["compressed"]["agreement"], recs[n]["recovered"]["agreement"]) for n in GOOD}))
 with open(os.path.join(ref_report, "state.json")) as f:
     state = json.load(f)["jobs"]
 check("state SHA-256 equals hashlib's", sorted(state) == sorted(GOOD)
-      and all(state[n]["sha256"] == digest(ref_out[n]) for n in GOOD))
+      and all(state[n]["sha256"] == digest(ref_out[n]) for n in GOOD),
+      f"(jobs {sorted(state)}; differing: {[n for n in GOOD if n in state and state[n]['sha256'] != digest(ref_out[n])]})")
 csv_lines = open(os.path.join(ref_report, "summary.csv")).read().splitlines()
-check("CSV summary: header and one row per job", len(csv_lines) == N_JOBS + 1 and csv_lines[0].startswith("name,"))
+check("CSV summary: header and one row per job", len(csv_lines) == N_JOBS + 1 and csv_lines[0].startswith("name,"),
+      f"({len(csv_lines)} lines for {N_JOBS} jobs, header {csv_lines[0][:40] if csv_lines else ''!r})")
 md = open(os.path.join(ref_report, "summary.md")).read()
-check("Markdown summary names every job and carries the caution",
-      all(f"| {j['name']} |" in md for j in MANIFEST["jobs"]) and "held-out data" in md)
+md_missing = [j["name"] for j in MANIFEST["jobs"] if f"| {j['name']} |" not in md]
+check("Markdown summary names every job and carries the caution", not md_missing and "held-out data" in md,
+      f"(jobs missing {md_missing}, caution present {'held-out data' in md})")
 ref_digests = {n: digest(ref_out[n]) for n in GOOD}
 
 # ---- 3. SIGKILL mid-training, then --resume ---------------------------------------------
@@ -267,22 +272,30 @@ kill_out = outputs(killed)
 caught = wait_for(kill_out["p90"] + ".ckpt", p)
 os.killpg(p.pid, signal.SIGKILL)
 p.wait()
-check("batch and its jobs killed while p90 trains", caught and group_gone(p.pid) and not os.path.exists(kill_out["p90"]))
+gone = group_gone(p.pid)
+check("batch and its jobs killed while p90 trains", caught and gone and not os.path.exists(kill_out["p90"]),
+      f"(checkpoint seen {caught}, process group gone {gone}, p90 output exists {os.path.exists(kill_out['p90'])})")
 finished = {n: os.stat(kill_out[n]).st_mtime_ns for n in ("p50", "p70") if os.path.exists(kill_out[n])}
-check("jobs before p90 had finished", sorted(finished) == ["p50", "p70"])
+check("jobs before p90 had finished", sorted(finished) == ["p50", "p70"], str(sorted(finished)))
 r = subprocess.run(args + ["--resume"], capture_output=True, text=True, timeout=600)
 check("resumed batch finishes (status 1 for the broken job only)", r.returncode == 1
       and {x["name"]: x["status"] for x in records(kill_report)} == {x: recs[x]["status"] for x in recs}, r.stderr[-300:])
 check("finished jobs skipped", all(f"skipped {n}" in r.stderr for n in finished)
-      and all(os.stat(kill_out[n]).st_mtime_ns == t for n, t in finished.items()))
+      and all(os.stat(kill_out[n]).st_mtime_ns == t for n, t in finished.items()),
+      f"(said skipped: {[n for n in finished if f'skipped {n}' in r.stderr]}, "
+      f"rewritten: {[n for n, t in finished.items() if os.stat(kill_out[n]).st_mtime_ns != t]})")
 log = open(os.path.join(kill_report, "logs", "p90.log")).read()
-check("the interrupted job resumed from its checkpoint", "resuming from" in log and not os.path.exists(kill_out["p90"] + ".ckpt"))
+check("the interrupted job resumed from its checkpoint", "resuming from" in log and not os.path.exists(kill_out["p90"] + ".ckpt"),
+      f"(log says resuming {'resuming from' in log}, checkpoint left {os.path.exists(kill_out['p90'] + '.ckpt')})")
 check("every output byte-identical to the uninterrupted run's",
-      all(digest(kill_out[n]) == ref_digests[n] for n in GOOD))
+      all(digest(kill_out[n]) == ref_digests[n] for n in GOOD),
+      f"(differing: {[n for n in GOOD if digest(kill_out[n]) != ref_digests[n]]})")
 resumed = {x["name"]: x for x in records(kill_report)}
 check("the resumed job's history and loss trace equal the uninterrupted run's (checkpoints carry them)",
       resumed["p90"]["epochs"] == recs["p90"]["epochs"] and resumed["p90"]["loss_trace"] == recs["p90"]["loss_trace"]
-      and len(recs["p90"]["loss_trace"]) >= 10)
+      and len(recs["p90"]["loss_trace"]) >= 10,
+      f"(epochs {resumed['p90']['epochs']} vs {recs['p90']['epochs']}, loss trace of {len(resumed['p90']['loss_trace'])} "
+      f"vs {len(recs['p90']['loss_trace'])} points, equal {resumed['p90']['loss_trace'] == recs['p90']['loss_trace']})")
 
 # ---- 4. SIGTERM: jobs checkpoint, the batch exits 1 with a summary -----------------------
 
@@ -299,7 +312,8 @@ check("SIGTERM: exit 1, p90 interrupted with a checkpoint, later jobs not run",
       p.returncode == 1 and st["p90"] == "interrupted" and os.path.exists(term_out["p90"] + ".ckpt")
       and st["p95"] == "not run" and "p90" in out, f"({p.returncode}, {st})")
 r = subprocess.run(args + ["--resume"], capture_output=True, text=True, timeout=600)
-check("after SIGTERM, --resume gives the same bytes", all(digest(term_out[n]) == ref_digests[n] for n in GOOD))
+check("after SIGTERM, --resume gives the same bytes", all(digest(term_out[n]) == ref_digests[n] for n in GOOD),
+      f"(differing: {[n for n in GOOD if digest(term_out[n]) != ref_digests[n]]})")
 
 # ---- 5. Shards 1/3..3/3, two jobs at once each, and the merged report ---------------------
 
@@ -311,27 +325,31 @@ for q in procs:
     q.communicate(timeout=600)
 ran = [x["name"] for k in (1, 2, 3) for x in records(os.path.join(sharded, f"shard{k}")) if x["status"] != "not run"]
 check("shards run every job exactly once", sorted(ran) == sorted(j["name"] for j in MANIFEST["jobs"]), str(ran))
-check("shard k holds the jobs with index mod 3 = k-1",
-      all(x["index"] % 3 == k - 1 for k in (1, 2, 3) for x in records(os.path.join(sharded, f"shard{k}"))))
+shard_of = {x["name"]: (k, x["index"]) for k in (1, 2, 3) for x in records(os.path.join(sharded, f"shard{k}"))}
+check("shard k holds the jobs with index mod 3 = k-1", all(i % 3 == k - 1 for k, i in shard_of.values()),
+      f"(job: (shard, index) {shard_of})")
 merged = os.path.join(sharded, "merged")
 r = batch(["--merge-reports"] + [os.path.join(sharded, f"shard{k}") for k in (1, 2, 3)] + ["--report", merged])
 check("merge exits 1 (one job failed)", r.returncode == 1, r.stderr[-200:])
 check("merged report equals the unsharded one (timings aside)",
-      without_timings(records(merged)) == without_timings(records(ref_report)))
+      without_timings(records(merged)) == without_timings(records(ref_report)),
+      diff_detail(without_timings(records(merged)), without_timings(records(ref_report))))
 sh_out = outputs(sharded)
 check("sharded outputs byte-identical (1 thread per job either way)",
-      all(digest(sh_out[n]) == ref_digests[n] for n in GOOD))
+      all(digest(sh_out[n]) == ref_digests[n] for n in GOOD),
+      f"(differing: {[n for n in GOOD if digest(sh_out[n]) != ref_digests[n]]})")
 
 # ---- 6. The HTML report in headless Chromium ------------------------------------------------
 
 html_path = os.path.join(ref_report, "report.html")
 html = open(html_path).read()
-check("HTML has no script and fetches nothing", "<script" not in html.lower()
-      and not re.search(r'(src|href)\s*=', html) and "url(" not in html
-      and not [u for u in re.findall(r'https?://[^"\s]+', html) if u != "http://www.w3.org/2000/svg"])
-check("HTML carries the caution", "held-out data" in html)
+fetches = [u for u in re.findall(r'https?://[^"\s]+', html) if u != "http://www.w3.org/2000/svg"]
+links = re.findall(r'(?:src|href)\s*=', html)
+check("HTML has no script and fetches nothing", "<script" not in html.lower() and not links and "url(" not in html
+      and not fetches, f"(script {'<script' in html.lower()}, src/href {links}, url( {'url(' in html}, addresses {fetches})")
+check("HTML carries the caution", "held-out data" in html, f"({len(html)} characters of HTML)")
 if not os.access(CHROMIUM, os.X_OK):
-    check("chromium installed (scripts/setup.sh installs Debian's chromium)", False)
+    check("chromium installed (scripts/setup.sh installs Debian's chromium)", False, f"({CHROMIUM} is not executable)")
 else:
     def chromium(extra):
         prof = os.path.join(WORK, f"chromium-profile-{len(extra)}")

@@ -170,7 +170,9 @@ check("the checkpoint written on SIGTERM resumes to the same bytes",
 # 4. Written by NumPy from the documented format, field by field.
 def metrics(m):
     return {"n": int(m["n"]), "has_labels": bool(m["has_labels"]), "has_ref": bool(m["has_ref"]),
-            "top1": m["top1"], "top5": m["top5"], "agreement": m["agreement"], "kl": m["kl"]}
+            "top1": m["top1"], "top5": m["top5"], "agreement": m["agreement"], "kl": m["kl"], "ce": m["ce"],
+            "outputs": bool(m["outputs"]), "miou_ref": m["miou_ref"], "miou_labels": m["miou_labels"],
+            "value_mad": m["value_mad"]}
 
 
 def rewrite(src, dst, change=None):

@@ -29,7 +29,7 @@ import numpy as np
 import onnx
 from onnx import numpy_helper
 
-from e2e import DATA, SCALE, TEST_IMAGES, TRAIN_IMAGES, Run, require
+from e2e import DATA, SCALE, TEST_IMAGES, TRAIN_IMAGES, Run, checker_verdict, diff_detail, require, require_data
 
 RECOUP, SRC, WORK = sys.argv[1:4]
 os.makedirs(WORK, exist_ok=True)
@@ -78,7 +78,8 @@ def read_idx_labels(path):
     return np.frombuffer(raw, np.uint8, offset=8)
 
 
-require(DENSE, PRUNED, TRAIN_IMAGES)
+require_data(TRAIN_IMAGES, TEST_IMAGES)
+require(DENSE, PRUNED)
 
 dense_before = digest(DENSE)
 pruned_before = digest(PRUNED)
@@ -102,23 +103,26 @@ print(f"test accuracy: dense {acc_dense:.4f}, pruned {acc_pruned:.4f}, recovered
 check("recovery margin", acc_rec - acc_pruned >= MARGIN,
       f"(recovered {acc_rec:.4f} - pruned {acc_pruned:.4f} >= {MARGIN})")
 check("recovered stays below or near dense", acc_rec <= acc_dense + 0.01, f"({acc_rec:.4f} vs {acc_dense:.4f})")
-check("validation improved", res["improved"] and res["recovered"]["agreement"] > res["compressed"]["agreement"])
-check("inputs untouched", digest(DENSE) == dense_before and digest(PRUNED) == pruned_before)
+check("validation improved", res["improved"] and res["recovered"]["agreement"] > res["compressed"]["agreement"],
+      f"(improved {res['improved']}, agreement {res['compressed']['agreement']} -> {res['recovered']['agreement']})")
+check("inputs untouched", digest(DENSE) == dense_before and digest(PRUNED) == pruned_before,
+      f"(dense SHA-256 same {digest(DENSE) == dense_before}, pruned SHA-256 same {digest(PRUNED) == pruned_before})")
 
 # 2. Masks and untouched tensors, read with the onnx package.
 before, after = initializers(PRUNED), initializers(recovered)
-check("same initializers", before.keys() == after.keys())
+check("same initializers", before.keys() == after.keys(), diff_detail(sorted(before), sorted(after)))
 zeros_same = all(np.array_equal(before[k] == 0, after[k] == 0) for k in before if before[k].ndim >= 2)
 n_zeros = sum(int((before[k] == 0).sum()) for k in before if before[k].ndim >= 2)
 check("zero positions identical", zeros_same, f"({n_zeros} pruned entries)")
 changed = [k for k in before if not np.array_equal(before[k], after[k])]
 check("weights did change", len(changed) > 0, f"({len(changed)} tensors)")
 m_in, m_out = onnx.load(PRUNED), onnx.load(recovered)
+nodes_in, nodes_out = [n.SerializeToString() for n in m_in.graph.node], [n.SerializeToString() for n in m_out.graph.node]
 check("graph unchanged apart from initializers",
-      [n.SerializeToString() for n in m_in.graph.node] == [n.SerializeToString() for n in m_out.graph.node]
-      and m_in.graph.input == m_out.graph.input and m_in.graph.output == m_out.graph.output)
-onnx.checker.check_model(m_out, full_check=True)
-check("onnx.checker accepts the recovered file", True)
+      nodes_in == nodes_out and m_in.graph.input == m_out.graph.input and m_in.graph.output == m_out.graph.output,
+      f"(nodes {diff_detail(nodes_in, nodes_out)}, inputs same {m_in.graph.input == m_out.graph.input}, "
+      f"outputs same {m_in.graph.output == m_out.graph.output})")
+check("onnx.checker accepts the recovered file", *checker_verdict(m_out, full_check=True))
 
 # 3. onnxruntime-web gives the accuracy recoup reports.
 node = os.environ.get("RECOUP_NODE") or shutil.which("node")
@@ -142,7 +146,7 @@ else:
 a, b = os.path.join(WORK, "det_a.onnx"), os.path.join(WORK, "det_b.onnx")
 distill(PRUNED, a, 60, data=SMALL)
 distill(PRUNED, b, 60, data=SMALL)
-check("same seed gives a byte-identical file", digest(a) == digest(b))
+check("same seed gives a byte-identical file", digest(a) == digest(b), f"(SHA-256 {digest(a)[:16]} vs {digest(b)[:16]})")
 
 # 4b. Interrupted runs resume to the same bytes: SIGKILL once a checkpoint
 #     exists (losing the steps since), and SIGTERM (which checkpoints first).
@@ -205,8 +209,8 @@ onnx.save(m, two_four)
 rec24 = os.path.join(WORK, "recovered_2of4.onnx")
 distill(two_four, rec24, 60, data=SMALL)
 b24, a24 = initializers(two_four), initializers(rec24)
-check("2:4 zero positions identical",
-      all(np.array_equal(b24[k] == 0, a24[k] == 0) for k in b24 if b24[k].ndim >= 2))
+moved24 = [k for k in b24 if b24[k].ndim >= 2 and not np.array_equal(b24[k] == 0, a24[k] == 0)]
+check("2:4 zero positions identical", not moved24, f"(tensors whose zeros moved: {moved24})")
 insp = run.json(["inspect", rec24, "--json"])
 patterns = {w["name"]: w["pattern"] for w in insp["weights"] if w["role"] == "weight"}
 check("inspect reports 2:4 on the recovered file", any(p == "2:4" for p in patterns.values()), str(patterns))

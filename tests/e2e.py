@@ -45,16 +45,59 @@ class Run:
 
     def checker_accepts(self, label, model):
         """onnx.checker (Debian python3-onnx) with full shape inference on a loaded model."""
-        import onnx
-        try:
-            onnx.checker.check_model(model, full_check=True)
-            self.check(f"{label}: onnx.checker accepts the file", True)
-        except Exception as exc:  # noqa: BLE001 - any checker error fails the test
-            self.check(f"{label}: onnx.checker accepts the file", False, str(exc))
+        ok, said = checker_verdict(model, full_check=True)
+        self.check(f"{label}: onnx.checker accepts the file", ok, said)
 
     def finish(self):
         print(f"{self.passed} passed, {len(self.failed)} failed")
         sys.exit(1 if self.failed else 0)
+
+
+def diff_detail(a, b):
+    """Where two lists (or dicts, by key) first differ, short enough for a check's message."""
+    if isinstance(a, dict) and isinstance(b, dict):
+        keys = sorted(set(a) | set(b), key=str)
+        for k in keys:
+            if a.get(k) != b.get(k):
+                return f"(key {k!r}: {str(a.get(k))[:120]} vs {str(b.get(k))[:120]})"
+        return f"({len(keys)} keys, all equal)"
+    a, b = list(a), list(b)
+    for i, (x, y) in enumerate(zip(a, b)):
+        if x != y:
+            return f"(item {i} of {len(a)} vs {len(b)}: {str(x)[:120]} vs {str(y)[:120]})"
+    return f"({len(a)} vs {len(b)} items" + (", all equal)" if len(a) == len(b) else ")")
+
+
+def checker_verdict(model, full_check=False):
+    """The onnx package's checker on a loaded model: (accepted, what it said)."""
+    import onnx
+    try:
+        onnx.checker.check_model(model, full_check=full_check)
+        return True, "(onnx.checker: no complaint)"
+    except Exception as err:  # the checker raises several error types
+        return False, "(onnx.checker: " + str(err).splitlines()[0] + ")"
+
+
+SKIP_STATUS = 77  # ctest's SKIP_RETURN_CODE on the tests that read Debian's data sets
+
+
+def require_data(*paths):
+    """Data sets installed from Debian: when one is absent the test is skipped, not failed."""
+    absent = [p for p in paths if not os.path.exists(p)]
+    if absent:
+        print(f"skipped: {', '.join(absent)} absent (Debian package dataset-fashion-mnist)", flush=True)
+        sys.exit(SKIP_STATUS)
+
+
+def read_idx(path):
+    """An IDX file (plain or gzip), the format Fashion-MNIST ships in, as a NumPy array."""
+    import gzip
+    import numpy as np
+    with (gzip.open if path.endswith(".gz") else open)(path, "rb") as f:
+        data = f.read()
+    dims = data[3]
+    shape = [int.from_bytes(data[4 + 4 * i:8 + 4 * i], "big") for i in range(dims)]
+    return np.frombuffer(data, np.uint8, offset=4 + 4 * dims).reshape(shape)
 
 
 def require(*paths):

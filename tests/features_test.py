@@ -28,7 +28,7 @@ import sys
 
 import onnx
 
-from e2e import Run, SCALE, TRAIN_IMAGES, require
+from e2e import Run, SCALE, TRAIN_IMAGES, checker_verdict, diff_detail, require, require_data
 
 RECOUP, SRC, WORK = sys.argv[1:4]
 os.makedirs(WORK, exist_ok=True)
@@ -37,7 +37,8 @@ STEPS = "300"
 MARGIN = 0.4  # recovery over the channel-pruned copy, for each loss
 run = Run(RECOUP)
 check, test_accuracy = run.check, run.test_accuracy
-require(DENSE, TRAIN_IMAGES)
+require_data(TRAIN_IMAGES)
+require(DENSE)
 
 
 narrow = os.path.join(WORK, "garment_channels50.onnx")
@@ -62,11 +63,14 @@ for name, loss_args in (("kd", ["--loss", "kd"]), ("kd+hint", ["--config", confi
              "--steps", STEPS, "--seed", seed, "--threads", "2", *loss_args, "--out", out])
         accs[name, seed] = test_accuracy(out)
         m_in, m_out = onnx.load(narrow), onnx.load(out)
-        onnx.checker.check_model(m_out)
+        check(f"{name} (seed {seed}): onnx.checker accepts the recovered file", *checker_verdict(m_out))
+        nodes_in = [n.SerializeToString() for n in m_in.graph.node]
+        nodes_out = [n.SerializeToString() for n in m_out.graph.node]
+        shapes_in = [(t.name, list(t.dims)) for t in m_in.graph.initializer]
+        shapes_out = [(t.name, list(t.dims)) for t in m_out.graph.initializer]
         check(f"{name} (seed {seed}): same graph and initializer shapes as the student",
-              [n.SerializeToString() for n in m_in.graph.node] == [n.SerializeToString() for n in m_out.graph.node]
-              and [(t.name, list(t.dims)) for t in m_in.graph.initializer] ==
-              [(t.name, list(t.dims)) for t in m_out.graph.initializer])
+              nodes_in == nodes_out and shapes_in == shapes_out,
+              f"nodes {diff_detail(nodes_in, nodes_out)}, initializers {diff_detail(shapes_in, shapes_out)}")
 acc_narrow = test_accuracy(narrow)
 mean = {name: sum(accs[name, s] for s in SEEDS) / len(SEEDS) for name in ("kd", "kd+hint")}
 print(f"test accuracy ({STEPS} steps each): channel-pruned {acc_narrow:.4f}; " +

@@ -163,7 +163,9 @@ static double oh_gradcheck(oh_case *c, const int *check, double eps) {
   rc_kernel k = {n, n->params, n->n_in, n->n_out, c->in, c->out, c->din, c->dout, c->work, c->saved,
                  c->training};
   n->def->backward(&k);
-  double worst = 0;
+  double worst = 0, worst_g = 0, worst_num = 0;
+  int worst_in = -1;
+  int64_t worst_at = -1;
   for (int kk = 0; check[kk] >= 0; kk++) {
     int i = check[kk];
     float *x = oh_in_f(c, i);
@@ -180,14 +182,13 @@ static double oh_gradcheck(oh_case *c, const int *check, double eps) {
       x[j] = keep;
       double num = (up - down) / (2 * eps);
       double err = fabs(g[j] - num) / (1 + fabs(num));
-      if (err > worst) {
-        worst = err;
-        if (err > 1e-2)
-          fprintf(stderr, "gradcheck %s input %d [%lld]: analytic %.6g numeric %.6g\n", n->op_type, i,
-                  (long long)j, g[j], num);
-      }
+      if (err > worst || worst_at < 0)
+        worst = err, worst_g = g[j], worst_num = num, worst_in = i, worst_at = j;
     }
   }
+  /* Always printed, so a drift that still passes shows before it fails. */
+  printf("gradcheck %s: worst input %d [%lld]: analytic %.6g numeric %.6g relative error %.3g\n",
+         n->op_type, worst_in, (long long)worst_at, worst_g, worst_num, worst);
   oh_run(c, &e);
   return worst;
 }

@@ -26,7 +26,7 @@ import numpy as np
 import onnx
 from onnx import numpy_helper
 
-from e2e import Run, SCALE, TRAIN_IMAGES, require
+from e2e import SCALE, TEST_IMAGES, TRAIN_IMAGES, Run, checker_verdict, diff_detail, require, require_data
 
 RECOUP, SRC, WORK = sys.argv[1:4]
 os.makedirs(WORK, exist_ok=True)
@@ -38,7 +38,8 @@ DENSE = os.path.join(SRC, "models", "garment_dense.onnx")
 MARGIN = 0.005
 run = Run(RECOUP)
 check, test_accuracy = run.check, run.test_accuracy
-require(DENSE, TRAIN_IMAGES)
+require_data(TRAIN_IMAGES, TEST_IMAGES)
+require(DENSE)
 q4 = os.path.join(WORK, "garment_w4a8.onnx")
 calib = os.path.join(WORK, "calib.npy")
 # 1,000 training images for calibration, read with NumPy from the IDX file.
@@ -58,7 +59,8 @@ print(f"test accuracy: dense {acc_dense:.4f}, 4-bit weights / 8-bit activations 
       f"recovered {acc_rec:.4f}")
 check("quantization loses accuracy", acc_q < acc_dense, f"({acc_q:.4f} < {acc_dense:.4f})")
 check("distill recovers accuracy", acc_rec - acc_q >= MARGIN, f"({acc_rec:.4f} - {acc_q:.4f} >= {MARGIN})")
-check("distill reports rewritten grids", res["quantized_weights_rewritten"] > 0)
+check("distill reports rewritten grids", res["quantized_weights_rewritten"] > 0,
+      f"({res['quantized_weights_rewritten']} weights rewritten)")
 
 # Grids bit-identical: every initializer feeding a scale or zero-point input of
 # QuantizeLinear/DequantizeLinear, and the nodes themselves (axis, dtype).
@@ -70,16 +72,16 @@ for n in m_in.graph.node:
     if n.op_type in ("QuantizeLinear", "DequantizeLinear"):
         grid_names.update(x for x in n.input[1:] if x)
 check("grids present", len(grid_names) > 0, f"({len(grid_names)} scale/zero-point tensors)")
-check("grids bit-identical", all(ini_in[k].SerializeToString() == ini_out[k].SerializeToString()
-                                 for k in grid_names if k in ini_in))
-check("integer weight dtypes unchanged", all(ini_in[k].data_type == ini_out[k].data_type for k in ini_in))
-check("nodes unchanged", [n.SerializeToString() for n in m_in.graph.node] ==
-      [n.SerializeToString() for n in m_out.graph.node])
+grids_changed = sorted(k for k in grid_names if k in ini_in and ini_in[k].SerializeToString() != ini_out[k].SerializeToString())
+check("grids bit-identical", not grids_changed, f"(changed: {grids_changed} of {len(grid_names)})")
+dtype_changed = {k: (ini_in[k].data_type, ini_out[k].data_type) for k in ini_in if ini_in[k].data_type != ini_out[k].data_type}
+check("integer weight dtypes unchanged", not dtype_changed, f"(changed: {dtype_changed})")
+nodes_in, nodes_out = [n.SerializeToString() for n in m_in.graph.node], [n.SerializeToString() for n in m_out.graph.node]
+check("nodes unchanged", nodes_in == nodes_out, diff_detail(nodes_in, nodes_out))
 changed_int = [k for k, t in ini_in.items() if t.data_type in (2, 3, 21, 22)
                and ini_in[k].SerializeToString() != ini_out[k].SerializeToString()]
 check("integer weights were retrained", len(changed_int) > 0, f"({len(changed_int)} tensors)")
-onnx.checker.check_model(m_out)
-check("onnx.checker accepts the recovered file", True)
+check("onnx.checker accepts the recovered file", *checker_verdict(m_out))
 
 # onnxruntime-web with optimisations disabled against recoup's own outputs.
 node = os.environ.get("RECOUP_NODE") or shutil.which("node")

@@ -67,6 +67,23 @@ static const float *ref(const char *name, long n) {
   return NULL;
 }
 
+/* Gradients against a reference: relative 1e-4 plus 1e-6 of the largest
+ * reference entry (for entries that cancel to near zero); the first three
+ * misses are printed with both sides. A NULL reference is skipped (its
+ * absence is already a failed check). */
+static void ref_check_grad(const char *what, const float *got, const float *want, long n) {
+  if (!want) return;
+  double big = 0.0;
+  for (long i = 0; i < n; i++)
+    if (fabs(want[i]) > big) big = fabs(want[i]);
+  int bad = 0;
+  for (long i = 0; i < n; i++)
+    if (!(fabs(got[i] - want[i]) <= 1e-4 * fabs(want[i]) + 1e-6 * big)) {
+      if (bad++ < 3) fprintf(stderr, "%s[%ld]: recoup %.9g, PyTorch %.9g\n", what, i, got[i], want[i]);
+    }
+  CHECK_INT(bad, 0);
+}
+
 static void ref_free(void) {
   for (int i = 0; i < ref_n_arrays_; i++) free(ref_arrays_[i].data);
   ref_n_arrays_ = 0;

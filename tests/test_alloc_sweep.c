@@ -57,7 +57,7 @@ static rc_status load_and_plan(const uint8_t *bytes, size_t n, const char *name,
     for (int d = 0; d < ins[i].rank; d++)
       if (ins[i].dims[d] < 0) ins[i].dims[d] = 2;
   }
-  st = rc_plan_create(&p, g, ins, NULL, e);
+  st = rc_plan_init(&p, g, ins, NULL, e);
   if (st == RC_OK) {
     trainable = rc__calloc((size_t)g->n_values, 1);
     if (!trainable) st = rc__fail(e, RC_ERR_NOMEM, "%s: out of memory", name);
@@ -69,7 +69,7 @@ static rc_status load_and_plan(const uint8_t *bytes, size_t n, const char *name,
     rc_plan_opts o = {0};
     o.training = 1;
     o.trainable = trainable;
-    st = rc_plan_create(&tp, g, ins, &o, e);
+    st = rc_plan_init(&tp, g, ins, &o, e);
   }
   rc_plan_free(tp);
   rc_plan_free(p);
@@ -94,7 +94,7 @@ static long sweep_model(const char *case_name, int large) {
   if (!bytes) {
     fprintf(stderr, "missing %s: the reference_models fixture (scripts/export_reference_models.py) did not run\n",
             path);
-    CHECK(bytes != NULL);
+    CHECK_NOT_NULL(bytes);
     return 0;
   }
   rc_err e;
@@ -103,7 +103,7 @@ static long sweep_model(const char *case_name, int large) {
   long total = rc_alloc_set_fail_after(0);
   if (st != RC_OK) fprintf(stderr, "%s: %s\n", path, e.msg);
   CHECK_INT(st, RC_OK);
-  CHECK(total > 10);
+  CHECK_GT(total, 10);
   long stride = large ? sweep_stride() : 1, tried = 0, wrong = 0;
   for (long k = 1; k <= total; k++) {
     if (stride > 1 && k > 256 && k <= total - 256 && k % stride) continue;
@@ -136,18 +136,18 @@ static void path_load_fails_cleanly(void) {
     rc_status st = rc_model_load(&m, path, NULL, &e);
     rc_alloc_set_fail_after(0);
     CHECK_INT(st, RC_ERR_NOMEM);
-    CHECK(m == NULL);
+    CHECK_NULL(m);
     rc_model_free(m);
   }
 }
 
 static void resnet8_every_allocation(void) {
-  CHECK(sweep_model("resnet8_op13_bn", 0) > 0);
-  CHECK(sweep_model("resnet8_op17_fused", 0) > 0);
+  CHECK_GT(sweep_model("resnet8_op13_bn", 0), 0);
+  CHECK_GT(sweep_model("resnet8_op17_fused", 0), 0);
 }
 
 static void mobilenet_v2_every_allocation(void) {
-  CHECK(sweep_model("mobilenet_v2_op17_bn", 1) > 0);
+  CHECK_GT(sweep_model("mobilenet_v2_op17_bn", 1), 0);
 }
 
 int main(void) {

@@ -415,7 +415,7 @@ static int run_plan(const rc_graph *g, data_set *s, const rc_plan_opts *opts, co
                     case_result *r, rc_err *e) {
   rc_plan *p = NULL;
   char msg[1100];
-  rc_status st = rc_plan_create(&p, g, s->in, opts, e);
+  rc_status st = rc_plan_init(&p, g, s->in, opts, e);
   if (st == RC_ERR_UNSUPPORTED) return OUT_SKIP;
   if (st != RC_OK) {
     snprintf(msg, sizeof msg, "%s (%s)", e->msg, rc_strerror(st));

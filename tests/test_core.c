@@ -19,13 +19,13 @@
 #include "test.h"
 
 static void status_texts(void) {
-  CHECK(!strcmp(rc_strerror(RC_OK), "success"));
-  CHECK(!strcmp(rc_strerror(RC_ERR_FORMAT), "malformed file"));
-  CHECK(!strcmp(rc_strerror(-999), "unknown status"));
+  CHECK_STR_EQ(rc_strerror(RC_OK), "success");
+  CHECK_STR_EQ(rc_strerror(RC_ERR_FORMAT), "malformed file");
+  CHECK_STR_EQ(rc_strerror(-999), "unknown status");
   rc_err e;
   CHECK_INT(rc__fail(&e, RC_ERR_SHAPE, "node '%s' bad", "c1"), RC_ERR_SHAPE);
   rc__wrap(&e, "%s", "m.onnx");
-  CHECK(!strcmp(e.msg, "m.onnx: node 'c1' bad"));
+  CHECK_STR_EQ(e.msg, "m.onnx: node 'c1' bad");
 }
 
 static void arena_alignment_and_blocks(void) {
@@ -33,14 +33,14 @@ static void arena_alignment_and_blocks(void) {
   rc__arena_init(&a, 128);
   for (int i = 1; i < 100; i++) {
     unsigned char *p = rc__arena_alloc(&a, (size_t)i * 7);
-    CHECK(p != NULL);
+    CHECK_NOT_NULL(p);
     CHECK_INT((uintptr_t)p % 64, 0);
     memset(p, 0xab, (size_t)i * 7);
   }
   char *s = rc__arena_strdup(&a, "conv1.weight");
-  CHECK(!strcmp(s, "conv1.weight"));
+  CHECK_STR_EQ(s, "conv1.weight");
   rc__arena_free(&a);
-  CHECK(a.head == NULL);
+  CHECK_NULL(a.head);
 }
 
 static void tensor_sizes(void) {
@@ -48,13 +48,13 @@ static void tensor_sizes(void) {
   CHECK_INT(rc_tensor_numel(&t), 120);
   CHECK_INT(rc_tensor_nbytes(&t), 480);
   char buf[64];
-  CHECK(!strcmp(rc_shape_str(&t, buf, sizeof buf), "(2, 3, 4, 5)"));
+  CHECK_STR_EQ(rc_shape_str(&t, buf, sizeof buf), "(2, 3, 4, 5)");
   rc_tensor huge = {RC_DTYPE_FLOAT, 3, {INT64_MAX / 2, 4, 4}, NULL};
-  CHECK(rc_tensor_nbytes(&huge) == SIZE_MAX);
+  CHECK_EQ(rc_tensor_nbytes(&huge), SIZE_MAX);
   rc_tensor neg = {RC_DTYPE_FLOAT, 1, {-3}, NULL};
-  CHECK(rc_tensor_nbytes(&neg) == SIZE_MAX);
+  CHECK_EQ(rc_tensor_nbytes(&neg), SIZE_MAX);
   CHECK_INT(rc_dtype_size(RC_DTYPE_INT4), 1);
-  CHECK(!strcmp(rc_dtype_name(RC_DTYPE_UINT4), "uint4"));
+  CHECK_STR_EQ(rc_dtype_name(RC_DTYPE_UINT4), "uint4");
 }
 
 static void alloc_fault_hook(void) {
@@ -62,15 +62,16 @@ static void alloc_fault_hook(void) {
   void *a = rc__malloc(8);
   void *b = rc__malloc(8);
   void *c = rc__malloc(8);
-  CHECK(a != NULL);
-  CHECK(b == NULL);
-  CHECK(c != NULL);
+  CHECK_NOT_NULL(a);
+  CHECK_NULL(b);
+  CHECK_NOT_NULL(c);
   rc__free(a);
   rc__free(c);
   rc_alloc_set_fail_after(0);
   size_t out;
   CHECK(!rc__mul_size(SIZE_MAX / 2, 3, &out));
-  CHECK(rc__mul_size(6, 7, &out) && out == 42);
+  CHECK(rc__mul_size(6, 7, &out));
+  CHECK_EQ(out, 42);
 }
 
 /* Escaping text from files. What is valid UTF-8 follows RFC 3629 (overlong
@@ -103,17 +104,17 @@ static void escape_names(void) {
   escape_case("already \\x1B", "already \\x1B");
   char small[8];
   rc__escape(small, sizeof small, "ab\x1b\x1b");
-  CHECK(!strcmp(small, "ab\\x1B")); /* cut at a whole escape */
+  CHECK_STR_EQ(small, "ab\\x1B"); /* cut at a whole escape */
   rc_err e;
   rc__fail(&e, RC_ERR_FORMAT, "node '%s'", "n\x1b[2J");
-  CHECK(!strcmp(e.msg, "node 'n\\x1B[2J'"));
+  CHECK_STR_EQ(e.msg, "node 'n\\x1B[2J'");
 }
 
 /* Outputs compared with inputs as files: links, "./", "d/.." and files not
  * yet written. */
 static void same_file_paths(void) {
   char dir[] = "/tmp/recoup_core_XXXXXX";
-  CHECK(mkdtemp(dir) != NULL);
+  CHECK_NOT_NULL(mkdtemp(dir));
   char a[128], lnk[128], hard[128], dotted[128], other[128], missing[128], missing2[128];
   snprintf(a, sizeof a, "%s/a.npy", dir);
   snprintf(lnk, sizeof lnk, "%s/link.npy", dir);
@@ -124,14 +125,14 @@ static void same_file_paths(void) {
   snprintf(missing2, sizeof missing2, "%s/sub/../new.npy", dir);
   char sub[128];
   snprintf(sub, sizeof sub, "%s/sub", dir);
-  CHECK(mkdir(sub, 0755) == 0);
+  CHECK_EQ(mkdir(sub, 0755), 0);
   FILE *f = fopen(a, "wb");
-  CHECK(f != NULL);
+  CHECK_NOT_NULL(f);
   if (f) fclose(f);
   f = fopen(other, "wb");
   if (f) fclose(f);
-  CHECK(symlink("a.npy", lnk) == 0);
-  CHECK(link(a, hard) == 0);
+  CHECK_EQ(symlink("a.npy", lnk), 0);
+  CHECK_EQ(link(a, hard), 0);
   CHECK_INT(rc__path_same_file(a, a), 1);
   CHECK_INT(rc__path_same_file(lnk, a), 1);
   CHECK_INT(rc__path_same_file(hard, a), 1);
@@ -177,16 +178,16 @@ static void atomic_write_mode(void) {
   const char *base = getenv("RECOUP_BINARY_DIR");
   char dir[4096], path[4200], fresh[4200], planted[4300], victim[4200];
   snprintf(dir, sizeof dir, "%s/core_write_XXXXXX", base ? base : "/tmp");
-  CHECK(mkdtemp(dir) != NULL);
+  CHECK_NOT_NULL(mkdtemp(dir));
   snprintf(path, sizeof path, "%s/kept.txt", dir);
   snprintf(fresh, sizeof fresh, "%s/fresh.txt", dir);
   snprintf(victim, sizeof victim, "%s/victim.txt", dir);
   snprintf(planted, sizeof planted, "%s.tmp.%ld", path, (long)getpid());
   rc_err e = {0};
   CHECK_INT(rc__write_atomic(path, "one", 3, &e), RC_OK);
-  CHECK(chmod(path, 0604) == 0);
+  CHECK_EQ(chmod(path, 0604), 0);
   CHECK_INT(rc__write_atomic(victim, "victim", 6, &e), RC_OK);
-  CHECK(symlink(victim, planted) == 0);
+  CHECK_EQ(symlink(victim, planted), 0);
   CHECK_INT(rc__write_atomic(path, "two", 3, &e), RC_OK);
   CHECK_INT(mode_of(path), 0604);
   CHECK(same_bytes(path, "two"));

@@ -30,26 +30,36 @@ static void npy_format_versions(void) {
   rc_array a;
   /* Source: NumPy (Debian python3-numpy), np.save, format 1.0. */
   if (read_ok(&a, "v1_f4.npy", NULL)) {
-    CHECK(a.t.dtype == RC_DTYPE_FLOAT && a.t.rank == 3 && a.t.dims[0] == 2 && a.t.dims[1] == 3 && a.t.dims[2] == 4);
+    CHECK_EQ(a.t.dtype, RC_DTYPE_FLOAT);
+    CHECK_EQ(a.t.rank, 3);
+    CHECK_EQ(a.t.dims[0], 2);
+    CHECK_EQ(a.t.dims[1], 3);
+    CHECK_EQ(a.t.dims[2], 4);
     for (int i = 0; i < 24; i++) CHECK_NEAR(((float *)a.t.data)[i], (i - 5) * 0.25, 0, 0);
     rc_array_free(&a);
   }
   /* Source: NumPy (Debian python3-numpy), write_array version (2, 0). */
   if (read_ok(&a, "v2_i2.npy", NULL)) {
-    CHECK(a.t.dtype == RC_DTYPE_INT16 && a.t.rank == 2 && a.t.dims[0] == 3 && a.t.dims[1] == 4);
+    CHECK_EQ(a.t.dtype, RC_DTYPE_INT16);
+    CHECK_EQ(a.t.rank, 2);
+    CHECK_EQ(a.t.dims[0], 3);
+    CHECK_EQ(a.t.dims[1], 4);
     for (int i = 0; i < 12; i++) CHECK_INT(((int16_t *)a.t.data)[i], i - 6);
     rc_array_free(&a);
   }
   /* Source: NumPy (Debian python3-numpy), write_array version (3, 0). */
   if (read_ok(&a, "v3_u1.npy", NULL)) {
-    CHECK(a.t.dtype == RC_DTYPE_UINT8 && a.t.rank == 1 && a.t.dims[0] == 10);
+    CHECK_EQ(a.t.dtype, RC_DTYPE_UINT8);
+    CHECK_EQ(a.t.rank, 1);
+    CHECK_EQ(a.t.dims[0], 10);
     for (int i = 0; i < 10; i++) CHECK_INT(((uint8_t *)a.t.data)[i], i * 25);
     rc_array_free(&a);
   }
   /* Source: NumPy (Debian python3-numpy), np.save of a 0-d float64. */
   if (read_ok(&a, "scalar_f8.npy", NULL)) {
-    CHECK(a.t.dtype == RC_DTYPE_DOUBLE && a.t.rank == 0);
-    CHECK(*(double *)a.t.data == 3.5);
+    CHECK_EQ(a.t.dtype, RC_DTYPE_DOUBLE);
+    CHECK_EQ(a.t.rank, 0);
+    CHECK_EQ(*(double *)a.t.data, 3.5);
     rc_array_free(&a);
   }
 }
@@ -69,14 +79,15 @@ static void npz_every_dtype(void) {
   /* Source: NumPy (Debian python3-numpy), np.savez member order. */
   CHECK_INT(rc_npz_list(&names, &count, ref("dtypes.npz"), &e), RC_OK);
   CHECK_INT(count, 9);
-  if (count == 9) CHECK(!strcmp(names[0], "b1.npy") && !strcmp(names[8], "f8.npy"));
+  if (count == 9) { CHECK_STR_EQ(names[0], "b1.npy"); CHECK_STR_EQ(names[8], "f8.npy"); }
   rc_data_names_free(names);
   for (size_t k = 0; k < sizeof m / sizeof *m; k++) {
     rc_array a;
     if (!read_ok(&a, "dtypes.npz", m[k].member)) continue;
     /* Source: NumPy (Debian python3-numpy), np.savez, values per the script. */
     CHECK_INT(a.t.dtype, m[k].dt);
-    CHECK(a.t.rank == 1 && a.t.dims[0] == 8);
+    CHECK_EQ(a.t.rank, 1);
+    CHECK_EQ(a.t.dims[0], 8);
     float f[8];
     CHECK_INT(rc_data_to_float(f, &a, 0, 8, NULL, &e), RC_OK);
     for (int i = 0; i < 8; i++) {
@@ -95,12 +106,16 @@ static void npz_compressed(void) {
   rc_err e = {0};
   /* Source: NumPy (Debian python3-numpy), np.savez_compressed (deflate). */
   if (read_ok(&x, "compressed.npz", "x")) {
-    CHECK(x.t.dtype == RC_DTYPE_DOUBLE && x.t.rank == 2 && x.t.dims[0] == 30 && x.t.dims[1] == 100);
+    CHECK_EQ(x.t.dtype, RC_DTYPE_DOUBLE);
+    CHECK_EQ(x.t.rank, 2);
+    CHECK_EQ(x.t.dims[0], 30);
+    CHECK_EQ(x.t.dims[1], 100);
     for (int i = 0; i < 3000; i++) CHECK_NEAR(((double *)x.t.data)[i], (i % 17) * 0.125, 0, 0);
     rc_array_free(&x);
   }
   if (read_ok(&y, "compressed.npz", "y.npy")) {
-    CHECK(y.t.dtype == RC_DTYPE_INT64 && y.t.dims[0] == 30);
+    CHECK_EQ(y.t.dtype, RC_DTYPE_INT64);
+    CHECK_EQ(y.t.dims[0], 30);
     CHECK_INT(rc_labels_to_int32(&y32, &y, 30, 10, &e), RC_OK);
     for (int i = 0; i < 30 && y32.t.data; i++) CHECK_INT(((int32_t *)y32.t.data)[i], i % 10);
     rc_array_free(&y32);
@@ -108,7 +123,9 @@ static void npz_compressed(void) {
   }
   /* Float labels of shape (N, 1). */
   if (read_ok(&yf, "compressed.npz", "yf")) {
-    CHECK(yf.t.dtype == RC_DTYPE_FLOAT && yf.t.rank == 2 && yf.t.dims[1] == 1);
+    CHECK_EQ(yf.t.dtype, RC_DTYPE_FLOAT);
+    CHECK_EQ(yf.t.rank, 2);
+    CHECK_EQ(yf.t.dims[1], 1);
     CHECK_INT(rc_labels_to_int32(&y32, &yf, 30, 10, &e), RC_OK);
     if (y32.t.data) CHECK_INT(((int32_t *)y32.t.data)[29], 9);
     rc_array_free(&y32);
@@ -133,12 +150,19 @@ static void idx_gzip(void) {
   rc_array a;
   /* Source: IDX written by the script (Python struct + gzip, NumPy '>' dtypes). */
   if (read_ok(&a, "images-idx3-ubyte.gz", NULL)) {
-    CHECK(a.t.dtype == RC_DTYPE_UINT8 && a.t.rank == 3 && a.t.dims[0] == 4 && a.t.dims[1] == 5 && a.t.dims[2] == 6);
+    CHECK_EQ(a.t.dtype, RC_DTYPE_UINT8);
+    CHECK_EQ(a.t.rank, 3);
+    CHECK_EQ(a.t.dims[0], 4);
+    CHECK_EQ(a.t.dims[1], 5);
+    CHECK_EQ(a.t.dims[2], 6);
     for (int i = 0; i < 120; i++) CHECK_INT(((uint8_t *)a.t.data)[i], (i * 7) % 256);
     rc_array_free(&a);
   }
   if (read_ok(&a, "floats-idx2.gz", NULL)) {
-    CHECK(a.t.dtype == RC_DTYPE_FLOAT && a.t.rank == 2 && a.t.dims[0] == 3 && a.t.dims[1] == 4);
+    CHECK_EQ(a.t.dtype, RC_DTYPE_FLOAT);
+    CHECK_EQ(a.t.rank, 2);
+    CHECK_EQ(a.t.dims[0], 3);
+    CHECK_EQ(a.t.dims[1], 4);
     for (int i = 0; i < 12; i++) CHECK_NEAR(((float *)a.t.data)[i], i * 0.5 - 1, 0, 0);
     rc_array_free(&a);
   }
@@ -148,13 +172,18 @@ static void tensorproto_files(void) {
   rc_array a;
   /* Source: onnx (Debian python3-onnx), numpy_helper.from_array: raw_data. */
   if (read_ok(&a, "raw_f4.pb", NULL)) {
-    CHECK(a.t.dtype == RC_DTYPE_FLOAT && a.t.rank == 2 && a.t.dims[0] == 2 && a.t.dims[1] == 3);
+    CHECK_EQ(a.t.dtype, RC_DTYPE_FLOAT);
+    CHECK_EQ(a.t.rank, 2);
+    CHECK_EQ(a.t.dims[0], 2);
+    CHECK_EQ(a.t.dims[1], 3);
     for (int i = 0; i < 6; i++) CHECK_NEAR(((float *)a.t.data)[i], i * 1.5 - 2, 0, 0);
     rc_array_free(&a);
   }
   /* Source: onnx (Debian python3-onnx), helper.make_tensor: int64_data. */
   if (read_ok(&a, "typed_i64.pb", NULL)) {
-    CHECK(a.t.dtype == RC_DTYPE_INT64 && a.t.rank == 1 && a.t.dims[0] == 4);
+    CHECK_EQ(a.t.dtype, RC_DTYPE_INT64);
+    CHECK_EQ(a.t.rank, 1);
+    CHECK_EQ(a.t.dims[0], 4);
     const int64_t want[4] = {-7, 0, 9, 1LL << 40};
     for (int i = 0; i < 4; i++) CHECK_INT(((int64_t *)a.t.data)[i], want[i]);
     rc_array_free(&a);

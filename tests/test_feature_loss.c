@@ -136,7 +136,7 @@ static double eval_scaled(ctx *c, int grads, float scale) {
   }
   if (st != RC_OK) fprintf(stderr, "loss failed: %s\n", e.msg);
   CHECK_INT(st, RC_OK);
-  for (size_t i = 0; i < GUARD; i++) CHECK(c->work[c->work_n + i] == GUARD_VALUE);
+  for (size_t i = 0; i < GUARD; i++) CHECK_EQ(c->work[c->work_n + i], GUARD_VALUE);
   return loss;
 }
 
@@ -146,7 +146,7 @@ static double eval(ctx *c, int grads) { return eval_scaled(c, grads, 1.0f); }
  * gradient g; error relative to the largest analytic entry. */
 static void fd_check(ctx *c, const char *what, float *x, const float *g, int64_t n, double eps,
                      double tol) {
-  double big = 1e-12, worst = 0.0;
+  double big = 1e-12, worst = 0.0, worst_num = 0.0;
   int64_t at = -1;
   for (int64_t i = 0; i < n; i++)
     if (fabs(g[i]) > big) big = fabs(g[i]);
@@ -164,7 +164,7 @@ static void fd_check(ctx *c, const char *what, float *x, const float *g, int64_t
   if (worst > tol)
     fprintf(stderr, "gradcheck %s: worst relative error %.3g at [%lld] (analytic %.6g)\n", what,
             worst, (long long)at, at >= 0 ? g[at] : 0.0);
-  CHECK(worst <= tol);
+  CHECK_LE(worst, tol);
 }
 
 /* Analytic gradients, then every differentiated input against finite
@@ -178,7 +178,7 @@ static void gradcheck(ctx *c, const char *what) {
   float *gs1 = malloc(sizeof(float) * (size_t)ns);
   memcpy(gs1, c->gs, sizeof(float) * (size_t)ns);
   /* The loss does not depend on whether gradients were asked for. */
-  CHECK(eval(c, 0) == l0);
+  CHECK_EQ(eval(c, 0), l0);
   /* ADD semantics with grad_scale: g + 2 g = 3 g. */
   eval_scaled(c, 1, 2.0f);
   for (int64_t i = 0; i < ns; i++) CHECK_NEAR(c->gs[i], 3.0 * gs1[i], 1e-6, 1e-5);
@@ -324,7 +324,7 @@ static double call_hint(float *gs, const float *s, const float *t, const float *
   float *work = (float *)wk;
   double loss = NAN;
   rc_err e;
-  CHECK(rc_loss_hint_workspace_floats(&sv, &tv) <= 2 * sizeof wk / sizeof wk[0]);
+  CHECK_LE(rc_loss_hint_workspace_floats(&sv, &tv), 2 * sizeof wk / sizeof wk[0]);
   CHECK_INT(rc_loss_hint(&loss, gs, NULL, NULL, 1.0f, s, t, w, b, &sv, &tv, work, &e), RC_OK);
   return loss;
 }
@@ -335,8 +335,8 @@ static void hint_by_hand(void) {
   float x[12], g[12] = {0}, w[9], b[3];
   fill(x, 12, 5);
   rc_feat_view v = view(2, 3, 2, CF);
-  CHECK(call_hint(g, x, x, NULL, NULL, v, v) == 0.0);
-  for (int i = 0; i < 12; i++) CHECK(g[i] == 0.0f);
+  CHECK_EQ(call_hint(g, x, x, NULL, NULL, v, v), 0.0);
+  for (int i = 0; i < 12; i++) CHECK_EQ(g[i], 0.0f);
   rc_err e;
   CHECK_INT(rc_feat_projector_init(w, b, 3, 3, RC_FEAT_INIT_AUTO, 1, &e), RC_OK);
   CHECK_NEAR(call_hint(g, x, x, w, b, v, v), 0.0, 1e-12, 0);
@@ -362,21 +362,21 @@ static void projector_init(void) {
   CHECK_INT(rc_feat_projector_init(w1, b, CT, CS, RC_FEAT_INIT_AUTO, 7, &e), RC_OK);
   CHECK_INT(rc_feat_projector_init(w2, NULL, CT, CS, RC_FEAT_INIT_UNIFORM, 7, &e), RC_OK);
   CHECK_INT(rc_feat_projector_init(w3, NULL, CT, CS, RC_FEAT_INIT_UNIFORM, 8, &e), RC_OK);
-  CHECK(!memcmp(w1, w2, sizeof w1));
-  CHECK(memcmp(w1, w3, sizeof w1) != 0);
+  CHECK_MEM_EQ(w1, w2, sizeof w1);
+  CHECK_MEM_NE(w1, w3, sizeof w1);
   double bound = sqrt(3.0 / CS), mean = 0, var = 0;
   for (int i = 0; i < CT * CS; i++) {
-    CHECK(fabs(w1[i]) <= bound);
+    CHECK_LE(fabs(w1[i]), bound);
     mean += w1[i];
     var += (double)w1[i] * w1[i];
   }
   mean /= CT * CS, var /= CT * CS;
   CHECK_NEAR(mean, 0.0, 0.02, 0);
   CHECK_NEAR(var, 1.0 / CS, 0, 0.1);
-  for (int i = 0; i < CT; i++) CHECK(b[i] == 0.0f);
+  for (int i = 0; i < CT; i++) CHECK_EQ(b[i], 0.0f);
   float id[9];
   CHECK_INT(rc_feat_projector_init(id, NULL, 3, 3, RC_FEAT_INIT_AUTO, 7, &e), RC_OK);
-  for (int i = 0; i < 9; i++) CHECK(id[i] == (i % 4 == 0 ? 1.0f : 0.0f));
+  for (int i = 0; i < 9; i++) CHECK_EQ(id[i], (i % 4 == 0 ? 1.0f : 0.0f));
   CHECK_INT(rc_feat_projector_init(id, NULL, 0, 3, RC_FEAT_INIT_AUTO, 7, &e), RC_ERR_SHAPE);
 }
 
@@ -390,7 +390,7 @@ static void projector_fit(void) {
   float s[N * CS * P] = {0}, t[N * CT * P], w[CT * CS], b[CT];
   fill(t, N * CT * P, 11);
   rc_feat_view sv = view(N, CS, P, CF), tv = view(N, CT, P, CF);
-  CHECK(rc_feat_projector_fit_workspace_doubles(CS, CT) <= 256);
+  CHECK_LE(rc_feat_projector_fit_workspace_doubles(CS, CT), 256);
   rc_err e;
   int fitted = 0;
   CHECK_INT(rc_feat_projector_fit(&fitted, w, b, s, t, &sv, &tv, fit_work, &e), RC_OK);
@@ -406,13 +406,14 @@ static void projector_fit(void) {
   CHECK_INT(rc_feat_projector_init(w, b, CT, CS, RC_FEAT_INIT_UNIFORM, 3, &e), RC_OK);
   double before = call_hint(NULL, s, t, w, b, sv, tv);
   CHECK_INT(rc_feat_projector_fit(&fitted, w, b, s, t, &sv, &tv, fit_work, &e), RC_OK);
-  CHECK(fitted && call_hint(NULL, s, t, w, b, sv, tv) < before);
+  CHECK(fitted);
+  CHECK_LT(call_hint(NULL, s, t, w, b, sv, tv), before);
   float kept[CT * CS];
   memcpy(kept, w, sizeof kept);
   s[4] = NAN;
   CHECK_INT(rc_feat_projector_fit(&fitted, w, b, s, t, &sv, &tv, fit_work, &e), RC_OK);
   CHECK_INT(fitted, 0);
-  CHECK(!memcmp(kept, w, sizeof kept));
+  CHECK_MEM_EQ(kept, w, sizeof kept);
   CHECK_INT(rc_feat_projector_fit(&fitted, w, NULL, s, t, &sv, &tv, fit_work, &e), RC_ERR_INVALID);
 }
 
@@ -428,8 +429,8 @@ static void boundary_by_hand(void) {
   rc_err e;
   CHECK_INT(rc_loss_boundary(&loss, g, NULL, NULL, 1.0f, fine, t, NULL, NULL, &v, &v, 1.0f, work, &e),
             RC_OK);
-  CHECK(loss == 0.0);
-  for (int i = 0; i < 4; i++) CHECK(g[i] == 0.0f);
+  CHECK_EQ(loss, 0.0);
+  for (int i = 0; i < 4; i++) CHECK_EQ(g[i], 0.0f);
   CHECK_INT(rc_loss_boundary(&loss, g, NULL, NULL, 1.0f, zero, t, NULL, NULL, &v, &v, 0.5f, work, &e),
             RC_OK);
   CHECK_NEAR(loss, 0.25, 1e-12, 0);
@@ -458,9 +459,9 @@ static void attention_by_hand(void) {
   t[4 + 1] = 0.25f; /* channel 1, position 1 */
   memset(g, 0, sizeof g);
   CHECK_INT(rc_loss_attention(&loss, g, 1.0f, s, t, &sv, &tv, 1000.0f, work, &e), RC_OK);
-  CHECK(loss == 0.0);
-  for (int i = 0; i < 8; i++) CHECK(g[i] == 0.0f);
-  CHECK(rc_loss_attention_workspace_floats(&sv, &tv) <= 2 * sizeof wk / sizeof wk[0]);
+  CHECK_EQ(loss, 0.0);
+  for (int i = 0; i < 8; i++) CHECK_EQ(g[i], 0.0f);
+  CHECK_LE(rc_loss_attention_workspace_floats(&sv, &tv), 2 * sizeof wk / sizeof wk[0]);
   rc_feat_view bad = view(1, 3, 16, CF);
   CHECK_INT(rc_loss_attention(&loss, g, 1.0f, s, t, &sv, &bad, 1000.0f, work, &e), RC_ERR_SHAPE);
   CHECK_STR_CONTAINS(e.msg, "equal spatial sizes");
@@ -483,7 +484,7 @@ static void fsp_by_hand(void) {
   CHECK_NEAR(g2[0], 5.5, 1e-5, 0);
   CHECK_NEAR(g2[1], 11.0, 1e-5, 0);
   CHECK_INT(rc_loss_fsp(&loss, NULL, NULL, 1.0f, f1, f2, f1, f2, &v, &v, &v, &v, work, &e), RC_OK);
-  CHECK(loss == 0.0);
+  CHECK_EQ(loss, 0.0);
   rc_feat_view wide = view(1, 2, 1, CF);
   float f3[2] = {1, 1};
   CHECK_INT(rc_loss_fsp(&loss, NULL, NULL, 1.0f, f1, f2, f3, f2, &v, &v, &wide, &v, work, &e),
@@ -521,10 +522,10 @@ static void rkd_by_hand(void) {
 
   float g[6] = {0};
   CHECK_INT(rc_loss_rkd_angle(&loss, g, 1.0f, eq, ri, 2, 2, 2, work, &e), RC_OK);
-  CHECK(loss == 0.0);
+  CHECK_EQ(loss, 0.0);
   CHECK_INT(rc_loss_rkd_distance(&loss, g, 1.0f, eq, ri, 1, 2, 2, work, &e), RC_OK);
-  CHECK(loss == 0.0);
-  for (int i = 0; i < 6; i++) CHECK(g[i] == 0.0f);
+  CHECK_EQ(loss, 0.0);
+  for (int i = 0; i < 6; i++) CHECK_EQ(g[i], 0.0f);
   /* Two coinciding students: distance 0 there, finite loss and gradient. */
   float dup[6] = {1, 2, 1, 2, 0, 0};
   CHECK_INT(rc_loss_rkd_angle(&loss, g, 1.0f, dup, ri, 3, 2, 2, work, &e), RC_OK);
@@ -550,12 +551,12 @@ static void attention_map_by_hand(void) {
   CHECK_INT(rc_loss_attention_map(&loss, g, 1.0f, u, oh, 1, 1, 1, 4, &e), RC_OK);
   CHECK_NEAR(loss, log(4.0), 1e-7, 0);
   CHECK_NEAR(g[2], -4.0, 1e-6, 0);
-  CHECK(g[0] == 0.0f);
+  CHECK_EQ(g[0], 0.0f);
   float s[4] = {0.5f, 0.5f, 0.0f, 0.0f};
   memset(g, 0, sizeof g);
   CHECK_INT(rc_loss_attention_map(&loss, g, 1.0f, s, oh, 1, 1, 1, 4, &e), RC_OK);
   CHECK_NEAR(loss, -log((double)RC_ATTN_KL_EPS), 1e-6, 1e-6);
-  for (int i = 0; i < 4; i++) CHECK(g[i] == 0.0f);
+  for (int i = 0; i < 4; i++) CHECK_EQ(g[i], 0.0f);
   CHECK_INT(rc_loss_attention_map(&loss, g, 1.0f, s, oh, 1, 0, 1, 4, &e), RC_ERR_SHAPE);
 }
 
@@ -567,7 +568,9 @@ static void weight_anchor_by_hand(void) {
   rc_err e;
   CHECK_INT(rc_loss_weight_anchor(&loss, g, 1.0f, w, w0, mask, 3, &e), RC_OK);
   CHECK_NEAR(loss, 0.5 * (1 + 9), 1e-12, 0);
-  CHECK(g[0] == 1.0f && g[1] == 0.0f && g[2] == 3.0f);
+  CHECK_EQ(g[0], 1.0f);
+  CHECK_EQ(g[1], 0.0f);
+  CHECK_EQ(g[2], 3.0f);
   CHECK_INT(rc_loss_weight_anchor(&loss, NULL, 1.0f, w, w0, NULL, 3, &e), RC_OK);
   CHECK_NEAR(loss, 7.0, 1e-12, 0);
 }
@@ -578,11 +581,20 @@ static void views_and_refusals(void) {
   rc_err e;
   int64_t d4[4] = {8, 16, 7, 5}, d3[3] = {8, 10, 32}, d2[2] = {8, 100}, bad[2] = {8, 0};
   CHECK_INT(rc_feat_view_from_dims(&v, d4, 4, &e), RC_OK);
-  CHECK(v.n == 8 && v.c == 16 && v.positions == 35 && v.layout == CF);
+  CHECK_EQ(v.n, 8);
+  CHECK_EQ(v.c, 16);
+  CHECK_EQ(v.positions, 35);
+  CHECK_EQ(v.layout, CF);
   CHECK_INT(rc_feat_view_from_dims(&v, d3, 3, &e), RC_OK);
-  CHECK(v.n == 8 && v.c == 32 && v.positions == 10 && v.layout == CL);
+  CHECK_EQ(v.n, 8);
+  CHECK_EQ(v.c, 32);
+  CHECK_EQ(v.positions, 10);
+  CHECK_EQ(v.layout, CL);
   CHECK_INT(rc_feat_view_from_dims(&v, d2, 2, &e), RC_OK);
-  CHECK(v.n == 8 && v.c == 100 && v.positions == 1 && v.layout == CL);
+  CHECK_EQ(v.n, 8);
+  CHECK_EQ(v.c, 100);
+  CHECK_EQ(v.positions, 1);
+  CHECK_EQ(v.layout, CL);
   CHECK_INT(rc_feat_view_from_dims(&v, bad, 2, &e), RC_ERR_SHAPE);
   CHECK_INT(rc_feat_view_from_dims(&v, d2, 1, &e), RC_ERR_SHAPE);
   int64_t huge[4] = {1 << 20, 1 << 20, 1 << 20, 1 << 20};

@@ -21,20 +21,6 @@ static void check_value(double got, const float *want) {
   if (want) CHECK_NEAR(got, want[0], 1e-7, 1e-5);
 }
 
-static void check_grad(const char *what, const float *got, const float *want, long n) {
-  if (!want) return;
-  double big = 0.0;
-  for (long i = 0; i < n; i++)
-    if (fabs(want[i]) > big) big = fabs(want[i]);
-  int bad = 0;
-  for (long i = 0; i < n; i++)
-    if (!(fabs(got[i] - want[i]) <= 1e-4 * fabs(want[i]) + 1e-6 * big)) {
-      if (bad++ < 3)
-        fprintf(stderr, "%s[%ld]: recoup %.9g, PyTorch %.9g\n", what, i, got[i], want[i]);
-    }
-  CHECK_INT(bad, 0);
-}
-
 static float *zeros(long n) { return calloc((size_t)n, sizeof(float)); }
 
 /* hint (Romero et al. 2015, FitNets) or boundary (Heo et al. 2019): one
@@ -51,7 +37,7 @@ static void projected(const char *name, int boundary, rc_feat_view sv, int64_t c
   const float *gw = proj ? R("gw", ct * sv.c) : NULL, *gb = proj ? R("gb", ct) : NULL;
 #undef R
   if (!s || !t || (proj && (!w || !b))) return;
-  CHECK(rc_loss_hint_workspace_floats(&sv, &tv) <= WORK_FLOATS);
+  CHECK_LE(rc_loss_hint_workspace_floats(&sv, &tv), WORK_FLOATS);
   float *ggs = zeros(ns), *ggw = zeros(ct * sv.c), *ggb = zeros(ct);
   double loss = -1;
   rc_err e;
@@ -61,10 +47,10 @@ static void projected(const char *name, int boundary, rc_feat_view sv, int64_t c
                                          t, w, b, &sv, &tv, work, &e);
   CHECK_INT(st, RC_OK);
   check_value(loss, l);
-  check_grad(name, ggs, gs, ns);
+  ref_check_grad(name, ggs, gs, ns);
   if (proj) {
-    check_grad("weight", ggw, gw, (long)(ct * sv.c));
-    check_grad("bias", ggb, gb, (long)ct);
+    ref_check_grad("weight", ggw, gw, (long)(ct * sv.c));
+    ref_check_grad("bias", ggb, gb, (long)ct);
   }
   free(ggs), free(ggw), free(ggb);
 }
@@ -100,7 +86,7 @@ static void attention_case(const char *name, rc_feat_view sv, rc_feat_view tv, f
   rc_err e;
   CHECK_INT(rc_loss_attention(&loss, g, 1.0f, s, t, &sv, &tv, beta, work, &e), RC_OK);
   check_value(loss, l);
-  check_grad(name, g, gs, ns);
+  ref_check_grad(name, g, gs, ns);
   free(g);
 }
 
@@ -124,14 +110,14 @@ static void fsp_case(const char *name, int64_t n, int64_t c1, int64_t c2, int64_
               *t2 = ref(k[3], (long)(n * c2 * pt)), *l = ref(k[4], 1), *g1 = ref(k[5], n1),
               *g2 = ref(k[6], n2);
   if (!s1 || !s2 || !t1 || !t2) return;
-  CHECK(rc_loss_fsp_workspace_floats(&s1v, &s2v) <= WORK_FLOATS);
+  CHECK_LE(rc_loss_fsp_workspace_floats(&s1v, &s2v), WORK_FLOATS);
   float *a = zeros(n1), *b = zeros(n2);
   double loss;
   rc_err e;
   CHECK_INT(rc_loss_fsp(&loss, a, b, 1.0f, s1, s2, t1, t2, &s1v, &s2v, &t1v, &t2v, work, &e), RC_OK);
   check_value(loss, l);
-  check_grad("fsp F1", a, g1, n1);
-  check_grad("fsp F2", b, g2, n2);
+  ref_check_grad("fsp F1", a, g1, n1);
+  ref_check_grad("fsp F2", b, g2, n2);
   free(a), free(b);
 }
 
@@ -149,17 +135,17 @@ static void rkd_matches_torch(void) {
   const float *dl = ref("rkd_dist_loss", 1), *dg = ref("rkd_dist_gs", N * DS);
   const float *al = ref("rkd_angle_loss", 1), *ag = ref("rkd_angle_gs", N * DS);
   if (!s || !t) return;
-  CHECK(rc_loss_rkd_workspace_floats(N) <= WORK_FLOATS);
+  CHECK_LE(rc_loss_rkd_workspace_floats(N), WORK_FLOATS);
   float g[N * DS] = {0};
   double loss;
   rc_err e;
   CHECK_INT(rc_loss_rkd_distance(&loss, g, 1.0f, s, t, N, DS, DT, work, &e), RC_OK);
   check_value(loss, dl);
-  check_grad("rkd distance", g, dg, N * DS);
+  ref_check_grad("rkd distance", g, dg, N * DS);
   memset(g, 0, sizeof g);
   CHECK_INT(rc_loss_rkd_angle(&loss, g, 1.0f, s, t, N, DS, DT, work, &e), RC_OK);
   check_value(loss, al);
-  check_grad("rkd angle", g, ag, N * DS);
+  ref_check_grad("rkd angle", g, ag, N * DS);
 }
 
 /* KL(teacher || student) over attention probabilities, with a teacher zero
@@ -174,7 +160,7 @@ static void attention_map_matches_torch(void) {
   rc_err e;
   CHECK_INT(rc_loss_attention_map(&loss, g, 1.0f, s, t, N, H, LQ, LK, &e), RC_OK);
   check_value(loss, l);
-  check_grad("attention map", g, gs, CNT);
+  ref_check_grad("attention map", g, gs, CNT);
 }
 
 /* L2-SP (Li, Grandvalet and Davoine 2018) with a mask. */
@@ -190,7 +176,7 @@ static void weight_anchor_matches_torch(void) {
   rc_err e;
   CHECK_INT(rc_loss_weight_anchor(&loss, g, 1.0f, s, t, mask, CNT, &e), RC_OK);
   check_value(loss, l);
-  check_grad("weight anchor", g, gs, CNT);
+  ref_check_grad("weight anchor", g, gs, CNT);
 }
 
 /* The least-squares start of a projector against the normal equations
@@ -205,14 +191,14 @@ static void fit_case(const char *name, rc_feat_view sv, int64_t ct) {
   const float *s = R("s", ns), *t = R("t", nt), *w = R("w", ct * sv.c), *b = R("b", ct);
 #undef R
   if (!s || !t || !w || !b) return;
-  CHECK(rc_feat_projector_fit_workspace_doubles(sv.c, ct) <= sizeof work_store / sizeof(double));
+  CHECK_LE(rc_feat_projector_fit_workspace_doubles(sv.c, ct), sizeof work_store / sizeof(double));
   float *gw = zeros(ct * sv.c), *gb = zeros(ct);
   int fitted = 0;
   rc_err e;
   CHECK_INT(rc_feat_projector_fit(&fitted, gw, gb, s, t, &sv, &tv, work_store, &e), RC_OK);
   CHECK_INT(fitted, 1);
-  check_grad("fitted weight", gw, w, (long)(ct * sv.c));
-  check_grad("fitted bias", gb, b, (long)ct);
+  ref_check_grad("fitted weight", gw, w, (long)(ct * sv.c));
+  ref_check_grad("fitted bias", gb, b, (long)ct);
   free(gw), free(gb);
 }
 

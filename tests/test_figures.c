@@ -60,8 +60,9 @@ static void formatter_shows_a_hundredfold_change(void) {
   rc__fmt_sig(a, sizeof a, 1e-5, 4, 0);
   rc__fmt_sig(b, sizeof b, 1e-7, 4, 0);
   printf("1e-5 -> %s, 1e-7 -> %s\n", a, b);
-  CHECK(strcmp(a, b) != 0);
-  CHECK(strcmp(b, "0") != 0 && !strstr(b, "0.0000"));
+  CHECK_STR_NE(a, b);
+  CHECK_STR_NE(b, "0");
+  CHECK_NULL(strstr(b, "0.0000"));
 }
 
 static rc_metrics val(double agreement, double kl, int has_labels, double top1, double ce) {
@@ -84,7 +85,7 @@ static void agreement_up_kl_up_is_not_better(void) {
          worse.kl);
   CHECK_INT(rc__select_better(&worse, &input, 1.0), 0);
   CHECK_INT(rc__select_better(&input, &worse, 1.0), 1);
-  CHECK(!strcmp(rc__select_rule_name(&input, 1.0), "kl"));
+  CHECK_STR_EQ(rc__select_rule_name(&input, 1.0), "kl");
 }
 
 /* A recorded run: the kept epoch is the one with the lowest KL, whatever
@@ -109,7 +110,7 @@ static void labels_mix_kl_and_cross_entropy(void) {
   double want = 0.9 * 0.10 + 0.1 * 0.50;
   CHECK_NEAR(rc__select_measure(&input, 0.9), want, 1e-15, 0);
   CHECK_INT(rc__select_better(&acc_up, &input, 0.9), 0);
-  CHECK(!strcmp(rc__select_rule_name(&input, 0.9), "kl+cross_entropy"));
+  CHECK_STR_EQ(rc__select_rule_name(&input, 0.9), "kl+cross_entropy");
   CHECK_NEAR(rc__select_measure(&input, 1.0), 0.10, 0, 0);
   rc_metrics ce_down = val(0.8, 0.11, 1, 0.80, 0.20); /* KL a little up, CE well down */
   printf("mix: input %.4f, candidate %.4f\n", rc__select_measure(&input, 0.9), rc__select_measure(&ce_down, 0.9));

@@ -30,7 +30,8 @@ static const struct {
                {"npy", rc_fuzz_npy},
                {"npz", rc_fuzz_npz},
                {"idx", rc_fuzz_idx},
-               {"tensorproto", rc_fuzz_tensorproto}};
+               {"tensorproto", rc_fuzz_tensorproto},
+               {"image", rc_fuzz_image}};
 
 static const char *source_dir(void) {
   const char *s = getenv("RECOUP_SOURCE_DIR");
@@ -86,7 +87,7 @@ static int replay_folder(const char *kind, int must_pass) {
       snprintf(path, sizeof path, "%s/%s", dir, names[i]);
       size_t len = 0;
       uint8_t *buf = read_file(path, &len);
-      CHECK(buf != NULL);
+      CHECK_NOT_NULL(buf);
       if (buf) {
         int st = targets[t].fn(buf, len);
         int want_ok = strncmp(names[i], "refused_", 8) != 0;
@@ -106,13 +107,13 @@ static int replay_folder(const char *kind, int must_pass) {
 static void regressions_end_cleanly(void) {
   int n = replay_folder("regressions", 0);
   printf("%d regression inputs replayed\n", n);
-  CHECK(n > 0);
+  CHECK_GT(n, 0);
 }
 
 static void seeds_are_valid_files(void) {
   int n = replay_folder("corpus", 1);
   printf("%d seed inputs read\n", n);
-  CHECK(n >= 5);
+  CHECK_GE(n, 5);
 }
 
 /* A model whose ConstantOfShape asks for 198M floats at plan time: the
@@ -123,7 +124,7 @@ static void plan_limit_refuses_huge_constant(void) {
   snprintf(path, sizeof path, "%s/tests/fuzz/regressions/onnx/constant_of_shape_792mb.onnx", source_dir());
   size_t n = 0;
   uint8_t *buf = read_file(path, &n);
-  CHECK(buf != NULL);
+  CHECK_NOT_NULL(buf);
   if (!buf) return;
   rc_err e;
   rc_model *m = NULL;
@@ -133,9 +134,9 @@ static void plan_limit_refuses_huge_constant(void) {
     rc_plan_opts o = {0};
     o.max_bytes = (size_t)64 << 20;
     rc_plan *p = NULL;
-    CHECK_INT(rc_plan_create(&p, &m->graph, &in, &o, &e), RC_ERR_LIMIT);
+    CHECK_INT(rc_plan_init(&p, &m->graph, &in, &o, &e), RC_ERR_LIMIT);
     CHECK_STR_CONTAINS(e.msg, "ConstantOfShape");
-    CHECK(p == NULL);
+    CHECK_NULL(p);
     rc_plan_free(p);
   }
   rc_model_free(m);

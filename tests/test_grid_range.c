@@ -83,7 +83,7 @@ static void recorded_and_observed(void) {
   CHECK_INT(rc__file_notes_parse(&notes, "{\"schema\":1,\"tensors\":{\"w.grid\":{\"min\":-3,\"max\":3}}}", NULL,
                                  "model.onnx", &e),
             RC_OK);
-  CHECK(rc__grid_range(&t.g, &notes, 0, RC_DTYPE_INT8, "w.grid", &r, &e) != RC_OK);
+  CHECK_FAILS(rc__grid_range(&t.g, &notes, 0, RC_DTYPE_INT8, "w.grid", &r, &e));
   printf("  refused: %s\n", e.msg);
   CHECK_STR_CONTAINS(e.msg, "w.grid");
   CHECK_STR_CONTAINS(e.msg, "[-7, 7]");
@@ -93,7 +93,7 @@ static void recorded_and_observed(void) {
   CHECK_INT(rc__file_notes_parse(&notes, "{\"schema\":1,\"tensors\":{\"w.grid\":{\"min\":-1e300,\"max\":2.5}}}",
                                  NULL, "model.onnx", &e),
             RC_OK);
-  CHECK(rc__grid_range(&t.g, &notes, 0, RC_DTYPE_INT8, "w.grid", &r, &e) != RC_OK);
+  CHECK_FAILS(rc__grid_range(&t.g, &notes, 0, RC_DTYPE_INT8, "w.grid", &r, &e));
   CHECK_STR_CONTAINS(e.msg, "within [-128, 127]");
   rc__file_notes_free(&notes);
 
@@ -102,7 +102,7 @@ static void recorded_and_observed(void) {
   CHECK_INT(rc__grid_range(&t.g, NULL, 0, RC_DTYPE_INT4, "w.grid", &r, &e), RC_OK);
   CHECK_INT(r.source, RC_RANGE_DTYPE);
   CHECK_INT(r.lo, -8);
-  CHECK(rc__file_notes_parse(&notes, "{\"tensors\":[]}", NULL, "model.onnx", &e) != RC_OK);
+  CHECK_FAILS(rc__file_notes_parse(&notes, "{\"tensors\":[]}", NULL, "model.onnx", &e));
   CHECK_STR_CONTAINS(e.msg, RC_RANGES_METADATA);
 }
 
@@ -118,14 +118,16 @@ static void mask_rule(void) {
          c.keep_zeros ? "pruned" : "trainable", c.rule);
   CHECK_INT(c.at_zero, 40);
   CHECK_INT(c.beside_zero, 4);
-  CHECK(c.keep_zeros && !strcmp(c.rule, "excess"));
+  CHECK(c.keep_zeros);
+  CHECK_STR_EQ(c.rule, "excess");
   /* 8 at zero, 8 beside: rounding. */
   for (int i = 0; i < 64; i++) w[i] = i < 8 ? 0 : i < 12 ? 1 : i < 16 ? -1 : (int8_t)(i % 2 ? 3 : -3);
   one_tensor_init(&t, w, 64);
   rc__mask_choose(RC_MASK_AUTO, NULL, "w.grid", &t.v.decl, 1, NULL, 1, 64, &c);
   printf("  auto, %lld at zero, %lld beside: %s (%s)\n", (long long)c.at_zero, (long long)c.beside_zero,
          c.keep_zeros ? "pruned" : "trainable", c.rule);
-  CHECK(!c.keep_zeros && !strcmp(c.rule, "rounding"));
+  CHECK(!c.keep_zeros);
+  CHECK_STR_EQ(c.rule, "rounding");
   rc__mask_choose(RC_MASK_ZEROS, NULL, "w.grid", &t.v.decl, 1, NULL, 1, 64, &c);
   CHECK(c.keep_zeros);
   /* The same integers around a zero point of 1 per channel (2 channels). */
@@ -138,11 +140,14 @@ static void mask_rule(void) {
   float f[4] = {0.0f, 0.5f, -0.25f, 0.0f};
   rc_tensor ft = {RC_DTYPE_FLOAT, 1, {4}, f};
   rc__mask_choose(RC_MASK_AUTO, NULL, "f", &ft, 0, NULL, 1, 1, &c);
-  CHECK(c.keep_zeros && c.at_zero == 2 && !strcmp(c.rule, "float"));
+  CHECK(c.keep_zeros);
+  CHECK_EQ(c.at_zero, 2);
+  CHECK_STR_EQ(c.rule, "float");
   rc__mask_choose(RC_MASK_NONE, NULL, "f", &ft, 0, NULL, 1, 1, &c);
   CHECK(!c.keep_zeros);
   rc_mask_mode m;
-  CHECK(rc__mask_mode_parse("zeros", &m) && m == RC_MASK_ZEROS);
+  CHECK(rc__mask_mode_parse("zeros", &m));
+  CHECK_EQ(m, RC_MASK_ZEROS);
   CHECK(!rc__mask_mode_parse("sometimes", &m));
 }
 

@@ -226,9 +226,9 @@ static void test_refusals(void) {
   oh_input(&c, RC_DTYPE_INT32, 1, d, NULL);
   CHECK_REFUSED(&c, RC_ERR_UNSUPPORTED, "int32");
   oh_free(&c);
-  CHECK(rc__op_find("HardSwish", "", 13) == NULL); /* new in opset 14 */
-  CHECK(rc__op_find("Gelu", "", 19) == NULL);      /* new in opset 20 */
-  CHECK(rc__op_find("Gelu", "", 21) != NULL);
+  CHECK_NULL(rc__op_find("HardSwish", "", 13)); /* new in opset 14 */
+  CHECK_NULL(rc__op_find("Gelu", "", 19));      /* new in opset 20 */
+  CHECK_NOT_NULL(rc__op_find("Gelu", "", 21));
 }
 
 int main(void) {

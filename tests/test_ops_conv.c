@@ -240,7 +240,7 @@ static void grad_case(const conv_setup *cs) {
   if (!(err < 2e-3))
     fprintf(stderr, "gradcheck %s (group %lld, %d-D): worst error %.3g\n", cs->op, (long long)cs->group,
             cs->nsp, err);
-  CHECK(err < 2e-3);
+  CHECK_LT(err, 2e-3);
   free(x);
   free(w);
   oh_free(&c);

@@ -243,7 +243,7 @@ static void run_case(const ref_case *rc) {
        * plane-local; ONNX Indices flatten over (N, C, spatial). */
       rc_tensor it;
       float *idx = load(rc->name, "idx", &it);
-      CHECK(idx != NULL);
+      CHECK_NOT_NULL(idx);
       if (idx) {
         int64_t per_plane = rc_tensor_numel(&it) / (it.dims[0] * it.dims[1]);
         int64_t in_plane = shape[0].dims[2] * shape[0].dims[3];

@@ -147,7 +147,7 @@ static void test_thread_count_invariance(void) {
     if (threads == 1)
       memcpy(first, grad_of(&c, 1), sizeof first);
     else
-      CHECK(memcmp(first, grad_of(&c, 1), sizeof first) == 0);
+      CHECK_MEM_EQ(first, grad_of(&c, 1), sizeof first);
     oh_free(&c);
   }
   omp_set_num_threads(omp_get_num_procs());
@@ -386,10 +386,10 @@ static void test_where(void) {
 }
 
 static void test_opset_ranges(void) {
-  CHECK(rc__op_find("Add", "", 9) != NULL);
-  CHECK(rc__op_find("Add", "", 21) != NULL);
-  CHECK(rc__op_find("Erf", "", 8) == NULL); /* Erf is new in opset 9 */
-  CHECK(rc__op_find("Where", "", 9) != NULL);
+  CHECK_NOT_NULL(rc__op_find("Add", "", 9));
+  CHECK_NOT_NULL(rc__op_find("Add", "", 21));
+  CHECK_NULL(rc__op_find("Erf", "", 8)); /* Erf is new in opset 9 */
+  CHECK_NOT_NULL(rc__op_find("Where", "", 9));
 }
 
 int main(void) {

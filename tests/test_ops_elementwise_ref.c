@@ -107,7 +107,7 @@ static void compare_grad(const char *what, const float *got, const ref_entry *r)
   }
   double rel = diff / (scale > 1e-12 ? scale : 1e-12);
   if (!(rel <= 1e-3)) fprintf(stderr, "%s vs " SOURCE ": relative error %.3g\n", what, rel);
-  CHECK(rel <= 1e-3);
+  CHECK_LE(rel, 1e-3);
 }
 
 typedef void (*case_hook)(oh_case *c);

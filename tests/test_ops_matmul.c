@@ -120,7 +120,7 @@ static void gemm_grad(int ta, int tb, float alpha, float beta, int crank, const 
   double err = oh_gradcheck(&c, crank >= 0 ? with_c : without_c, 1e-2);
   if (!(err < 2e-3))
     fprintf(stderr, "gradcheck Gemm transA %d transB %d C rank %d: worst %.3g\n", ta, tb, crank, err);
-  CHECK(err < 2e-3);
+  CHECK_LT(err, 2e-3);
   oh_free(&c);
 }
 
@@ -147,7 +147,7 @@ static void matmul_grad(int ra, const int64_t *da, int rb, const int64_t *db) {
   const int check[] = {0, 1, -1};
   double err = oh_gradcheck(&c, check, 1e-2);
   if (!(err < 2e-3)) fprintf(stderr, "gradcheck MatMul ranks %d x %d: worst %.3g\n", ra, rb, err);
-  CHECK(err < 2e-3);
+  CHECK_LT(err, 2e-3);
   free(a);
   free(b);
   oh_free(&c);

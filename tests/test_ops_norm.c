@@ -174,7 +174,7 @@ static void test_layernorm(void) {
   oh_input(&c, RC_DTYPE_FLOAT, 1, bad, NULL);
   CHECK_REFUSED(&c, RC_ERR_SHAPE, "Scale");
   oh_free(&c);
-  CHECK(rc__op_find("LayerNormalization", "", 16) == NULL); /* new in opset 17 */
+  CHECK_NULL(rc__op_find("LayerNormalization", "", 16)); /* new in opset 17 */
 }
 
 /* InstanceNormalization: per (n, c) statistics over the spatial dims.

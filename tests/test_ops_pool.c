@@ -264,7 +264,7 @@ static void pool_grad(const pool_setup *ps) {
   const int check[] = {0, -1};
   double err = oh_gradcheck(&c, check, 1e-2);
   if (!(err < 2e-3)) fprintf(stderr, "gradcheck %s %d-D: worst error %.3g\n", ps->op, ps->nsp, err);
-  CHECK(err < 2e-3);
+  CHECK_LT(err, 2e-3);
   free(x);
   oh_free(&c);
 }

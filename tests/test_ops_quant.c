@@ -15,8 +15,13 @@ static void test_round_half_even_and_saturate(void) {
   oh_input(&c, RC_DTYPE_INT8, 0, NULL, ((const int8_t[]){0}));
   CHECK(run_ok(&c));
   const int8_t *y = c.out_t[0].data;
-  CHECK(y[0] == 0 && y[1] == 2 && y[2] == 2 && y[3] == 0 && y[4] == -2);
-  CHECK(y[5] == 127 && y[6] == -128);
+  CHECK_EQ(y[0], 0);
+  CHECK_EQ(y[1], 2);
+  CHECK_EQ(y[2], 2);
+  CHECK_EQ(y[3], 0);
+  CHECK_EQ(y[4], -2);
+  CHECK_EQ(y[5], 127);
+  CHECK_EQ(y[6], -128);
   oh_free(&c);
   /* spec QuantizeLinear example: x [0 2 3 1000 -254 -1000], scale 2, zero point 128 (uint8) */
   oh_init(&c, "QuantizeLinear", 10);
@@ -25,7 +30,12 @@ static void test_round_half_even_and_saturate(void) {
   oh_input(&c, RC_DTYPE_UINT8, 0, NULL, ((const uint8_t[]){128}));
   CHECK(run_ok(&c));
   const uint8_t *u = c.out_t[0].data;
-  CHECK(u[0] == 128 && u[1] == 129 && u[2] == 130 && u[3] == 255 && u[4] == 1 && u[5] == 0);
+  CHECK_EQ(u[0], 128);
+  CHECK_EQ(u[1], 129);
+  CHECK_EQ(u[2], 130);
+  CHECK_EQ(u[3], 255);
+  CHECK_EQ(u[4], 1);
+  CHECK_EQ(u[5], 0);
   oh_free(&c);
   /* spec: without a zero point the output is uint8 with zero point 0 */
   oh_init(&c, "QuantizeLinear", 13);
@@ -34,7 +44,9 @@ static void test_round_half_even_and_saturate(void) {
   CHECK(run_ok(&c));
   CHECK_INT(c.out_t[0].dtype, RC_DTYPE_UINT8);
   u = c.out_t[0].data;
-  CHECK(u[0] == 0 && u[1] == 4 && u[2] == 255);
+  CHECK_EQ(u[0], 0);
+  CHECK_EQ(u[1], 4);
+  CHECK_EQ(u[2], 255);
   oh_free(&c);
 }
 
@@ -49,7 +61,7 @@ static void test_per_axis(void) {
   oh_input(&c, RC_DTYPE_FLOAT, 1, I64(3), F32(2, 4, 5));
   oh_input(&c, RC_DTYPE_UINT8, 1, I64(3), ((const uint8_t[]){84, 24, 196}));
   CHECK(run_ok(&c));
-  CHECK(memcmp(c.out_t[0].data, AX_Q, sizeof AX_Q) == 0);
+  CHECK_MEM_EQ(c.out_t[0].data, AX_Q, sizeof AX_Q);
   oh_free(&c);
   oh_init(&c, "DequantizeLinear", 13);
   oh_input(&c, RC_DTYPE_UINT8, 4, I64(1, 3, 3, 2), AX_Q);
@@ -64,13 +76,15 @@ static void test_per_axis(void) {
   oh_input(&c, RC_DTYPE_INT8, 2, I64(2, 2), ((const int8_t[]){1, 2, -3, 4}));
   oh_input(&c, RC_DTYPE_FLOAT, 1, I64(2), F32(0.5f, 2));
   CHECK(run_ok(&c));
-  CHECK(oh_out_f(&c, 0)[0] == 0.5f && oh_out_f(&c, 0)[1] == 4 && oh_out_f(&c, 0)[2] == -1.5f);
+  CHECK_EQ(oh_out_f(&c, 0)[0], 0.5f);
+  CHECK_EQ(oh_out_f(&c, 0)[1], 4);
+  CHECK_EQ(oh_out_f(&c, 0)[2], -1.5f);
   oh_free(&c);
   oh_init(&c, "DequantizeLinear", 13);
   oh_input(&c, RC_DTYPE_INT8, 2, I64(2, 4), NULL);
   oh_input(&c, RC_DTYPE_FLOAT, 1, I64(3), F32(1, 1, 1));
   rc_err e = {0};
-  CHECK(oh_run(&c, &e) == RC_ERR_SHAPE);
+  CHECK_STATUS(oh_run(&c, &e), RC_ERR_SHAPE);
   CHECK_STR_CONTAINS(e.msg, "DequantizeLinear");
   oh_free(&c);
 }
@@ -84,14 +98,18 @@ static void test_dequantize(void) {
   oh_input(&c, RC_DTYPE_UINT8, 0, NULL, ((const uint8_t[]){128}));
   CHECK(run_ok(&c));
   const float *y = oh_out_f(&c, 0);
-  CHECK(y[0] == -256 && y[1] == -250 && y[2] == 0 && y[3] == 254);
+  CHECK_EQ(y[0], -256);
+  CHECK_EQ(y[1], -250);
+  CHECK_EQ(y[2], 0);
+  CHECK_EQ(y[3], 254);
   oh_free(&c);
   /* int32 input (a bias), no zero point: y = x * s */
   oh_init(&c, "DequantizeLinear", 13);
   oh_input(&c, RC_DTYPE_INT32, 1, I64(3), ((const int32_t[]){-300, 0, 1000}));
   oh_input(&c, RC_DTYPE_FLOAT, 0, NULL, F32(0.5f));
   CHECK(run_ok(&c));
-  CHECK(oh_out_f(&c, 0)[0] == -150 && oh_out_f(&c, 0)[2] == 500);
+  CHECK_EQ(oh_out_f(&c, 0)[0], -150);
+  CHECK_EQ(oh_out_f(&c, 0)[2], 500);
   oh_free(&c);
 }
 
@@ -104,7 +122,10 @@ static void test_int4(void) {
   oh_input(&c, RC_DTYPE_INT4, 0, NULL, ((const int8_t[]){0}));
   CHECK(run_ok(&c));
   const int8_t *q = c.out_t[0].data;
-  CHECK(q[0] == -8 && q[1] == -8 && q[2] == 7 && q[3] == 7);
+  CHECK_EQ(q[0], -8);
+  CHECK_EQ(q[1], -8);
+  CHECK_EQ(q[2], 7);
+  CHECK_EQ(q[3], 7);
   oh_free(&c);
   /* uint4: [0, 15], with zero point 3 */
   oh_init(&c, "QuantizeLinear", 21);
@@ -113,21 +134,24 @@ static void test_int4(void) {
   oh_input(&c, RC_DTYPE_UINT4, 0, NULL, ((const uint8_t[]){3}));
   CHECK(run_ok(&c));
   const uint8_t *u = c.out_t[0].data;
-  CHECK(u[0] == 0 && u[1] == 4 && u[2] == 15);
+  CHECK_EQ(u[0], 0);
+  CHECK_EQ(u[1], 4);
+  CHECK_EQ(u[2], 15);
   oh_free(&c);
   oh_init(&c, "DequantizeLinear", 21);
   oh_input(&c, RC_DTYPE_INT4, 1, I64(2), ((const int8_t[]){-8, 7}));
   oh_input(&c, RC_DTYPE_FLOAT, 0, NULL, F32(0.25f));
   oh_input(&c, RC_DTYPE_INT4, 0, NULL, ((const int8_t[]){-1}));
   CHECK(run_ok(&c));
-  CHECK(oh_out_f(&c, 0)[0] == -1.75f && oh_out_f(&c, 0)[1] == 2.0f);
+  CHECK_EQ(oh_out_f(&c, 0)[0], -1.75f);
+  CHECK_EQ(oh_out_f(&c, 0)[1], 2.0f);
   oh_free(&c);
   /* int4 before opset 21 is refused */
   oh_init(&c, "DequantizeLinear", 19);
   oh_input(&c, RC_DTYPE_INT4, 1, I64(2), NULL);
   oh_input(&c, RC_DTYPE_FLOAT, 0, NULL, F32(0.25f));
   rc_err e = {0};
-  CHECK(oh_run(&c, &e) == RC_ERR_UNSUPPORTED);
+  CHECK_STATUS(oh_run(&c, &e), RC_ERR_UNSUPPORTED);
   oh_free(&c);
 }
 
@@ -139,7 +163,7 @@ static void test_bad_scales_and_zero_points(void) {
     oh_input(&c, RC_DTYPE_FLOAT, 1, I64(2), F32(1, 2));
     oh_input(&c, RC_DTYPE_FLOAT, 0, NULL, &bad[i]);
     rc_err e = {0};
-    CHECK(oh_run(&c, &e) == RC_ERR_INVALID);
+    CHECK_STATUS(oh_run(&c, &e), RC_ERR_INVALID);
     CHECK_STR_CONTAINS(e.msg, "node 'QuantizeLinear'");
     CHECK_STR_CONTAINS(e.msg, "scale");
     oh_free(&c);
@@ -153,17 +177,17 @@ static void test_bad_scales_and_zero_points(void) {
   c.in_t[1].data = NULL;
   c.node.def = rc__op_find("DequantizeLinear", "", 13);
   rc_err e = {0};
-  CHECK(c.node.def->infer(&c.node, (const rc_tensor *const *)c.in, c.out_t, &e) == RC_OK);
+  CHECK_STATUS(c.node.def->infer(&c.node, (const rc_tensor *const *)c.in, c.out_t, &e), RC_OK);
   c.in_t[1].data = keep;
   c.node.def = NULL;
-  CHECK(oh_run(&c, &e) == RC_ERR_INVALID);
+  CHECK_STATUS(oh_run(&c, &e), RC_ERR_INVALID);
   oh_free(&c);
   /* an int4 zero point held in a byte outside [-8, 7] */
   oh_init(&c, "DequantizeLinear", 21);
   oh_input(&c, RC_DTYPE_INT4, 1, I64(2), NULL);
   oh_input(&c, RC_DTYPE_FLOAT, 0, NULL, F32(1));
   oh_input(&c, RC_DTYPE_INT4, 0, NULL, ((const int8_t[]){9}));
-  CHECK(oh_run(&c, &e) == RC_ERR_INVALID);
+  CHECK_STATUS(oh_run(&c, &e), RC_ERR_INVALID);
   CHECK_STR_CONTAINS(e.msg, "zero point");
   oh_free(&c);
   /* blocked quantization is refused at load time */
@@ -171,7 +195,7 @@ static void test_bad_scales_and_zero_points(void) {
   oh_attr_int(&c, "block_size", 4);
   oh_input(&c, RC_DTYPE_FLOAT, 1, I64(8), NULL);
   oh_input(&c, RC_DTYPE_FLOAT, 1, I64(2), F32(1, 1));
-  CHECK(oh_run(&c, &e) == RC_ERR_UNSUPPORTED);
+  CHECK_STATUS(oh_run(&c, &e), RC_ERR_UNSUPPORTED);
   oh_free(&c);
 }
 
@@ -199,7 +223,12 @@ static void test_fake_quant_helpers(void) {
   const float s1 = 1;
   rc__fake_quant_backward(g, one, xs, 6, &s1, NULL, 1, 6, -2, 2);
   /* round: -3 -2 -3 0 2 (half to even) 3 */
-  CHECK(g[0] == 0 && g[1] == 1 && g[2] == 0 && g[3] == 1 && g[4] == 1 && g[5] == 0);
+  CHECK_EQ(g[0], 0);
+  CHECK_EQ(g[1], 1);
+  CHECK_EQ(g[2], 0);
+  CHECK_EQ(g[3], 1);
+  CHECK_EQ(g[4], 1);
+  CHECK_EQ(g[5], 0);
 }
 
 int main(void) {

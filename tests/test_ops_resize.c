@@ -29,7 +29,8 @@ static void test_nearest_spec_examples(void) {
   /* spec example resize_upsample_scales_nearest (half_pixel, round_prefer_floor) */
   resize_case(&c, 13, "nearest", NULL, X22, I64(1, 1, 2, 2), F32(1, 1, 2, 3), NULL);
   CHECK(run_ok(&c));
-  CHECK(c.out_t[0].dims[2] == 4 && c.out_t[0].dims[3] == 6);
+  CHECK_EQ(c.out_t[0].dims[2], 4);
+  CHECK_EQ(c.out_t[0].dims[3], 6);
   check_floats(oh_out_f(&c, 0), want, 24);
   oh_free(&c);
   /* spec example upsample_nearest (Upsample, opset 9) and Resize-10: scales
@@ -84,7 +85,7 @@ static void test_linear_coordinate_modes(void) {
   oh_free(&c);
   resize_case(&c, 18, "linear", "half_pixel_symmetric", X22, I64(1, 1, 1, 4), F32(1, 1, 1, 0.6f), NULL);
   rc_err e = {0};
-  CHECK(oh_run(&c, &e) == RC_ERR_UNSUPPORTED); /* not defined before opset 19 */
+  CHECK_STATUS(oh_run(&c, &e), RC_ERR_UNSUPPORTED); /* not defined before opset 19 */
   oh_free(&c);
 }
 
@@ -125,28 +126,29 @@ static void test_sizes_axes_and_refusals(void) {
   oh_input_absent(&c);
   oh_input(&c, RC_DTYPE_INT64, 1, I64(2), I64(1, 3));
   CHECK(run_ok(&c));
-  CHECK(c.out_t[0].dims[2] == 1 && c.out_t[0].dims[3] == 2);
+  CHECK_EQ(c.out_t[0].dims[2], 1);
+  CHECK_EQ(c.out_t[0].dims[3], 2);
   oh_free(&c);
   rc_err e = {0};
   /* both scales and sizes */
   resize_case(&c, 13, "nearest", NULL, X22, I64(1, 1, 2, 2), F32(1, 1, 2, 2), I64(1, 1, 4, 4));
-  CHECK(oh_run(&c, &e) == RC_ERR_INVALID);
+  CHECK_STATUS(oh_run(&c, &e), RC_ERR_INVALID);
   oh_free(&c);
   /* refused at load time, naming what is unsupported */
   resize_case(&c, 13, "cubic", NULL, X22, I64(1, 1, 2, 2), F32(1, 1, 2, 2), NULL);
-  CHECK(oh_run(&c, &e) == RC_ERR_UNSUPPORTED);
+  CHECK_STATUS(oh_run(&c, &e), RC_ERR_UNSUPPORTED);
   CHECK_STR_CONTAINS(e.msg, "cubic");
   oh_free(&c);
   resize_case(&c, 13, "linear", "tf_crop_and_resize", X22, I64(1, 1, 2, 2), F32(1, 1, 2, 2), NULL);
-  CHECK(oh_run(&c, &e) == RC_ERR_UNSUPPORTED);
+  CHECK_STATUS(oh_run(&c, &e), RC_ERR_UNSUPPORTED);
   CHECK_STR_CONTAINS(e.msg, "tf_crop_and_resize");
   oh_free(&c);
   resize_case(&c, 18, "linear", NULL, X22, I64(1, 1, 2, 2), F32(1, 1, 2, 2), NULL);
   oh_attr_int(&c, "antialias", 1);
-  CHECK(oh_run(&c, &e) == RC_ERR_UNSUPPORTED);
+  CHECK_STATUS(oh_run(&c, &e), RC_ERR_UNSUPPORTED);
   oh_free(&c);
   resize_case(&c, 13, "linear", NULL, X22, I64(1, 1, 2, 2), F32(1, 1, 0, 2), NULL);
-  CHECK(oh_run(&c, &e) == RC_ERR_INVALID); /* a zero scale */
+  CHECK_STATUS(oh_run(&c, &e), RC_ERR_INVALID); /* a zero scale */
   oh_free(&c);
 }
 
@@ -161,7 +163,7 @@ static void test_resize_gradients(void) {
       resize_case(&c, 13, modes[m], coords[m], x, I64(2, 2, 5, 4), NULL, down ? I64(2, 2, 3, 3) : I64(2, 2, 7, 9));
       double err = oh_gradcheck(&c, CHECK0, 1e-3);
       if (err >= 1e-3) fprintf(stderr, "mode %s %s down=%d err %g\n", modes[m], coords[m], down, err);
-      CHECK(err < 1e-3);
+      CHECK_LT(err, 1e-3);
       oh_free(&c);
     }
 }

@@ -21,8 +21,8 @@ static void test_reshape_zero_and_minus_one(void) {
   CHECK_INT(c.out_t[0].rank, 2);
   CHECK_INT(c.out_t[0].dims[0], 2);
   CHECK_INT(c.out_t[0].dims[1], 12);
-  CHECK(memcmp(oh_out_f(&c, 0), x, sizeof x) == 0);
-  CHECK(oh_gradcheck(&c, CHECK0, 1e-3) < 1e-3);
+  CHECK_MEM_EQ(oh_out_f(&c, 0), x, sizeof x);
+  CHECK_LT(oh_gradcheck(&c, CHECK0, 1e-3), 1e-3);
   oh_free(&c);
 }
 
@@ -43,7 +43,7 @@ static void test_reshape_allowzero(void) {
   oh_input(&c, RC_DTYPE_FLOAT, 2, I64(0, 3), NULL);
   oh_input(&c, RC_DTYPE_INT64, 1, I64(2), I64(0, -1));
   rc_err e = {0};
-  CHECK(oh_run(&c, &e) != RC_OK);
+  CHECK_FAILS(oh_run(&c, &e));
   CHECK_STR_CONTAINS(e.msg, "Reshape");
   oh_free(&c);
   /* without allowzero (opset 13) 0 copies the input's dim */
@@ -63,7 +63,7 @@ static void test_reshape_needs_plan_time_shape(void) {
   oh_input(&c, RC_DTYPE_INT64, 1, I64(2), I64(2, 3));
   c.in_t[1].data = NULL; /* known only at run time */
   rc_err e = {0};
-  CHECK(oh_run(&c, &e) == RC_ERR_UNSUPPORTED);
+  CHECK_STATUS(oh_run(&c, &e), RC_ERR_UNSUPPORTED);
   CHECK_STR_CONTAINS(e.msg, "before the first batch");
   oh_free(&c);
   /* 16-bit floats are refused (no float16 gradients or consumers) */
@@ -112,7 +112,7 @@ static void test_slice_clamped_ends(void) {
   slice_case(&c, 13, I64(1), I64(1000), I64(1), NULL, 1);
   CHECK(run_ok(&c));
   CHECK_INT(c.out_t[0].dims[1], 9);
-  CHECK(oh_out_f(&c, 0)[0] == 5.0f);
+  CHECK_EQ(oh_out_f(&c, 0)[0], 5.0f);
   oh_free(&c);
   /* spec example slice_start_out_of_bounds: x[:, 1000:1000] -> (20, 0, 5) */
   slice_case(&c, 13, I64(1000), I64(1000), I64(1), NULL, 1);
@@ -123,12 +123,13 @@ static void test_slice_clamped_ends(void) {
   slice_case(&c, 13, I64(-1), I64(-1000), I64(-1), I64(-1), 1);
   CHECK(run_ok(&c));
   CHECK_INT(c.out_t[0].dims[2], 5);
-  CHECK(oh_out_f(&c, 0)[0] == 4.0f && oh_out_f(&c, 0)[4] == 0.0f);
+  CHECK_EQ(oh_out_f(&c, 0)[0], 4.0f);
+  CHECK_EQ(oh_out_f(&c, 0)[4], 0.0f);
   oh_free(&c);
   /* step 0 is refused */
   slice_case(&c, 13, I64(0), I64(3), I64(0), I64(0), 1);
   rc_err e = {0};
-  CHECK(oh_run(&c, &e) != RC_OK);
+  CHECK_FAILS(oh_run(&c, &e));
   oh_free(&c);
 }
 
@@ -143,7 +144,8 @@ static void test_slice_opset9_attributes(void) {
   CHECK(run_ok(&c));
   CHECK_INT(c.out_t[0].dims[0], 1);
   CHECK_INT(c.out_t[0].dims[1], 3);
-  CHECK(oh_out_f(&c, 0)[0] == 5 && oh_out_f(&c, 0)[2] == 7);
+  CHECK_EQ(oh_out_f(&c, 0)[0], 5);
+  CHECK_EQ(oh_out_f(&c, 0)[2], 7);
   oh_free(&c);
 }
 
@@ -166,7 +168,7 @@ static void test_slice_int64_and_grad(void) {
   oh_input(&c, RC_DTYPE_INT64, 1, I64(2), I64(0, -6));
   oh_input(&c, RC_DTYPE_INT64, 1, I64(2), I64(1, 2));
   oh_input(&c, RC_DTYPE_INT64, 1, I64(2), I64(-1, -2));
-  CHECK(oh_gradcheck(&c, CHECK0, 1e-3) < 1e-3);
+  CHECK_LT(oh_gradcheck(&c, CHECK0, 1e-3), 1e-3);
   oh_free(&c);
 }
 
@@ -246,7 +248,7 @@ static void test_pad_negative_and_attr_forms(void) {
   oh_free(&c);
   pad_case(&c, 18, "wrap", I64(0, 1, 0, 0), 4);
   rc_err e = {0};
-  CHECK(oh_run(&c, &e) == RC_ERR_UNSUPPORTED);
+  CHECK_STATUS(oh_run(&c, &e), RC_ERR_UNSUPPORTED);
   oh_free(&c);
   /* int64 data with an int64 constant */
   oh_init(&c, "Pad", 13);
@@ -255,7 +257,9 @@ static void test_pad_negative_and_attr_forms(void) {
   oh_input(&c, RC_DTYPE_INT64, 0, NULL, I64(-7));
   CHECK(run_ok(&c));
   CHECK_INT(c.out_t[0].dims[0], 5);
-  CHECK(out_i64(&c, 0)[0] == -7 && out_i64(&c, 0)[1] == 5 && out_i64(&c, 0)[4] == -7);
+  CHECK_EQ(out_i64(&c, 0)[0], -7);
+  CHECK_EQ(out_i64(&c, 0)[1], 5);
+  CHECK_EQ(out_i64(&c, 0)[4], -7);
   oh_free(&c);
 }
 
@@ -270,7 +274,7 @@ static void test_pad_gradients(void) {
     oh_input(&c, RC_DTYPE_FLOAT, 3, I64(2, 3, 4), x);
     oh_input(&c, RC_DTYPE_INT64, 1, I64(6), I64(0, 2, -1, 1, 2, 3));
     double err = oh_gradcheck(&c, CHECK0, 1e-3);
-    CHECK(err < 1e-3);
+    CHECK_LT(err, 1e-3);
     oh_free(&c);
   }
 }
@@ -305,7 +309,7 @@ static void test_gather(void) {
   oh_input(&c, RC_DTYPE_FLOAT, 2, I64(3, 2), data);
   oh_input(&c, RC_DTYPE_INT64, 1, I64(1), I64(3));
   rc_err e = {0};
-  CHECK(oh_run(&c, &e) == RC_ERR_INVALID);
+  CHECK_STATUS(oh_run(&c, &e), RC_ERR_INVALID);
   CHECK_STR_CONTAINS(e.msg, "node 'Gather'");
   oh_free(&c);
   /* scalar index on a shape vector (Shape -> Gather) */
@@ -323,7 +327,7 @@ static void test_gather(void) {
   oh_attr_int(&c, "axis", 1);
   oh_input(&c, RC_DTYPE_FLOAT, 3, I64(2, 4, 3), x);
   oh_input(&c, RC_DTYPE_INT64, 2, I64(2, 2), I64(1, -3, 3, 0));
-  CHECK(oh_gradcheck(&c, CHECK0, 1e-3) < 1e-3);
+  CHECK_LT(oh_gradcheck(&c, CHECK0, 1e-3), 1e-3);
   oh_free(&c);
 }
 
@@ -362,14 +366,18 @@ static void test_cast(void) {
   oh_attr_int(&c, "to", RC_DTYPE_INT64);
   oh_input(&c, RC_DTYPE_FLOAT, 1, I64(4), F32(-2.7f, 2.7f, -0.5f, 7.0f));
   CHECK(run_ok(&c));
-  CHECK(out_i64(&c, 0)[0] == -2 && out_i64(&c, 0)[1] == 2 && out_i64(&c, 0)[2] == 0 && out_i64(&c, 0)[3] == 7);
+  CHECK_EQ(out_i64(&c, 0)[0], -2);
+  CHECK_EQ(out_i64(&c, 0)[1], 2);
+  CHECK_EQ(out_i64(&c, 0)[2], 0);
+  CHECK_EQ(out_i64(&c, 0)[3], 7);
   oh_free(&c);
   /* int64 -> float (the Div/Cast pattern of computed shapes) */
   oh_init(&c, "Cast", 13);
   oh_attr_int(&c, "to", RC_DTYPE_FLOAT);
   oh_input(&c, RC_DTYPE_INT64, 1, I64(2), I64(224, -3));
   CHECK(run_ok(&c));
-  CHECK(oh_out_f(&c, 0)[0] == 224.0f && oh_out_f(&c, 0)[1] == -3.0f);
+  CHECK_EQ(oh_out_f(&c, 0)[0], 224.0f);
+  CHECK_EQ(oh_out_f(&c, 0)[1], -3.0f);
   oh_free(&c);
   /* to bool: nonzero is true; int64 -> int8 wraps as NumPy's astype (300 -> 44) */
   oh_init(&c, "Cast", 13);
@@ -377,7 +385,9 @@ static void test_cast(void) {
   oh_input(&c, RC_DTYPE_FLOAT, 1, I64(3), F32(0.0f, -0.1f, 2.0f));
   CHECK(run_ok(&c));
   const uint8_t *b = c.out_t[0].data;
-  CHECK(b[0] == 0 && b[1] == 1 && b[2] == 1);
+  CHECK_EQ(b[0], 0);
+  CHECK_EQ(b[1], 1);
+  CHECK_EQ(b[2], 1);
   oh_free(&c);
   oh_init(&c, "Cast", 13);
   oh_attr_int(&c, "to", RC_DTYPE_INT8);
@@ -391,7 +401,7 @@ static void test_cast(void) {
   oh_attr_int(&c, "to", RC_DTYPE_STRING);
   oh_input(&c, RC_DTYPE_FLOAT, 1, I64(1), NULL);
   rc_err e = {0};
-  CHECK(oh_run(&c, &e) == RC_ERR_UNSUPPORTED);
+  CHECK_STATUS(oh_run(&c, &e), RC_ERR_UNSUPPORTED);
   oh_free(&c);
   /* float -> float is differentiable (identity) */
   float x[6];
@@ -399,7 +409,7 @@ static void test_cast(void) {
   oh_init(&c, "Cast", 13);
   oh_attr_int(&c, "to", RC_DTYPE_FLOAT);
   oh_input(&c, RC_DTYPE_FLOAT, 1, I64(6), x);
-  CHECK(oh_gradcheck(&c, CHECK0, 1e-3) < 1e-3);
+  CHECK_LT(oh_gradcheck(&c, CHECK0, 1e-3), 1e-3);
   oh_free(&c);
 }
 
@@ -416,7 +426,7 @@ static void test_constant_forms(void) {
   oh_attr_float(&c, "value_float", 0.25f);
   CHECK(run_ok(&c));
   CHECK_INT(c.out_t[0].rank, 0);
-  CHECK(oh_out_f(&c, 0)[0] == 0.25f);
+  CHECK_EQ(oh_out_f(&c, 0)[0], 0.25f);
   oh_free(&c);
   oh_init(&c, "Constant", 13);
   oh_attr_tensor(&c, "value", RC_DTYPE_INT32, 2, I64(1, 2), ((const int32_t[]){7, 8}));
@@ -426,13 +436,13 @@ static void test_constant_forms(void) {
   oh_init(&c, "Constant", 13);
   oh_attr_string(&c, "value_string", "no");
   rc_err e = {0};
-  CHECK(oh_run(&c, &e) == RC_ERR_UNSUPPORTED);
+  CHECK_STATUS(oh_run(&c, &e), RC_ERR_UNSUPPORTED);
   CHECK_STR_CONTAINS(e.msg, "value_string");
   oh_free(&c);
   oh_init(&c, "Constant", 13);
   oh_attr_int(&c, "value_int", 1);
   oh_attr_float(&c, "value_float", 1);
-  CHECK(oh_run(&c, &e) == RC_ERR_INVALID); /* spec: exactly one value attribute */
+  CHECK_STATUS(oh_run(&c, &e), RC_ERR_INVALID); /* spec: exactly one value attribute */
   oh_free(&c);
 }
 
@@ -452,7 +462,7 @@ static void test_constant_of_shape(void) {
   CHECK(run_ok(&c));
   CHECK_INT(c.out_t[0].dtype, RC_DTYPE_FLOAT);
   CHECK_INT(c.out_t[0].rank, 0);
-  CHECK(oh_out_f(&c, 0)[0] == 0.0f);
+  CHECK_EQ(oh_out_f(&c, 0)[0], 0.0f);
   oh_free(&c);
 }
 
@@ -467,8 +477,10 @@ static void test_squeeze_unsqueeze(void) {
   oh_input(&c, RC_DTYPE_FLOAT, 2, I64(3, 4), x);
   CHECK(run_ok(&c));
   CHECK_INT(c.out_t[0].rank, 4);
-  CHECK(c.out_t[0].dims[0] == 1 && c.out_t[0].dims[1] == 3 && c.out_t[0].dims[3] == 1);
-  CHECK(oh_gradcheck(&c, CHECK0, 1e-3) < 1e-3);
+  CHECK_EQ(c.out_t[0].dims[0], 1);
+  CHECK_EQ(c.out_t[0].dims[1], 3);
+  CHECK_EQ(c.out_t[0].dims[3], 1);
+  CHECK_LT(oh_gradcheck(&c, CHECK0, 1e-3), 1e-3);
   oh_free(&c);
   oh_init(&c, "Unsqueeze", 13); /* axes input; a scalar index becomes 1-D (Gather -> Unsqueeze) */
   oh_input(&c, RC_DTYPE_INT64, 0, NULL, I64(32));
@@ -481,13 +493,13 @@ static void test_squeeze_unsqueeze(void) {
   oh_input(&c, RC_DTYPE_FLOAT, 4, I64(1, 3, 1, 4), x);
   CHECK(run_ok(&c));
   CHECK_INT(c.out_t[0].rank, 2);
-  CHECK(oh_gradcheck(&c, CHECK0, 1e-3) < 1e-3);
+  CHECK_LT(oh_gradcheck(&c, CHECK0, 1e-3), 1e-3);
   oh_free(&c);
   oh_init(&c, "Squeeze", 11);
   oh_attr_ints(&c, "axes", 1, I64(1));
   oh_input(&c, RC_DTYPE_FLOAT, 2, I64(3, 4), x);
   rc_err e = {0};
-  CHECK(oh_run(&c, &e) == RC_ERR_SHAPE); /* squeezing a dim that is not 1 */
+  CHECK_STATUS(oh_run(&c, &e), RC_ERR_SHAPE); /* squeezing a dim that is not 1 */
   oh_free(&c);
   oh_init(&c, "Squeeze", 13); /* from opset 13 axes is an input: an attribute is not ignored but refused */
   oh_attr_ints(&c, "axes", 1, I64(1));
@@ -510,18 +522,20 @@ static void test_flatten_identity_dropout(void) {
   oh_attr_int(&c, "axis", 0);
   oh_input(&c, RC_DTYPE_FLOAT, 3, I64(2, 3, 4), x);
   CHECK(run_ok(&c));
-  CHECK(c.out_t[0].dims[0] == 1 && c.out_t[0].dims[1] == 24);
+  CHECK_EQ(c.out_t[0].dims[0], 1);
+  CHECK_EQ(c.out_t[0].dims[1], 24);
   oh_free(&c);
   oh_init(&c, "Flatten", 13);
   oh_attr_int(&c, "axis", -1);
   oh_input(&c, RC_DTYPE_FLOAT, 3, I64(2, 3, 4), x);
   CHECK(run_ok(&c));
-  CHECK(c.out_t[0].dims[0] == 6 && c.out_t[0].dims[1] == 4);
-  CHECK(oh_gradcheck(&c, CHECK0, 1e-3) < 1e-3);
+  CHECK_EQ(c.out_t[0].dims[0], 6);
+  CHECK_EQ(c.out_t[0].dims[1], 4);
+  CHECK_LT(oh_gradcheck(&c, CHECK0, 1e-3), 1e-3);
   oh_free(&c);
   oh_init(&c, "Identity", 13);
   oh_input(&c, RC_DTYPE_FLOAT, 2, I64(4, 6), x);
-  CHECK(oh_gradcheck(&c, CHECK0, 1e-3) < 1e-3);
+  CHECK_LT(oh_gradcheck(&c, CHECK0, 1e-3), 1e-3);
   oh_free(&c);
   /* Dropout: identity; the mask is all true (bool from opset 10) */
   oh_init(&c, "Dropout", 13);
@@ -529,17 +543,17 @@ static void test_flatten_identity_dropout(void) {
   oh_input(&c, RC_DTYPE_FLOAT, 1, I64(5), x);
   oh_input(&c, RC_DTYPE_FLOAT, 0, NULL, F32(0.5f));
   CHECK(run_ok(&c));
-  CHECK(memcmp(oh_out_f(&c, 0), x, 5 * sizeof(float)) == 0);
+  CHECK_MEM_EQ(oh_out_f(&c, 0), x, 5 * sizeof(float));
   CHECK_INT(c.out_t[1].dtype, RC_DTYPE_BOOL);
-  CHECK(((uint8_t *)c.out_t[1].data)[4] == 1);
-  CHECK(oh_gradcheck(&c, CHECK0, 1e-3) < 1e-3);
+  CHECK_EQ(((uint8_t *)c.out_t[1].data)[4], 1);
+  CHECK_LT(oh_gradcheck(&c, CHECK0, 1e-3), 1e-3);
   oh_free(&c);
   oh_init(&c, "Dropout", 13); /* training_mode = true is refused: recoup runs Dropout as identity */
   oh_input(&c, RC_DTYPE_FLOAT, 1, I64(5), x);
   oh_input(&c, RC_DTYPE_FLOAT, 0, NULL, F32(0.5f));
   oh_input(&c, RC_DTYPE_BOOL, 0, NULL, ((const uint8_t[]){1}));
   rc_err e = {0};
-  CHECK(oh_run(&c, &e) == RC_ERR_UNSUPPORTED);
+  CHECK_STATUS(oh_run(&c, &e), RC_ERR_UNSUPPORTED);
   CHECK_STR_CONTAINS(e.msg, "training_mode");
   oh_free(&c);
   oh_init(&c, "Dropout", 13); /* a training_mode known only per batch is refused at plan time */
@@ -547,7 +561,7 @@ static void test_flatten_identity_dropout(void) {
   oh_input_absent(&c);
   oh_input(&c, RC_DTYPE_BOOL, 0, NULL, NULL);
   c.in_t[2].data = NULL;
-  CHECK(oh_run(&c, &e) == RC_ERR_UNSUPPORTED);
+  CHECK_STATUS(oh_run(&c, &e), RC_ERR_UNSUPPORTED);
   CHECK_STR_CONTAINS(e.msg, "input 2");
   oh_free(&c);
 }
@@ -569,7 +583,7 @@ static void test_transpose(void) {
       for (int w = 0; w < 5; w++)
         for (int ch = 0; ch < 3; ch++) bad += y[((n * 4 + h) * 5 + w) * 3 + ch] != x[((n * 3 + ch) * 4 + h) * 5 + w];
   CHECK_INT(bad, 0);
-  CHECK(oh_gradcheck(&c, CHECK0, 1e-3) < 1e-3);
+  CHECK_LT(oh_gradcheck(&c, CHECK0, 1e-3), 1e-3);
   oh_free(&c);
   /* default perm reverses the axes; a larger case exercises the tiled path */
   static float big[3 * 40 * 37];
@@ -577,7 +591,8 @@ static void test_transpose(void) {
   oh_init(&c, "Transpose", 13);
   oh_input(&c, RC_DTYPE_FLOAT, 3, I64(3, 40, 37), big);
   CHECK(run_ok(&c));
-  CHECK(c.out_t[0].dims[0] == 37 && c.out_t[0].dims[2] == 3);
+  CHECK_EQ(c.out_t[0].dims[0], 37);
+  CHECK_EQ(c.out_t[0].dims[2], 3);
   y = oh_out_f(&c, 0);
   bad = 0;
   for (int a = 0; a < 3; a++)
@@ -589,7 +604,8 @@ static void test_transpose(void) {
   oh_init(&c, "Transpose", 13);
   oh_input(&c, RC_DTYPE_INT64, 2, I64(2, 3), I64(1, 2, 3, 4, 5, 6));
   CHECK(run_ok(&c));
-  CHECK(out_i64(&c, 0)[1] == 4 && out_i64(&c, 0)[5] == 6);
+  CHECK_EQ(out_i64(&c, 0)[1], 4);
+  CHECK_EQ(out_i64(&c, 0)[5], 6);
   oh_free(&c);
 }
 
@@ -603,7 +619,9 @@ static void test_concat_split(void) {
   oh_input(&c, RC_DTYPE_INT64, 1, I64(2), I64(-1, 64));
   CHECK(run_ok(&c));
   CHECK_INT(c.out_t[0].dims[0], 3);
-  CHECK(out_i64(&c, 0)[0] == 8 && out_i64(&c, 0)[1] == -1 && out_i64(&c, 0)[2] == 64);
+  CHECK_EQ(out_i64(&c, 0)[0], 8);
+  CHECK_EQ(out_i64(&c, 0)[1], -1);
+  CHECK_EQ(out_i64(&c, 0)[2], 64);
   oh_free(&c);
   float a[12], b[8];
   oh_fill(a, 12, 1);
@@ -613,8 +631,9 @@ static void test_concat_split(void) {
   oh_input(&c, RC_DTYPE_FLOAT, 2, I64(4, 3), a);
   oh_input(&c, RC_DTYPE_FLOAT, 2, I64(4, 2), b);
   CHECK(run_ok(&c));
-  CHECK(oh_out_f(&c, 0)[3] == b[0] && oh_out_f(&c, 0)[5] == a[3]);
-  CHECK(oh_gradcheck(&c, (const int[]){0, 1, -1}, 1e-3) < 1e-3);
+  CHECK_EQ(oh_out_f(&c, 0)[3], b[0]);
+  CHECK_EQ(oh_out_f(&c, 0)[5], a[3]);
+  CHECK_LT(oh_gradcheck(&c, (const int[]){0, 1, -1}, 1e-3), 1e-3);
   oh_free(&c);
   /* Split: opset 11 attribute, 13 input, 18 num_outputs (last piece smaller) */
   float x[10];
@@ -624,14 +643,17 @@ static void test_concat_split(void) {
   oh_attr_ints(&c, "split", 2, I64(3, 7));
   oh_input(&c, RC_DTYPE_FLOAT, 1, I64(10), x);
   CHECK(run_ok(&c));
-  CHECK(c.out_t[0].dims[0] == 3 && c.out_t[1].dims[0] == 7 && oh_out_f(&c, 1)[0] == 3.0f);
+  CHECK_EQ(c.out_t[0].dims[0], 3);
+  CHECK_EQ(c.out_t[1].dims[0], 7);
+  CHECK_EQ(oh_out_f(&c, 1)[0], 3.0f);
   oh_free(&c);
   oh_init(&c, "Split", 13);
   c.n_out = 2;
   oh_input(&c, RC_DTYPE_FLOAT, 1, I64(10), x);
   oh_input(&c, RC_DTYPE_INT64, 1, I64(2), I64(6, 4));
   CHECK(run_ok(&c));
-  CHECK(c.out_t[1].dims[0] == 4 && oh_out_f(&c, 1)[0] == 6.0f);
+  CHECK_EQ(c.out_t[1].dims[0], 4);
+  CHECK_EQ(oh_out_f(&c, 1)[0], 6.0f);
   oh_free(&c);
   oh_init(&c, "Split", 18);
   c.n_out = 3;
@@ -639,15 +661,17 @@ static void test_concat_split(void) {
   oh_input(&c, RC_DTYPE_FLOAT, 2, I64(2, 5), x);
   oh_attr_int(&c, "axis", -1);
   CHECK(run_ok(&c));
-  CHECK(c.out_t[0].dims[1] == 2 && c.out_t[2].dims[1] == 1);
-  CHECK(oh_out_f(&c, 2)[0] == 4.0f && oh_out_f(&c, 2)[1] == 9.0f);
-  CHECK(oh_gradcheck(&c, CHECK0, 1e-3) < 1e-3);
+  CHECK_EQ(c.out_t[0].dims[1], 2);
+  CHECK_EQ(c.out_t[2].dims[1], 1);
+  CHECK_EQ(oh_out_f(&c, 2)[0], 4.0f);
+  CHECK_EQ(oh_out_f(&c, 2)[1], 9.0f);
+  CHECK_LT(oh_gradcheck(&c, CHECK0, 1e-3), 1e-3);
   oh_free(&c);
   oh_init(&c, "Split", 13); /* equal split that does not divide */
   c.n_out = 3;
   oh_input(&c, RC_DTYPE_FLOAT, 1, I64(10), x);
   rc_err e = {0};
-  CHECK(oh_run(&c, &e) == RC_ERR_SHAPE);
+  CHECK_STATUS(oh_run(&c, &e), RC_ERR_SHAPE);
   oh_free(&c);
 }
 
@@ -658,16 +682,22 @@ static void test_expand_tile(void) {
   oh_input(&c, RC_DTYPE_FLOAT, 2, I64(3, 1), F32(1, 2, 3));
   oh_input(&c, RC_DTYPE_INT64, 1, I64(3), I64(2, 1, 6));
   CHECK(run_ok(&c));
-  CHECK(c.out_t[0].rank == 3 && c.out_t[0].dims[0] == 2 && c.out_t[0].dims[1] == 3 && c.out_t[0].dims[2] == 6);
-  CHECK(oh_out_f(&c, 0)[6] == 2.0f && oh_out_f(&c, 0)[35] == 3.0f);
-  CHECK(oh_gradcheck(&c, CHECK0, 1e-3) < 1e-3);
+  CHECK_EQ(c.out_t[0].rank, 3);
+  CHECK_EQ(c.out_t[0].dims[0], 2);
+  CHECK_EQ(c.out_t[0].dims[1], 3);
+  CHECK_EQ(c.out_t[0].dims[2], 6);
+  CHECK_EQ(oh_out_f(&c, 0)[6], 2.0f);
+  CHECK_EQ(oh_out_f(&c, 0)[35], 3.0f);
+  CHECK_LT(oh_gradcheck(&c, CHECK0, 1e-3), 1e-3);
   oh_free(&c);
   /* the ConstantOfShape/Where -> Expand pattern on int64 with a shape of ones */
   oh_init(&c, "Expand", 13);
   oh_input(&c, RC_DTYPE_INT64, 1, I64(3), I64(4, 5, 6));
   oh_input(&c, RC_DTYPE_INT64, 1, I64(2), I64(2, 1));
   CHECK(run_ok(&c));
-  CHECK(c.out_t[0].dims[0] == 2 && c.out_t[0].dims[1] == 3 && out_i64(&c, 0)[5] == 6);
+  CHECK_EQ(c.out_t[0].dims[0], 2);
+  CHECK_EQ(c.out_t[0].dims[1], 3);
+  CHECK_EQ(out_i64(&c, 0)[5], 6);
   oh_free(&c);
   /* spec Tile example: [[0,1],[2,3]] repeats [2,2] */
   oh_init(&c, "Tile", 13);
@@ -675,13 +705,13 @@ static void test_expand_tile(void) {
   oh_input(&c, RC_DTYPE_INT64, 1, I64(2), I64(2, 2));
   CHECK(run_ok(&c));
   check_floats(oh_out_f(&c, 0), F32(0, 1, 0, 1, 2, 3, 2, 3, 0, 1, 0, 1, 2, 3, 2, 3), 16);
-  CHECK(oh_gradcheck(&c, CHECK0, 1e-3) < 1e-3);
+  CHECK_LT(oh_gradcheck(&c, CHECK0, 1e-3), 1e-3);
   oh_free(&c);
   oh_init(&c, "Tile", 13);
   oh_input(&c, RC_DTYPE_FLOAT, 2, I64(2, 2), F32(0, 1, 2, 3));
   oh_input(&c, RC_DTYPE_INT64, 1, I64(1), I64(2));
   rc_err e = {0};
-  CHECK(oh_run(&c, &e) == RC_ERR_SHAPE); /* repeats must match the rank */
+  CHECK_STATUS(oh_run(&c, &e), RC_ERR_SHAPE); /* repeats must match the rank */
   oh_free(&c);
 }
 
@@ -717,7 +747,8 @@ static void test_large_views(void) {
   oh_input(&c, RC_DTYPE_INT64, 1, I64(2), I64(1, 2));
   oh_input(&c, RC_DTYPE_INT64, 1, I64(2), I64(-1, 2));
   CHECK(run_ok(&c));
-  CHECK(c.out_t[0].dims[1] == B && c.out_t[0].dims[2] == (C - 1 + 1) / 2);
+  CHECK_EQ(c.out_t[0].dims[1], B);
+  CHECK_EQ(c.out_t[0].dims[2], (C - 1 + 1) / 2);
   int64_t oc = c.out_t[0].dims[2];
   run_backward(&c, NULL, (const int[]){0, -1});
   bad = 0;
@@ -772,7 +803,8 @@ static void test_shape_chain(void) {
   oh_input(&r, RC_DTYPE_FLOAT, 3, I64(2, 3, 4), x);
   oh_input(&r, RC_DTYPE_INT64, 1, I64(2), cc.out_t[0].data);
   CHECK(run_ok(&r));
-  CHECK(r.out_t[0].dims[0] == 2 && r.out_t[0].dims[1] == 12);
+  CHECK_EQ(r.out_t[0].dims[0], 2);
+  CHECK_EQ(r.out_t[0].dims[1], 12);
   oh_free(&s);
   oh_free(&g);
   oh_free(&u);

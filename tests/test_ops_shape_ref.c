@@ -108,16 +108,17 @@ static void compare_op(oh_case *c, const char *kase) {
   rc_err e = {0};
   rc_status s = oh_run(c, &e);
   if (s != RC_OK) fprintf(stderr, "%s: %s\n", kase, e.msg);
-  CHECK(s == RC_OK);
+  CHECK_STATUS(s, RC_OK);
   if (s != RC_OK) return;
-  CHECK(c->out_t[0].rank == y->rank && rc_tensor_numel(&c->out_t[0]) == y->n);
+  CHECK_EQ(c->out_t[0].rank, y->rank);
+  CHECK_EQ(rc_tensor_numel(&c->out_t[0]), y->n);
   if (rc_tensor_numel(&c->out_t[0]) != y->n) return;
   char what[128];
   snprintf(what, sizeof what, "%s forward", kase);
-  CHECK(worst_rel(what, oh_out_f(c, 0), y->data, y->n, 1e-4) <= 1e-4);
+  CHECK_LE(worst_rel(what, oh_out_f(c, 0), y->data, y->n, 1e-4), 1e-4);
   run_backward(c, dy->data, (const int[]){0, -1});
   snprintf(what, sizeof what, "%s gradient", kase);
-  CHECK(worst_rel(what, grad_of(c, 0), dx->data, dx->n, 1e-3) <= 1e-3);
+  CHECK_LE(worst_rel(what, grad_of(c, 0), dx->data, dx->n, 1e-3), 1e-3);
 }
 
 static void resize_ref(const char *kase, const char *mode, const char *coord, const char *nearest,
@@ -199,10 +200,10 @@ static void fq_ref(const char *kase, const float *scale, const int32_t *zero, in
   rc__fake_quant_forward(out, x->data, x->n, scale, zero, channels, inner, qmin, qmax);
   char what[128];
   snprintf(what, sizeof what, "%s forward", kase);
-  CHECK(worst_rel(what, out, y->data, y->n, 1e-4) <= 1e-4);
+  CHECK_LE(worst_rel(what, out, y->data, y->n, 1e-4), 1e-4);
   rc__fake_quant_backward(g, dy->data, x->data, x->n, scale, zero, channels, inner, qmin, qmax);
   snprintf(what, sizeof what, "%s gradient", kase);
-  CHECK(worst_rel(what, g, dx->data, dx->n, 1e-3) <= 1e-3);
+  CHECK_LE(worst_rel(what, g, dx->data, dx->n, 1e-3), 1e-3);
   free(out);
   free(g);
 }

@@ -127,7 +127,7 @@ static void shape_subgraph_is_folded(void) {
   for (int64_t batch = 1; batch <= 5; batch += 4) {
     rc_tensor in = {RC_DTYPE_FLOAT, 3, {batch, 2, 3}, NULL};
     rc_plan *p = NULL;
-    CHECK_INT(rc_plan_create(&p, &b.g, &in, NULL, &e), RC_OK);
+    CHECK_INT(rc_plan_init(&p, &b.g, &in, NULL, &e), RC_OK);
     if (!p) return;
     int concat = rc__graph_find_value(&b.g, "concat");
     CHECK(rc_plan_is_const(p, concat));
@@ -167,7 +167,7 @@ static void reverse_pass_matches_finite_differences(void) {
   rc_tensor in = {RC_DTYPE_FLOAT, 3, {3, 2, 3}, NULL};
   rc_plan_opts o = {.training = 1, .trainable = trainable, .keep = NULL, .bn_batch_stats = 0};
   rc_plan *p = NULL;
-  CHECK_INT(rc_plan_create(&p, &b.g, &in, &o, &e), RC_OK);
+  CHECK_INT(rc_plan_init(&p, &b.g, &in, &o, &e), RC_OK);
   if (!p) return;
   fill(rc_plan_tensor(p, b.g.inputs[0])->data, 18, 5);
   float r[12];
@@ -179,7 +179,7 @@ static void reverse_pass_matches_finite_differences(void) {
   CHECK_INT(rc_plan_backward(p, &e), RC_OK);
   float *gw = rc_plan_grad(p, wv)->data;
   float *wd = b.g.values[wv].decl.data;
-  CHECK(rc_plan_grad(p, b.g.inputs[0]) == NULL); /* the input needs no gradient */
+  CHECK_NULL(rc_plan_grad(p, b.g.inputs[0])); /* the input needs no gradient */
   for (int i = 0; i < 24; i++) {
     double l[2];
     for (int s = 0; s < 2; s++) {
@@ -211,14 +211,14 @@ static void inference_plans_reuse_memory(void) {
   CHECK_INT(rc__graph_finalize(&b.g, &e), RC_OK);
   rc_tensor in = {RC_DTYPE_FLOAT, 2, {16, 1000}, NULL};
   rc_plan *inf = NULL, *tr = NULL;
-  CHECK_INT(rc_plan_create(&inf, &b.g, &in, NULL, &e), RC_OK);
+  CHECK_INT(rc_plan_init(&inf, &b.g, &in, NULL, &e), RC_OK);
   rc_plan_opts o = {.training = 1, .trainable = NULL, .keep = NULL, .bn_batch_stats = 0};
-  CHECK_INT(rc_plan_create(&tr, &b.g, &in, &o, &e), RC_OK);
+  CHECK_INT(rc_plan_init(&tr, &b.g, &in, &o, &e), RC_OK);
   if (inf && tr) {
     size_t one = 16 * 1000 * sizeof(float);
     /* input + output + at most two live intermediates */
-    CHECK(rc_plan_bytes(inf) < 5 * one);
-    CHECK(rc_plan_bytes(tr) >= 9 * one);
+    CHECK_LT(rc_plan_bytes(inf), 5 * one);
+    CHECK_GE(rc_plan_bytes(tr), 9 * one);
     float *x = rc_plan_tensor(inf, b.g.inputs[0])->data;
     for (int i = 0; i < 16000; i++) x[i] = (float)(i % 7) - 3.0f;
     CHECK_INT(rc_plan_forward(inf, &e), RC_OK);
@@ -239,10 +239,10 @@ static void errors_name_what_is_wrong(void) {
   CHECK_INT(rc__graph_finalize(&b.g, &e), RC_OK);
   rc_tensor wrong = {RC_DTYPE_FLOAT, 3, {2, 3, 3}, NULL};
   rc_plan *p = NULL;
-  CHECK_INT(rc_plan_create(&p, &b.g, &wrong, NULL, &e), RC_ERR_SHAPE);
+  CHECK_INT(rc_plan_init(&p, &b.g, &wrong, NULL, &e), RC_ERR_SHAPE);
   CHECK_STR_CONTAINS(e.msg, "input 'x'");
   CHECK_STR_CONTAINS(e.msg, "handmade.onnx");
-  CHECK(p == NULL);
+  CHECK_NULL(p);
   rc__arena_free(&b.g.arena);
 
   /* A cycle: a = Relu(b), b = Relu(a). */
@@ -282,7 +282,7 @@ static void allocation_failures_end_cleanly(void) {
   for (long n = 1; n < 200; n++) {
     rc_plan *p = NULL;
     rc_alloc_set_fail_after(n);
-    rc_status st = rc_plan_create(&p, &b.g, &in, NULL, &e);
+    rc_status st = rc_plan_init(&p, &b.g, &in, NULL, &e);
     rc_alloc_set_fail_after(0);
     if (st == RC_OK) {
       rc_plan_free(p);
@@ -290,9 +290,9 @@ static void allocation_failures_end_cleanly(void) {
     }
     failures++;
     CHECK_INT(st, RC_ERR_NOMEM);
-    CHECK(p == NULL);
+    CHECK_NULL(p);
   }
-  CHECK(failures > 3);
+  CHECK_GT(failures, 3);
   rc__arena_free(&b.g.arena);
 }
 

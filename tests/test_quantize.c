@@ -123,7 +123,7 @@ static int run_file(const char *path, const float *x, float *y) {
   int ok = rc_model_load(&m, path, NULL, &e) == RC_OK;
   if (!ok) fprintf(stderr, "load %s: %s\n", path, e.msg);
   rc_tensor in = {RC_DTYPE_FLOAT, 4, {N_SAMPLES, C_IN, HW, HW}, NULL};
-  if (ok) ok = rc_plan_create(&p, &m->graph, &in, NULL, &e) == RC_OK;
+  if (ok) ok = rc_plan_init(&p, &m->graph, &in, NULL, &e) == RC_OK;
   if (ok) {
     memcpy(rc_plan_tensor(p, m->graph.inputs[0])->data, x, sizeof(float) * N_SAMPLES * C_IN * HW * HW);
     ok = rc_plan_forward(p, &e) == RC_OK;
@@ -270,7 +270,8 @@ static void test_weight_and_bias_grids(void) {
     int peak = 0;
     for (int i = 0; i < C_IN * 9; i++) {
       int v = wv[c * C_IN * 9 + i];
-      CHECK(v >= -127 && v <= 127);
+      CHECK_GE(v, -127);
+      CHECK_LE(v, 127);
       if (abs(v) > peak) peak = abs(v);
       CHECK_NEAR(v * ws[c], rw[c * C_IN * 9 + i], ws[c] / 2 + 1e-7, 0); /* rounding error at most half a step */
     }
@@ -280,8 +281,10 @@ static void test_weight_and_bias_grids(void) {
     CHECK_NEAR(((const int32_t *)bq->data)[c], rint(rb[c] / ((double)xs[0] * ws[c])), 1, 0);
   }
   /* Flatten passes the Relu's grid on unchanged. */
-  CHECK(!strcmp(q.rep.grids[1].tensor, "relu1") && !strcmp(q.rep.grids[2].tensor, "flat"));
-  CHECK(q.rep.grids[2].scale == q.rep.grids[1].scale && q.rep.grids[2].zero_point == q.rep.grids[1].zero_point);
+  CHECK_STR_EQ(q.rep.grids[1].tensor, "relu1");
+  CHECK_STR_EQ(q.rep.grids[2].tensor, "flat");
+  CHECK_EQ(q.rep.grids[2].scale, q.rep.grids[1].scale);
+  CHECK_EQ(q.rep.grids[2].zero_point, q.rep.grids[1].zero_point);
   /* The input grid: min/max of the samples widened to include 0. */
   float lo = 0, hi = 0;
   for (int i = 0; i < N_SAMPLES * C_IN * HW * HW; i++) {
@@ -305,8 +308,11 @@ static void test_weight_and_bias_grids(void) {
   }
   /* The graph output keeps its name, now produced by DequantizeLinear. */
   const rc_node *last = producer(g, g->outputs[0]);
-  CHECK(last && !strcmp(last->op_type, "DequantizeLinear"));
-  CHECK(!strcmp(g->values[g->outputs[0]].name, "y"));
+  CHECK_NOT_NULL(last);
+  if (last) {
+    CHECK_STR_EQ(last->op_type, "DequantizeLinear");
+  }
+  CHECK_STR_EQ(g->values[g->outputs[0]].name, "y");
   /* And the quantized model stays close to the float one. */
   static float yf[N_SAMPLES * OUTS], yq[N_SAMPLES * OUTS];
   CHECK(run_file(tpath("net.onnx"), x, yf));
@@ -316,7 +322,7 @@ static void test_weight_and_bias_grids(void) {
     worst = fmax(worst, fabs(yq[i] - yf[i]));
     span = fmax(span, fabs(yf[i]));
   }
-  CHECK(worst < 0.05 * span);
+  CHECK_LT(worst, 0.05 * span);
   quantized_free(&q);
 }
 
@@ -346,7 +352,8 @@ static void test_int4_weights(void) {
       int peak = 0;
       for (int64_t i = 0; i < rc_tensor_numel(wq); i++) {
         int v = ((const int8_t *)wq->data)[i];
-        CHECK(v >= -7 && v <= 7);
+        CHECK_GE(v, -7);
+        CHECK_LE(v, 7);
         if (abs(v) > peak) peak = abs(v);
       }
       CHECK_INT(peak, 7);
@@ -375,7 +382,7 @@ static void test_int4_weights(void) {
     CHECK(gemm && dq_of(g, gemm, 1, &wq, &ws));
     if (wq) {
       CHECK_INT(wq->dtype, RC_DTYPE_INT4);
-      for (int64_t i = 0; i < rc_tensor_numel(wq); i++) CHECK(abs(((const int8_t *)wq->data)[i]) <= 7);
+      for (int64_t i = 0; i < rc_tensor_numel(wq); i++) CHECK_LE(abs(((const int8_t *)wq->data)[i]), 7);
     }
     static float yf[N_SAMPLES * OUTS], yq[N_SAMPLES * OUTS];
     CHECK(run_file(tpath("net21.onnx"), x, yf));
@@ -410,16 +417,16 @@ static void test_weight_only_and_percentile(void) {
   cfg.calib = RC_CALIB_MINMAX;
   CHECK(quantize_file(tpath("netw.onnx"), tpath("qmm.onnx"), &cfg, x, &q, &e));
   float hi_minmax = q.m ? q.rep.grids[0].hi : 0;
-  CHECK(!strcmp(q.rep.grids ? q.rep.grids[0].tensor : "", "x"));
+  CHECK_STR_EQ(q.rep.grids ? q.rep.grids[0].tensor : "", "x");
   CHECK_NEAR(hi_minmax, 40.0, 0, 1e-6);
   quantized_free(&q);
   cfg.calib = RC_CALIB_PERCENTILE;
   cfg.percentile = 99.0;
   CHECK(quantize_file(tpath("netw.onnx"), tpath("qpc.onnx"), &cfg, x, &q, &e));
   if (q.m) {
-    CHECK(q.rep.grids[0].hi < 2.0f);  /* inputs are in [-1.25, 1.75] apart from the outlier */
-    CHECK(q.rep.grids[0].hi > 1.5f);
-    CHECK(q.rep.grids[0].lo < -1.0f);
+    CHECK_LT(q.rep.grids[0].hi, 2.0f);  /* inputs are in [-1.25, 1.75] apart from the outlier */
+    CHECK_GT(q.rep.grids[0].hi, 1.5f);
+    CHECK_LT(q.rep.grids[0].lo, -1.0f);
   }
   quantized_free(&q);
 }
@@ -473,7 +480,7 @@ static void test_act_grid(void) {
   rc__quant_act_grid(-3.0f, -1.0f, &s, &z);
   CHECK_INT(z, 255);
   rc__quant_act_grid(0, 0, &s, &z);
-  CHECK(s > 0);
+  CHECK_GT(s, 0);
   CHECK_INT(z, 0);
 }
 
@@ -506,7 +513,7 @@ static void test_refusals(void) {
   write_net(&n, 1, 7, 12, tpath("net12.onnx"));
   CHECK(!quantize_file(tpath("net12.onnx"), tpath("never.onnx"), &cfg, x, &q, &e));
   CHECK_STR_CONTAINS(e.msg, "opset 13");
-  CHECK(access(tpath("never.onnx"), F_OK) != 0);
+  CHECK_NE(access(tpath("never.onnx"), F_OK), 0);
   quantized_free(&q);
   /* A quantized model is refused as input. */
   write_net(&n, 1, 8, 13, tpath("net_ok.onnx"));
@@ -528,32 +535,32 @@ static void test_edit_api(void) {
   write_net(&n, 0, 8, 13, tpath("edit_in.onnx"));
   rc_err e = {0};
   rc_model *m = NULL;
-  CHECK(rc_model_load(&m, tpath("edit_in.onnx"), NULL, &e) == RC_OK);
+  CHECK_STATUS(rc_model_load(&m, tpath("edit_in.onnx"), NULL, &e), RC_OK);
   if (!m) return;
   /* y' = Neg(Neg(relu2)) inserted before the MatMul, appended at the end of the node list. */
-  CHECK(rc_model_edit_rewire(m, "relu2", "twice", NULL, &e) == RC_OK);
+  CHECK_STATUS(rc_model_edit_rewire(m, "relu2", "twice", NULL, &e), RC_OK);
   const char *in1[1] = {"relu2"}, *out1[1] = {"once"}, *in2[1] = {"once"}, *out2[1] = {"twice"};
-  CHECK(rc_model_edit_add_node(m, "Neg", "n2", in2, 1, out2, 1, NULL, 0, &e) == RC_OK);
-  CHECK(rc_model_edit_add_node(m, "Neg", "n1", in1, 1, out1, 1, NULL, 0, &e) == RC_OK);
-  CHECK(rc_model_edit_add_node(m, "Neg", NULL, in1, 1, out1, 1, NULL, 0, &e) != RC_OK); /* "once" is produced */
+  CHECK_STATUS(rc_model_edit_add_node(m, "Neg", "n2", in2, 1, out2, 1, NULL, 0, &e), RC_OK);
+  CHECK_STATUS(rc_model_edit_add_node(m, "Neg", "n1", in1, 1, out1, 1, NULL, 0, &e), RC_OK);
+  CHECK_FAILS(rc_model_edit_add_node(m, "Neg", NULL, in1, 1, out1, 1, NULL, 0, &e)); /* "once" is produced */
   CHECK(rc_model_edit_name_used(m, "once"));
   char buf[64];
-  CHECK(rc_model_edit_unique_name(m, "once", buf, sizeof buf, &e) == RC_OK);
-  CHECK(!strcmp(buf, "once_1"));
+  CHECK_STATUS(rc_model_edit_unique_name(m, "once", buf, sizeof buf, &e), RC_OK);
+  CHECK_STR_EQ(buf, "once_1");
   /* fc1.b replaced by a new initializer; the old one becomes unused. */
   const float nb[H1] = {0};
   rc_tensor t = {RC_DTYPE_FLOAT, 1, {H1}, (void *)nb};
-  CHECK(rc_model_edit_add_initializer(m, "fc1.b", &t, &e) != RC_OK); /* name in use */
-  CHECK(rc_model_edit_add_initializer(m, "fc1.zero_bias", &t, &e) == RC_OK);
+  CHECK_FAILS(rc_model_edit_add_initializer(m, "fc1.b", &t, &e)); /* name in use */
+  CHECK_STATUS(rc_model_edit_add_initializer(m, "fc1.zero_bias", &t, &e), RC_OK);
   int gi = rc_model_edit_producer(m, "fc1_out");
-  CHECK(gi >= 0);
-  CHECK(rc_model_edit_set_input(m, gi, 2, "fc1.zero_bias", &e) == RC_OK);
-  CHECK(rc_model_edit_set_input(m, gi, 4, "x", &e) != RC_OK);
+  CHECK_GE(gi, 0);
+  CHECK_STATUS(rc_model_edit_set_input(m, gi, 2, "fc1.zero_bias", &e), RC_OK);
+  CHECK_FAILS(rc_model_edit_set_input(m, gi, 4, "x", &e));
   CHECK_INT(rc_model_edit_drop_unused(m), 1);
-  CHECK(rc_model_edit_sort(m, &e) == RC_OK);
-  CHECK(rc_model_edit_producer(m, "once") < rc_model_edit_producer(m, "twice"));
-  CHECK(rc_model_edit_producer(m, "twice") < rc_model_edit_producer(m, "y"));
-  CHECK(rc_model_save(m, tpath("edit_out.onnx"), NULL, 0, &e) == RC_OK);
+  CHECK_STATUS(rc_model_edit_sort(m, &e), RC_OK);
+  CHECK_LT(rc_model_edit_producer(m, "once"), rc_model_edit_producer(m, "twice"));
+  CHECK_LT(rc_model_edit_producer(m, "twice"), rc_model_edit_producer(m, "y"));
+  CHECK_STATUS(rc_model_save(m, tpath("edit_out.onnx"), NULL, 0, &e), RC_OK);
   rc_model_free(m);
   /* Same outputs as the float net with fc1's bias zeroed. */
   for (int i = 0; i < H1; i++) n.b1[i] = 0;
@@ -564,11 +571,11 @@ static void test_edit_api(void) {
   CHECK(run_file(tpath("edit_ref.onnx"), x, yb));
   for (int i = 0; i < N_SAMPLES * OUTS; i++) CHECK_NEAR(ya[i], yb[i], 0, 0);
   /* A cycle is refused. */
-  CHECK(rc_model_load(&m, tpath("edit_out.onnx"), NULL, &e) == RC_OK);
+  CHECK_STATUS(rc_model_load(&m, tpath("edit_out.onnx"), NULL, &e), RC_OK);
   if (m) {
     int a = rc_model_edit_producer(m, "once");
-    CHECK(rc_model_edit_set_input(m, a, 0, "twice", &e) == RC_OK);
-    CHECK(rc_model_edit_sort(m, &e) != RC_OK);
+    CHECK_STATUS(rc_model_edit_set_input(m, a, 0, "twice", &e), RC_OK);
+    CHECK_FAILS(rc_model_edit_sort(m, &e));
     CHECK_STR_CONTAINS(e.msg, "cycle");
     rc_model_free(m);
   }

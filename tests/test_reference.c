@@ -76,7 +76,7 @@ static int check_case(const char *dir, const char *cas) {
   rc_tensor shape = x.t;
   shape.data = NULL;
   rc_plan_opts opts = {0};
-  if (rc_plan_create(&p, g, &shape, &opts, &e) != RC_OK) goto fail;
+  if (rc_plan_init(&p, g, &shape, &opts, &e) != RC_OK) goto fail;
   rc_tensor *in = rc_plan_tensor(p, g->inputs[0]);
   if (!in || !in->data || rc_tensor_nbytes(in) != rc_tensor_nbytes(&x.t)) {
     fprintf(stderr, "%s: the plan's input buffer does not match input_0.npy\n", cas);
@@ -106,10 +106,10 @@ static int run_case(const char *dir, const char *model, int opset, const char *v
 static void every_case_matches_pytorch(void) {
   int passed;
   int ran = ref_each_case(NULL, run_case, &passed);
-  CHECK(ran >= 0);
+  CHECK_GE(ran, 0);
   printf("%d of %d reference models match PyTorch (Debian python3-torch)\n", passed, ran);
   /* Eleven models x two opsets x two variants. */
-  CHECK(ran >= 44);
+  CHECK_GE(ran, 44);
 }
 
 int main(void) {

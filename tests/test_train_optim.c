@@ -32,11 +32,13 @@ static rc_params *make_store(int n_moments) {
   rc_params *ps = NULL;
   rc_err e;
   int iw = -1, is = -1, ib = -1;
-  CHECK_INT(rc_params_create(&ps, &e), RC_OK);
+  CHECK_INT(rc_params_init(&ps, &e), RC_OK);
   CHECK_INT(rc_params_add(ps, &iw, "conv.weight", NW, w_init, RC_PARAM_KEEP_ZEROS, &e), RC_OK);
   CHECK_INT(rc_params_add(ps, &is, "bn.scale", NS, s_init, RC_PARAM_NORM, &e), RC_OK);
   CHECK_INT(rc_params_add(ps, &ib, "conv.bias", NB, b_init, RC_PARAM_NO_DECAY, &e), RC_OK);
-  CHECK(iw == 0 && is == 1 && ib == 2);
+  CHECK_EQ(iw, 0);
+  CHECK_EQ(is, 1);
+  CHECK_EQ(ib, 2);
   CHECK_INT(rc_params_finalize(ps, n_moments, &e), RC_OK);
   return ps;
 }
@@ -58,15 +60,15 @@ static void store_layout(void) {
     const rc_param_entry *en = rc_params_entry(ps, i);
     CHECK_INT(en->offset % 16, 0);
     CHECK_INT((uintptr_t)rc_params_value(ps, i) % 64, 0);
-    CHECK(rc_params_grad(ps, i) - rc_params_grad(ps, -1) == (ptrdiff_t)en->offset);
-    CHECK(rc_params_block(ps, RC_BLOCK_MOMENT2, i) != NULL);
+    CHECK_EQ(rc_params_grad(ps, i) - rc_params_grad(ps, -1), (ptrdiff_t)en->offset);
+    CHECK_NOT_NULL(rc_params_block(ps, RC_BLOCK_MOMENT2, i));
   }
   CHECK_INT(rc_params_total(ps), 48 + 16 + 16);
-  CHECK(!memcmp(rc_params_value(ps, 0), w_init, sizeof w_init));
-  CHECK(!memcmp(rc_params_value(ps, 2), b_init, sizeof b_init));
-  CHECK(rc_params_grad(ps, 1)[3] == 0.0f);
-  CHECK(!strcmp(rc_params_entry(ps, 0)->name, "conv.weight"));
-  CHECK(rc_params_entry(ps, 3) == NULL);
+  CHECK_MEM_EQ(rc_params_value(ps, 0), w_init, sizeof w_init);
+  CHECK_MEM_EQ(rc_params_value(ps, 2), b_init, sizeof b_init);
+  CHECK_EQ(rc_params_grad(ps, 1)[3], 0.0f);
+  CHECK_STR_EQ(rc_params_entry(ps, 0)->name, "conv.weight");
+  CHECK_NULL(rc_params_entry(ps, 3));
   /* no more entries after finalize; no second finalize */
   CHECK_INT(rc_params_add(ps, NULL, "late", 3, NULL, 0, &e), RC_ERR_INVALID);
   CHECK_STR_CONTAINS(e.msg, "late");
@@ -74,14 +76,14 @@ static void store_layout(void) {
   rc_params_free(ps);
 
   /* refusals before finalize */
-  CHECK_INT(rc_params_create(&ps, &e), RC_OK);
+  CHECK_INT(rc_params_init(&ps, &e), RC_OK);
   CHECK_INT(rc_params_add(ps, NULL, "empty", 0, NULL, 0, &e), RC_ERR_SHAPE);
   CHECK_INT(rc_params_add(ps, NULL, "huge", INT64_MAX / 2, NULL, 0, &e), RC_ERR_LIMIT);
   CHECK_INT(rc_params_finalize(ps, 3, &e), RC_ERR_INVALID);
   CHECK_INT(rc_params_add(ps, NULL, "zeros", 7, NULL, 0, &e), RC_OK);
   CHECK_INT(rc_params_finalize(ps, 0, &e), RC_OK);
-  CHECK(rc_params_value(ps, 0)[6] == 0.0f);
-  CHECK(rc_params_block(ps, RC_BLOCK_MOMENT1, 0) == NULL);
+  CHECK_EQ(rc_params_value(ps, 0)[6], 0.0f);
+  CHECK_NULL(rc_params_block(ps, RC_BLOCK_MOMENT1, 0));
   rc_params_free(ps);
 }
 
@@ -102,9 +104,9 @@ static void masks_hold_through_steps(void) {
     rc_err e;
     CHECK_INT(rc_params_build_masks(ps, &e), RC_OK);
     const rc_param_entry *w = rc_params_entry(ps, 0);
-    CHECK(w->mask != NULL);
+    CHECK_NOT_NULL(w->mask);
     CHECK_INT(w->n_frozen, (NW + 2) / 3);
-    CHECK(rc_params_entry(ps, 1)->mask == NULL); /* not flagged */
+    CHECK_NULL(rc_params_entry(ps, 1)->mask); /* not flagged */
     CHECK_INT(rc_params_build_masks(ps, &e), RC_ERR_INVALID);
     for (int s = 0; s < 10; s++) {
       fill_grads(ps);
@@ -185,17 +187,16 @@ static void snapshots(void) {
   fill_grads(ps);
   CHECK_INT(rc_params_restore(ps, full, &e), RC_OK);
   CHECK_INT(rc_params_steps(ps), 1);
-  CHECK(!memcmp(saved, rc_params_value(ps, -1), total * sizeof(float)));
-  CHECK(!memcmp(saved + total, rc_params_block(ps, RC_BLOCK_MOMENT1, -1), total * sizeof(float)));
-  CHECK(!memcmp(saved + 2 * total, rc_params_block(ps, RC_BLOCK_MOMENT2, -1),
-                total * sizeof(float)));
-  CHECK(rc_params_grad(ps, 0)[1] == 0.0f); /* gradients cleared */
+  CHECK_MEM_EQ(saved, rc_params_value(ps, -1), total * sizeof(float));
+  CHECK_MEM_EQ(saved + total, rc_params_block(ps, RC_BLOCK_MOMENT1, -1), total * sizeof(float));
+  CHECK_MEM_EQ(saved + 2 * total, rc_params_block(ps, RC_BLOCK_MOMENT2, -1), total * sizeof(float));
+  CHECK_EQ(rc_params_grad(ps, 0)[1], 0.0f); /* gradients cleared */
   fill_grads(ps);
   CHECK_INT(rc_optim_step(ps, &c, 1e-2f, &e), RC_OK);
   float m_after = rc_params_block(ps, RC_BLOCK_MOMENT1, 0)[1];
   CHECK_INT(rc_params_restore(ps, best, &e), RC_OK);
-  CHECK(!memcmp(saved, rc_params_value(ps, -1), total * sizeof(float)));
-  CHECK(rc_params_block(ps, RC_BLOCK_MOMENT1, 0)[1] == m_after);
+  CHECK_MEM_EQ(saved, rc_params_value(ps, -1), total * sizeof(float));
+  CHECK_EQ(rc_params_block(ps, RC_BLOCK_MOMENT1, 0)[1], m_after);
   CHECK_INT(rc_params_steps(ps), 2);
   free(saved);
   rc_params_free(ps);
@@ -221,7 +222,7 @@ static void sgd_by_hand(void) {
     c.nesterov = cases[k].nesterov;
     c.weight_decay = cases[k].wd;
     rc_params *ps = NULL;
-    CHECK_INT(rc_params_create(&ps, &e), RC_OK);
+    CHECK_INT(rc_params_init(&ps, &e), RC_OK);
     CHECK_INT(rc_params_add(ps, NULL, "p", 1, &one, 0, &e), RC_OK);
     CHECK_INT(rc_params_finalize(ps, rc_optim_moments(&c), &e), RC_OK);
     rc_params_grad(ps, 0)[0] = 1.0f;
@@ -251,14 +252,14 @@ static void adamw_first_step(void) {
     double want = w_init[j] * (1.0 - 1e-3) - 1e-2 * g[j] / (fabs(g[j]) + 1e-8);
     CHECK_NEAR(rc_params_value(ps, 0)[j], want, 1e-6, 1e-5);
   }
-  CHECK(!memcmp(rc_params_value(ps, 1), s_init, sizeof s_init));
-  CHECK(!memcmp(rc_params_value(ps, 2), b_init, sizeof b_init));
+  CHECK_MEM_EQ(rc_params_value(ps, 1), s_init, sizeof s_init);
+  CHECK_MEM_EQ(rc_params_value(ps, 2), b_init, sizeof b_init);
   /* decay_norm: the norm scale shrinks by (1 - lr wd), the bias still not */
   c.decay_norm = 1;
   rc_params_zero_grad(ps);
   CHECK_INT(rc_optim_step(ps, &c, lr, &e), RC_OK);
   CHECK_NEAR(rc_params_value(ps, 1)[2], s_init[2] * (1.0 - 1e-3), 1e-7, 1e-6);
-  CHECK(!memcmp(rc_params_value(ps, 2), b_init, sizeof b_init));
+  CHECK_MEM_EQ(rc_params_value(ps, 2), b_init, sizeof b_init);
   rc_params_free(ps);
 }
 
@@ -305,9 +306,9 @@ static void clipping(void) {
   rc_params_grad(ps, 0)[1] = 3.0f;
   rc_params_grad(ps, 2)[4] = 4.0f;
   CHECK_NEAR(rc_clip_grad_norm(ps, 0.0), 5.0, 1e-12, 0); /* measure only */
-  CHECK(rc_params_grad(ps, 0)[1] == 3.0f);
+  CHECK_EQ(rc_params_grad(ps, 0)[1], 3.0f);
   CHECK_NEAR(rc_clip_grad_norm(ps, 10.0), 5.0, 1e-12, 0); /* below the cap */
-  CHECK(rc_params_grad(ps, 0)[1] == 3.0f);
+  CHECK_EQ(rc_params_grad(ps, 0)[1], 3.0f);
   CHECK_NEAR(rc_clip_grad_norm(ps, 1.0), 5.0, 1e-12, 0);
   CHECK_NEAR(rc_params_grad(ps, 0)[1], 3.0 / (5.0 + 1e-6), 1e-7, 0);
   CHECK_NEAR(rc_params_grad(ps, 2)[4], 4.0 / (5.0 + 1e-6), 1e-7, 0);
@@ -364,7 +365,7 @@ static void out_of_memory(void) {
     rc_err e;
     rc_params *ps = NULL;
     rc_alloc_set_fail_after(k);
-    rc_status st = rc_params_create(&ps, &e);
+    rc_status st = rc_params_init(&ps, &e);
     for (int i = 0; st == RC_OK && i < 40; i++) {
       char name[16];
       snprintf(name, sizeof name, "t%d", i);
@@ -380,7 +381,7 @@ static void out_of_memory(void) {
     }
     rc_params_free(ps);
   }
-  CHECK(failures > 5);
+  CHECK_GT(failures, 5);
 }
 
 int main(void) {

@@ -62,7 +62,7 @@ enum { NW = 12, NB = 3, NP = NW + NB, STEPS = 10 };
 static rc_params *linear_store(const float *init, const rc_optim_config *c, unsigned w_flags) {
   rc_params *ps = NULL;
   rc_err e;
-  CHECK_INT(rc_params_create(&ps, &e), RC_OK);
+  CHECK_INT(rc_params_init(&ps, &e), RC_OK);
   CHECK_INT(rc_params_add(ps, NULL, "W", NW, init, w_flags, &e), RC_OK);
   CHECK_INT(rc_params_add(ps, NULL, "b", NB, init + NW, RC_PARAM_NO_DECAY, &e), RC_OK);
   CHECK_INT(rc_params_finalize(ps, rc_optim_moments(c), &e), RC_OK);
@@ -163,7 +163,7 @@ static void masked_zeros_survive_torch_gradients(void) {
       CHECK_INT(bits, 0);
     }
     /* ...while the other weights did move. */
-    CHECK(w[1] != start[1]);
+    CHECK_NE(w[1], start[1]);
     rc_params_free(ps);
   }
 }

@@ -19,14 +19,28 @@
 #include "recoup/status.h"
 #include "recoup/tensor.h"
 
-/* An array that owns its data: t.data points into `owned` (or is `owned`). */
+/* An array that owns its data: t.data points into `owned` (or is `owned`).
+ * When `mapped` is non-zero, `owned` is a read-only file mapping of that
+ * many bytes (rc_array_map) rather than heap memory. */
 typedef struct rc_array {
   rc_tensor t;
   void *owned;
+  size_t mapped;
 } rc_array;
 
-/* Frees the data and leaves an empty array; safe on a zeroed array. */
+/* Frees (or unmaps) the data and leaves an empty array; safe on a zeroed array. */
 RC_API void rc_array_free(rc_array *a);
+
+/* Map a little-endian, C-order NumPy .npy file read-only: t.data points into
+ * the mapping, nothing is copied, and pages are read as samples are used.
+ * Formats that cannot be mapped (.npz, gzip, IDX, TensorProto, big-endian or
+ * Fortran-order .npy) give RC_ERR_UNSUPPORTED with how to convert them. */
+RC_API rc_status rc_array_map(rc_array *out, const char *path, size_t max_bytes, rc_err *e);
+
+/* Drop the resident pages of a mapped array (no-op otherwise): they are
+ * read again from the file when next touched, so resident memory stays
+ * bounded by what is in use rather than by the file. */
+RC_API void rc_array_release_pages(const rc_array *a);
 
 typedef enum rc_data_format {
   RC_DATA_AUTO = 0,        /* by magic bytes first, file extension second */
@@ -129,11 +143,18 @@ RC_API rc_status rc_labels_to_int32(rc_array *out, const rc_array *labels, int64
 typedef struct rc_dataset {
   int n_inputs;
   rc_tensor inputs[RC_DATASET_MAX_INPUTS];
-  size_t sample_bytes[RC_DATASET_MAX_INPUTS];
+  size_t sample_bytes[RC_DATASET_MAX_INPUTS]; /* bytes of one gathered sample */
   const int32_t *labels; /* NULL when there are none */
   int64_t n;             /* samples in the view */
   int64_t *index;        /* n sample indices into the arrays (owned) */
   int64_t *order;        /* n positions into index, the current epoch's order (owned) */
+  /* Per-batch conversion (rc_dataset_convert): inputs with to_float set are
+   * gathered as float32 through norm; `release` is the mapped array whose
+   * pages are dropped every release_every batches. */
+  unsigned char to_float[RC_DATASET_MAX_INPUTS];
+  rc_data_norm norm[RC_DATASET_MAX_INPUTS];
+  const rc_array *release[RC_DATASET_MAX_INPUTS];
+  int64_t release_every[RC_DATASET_MAX_INPUTS];
 } rc_dataset;
 
 /* inputs: n_inputs arrays with equal dims[0]; labels NULL or int32 (N) as made
@@ -143,6 +164,17 @@ RC_API rc_status rc_dataset_init(rc_dataset *d, const rc_tensor *inputs, int n_i
                           const rc_tensor *labels, const int64_t *index, int64_t n_index,
                           rc_err *e);
 RC_API void rc_dataset_free(rc_dataset *d);
+
+/* Gather input i as float32 converted with norm (NULL = identity; the mean
+ * and std arrays must outlive the view) instead of copying its raw dtype, so
+ * a uint8 or float16 source costs its own size in memory, plus one batch.
+ * `source` (may be NULL) is the array behind input i: when it is a file
+ * mapping, its pages are released every 64 MiB of samples gathered. */
+RC_API void rc_dataset_convert(rc_dataset *d, int i, const rc_data_norm *norm, const rc_array *source);
+
+/* Make input i of `to` be input j of `from` (array, sample size, conversion):
+ * for feeding the same view to a model whose inputs come in another order. */
+RC_API void rc_dataset_take_input(rc_dataset *to, int i, const rc_dataset *from, int j);
 
 /* Put the view in the order for (seed, epoch): a Fisher-Yates shuffle driven
  * by PCG32 seeded with `seed` on stream `epoch`, so the order of any epoch is
@@ -156,7 +188,7 @@ RC_API int64_t rc_dataset_n_batches(const rc_dataset *d, int64_t batch_size, int
 
 /* Copy batch `batch` (samples [batch*batch_size, ...) of the current order)
  * into out[i] (one buffer per input, batch_size * sample bytes, the input's
- * dtype) and labels_out (batch_size int32, may be NULL). *count receives the
+ * dtype, or float32 after rc_dataset_convert) and labels_out (batch_size int32, may be NULL). *count receives the
  * samples copied (short for the last batch). Allocates nothing. */
 RC_API rc_status rc_dataset_gather(void *const *out, int32_t *labels_out, int64_t *count,
                             const rc_dataset *d, int64_t batch, int64_t batch_size, rc_err *e);
@@ -172,7 +204,7 @@ typedef struct rc_data_split {
   int64_t n_val;
 } rc_data_split;
 
-RC_API rc_status rc_data_split_make(rc_data_split *out, int64_t n, double val_fraction, uint64_t seed,
+RC_API rc_status rc_data_split_init(rc_data_split *out, int64_t n, double val_fraction, uint64_t seed,
                              rc_err *e);
 RC_API void rc_data_split_free(rc_data_split *s);
 

@@ -10,11 +10,27 @@
 #include <signal.h>
 #include <stdint.h>
 
+#include "recoup/data.h"
 #include "recoup/eval.h"
 #include "recoup/export.h"
 #include "recoup/model.h"
 #include "recoup/status.h"
 #include "recoup/tensor.h"
+
+#define RC_DISTILL_OUTPUTS_MAX 16
+
+/* Per-sample side data of one set of samples (training pool or validation)
+ * for losses per model output. */
+typedef struct rc_output_side {
+  /* targets[i]: for output loss i, per sample as many floats as the output
+   * holds per sample, or NULL. */
+  const float *targets[RC_DISTILL_OUTPUTS_MAX];
+  /* Dense labels: one int32 per position of the labelled output (the
+   * output's shape without its batch and class axes), per sample; NULL:
+   * none. Positions holding `ignore` take no loss and no metric. */
+  const int32_t *labels;
+  int32_t ignore;
+} rc_output_side;
 
 /* The samples: float inputs laid out as the models' inputs with axis 0 the
  * sample, optional int32 labels (for accuracy), and either separate
@@ -26,6 +42,16 @@ typedef struct rc_distill_data {
   const rc_tensor *val_inputs; /* NULL: hold out val_split of `inputs` */
   const int32_t *val_labels;
   double val_split;
+  /* Per-output runs: regression targets and dense labels, indexed by sample
+   * of `inputs` (side) and of `val_inputs` (val_side). */
+  rc_output_side side, val_side;
+  /* Per input: converted to float32 per batch with norms[i] when its scale
+   * is non-zero (raw uint8/float16 sources, possibly file mappings); NULL
+   * when the inputs are ready as they are. sources/val_sources (may be NULL)
+   * are the arrays behind inputs/val_inputs, for releasing mapped pages. */
+  const rc_data_norm *norms;
+  const rc_array *sources;
+  const rc_array *val_sources;
 } rc_distill_data;
 
 typedef enum rc_distill_event { RC_DISTILL_STEP = 0, RC_DISTILL_EPOCH = 1, RC_DISTILL_NOTE = 2 } rc_distill_event;

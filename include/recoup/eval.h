@@ -18,6 +18,11 @@ typedef struct rc_metrics {
   double agreement;      /* top-1 agreement with the reference */
   double kl;             /* mean KL(reference || model) at T = 1 */
   double ce;             /* mean cross-entropy against the labels at T = 1 */
+  /* Runs with losses per output: kl holds the weighted output terms,
+   * agreement and top1 count positions; NaN where no output of the kind. */
+  int outputs;
+  double miou_ref, miou_labels; /* mean IoU of class maps against the reference / labels */
+  double value_mad;      /* mean absolute difference of value outputs to the reference */
 } rc_metrics;
 
 typedef struct rc_eval_settings {

@@ -21,6 +21,17 @@ void rc_distill_settings_init(rc_distill_settings *s) {
   s->seed = c.seed;
 }
 
+/* The loop's notes (resumed, statistics re-estimated, projectors fitted,
+ * steps rolled back) reach the caller as RC_DISTILL_NOTE progress events. */
+static void note_to_progress(void *user, rc_log_level level, const char *msg) {
+  const rc_distill_settings *s = user;
+  rc_distill_progress p;
+  memset(&p, 0, sizeof p);
+  p.event = RC_DISTILL_NOTE;
+  p.note = msg;
+  s->progress(s->user, &p);
+}
+
 static void config_from(rc_distill_config *c, const rc_distill_settings *s) {
   rc_distill_config_defaults(c);
   c->epochs = s->epochs;
@@ -36,6 +47,11 @@ static void config_from(rc_distill_config *c, const rc_distill_settings *s) {
   c->progress = s->progress;
   c->user = s->user;
   c->stop = s->stop;
+  if (s->progress) {
+    c->log.fn = note_to_progress;
+    c->log.user = (void *)s;
+    c->log.max_level = RC_LOG_INFO;
+  }
 }
 
 rc_status rc_distill_train(rc_distill_summary *out, rc_model *teacher, rc_model *student,

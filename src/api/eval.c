@@ -41,7 +41,7 @@ static rc_status eval_run_model(eval_run *r, rc_model *m, const rc_dataset *d, i
     shapes[i].data = NULL;
     shapes[i].dims[0] = batch;
   }
-  RC_TRY(rc_plan_create(&r->plan, g, shapes, NULL, e));
+  RC_TRY(rc_plan_init(&r->plan, g, shapes, NULL, e));
   for (int j = 0; j < g->n_outputs; j++) {
     const rc_tensor *t = rc_plan_tensor(r->plan, g->outputs[j]);
     if (t->rank < 1 || t->dims[0] != batch)

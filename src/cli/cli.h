@@ -5,6 +5,7 @@
 #include <signal.h>
 #include <stdio.h>
 
+#include "recoup/log.h"
 #include "recoup/status.h"
 
 #if defined(__GNUC__)
@@ -28,6 +29,7 @@ int rc_cmd_distill(int argc, char **argv);
 int rc_cmd_batch(int argc, char **argv);
 int rc_cmd_prune(int argc, char **argv);
 int rc_cmd_quantize(int argc, char **argv);
+int rc_cmd_synthesize(int argc, char **argv);
 
 /* "recoup: error: <msg>" on stderr; returns RC_EXIT_FAIL. */
 int cli_fail(const rc_err *e);
@@ -63,12 +65,22 @@ int cli_parse_float(const char *s, double *out);
 void cli_set_threads(int n);
 /* Thousands separators: 1234567 -> "1,234,567". */
 const char *cli_group_digits(long long v, char *buf, size_t n);
-/* Library log messages go to stderr with a prefix. */
-void cli_log_stderr(void *user, int level, const char *msg);
+/* An rc_logger sink: library messages to stderr with a prefix. `user` may
+ * point to an int that is non-zero while a progress line is open on a
+ * terminal (the line is cleared first). */
+void cli_log_stderr(void *user, rc_log_level level, const char *msg);
 /* Set by SIGINT/SIGTERM/SIGHUP once cli_catch_stop_signals ran: long work
  * checkpoints and stops. The one piece of state a signal handler may touch. */
 extern volatile sig_atomic_t cli_stop_requested;
 void cli_catch_stop_signals(void);
+
+/* The ranks of an MPI job this process belongs to (train/dist.h): set once
+ * by main before any command runs, NULL-safe everywhere (one process). */
+struct rc_dist;
+struct rc_dist *cli_dist(void);
+/* The command's failure status is one all ranks reached together (batch: a
+ * job failed): end normally instead of stopping the job with MPI_Abort. */
+void cli_dist_agreed_exit(void);
 
 struct option;
 /* After getopt_long returned '?' (main sets opterr = 0, so getopt printed

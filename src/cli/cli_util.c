@@ -14,10 +14,14 @@
 
 #include "cli/cli.h"
 #include "recoup/util.h"
+#include "train/dist.h"
 
 int cli_fail(const rc_err *e) {
-  char buf[4 * sizeof e->msg];
-  fprintf(stderr, "recoup: error: %s\n",
+  char buf[4 * sizeof e->msg], where[RC_DIST_MAX_HOST + 64] = "";
+  if (rc_dist_size(cli_dist()) > 1) /* which process of the job failed, and where */
+    snprintf(where, sizeof where, "rank %d of %d on %s: ", rc_dist_rank(cli_dist()), rc_dist_size(cli_dist()),
+             rc_dist_host(cli_dist()));
+  fprintf(stderr, "recoup: error: %s%s\n", where,
           rc_text_escape(buf, sizeof buf, e && e->msg[0] ? e->msg : rc_strerror(e ? e->code : -1)));
   return RC_EXIT_FAIL;
 }
@@ -128,10 +132,11 @@ const char *cli_group_digits(long long v, char *buf, size_t n) {
   return buf;
 }
 
-void cli_log_stderr(void *user, int level, const char *msg) {
-  (void)user;
-  static const char *names[] = {"error", "warning", "info", "debug"};
-  fprintf(stderr, "recoup: %s: %s\n", names[level < 0 ? 0 : level > 3 ? 3 : level], msg);
+void cli_log_stderr(void *user, rc_log_level level, const char *msg) {
+  const int *tty = user;
+  const char *tag = level == RC_LOG_ERROR ? "error: " : level == RC_LOG_WARN ? "warning: " : "";
+  char nb[1024];
+  fprintf(stderr, "%srecoup: %s%s\n", tty && *tty ? "\r\033[K" : "", tag, cli_esc(msg, nb, sizeof nb));
 }
 
 int cli_isatty_stderr(void) { return isatty(STDERR_FILENO); }

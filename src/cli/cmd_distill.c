@@ -14,18 +14,27 @@
 
 #include "cli/cli.h"
 #include "cli/cli_data.h"
+#include "cli/cli_outputs.h"
+#include "cli/cli_synth.h"
+#include "core/alloc.h"
+#include "core/file.h"
+#include "cli/distill_options.h"
 #include "cli/report.h"
 #include "cli/weight_rules.h"
 #include "core/fmt.h"
 #include "core/path.h"
 #include "onnx/model.h"
 #include "plan/load.h"
+#include "train/dist.h"
 #include "train/distill.h"
 #include "train/select.h"
 
 #define MAX_GLOBS 32
 
 static void usage(FILE *f) {
+  static const char *const heads[CLI_GROUP_COUNT] = {
+      "Models:", "Data:", "Training (defaults chosen for recovery fine-tuning from a good start):", "Interruption:",
+      "Output:"};
   fprintf(f,
       "Usage: recoup distill --teacher DENSE.onnx --student COMPRESSED.onnx --data X\n"
       "                      --out RECOVERED.onnx [OPTIONS]\n"
@@ -33,67 +42,14 @@ static void usage(FILE *f) {
       "Fine-tune a pruned (or otherwise compressed) model on CPU so that its outputs\n"
       "match the dense model's (knowledge distillation). Weights that are exactly zero\n"
       "in the student stay exactly zero. Labels are optional: the teacher's outputs\n"
-      "are the target; labels, when given, add a cross-entropy term.\n"
-      "\n"
-      "Data:\n"
-      "  --data FILE|NAME=FILE    training samples (.npy, .npz, IDX, .gz, .pb); repeatable\n"
-      "  --labels FILE            class labels of --data (optional)\n"
-      "  --val-data FILE|NAME=FILE  validation samples (default: hold out --val-split)\n"
-      "  --val-labels FILE        labels of --val-data\n"
-      "  --val-split F            fraction of --data held out for validation (default 0.1)\n"
-      "  --scale S, --mean M[,..], --std D[,..]   x' = (x*S - M) / D, as for eval\n"
-      "\n"
-      "Training (defaults chosen for recovery fine-tuning from a good start):\n"
-      "  --epochs E               passes over the training samples (default 3)\n"
-      "  --steps N                optimizer steps instead of epochs\n"
-      "  --batch B                samples per step (default 64)\n"
-      "  --optimizer adamw|sgd    (default adamw)\n"
-      "  --lr R                   peak learning rate (default 5e-4 adamw, 0.01 sgd)\n"
-      "  --schedule cosine|step|constant  (default cosine, linear warm-up over 3%%)\n"
-      "  --warmup N               warm-up steps (overrides the 3%% default)\n"
-      "  --step-size N            steps between decays for --schedule step (default: an epoch)\n"
-      "  --gamma G                decay factor for --schedule step (default 0.1)\n"
-      "  --weight-decay W         (default 0 adamw, 1e-4 sgd; never on pruned entries\n"
-      "                           or normalisation parameters)\n"
-      "  --momentum M             SGD momentum (default 0.9, Nesterov)\n"
-      "  --no-nesterov            plain momentum for SGD\n"
-      "  --clip N                 clip the global gradient norm at N (default 5; 0 = off)\n"
-      "  --loss TERMS             loss terms with weights, e.g. kd=1,hint=0.5,attention=1000\n"
-      "                           (default kd): kd, logit-mse, hint, attention, boundary,\n"
-      "                           fsp, rkd-distance, rkd-angle, attention-map, weight-anchor\n"
-      "  --pair T=S               match teacher tensor T with student tensor S for the\n"
-      "                           feature terms (repeatable; default: automatic pairing)\n"
-      "  --config FILE            JSON with \"loss\" (term: weight) and \"pairs\"\n"
-      "                           ([{\"teacher\", \"student\", \"weight\"}]), see README\n"
-      "  --temperature T          kd temperature (default 4)\n"
-      "  --alpha A                weight of the distillation term against cross-entropy\n"
-      "                           (default 0.9 with labels, 1 without)\n"
-      "  --bn frozen|recalibrate|train  BatchNormalization statistics (default frozen)\n"
-      "  --mask auto|zeros|none   which zero weights stay zero (default auto): zeros =\n"
-      "                           every zero (integer at its zero point); none = no mask;\n"
-      "                           auto = zeros of float weights, and of quantized weights\n"
-      "                           recorded as pruned or far more common than rounding\n"
-      "                           explains (see README)\n"
-      "  --train PATTERN          also train float initializers matching this glob\n"
-      "  --freeze PATTERN         do not train initializers matching this glob\n"
-      "  --seed S                 data order and split (default 1); same seed and\n"
-      "                           threads give a byte-identical output file\n"
-      "  --threads N              compute threads; 0 (the default) uses every online core\n"
-      "\n"
-      "Interruption:\n"
-      "  --checkpoint FILE        where to keep the run's state (default OUT.ckpt; the\n"
-      "                           previous one is kept as FILE.1); removed on success\n"
-      "  --checkpoint-every N     also every N steps (default 500; 0 = epoch ends only)\n"
-      "  --resume FILE            continue an interrupted run from its checkpoint; the\n"
-      "                           result is byte-identical to an uninterrupted run\n"
-      "  SIGINT or SIGTERM writes a checkpoint and exits with status 1.\n"
-      "\n"
-      "Output:\n"
-      "  --out FILE               the recovered model (never one of the inputs)\n"
-      "  --json                   print the before/after results as JSON on stdout\n"
-      "  --report DIR             also write a report into DIR: report.html (charts),\n"
-      "                           summary.csv, summary.md and JSON records\n"
-      "  -h, --help               show this help\n"
+      "are the target; labels, when given, add a cross-entropy term.\n");
+  for (int g = 0; g < CLI_GROUP_COUNT; g++) {
+    fprintf(f, "\n%s\n", heads[g]);
+    cli_distill_options_help(f, (cli_opt_group)g);
+    if (g == CLI_GROUP_INTERRUPTION) fprintf(f, "  SIGINT or SIGTERM writes a checkpoint and exits with status 1.\n");
+    if (g == CLI_GROUP_OUTPUT) fprintf(f, "  -h, --help               show this help\n");
+  }
+  fprintf(f,
       "\n"
       "The state with the lowest validation KL to the teacher is written (with\n"
       "labels: alpha*KL + (1-alpha)*cross-entropy); accuracy and agreement are shown\n"
@@ -111,6 +67,7 @@ typedef struct distill_args {
   int n_train, n_freeze;
   long threads;
   int json;
+  const cli_samples *train_samples; /* for the image summary in --json and reports */
   int lr_set, wd_set;
   const char *checkpoint;
   char checkpoint_buf[4096];
@@ -121,176 +78,114 @@ typedef struct distill_args {
   const char *report;
   char *config_strings; /* pair names read from --config, freed at exit */
   rc_distill_config cfg;
+  cli_outputs outs;
 } distill_args;
-
-enum {
-  OPT_TEACHER = 256, OPT_STUDENT, OPT_DATA, OPT_LABELS, OPT_VAL_DATA, OPT_VAL_LABELS, OPT_VAL_SPLIT,
-  OPT_SCALE, OPT_MEAN, OPT_STD, OPT_EPOCHS, OPT_STEPS, OPT_BATCH, OPT_OPTIMIZER, OPT_LR, OPT_SCHEDULE,
-  OPT_WARMUP, OPT_STEP_SIZE, OPT_GAMMA, OPT_WD, OPT_MOMENTUM, OPT_NO_NESTEROV, OPT_CLIP, OPT_LOSS,
-  OPT_TEMPERATURE, OPT_ALPHA, OPT_BN, OPT_MASK, OPT_TRAIN, OPT_FREEZE, OPT_SEED, OPT_THREADS, OPT_OUT, OPT_JSON,
-  OPT_CHECKPOINT, OPT_CHECKPOINT_EVERY, OPT_RESUME, OPT_PAIR, OPT_CONFIG, OPT_REPORT
-};
-
-static int number(const char *opt, const char *v, double lo, double hi, double *out) {
-  if (cli_parse_float(v, out) || *out < lo || *out > hi)
-    return cli_usage_error("distill", "--%s expects a number in [%g, %g], got '%s'", opt, lo, hi, v);
-  return 0;
-}
-
-static int integer(const char *opt, const char *v, long lo, long hi, long *out) {
-  if (cli_parse_int(v, lo, hi, out))
-    return cli_usage_error("distill", "--%s expects an integer in [%ld, %ld], got '%s'", opt, lo, hi, v);
-  return 0;
-}
-
-static int choice(const char *opt, const char *v, const char *const *names, int n, int *out) {
-  for (int i = 0; i < n; i++)
-    if (!strcmp(v, names[i])) {
-      *out = i;
-      return 0;
-    }
-  return cli_usage_error("distill", "--%s: unknown value '%s'", opt, v);
-}
 
 static int apply_option(distill_args *a, int c, const char *v) {
   rc_distill_config *cfg = &a->cfg;
-  double d;
-  long l;
-  int k = 0;
-  switch (c) {
-    case OPT_TEACHER: a->teacher = v; return 0;
-    case OPT_STUDENT: a->student = v; return 0;
-    case OPT_OUT: a->out = v; return 0;
-    case OPT_DATA:
+  if (c < CLI_OPT_BASE || c >= CLI_OPT_BASE + CLI_DISTILL_N_OPTIONS) return cli_usage_error("distill", "unknown option");
+  double d = 0;
+  long l = 0;
+  if (cli_option_value(&cli_distill_options[c - CLI_OPT_BASE], v, &d, &l)) return RC_EXIT_USAGE;
+  switch ((cli_distill_opt)(c - CLI_OPT_BASE)) {
+    case CLI_DISTILL_TEACHER: a->teacher = v; return 0;
+    case CLI_DISTILL_STUDENT: a->student = v; return 0;
+    case CLI_DISTILL_OUT: a->out = v; return 0;
+    case CLI_DISTILL_DATA:
       if (a->data.n_data == CLI_MAX_DATA) return cli_usage_error("distill", "too many --data");
       a->data.data[a->data.n_data++] = v;
       return 0;
-    case OPT_LABELS: a->data.labels = v; return 0;
-    case OPT_VAL_DATA:
+    case CLI_DISTILL_LABELS: a->data.labels = v; return 0;
+    case CLI_DISTILL_VAL_DATA:
       if (a->n_val_data == CLI_MAX_DATA) return cli_usage_error("distill", "too many --val-data");
       a->val_data[a->n_val_data++] = v;
       return 0;
-    case OPT_VAL_LABELS: a->val_labels = v; return 0;
-    case OPT_VAL_SPLIT:
-      if (number("val-split", v, 1e-6, 0.9, &d)) return RC_EXIT_USAGE;
-      a->val_split = d;
-      return 0;
-    case OPT_SCALE: return cli_data_option(&a->data, "distill", "scale", v);
-    case OPT_MEAN: return cli_data_option(&a->data, "distill", "mean", v);
-    case OPT_STD: return cli_data_option(&a->data, "distill", "std", v);
-    case OPT_EPOCHS:
-      if (integer("epochs", v, 1, 1000000, &l)) return RC_EXIT_USAGE;
-      cfg->epochs = l;
-      return 0;
-    case OPT_STEPS:
-      if (integer("steps", v, 1, LONG_MAX, &l)) return RC_EXIT_USAGE;
-      cfg->steps = l;
-      return 0;
-    case OPT_BATCH:
-      if (integer("batch", v, 1, 1 << 16, &l)) return RC_EXIT_USAGE;
-      cfg->batch = l;
-      return 0;
-    case OPT_OPTIMIZER: {
-      static const char *const names[] = {"sgd", "adamw"};
-      if (choice("optimizer", v, names, 2, &k)) return RC_EXIT_USAGE;
+    case CLI_DISTILL_VAL_LABELS: a->val_labels = v; return 0;
+    case CLI_DISTILL_VAL_SPLIT: a->val_split = d; return 0;
+    case CLI_DISTILL_SCALE: return cli_data_option(&a->data, "distill", "scale", v);
+    case CLI_DISTILL_MEAN: return cli_data_option(&a->data, "distill", "mean", v);
+    case CLI_DISTILL_STD: return cli_data_option(&a->data, "distill", "std", v);
+    case CLI_DISTILL_RESIZE: return cli_data_option(&a->data, "distill", "resize", v);
+    case CLI_DISTILL_SKIP_BAD: return cli_data_option(&a->data, "distill", "skip-bad", v);
+    case CLI_DISTILL_CACHE_MB: a->cfg.cache_bytes = (size_t)l << 20; return 0;
+    case CLI_DISTILL_EPOCHS: cfg->epochs = l; return 0;
+    case CLI_DISTILL_STEPS: cfg->steps = l; return 0;
+    case CLI_DISTILL_BATCH: cfg->batch = l; return 0;
+    case CLI_DISTILL_OPTIMIZER: {
       rc_optim_config keep = cfg->optim;
-      rc_optim_defaults(&cfg->optim, k == 0 ? RC_OPTIM_SGD : RC_OPTIM_ADAMW);
+      rc_optim_defaults(&cfg->optim, l == 1 ? RC_OPTIM_SGD : RC_OPTIM_ADAMW); /* choices: adamw, sgd */
       if (a->lr_set) cfg->optim.lr = keep.lr;
       if (a->wd_set) cfg->optim.weight_decay = keep.weight_decay;
       return 0;
     }
-    case OPT_LR:
-      if (number("lr", v, 1e-12, 10, &d)) return RC_EXIT_USAGE;
+    case CLI_DISTILL_LR:
       cfg->optim.lr = (float)d;
       a->lr_set = 1;
       return 0;
-    case OPT_SCHEDULE: {
-      static const char *const names[] = {"constant", "step", "cosine"};
-      if (choice("schedule", v, names, 3, &k)) return RC_EXIT_USAGE;
-      cfg->sched.kind = k == 0 ? RC_SCHED_CONSTANT : k == 1 ? RC_SCHED_STEP : RC_SCHED_COSINE;
+    case CLI_DISTILL_SCHEDULE: /* choices: cosine, step, constant */
+      cfg->sched.kind = l == 0 ? RC_SCHED_COSINE : l == 1 ? RC_SCHED_STEP : RC_SCHED_CONSTANT;
       return 0;
-    }
-    case OPT_WARMUP:
-      if (integer("warmup", v, 0, LONG_MAX, &l)) return RC_EXIT_USAGE;
-      cfg->sched.warmup = l;
-      return 0;
-    case OPT_STEP_SIZE:
-      if (integer("step-size", v, 1, LONG_MAX, &l)) return RC_EXIT_USAGE;
-      cfg->sched.step_size = l;
-      return 0;
-    case OPT_GAMMA:
-      if (number("gamma", v, 1e-9, 1, &d)) return RC_EXIT_USAGE;
-      cfg->sched.gamma = (float)d;
-      return 0;
-    case OPT_WD:
-      if (number("weight-decay", v, 0, 1, &d)) return RC_EXIT_USAGE;
+    case CLI_DISTILL_WARMUP: cfg->sched.warmup = l; return 0;
+    case CLI_DISTILL_STEP_SIZE: cfg->sched.step_size = l; return 0;
+    case CLI_DISTILL_GAMMA: cfg->sched.gamma = (float)d; return 0;
+    case CLI_DISTILL_WEIGHT_DECAY:
       cfg->optim.weight_decay = (float)d;
       a->wd_set = 1;
       return 0;
-    case OPT_MOMENTUM:
-      if (number("momentum", v, 0, 0.9999, &d)) return RC_EXIT_USAGE;
-      cfg->optim.momentum = (float)d;
-      return 0;
-    case OPT_NO_NESTEROV: cfg->optim.nesterov = 0; return 0;
-    case OPT_CLIP:
-      if (number("clip", v, 0, 1e9, &d)) return RC_EXIT_USAGE;
-      cfg->clip = d;
-      return 0;
-    case OPT_LOSS: {
+    case CLI_DISTILL_MOMENTUM: cfg->optim.momentum = (float)d; return 0;
+    case CLI_DISTILL_NO_NESTEROV: cfg->optim.nesterov = 0; return 0;
+    case CLI_DISTILL_CLIP: cfg->clip = d; return 0;
+    case CLI_DISTILL_LOSS: {
       rc_err e = {0};
-      if (rc_loss_spec_parse(&cfg->terms, v, &e) != RC_OK) return cli_usage_error("distill", "%s", e.msg);
+      if (rc_loss_spec_parse(&cfg->terms, v, &e) != RC_OK) return cli_usage_error("distill", "--loss: %s", e.msg);
       return 0;
     }
-    case OPT_PAIR:
+    case CLI_DISTILL_PAIR:
       if (a->n_pairs == MAX_GLOBS) return cli_usage_error("distill", "too many --pair");
       a->pairs[a->n_pairs] = v;
       a->pair_weights[a->n_pairs++] = 1.0f;
       return 0;
-    case OPT_CONFIG: a->config = v; return 0;
-    case OPT_REPORT: a->report = v; return 0;
-    case OPT_TEMPERATURE:
-      if (number("temperature", v, 1e-3, 1e3, &d)) return RC_EXIT_USAGE;
-      cfg->temperature = (float)d;
-      return 0;
-    case OPT_ALPHA:
-      if (number("alpha", v, 0, 1, &d)) return RC_EXIT_USAGE;
-      cfg->alpha = (float)d;
-      return 0;
-    case OPT_BN: {
-      static const char *const names[] = {"frozen", "recalibrate", "train"};
-      if (choice("bn", v, names, 3, &k)) return RC_EXIT_USAGE;
-      cfg->bn = (rc_bn_mode)k;
-      return 0;
-    }
-    case OPT_MASK:
-      if (!rc__mask_mode_parse(v, &cfg->mask))
-        return cli_usage_error("distill", "--mask must be auto, zeros or none, not '%s'", v);
-      return 0;
-    case OPT_TRAIN:
+    case CLI_DISTILL_CONFIG: a->config = v; return 0;
+    case CLI_DISTILL_REPORT: a->report = v; return 0;
+    case CLI_DISTILL_TEMPERATURE: cfg->temperature = (float)d; return 0;
+    case CLI_DISTILL_ALPHA: cfg->alpha = (float)d; return 0;
+    case CLI_DISTILL_BN: cfg->bn = (rc_bn_mode)l; return 0;       /* choices in rc_bn_mode's order */
+    case CLI_DISTILL_MASK: cfg->mask = (rc_mask_mode)l; return 0; /* choices in rc_mask_mode's order */
+    case CLI_DISTILL_TRAIN:
       if (a->n_train == MAX_GLOBS) return cli_usage_error("distill", "too many --train");
       a->train[a->n_train++] = v;
       return 0;
-    case OPT_FREEZE:
+    case CLI_DISTILL_FREEZE:
       if (a->n_freeze == MAX_GLOBS) return cli_usage_error("distill", "too many --freeze");
       a->freeze[a->n_freeze++] = v;
       return 0;
-    case OPT_SEED:
-      if (integer("seed", v, 0, LONG_MAX, &l)) return RC_EXIT_USAGE;
-      cfg->seed = (uint64_t)l;
-      return 0;
-    case OPT_THREADS:
-      if (integer("threads", v, 0, 1024, &l)) return RC_EXIT_USAGE;
-      a->threads = l;
-      return 0;
-    case OPT_JSON: a->json = 1; return 0;
-    case OPT_CHECKPOINT: a->checkpoint = v; return 0;
-    case OPT_CHECKPOINT_EVERY:
-      if (integer("checkpoint-every", v, 0, LONG_MAX, &l)) return RC_EXIT_USAGE;
-      cfg->checkpoint_every = l;
-      return 0;
-    case OPT_RESUME: cfg->resume_path = v; return 0;
+    case CLI_DISTILL_SEED: cfg->seed = (uint64_t)l; return 0;
+    case CLI_DISTILL_THREADS: a->threads = l; return 0;
+    case CLI_DISTILL_JSON: a->json = 1; return 0;
+    case CLI_DISTILL_CHECKPOINT: a->checkpoint = v; return 0;
+    case CLI_DISTILL_CHECKPOINT_EVERY: cfg->checkpoint_every = l; return 0;
+    case CLI_DISTILL_RESUME: cfg->resume_path = v; return 0;
+    case CLI_DISTILL_OUTPUT_LOSS: return cli_outputs_add_spec(&a->outs, "distill", v);
+    case CLI_DISTILL_TARGETS: return cli_outputs_add_targets(&a->outs, "distill", v, 0);
+    case CLI_DISTILL_VAL_TARGETS: return cli_outputs_add_targets(&a->outs, "distill", v, 1);
+    case CLI_DISTILL_IGNORE_LABEL: a->outs.ignore = l; return 0;
+    case CLI_DISTILL_N_OPTIONS: break;
   }
   return cli_usage_error("distill", "unknown option");
+}
+
+/* "output_loss": ["OUT=TERM[:key=value...]", ...], as --output-loss. */
+static int config_output_losses(distill_args *a, const cJSON *list) {
+  if (!list) return 0;
+  if (!cJSON_IsArray(list))
+    return cli_usage_error("distill", "--config %s: \"output_loss\" must be an array of \"OUT=TERM[:key=value...]\"",
+                           a->config);
+  for (const cJSON *it = list->child; it; it = it->next) {
+    if (!cJSON_IsString(it))
+      return cli_usage_error("distill", "--config %s: \"output_loss\" items must be strings", a->config);
+    if (cli_outputs_add_spec(&a->outs, "distill", it->valuestring)) return RC_EXIT_USAGE;
+  }
+  return 0;
 }
 
 /* --config FILE: {"loss": {"kd": 1, "hint": 0.5}, "pairs": [{"teacher": T,
@@ -311,8 +206,9 @@ static int read_config(distill_args *a) {
     goto out;
   }
   for (cJSON *it = root->child; it; it = it->next)
-    if (strcmp(it->string, "loss") && strcmp(it->string, "pairs")) {
-      rc = cli_usage_error("distill", "--config %s: unknown key '%s' (expected loss, pairs)", a->config, it->string);
+    if (strcmp(it->string, "loss") && strcmp(it->string, "pairs") && strcmp(it->string, "output_loss")) {
+      rc = cli_usage_error("distill", "--config %s: unknown key '%s' (expected loss, pairs, output_loss)", a->config,
+                           it->string);
       goto out;
     }
   cJSON *loss = cJSON_GetObjectItemCaseSensitive(root, "loss");
@@ -333,10 +229,11 @@ static int read_config(distill_args *a) {
     }
     rc_err e = {0};
     if (rc_loss_spec_parse(&a->cfg.terms, spec, &e) != RC_OK) {
-      rc = cli_usage_error("distill", "--config %s: %s", a->config, e.msg);
+      rc = cli_usage_error("distill", "--config %s: \"loss\": %s", a->config, e.msg);
       goto out;
     }
   }
+  if ((rc = config_output_losses(a, cJSON_GetObjectItemCaseSensitive(root, "output_loss"))) != 0) goto out;
   cJSON *pairs = cJSON_GetObjectItemCaseSensitive(root, "pairs");
   if (pairs) {
     int count = cJSON_GetArraySize(pairs);
@@ -372,34 +269,15 @@ out:
 static int apply_option_ctx(void *a, int c, const char *v) { return apply_option(a, c, v); }
 
 static int parse_args(distill_args *a, int argc, char **argv) {
-  static const struct option longopts[] = {
-      {"teacher", required_argument, NULL, OPT_TEACHER}, {"student", required_argument, NULL, OPT_STUDENT},
-      {"data", required_argument, NULL, OPT_DATA}, {"labels", required_argument, NULL, OPT_LABELS},
-      {"val-data", required_argument, NULL, OPT_VAL_DATA}, {"val-labels", required_argument, NULL, OPT_VAL_LABELS},
-      {"val-split", required_argument, NULL, OPT_VAL_SPLIT}, {"scale", required_argument, NULL, OPT_SCALE},
-      {"mean", required_argument, NULL, OPT_MEAN}, {"std", required_argument, NULL, OPT_STD},
-      {"epochs", required_argument, NULL, OPT_EPOCHS}, {"steps", required_argument, NULL, OPT_STEPS},
-      {"batch", required_argument, NULL, OPT_BATCH}, {"optimizer", required_argument, NULL, OPT_OPTIMIZER},
-      {"lr", required_argument, NULL, OPT_LR}, {"schedule", required_argument, NULL, OPT_SCHEDULE},
-      {"warmup", required_argument, NULL, OPT_WARMUP}, {"step-size", required_argument, NULL, OPT_STEP_SIZE},
-      {"gamma", required_argument, NULL, OPT_GAMMA}, {"weight-decay", required_argument, NULL, OPT_WD},
-      {"momentum", required_argument, NULL, OPT_MOMENTUM}, {"no-nesterov", no_argument, NULL, OPT_NO_NESTEROV},
-      {"clip", required_argument, NULL, OPT_CLIP}, {"loss", required_argument, NULL, OPT_LOSS},
-      {"temperature", required_argument, NULL, OPT_TEMPERATURE}, {"alpha", required_argument, NULL, OPT_ALPHA},
-      {"bn", required_argument, NULL, OPT_BN}, {"mask", required_argument, NULL, OPT_MASK},
-      {"train", required_argument, NULL, OPT_TRAIN},
-      {"freeze", required_argument, NULL, OPT_FREEZE}, {"seed", required_argument, NULL, OPT_SEED},
-      {"threads", required_argument, NULL, OPT_THREADS}, {"out", required_argument, NULL, OPT_OUT},
-      {"json", no_argument, NULL, OPT_JSON}, {"checkpoint", required_argument, NULL, OPT_CHECKPOINT},
-      {"checkpoint-every", required_argument, NULL, OPT_CHECKPOINT_EVERY},
-      {"resume", required_argument, NULL, OPT_RESUME}, {"pair", required_argument, NULL, OPT_PAIR},
-      {"config", required_argument, NULL, OPT_CONFIG}, {"report", required_argument, NULL, OPT_REPORT},
-      {"help", no_argument, NULL, 'h'}, {NULL, 0, NULL, 0}};
+  struct option longopts[CLI_DISTILL_N_OPTIONS + 2];
+  cli_distill_longopts(longopts);
   memset(a, 0, sizeof *a);
   cli_data_opts_init(&a->data);
+  cli_outputs_init(&a->outs);
   rc_distill_config_defaults(&a->cfg);
-  a->cfg.checkpoint_every = 500;
-  a->val_split = 0.1;
+  for (int i = 0; i < CLI_DISTILL_N_OPTIONS; i++)
+    if (cli_distill_options[i].dflt && apply_option(a, CLI_OPT_BASE + i, cli_distill_options[i].dflt))
+      return RC_EXIT_FAIL; /* a default the table itself refuses */
   int pr = cli_parse_options(argc, argv, longopts, "distill", apply_option_ctx, a, usage);
   if (pr) return pr;
   if (optind != argc) return cli_usage_error("distill", "unexpected argument '%s'", argv[optind]);
@@ -420,6 +298,8 @@ static int parse_args(distill_args *a, int argc, char **argv) {
   a->cfg.n_train = a->n_train;
   a->cfg.freeze_globs = a->freeze;
   a->cfg.n_freeze = a->n_freeze;
+  a->cfg.output_losses = a->outs.specs;
+  a->cfg.n_output_losses = a->outs.n;
   return 0;
 }
 
@@ -455,7 +335,7 @@ static int check_output_path(const distill_args *a, rc_err *e) {
     return -1;
   /* --resume is read, then replaced by the run's own checkpoints; the output never. */
   if (a->cfg.resume_path && rc__path_same_file(a->out, a->cfg.resume_path)) {
-    rc__fail(e, RC_ERR_INVALID, "--resume %s is the output file", a->cfg.resume_path);
+    rc_err_set(e, RC_ERR_INVALID, "--resume %s is the output file", a->cfg.resume_path);
     return -1;
   }
   if (a->report) {
@@ -486,16 +366,11 @@ static void on_progress(void *user, const rc_distill_progress *p) {
   progress_state *ps = user;
   char eta[32], loss[32], kl[32];
   rc__fmt_sig(loss, sizeof loss, p->loss, RC_FMT_SIG, 0);
-  if (p->event == RC_DISTILL_NOTE) {
-    char nb[1024];
-    fprintf(stderr, "%srecoup: %s\n", ps->tty ? "\r\033[K" : "", cli_esc(p->note, nb, sizeof nb));
-    return;
-  }
   if (p->event == RC_DISTILL_EPOCH) {
     if (ps->tty) fprintf(stderr, "\r\033[K");
     fprintf(stderr, "epoch %lld/%lld  loss %s", (long long)p->epoch, (long long)p->epochs, loss);
     if (p->val.has_labels) fprintf(stderr, "  val accuracy %.2f%%", 100 * p->val.top1);
-    fprintf(stderr, "  agreement %.2f%%  KL %s%s\n", 100 * p->val.agreement,
+    fprintf(stderr, "  agreement %.2f%%  %s %s%s\n", 100 * p->val.agreement, p->val.outputs ? "output loss" : "KL",
             rc__fmt_sig(kl, sizeof kl, p->val.kl, RC_FMT_SIG, 0), p->is_best ? "  (best so far)" : "");
     return;
   }
@@ -549,6 +424,7 @@ static cJSON *metrics_json(const rc_metrics *m, double alpha) {
   if (m->has_labels) cJSON_AddNumberToObject(o, "cross_entropy", m->ce);
   double sel = rc__select_measure(m, alpha);
   if (isfinite(sel)) cJSON_AddNumberToObject(o, "selection", sel);
+  if (m->outputs) cli_outputs_metrics_json(o, m);
   return o;
 }
 
@@ -571,10 +447,10 @@ static void warn_ranges(const rc_distill_result *r) {
   for (int i = 0; i < r->n_ranges; i++) {
     const rc_range_check *c = &r->ranges[i];
     if (!c->after.values_out) continue;
-    char w[32], b[32], d[32];
+    char w[32], b[32], d[32], nb[512];
     fprintf(stderr, "recoup: warning: %lld of %lld values of '%s' on %lld of %lld validation samples lie outside "
             "its activation grid and are clamped: the furthest is %s against the grid's %s of %s (%s beyond); "
-            "before training: %lld values\n", (long long)c->after.values_out, (long long)c->after.values, c->tensor,
+            "before training: %lld values\n", (long long)c->after.values_out, (long long)c->after.values, cli_esc(c->tensor, nb, sizeof nb),
             (long long)c->after.samples_out, (long long)c->after.samples,
             rc__fmt_sig(w, sizeof w, c->after.worst, RC_FMT_SIG, 0),
             c->after.worst > c->after.bound ? "maximum" : "minimum", rc__fmt_sig(b, sizeof b, c->after.bound, RC_FMT_SIG, 0),
@@ -601,6 +477,9 @@ static cJSON *results_json(const distill_args *a, const rc_distill_result *r, do
   cJSON_AddNumberToObject(root, "steps", (double)r->steps_done);
   cJSON_AddNumberToObject(root, "seconds", r->seconds);
   cJSON_AddNumberToObject(root, "samples_per_s", r->samples_per_s);
+  cJSON_AddNumberToObject(root, "ranks", r->ranks);
+  cJSON_AddNumberToObject(root, "comm_seconds_per_step", r->comm_seconds_per_step);
+  cJSON_AddNumberToObject(root, "comm_bytes_per_step", 4.0 * (double)r->comm_values_per_step);
   cJSON_AddNumberToObject(root, "trainable_tensors", r->n_trainable_tensors);
   cJSON_AddNumberToObject(root, "trainable_values", (double)r->n_trainable);
   cJSON_AddNumberToObject(root, "pruned_zeros_kept", (double)r->n_frozen_zeros);
@@ -609,6 +488,9 @@ static cJSON *results_json(const distill_args *a, const rc_distill_result *r, do
   cJSON_AddItemToObject(root, "weights", cli_weight_rules_json(r->rules, r->n_rules));
   cJSON_AddNumberToObject(root, "rollbacks", r->rollbacks);
   cJSON_AddNumberToObject(root, "reload_max_diff", verify_diff);
+  if (a->train_samples) cli_images_json(root, a->train_samples);
+  cJSON_AddStringToObject(root, "teacher_cache", r->teacher_cache_in_file ? "file" : "memory");
+  cJSON_AddNumberToObject(root, "teacher_cache_bytes", (double)r->teacher_cache_bytes);
   cJSON *layers = cJSON_AddArrayToObject(root, "layers");
   for (int i = 0; i < r->n_layers; i++) {
     cJSON *o = cJSON_CreateObject();
@@ -670,10 +552,14 @@ static void print_results(const distill_args *a, const rc_distill_result *r, dou
   char ob[1024];
   printf("\nValidation on %lld held-out samples (%s):\n", (long long)r->n_val,
          a->n_val_data ? "--val-data" : "a seeded slice of --data");
-  printf("  %-22s %10s %13s %14s\n", "model", "accuracy", "agreement", "KL to dense");
-  table_row("dense (teacher)", &r->teacher);
-  table_row("compressed (input)", &r->before);
-  table_row("recovered (output)", &r->after);
+  void (*row)(const char *, const rc_metrics *) = r->after.outputs ? cli_outputs_table_row : table_row;
+  if (r->after.outputs)
+    cli_outputs_table_header();
+  else
+    printf("  %-22s %10s %13s %14s\n", "model", "accuracy", "agreement", "KL to dense");
+  row("dense (teacher)", &r->teacher);
+  row("compressed (input)", &r->before);
+  row("recovered (output)", &r->after);
   if (r->n_layers) {
     printf("\nLayer outputs against the dense model (signal-to-noise ratio, dB; higher is closer):\n");
     printf("  %-44s %12s %12s\n", "student tensor", "before", "after");
@@ -694,6 +580,7 @@ static void print_results(const distill_args *a, const rc_distill_result *r, dou
            "       integer ranges; every integer checked inside its range)\n", r->n_grids);
   cli_weight_rules_print(r->rules, r->n_rules);
   printf("best state: lowest validation %s; agreement%s reported beside it\n",
+         r->after.outputs ? "output loss (the --output-loss terms; with labels, alpha of it + (1-alpha) cross-entropy)" :
          strcmp(rc__select_rule_name(&r->before, r->select_alpha), "kl") ? "alpha*KL + (1-alpha)*cross-entropy"
                                                                         : "KL to dense",
          r->after.has_labels ? " and accuracy" : "");
@@ -719,12 +606,30 @@ static void remove_checkpoints(const char *path) {
 
 /* ---- The command ------------------------------------------------------------- */
 
-static rc_status load_val(cli_samples *val, const distill_args *a, const rc_model *m, rc_err *e) {
+/* --data synth:N: N inputs made from the teacher (train/synthesize.h), seeded by --seed. */
+static rc_status synth_samples(cli_samples *s, const distill_args *a, rc_model *teacher, rc_err *e) {
+  if (a->data.n_data != 1 || a->data.labels)
+    return rc_err_set(e, RC_ERR_INVALID, "--data synth:N stands alone: no other --data, no --labels");
+  rc_synth_config c;
+  rc_synth_defaults(&c);
+  c.count = cli_synth_count(a->data.data[0]);
+  c.seed = a->cfg.seed;
+  cli_synth_progress_state ps = {cli_isatty_stderr(), -1};
+  c.progress = cli_synth_progress;
+  c.user = &ps;
+  rc_synth_stats stats;
+  RC_TRY(cli_synth_make(&s->inputs[0], &stats, teacher, &c, e));
+  s->n_inputs = 1;
+  s->n = c.count;
+  return RC_OK;
+}
+
+static rc_status load_val(cli_samples *val, const distill_args *a, const rc_graph *g, rc_err *e) {
   cli_data_opts vo = a->data;
   memcpy(vo.data, a->val_data, sizeof vo.data);
   vo.n_data = a->n_val_data;
-  vo.labels = NULL;
-  return cli_samples_load(val, &vo, m, e);
+  vo.labels = cli_images_labels_word(a->val_labels) ? a->val_labels : NULL; /* image sets read their own labels */
+  return cli_samples_load(val, &vo, g, e);
 }
 
 int rc_cmd_distill(int argc, char **argv) {
@@ -741,16 +646,36 @@ int rc_cmd_distill(int argc, char **argv) {
   memset(&r, 0, sizeof r);
   int rc = RC_EXIT_FAIL;
   double diff = 0;
+  char *cache_dir = NULL;
   if (check_output_path(&a, &e)) goto out;
-  if (a.report && cli_report_prepare(a.report, 0, &e) != RC_OK) goto out;
+  /* Under mpirun every rank trains; rank 0 alone writes and prints. */
+  int root = rc_dist_rank(cli_dist()) == 0;
+  if (root && a.report && cli_report_prepare(a.report, 0, &e) != RC_OK) goto out;
   if (rc_model_load(&teacher, a.teacher, NULL, &e) != RC_OK || rc_model_load(&student, a.student, NULL, &e) != RC_OK)
     goto out;
   if (rc_distill_check_pair(&teacher->graph, &student->graph, &e) != RC_OK) goto out;
-  if (cli_samples_load(&train, &a.data, student, &e) != RC_OK) goto out;
-  if (a.n_val_data && load_val(&val, &a, student, &e) != RC_OK) goto out;
-  {
+  if (cli_synth_count(a.data.data[0]) < 0) {
+    rc_err_set(&e, RC_ERR_INVALID, "--data %s: expected synth:N with N > 0", a.data.data[0]);
+    goto out;
+  }
+  /* The student's recorded preprocessing, else the teacher's. */
+  if (cli_prep_apply(&a.data, student, &e) != RC_OK) goto out;
+  if (!a.data.recorded && cli_prep_apply(&a.data, teacher, &e) != RC_OK) goto out;
+  if (cli_synth_count(a.data.data[0]) > 0 ? synth_samples(&train, &a, teacher, &e) != RC_OK
+                                           : cli_samples_load(&train, &a.data, &student->graph, &e) != RC_OK)
+    goto out;
+  if (a.n_val_data && load_val(&val, &a, &student->graph, &e) != RC_OK) goto out;
+  rc_output_side side, val_side;
+  memset(&side, 0, sizeof side);
+  memset(&val_side, 0, sizeof val_side);
+  if (a.outs.n) {
+    if (cli_outputs_load(&a.outs, &student->graph, &train, a.data.labels, a.n_val_data ? &val : NULL, a.val_labels,
+                         &side, &val_side, &e) != RC_OK)
+      goto out;
+    a.cfg.label_output = a.outs.label_output[0] ? a.outs.label_output : NULL;
+  } else {
     int64_t k = 0;
-    if (cli_output_classes(student, &k, &e) != RC_OK) goto out;
+    if (cli_output_classes(&student->graph, &train, &k, &e) != RC_OK) goto out;
     if (a.data.labels && cli_samples_load_labels(&train, a.data.labels, k, &e) != RC_OK) goto out;
     if (a.val_labels && cli_samples_load_labels(&val, a.val_labels, k, &e) != RC_OK) goto out;
   }
@@ -758,31 +683,54 @@ int rc_cmd_distill(int argc, char **argv) {
   for (int i = 0; i < train.n_inputs; i++) ins[i] = train.inputs[i].t;
   for (int i = 0; i < val.n_inputs; i++) vins[i] = val.inputs[i].t;
   rc_distill_data d = {ins, train.n_inputs, train.has_labels ? train.labels.t.data : NULL,
-                       a.n_val_data ? vins : NULL, val.has_labels ? val.labels.t.data : NULL, a.val_split};
+                       a.n_val_data ? vins : NULL, val.has_labels ? val.labels.t.data : NULL, a.val_split,
+                       side, val_side, train.norm, train.inputs, a.n_val_data ? val.inputs : NULL};
   if (a.n_val_data && train.has_labels != val.has_labels) {
-    rc__fail(&e, RC_ERR_INVALID, "give labels for both --data and --val-data, or for neither");
+    rc_err_set(&e, RC_ERR_INVALID, "give labels for both --data and --val-data, or for neither");
     goto out;
   }
   progress_state ps = {cli_isatty_stderr(), -1e9, a.json};
-  a.cfg.progress = on_progress;
+  a.cfg.progress = root ? on_progress : NULL;
+  a.cfg.dist = cli_dist();
   a.cfg.user = &ps;
+  a.cfg.log = (rc_logger){cli_log_stderr, &ps.tty, RC_LOG_INFO};
   a.cfg.stop = &cli_stop_requested;
   cli_catch_stop_signals();
+  cache_dir = rc__path_dir(a.out); /* a spilled teacher cache goes beside the output */
+  a.cfg.cache_dir = cache_dir;
   if (rc_distill_run(&r, teacher, student, &d, &a.cfg, &e) != RC_OK) goto out;
-  if (rc_model_save(student, a.out, r.changed, r.n_changed, &e) != RC_OK) goto out;
-  if (rc_distill_verify_written(a.out, student, a.n_val_data ? vins : ins, train.n_inputs, a.cfg.batch, &diff, &e) !=
-      RC_OK)
+  if (!root) {
+    rc = RC_EXIT_OK;
     goto out;
+  }
+  if (cli_prep_record(student, &a.data, &e) != RC_OK) goto out;
+  if (rc_model_save(student, a.out, r.changed, r.n_changed, &e) != RC_OK) goto out;
+  {
+    rc_array first[CLI_MAX_DATA];
+    rc_tensor fins[CLI_MAX_DATA];
+    memset(first, 0, sizeof first);
+    rc_status vs = cli_samples_first_batch(first, a.n_val_data ? &val : &train, a.cfg.batch, &e);
+    for (int i = 0; i < train.n_inputs; i++) fins[i] = first[i].t;
+    if (vs == RC_OK) vs = rc_distill_verify_written(a.out, student, fins, train.n_inputs, a.cfg.batch, &diff, &e);
+    for (int i = 0; i < CLI_MAX_DATA; i++) rc_array_free(&first[i]);
+    if (vs != RC_OK) goto out;
+  }
+  a.train_samples = &train;
   print_results(&a, &r, diff);
   remove_checkpoints(a.checkpoint);
   if (a.report && write_report(&a, &r, diff, &e) != RC_OK) goto out;
   rc = RC_EXIT_OK;
 out:
-  if (rc != RC_EXIT_OK) cli_fail(&e);
+  /* A stop request is summed with every step, so all ranks stop together
+   * after rank 0's checkpoint: rank 0 says so, and the job ends normally. */
+  if (e.code == RC_ERR_INTERRUPTED) cli_dist_agreed_exit();
+  if (rc != RC_EXIT_OK && (e.code != RC_ERR_INTERRUPTED || rc_dist_rank(cli_dist()) == 0)) cli_fail(&e);
   rc_distill_result_free(&r);
+  rc__free(cache_dir);
   cli_samples_free(&train);
   cli_samples_free(&val);
   free(a.config_strings);
+  cli_outputs_free(&a.outs);
   rc_model_free(teacher);
   rc_model_free(student);
   return rc;

@@ -105,8 +105,8 @@ static void io_shapes(const rc_model *m, int is_output, io_shape *out, int n, rc
   rc_tensor *s1 = rc__batch_inputs(g, 1), *s2 = rc__batch_inputs(g, 2);
   rc_plan *p1 = NULL, *p2 = NULL;
   rc_err e2 = {0};
-  if (s1 && s2 && rc_plan_create(&p1, g, s1, NULL, pe) == RC_OK) {
-    if (rc_plan_create(&p2, g, s2, NULL, &e2) != RC_OK) p2 = NULL;
+  if (s1 && s2 && rc_plan_init(&p1, g, s1, NULL, pe) == RC_OK) {
+    if (rc_plan_init(&p2, g, s2, NULL, &e2) != RC_OK) p2 = NULL;
     const char *bn = batch_name(m);
     for (int i = 0; i < n; i++) {
       rc_io_decl *d = &out[i].d;
@@ -205,7 +205,7 @@ static rc_status decide(const rc_model *m, const rc_weight_info *w, int n_w, con
   rc_status s = RC_OK;
   f->masks = rc__calloc((size_t)n_w + 1, sizeof *f->masks);
   f->ranges = rc__calloc((size_t)n_gr + 1, sizeof *f->ranges);
-  if (!f->masks || !f->ranges) s = rc__fail(e, RC_ERR_NOMEM, "out of memory");
+  if (!f->masks || !f->ranges) s = rc_err_set(e, RC_ERR_NOMEM, "out of memory");
   for (int i = 0; s == RC_OK && i < n_gr; i++) {
     s = rc__grid_range(g, &notes, gr[i].is_weight ? gr[i].value : -1, gr[i].dtype, g->values[gr[i].value].name,
                        &f->ranges[i], e);
@@ -387,7 +387,7 @@ static int inspect_pairs(const char *tpath, const char *spath, const char *const
   int rc = RC_EXIT_FAIL;
   if (rc_model_load(&t, tpath, NULL, &e) != RC_OK || rc_model_load(&s, spath, NULL, &e) != RC_OK) goto out;
   if (!(ins = rc__batch1_inputs(&s->graph))) goto out;
-  if (rc_pairing_make(&pg, &t->graph, &s->graph, ins, pairs, n_pairs, 1, &e) != RC_OK) goto out;
+  if (rc_pairing_init(&pg, &t->graph, &s->graph, ins, pairs, n_pairs, 1, &e) != RC_OK) goto out;
   if (json) {
     cJSON *arr = cJSON_CreateArray();
     for (int i = 0; i < pg.n; i++) {

@@ -44,6 +44,9 @@ static void usage(FILE *f) {
           "                           calibrated range, so outputs a little beyond the\n"
           "                           calibration samples are not clipped (default 0.1)\n"
           "  --scale S, --mean M[,..], --std D[,..]   x' = (x*S - M) / D, as for eval\n"
+          CLI_IMAGE_HELP
+          "  --limit N                calibrate on N samples: the first N after a seeded shuffle\n"
+          "  --seed S                 the shuffle for --limit (default 1)\n"
           "  --threads N              compute threads; 0 (the default) uses every online core\n"
           "  --json                   print the summary as one JSON object on stdout\n"
           "  -h, --help               show this help\n"
@@ -60,13 +63,14 @@ static void usage(FILE *f) {
 typedef struct quantize_args {
   const char *model, *out;
   cli_data_opts data;
+  long limit, seed; /* --limit N samples after a shuffle seeded with --seed */
   rc_quant_config cfg;
   long threads;
   int json;
 } quantize_args;
 
 enum { OPT_DATA = 256, OPT_OUT, OPT_WBITS, OPT_ABITS, OPT_CALIB, OPT_PCT, OPT_BATCH, OPT_SCALE, OPT_MEAN, OPT_STD,
-       OPT_THREADS, OPT_JSON, OPT_MARGIN };
+       OPT_THREADS, OPT_JSON, OPT_MARGIN, OPT_RESIZE, OPT_SKIP_BAD, OPT_LIMIT, OPT_SEED };
 
 static int apply_option(quantize_args *a, int c, const char *v);
 static int apply_option_ctx(void *a, int c, const char *v) { return apply_option(a, c, v); }
@@ -112,6 +116,15 @@ static int apply_option(quantize_args *a, int c, const char *v) {
     case OPT_SCALE: return cli_data_option(&a->data, "quantize", "scale", v);
     case OPT_MEAN: return cli_data_option(&a->data, "quantize", "mean", v);
     case OPT_STD: return cli_data_option(&a->data, "quantize", "std", v);
+    case OPT_RESIZE: return cli_data_option(&a->data, "quantize", "resize", v);
+    case OPT_LIMIT:
+      if (cli_parse_int(v, 1, LONG_MAX, &a->limit))
+        return cli_usage_error("quantize", "--limit expects a positive sample count, got '%s'", v);
+      return 0;
+    case OPT_SEED:
+      if (cli_parse_int(v, 0, LONG_MAX, &a->seed)) return cli_usage_error("quantize", "--seed expects a count, got '%s'", v);
+      return 0;
+    case OPT_SKIP_BAD: return cli_data_option(&a->data, "quantize", "skip-bad", v);
     case OPT_THREADS:
       if (cli_parse_int(v, 0, 1024, &l)) return cli_usage_error("quantize", "--threads expects a count, got '%s'", v);
       a->threads = l;
@@ -128,11 +141,14 @@ static int parse_args(quantize_args *a, int argc, char **argv) {
       {"calibration", required_argument, NULL, OPT_CALIB}, {"percentile", required_argument, NULL, OPT_PCT},
       {"batch", required_argument, NULL, OPT_BATCH},       {"scale", required_argument, NULL, OPT_SCALE},
       {"mean", required_argument, NULL, OPT_MEAN},         {"std", required_argument, NULL, OPT_STD},
+      {"resize", required_argument, NULL, OPT_RESIZE},     {"skip-bad", no_argument, NULL, OPT_SKIP_BAD},
+      {"limit", required_argument, NULL, OPT_LIMIT},       {"seed", required_argument, NULL, OPT_SEED},
       {"threads", required_argument, NULL, OPT_THREADS},   {"json", no_argument, NULL, OPT_JSON},
       {"output-margin", required_argument, NULL, OPT_MARGIN},
       {"help", no_argument, NULL, 'h'},                    {NULL, 0, NULL, 0}};
   memset(a, 0, sizeof *a);
   cli_data_opts_init(&a->data);
+  a->seed = 1;
   rc_quant_config_init(&a->cfg);
   int pr = cli_parse_options(argc, argv, longopts, "quantize", apply_option_ctx, a, usage);
   if (pr) return pr;
@@ -164,17 +180,17 @@ static rc_status run_first_output(first_output *o, const rc_graph *g, const cli_
   rc_tensor shapes[CLI_MAX_DATA];
   cli_samples_shapes(s, batch, shapes);
   rc_plan *p = NULL;
-  RC_TRY(rc_plan_create(&p, g, shapes, NULL, e));
+  RC_TRY(rc_plan_init(&p, g, shapes, NULL, e));
   const rc_tensor *t = rc_plan_tensor(p, g->outputs[0]);
   rc_status st = RC_OK;
   if (t->dtype != RC_DTYPE_FLOAT || t->rank < 1 || t->dims[0] != batch)
-    st = rc__fail(e, RC_ERR_SHAPE, "%s: first output '%s' is not float32 with the batch first", g->path,
+    st = rc_err_set(e, RC_ERR_SHAPE, "%s: first output '%s' is not float32 with the batch first", g->path,
                   g->values[g->outputs[0]].name);
   if (st == RC_OK) {
     o->per = rc_tensor_numel(t) / batch;
     o->k = t->rank == 2 ? t->dims[1] : 0;
-    o->data = rc__malloc(sizeof(float) * (size_t)(o->per * s->n) + 1);
-    if (!o->data) st = rc__fail(e, RC_ERR_NOMEM, "out of memory for the outputs of %s", g->path);
+    o->data = rc__malloc(sizeof(float) * (size_t)(o->per * d->n) + 1);
+    if (!o->data) st = rc_err_set(e, RC_ERR_NOMEM, "out of memory for the outputs of %s", g->path);
   }
   if (st == RC_OK) {
     void *outs[1] = {o->data};
@@ -198,21 +214,21 @@ static rc_status verify_written(comparison *c, const char *out, const rc_graph *
   rc_model *q = NULL;
   first_output fo = {0}, qo = {0};
   rc_status st = rc_model_load(&q, out, NULL, e);
-  if (st != RC_OK) rc__wrap(e, "the written model does not load back");
+  if (st != RC_OK) rc_err_prefix(e, "the written model does not load back");
   if (st == RC_OK) st = run_first_output(&fo, dense, s, d, batch, e);
   if (st == RC_OK) st = run_first_output(&qo, &q->graph, s, d, batch, e);
   if (st == RC_OK && qo.per != fo.per)
-    st = rc__fail(e, RC_ERR_SHAPE, "%s: first output has %lld values per sample, the float model %lld", out,
+    st = rc_err_set(e, RC_ERR_SHAPE, "%s: first output has %lld values per sample, the float model %lld", out,
                   (long long)qo.per, (long long)fo.per);
-  for (int64_t i = 0; st == RC_OK && i < fo.per * s->n; i++) {
+  for (int64_t i = 0; st == RC_OK && i < fo.per * d->n; i++) {
     double diff = fabs((double)qo.data[i] - fo.data[i]);
     if (!(diff == diff))
-      st = rc__fail(e, RC_ERR_NUMERIC, "%s: output value %lld is not finite", out, (long long)i);
+      st = rc_err_set(e, RC_ERR_NUMERIC, "%s: output value %lld is not finite", out, (long long)i);
     else if (diff > c->max_abs_diff)
       c->max_abs_diff = diff;
   }
   if (st == RC_OK && fo.k > 1) {
-    st = rc__metrics_compute(&c->m, qo.data, NULL, fo.data, s->n, fo.k, e);
+    st = rc__metrics_compute(&c->m, qo.data, NULL, fo.data, d->n, fo.k, e);
     c->have_metrics = st == RC_OK;
   }
   rc__free(fo.data);
@@ -352,19 +368,21 @@ int rc_cmd_quantize(int argc, char **argv) {
   comparison cmp;
   if (check_output_path(&a, &e) != RC_OK) goto out;
   if (rc_model_load(&m, a.model, NULL, &e) != RC_OK) goto out;
-  if (cli_samples_load(&s, &a.data, m, &e) != RC_OK) goto out;
-  if (cli_samples_dataset(&d, &s, NULL, 0, &e) != RC_OK) goto out;
+  if (cli_prep_apply(&a.data, m, &e) != RC_OK) goto out;
+  if (cli_samples_load(&s, &a.data, &m->graph, &e) != RC_OK) goto out;
+  if (cli_samples_dataset_limit(&d, &s, a.limit, (uint64_t)a.seed, &e) != RC_OK) goto out;
   if (rc_quantize_model(m, &d, &a.cfg, &rep, &e) != RC_OK) goto out;
+  if (cli_prep_record(m, &a.data, &e) != RC_OK) goto out;
   if (rc_model_save(m, a.out, NULL, 0, &e) != RC_OK) goto out;
   written = 1;
-  int64_t batch = a.cfg.batch < s.n ? a.cfg.batch : s.n;
+  int64_t batch = a.cfg.batch < d.n ? a.cfg.batch : d.n;
   if (verify_written(&cmp, a.out, &m->graph, &s, &d, batch, &e) != RC_OK) goto out;
   if (a.json) print_json(&a, &rep, &cmp, (long long)m->file_bytes, file_size(a.out));
   else print_table(&a, &rep, &cmp, (long long)m->file_bytes, file_size(a.out));
   rc = RC_EXIT_OK;
 out:
   if (rc != RC_EXIT_OK) {
-    if (written && unlink(a.out) == 0) rc__wrap(&e, "removed %s, which failed its check", a.out);
+    if (written && unlink(a.out) == 0) rc_err_prefix(&e, "removed %s, which failed its check", a.out);
     cli_fail(&e);
   }
   rc_quant_report_free(&rep);

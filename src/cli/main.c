@@ -9,6 +9,7 @@
 #include <string.h>
 
 #include "cli/cli.h"
+#include "train/dist.h"
 
 static const rc_command commands[] = {
     {"inspect", "show a model's inputs, outputs, ops, sparsity and quantization grids", rc_cmd_inspect},
@@ -17,6 +18,7 @@ static const rc_command commands[] = {
     {"batch", "run a manifest's zoo of distill jobs: parallel, resumable, sharded, with reports", rc_cmd_batch},
     {"prune", "make a sparse or narrower student from a dense model", rc_cmd_prune},
     {"quantize", "quantize a dense model to integer grids (QDQ) from calibration samples", rc_cmd_quantize},
+    {"synthesize", "make input samples from a teacher's BatchNormalization statistics (no data)", rc_cmd_synthesize},
 };
 
 #define N_COMMANDS ((int)(sizeof commands / sizeof commands[0]))
@@ -52,6 +54,41 @@ static void wait_passively(char **argv) {
   /* If re-executing fails, carry on with the default policy. */
 }
 
+/* Written once, before any command runs; MPI itself is one per process. */
+static rc_dist *the_dist;
+static int agreed_exit;
+
+rc_dist *cli_dist(void) { return the_dist; }
+void cli_dist_agreed_exit(void) { agreed_exit = 1; }
+
+/* Under mpirun every rank runs the command; rank 0 alone prints results,
+ * the others keep stderr for their errors. */
+static int join_ranks(int *argc, char ***argv) {
+  rc_err e = {0};
+  if (rc_dist_start(&the_dist, argc, argv, &e) != RC_OK) return cli_fail(&e);
+  if (rc_dist_rank(the_dist) != 0 && !freopen("/dev/null", "w", stdout)) return RC_EXIT_FAIL;
+  return RC_EXIT_OK;
+}
+
+/* A command that failed on one rank of several stops them all: the others
+ * may wait in a collective call for it. cli_fail has named rank and host. */
+static int leave_ranks(int rc) {
+  if (rc != RC_EXIT_OK && !agreed_exit) {
+    fflush(stdout);
+    fflush(stderr);
+    rc_dist_abort(the_dist, rc);
+  }
+  rc_dist_end(the_dist);
+  return rc;
+}
+
+static int dispatch(int argc, char **argv) {
+  const char *cmd = argv[1];
+  for (int i = 0; i < N_COMMANDS; i++)
+    if (!strcmp(cmd, commands[i].name)) return commands[i].run(argc - 1, argv + 1);
+  return cli_usage_error(NULL, "unknown command '%s'", cmd);
+}
+
 int main(int argc, char **argv) {
   wait_passively(argv);
   /* A write past a file-size limit must fail with EFBIG, not kill us. */
@@ -71,7 +108,7 @@ int main(int argc, char **argv) {
     printf("recoup %s\n", RECOUP_VERSION);
     return RC_EXIT_OK;
   }
-  for (int i = 0; i < N_COMMANDS; i++)
-    if (!strcmp(cmd, commands[i].name)) return commands[i].run(argc - 1, argv + 1);
-  return cli_usage_error(NULL, "unknown command '%s'", cmd);
+  int rc = join_ranks(&argc, &argv);
+  if (rc != RC_EXIT_OK) return rc;
+  return leave_ranks(dispatch(argc, argv));
 }

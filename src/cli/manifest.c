@@ -1,6 +1,7 @@
 /* Batch manifests: reading, checking and turning jobs into distill arguments. */
 #define _DEFAULT_SOURCE /* realpath */
 #include "cli/manifest.h"
+#include "cli/cli.h"
 
 #include <cJSON.h>
 #include <errno.h>
@@ -13,6 +14,7 @@
 #include <sys/stat.h>
 
 #include "cli/cli_data.h"
+#include "cli/distill_options.h"
 #include "cli/sha256.h"
 #include "core/alloc.h"
 #include "core/path.h"
@@ -24,80 +26,12 @@
 #define MAX_LIST 32
 #define MAX_INT 9007199254740992.0 /* 2^53: larger integers are not exact in JSON numbers */
 
-typedef enum kind {
-  K_PATH,    /* string: a file */
-  K_DATA,    /* string, array of strings, or object input name -> file */
-  K_INT,
-  K_NUM,
-  K_CHOICE,  /* string, one of `choices` */
-  K_NUMLIST, /* number or array of numbers, joined with ',' */
-  K_STRLIST, /* string or array of strings, the option repeated */
-  K_FLAG,    /* boolean: true gives the option */
-  K_TERMS    /* loss terms: "kd=1,hint=0.5" or {"kd": 1, "hint": 0.5} */
-} kind;
-
-typedef enum where { ANYWHERE, JOB_ONLY, BATCH_OWNED } where;
-
+/* A manifest key: an option of cli/distill_options.h under its long name
+ * with '-' written '_'. */
 typedef struct key_def {
-  const char *key;
-  kind k;
-  where w;
-  double lo, hi;
-  const char *const *choices;
+  char key[48];
+  const cli_option *o;
 } key_def;
-
-static const char *const OPTIMIZERS[] = {"adamw", "sgd", NULL};
-static const char *const SCHEDULES[] = {"cosine", "step", "constant", NULL};
-static const char *const BN_MODES[] = {"frozen", "recalibrate", "train", NULL};
-static const char *const MASK_MODES[] = {"auto", "zeros", "none", NULL};
-
-/* Every `recoup distill` option; ranges as distill checks them. The order is
- * the order of the arguments given to distill. */
-static const key_def KEYS[] = {
-    {"name", K_CHOICE, JOB_ONLY, 0, 0, NULL},
-    {"teacher", K_PATH, ANYWHERE, 0, 0, NULL},
-    {"student", K_PATH, ANYWHERE, 0, 0, NULL},
-    {"data", K_DATA, ANYWHERE, 0, 0, NULL},
-    {"labels", K_PATH, ANYWHERE, 0, 0, NULL},
-    {"val_data", K_DATA, ANYWHERE, 0, 0, NULL},
-    {"val_labels", K_PATH, ANYWHERE, 0, 0, NULL},
-    {"out", K_PATH, JOB_ONLY, 0, 0, NULL},
-    {"val_split", K_NUM, ANYWHERE, 1e-6, 0.9, NULL},
-    {"scale", K_NUM, ANYWHERE, -HUGE_VAL, HUGE_VAL, NULL},
-    {"mean", K_NUMLIST, ANYWHERE, -HUGE_VAL, HUGE_VAL, NULL},
-    {"std", K_NUMLIST, ANYWHERE, -HUGE_VAL, HUGE_VAL, NULL},
-    {"epochs", K_INT, ANYWHERE, 1, 1000000, NULL},
-    {"steps", K_INT, ANYWHERE, 1, MAX_INT, NULL},
-    {"batch", K_INT, ANYWHERE, 1, 65536, NULL},
-    {"optimizer", K_CHOICE, ANYWHERE, 0, 0, OPTIMIZERS},
-    {"lr", K_NUM, ANYWHERE, 1e-12, 10, NULL},
-    {"schedule", K_CHOICE, ANYWHERE, 0, 0, SCHEDULES},
-    {"warmup", K_INT, ANYWHERE, 0, MAX_INT, NULL},
-    {"step_size", K_INT, ANYWHERE, 1, MAX_INT, NULL},
-    {"gamma", K_NUM, ANYWHERE, 1e-9, 1, NULL},
-    {"weight_decay", K_NUM, ANYWHERE, 0, 1, NULL},
-    {"momentum", K_NUM, ANYWHERE, 0, 0.9999, NULL},
-    {"no_nesterov", K_FLAG, ANYWHERE, 0, 0, NULL},
-    {"clip", K_NUM, ANYWHERE, 0, 1e9, NULL},
-    {"loss", K_TERMS, ANYWHERE, 0, 0, NULL},
-    {"pair", K_STRLIST, ANYWHERE, 0, 0, NULL},
-    {"config", K_PATH, ANYWHERE, 0, 0, NULL},
-    {"temperature", K_NUM, ANYWHERE, 1e-3, 1e3, NULL},
-    {"alpha", K_NUM, ANYWHERE, 0, 1, NULL},
-    {"bn", K_CHOICE, ANYWHERE, 0, 0, BN_MODES},
-    {"mask", K_CHOICE, ANYWHERE, 0, 0, MASK_MODES},
-    {"train", K_STRLIST, ANYWHERE, 0, 0, NULL},
-    {"freeze", K_STRLIST, ANYWHERE, 0, 0, NULL},
-    {"seed", K_INT, ANYWHERE, 0, MAX_INT, NULL},
-    {"checkpoint_every", K_INT, ANYWHERE, 0, MAX_INT, NULL},
-    /* recoup batch sets these itself. */
-    {"threads", K_INT, BATCH_OWNED, 0, 0, NULL},
-    {"json", K_FLAG, BATCH_OWNED, 0, 0, NULL},
-    {"checkpoint", K_PATH, BATCH_OWNED, 0, 0, NULL},
-    {"resume", K_PATH, BATCH_OWNED, 0, 0, NULL},
-    {"report", K_PATH, BATCH_OWNED, 0, 0, NULL},
-};
-#define N_KEYS ((int)(sizeof KEYS / sizeof KEYS[0]))
 
 /* ---- Growing string lists ---------------------------------------------------- */
 
@@ -110,11 +44,11 @@ static rc_status push(strlist *l, const char *s, rc_err *e) {
   if (l->n == l->cap) {
     int cap = l->cap ? 2 * l->cap : 16;
     char **v = rc__realloc(l->v, (size_t)cap * sizeof *v);
-    if (!v) return rc__fail(e, RC_ERR_NOMEM, "out of memory reading the manifest");
+    if (!v) return rc_err_set(e, RC_ERR_NOMEM, "out of memory reading the manifest");
     l->v = v;
     l->cap = cap;
   }
-  if (!(l->v[l->n] = rc__strdup(s))) return rc__fail(e, RC_ERR_NOMEM, "out of memory reading the manifest");
+  if (!(l->v[l->n] = rc__strdup(s))) return rc_err_set(e, RC_ERR_NOMEM, "out of memory reading the manifest");
   l->n++;
   return RC_OK;
 }
@@ -134,15 +68,15 @@ typedef struct ctx {
   rc_err *e;
 } ctx;
 
-static rc_status field_error(ctx *c, const char *field, const char *fmt, ...) RC_PRINTF(3, 4);
+static rc_status field_error(ctx *c, const char *field, const char *fmt, ...) CLI_PRINTF(3, 4);
 static rc_status field_error(ctx *c, const char *field, const char *fmt, ...) {
   char msg[320];
   va_list ap;
   va_start(ap, fmt);
   vsnprintf(msg, sizeof msg, fmt, ap);
   va_end(ap);
-  if (field) return rc__fail(c->e, RC_ERR_INVALID, "manifest %s: %s: field '%s': %s", c->file, c->where, field, msg);
-  return rc__fail(c->e, RC_ERR_INVALID, "manifest %s: %s: %s", c->file, c->where, msg);
+  if (field) return rc_err_set(c->e, RC_ERR_INVALID, "manifest %s: %s: field '%s': %s", c->file, c->where, field, msg);
+  return rc_err_set(c->e, RC_ERR_INVALID, "manifest %s: %s: %s", c->file, c->where, msg);
 }
 
 static const char *type_name(const cJSON *v) {
@@ -228,27 +162,37 @@ static rc_status resolve_path(ctx *c, const char *field, const char *given, int 
 
 /* ---- Values --------------------------------------------------------------------- */
 
-static const key_def *find_key(const char *key) {
-  for (int i = 0; i < N_KEYS; i++)
-    if (!strcmp(KEYS[i].key, key)) return &KEYS[i];
-  return NULL;
+static int find_key(const char *key, key_def *k) {
+  for (int i = 0; i < CLI_DISTILL_N_OPTIONS; i++) {
+    const char *n = cli_distill_options[i].name;
+    size_t j = 0;
+    while (n[j] && key[j] == (n[j] == '-' ? '_' : n[j])) j++;
+    if (n[j] || key[j] || j >= sizeof k->key) continue;
+    memcpy(k->key, key, j + 1);
+    k->o = &cli_distill_options[i];
+    return 1;
+  }
+  return 0;
 }
 
-static void option_name(const key_def *k, char *buf, size_t n) {
-  snprintf(buf, n, "--%s", k->key);
-  for (char *p = buf; *p; p++)
-    if (*p == '_') *p = '-';
+static void key_of(const cli_option *o, key_def *k) {
+  snprintf(k->key, sizeof k->key, "%s", o->name);
+  for (char *p = k->key; *p; p++)
+    if (*p == '-') *p = '_';
+  k->o = o;
 }
 
 static rc_status check_number(ctx *c, const key_def *k, const cJSON *v) {
+  cli_opt_kind kind = k->o->kind;
   if (!cJSON_IsNumber(v))
-    return field_error(c, k->key, "expected %s, got %s", k->k == K_INT ? "an integer" : "a number", type_name(v));
-  double d = v->valuedouble;
+    return field_error(c, k->key, "expected %s, got %s", kind == CLI_OPT_INT ? "an integer" : "a number", type_name(v));
+  double d = v->valuedouble, lo = k->o->lo, hi = k->o->hi;
   if (!isfinite(d)) return field_error(c, k->key, "not a finite number");
-  if (k->k == K_INT && (d != floor(d) || d < k->lo || d > k->hi))
-    return field_error(c, k->key, "expected an integer in [%.0f, %.0f], got %.17g", k->lo, k->hi, d);
-  if (k->k == K_NUM && (d < k->lo || d > k->hi))
-    return field_error(c, k->key, "expected a number in [%g, %g], got %.17g", k->lo, k->hi, d);
+  if (kind == CLI_OPT_INT && hi > MAX_INT) hi = MAX_INT;
+  if (kind == CLI_OPT_INT && (d != floor(d) || d < lo || d > hi))
+    return field_error(c, k->key, "expected an integer in [%.0f, %.0f], got %.17g", lo, hi, d);
+  if (kind == CLI_OPT_NUM && (d < lo || d > hi))
+    return field_error(c, k->key, "expected a number in [%g, %g], got %.17g", lo, hi, d);
   if (!strcmp(k->key, "scale") && d == 0) return field_error(c, k->key, "must not be zero");
   return RC_OK;
 }
@@ -273,11 +217,11 @@ static int terms_text(const cJSON *v, char *buf, size_t n) {
 /* Check one key's value without building anything: used for every key of
  * "defaults" and of each job before arguments are made. */
 static rc_status check_value(ctx *c, const key_def *k, const cJSON *v) {
-  switch (k->k) {
-    case K_PATH:
+  switch (k->o->kind) {
+    case CLI_OPT_PATH:
       if (!cJSON_IsString(v)) return field_error(c, k->key, "expected a path (string), got %s", type_name(v));
       return RC_OK;
-    case K_DATA: {
+    case CLI_OPT_DATA: {
       if (cJSON_IsString(v)) return RC_OK;
       if (!cJSON_IsArray(v) && !cJSON_IsObject(v))
         return field_error(c, k->key, "expected a path, an array of paths or an object of input name to path, "
@@ -290,17 +234,14 @@ static rc_status check_value(ctx *c, const key_def *k, const cJSON *v) {
           return field_error(c, k->key, "every entry must be a path (string), got %s", type_name(it));
       return RC_OK;
     }
-    case K_INT:
-    case K_NUM: return check_number(c, k, v);
-    case K_CHOICE:
+    case CLI_OPT_INT:
+    case CLI_OPT_NUM: return check_number(c, k, v);
+    case CLI_OPT_CHOICE:
       if (!cJSON_IsString(v)) return field_error(c, k->key, "expected a string, got %s", type_name(v));
-      if (k->choices) {
-        for (const char *const *s = k->choices; *s; s++)
-          if (!strcmp(*s, v->valuestring)) return RC_OK;
-        return field_error(c, k->key, "unknown value '%s'", v->valuestring);
-      }
-      return RC_OK;
-    case K_NUMLIST: {
+      for (const char *const *s = k->o->choices; *s; s++)
+        if (!strcmp(*s, v->valuestring)) return RC_OK;
+      return field_error(c, k->key, "unknown value '%s'", v->valuestring);
+    case CLI_OPT_NUMLIST: {
       if (cJSON_IsNumber(v)) return check_number(c, k, v);
       if (!cJSON_IsArray(v)) return field_error(c, k->key, "expected a number or an array of numbers, got %s",
                                                 type_name(v));
@@ -314,7 +255,7 @@ static rc_status check_value(ctx *c, const key_def *k, const cJSON *v) {
       }
       return RC_OK;
     }
-    case K_STRLIST: {
+    case CLI_OPT_STRLIST: {
       if (cJSON_IsString(v)) return RC_OK;
       if (!cJSON_IsArray(v)) return field_error(c, k->key, "expected a string or an array of strings, got %s",
                                                 type_name(v));
@@ -324,10 +265,10 @@ static rc_status check_value(ctx *c, const key_def *k, const cJSON *v) {
           return field_error(c, k->key, "every entry must be a string, got %s", type_name(it));
       return RC_OK;
     }
-    case K_FLAG:
+    case CLI_OPT_FLAG:
       if (!cJSON_IsBool(v)) return field_error(c, k->key, "expected true or false, got %s", type_name(v));
       return RC_OK;
-    case K_TERMS: {
+    case CLI_OPT_TERMS: {
       char text[1024];
       if (terms_text(v, text, sizeof text))
         return field_error(c, k->key, "expected a string such as \"kd=1,hint=0.5\" or an object of term to weight "
@@ -345,16 +286,19 @@ static rc_status check_value(ctx *c, const key_def *k, const cJSON *v) {
 static rc_status check_object(ctx *c, const cJSON *obj, int is_job) {
   const cJSON *it;
   cJSON_ArrayForEach(it, obj) {
-    const key_def *k = find_key(it->string);
-    if (!k) {
+    key_def k;
+    int is_name = !strcmp(it->string, "name"); /* the job's own, not an option */
+    if (!is_name && !find_key(it->string, &k)) {
       const char *hint = strchr(it->string, '-') ? " (write '-' as '_')" : "";
       return field_error(c, it->string, "unknown key%s", hint);
     }
-    if (k->w == BATCH_OWNED) return field_error(c, it->string, "set by recoup batch itself, not by the manifest");
-    if (k->w == JOB_ONLY && !is_job) return field_error(c, it->string, "belongs in each job, not in \"defaults\"");
+    cli_opt_where w = is_name ? CLI_OPT_JOB_ONLY : k.o->where;
+    if (w == CLI_OPT_BATCH_OWNED) return field_error(c, it->string, "set by recoup batch itself, not by the manifest");
+    if (w == CLI_OPT_JOB_ONLY && !is_job) return field_error(c, it->string, "belongs in each job, not in \"defaults\"");
     for (const cJSON *o = obj->child; o != it; o = o->next)
       if (!strcmp(o->string, it->string)) return field_error(c, it->string, "given twice");
-    RC_TRY(check_value(c, k, it));
+    if (is_name && !cJSON_IsString(it)) return field_error(c, it->string, "expected a string, got %s", type_name(it));
+    if (!is_name) RC_TRY(check_value(c, &k, it));
   }
   return RC_OK;
 }
@@ -378,33 +322,33 @@ static rc_status add_input(ctx *c, strlist *args, strlist *ins, const char *opt,
 
 static rc_status add_option(ctx *c, cli_job *j, const key_def *k, const cJSON *v, strlist *args, strlist *ins) {
   char opt[64], buf[64 * 32];
-  option_name(k, opt, sizeof opt);
-  switch (k->k) {
-    case K_PATH:
+  snprintf(opt, sizeof opt, "--%s", k->o->name);
+  switch (k->o->kind) {
+    case CLI_OPT_PATH:
       if (!strcmp(k->key, "out")) {
         char resolved[PATH_MAX];
         RC_TRY(resolve_path(c, "out", v->valuestring, 0, resolved));
         if (!(j->out = rc__strdup(resolved)) || !(j->out_given = rc__strdup(v->valuestring)))
-          return rc__fail(c->e, RC_ERR_NOMEM, "out of memory");
+          return rc_err_set(c->e, RC_ERR_NOMEM, "out of memory");
         RC_TRY(push(args, opt, c->e));
         return push(args, resolved, c->e);
       }
       if (!strcmp(k->key, "teacher") && !(j->teacher_given = rc__strdup(v->valuestring)))
-        return rc__fail(c->e, RC_ERR_NOMEM, "out of memory");
+        return rc_err_set(c->e, RC_ERR_NOMEM, "out of memory");
       if (!strcmp(k->key, "student") && !(j->student_given = rc__strdup(v->valuestring)))
-        return rc__fail(c->e, RC_ERR_NOMEM, "out of memory");
+        return rc_err_set(c->e, RC_ERR_NOMEM, "out of memory");
       return add_input(c, args, ins, opt, k->key, NULL, v->valuestring);
-    case K_DATA: {
+    case CLI_OPT_DATA: {
       if (cJSON_IsString(v)) return add_input(c, args, ins, opt, k->key, NULL, v->valuestring);
       const cJSON *it;
       cJSON_ArrayForEach(it, v)
           RC_TRY(add_input(c, args, ins, opt, k->key, cJSON_IsObject(v) ? it->string : NULL, it->valuestring));
       return RC_OK;
     }
-    case K_INT:
-    case K_NUM: snprintf(buf, sizeof buf, "%.17g", v->valuedouble); break;
-    case K_CHOICE: snprintf(buf, sizeof buf, "%s", v->valuestring); break;
-    case K_NUMLIST: {
+    case CLI_OPT_INT:
+    case CLI_OPT_NUM: snprintf(buf, sizeof buf, "%.17g", v->valuedouble); break;
+    case CLI_OPT_CHOICE: snprintf(buf, sizeof buf, "%s", v->valuestring); break;
+    case CLI_OPT_NUMLIST: {
       if (cJSON_IsNumber(v)) {
         snprintf(buf, sizeof buf, "%.9g", v->valuedouble);
         break;
@@ -414,7 +358,7 @@ static rc_status add_option(ctx *c, cli_job *j, const key_def *k, const cJSON *v
       cJSON_ArrayForEach(it, v) o += (size_t)snprintf(buf + o, sizeof buf - o, "%s%.9g", o ? "," : "", it->valuedouble);
       break;
     }
-    case K_STRLIST: {
+    case CLI_OPT_STRLIST: {
       if (cJSON_IsString(v)) {
         RC_TRY(push(args, opt, c->e));
         return push(args, v->valuestring, c->e);
@@ -426,8 +370,8 @@ static rc_status add_option(ctx *c, cli_job *j, const key_def *k, const cJSON *v
       }
       return RC_OK;
     }
-    case K_FLAG: return cJSON_IsTrue(v) ? push(args, opt, c->e) : RC_OK;
-    case K_TERMS: terms_text(v, buf, sizeof buf); break;
+    case CLI_OPT_FLAG: return cJSON_IsTrue(v) ? push(args, opt, c->e) : RC_OK;
+    case CLI_OPT_TERMS: terms_text(v, buf, sizeof buf); break;
   }
   RC_TRY(push(args, opt, c->e));
   return push(args, buf, c->e);
@@ -454,7 +398,7 @@ static rc_status build_job(ctx *c, cli_job *j, int index, const cJSON *job, cons
     return field_error(c, "name", "'%.100s' is not a usable name (1 to %d letters, digits, '_', '-' or '.', "
                        "not starting with '.' or '-'; it names log and report files)", name->valuestring, MAX_NAME);
   snprintf(c->where, sizeof c->where, "job '%s' (jobs[%d])", name->valuestring, index);
-  if (!(j->name = rc__strdup(name->valuestring))) return rc__fail(c->e, RC_ERR_NOMEM, "out of memory");
+  if (!(j->name = rc__strdup(name->valuestring))) return rc_err_set(c->e, RC_ERR_NOMEM, "out of memory");
   RC_TRY(check_object(c, job, 1));
   static const char *const required[] = {"teacher", "student", "data", "out"};
   for (int i = 0; i < 4; i++)
@@ -465,13 +409,15 @@ static rc_status build_job(ctx *c, cli_job *j, int index, const cJSON *job, cons
   rc_status s = RC_OK;
   char job_where[sizeof c->where];
   memcpy(job_where, c->where, sizeof job_where);
-  for (int i = 1; i < N_KEYS && s == RC_OK; i++) {
-    if (KEYS[i].w == BATCH_OWNED) continue;
-    const cJSON *v = value_of(job, defaults, KEYS[i].key);
+  for (int i = 0; i < CLI_DISTILL_N_OPTIONS && s == RC_OK; i++) {
+    key_def k;
+    key_of(&cli_distill_options[i], &k);
+    if (k.o->where == CLI_OPT_BATCH_OWNED) continue;
+    const cJSON *v = value_of(job, defaults, k.key);
     /* A default's error names "defaults" and the job that used it. */
-    if (v && !cJSON_GetObjectItemCaseSensitive(job, KEYS[i].key))
+    if (v && !cJSON_GetObjectItemCaseSensitive(job, k.key))
       snprintf(c->where, sizeof c->where, "defaults (as used by job '%s')", j->name);
-    if (v) s = add_option(c, j, &KEYS[i], v, &args, &ins);
+    if (v) s = add_option(c, j, &k, v, &args, &ins);
     if (s == RC_OK) memcpy(c->where, job_where, sizeof job_where);
   }
   j->args = args.v, j->n_args = args.n;
@@ -512,27 +458,27 @@ static rc_status check_across_jobs(ctx *c, const cli_manifest *m) {
 
 static rc_status read_file(const char *path, char **text, size_t *len, rc_err *e) {
   FILE *f = fopen(path, "rb");
-  if (!f) return rc__fail(e, RC_ERR_IO, "manifest %s: %s", path, strerror(errno));
+  if (!f) return rc_err_set(e, RC_ERR_IO, "manifest %s: %s", path, strerror(errno));
   struct stat st;
   if (fstat(fileno(f), &st) != 0 || !S_ISREG(st.st_mode)) {
     fclose(f);
-    return rc__fail(e, RC_ERR_IO, "manifest %s: not a regular file", path);
+    return rc_err_set(e, RC_ERR_IO, "manifest %s: not a regular file", path);
   }
   if (st.st_size > MANIFEST_MAX_BYTES) {
     fclose(f);
-    return rc__fail(e, RC_ERR_LIMIT, "manifest %s: larger than %d MiB", path, MANIFEST_MAX_BYTES >> 20);
+    return rc_err_set(e, RC_ERR_LIMIT, "manifest %s: larger than %d MiB", path, MANIFEST_MAX_BYTES >> 20);
   }
   char *buf = rc__malloc((size_t)st.st_size + 1);
   if (!buf) {
     fclose(f);
-    return rc__fail(e, RC_ERR_NOMEM, "manifest %s: out of memory", path);
+    return rc_err_set(e, RC_ERR_NOMEM, "manifest %s: out of memory", path);
   }
   size_t n = fread(buf, 1, (size_t)st.st_size, f);
   int bad = ferror(f);
   fclose(f);
   if (bad || n != (size_t)st.st_size) {
     rc__free(buf);
-    return rc__fail(e, RC_ERR_IO, "manifest %s: read error", path);
+    return rc_err_set(e, RC_ERR_IO, "manifest %s: read error", path);
   }
   buf[n] = '\0';
   *text = buf;
@@ -545,7 +491,7 @@ static rc_status parse_error(const char *path, const char *text, rc_err *e) {
   int line = 1;
   if (at)
     for (const char *p = text; p < at && *p; p++) line += *p == '\n';
-  return rc__fail(e, RC_ERR_FORMAT, "manifest %s: not valid JSON (near line %d)", path, line);
+  return rc_err_set(e, RC_ERR_FORMAT, "manifest %s: not valid JSON (near line %d)", path, line);
 }
 
 static rc_status load_jobs(cli_manifest *m, ctx *c, const cJSON *root) {
@@ -558,7 +504,7 @@ static rc_status load_jobs(cli_manifest *m, ctx *c, const cJSON *root) {
                                                                                    "\"jobs\")");
   const cJSON *title = cJSON_GetObjectItemCaseSensitive(root, "title");
   if (title && !cJSON_IsString(title)) return field_error(c, "title", "expected a string, got %s", type_name(title));
-  if (title && !(m->title = rc__strdup(title->valuestring))) return rc__fail(c->e, RC_ERR_NOMEM, "out of memory");
+  if (title && !(m->title = rc__strdup(title->valuestring))) return rc_err_set(c->e, RC_ERR_NOMEM, "out of memory");
   const cJSON *defaults = cJSON_GetObjectItemCaseSensitive(root, "defaults");
   snprintf(c->where, sizeof c->where, "defaults");
   if (defaults) {
@@ -572,7 +518,7 @@ static rc_status load_jobs(cli_manifest *m, ctx *c, const cJSON *root) {
   int n = cJSON_GetArraySize(jobs);
   if (n == 0) return field_error(c, "jobs", "no jobs");
   if (n > MAX_JOBS) return field_error(c, "jobs", "more than %d jobs", MAX_JOBS);
-  if (!(m->jobs = rc__calloc((size_t)n, sizeof *m->jobs))) return rc__fail(c->e, RC_ERR_NOMEM, "out of memory");
+  if (!(m->jobs = rc__calloc((size_t)n, sizeof *m->jobs))) return rc_err_set(c->e, RC_ERR_NOMEM, "out of memory");
   int i = 0;
   cJSON_ArrayForEach(it, jobs) {
     m->n_jobs = i + 1;
@@ -594,7 +540,7 @@ rc_status cli_manifest_load(cli_manifest *m, const char *path, int allow_outside
   char real[PATH_MAX];
   if (!realpath(path, real)) {
     rc__free(text);
-    return rc__fail(e, RC_ERR_IO, "manifest %s: %s", path, strerror(errno));
+    return rc_err_set(e, RC_ERR_IO, "manifest %s: %s", path, strerror(errno));
   }
   char *slash = strrchr(real, '/');
   if (slash == real) slash[1] = '\0';
@@ -603,7 +549,7 @@ rc_status cli_manifest_load(cli_manifest *m, const char *path, int allow_outside
   m->dir = rc__strdup(real);
   cJSON *root = cJSON_ParseWithLength(text, len);
   rc_status s;
-  if (!m->path || !m->dir) s = rc__fail(e, RC_ERR_NOMEM, "out of memory");
+  if (!m->path || !m->dir) s = rc_err_set(e, RC_ERR_NOMEM, "out of memory");
   else if (!root) s = parse_error(path, text, e);
   else {
     ctx c = {path, "", m->dir, allow_outside, e};

@@ -14,6 +14,8 @@
 #include <unistd.h>
 
 #include "cli/cli.h"
+#include "cli/sbuf.h"
+#include "cli/svg.h"
 #include "recoup/util.h"
 
 /* Our palette: distinct in hue and lightness (also for the common forms of
@@ -23,81 +25,15 @@
 #define C_DENSE "#1a1a1a"
 #define C_LOSS "#7a3db8"
 #define C_VALID "#0d7a5f"
-#define C_GRID "#e3e6ea"
-#define C_AXIS "#5b6169"
 
 #define CAUTION                                                                                             \
   "Validate every recovered model on your own held-out data before deploying it. The figures in this "     \
   "report hold only for the samples they were measured on (a held-out slice of the training data unless "  \
   "validation data was given), and follow the rules of your domain for deploying models."
 
-/* ---- A growing text buffer ----------------------------------------------------- */
-
-typedef struct sbuf {
-  char *p;
-  size_t n, cap;
-  int oom;
-} sbuf;
-
-static void sb_add(sbuf *b, const char *s, size_t n) {
-  if (b->oom) return;
-  if (b->n + n + 1 > b->cap) {
-    size_t cap = b->cap ? b->cap : 4096;
-    while (cap < b->n + n + 1) cap *= 2;
-    char *p = realloc(b->p, cap);
-    if (!p) {
-      b->oom = 1;
-      return;
-    }
-    b->p = p;
-    b->cap = cap;
-  }
-  memcpy(b->p + b->n, s, n);
-  b->n += n;
-  b->p[b->n] = '\0';
-}
-
-static void sb_printf(sbuf *b, const char *fmt, ...) CLI_PRINTF(2, 3);
-static void sb_printf(sbuf *b, const char *fmt, ...) {
-  char small[1024];
-  va_list ap;
-  va_start(ap, fmt);
-  int n = vsnprintf(small, sizeof small, fmt, ap);
-  va_end(ap);
-  if (n < 0) return;
-  if ((size_t)n < sizeof small) {
-    sb_add(b, small, (size_t)n);
-    return;
-  }
-  char *big = malloc((size_t)n + 1);
-  if (!big) {
-    b->oom = 1;
-    return;
-  }
-  va_start(ap, fmt);
-  vsnprintf(big, (size_t)n + 1, fmt, ap);
-  va_end(ap);
-  sb_add(b, big, (size_t)n);
-  free(big);
-}
-
-/* Text for HTML and SVG: the five characters with meaning escaped. */
-static void sb_esc(sbuf *b, const char *s) {
-  for (; s && *s; s++) {
-    switch (*s) {
-      case '&': sb_add(b, "&amp;", 5); break;
-      case '<': sb_add(b, "&lt;", 4); break;
-      case '>': sb_add(b, "&gt;", 4); break;
-      case '"': sb_add(b, "&quot;", 6); break;
-      case '\'': sb_add(b, "&#39;", 5); break;
-      default: sb_add(b, s, 1);
-    }
-  }
-}
-
 /* ---- Files ---------------------------------------------------------------------- */
 
-static rc_status write_sbuf(const char *dir, const char *name, sbuf *b, rc_err *e) {
+static rc_status write_sbuf(const char *dir, const char *name, cli_sbuf *b, rc_err *e) {
   char path[4200];
   snprintf(path, sizeof path, "%s/%s", dir, name);
   if (b->oom) return rc_err_set(e, RC_ERR_NOMEM, "%s: out of memory", path);
@@ -170,10 +106,10 @@ rc_status cli_report_read(const char *dir, cJSON **report, rc_err *e) {
   snprintf(path, sizeof path, "%s/report.json", dir);
   FILE *f = fopen(path, "rb");
   if (!f) return rc_err_set(e, RC_ERR_IO, "%s: %s", path, strerror(errno));
-  sbuf b = {0};
+  cli_sbuf b = {0};
   char buf[1 << 14];
   size_t n;
-  while ((n = fread(buf, 1, sizeof buf, f)) > 0 && b.n < (64u << 20)) sb_add(&b, buf, n);
+  while ((n = fread(buf, 1, sizeof buf, f)) > 0 && b.n < (64u << 20)) cli_sb_add(&b, buf, n);
   int bad = ferror(f) || b.n >= (64u << 20);
   fclose(f);
   if (bad || b.oom) {
@@ -317,31 +253,31 @@ static const char *masks_text(const cJSON *rec) {
 
 /* ---- CSV and Markdown ------------------------------------------------------------- */
 
-static void csv_field(sbuf *b, const char *s, int last) {
+static void csv_field(cli_sbuf *b, const char *s, int last) {
   /* RFC 4180: quote fields holding a comma, quote or line break. */
   if (strpbrk(s, ",\"\r\n")) {
-    sb_add(b, "\"", 1);
+    cli_sb_add(b, "\"", 1);
     for (const char *p = s; *p; p++) {
-      if (*p == '"') sb_add(b, "\"", 1);
-      sb_add(b, p, 1);
+      if (*p == '"') cli_sb_add(b, "\"", 1);
+      cli_sb_add(b, p, 1);
     }
-    sb_add(b, "\"", 1);
+    cli_sb_add(b, "\"", 1);
   } else {
-    sb_add(b, s, strlen(s));
+    cli_sb_add(b, s, strlen(s));
   }
-  sb_add(b, last ? "\r\n" : ",", last ? 2 : 1);
+  cli_sb_add(b, last ? "\r\n" : ",", last ? 2 : 1);
 }
 
-static void csv_num(sbuf *b, double v) {
-  if (isnan(v)) sb_add(b, ",", 1);
-  else sb_printf(b, "%.6g,", v);
+static void csv_num(cli_sbuf *b, double v) {
+  if (isnan(v)) cli_sb_add(b, ",", 1);
+  else cli_sb_printf(b, "%.6g,", v);
 }
 
-static void write_csv(sbuf *b, const cJSON *records) {
+static void write_csv(cli_sbuf *b, const cJSON *records) {
   static const char *const models[] = {"dense", "compressed", "recovered"};
-  sb_printf(b, "name,status,teacher,student,out");
-  for (int m = 0; m < 3; m++) sb_printf(b, ",%s_accuracy,%s_agreement,%s_kl", models[m], models[m], models[m]);
-  sb_printf(b, ",improved,best_epoch,steps,seconds,samples_per_s,masks_intact,error\r\n");
+  cli_sb_printf(b, "name,status,teacher,student,out");
+  for (int m = 0; m < 3; m++) cli_sb_printf(b, ",%s_accuracy,%s_agreement,%s_kl", models[m], models[m], models[m]);
+  cli_sb_printf(b, ",improved,best_epoch,steps,seconds,samples_per_s,masks_intact,error\r\n");
   const cJSON *r;
   cJSON_ArrayForEach(r, records) {
     csv_field(b, str(r, "name"), 0);
@@ -366,22 +302,22 @@ static void write_csv(sbuf *b, const cJSON *records) {
   }
 }
 
-static void md_text(sbuf *b, const char *s) {
+static void md_text(cli_sbuf *b, const char *s) {
   for (; *s; s++) {
-    if (*s == '|') sb_add(b, "\\|", 2);
-    else if (*s == '\n' || *s == '\r') sb_add(b, " ", 1);
-    else sb_add(b, s, 1);
+    if (*s == '|') cli_sb_add(b, "\\|", 2);
+    else if (*s == '\n' || *s == '\r') cli_sb_add(b, " ", 1);
+    else cli_sb_add(b, s, 1);
   }
 }
 
-static void write_markdown(sbuf *b, const char *title, const cJSON *records) {
+static void write_markdown(cli_sbuf *b, const char *title, const cJSON *records) {
   const char *metric_name = zoo_metric(records);
-  sb_printf(b, "# %s\n\n", title);
-  sb_printf(b, "Figures are %s on each job's validation samples (%s).\n\n", metric_name,
+  cli_sb_printf(b, "# %s\n\n", title);
+  cli_sb_printf(b, "Figures are %s on each job's validation samples (%s).\n\n", metric_name,
             strcmp(metric_name, "accuracy") ? "top-1 agreement with the dense model" : "top-1 against labels");
-  sb_printf(b, "| job | status | dense | compressed | recovered | change | KL to dense | steps | time | samples/s | "
+  cli_sb_printf(b, "| job | status | dense | compressed | recovered | change | KL to dense | steps | time | samples/s | "
             "masks |\n");
-  sb_printf(b, "|---|---|---:|---:|---:|---:|---:|---:|---:|---:|---|\n");
+  cli_sb_printf(b, "|---|---|---:|---:|---:|---:|---:|---:|---:|---:|---|\n");
   const cJSON *r;
   cJSON_ArrayForEach(r, records) {
     char d[32], c[32], v[32], ch[32], t[32], kl[80];
@@ -391,73 +327,25 @@ static void write_markdown(sbuf *b, const char *title, const cJSON *records) {
     delta_pt(ch, sizeof ch, metric(r, "recovered", metric_name) - metric(r, "compressed", metric_name));
     kl_change(kl, sizeof kl, r);
     fmt_duration(t, sizeof t, num(r, "seconds"));
-    sb_add(b, "| ", 2);
+    cli_sb_add(b, "| ", 2);
     md_text(b, str(r, "name"));
-    sb_add(b, " | ", 3);
+    cli_sb_add(b, " | ", 3);
     md_text(b, str(r, "status"));
     if (!is_ok(r) && *str(r, "error")) {
-      sb_add(b, ": ", 2);
+      cli_sb_add(b, ": ", 2);
       md_text(b, str(r, "error"));
     }
     double sps = num(r, "samples_per_s"), steps = num(r, "steps");
     char sps_s[32] = "–", steps_s[32] = "–";
     if (!isnan(sps)) snprintf(sps_s, sizeof sps_s, "%.0f", sps);
     if (!isnan(steps)) snprintf(steps_s, sizeof steps_s, "%.0f", steps);
-    sb_printf(b, " | %s | %s | %s | %s | %s | %s | %s | %s | %s |\n", d, c, v, ch, kl, steps_s, t, sps_s,
+    cli_sb_printf(b, " | %s | %s | %s | %s | %s | %s | %s | %s | %s |\n", d, c, v, ch, kl, steps_s, t, sps_s,
               masks_text(r));
   }
-  sb_printf(b, "\n**Caution.** %s\n", CAUTION);
+  cli_sb_printf(b, "\n**Caution.** %s\n", CAUTION);
 }
 
 /* ---- SVG charts ---------------------------------------------------------------------- */
-
-/* A tick step of 1, 2 or 5 times a power of ten giving about `want` ticks. */
-static double nice_step(double range, int want) {
-  if (!(range > 0)) return 1;
-  double raw = range / want, mag = pow(10, floor(log10(raw))), f = raw / mag;
-  return (f <= 1 ? 1 : f <= 2 ? 2 : f <= 5 ? 5 : 10) * mag;
-}
-
-typedef struct frame {
-  double x0, x1, y0, y1; /* plot area in pixels: y0 top, y1 bottom */
-} frame;
-
-static double map(double v, double lo, double hi, double p0, double p1) {
-  return hi > lo ? p0 + (v - lo) / (hi - lo) * (p1 - p0) : (p0 + p1) / 2;
-}
-
-/* Horizontal grid lines and tick labels on the left or right edge. */
-static void y_axis(sbuf *b, const frame *f, double lo, double hi, double step, int right, int percent,
-                   const char *colour, const char *label) {
-  for (double v = lo; v <= hi + step * 1e-6; v += step) {
-    double y = map(v, lo, hi, f->y1, f->y0);
-    if (!right) sb_printf(b, "<line x1=\"%.1f\" x2=\"%.1f\" y1=\"%.1f\" y2=\"%.1f\" stroke=\"%s\"/>", f->x0, f->x1, y,
-                          y, C_GRID);
-    double digits = step >= 1 ? 0 : ceil(-log10(step * (percent ? 100 : 1)) - 1e-9);
-    if (digits < 0) digits = 0;
-    sb_printf(b, "<text x=\"%.1f\" y=\"%.1f\" text-anchor=\"%s\" class=\"tick\">%.*f%s</text>",
-              right ? f->x1 + 6 : f->x0 - 6, y + 4, right ? "start" : "end", (int)digits,
-              percent ? 100 * v : v, percent ? "%" : "");
-  }
-  double cx = right ? f->x1 + 50 : f->x0 - 50, cy = (f->y0 + f->y1) / 2;
-  sb_printf(b, "<text x=\"%.1f\" y=\"%.1f\" transform=\"rotate(-90 %.1f %.1f)\" text-anchor=\"middle\" "
-            "class=\"axis-title\" fill=\"%s\">", cx, cy, cx, cy, colour);
-  sb_esc(b, label);
-  sb_add(b, "</text>", 7);
-  sb_printf(b, "<line x1=\"%.1f\" x2=\"%.1f\" y1=\"%.1f\" y2=\"%.1f\" stroke=\"%s\"/>", right ? f->x1 : f->x0,
-            right ? f->x1 : f->x0, f->y0, f->y1, C_AXIS);
-}
-
-static void legend_item(sbuf *b, double x, double y, const char *colour, const char *shape, const char *label) {
-  if (!strcmp(shape, "line") || !strcmp(shape, "dashed"))
-    sb_printf(b, "<line x1=\"%.1f\" x2=\"%.1f\" y1=\"%.1f\" y2=\"%.1f\" stroke=\"%s\" stroke-width=\"3\"%s/>", x,
-              x + 22, y - 4, y - 4, colour, shape[0] == 'd' ? " stroke-dasharray=\"6 3\"" : "");
-  else
-    sb_printf(b, "<rect x=\"%.1f\" y=\"%.1f\" width=\"14\" height=\"12\" fill=\"%s\"/>", x + 4, y - 10, colour);
-  sb_printf(b, "<text x=\"%.1f\" y=\"%.1f\" class=\"legend\">", x + 28, y);
-  sb_esc(b, label);
-  sb_add(b, "</text>", 7);
-}
 
 /* Points of a job's history on the step axis: the loss trace (or, in a
  * record without one, the per-epoch mean loss at each epoch's last step) and
@@ -504,7 +392,7 @@ static int history_read(history *h, const cJSON *rec, const char *vm) {
 
 /* One job: training loss (left axis) along the optimizer steps and the
  * validation metric (right axis) at step 0 and at every epoch's end. */
-static void history_chart(sbuf *b, const cJSON *rec) {
+static void history_chart(cli_sbuf *b, const cJSON *rec) {
   const char *vm = isnan(metric(rec, "compressed", "accuracy")) ? "agreement" : "accuracy";
   history h;
   if (!history_read(&h, rec, vm)) {
@@ -516,79 +404,79 @@ static void history_chart(sbuf *b, const cJSON *rec) {
   for (int i = 0; i < h.nv; i++)
     vlo = isnan(vlo) || h.vv[i] < vlo ? h.vv[i] : vlo, vhi = isnan(vhi) || h.vv[i] > vhi ? h.vv[i] : vhi;
   if (isnan(vlo)) vlo = 0, vhi = 1;
-  double lstep = nice_step(lmax > 0 ? lmax : 1, 5), ltop = lstep * ceil((lmax > 0 ? lmax : 1) / lstep);
-  double vstep = nice_step(fmax(vhi - vlo, 0.02), 5);
+  double lstep = cli_svg_nice_step(lmax > 0 ? lmax : 1, 5), ltop = lstep * ceil((lmax > 0 ? lmax : 1) / lstep);
+  double vstep = cli_svg_nice_step(fmax(vhi - vlo, 0.02), 5);
   double vbot = fmax(0, vstep * floor(vlo / vstep - 0.5)), vtop = fmin(1, vstep * ceil(vhi / vstep + 0.5));
   if (vtop <= vbot) vtop = fmin(1, vbot + vstep);
-  frame f = {72, 488, 44, 236};
+  cli_svg_frame f = {72, 488, 44, 236};
   const char *name = str(rec, "name");
-  sb_printf(b, "<svg xmlns=\"http://www.w3.org/2000/svg\" viewBox=\"0 0 560 290\" width=\"560\" height=\"290\" "
+  cli_sb_printf(b, "<svg xmlns=\"http://www.w3.org/2000/svg\" viewBox=\"0 0 560 290\" width=\"560\" height=\"290\" "
             "role=\"img\" data-chart=\"history\" data-job=\"");
-  sb_esc(b, name);
-  sb_printf(b, "\"><title>Training loss and validation %s along the steps of ", vm);
-  sb_esc(b, name);
-  sb_add(b, "</title>", 8);
+  cli_sb_esc(b, name);
+  cli_sb_printf(b, "\"><title>Training loss and validation %s along the steps of ", vm);
+  cli_sb_esc(b, name);
+  cli_sb_add(b, "</title>", 8);
   char vlabel[64];
   snprintf(vlabel, sizeof vlabel, "validation %s", vm);
-  y_axis(b, &f, 0, ltop, lstep, 0, 0, C_LOSS, "training loss");
-  y_axis(b, &f, vbot, vtop, vstep, 1, 1, C_VALID, vlabel);
-  double xstep = fmax(1, nice_step(h.steps, 6));
+  cli_svg_y_axis(b, &f, 0, ltop, lstep, 0, 0, C_LOSS, "training loss");
+  cli_svg_y_axis(b, &f, vbot, vtop, vstep, 1, 1, C_VALID, vlabel);
+  double xstep = fmax(1, cli_svg_nice_step(h.steps, 6));
   for (double i = 0; i <= h.steps + xstep * 1e-6; i += xstep) {
-    double x = map(i, 0, h.steps, f.x0, f.x1);
-    sb_printf(b, "<line x1=\"%.1f\" x2=\"%.1f\" y1=\"%.1f\" y2=\"%.1f\" stroke=\"%s\"/>", x, x, f.y1, f.y1 + 5,
-              C_AXIS);
-    sb_printf(b, "<text x=\"%.1f\" y=\"%.1f\" text-anchor=\"middle\" class=\"tick\">%.0f</text>", x, f.y1 + 18, i);
+    double x = cli_svg_map(i, 0, h.steps, f.x0, f.x1);
+    cli_sb_printf(b, "<line x1=\"%.1f\" x2=\"%.1f\" y1=\"%.1f\" y2=\"%.1f\" stroke=\"%s\"/>", x, x, f.y1, f.y1 + 5,
+              CLI_SVG_AXIS);
+    cli_sb_printf(b, "<text x=\"%.1f\" y=\"%.1f\" text-anchor=\"middle\" class=\"tick\">%.0f</text>", x, f.y1 + 18, i);
   }
-  sb_printf(b, "<line x1=\"%.1f\" x2=\"%.1f\" y1=\"%.1f\" y2=\"%.1f\" stroke=\"%s\"/>", f.x0, f.x1, f.y1, f.y1,
-            C_AXIS);
-  sb_printf(b, "<text x=\"%.1f\" y=\"%.1f\" text-anchor=\"middle\" class=\"axis-title\">optimizer step</text>", (f.x0 + f.x1) / 2, f.y1 + 40);
+  cli_sb_printf(b, "<line x1=\"%.1f\" x2=\"%.1f\" y1=\"%.1f\" y2=\"%.1f\" stroke=\"%s\"/>", f.x0, f.x1, f.y1, f.y1,
+            CLI_SVG_AXIS);
+  cli_sb_printf(b, "<text x=\"%.1f\" y=\"%.1f\" text-anchor=\"middle\" class=\"axis-title\">optimizer step</text>", (f.x0 + f.x1) / 2, f.y1 + 40);
   /* A polyline per series; validation points carry markers (they are few),
    * and so does the loss when it has few points, so a single one shows. */
-  sbuf loss = {0}, val = {0}, marks = {0};
+  cli_sbuf loss = {0}, val = {0}, marks = {0};
   for (int i = 0; i < h.nl; i++) {
-    double x = map(h.ls[i], 0, h.steps, f.x0, f.x1), y = map(h.lv[i], 0, ltop, f.y1, f.y0);
-    sb_printf(&loss, "%.1f,%.1f ", x, y);
+    double x = cli_svg_map(h.ls[i], 0, h.steps, f.x0, f.x1), y = cli_svg_map(h.lv[i], 0, ltop, f.y1, f.y0);
+    cli_sb_printf(&loss, "%.1f,%.1f ", x, y);
     if (h.nl <= 12)
-      sb_printf(&marks, "<rect x=\"%.1f\" y=\"%.1f\" width=\"7\" height=\"7\" fill=\"%s\"/>", x - 3.5, y - 3.5,
+      cli_sb_printf(&marks, "<rect x=\"%.1f\" y=\"%.1f\" width=\"7\" height=\"7\" fill=\"%s\"/>", x - 3.5, y - 3.5,
                 C_LOSS);
   }
   for (int i = 0; i < h.nv; i++) {
-    double x = map(h.vs[i], 0, h.steps, f.x0, f.x1), y = map(h.vv[i], vbot, vtop, f.y1, f.y0);
-    sb_printf(&val, "%.1f,%.1f ", x, y);
-    sb_printf(&marks, "<circle cx=\"%.1f\" cy=\"%.1f\" r=\"3.5\" fill=\"%s\"/>", x, y, C_VALID);
+    double x = cli_svg_map(h.vs[i], 0, h.steps, f.x0, f.x1), y = cli_svg_map(h.vv[i], vbot, vtop, f.y1, f.y0);
+    cli_sb_printf(&val, "%.1f,%.1f ", x, y);
+    cli_sb_printf(&marks, "<circle cx=\"%.1f\" cy=\"%.1f\" r=\"3.5\" fill=\"%s\"/>", x, y, C_VALID);
   }
   free(h.ls);
-  sb_printf(b, "<polyline data-series=\"loss\" fill=\"none\" stroke=\"%s\" stroke-width=\"2\" points=\"%s\"/>",
+  cli_sb_printf(b, "<polyline data-series=\"loss\" fill=\"none\" stroke=\"%s\" stroke-width=\"2\" points=\"%s\"/>",
             C_LOSS, loss.p ? loss.p : "");
-  sb_printf(b, "<polyline data-series=\"validation\" fill=\"none\" stroke=\"%s\" stroke-width=\"2.5\" "
+  cli_sb_printf(b, "<polyline data-series=\"validation\" fill=\"none\" stroke=\"%s\" stroke-width=\"2.5\" "
             "stroke-dasharray=\"7 4\" points=\"%s\"/>", C_VALID, val.p ? val.p : "");
-  if (marks.p) sb_add(b, marks.p, marks.n);
+  if (marks.p) cli_sb_add(b, marks.p, marks.n);
   b->oom |= loss.oom | val.oom | marks.oom;
   free(loss.p);
   free(val.p);
   free(marks.p);
-  legend_item(b, f.x0, 24, C_LOSS, "line", "training loss (left)");
-  legend_item(b, f.x0 + 200, 24, C_VALID, "dashed", "validation (right)");
-  sb_add(b, "</svg>", 6);
+  cli_svg_legend_item(b, f.x0, 24, C_LOSS, "line", "training loss (left)");
+  cli_svg_legend_item(b, f.x0 + 200, 24, C_VALID, "dashed", "validation (right)");
+  cli_sb_add(b, "</svg>", 6);
 }
 
 /* Across the zoo: compressed and recovered bars per job, the dense model's
  * value as a black mark over each group. */
-static void zoo_chart(sbuf *b, const cJSON *records, const char *vm) {
+static void zoo_chart(cli_sbuf *b, const cJSON *records, const char *vm) {
   int n = 0;
   const cJSON *r;
   cJSON_ArrayForEach(r, records) n += has_results(r);
   if (!n) return;
   double group = 96, width = fmax(560, 90 + group * n + 30);
-  frame f = {72, width - 30, 50, 260};
-  sb_printf(b, "<svg xmlns=\"http://www.w3.org/2000/svg\" viewBox=\"0 0 %.0f 330\" width=\"%.0f\" height=\"330\" "
+  cli_svg_frame f = {72, width - 30, 50, 260};
+  cli_sb_printf(b, "<svg xmlns=\"http://www.w3.org/2000/svg\" viewBox=\"0 0 %.0f 330\" width=\"%.0f\" height=\"330\" "
             "role=\"img\" data-chart=\"zoo\"><title>Validation %s of each job before and after recovery</title>",
             width, width, vm);
   char label[64];
   snprintf(label, sizeof label, "validation %s", vm);
-  y_axis(b, &f, 0, 1, 0.2, 0, 1, C_AXIS, label);
-  sb_printf(b, "<line x1=\"%.1f\" x2=\"%.1f\" y1=\"%.1f\" y2=\"%.1f\" stroke=\"%s\"/>", f.x0, f.x1, f.y1, f.y1,
-            C_AXIS);
+  cli_svg_y_axis(b, &f, 0, 1, 0.2, 0, 1, CLI_SVG_AXIS, label);
+  cli_sb_printf(b, "<line x1=\"%.1f\" x2=\"%.1f\" y1=\"%.1f\" y2=\"%.1f\" stroke=\"%s\"/>", f.x0, f.x1, f.y1, f.y1,
+            CLI_SVG_AXIS);
   double gw = (f.x1 - f.x0) / n, bw = fmin(30, gw * 0.3);
   int i = 0;
   cJSON_ArrayForEach(r, records) {
@@ -599,42 +487,42 @@ static void zoo_chart(sbuf *b, const cJSON *records, const char *vm) {
     for (int s = 0; s < 2; s++) {
       double v = metric(r, series[s], vm);
       if (isnan(v)) continue;
-      double x = cx + (s ? 2 : -2 - bw), y = map(v, 0, 1, f.y1, f.y0);
-      sb_printf(b, "<rect data-series=\"%s\" x=\"%.1f\" y=\"%.1f\" width=\"%.1f\" height=\"%.1f\" fill=\"%s\">"
+      double x = cx + (s ? 2 : -2 - bw), y = cli_svg_map(v, 0, 1, f.y1, f.y0);
+      cli_sb_printf(b, "<rect data-series=\"%s\" x=\"%.1f\" y=\"%.1f\" width=\"%.1f\" height=\"%.1f\" fill=\"%s\">"
                 "<title>", series[s], x, y, bw, f.y1 - y, colours[s]);
-      sb_esc(b, str(r, "name"));
-      sb_printf(b, ", %s: %.2f%%</title></rect>", series[s], 100 * v);
-      sb_printf(b, "<text x=\"%.1f\" y=\"%.1f\" text-anchor=\"middle\" class=\"value\">%.1f</text>", x + bw / 2,
+      cli_sb_esc(b, str(r, "name"));
+      cli_sb_printf(b, ", %s: %.2f%%</title></rect>", series[s], 100 * v);
+      cli_sb_printf(b, "<text x=\"%.1f\" y=\"%.1f\" text-anchor=\"middle\" class=\"value\">%.1f</text>", x + bw / 2,
                 y - 4, 100 * v);
     }
     double d = metric(r, "dense", vm);
     if (!isnan(d)) {
-      double y = map(d, 0, 1, f.y1, f.y0);
-      sb_printf(b, "<path data-series=\"dense\" d=\"M%.1f %.1fH%.1f\" stroke=\"%s\" stroke-width=\"3\">"
+      double y = cli_svg_map(d, 0, 1, f.y1, f.y0);
+      cli_sb_printf(b, "<path data-series=\"dense\" d=\"M%.1f %.1fH%.1f\" stroke=\"%s\" stroke-width=\"3\">"
                 "<title>dense: %.2f%%</title></path>", cx - bw - 10, y, cx + bw + 10, C_DENSE, 100 * d);
     }
     /* Job name under its group, shortened to fit; the full name in a tooltip. */
     const char *name = str(r, "name");
     int maxc = (int)(gw / 7.5);
-    sb_printf(b, "<text x=\"%.1f\" y=\"%.1f\" text-anchor=\"middle\" class=\"tick\"><title>", cx, f.y1 + 18);
-    sb_esc(b, name);
-    sb_add(b, "</title>", 8);
+    cli_sb_printf(b, "<text x=\"%.1f\" y=\"%.1f\" text-anchor=\"middle\" class=\"tick\"><title>", cx, f.y1 + 18);
+    cli_sb_esc(b, name);
+    cli_sb_add(b, "</title>", 8);
     if ((int)strlen(name) > maxc && maxc > 3) {
       char shortened[128];
       snprintf(shortened, sizeof shortened, "%.*s…", maxc - 1, name);
-      sb_esc(b, shortened);
+      cli_sb_esc(b, shortened);
     } else {
-      sb_esc(b, name);
+      cli_sb_esc(b, name);
     }
-    sb_add(b, "</text>", 7);
+    cli_sb_add(b, "</text>", 7);
     i++;
   }
-  sb_printf(b, "<text x=\"%.1f\" y=\"%.1f\" text-anchor=\"middle\" class=\"axis-title\">job</text>",
+  cli_sb_printf(b, "<text x=\"%.1f\" y=\"%.1f\" text-anchor=\"middle\" class=\"axis-title\">job</text>",
             (f.x0 + f.x1) / 2, f.y1 + 44);
-  legend_item(b, f.x0, 26, C_COMPRESSED, "box", "compressed (input)");
-  legend_item(b, f.x0 + 170, 26, C_RECOVERED, "box", "recovered (output)");
-  legend_item(b, f.x0 + 340, 26, C_DENSE, "line", "dense (teacher)");
-  sb_add(b, "</svg>", 6);
+  cli_svg_legend_item(b, f.x0, 26, C_COMPRESSED, "box", "compressed (input)");
+  cli_svg_legend_item(b, f.x0 + 170, 26, C_RECOVERED, "box", "recovered (output)");
+  cli_svg_legend_item(b, f.x0 + 340, 26, C_DENSE, "line", "dense (teacher)");
+  cli_sb_add(b, "</svg>", 6);
 }
 
 /* ---- HTML ------------------------------------------------------------------------------ */
@@ -657,14 +545,14 @@ static const char *STYLE =
     "svg .legend{font-size:13px;fill:#1a1a1a}svg .value{font-size:11px;fill:#1a1a1a}"
     "details{margin:8px 0 0;font-size:14px}summary{cursor:pointer;color:#1f5f99}";
 
-static void status_cell(sbuf *b, const cJSON *r) {
-  sb_printf(b, "<td class=\"l %s\">", is_ok(r) ? "ok" : "bad");
-  sb_esc(b, str(r, "status"));
-  sb_add(b, "</td>", 5);
+static void status_cell(cli_sbuf *b, const cJSON *r) {
+  cli_sb_printf(b, "<td class=\"l %s\">", is_ok(r) ? "ok" : "bad");
+  cli_sb_esc(b, str(r, "status"));
+  cli_sb_add(b, "</td>", 5);
 }
 
-static void summary_table(sbuf *b, const cJSON *records, const char *vm) {
-  sb_printf(b, "<table><thead><tr><th class=\"l\">job</th><th class=\"l\">status</th><th>dense</th>"
+static void summary_table(cli_sbuf *b, const cJSON *records, const char *vm) {
+  cli_sb_printf(b, "<table><thead><tr><th class=\"l\">job</th><th class=\"l\">status</th><th>dense</th>"
             "<th>compressed</th><th>recovered</th><th>change</th><th>KL to dense</th><th>steps</th><th>time</th>"
             "<th>samples/s</th><th class=\"l\">masks</th></tr></thead><tbody>");
   const cJSON *r;
@@ -678,61 +566,62 @@ static void summary_table(sbuf *b, const cJSON *records, const char *vm) {
     if (!isnan(num(r, "steps"))) snprintf(steps, sizeof steps, "%.0f", num(r, "steps"));
     if (!isnan(num(r, "samples_per_s"))) snprintf(sps, sizeof sps, "%.0f", num(r, "samples_per_s"));
     fmt_duration(t, sizeof t, num(r, "seconds"));
-    sb_add(b, "<tr><td class=\"l\">", 18);
-    sb_esc(b, str(r, "name"));
-    sb_add(b, "</td>", 5);
+    cli_sb_add(b, "<tr><td class=\"l\">", 18);
+    cli_sb_esc(b, str(r, "name"));
+    cli_sb_add(b, "</td>", 5);
     status_cell(b, r);
     if (!has_results(r)) {
-      sb_add(b, "<td colspan=\"9\" class=\"err\">", 28);
-      sb_esc(b, *str(r, "error") ? str(r, "error") : "no results");
-      sb_add(b, "</td></tr>", 10);
+      cli_sb_add(b, "<td colspan=\"9\" class=\"err\">", 28);
+      cli_sb_esc(b, *str(r, "error") ? str(r, "error") : "no results");
+      cli_sb_add(b, "</td></tr>", 10);
       continue;
     }
-    sb_printf(b, "<td>%s</td><td>%s</td><td><b>%s</b></td><td>%s</td><td>%s</td><td>%s</td><td>%s</td><td>%s</td>"
+    cli_sb_printf(b, "<td>%s</td><td>%s</td><td><b>%s</b></td><td>%s</td><td>%s</td><td>%s</td><td>%s</td><td>%s</td>"
               "<td class=\"l\">%s</td></tr>", d, c, v, ch, kl, steps, t, sps, masks_text(r));
   }
-  sb_add(b, "</tbody></table>", 16);
+  cli_sb_add(b, "</tbody></table>", 16);
 }
 
 /* Longer per-epoch tables show the input, the first, the kept and the last
  * epoch, with every other epoch behind a disclosure. */
 #define EPOCH_TABLE_MAX_ROWS 12
 
-static void epoch_head(sbuf *b, const char *vm) {
-  sb_printf(b, "<table><thead><tr><th>epoch</th><th>training loss</th><th>validation %s</th><th>KL to dense</th>"
+static void epoch_head(cli_sbuf *b, const char *vm) {
+  cli_sb_printf(b, "<table><thead><tr><th>epoch</th><th>training loss</th><th>validation %s</th><th>KL to dense</th>"
             "</tr></thead><tbody>", vm);
 }
 
-static void epoch_row(sbuf *b, const cJSON *e, int i, int best, const char *vm) {
+static void epoch_row(cli_sbuf *b, const cJSON *e, int i, int best, const char *vm) {
   char l[32], v[32], kl[32];
   pct(v, sizeof v, num(e, vm));
-  sb_printf(b, "<tr data-epoch=\"%d\"><td>%d%s</td><td>%s</td><td>%s</td><td>%s</td></tr>", i, i,
+  cli_sb_printf(b, "<tr data-epoch=\"%d\"><td>%d%s</td><td>%s</td><td>%s</td><td>%s</td></tr>", i, i,
             i == best ? " (kept)" : "", fig(l, sizeof l, num(e, "train_loss")), v, fig(kl, sizeof kl, num(e, "kl")));
 }
 
-static void epoch_table(sbuf *b, const cJSON *rec) {
+static void epoch_table(cli_sbuf *b, const cJSON *rec) {
   const cJSON *epochs = cJSON_GetObjectItemCaseSensitive(rec, "epochs");
   const char *vm = isnan(metric(rec, "compressed", "accuracy")) ? "agreement" : "accuracy";
   char v[32], kl[32];
   pct(v, sizeof v, metric(rec, "compressed", vm));
-  sb_add(b, "<div>", 5); /* one flex item, whether or not the table collapses */
+  cli_sb_add(b, "<div>", 5); /* one flex item, whether or not the table collapses */
   epoch_head(b, vm);
-  sb_printf(b, "<tr data-epoch=\"0\"><td>0 (input)</td><td>–</td><td>%s</td><td>%s</td></tr>", v,
+  cli_sb_printf(b, "<tr data-epoch=\"0\"><td>0 (input)</td><td>–</td><td>%s</td><td>%s</td></tr>", v,
             fig(kl, sizeof kl, metric(rec, "compressed", "kl")));
   int best = (int)num(rec, "best_epoch"), n = cJSON_GetArraySize(epochs);
   int collapse = n + 1 > EPOCH_TABLE_MAX_ROWS;
   for (int i = 1; i <= n; i++)
     if (!collapse || i == 1 || i == best || i == n) epoch_row(b, cJSON_GetArrayItem(epochs, i - 1), i, best, vm);
-  sb_add(b, "</tbody></table>", 16);
+  cli_sb_add(b, "</tbody></table>", 16);
   if (!collapse) {
-    sb_add(b, "</div>", 6);
+    cli_sb_add(b, "</div>", 6);
     return;
   }
-  sb_printf(b, "<details class=\"epochs\"><summary>the other %d epochs</summary>", n - (best > 1 && best < n ? 3 : 2));
+  cli_sb_printf(b, "<details class=\"epochs\"><summary>the other %d epochs</summary>",
+                n - (best > 1 && best < n ? 3 : 2));
   epoch_head(b, vm);
   for (int i = 2; i < n; i++)
     if (i != best) epoch_row(b, cJSON_GetArrayItem(epochs, i - 1), i, best, vm);
-  sb_add(b, "</tbody></table></details></div>", 32);
+  cli_sb_add(b, "</tbody></table></details></div>", 32);
 }
 
 /* A dB figure, or why there is none ("identical", "not measured"). */
@@ -743,13 +632,13 @@ static void layer_cell(char *buf, size_t n, const cJSON *l, const char *key, con
 }
 
 /* Trained activations the deployed model clamps (distill's range_warnings). */
-static void range_notes(sbuf *b, const cJSON *rec) {
+static void range_notes(cli_sbuf *b, const cJSON *rec) {
   const cJSON *w;
   cJSON_ArrayForEach(w, cJSON_GetObjectItemCaseSensitive(rec, "range_warnings")) {
     char v[32], end[32], by[32];
-    sb_printf(b, "<p class=\"facts bad\">Outside its activation grid: ");
-    sb_esc(b, str(w, "tensor"));
-    sb_printf(b, ", %.0f of %.0f values on %.0f of %.0f samples clamped; furthest %s against the range end %s "
+    cli_sb_printf(b, "<p class=\"facts bad\">Outside its activation grid: ");
+    cli_sb_esc(b, str(w, "tensor"));
+    cli_sb_printf(b, ", %.0f of %.0f values on %.0f of %.0f samples clamped; furthest %s against the range end %s "
               "(%s beyond).</p>", num(w, "values_outside"), num(w, "values"), num(w, "samples_outside"),
               num(w, "samples"), fig(v, sizeof v, num(w, "worst_value")), fig(end, sizeof end, num(w, "range_end")),
               fig(by, sizeof by, num(w, "beyond")));
@@ -757,10 +646,10 @@ static void range_notes(sbuf *b, const cJSON *rec) {
 }
 
 /* Per-layer closeness to the dense model, when distill measured it. */
-static void layer_table(sbuf *b, const cJSON *rec) {
+static void layer_table(cli_sbuf *b, const cJSON *rec) {
   const cJSON *layers = cJSON_GetObjectItemCaseSensitive(rec, "layers");
   if (cJSON_GetArraySize(layers) == 0) return;
-  sb_printf(b, "<details><summary>Layer outputs against the dense model (%d layers; signal-to-noise ratio in dB, "
+  cli_sb_printf(b, "<details><summary>Layer outputs against the dense model (%d layers; signal-to-noise ratio in dB, "
             "higher is closer)</summary><table><thead><tr><th class=\"l\">student tensor</th><th>before</th>"
             "<th>after</th></tr></thead><tbody>", cJSON_GetArraySize(layers));
   const cJSON *l;
@@ -768,92 +657,96 @@ static void layer_table(sbuf *b, const cJSON *rec) {
     char before[32], after[32];
     layer_cell(before, sizeof before, l, "sqnr_before_db", "state_before");
     layer_cell(after, sizeof after, l, "sqnr_after_db", "state_after");
-    sb_add(b, "<tr><td class=\"l\">", 18);
-    sb_esc(b, str(l, "student"));
-    sb_printf(b, "</td><td>%s</td><td>%s</td></tr>", before, after);
+    cli_sb_add(b, "<tr><td class=\"l\">", 18);
+    cli_sb_esc(b, str(l, "student"));
+    cli_sb_printf(b, "</td><td>%s</td><td>%s</td></tr>", before, after);
   }
-  sb_add(b, "</tbody></table></details>", 26);
+  cli_sb_add(b, "</tbody></table></details>", 26);
 }
 
-static void job_card(sbuf *b, const cJSON *r) {
-  sb_add(b, "<div class=\"job\"><h3>", 21);
-  sb_esc(b, str(r, "name"));
-  sb_printf(b, " <span class=\"%s\">(", is_ok(r) ? "ok" : "bad");
-  sb_esc(b, str(r, "status"));
-  sb_add(b, ")</span></h3>", 13);
-  sb_add(b, "<p class=\"facts\">", 17);
-  sb_esc(b, str(r, "student"));
-  sb_add(b, " → ", 5);
-  sb_esc(b, str(r, "out"));
-  sb_add(b, " (teacher ", 10);
-  sb_esc(b, str(r, "teacher"));
-  sb_add(b, ")</p>", 5);
+static void job_card(cli_sbuf *b, const cJSON *r) {
+  cli_sb_add(b, "<div class=\"job\"><h3>", 21);
+  cli_sb_esc(b, str(r, "name"));
+  cli_sb_printf(b, " <span class=\"%s\">(", is_ok(r) ? "ok" : "bad");
+  cli_sb_esc(b, str(r, "status"));
+  cli_sb_add(b, ")</span></h3>", 13);
+  cli_sb_add(b, "<p class=\"facts\">", 17);
+  cli_sb_esc(b, str(r, "student"));
+  cli_sb_add(b, " → ", 5);
+  cli_sb_esc(b, str(r, "out"));
+  cli_sb_add(b, " (teacher ", 10);
+  cli_sb_esc(b, str(r, "teacher"));
+  if (*str(r, "host")) { /* batch under mpirun: where the job ran */
+    cli_sb_add(b, "; ran on ", 9);
+    cli_sb_esc(b, str(r, "host"));
+  }
+  cli_sb_add(b, ")</p>", 5);
   if (!has_results(r)) {
-    sb_add(b, "<p class=\"err\">", 15);
-    sb_esc(b, *str(r, "error") ? str(r, "error") : "no results");
+    cli_sb_add(b, "<p class=\"err\">", 15);
+    cli_sb_esc(b, *str(r, "error") ? str(r, "error") : "no results");
     if (*str(r, "log")) {
-      sb_add(b, " (log: ", 7);
-      sb_esc(b, str(r, "log"));
-      sb_add(b, ")", 1);
+      cli_sb_add(b, " (log: ", 7);
+      cli_sb_esc(b, str(r, "log"));
+      cli_sb_add(b, ")", 1);
     }
-    sb_add(b, "</p></div>", 10);
+    cli_sb_add(b, "</p></div>", 10);
     return;
   }
-  sb_add(b, "<div class=\"row\">", 17);
+  cli_sb_add(b, "<div class=\"row\">", 17);
   history_chart(b, r);
   epoch_table(b, r);
-  sb_add(b, "</div>", 6);
+  cli_sb_add(b, "</div>", 6);
   char t[32];
   fmt_duration(t, sizeof t, num(r, "seconds"));
   const cJSON *imp = cJSON_GetObjectItemCaseSensitive(r, "improved");
-  sb_printf(b, "<p class=\"facts\">%.0f steps in %s (%.0f samples/s) on %.0f training and %.0f validation samples; "
+  cli_sb_printf(b, "<p class=\"facts\">%.0f steps in %s (%.0f samples/s) on %.0f training and %.0f validation samples; "
             "pruned entries kept at zero: %.0f (masks %s).%s</p>", num(r, "steps"), t,
             num(r, "samples_per_s"), num(r, "train_samples"), num(r, "val_samples"), num(r, "pruned_zeros_kept"),
             masks_text(r),
             cJSON_IsFalse(imp) ? " Training never beat the input on validation: the input's values were written." : "");
   range_notes(b, r);
   layer_table(b, r);
-  sb_add(b, "</div>", 6);
+  cli_sb_add(b, "</div>", 6);
 }
 
-static void write_html(sbuf *b, const char *title, const cJSON *meta, const cJSON *records) {
+static void write_html(cli_sbuf *b, const char *title, const cJSON *meta, const cJSON *records) {
   int n = 0, ok = 0;
   const cJSON *r;
   cJSON_ArrayForEach(r, records) n++, ok += is_ok(r);
   const char *vm = zoo_metric(records);
-  sb_printf(b, "<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">"
+  cli_sb_printf(b, "<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">"
             "<meta name=\"viewport\" content=\"width=device-width, initial-scale=1\"><title>");
-  sb_esc(b, title);
-  sb_printf(b, "</title><style>%s</style></head><body>\n<h1>", STYLE);
-  sb_esc(b, title);
-  sb_printf(b, "</h1><p class=\"sub\">%d job%s: %d recovered, %d not", n, n == 1 ? "" : "s", ok, n - ok);
+  cli_sb_esc(b, title);
+  cli_sb_printf(b, "</title><style>%s</style></head><body>\n<h1>", STYLE);
+  cli_sb_esc(b, title);
+  cli_sb_printf(b, "</h1><p class=\"sub\">%d job%s: %d recovered, %d not", n, n == 1 ? "" : "s", ok, n - ok);
   const char *when = str(meta, "generated"), *shard = str(meta, "shard");
-  if (*shard && strcmp(shard, "all")) sb_printf(b, " · shard %s", shard);
+  if (*shard && strcmp(shard, "all")) cli_sb_printf(b, " · shard %s", shard);
   if (*when) {
-    sb_add(b, " · ", 4);
-    sb_esc(b, when);
+    cli_sb_add(b, " · ", 4);
+    cli_sb_esc(b, when);
   }
-  sb_printf(b, " · recoup %s</p>\n", RECOUP_VERSION);
-  sb_printf(b, "<p class=\"caution\"><strong>Caution.</strong> %s</p>\n", CAUTION);
-  sb_printf(b, "<h2>Summary</h2><p>Validation %s of the dense model (teacher), the compressed input and the "
+  cli_sb_printf(b, " · recoup %s</p>\n", RECOUP_VERSION);
+  cli_sb_printf(b, "<p class=\"caution\"><strong>Caution.</strong> %s</p>\n", CAUTION);
+  cli_sb_printf(b, "<h2>Summary</h2><p>Validation %s of the dense model (teacher), the compressed input and the "
             "recovered output, measured on each job's validation samples%s.</p>", vm,
             strcmp(vm, "accuracy") ? " (agreement: how often the top class equals the dense model's)" : "");
   summary_table(b, records, vm);
-  sb_add(b, "\n", 1);
+  cli_sb_add(b, "\n", 1);
   if (ok) {
-    sb_printf(b, "<h2>Across the zoo</h2>");
+    cli_sb_printf(b, "<h2>Across the zoo</h2>");
     zoo_chart(b, records, vm);
   }
-  sb_printf(b, "\n<h2>Jobs</h2><p>Per job: training loss along the optimizer steps (left axis) and validation "
+  cli_sb_printf(b, "\n<h2>Jobs</h2><p>Per job: training loss along the optimizer steps (left axis) and validation "
             "accuracy, or agreement when there are no labels (right axis), measured on the compressed input and at "
             "the end of every epoch. The state written (kept) is the one with the lowest validation KL to the dense "
             "model (with labels: α·KL + (1 − α)·cross-entropy, the mix training minimises); accuracy and agreement are "
             "shown beside it but do not decide.</p>\n");
   cJSON_ArrayForEach(r, records) {
     job_card(b, r);
-    sb_add(b, "\n", 1);
+    cli_sb_add(b, "\n", 1);
   }
-  sb_add(b, "</body></html>\n", 15);
+  cli_sb_add(b, "</body></html>\n", 15);
 }
 
 /* ---- Writing the folder ------------------------------------------------------------------ */
@@ -891,7 +784,7 @@ static rc_status write_escaped(const char *dir, const cJSON *meta, const cJSON *
   cJSON_Delete(all);
   RC_TRY(s);
   const char *title = *str(meta, "title") ? str(meta, "title") : "recoup report";
-  sbuf b = {0};
+  cli_sbuf b = {0};
   write_csv(&b, records);
   s = write_sbuf(dir, "summary.csv", &b, e);
   b.n = 0;

@@ -145,7 +145,7 @@ rc_status rc_prune_model(rc_model *m, const rc_prune_opts *o, rc_prune_report *r
     pl->after.data = NULL;
     rc__sparsity(t, ls[i].in_axis, 0, &pl->zeros, &pl->nm_n, &pl->nm_m);
     if (o->sparsity > 0 && pl->zeros == rc_tensor_numel(t) && pl->zeros > 0)
-      note_append(pl, "every weight is zero: the layer passes no signal (try --scope layer)");
+      note_append(pl, "every weight is zero: the layer passes no signal (try the per-layer scope)");
     r->weights_total += rc_tensor_numel(t);
     r->weights_zero += pl->zeros;
     if ((i == 0 || i == nl - 1) && !o->include_first_last && (o->sparsity > 0 || o->nm_m))

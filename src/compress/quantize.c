@@ -346,10 +346,11 @@ static rc_status make_plan(qstate *q, const rc_dataset *d, int64_t batch, const 
     shapes[i] = d->inputs[i];
     shapes[i].dims[0] = batch;
     shapes[i].data = NULL;
+    if (d->to_float[i]) shapes[i].dtype = RC_DTYPE_FLOAT; /* converted per batch */
   }
   rc_plan_opts opts = {0};
   opts.keep = keep;
-  return rc_plan_create(p, q->g, shapes, &opts, q->e);
+  return rc_plan_init(p, q->g, shapes, &opts, q->e);
 }
 
 static rc_status calib_pass(qstate *q, const rc_dataset *d, calib_plans *cp, int pass) {

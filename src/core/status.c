@@ -47,10 +47,3 @@ rc_status rc_err_prefix(rc_err *e, const char *fmt, ...) {
   memcpy(e->msg, joined, sizeof e->msg);
   return e->code;
 }
-
-void rc__err_clear(rc_err *e) {
-  if (e) {
-    e->code = RC_OK;
-    e->msg[0] = '\0';
-  }
-}

@@ -17,7 +17,6 @@
  * ("file.onnx: node 'x'"). */
 #define rc__fail rc_err_set
 #define rc__wrap rc_err_prefix
-void rc__err_clear(rc_err *e);
 
 /* RC_TRY is in recoup/status.h. */
 

@@ -1,7 +1,7 @@
 /* Owned arrays, format detection and the file/memory entry points. Files are
  * mapped read-only rather than read, so a large .npz costs address space,
  * not a second heap copy, and the input file is never modified. */
-#define _POSIX_C_SOURCE 200809L
+#define _DEFAULT_SOURCE /* madvise */
 
 #include <errno.h>
 #include <fcntl.h>
@@ -17,7 +17,10 @@
 
 void rc_array_free(rc_array *a) {
   if (!a) return;
-  rc__free(a->owned);
+  if (a->mapped)
+    munmap(a->owned, a->mapped);
+  else
+    rc__free(a->owned);
   memset(a, 0, sizeof *a);
 }
 
@@ -47,23 +50,12 @@ rc_data_format rc_data_detect(const void *buf, size_t n) {
   return RC_DATA_AUTO;
 }
 
-static int ends_with(const char *s, const char *suffix) {
-  size_t a = strlen(s), b = strlen(suffix);
-  if (b > a) return 0;
-  for (size_t i = 0; i < b; i++) {
-    char c = s[a - b + i];
-    if (c >= 'A' && c <= 'Z') c = (char)(c - 'A' + 'a');
-    if (c != suffix[i]) return 0;
-  }
-  return 1;
-}
-
 static rc_data_format format_by_extension(const char *path) {
-  if (ends_with(path, ".npy")) return RC_DATA_NPY;
-  if (ends_with(path, ".npz") || ends_with(path, ".zip")) return RC_DATA_NPZ;
-  if (ends_with(path, ".gz")) return RC_DATA_GZIP;
-  if (ends_with(path, ".pb")) return RC_DATA_TENSORPROTO;
-  if (ends_with(path, "-ubyte") || ends_with(path, ".idx")) return RC_DATA_IDX;
+  if (rc__ends_with_ci(path, ".npy")) return RC_DATA_NPY;
+  if (rc__ends_with_ci(path, ".npz") || rc__ends_with_ci(path, ".zip")) return RC_DATA_NPZ;
+  if (rc__ends_with_ci(path, ".gz")) return RC_DATA_GZIP;
+  if (rc__ends_with_ci(path, ".pb")) return RC_DATA_TENSORPROTO;
+  if (rc__ends_with_ci(path, "-ubyte") || rc__ends_with_ci(path, ".idx")) return RC_DATA_IDX;
   return RC_DATA_AUTO;
 }
 
@@ -89,7 +81,7 @@ static rc_status read_gzip(rc_array *out, const rc__src *s, rc_err *e) {
   size_t limit = s->max_bytes > SIZE_MAX - RC__DATA_HEADER_SLACK ? SIZE_MAX
                                                                   : s->max_bytes + RC__DATA_HEADER_SLACK;
   RC_TRY(rc__gunzip(&raw, &raw_n, s->p, s->n, limit, e));
-  rc__src inner = {raw, raw_n, raw, s->max_bytes};
+  rc__src inner = {raw, raw_n, raw, s->max_bytes, 0};
   rc_status st;
   switch (rc_data_detect(raw, raw_n)) {
     case RC_DATA_IDX: st = rc__idx_read(out, &inner, e); break;
@@ -140,7 +132,7 @@ rc_status rc_array_read_mem(rc_array *out, const void *buf, size_t n, rc_data_fo
   if (fmt == RC_DATA_TENSORPROTO)
     return named(rc__fail(e, RC_ERR_UNSUPPORTED, "ONNX TensorProto data is read from .pb files only"),
                  e, name);
-  rc__src s = {buf, n, NULL, effective_limit(max_bytes)};
+  rc__src s = {buf, n, NULL, effective_limit(max_bytes), 0};
   rc_status st = read_known(out, &s, fmt, member, e);
   if (st != RC_OK) rc_array_free(out);
   return named(st, e, name);
@@ -204,13 +196,20 @@ static rc_status read_tensorproto(rc_array *out, const char *path, const char *m
   return RC_OK;
 }
 
+/* Map path and tell its format: by magic bytes, else by extension. */
+static rc_status map_detect(mapped_file *m, rc_data_format *fmt, const char *path, rc_err *e) {
+  RC_TRY(named(map_file(m, path, e), e, path));
+  *fmt = rc_data_detect(m->p, m->n);
+  if (*fmt == RC_DATA_AUTO) *fmt = format_by_extension(path);
+  return RC_OK;
+}
+
 rc_status rc_array_read(rc_array *out, const char *path, const char *member, size_t max_bytes,
                         rc_err *e) {
   memset(out, 0, sizeof *out);
   mapped_file m;
-  RC_TRY(named(map_file(&m, path, e), e, path));
-  rc_data_format fmt = rc_data_detect(m.p, m.n);
-  if (fmt == RC_DATA_AUTO) fmt = format_by_extension(path);
+  rc_data_format fmt;
+  RC_TRY(map_detect(&m, &fmt, path, e));
   rc_status st;
   if (fmt == RC_DATA_TENSORPROTO) {
     unmap_file(&m);
@@ -222,12 +221,41 @@ rc_status rc_array_read(rc_array *out, const char *path, const char *member, siz
   } else if (m.n == 0) {
     st = rc__fail(e, RC_ERR_FORMAT, "empty file (expected %s data)", rc_data_format_name(fmt));
   } else {
-    rc__src s = {m.p, m.n, NULL, effective_limit(max_bytes)};
+    rc__src s = {m.p, m.n, NULL, effective_limit(max_bytes), 0};
     st = read_known(out, &s, fmt, member, e);
   }
   unmap_file(&m);
   if (st != RC_OK) rc_array_free(out);
   return named(st, e, path);
+}
+
+rc_status rc_array_map(rc_array *out, const char *path, size_t max_bytes, rc_err *e) {
+  memset(out, 0, sizeof *out);
+  mapped_file m;
+  rc_data_format fmt;
+  RC_TRY(map_detect(&m, &fmt, path, e));
+  rc_status st;
+  if (fmt != RC_DATA_NPY) {
+    st = rc__fail(e, RC_ERR_UNSUPPORTED,
+                  "%s data cannot be memory-mapped (compressed or not laid out as one array); "
+                  "save it as an uncompressed .npy (numpy.save) to read it in place",
+                  rc_data_format_name(fmt));
+  } else {
+    rc__src s = {m.p, m.n, NULL, effective_limit(max_bytes), 1};
+    st = rc__npy_read(out, &s, e);
+  }
+  if (st != RC_OK) {
+    unmap_file(&m);
+    memset(out, 0, sizeof *out);
+    return named(st, e, path);
+  }
+  out->owned = (void *)m.p;
+  out->mapped = m.n;
+  return RC_OK;
+}
+
+void rc_array_release_pages(const rc_array *a) {
+  if (a && a->mapped) madvise(a->owned, a->mapped, MADV_DONTNEED);
 }
 
 rc_status rc_npz_list_mem(char ***names, int *count, const void *buf, size_t n, const char *name,

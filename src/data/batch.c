@@ -66,6 +66,51 @@ rc_status rc_dataset_init(rc_dataset *d, const rc_tensor *inputs, int n_inputs, 
   return RC_OK;
 }
 
+/* Pages of a mapped source are dropped after this many bytes of samples. */
+#define RELEASE_BYTES ((size_t)64 << 20)
+
+void rc_dataset_convert(rc_dataset *d, int i, const rc_data_norm *norm, const rc_array *source) {
+  d->to_float[i] = 1;
+  if (norm)
+    d->norm[i] = *norm;
+  else
+    rc_data_norm_identity(&d->norm[i]);
+  d->release[i] = source && source->mapped ? source : NULL;
+  size_t sb = d->sample_bytes[i] ? d->sample_bytes[i] : 1;
+  d->release_every[i] = (int64_t)(RELEASE_BYTES / sb) + 1; /* in samples */
+  rc_tensor one = d->inputs[i];
+  one.dims[0] = 1;
+  one.dtype = RC_DTYPE_FLOAT;
+  d->sample_bytes[i] = rc_tensor_nbytes(&one); /* what a gather writes */
+}
+
+void rc_dataset_take_input(rc_dataset *to, int i, const rc_dataset *from, int j) {
+  to->inputs[i] = from->inputs[j];
+  to->sample_bytes[i] = from->sample_bytes[j];
+  to->to_float[i] = from->to_float[j];
+  to->norm[i] = from->norm[j];
+  to->release[i] = from->release[j];
+  to->release_every[i] = from->release_every[j];
+}
+
+/* Convert samples of input i one at a time (they are scattered by the order). */
+static rc_status gather_float(float *dst, const rc_dataset *d, int i, int64_t start, int64_t k, rc_err *e) {
+  rc_array src = {d->inputs[i], NULL, 0};
+  /* Views share one mapping: a new pass over any of them starts from an
+   * empty resident set, so passes do not pile up pages between them. */
+  if (d->release[i] && start == 0) rc_array_release_pages(d->release[i]);
+  int64_t per = rc_tensor_numel(&d->inputs[i]) / (d->inputs[i].dims[0] ? d->inputs[i].dims[0] : 1);
+  for (int64_t j = 0; j < k; j++) {
+    int64_t s = d->index[d->order[start + j]];
+    RC_TRY(rc_data_to_float(dst + j * per, &src, s, 1, &d->norm[i], e));
+  }
+  /* Every release_every samples gathered (counted over the epoch's positions,
+   * so the rule is the same for any batch size), drop the mapping's pages. */
+  if (d->release[i] && (start + k) / d->release_every[i] != start / d->release_every[i])
+    rc_array_release_pages(d->release[i]);
+  return RC_OK;
+}
+
 void rc_dataset_free(rc_dataset *d) {
   if (!d) return;
   rc__free(d->index);
@@ -100,6 +145,10 @@ rc_status rc_dataset_gather(void *const *out, int32_t *labels_out, int64_t *coun
   int64_t start = batch * batch_size;
   int64_t k = d->n - start < batch_size ? d->n - start : batch_size;
   for (int i = 0; i < d->n_inputs; i++) {
+    if (d->to_float[i]) {
+      RC_TRY(gather_float(out[i], d, i, start, k, e));
+      continue;
+    }
     const unsigned char *src = d->inputs[i].data;
     unsigned char *dst = out[i];
     size_t sb = d->sample_bytes[i];
@@ -119,7 +168,7 @@ static int cmp_i64(const void *a, const void *b) {
   return (x > y) - (x < y);
 }
 
-rc_status rc_data_split_make(rc_data_split *out, int64_t n, double val_fraction, uint64_t seed, rc_err *e) {
+rc_status rc_data_split_init(rc_data_split *out, int64_t n, double val_fraction, uint64_t seed, rc_err *e) {
   memset(out, 0, sizeof *out);
   if (!(val_fraction >= 0.0 && val_fraction < 1.0))
     return rc__fail(e, RC_ERR_INVALID, "validation fraction %g is outside [0, 1)", val_fraction);

@@ -36,6 +36,12 @@ static void swap_elements(unsigned char *p, size_t nbytes, size_t elem_size) {
 rc_status rc__take_payload(rc_array *out, rc__src *s, size_t offset, size_t nbytes,
                            size_t elem_size, int file_le, rc_err *e) {
   unsigned char *dst;
+  if (s->borrow) {
+    if (elem_size > 1 && ((file_le != 0) != host_is_little_endian() || offset % elem_size))
+      return rc__fail(e, RC_ERR_UNSUPPORTED, "the data is not in the host's byte order or not aligned for mapping");
+    out->t.data = (void *)(s->p + offset);
+    return RC_OK;
+  }
   if (s->heap) {
     /* Slide the payload to the start of the block: malloc alignment then
      * holds for every element type, whatever the header length was. */
@@ -53,4 +59,15 @@ rc_status rc__take_payload(rc_array *out, rc__src *s, size_t offset, size_t nbyt
   out->owned = dst;
   out->t.data = dst;
   return RC_OK;
+}
+
+int rc__ends_with_ci(const char *s, const char *suffix) {
+  size_t a = strlen(s), b = strlen(suffix);
+  if (b > a) return 0;
+  for (size_t i = 0; i < b; i++) {
+    char c = s[a - b + i];
+    if (c >= 'A' && c <= 'Z') c = (char)(c - 'A' + 'a');
+    if (c != suffix[i]) return 0;
+  }
+  return 1;
 }

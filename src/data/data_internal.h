@@ -21,6 +21,7 @@ typedef struct rc__src {
   size_t n;
   unsigned char *heap;
   size_t max_bytes;
+  int borrow; /* point the array at the payload in place (a file mapping) */
 } rc__src;
 
 /* Errors from these name what is wrong; the caller prefixes the file name. */
@@ -38,6 +39,9 @@ rc_status rc__gunzip(unsigned char **out, size_t *out_n, const unsigned char *p,
  * Adopts s->heap when set, else copies. */
 rc_status rc__take_payload(rc_array *out, rc__src *s, size_t offset, size_t nbytes,
                            size_t elem_size, int file_le, rc_err *e);
+
+/* Does s end with suffix (given in lower case), ignoring ASCII case? */
+int rc__ends_with_ci(const char *s, const char *suffix);
 
 /* Unaligned integer loads in a stated byte order. */
 uint32_t rc__le32(const unsigned char *p);

@@ -163,7 +163,7 @@ static rc_status read_member(rc_array *out, zip_t *za, zip_uint64_t index, size_
                     limit);
   unsigned char *buf;
   RC_TRY(read_exact(za, index, &st, &buf, e));
-  rc__src s = {buf, (size_t)st.size, buf, max_bytes};
+  rc__src s = {buf, (size_t)st.size, buf, max_bytes, 0};
   rc_status r = rc__npy_read(out, &s, e);
   rc__free(s.heap); /* NULL once adopted */
   return r;

@@ -12,6 +12,12 @@ int rc__graph_find_value(const rc_graph *g, const char *name) {
   return -1;
 }
 
+int rc__graph_find_in(const rc_graph *g, const int *vals, int n, const char *name) {
+  for (int i = 0; i < n; i++)
+    if (!strcmp(g->values[vals[i]].name, name)) return i;
+  return -1;
+}
+
 const rc_attr *rc__attr_find(const rc_node *n, const char *name) {
   for (int i = 0; i < n->n_attrs; i++)
     if (!strcmp(n->attrs[i].name, name)) return &n->attrs[i];

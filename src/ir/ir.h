@@ -90,6 +90,9 @@ typedef struct rc_graph {
 
 /* Index of the value called name, or -1. Linear; call at load time only. */
 int rc__graph_find_value(const rc_graph *g, const char *name);
+/* Position in vals[0..n) (value indices, e.g. g->inputs) of the value
+ * called name, or -1. */
+int rc__graph_find_in(const rc_graph *g, const int *vals, int n, const char *name);
 
 /* Check that every input is produced by something and sort the nodes
  * topologically, refusing cycles. Messages name the file and node. */

@@ -63,8 +63,6 @@ static int is_name(const char *a, const char *b) { return a && b && !strcmp(a, b
 
 /* ---- lookups ---- */
 
-int rc_model_edit_node_count(const rc_model *m) { return (int)cgraph_of(m)->n_node; }
-
 int rc_model_edit_producer(const rc_model *m, const char *value) {
   const Onnx__GraphProto *gp = cgraph_of(m);
   for (size_t i = 0; i < gp->n_node; i++)

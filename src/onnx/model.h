@@ -62,7 +62,6 @@ RC_API void rc_model_free(rc_model *m);
  * in the message's node list (file order, which edits may change); names are
  * copied. Lookups are linear scans: for one-off rewrites, not hot loops. */
 
-int rc_model_edit_node_count(const rc_model *m);
 /* Index of the node that outputs `value`, or -1. */
 int rc_model_edit_producer(const rc_model *m, const char *value);
 /* 1 if name is a tensor (input, output, initializer, node input or output) or node name. */

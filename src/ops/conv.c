@@ -3,10 +3,10 @@
  * Both ops work per sample through an unfolded-patch ("column") matrix and
  * one GEMM per group: Conv unfolds its input and multiplies by the weights;
  * ConvTranspose multiplies by the transposed weights and folds the columns
- * back into its output. The same helpers (unfold = im2col, fold = col2im,
- * both built on one walk over a kernel tap) serve Conv's forward and input
- * gradient and ConvTranspose's forward and input gradient, since each op is
- * the other's adjoint. A 1x1, stride-1, unpadded convolution skips the
+ * back into its output. The same helpers (unfold = im2col, writing each
+ * column cell once; fold = col2im, a walk over one kernel tap) serve Conv's
+ * forward and input gradient and ConvTranspose's forward and input
+ * gradient, since each op is the other's adjoint. A 1x1, stride-1, unpadded convolution skips the
  * unfolding (the input already is the column matrix); depthwise Conv walks
  * the taps directly, one thread per plane, with no column matrix. Spatial
  * axes are canonicalised to 3 (missing leading axes have size 1), so 1-D,
@@ -156,10 +156,22 @@ static void valid_range(int64_t off, int64_t s, int64_t size, int64_t npos, int6
   *hi = h;
 }
 
+/* Where kernel tap kr reads: the image offset on each axis and the valid
+ * positions [lo, hi) whose cell lies inside the image. */
+static void tap_ranges(const patch *g, int64_t kr, int64_t *off0, int64_t *off1, int64_t *off2, int64_t *lo0,
+                       int64_t *hi0, int64_t *lo1, int64_t *hi1, int64_t *lo2, int64_t *hi2) {
+  int64_t ka = kr / (g->k[1] * g->k[2]), kb = (kr / g->k[2]) % g->k[1], kc = kr % g->k[2];
+  *off0 = ka * g->d[0] - g->pad[0];
+  *off1 = kb * g->d[1] - g->pad[1];
+  *off2 = kc * g->d[2] - g->pad[2];
+  valid_range(*off0, g->s[0], g->img[0], g->pos[0], lo0, hi0);
+  valid_range(*off1, g->s[1], g->img[1], g->pos[1], lo1, hi1);
+  valid_range(*off2, g->s[2], g->img[2], g->pos[2], lo2, hi2);
+}
+
 /* What a walk over one kernel tap does between a position plane (length P)
  * and one image plane. */
 typedef enum tap_mode {
-  TAP_GATHER,     /* pos[p] = img[cell], 0 where the tap falls in padding (unfold) */
   TAP_SCATTER,    /* img[cell] += v * pos[p] (fold; depthwise input gradient) */
   TAP_ACCUMULATE, /* pos[p] += v * img[cell] (depthwise forward) */
   TAP_DOT         /* returns sum of pos[p] * img[cell] (depthwise weight gradient) */
@@ -167,13 +179,8 @@ typedef enum tap_mode {
 
 /* Walks kernel tap kr (index into k[0]*k[1]*k[2]) over every position. */
 static double tap_walk(tap_mode mode, float *pos, float *img, const patch *g, int64_t kr, float v) {
-  int64_t ka = kr / (g->k[1] * g->k[2]), kb = (kr / g->k[2]) % g->k[1], kc = kr % g->k[2];
-  int64_t off0 = ka * g->d[0] - g->pad[0], off1 = kb * g->d[1] - g->pad[1], off2 = kc * g->d[2] - g->pad[2];
-  int64_t lo0, hi0, lo1, hi1, lo2, hi2;
-  valid_range(off0, g->s[0], g->img[0], g->pos[0], &lo0, &hi0);
-  valid_range(off1, g->s[1], g->img[1], g->pos[1], &lo1, &hi1);
-  valid_range(off2, g->s[2], g->img[2], g->pos[2], &lo2, &hi2);
-  if (mode == TAP_GATHER) memset(pos, 0, sizeof(float) * (size_t)prod3(g->pos));
+  int64_t off0, off1, off2, lo0, hi0, lo1, hi1, lo2, hi2;
+  tap_ranges(g, kr, &off0, &off1, &off2, &lo0, &hi0, &lo1, &hi1, &lo2, &hi2);
   const int64_t st = g->s[2];
   double dot = 0;
   for (int64_t p0 = lo0; p0 < hi0; p0++)
@@ -181,10 +188,6 @@ static double tap_walk(tap_mode mode, float *pos, float *img, const patch *g, in
       float *irow = img + ((p0 * g->s[0] + off0) * g->img[1] + p1 * g->s[1] + off1) * g->img[2] + off2;
       float *prow = pos + (p0 * g->pos[1] + p1) * g->pos[2];
       switch (mode) {
-        case TAP_GATHER:
-          if (st == 1) memcpy(prow + lo2, irow + lo2, sizeof(float) * (size_t)(hi2 - lo2));
-          else for (int64_t p = lo2; p < hi2; p++) prow[p] = irow[p * st];
-          break;
         case TAP_SCATTER:
           for (int64_t p = lo2; p < hi2; p++) irow[p * st] += v * prow[p];
           break;
@@ -192,6 +195,8 @@ static double tap_walk(tap_mode mode, float *pos, float *img, const patch *g, in
           for (int64_t p = lo2; p < hi2; p++) prow[p] += v * irow[p * st];
           break;
         case TAP_DOT: {
+          /* Rows here are short (a few to 64 cells): a plain serial sum
+           * beats a vector reduction's set-up (perf, mobilenet_v2 step). */
           float part = 0;
           for (int64_t p = lo2; p < hi2; p++) part += prow[p] * irow[p * st];
           dot += part;
@@ -202,12 +207,43 @@ static double tap_walk(tap_mode mode, float *pos, float *img, const patch *g, in
   return dot;
 }
 
+static void zero(float *p, int64_t n) {
+  if (n > 0) memset(p, 0, sizeof(float) * (size_t)n);
+}
+
+/* pos[p] = img[cell] for kernel tap kr, 0 where the tap falls in padding.
+ * Each output cell is written once: zeros go only where padding is, instead
+ * of clearing the whole plane before the copy. */
+static void tap_gather(float *pos, const float *img, const patch *g, int64_t kr) {
+  int64_t off0, off1, off2, lo0, hi0, lo1, hi1, lo2, hi2;
+  tap_ranges(g, kr, &off0, &off1, &off2, &lo0, &hi0, &lo1, &hi1, &lo2, &hi2);
+  const int64_t P1 = g->pos[1], P2 = g->pos[2], st = g->s[2];
+  if (lo0 >= hi0 || lo1 >= hi1 || lo2 >= hi2) {
+    zero(pos, prod3(g->pos));
+    return;
+  }
+  zero(pos, lo0 * P1 * P2);
+  for (int64_t p0 = lo0; p0 < hi0; p0++) {
+    float *plane = pos + p0 * P1 * P2;
+    zero(plane, lo1 * P2);
+    for (int64_t p1 = lo1; p1 < hi1; p1++) {
+      const float *irow = img + ((p0 * g->s[0] + off0) * g->img[1] + p1 * g->s[1] + off1) * g->img[2] + off2;
+      float *prow = plane + p1 * P2;
+      zero(prow, lo2);
+      if (st == 1) memcpy(prow + lo2, irow + lo2, sizeof(float) * (size_t)(hi2 - lo2));
+      else for (int64_t p = lo2; p < hi2; p++) prow[p] = irow[p * st];
+      zero(prow + hi2, P2 - hi2);
+    }
+    zero(plane + hi1 * P2, (P1 - hi1) * P2);
+  }
+  zero(pos + hi0 * P1 * P2, (g->pos[0] - hi0) * P1 * P2);
+}
+
 /* col (channels*K, P) <- unfolded img (channels, img...). No threads of its
  * own: callers already run one sample per thread. */
 static void unfold(float *col, const float *img, const patch *g, int64_t channels) {
   const int64_t K = prod3(g->k), P = prod3(g->pos), plane = prod3(g->img);
-  for (int64_t r = 0; r < channels * K; r++)
-    tap_walk(TAP_GATHER, col + r * P, (float *)(img + (r / K) * plane), g, r % K, 1.0f);
+  for (int64_t r = 0; r < channels * K; r++) tap_gather(col + r * P, img + (r / K) * plane, g, r % K);
 }
 
 /* img (channels, img...) += folded col (channels*K, P): the adjoint of unfold. */

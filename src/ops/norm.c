@@ -8,6 +8,7 @@
 
 #include "ops/broadcast.h"
 #include "ops/op.h"
+#include "ops/rowsum.h"
 
 /* Where statistics go: k->saved in training plans, else the workspace. */
 static float *stats_buffer(const rc_kernel *k) { return k->saved ? k->saved : k->work; }
@@ -166,16 +167,9 @@ static rc_status bn_forward(const rc_kernel *k, rc_err *e) {
        * (biased) variance, as the spec's ReduceVar, both for normalising and
        * for the running update (PyTorch would use the unbiased one there). */
       double s = 0, v = 0;
-      for (int64_t n = 0; n < N; n++) {
-        const float *xr = x + (n * C + c) * S;
-        for (int64_t j = 0; j < S; j++) s += xr[j];
-      }
-      double m = M ? s / (double)M : 0;
-      for (int64_t n = 0; n < N; n++) {
-        const float *xr = x + (n * C + c) * S;
-        for (int64_t j = 0; j < S; j++) v += (xr[j] - m) * (xr[j] - m);
-      }
-      mean = (float)m;
+      for (int64_t n = 0; n < N; n++) s += rc__row_sum(x + (n * C + c) * S, S);
+      mean = M ? (float)(s / (double)M) : 0.0f;
+      for (int64_t n = 0; n < N; n++) v += rc__row_sq_dev(x + (n * C + c) * S, S, mean);
       var = M ? (float)(v / (double)M) : 0.0f;
       /* running = input * momentum + batch * (1 - momentum) (spec text). */
       write_vec(k, 1, c, rmean[c] * p->momentum + mean * (1.0f - p->momentum));
@@ -219,11 +213,10 @@ static void bn_backward(const rc_kernel *k) {
     double sdy = 0, sdyx = 0;
     for (int64_t n = 0; n < N; n++) {
       const float *xr = x + (n * C + c) * S, *dr = dy + (n * C + c) * S;
-      for (int64_t j = 0; j < S; j++) {
-        sdy += dr[j];
-        sdyx += (double)dr[j] * (xr[j] - mean) * inv;
-      }
+      sdy += rc__row_sum(dr, S);
+      sdyx += rc__row_dot_dev(dr, xr, S, mean);
     }
+    sdyx *= inv;
     if (dx) {
       float mdy = batch ? (float)(sdy / (double)M) : 0.0f;
       float mdyx = batch ? (float)(sdyx / (double)M) : 0.0f;

@@ -63,9 +63,6 @@ typedef struct rc_op_def {
 
 /* Registry (registry.c). Returns NULL for an unsupported op or opset. */
 const rc_op_def *rc__op_find(const char *op_type, const char *domain, int opset);
-/* Every supported op, for `--help` and conformance counts. */
-int rc__op_count(void);
-const rc_op_def *rc__op_at(int i);
 
 /* Helpers shared by kernels (op_util.c). */
 /* Normalise a possibly negative axis against rank; error names the node. */

@@ -32,17 +32,3 @@ const rc_op_def *rc__op_find(const char *op_type, const char *domain, int opset)
     }
   return NULL;
 }
-
-int rc__op_count(void) {
-  int n = 0;
-  for (int f = 0; f < N_FAMILIES; f++) n += *families[f].count;
-  return n;
-}
-
-const rc_op_def *rc__op_at(int i) {
-  for (int f = 0; f < N_FAMILIES; f++) {
-    if (i < *families[f].count) return &families[f].defs[i];
-    i -= *families[f].count;
-  }
-  return NULL;
-}

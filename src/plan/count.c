@@ -51,11 +51,21 @@ rc_tensor *rc__batch_inputs(const rc_graph *g, int64_t b) {
   return ins;
 }
 
+void rc__input_shapes(const rc_graph *g, const rc_tensor *data, int64_t b, rc_tensor *shapes) {
+  for (int i = 0; i < g->n_inputs; i++) {
+    shapes[i] = data[i];
+    shapes[i].data = NULL;
+    shapes[i].dims[0] = b;
+    /* Raw sources converted per batch take the input's declared type. */
+    if (g->values[g->inputs[i]].decl.dtype == RC_DTYPE_FLOAT) shapes[i].dtype = RC_DTYPE_FLOAT;
+  }
+}
+
 rc_status rc__plan_batch1(rc_plan **p, const rc_graph *g, rc_err *e) {
   *p = NULL;
   rc_tensor *ins = rc__batch1_inputs(g);
   if (!ins) return rc__fail(e, RC_ERR_NOMEM, "out of memory");
-  rc_status st = rc_plan_create(p, g, ins, NULL, e);
+  rc_status st = rc_plan_init(p, g, ins, NULL, e);
   rc__free(ins);
   return st;
 }

@@ -16,6 +16,9 @@ rc_tensor *rc__batch1_inputs(const rc_graph *g);
 /* The same with every symbolic dim taken as b (inspect plans at 1 and 2 to
  * see which output dims follow the batch). */
 rc_tensor *rc__batch_inputs(const rc_graph *g, int64_t b);
+/* The shapes of samples `data` (one tensor per graph input, dims[0] =
+ * samples) taken b at a time: data's shapes with dims[0] = b, data NULL. */
+void rc__input_shapes(const rc_graph *g, const rc_tensor *data, int64_t b, rc_tensor *shapes);
 
 /* Plan g for rc__batch1_inputs. */
 rc_status rc__plan_batch1(rc_plan **p, const rc_graph *g, rc_err *e);

@@ -370,8 +370,8 @@ static rc_status build_gradient_views(rc_plan *p, rc_err *e) {
   return RC_OK;
 }
 
-rc_status rc_plan_create(rc_plan **out, const rc_graph *g, const rc_tensor *inputs,
-                         const rc_plan_opts *opts, rc_err *e) {
+rc_status rc_plan_init(rc_plan **out, const rc_graph *g, const rc_tensor *inputs,
+                       const rc_plan_opts *opts, rc_err *e) {
   *out = NULL;
   rc_plan_opts none = {0};
   const rc_plan_opts *o = opts ? opts : &none;

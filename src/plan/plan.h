@@ -36,8 +36,8 @@ typedef struct rc_plan rc_plan;
 
 /* Build a plan. `inputs` holds one tensor per graph input (g->inputs order)
  * giving dtype and concrete shape; data pointers are ignored. */
-rc_status rc_plan_create(rc_plan **out, const rc_graph *g, const rc_tensor *inputs,
-                         const rc_plan_opts *opts, rc_err *e);
+rc_status rc_plan_init(rc_plan **out, const rc_graph *g, const rc_tensor *inputs,
+                       const rc_plan_opts *opts, rc_err *e);
 void rc_plan_free(rc_plan *p);
 
 /* The tensor of a value in this plan: concrete shape, data in the arena (or

@@ -58,6 +58,12 @@ uint64_t rc__ckpt_fp_f32(uint64_t h, const float *v, size_t n) {
   return h;
 }
 
+uint64_t rc__ckpt_fp_bytes(uint64_t h, const void *p, size_t n) {
+  const unsigned char *b = p;
+  for (size_t i = 0; i < n; i++) h = fnv_u64(h, b[i], 1);
+  return h;
+}
+
 /* ---- Writing ------------------------------------------------------------------ */
 
 static cJSON *real(double v) {
@@ -77,6 +83,11 @@ static cJSON *metrics_json(const rc_metrics *m) {
   put_real(o, "top5", m->top5);
   put_real(o, "agreement", m->agreement);
   put_real(o, "kl", m->kl);
+  put_real(o, "ce", m->ce);
+  cJSON_AddBoolToObject(o, "outputs", m->outputs);
+  put_real(o, "miou_ref", m->miou_ref);
+  put_real(o, "miou_labels", m->miou_labels);
+  put_real(o, "value_mad", m->value_mad);
   return o;
 }
 
@@ -255,6 +266,11 @@ static void get_metrics(header_reader *r, const cJSON *o, const char *key, rc_me
   m->top5 = get_real(r, v, "top5");
   m->agreement = get_real(r, v, "agreement");
   m->kl = get_real(r, v, "kl");
+  m->ce = get_real(r, v, "ce");
+  m->outputs = get_bool(r, v, "outputs");
+  m->miou_ref = get_real(r, v, "miou_ref");
+  m->miou_labels = get_real(r, v, "miou_labels");
+  m->value_mad = get_real(r, v, "value_mad");
 }
 
 static const char *get_string(header_reader *r, const cJSON *o, const char *key) {

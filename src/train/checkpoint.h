@@ -72,5 +72,7 @@ rc_status rc__ckpt_read(const char *path, const rc_ckpt_run *run, loop_state *ls
 uint64_t rc__ckpt_fp_i64(uint64_t h, const int64_t *v, size_t n);
 uint64_t rc__ckpt_fp_f64(uint64_t h, const double *v, size_t n);
 uint64_t rc__ckpt_fp_f32(uint64_t h, const float *v, size_t n);
+/* Raw bytes (names, float data whose byte order is the file's little-endian one). */
+uint64_t rc__ckpt_fp_bytes(uint64_t h, const void *p, size_t n);
 
 #endif

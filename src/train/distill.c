@@ -10,10 +10,16 @@
 
 #include "core/alloc.h"
 #include "core/file.h"
+#include "core/log.h"
+#include "data/spill.h"
+#include "plan/count.h"
 #include "plan/inspect.h"
 #include "plan/load.h"
 #include "plan/plan.h"
+#include "train/bn_stats.h"
 #include "train/checkpoint.h"
+#include "train/dist.h"
+#include "train/dist_grads.h"
 #include "train/loss.h"
 #include "train/measure.h"
 #include "train/params.h"
@@ -60,63 +66,6 @@ static double now_s(void) {
   return (double)ts.tv_sec + 1e-9 * (double)ts.tv_nsec;
 }
 
-/* ---- Teacher and student must agree -------------------------------------- */
-
-static int find_by_name(const rc_graph *g, const int *vals, int n, const char *name) {
-  for (int i = 0; i < n; i++)
-    if (!strcmp(g->values[vals[i]].name, name)) return i;
-  return -1;
-}
-
-static rc_status check_io(const rc_graph *t, const int *tv, int tn, const rc_graph *s, const int *sv, int sn,
-                          const char *what, rc_err *e) {
-  if (tn != sn)
-    return rc__fail(e, RC_ERR_SHAPE, "teacher %s has %d %ss, student %s has %d", t->path, tn, what, s->path, sn);
-  for (int i = 0; i < sn; i++) {
-    const rc_value *b = &s->values[sv[i]];
-    int j = find_by_name(t, tv, tn, b->name);
-    if (j < 0)
-      return rc__fail(e, RC_ERR_SHAPE, "student %s '%s' (%s) has no %s of that name in teacher %s", what, b->name,
-                      s->path, what, t->path);
-    const rc_value *a = &t->values[tv[j]];
-    if (a->decl.dtype != b->decl.dtype)
-      return rc__fail(e, RC_ERR_SHAPE, "%s '%s': teacher dtype %s, student %s", what, b->name,
-                      rc_dtype_name(a->decl.dtype), rc_dtype_name(b->decl.dtype));
-    if (a->decl.rank >= 0 && b->decl.rank >= 0) {
-      int ok = a->decl.rank == b->decl.rank;
-      for (int d = 0; ok && d < a->decl.rank; d++)
-        if (a->decl.dims[d] >= 0 && b->decl.dims[d] >= 0 && a->decl.dims[d] != b->decl.dims[d]) ok = 0;
-      if (!ok) {
-        char sa[128], sb[128];
-        return rc__fail(e, RC_ERR_SHAPE, "%s '%s': teacher shape %s, student %s", what, b->name,
-                        rc_shape_str(&a->decl, sa, sizeof sa), rc_shape_str(&b->decl, sb, sizeof sb));
-      }
-    }
-  }
-  return RC_OK;
-}
-
-/* Training runs batches of any size (--batch, the last partial batch, single
- * samples for pairing), so a model exported with a fixed batch dimension
- * cannot be trained as it is; say so instead of failing on a shape later. */
-static rc_status check_free_batch(const rc_graph *g, const char *role, rc_err *e) {
-  for (int i = 0; i < g->n_inputs; i++) {
-    const rc_value *v = &g->values[g->inputs[i]];
-    if (v->decl.rank >= 1 && v->decl.dims[0] >= 0)
-      return rc__fail(e, RC_ERR_UNSUPPORTED, "%s %s: input '%s' has a fixed batch size of %lld; distillation needs a "
-                      "free first axis (re-export the model with a dynamic batch dimension)", role, g->path, v->name,
-                      (long long)v->decl.dims[0]);
-  }
-  return RC_OK;
-}
-
-rc_status rc_distill_check_pair(const rc_graph *t, const rc_graph *s, rc_err *e) {
-  RC_TRY(check_free_batch(t, "teacher", e));
-  RC_TRY(check_free_batch(s, "student", e));
-  RC_TRY(check_io(t, t->inputs, t->n_inputs, s, s->inputs, s->n_inputs, "input", e));
-  return check_io(t, t->outputs, t->n_outputs, s, s->outputs, s->n_outputs, "output", e);
-}
-
 /* ---- What trains ----------------------------------------------------------- */
 
 static int matches_any(const char *name, const char *const *globs, int n) {
@@ -145,7 +94,8 @@ typedef struct run_state {
   rc_plan *train_plan, *eval_plan, *teacher_plan;
   int64_t batch, k;
   rc_dataset train, val;
-  float *teacher_logits;     /* per training-pool sample (N_pool, K) */
+  float *teacher_logits;     /* per training-pool sample (N_pool, K), in teacher_cache */
+  rc_spill teacher_cache;    /* memory, or a mapped file past config cache_bytes */
   float *teacher_val_logits; /* (n_val, K) */
   float *val_logits;
   const int32_t *val_labels;
@@ -154,11 +104,17 @@ typedef struct run_state {
   rc_qat qat;                /* QDQ sites rewritten for training on their grids */
   rc_features *feat;         /* feature-level terms, NULL when only logits are matched */
   rc_plan *teacher_step;     /* teacher run every step for inner tensors */
+  rc_outputs *outs;          /* per-output losses, NULL: the logit terms */
+  const rc_output_side *train_side, *val_side;
   unsigned char *tkeep, *skeep;
   int projectors_started;    /* least-squares start done (or a resumed run) */
   rc_distill_tensor_rule *rules; /* per trained weight, moved to the result */
   int *rule_value;               /* the store's value of each rule */
   int n_rules;
+  /* Under MPI (train/dist.h) each rank trains on rows [offset, offset +
+   * local) of every global batch; alone, offset 0 and local = batch. */
+  int64_t local, offset;
+  rc_grad_sync sync;
 } run_state;
 
 /* Remember what the zeros of a trained weight mean; returns its store flags. */
@@ -241,7 +197,8 @@ static rc_status select_trainables(run_state *st, rc_err *e) {
   }
   if (!st->n_tr)
     return rc__fail(e, RC_ERR_INVALID, "%s: nothing to train (no float weights of Conv, ConvTranspose, Gemm, "
-                    "MatMul, PRelu, normalisation layers or Add/Mul parameters after --train/--freeze)", g->path);
+                    "MatMul, PRelu, normalisation layers or Add/Mul parameters after the train and freeze patterns)",
+                    g->path);
   return RC_OK;
 }
 
@@ -269,8 +226,6 @@ static rc_status collect_bn(run_state *st, rc_err *e) {
   return RC_OK;
 }
 
-static void input_shapes(const rc_graph *g, const rc_tensor *data, int64_t b, rc_tensor *shapes);
-
 /* Feature terms: pairs, projectors (store entries), tensors to keep. */
 static rc_status setup_features(run_state *st, const rc_tensor *data, rc_err *e) {
   const rc_distill_config *c = st->c;
@@ -282,14 +237,14 @@ static rc_status setup_features(run_state *st, const rc_tensor *data, rc_err *e)
   st->skeep = rc__calloc((size_t)st->sg->n_values + 1, 1);
   if (!st->tkeep || !st->skeep) return rc__fail(e, RC_ERR_NOMEM, "out of memory");
   rc_tensor shapes[RC_DATASET_MAX_INPUTS];
-  input_shapes(st->sg, data, 1, shapes);
-  return rc__features_setup(&st->feat, &c->terms, &st->teacher->graph, st->sg, shapes, c->pairs, c->pair_weights,
-                            c->n_pairs, st->ps, st->tkeep, st->skeep, e);
+  rc__input_shapes(st->sg, data, 1, shapes);
+  return rc__features_init(&st->feat, &c->terms, &st->teacher->graph, st->sg, shapes, c->pairs, c->pair_weights,
+                           c->n_pairs, st->ps, st->tkeep, st->skeep, e);
 }
 
 static rc_status build_store(run_state *st, const rc_tensor *data, rc_err *e) {
   rc_graph *g = st->sg;
-  RC_TRY(rc_params_create(&st->ps, e));
+  RC_TRY(rc_params_init(&st->ps, e));
   for (int i = 0; i < st->n_tr; i++) {
     rc_value *val = &g->values[st->tr[i].value];
     RC_TRY(rc_params_add(st->ps, &st->tr[i].entry, val->name, rc_tensor_numel(&val->decl), val->decl.data,
@@ -298,7 +253,7 @@ static rc_status build_store(run_state *st, const rc_tensor *data, rc_err *e) {
   RC_TRY(setup_features(st, data, e));
   RC_TRY(rc_params_finalize(st->ps, rc_optim_moments(&st->c->optim), e));
   RC_TRY(rc_params_build_masks(st->ps, e));
-  if (st->feat) RC_TRY(rc__features_init(st->feat, st->ps, st->c->seed, e));
+  if (st->feat) RC_TRY(rc__features_bind(st->feat, st->ps, st->c->seed, e));
   /* From here on the graph reads its initializers from the store. */
   for (int i = 0; i < st->n_tr; i++) {
     rc_value *val = &g->values[st->tr[i].value];
@@ -322,14 +277,6 @@ static void restore_graph_buffers(run_state *st) {
 
 /* ---- Plans ------------------------------------------------------------------ */
 
-static void input_shapes(const rc_graph *g, const rc_tensor *data, int64_t b, rc_tensor *shapes) {
-  for (int i = 0; i < g->n_inputs; i++) {
-    shapes[i] = data[i];
-    shapes[i].data = NULL;
-    shapes[i].dims[0] = b;
-  }
-}
-
 static rc_status logits_width(const rc_plan *p, const rc_graph *g, int64_t b, int64_t *k, rc_err *e) {
   const rc_tensor *t = rc_plan_tensor((rc_plan *)p, g->outputs[0]);
   if (t->dtype != RC_DTYPE_FLOAT || t->rank != 2 || t->dims[0] != b)
@@ -342,7 +289,7 @@ static rc_status logits_width(const rc_plan *p, const rc_graph *g, int64_t b, in
 /* Inputs of the teacher in the student's order (names match, checked). */
 static void teacher_order(const rc_graph *t, const rc_graph *s, const rc_tensor *in, rc_tensor *out) {
   for (int i = 0; i < t->n_inputs; i++) {
-    int j = find_by_name(s, s->inputs, s->n_inputs, t->values[t->inputs[i]].name);
+    int j = rc__graph_find_in(s, s->inputs, s->n_inputs, t->values[t->inputs[i]].name);
     out[i] = in[j < 0 ? i : j];
   }
 }
@@ -350,7 +297,7 @@ static void teacher_order(const rc_graph *t, const rc_graph *s, const rc_tensor 
 static rc_status build_plans(run_state *st, const rc_tensor *data, rc_err *e) {
   const rc_graph *tg = &st->teacher->graph, *sg = st->sg;
   rc_tensor shapes[RC_DATASET_MAX_INPUTS], tin[RC_DATASET_MAX_INPUTS];
-  input_shapes(sg, data, st->batch, shapes);
+  rc__input_shapes(sg, data, st->batch, shapes);
   st->trainable_mask = rc__calloc((size_t)sg->n_values + 1, 1);
   unsigned char *live = rc__calloc((size_t)sg->n_values + 1, 1);
   if (!st->trainable_mask || !live) {
@@ -366,20 +313,28 @@ static rc_status build_plans(run_state *st, const rc_tensor *data, rc_err *e) {
       if (n->in[k] >= 0) st->trainable_mask[n->in[k]] = 0;
   }
   rc_plan_opts eval_opts = {.training = 0, .trainable = live, .keep = NULL, .bn_batch_stats = 0};
-  rc_status s = rc_plan_create(&st->eval_plan, sg, shapes, &eval_opts, e);
+  rc_status s = rc_plan_init(&st->eval_plan, sg, shapes, &eval_opts, e);
   rc__free(live);
   RC_TRY(s);
   rc_plan_opts train_opts = {.training = 1, .trainable = st->trainable_mask, .keep = st->skeep, .bn_batch_stats = st->c->bn == RC_BN_TRAIN};
-  RC_TRY(rc_plan_create(&st->train_plan, sg, shapes, &train_opts, e));
   teacher_order(tg, sg, shapes, tin);
-  RC_TRY(rc_plan_create(&st->teacher_plan, tg, tin, NULL, e));
-  if (st->feat && rc_loss_spec_needs_features(&st->c->terms)) {
+  RC_TRY(rc_plan_init(&st->teacher_plan, tg, tin, NULL, e));
+  /* The step's plans take this rank's part of the global batch. */
+  rc_tensor part[RC_DATASET_MAX_INPUTS], tpart[RC_DATASET_MAX_INPUTS];
+  rc__input_shapes(sg, data, st->local, part);
+  teacher_order(tg, sg, part, tpart);
+  RC_TRY(rc_plan_init(&st->train_plan, sg, part, &train_opts, e));
+  if ((st->feat && rc_loss_spec_needs_features(&st->c->terms)) || st->c->n_output_losses) {
     rc_plan_opts keep = {.training = 0, .trainable = NULL, .keep = st->tkeep, .bn_batch_stats = 0};
-    RC_TRY(rc_plan_create(&st->teacher_step, tg, tin, &keep, e));
+    RC_TRY(rc_plan_init(&st->teacher_step, tg, tpart, &keep, e));
   }
   int64_t kt = 0;
-  RC_TRY(logits_width(st->eval_plan, sg, st->batch, &st->k, e));
-  RC_TRY(logits_width(st->teacher_plan, tg, st->batch, &kt, e));
+  if (st->c->n_output_losses)
+    RC_TRY(rc__outputs_create(&st->outs, st->c->output_losses, st->c->n_output_losses, st->c->temperature,
+                              st->teacher_step, st->train_plan, st->c->label_output, e));
+  else
+    RC_TRY(logits_width(st->eval_plan, sg, st->batch, &st->k, e));
+  if (!st->outs) RC_TRY(logits_width(st->teacher_plan, tg, st->batch, &kt, e));
   if (kt != st->k)
     return rc__fail(e, RC_ERR_SHAPE, "teacher %s gives %lld classes, student %s %lld", tg->path, (long long)kt,
                     sg->path, (long long)st->k);
@@ -392,6 +347,29 @@ static rc_status build_plans(run_state *st, const rc_tensor *data, rc_err *e) {
   return RC_OK;
 }
 
+/* This rank's share of an unshuffled view (its order is the identity, so
+ * the first part.n positions of order serve the slice), in whole batches
+ * so that every row is computed as one process computes it: the results,
+ * and checkpoints' fingerprints of them, do not depend on the ranks. */
+static rc_dataset rank_slice(const run_state *st, const rc_dataset *d, int64_t *lo) {
+  int64_t hi;
+  rc_dist_share_blocks(d->n, st->batch, rc_dist_rank(st->c->dist), rc_dist_size(st->c->dist), lo, &hi);
+  rc_dataset part = *d;
+  part.index = d->index + *lo;
+  part.n = hi - *lo;
+  return part;
+}
+
+/* Outputs of plan p over a view, in the view's order: each rank runs its
+ * share, then every rank receives all rows. */
+static rc_status run_shared(run_state *st, rc_plan *p, const rc_dataset *d, const int *outputs, float *out, rc_err *e) {
+  int64_t lo;
+  rc_dataset part = rank_slice(st, d, &lo);
+  void *outs[1] = {out + lo * st->k};
+  if (part.n > 0) RC_TRY(rc__run_dataset(p, &part, outputs, 1, outs, e));
+  return rc_dist_gather_rows(st->c->dist, out, d->n, st->batch, st->k, e);
+}
+
 /* Teacher logits for every sample of a dataset, in the dataset's own order. */
 static rc_status teacher_pass(run_state *st, const rc_dataset *d, float *out, rc_err *e) {
   const rc_graph *tg = &st->teacher->graph, *sg = st->sg;
@@ -399,139 +377,40 @@ static rc_status teacher_pass(run_state *st, const rc_dataset *d, float *out, rc
    * order them differently, so gather into the student's order first. */
   rc_dataset td = *d;
   for (int i = 0; i < tg->n_inputs; i++) {
-    int j = find_by_name(sg, sg->inputs, sg->n_inputs, tg->values[tg->inputs[i]].name);
-    td.inputs[i] = d->inputs[j];
-    td.sample_bytes[i] = d->sample_bytes[j];
+    int j = rc__graph_find_in(sg, sg->inputs, sg->n_inputs, tg->values[tg->inputs[i]].name);
+    rc_dataset_take_input(&td, i, d, j);
   }
-  void *outs[1] = {out};
-  return rc__run_dataset(st->teacher_plan, &td, tg->outputs, 1, outs, e);
-}
-
-/* ---- BatchNormalization statistics --------------------------------------- */
-
-/* Per-channel mean and biased variance of x (N, C, ...) accumulated in double. */
-static void channel_moments(double *sum, double *sq, const rc_tensor *x, int64_t rows) {
-  int64_t c = x->rank > 1 ? x->dims[1] : 1, inner = 1;
-  for (int d = 2; d < x->rank; d++) inner *= x->dims[d];
-  const float *p = x->data;
-  for (int64_t n = 0; n < rows; n++)
-    for (int64_t ch = 0; ch < c; ch++) {
-      const float *q = p + (n * c + ch) * inner;
-      double s = 0, s2 = 0;
-      for (int64_t i = 0; i < inner; i++) {
-        s += q[i];
-        s2 += (double)q[i] * q[i];
-      }
-      sum[ch] += s;
-      sq[ch] += s2;
-    }
-}
-
-static float *bn_stat(run_state *st, const rc_node *n, int k) {
-  return (float *)st->sg->values[n->in[k]].decl.data;
-}
-
-/* Re-estimate every BatchNormalization's running mean and variance over the
- * training samples, with each layer normalising by batch statistics as it
- * would in training mode (so later layers see what they will see). */
-static rc_status recalibrate_bn(run_state *st, rc_err *e) {
-  const rc_graph *g = st->sg;
-  unsigned char *keep = rc__calloc((size_t)g->n_values + 1, 1);
-  double *acc = NULL;
-  rc_plan *p = NULL;
-  rc_status s = RC_OK;
-  int64_t max_c = 1;
-  if (!keep) return rc__fail(e, RC_ERR_NOMEM, "out of memory");
-  for (int b = 0; b < st->n_bn; b++) keep[g->nodes[st->bn_nodes[b]].in[0]] = 1;
-  rc_tensor shapes[RC_DATASET_MAX_INPUTS];
-  input_shapes(g, st->train.inputs, st->batch, shapes);
-  rc_plan_opts o = {.training = 0, .trainable = NULL, .keep = keep, .bn_batch_stats = 1};
-  if ((s = rc_plan_create(&p, g, shapes, &o, e)) != RC_OK) goto out;
-  for (int b = 0; b < st->n_bn; b++) {
-    const rc_tensor *x = rc_plan_tensor(p, g->nodes[st->bn_nodes[b]].in[0]);
-    if (x->rank > 1 && x->dims[1] > max_c) max_c = x->dims[1];
-  }
-  acc = rc__calloc((size_t)(2 * max_c * st->n_bn), sizeof(double));
-  if (!acc) {
-    s = rc__fail(e, RC_ERR_NOMEM, "out of memory");
-    goto out;
-  }
-  void *in_bufs[RC_DATASET_MAX_INPUTS];
-  for (int i = 0; i < g->n_inputs; i++) in_bufs[i] = rc_plan_tensor(p, g->inputs[i])->data;
-  rc_dataset_unshuffle(&st->train);
-  int64_t nb = rc_dataset_n_batches(&st->train, st->batch, 1), rows = 0;
-  for (int64_t b = 0; b < nb; b++) {
-    int64_t count;
-    if ((s = rc_dataset_gather(in_bufs, NULL, &count, &st->train, b, st->batch, e)) != RC_OK) goto out;
-    if ((s = rc_plan_forward(p, e)) != RC_OK) goto out;
-    for (int j = 0; j < st->n_bn; j++)
-      channel_moments(acc + 2 * max_c * j, acc + 2 * max_c * j + max_c,
-                      rc_plan_tensor(p, g->nodes[st->bn_nodes[j]].in[0]), count);
-    rows += count;
-  }
-  for (int j = 0; j < st->n_bn; j++) {
-    const rc_node *n = &g->nodes[st->bn_nodes[j]];
-    const rc_tensor *x = rc_plan_tensor(p, n->in[0]);
-    int64_t c = x->rank > 1 ? x->dims[1] : 1, inner = 1;
-    for (int d = 2; d < x->rank; d++) inner *= x->dims[d];
-    double cnt = (double)rows * (double)inner;
-    float *mean = bn_stat(st, n, 3), *var = bn_stat(st, n, 4);
-    for (int64_t ch = 0; ch < c && cnt > 0; ch++) {
-      double m = acc[2 * max_c * j + ch] / cnt;
-      double v = acc[2 * max_c * j + max_c + ch] / cnt - m * m;
-      mean[ch] = (float)m;
-      var[ch] = (float)(v > 0 ? v : 0);
-    }
-  }
-out:
-  rc_plan_free(p);
-  rc__free(acc);
-  rc__free(keep);
-  return s;
-}
-
-/* After a training-mode forward: running = running * momentum + batch * (1 -
- * momentum), the update ONNX's training-mode BatchNormalization defines (with
- * the batch's biased variance, as its reference implementation computes). */
-static void update_running_stats(run_state *st, double *scratch, int64_t max_c) {
-  const rc_graph *g = st->sg;
-  for (int j = 0; j < st->n_bn; j++) {
-    const rc_node *n = &g->nodes[st->bn_nodes[j]];
-    const rc_tensor *x = rc_plan_tensor(st->train_plan, n->in[0]);
-    int64_t c = x->rank > 1 ? x->dims[1] : 1, inner = 1;
-    if (c > max_c) continue;
-    for (int d = 2; d < x->rank; d++) inner *= x->dims[d];
-    memset(scratch, 0, sizeof(double) * 2 * (size_t)max_c);
-    channel_moments(scratch, scratch + max_c, x, x->dims[0]);
-    double cnt = (double)x->dims[0] * (double)inner;
-    float mom = rc__attr_float(n, "momentum", 0.9f);
-    float *mean = bn_stat(st, n, 3), *var = bn_stat(st, n, 4);
-    for (int64_t ch = 0; ch < c; ch++) {
-      double m = scratch[ch] / cnt, v = scratch[max_c + ch] / cnt - m * m;
-      mean[ch] = (float)(mean[ch] * mom + m * (1 - mom));
-      var[ch] = (float)(var[ch] * mom + (v > 0 ? v : 0) * (1 - mom));
-    }
-  }
+  return run_shared(st, st->teacher_plan, &td, tg->outputs, out, e);
 }
 
 /* ---- Data ----------------------------------------------------------------- */
 
+/* A view over the training (or validation) arrays, converting per batch where asked. */
+static rc_status data_view(rc_dataset *ds, const rc_distill_data *d, int val, const int64_t *index, int64_t n,
+                           rc_err *e) {
+  RC_TRY(rc_dataset_init(ds, val ? d->val_inputs : d->inputs, d->n_inputs, NULL, index, n, e));
+  const rc_array *src = val ? d->val_sources : d->sources;
+  for (int i = 0; d->norms && i < d->n_inputs; i++)
+    if (d->norms[i].scale != 0) rc_dataset_convert(ds, i, &d->norms[i], src ? &src[i] : NULL);
+  return RC_OK;
+}
+
 static rc_status setup_data(run_state *st, const rc_distill_data *d, rc_err *e) {
   int64_t n = d->inputs[0].dims[0];
   if (d->val_inputs) {
-    RC_TRY(rc_dataset_init(&st->train, d->inputs, d->n_inputs, NULL, NULL, 0, e));
-    RC_TRY(rc_dataset_init(&st->val, d->val_inputs, d->n_inputs, NULL, NULL, 0, e));
+    RC_TRY(data_view(&st->train, d, 0, NULL, 0, e));
+    RC_TRY(data_view(&st->val, d, 1, NULL, 0, e));
     st->own_val = 1;
     st->val_labels = d->val_labels;
     return RC_OK;
   }
   if (d->val_split <= 0 || d->val_split >= 1)
     return rc__fail(e, RC_ERR_INVALID, "the validation split must lie strictly between 0 and 1");
-  RC_TRY(rc_data_split_make(&st->split, n, d->val_split, st->c->seed, e));
+  RC_TRY(rc_data_split_init(&st->split, n, d->val_split, st->c->seed, e));
   if (st->split.n_train < 1 || st->split.n_val < 1)
     return rc__fail(e, RC_ERR_INVALID, "%lld samples are too few to hold out a validation slice", (long long)n);
-  RC_TRY(rc_dataset_init(&st->train, d->inputs, d->n_inputs, NULL, st->split.train, st->split.n_train, e));
-  RC_TRY(rc_dataset_init(&st->val, d->inputs, d->n_inputs, NULL, st->split.val, st->split.n_val, e));
+  RC_TRY(data_view(&st->train, d, 0, st->split.train, st->split.n_train, e));
+  RC_TRY(data_view(&st->val, d, 0, st->split.val, st->split.n_val, e));
   return RC_OK;
 }
 
@@ -548,15 +427,17 @@ static rc_status val_labels_of(run_state *st, const rc_distill_data *d, int32_t 
 }
 
 static rc_status validate(run_state *st, rc_metrics *m, rc_err *e) {
-  void *outs[1] = {st->val_logits};
-  RC_TRY(rc__run_dataset(st->eval_plan, &st->val, st->sg->outputs, 1, outs, e));
+  if (st->outs)
+    return rc__outputs_validate(st->outs, st->teacher_step, st->eval_plan, &st->val, st->val_side, st->val.index, m, e);
+  RC_TRY(run_shared(st, st->eval_plan, &st->val, st->sg->outputs, st->val_logits, e));
   return rc__metrics_compute(m, st->val_logits, st->val_labels, st->teacher_val_logits, st->val.n, st->k, e);
 }
 
 /* The weight of the distillation term, as training uses it; the best state
  * is chosen by the same mix on validation (train/select.h). */
 static double select_alpha(const run_state *st) {
-  return st->c->alpha >= 0 ? st->c->alpha : st->val_labels ? 0.9 : 1.0;
+  int dense = st->outs && st->val_side && st->val_side->labels;
+  return st->c->alpha >= 0 ? st->c->alpha : st->val_labels || dense ? 0.9 : 1.0;
 }
 
 /* ---- One step --------------------------------------------------------------- */
@@ -565,6 +446,7 @@ typedef struct step_buffers {
   void *in[RC_DATASET_MAX_INPUTS];
   int32_t *labels;
   float *teacher;   /* (B, K) rows of the cached teacher logits */
+  int64_t *samples; /* the batch's sample numbers (per-output side data) */
   double *bn_scratch; /* per-channel sums for --bn train */
   int64_t max_c;
   float lr;           /* the last step's learning rate, for progress */
@@ -583,19 +465,31 @@ static rc_status loss_and_seed(run_state *st, const step_buffers *sb, const int3
   double dl = 0, ce = 0;
   float wkd = c->terms.weight[RC_TERM_KD], wmse = c->terms.weight[RC_TERM_LOGIT_MSE];
   if (wkd > 0)
-    RC_TRY(rc_loss_kd(&dl, NULL, grad, alpha * wkd, s, sb->teacher, st->batch, st->k, c->temperature, e));
+    RC_TRY(rc_loss_kd(&dl, NULL, grad, alpha * wkd, s, sb->teacher, st->local, st->k, c->temperature, e));
   else if (wmse > 0)
-    RC_TRY(rc_loss_logit_mse(&dl, NULL, grad, alpha * wmse, s, sb->teacher, st->batch, st->k, e));
+    RC_TRY(rc_loss_logit_mse(&dl, NULL, grad, alpha * wmse, s, sb->teacher, st->local, st->k, e));
   dl *= wkd > 0 ? wkd : wmse;
   if (labels && alpha < 1)
-    RC_TRY(rc_loss_cross_entropy(&ce, NULL, grad, 1 - alpha, s, labels, st->batch, st->k, e));
+    RC_TRY(rc_loss_cross_entropy(&ce, NULL, grad, 1 - alpha, s, labels, st->local, st->k, e));
   *loss = alpha * dl + (labels && alpha < 1 ? (1 - alpha) * ce : 0);
   return RC_OK;
 }
 
+/* Per-output terms: the teacher runs on the same batch, side data is taken
+ * by sample number. */
+static rc_status outputs_loss(run_state *st, const step_buffers *sb, int64_t b, double *loss, rc_err *e) {
+  for (int64_t j = 0; j < st->batch; j++) sb->samples[j] = st->train.index[st->train.order[b * st->batch + j]];
+  RC_TRY(rc__outputs_copy_inputs(st->teacher_step, st->train_plan, e));
+  RC_TRY(rc_plan_forward(st->teacher_step, e));
+  float alpha = st->c->alpha >= 0 ? st->c->alpha : 0.9f;
+  return rc__outputs_step(st->outs, st->teacher_step, st->train_plan, st->train_side, sb->samples, st->batch, alpha,
+                          loss, e);
+}
+
 static void gather_teacher_rows(run_state *st, const step_buffers *sb, int64_t b) {
-  for (int64_t j = 0; j < st->batch; j++) {
-    int64_t pos = st->train.order[b * st->batch + j];
+  if (!st->k) return;
+  for (int64_t j = 0; j < st->local; j++) {
+    int64_t pos = st->train.order[b * st->batch + st->offset + j];
     int64_t sample = st->train.index[pos];
     memcpy(sb->teacher + j * st->k, st->teacher_logits + sample * st->k, sizeof(float) * (size_t)st->k);
   }
@@ -614,7 +508,30 @@ typedef struct loop_ctx {
   int64_t spe, total, epochs;
   int best_slot, good_slot;
   uint64_t fingerprint;
+  int stop_all;              /* a rank was asked to stop (summed with the step) */
 } loop_ctx;
+
+/* Per-output runs cache no teacher outputs, so the teacher's initializers,
+ * the data and the terms stand for them in the fingerprint. */
+static uint64_t outputs_fingerprint(const run_state *st, uint64_t h) {
+  const rc_distill_config *c = st->c;
+  for (int i = 0; i < c->n_output_losses; i++) {
+    const rc_output_loss *o = &c->output_losses[i];
+    int64_t ints[] = {o->term, o->axis, o->bins, o->n_class_weights};
+    float reals[] = {o->weight, o->temperature, o->beta, o->margin};
+    h = rc__ckpt_fp_bytes(h, o->output, strlen(o->output));
+    h = rc__ckpt_fp_i64(h, ints, sizeof ints / sizeof ints[0]);
+    h = rc__ckpt_fp_f32(h, reals, sizeof reals / sizeof reals[0]);
+    h = rc__ckpt_fp_f32(h, o->class_weights, (size_t)o->n_class_weights);
+  }
+  const rc_graph *tg = &st->teacher->graph;
+  for (int v = 0; v < tg->n_values; v++)
+    if (tg->values[v].kind == RC_VALUE_INITIALIZER && tg->values[v].decl.data)
+      h = rc__ckpt_fp_bytes(h, tg->values[v].decl.data, rc_tensor_nbytes(&tg->values[v].decl));
+  for (int i = 0; i < st->train.n_inputs; i++)
+    h = rc__ckpt_fp_bytes(h, st->train.inputs[i].data, rc_tensor_nbytes(&st->train.inputs[i]));
+  return h;
+}
 
 /* Identifies a run: the student's starting values, the teacher's logits over
  * the data (which cover teacher, data and normalisation), and every setting
@@ -634,10 +551,12 @@ static uint64_t run_fingerprint(const loop_ctx *lc) {
                     c->optim.beta1, c->optim.beta2, c->optim.eps, lc->sched.lr_min, lc->sched.gamma, c->clip};
   h = rc__ckpt_fp_i64(h, ints, sizeof ints / sizeof ints[0]);
   h = rc__ckpt_fp_f32(h, c->terms.weight, sizeof c->terms.weight / sizeof c->terms.weight[0]);
+  if (st->outs) h = outputs_fingerprint(st, h);
   return rc__ckpt_fp_f64(h, reals, sizeof reals / sizeof reals[0]);
 }
 
 static rc_status checkpoint_write(const loop_ctx *lc, const loop_state *ls, rc_err *e) {
+  if (rc_dist_rank(lc->st->c->dist) != 0) return RC_OK; /* the ranks' states are equal: one writes */
   rc_ckpt_run run = {lc->fingerprint, lc->st->c->seed, lc->epochs};
   return rc__ckpt_write(lc->st->c->checkpoint_path, &run, ls, lc->r->epoch_loss, lc->r->epoch_val, lc->st->ps, e);
 }
@@ -662,23 +581,56 @@ static rc_status setup_schedule(loop_ctx *lc, rc_err *e) {
   return rc_sched_check(sched, e);
 }
 
+/* Under MPI: the global batch's mean gradient and loss from the ranks'
+ * parts, and whether any rank was asked to stop. */
+static rc_status sum_over_ranks(loop_ctx *lc, double *loss, rc_err *e) {
+  run_state *st = lc->st;
+  if (rc_dist_size(st->c->dist) < 2) return RC_OK;
+  double extra[2] = {*loss, st->c->stop && *st->c->stop ? 1.0 : 0.0};
+  RC_TRY(rc__grad_sync_run(&st->sync, st->c->dist, st->ps, (float)st->local / (float)st->batch, extra, e));
+  *loss = extra[0];
+  lc->stop_all = extra[1] > 0;
+  return RC_OK;
+}
+
+static int stop_asked(const loop_ctx *lc) {
+  const rc_distill_config *c = lc->st->c;
+  return rc_dist_size(c->dist) > 1 ? lc->stop_all : c->stop && *c->stop;
+}
+
+/* Every RC_DIST_CHECK_EVERY steps and at the end, the ranks' parameters
+ * must still be equal: a difference means a rank computed something else. */
+#define RC_DIST_CHECK_EVERY 50
+static rc_status check_ranks_agree(const run_state *st, int64_t step, rc_err *e) {
+  if (rc_dist_size(st->c->dist) < 2) return RC_OK;
+  char what[64];
+  snprintf(what, sizeof what, "parameters after step %lld", (long long)step);
+  return rc_dist_check_equal(st->c->dist, rc__params_checksum(st->ps), what, e);
+}
+
 /* One optimizer step on batch b of the current epoch's order. Returns the
  * loss through *loss; a non-finite loss or gradient is reported by *bad. */
 static rc_status train_step(loop_ctx *lc, const loop_state *ls, step_buffers *sb, double *loss, int *bad,
                             rc_err *e) {
   run_state *st = lc->st;
   int64_t count;
-  RC_TRY(rc_dataset_gather(sb->in, sb->labels, &count, &st->train, ls->batch, st->batch, e));
+  rc_dataset part = st->train; /* this rank's rows of global batch ls->batch */
+  part.order = st->train.order + ls->batch * st->batch + st->offset;
+  part.n = st->local;
+  RC_TRY(rc_dataset_gather(sb->in, sb->labels, &count, &part, 0, st->local, e));
   gather_teacher_rows(st, sb, ls->batch);
   rc_params_zero_grad(st->ps);
   rc_plan_zero_grad(st->train_plan);
   RC_TRY(rc_plan_forward(st->train_plan, e));
-  RC_TRY(loss_and_seed(st, sb, sb->labels, loss, e));
+  if (st->outs)
+    RC_TRY(outputs_loss(st, sb, ls->batch, loss, e));
+  else
+    RC_TRY(loss_and_seed(st, sb, sb->labels, loss, e));
   if (st->feat) {
     if (st->teacher_step) {
       const rc_graph *tg = &st->teacher->graph, *sg = st->sg;
       for (int i = 0; i < tg->n_inputs; i++) {
-        int j = find_by_name(sg, sg->inputs, sg->n_inputs, tg->values[tg->inputs[i]].name);
+        int j = rc__graph_find_in(sg, sg->inputs, sg->n_inputs, tg->values[tg->inputs[i]].name);
         memcpy(rc_plan_tensor(st->teacher_step, tg->inputs[i])->data, sb->in[j],
                rc_tensor_nbytes(rc_plan_tensor(st->teacher_step, tg->inputs[i])));
       }
@@ -686,12 +638,10 @@ static rc_status train_step(loop_ctx *lc, const loop_state *ls, step_buffers *sb
       if (!st->projectors_started && rc_params_steps(st->ps) == 0) {
         int fitted;
         RC_TRY(rc__features_fit_projectors(st->feat, st->teacher_step, st->train_plan, st->ps, &fitted, e));
-        if (fitted) {
-          rc_distill_progress note = {0};
-          note.event = RC_DISTILL_NOTE;
-          note.note = "projectors started from a least-squares fit on the first batch";
-          notify(st->c, &note);
-        }
+        if (fitted) rc__log(&st->c->log, RC_LOG_INFO, "projectors started from a least-squares fit on the first batch");
+        /* Each rank fitted on its own rows: all take rank 0's projectors. */
+        RC_TRY(rc_dist_bcast(st->c->dist, rc_params_block(st->ps, RC_BLOCK_VALUE, -1),
+                             sizeof(float) * rc_params_total(st->ps), e));
       }
       st->projectors_started = 1;
     }
@@ -700,10 +650,12 @@ static rc_status train_step(loop_ctx *lc, const loop_state *ls, step_buffers *sb
     *loss += fl;
   }
   RC_TRY(rc_plan_backward(st->train_plan, e));
+  RC_TRY(sum_over_ranks(lc, loss, e));
   double norm = rc_clip_grad_norm(st->ps, st->c->clip);
   *bad = !isfinite(*loss) || !isfinite(norm);
   if (*bad) return RC_OK;
-  if (st->c->bn == RC_BN_TRAIN) update_running_stats(st, sb->bn_scratch, sb->max_c);
+  if (st->c->bn == RC_BN_TRAIN)
+    rc__bn_update_running(st->sg, st->train_plan, st->bn_nodes, st->n_bn, sb->bn_scratch, sb->max_c);
   float lr = (float)(rc_sched_lr(&lc->sched, rc_params_steps(st->ps) + 1) * ls->lr_scale);
   sb->lr = lr;
   return rc_optim_step(st->ps, &st->c->optim, lr, e);
@@ -748,7 +700,7 @@ static void trace_loss(loop_state *ls, double loss, int64_t total) {
 static rc_status train_loop(run_state *st, rc_distill_result *r, const rc_distill_data *d, rc_err *e) {
   const rc_distill_config *c = st->c;
   const rc_graph *g = st->sg;
-  loop_ctx lc = {st, r, {0}, 0, 0, 0, 0, 0, 0};
+  loop_ctx lc = {st, r, {0}, 0, 0, 0, 0, 0, 0, 0};
   lc.spe = rc_dataset_n_batches(&st->train, st->batch, 1);
   lc.total = c->steps > 0 ? c->steps : c->epochs * lc.spe;
   lc.epochs = (lc.total + lc.spe - 1) / lc.spe;
@@ -760,7 +712,8 @@ static rc_status train_loop(run_state *st, rc_distill_result *r, const rc_distil
   RC_TRY(rc_params_save(st->ps, lc.good_slot, e));
   r->epoch_loss = rc__calloc((size_t)lc.epochs + 1, sizeof(double));
   r->epoch_val = rc__calloc((size_t)lc.epochs + 1, sizeof(rc_metrics));
-  sb.teacher = rc__malloc(sizeof(float) * (size_t)(st->batch * st->k));
+  sb.teacher = rc__malloc(sizeof(float) * (size_t)(st->batch * st->k + 1));
+  sb.samples = rc__malloc(sizeof(int64_t) * (size_t)st->batch);
   sb.labels = d->labels ? rc__malloc(sizeof(int32_t) * (size_t)st->batch) : NULL;
   sb.max_c = 1;
   for (int j = 0; j < st->n_bn; j++) {
@@ -769,7 +722,7 @@ static rc_status train_loop(run_state *st, rc_distill_result *r, const rc_distil
   }
   sb.bn_scratch = rc__malloc(sizeof(double) * 2 * (size_t)sb.max_c);
   rc_status s = RC_OK;
-  if (!r->epoch_loss || !r->epoch_val || !sb.teacher || (d->labels && !sb.labels) || !sb.bn_scratch) {
+  if (!r->epoch_loss || !r->epoch_val || !sb.teacher || !sb.samples || (d->labels && !sb.labels) || !sb.bn_scratch) {
     s = rc__fail(e, RC_ERR_NOMEM, "out of memory");
     goto out;
   }
@@ -781,20 +734,14 @@ static rc_status train_loop(run_state *st, rc_distill_result *r, const rc_distil
   lc.fingerprint = run_fingerprint(&lc);
   if (c->resume_path) {
     if ((s = checkpoint_read(&lc, &ls, e)) != RC_OK) goto out;
-    rc_distill_progress note = {0};
-    note.event = RC_DISTILL_NOTE;
-    note.note = "resumed from the checkpoint";
-    notify(c, &note);
+    rc__log(&c->log, RC_LOG_INFO, "resumed from the checkpoint");
   } else if (c->bn == RC_BN_RECALIBRATE) {
     /* Done here, not on resume: the re-estimated statistics are in the store. */
-    if ((s = recalibrate_bn(st, e)) != RC_OK) goto out;
+    if ((s = rc__bn_recalibrate(st->sg, st->bn_nodes, st->n_bn, &st->train, st->batch, st->c->dist, e)) != RC_OK) goto out;
     if ((s = rc_params_save(st->ps, lc.good_slot, e)) != RC_OK) goto out;
-    rc_distill_progress note = {0};
-    note.event = RC_DISTILL_NOTE;
-    note.note = "BatchNormalization running statistics re-estimated over the training samples";
-    notify(c, &note);
+    rc__log(&c->log, RC_LOG_INFO, "BatchNormalization running statistics re-estimated over the training samples");
   }
-  double t0 = now_s();
+  double t0 = now_s(), comm0 = rc_dist_comm_seconds(c->dist);
   int64_t start_step = ls.step, snap_every = lc.spe / 4 > 0 ? lc.spe / 4 : 1;
   rc_distill_progress pg = {0};
   pg.epochs = lc.epochs;
@@ -811,9 +758,8 @@ static rc_status train_loop(run_state *st, rc_distill_result *r, const rc_distil
       ls.rollbacks++;
       if ((s = rc_params_restore(st->ps, lc.good_slot, e)) != RC_OK) goto out;
       ls.lr_scale *= 0.5;
-      pg.event = RC_DISTILL_NOTE;
-      pg.note = "non-finite loss or gradient: rolled back to the last good state, learning rate halved";
-      notify(c, &pg);
+      rc__log(&c->log, RC_LOG_WARN,
+              "non-finite loss or gradient: rolled back to the last good state, learning rate halved");
       if (ls.rollbacks > c->max_rollbacks) ls.stopped = 1;
     } else {
       ls.ep_loss += loss;
@@ -833,7 +779,9 @@ static rc_status train_loop(run_state *st, rc_distill_result *r, const rc_distil
     notify(c, &pg);
     int epoch_done = ls.batch == lc.spe || ls.step == lc.total || ls.stopped;
     if (epoch_done && (s = end_epoch(&lc, &ls, &pg, e)) != RC_OK) goto out;
-    int interrupted = c->stop && *c->stop;
+    int interrupted = stop_asked(&lc);
+    if ((ls.step % RC_DIST_CHECK_EVERY == 0 || ls.step == lc.total) && (s = check_ranks_agree(st, ls.step, e)) != RC_OK)
+      goto out;
     if (c->checkpoint_path &&
         (epoch_done || interrupted || (c->checkpoint_every > 0 && ls.step % c->checkpoint_every == 0)) &&
         ls.step < lc.total && (s = checkpoint_write(&lc, &ls, e)) != RC_OK)
@@ -847,6 +795,8 @@ static rc_status train_loop(run_state *st, rc_distill_result *r, const rc_distil
   }
   r->steps_done = ls.step;
   r->seconds = now_s() - t0;
+  if (ls.step > start_step)
+    r->comm_seconds_per_step = (rc_dist_comm_seconds(c->dist) - comm0) / (double)(ls.step - start_step);
   r->samples_per_s = r->seconds > 0 ? (double)((ls.step - start_step) * st->batch) / r->seconds : 0;
   r->best_epoch = ls.best_epoch;
   r->improved = ls.best_epoch > 0;
@@ -859,9 +809,11 @@ static rc_status train_loop(run_state *st, rc_distill_result *r, const rc_distil
   memcpy(r->trace_step, ls.trace_step, sizeof r->trace_step);
   memcpy(r->trace_loss, ls.trace_loss, sizeof r->trace_loss);
   if ((s = rc_params_restore(st->ps, lc.best_slot, e)) != RC_OK) goto out;
+  if ((s = check_ranks_agree(st, ls.step, e)) != RC_OK) goto out;
   r->after = ls.best;
 out:
   rc__free(sb.teacher);
+  rc__free(sb.samples);
   rc__free(sb.labels);
   rc__free(sb.bn_scratch);
   return s;
@@ -876,7 +828,7 @@ static rc_status measure_setup(run_state *st, rc_measure_setup *m, rc_tensor *sh
   *live = rc__calloc((size_t)st->sg->n_values + 1, 1);
   if (!*live) return rc__fail(e, RC_ERR_NOMEM, "out of memory");
   for (int i = 0; i < st->n_tr; i++) (*live)[st->tr[i].value] = 1;
-  input_shapes(st->sg, st->val.inputs, st->batch, shapes);
+  rc__input_shapes(st->sg, st->val.inputs, st->batch, shapes);
   teacher_order(&st->teacher->graph, st->sg, shapes, tin);
   *m = (rc_measure_setup){&st->teacher->graph, st->sg, shapes, tin, &st->val, st->batch, *live, &st->qat};
   return RC_OK;
@@ -893,7 +845,35 @@ static rc_status measure_inside(run_state *st, rc_distill_result *r, rc_pairing 
   return s;
 }
 
+/* Under MPI: every rank starts from rank 0's values, and sends the
+ * gradients of entries that train (not frozen tensors, not running
+ * statistics, not a tensor that feeds no output). */
+static rc_status setup_ranks(run_state *st, rc_err *e) {
+  rc_dist *d = st->c->dist;
+  if (rc_dist_size(d) < 2) return RC_OK;
+  if (st->c->bn == RC_BN_TRAIN)
+    return rc__fail(e, RC_ERR_UNSUPPORTED, "BatchNormalization in training mode is not supported over %d ranks yet: "
+                    "each rank would normalise by its own part of the batch; keep the statistics frozen or "
+                    "recalibrated, or run one process", rc_dist_size(d));
+  if (st->c->n_output_losses)
+    return rc__fail(e, RC_ERR_UNSUPPORTED, "per-output losses are not supported over %d ranks yet (their validation "
+                    "is not shared between ranks); run one process", rc_dist_size(d));
+  RC_TRY(rc_dist_bcast(d, rc_params_block(st->ps, RC_BLOCK_VALUE, -1), sizeof(float) * rc_params_total(st->ps), e));
+  int n = rc_params_count(st->ps);
+  unsigned char *send = rc__malloc((size_t)n + 1);
+  if (!send) return rc__fail(e, RC_ERR_NOMEM, "out of memory");
+  memset(send, 1, (size_t)n);
+  for (int i = 0; i < st->n_tr; i++) {
+    int v = st->tr[i].value;
+    if (!st->trainable_mask[v] || !rc_plan_grad(st->train_plan, v)) send[st->tr[i].entry] = 0;
+  }
+  rc_status s = rc__grad_sync_init(&st->sync, st->ps, send, 2, e);
+  rc__free(send);
+  return s;
+}
+
 static void free_state(run_state *st) {
+  rc__grad_sync_free(&st->sync);
   restore_graph_buffers(st);
   rc__qat_restore(st->sg, &st->qat);
   rc__qat_free(&st->qat);
@@ -901,6 +881,7 @@ static void free_state(run_state *st) {
   rc_plan_free(st->eval_plan);
   rc_plan_free(st->teacher_plan);
   rc_plan_free(st->teacher_step);
+  rc__outputs_free(st->outs);
   rc__features_free(st->feat);
   rc__free(st->tkeep);
   rc__free(st->skeep);
@@ -913,7 +894,7 @@ static void free_state(run_state *st) {
   rc__free(st->trainable_mask);
   rc__free(st->rules);
   rc__free(st->rule_value);
-  rc__free(st->teacher_logits);
+  rc_spill_free(&st->teacher_cache);
   rc__free(st->teacher_val_logits);
   rc__free(st->val_logits);
 }
@@ -922,7 +903,7 @@ static void free_state(run_state *st) {
  * pruning its file records. */
 static rc_status prepare_grids(run_state *st, const rc_tensor *data, rc_err *e) {
   rc_tensor shapes[RC_DATASET_MAX_INPUTS];
-  input_shapes(st->sg, data, 1, shapes);
+  rc__input_shapes(st->sg, data, 1, shapes);
   rc_file_notes notes;
   RC_TRY(rc__file_notes_parse(&notes, rc_model_metadata(st->student, RC_RANGES_METADATA),
                               rc_model_metadata(st->student, RC_PRUNED_METADATA), st->sg->path, e));
@@ -966,6 +947,42 @@ static rc_status record_changes(run_state *st, rc_distill_result *r, rc_err *e) 
   return RC_OK;
 }
 
+/* What per-output runs do not combine with (yet): say so before training. */
+static rc_status check_outputs_mode(const rc_distill_config *c, const rc_distill_data *d, rc_err *e) {
+  if (d->labels)
+    return rc__fail(e, RC_ERR_INVALID, "--output-loss: labels must be per position of a kd output (dense labels), "
+                    "not one class per sample");
+  for (int t = RC_TERM_HINT; t < RC_TERM_COUNT; t++)
+    if (c->terms.weight[t] > 0)
+      return rc__fail(e, RC_ERR_UNSUPPORTED, "--output-loss replaces the logit terms and does not combine with the "
+                      "feature terms of --loss");
+  return RC_OK;
+}
+
+/* Teacher logits over the whole pool once, indexed by sample, and over the
+ * validation samples; the teacher's own figures. */
+static rc_status teacher_logits_all(run_state *st, const rc_distill_data *d, const rc_distill_config *c,
+                                    rc_distill_result *r, rc_err *e) {
+  int64_t pool = d->inputs[0].dims[0];
+  RC_TRY(rc_spill_alloc(&st->teacher_cache, sizeof(float) * (size_t)(pool * st->k), c->cache_bytes, c->cache_dir, e));
+  st->teacher_logits = st->teacher_cache.p;
+  r->teacher_cache_in_file = st->teacher_cache.in_file;
+  r->teacher_cache_bytes = (int64_t)st->teacher_cache.n;
+  st->teacher_val_logits = rc__malloc(sizeof(float) * (size_t)(st->val.n * st->k));
+  st->val_logits = rc__malloc(sizeof(float) * (size_t)(st->val.n * st->k));
+  if (!st->teacher_logits || !st->teacher_val_logits || !st->val_logits)
+    return rc__fail(e, RC_ERR_NOMEM, "out of memory for logits");
+  rc_dataset all;
+  RC_TRY(data_view(&all, d, 0, NULL, 0, e));
+  rc_status s = teacher_pass(st, &all, st->teacher_logits, e);
+  rc_dataset_free(&all);
+  RC_TRY(s);
+  RC_TRY(teacher_pass(st, &st->val, st->teacher_val_logits, e));
+  /* The teacher measured against itself gives its accuracy and the 100%/0 baseline. */
+  return rc__metrics_compute(&r->teacher, st->teacher_val_logits, st->val_labels, st->teacher_val_logits, st->val.n,
+                             st->k, e);
+}
+
 rc_status rc_distill_run(rc_distill_result *r, rc_model *teacher, rc_model *student, const rc_distill_data *d,
                          const rc_distill_config *c, rc_err *e) {
   memset(r, 0, sizeof *r);
@@ -989,84 +1006,49 @@ rc_status rc_distill_run(rc_distill_result *r, rc_model *teacher, rc_model *stud
     s = rc__fail(e, RC_ERR_INVALID, "the temperature must be positive");
     goto out;
   }
+  if (c->n_output_losses && (s = check_outputs_mode(c, d, e)) != RC_OK) goto out;
+  st.train_side = &d->side;
+  st.val_side = d->val_inputs ? &d->val_side : &d->side;
   if ((s = setup_data(&st, d, e)) != RC_OK) goto out;
   st.batch = c->batch < st.train.n ? c->batch : st.train.n;
+  {
+    int64_t hi;
+    rc_dist_share(st.batch, rc_dist_rank(c->dist), rc_dist_size(c->dist), &st.offset, &hi);
+    st.local = hi - st.offset;
+    if (st.local < 1) {
+      s = rc__fail(e, RC_ERR_INVALID, "the global batch of %lld samples is smaller than the %d ranks",
+                   (long long)st.batch, rc_dist_size(c->dist));
+      goto out;
+    }
+  }
   r->n_train = st.train.n;
   r->n_val = st.val.n;
   if ((s = select_trainables(&st, e)) != RC_OK || (s = collect_bn(&st, e)) != RC_OK ||
-      (s = build_store(&st, d->inputs, e)) != RC_OK || (s = build_plans(&st, d->inputs, e)) != RC_OK)
+      (s = build_store(&st, d->inputs, e)) != RC_OK || (s = build_plans(&st, d->inputs, e)) != RC_OK ||
+      (s = setup_ranks(&st, e)) != RC_OK)
     goto out;
   if ((s = val_labels_of(&st, d, &val_labels, e)) != RC_OK) goto out;
-  int64_t pool = d->inputs[0].dims[0];
-  st.teacher_logits = rc__malloc(sizeof(float) * (size_t)(pool * st.k));
-  st.teacher_val_logits = rc__malloc(sizeof(float) * (size_t)(st.val.n * st.k));
-  st.val_logits = rc__malloc(sizeof(float) * (size_t)(st.val.n * st.k));
-  if (!st.teacher_logits || !st.teacher_val_logits || !st.val_logits) {
-    s = rc__fail(e, RC_ERR_NOMEM, "out of memory for logits");
+  if (st.outs) {
+    /* The teacher measured against itself: the 100%/0 baseline, its label figures. */
+    if ((s = rc__outputs_validate(st.outs, st.teacher_step, st.teacher_step, &st.val, st.val_side, st.val.index,
+                                  &r->teacher, e)) != RC_OK)
+      goto out;
+  } else if ((s = teacher_logits_all(&st, d, c, r, e)) != RC_OK) {
     goto out;
   }
-  {
-    /* Teacher logits over the whole pool once, indexed by sample. */
-    rc_dataset all;
-    if ((s = rc_dataset_init(&all, d->inputs, d->n_inputs, NULL, NULL, 0, e)) != RC_OK) goto out;
-    s = teacher_pass(&st, &all, st.teacher_logits, e);
-    rc_dataset_free(&all);
-    if (s != RC_OK) goto out;
-    if ((s = teacher_pass(&st, &st.val, st.teacher_val_logits, e)) != RC_OK) goto out;
-  }
-  {
-    /* The teacher measured against itself gives its accuracy and the 100%/0 baseline. */
-    if ((s = rc__metrics_compute(&r->teacher, st.teacher_val_logits, st.val_labels, st.teacher_val_logits,
-                                 st.val.n, st.k, e)) != RC_OK)
-      goto out;
-  }
   if ((s = validate(&st, &r->before, e)) != RC_OK) goto out;
-  if ((s = measure_inside(&st, r, &layers, 0, e)) != RC_OK) goto out;
+  /* The layer table is rank 0's to report; the other ranks skip it. */
+  int reports = rc_dist_rank(c->dist) == 0;
+  if (reports && (s = measure_inside(&st, r, &layers, 0, e)) != RC_OK) goto out;
   if ((s = train_loop(&st, r, d, e)) != RC_OK) goto out;
-  if ((s = measure_inside(&st, r, &layers, 1, e)) != RC_OK) goto out;
+  if (reports && (s = measure_inside(&st, r, &layers, 1, e)) != RC_OK) goto out;
+  r->ranks = rc_dist_size(c->dist);
+  r->comm_values_per_step = (int64_t)st.sync.n;
   if ((s = rc__qat_write_back(st.sg, &st.qat, e)) != RC_OK) goto out;
   s = record_changes(&st, r, e);
 out:
   rc__free(val_labels);
   rc_pairing_free(&layers);
   free_state(&st);
-  return s;
-}
-
-rc_status rc_distill_verify_written(const char *path, rc_model *student, const rc_tensor *inputs, int n_inputs,
-                                    int64_t batch, double *max_diff, rc_err *e) {
-  rc_model *back = NULL;
-  rc_plan *pa = NULL, *pb = NULL;
-  rc_status s = rc_model_load(&back, path, NULL, e);
-  if (s != RC_OK) return rc__wrap(e, "reloading the written file");
-  const rc_graph *ga = &student->graph, *gb = &back->graph;
-  rc_tensor shapes[RC_DATASET_MAX_INPUTS];
-  int64_t b = inputs[0].dims[0] < batch ? inputs[0].dims[0] : batch;
-  input_shapes(ga, inputs, b, shapes);
-  *max_diff = 0;
-  if ((s = rc_plan_create(&pa, ga, shapes, NULL, e)) != RC_OK || (s = rc_plan_create(&pb, gb, shapes, NULL, e)) != RC_OK)
-    goto out;
-  for (int i = 0; i < n_inputs && i < ga->n_inputs; i++) {
-    size_t nb = rc_tensor_nbytes(rc_plan_tensor(pa, ga->inputs[i]));
-    memcpy(rc_plan_tensor(pa, ga->inputs[i])->data, inputs[i].data, nb);
-    memcpy(rc_plan_tensor(pb, gb->inputs[i])->data, inputs[i].data, nb);
-  }
-  if ((s = rc_plan_forward(pa, e)) != RC_OK || (s = rc_plan_forward(pb, e)) != RC_OK) goto out;
-  for (int j = 0; j < ga->n_outputs; j++) {
-    const rc_tensor *ta = rc_plan_tensor(pa, ga->outputs[j]), *tb = rc_plan_tensor(pb, gb->outputs[j]);
-    if (ta->dtype != RC_DTYPE_FLOAT) continue;
-    int64_t n = rc_tensor_numel(ta);
-    for (int64_t i = 0; i < n; i++) {
-      double dd = fabs((double)((float *)ta->data)[i] - ((float *)tb->data)[i]);
-      if (!(dd <= *max_diff)) *max_diff = isnan(dd) ? INFINITY : dd;
-    }
-  }
-  if (*max_diff > 0)
-    s = rc__fail(e, RC_ERR_IO, "%s: the written model's outputs differ from the trained model's by %g", path,
-                 *max_diff);
-out:
-  rc_plan_free(pa);
-  rc_plan_free(pb);
-  rc_model_free(back);
   return s;
 }

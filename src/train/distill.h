@@ -1,7 +1,9 @@
 /* Distillation of a compressed student from its dense teacher on CPU.
  *
  * The teacher runs forward only; its logits over every sample are computed
- * once (no augmentation, so they never change) and reused every epoch. The
+ * once (no augmentation, so they never change) and reused every epoch. Terms
+ * on inner tensors (hint, attention, ...) also run the teacher forward on
+ * each batch: its inner activations are not cached. The
  * student trains through its plan's reverse pass; its trainable initializers
  * live in one flat parameter store that the plan reads and writes in place.
  * Pruning masks hold exactly, the best state by validation is kept, and on
@@ -14,11 +16,15 @@
 
 #include "core/status.h"
 #include "plan/mask_rule.h"
+#include "recoup/log.h"
 #include "onnx/model.h"
 #include "recoup/distill.h"
 #include "train/evaluate.h"
 #include "train/features.h"
 #include "train/optim.h"
+#include "train/outputs.h"
+
+typedef struct rc_dist rc_dist;
 
 typedef enum rc_bn_mode {
   RC_BN_FROZEN = 0,      /* running statistics stay as deployed */
@@ -41,7 +47,7 @@ typedef struct rc_distill_config {
   double clip;               /* max gradient norm, <= 0 = off */
   uint64_t seed;
   rc_bn_mode bn;
-  rc_mask_mode mask;          /* what zeros in weights mean (graph/mask_rule.h) */
+  rc_mask_mode mask;          /* what zeros in weights mean (plan/mask_rule.h) */
   const char *const *train_globs;
   int n_train;
   const char *const *freeze_globs;
@@ -49,6 +55,9 @@ typedef struct rc_distill_config {
   int max_rollbacks;         /* non-finite steps rolled back before stopping */
   void (*progress)(void *user, const rc_distill_progress *p);
   void *user;
+  /* Notes along the run (resumed, statistics re-estimated, projectors fitted,
+   * steps rolled back); a zeroed logger discards them. */
+  rc_logger log;
   /* Checkpoints: written atomically every checkpoint_every steps (0: only at
    * epoch ends) and when *stop becomes non-zero (a signal handler sets it);
    * the previous one is kept as PATH.1. NULL: no checkpoints. */
@@ -58,6 +67,20 @@ typedef struct rc_distill_config {
    * uninterrupted run with the same inputs and settings. */
   const char *resume_path;
   const volatile sig_atomic_t *stop;
+  /* Losses per model output (train/output_loss.h). When given they replace
+   * the logit terms, and outputs not named take no loss; label_output names
+   * the output dense labels (rc_distill_data.side.labels) belong to. */
+  const rc_output_loss *output_losses;
+  int n_output_losses;
+  const char *label_output;
+  /* The teacher outputs cached per training sample live in memory up to
+   * cache_bytes (0: a quarter of physical memory), beyond it in a mapped
+   * temporary file in cache_dir (NULL: the current folder). */
+  size_t cache_bytes;
+  const char *cache_dir;
+  /* The ranks sharing this run (train/dist.h); NULL: this process alone.
+   * batch is the global batch, split over the ranks. */
+  rc_dist *dist;
 } rc_distill_config;
 
 void rc_distill_config_defaults(rc_distill_config *c);
@@ -111,6 +134,8 @@ typedef struct rc_distill_result {
   rc_distill_tensor_rule *rules;     /* per trained weight (not biases or normalisation) */
   int n_rules;
   int rollbacks, stopped_nonfinite;
+  int teacher_cache_in_file;         /* the teacher-output cache spilled to a mapped file */
+  int64_t teacher_cache_bytes;
   double *epoch_loss;                /* per epoch (n_epochs) */
   rc_metrics *epoch_val;
   int64_t n_epochs;
@@ -126,6 +151,10 @@ typedef struct rc_distill_result {
   int n_ranges;
   int *changed;                      /* student values whose data changed: save these */
   int n_changed;
+  int ranks;                         /* processes that shared the run */
+  double comm_seconds_per_step;      /* communicating (gradient sums, validation outputs, checks),
+                                      * over the steps this run took (after a resume: since it) */
+  int64_t comm_values_per_step;      /* gradient values each step sums (4 bytes each) */
 } rc_distill_result;
 
 void rc_distill_result_free(rc_distill_result *r);

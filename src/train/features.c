@@ -8,13 +8,22 @@
 #include "core/alloc.h"
 #include "train/feature_loss.h"
 
-static const char *const term_names[RC_TERM_COUNT] = {
-    "kd", "logit-mse", "hint", "attention", "boundary", "fsp", "rkd-distance", "rkd-angle", "attention-map",
-    "weight-anchor"};
-static const float term_defaults[RC_TERM_COUNT] = {1, 1, 1, RC_AT_DEFAULT_BETA, 1, 1, RC_RKD_DEFAULT_DISTANCE_WEIGHT,
-                                                   RC_RKD_DEFAULT_ANGLE_WEIGHT, 1, 1e-3f};
+static const rc_term_info terms[RC_TERM_COUNT] = {
+#define TERM_ROW(id, name, weight, kind, help) {name, weight, kind, help},
+    RC_LOSS_TERMS(TERM_ROW)
+#undef TERM_ROW
+};
 
-const char *rc_term_name(rc_term t) { return t >= 0 && t < RC_TERM_COUNT ? term_names[t] : "?"; }
+const rc_term_info *rc_term_info_of(rc_term t) { return t >= 0 && t < RC_TERM_COUNT ? &terms[t] : NULL; }
+
+/* "kd, logit-mse, ..." for error messages. */
+static const char *known_terms(char *buf, size_t n) {
+  size_t o = 0;
+  buf[0] = '\0';
+  for (int i = 0; i < RC_TERM_COUNT && o < n; i++)
+    o += (size_t)snprintf(buf + o, n - o, "%s%s", i ? ", " : "", terms[i].name);
+  return buf;
+}
 
 rc_status rc_loss_spec_parse(rc_loss_spec *spec, const char *text, rc_err *e) {
   memset(spec, 0, sizeof *spec);
@@ -23,37 +32,37 @@ rc_status rc_loss_spec_parse(rc_loss_spec *spec, const char *text, rc_err *e) {
     const char *end = strchr(p, ',');
     size_t len = end ? (size_t)(end - p) : strlen(p);
     char item[128];
-    if (len == 0 || len >= sizeof item) return rc__fail(e, RC_ERR_INVALID, "--loss '%s': empty or overlong term", text);
+    if (len == 0 || len >= sizeof item) return rc__fail(e, RC_ERR_INVALID, "'%s': empty or overlong loss term", text);
     memcpy(item, p, len);
     item[len] = 0;
     char *eq = strchr(item, '=');
     if (eq) *eq = 0;
     int t = -1;
     for (int i = 0; i < RC_TERM_COUNT; i++)
-      if (!strcmp(item, term_names[i])) t = i;
+      if (!strcmp(item, terms[i].name)) t = i;
+    char known[256];
     if (t < 0)
-      return rc__fail(e, RC_ERR_INVALID, "--loss: unknown term '%s' (known: kd, logit-mse, hint, attention, boundary, "
-                      "fsp, rkd-distance, rkd-angle, attention-map, weight-anchor)", item);
-    float w = term_defaults[t];
+      return rc__fail(e, RC_ERR_INVALID, "unknown loss term '%s' (known: %s)", item, known_terms(known, sizeof known));
+    float w = terms[t].default_weight;
     if (eq) {
       char *stop;
       double v = strtod(eq + 1, &stop);
       if (stop == eq + 1 || *stop || !isfinite(v) || v < 0)
-        return rc__fail(e, RC_ERR_INVALID, "--loss: weight of '%s' must be a non-negative number, got '%s'", item, eq + 1);
+        return rc__fail(e, RC_ERR_INVALID, "the weight of loss term '%s' must be a non-negative number, got '%s'",
+                        item, eq + 1);
       w = (float)v;
     }
     spec->weight[t] = w;
     p = end ? end + 1 : p + len;
   }
   if (spec->weight[RC_TERM_KD] > 0 && spec->weight[RC_TERM_LOGIT_MSE] > 0)
-    return rc__fail(e, RC_ERR_INVALID, "--loss: choose one of kd and logit-mse");
+    return rc__fail(e, RC_ERR_INVALID, "choose one of the loss terms kd and logit-mse");
   return RC_OK;
 }
 
 int rc_loss_spec_needs_features(const rc_loss_spec *spec) {
-  for (int t = RC_TERM_HINT; t < RC_TERM_COUNT; t++)
-    if (spec->weight[t] > 0 && t != RC_TERM_RKD_DISTANCE && t != RC_TERM_RKD_ANGLE && t != RC_TERM_WEIGHT_ANCHOR)
-      return 1;
+  for (int t = 0; t < RC_TERM_COUNT; t++)
+    if (spec->weight[t] > 0 && terms[t].kind == RC_TERM_ON_FEATURES) return 1;
   return 0;
 }
 
@@ -81,8 +90,6 @@ struct rc_features {
   size_t work_floats;
 };
 
-int rc__features_pairs(const rc_features *f) { return f->pairing.n; }
-
 static int uses_pairs(const rc_loss_spec *s) {
   return s->weight[RC_TERM_HINT] > 0 || s->weight[RC_TERM_ATTENTION] > 0 || s->weight[RC_TERM_BOUNDARY] > 0 ||
          s->weight[RC_TERM_FSP] > 0;
@@ -106,16 +113,16 @@ static int attention_softmaxes(const rc_graph *g, rc_plan *p, int *out) {
 static rc_status match_attention_maps(rc_features *f, rc_plan *tp, rc_plan *sp, rc_err *e) {
   int nt = attention_softmaxes(f->tg, tp, f->amap_t), ns = attention_softmaxes(f->sg, sp, f->amap_s);
   if (!nt || !ns)
-    return rc__fail(e, RC_ERR_INVALID, "--loss attention-map: %s has %d and %s has %d attention maps (Softmax "
+    return rc__fail(e, RC_ERR_INVALID, "loss term attention-map: %s has %d and %s has %d attention maps (Softmax "
                     "outputs of rank 4, (N, heads, L, L)); both need some", f->tg->path, nt, f->sg->path, ns);
   if (nt != ns)
-    return rc__fail(e, RC_ERR_SHAPE, "--loss attention-map: %s has %d attention maps and %s has %d; they pair in "
+    return rc__fail(e, RC_ERR_SHAPE, "loss term attention-map: %s has %d attention maps and %s has %d; they pair in "
                     "order, so the counts must agree", f->tg->path, nt, f->sg->path, ns);
   for (int i = 0; i < nt; i++) {
     const rc_tensor *t = rc_plan_tensor(tp, f->amap_t[i]), *s = rc_plan_tensor(sp, f->amap_s[i]);
     if (!rc_shape_equal(t, s)) {
       char a[96], b[96];
-      return rc__fail(e, RC_ERR_SHAPE, "--loss attention-map: teacher '%s' %s and student '%s' %s must have the "
+      return rc__fail(e, RC_ERR_SHAPE, "loss term attention-map: teacher '%s' %s and student '%s' %s must have the "
                       "same (heads, L, L)", f->tg->values[f->amap_t[i]].name, rc_shape_str(t, a, sizeof a),
                       f->sg->values[f->amap_s[i]].name, rc_shape_str(s, b, sizeof b));
     }
@@ -159,9 +166,9 @@ static rc_status setup_projectors(rc_features *f, rc_params *ps, rc_err *e) {
   return RC_OK;
 }
 
-rc_status rc__features_setup(rc_features **out, const rc_loss_spec *spec, const rc_graph *tg, const rc_graph *sg,
-                             const rc_tensor *shapes, const char *const *pairs, const float *pair_weights,
-                             int n_pairs, rc_params *ps, unsigned char *tk, unsigned char *sk, rc_err *e) {
+rc_status rc__features_init(rc_features **out, const rc_loss_spec *spec, const rc_graph *tg, const rc_graph *sg,
+                            const rc_tensor *shapes, const char *const *pairs, const float *pair_weights,
+                            int n_pairs, rc_params *ps, unsigned char *tk, unsigned char *sk, rc_err *e) {
   *out = NULL;
   rc_features *f = rc__calloc(1, sizeof *f);
   if (!f) return rc__fail(e, RC_ERR_NOMEM, "out of memory");
@@ -170,10 +177,10 @@ rc_status rc__features_setup(rc_features **out, const rc_loss_spec *spec, const 
   f->sg = sg;
   rc_status s = RC_OK;
   if (uses_pairs(spec)) {
-    if ((s = rc_pairing_make(&f->pairing, tg, sg, shapes, pairs, n_pairs, 1, e)) != RC_OK) goto fail;
+    if ((s = rc_pairing_init(&f->pairing, tg, sg, shapes, pairs, n_pairs, 1, e)) != RC_OK) goto fail;
     if (!f->pairing.n) {
-      s = rc__fail(e, RC_ERR_INVALID, "feature losses need pairs: none were found between %s and %s; give them "
-                   "with --pair TEACHER_TENSOR=STUDENT_TENSOR (see recoup inspect --pairs)", tg->path, sg->path);
+      s = rc__fail(e, RC_ERR_INVALID, "feature losses need pairs: none were found between %s and %s; name them "
+                   "as TEACHER_TENSOR=STUDENT_TENSOR pairs (inspect's pairing lists candidates)", tg->path, sg->path);
       goto fail;
     }
     if (!n_pairs) {
@@ -190,8 +197,8 @@ rc_status rc__features_setup(rc_features **out, const rc_loss_spec *spec, const 
     }
     if (!f->pairing.n) {
       s = rc__fail(e, RC_ERR_INVALID, "feature losses need pairs of inner tensors: none were found between %s and "
-                   "%s; give them with --pair TEACHER_TENSOR=STUDENT_TENSOR (see recoup inspect --pairs)", tg->path,
-                   sg->path);
+                   "%s; name them as TEACHER_TENSOR=STUDENT_TENSOR pairs (inspect's pairing lists candidates)",
+                   tg->path, sg->path);
       goto fail;
     }
     for (int i = 0; i < f->pairing.n; i++) {
@@ -209,7 +216,7 @@ fail:
   return s;
 }
 
-rc_status rc__features_init(rc_features *f, rc_params *ps, uint64_t seed, rc_err *e) {
+rc_status rc__features_bind(rc_features *f, rc_params *ps, uint64_t seed, rc_err *e) {
   for (int i = 0; i < f->pairing.n; i++)
     if (f->proj && f->proj[i].w_entry >= 0)
       RC_TRY(rc_feat_projector_init(rc_params_value(ps, f->proj[i].w_entry), rc_params_value(ps, f->proj[i].b_entry),

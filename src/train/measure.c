@@ -58,7 +58,7 @@ rc_status rc__measure_prepare(const rc_measure_setup *m, rc_pairing *pg, rc_dist
     shapes[i] = m->student_shapes[i];
     shapes[i].dims[0] = 1;
   }
-  RC_TRY(rc_pairing_make(pg, m->teacher, m->student, shapes, NULL, 0, 1, e));
+  RC_TRY(rc_pairing_init(pg, m->teacher, m->student, shapes, NULL, 0, 1, e));
   int k = 0;
   for (int i = 0; i < pg->n; i++)
     if (rc_shape_equal(&pg->pairs[i].t_shape, &pg->pairs[i].s_shape)) {
@@ -183,7 +183,7 @@ static rc_status make_plans(const rc_measure_setup *m, const rc_pairing *pg, rc_
     if (is_activation_grid(&m->qat->sites[i])) skeep[sg->nodes[m->qat->sites[i].q].in[0]] = 1;
   rc_plan_opts to = {.training = 0, .trainable = NULL, .keep = tkeep, .bn_batch_stats = 0};
   rc_plan_opts so = {.training = 0, .trainable = m->live, .keep = skeep, .bn_batch_stats = 0};
-  if ((s = rc_plan_create(tp, tg, m->teacher_shapes, &to, e)) == RC_OK) s = rc_plan_create(sp, sg, m->student_shapes, &so, e);
+  if ((s = rc_plan_init(tp, tg, m->teacher_shapes, &to, e)) == RC_OK) s = rc_plan_init(sp, sg, m->student_shapes, &so, e);
 out:
   rc__free(tkeep);
   rc__free(skeep);

@@ -72,16 +72,16 @@ static rc_status add_explicit(rc_pairing *out, rc_plan *tp, rc_plan *sp, const r
                               const char *spec, rc_err *e) {
   const char *eq = strchr(spec, '=');
   if (!eq || eq == spec || !eq[1])
-    return rc__fail(e, RC_ERR_INVALID, "--pair '%s': expected TEACHER_TENSOR=STUDENT_TENSOR", spec);
+    return rc__fail(e, RC_ERR_INVALID, "pair '%s': expected TEACHER_TENSOR=STUDENT_TENSOR", spec);
   char tname[1024];
   snprintf(tname, sizeof tname, "%.*s", (int)(eq - spec), spec);
   int t = rc__graph_find_value(tg, tname), s = rc__graph_find_value(sg, eq + 1);
-  if (t < 0) return rc__fail(e, RC_ERR_INVALID, "--pair: teacher %s has no tensor '%s'", tg->path, tname);
-  if (s < 0) return rc__fail(e, RC_ERR_INVALID, "--pair: student %s has no tensor '%s'", sg->path, eq + 1);
+  if (t < 0) return rc__fail(e, RC_ERR_INVALID, "pair: teacher %s has no tensor '%s'", tg->path, tname);
+  if (s < 0) return rc__fail(e, RC_ERR_INVALID, "pair: student %s has no tensor '%s'", sg->path, eq + 1);
   const rc_tensor *a = rc_plan_tensor(tp, t), *b = rc_plan_tensor(sp, s);
   if (a->dtype != RC_DTYPE_FLOAT || b->dtype != RC_DTYPE_FLOAT || !spatial_match(a, b)) {
     char sa[128], sb[128];
-    return rc__fail(e, RC_ERR_SHAPE, "--pair %s: teacher shape %s and student shape %s are not compatible "
+    return rc__fail(e, RC_ERR_SHAPE, "pair %s: teacher shape %s and student shape %s are not compatible "
                     "(same rank and spatial size needed)", spec, rc_shape_str(a, sa, sizeof sa),
                     rc_shape_str(b, sb, sizeof sb));
   }
@@ -132,8 +132,8 @@ rc_status rc__pairing_plans(rc_plan **tp, rc_plan **sp, const rc_graph *tg, cons
     for (int j = 0; j < sg->n_inputs; j++)
       if (!strcmp(sg->values[sg->inputs[j]].name, tg->values[tg->inputs[i]].name)) tin[i] = input_shapes[j];
   }
-  rc_status st = rc_plan_create(tp, tg, tin, NULL, e);
-  if (st == RC_OK) st = rc_plan_create(sp, sg, input_shapes, NULL, e);
+  rc_status st = rc_plan_init(tp, tg, tin, NULL, e);
+  if (st == RC_OK) st = rc_plan_init(sp, sg, input_shapes, NULL, e);
   if (st != RC_OK) {
     rc_plan_free(*tp);
     *tp = NULL;
@@ -141,7 +141,7 @@ rc_status rc__pairing_plans(rc_plan **tp, rc_plan **sp, const rc_graph *tg, cons
   return st;
 }
 
-rc_status rc_pairing_make(rc_pairing *out, const rc_graph *tg, const rc_graph *sg, const rc_tensor *input_shapes,
+rc_status rc_pairing_init(rc_pairing *out, const rc_graph *tg, const rc_graph *sg, const rc_tensor *input_shapes,
                           const char *const *explicit_pairs, int n_explicit, int automatic_pairs, rc_err *e) {
   memset(out, 0, sizeof *out);
   rc_plan *tp, *sp;

@@ -32,7 +32,7 @@ typedef struct rc_pairing {
  * input_shapes: one tensor per student input at batch 1 (the teacher's
  * inputs have the same names). Unknown names and incompatible shapes (rank
  * or spatial size differ) are refused, naming the tensor. */
-rc_status rc_pairing_make(rc_pairing *out, const rc_graph *teacher, const rc_graph *student,
+rc_status rc_pairing_init(rc_pairing *out, const rc_graph *teacher, const rc_graph *student,
                           const rc_tensor *input_shapes, const char *const *explicit_pairs, int n_explicit,
                           int automatic, rc_err *e);
 void rc_pairing_free(rc_pairing *p);

@@ -34,7 +34,7 @@ struct rc_params {
   snapshot *snaps;
 };
 
-rc_status rc_params_create(rc_params **out, rc_err *e) {
+rc_status rc_params_init(rc_params **out, rc_err *e) {
   rc_params *ps = rc__calloc(1, sizeof *ps);
   if (!ps) return rc__fail(e, RC_ERR_NOMEM, "parameter store: out of memory");
   *out = ps;

@@ -3,7 +3,7 @@
  * layout (entry i lives at offset(i) in each of them).
  *
  * Life cycle (all allocation happens here, none per step):
- *   rc_params_create
+ *   rc_params_init
  *   rc_params_add            once per trainable tensor (name, size, flags)
  *   rc_params_finalize       allocates the blocks, copies initial values in;
  *                            from now on rc_params_value(i) is stable, so the
@@ -54,7 +54,7 @@ typedef struct rc_param_entry {
 
 typedef struct rc_params rc_params;
 
-rc_status rc_params_create(rc_params **out, rc_err *e);
+rc_status rc_params_init(rc_params **out, rc_err *e);
 void rc_params_free(rc_params *ps);
 
 /* Register a tensor of numel floats; init (numel floats, may be NULL for

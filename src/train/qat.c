@@ -228,7 +228,7 @@ static rc_status fold_grid_inputs(rc_graph *g, const rc_tensor *shapes, rc_qat *
       want += g->nodes[i].in[k] >= 0 && constant_in(g, &g->nodes[i], k) < 0;
   if (!want) return RC_OK;
   rc_plan *p = NULL;
-  if (rc_plan_create(&p, g, shapes, NULL, e) != RC_OK) return rc__wrap(e, "planning the student to read its grids");
+  if (rc_plan_init(&p, g, shapes, NULL, e) != RC_OK) return rc__wrap(e, "planning the student to read its grids");
   rc_status s = grow_values(g, want, e);
   for (int i = 0; s == RC_OK && i < g->n_nodes; i++) {
     rc_node *n = &g->nodes[i];

@@ -33,7 +33,7 @@ typedef struct rc_qat_site {
   void *dq_params, *q_params;
   int dq_in0, dq_n_in;
   uint64_t grid_hash;  /* scale, zero point, their dtypes and the axis, at load */
-  rc_int_range range;  /* the integers the grid allows (see graph/grid_range.h) */
+  rc_int_range range;  /* the integers the grid allows (see plan/grid_range.h) */
   rc_mask_choice mask; /* whether the weight's zeros are pruned (not for biases or activations) */
 } rc_qat_site;
 

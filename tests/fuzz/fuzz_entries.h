@@ -17,6 +17,7 @@
 #include "plan/load.h"
 #include "plan/plan.h"
 #include "recoup/data.h"
+#include "recoup/image.h"
 
 /* Inputs larger than this are not planned: a fuzz run should spend its time
  * on the parsers and shape checks, not on big forward passes. */
@@ -44,7 +45,7 @@ static inline rc_status rc_fuzz_plan_model(const rc_graph *g, rc_err *e) {
   rc_plan *p = NULL;
   rc_plan_opts o = {0};
   o.max_bytes = RC_FUZZ_MAX_PLAN_BYTES;
-  if (st == RC_OK) st = rc_plan_create(&p, g, ins, &o, e);
+  if (st == RC_OK) st = rc_plan_init(&p, g, ins, &o, e);
   if (st == RC_OK) {
     for (int i = 0; i < g->n_inputs; i++) {
       rc_tensor *t = rc_plan_tensor(p, g->inputs[i]);
@@ -128,6 +129,22 @@ static inline int rc_fuzz_tensorproto(const uint8_t *data, size_t size) {
     (void)sum;
   }
   rc__free(owned);
+  return st;
+}
+
+/* Decode, then prepare as `recoup eval` does for a 3-channel 16x16 input
+ * after --resize 20 (conversion, both resampling directions, crop). Pictures
+ * over 2^22 pixels are refused early so runs stay fast. */
+#define RC_FUZZ_MAX_IMAGE_PIXELS ((int64_t)1 << 22)
+static inline int rc_fuzz_image(const uint8_t *data, size_t size) {
+  rc_err e;
+  rc_image im;
+  rc_status st = rc_image_decode(&im, data, size, "fuzz.img", RC_FUZZ_MAX_IMAGE_PIXELS, &e);
+  if (st != RC_OK) return st;
+  uint8_t out[3 * 16 * 16];
+  rc_image_prep p = {3, 16, 16, 20};
+  st = rc_image_prepare(out, &im, &p, &e);
+  rc_image_free(&im);
   return st;
 }
 
