@@ -221,7 +221,7 @@ static void minmax_setup(net *n, unsigned net_seed, const char *file, float *x, 
   net_init(n, net_seed);
   write_net(n, 1, 8, 13, tpath(file));
   make_inputs(x, x_seed);
-  rc_quant_config_defaults(cfg);
+  rc_quant_config_init(cfg);
   cfg->calib = RC_CALIB_MINMAX;
 }
 
@@ -332,7 +332,7 @@ static void test_int4_weights(void) {
   static float x[N_SAMPLES * C_IN * HW * HW];
   make_inputs(x, 9);
   rc_quant_config cfg;
-  rc_quant_config_defaults(&cfg);
+  rc_quant_config_init(&cfg);
   cfg.weight_bits = 4;
   rc_err e = {0};
   /* Opset 13: no int4 type for DequantizeLinear, so int8 tensors hold [-7, 7]. */
@@ -401,7 +401,7 @@ static void test_weight_only_and_percentile(void) {
   make_inputs(x, 21);
   x[5] = 40.0f; /* one outlier: min/max follows it, a 99% percentile does not */
   rc_quant_config cfg;
-  rc_quant_config_defaults(&cfg);
+  rc_quant_config_init(&cfg);
   cfg.activation_bits = 0;
   rc_err e = {0};
   quantized q;
@@ -507,7 +507,7 @@ static void test_refusals(void) {
   static float x[N_SAMPLES * C_IN * HW * HW];
   make_inputs(x, 1);
   rc_quant_config cfg;
-  rc_quant_config_defaults(&cfg);
+  rc_quant_config_init(&cfg);
   rc_err e = {0};
   quantized q;
   write_net(&n, 1, 7, 12, tpath("net12.onnx"));

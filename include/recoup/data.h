@@ -11,6 +11,8 @@
 #ifndef RECOUP_DATA_H
 #define RECOUP_DATA_H
 
+#include "recoup/export.h"
+
 #include <stddef.h>
 #include <stdint.h>
 
@@ -27,18 +29,18 @@ typedef struct rc_array {
 } rc_array;
 
 /* Frees (or unmaps) the data and leaves an empty array; safe on a zeroed array. */
-void rc_array_free(rc_array *a);
+RC_API void rc_array_free(rc_array *a);
 
 /* Map a little-endian, C-order NumPy .npy file read-only: t.data points into
  * the mapping, nothing is copied, and pages are read as samples are used.
  * Formats that cannot be mapped (.npz, gzip, IDX, TensorProto, big-endian or
  * Fortran-order .npy) give RC_ERR_UNSUPPORTED with how to convert them. */
-rc_status rc_array_map(rc_array *out, const char *path, size_t max_bytes, rc_err *e);
+RC_API rc_status rc_array_map(rc_array *out, const char *path, size_t max_bytes, rc_err *e);
 
 /* Drop the resident pages of a mapped array (no-op otherwise): they are
  * read again from the file when next touched, so resident memory stays
  * bounded by what is in use rather than by the file. */
-void rc_array_release_pages(const rc_array *a);
+RC_API void rc_array_release_pages(const rc_array *a);
 
 typedef enum rc_data_format {
   RC_DATA_AUTO = 0,        /* by magic bytes first, file extension second */
@@ -52,30 +54,36 @@ typedef enum rc_data_format {
 /* Default limit on one decoded array or one decompressed member: 8 GiB. */
 #define RC_DATA_DEFAULT_MAX_BYTES ((size_t)8 << 30)
 
-const char *rc_data_format_name(rc_data_format f);
+RC_API const char *rc_data_format_name(rc_data_format f);
 
 /* Read an array from path. `member` selects an .npz member by name ("x" or
  * "x.npy"); NULL takes the first member. Other formats refuse a member name.
  * max_bytes 0 means RC_DATA_DEFAULT_MAX_BYTES. On error *out is empty. */
-rc_status rc_array_read(rc_array *out, const char *path, const char *member, size_t max_bytes,
+RC_API rc_status rc_array_read(rc_array *out, const char *path, const char *member, size_t max_bytes,
                         rc_err *e);
 
 /* The same readers on a memory buffer (the fuzzing entry point). `name` is
  * used in error messages. fmt RC_DATA_AUTO detects by magic bytes only.
  * TensorProto data is read from files only (RC_ERR_UNSUPPORTED here). */
-rc_status rc_array_read_mem(rc_array *out, const void *buf, size_t n, rc_data_format fmt,
+RC_API rc_status rc_array_read_mem(rc_array *out, const void *buf, size_t n, rc_data_format fmt,
                             const char *name, const char *member, size_t max_bytes, rc_err *e);
 
 /* The format of a buffer by its magic bytes, or RC_DATA_AUTO if unknown. */
-rc_data_format rc_data_detect(const void *buf, size_t n);
+RC_API rc_data_format rc_data_detect(const void *buf, size_t n);
 
 /* Member names of an .npz (zip) file in archive order. *names is one
  * allocation holding the pointer array and the strings: free it with
  * rc_data_names_free. */
-rc_status rc_npz_list(char ***names, int *count, const char *path, rc_err *e);
-rc_status rc_npz_list_mem(char ***names, int *count, const void *buf, size_t n,
+RC_API rc_status rc_npz_list(char ***names, int *count, const char *path, rc_err *e);
+RC_API rc_status rc_npz_list_mem(char ***names, int *count, const void *buf, size_t n,
                           const char *name, rc_err *e);
-void rc_data_names_free(char **names);
+RC_API void rc_data_names_free(char **names);
+
+/* Write t to path as NumPy .npy (format 1.0), atomically. */
+RC_API rc_status rc_npy_write(const char *path, const rc_tensor *t, rc_err *e);
+/* Write n tensors as members "<name>.npy" of a stored zip (.npz), atomically. */
+RC_API rc_status rc_npz_write(const char *path, const char *const *names, const rc_tensor *tensors, int n,
+                              rc_err *e);
 
 /* ---- Conversion into model input ------------------------------------- */
 
@@ -91,39 +99,39 @@ typedef struct rc_data_norm {
 } rc_data_norm;
 
 /* scale 1, no mean, no std. */
-void rc_data_norm_identity(rc_data_norm *n);
+RC_API void rc_data_norm_identity(rc_data_norm *n);
 
 /* Parse "0.5,0.5, 0.5" into out (at most max values); *n receives the count.
  * Refuses empty items, trailing text, non-finite values, too many values.
  * Decimal point per the C locale in force (recoup's CLI keeps "C"). */
-rc_status rc_data_parse_floats(const char *s, float *out, int max, int *n, rc_err *e);
+RC_API rc_status rc_data_parse_floats(const char *s, float *out, int max, int *n, rc_err *e);
 
 /* Convert samples [first, first + count) of `in` (any numeric dtype) to
  * float32 into out (count * per-sample elements) with the normalisation
  * `norm` (NULL = identity). Refuses a non-finite result naming the sample
  * index and element position ("sample 12, element 40: NaN"). */
-rc_status rc_data_to_float(float *out, const rc_array *in, int64_t first, int64_t count,
+RC_API rc_status rc_data_to_float(float *out, const rc_array *in, int64_t first, int64_t count,
                            const rc_data_norm *norm, rc_err *e);
 
 /* Whole-array form: *out becomes a new float32 array of in's shape. */
-rc_status rc_data_to_float_array(rc_array *out, const rc_array *in, const rc_data_norm *norm,
+RC_API rc_status rc_data_to_float_array(rc_array *out, const rc_array *in, const rc_data_norm *norm,
                                  rc_err *e);
 
 /* Make a's per-sample shape (dims after axis 0) equal sample_shape: accepted
  * as is, or after inserting/removing size-1 dims when the remaining dims and
  * the element count per sample agree; a's dims are rewritten in place (data
  * untouched). Otherwise RC_ERR_SHAPE naming both shapes. */
-rc_status rc_data_fit(rc_array *a, const rc_tensor *sample_shape, rc_err *e);
+RC_API rc_status rc_data_fit(rc_array *a, const rc_tensor *sample_shape, rc_err *e);
 
 /* ---- Labels ------------------------------------------------------------ */
 
 /* Labels are an array of shape (N) or (N, 1) of an integer dtype, bool, or a
  * float dtype holding whole numbers. Refuses another shape, a count other than
  * n_samples and a label outside 0..n_classes-1, naming the position. */
-rc_status rc_labels_check(const rc_array *labels, int64_t n_samples, int64_t n_classes, rc_err *e);
+RC_API rc_status rc_labels_check(const rc_array *labels, int64_t n_samples, int64_t n_classes, rc_err *e);
 
 /* Check as rc_labels_check, then *out becomes an int32 array of shape (N). */
-rc_status rc_labels_to_int32(rc_array *out, const rc_array *labels, int64_t n_samples,
+RC_API rc_status rc_labels_to_int32(rc_array *out, const rc_array *labels, int64_t n_samples,
                              int64_t n_classes, rc_err *e);
 
 /* ---- Batching ---------------------------------------------------------- */
@@ -152,37 +160,37 @@ typedef struct rc_dataset {
 /* inputs: n_inputs arrays with equal dims[0]; labels NULL or int32 (N) as made
  * by rc_labels_to_int32. index NULL takes every sample 0..N-1 in order; else
  * n_index indices, each checked to be in range. The order starts unshuffled. */
-rc_status rc_dataset_init(rc_dataset *d, const rc_tensor *inputs, int n_inputs,
+RC_API rc_status rc_dataset_init(rc_dataset *d, const rc_tensor *inputs, int n_inputs,
                           const rc_tensor *labels, const int64_t *index, int64_t n_index,
                           rc_err *e);
-void rc_dataset_free(rc_dataset *d);
+RC_API void rc_dataset_free(rc_dataset *d);
 
 /* Gather input i as float32 converted with norm (NULL = identity; the mean
  * and std arrays must outlive the view) instead of copying its raw dtype, so
  * a uint8 or float16 source costs its own size in memory, plus one batch.
  * `source` (may be NULL) is the array behind input i: when it is a file
  * mapping, its pages are released every 64 MiB of samples gathered. */
-void rc_dataset_convert(rc_dataset *d, int i, const rc_data_norm *norm, const rc_array *source);
+RC_API void rc_dataset_convert(rc_dataset *d, int i, const rc_data_norm *norm, const rc_array *source);
 
 /* Make input i of `to` be input j of `from` (array, sample size, conversion):
  * for feeding the same view to a model whose inputs come in another order. */
-void rc_dataset_take_input(rc_dataset *to, int i, const rc_dataset *from, int j);
+RC_API void rc_dataset_take_input(rc_dataset *to, int i, const rc_dataset *from, int j);
 
 /* Put the view in the order for (seed, epoch): a Fisher-Yates shuffle driven
  * by PCG32 seeded with `seed` on stream `epoch`, so the order of any epoch is
  * a pure function of the two numbers and resuming needs nothing else. */
-void rc_dataset_shuffle(rc_dataset *d, uint64_t seed, uint64_t epoch);
+RC_API void rc_dataset_shuffle(rc_dataset *d, uint64_t seed, uint64_t epoch);
 /* Back to the view's own order (validation passes). */
-void rc_dataset_unshuffle(rc_dataset *d);
+RC_API void rc_dataset_unshuffle(rc_dataset *d);
 
 /* Batches of batch_size in the view; drop_last drops a short final batch. */
-int64_t rc_dataset_n_batches(const rc_dataset *d, int64_t batch_size, int drop_last);
+RC_API int64_t rc_dataset_n_batches(const rc_dataset *d, int64_t batch_size, int drop_last);
 
 /* Copy batch `batch` (samples [batch*batch_size, ...) of the current order)
  * into out[i] (one buffer per input, batch_size * sample bytes, the input's
  * dtype, or float32 after rc_dataset_convert) and labels_out (batch_size int32, may be NULL). *count receives the
  * samples copied (short for the last batch). Allocates nothing. */
-rc_status rc_dataset_gather(void *const *out, int32_t *labels_out, int64_t *count,
+RC_API rc_status rc_dataset_gather(void *const *out, int32_t *labels_out, int64_t *count,
                             const rc_dataset *d, int64_t batch, int64_t batch_size, rc_err *e);
 
 /* A training/validation split of n samples: a PCG32 permutation from seed,
@@ -196,8 +204,8 @@ typedef struct rc_data_split {
   int64_t n_val;
 } rc_data_split;
 
-rc_status rc_data_split_init(rc_data_split *out, int64_t n, double val_fraction, uint64_t seed,
+RC_API rc_status rc_data_split_init(rc_data_split *out, int64_t n, double val_fraction, uint64_t seed,
                              rc_err *e);
-void rc_data_split_free(rc_data_split *s);
+RC_API void rc_data_split_free(rc_data_split *s);
 
 #endif

@@ -28,7 +28,7 @@ typedef struct rc_image {
   uint8_t *px; /* w * h * c bytes (rc__malloc) */
 } rc_image;
 
-void rc_image_free(rc_image *im);
+RC_API void rc_image_free(rc_image *im);
 
 /* Refuse images of more pixels than this before allocating (a header can
  * claim 60000 x 60000). */
@@ -39,21 +39,21 @@ void rc_image_free(rc_image *im);
  * palettes expanded, 16-bit samples reduced to their high byte. A truncated
  * or damaged stream is an error, not a partly grey picture. `name` is used
  * in messages. max_pixels 0 means RC_IMAGE_MAX_PIXELS. */
-rc_status rc_image_decode(rc_image *out, const void *buf, size_t n, const char *name, int64_t max_pixels,
+RC_API rc_status rc_image_decode(rc_image *out, const void *buf, size_t n, const char *name, int64_t max_pixels,
                           rc_err *e);
 
 /* 1 <-> 3 channels in place of im: gray to RGB repeats the value; RGB to
  * gray is ITU-R BT.601 luma, L = (19595 R + 38470 G + 7471 B + 32768) >> 16. */
-rc_status rc_image_to_channels(rc_image *im, int channels, rc_err *e);
+RC_API rc_status rc_image_to_channels(rc_image *im, int channels, rc_err *e);
 
 /* Resample to w x h with a triangle (bilinear) filter whose support widens
  * by the reduction factor when shrinking (antialiasing); separable, the
  * horizontal pass first, each pass rounded to 8 bits. */
-rc_status rc_image_resize(rc_image *im, int w, int h, rc_err *e);
+RC_API rc_status rc_image_resize(rc_image *im, int w, int h, rc_err *e);
 
 /* The size that puts the shorter side at s: the longer side becomes
  * floor(long * s / short). */
-void rc_image_shorter_side(int w, int h, int s, int *out_w, int *out_h);
+RC_API void rc_image_shorter_side(int w, int h, int s, int *out_w, int *out_h);
 
 /* Preparation of one image for a model input. */
 typedef struct rc_image_prep {
@@ -65,7 +65,7 @@ typedef struct rc_image_prep {
 /* Convert, resize and centre-crop im (consumed) into out, (C, H, W) uint8.
  * The crop's top-left corner is ((h - H) / 2, (w - W) / 2), rounded down.
  * An image smaller than the crop is an error suggesting a resize. */
-rc_status rc_image_prepare(uint8_t *out, rc_image *im, const rc_image_prep *p, rc_err *e);
+RC_API rc_status rc_image_prepare(uint8_t *out, rc_image *im, const rc_image_prep *p, rc_err *e);
 
 /* ---- Image sets ---------------------------------------------------------- */
 
@@ -86,13 +86,13 @@ typedef struct rc_image_set {
 } rc_image_set;
 
 /* Does path name a folder, or a list file (.txt, .lst, .list)? */
-int rc_image_set_is_source(const char *path);
+RC_API int rc_image_set_is_source(const char *path);
 
-rc_status rc_image_set_open(rc_image_set *s, const char *path, rc_image_labels labels, rc_err *e);
-void rc_image_set_free(rc_image_set *s);
+RC_API rc_status rc_image_set_open(rc_image_set *s, const char *path, rc_image_labels labels, rc_err *e);
+RC_API void rc_image_set_free(rc_image_set *s);
 
 /* Full path of image i into buf (for messages and reading). */
-const char *rc_image_set_path(const rc_image_set *s, int64_t i, char *buf, size_t n);
+RC_API const char *rc_image_set_path(const rc_image_set *s, int64_t i, char *buf, size_t n);
 
 /* Result of loading a set: the kept images in (N, C, H, W) uint8, their
  * labels, and the indices of images skipped as unreadable. */
@@ -108,8 +108,8 @@ typedef struct rc_image_load {
  * default); the result does not depend on the thread count. With skip_bad
  * an unreadable image is left out and listed; without it the first (by
  * index) is the error. */
-rc_status rc_image_set_load(rc_image_load *out, const rc_image_set *s, const rc_image_prep *p, int skip_bad,
+RC_API rc_status rc_image_set_load(rc_image_load *out, const rc_image_set *s, const rc_image_prep *p, int skip_bad,
                             int threads, rc_err *e);
-void rc_image_load_free(rc_image_load *l);
+RC_API void rc_image_load_free(rc_image_load *l);
 
 #endif

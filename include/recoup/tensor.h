@@ -3,6 +3,8 @@
 #ifndef RECOUP_TENSOR_H
 #define RECOUP_TENSOR_H
 
+#include "recoup/export.h"
+
 #include <stddef.h>
 #include <stdint.h>
 
@@ -37,16 +39,16 @@ typedef struct rc_tensor {
 
 /* Bytes per element; 0 for dtypes recoup does not compute with. Sub-byte
  * types (int4/uint4) are unpacked to one byte per element in memory. */
-size_t rc_dtype_size(rc_dtype t);
-const char *rc_dtype_name(rc_dtype t);
-int rc_dtype_is_float(rc_dtype t);
-int rc_dtype_is_integer(rc_dtype t);
+RC_API size_t rc_dtype_size(rc_dtype t);
+RC_API const char *rc_dtype_name(rc_dtype t);
+RC_API int rc_dtype_is_float(rc_dtype t);
+RC_API int rc_dtype_is_integer(rc_dtype t);
 
-int64_t rc_tensor_numel(const rc_tensor *t);
+RC_API int64_t rc_tensor_numel(const rc_tensor *t);
 /* Bytes of data, or SIZE_MAX if the size overflows. */
-size_t rc_tensor_nbytes(const rc_tensor *t);
+RC_API size_t rc_tensor_nbytes(const rc_tensor *t);
 /* "(1, 3, 224, 224)" into buf. */
-const char *rc_shape_str(const rc_tensor *t, char *buf, size_t n);
-int rc_shape_equal(const rc_tensor *a, const rc_tensor *b);
+RC_API const char *rc_shape_str(const rc_tensor *t, char *buf, size_t n);
+RC_API int rc_shape_equal(const rc_tensor *a, const rc_tensor *b);
 
 #endif

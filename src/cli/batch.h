@@ -13,7 +13,8 @@
 #include <sys/types.h>
 
 #include "cli/manifest.h"
-#include "core/status.h"
+#include "cli/cli.h"
+#include "recoup/status.h"
 
 struct rc_dist; /* train/dist.h */
 
@@ -71,7 +72,7 @@ void cli_batch_fmt_hms(char *buf, size_t n, double s);
 void cli_batch_clear_status(batch *b);
 void cli_batch_draw_status(batch *b);
 /* One event line on stderr (escaped), the status lines redrawn below it. */
-void cli_batch_event(batch *b, const char *fmt, ...) RC_PRINTF(2, 3);
+void cli_batch_event(batch *b, const char *fmt, ...) CLI_PRINTF(2, 3);
 void cli_batch_read_progress(run *r);
 void cli_batch_print_summary(const cJSON *records, const char *report_dir);
 void cli_batch_print_json(const cJSON *meta, const cJSON *records);

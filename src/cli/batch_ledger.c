@@ -12,8 +12,7 @@
 
 #include "cli/batch.h"
 #include "cli/sha256.h"
-#include "core/alloc.h"
-#include "core/file.h"
+#include "recoup/util.h"
 
 /* Settings fingerprint: the job's distill arguments with the manifest folder
  * written as "." so a moved zoo still matches. */
@@ -37,7 +36,7 @@ static void job_fingerprint(const cli_manifest *m, const cli_job *j, char hex[65
 rc_status cli_batch_load_state(batch *b, rc_err *e) {
   FILE *f = fopen(b->state_path, "rb");
   if (!f) {
-    if (errno != ENOENT) return rc__fail(e, RC_ERR_IO, "%s: %s", b->state_path, strerror(errno));
+    if (errno != ENOENT) return rc_err_set(e, RC_ERR_IO, "%s: %s", b->state_path, strerror(errno));
     b->state = cJSON_CreateObject();
     cJSON_AddNumberToObject(b->state, "version", 1);
     cJSON_AddObjectToObject(b->state, "jobs");
@@ -46,26 +45,26 @@ rc_status cli_batch_load_state(batch *b, rc_err *e) {
   fseek(f, 0, SEEK_END);
   long n = ftell(f);
   rewind(f);
-  char *text = n >= 0 && n < (64L << 20) ? rc__malloc((size_t)n + 1) : NULL;
+  char *text = n >= 0 && n < (64L << 20) ? malloc((size_t)n + 1) : NULL;
   size_t got = text ? fread(text, 1, (size_t)n, f) : 0;
   fclose(f);
   if (!text || got != (size_t)n) {
-    rc__free(text);
-    return rc__fail(e, RC_ERR_IO, "%s: cannot read", b->state_path);
+    free(text);
+    return rc_err_set(e, RC_ERR_IO, "%s: cannot read", b->state_path);
   }
   text[n] = '\0';
   b->state = cJSON_Parse(text);
-  rc__free(text);
+  free(text);
   if (!b->state || !cJSON_IsObject(cJSON_GetObjectItemCaseSensitive(b->state, "jobs")))
-    return rc__fail(e, RC_ERR_FORMAT, "%s: not a recoup batch state file (remove it to start afresh)",
+    return rc_err_set(e, RC_ERR_FORMAT, "%s: not a recoup batch state file (remove it to start afresh)",
                     b->state_path);
   return RC_OK;
 }
 
 rc_status cli_batch_save_state(batch *b, rc_err *e) {
   char *text = cJSON_Print(b->state);
-  if (!text) return rc__fail(e, RC_ERR_NOMEM, "out of memory");
-  rc_status s = rc__write_atomic(b->state_path, text, strlen(text), e);
+  if (!text) return rc_err_set(e, RC_ERR_NOMEM, "out of memory");
+  rc_status s = rc_file_write_atomic(b->state_path, text, strlen(text), e);
   free(text);
   return s;
 }
@@ -74,10 +73,10 @@ rc_status cli_batch_lock_state(batch *b, rc_err *e) {
   char path[PATH_MAX + 8];
   snprintf(path, sizeof path, "%s.lock", b->state_path);
   int fd = open(path, O_RDWR | O_CREAT | O_CLOEXEC, 0644);
-  if (fd < 0) return rc__fail(e, RC_ERR_IO, "%s: %s", path, strerror(errno));
+  if (fd < 0) return rc_err_set(e, RC_ERR_IO, "%s: %s", path, strerror(errno));
   if (flock(fd, LOCK_EX | LOCK_NB) != 0) {
     close(fd);
-    return rc__fail(e, RC_ERR_IO, "%s is in use by another recoup batch (one batch per report folder)",
+    return rc_err_set(e, RC_ERR_IO, "%s is in use by another recoup batch (one batch per report folder)",
                     b->state_path);
   }
   return RC_OK; /* held until exit */

@@ -8,8 +8,7 @@
 #include "cli/batch.h"
 #include "cli/cli.h"
 #include "cli/report.h"
-#include "core/alloc.h"
-#include "core/path.h"
+#include "recoup/util.h"
 
 static int by_index(const void *x, const void *y) {
   const cJSON *a = *(cJSON *const *)x, *b = *(cJSON *const *)y;
@@ -20,15 +19,15 @@ static int by_index(const void *x, const void *y) {
 
 int cli_batch_merge_reports(batch_args *a) {
   rc_err e = {0};
-  cJSON **reports = rc__calloc((size_t)a->n_merge, sizeof *reports);
+  cJSON **reports = calloc((size_t)a->n_merge, sizeof *reports);
   cJSON **recs = NULL;
   int n = 0, rc = RC_EXIT_FAIL, ok = 0;
   double total = 0;
   const char *manifest_hash = NULL;
   if (!reports) return cli_fail(&e);
   for (int i = 0; i < a->n_merge; i++)
-    if (rc__path_same_file(a->report, a->merge_dirs[i])) {
-      rc__fail(&e, RC_ERR_INVALID, "--report %s is the report folder %s being merged: refusing to overwrite an input",
+    if (rc_path_same_file(a->report, a->merge_dirs[i])) {
+      rc_err_set(&e, RC_ERR_INVALID, "--report %s is the report folder %s being merged: refusing to overwrite an input",
                a->report, a->merge_dirs[i]);
       goto out;
     }
@@ -37,11 +36,11 @@ int cli_batch_merge_reports(batch_args *a) {
     const cJSON *meta = cJSON_GetObjectItemCaseSensitive(reports[i], "meta");
     const cJSON *h = cJSON_GetObjectItemCaseSensitive(meta, "manifest_sha256");
     if (!cJSON_IsString(h)) {
-      rc__fail(&e, RC_ERR_FORMAT, "%s/report.json: no manifest_sha256 in \"meta\"", a->merge_dirs[i]);
+      rc_err_set(&e, RC_ERR_FORMAT, "%s/report.json: no manifest_sha256 in \"meta\"", a->merge_dirs[i]);
       goto out;
     }
     if (manifest_hash && strcmp(manifest_hash, h->valuestring)) {
-      rc__fail(&e, RC_ERR_INVALID, "%s/report.json comes from another manifest than %s/report.json",
+      rc_err_set(&e, RC_ERR_INVALID, "%s/report.json comes from another manifest than %s/report.json",
                a->merge_dirs[i], a->merge_dirs[0]);
       goto out;
     }
@@ -49,9 +48,9 @@ int cli_batch_merge_reports(batch_args *a) {
     total = cJSON_GetObjectItemCaseSensitive(meta, "total_jobs") ? cJSON_GetObjectItemCaseSensitive(meta, "total_jobs")->valuedouble : 0;
     n += cJSON_GetArraySize(cJSON_GetObjectItemCaseSensitive(reports[i], "jobs"));
   }
-  recs = rc__calloc((size_t)n + 1, sizeof *recs);
+  recs = calloc((size_t)n + 1, sizeof *recs);
   if (!recs) {
-    rc__fail(&e, RC_ERR_NOMEM, "out of memory");
+    rc_err_set(&e, RC_ERR_NOMEM, "out of memory");
     goto out;
   }
   int k = 0;
@@ -60,12 +59,12 @@ int cli_batch_merge_reports(batch_args *a) {
     cJSON_ArrayForEach(r, cJSON_GetObjectItemCaseSensitive(reports[i], "jobs")) {
       const cJSON *name = cJSON_GetObjectItemCaseSensitive(r, "name");
       if (!cJSON_IsString(name) || !cJSON_IsNumber(cJSON_GetObjectItemCaseSensitive(r, "index"))) {
-        rc__fail(&e, RC_ERR_FORMAT, "%s/report.json: a job without name or index", a->merge_dirs[i]);
+        rc_err_set(&e, RC_ERR_FORMAT, "%s/report.json: a job without name or index", a->merge_dirs[i]);
         goto out;
       }
       for (int q = 0; q < k; q++)
         if (!strcmp(cJSON_GetObjectItemCaseSensitive(recs[q], "name")->valuestring, name->valuestring)) {
-          rc__fail(&e, RC_ERR_INVALID, "job '%s' appears in more than one report (%s among them)", name->valuestring,
+          rc_err_set(&e, RC_ERR_INVALID, "job '%s' appears in more than one report (%s among them)", name->valuestring,
                    a->merge_dirs[i]);
           goto out;
         }
@@ -94,7 +93,7 @@ int cli_batch_merge_reports(batch_args *a) {
 out:
   if (e.code) cli_fail(&e);
   for (int i = 0; i < a->n_merge; i++) cJSON_Delete(reports[i]);
-  rc__free(reports);
-  rc__free(recs);
+  free(reports);
+  free(recs);
   return rc;
 }

@@ -195,7 +195,7 @@ static void drain(run *r) {
     if (r->out_n + (size_t)n + 1 > r->out_cap && r->out_n < STDOUT_MAX) {
       size_t cap = r->out_cap ? r->out_cap * 2 : 16384;
       while (cap < r->out_n + (size_t)n + 1) cap *= 2;
-      char *p = rc__realloc(r->out_text, cap);
+      char *p = realloc(r->out_text, cap);
       if (!p) return;
       r->out_text = p;
       r->out_cap = cap;

@@ -5,8 +5,14 @@
 #include <signal.h>
 #include <stdio.h>
 
-#include "core/status.h"
 #include "recoup/log.h"
+#include "recoup/status.h"
+
+#if defined(__GNUC__)
+#define CLI_PRINTF(a, b) __attribute__((format(printf, a, b)))
+#else
+#define CLI_PRINTF(a, b)
+#endif
 
 /* Exit codes: success, failure, usage error. */
 enum { RC_EXIT_OK = 0, RC_EXIT_FAIL = 1, RC_EXIT_USAGE = 2 };
@@ -39,7 +45,7 @@ int cli_usage_error(const char *cmd, const char *fmt, ...)
 rc_status cli_check_output(const char *label, const char *out, const char *const *inputs,
                            const char *const *in_labels, int n, rc_err *e);
 struct cJSON;
-/* Escape every string value and key of a JSON tree in place (rc__escape:
+/* Escape every string value and key of a JSON tree in place (rc_text_escape:
  * control bytes and invalid UTF-8 from files become \xNN), so what is
  * printed is valid JSON and safe on a terminal. */
 void cli_json_escape_tree(struct cJSON *j);

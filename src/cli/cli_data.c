@@ -74,7 +74,7 @@ static rc_status prepare_input(cli_samples *s, int i, const rc_value *input, con
   rc_array *a = &s->inputs[i];
   if (input->decl.dtype == RC_DTYPE_FLOAT) {
     if (rc_dtype_size(a->t.dtype) == 0 || a->t.dtype == RC_DTYPE_STRING)
-      return rc__fail(e, RC_ERR_SHAPE, "%s: input '%s' takes float, the file holds %s", file, input->name,
+      return rc_err_set(e, RC_ERR_SHAPE, "%s: input '%s' takes float, the file holds %s", file, input->name,
                       rc_dtype_name(a->t.dtype));
     cli_prep_norm(&s->norm[i], s->mean[i], s->std[i], o, a->t.dtype, file);
     s->convert[i] = 1;
@@ -84,7 +84,7 @@ static rc_status prepare_input(cli_samples *s, int i, const rc_value *input, con
               "unscaled (give --scale, e.g. 0.00392156862745098 for 0..1, if it was trained on scaled inputs)\n",
               file, input->name);
   } else if (a->t.dtype != input->decl.dtype) {
-    return rc__fail(e, RC_ERR_SHAPE, "%s: input '%s' takes %s, the file holds %s", file, input->name,
+    return rc_err_set(e, RC_ERR_SHAPE, "%s: input '%s' takes %s, the file holds %s", file, input->name,
                     rc_dtype_name(input->decl.dtype), rc_dtype_name(a->t.dtype));
   }
   if (input->decl.rank >= 1) {
@@ -95,7 +95,7 @@ static rc_status prepare_input(cli_samples *s, int i, const rc_value *input, con
       if (input->decl.dims[d] < 0) concrete = 0;
     }
     if (concrete && rc_data_fit(a, &sample, e) != RC_OK)
-      return rc__wrap(e, "%s: input '%s'", file, input->name);
+      return rc_err_prefix(e, "%s: input '%s'", file, input->name);
   }
   return RC_OK;
 }
@@ -149,7 +149,7 @@ static rc_status read_named_array(rc_array *a, const char *file, const char *nam
       if (len > 4 && !strcmp(names[i] + len - 4, ".npy")) len -= 4;
       o += (size_t)snprintf(list + o, sizeof list - o, "%s'%.*s'", i ? ", " : "", (int)(len > 64 ? 64 : len), names[i]);
     }
-    st = rc__fail(e, RC_ERR_INVALID,
+    st = rc_err_set(e, RC_ERR_INVALID,
                   "%s holds %d arrays (%s) and none is named '%s' like %s: save it under that name, or "
                   "one array per file",
                   file, count, count ? list : "none", name, what);
@@ -161,7 +161,7 @@ static rc_status read_named_array(rc_array *a, const char *file, const char *nam
 rc_status cli_samples_load(cli_samples *s, const cli_data_opts *o, const rc_graph *g, rc_err *e) {
   memset(s, 0, sizeof *s);
   if (g->n_inputs > CLI_MAX_DATA)
-    return rc__fail(e, RC_ERR_UNSUPPORTED, "%s: more than %d inputs", g->path, CLI_MAX_DATA);
+    return rc_err_set(e, RC_ERR_UNSUPPORTED, "%s: more than %d inputs", g->path, CLI_MAX_DATA);
   s->n_inputs = g->n_inputs;
   const char *files[CLI_MAX_DATA] = {0};
   for (int i = 0; i < o->n_data; i++) {
@@ -169,32 +169,32 @@ rc_status cli_samples_load(cli_samples *s, const cli_data_opts *o, const rc_grap
     int idx = split_named(g, o->data[i], &file);
     if (idx < 0) {
       if (o->n_data != 1 || g->n_inputs != 1)
-        return rc__fail(e, RC_ERR_INVALID,
+        return rc_err_set(e, RC_ERR_INVALID,
                         "%s has %d inputs: give each as --data NAME=FILE ('%s' names none of them)",
                         g->path, g->n_inputs, o->data[i]);
       idx = 0;
     }
     if (files[idx])
-      return rc__fail(e, RC_ERR_INVALID, "input '%s' is given twice", g->values[g->inputs[idx]].name);
+      return rc_err_set(e, RC_ERR_INVALID, "input '%s' is given twice", g->values[g->inputs[idx]].name);
     files[idx] = file;
   }
   for (int i = 0; i < g->n_inputs; i++) {
     const rc_value *input = &g->values[g->inputs[i]];
-    if (!files[i]) return rc__fail(e, RC_ERR_INVALID, "no --data for input '%s' of %s", input->name, g->path);
+    if (!files[i]) return rc_err_set(e, RC_ERR_INVALID, "no --data for input '%s' of %s", input->name, g->path);
     if (cli_is_image_source(files[i]))
       RC_TRY(cli_images_load(s, &s->inputs[i], o, input, files[i], e));
     else
       RC_TRY(read_named_array(&s->inputs[i], files[i], input->name, "the model's input", e));
     if (s->inputs[i].t.rank < 1)
-      return rc__fail(e, RC_ERR_SHAPE, "%s: a scalar is not a set of samples", files[i]);
+      return rc_err_set(e, RC_ERR_SHAPE, "%s: a scalar is not a set of samples", files[i]);
     RC_TRY(prepare_input(s, i, input, o, files[i], e));
     int64_t n = s->inputs[i].t.dims[0];
     if (i && n != s->n)
-      return rc__fail(e, RC_ERR_SHAPE, "%s holds %lld samples, the other inputs %lld", files[i],
+      return rc_err_set(e, RC_ERR_SHAPE, "%s holds %lld samples, the other inputs %lld", files[i],
                       (long long)n, (long long)s->n);
     s->n = n;
   }
-  if (s->n == 0) return rc__fail(e, RC_ERR_INVALID, "%s: no samples", files[0]);
+  if (s->n == 0) return rc_err_set(e, RC_ERR_INVALID, "%s: no samples", files[0]);
   return RC_OK;
 }
 
@@ -204,7 +204,7 @@ rc_status cli_samples_load_labels(cli_samples *s, const char *path, int64_t n_cl
   RC_TRY(read_named_array(&raw, path, "labels", "the labels", e));
   rc_status st = rc_labels_to_int32(&s->labels, &raw, s->n, n_classes, e);
   rc_array_free(&raw);
-  if (st != RC_OK) return rc__wrap(e, "%s", path);
+  if (st != RC_OK) return rc_err_prefix(e, "%s", path);
   s->has_labels = 1;
   return RC_OK;
 }
@@ -234,7 +234,7 @@ rc_status cli_samples_first_batch(rc_array *out, const cli_samples *s, int64_t b
     if (s->convert[i]) t.dtype = RC_DTYPE_FLOAT;
     size_t nb = rc_tensor_nbytes(&t);
     out[i].owned = rc__malloc(nb ? nb : 1);
-    if (!out[i].owned) return rc__fail(e, RC_ERR_NOMEM, "out of memory for one batch");
+    if (!out[i].owned) return rc_err_set(e, RC_ERR_NOMEM, "out of memory for one batch");
     t.data = out[i].owned;
     out[i].t = t;
     if (s->convert[i])
@@ -263,7 +263,7 @@ rc_status cli_output_classes(const rc_graph *g, const cli_samples *s, int64_t *k
   const rc_tensor *t = rc_plan_tensor(p, g->outputs[0]);
   rc_status st = RC_OK;
   if (t->dtype != RC_DTYPE_FLOAT || t->rank != 2)
-    st = rc__fail(e, RC_ERR_SHAPE, "%s: labels need a float (N, classes) first output; '%s' has rank %d", g->path,
+    st = rc_err_set(e, RC_ERR_SHAPE, "%s: labels need a float (N, classes) first output; '%s' has rank %d", g->path,
                   g->values[g->outputs[0]].name, t->rank);
   else
     *k = t->dims[1];
@@ -279,7 +279,7 @@ static int ascending(const void *a, const void *b) {
 rc_status cli_samples_dataset_limit(rc_dataset *d, const cli_samples *s, int64_t limit, uint64_t seed, rc_err *e) {
   if (limit <= 0 || limit >= s->n) return cli_samples_dataset(d, s, NULL, 0, e);
   int64_t *perm = rc__malloc(sizeof(int64_t) * (size_t)s->n);
-  if (!perm) return rc__fail(e, RC_ERR_NOMEM, "out of memory for %lld sample indices", (long long)s->n);
+  if (!perm) return rc_err_set(e, RC_ERR_NOMEM, "out of memory for %lld sample indices", (long long)s->n);
   for (int64_t i = 0; i < s->n; i++) perm[i] = i;
   rc_rng r;
   rc__rng_seed(&r, seed, 0);

@@ -35,13 +35,13 @@ static rc_status input_prep(rc_image_prep *p, const rc_value *input, const cli_d
                             rc_err *e) {
   const rc_tensor *d = &input->decl;
   if (d->rank != 4)
-    return rc__fail(e, RC_ERR_SHAPE, "%s: images feed (N, C, H, W) inputs; input '%s' has rank %d", file, input->name,
+    return rc_err_set(e, RC_ERR_SHAPE, "%s: images feed (N, C, H, W) inputs; input '%s' has rank %d", file, input->name,
                     d->rank);
   if (d->dtype != RC_DTYPE_FLOAT && d->dtype != RC_DTYPE_UINT8)
-    return rc__fail(e, RC_ERR_SHAPE, "%s: input '%s' takes %s, images give float or uint8", file, input->name,
+    return rc_err_set(e, RC_ERR_SHAPE, "%s: input '%s' takes %s, images give float or uint8", file, input->name,
                     rc_dtype_name(d->dtype));
   if (d->dims[1] != 1 && d->dims[1] != 3)
-    return rc__fail(e, RC_ERR_SHAPE, "%s: input '%s' has %lld channels; images give 1 (gray) or 3 (RGB)", file,
+    return rc_err_set(e, RC_ERR_SHAPE, "%s: input '%s' has %lld channels; images give 1 (gray) or 3 (RGB)", file,
                     input->name, (long long)d->dims[1]);
   p->channels = (int)d->dims[1];
   p->resize = o->resize;
@@ -51,7 +51,7 @@ static rc_status input_prep(rc_image_prep *p, const rc_value *input, const cli_d
   } else if (o->resize > 0) {
     p->height = p->width = o->resize; /* symbolic H x W: a square of the resized shorter side */
   } else {
-    return rc__fail(e, RC_ERR_SHAPE, "%s: input '%s' has no fixed height and width: give --resize S", file,
+    return rc_err_set(e, RC_ERR_SHAPE, "%s: input '%s' has no fixed height and width: give --resize S", file,
                     input->name);
   }
   return RC_OK;
@@ -75,7 +75,7 @@ static void print_summary(const cli_samples *s, const rc_image_prep *p, const ch
 rc_status cli_images_load(cli_samples *s, rc_array *out, const cli_data_opts *o, const rc_value *input,
                           const char *file, rc_err *e) {
   if (s->from_images)
-    return rc__fail(e, RC_ERR_UNSUPPORTED, "%s: one input only can be a folder or list of images", file);
+    return rc_err_set(e, RC_ERR_UNSUPPORTED, "%s: one input only can be a folder or list of images", file);
   rc_image_prep p;
   RC_TRY(input_prep(&p, input, o, file, e));
   rc_image_labels mode = RC_IMAGE_LABELS_NONE;
@@ -98,12 +98,12 @@ rc_status cli_images_load(cli_samples *s, rc_array *out, const cli_data_opts *o,
 
 rc_status cli_images_take_labels(cli_samples *s, int64_t n_classes, rc_err *e) {
   if (!s->from_images || !s->decoded.labels.owned)
-    return rc__fail(e, RC_ERR_INVALID, "--labels folders or list needs --data to be a folder or list of images");
+    return rc_err_set(e, RC_ERR_INVALID, "--labels folders or list needs --data to be a folder or list of images");
   if (s->images.n_classes && s->images.n_classes != n_classes)
-    return rc__fail(e, RC_ERR_SHAPE, "%s: %d class folders, the model has %lld classes", s->images.root,
+    return rc_err_set(e, RC_ERR_SHAPE, "%s: %d class folders, the model has %lld classes", s->images.root,
                     s->images.n_classes, (long long)n_classes);
   rc_status st = rc_labels_to_int32(&s->labels, &s->decoded.labels, s->n, n_classes, e);
-  if (st != RC_OK) return rc__wrap(e, "%s", s->images.root);
+  if (st != RC_OK) return rc_err_prefix(e, "%s", s->images.root);
   s->has_labels = 1;
   return RC_OK;
 }

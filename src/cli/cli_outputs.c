@@ -60,7 +60,7 @@ static rc_status check_per_sample(const rc_array *a, const char *path, int64_t n
     full.rank = want->rank + 1;
     memmove(full.dims + 1, want->dims, sizeof(int64_t) * (size_t)want->rank);
     full.dims[0] = n;
-    return rc__fail(e, RC_ERR_SHAPE, "%s: %s of shape %s, expected %s", path, what, rc_shape_str(&got, sa, sizeof sa),
+    return rc_err_set(e, RC_ERR_SHAPE, "%s: %s of shape %s, expected %s", path, what, rc_shape_str(&got, sa, sizeof sa),
                     rc_shape_str(&full, sb, sizeof sb));
   }
   return RC_OK;
@@ -74,19 +74,19 @@ rc_status cli_outputs_read_labels(rc_array *out, const char *path, int64_t n, co
   rc_tensor want;
   sample_shape(&want, dims, rank, axis);
   rc_status s = check_per_sample(&raw, path, n, &want, "dense labels", e);
-  if (s == RC_OK && (s = rc_data_to_float_array(&f, &raw, NULL, e)) != RC_OK) rc__wrap(e, "%s", path);
+  if (s == RC_OK && (s = rc_data_to_float_array(&f, &raw, NULL, e)) != RC_OK) rc_err_prefix(e, "%s", path);
   rc_array_free(&raw);
   if (s != RC_OK) return s;
   int64_t count = rc_tensor_numel(&f.t), k = dims[axis];
   int32_t *lab = rc__malloc(sizeof(int32_t) * (size_t)count + 1);
   if (!lab) {
     rc_array_free(&f);
-    return rc__fail(e, RC_ERR_NOMEM, "%s: out of memory", path);
+    return rc_err_set(e, RC_ERR_NOMEM, "%s: out of memory", path);
   }
   const float *v = f.t.data;
   for (int64_t i = 0; i < count; i++) {
     if (v[i] != floorf(v[i]) || ((v[i] < 0 || v[i] >= (float)k) && v[i] != (float)ignore)) {
-      s = rc__fail(e, RC_ERR_INVALID, "%s: label %g at element %lld is not a class in [0, %lld) nor the ignore value "
+      s = rc_err_set(e, RC_ERR_INVALID, "%s: label %g at element %lld is not a class in [0, %lld) nor the ignore value "
                    "%ld", path, (double)v[i], (long long)i, (long long)k, ignore);
       break;
     }
@@ -109,7 +109,7 @@ static rc_status read_targets(rc_array *out, const char *path, int64_t n, const 
     *out = raw; /* float32 as is: NaN marks a position without a target */
     return RC_OK;
   }
-  if (s == RC_OK && (s = rc_data_to_float_array(out, &raw, NULL, e)) != RC_OK) rc__wrap(e, "%s", path);
+  if (s == RC_OK && (s = rc_data_to_float_array(out, &raw, NULL, e)) != RC_OK) rc_err_prefix(e, "%s", path);
   rc_array_free(&raw);
   return s;
 }
@@ -129,12 +129,12 @@ static rc_status load_targets(cli_outputs *o, const char *const *list, int n_lis
     snprintf(name, sizeof name, "%.*s", (int)(eq - list[t]), list[t]);
     int i = spec_of(o, name, 1);
     if (i < 0)
-      return rc__fail(e, RC_ERR_INVALID, "--targets %s: no --output-loss term on '%s' takes targets (bounded-l2)", name,
+      return rc_err_set(e, RC_ERR_INVALID, "--targets %s: no --output-loss term on '%s' takes targets (bounded-l2)", name,
                       name);
     int v = -1;
     for (int j = 0; j < g->n_outputs; j++)
       if (!strcmp(g->values[g->outputs[j]].name, name)) v = g->outputs[j];
-    if (v < 0) return rc__fail(e, RC_ERR_INVALID, "--targets: %s has no output '%s'", g->path, name);
+    if (v < 0) return rc_err_set(e, RC_ERR_INVALID, "--targets: %s has no output '%s'", g->path, name);
     const rc_tensor *shape = rc_plan_tensor(p, v);
     rc_tensor want;
     sample_shape(&want, shape->dims, shape->rank, -1);
@@ -164,7 +164,7 @@ static rc_status load_labels(cli_outputs *o, rc_plan *p, const rc_graph *g, cons
     snprintf(o->label_output, sizeof o->label_output, "%s", r.output);
     return cli_outputs_read_labels(out, path, n, t->dims, t->rank, r.axis, o->ignore, e);
   }
-  return rc__fail(e, RC_ERR_INVALID, "--labels with --output-loss: dense labels need a kd term on the output they "
+  return rc_err_set(e, RC_ERR_INVALID, "--labels with --output-loss: dense labels need a kd term on the output they "
                   "label");
 }
 
@@ -182,7 +182,7 @@ rc_status cli_outputs_load(cli_outputs *o, const rc_graph *g, const cli_samples 
   for (int i = 0; i < o->n && s == RC_OK; i++) {
     int v = find_value(g, o->specs[i].output);
     if (v < 0) {
-      s = rc__fail(e, RC_ERR_INVALID, "--output-loss: %s has no output '%s'", g->path, o->specs[i].output);
+      s = rc_err_set(e, RC_ERR_INVALID, "--output-loss: %s has no output '%s'", g->path, o->specs[i].output);
       break;
     }
     const rc_tensor *t = rc_plan_tensor(p, v);
@@ -200,11 +200,11 @@ rc_status cli_outputs_load(cli_outputs *o, const rc_graph *g, const cli_samples 
   for (int i = 0; i < o->n && s == RC_OK; i++) {
     int has = side->targets[i] != NULL, has_val = !val || val_side->targets[i] != NULL;
     if (rc_out_term_needs_targets(o->specs[i].term) && (!has || !has_val))
-      s = rc__fail(e, RC_ERR_INVALID, "output '%s': %s needs targets: --targets %s=FILE%s", o->specs[i].output,
+      s = rc_err_set(e, RC_ERR_INVALID, "output '%s': %s needs targets: --targets %s=FILE%s", o->specs[i].output,
                    rc_out_term_name(o->specs[i].term), o->specs[i].output, val ? " and --val-targets" : "");
   }
   if (s == RC_OK && val && !labels_path != !val_labels_path)
-    s = rc__fail(e, RC_ERR_INVALID, "give dense labels for both --data and --val-data, or for neither");
+    s = rc_err_set(e, RC_ERR_INVALID, "give dense labels for both --data and --val-data, or for neither");
   rc_plan_free(p);
   return s;
 }
@@ -255,7 +255,7 @@ static rc_status default_specs(cli_outputs *o, rc_plan *p, const rc_graph *g, rc
     o->n++;
   }
   if (!o->n)
-    return rc__fail(e, RC_ERR_INVALID, "%s: no float output of rank 3 or more; name outputs with --output-loss", g->path);
+    return rc_err_set(e, RC_ERR_INVALID, "%s: no float output of rank 3 or more; name outputs with --output-loss", g->path);
   return RC_OK;
 }
 

@@ -4,7 +4,6 @@
 #include <stdlib.h>
 #include <string.h>
 
-#include "core/alloc.h"
 
 void cli_synth_progress(void *user, int64_t done, int64_t total, double bn_loss) {
   cli_synth_progress_state *ps = user;
@@ -29,11 +28,11 @@ rc_status cli_synth_make(rc_array *out, rc_synth_stats *stats, rc_model *teacher
   t.dims[0] = c->count;
   t.dtype = RC_DTYPE_FLOAT;
   size_t bytes = rc_tensor_nbytes(&t);
-  float *data = bytes == SIZE_MAX ? NULL : rc__malloc(bytes);
-  if (!data) return rc__fail(e, RC_ERR_NOMEM, "out of memory for %lld synthesised samples", (long long)c->count);
+  float *data = bytes == SIZE_MAX ? NULL : malloc(bytes);
+  if (!data) return rc_err_set(e, RC_ERR_NOMEM, "out of memory for %lld synthesised samples", (long long)c->count);
   rc_status s = rc_synthesize(data, stats, teacher, c, e);
   if (s != RC_OK) {
-    rc__free(data);
+    free(data);
     return s;
   }
   t.data = data;

@@ -13,8 +13,7 @@
 #include <unistd.h>
 
 #include "cli/cli.h"
-#include "core/escape.h"
-#include "core/path.h"
+#include "recoup/util.h"
 #include "train/dist.h"
 
 int cli_fail(const rc_err *e) {
@@ -23,7 +22,7 @@ int cli_fail(const rc_err *e) {
     snprintf(where, sizeof where, "rank %d of %d on %s: ", rc_dist_rank(cli_dist()), rc_dist_size(cli_dist()),
              rc_dist_host(cli_dist()));
   fprintf(stderr, "recoup: error: %s%s\n", where,
-          rc__escape(buf, sizeof buf, e && e->msg[0] ? e->msg : rc_strerror(e ? e->code : -1)));
+          rc_text_escape(buf, sizeof buf, e && e->msg[0] ? e->msg : rc_strerror(e ? e->code : -1)));
   return RC_EXIT_FAIL;
 }
 
@@ -35,11 +34,11 @@ int cli_usage_error(const char *cmd, const char *fmt, ...) {
   va_end(ap);
   /* One line: the hint to --help rides on it. */
   fprintf(stderr, "recoup%s%s: %s (see 'recoup%s%s --help')\n", cmd ? " " : "", cmd ? cmd : "",
-          rc__escape(msg, sizeof msg, raw), cmd ? " " : "", cmd ? cmd : "");
+          rc_text_escape(msg, sizeof msg, raw), cmd ? " " : "", cmd ? cmd : "");
   return RC_EXIT_USAGE;
 }
 
-const char *cli_esc(const char *s, char *buf, size_t n) { return rc__escape(buf, n, s); }
+const char *cli_esc(const char *s, char *buf, size_t n) { return rc_text_escape(buf, n, s); }
 
 int cli_text_width(const char *s) {
   int w = 0;
@@ -55,8 +54,8 @@ void cli_print_cell(FILE *f, const char *s, int width) {
 void cli_json_escape_tree(cJSON *j) {
   for (; j; j = j->next) {
     char buf[8192];
-    if (j->string && rc__needs_escape(j->string)) {
-      rc__escape(buf, sizeof buf, j->string);
+    if (j->string && rc_text_needs_escape(j->string)) {
+      rc_text_escape(buf, sizeof buf, j->string);
       char *k = cJSON_malloc(strlen(buf) + 1);
       /* Keys the tree owns are freed with it; a constant key is only replaced. */
       if (k) {
@@ -66,8 +65,8 @@ void cli_json_escape_tree(cJSON *j) {
         j->type &= ~cJSON_StringIsConst;
       }
     }
-    if (cJSON_IsString(j) && j->valuestring && rc__needs_escape(j->valuestring))
-      cJSON_SetValuestring(j, rc__escape(buf, sizeof buf, j->valuestring));
+    if (cJSON_IsString(j) && j->valuestring && rc_text_needs_escape(j->valuestring))
+      cJSON_SetValuestring(j, rc_text_escape(buf, sizeof buf, j->valuestring));
     cli_json_escape_tree(j->child);
   }
 }
@@ -79,15 +78,15 @@ char *cli_json_print(cJSON *j) {
 
 rc_status cli_check_output(const char *label, const char *out, const char *const *inputs,
                            const char *const *in_labels, int n, rc_err *e) {
-  RC_TRY(rc__path_refuse_inputs(label, out, inputs, in_labels, n, e));
+  RC_TRY(rc_path_refuse_inputs(label, out, inputs, in_labels, n, e));
   char dir[4200];
   const char *slash = strrchr(out, '/');
   if (!slash) snprintf(dir, sizeof dir, ".");
   else snprintf(dir, sizeof dir, "%.*s", slash == out ? 1 : (int)(slash - out), out);
   struct stat st;
   if (stat(dir, &st) != 0 || !S_ISDIR(st.st_mode))
-    return rc__fail(e, RC_ERR_IO, "%s %s: folder %s does not exist", label, out, dir);
-  if (access(dir, W_OK) != 0) return rc__fail(e, RC_ERR_IO, "%s %s: folder %s is not writable", label, out, dir);
+    return rc_err_set(e, RC_ERR_IO, "%s %s: folder %s does not exist", label, out, dir);
+  if (access(dir, W_OK) != 0) return rc_err_set(e, RC_ERR_IO, "%s %s: folder %s is not writable", label, out, dir);
   return RC_OK;
 }
 

@@ -174,7 +174,7 @@ void cli_batch_write_reports(batch *b) {
  * whose outputs are unchanged. */
 static rc_status plan_runs(batch *b, rc_err *e) {
   b->runs = rc__calloc((size_t)b->m.n_jobs, sizeof *b->runs);
-  if (!b->runs) return rc__fail(e, RC_ERR_NOMEM, "out of memory");
+  if (!b->runs) return rc_err_set(e, RC_ERR_NOMEM, "out of memory");
   for (int i = 0; i < b->m.n_jobs; i++) {
     if (i % b->a->shard_n != b->a->shard_k - 1) continue;
     run *r = &b->runs[b->n_runs++];
@@ -203,7 +203,7 @@ static rc_status check_outputs(const batch *b, rc_err *e) {
   const char **inputs = rc__calloc((size_t)n, sizeof *inputs);
   const char **names = rc__calloc((size_t)b->m.n_jobs + 1, sizeof *names);
   rc_status s = RC_OK;
-  if (!inputs || !names) s = rc__fail(e, RC_ERR_NOMEM, "out of memory");
+  if (!inputs || !names) s = rc_err_set(e, RC_ERR_NOMEM, "out of memory");
   if (s == RC_OK) {
     n = 0;
     inputs[n++] = b->m.path;

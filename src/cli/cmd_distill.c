@@ -335,7 +335,7 @@ static int check_output_path(const distill_args *a, rc_err *e) {
     return -1;
   /* --resume is read, then replaced by the run's own checkpoints; the output never. */
   if (a->cfg.resume_path && rc__path_same_file(a->out, a->cfg.resume_path)) {
-    rc__fail(e, RC_ERR_INVALID, "--resume %s is the output file", a->cfg.resume_path);
+    rc_err_set(e, RC_ERR_INVALID, "--resume %s is the output file", a->cfg.resume_path);
     return -1;
   }
   if (a->report) {
@@ -609,7 +609,7 @@ static void remove_checkpoints(const char *path) {
 /* --data synth:N: N inputs made from the teacher (train/synthesize.h), seeded by --seed. */
 static rc_status synth_samples(cli_samples *s, const distill_args *a, rc_model *teacher, rc_err *e) {
   if (a->data.n_data != 1 || a->data.labels)
-    return rc__fail(e, RC_ERR_INVALID, "--data synth:N stands alone: no other --data, no --labels");
+    return rc_err_set(e, RC_ERR_INVALID, "--data synth:N stands alone: no other --data, no --labels");
   rc_synth_config c;
   rc_synth_defaults(&c);
   c.count = cli_synth_count(a->data.data[0]);
@@ -655,7 +655,7 @@ int rc_cmd_distill(int argc, char **argv) {
     goto out;
   if (rc_distill_check_pair(&teacher->graph, &student->graph, &e) != RC_OK) goto out;
   if (cli_synth_count(a.data.data[0]) < 0) {
-    rc__fail(&e, RC_ERR_INVALID, "--data %s: expected synth:N with N > 0", a.data.data[0]);
+    rc_err_set(&e, RC_ERR_INVALID, "--data %s: expected synth:N with N > 0", a.data.data[0]);
     goto out;
   }
   /* The student's recorded preprocessing, else the teacher's. */
@@ -686,7 +686,7 @@ int rc_cmd_distill(int argc, char **argv) {
                        a.n_val_data ? vins : NULL, val.has_labels ? val.labels.t.data : NULL, a.val_split,
                        side, val_side, train.norm, train.inputs, a.n_val_data ? val.inputs : NULL};
   if (a.n_val_data && train.has_labels != val.has_labels) {
-    rc__fail(&e, RC_ERR_INVALID, "give labels for both --data and --val-data, or for neither");
+    rc_err_set(&e, RC_ERR_INVALID, "give labels for both --data and --val-data, or for neither");
     goto out;
   }
   progress_state ps = {cli_isatty_stderr(), -1e9, a.json};

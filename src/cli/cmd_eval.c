@@ -137,19 +137,19 @@ static rc_status run_model(run_result *r, const char *path, const cli_samples *s
   if (!r->model) RC_TRY(rc_model_load(&r->model, path, NULL, e));
   const rc_graph *g = &r->model->graph;
   if (g->n_inputs != s->n_inputs)
-    return rc__fail(e, RC_ERR_SHAPE, "%s has %d inputs, the data %d", path, g->n_inputs, s->n_inputs);
-  if (g->n_outputs > 64) return rc__fail(e, RC_ERR_UNSUPPORTED, "%s: more than 64 outputs", path);
+    return rc_err_set(e, RC_ERR_SHAPE, "%s has %d inputs, the data %d", path, g->n_inputs, s->n_inputs);
+  if (g->n_outputs > 64) return rc_err_set(e, RC_ERR_UNSUPPORTED, "%s: more than 64 outputs", path);
   rc_tensor shapes[CLI_MAX_DATA];
   cli_samples_shapes(s, batch, shapes);
   RC_TRY(rc_plan_init(&r->plan, g, shapes, NULL, e));
   for (int j = 0; j < g->n_outputs; j++) {
     const rc_tensor *t = rc_plan_tensor(r->plan, g->outputs[j]);
     if (t->rank < 1 || t->dims[0] != batch)
-      return rc__fail(e, RC_ERR_SHAPE, "%s: output '%s' does not have the batch as its first axis", path,
+      return rc_err_set(e, RC_ERR_SHAPE, "%s: output '%s' does not have the batch as its first axis", path,
                       g->values[g->outputs[j]].name);
     size_t per = rc_tensor_nbytes(t) / (size_t)batch;
     r->outs[j] = rc__malloc(per * (size_t)s->n + 1);
-    if (!r->outs[j]) return rc__fail(e, RC_ERR_NOMEM, "out of memory for the outputs of %s", path);
+    if (!r->outs[j]) return rc_err_set(e, RC_ERR_NOMEM, "out of memory for the outputs of %s", path);
     r->n_outs = j + 1;
   }
   return rc__run_dataset(r->plan, d, g->outputs, g->n_outputs, r->outs, e);
@@ -160,7 +160,7 @@ static rc_status logits_of(const run_result *r, int64_t *k, rc_err *e) {
   const rc_graph *g = &r->model->graph;
   const rc_tensor *t = rc_plan_tensor(r->plan, g->outputs[0]);
   if (t->dtype != RC_DTYPE_FLOAT || t->rank != 2)
-    return rc__fail(e, RC_ERR_SHAPE, "%s: accuracy needs a float (N, classes) first output; '%s' is %s of rank %d",
+    return rc_err_set(e, RC_ERR_SHAPE, "%s: accuracy needs a float (N, classes) first output; '%s' is %s of rank %d",
                     g->path, g->values[g->outputs[0]].name, rc_dtype_name(t->dtype), t->rank);
   *k = t->dims[1];
   return RC_OK;
@@ -300,7 +300,7 @@ int rc_cmd_eval(int argc, char **argv) {
       int64_t k2 = 0;
       if (run_model(&ref, a.ref, &s, batch, &d, &e) != RC_OK || logits_of(&ref, &k2, &e) != RC_OK) goto out;
       if (k2 != k) {
-        rc__fail(&e, RC_ERR_SHAPE, "%s has %lld classes, %s %lld", a.model, (long long)k, a.ref, (long long)k2);
+        rc_err_set(&e, RC_ERR_SHAPE, "%s has %lld classes, %s %lld", a.model, (long long)k, a.ref, (long long)k2);
         goto out;
       }
       ref_logits = ref.outs[0];

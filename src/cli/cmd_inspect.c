@@ -205,7 +205,7 @@ static rc_status decide(const rc_model *m, const rc_weight_info *w, int n_w, con
   rc_status s = RC_OK;
   f->masks = rc__calloc((size_t)n_w + 1, sizeof *f->masks);
   f->ranges = rc__calloc((size_t)n_gr + 1, sizeof *f->ranges);
-  if (!f->masks || !f->ranges) s = rc__fail(e, RC_ERR_NOMEM, "out of memory");
+  if (!f->masks || !f->ranges) s = rc_err_set(e, RC_ERR_NOMEM, "out of memory");
   for (int i = 0; s == RC_OK && i < n_gr; i++) {
     s = rc__grid_range(g, &notes, gr[i].is_weight ? gr[i].value : -1, gr[i].dtype, g->values[gr[i].value].name,
                        &f->ranges[i], e);

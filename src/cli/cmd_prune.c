@@ -6,7 +6,7 @@
 #include <string.h>
 
 #include "cli/cli.h"
-#include "compress/prune.h"
+#include "recoup/prune.h"
 
 static void usage(FILE *f) {
   fprintf(f,
@@ -194,7 +194,8 @@ int rc_cmd_prune(int argc, char **argv) {
                                            {"json", no_argument, NULL, O_JSON},
                                            {"help", no_argument, NULL, 'h'},
                                            {NULL, 0, NULL, 0}};
-  rc_prune_opts o = {0};
+  rc_prune_opts o;
+  rc_prune_opts_init(&o);
   const char *out = NULL;
   int json = 0, c;
   optind = 1;

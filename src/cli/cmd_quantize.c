@@ -149,7 +149,7 @@ static int parse_args(quantize_args *a, int argc, char **argv) {
   memset(a, 0, sizeof *a);
   cli_data_opts_init(&a->data);
   a->seed = 1;
-  rc_quant_config_defaults(&a->cfg);
+  rc_quant_config_init(&a->cfg);
   int pr = cli_parse_options(argc, argv, longopts, "quantize", apply_option_ctx, a, usage);
   if (pr) return pr;
   if (optind != argc - 1) return cli_usage_error("quantize", "expects exactly one DENSE.onnx");
@@ -184,13 +184,13 @@ static rc_status run_first_output(first_output *o, const rc_graph *g, const cli_
   const rc_tensor *t = rc_plan_tensor(p, g->outputs[0]);
   rc_status st = RC_OK;
   if (t->dtype != RC_DTYPE_FLOAT || t->rank < 1 || t->dims[0] != batch)
-    st = rc__fail(e, RC_ERR_SHAPE, "%s: first output '%s' is not float32 with the batch first", g->path,
+    st = rc_err_set(e, RC_ERR_SHAPE, "%s: first output '%s' is not float32 with the batch first", g->path,
                   g->values[g->outputs[0]].name);
   if (st == RC_OK) {
     o->per = rc_tensor_numel(t) / batch;
     o->k = t->rank == 2 ? t->dims[1] : 0;
     o->data = rc__malloc(sizeof(float) * (size_t)(o->per * d->n) + 1);
-    if (!o->data) st = rc__fail(e, RC_ERR_NOMEM, "out of memory for the outputs of %s", g->path);
+    if (!o->data) st = rc_err_set(e, RC_ERR_NOMEM, "out of memory for the outputs of %s", g->path);
   }
   if (st == RC_OK) {
     void *outs[1] = {o->data};
@@ -214,16 +214,16 @@ static rc_status verify_written(comparison *c, const char *out, const rc_graph *
   rc_model *q = NULL;
   first_output fo = {0}, qo = {0};
   rc_status st = rc_model_load(&q, out, NULL, e);
-  if (st != RC_OK) rc__wrap(e, "the written model does not load back");
+  if (st != RC_OK) rc_err_prefix(e, "the written model does not load back");
   if (st == RC_OK) st = run_first_output(&fo, dense, s, d, batch, e);
   if (st == RC_OK) st = run_first_output(&qo, &q->graph, s, d, batch, e);
   if (st == RC_OK && qo.per != fo.per)
-    st = rc__fail(e, RC_ERR_SHAPE, "%s: first output has %lld values per sample, the float model %lld", out,
+    st = rc_err_set(e, RC_ERR_SHAPE, "%s: first output has %lld values per sample, the float model %lld", out,
                   (long long)qo.per, (long long)fo.per);
   for (int64_t i = 0; st == RC_OK && i < fo.per * d->n; i++) {
     double diff = fabs((double)qo.data[i] - fo.data[i]);
     if (!(diff == diff))
-      st = rc__fail(e, RC_ERR_NUMERIC, "%s: output value %lld is not finite", out, (long long)i);
+      st = rc_err_set(e, RC_ERR_NUMERIC, "%s: output value %lld is not finite", out, (long long)i);
     else if (diff > c->max_abs_diff)
       c->max_abs_diff = diff;
   }
@@ -382,7 +382,7 @@ int rc_cmd_quantize(int argc, char **argv) {
   rc = RC_EXIT_OK;
 out:
   if (rc != RC_EXIT_OK) {
-    if (written && unlink(a.out) == 0) rc__wrap(&e, "removed %s, which failed its check", a.out);
+    if (written && unlink(a.out) == 0) rc_err_prefix(&e, "removed %s, which failed its check", a.out);
     cli_fail(&e);
   }
   rc_quant_report_free(&rep);

@@ -121,7 +121,7 @@ int rc_cmd_synthesize(int argc, char **argv) {
   rc_synth_stats stats;
   int rc = RC_EXIT_FAIL;
   if (same_file(a.out, a.teacher)) {
-    rc__fail(&e, RC_ERR_INVALID, "--out %s is the teacher: refusing to overwrite an input", a.out);
+    rc_err_set(&e, RC_ERR_INVALID, "--out %s is the teacher: refusing to overwrite an input", a.out);
     goto out;
   }
   if (rc_model_load(&teacher, a.teacher, NULL, &e) != RC_OK) goto out;

@@ -1,6 +1,7 @@
 /* Batch manifests: reading, checking and turning jobs into distill arguments. */
 #define _DEFAULT_SOURCE /* realpath */
 #include "cli/manifest.h"
+#include "cli/cli.h"
 
 #include <cJSON.h>
 #include <errno.h>
@@ -43,11 +44,11 @@ static rc_status push(strlist *l, const char *s, rc_err *e) {
   if (l->n == l->cap) {
     int cap = l->cap ? 2 * l->cap : 16;
     char **v = rc__realloc(l->v, (size_t)cap * sizeof *v);
-    if (!v) return rc__fail(e, RC_ERR_NOMEM, "out of memory reading the manifest");
+    if (!v) return rc_err_set(e, RC_ERR_NOMEM, "out of memory reading the manifest");
     l->v = v;
     l->cap = cap;
   }
-  if (!(l->v[l->n] = rc__strdup(s))) return rc__fail(e, RC_ERR_NOMEM, "out of memory reading the manifest");
+  if (!(l->v[l->n] = rc__strdup(s))) return rc_err_set(e, RC_ERR_NOMEM, "out of memory reading the manifest");
   l->n++;
   return RC_OK;
 }
@@ -67,15 +68,15 @@ typedef struct ctx {
   rc_err *e;
 } ctx;
 
-static rc_status field_error(ctx *c, const char *field, const char *fmt, ...) RC_PRINTF(3, 4);
+static rc_status field_error(ctx *c, const char *field, const char *fmt, ...) CLI_PRINTF(3, 4);
 static rc_status field_error(ctx *c, const char *field, const char *fmt, ...) {
   char msg[320];
   va_list ap;
   va_start(ap, fmt);
   vsnprintf(msg, sizeof msg, fmt, ap);
   va_end(ap);
-  if (field) return rc__fail(c->e, RC_ERR_INVALID, "manifest %s: %s: field '%s': %s", c->file, c->where, field, msg);
-  return rc__fail(c->e, RC_ERR_INVALID, "manifest %s: %s: %s", c->file, c->where, msg);
+  if (field) return rc_err_set(c->e, RC_ERR_INVALID, "manifest %s: %s: field '%s': %s", c->file, c->where, field, msg);
+  return rc_err_set(c->e, RC_ERR_INVALID, "manifest %s: %s: %s", c->file, c->where, msg);
 }
 
 static const char *type_name(const cJSON *v) {
@@ -328,14 +329,14 @@ static rc_status add_option(ctx *c, cli_job *j, const key_def *k, const cJSON *v
         char resolved[PATH_MAX];
         RC_TRY(resolve_path(c, "out", v->valuestring, 0, resolved));
         if (!(j->out = rc__strdup(resolved)) || !(j->out_given = rc__strdup(v->valuestring)))
-          return rc__fail(c->e, RC_ERR_NOMEM, "out of memory");
+          return rc_err_set(c->e, RC_ERR_NOMEM, "out of memory");
         RC_TRY(push(args, opt, c->e));
         return push(args, resolved, c->e);
       }
       if (!strcmp(k->key, "teacher") && !(j->teacher_given = rc__strdup(v->valuestring)))
-        return rc__fail(c->e, RC_ERR_NOMEM, "out of memory");
+        return rc_err_set(c->e, RC_ERR_NOMEM, "out of memory");
       if (!strcmp(k->key, "student") && !(j->student_given = rc__strdup(v->valuestring)))
-        return rc__fail(c->e, RC_ERR_NOMEM, "out of memory");
+        return rc_err_set(c->e, RC_ERR_NOMEM, "out of memory");
       return add_input(c, args, ins, opt, k->key, NULL, v->valuestring);
     case CLI_OPT_DATA: {
       if (cJSON_IsString(v)) return add_input(c, args, ins, opt, k->key, NULL, v->valuestring);
@@ -397,7 +398,7 @@ static rc_status build_job(ctx *c, cli_job *j, int index, const cJSON *job, cons
     return field_error(c, "name", "'%.100s' is not a usable name (1 to %d letters, digits, '_', '-' or '.', "
                        "not starting with '.' or '-'; it names log and report files)", name->valuestring, MAX_NAME);
   snprintf(c->where, sizeof c->where, "job '%s' (jobs[%d])", name->valuestring, index);
-  if (!(j->name = rc__strdup(name->valuestring))) return rc__fail(c->e, RC_ERR_NOMEM, "out of memory");
+  if (!(j->name = rc__strdup(name->valuestring))) return rc_err_set(c->e, RC_ERR_NOMEM, "out of memory");
   RC_TRY(check_object(c, job, 1));
   static const char *const required[] = {"teacher", "student", "data", "out"};
   for (int i = 0; i < 4; i++)
@@ -457,27 +458,27 @@ static rc_status check_across_jobs(ctx *c, const cli_manifest *m) {
 
 static rc_status read_file(const char *path, char **text, size_t *len, rc_err *e) {
   FILE *f = fopen(path, "rb");
-  if (!f) return rc__fail(e, RC_ERR_IO, "manifest %s: %s", path, strerror(errno));
+  if (!f) return rc_err_set(e, RC_ERR_IO, "manifest %s: %s", path, strerror(errno));
   struct stat st;
   if (fstat(fileno(f), &st) != 0 || !S_ISREG(st.st_mode)) {
     fclose(f);
-    return rc__fail(e, RC_ERR_IO, "manifest %s: not a regular file", path);
+    return rc_err_set(e, RC_ERR_IO, "manifest %s: not a regular file", path);
   }
   if (st.st_size > MANIFEST_MAX_BYTES) {
     fclose(f);
-    return rc__fail(e, RC_ERR_LIMIT, "manifest %s: larger than %d MiB", path, MANIFEST_MAX_BYTES >> 20);
+    return rc_err_set(e, RC_ERR_LIMIT, "manifest %s: larger than %d MiB", path, MANIFEST_MAX_BYTES >> 20);
   }
   char *buf = rc__malloc((size_t)st.st_size + 1);
   if (!buf) {
     fclose(f);
-    return rc__fail(e, RC_ERR_NOMEM, "manifest %s: out of memory", path);
+    return rc_err_set(e, RC_ERR_NOMEM, "manifest %s: out of memory", path);
   }
   size_t n = fread(buf, 1, (size_t)st.st_size, f);
   int bad = ferror(f);
   fclose(f);
   if (bad || n != (size_t)st.st_size) {
     rc__free(buf);
-    return rc__fail(e, RC_ERR_IO, "manifest %s: read error", path);
+    return rc_err_set(e, RC_ERR_IO, "manifest %s: read error", path);
   }
   buf[n] = '\0';
   *text = buf;
@@ -490,7 +491,7 @@ static rc_status parse_error(const char *path, const char *text, rc_err *e) {
   int line = 1;
   if (at)
     for (const char *p = text; p < at && *p; p++) line += *p == '\n';
-  return rc__fail(e, RC_ERR_FORMAT, "manifest %s: not valid JSON (near line %d)", path, line);
+  return rc_err_set(e, RC_ERR_FORMAT, "manifest %s: not valid JSON (near line %d)", path, line);
 }
 
 static rc_status load_jobs(cli_manifest *m, ctx *c, const cJSON *root) {
@@ -503,7 +504,7 @@ static rc_status load_jobs(cli_manifest *m, ctx *c, const cJSON *root) {
                                                                                    "\"jobs\")");
   const cJSON *title = cJSON_GetObjectItemCaseSensitive(root, "title");
   if (title && !cJSON_IsString(title)) return field_error(c, "title", "expected a string, got %s", type_name(title));
-  if (title && !(m->title = rc__strdup(title->valuestring))) return rc__fail(c->e, RC_ERR_NOMEM, "out of memory");
+  if (title && !(m->title = rc__strdup(title->valuestring))) return rc_err_set(c->e, RC_ERR_NOMEM, "out of memory");
   const cJSON *defaults = cJSON_GetObjectItemCaseSensitive(root, "defaults");
   snprintf(c->where, sizeof c->where, "defaults");
   if (defaults) {
@@ -517,7 +518,7 @@ static rc_status load_jobs(cli_manifest *m, ctx *c, const cJSON *root) {
   int n = cJSON_GetArraySize(jobs);
   if (n == 0) return field_error(c, "jobs", "no jobs");
   if (n > MAX_JOBS) return field_error(c, "jobs", "more than %d jobs", MAX_JOBS);
-  if (!(m->jobs = rc__calloc((size_t)n, sizeof *m->jobs))) return rc__fail(c->e, RC_ERR_NOMEM, "out of memory");
+  if (!(m->jobs = rc__calloc((size_t)n, sizeof *m->jobs))) return rc_err_set(c->e, RC_ERR_NOMEM, "out of memory");
   int i = 0;
   cJSON_ArrayForEach(it, jobs) {
     m->n_jobs = i + 1;
@@ -539,7 +540,7 @@ rc_status cli_manifest_load(cli_manifest *m, const char *path, int allow_outside
   char real[PATH_MAX];
   if (!realpath(path, real)) {
     rc__free(text);
-    return rc__fail(e, RC_ERR_IO, "manifest %s: %s", path, strerror(errno));
+    return rc_err_set(e, RC_ERR_IO, "manifest %s: %s", path, strerror(errno));
   }
   char *slash = strrchr(real, '/');
   if (slash == real) slash[1] = '\0';
@@ -548,7 +549,7 @@ rc_status cli_manifest_load(cli_manifest *m, const char *path, int allow_outside
   m->dir = rc__strdup(real);
   cJSON *root = cJSON_ParseWithLength(text, len);
   rc_status s;
-  if (!m->path || !m->dir) s = rc__fail(e, RC_ERR_NOMEM, "out of memory");
+  if (!m->path || !m->dir) s = rc_err_set(e, RC_ERR_NOMEM, "out of memory");
   else if (!root) s = parse_error(path, text, e);
   else {
     ctx c = {path, "", m->dir, allow_outside, e};

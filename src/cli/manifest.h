@@ -20,7 +20,7 @@
 #ifndef RC_CLI_MANIFEST_H
 #define RC_CLI_MANIFEST_H
 
-#include "core/status.h"
+#include "recoup/status.h"
 
 typedef struct cli_job {
   int index;          /* position in the manifest's "jobs", 0-based */

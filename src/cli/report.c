@@ -16,10 +16,7 @@
 #include "cli/cli.h"
 #include "cli/sbuf.h"
 #include "cli/svg.h"
-#include "core/alloc.h"
-#include "core/file.h"
-#include "core/fmt.h"
-#include "core/path.h"
+#include "recoup/util.h"
 
 /* Our palette: distinct in hue and lightness (also for the common forms of
  * colour blindness), every colour dark enough for text on white. */
@@ -39,16 +36,16 @@
 static rc_status write_sbuf(const char *dir, const char *name, cli_sbuf *b, rc_err *e) {
   char path[4200];
   snprintf(path, sizeof path, "%s/%s", dir, name);
-  if (b->oom) return rc__fail(e, RC_ERR_NOMEM, "%s: out of memory", path);
-  return rc__write_atomic(path, b->p ? b->p : "", b->n, e);
+  if (b->oom) return rc_err_set(e, RC_ERR_NOMEM, "%s: out of memory", path);
+  return rc_file_write_atomic(path, b->p ? b->p : "", b->n, e);
 }
 
 static rc_status write_json(const char *path, const cJSON *j, rc_err *e) {
   char *text = cJSON_Print(j);
-  if (!text) return rc__fail(e, RC_ERR_NOMEM, "%s: out of memory", path);
+  if (!text) return rc_err_set(e, RC_ERR_NOMEM, "%s: out of memory", path);
   size_t n = strlen(text);
   text[n] = '\n'; /* cJSON_Print's NUL becomes the final newline */
-  rc_status s = rc__write_atomic(path, text, n + 1, e);
+  rc_status s = rc_file_write_atomic(path, text, n + 1, e);
   free(text);
   return s;
 }
@@ -57,9 +54,9 @@ static rc_status make_dir(const char *path, rc_err *e) {
   if (mkdir(path, 0755) == 0 || errno == EEXIST) {
     struct stat st;
     if (stat(path, &st) == 0 && S_ISDIR(st.st_mode)) return RC_OK;
-    return rc__fail(e, RC_ERR_IO, "report folder %s: exists and is not a folder", path);
+    return rc_err_set(e, RC_ERR_IO, "report folder %s: exists and is not a folder", path);
   }
-  return rc__fail(e, RC_ERR_IO, "report folder %s: %s", path, strerror(errno));
+  return rc_err_set(e, RC_ERR_IO, "report folder %s: %s", path, strerror(errno));
 }
 
 int cli_make_parents(const char *file) {
@@ -77,13 +74,13 @@ int cli_make_parents(const char *file) {
 rc_status cli_report_prepare(const char *dir, int with_logs, rc_err *e) {
   char path[4200];
   snprintf(path, sizeof path, "%s", dir);
-  if (cli_make_parents(path) != 0) return rc__fail(e, RC_ERR_IO, "report folder %s: %s", dir, strerror(errno));
+  if (cli_make_parents(path) != 0) return rc_err_set(e, RC_ERR_IO, "report folder %s: %s", dir, strerror(errno));
   RC_TRY(make_dir(path, e));
   snprintf(path, sizeof path, "%s/logs", dir);
   if (with_logs) RC_TRY(make_dir(path, e));
   snprintf(path, sizeof path, "%s/jobs", dir);
   RC_TRY(make_dir(path, e));
-  if (access(dir, W_OK) != 0) return rc__fail(e, RC_ERR_IO, "report folder %s: not writable", dir);
+  if (access(dir, W_OK) != 0) return rc_err_set(e, RC_ERR_IO, "report folder %s: not writable", dir);
   return RC_OK;
 }
 
@@ -93,13 +90,13 @@ rc_status cli_report_refuse_inputs(const char *dir, const char *const *names, in
   char path[4200];
   for (size_t i = 0; i < sizeof fixed / sizeof fixed[0]; i++) {
     snprintf(path, sizeof path, "%s/%s", dir, fixed[i]);
-    RC_TRY(rc__path_refuse_inputs("--report", path, inputs, labels, n_inputs, e));
+    RC_TRY(rc_path_refuse_inputs("--report", path, inputs, labels, n_inputs, e));
   }
   for (int k = 0; k < n_names; k++) {
     snprintf(path, sizeof path, "%s/jobs/%s.json", dir, names[k]);
-    RC_TRY(rc__path_refuse_inputs("--report", path, inputs, labels, n_inputs, e));
+    RC_TRY(rc_path_refuse_inputs("--report", path, inputs, labels, n_inputs, e));
     snprintf(path, sizeof path, "%s/logs/%s.log", dir, names[k]);
-    RC_TRY(rc__path_refuse_inputs("--report", path, inputs, labels, n_inputs, e));
+    RC_TRY(rc_path_refuse_inputs("--report", path, inputs, labels, n_inputs, e));
   }
   return RC_OK;
 }
@@ -108,7 +105,7 @@ rc_status cli_report_read(const char *dir, cJSON **report, rc_err *e) {
   char path[4200];
   snprintf(path, sizeof path, "%s/report.json", dir);
   FILE *f = fopen(path, "rb");
-  if (!f) return rc__fail(e, RC_ERR_IO, "%s: %s", path, strerror(errno));
+  if (!f) return rc_err_set(e, RC_ERR_IO, "%s: %s", path, strerror(errno));
   cli_sbuf b = {0};
   char buf[1 << 14];
   size_t n;
@@ -116,15 +113,15 @@ rc_status cli_report_read(const char *dir, cJSON **report, rc_err *e) {
   int bad = ferror(f) || b.n >= (64u << 20);
   fclose(f);
   if (bad || b.oom) {
-    rc__free(b.p);
-    return rc__fail(e, RC_ERR_IO, "%s: read error or too large", path);
+    free(b.p);
+    return rc_err_set(e, RC_ERR_IO, "%s: read error or too large", path);
   }
   *report = b.p ? cJSON_Parse(b.p) : NULL;
-  rc__free(b.p);
+  free(b.p);
   if (!*report || !cJSON_IsArray(cJSON_GetObjectItemCaseSensitive(*report, "jobs"))) {
     cJSON_Delete(*report);
     *report = NULL;
-    return rc__fail(e, RC_ERR_FORMAT, "%s: not a recoup report (expected an object with \"jobs\")", path);
+    return rc_err_set(e, RC_ERR_FORMAT, "%s: not a recoup report (expected an object with \"jobs\")", path);
   }
   return RC_OK;
 }
@@ -218,7 +215,7 @@ static void pct(char *buf, size_t n, double v) {
 /* A figure that can be small (KL, loss): significant digits, "–" when absent. */
 static const char *fig(char *buf, size_t n, double v) {
   if (isnan(v)) snprintf(buf, n, "–");
-  else rc__fmt_sig(buf, n, v, RC_FMT_SIG, 0);
+  else rc_fmt_sig(buf, n, v, RC_FMT_SIG, 0);
   return buf;
 }
 
@@ -226,7 +223,7 @@ static const char *fig(char *buf, size_t n, double v) {
 static const char *delta_pt(char *buf, size_t n, double delta) {
   char d[32];
   if (isnan(delta)) snprintf(buf, n, "–");
-  else snprintf(buf, n, "%s pt", rc__fmt_sig(d, sizeof d, 100 * delta, 3, 1));
+  else snprintf(buf, n, "%s pt", rc_fmt_sig(d, sizeof d, 100 * delta, 3, 1));
   return buf;
 }
 
@@ -373,7 +370,7 @@ static int history_read(history *h, const cJSON *rec, const char *vm) {
   h->steps = num(rec, "steps");
   if (isnan(h->steps) || h->steps < 1) h->steps = ne > 0 ? ne : 1;
   int cap = (nt > ne ? nt : ne) + 2;
-  h->ls = rc__calloc((size_t)cap * 4, sizeof(double));
+  h->ls = calloc((size_t)cap * 4, sizeof(double));
   if (!h->ls) return 0;
   h->lv = h->ls + cap, h->vs = h->lv + cap, h->vv = h->vs + cap;
   for (int i = 0; i < nt; i++) {
@@ -448,16 +445,16 @@ static void history_chart(cli_sbuf *b, const cJSON *rec) {
     cli_sb_printf(&val, "%.1f,%.1f ", x, y);
     cli_sb_printf(&marks, "<circle cx=\"%.1f\" cy=\"%.1f\" r=\"3.5\" fill=\"%s\"/>", x, y, C_VALID);
   }
-  rc__free(h.ls);
+  free(h.ls);
   cli_sb_printf(b, "<polyline data-series=\"loss\" fill=\"none\" stroke=\"%s\" stroke-width=\"2\" points=\"%s\"/>",
             C_LOSS, loss.p ? loss.p : "");
   cli_sb_printf(b, "<polyline data-series=\"validation\" fill=\"none\" stroke=\"%s\" stroke-width=\"2.5\" "
             "stroke-dasharray=\"7 4\" points=\"%s\"/>", C_VALID, val.p ? val.p : "");
   if (marks.p) cli_sb_add(b, marks.p, marks.n);
   b->oom |= loss.oom | val.oom | marks.oom;
-  rc__free(loss.p);
-  rc__free(val.p);
-  rc__free(marks.p);
+  free(loss.p);
+  free(val.p);
+  free(marks.p);
   cli_svg_legend_item(b, f.x0, 24, C_LOSS, "line", "training loss (left)");
   cli_svg_legend_item(b, f.x0 + 200, 24, C_VALID, "dashed", "validation (right)");
   cli_sb_add(b, "</svg>", 6);
@@ -760,7 +757,7 @@ static rc_status write_escaped(const char *dir, const cJSON *meta, const cJSON *
  * escaped (cli_json_escape_tree), HTML then adds its entities. */
 rc_status cli_report_write(const char *dir, const cJSON *meta, const cJSON *records, rc_err *e) {
   cJSON *m = cJSON_Duplicate(meta, 1), *r = cJSON_Duplicate(records, 1);
-  rc_status s = m && r ? RC_OK : rc__fail(e, RC_ERR_NOMEM, "out of memory");
+  rc_status s = m && r ? RC_OK : rc_err_set(e, RC_ERR_NOMEM, "out of memory");
   if (s == RC_OK) {
     cli_json_escape_tree(m);
     cli_json_escape_tree(r);
@@ -779,7 +776,7 @@ static rc_status write_escaped(const char *dir, const cJSON *meta, const cJSON *
     RC_TRY(write_json(path, r, e));
   }
   cJSON *all = cJSON_CreateObject();
-  if (!all) return rc__fail(e, RC_ERR_NOMEM, "out of memory");
+  if (!all) return rc_err_set(e, RC_ERR_NOMEM, "out of memory");
   cJSON_AddItemToObject(all, "meta", cJSON_Duplicate(meta, 1));
   cJSON_AddItemToObject(all, "jobs", cJSON_Duplicate(records, 1));
   snprintf(path, sizeof path, "%s/report.json", dir);
@@ -800,6 +797,6 @@ static rc_status write_escaped(const char *dir, const cJSON *meta, const cJSON *
     write_html(&b, title, meta, records);
     s = write_sbuf(dir, "report.html", &b, e);
   }
-  rc__free(b.p);
+  free(b.p);
   return s;
 }

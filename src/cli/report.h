@@ -16,7 +16,7 @@
 #include <cJSON.h>
 #include <stddef.h>
 
-#include "core/status.h"
+#include "recoup/status.h"
 
 /* Job outcomes as written in records. */
 #define CLI_JOB_OK "ok"

@@ -3,16 +3,16 @@
 
 #include <stdarg.h>
 #include <stdio.h>
+#include <stdlib.h>
 #include <string.h>
 
-#include "core/alloc.h"
 
 void cli_sb_add(cli_sbuf *b, const char *s, size_t n) {
   if (b->oom) return;
   if (b->n + n + 1 > b->cap) {
     size_t cap = b->cap ? b->cap : 4096;
     while (cap < b->n + n + 1) cap *= 2;
-    char *p = rc__realloc(b->p, cap);
+    char *p = realloc(b->p, cap);
     if (!p) {
       b->oom = 1;
       return;
@@ -36,7 +36,7 @@ void cli_sb_printf(cli_sbuf *b, const char *fmt, ...) {
     cli_sb_add(b, small, (size_t)n);
     return;
   }
-  char *big = rc__malloc((size_t)n + 1);
+  char *big = malloc((size_t)n + 1);
   if (!big) {
     b->oom = 1;
     return;
@@ -45,7 +45,7 @@ void cli_sb_printf(cli_sbuf *b, const char *fmt, ...) {
   vsnprintf(big, (size_t)n + 1, fmt, ap);
   va_end(ap);
   cli_sb_add(b, big, (size_t)n);
-  rc__free(big);
+  free(big);
 }
 
 /* Text for HTML and SVG: the five characters with meaning escaped. */

@@ -5,7 +5,8 @@
 
 #include <stddef.h>
 
-#include "core/status.h"
+#include "cli/cli.h"
+#include "recoup/status.h"
 
 typedef struct cli_sbuf {
   char *p;
@@ -14,7 +15,7 @@ typedef struct cli_sbuf {
 } cli_sbuf;
 
 void cli_sb_add(cli_sbuf *b, const char *s, size_t n);
-void cli_sb_printf(cli_sbuf *b, const char *fmt, ...) RC_PRINTF(2, 3);
+void cli_sb_printf(cli_sbuf *b, const char *fmt, ...) CLI_PRINTF(2, 3);
 /* Text for HTML and SVG: the five characters with meaning escaped. */
 void cli_sb_esc(cli_sbuf *b, const char *s);
 

@@ -17,7 +17,7 @@ void cli_sha256_hex(cli_sha256 *s, char hex[65]) {
 
 rc_status cli_sha256_file(const char *path, char hex[65], rc_err *e) {
   FILE *f = fopen(path, "rb");
-  if (!f) return rc__fail(e, RC_ERR_IO, "%s: %s", path, strerror(errno));
+  if (!f) return rc_err_set(e, RC_ERR_IO, "%s: %s", path, strerror(errno));
   cli_sha256 s;
   cli_sha256_init(&s);
   unsigned char buf[1 << 16];
@@ -25,7 +25,7 @@ rc_status cli_sha256_file(const char *path, char hex[65], rc_err *e) {
   while ((n = fread(buf, 1, sizeof buf, f)) > 0) cli_sha256_update(&s, buf, n);
   int bad = ferror(f);
   fclose(f);
-  if (bad) return rc__fail(e, RC_ERR_IO, "%s: read error", path);
+  if (bad) return rc_err_set(e, RC_ERR_IO, "%s: read error", path);
   cli_sha256_hex(&s, hex);
   return RC_OK;
 }

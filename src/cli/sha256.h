@@ -10,7 +10,7 @@
 #include <nettle/sha2.h>
 #include <stddef.h>
 
-#include "core/status.h"
+#include "recoup/status.h"
 
 typedef struct cli_sha256 {
   struct sha256_ctx ctx;

@@ -75,6 +75,11 @@ static void note_append(rc_prune_layer *pl, const char *msg) {
   snprintf(pl->note + len, sizeof pl->note - len, "%s%s", len ? "; " : "", msg);
 }
 
+void rc_prune_opts_init(rc_prune_opts *o) {
+  memset(o, 0, sizeof *o);
+  o->scope = RC_PRUNE_GLOBAL;
+}
+
 rc_status rc_prune_model(rc_model *m, const rc_prune_opts *o, rc_prune_report *r, int **changed,
                          int *n_changed, rc_err *e) {
   memset(r, 0, sizeof *r);

@@ -9,7 +9,7 @@
  * - activations: asymmetric per-tensor uint8 whose range always includes 0,
  *   so zero (padding, ReLU's floor) is represented exactly; a graph output's
  *   range is stretched by the output margin (our choice, see
- *   rc_quant_config_defaults);
+ *   rc_quant_config_init);
  * - biases: int32 with scale = input scale x weight scale per channel, the
  *   scale of the integer accumulator, zero point 0. */
 #include "compress/quantize.h"
@@ -27,7 +27,7 @@
 #define HIST_BINS 4096
 #define INT32_LIMIT 2147483647.0
 
-void rc_quant_config_defaults(rc_quant_config *c) {
+void rc_quant_config_init(rc_quant_config *c) {
   c->weight_bits = 8;
   c->activation_bits = 8;
   c->calib = RC_CALIB_PERCENTILE;

@@ -6,6 +6,8 @@
 
 #include <stddef.h>
 
+#include "recoup/util.h"
+
 /* v with `sig` significant digits (1..15): fixed notation when
  * 1e-3 <= |v| < 1e6 (0.5 -> "0.5000", 123456 -> "123456"), scientific
  * otherwise (1e-7 -> "1.000e-7"); 0 -> "0"; NaN -> "nan", infinities
@@ -13,7 +15,6 @@
  * Returns buf, so it can sit in a printf argument list. */
 char *rc__fmt_sig(char *buf, size_t n, double v, int sig, int plus);
 
-/* The digits most figures need (4 significant). */
-#define RC_FMT_SIG 4
+/* RC_FMT_SIG, the digits most figures need, is in recoup/util.h. */
 
 #endif

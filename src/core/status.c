@@ -17,7 +17,7 @@ const char *rc_strerror(int status) {
   return "unknown status";
 }
 
-rc_status rc__fail(rc_err *e, rc_status code, const char *fmt, ...) {
+rc_status rc_err_set(rc_err *e, rc_status code, const char *fmt, ...) {
   if (e) {
     /* Keep the first, most specific message: callers higher up may add context
      * with rc__wrap but never overwrite what went wrong. */
@@ -33,7 +33,7 @@ rc_status rc__fail(rc_err *e, rc_status code, const char *fmt, ...) {
   return code;
 }
 
-rc_status rc__wrap(rc_err *e, const char *fmt, ...) {
+rc_status rc_err_prefix(rc_err *e, const char *fmt, ...) {
   if (!e) return RC_ERR_INVALID;
   char prefix[256];
   va_list ap;

@@ -11,15 +11,13 @@
 #define RC_PRINTF(a, b)
 #endif
 
-/* Set e's code and message; returns code so callers can `return rc__fail(...)`. */
-rc_status rc__fail(rc_err *e, rc_status code, const char *fmt, ...) RC_PRINTF(3, 4);
-/* Prefix the message already in e with context ("file.onnx: node 'x'"). */
-rc_status rc__wrap(rc_err *e, const char *fmt, ...) RC_PRINTF(2, 3);
+/* The library's short names for rc_err_set and rc_err_prefix
+ * (recoup/status.h): set e's code and message, returning the code so callers
+ * can `return rc__fail(...)`; prefix the message already in e with context
+ * ("file.onnx: node 'x'"). */
+#define rc__fail rc_err_set
+#define rc__wrap rc_err_prefix
 
-#define RC_TRY(expr)                 \
-  do {                               \
-    rc_status rc_try_s_ = (expr);    \
-    if (rc_try_s_ != RC_OK) return rc_try_s_; \
-  } while (0)
+/* RC_TRY is in recoup/status.h. */
 
 #endif

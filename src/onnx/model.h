@@ -9,28 +9,16 @@
 
 #include "core/status.h"
 #include "ir/ir.h"
+#include "recoup/model.h"
 
-/* Limits on what a file may ask for, checked before anything is allocated. */
-typedef struct rc_load_limits {
-  size_t max_file_bytes;      /* whole .onnx file */
-  size_t max_tensor_bytes;    /* one initializer or attribute tensor */
-  size_t max_total_bytes;     /* every initializer together, external data included */
-  int max_nodes;
-  int max_rank;               /* at most RC_MAX_RANK */
-  size_t max_string;          /* one name or string attribute */
-} rc_load_limits;
-
-/* Generous defaults for real models: 4 GiB file, 2 GiB tensor, 8 GiB total,
- * 1,000,000 nodes, rank 8, 64 KiB strings. */
-void rc_load_limits_default(rc_load_limits *l);
-
-typedef struct rc_model {
+/* The handle of recoup/model.h. */
+struct rc_model {
   rc_graph graph;
   void *proto;          /* Onnx__ModelProto*, opaque outside src/onnx */
   char *path;           /* as given to rc_model_load */
   char *dir;            /* folder that external data resolves against */
   size_t file_bytes;
-} rc_model;
+};
 
 /* Read path; limits may be NULL for the defaults. Refuses IR versions outside
  * 3..10, default-domain opsets outside 9..21, and external data that escapes
@@ -60,9 +48,9 @@ rc_status rc__model_load_mem_unbound(rc_model **out, const void *buf, size_t n, 
  * grid or range, is refused. The write goes to a temp file in path's folder, is flushed and
  * fsync'd, then renamed over path; on any failure path is left as it was.
  * Refuses to write over the file the model was read from. */
-rc_status rc_model_save(rc_model *m, const char *path, const int *changed, int n_changed, rc_err *e);
+RC_API rc_status rc_model_save(rc_model *m, const char *path, const int *changed, int n_changed, rc_err *e);
 
-void rc_model_free(rc_model *m);
+RC_API void rc_model_free(rc_model *m);
 
 /* ---- Editing the kept message (edit.c) ----
  * For tools that rewrite a model's structure (quantize). Edits change only

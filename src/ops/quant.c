@@ -156,7 +156,7 @@ static rc_status quantize_forward(const rc_kernel *k, rc_err *e) {
   quant_layout L;
   RC_TRY(quant_shape(n, (const rc_tensor *const *)k->in, &L, e));
   RC_TRY(quant_check_values(n, s, z, e));
-  int32_t lo, hi;
+  int32_t lo = 0, hi = 0; /* set for every integer dtype; -O3 cannot see that */
   rc__quant_range(y->dtype, &lo, &hi);
   const float *sv = s->data;
   for (int64_t i = 0; i < L.n; i++) {

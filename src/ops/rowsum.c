@@ -22,7 +22,7 @@ static double combine(float *acc) {
   return acc[0];
 }
 
-RC_DISPATCH double rc__row_sum(const float *x, int64_t n) {
+static RC_DISPATCH double row_sum(const float *x, int64_t n) {
   float acc[LANES] = {0};
   int64_t j = 0;
   for (; j + LANES <= n; j += LANES)
@@ -31,7 +31,7 @@ RC_DISPATCH double rc__row_sum(const float *x, int64_t n) {
   return combine(acc);
 }
 
-RC_DISPATCH double rc__row_sq_dev(const float *x, int64_t n, float m) {
+static RC_DISPATCH double row_sq_dev(const float *x, int64_t n, float m) {
   float acc[LANES] = {0};
   int64_t j = 0;
   for (; j + LANES <= n; j += LANES)
@@ -46,7 +46,7 @@ RC_DISPATCH double rc__row_sq_dev(const float *x, int64_t n, float m) {
   return combine(acc);
 }
 
-RC_DISPATCH double rc__row_dot_dev(const float *dy, const float *x, int64_t n, float m) {
+static RC_DISPATCH double row_dot_dev(const float *dy, const float *x, int64_t n, float m) {
   float acc[LANES] = {0};
   int64_t j = 0;
   for (; j + LANES <= n; j += LANES)
@@ -54,3 +54,9 @@ RC_DISPATCH double rc__row_dot_dev(const float *dy, const float *x, int64_t n, f
   for (int l = 0; j < n; j++, l++) acc[l] += dy[j] * (x[j] - m);
   return combine(acc);
 }
+
+/* The dispatched functions are file-local: GCC gives an exported cloned
+ * symbol default visibility whatever the preset, and these are internal. */
+double rc__row_sum(const float *x, int64_t n) { return row_sum(x, n); }
+double rc__row_sq_dev(const float *x, int64_t n, float m) { return row_sq_dev(x, n, m); }
+double rc__row_dot_dev(const float *dy, const float *x, int64_t n, float m) { return row_dot_dev(dy, x, n, m); }

@@ -18,6 +18,7 @@
 #include "plan/mask_rule.h"
 #include "recoup/log.h"
 #include "onnx/model.h"
+#include "recoup/distill.h"
 #include "train/evaluate.h"
 #include "train/features.h"
 #include "train/optim.h"
@@ -30,39 +31,6 @@ typedef enum rc_bn_mode {
   RC_BN_RECALIBRATE = 1, /* re-estimated over the training data first, then frozen */
   RC_BN_TRAIN = 2        /* batch statistics in training, running stats updated */
 } rc_bn_mode;
-
-typedef struct rc_distill_data {
-  const rc_tensor *inputs; /* one per student input (graph order), dims[0] = samples */
-  int n_inputs;
-  const int32_t *labels;   /* per sample, or NULL */
-  const rc_tensor *val_inputs; /* NULL: hold out val_split of `inputs` */
-  const int32_t *val_labels;
-  double val_split;
-  /* Per-output runs: regression targets and dense labels, indexed by sample
-   * of `inputs` (side) and of `val_inputs` (val_side). */
-  rc_output_side side, val_side;
-  /* Per input: converted to float32 per batch with norms[i] when its scale
-   * is non-zero (raw uint8/float16 sources, possibly file mappings); NULL
-   * when the inputs are ready as they are. sources/val_sources (may be NULL)
-   * are the arrays behind inputs/val_inputs, for releasing mapped pages. */
-  const rc_data_norm *norms;
-  const rc_array *sources;
-  const rc_array *val_sources;
-} rc_distill_data;
-
-typedef enum rc_distill_event { RC_DISTILL_STEP = 0, RC_DISTILL_EPOCH = 1 } rc_distill_event;
-
-typedef struct rc_distill_progress {
-  rc_distill_event event;
-  int64_t epoch, epochs;     /* 1-based epoch */
-  int64_t step, steps;       /* steps done, total */
-  double loss;               /* running mean over the epoch so far */
-  double lr;
-  double samples_per_s;
-  double elapsed_s, eta_s;
-  rc_metrics val;            /* RC_DISTILL_EPOCH: validation of this epoch */
-  int is_best;
-} rc_distill_progress;
 
 typedef struct rc_distill_config {
   int64_t epochs;            /* used when steps == 0 */

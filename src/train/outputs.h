@@ -10,22 +10,12 @@
 
 #include "plan/plan.h"
 #include "recoup/data.h"
+#include "recoup/distill.h"
 #include "train/evaluate.h"
 #include "train/output_loss.h"
 
-#define RC_OUTPUTS_MAX 16
-
-/* Per-sample side data of one set of samples (training pool or validation). */
-typedef struct rc_output_side {
-  /* targets[i]: for spec i, per sample as many floats as the output holds per
-   * sample, or NULL. */
-  const float *targets[RC_OUTPUTS_MAX];
-  /* Dense labels: one int32 per position of output `label_output` (the
-   * output's shape without its batch and class axes), per sample; NULL:
-   * none. Positions holding `ignore` take no loss and no metric. */
-  const int32_t *labels;
-  int32_t ignore;
-} rc_output_side;
+/* rc_output_side (per-sample targets and dense labels) is public: recoup/distill.h. */
+#define RC_OUTPUTS_MAX RC_DISTILL_OUTPUTS_MAX
 
 typedef struct rc_outputs rc_outputs;
 
