@@ -63,8 +63,8 @@ typedef struct rc_distill_progress {
 
 typedef enum rc_distill_optimizer { RC_DISTILL_OPT_ADAMW = 0, RC_DISTILL_OPT_SGD = 1 } rc_distill_optimizer;
 typedef enum rc_distill_schedule {
-  RC_DISTILL_SCHED_COSINE = 0,   /* cosine decay to the end of the run */
-  RC_DISTILL_SCHED_STEP = 1,     /* multiplied by gamma every step_size steps */
+  RC_DISTILL_SCHED_COSINE = 0, /* cosine decay to the end of the run */
+  RC_DISTILL_SCHED_STEP = 1,   /* multiplied by gamma every step_size steps */
   RC_DISTILL_SCHED_CONSTANT = 2
 } rc_distill_schedule;
 
@@ -104,17 +104,17 @@ typedef struct rc_distill_settings {
   const float *pair_weights;
   int n_pairs;
   rc_distill_optimizer optimizer; /* lr 0 takes its default rate */
-  float weight_decay;        /* < 0: the optimizer's default (AdamW 0, SGD 1e-4) */
-  float momentum;            /* SGD; < 0: 0.9 */
-  int nesterov;              /* SGD: Nesterov momentum (1) or plain (0) */
-  rc_distill_schedule schedule; /* after a linear warm-up */
-  int64_t warmup;            /* warm-up steps; < 0: 3% of the steps */
-  int64_t step_size;         /* RC_DISTILL_SCHED_STEP: steps between decays; 0: an epoch */
-  float gamma;               /* RC_DISTILL_SCHED_STEP: decay factor */
-  double clip;               /* global gradient norm limit; <= 0: off */
+  float weight_decay;             /* < 0: the optimizer's default (AdamW 0, SGD 1e-4) */
+  float momentum;                 /* SGD; < 0: 0.9 */
+  int nesterov;                   /* SGD: Nesterov momentum (1) or plain (0) */
+  rc_distill_schedule schedule;   /* after a linear warm-up */
+  int64_t warmup;                 /* warm-up steps; < 0: 3% of the steps */
+  int64_t step_size;              /* RC_DISTILL_SCHED_STEP: steps between decays; 0: an epoch */
+  float gamma;                    /* RC_DISTILL_SCHED_STEP: decay factor */
+  double clip;                    /* global gradient norm limit; <= 0: off */
   rc_bn_mode bn;
-  rc_mask_mode mask;         /* which zero weights stay zero */
-  const char *const *train_globs;  /* also train float initializers matching these */
+  rc_mask_mode mask;              /* which zero weights stay zero */
+  const char *const *train_globs; /* also train float initializers matching these */
   int n_train;
   const char *const *freeze_globs; /* never train initializers matching these */
   int n_freeze;
@@ -155,14 +155,14 @@ typedef struct rc_layer_error {
 /* Values entering an activation grid's QuantizeLinear beyond the range the
  * grid represents (they are clamped in the deployed model). */
 typedef struct rc_range_stats {
-  int64_t values, values_out;    /* values measured, values outside the range */
-  int64_t samples, samples_out;  /* samples measured, samples with any value outside */
-  double worst;                  /* the value furthest outside (0 when none) */
-  double bound;                  /* the end of the range it passed */
+  int64_t values, values_out;   /* values measured, values outside the range */
+  int64_t samples, samples_out; /* samples measured, samples with any value outside */
+  double worst;                 /* the value furthest outside (0 when none) */
+  double bound;                 /* the end of the range it passed */
 } rc_range_stats;
 
 typedef struct rc_range_check {
-  char tensor[128];              /* the float tensor entering QuantizeLinear */
+  char tensor[128]; /* the float tensor entering QuantizeLinear */
   rc_range_stats before, after;
 } rc_range_check;
 
@@ -171,9 +171,9 @@ typedef struct rc_range_check {
 /* One trained weight: what its zeros meant and, if quantized, its integer range. */
 typedef struct rc_distill_tensor_rule {
   char name[128];
-  rc_mask_choice mask;      /* mask.rule points to a static string */
-  int64_t frozen;           /* entries frozen at zero */
-  int quantized;            /* an integer tensor on a grid: range is set */
+  rc_mask_choice mask; /* mask.rule points to a static string */
+  int64_t frozen;      /* entries frozen at zero */
+  int quantized;       /* an integer tensor on a grid: range is set */
   rc_int_range range;
 } rc_distill_tensor_rule;
 
@@ -189,16 +189,16 @@ typedef struct rc_distill_summary {
   int *changed;                      /* for rc_distill_save */
   int n_changed;
   /* ---- The run in detail (arrays owned by the summary) */
-  double select_alpha;               /* weight of KL in the deciding figure (rc_distill_selection) */
+  double select_alpha; /* weight of KL in the deciding figure (rc_distill_selection) */
   double samples_per_s;
   int n_trainable_tensors;
   int64_t n_trainable, n_frozen_zeros;
-  rc_distill_tensor_rule *rules;     /* per trained weight (not biases or normalisation) */
+  rc_distill_tensor_rule *rules; /* per trained weight (not biases or normalisation) */
   int n_rules;
-  int rollbacks, stopped_nonfinite;  /* non-finite steps rolled back; stopped on them */
-  int teacher_cache_in_file;         /* the teacher-output cache spilled to a mapped file */
+  int rollbacks, stopped_nonfinite; /* non-finite steps rolled back; stopped on them */
+  int teacher_cache_in_file;        /* the teacher-output cache spilled to a mapped file */
   int64_t teacher_cache_bytes;
-  double *epoch_loss;                /* per epoch (n_epochs) */
+  double *epoch_loss; /* per epoch (n_epochs) */
   rc_metrics *epoch_val;
   int64_t n_epochs;
   int64_t steps_per_epoch;
@@ -207,14 +207,14 @@ typedef struct rc_distill_summary {
   int64_t trace_step[RC_DISTILL_TRACE_MAX];
   double trace_loss[RC_DISTILL_TRACE_MAX];
   int n_trace;
-  rc_layer_error *layers;            /* automatically paired layer outputs of equal shape */
+  rc_layer_error *layers; /* automatically paired layer outputs of equal shape */
   int n_layers;
-  rc_range_check *ranges;            /* one per activation grid of a QDQ student */
+  rc_range_check *ranges; /* one per activation grid of a QDQ student */
   int n_ranges;
-  int ranks;                         /* processes that shared the run */
-  double comm_seconds_per_step;      /* communicating (gradient sums, validation outputs, checks),
+  int ranks;                    /* processes that shared the run */
+  double comm_seconds_per_step; /* communicating (gradient sums, validation outputs, checks),
                                       * over the steps this run took (after a resume: since it) */
-  int64_t comm_values_per_step;      /* gradient values each step sums (4 bytes each) */
+  int64_t comm_values_per_step; /* gradient values each step sums (4 bytes each) */
 } rc_distill_summary;
 
 /* Train student against teacher (same inputs and outputs; checked). */

@@ -23,12 +23,12 @@
 #define RC_DISTILL_OUTPUTS_MAX 16
 
 typedef enum rc_out_term {
-  RC_OUT_KD = 0,        /* softmax KL per position over the class axis */
-  RC_OUT_KD_SIGMOID,    /* binary KL per entry (independent probabilities) */
-  RC_OUT_MSE,           /* mean squared difference to the teacher */
-  RC_OUT_SMOOTH_L1,     /* Huber with beta, to the teacher */
-  RC_OUT_BOUNDED_L2,    /* Chen et al. 2017: error to targets bounded by the teacher's */
-  RC_OUT_EDGE_KD,       /* Zheng et al. 2022: KL per box edge over discrete positions */
+  RC_OUT_KD = 0,     /* softmax KL per position over the class axis */
+  RC_OUT_KD_SIGMOID, /* binary KL per entry (independent probabilities) */
+  RC_OUT_MSE,        /* mean squared difference to the teacher */
+  RC_OUT_SMOOTH_L1,  /* Huber with beta, to the teacher */
+  RC_OUT_BOUNDED_L2, /* Chen et al. 2017: error to targets bounded by the teacher's */
+  RC_OUT_EDGE_KD,    /* Zheng et al. 2022: KL per box edge over discrete positions */
   RC_OUT_TERM_COUNT
 } rc_out_term;
 
@@ -37,15 +37,15 @@ typedef enum rc_out_term {
 
 /* One parsed term. */
 typedef struct rc_output_loss {
-  char output[128];      /* the model output's name */
+  char output[128]; /* the model output's name */
   rc_out_term term;
-  float weight;          /* of the term; 1 unless given */
-  int axis;              /* as given (RC_OUT_AXIS_DEFAULT: the term's default) */
-  float temperature;     /* <= 0: the term's default (kd: the run's temperature) */
-  float beta;            /* smooth-l1 */
-  float margin;          /* bounded-l2 */
-  int bins;              /* edge-kd: bins per edge */
-  int n_class_weights;   /* 0: every class weighs 1 */
+  float weight;        /* of the term; 1 unless given */
+  int axis;            /* as given (RC_OUT_AXIS_DEFAULT: the term's default) */
+  float temperature;   /* <= 0: the term's default (kd: the run's temperature) */
+  float beta;          /* smooth-l1 */
+  float margin;        /* bounded-l2 */
+  int bins;            /* edge-kd: bins per edge */
+  int n_class_weights; /* 0: every class weighs 1 */
   float class_weights[RC_OUT_MAX_CLASS_WEIGHTS];
 } rc_output_loss;
 
@@ -79,10 +79,10 @@ typedef struct rc_output_set {
   int n;
   const char *targets[RC_DISTILL_OUTPUTS_MAX], *val_targets[RC_DISTILL_OUTPUTS_MAX]; /* "NAME=FILE" */
   int n_targets, n_val_targets;
-  long ignore;                  /* dense label value that takes no loss */
+  long ignore; /* dense label value that takes no loss */
   rc_array target_arrays[RC_DISTILL_OUTPUTS_MAX], val_target_arrays[RC_DISTILL_OUTPUTS_MAX];
-  rc_array labels, val_labels;  /* int32 dense labels */
-  char label_output[128];       /* the kd output they belong to, "" when none */
+  rc_array labels, val_labels; /* int32 dense labels */
+  char label_output[128];      /* the kd output they belong to, "" when none */
 } rc_output_set;
 
 /* No terms, ignore value RC_OUTPUT_DEFAULT_IGNORE. */

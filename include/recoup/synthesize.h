@@ -18,9 +18,9 @@
 #include "recoup/status.h"
 
 typedef struct rc_synth_config {
-  int64_t count;     /* samples to make */
-  int64_t batch;     /* samples optimised together (their statistics are matched) */
-  int64_t steps;     /* Adam steps per batch */
+  int64_t count; /* samples to make */
+  int64_t batch; /* samples optimised together (their statistics are matched) */
+  int64_t steps; /* Adam steps per batch */
   float lr;
   uint64_t seed;
   float w_class, w_tv, w_l2; /* class balance, smoothness prior, L2 prior */
@@ -33,9 +33,9 @@ typedef struct rc_synth_config {
 RC_API void rc_synth_config_init(rc_synth_config *c);
 
 typedef struct rc_synth_stats {
-  int n_bn;                 /* BatchNormalization layers matched */
-  double bn_loss_start;     /* statistics loss of the first batch before any step */
-  double bn_loss_end;       /* mean statistics loss over the batches after their last step */
+  int n_bn;             /* BatchNormalization layers matched */
+  double bn_loss_start; /* statistics loss of the first batch before any step */
+  double bn_loss_end;   /* mean statistics loss over the batches after their last step */
   /* Worst over layers, channels and batches after the last step:
    * |mu_batch - mu_running| / sqrt(var_running + eps) and
    * |var_batch - var_running| / (var_running + eps). */

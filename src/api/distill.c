@@ -1,11 +1,12 @@
 /* recoup/distill.h: the public settings mapped onto the training loop's
  * full configuration (train/distill.h), the loss-term table and selection
  * rule read through public names. */
+#include "recoup/distill.h"
+
 #include <string.h>
 
 #include "core/alloc.h"
 #include "core/status.h"
-#include "recoup/distill.h"
 #include "train/distill.h"
 #include "train/features.h"
 #include "train/select.h"
@@ -25,8 +26,9 @@ void rc_distill_settings_init(rc_distill_settings *s) {
   s->weight_decay = -1;
   s->momentum = -1;
   s->nesterov = 1;
-  s->schedule = c.sched.kind == RC_SCHED_STEP ? RC_DISTILL_SCHED_STEP
-                : c.sched.kind == RC_SCHED_CONSTANT ? RC_DISTILL_SCHED_CONSTANT : RC_DISTILL_SCHED_COSINE;
+  s->schedule = c.sched.kind == RC_SCHED_STEP       ? RC_DISTILL_SCHED_STEP
+                : c.sched.kind == RC_SCHED_CONSTANT ? RC_DISTILL_SCHED_CONSTANT
+                                                    : RC_DISTILL_SCHED_COSINE;
   s->warmup = c.sched.warmup;
   s->step_size = c.sched.step_size;
   s->gamma = c.sched.gamma;
@@ -57,7 +59,7 @@ static void optim_from(rc_distill_config *c, const rc_distill_settings *s) {
   if (!s->nesterov) c->optim.nesterov = 0;
   c->sched.kind = s->schedule == RC_DISTILL_SCHED_STEP       ? RC_SCHED_STEP
                   : s->schedule == RC_DISTILL_SCHED_CONSTANT ? RC_SCHED_CONSTANT
-                                                       : RC_SCHED_COSINE;
+                                                             : RC_SCHED_COSINE;
   c->sched.lr = c->optim.lr;
   c->sched.warmup = s->warmup;
   c->sched.step_size = s->step_size;

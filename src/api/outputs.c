@@ -1,6 +1,8 @@
 /* recoup/outputs.h: per-output terms with their side data read and checked
  * against the model's planned outputs, and evaluation with them (the bound
  * terms of train/outputs.h). */
+#include "recoup/outputs.h"
+
 #include <math.h>
 #include <stdio.h>
 #include <string.h>
@@ -9,7 +11,6 @@
 #include "core/status.h"
 #include "onnx/model.h"
 #include "plan/plan.h"
-#include "recoup/outputs.h"
 #include "train/outputs.h"
 
 void rc_output_set_init(rc_output_set *o) {
@@ -37,8 +38,10 @@ rc_status rc_output_set_add(rc_output_set *o, const char *spec, rc_err *e) {
 rc_status rc_output_set_add_targets(rc_output_set *o, const char *text, int val, rc_err *e) {
   int *n = val ? &o->n_val_targets : &o->n_targets;
   const char **list = val ? o->val_targets : o->targets;
-  if (!strchr(text, '=') || text[0] == '=') return rc_err_set(e, RC_ERR_INVALID, "expected OUTPUT=FILE, got '%s'", text);
-  if (*n == RC_DISTILL_OUTPUTS_MAX) return rc_err_set(e, RC_ERR_LIMIT, "more than %d target files", RC_DISTILL_OUTPUTS_MAX);
+  if (!strchr(text, '=') || text[0] == '=')
+    return rc_err_set(e, RC_ERR_INVALID, "expected OUTPUT=FILE, got '%s'", text);
+  if (*n == RC_DISTILL_OUTPUTS_MAX)
+    return rc_err_set(e, RC_ERR_LIMIT, "more than %d target files", RC_DISTILL_OUTPUTS_MAX);
   list[(*n)++] = text;
   return RC_OK;
 }
@@ -62,14 +65,14 @@ static rc_status check_per_sample(const rc_array *a, const char *path, int64_t n
     full.rank = want->rank + 1;
     memmove(full.dims + 1, want->dims, sizeof(int64_t) * (size_t)want->rank);
     full.dims[0] = n;
-    return rc_err_set(e, RC_ERR_SHAPE, "%s: %s of shape %s, expected %s", path, what, rc_shape_str(&got, sa, sizeof sa),
-                    rc_shape_str(&full, sb, sizeof sb));
+    return rc_err_set(e, RC_ERR_SHAPE, "%s: %s of shape %s, expected %s", path, what,
+                      rc_shape_str(&got, sa, sizeof sa), rc_shape_str(&full, sb, sizeof sb));
   }
   return RC_OK;
 }
 
-rc_status rc_output_labels_read(rc_array *out, const char *path, int64_t n, const int64_t *dims, int rank, int axis,
-                                long ignore, rc_err *e) {
+rc_status rc_output_labels_read(rc_array *out, const char *path, int64_t n, const int64_t *dims, int rank,
+                                int axis, long ignore, rc_err *e) {
   rc_array raw = {0}, f = {0};
   memset(out, 0, sizeof *out);
   RC_TRY(rc_array_read(&raw, path, NULL, 0, e));
@@ -88,8 +91,10 @@ rc_status rc_output_labels_read(rc_array *out, const char *path, int64_t n, cons
   const float *v = f.t.data;
   for (int64_t i = 0; i < count; i++) {
     if (v[i] != floorf(v[i]) || ((v[i] < 0 || v[i] >= (float)k) && v[i] != (float)ignore)) {
-      s = rc_err_set(e, RC_ERR_INVALID, "%s: label %g at element %lld is not a class in [0, %lld) nor the ignore value "
-                   "%ld", path, (double)v[i], (long long)i, (long long)k, ignore);
+      s = rc_err_set(e, RC_ERR_INVALID,
+                     "%s: label %g at element %lld is not a class in [0, %lld) nor the ignore value "
+                     "%ld",
+                     path, (double)v[i], (long long)i, (long long)k, ignore);
       break;
     }
     lab[i] = (int32_t)v[i];
@@ -118,7 +123,8 @@ static rc_status read_targets(rc_array *out, const char *path, int64_t n, const 
 
 static int spec_of(const rc_output_set *o, const char *name, int need_targets) {
   for (int i = 0; i < o->n; i++)
-    if (!strcmp(o->specs[i].output, name) && (!need_targets || rc_out_term_needs_targets(o->specs[i].term))) return i;
+    if (!strcmp(o->specs[i].output, name) && (!need_targets || rc_out_term_needs_targets(o->specs[i].term)))
+      return i;
   return -1;
 }
 
@@ -137,8 +143,8 @@ static rc_status load_targets(rc_output_set *o, const char *const *list, int n_l
     snprintf(name, sizeof name, "%.*s", (int)(eq - list[t]), list[t]);
     int i = spec_of(o, name, 1);
     if (i < 0)
-      return rc_err_set(e, RC_ERR_INVALID, "--targets %s: no --output-loss term on '%s' takes targets (bounded-l2)", name,
-                      name);
+      return rc_err_set(e, RC_ERR_INVALID,
+                        "--targets %s: no --output-loss term on '%s' takes targets (bounded-l2)", name, name);
     int v = find_value(g, name);
     if (v < 0) return rc_err_set(e, RC_ERR_INVALID, "--targets: %s has no output '%s'", g->path, name);
     const rc_tensor *shape = rc_plan_tensor(p, v);
@@ -164,8 +170,9 @@ static rc_status load_labels(rc_output_set *o, rc_plan *p, const rc_graph *g, co
     snprintf(o->label_output, sizeof o->label_output, "%s", r.output);
     return rc_output_labels_read(out, path, n, t->dims, t->rank, r.axis, o->ignore, e);
   }
-  return rc_err_set(e, RC_ERR_INVALID, "--labels with --output-loss: dense labels need a kd term on the output they "
-                  "label");
+  return rc_err_set(e, RC_ERR_INVALID,
+                    "--labels with --output-loss: dense labels need a kd term on the output they "
+                    "label");
 }
 
 rc_status rc_output_set_load(rc_output_set *o, rc_model *m, const rc_tensor *input_shapes, int n_inputs,
@@ -202,7 +209,7 @@ rc_status rc_output_set_load(rc_output_set *o, rc_model *m, const rc_tensor *inp
     int has = side->targets[i] != NULL, has_val = !val || val_side->targets[i] != NULL;
     if (rc_out_term_needs_targets(o->specs[i].term) && (!has || !has_val))
       s = rc_err_set(e, RC_ERR_INVALID, "output '%s': %s needs targets: --targets %s=FILE%s", o->specs[i].output,
-                   rc_out_term_name(o->specs[i].term), o->specs[i].output, val ? " and --val-targets" : "");
+                     rc_out_term_name(o->specs[i].term), o->specs[i].output, val ? " and --val-targets" : "");
   }
   if (s == RC_OK && val && !labels_path != !val_labels_path)
     s = rc_err_set(e, RC_ERR_INVALID, "give dense labels for both --data and --val-data, or for neither");
@@ -222,7 +229,8 @@ static rc_status default_specs(rc_output_set *o, rc_plan *p, const rc_graph *g, 
     o->n++;
   }
   if (!o->n)
-    return rc_err_set(e, RC_ERR_INVALID, "%s: no float output of rank 3 or more; name outputs with --output-loss", g->path);
+    return rc_err_set(e, RC_ERR_INVALID, "%s: no float output of rank 3 or more; name outputs with --output-loss",
+                      g->path);
   return RC_OK;
 }
 
@@ -244,10 +252,11 @@ rc_status rc_output_set_eval(rc_metrics *m, rc_output_set *o, rc_model *model, r
   /* eval has no targets: bounded-l2 is a training term; its output is measured as values. */
   for (int i = 0; i < o->n && st == RC_OK; i++)
     if (rc_out_term_needs_targets(o->specs[i].term)) o->specs[i].term = RC_OUT_MSE;
-  if (st == RC_OK) st = rc_output_set_load(o, model, b1, n_inputs, d->n, labels_path, -1, NULL, &side, &val_side, e);
   if (st == RC_OK)
-    st = rc__outputs_create(&bound, o->specs, o->n, 1.0f, pr ? pr : pm, pm, o->label_output[0] ? o->label_output : NULL,
-                            e);
+    st = rc_output_set_load(o, model, b1, n_inputs, d->n, labels_path, -1, NULL, &side, &val_side, e);
+  if (st == RC_OK)
+    st = rc__outputs_create(&bound, o->specs, o->n, 1.0f, pr ? pr : pm, pm,
+                            o->label_output[0] ? o->label_output : NULL, e);
   if (st == RC_OK) st = rc__outputs_validate(bound, pr ? pr : pm, pm, d, &side, d->index, m, e);
   if (st == RC_OK && !ref) m->has_ref = 0;
   rc__outputs_free(bound);

@@ -1,10 +1,11 @@
 /* recoup/synthesize.h: synthesised inputs as an array of the teacher's input shape. */
+#include "recoup/synthesize.h"
+
 #include <stdint.h>
 #include <string.h>
 
 #include "core/alloc.h"
 #include "core/status.h"
-#include "recoup/synthesize.h"
 #include "train/synthesize.h"
 
 rc_status rc_synthesize_array(rc_array *out, rc_synth_stats *stats, rc_model *teacher, const rc_synth_config *c,

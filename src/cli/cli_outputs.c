@@ -12,7 +12,8 @@ void cli_outputs_init(cli_outputs *o) { rc_output_set_init(o); }
 void cli_outputs_free(cli_outputs *o) { rc_output_set_free(o); }
 
 int cli_outputs_add_spec(cli_outputs *o, const char *cmd, const char *text) {
-  if (o->n == RC_DISTILL_OUTPUTS_MAX) return cli_usage_error(cmd, "at most %d --output-loss terms", RC_DISTILL_OUTPUTS_MAX);
+  if (o->n == RC_DISTILL_OUTPUTS_MAX)
+    return cli_usage_error(cmd, "at most %d --output-loss terms", RC_DISTILL_OUTPUTS_MAX);
   rc_err e = {0};
   if (rc_output_set_add(o, text, &e) != RC_OK) return cli_usage_error(cmd, "%s", e.msg);
   return 0;
@@ -20,7 +21,8 @@ int cli_outputs_add_spec(cli_outputs *o, const char *cmd, const char *text) {
 
 int cli_outputs_add_targets(cli_outputs *o, const char *cmd, const char *text, int val) {
   const char *flag = val ? "val-targets" : "targets";
-  if (!strchr(text, '=') || text[0] == '=') return cli_usage_error(cmd, "--%s expects OUTPUT=FILE, got '%s'", flag, text);
+  if (!strchr(text, '=') || text[0] == '=')
+    return cli_usage_error(cmd, "--%s expects OUTPUT=FILE, got '%s'", flag, text);
   rc_err e = {0};
   if (rc_output_set_add_targets(o, text, val, &e) != RC_OK) return cli_usage_error(cmd, "too many --%s", flag);
   return 0;
@@ -31,8 +33,8 @@ rc_status cli_outputs_load(cli_outputs *o, rc_model *m, const cli_samples *train
                            rc_output_side *val_side, rc_err *e) {
   rc_tensor shapes[CLI_MAX_DATA];
   cli_samples_shapes(train, 1, shapes);
-  return rc_output_set_load(o, m, shapes, train->n_inputs, train->n, labels_path, val ? val->n : -1, val_labels_path,
-                            side, val_side, e);
+  return rc_output_set_load(o, m, shapes, train->n_inputs, train->n, labels_path, val ? val->n : -1,
+                            val_labels_path, side, val_side, e);
 }
 
 /* "-" where a figure does not apply (NaN: no output of that kind). */
@@ -69,8 +71,8 @@ void cli_outputs_metrics_json(cJSON *o, const rc_metrics *m) {
   number_or_null(o, "value_mad", m->value_mad);
 }
 
-rc_status cli_outputs_eval(rc_metrics *m, cli_outputs *o, rc_model *model, rc_model *ref,
-                           const cli_samples *s, int64_t batch, const char *labels_path, rc_err *e) {
+rc_status cli_outputs_eval(rc_metrics *m, cli_outputs *o, rc_model *model, rc_model *ref, const cli_samples *s,
+                           int64_t batch, const char *labels_path, rc_err *e) {
   rc_tensor shapes[CLI_MAX_DATA];
   cli_samples_shapes(s, batch, shapes);
   rc_dataset d;

@@ -4,9 +4,9 @@
 #include <errno.h>
 #include <getopt.h>
 #include <libgen.h>
-#include <signal.h>
 #include <limits.h>
 #include <math.h>
+#include <signal.h>
 #include <stdlib.h>
 #include <string.h>
 #include <sys/stat.h>
@@ -108,10 +108,14 @@ static int apply_option(distill_args *a, int c, const char *v) {
     case CLI_DISTILL_STEPS: cfg->steps = l; return 0;
     case CLI_DISTILL_BATCH: cfg->batch = l; return 0;
     /* An unset rate or weight decay is the chosen optimizer's default. */
-    case CLI_DISTILL_OPTIMIZER: cfg->optimizer = l == 1 ? RC_DISTILL_OPT_SGD : RC_DISTILL_OPT_ADAMW; return 0; /* adamw, sgd */
+    case CLI_DISTILL_OPTIMIZER:
+      cfg->optimizer = l == 1 ? RC_DISTILL_OPT_SGD : RC_DISTILL_OPT_ADAMW;
+      return 0; /* adamw, sgd */
     case CLI_DISTILL_LR: cfg->lr = (float)d; return 0;
     case CLI_DISTILL_SCHEDULE: /* choices: cosine, step, constant */
-      cfg->schedule = l == 0 ? RC_DISTILL_SCHED_COSINE : l == 1 ? RC_DISTILL_SCHED_STEP : RC_DISTILL_SCHED_CONSTANT;
+      cfg->schedule = l == 0   ? RC_DISTILL_SCHED_COSINE
+                      : l == 1 ? RC_DISTILL_SCHED_STEP
+                               : RC_DISTILL_SCHED_CONSTANT;
       return 0;
     case CLI_DISTILL_WARMUP: cfg->warmup = l; return 0;
     case CLI_DISTILL_STEP_SIZE: cfg->step_size = l; return 0;
@@ -381,7 +385,8 @@ static void on_progress(void *user, const rc_distill_progress *p) {
 static void table_row(const char *name, const rc_metrics *m) {
   char acc[32] = "-", kl[32];
   if (m->has_labels) snprintf(acc, sizeof acc, "%.2f%%", 100 * m->top1);
-  printf("  %-22s %10s %12.2f%% %14s\n", name, acc, 100 * m->agreement, rc_fmt_sig(kl, sizeof kl, m->kl, RC_FMT_SIG, 0));
+  printf("  %-22s %10s %12.2f%% %14s\n", name, acc, 100 * m->agreement,
+         rc_fmt_sig(kl, sizeof kl, m->kl, RC_FMT_SIG, 0));
 }
 
 /* JSON has no infinity or NaN: a number, or null beside a state saying why. */
@@ -435,12 +440,15 @@ static void warn_ranges(const rc_distill_summary *r) {
     const rc_range_check *c = &r->ranges[i];
     if (!c->after.values_out) continue;
     char w[32], b[32], d[32], nb[512];
-    fprintf(stderr, "recoup: warning: %lld of %lld values of '%s' on %lld of %lld validation samples lie outside "
+    fprintf(stderr,
+            "recoup: warning: %lld of %lld values of '%s' on %lld of %lld validation samples lie outside "
             "its activation grid and are clamped: the furthest is %s against the grid's %s of %s (%s beyond); "
-            "before training: %lld values\n", (long long)c->after.values_out, (long long)c->after.values, cli_esc(c->tensor, nb, sizeof nb),
+            "before training: %lld values\n",
+            (long long)c->after.values_out, (long long)c->after.values, cli_esc(c->tensor, nb, sizeof nb),
             (long long)c->after.samples_out, (long long)c->after.samples,
             rc_fmt_sig(w, sizeof w, c->after.worst, RC_FMT_SIG, 0),
-            c->after.worst > c->after.bound ? "maximum" : "minimum", rc_fmt_sig(b, sizeof b, c->after.bound, RC_FMT_SIG, 0),
+            c->after.worst > c->after.bound ? "maximum" : "minimum",
+            rc_fmt_sig(b, sizeof b, c->after.bound, RC_FMT_SIG, 0),
             rc_fmt_sig(d, sizeof d, fabs(c->after.worst - c->after.bound), RC_FMT_SIG, 0),
             (long long)c->before.values_out);
   }
@@ -567,9 +575,11 @@ static void print_results(const distill_args *a, const rc_distill_summary *r, do
            "       integer ranges; every integer checked inside its range)\n", r->n_grids);
   cli_weight_rules_print(r->rules, r->n_rules);
   printf("best state: lowest validation %s; agreement%s reported beside it\n",
-         r->after.outputs ? "output loss (the --output-loss terms; with labels, alpha of it + (1-alpha) cross-entropy)" :
-         strcmp(rc_distill_selection_name(&r->before, r->select_alpha), "kl") ? "alpha*KL + (1-alpha)*cross-entropy"
-                                                                        : "KL to dense",
+         r->after.outputs
+             ? "output loss (the --output-loss terms; with labels, alpha of it + (1-alpha) cross-entropy)"
+         : strcmp(rc_distill_selection_name(&r->before, r->select_alpha), "kl")
+             ? "alpha*KL + (1-alpha)*cross-entropy"
+             : "KL to dense",
          r->after.has_labels ? " and accuracy" : "");
   if (r->improved)
     printf("wrote %s (best epoch %lld; reloaded and checked: outputs identical)\n", cli_esc(a->out, ob, sizeof ob),
@@ -656,15 +666,15 @@ int rc_cmd_distill(int argc, char **argv) {
   if (cli_prep_apply(&a.data, student, &e) != RC_OK) goto out;
   if (!a.data.recorded && cli_prep_apply(&a.data, teacher, &e) != RC_OK) goto out;
   if (cli_synth_count(a.data.data[0]) > 0 ? synth_samples(&train, &a, teacher, &e) != RC_OK
-                                           : cli_samples_load(&train, &a.data, student, &e) != RC_OK)
+                                          : cli_samples_load(&train, &a.data, student, &e) != RC_OK)
     goto out;
   if (a.n_val_data && load_val(&val, &a, student, &e) != RC_OK) goto out;
   rc_output_side side, val_side;
   memset(&side, 0, sizeof side);
   memset(&val_side, 0, sizeof val_side);
   if (a.outs.n) {
-    if (cli_outputs_load(&a.outs, student, &train, a.data.labels, a.n_val_data ? &val : NULL, a.val_labels,
-                         &side, &val_side, &e) != RC_OK)
+    if (cli_outputs_load(&a.outs, student, &train, a.data.labels, a.n_val_data ? &val : NULL, a.val_labels, &side,
+                         &val_side, &e) != RC_OK)
       goto out;
     a.cfg.label_output = a.outs.label_output[0] ? a.outs.label_output : NULL;
   } else {

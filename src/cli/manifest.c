@@ -1,7 +1,6 @@
 /* Batch manifests: reading, checking and turning jobs into distill arguments. */
 #define _DEFAULT_SOURCE /* realpath */
 #include "cli/manifest.h"
-#include "cli/cli.h"
 
 #include <cJSON.h>
 #include <errno.h>
@@ -13,6 +12,7 @@
 #include <string.h>
 #include <sys/stat.h>
 
+#include "cli/cli.h"
 #include "cli/cli_data.h"
 #include "cli/distill_options.h"
 #include "cli/sha256.h"
