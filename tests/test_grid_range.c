@@ -61,7 +61,7 @@ static void recorded_and_observed(void) {
   rc_err e = {0};
   rc_int_range r;
   CHECK_INT(rc__grid_range(&t.g, NULL, 0, RC_DTYPE_INT8, "w.grid", &r, &e), RC_OK);
-  printf("  no metadata: [%d, %d] %s, used [%lld, %lld]\n", r.lo, r.hi, rc__range_source_name(r.source),
+  printf("  no metadata: [%d, %d] %s, used [%lld, %lld]\n", r.lo, r.hi, rc_range_source_name(r.source),
          (long long)r.used_lo, (long long)r.used_hi);
   CHECK_INT(r.source, RC_RANGE_OBSERVED);
   CHECK_INT(r.lo, -7);
@@ -72,7 +72,7 @@ static void recorded_and_observed(void) {
                                  "{\"schema\":1,\"tensors\":[\"w\"]}", "model.onnx", &e),
             RC_OK);
   CHECK_INT(rc__grid_range(&t.g, &notes, 0, RC_DTYPE_INT8, "w.grid", &r, &e), RC_OK);
-  printf("  recorded: [%d, %d] %s\n", r.lo, r.hi, rc__range_source_name(r.source));
+  printf("  recorded: [%d, %d] %s\n", r.lo, r.hi, rc_range_source_name(r.source));
   CHECK_INT(r.source, RC_RANGE_RECORDED);
   CHECK_INT(r.lo, -8);
   CHECK(rc__file_notes_pruned(&notes, "w.grid"));  /* through "from" */

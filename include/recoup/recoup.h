@@ -13,7 +13,13 @@
  *   recoup/eval.h      run a model over a dataset: accuracy, agreement and
  *                      KL against a reference model, all outputs
  *   recoup/distill.h   fine-tune a student against its teacher: settings with
- *                      defaults, a progress callback, a cancellation flag
+ *                      defaults, a progress callback, a cancellation flag;
+ *                      the loss terms; the run's summary in detail
+ *   recoup/outputs.h   losses per model output (maps, detector heads,
+ *                      regressions), their targets and dense labels
+ *   recoup/synthesize.h  inputs made from a teacher alone (no data at hand)
+ *   recoup/rules.h     what a weight's zeros mean, integer ranges of grids
+ *   recoup/parallel.h  the processes sharing a run (MPI ranks)
  *   recoup/prune.h     magnitude, N:M and channel pruning of a dense model
  *   recoup/quantize.h  post-training quantization into a QDQ model
  *   recoup/status.h    rc_status codes and rc_err, the message of a failure
@@ -60,9 +66,13 @@
 #include "recoup/eval.h"
 #include "recoup/export.h"
 #include "recoup/model.h"
+#include "recoup/outputs.h"
+#include "recoup/parallel.h"
 #include "recoup/prune.h"
 #include "recoup/quantize.h"
+#include "recoup/rules.h"
 #include "recoup/status.h"
+#include "recoup/synthesize.h"
 #include "recoup/tensor.h"
 #include "recoup/util.h"
 

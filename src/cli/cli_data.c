@@ -8,6 +8,7 @@
 #include "cli/cli.h"
 #include "core/alloc.h"
 #include "core/rng.h"
+#include "onnx/model.h"
 #include "plan/plan.h"
 
 const char *cli_data_file(const char *arg) {
@@ -158,7 +159,8 @@ static rc_status read_named_array(rc_array *a, const char *file, const char *nam
   return st;
 }
 
-rc_status cli_samples_load(cli_samples *s, const cli_data_opts *o, const rc_graph *g, rc_err *e) {
+rc_status cli_samples_load(cli_samples *s, const cli_data_opts *o, const rc_model *m, rc_err *e) {
+  const rc_graph *g = &m->graph;
   memset(s, 0, sizeof *s);
   if (g->n_inputs > CLI_MAX_DATA)
     return rc_err_set(e, RC_ERR_UNSUPPORTED, "%s: more than %d inputs", g->path, CLI_MAX_DATA);
@@ -255,7 +257,8 @@ rc_status cli_samples_dataset(rc_dataset *d, const cli_samples *s, const int64_t
   return RC_OK;
 }
 
-rc_status cli_output_classes(const rc_graph *g, const cli_samples *s, int64_t *k, rc_err *e) {
+rc_status cli_output_classes(const rc_model *m, const cli_samples *s, int64_t *k, rc_err *e) {
+  const rc_graph *g = &m->graph;
   rc_tensor shapes[CLI_MAX_DATA];
   cli_samples_shapes(s, 1, shapes);
   rc_plan *p = NULL;

@@ -6,6 +6,7 @@
 #include "ir/ir.h"
 #include "recoup/data.h"
 #include "recoup/image.h"
+#include "recoup/model.h"
 
 #define CLI_MAX_DATA 8
 #define CLI_MAX_CHANNELS 64
@@ -81,7 +82,7 @@ int cli_data_option(cli_data_opts *o, const char *cmd, const char *name, const c
 /* Read every --data file, map it to the graph's inputs (a lone FILE feeds a
  * one-input model; NAME=FILE names the input), convert float inputs with the
  * normalisation and fit each to the input's per-sample shape. */
-rc_status cli_samples_load(cli_samples *s, const cli_data_opts *o, const rc_graph *g, rc_err *e);
+rc_status cli_samples_load(cli_samples *s, const cli_data_opts *o, const rc_model *m, rc_err *e);
 /* Read labels for the loaded samples, checked against the count and n_classes. */
 rc_status cli_samples_load_labels(cli_samples *s, const char *path, int64_t n_classes, rc_err *e);
 void cli_samples_free(cli_samples *s);
@@ -99,7 +100,7 @@ rc_status cli_images_take_labels(cli_samples *s, int64_t n_classes, rc_err *e);
 struct cJSON;
 void cli_images_json(struct cJSON *root, const cli_samples *s);
 /* Number of classes: the width of the first output, planned at batch 1. */
-rc_status cli_output_classes(const rc_graph *g, const cli_samples *s, int64_t *k, rc_err *e);
+rc_status cli_output_classes(const rc_model *m, const cli_samples *s, int64_t *k, rc_err *e);
 /* Tensor shapes for planning at batch b (dims[0] = b). */
 void cli_samples_shapes(const cli_samples *s, int64_t b, rc_tensor *shapes);
 /* cli_samples_dataset over `limit` samples: the first after a PCG32 shuffle

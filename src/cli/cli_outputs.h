@@ -1,26 +1,17 @@
 /* Per-output options shared by distill, eval and batch manifests:
  * --output-loss NAME=TERM[:key=value...], --targets NAME=FILE (and
- * --val-targets), dense labels and their --ignore-label value. */
+ * --val-targets), dense labels and their --ignore-label value. The terms and
+ * their side data are the library's (recoup/outputs.h); this adds the
+ * command line's errors, tables and JSON. */
 #ifndef RC_CLI_OUTPUTS_H
 #define RC_CLI_OUTPUTS_H
 
 #include "cli/cli_data.h"
-#include "onnx/model.h"
-#include "train/outputs.h"
+#include "recoup/outputs.h"
 
-/* Segmentation datasets commonly mark unlabelled pixels with 255. */
-#define CLI_DEFAULT_IGNORE_LABEL 255
+#define CLI_DEFAULT_IGNORE_LABEL RC_OUTPUT_DEFAULT_IGNORE
 
-typedef struct cli_outputs {
-  rc_output_loss specs[RC_OUTPUTS_MAX];
-  int n;
-  const char *targets[RC_OUTPUTS_MAX], *val_targets[RC_OUTPUTS_MAX]; /* "NAME=FILE" */
-  int n_targets, n_val_targets;
-  long ignore;
-  rc_array target_arrays[RC_OUTPUTS_MAX], val_target_arrays[RC_OUTPUTS_MAX];
-  rc_array labels, val_labels;  /* int32 dense labels */
-  char label_output[128];       /* the kd output they belong to, "" when none */
-} cli_outputs;
+typedef rc_output_set cli_outputs;
 
 void cli_outputs_init(cli_outputs *o);
 void cli_outputs_free(cli_outputs *o);
@@ -28,19 +19,12 @@ void cli_outputs_free(cli_outputs *o);
 int cli_outputs_add_spec(cli_outputs *o, const char *cmd, const char *text);
 int cli_outputs_add_targets(cli_outputs *o, const char *cmd, const char *text, int val);
 
-/* Output shapes of g planned at batch 1 for s; checks every spec's output
- * exists and its axis; reads targets (shape (N, the output's per-sample
- * shape); NaN marks a position without a target) and dense labels (shape
- * (N, the kd output's per-sample shape without the class axis), integers in
- * [0, classes) or the ignore value), filling side. labels_path / val_path
- * NULL: none. val (may be NULL) are --val-data samples. */
-rc_status cli_outputs_load(cli_outputs *o, const rc_graph *g, const cli_samples *train, const char *labels_path,
+/* rc_output_set_load for the samples train (and val, may be NULL: --val-data
+ * samples), the outputs planned at batch 1. labels_path / val_labels_path
+ * NULL: none. */
+rc_status cli_outputs_load(cli_outputs *o, rc_model *m, const cli_samples *train, const char *labels_path,
                            const cli_samples *val, const char *val_labels_path, rc_output_side *side,
                            rc_output_side *val_side, rc_err *e);
-
-/* Dense labels alone (eval): for output `spec` of shape dims at batch 1. */
-rc_status cli_outputs_read_labels(rc_array *out, const char *path, int64_t n, const int64_t *dims, int rank,
-                                  int axis, long ignore, rc_err *e);
 
 /* Validation figures of a per-output run (rc_metrics.outputs): a table with
  * one row per model, and the same as JSON members of o. */
@@ -49,12 +33,10 @@ void cli_outputs_table_header(void);
 void cli_outputs_table_row(const char *name, const rc_metrics *m);
 void cli_outputs_metrics_json(struct cJSON *o, const rc_metrics *m);
 
-/* eval with per-output figures: `model` against `ref` (NULL: against
- * itself, for label figures alone) over every sample of s. Outputs without a
- * term in o get the default: kd over axis 1 for float outputs of rank 3 and
- * more (class maps); value outputs are named with a regression term, e.g.
+/* eval with per-output figures (rc_output_set_eval): `model` against `ref`
+ * (NULL: against itself, for label figures alone) over every sample of s,
+ * planned at `batch`. Value outputs are named with a regression term, e.g.
  * --output-loss boxes=smooth-l1. labels_path: dense labels, or NULL. */
-
 rc_status cli_outputs_eval(rc_metrics *m, cli_outputs *o, rc_model *model, rc_model *ref,
                            const cli_samples *s, int64_t batch, const char *labels_path, rc_err *e);
 #endif

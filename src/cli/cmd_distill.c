@@ -4,9 +4,9 @@
 #include <errno.h>
 #include <getopt.h>
 #include <libgen.h>
-#include <signal.h>
 #include <limits.h>
 #include <math.h>
+#include <signal.h>
 #include <stdlib.h>
 #include <string.h>
 #include <sys/stat.h>
@@ -16,18 +16,14 @@
 #include "cli/cli_data.h"
 #include "cli/cli_outputs.h"
 #include "cli/cli_synth.h"
-#include "core/alloc.h"
-#include "core/file.h"
 #include "cli/distill_options.h"
 #include "cli/report.h"
 #include "cli/weight_rules.h"
-#include "core/fmt.h"
-#include "core/path.h"
-#include "onnx/model.h"
-#include "plan/load.h"
-#include "train/dist.h"
-#include "train/distill.h"
-#include "train/select.h"
+#include "recoup/distill.h"
+#include "recoup/model.h"
+#include "recoup/parallel.h"
+#include "recoup/synthesize.h"
+#include "recoup/util.h"
 
 #define MAX_GLOBS 32
 
@@ -68,7 +64,6 @@ typedef struct distill_args {
   long threads;
   int json;
   const cli_samples *train_samples; /* for the image summary in --json and reports */
-  int lr_set, wd_set;
   const char *checkpoint;
   char checkpoint_buf[4096];
   const char *pairs[MAX_GLOBS];
@@ -77,12 +72,13 @@ typedef struct distill_args {
   const char *config;
   const char *report;
   char *config_strings; /* pair names read from --config, freed at exit */
-  rc_distill_config cfg;
+  char config_loss[2048]; /* the "loss" of --config as settings text */
+  rc_distill_settings cfg;
   cli_outputs outs;
 } distill_args;
 
 static int apply_option(distill_args *a, int c, const char *v) {
-  rc_distill_config *cfg = &a->cfg;
+  rc_distill_settings *cfg = &a->cfg;
   if (c < CLI_OPT_BASE || c >= CLI_OPT_BASE + CLI_DISTILL_N_OPTIONS) return cli_usage_error("distill", "unknown option");
   double d = 0;
   long l = 0;
@@ -111,33 +107,27 @@ static int apply_option(distill_args *a, int c, const char *v) {
     case CLI_DISTILL_EPOCHS: cfg->epochs = l; return 0;
     case CLI_DISTILL_STEPS: cfg->steps = l; return 0;
     case CLI_DISTILL_BATCH: cfg->batch = l; return 0;
-    case CLI_DISTILL_OPTIMIZER: {
-      rc_optim_config keep = cfg->optim;
-      rc_optim_defaults(&cfg->optim, l == 1 ? RC_OPTIM_SGD : RC_OPTIM_ADAMW); /* choices: adamw, sgd */
-      if (a->lr_set) cfg->optim.lr = keep.lr;
-      if (a->wd_set) cfg->optim.weight_decay = keep.weight_decay;
-      return 0;
-    }
-    case CLI_DISTILL_LR:
-      cfg->optim.lr = (float)d;
-      a->lr_set = 1;
-      return 0;
+    /* An unset rate or weight decay is the chosen optimizer's default. */
+    case CLI_DISTILL_OPTIMIZER:
+      cfg->optimizer = l == 1 ? RC_DISTILL_OPT_SGD : RC_DISTILL_OPT_ADAMW;
+      return 0; /* adamw, sgd */
+    case CLI_DISTILL_LR: cfg->lr = (float)d; return 0;
     case CLI_DISTILL_SCHEDULE: /* choices: cosine, step, constant */
-      cfg->sched.kind = l == 0 ? RC_SCHED_COSINE : l == 1 ? RC_SCHED_STEP : RC_SCHED_CONSTANT;
+      cfg->schedule = l == 0   ? RC_DISTILL_SCHED_COSINE
+                      : l == 1 ? RC_DISTILL_SCHED_STEP
+                               : RC_DISTILL_SCHED_CONSTANT;
       return 0;
-    case CLI_DISTILL_WARMUP: cfg->sched.warmup = l; return 0;
-    case CLI_DISTILL_STEP_SIZE: cfg->sched.step_size = l; return 0;
-    case CLI_DISTILL_GAMMA: cfg->sched.gamma = (float)d; return 0;
-    case CLI_DISTILL_WEIGHT_DECAY:
-      cfg->optim.weight_decay = (float)d;
-      a->wd_set = 1;
-      return 0;
-    case CLI_DISTILL_MOMENTUM: cfg->optim.momentum = (float)d; return 0;
-    case CLI_DISTILL_NO_NESTEROV: cfg->optim.nesterov = 0; return 0;
+    case CLI_DISTILL_WARMUP: cfg->warmup = l; return 0;
+    case CLI_DISTILL_STEP_SIZE: cfg->step_size = l; return 0;
+    case CLI_DISTILL_GAMMA: cfg->gamma = (float)d; return 0;
+    case CLI_DISTILL_WEIGHT_DECAY: cfg->weight_decay = (float)d; return 0;
+    case CLI_DISTILL_MOMENTUM: cfg->momentum = (float)d; return 0;
+    case CLI_DISTILL_NO_NESTEROV: cfg->nesterov = 0; return 0;
     case CLI_DISTILL_CLIP: cfg->clip = d; return 0;
     case CLI_DISTILL_LOSS: {
       rc_err e = {0};
-      if (rc_loss_spec_parse(&cfg->terms, v, &e) != RC_OK) return cli_usage_error("distill", "--loss: %s", e.msg);
+      if (rc_distill_loss_check(v, &e) != RC_OK) return cli_usage_error("distill", "--loss: %s", e.msg);
+      cfg->loss = v;
       return 0;
     }
     case CLI_DISTILL_PAIR:
@@ -228,10 +218,12 @@ static int read_config(distill_args *a) {
                                t->string, t->valuedouble);
     }
     rc_err e = {0};
-    if (rc_loss_spec_parse(&a->cfg.terms, spec, &e) != RC_OK) {
+    if (rc_distill_loss_check(spec, &e) != RC_OK) {
       rc = cli_usage_error("distill", "--config %s: \"loss\": %s", a->config, e.msg);
       goto out;
     }
+    snprintf(a->config_loss, sizeof a->config_loss, "%s", spec);
+    a->cfg.loss = a->config_loss;
   }
   if ((rc = config_output_losses(a, cJSON_GetObjectItemCaseSensitive(root, "output_loss"))) != 0) goto out;
   cJSON *pairs = cJSON_GetObjectItemCaseSensitive(root, "pairs");
@@ -274,7 +266,7 @@ static int parse_args(distill_args *a, int argc, char **argv) {
   memset(a, 0, sizeof *a);
   cli_data_opts_init(&a->data);
   cli_outputs_init(&a->outs);
-  rc_distill_config_defaults(&a->cfg);
+  rc_distill_settings_init(&a->cfg);
   for (int i = 0; i < CLI_DISTILL_N_OPTIONS; i++)
     if (cli_distill_options[i].dflt && apply_option(a, CLI_OPT_BASE + i, cli_distill_options[i].dflt))
       return RC_EXIT_FAIL; /* a default the table itself refuses */
@@ -284,7 +276,6 @@ static int parse_args(distill_args *a, int argc, char **argv) {
   if (!a->teacher || !a->student || !a->data.n_data || !a->out)
     return cli_usage_error("distill", "--teacher, --student, --data and --out are required");
   if (a->val_labels && !a->n_val_data) return cli_usage_error("distill", "--val-labels needs --val-data");
-  a->cfg.sched.lr = a->cfg.optim.lr;
   if (!a->checkpoint) {
     snprintf(a->checkpoint_buf, sizeof a->checkpoint_buf, "%s.ckpt", a->out);
     a->checkpoint = a->checkpoint_buf;
@@ -330,11 +321,11 @@ static int check_output_path(const distill_args *a, rc_err *e) {
   if (cli_check_output("--out", a->out, inputs, labels, n, e)) return -1;
   /* Checkpoints are removed once the output is written: never the output either. */
   inputs[n] = a->out, labels[n++] = "--out";
-  if (rc__path_refuse_inputs("--checkpoint", a->checkpoint, inputs, labels, n, e) ||
-      rc__path_refuse_inputs("--checkpoint", prev, inputs, labels, n, e))
+  if (rc_path_refuse_inputs("--checkpoint", a->checkpoint, inputs, labels, n, e) ||
+      rc_path_refuse_inputs("--checkpoint", prev, inputs, labels, n, e))
     return -1;
   /* --resume is read, then replaced by the run's own checkpoints; the output never. */
-  if (a->cfg.resume_path && rc__path_same_file(a->out, a->cfg.resume_path)) {
+  if (a->cfg.resume_path && rc_path_same_file(a->out, a->cfg.resume_path)) {
     rc_err_set(e, RC_ERR_INVALID, "--resume %s is the output file", a->cfg.resume_path);
     return -1;
   }
@@ -365,13 +356,13 @@ static void fmt_time(double s, char *buf, size_t n) {
 static void on_progress(void *user, const rc_distill_progress *p) {
   progress_state *ps = user;
   char eta[32], loss[32], kl[32];
-  rc__fmt_sig(loss, sizeof loss, p->loss, RC_FMT_SIG, 0);
+  rc_fmt_sig(loss, sizeof loss, p->loss, RC_FMT_SIG, 0);
   if (p->event == RC_DISTILL_EPOCH) {
     if (ps->tty) fprintf(stderr, "\r\033[K");
     fprintf(stderr, "epoch %lld/%lld  loss %s", (long long)p->epoch, (long long)p->epochs, loss);
     if (p->val.has_labels) fprintf(stderr, "  val accuracy %.2f%%", 100 * p->val.top1);
     fprintf(stderr, "  agreement %.2f%%  %s %s%s\n", 100 * p->val.agreement, p->val.outputs ? "output loss" : "KL",
-            rc__fmt_sig(kl, sizeof kl, p->val.kl, RC_FMT_SIG, 0), p->is_best ? "  (best so far)" : "");
+            rc_fmt_sig(kl, sizeof kl, p->val.kl, RC_FMT_SIG, 0), p->is_best ? "  (best so far)" : "");
     return;
   }
   fmt_time(p->eta_s, eta, sizeof eta);
@@ -394,7 +385,8 @@ static void on_progress(void *user, const rc_distill_progress *p) {
 static void table_row(const char *name, const rc_metrics *m) {
   char acc[32] = "-", kl[32];
   if (m->has_labels) snprintf(acc, sizeof acc, "%.2f%%", 100 * m->top1);
-  printf("  %-22s %10s %12.2f%% %14s\n", name, acc, 100 * m->agreement, rc__fmt_sig(kl, sizeof kl, m->kl, RC_FMT_SIG, 0));
+  printf("  %-22s %10s %12.2f%% %14s\n", name, acc, 100 * m->agreement,
+         rc_fmt_sig(kl, sizeof kl, m->kl, RC_FMT_SIG, 0));
 }
 
 /* JSON has no infinity or NaN: a number, or null beside a state saying why. */
@@ -422,7 +414,7 @@ static cJSON *metrics_json(const rc_metrics *m, double alpha) {
   cJSON_AddNumberToObject(o, "agreement", m->agreement);
   cJSON_AddNumberToObject(o, "kl", m->kl);
   if (m->has_labels) cJSON_AddNumberToObject(o, "cross_entropy", m->ce);
-  double sel = rc__select_measure(m, alpha);
+  double sel = rc_distill_selection(m, alpha);
   if (isfinite(sel)) cJSON_AddNumberToObject(o, "selection", sel);
   if (m->outputs) cli_outputs_metrics_json(o, m);
   return o;
@@ -443,23 +435,26 @@ static cJSON *range_json(const rc_range_check *c) {
 }
 
 /* Trained values the deployed model clamps: say which tensor, how far, how often. */
-static void warn_ranges(const rc_distill_result *r) {
+static void warn_ranges(const rc_distill_summary *r) {
   for (int i = 0; i < r->n_ranges; i++) {
     const rc_range_check *c = &r->ranges[i];
     if (!c->after.values_out) continue;
     char w[32], b[32], d[32], nb[512];
-    fprintf(stderr, "recoup: warning: %lld of %lld values of '%s' on %lld of %lld validation samples lie outside "
+    fprintf(stderr,
+            "recoup: warning: %lld of %lld values of '%s' on %lld of %lld validation samples lie outside "
             "its activation grid and are clamped: the furthest is %s against the grid's %s of %s (%s beyond); "
-            "before training: %lld values\n", (long long)c->after.values_out, (long long)c->after.values, cli_esc(c->tensor, nb, sizeof nb),
+            "before training: %lld values\n",
+            (long long)c->after.values_out, (long long)c->after.values, cli_esc(c->tensor, nb, sizeof nb),
             (long long)c->after.samples_out, (long long)c->after.samples,
-            rc__fmt_sig(w, sizeof w, c->after.worst, RC_FMT_SIG, 0),
-            c->after.worst > c->after.bound ? "maximum" : "minimum", rc__fmt_sig(b, sizeof b, c->after.bound, RC_FMT_SIG, 0),
-            rc__fmt_sig(d, sizeof d, fabs(c->after.worst - c->after.bound), RC_FMT_SIG, 0),
+            rc_fmt_sig(w, sizeof w, c->after.worst, RC_FMT_SIG, 0),
+            c->after.worst > c->after.bound ? "maximum" : "minimum",
+            rc_fmt_sig(b, sizeof b, c->after.bound, RC_FMT_SIG, 0),
+            rc_fmt_sig(d, sizeof d, fabs(c->after.worst - c->after.bound), RC_FMT_SIG, 0),
             (long long)c->before.values_out);
   }
 }
 
-static cJSON *results_json(const distill_args *a, const rc_distill_result *r, double verify_diff) {
+static cJSON *results_json(const distill_args *a, const rc_distill_summary *r, double verify_diff) {
   cJSON *root = cJSON_CreateObject();
   cJSON_AddStringToObject(root, "teacher", a->teacher);
   cJSON_AddStringToObject(root, "student", a->student);
@@ -472,7 +467,7 @@ static cJSON *results_json(const distill_args *a, const rc_distill_result *r, do
   cJSON_AddItemToObject(root, "recovered", metrics_json(&r->after, alpha));
   cJSON_AddBoolToObject(root, "improved", r->improved);
   cJSON_AddNumberToObject(root, "best_epoch", (double)r->best_epoch);
-  cJSON_AddStringToObject(root, "best_by", rc__select_rule_name(&r->before, alpha));
+  cJSON_AddStringToObject(root, "best_by", rc_distill_selection_name(&r->before, alpha));
   cJSON_AddNumberToObject(root, "best_by_alpha", alpha);
   cJSON_AddNumberToObject(root, "steps", (double)r->steps_done);
   cJSON_AddNumberToObject(root, "seconds", r->seconds);
@@ -524,7 +519,7 @@ static cJSON *results_json(const distill_args *a, const rc_distill_result *r, do
 }
 
 /* --report DIR: the report files recoup batch writes, for this one run. */
-static rc_status write_report(const distill_args *a, const rc_distill_result *r, double verify_diff, rc_err *e) {
+static rc_status write_report(const distill_args *a, const rc_distill_summary *r, double verify_diff, rc_err *e) {
   char name[256];
   report_name(a->out, name, sizeof name);
   char title[300];
@@ -538,7 +533,7 @@ static rc_status write_report(const distill_args *a, const rc_distill_result *r,
   return s;
 }
 
-static void print_results(const distill_args *a, const rc_distill_result *r, double verify_diff) {
+static void print_results(const distill_args *a, const rc_distill_summary *r, double verify_diff) {
   warn_ranges(r);
   if (a->json) {
     cJSON *root = results_json(a, r, verify_diff);
@@ -580,9 +575,11 @@ static void print_results(const distill_args *a, const rc_distill_result *r, dou
            "       integer ranges; every integer checked inside its range)\n", r->n_grids);
   cli_weight_rules_print(r->rules, r->n_rules);
   printf("best state: lowest validation %s; agreement%s reported beside it\n",
-         r->after.outputs ? "output loss (the --output-loss terms; with labels, alpha of it + (1-alpha) cross-entropy)" :
-         strcmp(rc__select_rule_name(&r->before, r->select_alpha), "kl") ? "alpha*KL + (1-alpha)*cross-entropy"
-                                                                        : "KL to dense",
+         r->after.outputs
+             ? "output loss (the --output-loss terms; with labels, alpha of it + (1-alpha) cross-entropy)"
+         : strcmp(rc_distill_selection_name(&r->before, r->select_alpha), "kl")
+             ? "alpha*KL + (1-alpha)*cross-entropy"
+             : "KL to dense",
          r->after.has_labels ? " and accuracy" : "");
   if (r->improved)
     printf("wrote %s (best epoch %lld; reloaded and checked: outputs identical)\n", cli_esc(a->out, ob, sizeof ob),
@@ -606,30 +603,37 @@ static void remove_checkpoints(const char *path) {
 
 /* ---- The command ------------------------------------------------------------- */
 
-/* --data synth:N: N inputs made from the teacher (train/synthesize.h), seeded by --seed. */
+/* The folder of path ("." when it names none), into buf. */
+static void output_dir(const char *path, char *buf, size_t n) {
+  char copy[4096];
+  snprintf(copy, sizeof copy, "%s", path);
+  snprintf(buf, n, "%s", dirname(copy));
+}
+
+/* --data synth:N: N inputs made from the teacher (recoup/synthesize.h), seeded by --seed. */
 static rc_status synth_samples(cli_samples *s, const distill_args *a, rc_model *teacher, rc_err *e) {
   if (a->data.n_data != 1 || a->data.labels)
     return rc_err_set(e, RC_ERR_INVALID, "--data synth:N stands alone: no other --data, no --labels");
   rc_synth_config c;
-  rc_synth_defaults(&c);
+  rc_synth_config_init(&c);
   c.count = cli_synth_count(a->data.data[0]);
   c.seed = a->cfg.seed;
   cli_synth_progress_state ps = {cli_isatty_stderr(), -1};
   c.progress = cli_synth_progress;
   c.user = &ps;
   rc_synth_stats stats;
-  RC_TRY(cli_synth_make(&s->inputs[0], &stats, teacher, &c, e));
+  RC_TRY(rc_synthesize_array(&s->inputs[0], &stats, teacher, &c, e));
   s->n_inputs = 1;
   s->n = c.count;
   return RC_OK;
 }
 
-static rc_status load_val(cli_samples *val, const distill_args *a, const rc_graph *g, rc_err *e) {
+static rc_status load_val(cli_samples *val, const distill_args *a, const rc_model *m, rc_err *e) {
   cli_data_opts vo = a->data;
   memcpy(vo.data, a->val_data, sizeof vo.data);
   vo.n_data = a->n_val_data;
   vo.labels = cli_images_labels_word(a->val_labels) ? a->val_labels : NULL; /* image sets read their own labels */
-  return cli_samples_load(val, &vo, g, e);
+  return cli_samples_load(val, &vo, m, e);
 }
 
 int rc_cmd_distill(int argc, char **argv) {
@@ -642,18 +646,18 @@ int rc_cmd_distill(int argc, char **argv) {
   cli_samples train, val;
   memset(&train, 0, sizeof train);
   memset(&val, 0, sizeof val);
-  rc_distill_result r;
+  rc_distill_summary r;
   memset(&r, 0, sizeof r);
   int rc = RC_EXIT_FAIL;
   double diff = 0;
-  char *cache_dir = NULL;
+  char cache_dir[4096];
   if (check_output_path(&a, &e)) goto out;
   /* Under mpirun every rank trains; rank 0 alone writes and prints. */
   int root = rc_dist_rank(cli_dist()) == 0;
   if (root && a.report && cli_report_prepare(a.report, 0, &e) != RC_OK) goto out;
   if (rc_model_load(&teacher, a.teacher, NULL, &e) != RC_OK || rc_model_load(&student, a.student, NULL, &e) != RC_OK)
     goto out;
-  if (rc_distill_check_pair(&teacher->graph, &student->graph, &e) != RC_OK) goto out;
+  if (rc_distill_pair_check(teacher, student, &e) != RC_OK) goto out;
   if (cli_synth_count(a.data.data[0]) < 0) {
     rc_err_set(&e, RC_ERR_INVALID, "--data %s: expected synth:N with N > 0", a.data.data[0]);
     goto out;
@@ -662,20 +666,20 @@ int rc_cmd_distill(int argc, char **argv) {
   if (cli_prep_apply(&a.data, student, &e) != RC_OK) goto out;
   if (!a.data.recorded && cli_prep_apply(&a.data, teacher, &e) != RC_OK) goto out;
   if (cli_synth_count(a.data.data[0]) > 0 ? synth_samples(&train, &a, teacher, &e) != RC_OK
-                                           : cli_samples_load(&train, &a.data, &student->graph, &e) != RC_OK)
+                                          : cli_samples_load(&train, &a.data, student, &e) != RC_OK)
     goto out;
-  if (a.n_val_data && load_val(&val, &a, &student->graph, &e) != RC_OK) goto out;
+  if (a.n_val_data && load_val(&val, &a, student, &e) != RC_OK) goto out;
   rc_output_side side, val_side;
   memset(&side, 0, sizeof side);
   memset(&val_side, 0, sizeof val_side);
   if (a.outs.n) {
-    if (cli_outputs_load(&a.outs, &student->graph, &train, a.data.labels, a.n_val_data ? &val : NULL, a.val_labels,
-                         &side, &val_side, &e) != RC_OK)
+    if (cli_outputs_load(&a.outs, student, &train, a.data.labels, a.n_val_data ? &val : NULL, a.val_labels, &side,
+                         &val_side, &e) != RC_OK)
       goto out;
     a.cfg.label_output = a.outs.label_output[0] ? a.outs.label_output : NULL;
   } else {
     int64_t k = 0;
-    if (cli_output_classes(&student->graph, &train, &k, &e) != RC_OK) goto out;
+    if (cli_output_classes(student, &train, &k, &e) != RC_OK) goto out;
     if (a.data.labels && cli_samples_load_labels(&train, a.data.labels, k, &e) != RC_OK) goto out;
     if (a.val_labels && cli_samples_load_labels(&val, a.val_labels, k, &e) != RC_OK) goto out;
   }
@@ -696,9 +700,9 @@ int rc_cmd_distill(int argc, char **argv) {
   a.cfg.log = (rc_logger){cli_log_stderr, &ps.tty, RC_LOG_INFO};
   a.cfg.stop = &cli_stop_requested;
   cli_catch_stop_signals();
-  cache_dir = rc__path_dir(a.out); /* a spilled teacher cache goes beside the output */
+  output_dir(a.out, cache_dir, sizeof cache_dir); /* a spilled teacher cache goes beside the output */
   a.cfg.cache_dir = cache_dir;
-  if (rc_distill_run(&r, teacher, student, &d, &a.cfg, &e) != RC_OK) goto out;
+  if (rc_distill_train(&r, teacher, student, &d, &a.cfg, &e) != RC_OK) goto out;
   if (!root) {
     rc = RC_EXIT_OK;
     goto out;
@@ -711,7 +715,7 @@ int rc_cmd_distill(int argc, char **argv) {
     memset(first, 0, sizeof first);
     rc_status vs = cli_samples_first_batch(first, a.n_val_data ? &val : &train, a.cfg.batch, &e);
     for (int i = 0; i < train.n_inputs; i++) fins[i] = first[i].t;
-    if (vs == RC_OK) vs = rc_distill_verify_written(a.out, student, fins, train.n_inputs, a.cfg.batch, &diff, &e);
+    if (vs == RC_OK) vs = rc_distill_verify(a.out, student, fins, train.n_inputs, a.cfg.batch, &diff, &e);
     for (int i = 0; i < CLI_MAX_DATA; i++) rc_array_free(&first[i]);
     if (vs != RC_OK) goto out;
   }
@@ -725,8 +729,7 @@ out:
    * after rank 0's checkpoint: rank 0 says so, and the job ends normally. */
   if (e.code == RC_ERR_INTERRUPTED) cli_dist_agreed_exit();
   if (rc != RC_EXIT_OK && (e.code != RC_ERR_INTERRUPTED || rc_dist_rank(cli_dist()) == 0)) cli_fail(&e);
-  rc_distill_result_free(&r);
-  rc__free(cache_dir);
+  rc_distill_summary_free(&r);
   cli_samples_free(&train);
   cli_samples_free(&val);
   free(a.config_strings);

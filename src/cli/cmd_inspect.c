@@ -367,7 +367,7 @@ static void print_tables(const rc_model *m, const io_shape *ins, const io_shape 
       if (f->ranges[i].has_used)
         snprintf(used, sizeof used, "; [%lld, %lld]", (long long)f->ranges[i].used_lo, (long long)f->ranges[i].used_hi);
       snprintf(rg, sizeof rg, "[%d, %d] (%s%s)", f->ranges[i].lo, f->ranges[i].hi,
-               rc__range_source_name(f->ranges[i].source), used);
+               rc_range_source_name(f->ranges[i].source), used);
       printf("%-36s %-10s %-6s %-5s %-30s ", cli_esc(g->values[gr[i].value].name, nb, sizeof nb), gr[i].is_weight ? "weight" : "activation",
              rc_dtype_name(gr[i].dtype), axis, rg);
       if (gr[i].n_scale == 1)

@@ -1,5 +1,4 @@
 /* recoup synthesize: inputs made from a teacher alone (no data at hand). */
-#define _DEFAULT_SOURCE /* realpath */
 #include <cJSON.h>
 #include <getopt.h>
 #include <limits.h>
@@ -8,9 +7,10 @@
 
 #include "cli/cli.h"
 #include "cli/cli_synth.h"
-#include "core/alloc.h"
-#include "data/npy_write.h"
-#include "plan/load.h"
+#include "recoup/data.h"
+#include "recoup/model.h"
+#include "recoup/synthesize.h"
+#include "recoup/util.h"
 
 static void usage(FILE *f) {
   fprintf(f,
@@ -93,7 +93,7 @@ static int parse_args(synth_args *a, int argc, char **argv) {
       {"seed", required_argument, NULL, O_SEED}, {"threads", required_argument, NULL, O_THREADS},
       {"json", no_argument, NULL, O_JSON}, {"help", no_argument, NULL, 'h'}, {NULL, 0, NULL, 0}};
   memset(a, 0, sizeof *a);
-  rc_synth_defaults(&a->c);
+  rc_synth_config_init(&a->c);
   a->c.count = 0;
   int pr = cli_parse_options(argc, argv, longopts, "synthesize", apply, a, usage);
   if (pr) return pr;
@@ -103,11 +103,6 @@ static int parse_args(synth_args *a, int argc, char **argv) {
   size_t n = strlen(a->out);
   if (n < 5 || strcmp(a->out + n - 4, ".npy")) return cli_usage_error("synthesize", "--out must end in .npy");
   return 0;
-}
-
-static int same_file(const char *a, const char *b) {
-  char ra[PATH_MAX], rb[PATH_MAX];
-  return realpath(a, ra) && realpath(b, rb) && !strcmp(ra, rb);
 }
 
 int rc_cmd_synthesize(int argc, char **argv) {
@@ -120,7 +115,7 @@ int rc_cmd_synthesize(int argc, char **argv) {
   rc_array made = {0};
   rc_synth_stats stats;
   int rc = RC_EXIT_FAIL;
-  if (same_file(a.out, a.teacher)) {
+  if (rc_path_same_file(a.out, a.teacher)) {
     rc_err_set(&e, RC_ERR_INVALID, "--out %s is the teacher: refusing to overwrite an input", a.out);
     goto out;
   }
@@ -128,7 +123,7 @@ int rc_cmd_synthesize(int argc, char **argv) {
   cli_synth_progress_state ps = {cli_isatty_stderr(), -1};
   a.c.progress = cli_synth_progress;
   a.c.user = &ps;
-  if (cli_synth_make(&made, &stats, teacher, &a.c, &e) != RC_OK) goto out;
+  if (rc_synthesize_array(&made, &stats, teacher, &a.c, &e) != RC_OK) goto out;
   if (rc_npy_write(a.out, &made.t, &e) != RC_OK) goto out;
   char shape[128];
   if (a.json) {

@@ -7,7 +7,7 @@
 #include <string.h>
 
 #include "cli/cli.h"
-#include "train/features.h"
+#include "recoup/distill.h"
 
 static const char *const cli_optimizers[] = {"adamw", "sgd", NULL};
 static const char *const cli_schedules[] = {"cosine", "step", "constant", NULL};
@@ -96,11 +96,12 @@ static void print_help_text(FILE *f, const char *text, int pad) {
 }
 
 static void print_terms(FILE *f) {
-  for (int t = 0; t < RC_TERM_COUNT; t++) {
-    const rc_term_info *ti = rc_term_info_of((rc_term)t);
+  float weight;
+  const char *name, *help;
+  for (int t = 0; (name = rc_distill_loss_term(t, &weight, &help)); t++) {
     char head[64];
-    snprintf(head, sizeof head, "%s=%g", ti->name, (double)ti->default_weight);
-    fprintf(f, "    %-21s %s\n", head, ti->help);
+    snprintf(head, sizeof head, "%s=%g", name, (double)weight);
+    fprintf(f, "    %-21s %s\n", head, help);
   }
 }
 

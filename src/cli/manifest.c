@@ -1,7 +1,6 @@
 /* Batch manifests: reading, checking and turning jobs into distill arguments. */
 #define _DEFAULT_SOURCE /* realpath */
 #include "cli/manifest.h"
-#include "cli/cli.h"
 
 #include <cJSON.h>
 #include <errno.h>
@@ -13,12 +12,12 @@
 #include <string.h>
 #include <sys/stat.h>
 
+#include "cli/cli.h"
 #include "cli/cli_data.h"
 #include "cli/distill_options.h"
 #include "cli/sha256.h"
-#include "core/alloc.h"
-#include "core/path.h"
-#include "train/features.h"
+#include "recoup/distill.h"
+#include "recoup/util.h"
 
 #define MANIFEST_MAX_BYTES (16 << 20)
 #define MAX_JOBS 100000
@@ -43,19 +42,19 @@ typedef struct strlist {
 static rc_status push(strlist *l, const char *s, rc_err *e) {
   if (l->n == l->cap) {
     int cap = l->cap ? 2 * l->cap : 16;
-    char **v = rc__realloc(l->v, (size_t)cap * sizeof *v);
+    char **v = realloc(l->v, (size_t)cap * sizeof *v);
     if (!v) return rc_err_set(e, RC_ERR_NOMEM, "out of memory reading the manifest");
     l->v = v;
     l->cap = cap;
   }
-  if (!(l->v[l->n] = rc__strdup(s))) return rc_err_set(e, RC_ERR_NOMEM, "out of memory reading the manifest");
+  if (!(l->v[l->n] = strdup(s))) return rc_err_set(e, RC_ERR_NOMEM, "out of memory reading the manifest");
   l->n++;
   return RC_OK;
 }
 
 static void strlist_free(char **v, int n) {
-  for (int i = 0; i < n; i++) rc__free(v[i]);
-  rc__free(v);
+  for (int i = 0; i < n; i++) free(v[i]);
+  free(v);
 }
 
 /* ---- Error context ---------------------------------------------------------------- */
@@ -274,9 +273,8 @@ static rc_status check_value(ctx *c, const key_def *k, const cJSON *v) {
         return field_error(c, k->key, "expected a string such as \"kd=1,hint=0.5\" or an object of term to weight "
                            "(numbers), got %s", type_name(v));
       /* The same parser distill uses, so the two can never disagree. */
-      rc_loss_spec spec;
       rc_err pe = {0};
-      if (rc_loss_spec_parse(&spec, text, &pe) != RC_OK) return field_error(c, k->key, "%s", pe.msg);
+      if (rc_distill_loss_check(text, &pe) != RC_OK) return field_error(c, k->key, "%s", pe.msg);
       return RC_OK;
     }
   }
@@ -328,14 +326,14 @@ static rc_status add_option(ctx *c, cli_job *j, const key_def *k, const cJSON *v
       if (!strcmp(k->key, "out")) {
         char resolved[PATH_MAX];
         RC_TRY(resolve_path(c, "out", v->valuestring, 0, resolved));
-        if (!(j->out = rc__strdup(resolved)) || !(j->out_given = rc__strdup(v->valuestring)))
+        if (!(j->out = strdup(resolved)) || !(j->out_given = strdup(v->valuestring)))
           return rc_err_set(c->e, RC_ERR_NOMEM, "out of memory");
         RC_TRY(push(args, opt, c->e));
         return push(args, resolved, c->e);
       }
-      if (!strcmp(k->key, "teacher") && !(j->teacher_given = rc__strdup(v->valuestring)))
+      if (!strcmp(k->key, "teacher") && !(j->teacher_given = strdup(v->valuestring)))
         return rc_err_set(c->e, RC_ERR_NOMEM, "out of memory");
-      if (!strcmp(k->key, "student") && !(j->student_given = rc__strdup(v->valuestring)))
+      if (!strcmp(k->key, "student") && !(j->student_given = strdup(v->valuestring)))
         return rc_err_set(c->e, RC_ERR_NOMEM, "out of memory");
       return add_input(c, args, ins, opt, k->key, NULL, v->valuestring);
     case CLI_OPT_DATA: {
@@ -398,7 +396,7 @@ static rc_status build_job(ctx *c, cli_job *j, int index, const cJSON *job, cons
     return field_error(c, "name", "'%.100s' is not a usable name (1 to %d letters, digits, '_', '-' or '.', "
                        "not starting with '.' or '-'; it names log and report files)", name->valuestring, MAX_NAME);
   snprintf(c->where, sizeof c->where, "job '%s' (jobs[%d])", name->valuestring, index);
-  if (!(j->name = rc__strdup(name->valuestring))) return rc_err_set(c->e, RC_ERR_NOMEM, "out of memory");
+  if (!(j->name = strdup(name->valuestring))) return rc_err_set(c->e, RC_ERR_NOMEM, "out of memory");
   RC_TRY(check_object(c, job, 1));
   static const char *const required[] = {"teacher", "student", "data", "out"};
   for (int i = 0; i < 4; i++)
@@ -434,7 +432,7 @@ static rc_status check_across_jobs(ctx *c, const cli_manifest *m) {
     for (int k = 0; k < i; k++) {
       if (!strcmp(a->name, m->jobs[k].name))
         return field_error(c, "name", "'%s' is also the name of jobs[%d]", a->name, k);
-      if (rc__path_same_file(a->out, m->jobs[k].out))
+      if (rc_path_same_file(a->out, m->jobs[k].out))
         return field_error(c, "out", "'%s' is also the output of job '%s'", a->out_given, m->jobs[k].name);
     }
     /* The job writes its output, OUT.ckpt, OUT.ckpt.1 and (without a report
@@ -443,11 +441,11 @@ static rc_status check_across_jobs(ctx *c, const cli_manifest *m) {
     char w[PATH_MAX + 16];
     for (size_t s = 0; s < sizeof suffix / sizeof suffix[0]; s++) {
       snprintf(w, sizeof w, "%s%s", a->out, suffix[s]);
-      if (rc__path_same_file(w, m->path))
+      if (rc_path_same_file(w, m->path))
         return field_error(c, "out", "'%s%s' is the manifest itself", a->out_given, suffix[s]);
       for (int k = 0; k < m->n_jobs; k++)
         for (int f = 0; f < m->jobs[k].n_inputs; f++)
-          if (rc__path_same_file(w, m->jobs[k].inputs[f])) {
+          if (rc_path_same_file(w, m->jobs[k].inputs[f])) {
             if (k == i) return field_error(c, "out", "'%s%s' is one of this job's inputs", a->out_given, suffix[s]);
             return field_error(c, "out", "'%s%s' is an input of job '%s'", a->out_given, suffix[s], m->jobs[k].name);
           }
@@ -468,7 +466,7 @@ static rc_status read_file(const char *path, char **text, size_t *len, rc_err *e
     fclose(f);
     return rc_err_set(e, RC_ERR_LIMIT, "manifest %s: larger than %d MiB", path, MANIFEST_MAX_BYTES >> 20);
   }
-  char *buf = rc__malloc((size_t)st.st_size + 1);
+  char *buf = malloc((size_t)st.st_size + 1);
   if (!buf) {
     fclose(f);
     return rc_err_set(e, RC_ERR_NOMEM, "manifest %s: out of memory", path);
@@ -477,7 +475,7 @@ static rc_status read_file(const char *path, char **text, size_t *len, rc_err *e
   int bad = ferror(f);
   fclose(f);
   if (bad || n != (size_t)st.st_size) {
-    rc__free(buf);
+    free(buf);
     return rc_err_set(e, RC_ERR_IO, "manifest %s: read error", path);
   }
   buf[n] = '\0';
@@ -504,7 +502,7 @@ static rc_status load_jobs(cli_manifest *m, ctx *c, const cJSON *root) {
                                                                                    "\"jobs\")");
   const cJSON *title = cJSON_GetObjectItemCaseSensitive(root, "title");
   if (title && !cJSON_IsString(title)) return field_error(c, "title", "expected a string, got %s", type_name(title));
-  if (title && !(m->title = rc__strdup(title->valuestring))) return rc_err_set(c->e, RC_ERR_NOMEM, "out of memory");
+  if (title && !(m->title = strdup(title->valuestring))) return rc_err_set(c->e, RC_ERR_NOMEM, "out of memory");
   const cJSON *defaults = cJSON_GetObjectItemCaseSensitive(root, "defaults");
   snprintf(c->where, sizeof c->where, "defaults");
   if (defaults) {
@@ -518,7 +516,7 @@ static rc_status load_jobs(cli_manifest *m, ctx *c, const cJSON *root) {
   int n = cJSON_GetArraySize(jobs);
   if (n == 0) return field_error(c, "jobs", "no jobs");
   if (n > MAX_JOBS) return field_error(c, "jobs", "more than %d jobs", MAX_JOBS);
-  if (!(m->jobs = rc__calloc((size_t)n, sizeof *m->jobs))) return rc_err_set(c->e, RC_ERR_NOMEM, "out of memory");
+  if (!(m->jobs = calloc((size_t)n, sizeof *m->jobs))) return rc_err_set(c->e, RC_ERR_NOMEM, "out of memory");
   int i = 0;
   cJSON_ArrayForEach(it, jobs) {
     m->n_jobs = i + 1;
@@ -539,14 +537,14 @@ rc_status cli_manifest_load(cli_manifest *m, const char *path, int allow_outside
   cli_sha256_hex(&h, m->sha256);
   char real[PATH_MAX];
   if (!realpath(path, real)) {
-    rc__free(text);
+    free(text);
     return rc_err_set(e, RC_ERR_IO, "manifest %s: %s", path, strerror(errno));
   }
   char *slash = strrchr(real, '/');
   if (slash == real) slash[1] = '\0';
   else *slash = '\0';
-  m->path = rc__strdup(path);
-  m->dir = rc__strdup(real);
+  m->path = strdup(path);
+  m->dir = strdup(real);
   cJSON *root = cJSON_ParseWithLength(text, len);
   rc_status s;
   if (!m->path || !m->dir) s = rc_err_set(e, RC_ERR_NOMEM, "out of memory");
@@ -556,7 +554,7 @@ rc_status cli_manifest_load(cli_manifest *m, const char *path, int allow_outside
     s = load_jobs(m, &c, root);
   }
   cJSON_Delete(root);
-  rc__free(text);
+  free(text);
   if (s != RC_OK) cli_manifest_free(m);
   return s;
 }
@@ -564,17 +562,17 @@ rc_status cli_manifest_load(cli_manifest *m, const char *path, int allow_outside
 void cli_manifest_free(cli_manifest *m) {
   for (int i = 0; i < m->n_jobs; i++) {
     cli_job *j = &m->jobs[i];
-    rc__free(j->name);
-    rc__free(j->out);
-    rc__free(j->out_given);
-    rc__free(j->teacher_given);
-    rc__free(j->student_given);
+    free(j->name);
+    free(j->out);
+    free(j->out_given);
+    free(j->teacher_given);
+    free(j->student_given);
     strlist_free(j->args, j->n_args);
     strlist_free(j->inputs, j->n_inputs);
   }
-  rc__free(m->jobs);
-  rc__free(m->path);
-  rc__free(m->dir);
-  rc__free(m->title);
+  free(m->jobs);
+  free(m->path);
+  free(m->dir);
+  free(m->title);
   memset(m, 0, sizeof *m);
 }

@@ -18,7 +18,7 @@ cJSON *cli_range_json(const rc_int_range *r) {
   cJSON *o = cJSON_CreateObject();
   cJSON_AddNumberToObject(o, "min", r->lo);
   cJSON_AddNumberToObject(o, "max", r->hi);
-  cJSON_AddStringToObject(o, "source", rc__range_source_name(r->source));
+  cJSON_AddStringToObject(o, "source", rc_range_source_name(r->source));
   if (r->has_used) {
     cJSON_AddNumberToObject(o, "used_min", (double)r->used_lo);
     cJSON_AddNumberToObject(o, "used_max", (double)r->used_hi);
@@ -27,7 +27,7 @@ cJSON *cli_range_json(const rc_int_range *r) {
 }
 
 const char *cli_range_text(const rc_int_range *r, char *buf, size_t n) {
-  snprintf(buf, n, "[%d, %d] %s", r->lo, r->hi, rc__range_source_name(r->source));
+  snprintf(buf, n, "[%d, %d] %s", r->lo, r->hi, rc_range_source_name(r->source));
   return buf;
 }
 

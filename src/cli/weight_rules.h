@@ -5,9 +5,8 @@
 
 #include <cJSON.h>
 
-#include "plan/grid_range.h"
-#include "plan/mask_rule.h"
-#include "train/distill.h"
+#include "recoup/distill.h"
+#include "recoup/rules.h"
 
 /* {"zeros": "pruned"|"trainable", "rule", "at_zero", "beside_zero"} */
 cJSON *cli_mask_json(const rc_mask_choice *m);

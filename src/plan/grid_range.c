@@ -9,7 +9,7 @@
 #include "ops/op.h"
 #include "ops/quant.h"
 
-const char *rc__range_source_name(rc_range_source s) {
+const char *rc_range_source_name(rc_range_source s) {
   static const char *const names[] = {"dtype", "recorded", "observed"};
   return s >= RC_RANGE_DTYPE && s <= RC_RANGE_OBSERVED ? names[s] : "?";
 }

@@ -13,8 +13,9 @@
 #include <stdint.h>
 
 #include "core/status.h"
+#include "recoup/parallel.h"
 
-typedef struct rc_dist rc_dist;
+/* rc_dist, rc_dist_rank and rc_dist_size are public: recoup/parallel.h. */
 
 /* 1 when this build can join an MPI job. */
 int rc_dist_built_with_mpi(void);
@@ -28,8 +29,6 @@ void rc_dist_end(rc_dist *d);
  * for a group of one it returns and the caller exits). */
 void rc_dist_abort(rc_dist *d, int code);
 
-int rc_dist_rank(const rc_dist *d);
-int rc_dist_size(const rc_dist *d);
 const char *rc_dist_host(const rc_dist *d);
 /* Seconds spent in communication so far. */
 double rc_dist_comm_seconds(const rc_dist *d);

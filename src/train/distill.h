@@ -24,13 +24,7 @@
 #include "train/optim.h"
 #include "train/outputs.h"
 
-typedef struct rc_dist rc_dist;
-
-typedef enum rc_bn_mode {
-  RC_BN_FROZEN = 0,      /* running statistics stay as deployed */
-  RC_BN_RECALIBRATE = 1, /* re-estimated over the training data first, then frozen */
-  RC_BN_TRAIN = 2        /* batch statistics in training, running stats updated */
-} rc_bn_mode;
+/* rc_bn_mode is public: recoup/distill.h. */
 
 typedef struct rc_distill_config {
   int64_t epochs;            /* used when steps == 0 */
@@ -85,77 +79,9 @@ typedef struct rc_distill_config {
 
 void rc_distill_config_defaults(rc_distill_config *c);
 
-/* Per-layer agreement of student with teacher activations (equal shapes). */
-typedef struct rc_layer_error {
-  char teacher[128], student[128];
-  /* 10·log10(Σt² / Σ(t−s)²): +inf when the activations are identical, NaN
-   * when no sample was measured (samples_* == 0). */
-  double sqnr_before_db, sqnr_after_db;
-  int64_t samples_before, samples_after;
-} rc_layer_error;
-
-/* Values entering an activation grid's QuantizeLinear beyond the range the
- * grid represents (they are clamped in the deployed model). */
-typedef struct rc_range_stats {
-  int64_t values, values_out;    /* values measured, values outside the range */
-  int64_t samples, samples_out;  /* samples measured, samples with any value outside */
-  double worst;                  /* the value furthest outside (0 when none) */
-  double bound;                  /* the end of the range it passed */
-} rc_range_stats;
-
-typedef struct rc_range_check {
-  char tensor[128];              /* the float tensor entering QuantizeLinear */
-  rc_range_stats before, after;
-} rc_range_check;
-
-#define RC_DISTILL_TRACE_MAX 120
-
-/* One trained weight: what its zeros meant and, if quantized, its integer range. */
-typedef struct rc_distill_tensor_rule {
-  char name[128];
-  rc_mask_choice mask;      /* mask.rule points to a static string */
-  int64_t frozen;           /* entries frozen at zero */
-  int quantized;            /* an integer tensor on a grid: range is set */
-  rc_int_range range;
-} rc_distill_tensor_rule;
-
-typedef struct rc_distill_result {
-  rc_metrics teacher, before, after; /* on the validation samples */
-  int64_t n_train, n_val;
-  int64_t steps_done;
-  int64_t best_epoch;                /* 0 = the input was never beaten */
-  double select_alpha;               /* weight of KL in the deciding figure (train/select.h) */
-  int improved;
-  double seconds, samples_per_s;
-  int n_trainable_tensors;
-  int64_t n_trainable, n_frozen_zeros;
-  int mask_ok;
-  int n_grids;                       /* integer initializers rewritten on their unchanged grids and ranges */
-  rc_distill_tensor_rule *rules;     /* per trained weight (not biases or normalisation) */
-  int n_rules;
-  int rollbacks, stopped_nonfinite;
-  int teacher_cache_in_file;         /* the teacher-output cache spilled to a mapped file */
-  int64_t teacher_cache_bytes;
-  double *epoch_loss;                /* per epoch (n_epochs) */
-  rc_metrics *epoch_val;
-  int64_t n_epochs;
-  int64_t steps_per_epoch;
-  /* Training loss along the run: the mean over each window of steps, at
-   * most RC_DISTILL_TRACE_MAX points (trace_step = the window's last step). */
-  int64_t trace_step[RC_DISTILL_TRACE_MAX];
-  double trace_loss[RC_DISTILL_TRACE_MAX];
-  int n_trace;
-  rc_layer_error *layers;            /* automatically paired layer outputs of equal shape */
-  int n_layers;
-  rc_range_check *ranges;            /* one per activation grid of a QDQ student */
-  int n_ranges;
-  int *changed;                      /* student values whose data changed: save these */
-  int n_changed;
-  int ranks;                         /* processes that shared the run */
-  double comm_seconds_per_step;      /* communicating (gradient sums, validation outputs, checks),
-                                      * over the steps this run took (after a resume: since it) */
-  int64_t comm_values_per_step;      /* gradient values each step sums (4 bytes each) */
-} rc_distill_result;
+/* The run's result is the public summary (recoup/distill.h: rc_layer_error,
+ * rc_range_check, rc_distill_tensor_rule and the trace are defined there). */
+typedef rc_distill_summary rc_distill_result;
 
 void rc_distill_result_free(rc_distill_result *r);
 

@@ -21,43 +21,15 @@
 #include <stdint.h>
 
 #include "core/status.h"
+#include "recoup/outputs.h"
 
-typedef enum rc_out_term {
-  RC_OUT_KD = 0,        /* softmax KL per position over the class axis */
-  RC_OUT_KD_SIGMOID,    /* binary KL per entry (independent probabilities) */
-  RC_OUT_MSE,           /* mean squared difference to the teacher */
-  RC_OUT_SMOOTH_L1,     /* Huber with beta, to the teacher */
-  RC_OUT_BOUNDED_L2,    /* Chen et al. 2017: error to targets bounded by the teacher's */
-  RC_OUT_EDGE_KD,       /* Zheng et al. 2022: KL per box edge over discrete positions */
-  RC_OUT_TERM_COUNT
-} rc_out_term;
+/* rc_out_term, rc_output_loss, rc_output_loss_parse, rc_out_term_name and
+ * rc_out_term_needs_targets are public: recoup/outputs.h. */
 
 /* What validation reports for an output the term is on. */
 typedef enum rc_out_kind { RC_OUT_CLASSES = 0, RC_OUT_VALUES = 1 } rc_out_kind;
 
-#define RC_OUT_MAX_CLASS_WEIGHTS 256
-#define RC_OUT_AXIS_DEFAULT (-1000)
-
-typedef struct rc_output_loss {
-  char output[128];      /* the model output's name */
-  rc_out_term term;
-  float weight;          /* of the term; 1 unless given */
-  int axis;              /* as given (RC_OUT_AXIS_DEFAULT: the term's default) */
-  float temperature;     /* <= 0: the term's default (kd: the run's --temperature) */
-  float beta;            /* smooth-l1 */
-  float margin;          /* bounded-l2 */
-  int bins;              /* edge-kd: bins per edge */
-  int n_class_weights;   /* 0: every class weighs 1 */
-  float class_weights[RC_OUT_MAX_CLASS_WEIGHTS];
-} rc_output_loss;
-
-/* Parse "NAME=TERM[:key=value...]"; unknown terms, keys a term does not take,
- * and values out of range are refused naming the text. */
-rc_status rc_output_loss_parse(rc_output_loss *o, const char *spec, rc_err *e);
-
-const char *rc_out_term_name(rc_out_term t);
 rc_out_kind rc_out_term_kind(rc_out_term t);
-int rc_out_term_needs_targets(rc_out_term t);
 /* Comma-separated list of the known term names, for help and errors. */
 const char *rc_out_term_list(void);
 

@@ -305,7 +305,7 @@ static rc_status check_ranges(const rc_graph *g, const rc_qat *q, rc_err *e) {
       if (v < s->range.lo || v > s->range.hi)
         return rc__fail(e, RC_ERR_NUMERIC, "%s: tensor '%s' entry %lld is %lld, outside its grid's range [%d, %d] "
                         "(%s); refusing to write", g->path, g->values[s->int_value].name, (long long)i,
-                        (long long)v, s->range.lo, s->range.hi, rc__range_source_name(s->range.source));
+                        (long long)v, s->range.lo, s->range.hi, rc_range_source_name(s->range.source));
     }
   }
   return RC_OK;

@@ -13,7 +13,7 @@
  * the prior weights keep pixels smooth and bounded without outweighing the
  * statistics term (chosen by us, not taken from the papers, whose weights
  * belong to ImageNet-sized inputs). */
-void rc_synth_defaults(rc_synth_config *c) {
+void rc_synth_config_init(rc_synth_config *c) {
   memset(c, 0, sizeof *c);
   c->count = 1024;
   c->batch = 256;

@@ -21,37 +21,10 @@
 
 #include "core/status.h"
 #include "onnx/model.h"
+#include "recoup/synthesize.h"
 
-typedef struct rc_synth_config {
-  int64_t count;     /* samples to make */
-  int64_t batch;     /* samples optimised together (their statistics are matched) */
-  int64_t steps;     /* Adam steps per batch */
-  float lr;
-  uint64_t seed;
-  float w_class, w_tv, w_l2;
-  void (*progress)(void *user, int64_t done, int64_t total, double bn_loss);
-  void *user;
-} rc_synth_config;
-
-void rc_synth_defaults(rc_synth_config *c);
-
-typedef struct rc_synth_stats {
-  int n_bn;                 /* BatchNormalization layers matched */
-  double bn_loss_start;     /* L_bn of the first batch before any step */
-  double bn_loss_end;       /* mean L_bn over the batches after their last step */
-  /* Worst over layers, channels and batches after the last step:
-   * |mu_batch - mu_running| / sqrt(var_running + eps) and
-   * |var_batch - var_running| / (var_running + eps). */
-  double worst_mean_err, worst_var_err;
-} rc_synth_stats;
-
-/* Check that the teacher has what synthesis needs: one float input of
- * concrete shape beyond the batch, and BatchNormalization with running
- * statistics stored as initializers. */
-rc_status rc_synth_check(const rc_model *teacher, rc_err *e);
-
-/* out: count * per-sample floats of the teacher's (single) input. */
-rc_status rc_synthesize(float *out, rc_synth_stats *stats, rc_model *teacher, const rc_synth_config *c, rc_err *e);
+/* rc_synth_config, rc_synth_stats, rc_synth_config_init, rc_synth_check and
+ * rc_synthesize are public: recoup/synthesize.h. */
 
 /* The terms on their own (for tests against PyTorch). Statistics term of
  * one layer input x (dims, (N, C, ...)): returns ||mu - mean||_2 +
