@@ -90,6 +90,11 @@ typedef struct rc_distill_settings {
    * the run stops after the current step with RC_ERR_INTERRUPTED, writing a
    * checkpoint first when checkpoint_path is set. NULL: never. */
   const volatile sig_atomic_t *stop;
+  /* Transforms of every training batch, applied identically to the
+   * teacher's and the student's input, e.g. "flip,crop=4,mix=0.2" (see
+   * README, --augment); NULL: none. With it the teacher runs on every
+   * batch instead of caching its outputs. */
+  const char *augment;
 } rc_distill_settings;
 
 /* 3 epochs, batch 64, the default temperature and learning rate, seed 1, no

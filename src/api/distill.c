@@ -47,6 +47,7 @@ static void config_from(rc_distill_config *c, const rc_distill_settings *s) {
   c->progress = s->progress;
   c->user = s->user;
   c->stop = s->stop;
+  c->augment = s->augment;
   if (s->progress) {
     c->log.fn = note_to_progress;
     c->log.user = (void *)s;
