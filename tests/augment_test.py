@@ -23,10 +23,11 @@ Usage: augment_test.py AUGMENT_DUMP RECOUP SOURCE_DIR WORK_DIR
 """
 
 import filecmp
-import json
 import os
+import signal
 import subprocess
 import sys
+import time
 
 import numpy as np
 from PIL import Image
@@ -143,8 +144,8 @@ base = ["distill", "--scale", SCALE, "--threads", "2", "--seed", "4", "--json"]
 # and no weight moves. Any step where the teacher saw other pixels than the
 # student would show a positive loss.
 same = run.json(base + ["--teacher", DENSE, "--student", DENSE, "--data", small, "--steps", "12",
-                        "--augment", "rrc=0.3-1,crop=3,flip,mix=0.3,cutmix=1",
-                        "--out", os.path.join(WORK, "same.onnx")])
+                        "--augment", "rrc=0.3-1,crop=3,flip,mix=0.3,cutmix=1", "--report",
+                        os.path.join(WORK, "report"), "--out", os.path.join(WORK, "same.onnx")])
 losses = [p[1] for p in same["loss_trace"]]
 check("same model as teacher and student: every step's kd loss is exactly 0 (teacher and student see the same "
       "augmented pixels; KL of a distribution to itself is 0)", len(losses) == 12 and max(losses) == 0.0,
@@ -153,6 +154,11 @@ check("--json records the list in canonical form and that the teacher-output cac
       same["augment"] == "rrc=0.3-1:0.75-1.33333,crop=3,flip,mix=0.3,cutmix=1"
       and same["teacher_cache"] == "off (augmentation)",
       f"(augment {same['augment']!r}, teacher_cache {same['teacher_cache']!r})")
+
+with open(os.path.join(WORK, "report", "report.html"), encoding="utf-8") as f:
+    html = f.read()
+check("report.html names the list", f"Augmentation: {same['augment']}" in html,
+      f"(looked for {same['augment']!r} in {len(html)} characters)")
 
 # Same seed and threads: byte-identical files (labels mixed with the weights).
 outs = []
@@ -175,6 +181,29 @@ for k in range(2):
     outs.append(o)
 check("same seed and threads from a folder of PNG images with augmentation: byte-identical files",
       filecmp.cmp(*outs, shallow=False), f"({outs[0]} against {outs[1]})")
+
+# Killed once a checkpoint exists, then resumed: the transforms are drawn
+# from (seed, step, position), so the resumed run ends on the same bytes.
+resume_args = base + ["--teacher", DENSE, "--student", PRUNED, "--data", small, "--labels", small_labels,
+                      "--steps", "160", "--batch", "32", "--checkpoint-every", "20",
+                      "--augment", "crop=2,flip,mix=0.4,cutmix=1"]
+whole = os.path.join(WORK, "whole.onnx")
+run(resume_args + ["--out", whole])
+cut = os.path.join(WORK, "cut.onnx")
+ckpt = cut + ".ckpt"
+for q in (cut, ckpt, ckpt + ".1"):
+    if os.path.exists(q):
+        os.remove(q)
+p = subprocess.Popen([RECOUP] + resume_args + ["--out", cut], stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+while p.poll() is None and not os.path.exists(ckpt + ".1"):
+    time.sleep(0.02)
+p.send_signal(signal.SIGKILL)
+p.wait()
+killed_mid_run = os.path.exists(ckpt) and not os.path.exists(cut)
+r = subprocess.run([RECOUP] + resume_args + ["--out", cut, "--resume", ckpt], capture_output=True, text=True)
+check("SIGKILL after a checkpoint, then --resume with augmentation: byte-identical to the uninterrupted run",
+      killed_mid_run and r.returncode == 0 and filecmp.cmp(whole, cut, shallow=False),
+      f"(killed mid-run: {killed_mid_run}, resume status {r.returncode}, {r.stderr.strip()[-200:]!r})")
 
 # Refusals: one clear line, the right exit status.
 def refused(args, status, needle, what):

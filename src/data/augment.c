@@ -237,22 +237,31 @@ void rc__augment_draw_sample(const rc_augment *a, rc_augment_draw *d, int64_t h,
  * to sample), which is what an image library's bilinear resize of a box
  * computes when it enlarges. The box is never larger than the image, so
  * this only enlarges and needs no antialiasing. */
+/* Where output pixel i of n samples a box [start, start + len) of an axis of
+ * n pixels: the two neighbours and the weight of the second. */
+typedef struct tap {
+  int64_t lo, hi;
+  double f;
+} tap;
+
+static tap box_tap(int64_t i, int64_t n, int64_t start, int64_t len) {
+  double at = (double)start + ((double)i + 0.5) * (double)len / (double)n - 0.5;
+  if (at < 0) at = 0;
+  if (at > (double)(n - 1)) at = (double)(n - 1);
+  tap t = {(int64_t)at, 0, 0};
+  t.hi = t.lo + 1 < n ? t.lo + 1 : t.lo;
+  t.f = at - (double)t.lo;
+  return t;
+}
+
 static void resize_box(float *dst, const float *src, int64_t h, int64_t w, const rc_augment_draw *d) {
   for (int64_t y = 0; y < h; y++) {
-    double sy = (double)d->ry + ((double)y + 0.5) * (double)d->rh / (double)h - 0.5;
-    if (sy < 0) sy = 0;
-    if (sy > (double)(h - 1)) sy = (double)(h - 1);
-    int64_t y0 = (int64_t)sy, y1 = y0 + 1 < h ? y0 + 1 : y0;
-    double fy = sy - (double)y0;
+    tap ty = box_tap(y, h, d->ry, d->rh);
     for (int64_t x = 0; x < w; x++) {
-      double sx = (double)d->rx + ((double)x + 0.5) * (double)d->rw / (double)w - 0.5;
-      if (sx < 0) sx = 0;
-      if (sx > (double)(w - 1)) sx = (double)(w - 1);
-      int64_t x0 = (int64_t)sx, x1 = x0 + 1 < w ? x0 + 1 : x0;
-      double fx = sx - (double)x0;
-      double top = (1 - fx) * src[y0 * w + x0] + fx * src[y0 * w + x1];
-      double bottom = (1 - fx) * src[y1 * w + x0] + fx * src[y1 * w + x1];
-      dst[y * w + x] = (float)((1 - fy) * top + fy * bottom);
+      tap tx = box_tap(x, w, d->rx, d->rw);
+      double top = (1 - tx.f) * src[ty.lo * w + tx.lo] + tx.f * src[ty.lo * w + tx.hi];
+      double bottom = (1 - tx.f) * src[ty.hi * w + tx.lo] + tx.f * src[ty.hi * w + tx.hi];
+      dst[y * w + x] = (float)((1 - ty.f) * top + ty.f * bottom);
     }
   }
 }

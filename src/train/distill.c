@@ -516,16 +516,17 @@ static rc_status outputs_loss(run_state *st, const step_buffers *sb, int64_t b, 
                           loss, e);
 }
 
-/* The teacher on this rank's rows of the step's batch, as the student
- * sees them (rows past them are zeros). */
+/* The teacher on this rank's rows of the step's batch, as the student sees
+ * them, placed at their rows of the global batch (rows about them are
+ * zeros) so that each gets the bits one process gives it. */
 static rc_status teacher_forward(run_state *st, const step_buffers *sb, rc_err *e) {
   const rc_graph *tg = &st->teacher->graph, *sg = st->sg;
   for (int i = 0; i < tg->n_inputs; i++) {
     int j = rc__graph_find_in(sg, sg->inputs, sg->n_inputs, tg->values[tg->inputs[i]].name);
     rc_tensor *t = rc_plan_tensor(st->teacher_plan, tg->inputs[i]);
-    size_t row = rc_tensor_nbytes(t) / (size_t)t->dims[0], used = row * (size_t)st->local;
-    memcpy(t->data, sb->in[j], used);
-    memset((unsigned char *)t->data + used, 0, rc_tensor_nbytes(t) - used);
+    size_t row = rc_tensor_nbytes(t) / (size_t)t->dims[0];
+    memset(t->data, 0, rc_tensor_nbytes(t));
+    memcpy((unsigned char *)t->data + row * (size_t)st->offset, sb->in[j], row * (size_t)st->local);
   }
   return rc_plan_forward(st->teacher_plan, e);
 }
@@ -609,8 +610,8 @@ static rc_status teacher_rows(run_state *st, step_buffers *sb, int64_t b, int64_
   size_t row = sizeof(float) * (size_t)st->k;
   if (st->augmenting) {
     RC_TRY(teacher_forward(st, sb, e));
-    memcpy(sb->teacher, rc_plan_tensor(st->teacher_plan, st->teacher->graph.outputs[0])->data,
-           row * (size_t)st->local);
+    const float *t = rc_plan_tensor(st->teacher_plan, st->teacher->graph.outputs[0])->data;
+    memcpy(sb->teacher, t + st->offset * st->k, row * (size_t)st->local);
     return RC_OK;
   }
   RC_TRY(teacher_lazy(st, sb, b, spe, e));
