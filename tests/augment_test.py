@@ -220,6 +220,15 @@ refused(common + ["--augment", "crop=28"], 1, "padding must be smaller than the 
 refused(common + ["--augment", "flip,spin"], 2, "unknown transform 'spin'", "an unknown transform: usage error")
 refused(common + ["--augment", "mix=0"], 2, "'mix=0'", "a non-positive Beta parameter: usage error")
 refused(common + ["--augment", "rrc=0.5-0.2"], 2, "'rrc=0.5-0.2'", "an empty area range: usage error")
+targets = os.path.join(WORK, "targets.npy")
+np.save(targets, np.zeros((len(images), 10), np.float32))
+refused(common + ["--augment", "flip", "--output-loss", "logits=bounded-l2", "--targets", f"logits={targets}"], 1,
+        "does not move dense labels or --targets", "per-output losses with --targets: refused")
+per_output = run.json(common[:-2] + ["--json", "--augment", "flip,mix=0.3", "--output-loss", "logits=kd",
+                                     "--out", os.path.join(WORK, "per_output.onnx")])
+check("per-output losses against the teacher alone: accepted with augmentation",
+      per_output["augment"] == "flip,mix=0.3" and per_output["steps"] == 2,
+      f"(augment {per_output['augment']!r}, steps {per_output['steps']})")
 
 # The lazy teacher-output cache: 5 steps of 64 compute outputs for the samples
 # drawn and the rows left free in those passes, not for all 2,700.
