@@ -517,7 +517,7 @@ static rc_status outputs_loss(run_state *st, const step_buffers *sb, int64_t b, 
 }
 
 /* The teacher on this rank's rows of the step's batch, as the student sees
- * them, placed at their rows of the global batch (rows about them are
+ * them, placed at their rows of the global batch (the other rows are
  * zeros) so that each gets the bits one process gives it. */
 static rc_status teacher_forward(run_state *st, const step_buffers *sb, rc_err *e) {
   const rc_graph *tg = &st->teacher->graph, *sg = st->sg;
