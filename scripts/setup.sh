@@ -27,7 +27,7 @@ PACKAGES=(
   libjpeg62-turbo-dev libpng-dev                   # image folders (JPEG, PNG)
   libopenmpi-dev openmpi-bin                       # optional: distill and batch over MPI ranks
   # reference tests and demo (Debian's /usr/bin/python3)
-  python3 python3-numpy python3-torch python3-torchvision python3-onnx python3-pil
+  python3 python3-numpy python3-torch python3-torchvision python3-onnx python3-pil python3-scipy
   dataset-fashion-mnist libonnx-testdata
   # sanitizers and libFuzzer (libomp-dev: OpenMP for clang builds)
   clang libclang-rt-14-dev libomp-dev

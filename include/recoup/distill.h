@@ -136,6 +136,11 @@ typedef struct rc_distill_settings {
    * fitted, steps rolled back). log.fn NULL: they reach progress as
    * RC_DISTILL_NOTE events (when progress is set). */
   rc_logger log;
+  /* Transforms of every training batch, applied identically to the
+   * teacher's and the student's input, e.g. "flip,crop=4,mix=0.2" (see
+   * README, --augment); NULL: none. With it the teacher runs on every
+   * batch instead of caching its outputs. */
+  const char *augment;
 } rc_distill_settings;
 
 /* 3 epochs, batch 64, the default temperature and learning rate, seed 1, no
@@ -167,6 +172,8 @@ typedef struct rc_range_check {
 } rc_range_check;
 
 #define RC_DISTILL_TRACE_MAX 120
+/* Room for the augmentation list in canonical form, with its terminating 0. */
+#define RC_DISTILL_AUGMENT_MAX 256
 
 /* One trained weight: what its zeros meant and, if quantized, its integer range. */
 typedef struct rc_distill_tensor_rule {
@@ -215,6 +222,9 @@ typedef struct rc_distill_summary {
   double comm_seconds_per_step; /* communicating (gradient sums, validation outputs, checks),
                                       * over the steps this run took (after a resume: since it) */
   int64_t comm_values_per_step; /* gradient values each step sums (4 bytes each) */
+  char augment[RC_DISTILL_AUGMENT_MAX]; /* the transforms in canonical form; "" when none */
+  int teacher_cache_off;                /* augmented: the teacher ran on every batch, nothing cached */
+  int64_t teacher_cached_samples;       /* training samples whose teacher outputs were computed and cached */
 } rc_distill_summary;
 
 /* Train student against teacher (same inputs and outputs; checked). */
@@ -235,6 +245,9 @@ RC_API const char *rc_distill_loss_term(int i, float *default_weight, const char
 /* Check a settings.loss text; the message names the term or weight at fault
  * and lists the known terms. */
 RC_API rc_status rc_distill_loss_check(const char *text, rc_err *e);
+/* Check a settings.augment list ("flip,crop=4,mix=0.2"); the message names
+ * the item or value at fault. */
+RC_API rc_status rc_distill_augment_check(const char *text, rc_err *e);
 
 /* Check that teacher and student agree on input and output names and shapes. */
 RC_API rc_status rc_distill_pair_check(const rc_model *teacher, const rc_model *student, rc_err *e);

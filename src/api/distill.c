@@ -7,6 +7,7 @@
 
 #include "core/alloc.h"
 #include "core/status.h"
+#include "data/augment.h"
 #include "train/distill.h"
 #include "train/features.h"
 #include "train/select.h"
@@ -98,6 +99,7 @@ static rc_status config_from(rc_distill_config *c, const rc_distill_settings *s,
   c->progress = s->progress;
   c->user = s->user;
   c->stop = s->stop;
+  c->augment = s->augment;
   if (s->log.fn) {
     c->log = s->log;
   } else if (s->progress) {
@@ -146,6 +148,11 @@ const char *rc_distill_loss_term(int i, float *default_weight, const char **help
 rc_status rc_distill_loss_check(const char *text, rc_err *e) {
   rc_loss_spec spec;
   return rc_loss_spec_parse(&spec, text, e);
+}
+
+rc_status rc_distill_augment_check(const char *text, rc_err *e) {
+  rc_augment aug;
+  return rc__augment_parse(&aug, text, e);
 }
 
 rc_status rc_distill_pair_check(const rc_model *teacher, const rc_model *student, rc_err *e) {

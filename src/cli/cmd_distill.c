@@ -75,7 +75,21 @@ typedef struct distill_args {
   char config_loss[2048]; /* the "loss" of --config as settings text */
   rc_distill_settings cfg;
   cli_outputs outs;
+  char augment[RC_DISTILL_AUGMENT_MAX]; /* every --augment joined with ',' */
 } distill_args;
+
+/* --augment LIST (repeatable): checked here, so a typo is a usage error
+ * before any model is read; the run parses the joined list again. */
+static int add_augment(distill_args *a, const char *v) {
+  size_t used = strlen(a->augment);
+  if (used + strlen(v) + 2 > sizeof a->augment)
+    return cli_usage_error("distill", "--augment: the list is too long");
+  snprintf(a->augment + used, sizeof a->augment - used, "%s%s", used ? "," : "", v);
+  rc_err e = {0};
+  if (rc_distill_augment_check(a->augment, &e) != RC_OK) return cli_usage_error("distill", "%s", e.msg);
+  a->cfg.augment = a->augment;
+  return 0;
+}
 
 static int apply_option(distill_args *a, int c, const char *v) {
   rc_distill_settings *cfg = &a->cfg;
@@ -104,6 +118,7 @@ static int apply_option(distill_args *a, int c, const char *v) {
     case CLI_DISTILL_RESIZE: return cli_data_option(&a->data, "distill", "resize", v);
     case CLI_DISTILL_SKIP_BAD: return cli_data_option(&a->data, "distill", "skip-bad", v);
     case CLI_DISTILL_CACHE_MB: a->cfg.cache_bytes = (size_t)l << 20; return 0;
+    case CLI_DISTILL_AUGMENT: return add_augment(a, v);
     case CLI_DISTILL_EPOCHS: cfg->epochs = l; return 0;
     case CLI_DISTILL_STEPS: cfg->steps = l; return 0;
     case CLI_DISTILL_BATCH: cfg->batch = l; return 0;
@@ -484,8 +499,13 @@ static cJSON *results_json(const distill_args *a, const rc_distill_summary *r, d
   cJSON_AddNumberToObject(root, "rollbacks", r->rollbacks);
   cJSON_AddNumberToObject(root, "reload_max_diff", verify_diff);
   if (a->train_samples) cli_images_json(root, a->train_samples);
-  cJSON_AddStringToObject(root, "teacher_cache", r->teacher_cache_in_file ? "file" : "memory");
+  cJSON_AddStringToObject(root, "teacher_cache",
+                          r->teacher_cache_off       ? "off (augmentation)"
+                          : r->teacher_cache_in_file ? "file"
+                                                     : "memory");
   cJSON_AddNumberToObject(root, "teacher_cache_bytes", (double)r->teacher_cache_bytes);
+  cJSON_AddNumberToObject(root, "teacher_cached_samples", (double)r->teacher_cached_samples);
+  cJSON_AddStringToObject(root, "augment", r->augment);
   cJSON *layers = cJSON_AddArrayToObject(root, "layers");
   for (int i = 0; i < r->n_layers; i++) {
     cJSON *o = cJSON_CreateObject();
@@ -568,6 +588,11 @@ static void print_results(const distill_args *a, const rc_distill_summary *r, do
   }
   printf("\n%lld steps in %.1f s (%.0f samples/s); %s values trained in %d tensors\n", (long long)r->steps_done,
          r->seconds, r->samples_per_s, cli_group_digits(r->n_trainable, b1, sizeof b1), r->n_trainable_tensors);
+  if (r->augment[0])
+    printf(
+        "augmentation: %s, the same pixels for teacher and student; the teacher ran on every batch (no "
+        "teacher-output cache)\n",
+        r->augment);
   printf("masks: %s pruned entries checked, all still exactly zero\n",
          cli_group_digits(r->n_frozen_zeros, b2, sizeof b2));
   if (r->n_grids)

@@ -52,6 +52,10 @@
   X(CACHE_MB, "cache-mb", CLI_OPT_INT, 1, 1e9, NULL, CLI_OPT_ANYWHERE, CLI_GROUP_DATA, "N", NULL,                 \
     "keep the teacher's cached outputs in memory up to N MB, beyond that in a mapped temporary file next to "     \
     "--out (default: a quarter of physical memory)")                                                              \
+  X(AUGMENT, "augment", CLI_OPT_STRLIST, 0, 0, NULL, CLI_OPT_ANYWHERE, CLI_GROUP_TRAINING, "LIST", NULL,          \
+    "transform every training batch, the same for teacher and student: flip, crop=N (pad N zeros, crop "       \
+    "back), rrc[=SMIN-SMAX[:RMIN-RMAX]] (random resized crop), mix=A (mixup), cutmix=A; e.g. flip,crop=4,mix=0.2 " \
+    "(repeatable; the teacher then runs on every batch)")                                                         \
   X(EPOCHS, "epochs", CLI_OPT_INT, 1, 1000000, NULL, CLI_OPT_ANYWHERE, CLI_GROUP_TRAINING, "E", "3",               \
     "passes over the training samples")                                                                            \
   X(STEPS, "steps", CLI_OPT_INT, 1, CLI_OPT_NO_MAX, NULL, CLI_OPT_ANYWHERE, CLI_GROUP_TRAINING, "N", NULL,         \

@@ -631,6 +631,15 @@ static void layer_cell(char *buf, size_t n, const cJSON *l, const char *key, con
   else snprintf(buf, n, "%s", *str(l, state_key) ? str(l, state_key) : "not measured");
 }
 
+/* The --augment list of a run that used one. */
+static void augment_note(cli_sbuf *b, const cJSON *r) {
+  const char *aug = str(r, "augment");
+  if (!*aug) return;
+  cli_sb_printf(b, "<p class=\"facts\">Augmentation: ");
+  cli_sb_esc(b, aug);
+  cli_sb_printf(b, " (the same pixels for teacher and student; the teacher ran on every batch).</p>");
+}
+
 /* Trained activations the deployed model clamps (distill's range_warnings). */
 static void range_notes(cli_sbuf *b, const cJSON *rec) {
   const cJSON *w;
@@ -704,6 +713,7 @@ static void job_card(cli_sbuf *b, const cJSON *r) {
             num(r, "samples_per_s"), num(r, "train_samples"), num(r, "val_samples"), num(r, "pruned_zeros_kept"),
             masks_text(r),
             cJSON_IsFalse(imp) ? " Training never beat the input on validation: the input's values were written." : "");
+  augment_note(b, r);
   range_notes(b, r);
   layer_table(b, r);
   cli_sb_add(b, "</div>", 6);

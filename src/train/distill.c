@@ -11,6 +11,7 @@
 #include "core/alloc.h"
 #include "core/file.h"
 #include "core/log.h"
+#include "data/augment.h"
 #include "data/spill.h"
 #include "plan/count.h"
 #include "plan/inspect.h"
@@ -96,6 +97,10 @@ typedef struct run_state {
   rc_dataset train, val;
   float *teacher_logits;     /* per training-pool sample (N_pool, K), in teacher_cache */
   rc_spill teacher_cache;    /* memory, or a mapped file past config cache_bytes */
+  unsigned char *teacher_have; /* per pool sample: its row of teacher_logits is computed */
+  int64_t teacher_cached;      /* how many are */
+  rc_augment aug;              /* transforms of every training batch (data/augment.h) */
+  int augmenting;              /* any: the teacher runs on every batch, nothing is cached */
   float *teacher_val_logits; /* (n_val, K) */
   float *val_logits;
   const int32_t *val_labels;
@@ -450,7 +455,29 @@ typedef struct step_buffers {
   double *bn_scratch; /* per-channel sums for --bn train */
   int64_t max_c;
   float lr;           /* the last step's learning rate, for progress */
+  /* Augmentation: the batch's mixing, its partners (global batch
+   * positions), their rows and labels, and one plane of scratch. */
+  rc_augment_mix mix;
+  int64_t *partner, *partner_order;
+  float *mix_rows, *aug_work;
+  int32_t *partner_labels;
+  /* Lazy teacher passes: per row of the teacher's plan, the training
+   * position it reads and the sample it caches (-1: none). */
+  int64_t *slot_pos, *slot_sample;
 } step_buffers;
+
+/* Labels of a mixed batch count with the mixing weight: lambda for the
+ * sample's own, 1 - lambda for its partner's (common practice with mixup
+ * and CutMix). */
+static rc_status mixed_cross_entropy(const run_state *st, const step_buffers *sb, float *grad, float w,
+                                     const float *s, const int32_t *labels, double *ce, rc_err *e) {
+  double lam = sb->mix.lambda, own = 0, other = 0;
+  RC_TRY(rc_loss_cross_entropy(&own, NULL, grad, (float)(w * lam), s, labels, st->local, st->k, e));
+  RC_TRY(rc_loss_cross_entropy(&other, NULL, grad, (float)(w * (1 - lam)), s, sb->partner_labels, st->local, st->k,
+                               e));
+  *ce = lam * own + (1 - lam) * other;
+  return RC_OK;
+}
 
 static rc_status loss_and_seed(run_state *st, const step_buffers *sb, const int32_t *labels, double *loss,
                                rc_err *e) {
@@ -469,8 +496,11 @@ static rc_status loss_and_seed(run_state *st, const step_buffers *sb, const int3
   else if (wmse > 0)
     RC_TRY(rc_loss_logit_mse(&dl, NULL, grad, alpha * wmse, s, sb->teacher, st->local, st->k, e));
   dl *= wkd > 0 ? wkd : wmse;
-  if (labels && alpha < 1)
+  if (labels && alpha < 1 && sb->mix.kind != RC_MIX_NONE) {
+    RC_TRY(mixed_cross_entropy(st, sb, grad, 1 - alpha, s, labels, &ce, e));
+  } else if (labels && alpha < 1) {
     RC_TRY(rc_loss_cross_entropy(&ce, NULL, grad, 1 - alpha, s, labels, st->local, st->k, e));
+  }
   *loss = alpha * dl + (labels && alpha < 1 ? (1 - alpha) * ce : 0);
   return RC_OK;
 }
@@ -486,13 +516,160 @@ static rc_status outputs_loss(run_state *st, const step_buffers *sb, int64_t b, 
                           loss, e);
 }
 
-static void gather_teacher_rows(run_state *st, const step_buffers *sb, int64_t b) {
-  if (!st->k) return;
-  for (int64_t j = 0; j < st->local; j++) {
-    int64_t pos = st->train.order[b * st->batch + st->offset + j];
-    int64_t sample = st->train.index[pos];
-    memcpy(sb->teacher + j * st->k, st->teacher_logits + sample * st->k, sizeof(float) * (size_t)st->k);
+/* The teacher on this rank's rows of the step's batch, as the student sees
+ * them, placed at their rows of the global batch (the other rows are
+ * zeros) so that each gets the bits one process gives it. */
+static rc_status teacher_forward(run_state *st, const step_buffers *sb, rc_err *e) {
+  const rc_graph *tg = &st->teacher->graph, *sg = st->sg;
+  for (int i = 0; i < tg->n_inputs; i++) {
+    int j = rc__graph_find_in(sg, sg->inputs, sg->n_inputs, tg->values[tg->inputs[i]].name);
+    rc_tensor *t = rc_plan_tensor(st->teacher_plan, tg->inputs[i]);
+    size_t row = rc_tensor_nbytes(t) / (size_t)t->dims[0];
+    memset(t->data, 0, rc_tensor_nbytes(t));
+    memcpy((unsigned char *)t->data + row * (size_t)st->offset, sb->in[j], row * (size_t)st->local);
   }
+  return rc_plan_forward(st->teacher_plan, e);
+}
+
+/* How far past this step's rows a teacher pass looks for samples to fill
+ * its free rows with, in batches. */
+#define TEACHER_LOOKAHEAD 16
+
+/* One teacher pass over the samples at the training positions slot_pos
+ * (one per row of the teacher's plan; a free row repeats another's
+ * sample), caching the rows whose slot_sample is set. */
+static rc_status teacher_fill(run_state *st, const step_buffers *sb, rc_err *e) {
+  const rc_graph *tg = &st->teacher->graph, *sg = st->sg;
+  rc_dataset td = st->train;
+  void *in[RC_DATASET_MAX_INPUTS];
+  for (int i = 0; i < tg->n_inputs; i++) {
+    rc_dataset_take_input(&td, i, &st->train,
+                          rc__graph_find_in(sg, sg->inputs, sg->n_inputs, tg->values[tg->inputs[i]].name));
+    in[i] = rc_plan_tensor(st->teacher_plan, tg->inputs[i])->data;
+  }
+  td.order = sb->slot_pos;
+  td.n = st->batch;
+  memset(td.release, 0, sizeof td.release); /* the step's own gather manages a mapping's pages */
+  int64_t count;
+  RC_TRY(rc_dataset_gather(in, NULL, &count, &td, 0, st->batch, e));
+  RC_TRY(rc_plan_forward(st->teacher_plan, e));
+  const float *t = rc_plan_tensor(st->teacher_plan, tg->outputs[0])->data;
+  for (int64_t r = 0; r < st->batch; r++) {
+    int64_t sample = sb->slot_sample[r];
+    if (sample < 0) continue;
+    memcpy(st->teacher_logits + sample * st->k, t + r * st->k, sizeof(float) * (size_t)st->k);
+    st->teacher_have[sample] = 1;
+    st->teacher_cached++;
+  }
+  return RC_OK;
+}
+
+/* Give the sample at training position pos its row in the next teacher
+ * pass, if it needs one and its row is free. */
+static void claim_slot(const run_state *st, const step_buffers *sb, int64_t pos, int *claimed) {
+  int64_t sample = st->train.index[pos], r = sample % st->batch;
+  if (st->teacher_have[sample] || sb->slot_sample[r] >= 0) return;
+  sb->slot_sample[r] = sample;
+  sb->slot_pos[r] = pos;
+  *claimed = 1;
+}
+
+/* Compute the teacher's rows that this rank's part of batch b lacks. A
+ * row's bits depend on the sample and on its row in the teacher's plan
+ * (the GEMM library picks kernels by position), so sample s always takes
+ * row s mod batch, as a pass over the samples in order gives it: the cache
+ * holds the same bits whichever steps draw it first. Rows this step leaves
+ * free go to samples the next batches of the epoch draw. */
+static rc_status teacher_lazy(run_state *st, step_buffers *sb, int64_t b, int64_t spe, rc_err *e) {
+  const int64_t *order = st->train.order;
+  int64_t first = b * st->batch + st->offset;
+  for (;;) {
+    for (int64_t r = 0; r < st->batch; r++) sb->slot_sample[r] = -1;
+    int claimed = 0;
+    for (int64_t j = 0; j < st->local; j++) claim_slot(st, sb, order[first + j], &claimed);
+    if (!claimed) return RC_OK;
+    int64_t end = b + 1 + TEACHER_LOOKAHEAD < spe ? b + 1 + TEACHER_LOOKAHEAD : spe;
+    for (int64_t bb = b + 1; bb < end; bb++)
+      for (int64_t j = 0; j < st->local && bb * st->batch + st->offset + j < st->train.n; j++)
+        claim_slot(st, sb, order[bb * st->batch + st->offset + j], &claimed);
+    int64_t any = 0;
+    for (int64_t r = 0; r < st->batch; r++)
+      if (sb->slot_sample[r] >= 0) any = sb->slot_pos[r];
+    for (int64_t r = 0; r < st->batch; r++)
+      if (sb->slot_sample[r] < 0) sb->slot_pos[r] = any;
+    RC_TRY(teacher_fill(st, sb, e));
+  }
+}
+
+/* The teacher's rows for this rank's part of batch b: from the cache,
+ * filled as steps first draw samples (a run of a few steps never runs the
+ * teacher over the whole set), or, with augmentation, computed on the
+ * augmented batch itself. */
+static rc_status teacher_rows(run_state *st, step_buffers *sb, int64_t b, int64_t spe, rc_err *e) {
+  if (!st->k) return RC_OK;
+  size_t row = sizeof(float) * (size_t)st->k;
+  if (st->augmenting) {
+    RC_TRY(teacher_forward(st, sb, e));
+    const float *t = rc_plan_tensor(st->teacher_plan, st->teacher->graph.outputs[0])->data;
+    memcpy(sb->teacher, t + st->offset * st->k, row * (size_t)st->local);
+    return RC_OK;
+  }
+  RC_TRY(teacher_lazy(st, sb, b, spe, e));
+  const int64_t *order = st->train.order + b * st->batch + st->offset;
+  for (int64_t j = 0; j < st->local; j++)
+    memcpy(sb->teacher + j * st->k, st->teacher_logits + st->train.index[order[j]] * st->k, row);
+  return RC_OK;
+}
+
+/* ---- Augmentation ------------------------------------------------------------- */
+
+/* Transforms of this rank's rows of batch b, drawn by global batch position
+ * so that any split over ranks gives the rows one process gives. A mixing
+ * partner may lie in another rank's rows: every rank gathers and transforms
+ * the partners it needs itself. */
+static rc_status augment_batch(run_state *st, const loop_state *ls, step_buffers *sb, rc_err *e) {
+  const rc_tensor *in = rc_plan_tensor(st->train_plan, st->sg->inputs[0]);
+  int64_t c = in->dims[1], h = in->dims[2], w = in->dims[3], per = c * h * w;
+  const rc_augment *a = &st->aug;
+  uint64_t seed = st->c->seed;
+  float *x = sb->in[0];
+  rc_augment_draw d;
+  rc__augment_draw_mix(a, &sb->mix, sb->partner, st->batch, h, w, seed, ls->step);
+  if (sb->mix.kind != RC_MIX_NONE) {
+    for (int64_t j = 0; j < st->local; j++)
+      sb->partner_order[j] = st->train.order[ls->batch * st->batch + sb->partner[st->offset + j]];
+    rc_dataset pv = st->train;
+    pv.order = sb->partner_order;
+    pv.n = st->local;
+    memset(pv.release, 0, sizeof pv.release); /* the step's own gather manages the mapping's pages */
+    void *out[RC_DATASET_MAX_INPUTS] = {sb->mix_rows};
+    int64_t count;
+    RC_TRY(rc_dataset_gather(out, pv.labels ? sb->partner_labels : NULL, &count, &pv, 0, st->local, e));
+    for (int64_t j = 0; j < st->local; j++) {
+      rc__augment_draw_sample(a, &d, h, w, seed, ls->step, sb->partner[st->offset + j]);
+      rc__augment_apply_sample(&d, a->pad, sb->mix_rows + j * per, c, h, w, sb->aug_work);
+    }
+  }
+  for (int64_t j = 0; j < st->local; j++) {
+    rc__augment_draw_sample(a, &d, h, w, seed, ls->step, st->offset + j);
+    rc__augment_apply_sample(&d, a->pad, x + j * per, c, h, w, sb->aug_work);
+  }
+  for (int64_t j = 0; j < st->local && sb->mix.kind != RC_MIX_NONE; j++)
+    rc__augment_apply_mix(&sb->mix, x + j * per, sb->mix_rows + j * per, c, h, w);
+  return RC_OK;
+}
+
+static rc_status augment_buffers(const run_state *st, step_buffers *sb, rc_err *e) {
+  const rc_tensor *in = rc_plan_tensor(st->train_plan, st->sg->inputs[0]);
+  size_t plane = (size_t)(in->dims[2] * in->dims[3]);
+  sb->partner = rc__malloc(sizeof(int64_t) * (size_t)st->batch);
+  sb->partner_order = rc__malloc(sizeof(int64_t) * (size_t)st->local);
+  sb->partner_labels = rc__malloc(sizeof(int32_t) * (size_t)st->local);
+  sb->mix_rows = rc__malloc(rc_tensor_nbytes(in));
+  sb->aug_work = rc__malloc(sizeof(float) * plane);
+  if (!sb->partner || !sb->partner_order || !sb->partner_labels || !sb->mix_rows || !sb->aug_work)
+    return rc__fail(e, RC_ERR_NOMEM, "out of memory for augmentation");
+  return RC_OK;
 }
 
 /* ---- The run ------------------------------------------------------------------ */
@@ -511,8 +688,7 @@ typedef struct loop_ctx {
   int stop_all;              /* a rank was asked to stop (summed with the step) */
 } loop_ctx;
 
-/* Per-output runs cache no teacher outputs, so the teacher's initializers,
- * the data and the terms stand for them in the fingerprint. */
+/* Per-output terms, by value. */
 static uint64_t outputs_fingerprint(const run_state *st, uint64_t h) {
   const rc_distill_config *c = st->c;
   for (int i = 0; i < c->n_output_losses; i++) {
@@ -524,26 +700,53 @@ static uint64_t outputs_fingerprint(const run_state *st, uint64_t h) {
     h = rc__ckpt_fp_f32(h, reals, sizeof reals / sizeof reals[0]);
     h = rc__ckpt_fp_f32(h, o->class_weights, (size_t)o->n_class_weights);
   }
+  return h;
+}
+
+/* The training arrays as stored, with their normalisation; a mapped
+ * array's pages are dropped every chunk so that hashing a file larger
+ * than memory does not make it resident. */
+#define FP_CHUNK ((size_t)64 << 20)
+static uint64_t data_fingerprint(const run_state *st, uint64_t h) {
+  const rc_dataset *d = &st->train;
+  for (int i = 0; i < d->n_inputs; i++) {
+    const unsigned char *p = d->inputs[i].data;
+    size_t n = rc_tensor_nbytes(&d->inputs[i]);
+    for (size_t at = 0; at < n; at += FP_CHUNK) {
+      h = rc__ckpt_fp_bytes(h, p + at, n - at < FP_CHUNK ? n - at : FP_CHUNK);
+      if (d->release[i]) rc_array_release_pages(d->release[i]);
+    }
+    const rc_data_norm *nm = &d->norm[i];
+    float scale[] = {d->to_float[i] ? nm->scale : 0};
+    h = rc__ckpt_fp_f32(h, scale, 1);
+    if (d->to_float[i] && nm->mean) h = rc__ckpt_fp_f32(h, nm->mean, (size_t)nm->n_mean);
+    if (d->to_float[i] && nm->std) h = rc__ckpt_fp_f32(h, nm->std, (size_t)nm->n_std);
+  }
+  return h;
+}
+
+/* The teacher's initializers, the training data and, when the logit terms
+ * are matched, the teacher's outputs on the validation samples stand for
+ * the teacher outputs a run trains on (computed lazily, so not at hand
+ * when the run starts). */
+static uint64_t teacher_fingerprint(const run_state *st, uint64_t h) {
   const rc_graph *tg = &st->teacher->graph;
   for (int v = 0; v < tg->n_values; v++)
     if (tg->values[v].kind == RC_VALUE_INITIALIZER && tg->values[v].decl.data)
       h = rc__ckpt_fp_bytes(h, tg->values[v].decl.data, rc_tensor_nbytes(&tg->values[v].decl));
-  for (int i = 0; i < st->train.n_inputs; i++)
-    h = rc__ckpt_fp_bytes(h, st->train.inputs[i].data, rc_tensor_nbytes(&st->train.inputs[i]));
-  return h;
+  if (st->teacher_val_logits) h = rc__ckpt_fp_f32(h, st->teacher_val_logits, (size_t)(st->val.n * st->k));
+  return data_fingerprint(st, h);
 }
 
-/* Identifies a run: the student's starting values, the teacher's logits over
- * the data (which cover teacher, data and normalisation), and every setting
- * that shapes the trajectory, hashed by value. A checkpoint from another run
- * is refused. */
+/* Identifies a run: the student's starting values, the teacher and the data
+ * (teacher_fingerprint), and every setting that shapes the trajectory,
+ * hashed by value. A checkpoint from another run is refused. */
 static uint64_t run_fingerprint(const loop_ctx *lc) {
   const run_state *st = lc->st;
   const rc_distill_config *c = st->c;
   uint64_t h = RC_CKPT_FP_INIT;
   h = rc__ckpt_fp_f32(h, rc_params_block(st->ps, RC_BLOCK_VALUE, -1), rc_params_total(st->ps));
-  int64_t pool = st->train.n + (st->own_val ? 0 : st->val.n);
-  h = rc__ckpt_fp_f32(h, st->teacher_logits, (size_t)(pool * st->k));
+  h = teacher_fingerprint(st, h);
   int64_t ints[] = {(int64_t)c->seed, st->batch, lc->total, lc->spe, c->bn, st->train.n, st->val.n,
                     c->optim.kind, c->optim.nesterov, c->optim.decay_norm, c->sched.kind, lc->sched.warmup,
                     lc->sched.step_size, c->mask};
@@ -552,6 +755,11 @@ static uint64_t run_fingerprint(const loop_ctx *lc) {
   h = rc__ckpt_fp_i64(h, ints, sizeof ints / sizeof ints[0]);
   h = rc__ckpt_fp_f32(h, c->terms.weight, sizeof c->terms.weight / sizeof c->terms.weight[0]);
   if (st->outs) h = outputs_fingerprint(st, h);
+  if (st->augmenting) {
+    char aug[RC_AUGMENT_TEXT_MAX];
+    rc__augment_describe(&st->aug, aug, sizeof aug);
+    h = rc__ckpt_fp_bytes(h, aug, strlen(aug));
+  }
   return rc__ckpt_fp_f64(h, reals, sizeof reals / sizeof reals[0]);
 }
 
@@ -618,7 +826,8 @@ static rc_status train_step(loop_ctx *lc, const loop_state *ls, step_buffers *sb
   part.order = st->train.order + ls->batch * st->batch + st->offset;
   part.n = st->local;
   RC_TRY(rc_dataset_gather(sb->in, sb->labels, &count, &part, 0, st->local, e));
-  gather_teacher_rows(st, sb, ls->batch);
+  if (st->augmenting) RC_TRY(augment_batch(st, ls, sb, e));
+  RC_TRY(teacher_rows(st, sb, ls->batch, lc->spe, e));
   rc_params_zero_grad(st->ps);
   rc_plan_zero_grad(st->train_plan);
   RC_TRY(rc_plan_forward(st->train_plan, e));
@@ -721,8 +930,12 @@ static rc_status train_loop(run_state *st, rc_distill_result *r, const rc_distil
     if (x->rank > 1 && x->dims[1] > sb.max_c) sb.max_c = x->dims[1];
   }
   sb.bn_scratch = rc__malloc(sizeof(double) * 2 * (size_t)sb.max_c);
-  rc_status s = RC_OK;
-  if (!r->epoch_loss || !r->epoch_val || !sb.teacher || !sb.samples || (d->labels && !sb.labels) || !sb.bn_scratch) {
+  sb.slot_pos = rc__malloc(sizeof(int64_t) * (size_t)st->batch);
+  sb.slot_sample = rc__malloc(sizeof(int64_t) * (size_t)st->batch);
+  rc_status s = st->augmenting ? augment_buffers(st, &sb, e) : RC_OK;
+  if (s != RC_OK) goto out;
+  if (!r->epoch_loss || !r->epoch_val || !sb.teacher || !sb.samples || (d->labels && !sb.labels) ||
+      !sb.bn_scratch || !sb.slot_pos || !sb.slot_sample) {
     s = rc__fail(e, RC_ERR_NOMEM, "out of memory");
     goto out;
   }
@@ -816,6 +1029,13 @@ out:
   rc__free(sb.samples);
   rc__free(sb.labels);
   rc__free(sb.bn_scratch);
+  rc__free(sb.partner);
+  rc__free(sb.slot_pos);
+  rc__free(sb.slot_sample);
+  rc__free(sb.partner_order);
+  rc__free(sb.partner_labels);
+  rc__free(sb.mix_rows);
+  rc__free(sb.aug_work);
   return s;
 }
 
@@ -895,6 +1115,7 @@ static void free_state(run_state *st) {
   rc__free(st->rules);
   rc__free(st->rule_value);
   rc_spill_free(&st->teacher_cache);
+  rc__free(st->teacher_have);
   rc__free(st->teacher_val_logits);
   rc__free(st->val_logits);
 }
@@ -910,6 +1131,34 @@ static rc_status prepare_grids(run_state *st, const rc_tensor *data, rc_err *e) 
   rc_status s = rc__qat_prepare(st->sg, shapes, &notes, st->c->mask, &st->qat, e);
   rc__file_notes_free(&notes);
   return s;
+}
+
+/* --augment: parsed, checked against the student's input and the run's
+ * side data, and announced (the teacher-output cache is off with it). */
+static rc_status setup_augment(run_state *st, const rc_distill_data *d, rc_distill_result *r, rc_err *e) {
+  RC_TRY(rc__augment_parse(&st->aug, st->c->augment, e));
+  st->augmenting = rc__augment_any(&st->aug);
+  if (!st->augmenting) return RC_OK;
+  const rc_graph *g = st->sg;
+  if (g->n_inputs != 1)
+    return rc__fail(e, RC_ERR_UNSUPPORTED, "--augment: %s has %d inputs; augmentation transforms one image input",
+                    g->path, g->n_inputs);
+  char what[300];
+  snprintf(what, sizeof what, "input '%s' of %s", g->values[g->inputs[0]].name, g->path);
+  RC_TRY(rc__augment_check(&st->aug, rc_plan_tensor(st->train_plan, g->inputs[0]), what, e));
+  for (int i = 0; i < RC_DISTILL_OUTPUTS_MAX; i++)
+    if (d->side.targets[i] || d->side.labels)
+      return rc__fail(e, RC_ERR_UNSUPPORTED,
+                      "--augment does not move dense labels or --targets with the pixels it "
+                      "transforms; give per-output losses without them (the teacher's outputs are transformed "
+                      "with the input), or no --augment");
+  rc__augment_describe(&st->aug, r->augment, sizeof r->augment);
+  r->teacher_cache_off = 1;
+  rc__log(&st->c->log, RC_LOG_INFO,
+          "augmentation %s: the teacher runs on every augmented batch (no teacher-output "
+          "cache)",
+          r->augment);
+  return RC_OK;
 }
 
 static rc_status record_changes(run_state *st, rc_distill_result *r, rc_err *e) {
@@ -959,24 +1208,25 @@ static rc_status check_outputs_mode(const rc_distill_config *c, const rc_distill
   return RC_OK;
 }
 
-/* Teacher logits over the whole pool once, indexed by sample, and over the
- * validation samples; the teacher's own figures. */
-static rc_status teacher_logits_all(run_state *st, const rc_distill_data *d, const rc_distill_config *c,
-                                    rc_distill_result *r, rc_err *e) {
+/* Room for the teacher's logits on training samples, filled as steps draw
+ * them (teacher_rows; none with augmentation), and its logits on the
+ * validation samples, computed once now; the teacher's own figures. Each
+ * rank caches the rows of its own part of the batches only. */
+static rc_status teacher_setup(run_state *st, const rc_distill_data *d, const rc_distill_config *c,
+                               rc_distill_result *r, rc_err *e) {
   int64_t pool = d->inputs[0].dims[0];
-  RC_TRY(rc_spill_alloc(&st->teacher_cache, sizeof(float) * (size_t)(pool * st->k), c->cache_bytes, c->cache_dir, e));
-  st->teacher_logits = st->teacher_cache.p;
-  r->teacher_cache_in_file = st->teacher_cache.in_file;
-  r->teacher_cache_bytes = (int64_t)st->teacher_cache.n;
+  if (!st->augmenting) {
+    RC_TRY(rc_spill_alloc(&st->teacher_cache, sizeof(float) * (size_t)(pool * st->k), c->cache_bytes, c->cache_dir,
+                          e));
+    st->teacher_logits = st->teacher_cache.p;
+    st->teacher_have = rc__calloc((size_t)pool + 1, 1);
+    if (!st->teacher_have) return rc__fail(e, RC_ERR_NOMEM, "out of memory for the teacher-output cache");
+    r->teacher_cache_in_file = st->teacher_cache.in_file;
+    r->teacher_cache_bytes = (int64_t)st->teacher_cache.n;
+  }
   st->teacher_val_logits = rc__malloc(sizeof(float) * (size_t)(st->val.n * st->k));
   st->val_logits = rc__malloc(sizeof(float) * (size_t)(st->val.n * st->k));
-  if (!st->teacher_logits || !st->teacher_val_logits || !st->val_logits)
-    return rc__fail(e, RC_ERR_NOMEM, "out of memory for logits");
-  rc_dataset all;
-  RC_TRY(data_view(&all, d, 0, NULL, 0, e));
-  rc_status s = teacher_pass(st, &all, st->teacher_logits, e);
-  rc_dataset_free(&all);
-  RC_TRY(s);
+  if (!st->teacher_val_logits || !st->val_logits) return rc__fail(e, RC_ERR_NOMEM, "out of memory for logits");
   RC_TRY(teacher_pass(st, &st->val, st->teacher_val_logits, e));
   /* The teacher measured against itself gives its accuracy and the 100%/0 baseline. */
   return rc__metrics_compute(&r->teacher, st->teacher_val_logits, st->val_labels, st->teacher_val_logits, st->val.n,
@@ -1025,7 +1275,7 @@ rc_status rc_distill_run(rc_distill_result *r, rc_model *teacher, rc_model *stud
   r->n_val = st.val.n;
   if ((s = select_trainables(&st, e)) != RC_OK || (s = collect_bn(&st, e)) != RC_OK ||
       (s = build_store(&st, d->inputs, e)) != RC_OK || (s = build_plans(&st, d->inputs, e)) != RC_OK ||
-      (s = setup_ranks(&st, e)) != RC_OK)
+      (s = setup_ranks(&st, e)) != RC_OK || (s = setup_augment(&st, d, r, e)) != RC_OK)
     goto out;
   if ((s = val_labels_of(&st, d, &val_labels, e)) != RC_OK) goto out;
   if (st.outs) {
@@ -1033,7 +1283,7 @@ rc_status rc_distill_run(rc_distill_result *r, rc_model *teacher, rc_model *stud
     if ((s = rc__outputs_validate(st.outs, st.teacher_step, st.teacher_step, &st.val, st.val_side, st.val.index,
                                   &r->teacher, e)) != RC_OK)
       goto out;
-  } else if ((s = teacher_logits_all(&st, d, c, r, e)) != RC_OK) {
+  } else if ((s = teacher_setup(&st, d, c, r, e)) != RC_OK) {
     goto out;
   }
   if ((s = validate(&st, &r->before, e)) != RC_OK) goto out;
@@ -1043,6 +1293,7 @@ rc_status rc_distill_run(rc_distill_result *r, rc_model *teacher, rc_model *stud
   if ((s = train_loop(&st, r, d, e)) != RC_OK) goto out;
   if (reports && (s = measure_inside(&st, r, &layers, 1, e)) != RC_OK) goto out;
   r->ranks = rc_dist_size(c->dist);
+  r->teacher_cached_samples = st.teacher_cached;
   r->comm_values_per_step = (int64_t)st.sync.n;
   if ((s = rc__qat_write_back(st.sg, &st.qat, e)) != RC_OK) goto out;
   s = record_changes(&st, r, e);

@@ -1,7 +1,9 @@
 /* Distillation of a compressed student from its dense teacher on CPU.
  *
- * The teacher runs forward only; its logits over every sample are computed
- * once (no augmentation, so they never change) and reused every epoch. Terms
+ * The teacher runs forward only; its logits on a training sample are
+ * computed when a step first draws it and cached for later epochs (with
+ * augmentation every batch is new, so the teacher runs on every batch
+ * instead); on the validation samples they are computed once. Terms
  * on inner tensors (hint, attention, ...) also run the teacher forward on
  * each batch: its inner activations are not cached. The
  * student trains through its plan's reverse pass; its trainable initializers
@@ -15,6 +17,7 @@
 #include <stdint.h>
 
 #include "core/status.h"
+#include "data/augment.h"
 #include "plan/mask_rule.h"
 #include "recoup/log.h"
 #include "onnx/model.h"
@@ -75,6 +78,9 @@ typedef struct rc_distill_config {
   /* The ranks sharing this run (train/dist.h); NULL: this process alone.
    * batch is the global batch, split over the ranks. */
   rc_dist *dist;
+  /* Transforms of every training batch, e.g. "flip,crop=4,mix=0.2"
+   * (data/augment.h); NULL or "": none. */
+  const char *augment;
 } rc_distill_config;
 
 void rc_distill_config_defaults(rc_distill_config *c);
