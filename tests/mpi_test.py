@@ -4,7 +4,10 @@
 Internal consistency: N ranks with the same global batch and seed must give
 the weights of one process within TOL (only the order of float sums
 differs), keep every pruned zero, choose the same best epoch, and give the
-same bytes when run twice with the same N. One run goes over TCP on
+same bytes when run twice with the same N. BatchNormalization in training
+mode (--bn train) normalises by the global batch, so its running statistics
+and the weights match one process too, and the per-layer table measured over
+the ranks matches one process's. One run goes over TCP on
 loopback (--mca btl tcp,self) so the network path is exercised. A rank
 killed mid-run stops the job; its checkpoint resumes with 2 ranks (to the
 bytes of an uninterrupted run) and with 1 (within TOL). A bad file on one
@@ -174,6 +177,16 @@ for n in (2, 3):
     check(f"--bn train over {n} ranks: weights equal one process within {TOL}", d <= TOL, f"(max |diff| {d:.3g})")
 run(mpirun(2, distill_args("bnt_2_again.onnx", 10, bnt)))
 check("--bn train over 2 ranks twice: byte-identical files", same_bytes("bnt_2.onnx", "bnt_2_again.onnx"))
+
+# ---- Per-output losses: refused over ranks, with the reason -----------------------
+args = [a for a in distill_args("outputs.onnx", 10) if a not in ("--labels", "labels.npy")]
+r = run(mpirun(2, args + ["--output-loss", "logits=kd:axis=1"]), expect_ok=False)
+line = [l for l in r.stderr.splitlines() if l.startswith("recoup: error:")]
+# Every rank meets the refusal, so each may say so before the job stops.
+check("--output-loss over 2 ranks is refused with an error saying why",
+      r.returncode != 0 and any("rank 0 of 2 on " in l for l in line) and not os.path.exists("outputs.onnx")
+      and all("per-output losses are not supported over 2 ranks" in l and "normalised by each batch's count" in l
+              for l in line), f"(exit {r.returncode}: {line[:1]})")
 
 # ---- The per-layer table, measured over the ranks --------------------------------
 # Each rank measures its share of the validation samples; the reduced table

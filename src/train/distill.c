@@ -856,8 +856,15 @@ static rc_status setup_ranks(run_state *st, rc_err *e) {
   rc_dist *d = st->c->dist;
   if (rc_dist_size(d) < 2) return RC_OK;
   if (st->c->n_output_losses)
-    return rc__fail(e, RC_ERR_UNSUPPORTED, "per-output losses are not supported over %d ranks yet (their validation "
-                    "is not shared between ranks); run one process", rc_dist_size(d));
+    /* Their terms divide by counts known only per batch (labelled positions,
+     * targets that are not NaN), so each rank's share would weigh its part
+     * by its own count, not the global batch's; validation keeps confusion
+     * matrices that are not reduced either. */
+    return rc__fail(e, RC_ERR_UNSUPPORTED,
+                    "per-output losses are not supported over %d ranks yet (their terms are "
+                    "normalised by each batch's count of labelled positions and valid targets, which would differ "
+                    "per rank, and their validation is not shared); run one process",
+                    rc_dist_size(d));
   RC_TRY(rc_dist_bcast(d, rc_params_block(st->ps, RC_BLOCK_VALUE, -1), sizeof(float) * rc_params_total(st->ps), e));
   int n = rc_params_count(st->ps);
   unsigned char *send = rc__malloc((size_t)n + 1);
