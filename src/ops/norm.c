@@ -135,8 +135,32 @@ static int bn_batch_stats(const rc_kernel *k) {
   return k->training || p->training_mode;
 }
 
-static size_t bn_saved(const rc_kernel *k) { return 2 * (size_t)k->in[0]->dims[1] * sizeof(float); }
-static size_t bn_workspace(const rc_kernel *k, int backward) { return backward ? 0 : bn_saved(k); }
+/* Buffers: saved (training plans) holds the batch's element count per
+ * channel over every process (a double, for backward's means), then mean[C]
+ * and invstd[C]; without saved that block follows the per-channel sums in
+ * the workspace. The sums: C + 1 doubles forward, 2C backward. */
+typedef struct bn_bufs {
+  double *count, *sums;
+  float *mean, *inv;
+} bn_bufs;
+
+static size_t bn_sums_bytes(int64_t c, int backward) {
+  return sizeof(double) * (size_t)(backward ? 2 * c : c + 1);
+}
+static size_t bn_saved(const rc_kernel *k) {
+  return sizeof(double) + 2 * (size_t)k->in[0]->dims[1] * sizeof(float);
+}
+static size_t bn_workspace(const rc_kernel *k, int backward) {
+  return bn_sums_bytes(k->in[0]->dims[1], backward) + (backward ? 0 : bn_saved(k));
+}
+
+static void bn_bufs_of(const rc_kernel *k, int64_t c, bn_bufs *b) {
+  unsigned char *st = k->saved ? k->saved : (unsigned char *)k->work + bn_sums_bytes(c, 0);
+  b->count = (double *)(void *)st;
+  b->mean = (float *)(void *)(st + sizeof(double));
+  b->inv = b->mean + c;
+  b->sums = k->work;
+}
 
 static void bn_dims(const rc_tensor *x, int64_t *n, int64_t *c, int64_t *s) {
   *n = x->dims[0];
@@ -149,6 +173,46 @@ static void write_vec(const rc_kernel *k, int o, int64_t c, float v) {
   if (o < k->n_out && k->out[o]) ((float *)k->out[o]->data)[c] = v;
 }
 
+/* Per channel, over the batch and spatial dims: the sum of x (mean NULL) or
+ * of its squared deviations from mean[c]. */
+static void bn_channel_sums(double *out, const float *x, int64_t N, int64_t C, int64_t S, const float *mean) {
+#pragma omp parallel for schedule(static) if (N * C * S > RC__PAR_MIN)
+  for (int64_t c = 0; c < C; c++) {
+    double s = 0;
+    for (int64_t n = 0; n < N; n++) {
+      const float *xr = x + (n * C + c) * S;
+      s += mean ? rc__row_sq_dev(xr, S, mean[c]) : rc__row_sum(xr, S);
+    }
+    out[c] = s;
+  }
+}
+
+/* Sums over every process holding a share of the batch (no-op alone). */
+static rc_status bn_sum_across(const rc_kernel *k, double *buf, size_t n, int grads, rc_err *e) {
+  return k->reduce ? k->reduce->sum(k->reduce->ctx, buf, n, grads, e) : RC_OK;
+}
+
+/* Batch mean (into b->mean) and biased variance (into b->sums) per channel
+ * over the whole batch, however it is split: two passes, each summed across
+ * processes, the second around the global mean so large offsets do not
+ * cancel. The population variance, as the spec's ReduceVar, both for
+ * normalising and for the running update (PyTorch would use the unbiased one
+ * there). */
+static rc_status bn_batch_moments(const rc_kernel *k, const bn_bufs *b, int64_t N, int64_t C, int64_t S,
+                                  rc_err *e) {
+  const float *x = k->in[0]->data;
+  bn_channel_sums(b->sums, x, N, C, S, NULL);
+  b->sums[C] = (double)(N * S);
+  RC_TRY(bn_sum_across(k, b->sums, (size_t)C + 1, 0, e));
+  double m = b->sums[C];
+  *b->count = m;
+  for (int64_t c = 0; c < C; c++) b->mean[c] = m > 0 ? (float)(b->sums[c] / m) : 0.0f;
+  bn_channel_sums(b->sums, x, N, C, S, b->mean);
+  RC_TRY(bn_sum_across(k, b->sums, (size_t)C, 0, e));
+  for (int64_t c = 0; c < C; c++) b->sums[c] = m > 0 ? b->sums[c] / m : 0;
+  return RC_OK;
+}
+
 static rc_status bn_forward(const rc_kernel *k, rc_err *e) {
   const bn_params *p = k->params;
   int64_t N, C, S;
@@ -156,21 +220,16 @@ static rc_status bn_forward(const rc_kernel *k, rc_err *e) {
   const float *x = k->in[0]->data, *scale = k->in[1]->data, *bias = k->in[2]->data;
   const float *rmean = k->in[3]->data, *rvar = k->in[4]->data;
   float *y = k->out[0]->data;
-  float *st = stats_buffer(k); /* mean[C], invstd[C] */
+  bn_bufs b;
+  bn_bufs_of(k, C, &b);
   int batch = bn_batch_stats(k);
-  int64_t M = N * S;
+  if (batch) RC_TRY(bn_batch_moments(k, &b, N, C, S, e));
 #pragma omp parallel for schedule(static) if (N * C * S > RC__PAR_MIN)
   for (int64_t c = 0; c < C; c++) {
     float mean, var;
     if (batch) {
-      /* Batch statistics over N and the spatial dims; the population
-       * (biased) variance, as the spec's ReduceVar, both for normalising and
-       * for the running update (PyTorch would use the unbiased one there). */
-      double s = 0, v = 0;
-      for (int64_t n = 0; n < N; n++) s += rc__row_sum(x + (n * C + c) * S, S);
-      mean = M ? (float)(s / (double)M) : 0.0f;
-      for (int64_t n = 0; n < N; n++) v += rc__row_sq_dev(x + (n * C + c) * S, S, mean);
-      var = M ? (float)(v / (double)M) : 0.0f;
+      mean = b.mean[c];
+      var = (float)b.sums[c];
       /* running = input * momentum + batch * (1 - momentum) (spec text). */
       write_vec(k, 1, c, rmean[c] * p->momentum + mean * (1.0f - p->momentum));
       write_vec(k, 2, c, rvar[c] * p->momentum + var * (1.0f - p->momentum));
@@ -184,53 +243,65 @@ static rc_status bn_forward(const rc_kernel *k, rc_err *e) {
     write_vec(k, 3, c, mean); /* opsets < 14: saved_mean, saved_var */
     write_vec(k, 4, c, var);
     float inv = 1.0f / sqrtf(var + p->epsilon);
-    st[c] = mean;
-    st[C + c] = inv;
+    b.mean[c] = mean;
+    b.inv[c] = inv;
     float a = scale[c] * inv;
     for (int64_t n = 0; n < N; n++) affine_run(y + (n * C + c) * S, x + (n * C + c) * S, S, a, bias[c] - mean * a);
   }
-  (void)e;
   return RC_OK;
 }
 
 /* Batch statistics: the full normalisation backward (the statistics depend
  * on x). Inference: y is affine in x, dx = scale/sqrt(var+eps) * dy, and
- * input_mean / input_var receive their gradients too. */
+ * input_mean / input_var receive their gradients too. With the batch split
+ * over processes, the scale and B gradients stay this process's own (the
+ * caller sums parameter gradients), while dx's two means are taken over the
+ * whole batch: Σdy and Σdy·x̂ are summed across processes first. A failed
+ * sum is kept by the hook's owner (backward returns no status). */
 static void bn_backward(const rc_kernel *k) {
   if (!k->dout[0]) return;
   int64_t N, C, S;
   bn_dims(k->in[0], &N, &C, &S);
-  norm_grads b;
-  norm_grads_init(k, &b);
-  const float *x = b.x, *scale = b.scale, *dy = b.dy, *st = b.st;
-  float *dx = b.dx, *dscale = b.dscale, *dbias = b.dbias;
-  float *dmean = k->din[3] ? k->din[3]->data : NULL, *dvar = k->din[4] ? k->din[4]->data : NULL;
+  norm_grads g;
+  norm_grads_init(k, &g);
+  bn_bufs b;
+  bn_bufs_of(k, C, &b);
+  const float *x = g.x, *scale = g.scale, *dy = g.dy;
+  float *dx = g.dx, *dmean = k->din[3] ? k->din[3]->data : NULL, *dvar = k->din[4] ? k->din[4]->data : NULL;
+  double *sdy = b.sums, *sdyx = b.sums + C;
   int batch = bn_batch_stats(k);
-  int64_t M = N * S;
 #pragma omp parallel for schedule(static) if (N * C * S > RC__PAR_MIN)
   for (int64_t c = 0; c < C; c++) {
-    float mean = st[c], inv = st[C + c], a = scale[c] * inv;
-    double sdy = 0, sdyx = 0;
+    float mean = b.mean[c], inv = b.inv[c];
+    double s = 0, sx = 0;
     for (int64_t n = 0; n < N; n++) {
       const float *xr = x + (n * C + c) * S, *dr = dy + (n * C + c) * S;
-      sdy += rc__row_sum(dr, S);
-      sdyx += rc__row_dot_dev(dr, xr, S, mean);
+      s += rc__row_sum(dr, S);
+      sx += rc__row_dot_dev(dr, xr, S, mean);
     }
-    sdyx *= inv;
-    if (dx) {
-      float mdy = batch ? (float)(sdy / (double)M) : 0.0f;
-      float mdyx = batch ? (float)(sdyx / (double)M) : 0.0f;
-      for (int64_t n = 0; n < N; n++) {
-        const float *xr = x + (n * C + c) * S, *dr = dy + (n * C + c) * S;
-        float *gr = dx + (n * C + c) * S;
-        for (int64_t j = 0; j < S; j++) gr[j] += a * (dr[j] - mdy - (xr[j] - mean) * inv * mdyx);
-      }
-    }
-    if (dscale) dscale[c] += (float)sdyx;
-    if (dbias) dbias[c] += (float)sdy;
+    sdy[c] = s;
+    sdyx[c] = sx * inv;
+    if (g.dscale) g.dscale[c] += (float)sdyx[c];
+    if (g.dbias) g.dbias[c] += (float)sdy[c];
     if (!batch) {
-      if (dmean) dmean[c] += (float)(-sdy * a);
-      if (dvar) dvar[c] += (float)(-0.5 * sdyx * scale[c] * inv * inv);
+      float a = scale[c] * inv;
+      if (dmean) dmean[c] += (float)(-sdy[c] * a);
+      if (dvar) dvar[c] += (float)(-0.5 * sdyx[c] * scale[c] * inv * inv);
+    }
+  }
+  if (!dx) return;
+  rc_err e;
+  if (batch && bn_sum_across(k, b.sums, 2 * (size_t)C, 1, &e) != RC_OK) return;
+  double m = *b.count;
+#pragma omp parallel for schedule(static) if (N * C * S > RC__PAR_MIN)
+  for (int64_t c = 0; c < C; c++) {
+    float mean = b.mean[c], inv = b.inv[c], a = scale[c] * inv;
+    float mdy = batch && m > 0 ? (float)(sdy[c] / m) : 0.0f;
+    float mdyx = batch && m > 0 ? (float)(sdyx[c] / m) : 0.0f;
+    for (int64_t n = 0; n < N; n++) {
+      const float *xr = x + (n * C + c) * S, *dr = dy + (n * C + c) * S;
+      float *gr = dx + (n * C + c) * S;
+      for (int64_t j = 0; j < S; j++) gr[j] += a * (dr[j] - mdy - (xr[j] - mean) * inv * mdyx);
     }
   }
 }

@@ -14,6 +14,18 @@
 #include "ir/ir.h"
 #include "recoup/tensor.h"
 
+/* Sums across the processes that share one batch (a data-parallel run):
+ * buf (n values) is replaced, on every process, by the sum of every
+ * process's buf, in a fixed order. grads = 0: counts and statistics of the
+ * inputs, summed as they are; grads = 1: sums of output gradients, which
+ * each process holds in its own share's loss scale (the caller converts).
+ * Backward kernels cannot return a status, so the caller that installs the
+ * hook also keeps its failures and checks them after the pass. */
+typedef struct rc_op_reduce {
+  rc_status (*sum)(void *ctx, double *buf, size_t n, int grads, rc_err *e);
+  void *ctx;
+} rc_op_reduce;
+
 /* What a kernel sees for one node of one plan. Shapes are concrete. */
 typedef struct rc_kernel {
   const rc_node *node;
@@ -31,6 +43,9 @@ typedef struct rc_kernel {
   void *saved;                 /* kept from forward to backward, size from def->saved */
   int training;                /* batch statistics for BatchNormalization */
   size_t work_bytes;           /* size of work: at least def->workspace, maybe more */
+  /* NULL when this process holds the whole batch; else batch statistics
+   * (BatchNormalization in training mode) are summed through it. */
+  const rc_op_reduce *reduce;
 } rc_kernel;
 
 typedef enum rc_op_flags {

@@ -23,6 +23,9 @@ typedef struct rc_plan_opts {
   const unsigned char *keep;
   /* BatchNormalization uses batch statistics (and updates running stats). */
   int bn_batch_stats;
+  /* NULL, or: this plan runs one process's share of a batch split over
+   * processes, and batch statistics are summed through this hook. */
+  const rc_op_reduce *reduce;
   /* Most bytes the plan may hold (constants folded at plan time, the
    * activation block, folding scratch); 0 means RC_PLAN_DEFAULT_MAX_BYTES.
    * Sizes follow from the file, so a hostile model is refused with

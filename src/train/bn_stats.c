@@ -6,9 +6,11 @@
 #include "plan/count.h"
 #include "plan/plan.h"
 
+static int64_t channels_of(const rc_tensor *x) { return x->rank > 1 ? x->dims[1] : 1; }
+
 /* Per-channel mean and biased variance of x (N, C, ...) accumulated in double. */
 static void channel_moments(double *sum, double *sq, const rc_tensor *x, int64_t rows) {
-  int64_t c = x->rank > 1 ? x->dims[1] : 1, inner = 1;
+  int64_t c = channels_of(x), inner = 1;
   for (int d = 2; d < x->rank; d++) inner *= x->dims[d];
   const float *p = x->data;
   for (int64_t n = 0; n < rows; n++)
@@ -74,7 +76,7 @@ rc_status rc__bn_recalibrate(const rc_graph *g, const int *bn_nodes, int n_bn, r
   for (int j = 0; j < n_bn; j++) {
     const rc_node *n = &g->nodes[bn_nodes[j]];
     const rc_tensor *x = rc_plan_tensor(p, n->in[0]);
-    int64_t c = x->rank > 1 ? x->dims[1] : 1, inner = 1;
+    int64_t c = channels_of(x), inner = 1;
     for (int d = 2; d < x->rank; d++) inner *= x->dims[d];
     double cnt = (double)rows * (double)inner;
     float *mean = bn_stat(g, n, 3), *var = bn_stat(g, n, 4);
@@ -92,26 +94,45 @@ out:
   return s;
 }
 
+size_t rc__bn_scratch_count(const rc_graph *g, rc_plan *train_plan, const int *bn_nodes, int n_bn) {
+  size_t n = 1; /* the rows, summed with the moments */
+  for (int j = 0; j < n_bn; j++)
+    n += 2 * (size_t)channels_of(rc_plan_tensor(train_plan, g->nodes[bn_nodes[j]].in[0]));
+  return n;
+}
+
 /* After a training-mode forward: running = running * momentum + batch * (1 -
  * momentum), the update ONNX's training-mode BatchNormalization defines (with
- * the batch's biased variance, as its reference implementation computes). */
-void rc__bn_update_running(const rc_graph *g, rc_plan *train_plan, const int *bn_nodes, int n_bn, double *scratch,
-                           int64_t max_c) {
+ * the batch's biased variance, as its reference implementation computes).
+ * Every node's sums travel in one reduction. */
+rc_status rc__bn_update_running(const rc_graph *g, rc_plan *train_plan, const int *bn_nodes, int n_bn,
+                                double *scratch, rc_dist *dist, rc_err *e) {
+  size_t n = rc__bn_scratch_count(g, train_plan, bn_nodes, n_bn), at = 0;
+  memset(scratch, 0, sizeof(double) * n);
   for (int j = 0; j < n_bn; j++) {
-    const rc_node *n = &g->nodes[bn_nodes[j]];
-    const rc_tensor *x = rc_plan_tensor(train_plan, n->in[0]);
-    int64_t c = x->rank > 1 ? x->dims[1] : 1, inner = 1;
-    if (c > max_c) continue;
+    const rc_tensor *x = rc_plan_tensor(train_plan, g->nodes[bn_nodes[j]].in[0]);
+    int64_t c = channels_of(x);
+    channel_moments(scratch + at, scratch + at + c, x, x->dims[0]);
+    at += 2 * (size_t)c;
+    scratch[n - 1] = (double)x->dims[0];
+  }
+  RC_TRY(rc_dist_sum_f64(dist, scratch, n, e));
+  at = 0;
+  for (int j = 0; j < n_bn; j++) {
+    const rc_node *nd = &g->nodes[bn_nodes[j]];
+    const rc_tensor *x = rc_plan_tensor(train_plan, nd->in[0]);
+    int64_t c = channels_of(x), inner = 1;
     for (int d = 2; d < x->rank; d++) inner *= x->dims[d];
-    memset(scratch, 0, sizeof(double) * 2 * (size_t)max_c);
-    channel_moments(scratch, scratch + max_c, x, x->dims[0]);
-    double cnt = (double)x->dims[0] * (double)inner;
-    float mom = rc__attr_float(n, "momentum", 0.9f);
-    float *mean = bn_stat(g, n, 3), *var = bn_stat(g, n, 4);
+    double cnt = scratch[n - 1] * (double)inner;
+    float mom = rc__attr_float(nd, "momentum", 0.9f);
+    float *mean = bn_stat(g, nd, 3), *var = bn_stat(g, nd, 4);
+    const double *sum = scratch + at, *sq = scratch + at + c;
     for (int64_t ch = 0; ch < c; ch++) {
-      double m = scratch[ch] / cnt, v = scratch[max_c + ch] / cnt - m * m;
+      double m = sum[ch] / cnt, v = sq[ch] / cnt - m * m;
       mean[ch] = (float)(mean[ch] * mom + m * (1 - mom));
       var[ch] = (float)(var[ch] * mom + (v > 0 ? v : 0) * (1 - mom));
     }
+    at += 2 * (size_t)c;
   }
+  return RC_OK;
 }

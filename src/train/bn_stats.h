@@ -18,10 +18,14 @@
 rc_status rc__bn_recalibrate(const rc_graph *g, const int *bn_nodes, int n_bn, rc_dataset *train, int64_t batch,
                             rc_dist *dist, rc_err *e);
 
+/* Doubles of scratch rc__bn_update_running needs for these nodes. */
+size_t rc__bn_scratch_count(const rc_graph *g, rc_plan *train_plan, const int *bn_nodes, int n_bn);
+
 /* Fold the batch statistics of the last training-mode forward of train_plan
- * into the running statistics; scratch holds 2 * max_c doubles (nodes with
- * more channels are skipped). */
-void rc__bn_update_running(const rc_graph *g, rc_plan *train_plan, const int *bn_nodes, int n_bn, double *scratch,
-                           int64_t max_c);
+ * into the running statistics. Under MPI the plan holds this rank's rows and
+ * the sums are taken over every rank's, so all ranks update alike; scratch
+ * holds rc__bn_scratch_count doubles. */
+rc_status rc__bn_update_running(const rc_graph *g, rc_plan *train_plan, const int *bn_nodes, int n_bn,
+                                double *scratch, rc_dist *dist, rc_err *e);
 
 #endif

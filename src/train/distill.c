@@ -3,8 +3,8 @@
 #include "train/distill.h"
 
 #include <fnmatch.h>
-#include <stdio.h>
 #include <math.h>
+#include <stdio.h>
 #include <string.h>
 #include <time.h>
 
@@ -21,11 +21,10 @@
 #include "train/checkpoint.h"
 #include "train/dist.h"
 #include "train/dist_grads.h"
-#include "train/loss.h"
-#include "train/measure.h"
-#include "train/params.h"
+#include "train/dist_stats.h"
 #include "train/features.h"
 #include "train/loss.h"
+#include "train/measure.h"
 #include "train/pairing.h"
 #include "train/params.h"
 #include "train/qat.h"
@@ -120,6 +119,7 @@ typedef struct run_state {
    * local) of every global batch; alone, offset 0 and local = batch. */
   int64_t local, offset;
   rc_grad_sync sync;
+  rc_dist_stats stats; /* batch statistics summed over the ranks (--bn train) */
 } run_state;
 
 /* Remember what the zeros of a trained weight mean; returns its store flags. */
@@ -321,7 +321,11 @@ static rc_status build_plans(run_state *st, const rc_tensor *data, rc_err *e) {
   rc_status s = rc_plan_init(&st->eval_plan, sg, shapes, &eval_opts, e);
   rc__free(live);
   RC_TRY(s);
-  rc_plan_opts train_opts = {.training = 1, .trainable = st->trainable_mask, .keep = st->skeep, .bn_batch_stats = st->c->bn == RC_BN_TRAIN};
+  rc_plan_opts train_opts = {.training = 1,
+                             .trainable = st->trainable_mask,
+                             .keep = st->skeep,
+                             .bn_batch_stats = st->c->bn == RC_BN_TRAIN,
+                             .reduce = rc__dist_stats_hook(&st->stats)};
   teacher_order(tg, sg, shapes, tin);
   RC_TRY(rc_plan_init(&st->teacher_plan, tg, tin, NULL, e));
   /* The step's plans take this rank's part of the global batch. */
@@ -330,7 +334,11 @@ static rc_status build_plans(run_state *st, const rc_tensor *data, rc_err *e) {
   teacher_order(tg, sg, part, tpart);
   RC_TRY(rc_plan_init(&st->train_plan, sg, part, &train_opts, e));
   if ((st->feat && rc_loss_spec_needs_features(&st->c->terms)) || st->c->n_output_losses) {
-    rc_plan_opts keep = {.training = 0, .trainable = NULL, .keep = st->tkeep, .bn_batch_stats = 0};
+    rc_plan_opts keep = {.training = 0,
+                         .trainable = NULL,
+                         .keep = st->tkeep,
+                         .bn_batch_stats = 0,
+                         .reduce = rc__dist_stats_hook(&st->stats)};
     RC_TRY(rc_plan_init(&st->teacher_step, tg, tpart, &keep, e));
   }
   int64_t kt = 0;
@@ -453,7 +461,6 @@ typedef struct step_buffers {
   float *teacher;   /* (B, K) rows of the cached teacher logits */
   int64_t *samples; /* the batch's sample numbers (per-output side data) */
   double *bn_scratch; /* per-channel sums for --bn train */
-  int64_t max_c;
   float lr;           /* the last step's learning rate, for progress */
   /* Augmentation: the batch's mixing, its partners (global batch
    * positions), their rows and labels, and one plane of scratch. */
@@ -859,12 +866,13 @@ static rc_status train_step(loop_ctx *lc, const loop_state *ls, step_buffers *sb
     *loss += fl;
   }
   RC_TRY(rc_plan_backward(st->train_plan, e));
+  RC_TRY(rc__dist_stats_check(&st->stats, e));
   RC_TRY(sum_over_ranks(lc, loss, e));
   double norm = rc_clip_grad_norm(st->ps, st->c->clip);
   *bad = !isfinite(*loss) || !isfinite(norm);
   if (*bad) return RC_OK;
   if (st->c->bn == RC_BN_TRAIN)
-    rc__bn_update_running(st->sg, st->train_plan, st->bn_nodes, st->n_bn, sb->bn_scratch, sb->max_c);
+    RC_TRY(rc__bn_update_running(st->sg, st->train_plan, st->bn_nodes, st->n_bn, sb->bn_scratch, st->c->dist, e));
   float lr = (float)(rc_sched_lr(&lc->sched, rc_params_steps(st->ps) + 1) * ls->lr_scale);
   sb->lr = lr;
   return rc_optim_step(st->ps, &st->c->optim, lr, e);
@@ -924,12 +932,7 @@ static rc_status train_loop(run_state *st, rc_distill_result *r, const rc_distil
   sb.teacher = rc__malloc(sizeof(float) * (size_t)(st->batch * st->k + 1));
   sb.samples = rc__malloc(sizeof(int64_t) * (size_t)st->batch);
   sb.labels = d->labels ? rc__malloc(sizeof(int32_t) * (size_t)st->batch) : NULL;
-  sb.max_c = 1;
-  for (int j = 0; j < st->n_bn; j++) {
-    const rc_tensor *x = rc_plan_tensor(st->train_plan, g->nodes[st->bn_nodes[j]].in[0]);
-    if (x->rank > 1 && x->dims[1] > sb.max_c) sb.max_c = x->dims[1];
-  }
-  sb.bn_scratch = rc__malloc(sizeof(double) * 2 * (size_t)sb.max_c);
+  sb.bn_scratch = rc__malloc(sizeof(double) * rc__bn_scratch_count(g, st->train_plan, st->bn_nodes, st->n_bn));
   sb.slot_pos = rc__malloc(sizeof(int64_t) * (size_t)st->batch);
   sb.slot_sample = rc__malloc(sizeof(int64_t) * (size_t)st->batch);
   rc_status s = st->augmenting ? augment_buffers(st, &sb, e) : RC_OK;
@@ -1050,7 +1053,8 @@ static rc_status measure_setup(run_state *st, rc_measure_setup *m, rc_tensor *sh
   for (int i = 0; i < st->n_tr; i++) (*live)[st->tr[i].value] = 1;
   rc__input_shapes(st->sg, st->val.inputs, st->batch, shapes);
   teacher_order(&st->teacher->graph, st->sg, shapes, tin);
-  *m = (rc_measure_setup){&st->teacher->graph, st->sg, shapes, tin, &st->val, st->batch, *live, &st->qat};
+  *m = (rc_measure_setup){&st->teacher->graph, st->sg, shapes,   tin,        &st->val,
+                          st->batch,           *live,  &st->qat, st->c->dist};
   return RC_OK;
 }
 
@@ -1071,13 +1075,16 @@ static rc_status measure_inside(run_state *st, rc_distill_result *r, rc_pairing 
 static rc_status setup_ranks(run_state *st, rc_err *e) {
   rc_dist *d = st->c->dist;
   if (rc_dist_size(d) < 2) return RC_OK;
-  if (st->c->bn == RC_BN_TRAIN)
-    return rc__fail(e, RC_ERR_UNSUPPORTED, "BatchNormalization in training mode is not supported over %d ranks yet: "
-                    "each rank would normalise by its own part of the batch; keep the statistics frozen or "
-                    "recalibrated, or run one process", rc_dist_size(d));
   if (st->c->n_output_losses)
-    return rc__fail(e, RC_ERR_UNSUPPORTED, "per-output losses are not supported over %d ranks yet (their validation "
-                    "is not shared between ranks); run one process", rc_dist_size(d));
+    /* Their terms divide by counts known only per batch (labelled positions,
+     * targets that are not NaN), so each rank's share would weigh its part
+     * by its own count, not the global batch's; validation keeps confusion
+     * matrices that are not reduced either. */
+    return rc__fail(e, RC_ERR_UNSUPPORTED,
+                    "per-output losses are not supported over %d ranks yet (their terms are "
+                    "normalised by each batch's count of labelled positions and valid targets, which would differ "
+                    "per rank, and their validation is not shared); run one process",
+                    rc_dist_size(d));
   RC_TRY(rc_dist_bcast(d, rc_params_block(st->ps, RC_BLOCK_VALUE, -1), sizeof(float) * rc_params_total(st->ps), e));
   int n = rc_params_count(st->ps);
   unsigned char *send = rc__malloc((size_t)n + 1);
@@ -1265,6 +1272,7 @@ rc_status rc_distill_run(rc_distill_result *r, rc_model *teacher, rc_model *stud
     int64_t hi;
     rc_dist_share(st.batch, rc_dist_rank(c->dist), rc_dist_size(c->dist), &st.offset, &hi);
     st.local = hi - st.offset;
+    rc__dist_stats_init(&st.stats, c->dist, st.local, st.batch);
     if (st.local < 1) {
       s = rc__fail(e, RC_ERR_INVALID, "the global batch of %lld samples is smaller than the %d ranks",
                    (long long)st.batch, rc_dist_size(c->dist));
@@ -1287,11 +1295,10 @@ rc_status rc_distill_run(rc_distill_result *r, rc_model *teacher, rc_model *stud
     goto out;
   }
   if ((s = validate(&st, &r->before, e)) != RC_OK) goto out;
-  /* The layer table is rank 0's to report; the other ranks skip it. */
-  int reports = rc_dist_rank(c->dist) == 0;
-  if (reports && (s = measure_inside(&st, r, &layers, 0, e)) != RC_OK) goto out;
+  /* The layer table: every rank measures its share of the samples. */
+  if ((s = measure_inside(&st, r, &layers, 0, e)) != RC_OK) goto out;
   if ((s = train_loop(&st, r, d, e)) != RC_OK) goto out;
-  if (reports && (s = measure_inside(&st, r, &layers, 1, e)) != RC_OK) goto out;
+  if ((s = measure_inside(&st, r, &layers, 1, e)) != RC_OK) goto out;
   r->ranks = rc_dist_size(c->dist);
   r->teacher_cached_samples = st.teacher_cached;
   r->comm_values_per_step = (int64_t)st.sync.n;

@@ -196,6 +196,71 @@ static int input_position(const rc_graph *g, const char *name) {
   return -1;
 }
 
+/* ---- Over the ranks ------------------------------------------------------------ */
+
+/* Doubles per range grid: its four counts, then per rank the values it
+ * found outside and its worst value with the bound it passed. */
+static size_t range_slots(int ranks) { return 4 + 3 * (size_t)ranks; }
+
+static void range_pack(double *p, const rc_range_stats *rs, int rank) {
+  p[0] = (double)rs->values;
+  p[1] = (double)rs->values_out;
+  p[2] = (double)rs->samples;
+  p[3] = (double)rs->samples_out;
+  double *mine = p + 4 + 3 * (size_t)rank;
+  mine[0] = (double)rs->values_out;
+  mine[1] = rs->worst;
+  mine[2] = rs->bound;
+}
+
+/* The worst value of the lowest rank with the largest excess: ranks hold
+ * consecutive samples, so this is the value one process would keep. */
+static void range_unpack(rc_range_stats *rs, const double *p, int ranks) {
+  rs->values = (int64_t)p[0];
+  rs->values_out = (int64_t)p[1];
+  rs->samples = (int64_t)p[2];
+  rs->samples_out = (int64_t)p[3];
+  rs->worst = rs->bound = 0;
+  double worst_excess = -1;
+  for (int k = 0; k < ranks; k++) {
+    const double *q = p + 4 + 3 * (size_t)k;
+    if (q[0] > 0 && fabs(q[1] - q[2]) > worst_excess) {
+      worst_excess = fabs(q[1] - q[2]);
+      rs->worst = q[1];
+      rs->bound = q[2];
+    }
+  }
+}
+
+/* Every rank's sums and range figures added up, on every rank. */
+static rc_status combine_ranks(const rc_measure_setup *m, const rc_pairing *pg, rc_distill_result *r, int after,
+                               sums *acc, rc_err *e) {
+  int ranks = rc_dist_size(m->dist);
+  if (ranks < 2) return RC_OK;
+  size_t per = range_slots(ranks), n = 3 * (size_t)pg->n + per * (size_t)r->n_ranges;
+  double *buf = rc__calloc(n + 1, sizeof(double));
+  if (!buf) return rc__fail(e, RC_ERR_NOMEM, "out of memory");
+  for (int i = 0; i < pg->n; i++) {
+    buf[3 * i] = acc->sig[i];
+    buf[3 * i + 1] = acc->noise[i];
+    buf[3 * i + 2] = (double)acc->rows[i];
+  }
+  double *ranges = buf + 3 * (size_t)pg->n;
+  for (int i = 0; i < r->n_ranges; i++)
+    range_pack(ranges + per * (size_t)i, after ? &r->ranges[i].after : &r->ranges[i].before,
+               rc_dist_rank(m->dist));
+  rc_status s = rc_dist_sum_f64(m->dist, buf, n, e);
+  for (int i = 0; s == RC_OK && i < pg->n; i++) {
+    acc->sig[i] = buf[3 * i];
+    acc->noise[i] = buf[3 * i + 1];
+    acc->rows[i] = (int64_t)buf[3 * i + 2];
+  }
+  for (int i = 0; s == RC_OK && i < r->n_ranges; i++)
+    range_unpack(after ? &r->ranges[i].after : &r->ranges[i].before, ranges + per * (size_t)i, ranks);
+  rc__free(buf);
+  return s;
+}
+
 rc_status rc__measure_run(const rc_measure_setup *m, const rc_pairing *pg, rc_distill_result *r, int after,
                           rc_err *e) {
   if (!pg->n && !r->n_ranges) return RC_OK;
@@ -215,15 +280,17 @@ rc_status rc__measure_run(const rc_measure_setup *m, const rc_pairing *pg, rc_di
   }
   void *sb[RC_DATASET_MAX_INPUTS];
   for (int i = 0; i < sg->n_inputs; i++) sb[i] = rc_plan_tensor(sp, sg->inputs[i])->data;
-  int64_t nb = rc_dataset_n_batches(m->val, m->batch, 0), done = 0;
-  for (int64_t b = 0; b < nb && done < RC_MEASURE_MAX_SAMPLES; b++) {
+  /* This rank's samples: whole batches of the first `limit`. */
+  int64_t limit = m->val->n < RC_MEASURE_MAX_SAMPLES ? m->val->n : RC_MEASURE_MAX_SAMPLES, lo, hi;
+  rc_dist_share_blocks(limit, m->batch, rc_dist_rank(m->dist), rc_dist_size(m->dist), &lo, &hi);
+  for (int64_t b = lo / m->batch, done = lo; done < hi; b++) {
     int64_t count;
     if ((s = rc_dataset_gather(sb, NULL, &count, m->val, b, m->batch, e)) != RC_OK) goto out;
     if (count < m->batch) /* no stale or uninitialised rows in a short batch */
       for (int i = 0; i < sg->n_inputs; i++)
         memset((unsigned char *)sb[i] + (size_t)count * m->val->sample_bytes[i], 0,
                (size_t)(m->batch - count) * m->val->sample_bytes[i]);
-    if (done + count > RC_MEASURE_MAX_SAMPLES) count = RC_MEASURE_MAX_SAMPLES - done;
+    if (done + count > hi) count = hi - done;
     for (int i = 0; i < tg->n_inputs; i++) {
       const rc_tensor *ti = rc_plan_tensor(tp, tg->inputs[i]);
       int j = input_position(sg, tg->values[tg->inputs[i]].name);
@@ -241,6 +308,7 @@ rc_status rc__measure_run(const rc_measure_setup *m, const rc_pairing *pg, rc_di
     }
     done += count;
   }
+  if ((s = combine_ranks(m, pg, r, after, &acc, e)) != RC_OK) goto out;
   for (int i = 0; i < pg->n; i++) {
     rc_layer_error *l = &r->layers[i];
     double db = sqnr_db(acc.sig[i], acc.noise[i], acc.rows[i]);

@@ -8,7 +8,10 @@
  *   sees it;
  * - per activation grid of a QDQ student, how many values entering its
  *   QuantizeLinear lie outside the range the grid can represent (the clamp
- *   hides them from the outputs). */
+ *   hides them from the outputs).
+ * Under MPI the samples are shared out in whole batches, each rank measures
+ * its own and the sums are reduced, so every rank ends with the figures of
+ * one process over all of them. */
 #ifndef RC_TRAIN_MEASURE_H
 #define RC_TRAIN_MEASURE_H
 
@@ -17,6 +20,7 @@
 #include "core/status.h"
 #include "ir/ir.h"
 #include "recoup/data.h"
+#include "train/dist.h"
 #include "train/distill.h"
 #include "train/pairing.h"
 #include "train/qat.h"
@@ -32,6 +36,7 @@ typedef struct rc_measure_setup {
   int64_t batch;
   const unsigned char *live;          /* per student value: changes during the run (never folded) */
   const rc_qat *qat;
+  rc_dist *dist; /* the ranks sharing the work (NULL: one process) */
 } rc_measure_setup;
 
 /* Pairs of equal shape, student side moved past its QDQ pair; fills
