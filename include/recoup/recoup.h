@@ -16,6 +16,8 @@
  *                      defaults, a progress callback, a cancellation flag
  *   recoup/prune.h     magnitude, N:M and channel pruning of a dense model
  *   recoup/quantize.h  post-training quantization into a QDQ model
+ *   recoup/parallel.h  the ranks of an MPI job (or one process): joining,
+ *                      rank and host, messages between ranks
  *   recoup/status.h    rc_status codes and rc_err, the message of a failure
  *   recoup/util.h      escaping names for printing, refusing outputs that are
  *                      inputs, atomic file writes, figures to 4 digits
@@ -60,6 +62,7 @@
 #include "recoup/eval.h"
 #include "recoup/export.h"
 #include "recoup/model.h"
+#include "recoup/parallel.h"
 #include "recoup/prune.h"
 #include "recoup/quantize.h"
 #include "recoup/status.h"

@@ -9,7 +9,7 @@
 #include <string.h>
 
 #include "cli/cli.h"
-#include "train/dist.h"
+#include "recoup/parallel.h"
 
 static const rc_command commands[] = {
     {"inspect", "show a model's inputs, outputs, ops, sparsity and quantization grids", rc_cmd_inspect},
