@@ -41,19 +41,12 @@ CLI_PENDING = {
     "src/cli/cmd_quantize.c": "calibration data views, plans, the model editor",
     "src/cli/manifest.c": "loss-term and feature names of the training configuration",
     "src/cli/weight_rules.h": "mask choices and integer ranges of the distill result",
-    "src/cli/cli_data.c": "graph planning of the first output at batch 1, the PCG32 sample limit, image sources",
-    "src/cli/cli_data.h": "graph values (rc_value, rc_graph) for image inputs and output classes",
     "src/cli/cli_outputs.c": "plans and graphs for per-output losses, targets and dense labels",
     "src/cli/cli_outputs.h": "the per-output loss specs and side data of train/outputs.h",
-    "src/cli/cli_prep.c": "the model's metadata_props for recorded preprocessing",
     "src/cli/cli_synth.h": "the synthesis settings of train/synthesize.h",
-    "src/cli/cli_util.c": "MPI rank and host in error lines (train/dist.h), escaping and path helpers",
-    "src/cli/cmd_batch.c": "MPI work queue (train/dist.h), allocator, path comparisons",
-    "src/cli/batch_pool.c": "MPI work queue messages (train/dist.h), allocator",
     "src/cli/cmd_eval.c": "per-output evaluation (dense labels, mean IoU, value MAD) on plans, .npy writer",
     "src/cli/cmd_synthesize.c": "loading plans for synthesis, .npy writer",
     "src/cli/distill_options.c": "loss-term table RC_LOSS_TERMS of train/features.h",
-    "src/cli/main.c": "MPI start and end (train/dist.h)",
 }
 # protobuf-c code generated from the ONNX standard's onnx.proto into the build
 # folder: an external library's interface, not a file of the onnx layer.

@@ -49,6 +49,15 @@ RC_API rc_status rc_model_save(rc_model *m, const char *path, const int *changed
 
 /* The path the model was loaded from. */
 RC_API const char *rc_model_path(const rc_model *m);
+/* Size in bytes of the file the model was loaded from. */
+RC_API int64_t rc_model_file_bytes(const rc_model *m);
+
+/* The value of a metadata_props entry of the model, or NULL when it has
+ * none (points into the model). */
+RC_API const char *rc_model_metadata(const rc_model *m, const char *key);
+/* Set (replace or append) a metadata_props entry, written with the model by
+ * rc_model_save. */
+RC_API rc_status rc_model_edit_set_metadata(rc_model *m, const char *key, const char *value, rc_err *e);
 
 /* ---- Inputs and outputs ---------------------------------------------- */
 
@@ -67,6 +76,12 @@ RC_API int rc_model_n_outputs(const rc_model *m);
  * ones when it does not plan. */
 RC_API rc_status rc_model_input(const rc_model *m, int i, rc_model_io *out, rc_err *e);
 RC_API rc_status rc_model_output(const rc_model *m, int i, rc_model_io *out, rc_err *e);
+
+/* The shapes of every output (rc_model_n_outputs entries into out, data
+ * NULL) when the inputs have the shapes in `inputs` (one per graph input,
+ * data ignored): what running the model on such a batch gives. Errors name
+ * the node whose shapes do not fit. */
+RC_API rc_status rc_model_output_shapes(const rc_model *m, const rc_tensor *inputs, rc_tensor *out, rc_err *e);
 
 /* ---- Counts ------------------------------------------------------------ */
 

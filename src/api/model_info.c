@@ -12,6 +12,8 @@
 
 const char *rc_model_path(const rc_model *m) { return m->path; }
 
+int64_t rc_model_file_bytes(const rc_model *m) { return (int64_t)m->file_bytes; }
+
 int rc_model_n_inputs(const rc_model *m) { return m->graph.n_inputs; }
 
 int rc_model_n_outputs(const rc_model *m) { return m->graph.n_outputs; }
@@ -43,6 +45,18 @@ rc_status rc_model_output(const rc_model *m, int i, rc_model_io *out, rc_err *e)
   if (rc__plan_batch1(&p, g, &ignored) == RC_OK) {
     out->shape = *rc_plan_tensor(p, g->outputs[i]);
     out->shape.data = NULL;
+  }
+  rc_plan_free(p);
+  return RC_OK;
+}
+
+rc_status rc_model_output_shapes(const rc_model *m, const rc_tensor *inputs, rc_tensor *out, rc_err *e) {
+  const rc_graph *g = &m->graph;
+  rc_plan *p = NULL;
+  RC_TRY(rc_plan_init(&p, g, inputs, NULL, e));
+  for (int j = 0; j < g->n_outputs; j++) {
+    out[j] = *rc_plan_tensor(p, g->outputs[j]);
+    out[j].data = NULL;
   }
   rc_plan_free(p);
   return RC_OK;

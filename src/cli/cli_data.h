@@ -3,9 +3,9 @@
 #ifndef RC_CLI_DATA_H
 #define RC_CLI_DATA_H
 
-#include "ir/ir.h"
 #include "recoup/data.h"
 #include "recoup/image.h"
+#include "recoup/model.h"
 
 #define CLI_MAX_DATA 8
 #define CLI_MAX_CHANNELS 64
@@ -67,9 +67,8 @@ void cli_data_opts_init(cli_data_opts *o);
  * options not given take the recorded values, with a note saying so; given
  * ones win, with a note where they differ. record: store the options in
  * effect in m, to be written with it. */
-struct rc_model;
-rc_status cli_prep_apply(cli_data_opts *o, const struct rc_model *m, rc_err *e);
-rc_status cli_prep_record(struct rc_model *m, const cli_data_opts *o, rc_err *e);
+rc_status cli_prep_apply(cli_data_opts *o, const rc_model *m, rc_err *e);
+rc_status cli_prep_record(rc_model *m, const cli_data_opts *o, rc_err *e);
 /* The normalisation for a source of dtype `source`: given options, else the
  * recorded ones for integer sources, else none; mean/std are filled (the
  * norm points at them). Notes on stderr say what was used. */
@@ -81,7 +80,7 @@ int cli_data_option(cli_data_opts *o, const char *cmd, const char *name, const c
 /* Read every --data file, map it to the graph's inputs (a lone FILE feeds a
  * one-input model; NAME=FILE names the input), convert float inputs with the
  * normalisation and fit each to the input's per-sample shape. */
-rc_status cli_samples_load(cli_samples *s, const cli_data_opts *o, const rc_graph *g, rc_err *e);
+rc_status cli_samples_load(cli_samples *s, const cli_data_opts *o, const rc_model *m, rc_err *e);
 /* Read labels for the loaded samples, checked against the count and n_classes. */
 rc_status cli_samples_load_labels(cli_samples *s, const char *path, int64_t n_classes, rc_err *e);
 void cli_samples_free(cli_samples *s);
@@ -90,7 +89,7 @@ void cli_samples_free(cli_samples *s);
 int cli_is_image_source(const char *file);
 /* Decode the image set at file into a (N, C, H, W) uint8 array for input, with
  * labels from folders or the list when o->labels says "folders"/"list". */
-rc_status cli_images_load(cli_samples *s, rc_array *out, const cli_data_opts *o, const rc_value *input,
+rc_status cli_images_load(cli_samples *s, rc_array *out, const cli_data_opts *o, const rc_model_io *input,
                           const char *file, rc_err *e);
 /* "--labels folders|list" for loaded images: take the set's labels. */
 int cli_images_labels_word(const char *labels);
@@ -99,7 +98,7 @@ rc_status cli_images_take_labels(cli_samples *s, int64_t n_classes, rc_err *e);
 struct cJSON;
 void cli_images_json(struct cJSON *root, const cli_samples *s);
 /* Number of classes: the width of the first output, planned at batch 1. */
-rc_status cli_output_classes(const rc_graph *g, const cli_samples *s, int64_t *k, rc_err *e);
+rc_status cli_output_classes(const rc_model *m, const cli_samples *s, int64_t *k, rc_err *e);
 /* Tensor shapes for planning at batch b (dims[0] = b). */
 void cli_samples_shapes(const cli_samples *s, int64_t b, rc_tensor *shapes);
 /* cli_samples_dataset over `limit` samples: the first after a PCG32 shuffle

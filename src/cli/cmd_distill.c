@@ -624,12 +624,12 @@ static rc_status synth_samples(cli_samples *s, const distill_args *a, rc_model *
   return RC_OK;
 }
 
-static rc_status load_val(cli_samples *val, const distill_args *a, const rc_graph *g, rc_err *e) {
+static rc_status load_val(cli_samples *val, const distill_args *a, const rc_model *m, rc_err *e) {
   cli_data_opts vo = a->data;
   memcpy(vo.data, a->val_data, sizeof vo.data);
   vo.n_data = a->n_val_data;
   vo.labels = cli_images_labels_word(a->val_labels) ? a->val_labels : NULL; /* image sets read their own labels */
-  return cli_samples_load(val, &vo, g, e);
+  return cli_samples_load(val, &vo, m, e);
 }
 
 int rc_cmd_distill(int argc, char **argv) {
@@ -662,9 +662,9 @@ int rc_cmd_distill(int argc, char **argv) {
   if (cli_prep_apply(&a.data, student, &e) != RC_OK) goto out;
   if (!a.data.recorded && cli_prep_apply(&a.data, teacher, &e) != RC_OK) goto out;
   if (cli_synth_count(a.data.data[0]) > 0 ? synth_samples(&train, &a, teacher, &e) != RC_OK
-                                           : cli_samples_load(&train, &a.data, &student->graph, &e) != RC_OK)
+                                           : cli_samples_load(&train, &a.data, student, &e) != RC_OK)
     goto out;
-  if (a.n_val_data && load_val(&val, &a, &student->graph, &e) != RC_OK) goto out;
+  if (a.n_val_data && load_val(&val, &a, student, &e) != RC_OK) goto out;
   rc_output_side side, val_side;
   memset(&side, 0, sizeof side);
   memset(&val_side, 0, sizeof val_side);
@@ -675,7 +675,7 @@ int rc_cmd_distill(int argc, char **argv) {
     a.cfg.label_output = a.outs.label_output[0] ? a.outs.label_output : NULL;
   } else {
     int64_t k = 0;
-    if (cli_output_classes(&student->graph, &train, &k, &e) != RC_OK) goto out;
+    if (cli_output_classes(student, &train, &k, &e) != RC_OK) goto out;
     if (a.data.labels && cli_samples_load_labels(&train, a.data.labels, k, &e) != RC_OK) goto out;
     if (a.val_labels && cli_samples_load_labels(&val, a.val_labels, k, &e) != RC_OK) goto out;
   }

@@ -277,7 +277,7 @@ int rc_cmd_eval(int argc, char **argv) {
   if (a.out && check_output_path(&a, &e) != RC_OK) goto out;
   if (rc_model_load(&r.model, a.model, NULL, &e) != RC_OK) goto out;
   if (cli_prep_apply(&a.data, r.model, &e) != RC_OK) goto out;
-  if (cli_samples_load(&s, &a.data, &r.model->graph, &e) != RC_OK) goto out;
+  if (cli_samples_load(&s, &a.data, r.model, &e) != RC_OK) goto out;
   int64_t batch = a.batch < s.n ? a.batch : s.n;
   if (cli_samples_dataset(&d, &s, NULL, 0, &e) != RC_OK) goto out;
   if (run_model(&r, a.model, &s, batch, &d, &e) != RC_OK) goto out;

@@ -369,7 +369,7 @@ int rc_cmd_quantize(int argc, char **argv) {
   if (check_output_path(&a, &e) != RC_OK) goto out;
   if (rc_model_load(&m, a.model, NULL, &e) != RC_OK) goto out;
   if (cli_prep_apply(&a.data, m, &e) != RC_OK) goto out;
-  if (cli_samples_load(&s, &a.data, &m->graph, &e) != RC_OK) goto out;
+  if (cli_samples_load(&s, &a.data, m, &e) != RC_OK) goto out;
   if (cli_samples_dataset_limit(&d, &s, a.limit, (uint64_t)a.seed, &e) != RC_OK) goto out;
   if (rc_quantize_model(m, &d, &a.cfg, &rep, &e) != RC_OK) goto out;
   if (cli_prep_record(m, &a.data, &e) != RC_OK) goto out;
