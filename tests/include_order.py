@@ -38,7 +38,6 @@ LEVEL = {
 CLI_PENDING = {
     "src/cli/cmd_distill.c": "the full training configuration, pairing, selection rules",
     "src/cli/cmd_inspect.c": "weights, grids, mask rules, grid ranges, pairing, I/O declarations",
-    "src/cli/cmd_quantize.c": "calibration data views, plans, the model editor",
     "src/cli/manifest.c": "loss-term and feature names of the training configuration",
     "src/cli/weight_rules.h": "mask choices and integer ranges of the distill result",
     "src/cli/cli_outputs.c": "plans and graphs for per-output losses, targets and dense labels",

@@ -52,4 +52,10 @@ RC_API rc_status rc_eval_run(rc_eval_result *r, rc_model *m, rc_model *ref, cons
 /* Safe on a zeroed result. */
 RC_API void rc_eval_result_free(rc_eval_result *r);
 
+/* The metrics of logits (n, k) against labels (n int32 in [0, k), may be
+ * NULL) and/or reference logits (n, k, may be NULL), as rc_eval_run
+ * measures them: for outputs a program computed or kept itself. */
+RC_API rc_status rc_eval_metrics(rc_metrics *m, const float *logits, const int32_t *labels, const float *ref_logits,
+                                 int64_t n, int64_t k, rc_err *e);
+
 #endif

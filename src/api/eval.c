@@ -40,6 +40,7 @@ static rc_status eval_run_model(eval_run *r, rc_model *m, const rc_dataset *d, i
     shapes[i] = d->inputs[i];
     shapes[i].data = NULL;
     shapes[i].dims[0] = batch;
+    if (d->to_float[i]) shapes[i].dtype = RC_DTYPE_FLOAT; /* converted per batch (rc_dataset_convert) */
   }
   RC_TRY(rc_plan_init(&r->plan, g, shapes, NULL, e));
   for (int j = 0; j < g->n_outputs; j++) {
@@ -125,6 +126,11 @@ rc_status rc_eval_run(rc_eval_result *res, rc_model *m, rc_model *ref, const rc_
   eval_run_free(&rr);
   if (st != RC_OK) rc_eval_result_free(res);
   return st;
+}
+
+rc_status rc_eval_metrics(rc_metrics *m, const float *logits, const int32_t *labels, const float *ref_logits,
+                          int64_t n, int64_t k, rc_err *e) {
+  return rc__metrics_compute(m, logits, labels, ref_logits, n, k, e);
 }
 
 void rc_eval_result_free(rc_eval_result *r) {
