@@ -17,7 +17,7 @@
 #include "recoup/status.h"
 #include "recoup/tensor.h"
 
-#define RC_DISTILL_OUTPUTS_MAX 16
+#define RC_DISTILL_OUTPUTS_MAX RC_EVAL_OUTPUTS_MAX /* recoup/eval.h */
 
 /* Per-sample side data of one set of samples (training pool or validation)
  * for losses per model output. */

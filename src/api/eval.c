@@ -2,6 +2,7 @@
  * its outputs gathered and its first output measured. */
 #include <string.h>
 
+#include "api/eval_outputs.h"
 #include "core/alloc.h"
 #include "core/status.h"
 #include "onnx/model.h"
@@ -14,6 +15,16 @@
 void rc_eval_settings_init(rc_eval_settings *s) {
   memset(s, 0, sizeof *s);
   s->batch = 64;
+  s->ignore_label = RC_EVAL_DEFAULT_IGNORE_LABEL;
+}
+
+void rc__eval_batch_shapes(rc_tensor *shapes, const rc_dataset *d, int64_t batch) {
+  for (int i = 0; i < d->n_inputs; i++) {
+    shapes[i] = d->inputs[i];
+    shapes[i].data = NULL;
+    shapes[i].dims[0] = batch;
+    if (d->to_float[i]) shapes[i].dtype = RC_DTYPE_FLOAT; /* converted per batch (rc_dataset_convert) */
+  }
 }
 
 /* A model planned for batch b with every output gathered over d. */
@@ -36,12 +47,7 @@ static rc_status eval_run_model(eval_run *r, rc_model *m, const rc_dataset *d, i
   if (g->n_outputs > EVAL_MAX_OUTPUTS)
     return rc__fail(e, RC_ERR_UNSUPPORTED, "%s: more than %d outputs", m->path, EVAL_MAX_OUTPUTS);
   rc_tensor shapes[RC_DATASET_MAX_INPUTS];
-  for (int i = 0; i < d->n_inputs; i++) {
-    shapes[i] = d->inputs[i];
-    shapes[i].data = NULL;
-    shapes[i].dims[0] = batch;
-    if (d->to_float[i]) shapes[i].dtype = RC_DTYPE_FLOAT; /* converted per batch (rc_dataset_convert) */
-  }
+  rc__eval_batch_shapes(shapes, d, batch);
   RC_TRY(rc_plan_init(&r->plan, g, shapes, NULL, e));
   for (int j = 0; j < g->n_outputs; j++) {
     const rc_tensor *t = rc_plan_tensor(r->plan, g->outputs[j]);
@@ -94,7 +100,9 @@ static rc_status eval_both(rc_eval_result *res, eval_run *r, eval_run *rr, rc_mo
   int64_t batch = s->batch < d->n ? s->batch : d->n;
   RC_TRY(eval_run_model(r, m, d, batch, e));
   res->classes = classes_of(r, m);
-  if (d->labels || ref) {
+  if (s->per_output || s->n_output_terms > 0) {
+    RC_TRY(rc__eval_outputs(&res->metrics, m, ref, d, batch, s, e));
+  } else if (d->labels || ref) {
     RC_TRY(need_logits(r, m, e));
     const float *ref_logits = NULL;
     if (ref) {

@@ -66,38 +66,14 @@ static rc_status check_per_sample(const rc_array *a, const char *path, int64_t n
   return RC_OK;
 }
 
-rc_status cli_outputs_read_labels(rc_array *out, const char *path, int64_t n, const int64_t *dims, int rank, int axis,
-                                  long ignore, rc_err *e) {
-  rc_array raw = {0}, f = {0};
+/* Dense labels for an output of shape dims whose class axis is `axis`. */
+static rc_status read_dense_labels(rc_array *out, const char *path, int64_t n, const int64_t *dims, int rank, int axis,
+                                   long ignore, rc_err *e) {
+  rc_array raw = {0};
   memset(out, 0, sizeof *out);
   RC_TRY(rc_array_read(&raw, path, NULL, 0, e));
-  rc_tensor want;
-  sample_shape(&want, dims, rank, axis);
-  rc_status s = check_per_sample(&raw, path, n, &want, "dense labels", e);
-  if (s == RC_OK && (s = rc_data_to_float_array(&f, &raw, NULL, e)) != RC_OK) rc_err_prefix(e, "%s", path);
+  rc_status s = rc_eval_dense_labels(out, &raw, path, n, dims, rank, axis, (int32_t)ignore, e);
   rc_array_free(&raw);
-  if (s != RC_OK) return s;
-  int64_t count = rc_tensor_numel(&f.t), k = dims[axis];
-  int32_t *lab = rc__malloc(sizeof(int32_t) * (size_t)count + 1);
-  if (!lab) {
-    rc_array_free(&f);
-    return rc_err_set(e, RC_ERR_NOMEM, "%s: out of memory", path);
-  }
-  const float *v = f.t.data;
-  for (int64_t i = 0; i < count; i++) {
-    if (v[i] != floorf(v[i]) || ((v[i] < 0 || v[i] >= (float)k) && v[i] != (float)ignore)) {
-      s = rc_err_set(e, RC_ERR_INVALID, "%s: label %g at element %lld is not a class in [0, %lld) nor the ignore value "
-                   "%ld", path, (double)v[i], (long long)i, (long long)k, ignore);
-      break;
-    }
-    lab[i] = (int32_t)v[i];
-  }
-  out->t = f.t;
-  out->t.dtype = RC_DTYPE_INT32;
-  out->t.data = lab;
-  out->owned = lab;
-  rc_array_free(&f);
-  if (s != RC_OK) rc_array_free(out);
   return s;
 }
 
@@ -162,7 +138,7 @@ static rc_status load_labels(cli_outputs *o, rc_plan *p, const rc_graph *g, cons
     rc_output_loss r = o->specs[i];
     RC_TRY(rc_output_loss_resolve(&r, t->dims, t->rank, 1.0f, e));
     snprintf(o->label_output, sizeof o->label_output, "%s", r.output);
-    return cli_outputs_read_labels(out, path, n, t->dims, t->rank, r.axis, o->ignore, e);
+    return read_dense_labels(out, path, n, t->dims, t->rank, r.axis, o->ignore, e);
   }
   return rc_err_set(e, RC_ERR_INVALID, "--labels with --output-loss: dense labels need a kd term on the output they "
                   "label");
@@ -241,50 +217,4 @@ void cli_outputs_metrics_json(cJSON *o, const rc_metrics *m) {
   number_or_null(o, "miou_dense", m->miou_ref);
   number_or_null(o, "miou_labels", m->miou_labels);
   number_or_null(o, "value_mad", m->value_mad);
-}
-
-/* The default terms of eval: kd over axis 1 of every float output of rank >= 3. */
-static rc_status default_specs(cli_outputs *o, rc_plan *p, const rc_graph *g, rc_err *e) {
-  for (int j = 0; j < g->n_outputs && o->n < RC_OUTPUTS_MAX; j++) {
-    const rc_tensor *t = rc_plan_tensor(p, g->outputs[j]);
-    if (t->dtype != RC_DTYPE_FLOAT || t->rank < 3) continue;
-    char spec[200];
-    snprintf(spec, sizeof spec, "%s=kd:axis=1", g->values[g->outputs[j]].name);
-    if (strlen(g->values[g->outputs[j]].name) > 120) continue;
-    RC_TRY(rc_output_loss_parse(&o->specs[o->n], spec, e));
-    o->n++;
-  }
-  if (!o->n)
-    return rc_err_set(e, RC_ERR_INVALID, "%s: no float output of rank 3 or more; name outputs with --output-loss", g->path);
-  return RC_OK;
-}
-
-rc_status cli_outputs_eval(rc_metrics *m, cli_outputs *o, rc_model *model, rc_model *ref,
-                           const cli_samples *s, int64_t batch, const char *labels_path, rc_err *e) {
-  const rc_graph *g = &model->graph;
-  rc_tensor shapes[CLI_MAX_DATA];
-  cli_samples_shapes(s, batch, shapes);
-  rc_plan *pm = NULL, *pr = NULL;
-  rc_outputs *bound = NULL;
-  rc_dataset d;
-  memset(&d, 0, sizeof d);
-  rc_output_side side, val_side;
-  rc_status st = rc_plan_init(&pm, g, shapes, NULL, e);
-  if (st == RC_OK && ref) st = rc_plan_init(&pr, &ref->graph, shapes, NULL, e);
-  if (st == RC_OK && !o->n) st = default_specs(o, pm, g, e);
-  /* eval has no targets: bounded-l2 is a training term; its output is measured as values. */
-  for (int i = 0; i < o->n && st == RC_OK; i++)
-    if (rc_out_term_needs_targets(o->specs[i].term)) o->specs[i].term = RC_OUT_MSE;
-  if (st == RC_OK) st = cli_outputs_load(o, g, s, labels_path, NULL, NULL, &side, &val_side, e);
-  if (st == RC_OK)
-    st = rc__outputs_create(&bound, o->specs, o->n, 1.0f, pr ? pr : pm, pm, o->label_output[0] ? o->label_output : NULL,
-                            e);
-  if (st == RC_OK) st = cli_samples_dataset(&d, s, NULL, 0, e);
-  if (st == RC_OK) st = rc__outputs_validate(bound, pr ? pr : pm, pm, &d, &side, d.index, m, e);
-  if (st == RC_OK && !ref) m->has_ref = 0;
-  rc_dataset_free(&d);
-  rc__outputs_free(bound);
-  rc_plan_free(pm);
-  rc_plan_free(pr);
-  return st;
 }

@@ -6,10 +6,10 @@
 
 #include "cli/cli_data.h"
 #include "onnx/model.h"
+#include "recoup/eval.h"
 #include "train/outputs.h"
 
-/* Segmentation datasets commonly mark unlabelled pixels with 255. */
-#define CLI_DEFAULT_IGNORE_LABEL 255
+#define CLI_DEFAULT_IGNORE_LABEL RC_EVAL_DEFAULT_IGNORE_LABEL /* 255 */
 
 typedef struct cli_outputs {
   rc_output_loss specs[RC_OUTPUTS_MAX];
@@ -38,10 +38,6 @@ rc_status cli_outputs_load(cli_outputs *o, const rc_graph *g, const cli_samples 
                            const cli_samples *val, const char *val_labels_path, rc_output_side *side,
                            rc_output_side *val_side, rc_err *e);
 
-/* Dense labels alone (eval): for output `spec` of shape dims at batch 1. */
-rc_status cli_outputs_read_labels(rc_array *out, const char *path, int64_t n, const int64_t *dims, int rank,
-                                  int axis, long ignore, rc_err *e);
-
 /* Validation figures of a per-output run (rc_metrics.outputs): a table with
  * one row per model, and the same as JSON members of o. */
 struct cJSON;
@@ -49,12 +45,4 @@ void cli_outputs_table_header(void);
 void cli_outputs_table_row(const char *name, const rc_metrics *m);
 void cli_outputs_metrics_json(struct cJSON *o, const rc_metrics *m);
 
-/* eval with per-output figures: `model` against `ref` (NULL: against
- * itself, for label figures alone) over every sample of s. Outputs without a
- * term in o get the default: kd over axis 1 for float outputs of rank 3 and
- * more (class maps); value outputs are named with a regression term, e.g.
- * --output-loss boxes=smooth-l1. labels_path: dense labels, or NULL. */
-
-rc_status cli_outputs_eval(rc_metrics *m, cli_outputs *o, rc_model *model, rc_model *ref,
-                           const cli_samples *s, int64_t batch, const char *labels_path, rc_err *e);
 #endif
