@@ -51,6 +51,9 @@ RC_API rc_status rc_model_save(rc_model *m, const char *path, const int *changed
 RC_API const char *rc_model_path(const rc_model *m);
 /* Size in bytes of the file the model was loaded from. */
 RC_API int64_t rc_model_file_bytes(const rc_model *m);
+/* The file's ONNX IR version and default-domain opset. */
+RC_API int64_t rc_model_ir_version(const rc_model *m);
+RC_API int rc_model_opset(const rc_model *m);
 
 /* The value of a metadata_props entry of the model, or NULL when it has
  * none (points into the model). */
@@ -77,6 +80,25 @@ RC_API int rc_model_n_outputs(const rc_model *m);
 RC_API rc_status rc_model_input(const rc_model *m, int i, rc_model_io *out, rc_err *e);
 RC_API rc_status rc_model_output(const rc_model *m, int i, rc_model_io *out, rc_err *e);
 
+/* What the file declares for input or output i: element type (0 when it
+ * declares none), shape (rank -1 when it declares none; a dim -1 where
+ * symbolic or unknown) and the names of symbolic dims ("N"), NULL where
+ * not given (strings point into the model). */
+typedef struct rc_io_decl {
+  const char *name;   /* rc_model_declared: the input's or output's name */
+  rc_dtype dtype;
+  int rank;
+  int64_t dims[RC_MAX_RANK];
+  const char *dim_names[RC_MAX_RANK];
+} rc_io_decl;
+
+RC_API rc_status rc_model_declared(const rc_model *m, int is_output, int i, rc_io_decl *d, rc_err *e);
+
+/* The declared input shapes with every symbolic or unknown dim taken as b
+ * (no shape: rank 0): one per input into out, data NULL. Counts are quoted
+ * at b = 1. */
+RC_API void rc_model_batch_inputs(const rc_model *m, int64_t b, rc_tensor *out);
+
 /* The shapes of every output (rc_model_n_outputs entries into out, data
  * NULL) when the inputs have the shapes in `inputs` (one per graph input,
  * data ignored): what running the model on such a batch gives. Errors name
@@ -95,6 +117,12 @@ typedef struct rc_model_summary {
 } rc_model_summary;
 
 RC_API rc_status rc_model_summarize(const rc_model *m, rc_model_summary *out, rc_err *e);
+
+/* Entries of float and integer weight initializers (as summary.params). */
+RC_API int64_t rc_model_params(const rc_model *m);
+/* Multiply-accumulates at batch 1 (as summary.macs); fails with the reason
+ * when the model does not plan. */
+RC_API rc_status rc_model_macs(const rc_model *m, int64_t *macs, rc_err *e);
 
 typedef struct rc_model_op_count {
   const char *op_type;
@@ -137,9 +165,57 @@ typedef struct rc_model_grid {
   int axis;                 /* -1 for per-tensor */
   int64_t n_scale;
   float scale_min, scale_max;
+  const float *scale;       /* the n_scale scales (point into the model) */
 } rc_model_grid;
 
 RC_API rc_status rc_model_grids(const rc_model *m, rc_model_grid **out, int *n, rc_err *e);
+
+/* What distill makes of a quantized weight's integers: the range they may
+ * take and where it comes from (the dtype's own range; recorded in the file
+ * by recoup quantize; or observed from the integers the tensor holds). */
+typedef enum rc_range_source { RC_RANGE_DTYPE = 0, RC_RANGE_RECORDED = 1, RC_RANGE_OBSERVED = 2 } rc_range_source;
+
+typedef struct rc_int_range {
+  int32_t lo, hi;           /* integers allowed */
+  rc_range_source source;
+  int has_used;             /* used_lo/used_hi hold the tensor's integers */
+  int64_t used_lo, used_hi;
+} rc_int_range;
+
+/* "dtype", "recorded", "observed". */
+RC_API const char *rc_range_source_name(rc_range_source s);
+
+/* The integer range of every grid of rc_model_grids (same order) into out
+ * (one allocation, rc_model_list_free). Errors name the file and the
+ * metadata entry or tensor at fault. */
+RC_API rc_status rc_model_grid_ranges(const rc_model *m, rc_int_range **out, int *n, rc_err *e);
+
+/* The zero points of grid i of rc_model_grids, one per scale (n_scale
+ * int64 into out; 0 where the grid has none). */
+RC_API rc_status rc_model_grid_zero_points(const rc_model *m, int i, int64_t *out, rc_err *e);
+
+/* What an exact zero in a weight means to distill: pruned (kept at zero) or
+ * an ordinary trainable value. auto: a float weight's zeros are pruned; a
+ * quantized weight's zero points are pruned when the file says so or when
+ * they are far more common than rounding explains. zeros: every zero is
+ * pruned. none: nothing is. */
+typedef enum rc_mask_mode { RC_MASK_AUTO = 0, RC_MASK_ZEROS = 1, RC_MASK_NONE = 2 } rc_mask_mode;
+
+typedef struct rc_mask_choice {
+  int keep_zeros;        /* zeros are pruned and stay zero */
+  const char *rule;      /* which rule decided: "mask zeros", "mask none", "float", "recorded", "excess", "rounding" */
+  int64_t at_zero;       /* entries at zero (or at the zero point) */
+  int64_t beside_zero;   /* quantized: entries at zero point - 1 and + 1 together */
+} rc_mask_choice;
+
+/* "auto", "zeros", "none"; parse returns 1 for one of them, else 0. */
+RC_API const char *rc_mask_mode_name(rc_mask_mode m);
+RC_API int rc_mask_mode_parse(const char *s, rc_mask_mode *m);
+
+/* The decision under `mode` for every weight of rc_model_weights (same
+ * order; rule NULL for biases, normalisation and affine parameters) into
+ * out (one allocation, rc_model_list_free). */
+RC_API rc_status rc_model_masks(const rc_model *m, rc_mask_mode mode, rc_mask_choice **out, int *n, rc_err *e);
 
 /* Frees a list returned above; safe on NULL. */
 RC_API void rc_model_list_free(void *list);

@@ -10,6 +10,8 @@
  *                      quantization grids) and save models
  *   recoup/data.h      read .npy, .npz, IDX and TensorProto files; turn them
  *                      into float inputs and checked labels; dataset views
+ *   recoup/pairing.h   which teacher tensors feature terms match with which
+ *                      student tensors
  *   recoup/eval.h      run a model over a dataset: accuracy, agreement and
  *                      KL against a reference model, all outputs
  *   recoup/distill.h   fine-tune a student against its teacher: settings with
@@ -62,6 +64,7 @@
 #include "recoup/eval.h"
 #include "recoup/export.h"
 #include "recoup/model.h"
+#include "recoup/pairing.h"
 #include "recoup/parallel.h"
 #include "recoup/prune.h"
 #include "recoup/quantize.h"

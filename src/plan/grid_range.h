@@ -30,19 +30,13 @@
 
 #include "core/status.h"
 #include "ir/ir.h"
+#include "recoup/model.h"
 
 #define RC_RANGES_METADATA "recoup.integer_ranges"
 #define RC_PRUNED_METADATA "recoup.pruned"
 
-typedef enum rc_range_source { RC_RANGE_DTYPE = 0, RC_RANGE_RECORDED = 1, RC_RANGE_OBSERVED = 2 } rc_range_source;
+/* rc_range_source and rc_int_range are public: recoup/model.h. */
 const char *rc__range_source_name(rc_range_source s);
-
-typedef struct rc_int_range {
-  int32_t lo, hi;           /* integers allowed */
-  rc_range_source source;
-  int has_used;             /* used_lo/used_hi hold the tensor's integers */
-  int64_t used_lo, used_hi;
-} rc_int_range;
 
 /* The parsed metadata of our own (either may be absent). */
 typedef struct rc_file_notes {

@@ -23,18 +23,11 @@
 
 #define RC_MASK_EXCESS 4.0
 
-typedef enum rc_mask_mode { RC_MASK_AUTO = 0, RC_MASK_ZEROS = 1, RC_MASK_NONE = 2 } rc_mask_mode;
+/* rc_mask_mode and rc_mask_choice are public: recoup/model.h. */
 
 const char *rc__mask_mode_name(rc_mask_mode m);
 /* 1 if s is auto, zeros or none. */
 int rc__mask_mode_parse(const char *s, rc_mask_mode *m);
-
-typedef struct rc_mask_choice {
-  int keep_zeros;        /* zeros are pruned and stay zero */
-  const char *rule;      /* which rule decided: "mask zeros", "mask none", "float", "recorded", "excess", "rounding" */
-  int64_t at_zero;       /* entries at zero (or at the zero point) */
-  int64_t beside_zero;   /* quantized: entries at zero point - 1 and + 1 together */
-} rc_mask_choice;
 
 /* Decide for tensor t named name. Quantized: t is the integer tensor,
  * zero_point NULL (zero) or one per channel, laid out (channels, inner) as
