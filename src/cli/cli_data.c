@@ -257,22 +257,28 @@ rc_status cli_samples_dataset(rc_dataset *d, const cli_samples *s, const int64_t
   return RC_OK;
 }
 
-rc_status cli_output_classes(const rc_model *m, const cli_samples *s, int64_t *k, rc_err *e) {
+rc_status cli_first_output_shape(const rc_model *m, const cli_samples *s, rc_tensor *first, rc_err *e) {
   rc_tensor shapes[CLI_MAX_DATA];
   cli_samples_shapes(s, 1, shapes);
-  int n_out = rc_model_n_outputs(m);
-  rc_tensor *outs = malloc(sizeof *outs * (size_t)(n_out + 1));
+  rc_tensor *outs = malloc(sizeof *outs * (size_t)(rc_model_n_outputs(m) + 1));
   if (!outs) return rc_err_set(e, RC_ERR_NOMEM, "out of memory");
   rc_status st = rc_model_output_shapes(m, shapes, outs, e);
-  rc_model_io first;
-  if (st == RC_OK && (outs[0].dtype != RC_DTYPE_FLOAT || outs[0].rank != 2) &&
-      (st = rc_model_output(m, 0, &first, e)) == RC_OK)
-    st = rc_err_set(e, RC_ERR_SHAPE, "%s: labels need a float (N, classes) first output; '%s' has rank %d",
-                    rc_model_path(m), first.name, outs[0].rank);
-  else if (st == RC_OK)
-    *k = outs[0].dims[1];
+  if (st == RC_OK) *first = outs[0];
   free(outs);
   return st;
+}
+
+rc_status cli_output_classes(const rc_model *m, const cli_samples *s, int64_t *k, rc_err *e) {
+  rc_tensor t;
+  RC_TRY(cli_first_output_shape(m, s, &t, e));
+  if (t.dtype == RC_DTYPE_FLOAT && t.rank == 2) {
+    *k = t.dims[1];
+    return RC_OK;
+  }
+  rc_model_io first;
+  RC_TRY(rc_model_output(m, 0, &first, e));
+  return rc_err_set(e, RC_ERR_SHAPE, "%s: labels need a float (N, classes) first output; '%s' has rank %d",
+                    rc_model_path(m), first.name, t.rank);
 }
 
 rc_status cli_samples_dataset_limit(rc_dataset *d, const cli_samples *s, int64_t limit, uint64_t seed, rc_err *e) {

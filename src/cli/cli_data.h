@@ -97,6 +97,8 @@ rc_status cli_images_take_labels(cli_samples *s, int64_t n_classes, rc_err *e);
 /* Class names and skipped images into a --json object (nothing without images). */
 struct cJSON;
 void cli_images_json(struct cJSON *root, const cli_samples *s);
+/* The first output's shape for a batch of one of these samples. */
+rc_status cli_first_output_shape(const rc_model *m, const cli_samples *s, rc_tensor *first, rc_err *e);
 /* Number of classes: the width of the first output, planned at batch 1. */
 rc_status cli_output_classes(const rc_model *m, const cli_samples *s, int64_t *k, rc_err *e);
 /* Tensor shapes for planning at batch b (dims[0] = b). */

@@ -209,16 +209,11 @@ static rc_status check_output_path(const eval_args *a, rc_err *e) {
 
 /* 1 when the first output is float (N, K) logits; *k gets K. */
 static rc_status first_output_logits(const rc_model *m, const cli_samples *s, int *logits, int64_t *k, rc_err *e) {
-  rc_tensor shapes[CLI_MAX_DATA];
-  cli_samples_shapes(s, 1, shapes);
-  int n_out = rc_model_n_outputs(m);
-  rc_tensor *outs = malloc(sizeof *outs * (size_t)(n_out + 1));
-  if (!outs) return rc_err_set(e, RC_ERR_NOMEM, "out of memory");
-  rc_status st = rc_model_output_shapes(m, shapes, outs, e);
-  *logits = st == RC_OK && outs[0].dtype == RC_DTYPE_FLOAT && outs[0].rank == 2;
-  *k = *logits ? outs[0].dims[1] : 0;
-  free(outs);
-  return st;
+  rc_tensor t;
+  RC_TRY(cli_first_output_shape(m, s, &t, e));
+  *logits = t.dtype == RC_DTYPE_FLOAT && t.rank == 2;
+  *k = *logits ? t.dims[1] : 0;
+  return RC_OK;
 }
 
 /* Figures per output (class maps, values) against the reference and dense labels. */
