@@ -22,8 +22,10 @@ int rc_model_opset(const rc_model *m) { return m->graph.opset; }
 int64_t rc_model_params(const rc_model *m) { return rc__graph_params(&m->graph); }
 
 rc_status rc_model_macs(const rc_model *m, int64_t *macs, rc_err *e) {
-  *macs = rc__graph_macs_batch1(&m->graph, e);
-  return *macs < 0 ? e->code : RC_OK;
+  rc_err local = {0};
+  *macs = rc__graph_macs_batch1(&m->graph, e ? e : &local);
+  if (*macs >= 0) return RC_OK;
+  return e ? e->code : local.code;
 }
 
 rc_status rc_model_declared(const rc_model *m, int is_output, int i, rc_io_decl *d, rc_err *e) {
