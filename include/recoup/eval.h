@@ -44,7 +44,7 @@ typedef struct rc_eval_settings {
    * without a reference the model is measured against itself (has_ref 0). */
   int per_output;
   const char *const *output_terms;
-  int n_output_terms;    /* at most RC_EVAL_OUTPUTS_MAX */
+  int n_output_terms; /* at most RC_EVAL_OUTPUTS_MAX */
   /* Dense labels of the first output with a kd term, as read (any numeric
    * dtype; see rc_eval_dense_labels), or NULL; dense_labels_name names them
    * in messages (the file). Positions holding ignore_label count nowhere. */
@@ -97,7 +97,7 @@ RC_API rc_status rc_eval_dense_labels(rc_array *out, const rc_array *raw, const 
 /* The metrics of logits (n, k) against labels (n int32 in [0, k), may be
  * NULL) and/or reference logits (n, k, may be NULL), as rc_eval_run
  * measures them: for outputs a program computed or kept itself. */
-RC_API rc_status rc_eval_metrics(rc_metrics *m, const float *logits, const int32_t *labels, const float *ref_logits,
-                                 int64_t n, int64_t k, rc_err *e);
+RC_API rc_status rc_eval_metrics(rc_metrics *m, const float *logits, const int32_t *labels,
+                                 const float *ref_logits, int64_t n, int64_t k, rc_err *e);
 
 #endif

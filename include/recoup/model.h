@@ -85,7 +85,7 @@ RC_API rc_status rc_model_output(const rc_model *m, int i, rc_model_io *out, rc_
  * symbolic or unknown) and the names of symbolic dims ("N"), NULL where
  * not given (strings point into the model). */
 typedef struct rc_io_decl {
-  const char *name;   /* rc_model_declared: the input's or output's name */
+  const char *name; /* rc_model_declared: the input's or output's name */
   rc_dtype dtype;
   int rank;
   int64_t dims[RC_MAX_RANK];
@@ -165,7 +165,7 @@ typedef struct rc_model_grid {
   int axis;                 /* -1 for per-tensor */
   int64_t n_scale;
   float scale_min, scale_max;
-  const float *scale;       /* the n_scale scales (point into the model) */
+  const float *scale; /* the n_scale scales (point into the model) */
 } rc_model_grid;
 
 RC_API rc_status rc_model_grids(const rc_model *m, rc_model_grid **out, int *n, rc_err *e);
@@ -176,9 +176,9 @@ RC_API rc_status rc_model_grids(const rc_model *m, rc_model_grid **out, int *n, 
 typedef enum rc_range_source { RC_RANGE_DTYPE = 0, RC_RANGE_RECORDED = 1, RC_RANGE_OBSERVED = 2 } rc_range_source;
 
 typedef struct rc_int_range {
-  int32_t lo, hi;           /* integers allowed */
+  int32_t lo, hi; /* integers allowed */
   rc_range_source source;
-  int has_used;             /* used_lo/used_hi hold the tensor's integers */
+  int has_used; /* used_lo/used_hi hold the tensor's integers */
   int64_t used_lo, used_hi;
 } rc_int_range;
 
@@ -202,10 +202,10 @@ RC_API rc_status rc_model_grid_zero_points(const rc_model *m, int i, int64_t *ou
 typedef enum rc_mask_mode { RC_MASK_AUTO = 0, RC_MASK_ZEROS = 1, RC_MASK_NONE = 2 } rc_mask_mode;
 
 typedef struct rc_mask_choice {
-  int keep_zeros;        /* zeros are pruned and stay zero */
-  const char *rule;      /* which rule decided: "mask zeros", "mask none", "float", "recorded", "excess", "rounding" */
-  int64_t at_zero;       /* entries at zero (or at the zero point) */
-  int64_t beside_zero;   /* quantized: entries at zero point - 1 and + 1 together */
+  int keep_zeros;   /* zeros are pruned and stay zero */
+  const char *rule; /* which rule decided: "mask zeros", "mask none", "float", "recorded", "excess", "rounding" */
+  int64_t at_zero;  /* entries at zero (or at the zero point) */
+  int64_t beside_zero; /* quantized: entries at zero point - 1 and + 1 together */
 } rc_mask_choice;
 
 /* "auto", "zeros", "none"; parse returns 1 for one of them, else 0. */

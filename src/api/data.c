@@ -1,8 +1,9 @@
 /* recoup/data.h: picking a seeded subset of samples. */
+#include "recoup/data.h"
+
 #include <stdlib.h>
 
 #include "core/rng.h"
-#include "recoup/data.h"
 
 static int ascending(const void *a, const void *b) {
   int64_t x = *(const int64_t *)a, y = *(const int64_t *)b;

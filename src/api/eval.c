@@ -1,5 +1,7 @@
 /* recoup/eval.h: a model planned at one batch size, run over a dataset,
  * its outputs gathered and its first output measured. */
+#include "recoup/eval.h"
+
 #include <string.h>
 
 #include "api/eval_outputs.h"
@@ -7,7 +9,6 @@
 #include "core/status.h"
 #include "onnx/model.h"
 #include "plan/plan.h"
-#include "recoup/eval.h"
 #include "train/evaluate.h"
 
 #define EVAL_MAX_OUTPUTS 64

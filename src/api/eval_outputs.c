@@ -1,11 +1,12 @@
 /* recoup/eval.h per output: the terms of train/output_loss.h parsed from
  * text, bound to the model's plan and the reference's, and measured over a
  * dataset with dense labels. */
+#include "api/eval_outputs.h"
+
 #include <math.h>
 #include <stdio.h>
 #include <string.h>
 
-#include "api/eval_outputs.h"
 #include "core/alloc.h"
 #include "core/status.h"
 #include "onnx/model.h"
@@ -25,7 +26,8 @@ static void sample_shape(rc_tensor *t, const int64_t *dims, int rank, int skip_a
     if (d != skip_axis) t->dims[t->rank++] = dims[d];
 }
 
-static rc_status check_label_shape(const rc_array *a, const char *name, int64_t n, const rc_tensor *want, rc_err *e) {
+static rc_status check_label_shape(const rc_array *a, const char *name, int64_t n, const rc_tensor *want,
+                                   rc_err *e) {
   char sa[128], sb[128];
   rc_tensor got = a->t;
   int ok = got.rank == want->rank + 1 && got.dims[0] == n;
@@ -35,12 +37,12 @@ static rc_status check_label_shape(const rc_array *a, const char *name, int64_t 
   full.rank = want->rank + 1;
   memmove(full.dims + 1, want->dims, sizeof(int64_t) * (size_t)want->rank);
   full.dims[0] = n;
-  return rc__fail(e, RC_ERR_SHAPE, "%s: dense labels of shape %s, expected %s", name, rc_shape_str(&got, sa, sizeof sa),
-                  rc_shape_str(&full, sb, sizeof sb));
+  return rc__fail(e, RC_ERR_SHAPE, "%s: dense labels of shape %s, expected %s", name,
+                  rc_shape_str(&got, sa, sizeof sa), rc_shape_str(&full, sb, sizeof sb));
 }
 
-rc_status rc_eval_dense_labels(rc_array *out, const rc_array *raw, const char *name, int64_t n, const int64_t *dims,
-                               int rank, int axis, int32_t ignore, rc_err *e) {
+rc_status rc_eval_dense_labels(rc_array *out, const rc_array *raw, const char *name, int64_t n,
+                               const int64_t *dims, int rank, int axis, int32_t ignore, rc_err *e) {
   memset(out, 0, sizeof *out);
   rc_tensor want;
   sample_shape(&want, dims, rank, axis);
@@ -57,8 +59,9 @@ rc_status rc_eval_dense_labels(rc_array *out, const rc_array *raw, const char *n
   const float *v = f.t.data;
   for (int64_t i = 0; i < count; i++) {
     if (v[i] != floorf(v[i]) || ((v[i] < 0 || v[i] >= (float)k) && v[i] != (float)ignore)) {
-      s = rc__fail(e, RC_ERR_INVALID, "%s: label %g at element %lld is not a class in [0, %lld) nor the ignore value %ld",
-                   name, (double)v[i], (long long)i, (long long)k, (long)ignore);
+      s = rc__fail(e, RC_ERR_INVALID,
+                   "%s: label %g at element %lld is not a class in [0, %lld) nor the ignore value %ld", name,
+                   (double)v[i], (long long)i, (long long)k, (long)ignore);
       break;
     }
     lab[i] = (int32_t)v[i];
@@ -93,7 +96,9 @@ static rc_status default_terms(rc_output_loss *specs, int *n, rc_plan *p, const 
     RC_TRY(rc_output_loss_parse(&specs[*n], spec, e));
     (*n)++;
   }
-  if (!*n) return rc__fail(e, RC_ERR_INVALID, "%s: no float output of rank 3 or more; name outputs with %s", m->path, terms);
+  if (!*n)
+    return rc__fail(e, RC_ERR_INVALID, "%s: no float output of rank 3 or more; name outputs with %s", m->path,
+                    terms);
   return RC_OK;
 }
 
@@ -120,7 +125,8 @@ static rc_status terms_of(rc_output_loss *specs, int *n, rc_plan *p, const rc_mo
 
 /* Dense labels belong to the first kd output: its name into label_output. */
 static rc_status labels_of(rc_array *out, char *label_output, size_t cap, const rc_output_loss *specs, int n,
-                           rc_plan *p, const rc_model *m, const rc_dataset *d, const rc_eval_settings *s, rc_err *e) {
+                           rc_plan *p, const rc_model *m, const rc_dataset *d, const rc_eval_settings *s,
+                           rc_err *e) {
   for (int i = 0; i < n; i++) {
     if (specs[i].term != RC_OUT_KD) continue;
     const rc_tensor *t = rc_plan_tensor(p, find_output(&m->graph, specs[i].output));

@@ -32,8 +32,8 @@ rc_status rc_model_declared(const rc_model *m, int is_output, int i, rc_io_decl 
   const rc_graph *g = &m->graph;
   int n = is_output ? g->n_outputs : g->n_inputs;
   if (i < 0 || i >= n)
-    return rc__fail(e, RC_ERR_INVALID, "%s: %s %d requested, the model has %d", m->path, is_output ? "output" : "input",
-                    i, n);
+    return rc__fail(e, RC_ERR_INVALID, "%s: %s %d requested, the model has %d", m->path,
+                    is_output ? "output" : "input", i, n);
   const char *name = g->values[is_output ? g->outputs[i] : g->inputs[i]].name;
   RC_TRY(rc_model_io_decl(m, is_output, i, name, d, e));
   d->name = name;

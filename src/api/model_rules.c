@@ -20,8 +20,8 @@ const char *rc_mask_mode_name(rc_mask_mode m) { return rc__mask_mode_name(m); }
 int rc_mask_mode_parse(const char *s, rc_mask_mode *m) { return rc__mask_mode_parse(s, m); }
 
 static rc_status notes_of(rc_file_notes *notes, const rc_model *m, rc_err *e) {
-  return rc__file_notes_parse(notes, rc_model_metadata(m, RC_RANGES_METADATA), rc_model_metadata(m, RC_PRUNED_METADATA),
-                              m->path, e);
+  return rc__file_notes_parse(notes, rc_model_metadata(m, RC_RANGES_METADATA),
+                              rc_model_metadata(m, RC_PRUNED_METADATA), m->path, e);
 }
 
 static rc_status ranges_of(const rc_model *m, const rc_file_notes *notes, const rc_grid_info *gr, int n_gr,
@@ -70,8 +70,10 @@ static rc_status grid_at(const rc_model *m, int i, rc_grid_info *out, rc_err *e)
   int n_gr = 0;
   RC_TRY(rc__grids_collect(&m->graph, &gr, &n_gr, e));
   rc_status s = RC_OK;
-  if (i < 0 || i >= n_gr) s = rc__fail(e, RC_ERR_INVALID, "%s: grid %d requested, the model has %d", m->path, i, n_gr);
-  else *out = gr[i];
+  if (i < 0 || i >= n_gr)
+    s = rc__fail(e, RC_ERR_INVALID, "%s: grid %d requested, the model has %d", m->path, i, n_gr);
+  else
+    *out = gr[i];
   rc__free(gr);
   return s;
 }

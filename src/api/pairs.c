@@ -28,7 +28,8 @@ rc_status rc_model_pairs(rc_model_pair **out, int *n, const rc_model *teacher, c
   rc_pairing pg = {0};
   rc_status s = rc_pairing_init(&pg, &teacher->graph, &student->graph, ins, explicit_pairs, n_explicit, 1, e);
   rc_model_pair *list = NULL;
-  if (s == RC_OK && !(list = rc__calloc((size_t)pg.n + 1, sizeof *list))) s = rc__fail(e, RC_ERR_NOMEM, "out of memory");
+  if (s == RC_OK && !(list = rc__calloc((size_t)pg.n + 1, sizeof *list)))
+    s = rc__fail(e, RC_ERR_NOMEM, "out of memory");
   for (int i = 0; s == RC_OK && i < pg.n; i++) pair_of(&list[i], &pg.pairs[i], teacher, student);
   if (s == RC_OK) {
     *out = list;

@@ -457,7 +457,8 @@ static int run_here(batch *b, run *r) {
 /* Run the job a TAG_JOB message names and send rank 0 its outcome. */
 static rc_status serve_job(batch *b, const int64_t msg[4], rc_err *e) {
   if (msg[1] < 0 || msg[1] >= b->m.n_jobs)
-    return rc_err_set(e, RC_ERR_INVALID, "rank 0 named job %lld, which the manifest does not have", (long long)msg[1]);
+    return rc_err_set(e, RC_ERR_INVALID, "rank 0 named job %lld, which the manifest does not have",
+                      (long long)msg[1]);
   run r;
   memset(&r, 0, sizeof r);
   r.job = &b->m.jobs[msg[1]];

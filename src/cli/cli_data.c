@@ -66,8 +66,8 @@ static int split_named(const rc_model_io *inputs, int n_inputs, const char *arg,
 /* Float inputs are not converted here: the dataset view converts each batch
  * (rc_dataset_convert), so memory holds the file's own dtype, or nothing at
  * all for a mapped .npy. */
-static rc_status prepare_input(cli_samples *s, int i, const rc_model_io *input, const cli_data_opts *o, const char *file,
-                               rc_err *e) {
+static rc_status prepare_input(cli_samples *s, int i, const rc_model_io *input, const cli_data_opts *o,
+                               const char *file, rc_err *e) {
   rc_array *a = &s->inputs[i];
   const rc_tensor *decl = &input->shape;
   if (decl->dtype == RC_DTYPE_FLOAT) {
@@ -83,7 +83,7 @@ static rc_status prepare_input(cli_samples *s, int i, const rc_model_io *input, 
               file, input->name);
   } else if (a->t.dtype != decl->dtype) {
     return rc_err_set(e, RC_ERR_SHAPE, "%s: input '%s' takes %s, the file holds %s", file, input->name,
-                    rc_dtype_name(decl->dtype), rc_dtype_name(a->t.dtype));
+                      rc_dtype_name(decl->dtype), rc_dtype_name(a->t.dtype));
   }
   if (decl->rank >= 1) {
     rc_tensor sample = {a->t.dtype, decl->rank - 1, {0}, NULL};
@@ -172,12 +172,11 @@ rc_status cli_samples_load(cli_samples *s, const cli_data_opts *o, const rc_mode
     if (idx < 0) {
       if (o->n_data != 1 || n_inputs != 1)
         return rc_err_set(e, RC_ERR_INVALID,
-                        "%s has %d inputs: give each as --data NAME=FILE ('%s' names none of them)",
-                        path, n_inputs, o->data[i]);
+                          "%s has %d inputs: give each as --data NAME=FILE ('%s' names none of them)", path,
+                          n_inputs, o->data[i]);
       idx = 0;
     }
-    if (files[idx])
-      return rc_err_set(e, RC_ERR_INVALID, "input '%s' is given twice", inputs[idx].name);
+    if (files[idx]) return rc_err_set(e, RC_ERR_INVALID, "input '%s' is given twice", inputs[idx].name);
     files[idx] = file;
   }
   for (int i = 0; i < n_inputs; i++) {

@@ -67,8 +67,8 @@ static rc_status check_per_sample(const rc_array *a, const char *path, int64_t n
 }
 
 /* Dense labels for an output of shape dims whose class axis is `axis`. */
-static rc_status read_dense_labels(rc_array *out, const char *path, int64_t n, const int64_t *dims, int rank, int axis,
-                                   long ignore, rc_err *e) {
+static rc_status read_dense_labels(rc_array *out, const char *path, int64_t n, const int64_t *dims, int rank,
+                                   int axis, long ignore, rc_err *e) {
   rc_array raw = {0};
   memset(out, 0, sizeof *out);
   RC_TRY(rc_array_read(&raw, path, NULL, 0, e));

@@ -53,8 +53,8 @@ rc_status cli_prep_apply(cli_data_opts *o, const rc_model *m, rc_err *e) {
   float s = 0;
   int ns = 0;
   if (rc_data_parse_floats(scale, &s, 1, &ns, e) != RC_OK || ns != 1 || s == 0)
-    return rc_err_set(e, RC_ERR_FORMAT, "%s: metadata '%s' is '%s', not one non-zero number", rc_model_path(m), KEY_SCALE,
-                      scale);
+    return rc_err_set(e, RC_ERR_FORMAT, "%s: metadata '%s' is '%s', not one non-zero number", rc_model_path(m),
+                      KEY_SCALE, scale);
   o->recorded = 1;
   o->rec_model = rc_model_path(m);
   o->rec_scale = s;
@@ -69,8 +69,8 @@ rc_status cli_prep_apply(cli_data_opts *o, const rc_model *m, rc_err *e) {
   if (resize) {
     long r = 0;
     if (cli_parse_int(resize, 1, 1 << 15, &r))
-      return rc_err_set(e, RC_ERR_FORMAT, "%s: metadata '%s' is '%s', not a size in pixels", rc_model_path(m), KEY_RESIZE,
-                        resize);
+      return rc_err_set(e, RC_ERR_FORMAT, "%s: metadata '%s' is '%s', not a size in pixels", rc_model_path(m),
+                        KEY_RESIZE, resize);
     add_text(o->rec_text, sizeof o->rec_text, " --%s %s", "resize", resize);
     if (!o->given_resize)
       o->resize = (int)r; /* only images are resized */
@@ -78,7 +78,8 @@ rc_status cli_prep_apply(cli_data_opts *o, const rc_model *m, rc_err *e) {
       add_text(differs, sizeof differs, " --%s %s", "resize", resize);
   }
   if (*differs)
-    fprintf(stderr, "note: the command line differs from the preprocessing recorded in %s (%s ); the command line wins\n",
+    fprintf(stderr,
+            "note: the command line differs from the preprocessing recorded in %s (%s ); the command line wins\n",
             rc_model_path(m), differs);
   return RC_OK;
 }

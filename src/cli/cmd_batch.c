@@ -212,7 +212,8 @@ static rc_status check_outputs(const batch *b, rc_err *e) {
       inputs[n++] = b->m.jobs[i].out; /* an output, but a report file must not replace it either */
     }
     if (b->a->report) s = cli_report_refuse_inputs(b->a->report, names, b->m.n_jobs, inputs, NULL, n, e);
-    else s = rc_path_refuse_inputs("state file", b->state_path, inputs, NULL, n, e);
+    else
+      s = rc_path_refuse_inputs("state file", b->state_path, inputs, NULL, n, e);
   }
   free(inputs);
   free(names);

@@ -104,7 +104,9 @@ static int parse_args(eval_args *a, int argc, char **argv) {
           return cli_usage_error("eval", "--threads expects a count, got '%s'", optarg);
         break;
       case 'j': a->json = 1; break;
-      case 'L': if (add_term(a, optarg)) return RC_EXIT_USAGE; break;
+      case 'L':
+        if (add_term(a, optarg)) return RC_EXIT_USAGE;
+        break;
       case 'I':
         if (cli_parse_int(optarg, -2147483647L, 2147483647L, &a->ignore))
           return cli_usage_error("eval", "--ignore-label expects an integer, got '%s'", optarg);

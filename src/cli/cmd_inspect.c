@@ -297,8 +297,8 @@ static void print_grids(const facts *f) {
     if (g->axis >= 0) snprintf(axis, sizeof axis, "%d", g->axis);
     if (r->has_used) snprintf(used, sizeof used, "; [%lld, %lld]", (long long)r->used_lo, (long long)r->used_hi);
     snprintf(rg, sizeof rg, "[%d, %d] (%s%s)", r->lo, r->hi, rc_range_source_name(r->source), used);
-    printf("%-36s %-10s %-6s %-5s %-30s ", cli_esc(g->tensor, nb, sizeof nb), g->is_weight ? "weight" : "activation",
-           rc_dtype_name(g->dtype), axis, rg);
+    printf("%-36s %-10s %-6s %-5s %-30s ", cli_esc(g->tensor, nb, sizeof nb),
+           g->is_weight ? "weight" : "activation", rc_dtype_name(g->dtype), axis, rg);
     double zp0 = g->n_scale ? (double)f->zero_points[i][0] : 0.0;
     if (g->n_scale == 1)
       printf("%.9g / %g\n", g->scale ? g->scale[0] : 0.0, zp0);
@@ -319,7 +319,8 @@ static void print_tables(const rc_model *m, const facts *f) {
   print_io("inputs", f->ins, f->n_ins, iow);
   print_io("outputs", f->outs, f->n_outs, iow);
   printf("nodes       %d:", f->n_nodes);
-  for (int i = 0; i < f->n_ops; i++) printf("%s %s %d", i ? "," : "", cli_esc(f->ops[i].op, nb, sizeof nb), f->ops[i].n);
+  for (int i = 0; i < f->n_ops; i++)
+    printf("%s %s %d", i ? "," : "", cli_esc(f->ops[i].op, nb, sizeof nb), f->ops[i].n);
   printf("\nparameters  %s\n", cli_group_digits(f->params, b1, sizeof b1));
   if (f->macs >= 0)
     printf("MACs        %s per sample\n", cli_group_digits(f->macs, b2, sizeof b2));
@@ -344,7 +345,9 @@ static void print_tables(const rc_model *m, const facts *f) {
   if (f->n_gr) print_grids(f);
 }
 
-static const char *matched_by(const rc_model_pair *p) { return p->given ? "given" : p->by_name ? "name" : "position"; }
+static const char *matched_by(const rc_model_pair *p) {
+  return p->given ? "given" : p->by_name ? "name" : "position";
+}
 
 static void print_pairs_json(const rc_model_pair *pairs, int n) {
   cJSON *arr = cJSON_CreateArray();
@@ -377,8 +380,8 @@ static void print_pairs_table(const rc_model_pair *pairs, int n) {
     if ((l = (int)strlen(rc_shape_str(&p->teacher_shape, a, sizeof a))) > wts) wts = l;
     if ((l = (int)strlen(rc_shape_str(&p->student_shape, a, sizeof a))) > wss) wss = l;
   }
-  printf("%-*s  %-*s  %-*s  %-*s  %-8s  %s\n", wt, "teacher tensor", wts, "shape", ws, "student tensor", wss, "shape",
-         "matched", "projector");
+  printf("%-*s  %-*s  %-*s  %-*s  %-8s  %s\n", wt, "teacher tensor", wts, "shape", ws, "student tensor", wss,
+         "shape", "matched", "projector");
   for (int i = 0; i < n; i++) {
     const rc_model_pair *p = &pairs[i];
     char a[96], b[96], n1[512], n2[512];
@@ -398,8 +401,10 @@ static int inspect_pairs(const char *tpath, const char *spath, const char *const
   int n = 0, rc = RC_EXIT_FAIL;
   if (rc_model_load(&t, tpath, NULL, &e) == RC_OK && rc_model_load(&s, spath, NULL, &e) == RC_OK &&
       rc_model_pairs(&list, &n, t, s, pairs, n_pairs, &e) == RC_OK) {
-    if (json) print_pairs_json(list, n);
-    else print_pairs_table(list, n);
+    if (json)
+      print_pairs_json(list, n);
+    else
+      print_pairs_table(list, n);
     rc = RC_EXIT_OK;
   }
   if (rc != RC_EXIT_OK) cli_fail(&e);
@@ -498,9 +503,12 @@ int rc_cmd_inspect(int argc, char **argv) {
   rc_model *m = NULL;
   if (rc_model_load(&m, argv[optind], NULL, &e) != RC_OK) return cli_fail(&e);
   int rc = RC_EXIT_OK;
-  if (collect(&f, m, &pe, &se, &e) != RC_OK) rc = cli_fail(&e);
-  else if (json) print_json(m, &f);
-  else print_tables(m, &f);
+  if (collect(&f, m, &pe, &se, &e) != RC_OK)
+    rc = cli_fail(&e);
+  else if (json)
+    print_json(m, &f);
+  else
+    print_tables(m, &f);
   facts_free(&f);
   rc_model_free(m);
   return rc;

@@ -172,8 +172,8 @@ static rc_status run_outputs(rc_eval_result *r, rc_model *m, const rc_dataset *d
   es.keep_outputs = 1;
   RC_TRY(rc_eval_run(r, m, NULL, d, &es, e));
   if (r->outputs[0].dtype != RC_DTYPE_FLOAT)
-    return rc_err_set(e, RC_ERR_SHAPE, "%s: first output '%s' is not float32 with the batch first", rc_model_path(m),
-                      r->names[0]);
+    return rc_err_set(e, RC_ERR_SHAPE, "%s: first output '%s' is not float32 with the batch first",
+                      rc_model_path(m), r->names[0]);
   return RC_OK;
 }
 
@@ -185,8 +185,8 @@ typedef struct comparison {
 
 /* Reload the written file (so what is reported is the file), run it and the
  * float model on the calibration samples and compare their first outputs. */
-static rc_status verify_written(comparison *c, const char *out, rc_model *dense, const rc_dataset *d, int64_t batch,
-                                rc_err *e) {
+static rc_status verify_written(comparison *c, const char *out, rc_model *dense, const rc_dataset *d,
+                                int64_t batch, rc_err *e) {
   memset(c, 0, sizeof *c);
   rc_model *q = NULL;
   rc_eval_result fr, qr;
@@ -200,7 +200,7 @@ static rc_status verify_written(comparison *c, const char *out, rc_model *dense,
   int64_t q_per = st == RC_OK ? rc_tensor_numel(&qr.outputs[0]) / d->n : 0;
   if (st == RC_OK && q_per != f_per)
     st = rc_err_set(e, RC_ERR_SHAPE, "%s: first output has %lld values per sample, the float model %lld", out,
-                  (long long)q_per, (long long)f_per);
+                    (long long)q_per, (long long)f_per);
   const float *fo = st == RC_OK ? fr.outputs[0].data : NULL, *qo = st == RC_OK ? qr.outputs[0].data : NULL;
   for (int64_t i = 0; st == RC_OK && i < f_per * d->n; i++) {
     double diff = fabs((double)qo[i] - fo[i]);
@@ -360,8 +360,10 @@ int rc_cmd_quantize(int argc, char **argv) {
   written = 1;
   int64_t batch = a.cfg.batch < d.n ? a.cfg.batch : d.n;
   if (verify_written(&cmp, a.out, m, &d, batch, &e) != RC_OK) goto out;
-  if (a.json) print_json(&a, &rep, &cmp, (long long)rc_model_file_bytes(m), file_size(a.out));
-  else print_table(&a, &rep, &cmp, (long long)rc_model_file_bytes(m), file_size(a.out));
+  if (a.json)
+    print_json(&a, &rep, &cmp, (long long)rc_model_file_bytes(m), file_size(a.out));
+  else
+    print_table(&a, &rep, &cmp, (long long)rc_model_file_bytes(m), file_size(a.out));
   rc = RC_EXIT_OK;
 out:
   if (rc != RC_EXIT_OK) {

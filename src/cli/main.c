@@ -3,10 +3,10 @@
 #define _DEFAULT_SOURCE /* setenv */
 #include <getopt.h>
 #include <signal.h>
-#include <stdlib.h>
-#include <unistd.h>
 #include <stdio.h>
+#include <stdlib.h>
 #include <string.h>
+#include <unistd.h>
 
 #include "cli/cli.h"
 #include "recoup/parallel.h"
