@@ -85,6 +85,18 @@ int main(int argc, char **argv) {
   printf("student: %d nodes, %lld parameters, %lld MACs, %.1f%% of layer weights zero\n", sum.n_nodes,
          (long long)sum.params, (long long)sum.macs, 100.0 * (double)sum.weights_zero / (double)sum.weights_total);
 
+  /* Under --mask auto every zero of a float layer weight is pruned: the
+   * entries the masks keep at zero are the summary's zero weights. */
+  rc_mask_choice *masks = NULL;
+  int n_masks = 0;
+  if (rc_model_masks(student, RC_MASK_AUTO, &masks, &n_masks, &e) != RC_OK) return fail("listing masks", &e);
+  long long kept_zero = 0;
+  for (int i = 0; i < n_masks; i++)
+    if (masks[i].rule && masks[i].keep_zeros) kept_zero += masks[i].at_zero;
+  rc_model_list_free(masks);
+  printf("masks (auto): %lld entries kept at zero; summary: %lld zero layer weights\n", kept_zero,
+         (long long)sum.weights_zero);
+
   rc_array train_x = {0}, train_y = {0}, test_x = {0}, test_y = {0};
   if (load_split(argv[2], "train", N_TRAIN, student, &train_x, &train_y, &e) != RC_OK) return fail("training data", &e);
   if (load_split(argv[2], "t10k", N_TEST, student, &test_x, &test_y, &e) != RC_OK) return fail("test data", &e);
@@ -123,6 +135,11 @@ int main(int argc, char **argv) {
   if (!(after.metrics.agreement > before.metrics.agreement)) {
     printf("FAIL: test agreement after %.4f is not above before %.4f\n", after.metrics.agreement,
            before.metrics.agreement);
+    ok = 0;
+  }
+  if (kept_zero != sum.weights_zero || kept_zero == 0) {
+    printf("FAIL: masks keep %lld entries at zero, the summary counts %lld zero layer weights\n", kept_zero,
+           (long long)sum.weights_zero);
     ok = 0;
   }
   if (!ds.mask_ok) {

@@ -16,6 +16,21 @@ echo "pkg-config --libs recoup:   $libs"
 rm -rf "$out"
 mkdir -p "$out"
 ${CC:-cc} -std=c11 -Wall -Wextra -Werror ${RECOUP_EXAMPLE_CFLAGS:-} $cflags -o "$out/api_example" "$example" $libs -Wl,-rpath,"$libdir"
+# The static library with what `pkg-config --static` lists for it: linked
+# (not run), so a dependency missing from recoup.pc's static link line
+# (MPI's libraries in a build with MPI, say) fails here.
+static_libs=
+for f in $(pkg-config --static --libs recoup); do
+  case $f in
+    -lrecoup) static_libs="$static_libs $libdir/librecoup.a" ;;
+    *) static_libs="$static_libs $f" ;;
+  esac
+done
+echo "static link: $static_libs"
+${CC:-cc} -std=c11 -Wall -Wextra -Werror ${RECOUP_EXAMPLE_CFLAGS:-} $cflags -o "$out/api_example_static" "$example" $static_libs
+if ldd "$out/api_example_static" | grep -q librecoup; then
+  echo "FAIL: api_example_static loads librecoup.so instead of holding librecoup.a"; exit 1
+fi
 # The program must use the installed shared library, not a build-tree copy.
 ldd "$out/api_example" | grep librecoup
 case $(ldd "$out/api_example" | grep librecoup) in

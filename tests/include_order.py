@@ -11,10 +11,8 @@ not below each other, so they may not include each other either. The public
 headers in include/recoup/ may be included from anywhere and may themselves
 include only public headers. The command-line tool (src/cli) is a client of
 the public API: it may include only recoup/ public headers and its own cli/
-headers, except the files listed in CLI_PENDING, which still reach into the
-library and are to be moved behind public functions (a file listed there that
-no longer needs it is reported too, so the list only shrinks). Every quoted include must name a file in src/ or
-include/, except the headers generated at build time listed in GENERATED.
+headers. Every quoted include must name a file in src/ or include/, except
+the headers generated at build time listed in GENERATED.
 
 Usage: include_order.py SOURCE_DIR
 Prints every violation as file:line, the include and both layers, and exits 1
@@ -33,20 +31,6 @@ LEVEL = {
     "api": 5,
     "cli": 6,
 }
-# cli files that still include library headers from src/, each with what it
-# takes from there. Not to be extended: new cli code uses include/recoup/.
-CLI_PENDING = {
-    "src/cli/cmd_inspect.c": "weights, grids, mask rules, grid ranges, pairing, I/O declarations",
-    "src/cli/cmd_quantize.c": "calibration data views, plans, the model editor",
-    "src/cli/cli_data.c": "graph planning of the first output at batch 1, the PCG32 sample limit, image sources",
-    "src/cli/cli_data.h": "graph values (rc_value, rc_graph) for image inputs and output classes",
-    "src/cli/cli_prep.c": "the model's metadata_props for recorded preprocessing",
-    "src/cli/cli_util.c": "MPI rank and host in error lines (train/dist.h), escaping and path helpers",
-    "src/cli/cmd_batch.c": "MPI work queue (train/dist.h), allocator, path comparisons",
-    "src/cli/batch_pool.c": "MPI work queue messages (train/dist.h), allocator",
-    "src/cli/cmd_eval.c": "per-output evaluation (dense labels, mean IoU, value MAD) on plans, .npy writer",
-    "src/cli/main.c": "MPI start and end (train/dist.h)",
-}
 # protobuf-c code generated from the ONNX standard's onnx.proto into the build
 # folder: an external library's interface, not a file of the onnx layer.
 GENERATED = {"onnx/onnx.pb-c.h"}
@@ -62,9 +46,6 @@ def layer_of(rel):
 def check_file(root, path, own, problems):
     """Check one file; own is its layer, or "recoup" for a public header."""
     count = 0
-    rel = os.path.relpath(path, root)
-    cli_strict = own == "cli" and rel not in CLI_PENDING
-    internal = 0
     with open(path, encoding="utf-8") as f:
         for lineno, line in enumerate(f, 1):
             m = INCLUDE.match(line)
@@ -84,11 +65,9 @@ def check_file(root, path, own, problems):
             if inc in GENERATED:
                 continue
             if own == "cli" and not inc.startswith("cli/"):
-                internal += 1
-                if cli_strict:
-                    problems.append(f"{where}: #include \"{inc}\": the command-line tool uses only the "
-                                    f"public API (include/recoup/) and its own cli/ headers")
-                    continue
+                problems.append(f"{where}: #include \"{inc}\": the command-line tool uses only the "
+                                f"public API (include/recoup/) and its own cli/ headers")
+                continue
             target = layer_of(inc)
             if target is None or not os.path.isfile(os.path.join(root, "src", inc)):
                 problems.append(f"{where}: #include \"{inc}\": not a file of a layer in src/ "
@@ -102,9 +81,6 @@ def check_file(root, path, own, problems):
                 how = "the same level as" if LEVEL[target] == LEVEL[own] else "above"
                 problems.append(f"{where}: #include \"{inc}\": layer {own} (level {LEVEL[own]}) "
                                 f"includes layer {target} (level {LEVEL[target]}), which is {how} it")
-    if own == "cli" and not cli_strict and internal == 0:
-        problems.append(f"{rel}: listed in CLI_PENDING but includes no library header any more: "
-                        f"remove it from the list")
     return count
 
 
@@ -134,7 +110,6 @@ def main():
             includes += check_file(root, os.path.join(pub, name), "recoup", problems)
     print(f"checked {includes} quoted includes in {files} files against the order "
           f"core -> ir -> {{onnx, data, ops}} -> plan -> {{train, compress}} -> api -> cli")
-    print(f"cli files still reaching into src/ (CLI_PENDING): {len(CLI_PENDING)}")
     if files == 0 or includes == 0:
         print("FAIL: nothing to check (wrong SOURCE_DIR?)")
         return 1

@@ -204,6 +204,12 @@ typedef struct rc_data_split {
   int64_t n_val;
 } rc_data_split;
 
+/* A random subset of count of the n samples 0..n-1 (count <= n): perm (n
+ * entries) becomes a Fisher-Yates permutation driven by PCG32 seeded with
+ * `seed` on stream 0, whose first count entries are then sorted ascending.
+ * The subset depends only on (n, count, seed). */
+RC_API void rc_data_subset(int64_t *perm, int64_t n, int64_t count, uint64_t seed);
+
 RC_API rc_status rc_data_split_init(rc_data_split *out, int64_t n, double val_fraction, uint64_t seed,
                              rc_err *e);
 RC_API void rc_data_split_free(rc_data_split *s);

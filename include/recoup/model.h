@@ -12,6 +12,7 @@
 #include <stdint.h>
 
 #include "recoup/export.h"
+#include "recoup/rules.h"
 #include "recoup/status.h"
 #include "recoup/tensor.h"
 
@@ -49,6 +50,18 @@ RC_API rc_status rc_model_save(rc_model *m, const char *path, const int *changed
 
 /* The path the model was loaded from. */
 RC_API const char *rc_model_path(const rc_model *m);
+/* Size in bytes of the file the model was loaded from. */
+RC_API int64_t rc_model_file_bytes(const rc_model *m);
+/* The file's ONNX IR version and default-domain opset. */
+RC_API int64_t rc_model_ir_version(const rc_model *m);
+RC_API int rc_model_opset(const rc_model *m);
+
+/* The value of a metadata_props entry of the model, or NULL when it has
+ * none (points into the model). */
+RC_API const char *rc_model_metadata(const rc_model *m, const char *key);
+/* Set (replace or append) a metadata_props entry, written with the model by
+ * rc_model_save. */
+RC_API rc_status rc_model_edit_set_metadata(rc_model *m, const char *key, const char *value, rc_err *e);
 
 /* ---- Inputs and outputs ---------------------------------------------- */
 
@@ -68,6 +81,31 @@ RC_API int rc_model_n_outputs(const rc_model *m);
 RC_API rc_status rc_model_input(const rc_model *m, int i, rc_model_io *out, rc_err *e);
 RC_API rc_status rc_model_output(const rc_model *m, int i, rc_model_io *out, rc_err *e);
 
+/* What the file declares for input or output i: element type (0 when it
+ * declares none), shape (rank -1 when it declares none; a dim -1 where
+ * symbolic or unknown) and the names of symbolic dims ("N"), NULL where
+ * not given (strings point into the model). */
+typedef struct rc_io_decl {
+  const char *name; /* rc_model_declared: the input's or output's name */
+  rc_dtype dtype;
+  int rank;
+  int64_t dims[RC_MAX_RANK];
+  const char *dim_names[RC_MAX_RANK];
+} rc_io_decl;
+
+RC_API rc_status rc_model_declared(const rc_model *m, int is_output, int i, rc_io_decl *d, rc_err *e);
+
+/* The declared input shapes with every symbolic or unknown dim taken as b
+ * (no shape: rank 0): one per input into out, data NULL. Counts are quoted
+ * at b = 1. */
+RC_API void rc_model_batch_inputs(const rc_model *m, int64_t b, rc_tensor *out);
+
+/* The shapes of every output (rc_model_n_outputs entries into out, data
+ * NULL) when the inputs have the shapes in `inputs` (one per graph input,
+ * data ignored): what running the model on such a batch gives. Errors name
+ * the node whose shapes do not fit. */
+RC_API rc_status rc_model_output_shapes(const rc_model *m, const rc_tensor *inputs, rc_tensor *out, rc_err *e);
+
 /* ---- Counts ------------------------------------------------------------ */
 
 typedef struct rc_model_summary {
@@ -80,6 +118,12 @@ typedef struct rc_model_summary {
 } rc_model_summary;
 
 RC_API rc_status rc_model_summarize(const rc_model *m, rc_model_summary *out, rc_err *e);
+
+/* Entries of float and integer weight initializers (as summary.params). */
+RC_API int64_t rc_model_params(const rc_model *m);
+/* Multiply-accumulates at batch 1 (as summary.macs); fails with the reason
+ * when the model does not plan. */
+RC_API rc_status rc_model_macs(const rc_model *m, int64_t *macs, rc_err *e);
 
 typedef struct rc_model_op_count {
   const char *op_type;
@@ -122,9 +166,33 @@ typedef struct rc_model_grid {
   int axis;                 /* -1 for per-tensor */
   int64_t n_scale;
   float scale_min, scale_max;
+  const float *scale; /* the n_scale scales (point into the model) */
 } rc_model_grid;
 
 RC_API rc_status rc_model_grids(const rc_model *m, rc_model_grid **out, int *n, rc_err *e);
+
+/* rc_range_source, rc_int_range and rc_range_source_name: recoup/rules.h. */
+
+/* The integer range of every grid of rc_model_grids (same order) into out
+ * (one allocation, rc_model_list_free). Errors name the file and the
+ * metadata entry or tensor at fault. */
+RC_API rc_status rc_model_grid_ranges(const rc_model *m, rc_int_range **out, int *n, rc_err *e);
+
+/* The zero points of grid i of rc_model_grids, one per scale (n_scale
+ * int64 into out; 0 where the grid has none). */
+RC_API rc_status rc_model_grid_zero_points(const rc_model *m, int i, int64_t *out, rc_err *e);
+
+/* rc_mask_mode and rc_mask_choice (what an exact zero in a weight means to
+ * distill): recoup/rules.h. */
+
+/* "auto", "zeros", "none"; parse returns 1 for one of them, else 0. */
+RC_API const char *rc_mask_mode_name(rc_mask_mode m);
+RC_API int rc_mask_mode_parse(const char *s, rc_mask_mode *m);
+
+/* The decision under `mode` for every weight of rc_model_weights (same
+ * order; rule NULL for biases, normalisation and affine parameters) into
+ * out (one allocation, rc_model_list_free). */
+RC_API rc_status rc_model_masks(const rc_model *m, rc_mask_mode mode, rc_mask_choice **out, int *n, rc_err *e);
 
 /* Frees a list returned above; safe on NULL. */
 RC_API void rc_model_list_free(void *list);

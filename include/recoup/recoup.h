@@ -10,6 +10,8 @@
  *                      quantization grids) and save models
  *   recoup/data.h      read .npy, .npz, IDX and TensorProto files; turn them
  *                      into float inputs and checked labels; dataset views
+ *   recoup/pairing.h   which teacher tensors feature terms match with which
+ *                      student tensors
  *   recoup/eval.h      run a model over a dataset: accuracy, agreement and
  *                      KL against a reference model, all outputs
  *   recoup/distill.h   fine-tune a student against its teacher: settings with
@@ -22,6 +24,8 @@
  *   recoup/parallel.h  the processes sharing a run (MPI ranks)
  *   recoup/prune.h     magnitude, N:M and channel pruning of a dense model
  *   recoup/quantize.h  post-training quantization into a QDQ model
+ *   recoup/parallel.h  the ranks of an MPI job (or one process): joining,
+ *                      rank and host, messages between ranks
  *   recoup/status.h    rc_status codes and rc_err, the message of a failure
  *   recoup/util.h      escaping names for printing, refusing outputs that are
  *                      inputs, atomic file writes, figures to 4 digits
@@ -67,6 +71,7 @@
 #include "recoup/export.h"
 #include "recoup/model.h"
 #include "recoup/outputs.h"
+#include "recoup/pairing.h"
 #include "recoup/parallel.h"
 #include "recoup/prune.h"
 #include "recoup/quantize.h"

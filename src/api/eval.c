@@ -1,12 +1,14 @@
 /* recoup/eval.h: a model planned at one batch size, run over a dataset,
  * its outputs gathered and its first output measured. */
+#include "recoup/eval.h"
+
 #include <string.h>
 
+#include "api/eval_outputs.h"
 #include "core/alloc.h"
 #include "core/status.h"
 #include "onnx/model.h"
 #include "plan/plan.h"
-#include "recoup/eval.h"
 #include "train/evaluate.h"
 
 #define EVAL_MAX_OUTPUTS 64
@@ -14,6 +16,16 @@
 void rc_eval_settings_init(rc_eval_settings *s) {
   memset(s, 0, sizeof *s);
   s->batch = 64;
+  s->ignore_label = RC_EVAL_DEFAULT_IGNORE_LABEL;
+}
+
+void rc__eval_batch_shapes(rc_tensor *shapes, const rc_dataset *d, int64_t batch) {
+  for (int i = 0; i < d->n_inputs; i++) {
+    shapes[i] = d->inputs[i];
+    shapes[i].data = NULL;
+    shapes[i].dims[0] = batch;
+    if (d->to_float[i]) shapes[i].dtype = RC_DTYPE_FLOAT; /* converted per batch (rc_dataset_convert) */
+  }
 }
 
 /* A model planned for batch b with every output gathered over d. */
@@ -36,11 +48,7 @@ static rc_status eval_run_model(eval_run *r, rc_model *m, const rc_dataset *d, i
   if (g->n_outputs > EVAL_MAX_OUTPUTS)
     return rc__fail(e, RC_ERR_UNSUPPORTED, "%s: more than %d outputs", m->path, EVAL_MAX_OUTPUTS);
   rc_tensor shapes[RC_DATASET_MAX_INPUTS];
-  for (int i = 0; i < d->n_inputs; i++) {
-    shapes[i] = d->inputs[i];
-    shapes[i].data = NULL;
-    shapes[i].dims[0] = batch;
-  }
+  rc__eval_batch_shapes(shapes, d, batch);
   RC_TRY(rc_plan_init(&r->plan, g, shapes, NULL, e));
   for (int j = 0; j < g->n_outputs; j++) {
     const rc_tensor *t = rc_plan_tensor(r->plan, g->outputs[j]);
@@ -93,7 +101,9 @@ static rc_status eval_both(rc_eval_result *res, eval_run *r, eval_run *rr, rc_mo
   int64_t batch = s->batch < d->n ? s->batch : d->n;
   RC_TRY(eval_run_model(r, m, d, batch, e));
   res->classes = classes_of(r, m);
-  if (d->labels || ref) {
+  if (s->per_output || s->n_output_terms > 0) {
+    RC_TRY(rc__eval_outputs(&res->metrics, m, ref, d, batch, s, e));
+  } else if (d->labels || ref) {
     RC_TRY(need_logits(r, m, e));
     const float *ref_logits = NULL;
     if (ref) {
@@ -125,6 +135,11 @@ rc_status rc_eval_run(rc_eval_result *res, rc_model *m, rc_model *ref, const rc_
   eval_run_free(&rr);
   if (st != RC_OK) rc_eval_result_free(res);
   return st;
+}
+
+rc_status rc_eval_metrics(rc_metrics *m, const float *logits, const int32_t *labels, const float *ref_logits,
+                          int64_t n, int64_t k, rc_err *e) {
+  return rc__metrics_compute(m, logits, labels, ref_logits, n, k, e);
 }
 
 void rc_eval_result_free(rc_eval_result *r) {

@@ -4,6 +4,7 @@
 
 #include "core/alloc.h"
 #include "core/status.h"
+#include "onnx/io_decl.h"
 #include "onnx/model.h"
 #include "plan/count.h"
 #include "plan/inspect.h"
@@ -11,6 +12,37 @@
 #include "recoup/model.h"
 
 const char *rc_model_path(const rc_model *m) { return m->path; }
+
+int64_t rc_model_file_bytes(const rc_model *m) { return (int64_t)m->file_bytes; }
+
+int64_t rc_model_ir_version(const rc_model *m) { return m->graph.ir_version; }
+
+int rc_model_opset(const rc_model *m) { return m->graph.opset; }
+
+int64_t rc_model_params(const rc_model *m) { return rc__graph_params(&m->graph); }
+
+rc_status rc_model_macs(const rc_model *m, int64_t *macs, rc_err *e) {
+  rc_err local = {0};
+  *macs = rc__graph_macs_batch1(&m->graph, e ? e : &local);
+  if (*macs >= 0) return RC_OK;
+  return e ? e->code : local.code;
+}
+
+rc_status rc_model_declared(const rc_model *m, int is_output, int i, rc_io_decl *d, rc_err *e) {
+  const rc_graph *g = &m->graph;
+  int n = is_output ? g->n_outputs : g->n_inputs;
+  if (i < 0 || i >= n)
+    return rc__fail(e, RC_ERR_INVALID, "%s: %s %d requested, the model has %d", m->path,
+                    is_output ? "output" : "input", i, n);
+  const char *name = g->values[is_output ? g->outputs[i] : g->inputs[i]].name;
+  RC_TRY(rc_model_io_decl(m, is_output, i, name, d, e));
+  d->name = name;
+  return RC_OK;
+}
+
+void rc_model_batch_inputs(const rc_model *m, int64_t b, rc_tensor *out) {
+  rc__input_shapes_declared(&m->graph, b, out);
+}
 
 int rc_model_n_inputs(const rc_model *m) { return m->graph.n_inputs; }
 
@@ -43,6 +75,18 @@ rc_status rc_model_output(const rc_model *m, int i, rc_model_io *out, rc_err *e)
   if (rc__plan_batch1(&p, g, &ignored) == RC_OK) {
     out->shape = *rc_plan_tensor(p, g->outputs[i]);
     out->shape.data = NULL;
+  }
+  rc_plan_free(p);
+  return RC_OK;
+}
+
+rc_status rc_model_output_shapes(const rc_model *m, const rc_tensor *inputs, rc_tensor *out, rc_err *e) {
+  const rc_graph *g = &m->graph;
+  rc_plan *p = NULL;
+  RC_TRY(rc_plan_init(&p, g, inputs, NULL, e));
+  for (int j = 0; j < g->n_outputs; j++) {
+    out[j] = *rc_plan_tensor(p, g->outputs[j]);
+    out[j].data = NULL;
   }
   rc_plan_free(p);
   return RC_OK;
@@ -158,6 +202,7 @@ rc_status rc_model_grids(const rc_model *m, rc_model_grid **out, int *n, rc_err 
     r[i].dtype = gi[i].dtype;
     r[i].axis = gi[i].axis;
     r[i].n_scale = gi[i].n_scale;
+    r[i].scale = gi[i].scale;
     r[i].scale_min = r[i].scale_max = gi[i].n_scale ? gi[i].scale[0] : 0;
     for (int64_t k = 1; k < gi[i].n_scale; k++) {
       if (gi[i].scale[k] < r[i].scale_min) r[i].scale_min = gi[i].scale[k];

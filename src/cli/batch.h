@@ -16,7 +16,7 @@
 #include "cli/cli.h"
 #include "recoup/status.h"
 
-struct rc_dist; /* train/dist.h */
+struct rc_dist; /* recoup/parallel.h */
 
 typedef struct batch_args {
   const char *manifest, *report;

@@ -21,8 +21,7 @@
 #include "cli/batch.h"
 #include "cli/cli.h"
 #include "cli/report.h"
-#include "core/alloc.h"
-#include "train/dist.h"
+#include "recoup/parallel.h"
 
 #define STDOUT_MAX (4 << 20) /* a distill --json result is a few kilobytes */
 
@@ -317,19 +316,19 @@ static void collect_ranks(batch *b) {
     size_t got = 0;
     rc_status s = rc_dist_recv(b->dist, from, TAG_DONE, done, 3, &e);
     if (s == RC_OK && (done[2] < 0 || done[2] > 2 * (int64_t)STDOUT_MAX))
-      s = rc__fail(&e, RC_ERR_INVALID, "it announced %lld bytes of results", (long long)done[2]);
-    if (s == RC_OK && !(text = rc__malloc((size_t)done[2] + 1))) s = rc__fail(&e, RC_ERR_NOMEM, "out of memory");
+      s = rc_err_set(&e, RC_ERR_INVALID, "it announced %lld bytes of results", (long long)done[2]);
+    if (s == RC_OK && !(text = malloc((size_t)done[2] + 1))) s = rc_err_set(&e, RC_ERR_NOMEM, "out of memory");
     if (s == RC_OK) s = rc_dist_recv_bytes(b->dist, from, TAG_OUT, text, (size_t)done[2], &got, &e);
     int i = b->rank_run[from];
     if (i < 0) { /* not busy with a job of ours: nothing to finish */
-      rc__free(text);
+      free(text);
       continue;
     }
     run *r = &b->runs[i];
     b->rank_run[from] = RANK_FREE;
-    if (s == RC_OK && done[0] != i) s = rc__fail(&e, RC_ERR_INVALID, "it answered for another job");
+    if (s == RC_OK && done[0] != i) s = rc_err_set(&e, RC_ERR_INVALID, "it answered for another job");
     if (s != RC_OK) {
-      rc__free(text);
+      free(text);
       b->rank_run[from] = RANK_LOST;
       r->state = R_DONE;
       r->wall = cli_batch_now() - r->started;
@@ -342,7 +341,7 @@ static void collect_ranks(batch *b) {
       continue;
     }
     text[got] = '\0';
-    rc__free(r->out_text);
+    free(r->out_text);
     r->out_text = text;
     r->out_n = got;
     finish_job(b, r, (int)done[1]);
@@ -458,7 +457,8 @@ static int run_here(batch *b, run *r) {
 /* Run the job a TAG_JOB message names and send rank 0 its outcome. */
 static rc_status serve_job(batch *b, const int64_t msg[4], rc_err *e) {
   if (msg[1] < 0 || msg[1] >= b->m.n_jobs)
-    return rc__fail(e, RC_ERR_INVALID, "rank 0 named job %lld, which the manifest does not have", (long long)msg[1]);
+    return rc_err_set(e, RC_ERR_INVALID, "rank 0 named job %lld, which the manifest does not have",
+                      (long long)msg[1]);
   run r;
   memset(&r, 0, sizeof r);
   r.job = &b->m.jobs[msg[1]];
@@ -470,7 +470,7 @@ static rc_status serve_job(batch *b, const int64_t msg[4], rc_err *e) {
   done[2] = (int64_t)r.out_n;
   rc_status s = rc_dist_send(b->dist, 0, TAG_DONE, done, 3, e);
   if (s == RC_OK) s = rc_dist_send_bytes(b->dist, 0, TAG_OUT, r.out_text ? r.out_text : "", r.out_n, e);
-  rc__free(r.out_text);
+  free(r.out_text);
   return s;
 }
 

@@ -74,7 +74,7 @@ void cli_log_stderr(void *user, rc_log_level level, const char *msg);
 extern volatile sig_atomic_t cli_stop_requested;
 void cli_catch_stop_signals(void);
 
-/* The ranks of an MPI job this process belongs to (train/dist.h): set once
+/* The ranks of an MPI job this process belongs to (recoup/parallel.h): set once
  * by main before any command runs, NULL-safe everywhere (one process). */
 struct rc_dist;
 struct rc_dist *cli_dist(void);

@@ -6,10 +6,6 @@
 #include <unistd.h>
 
 #include "cli/cli.h"
-#include "core/alloc.h"
-#include "core/rng.h"
-#include "onnx/model.h"
-#include "plan/plan.h"
 
 const char *cli_data_file(const char *arg) {
   const char *eq = strchr(arg, '=');
@@ -52,13 +48,13 @@ int cli_data_option(cli_data_opts *o, const char *cmd, const char *name, const c
   return 0;
 }
 
-/* "NAME=FILE" when NAME is one of the graph's inputs; else the whole text is a path. */
-static int split_named(const rc_graph *g, const char *arg, const char **file) {
+/* "NAME=FILE" when NAME is one of the model's inputs; else the whole text is a path. */
+static int split_named(const rc_model_io *inputs, int n_inputs, const char *arg, const char **file) {
   const char *eq = strchr(arg, '=');
   *file = arg;
   if (!eq) return -1;
-  for (int i = 0; i < g->n_inputs; i++) {
-    const char *name = g->values[g->inputs[i]].name;
+  for (int i = 0; i < n_inputs; i++) {
+    const char *name = inputs[i].name;
     if (strlen(name) == (size_t)(eq - arg) && !strncmp(name, arg, (size_t)(eq - arg))) {
       *file = eq + 1;
       return i;
@@ -70,10 +66,11 @@ static int split_named(const rc_graph *g, const char *arg, const char **file) {
 /* Float inputs are not converted here: the dataset view converts each batch
  * (rc_dataset_convert), so memory holds the file's own dtype, or nothing at
  * all for a mapped .npy. */
-static rc_status prepare_input(cli_samples *s, int i, const rc_value *input, const cli_data_opts *o, const char *file,
-                               rc_err *e) {
+static rc_status prepare_input(cli_samples *s, int i, const rc_model_io *input, const cli_data_opts *o,
+                               const char *file, rc_err *e) {
   rc_array *a = &s->inputs[i];
-  if (input->decl.dtype == RC_DTYPE_FLOAT) {
+  const rc_tensor *decl = &input->shape;
+  if (decl->dtype == RC_DTYPE_FLOAT) {
     if (rc_dtype_size(a->t.dtype) == 0 || a->t.dtype == RC_DTYPE_STRING)
       return rc_err_set(e, RC_ERR_SHAPE, "%s: input '%s' takes float, the file holds %s", file, input->name,
                       rc_dtype_name(a->t.dtype));
@@ -84,16 +81,16 @@ static rc_status prepare_input(cli_samples *s, int i, const rc_value *input, con
               "warning: %s holds uint8 pixels and the model records no preprocessing: input '%s' gets 0..255 "
               "unscaled (give --scale, e.g. 0.00392156862745098 for 0..1, if it was trained on scaled inputs)\n",
               file, input->name);
-  } else if (a->t.dtype != input->decl.dtype) {
+  } else if (a->t.dtype != decl->dtype) {
     return rc_err_set(e, RC_ERR_SHAPE, "%s: input '%s' takes %s, the file holds %s", file, input->name,
-                    rc_dtype_name(input->decl.dtype), rc_dtype_name(a->t.dtype));
+                      rc_dtype_name(decl->dtype), rc_dtype_name(a->t.dtype));
   }
-  if (input->decl.rank >= 1) {
-    rc_tensor sample = {a->t.dtype, input->decl.rank - 1, {0}, NULL};
+  if (decl->rank >= 1) {
+    rc_tensor sample = {a->t.dtype, decl->rank - 1, {0}, NULL};
     int concrete = 1;
-    for (int d = 1; d < input->decl.rank; d++) {
-      sample.dims[d - 1] = input->decl.dims[d];
-      if (input->decl.dims[d] < 0) concrete = 0;
+    for (int d = 1; d < decl->rank; d++) {
+      sample.dims[d - 1] = decl->dims[d];
+      if (decl->dims[d] < 0) concrete = 0;
     }
     if (concrete && rc_data_fit(a, &sample, e) != RC_OK)
       return rc_err_prefix(e, "%s: input '%s'", file, input->name);
@@ -160,29 +157,31 @@ static rc_status read_named_array(rc_array *a, const char *file, const char *nam
 }
 
 rc_status cli_samples_load(cli_samples *s, const cli_data_opts *o, const rc_model *m, rc_err *e) {
-  const rc_graph *g = &m->graph;
   memset(s, 0, sizeof *s);
-  if (g->n_inputs > CLI_MAX_DATA)
-    return rc_err_set(e, RC_ERR_UNSUPPORTED, "%s: more than %d inputs", g->path, CLI_MAX_DATA);
-  s->n_inputs = g->n_inputs;
+  const char *path = rc_model_path(m);
+  int n_inputs = rc_model_n_inputs(m);
+  if (n_inputs > CLI_MAX_DATA)
+    return rc_err_set(e, RC_ERR_UNSUPPORTED, "%s: more than %d inputs", path, CLI_MAX_DATA);
+  s->n_inputs = n_inputs;
+  rc_model_io inputs[CLI_MAX_DATA];
+  for (int i = 0; i < n_inputs; i++) RC_TRY(rc_model_input(m, i, &inputs[i], e));
   const char *files[CLI_MAX_DATA] = {0};
   for (int i = 0; i < o->n_data; i++) {
     const char *file;
-    int idx = split_named(g, o->data[i], &file);
+    int idx = split_named(inputs, n_inputs, o->data[i], &file);
     if (idx < 0) {
-      if (o->n_data != 1 || g->n_inputs != 1)
+      if (o->n_data != 1 || n_inputs != 1)
         return rc_err_set(e, RC_ERR_INVALID,
-                        "%s has %d inputs: give each as --data NAME=FILE ('%s' names none of them)",
-                        g->path, g->n_inputs, o->data[i]);
+                          "%s has %d inputs: give each as --data NAME=FILE ('%s' names none of them)", path,
+                          n_inputs, o->data[i]);
       idx = 0;
     }
-    if (files[idx])
-      return rc_err_set(e, RC_ERR_INVALID, "input '%s' is given twice", g->values[g->inputs[idx]].name);
+    if (files[idx]) return rc_err_set(e, RC_ERR_INVALID, "input '%s' is given twice", inputs[idx].name);
     files[idx] = file;
   }
-  for (int i = 0; i < g->n_inputs; i++) {
-    const rc_value *input = &g->values[g->inputs[i]];
-    if (!files[i]) return rc_err_set(e, RC_ERR_INVALID, "no --data for input '%s' of %s", input->name, g->path);
+  for (int i = 0; i < n_inputs; i++) {
+    const rc_model_io *input = &inputs[i];
+    if (!files[i]) return rc_err_set(e, RC_ERR_INVALID, "no --data for input '%s' of %s", input->name, path);
     if (cli_is_image_source(files[i]))
       RC_TRY(cli_images_load(s, &s->inputs[i], o, input, files[i], e));
     else
@@ -235,7 +234,7 @@ rc_status cli_samples_first_batch(rc_array *out, const cli_samples *s, int64_t b
     t.dims[0] = k;
     if (s->convert[i]) t.dtype = RC_DTYPE_FLOAT;
     size_t nb = rc_tensor_nbytes(&t);
-    out[i].owned = rc__malloc(nb ? nb : 1);
+    out[i].owned = malloc(nb ? nb : 1);
     if (!out[i].owned) return rc_err_set(e, RC_ERR_NOMEM, "out of memory for one batch");
     t.data = out[i].owned;
     out[i].t = t;
@@ -257,38 +256,36 @@ rc_status cli_samples_dataset(rc_dataset *d, const cli_samples *s, const int64_t
   return RC_OK;
 }
 
-rc_status cli_output_classes(const rc_model *m, const cli_samples *s, int64_t *k, rc_err *e) {
-  const rc_graph *g = &m->graph;
+rc_status cli_first_output_shape(const rc_model *m, const cli_samples *s, rc_tensor *first, rc_err *e) {
   rc_tensor shapes[CLI_MAX_DATA];
   cli_samples_shapes(s, 1, shapes);
-  rc_plan *p = NULL;
-  RC_TRY(rc_plan_init(&p, g, shapes, NULL, e));
-  const rc_tensor *t = rc_plan_tensor(p, g->outputs[0]);
-  rc_status st = RC_OK;
-  if (t->dtype != RC_DTYPE_FLOAT || t->rank != 2)
-    st = rc_err_set(e, RC_ERR_SHAPE, "%s: labels need a float (N, classes) first output; '%s' has rank %d", g->path,
-                  g->values[g->outputs[0]].name, t->rank);
-  else
-    *k = t->dims[1];
-  rc_plan_free(p);
+  rc_tensor *outs = malloc(sizeof *outs * (size_t)(rc_model_n_outputs(m) + 1));
+  if (!outs) return rc_err_set(e, RC_ERR_NOMEM, "out of memory");
+  rc_status st = rc_model_output_shapes(m, shapes, outs, e);
+  if (st == RC_OK) *first = outs[0];
+  free(outs);
   return st;
 }
 
-static int ascending(const void *a, const void *b) {
-  int64_t x = *(const int64_t *)a, y = *(const int64_t *)b;
-  return (x > y) - (x < y);
+rc_status cli_output_classes(const rc_model *m, const cli_samples *s, int64_t *k, rc_err *e) {
+  rc_tensor t;
+  RC_TRY(cli_first_output_shape(m, s, &t, e));
+  if (t.dtype == RC_DTYPE_FLOAT && t.rank == 2) {
+    *k = t.dims[1];
+    return RC_OK;
+  }
+  rc_model_io first;
+  RC_TRY(rc_model_output(m, 0, &first, e));
+  return rc_err_set(e, RC_ERR_SHAPE, "%s: labels need a float (N, classes) first output; '%s' has rank %d",
+                    rc_model_path(m), first.name, t.rank);
 }
 
 rc_status cli_samples_dataset_limit(rc_dataset *d, const cli_samples *s, int64_t limit, uint64_t seed, rc_err *e) {
   if (limit <= 0 || limit >= s->n) return cli_samples_dataset(d, s, NULL, 0, e);
-  int64_t *perm = rc__malloc(sizeof(int64_t) * (size_t)s->n);
+  int64_t *perm = malloc(sizeof(int64_t) * (size_t)s->n);
   if (!perm) return rc_err_set(e, RC_ERR_NOMEM, "out of memory for %lld sample indices", (long long)s->n);
-  for (int64_t i = 0; i < s->n; i++) perm[i] = i;
-  rc_rng r;
-  rc__rng_seed(&r, seed, 0);
-  rc__rng_shuffle_i64(&r, perm, s->n);
-  qsort(perm, (size_t)limit, sizeof *perm, ascending);
+  rc_data_subset(perm, s->n, limit, seed);
   rc_status st = cli_samples_dataset(d, s, perm, limit, e);
-  rc__free(perm);
+  free(perm);
   return st;
 }

@@ -3,7 +3,6 @@
 #ifndef RC_CLI_DATA_H
 #define RC_CLI_DATA_H
 
-#include "ir/ir.h"
 #include "recoup/data.h"
 #include "recoup/image.h"
 #include "recoup/model.h"
@@ -68,9 +67,8 @@ void cli_data_opts_init(cli_data_opts *o);
  * options not given take the recorded values, with a note saying so; given
  * ones win, with a note where they differ. record: store the options in
  * effect in m, to be written with it. */
-struct rc_model;
-rc_status cli_prep_apply(cli_data_opts *o, const struct rc_model *m, rc_err *e);
-rc_status cli_prep_record(struct rc_model *m, const cli_data_opts *o, rc_err *e);
+rc_status cli_prep_apply(cli_data_opts *o, const rc_model *m, rc_err *e);
+rc_status cli_prep_record(rc_model *m, const cli_data_opts *o, rc_err *e);
 /* The normalisation for a source of dtype `source`: given options, else the
  * recorded ones for integer sources, else none; mean/std are filled (the
  * norm points at them). Notes on stderr say what was used. */
@@ -91,7 +89,7 @@ void cli_samples_free(cli_samples *s);
 int cli_is_image_source(const char *file);
 /* Decode the image set at file into a (N, C, H, W) uint8 array for input, with
  * labels from folders or the list when o->labels says "folders"/"list". */
-rc_status cli_images_load(cli_samples *s, rc_array *out, const cli_data_opts *o, const rc_value *input,
+rc_status cli_images_load(cli_samples *s, rc_array *out, const cli_data_opts *o, const rc_model_io *input,
                           const char *file, rc_err *e);
 /* "--labels folders|list" for loaded images: take the set's labels. */
 int cli_images_labels_word(const char *labels);
@@ -99,6 +97,8 @@ rc_status cli_images_take_labels(cli_samples *s, int64_t n_classes, rc_err *e);
 /* Class names and skipped images into a --json object (nothing without images). */
 struct cJSON;
 void cli_images_json(struct cJSON *root, const cli_samples *s);
+/* The first output's shape for a batch of one of these samples. */
+rc_status cli_first_output_shape(const rc_model *m, const cli_samples *s, rc_tensor *first, rc_err *e);
 /* Number of classes: the width of the first output, planned at batch 1. */
 rc_status cli_output_classes(const rc_model *m, const cli_samples *s, int64_t *k, rc_err *e);
 /* Tensor shapes for planning at batch b (dims[0] = b). */

@@ -31,9 +31,9 @@ static const char *printable(const char *s, char *buf, size_t n) {
   return buf;
 }
 
-static rc_status input_prep(rc_image_prep *p, const rc_value *input, const cli_data_opts *o, const char *file,
+static rc_status input_prep(rc_image_prep *p, const rc_model_io *input, const cli_data_opts *o, const char *file,
                             rc_err *e) {
-  const rc_tensor *d = &input->decl;
+  const rc_tensor *d = &input->shape;
   if (d->rank != 4)
     return rc_err_set(e, RC_ERR_SHAPE, "%s: images feed (N, C, H, W) inputs; input '%s' has rank %d", file, input->name,
                     d->rank);
@@ -72,7 +72,7 @@ static void print_summary(const cli_samples *s, const rc_image_prep *p, const ch
             s->decoded.n_skipped == 1 ? "" : "s");
 }
 
-rc_status cli_images_load(cli_samples *s, rc_array *out, const cli_data_opts *o, const rc_value *input,
+rc_status cli_images_load(cli_samples *s, rc_array *out, const cli_data_opts *o, const rc_model_io *input,
                           const char *file, rc_err *e) {
   if (s->from_images)
     return rc_err_set(e, RC_ERR_UNSUPPORTED, "%s: one input only can be a folder or list of images", file);

@@ -70,15 +70,3 @@ void cli_outputs_metrics_json(cJSON *o, const rc_metrics *m) {
   number_or_null(o, "miou_labels", m->miou_labels);
   number_or_null(o, "value_mad", m->value_mad);
 }
-
-rc_status cli_outputs_eval(rc_metrics *m, cli_outputs *o, rc_model *model, rc_model *ref, const cli_samples *s,
-                           int64_t batch, const char *labels_path, rc_err *e) {
-  rc_tensor shapes[CLI_MAX_DATA];
-  cli_samples_shapes(s, batch, shapes);
-  rc_dataset d;
-  memset(&d, 0, sizeof d);
-  rc_status st = cli_samples_dataset(&d, s, NULL, 0, e);
-  if (st == RC_OK) st = rc_output_set_eval(m, o, model, ref, shapes, s->n_inputs, &d, labels_path, e);
-  rc_dataset_free(&d);
-  return st;
-}

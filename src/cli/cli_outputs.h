@@ -33,10 +33,4 @@ void cli_outputs_table_header(void);
 void cli_outputs_table_row(const char *name, const rc_metrics *m);
 void cli_outputs_metrics_json(struct cJSON *o, const rc_metrics *m);
 
-/* eval with per-output figures (rc_output_set_eval): `model` against `ref`
- * (NULL: against itself, for label figures alone) over every sample of s,
- * planned at `batch`. Value outputs are named with a regression term, e.g.
- * --output-loss boxes=smooth-l1. labels_path: dense labels, or NULL. */
-rc_status cli_outputs_eval(rc_metrics *m, cli_outputs *o, rc_model *model, rc_model *ref,
-                           const cli_samples *s, int64_t batch, const char *labels_path, rc_err *e);
 #endif

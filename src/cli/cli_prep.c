@@ -8,7 +8,7 @@
 
 #include "cli/cli.h"
 #include "cli/cli_data.h"
-#include "onnx/model.h"
+#include "recoup/model.h"
 
 #define KEY_SCALE "recoup.input.scale"
 #define KEY_MEAN "recoup.input.mean"
@@ -40,7 +40,7 @@ static rc_status read_floats(const rc_model *m, const char *key, const char *nam
   const char *t = rc_model_metadata(m, key);
   if (!t) return RC_OK;
   if (*t && rc_data_parse_floats(t, rec, CLI_MAX_CHANNELS, nrec, e) != RC_OK)
-    return rc_err_prefix(e, "%s: metadata '%s'", m->path, key);
+    return rc_err_prefix(e, "%s: metadata '%s'", rc_model_path(m), key);
   if (*nrec) add_text(text, cap, " --%s %s", name, t);
   if (given && !same_floats(v, n, rec, *nrec)) add_text(differs, cap, " --%s %s", name, *t ? t : "(none)");
   return RC_OK;
@@ -53,9 +53,10 @@ rc_status cli_prep_apply(cli_data_opts *o, const rc_model *m, rc_err *e) {
   float s = 0;
   int ns = 0;
   if (rc_data_parse_floats(scale, &s, 1, &ns, e) != RC_OK || ns != 1 || s == 0)
-    return rc_err_set(e, RC_ERR_FORMAT, "%s: metadata '%s' is '%s', not one non-zero number", m->path, KEY_SCALE, scale);
+    return rc_err_set(e, RC_ERR_FORMAT, "%s: metadata '%s' is '%s', not one non-zero number", rc_model_path(m),
+                      KEY_SCALE, scale);
   o->recorded = 1;
-  o->rec_model = m->path;
+  o->rec_model = rc_model_path(m);
   o->rec_scale = s;
   o->rec_text[0] = '\0';
   add_text(o->rec_text, sizeof o->rec_text, " --%s %s", "scale", scale);
@@ -68,7 +69,8 @@ rc_status cli_prep_apply(cli_data_opts *o, const rc_model *m, rc_err *e) {
   if (resize) {
     long r = 0;
     if (cli_parse_int(resize, 1, 1 << 15, &r))
-      return rc_err_set(e, RC_ERR_FORMAT, "%s: metadata '%s' is '%s', not a size in pixels", m->path, KEY_RESIZE, resize);
+      return rc_err_set(e, RC_ERR_FORMAT, "%s: metadata '%s' is '%s', not a size in pixels", rc_model_path(m),
+                        KEY_RESIZE, resize);
     add_text(o->rec_text, sizeof o->rec_text, " --%s %s", "resize", resize);
     if (!o->given_resize)
       o->resize = (int)r; /* only images are resized */
@@ -76,8 +78,9 @@ rc_status cli_prep_apply(cli_data_opts *o, const rc_model *m, rc_err *e) {
       add_text(differs, sizeof differs, " --%s %s", "resize", resize);
   }
   if (*differs)
-    fprintf(stderr, "note: the command line differs from the preprocessing recorded in %s (%s ); the command line wins\n",
-            m->path, differs);
+    fprintf(stderr,
+            "note: the command line differs from the preprocessing recorded in %s (%s ); the command line wins\n",
+            rc_model_path(m), differs);
   return RC_OK;
 }
 

@@ -13,8 +13,8 @@
 #include <unistd.h>
 
 #include "cli/cli.h"
+#include "recoup/parallel.h"
 #include "recoup/util.h"
-#include "train/dist.h"
 
 int cli_fail(const rc_err *e) {
   char buf[4 * sizeof e->msg], where[RC_DIST_MAX_HOST + 64] = "";

@@ -12,9 +12,8 @@
 #include "cli/cli.h"
 #include "cli/manifest.h"
 #include "cli/report.h"
-#include "core/alloc.h"
-#include "core/path.h"
-#include "train/dist.h"
+#include "recoup/parallel.h"
+#include "recoup/util.h"
 
 static void usage(FILE *f) {
   fprintf(f,
@@ -173,7 +172,7 @@ void cli_batch_write_reports(batch *b) {
 /* Select this shard's jobs; with --resume, take the records of finished jobs
  * whose outputs are unchanged. */
 static rc_status plan_runs(batch *b, rc_err *e) {
-  b->runs = rc__calloc((size_t)b->m.n_jobs, sizeof *b->runs);
+  b->runs = calloc((size_t)b->m.n_jobs + 1, sizeof *b->runs);
   if (!b->runs) return rc_err_set(e, RC_ERR_NOMEM, "out of memory");
   for (int i = 0; i < b->m.n_jobs; i++) {
     if (i % b->a->shard_n != b->a->shard_k - 1) continue;
@@ -200,8 +199,8 @@ static rc_status plan_runs(batch *b, rc_err *e) {
 static rc_status check_outputs(const batch *b, rc_err *e) {
   int n = 1;
   for (int i = 0; i < b->m.n_jobs; i++) n += b->m.jobs[i].n_inputs + 1;
-  const char **inputs = rc__calloc((size_t)n, sizeof *inputs);
-  const char **names = rc__calloc((size_t)b->m.n_jobs + 1, sizeof *names);
+  const char **inputs = calloc((size_t)n, sizeof *inputs);
+  const char **names = calloc((size_t)b->m.n_jobs + 1, sizeof *names);
   rc_status s = RC_OK;
   if (!inputs || !names) s = rc_err_set(e, RC_ERR_NOMEM, "out of memory");
   if (s == RC_OK) {
@@ -213,18 +212,19 @@ static rc_status check_outputs(const batch *b, rc_err *e) {
       inputs[n++] = b->m.jobs[i].out; /* an output, but a report file must not replace it either */
     }
     if (b->a->report) s = cli_report_refuse_inputs(b->a->report, names, b->m.n_jobs, inputs, NULL, n, e);
-    else s = rc__path_refuse_inputs("state file", b->state_path, inputs, NULL, n, e);
+    else
+      s = rc_path_refuse_inputs("state file", b->state_path, inputs, NULL, n, e);
   }
-  rc__free(inputs);
-  rc__free(names);
+  free(inputs);
+  free(names);
   return s;
 }
 
 /* Under mpirun: ranks 1..N-1 free to take jobs. */
 static rc_status prepare_ranks(batch *b, rc_err *e) {
   int n = rc_dist_size(b->dist);
-  b->rank_run = rc__malloc(sizeof *b->rank_run * (size_t)n);
-  if (!b->rank_run) return rc__fail(e, RC_ERR_NOMEM, "out of memory");
+  b->rank_run = malloc(sizeof *b->rank_run * (size_t)n);
+  if (!b->rank_run) return rc_err_set(e, RC_ERR_NOMEM, "out of memory");
   for (int w = 0; w < n; w++) b->rank_run[w] = RANK_FREE;
   b->rank_run[0] = RANK_LOST; /* rank 0 coordinates and runs no job */
   return RC_OK;
@@ -293,12 +293,12 @@ out:
     cli_batch_release_ranks(&b);
     cli_dist_agreed_exit(); /* every rank was told the batch is over: no need to abort them */
   }
-  rc__free(b.rank_run);
+  free(b.rank_run);
   for (int i = 0; i < b.n_runs; i++) {
     cJSON_Delete(b.runs[i].record);
-    rc__free(b.runs[i].out_text);
+    free(b.runs[i].out_text);
   }
-  rc__free(b.runs);
+  free(b.runs);
   cJSON_Delete(b.state);
   cli_manifest_free(&b.m);
   return rc;
@@ -310,14 +310,14 @@ static int run_on_ranks(batch_args *a) {
   rc_dist *d = cli_dist();
   if (rc_dist_size(d) <= 1) return run_batch(a, NULL);
   rc_err e = {0};
-  char *hosts = rc__calloc((size_t)rc_dist_size(d), RC_DIST_MAX_HOST);
-  if (!hosts) rc__fail(&e, RC_ERR_NOMEM, "out of memory"); /* the job aborts: the others wait in rc_dist_hosts */
+  char *hosts = calloc((size_t)rc_dist_size(d), RC_DIST_MAX_HOST);
+  if (!hosts) rc_err_set(&e, RC_ERR_NOMEM, "out of memory"); /* the job aborts: the others wait in rc_dist_hosts */
   if (!hosts || rc_dist_hosts(d, hosts, &e) != RC_OK) {
-    rc__free(hosts);
+    free(hosts);
     return cli_fail(&e);
   }
   int rc = rc_dist_rank(d) == 0 ? run_batch(a, hosts) : cli_batch_serve(a, d);
-  rc__free(hosts);
+  free(hosts);
   return rc;
 }
 

@@ -691,7 +691,7 @@ int rc_cmd_distill(int argc, char **argv) {
   if (cli_prep_apply(&a.data, student, &e) != RC_OK) goto out;
   if (!a.data.recorded && cli_prep_apply(&a.data, teacher, &e) != RC_OK) goto out;
   if (cli_synth_count(a.data.data[0]) > 0 ? synth_samples(&train, &a, teacher, &e) != RC_OK
-                                          : cli_samples_load(&train, &a.data, student, &e) != RC_OK)
+                                           : cli_samples_load(&train, &a.data, student, &e) != RC_OK)
     goto out;
   if (a.n_val_data && load_val(&val, &a, student, &e) != RC_OK) goto out;
   rc_output_side side, val_side;

@@ -7,12 +7,9 @@
 #include "cli/cli.h"
 #include "cli/cli_data.h"
 #include "cli/cli_outputs.h"
-#include "core/alloc.h"
-#include "core/fmt.h"
-#include "data/npy_write.h"
-#include "plan/load.h"
-#include "plan/plan.h"
-#include "train/evaluate.h"
+#include "recoup/eval.h"
+#include "recoup/model.h"
+#include "recoup/util.h"
 
 static void usage(FILE *f) {
   fprintf(f,
@@ -54,8 +51,19 @@ typedef struct eval_args {
   cli_data_opts data;
   long batch, threads;
   int json;
-  cli_outputs outs;
+  const char *terms[RC_EVAL_OUTPUTS_MAX]; /* --output-loss, checked */
+  int n_terms;
+  long ignore;
 } eval_args;
+
+static int add_term(eval_args *a, const char *text) {
+  if (a->n_terms == RC_EVAL_OUTPUTS_MAX)
+    return cli_usage_error("eval", "at most %d --output-loss terms", RC_EVAL_OUTPUTS_MAX);
+  rc_err e = {0};
+  if (rc_eval_output_term_check(text, &e) != RC_OK) return cli_usage_error("eval", "%s", e.msg);
+  a->terms[a->n_terms++] = text;
+  return 0;
+}
 
 static int parse_args(eval_args *a, int argc, char **argv) {
   static const struct option longopts[] = {
@@ -69,7 +77,7 @@ static int parse_args(eval_args *a, int argc, char **argv) {
       {"help", no_argument, NULL, 'h'},        {NULL, 0, NULL, 0}};
   memset(a, 0, sizeof *a);
   cli_data_opts_init(&a->data);
-  cli_outputs_init(&a->outs);
+  a->ignore = RC_EVAL_DEFAULT_IGNORE_LABEL;
   a->batch = 64;
   int c;
   optind = 1;
@@ -96,9 +104,11 @@ static int parse_args(eval_args *a, int argc, char **argv) {
           return cli_usage_error("eval", "--threads expects a count, got '%s'", optarg);
         break;
       case 'j': a->json = 1; break;
-      case 'L': if (cli_outputs_add_spec(&a->outs, "eval", optarg)) return RC_EXIT_USAGE; break;
+      case 'L':
+        if (add_term(a, optarg)) return RC_EXIT_USAGE;
+        break;
       case 'I':
-        if (cli_parse_int(optarg, -2147483647L, 2147483647L, &a->outs.ignore))
+        if (cli_parse_int(optarg, -2147483647L, 2147483647L, &a->ignore))
           return cli_usage_error("eval", "--ignore-label expects an integer, got '%s'", optarg);
         break;
       case 'h': usage(stdout); return -1;
@@ -114,61 +124,6 @@ static int parse_args(eval_args *a, int argc, char **argv) {
       return cli_usage_error("eval", "--out must end in .npy or .npz");
   }
   return 0;
-}
-
-/* A model planned at batch b with every output collected over the samples. */
-typedef struct run_result {
-  rc_model *model;
-  rc_plan *plan;
-  void *outs[64];
-  int n_outs;
-} run_result;
-
-static void run_result_free(run_result *r) {
-  for (int i = 0; i < r->n_outs; i++) rc__free(r->outs[i]);
-  rc_plan_free(r->plan);
-  rc_model_free(r->model);
-  memset(r, 0, sizeof *r);
-}
-
-/* r->model is loaded already (or is loaded here when NULL). */
-static rc_status run_model(run_result *r, const char *path, const cli_samples *s, int64_t batch,
-                           const rc_dataset *d, rc_err *e) {
-  if (!r->model) RC_TRY(rc_model_load(&r->model, path, NULL, e));
-  const rc_graph *g = &r->model->graph;
-  if (g->n_inputs != s->n_inputs)
-    return rc_err_set(e, RC_ERR_SHAPE, "%s has %d inputs, the data %d", path, g->n_inputs, s->n_inputs);
-  if (g->n_outputs > 64) return rc_err_set(e, RC_ERR_UNSUPPORTED, "%s: more than 64 outputs", path);
-  rc_tensor shapes[CLI_MAX_DATA];
-  cli_samples_shapes(s, batch, shapes);
-  RC_TRY(rc_plan_init(&r->plan, g, shapes, NULL, e));
-  for (int j = 0; j < g->n_outputs; j++) {
-    const rc_tensor *t = rc_plan_tensor(r->plan, g->outputs[j]);
-    if (t->rank < 1 || t->dims[0] != batch)
-      return rc_err_set(e, RC_ERR_SHAPE, "%s: output '%s' does not have the batch as its first axis", path,
-                      g->values[g->outputs[j]].name);
-    size_t per = rc_tensor_nbytes(t) / (size_t)batch;
-    r->outs[j] = rc__malloc(per * (size_t)s->n + 1);
-    if (!r->outs[j]) return rc_err_set(e, RC_ERR_NOMEM, "out of memory for the outputs of %s", path);
-    r->n_outs = j + 1;
-  }
-  return rc__run_dataset(r->plan, d, g->outputs, g->n_outputs, r->outs, e);
-}
-
-/* (N, K) view of the first output, or an error when it is not float (N, K). */
-static rc_status logits_of(const run_result *r, int64_t *k, rc_err *e) {
-  const rc_graph *g = &r->model->graph;
-  const rc_tensor *t = rc_plan_tensor(r->plan, g->outputs[0]);
-  if (t->dtype != RC_DTYPE_FLOAT || t->rank != 2)
-    return rc_err_set(e, RC_ERR_SHAPE, "%s: accuracy needs a float (N, classes) first output; '%s' is %s of rank %d",
-                    g->path, g->values[g->outputs[0]].name, rc_dtype_name(t->dtype), t->rank);
-  *k = t->dims[1];
-  return RC_OK;
-}
-
-static int first_output_is_logits(const run_result *r) {
-  const rc_tensor *t = rc_plan_tensor(r->plan, r->model->graph.outputs[0]);
-  return t->dtype == RC_DTYPE_FLOAT && t->rank == 2;
 }
 
 static void print_outputs_result(const eval_args *a, const cli_samples *s, const rc_metrics *m) {
@@ -197,18 +152,10 @@ static void print_outputs_result(const eval_args *a, const cli_samples *s, const
   cli_outputs_table_row(a->ref ? "model vs reference" : "model", m);
 }
 
-static rc_status write_outputs(const run_result *r, const char *path, int64_t n, rc_err *e) {
-  const rc_graph *g = &r->model->graph;
-  rc_tensor ts[64];
-  const char *names[64];
-  for (int j = 0; j < g->n_outputs; j++) {
-    ts[j] = *rc_plan_tensor(r->plan, g->outputs[j]);
-    ts[j].dims[0] = n;
-    ts[j].data = r->outs[j];
-    names[j] = g->values[g->outputs[j]].name;
-  }
-  if (!strcmp(path + strlen(path) - 4, ".npy")) return rc_npy_write(path, &ts[0], e);
-  return rc_npz_write(path, names, ts, g->n_outputs, e);
+/* X.npy: the first output; X.npz: every output by name. */
+static rc_status write_outputs(const rc_eval_result *r, const char *path, rc_err *e) {
+  if (!strcmp(path + strlen(path) - 4, ".npy")) return rc_npy_write(path, &r->outputs[0], e);
+  return rc_npz_write(path, r->names, r->outputs, r->n_outputs, e);
 }
 
 static void print_result(const eval_args *a, const cli_samples *s, const rc_metrics *m, int64_t k) {
@@ -246,7 +193,7 @@ static void print_result(const eval_args *a, const cli_samples *s, const rc_metr
     printf("reference        %s\n", cli_esc(a->ref, nb, sizeof nb));
     printf("top-1 agreement  %.2f%%\n", 100 * m->agreement);
     char kl[32];
-    printf("mean KL(ref||model) %s\n", rc__fmt_sig(kl, sizeof kl, m->kl, RC_FMT_SIG, 0));
+    printf("mean KL(ref||model) %s\n", rc_fmt_sig(kl, sizeof kl, m->kl, RC_FMT_SIG, 0));
   }
   if (a->out) printf("outputs written  %s\n", cli_esc(a->out, nb, sizeof nb));
 }
@@ -262,6 +209,37 @@ static rc_status check_output_path(const eval_args *a, rc_err *e) {
   return cli_check_output("--out", a->out, inputs, labels, n, e);
 }
 
+/* 1 when the first output is float (N, K) logits; *k gets K. */
+static rc_status first_output_logits(const rc_model *m, const cli_samples *s, int *logits, int64_t *k, rc_err *e) {
+  rc_tensor t;
+  RC_TRY(cli_first_output_shape(m, s, &t, e));
+  *logits = t.dtype == RC_DTYPE_FLOAT && t.rank == 2;
+  *k = *logits ? t.dims[1] : 0;
+  return RC_OK;
+}
+
+/* Figures per output (class maps, values) against the reference and dense labels. */
+static rc_status eval_per_output(rc_eval_result *r, const eval_args *a, rc_model *model, rc_model *ref,
+                                 const rc_dataset *d, rc_err *e) {
+  rc_array labels = {0};
+  if (a->data.labels) RC_TRY(rc_array_read(&labels, a->data.labels, NULL, 0, e));
+  rc_eval_settings es;
+  rc_eval_settings_init(&es);
+  es.batch = a->batch;
+  es.keep_outputs = a->out != NULL;
+  es.per_output = 1;
+  es.output_terms = a->terms;
+  es.n_output_terms = a->n_terms;
+  es.dense_labels = a->data.labels ? &labels : NULL;
+  es.dense_labels_name = a->data.labels;
+  es.ignore_label = (int32_t)a->ignore;
+  es.terms_label = "--output-loss";
+  es.labels_label = "--labels";
+  rc_status st = rc_eval_run(r, model, ref, d, &es, e);
+  rc_array_free(&labels);
+  return st;
+}
+
 int rc_cmd_eval(int argc, char **argv) {
   eval_args a;
   int pr = parse_args(&a, argc, argv);
@@ -270,53 +248,45 @@ int rc_cmd_eval(int argc, char **argv) {
   rc_err e = {0};
   cli_samples s;
   rc_dataset d;
+  rc_eval_result r;
   memset(&s, 0, sizeof s);
   memset(&d, 0, sizeof d);
-  run_result r = {0}, ref = {0};
-  int rc = RC_EXIT_FAIL;
-  if (a.out && check_output_path(&a, &e) != RC_OK) goto out;
-  if (rc_model_load(&r.model, a.model, NULL, &e) != RC_OK) goto out;
-  if (cli_prep_apply(&a.data, r.model, &e) != RC_OK) goto out;
-  if (cli_samples_load(&s, &a.data, r.model, &e) != RC_OK) goto out;
-  int64_t batch = a.batch < s.n ? a.batch : s.n;
-  if (cli_samples_dataset(&d, &s, NULL, 0, &e) != RC_OK) goto out;
-  if (run_model(&r, a.model, &s, batch, &d, &e) != RC_OK) goto out;
+  memset(&r, 0, sizeof r);
+  rc_model *model = NULL, *ref = NULL;
+  int rc = RC_EXIT_FAIL, logits = 0;
   int64_t k = 0;
-  rc_metrics m;
+  if (a.out && check_output_path(&a, &e) != RC_OK) goto out;
+  if (rc_model_load(&model, a.model, NULL, &e) != RC_OK) goto out;
+  if (cli_prep_apply(&a.data, model, &e) != RC_OK) goto out;
+  if (cli_samples_load(&s, &a.data, model, &e) != RC_OK) goto out;
   int want_metrics = a.data.labels || a.ref;
-  if (want_metrics && (a.outs.n || !first_output_is_logits(&r))) {
-    if (a.ref && rc_model_load(&ref.model, a.ref, NULL, &e) != RC_OK) goto out;
-    if (cli_outputs_eval(&m, &a.outs, r.model, ref.model, &s, batch, a.data.labels, &e) != RC_OK) goto out;
-    if (a.out && write_outputs(&r, a.out, s.n, &e) != RC_OK) goto out;
-    print_outputs_result(&a, &s, &m);
+  if (want_metrics && first_output_logits(model, &s, &logits, &k, &e) != RC_OK) goto out;
+  if (want_metrics && (a.n_terms || !logits)) {
+    if (a.ref && rc_model_load(&ref, a.ref, NULL, &e) != RC_OK) goto out;
+    if (cli_samples_dataset(&d, &s, NULL, 0, &e) != RC_OK) goto out;
+    if (eval_per_output(&r, &a, model, ref, &d, &e) != RC_OK) goto out;
+    if (a.out && write_outputs(&r, a.out, &e) != RC_OK) goto out;
+    print_outputs_result(&a, &s, &r.metrics);
     rc = RC_EXIT_OK;
     goto out;
   }
-  if (want_metrics) {
-    if (logits_of(&r, &k, &e) != RC_OK) goto out;
-    if (a.data.labels && cli_samples_load_labels(&s, a.data.labels, k, &e) != RC_OK) goto out;
-    const float *ref_logits = NULL;
-    if (a.ref) {
-      int64_t k2 = 0;
-      if (run_model(&ref, a.ref, &s, batch, &d, &e) != RC_OK || logits_of(&ref, &k2, &e) != RC_OK) goto out;
-      if (k2 != k) {
-        rc_err_set(&e, RC_ERR_SHAPE, "%s has %lld classes, %s %lld", a.model, (long long)k, a.ref, (long long)k2);
-        goto out;
-      }
-      ref_logits = ref.outs[0];
-    }
-    if (rc__metrics_compute(&m, r.outs[0], s.has_labels ? s.labels.t.data : NULL, ref_logits, s.n, k, &e) != RC_OK)
-      goto out;
-  }
-  if (a.out && write_outputs(&r, a.out, s.n, &e) != RC_OK) goto out;
-  print_result(&a, &s, want_metrics ? &m : NULL, k);
+  if (a.data.labels && cli_samples_load_labels(&s, a.data.labels, k, &e) != RC_OK) goto out;
+  if (cli_samples_dataset(&d, &s, NULL, 0, &e) != RC_OK) goto out;
+  if (a.ref && rc_model_load(&ref, a.ref, NULL, &e) != RC_OK) goto out;
+  rc_eval_settings es;
+  rc_eval_settings_init(&es);
+  es.batch = a.batch;
+  es.keep_outputs = a.out != NULL;
+  if (rc_eval_run(&r, model, ref, &d, &es, &e) != RC_OK) goto out;
+  if (a.out && write_outputs(&r, a.out, &e) != RC_OK) goto out;
+  print_result(&a, &s, want_metrics ? &r.metrics : NULL, want_metrics ? r.classes : 0);
   rc = RC_EXIT_OK;
 out:
   if (rc != RC_EXIT_OK) cli_fail(&e);
+  rc_eval_result_free(&r);
   rc_dataset_free(&d);
   cli_samples_free(&s);
-  run_result_free(&r);
-  run_result_free(&ref);
-  cli_outputs_free(&a.outs);
+  rc_model_free(model);
+  rc_model_free(ref);
   return rc;
 }

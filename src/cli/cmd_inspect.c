@@ -6,16 +6,8 @@
 
 #include "cli/cli.h"
 #include "cli/weight_rules.h"
-#include "core/alloc.h"
-#include "onnx/io_decl.h"
-#include "onnx/model.h"
-#include "plan/count.h"
-#include "plan/grid_range.h"
-#include "plan/inspect.h"
-#include "plan/load.h"
-#include "plan/mask_rule.h"
-#include "plan/plan.h"
-#include "train/pairing.h"
+#include "recoup/model.h"
+#include "recoup/pairing.h"
 
 static void usage(FILE *f) {
   fprintf(f,
@@ -47,19 +39,20 @@ typedef struct op_count {
   int n;
 } op_count;
 
-static int count_ops(const rc_graph *g, op_count *counts) {
+/* Nodes per op type (every domain together), in order of first appearance. */
+static int count_ops(const rc_model_op_count *c, int n_c, op_count *counts) {
   int n = 0;
-  for (int i = 0; i < g->n_nodes; i++) {
+  for (int i = 0; i < n_c; i++) {
     int k = 0;
-    while (k < n && strcmp(counts[k].op, g->nodes[i].op_type)) k++;
-    if (k == n) counts[n++] = (op_count){g->nodes[i].op_type, 0};
-    counts[k].n++;
+    while (k < n && strcmp(counts[k].op, c[i].op_type)) k++;
+    if (k == n) counts[n++] = (op_count){c[i].op_type, 0};
+    counts[k].n += c[i].count;
   }
   return n;
 }
 
-static const char *role_name(rc_weight_role r) {
-  return r == RC_ROLE_BIAS ? "bias" : r == RC_ROLE_NORM ? "norm" : r == RC_ROLE_AFFINE ? "affine" : "weight";
+static const char *role_name(rc_weight_kind r) {
+  return r == RC_WEIGHT_BIAS ? "bias" : r == RC_WEIGHT_NORM ? "norm" : r == RC_WEIGHT_AFFINE ? "affine" : "weight";
 }
 
 static cJSON *shape_json(const rc_tensor *t) {
@@ -80,38 +73,52 @@ typedef struct io_shape {
 /* The first symbolic dim name of the inputs ("N"): how the computed batch
  * axis is written. */
 static const char *batch_name(const rc_model *m) {
-  const rc_graph *g = &m->graph;
-  for (int i = 0; i < g->n_inputs; i++) {
+  for (int i = 0; i < rc_model_n_inputs(m); i++) {
     rc_io_decl d;
-    if (rc_model_io_decl(m, 0, 0, g->values[g->inputs[i]].name, &d, NULL) != RC_OK) continue;
+    rc_err ignored;
+    if (rc_model_declared(m, 0, i, &d, &ignored) != RC_OK) continue;
     for (int k = 0; k < d.rank; k++)
       if (d.dim_names[k]) return d.dim_names[k];
   }
   return "?";
 }
 
+/* Output shapes of m for its declared inputs with symbolic dims taken as b;
+ * NULL (pe set) when it does not plan. Free with free(). */
+static rc_tensor *outputs_at(const rc_model *m, int64_t b, rc_err *pe) {
+  rc_tensor *ins = calloc((size_t)rc_model_n_inputs(m) + 1, sizeof *ins);
+  rc_tensor *outs = calloc((size_t)rc_model_n_outputs(m) + 1, sizeof *outs);
+  if (ins && outs) {
+    rc_model_batch_inputs(m, b, ins);
+    if (rc_model_output_shapes(m, ins, outs, pe) == RC_OK) {
+      free(ins);
+      return outs;
+    }
+  }
+  free(ins);
+  free(outs);
+  return NULL;
+}
+
 /* Outputs the file leaves undeclared: plan at batch 1 and 2; dims that
  * follow the batch are written with the inputs' symbolic name. */
 static void io_shapes(const rc_model *m, int is_output, io_shape *out, int n, rc_err *pe) {
-  const rc_graph *g = &m->graph;
-  const int *vals = is_output ? g->outputs : g->inputs;
   int need = 0;
   for (int i = 0; i < n; i++) {
+    rc_err ignored;
     memset(&out[i], 0, sizeof out[i]);
-    rc_model_io_decl(m, is_output, i, g->values[vals[i]].name, &out[i].d, NULL);
+    rc_model_declared(m, is_output, i, &out[i].d, &ignored);
     if (is_output && (!out[i].d.dtype || out[i].d.rank < 0)) need = 1;
   }
   if (!need) return;
-  rc_tensor *s1 = rc__batch_inputs(g, 1), *s2 = rc__batch_inputs(g, 2);
-  rc_plan *p1 = NULL, *p2 = NULL;
   rc_err e2 = {0};
-  if (s1 && s2 && rc_plan_init(&p1, g, s1, NULL, pe) == RC_OK) {
-    if (rc_plan_init(&p2, g, s2, NULL, &e2) != RC_OK) p2 = NULL;
+  rc_tensor *o1 = outputs_at(m, 1, pe), *o2 = o1 ? outputs_at(m, 2, &e2) : NULL;
+  if (o1) {
     const char *bn = batch_name(m);
     for (int i = 0; i < n; i++) {
       rc_io_decl *d = &out[i].d;
       if (d->dtype && d->rank >= 0) continue;
-      const rc_tensor *t1 = rc_plan_tensor(p1, vals[i]), *t2 = p2 ? rc_plan_tensor(p2, vals[i]) : NULL;
+      const rc_tensor *t1 = &o1[i], *t2 = o2 ? &o2[i] : NULL;
       out[i].computed = 1;
       if (!d->dtype) d->dtype = t1->dtype;
       if (d->rank < 0) {
@@ -130,10 +137,8 @@ static void io_shapes(const rc_model *m, int is_output, io_shape *out, int n, rc
     for (int i = 0; i < n; i++)
       if (!out[i].d.dtype || out[i].d.rank < 0) out[i].why = pe->msg[0] ? pe->msg : "out of memory";
   }
-  rc_plan_free(p1);
-  rc_plan_free(p2);
-  rc__free(s1);
-  rc__free(s2);
+  free(o1);
+  free(o2);
 }
 
 /* "float32 (N, 10)", "(computed)" appended where the planner supplied it. */
@@ -154,15 +159,12 @@ static const char *io_text(const io_shape *s, char *buf, size_t n) {
   return buf;
 }
 
-static cJSON *io_json(const rc_model *m, int is_output, const io_shape *sh) {
-  const rc_graph *g = &m->graph;
-  const int *vals = is_output ? g->outputs : g->inputs;
-  int n = is_output ? g->n_outputs : g->n_inputs;
+static cJSON *io_json(const io_shape *sh, int n) {
   cJSON *arr = cJSON_CreateArray();
   for (int i = 0; i < n; i++) {
     const rc_io_decl *d = &sh[i].d;
     cJSON *o = cJSON_CreateObject();
-    cJSON_AddStringToObject(o, "name", g->values[vals[i]].name);
+    cJSON_AddStringToObject(o, "name", d->name);
     if (d->dtype) cJSON_AddStringToObject(o, "dtype", rc_dtype_name(d->dtype));
     else cJSON_AddNullToObject(o, "dtype");
     if (d->rank >= 0) {
@@ -179,120 +181,82 @@ static cJSON *io_json(const rc_model *m, int is_output, const io_shape *sh) {
   return arr;
 }
 
-static double zero_point_at(const rc_grid_info *gi, int64_t i) {
-  return gi->zero_point && gi->zero_point->data ? (double)rc__int_at(gi->zero_point, i) : 0.0;
-}
-
-/* What distill would decide for each weight and grid. */
-typedef struct grid_facts {
+/* Everything inspect shows about one model. */
+typedef struct facts {
+  io_shape *ins, *outs;
+  int n_ins, n_outs;
+  op_count *ops;
+  int n_ops, n_nodes;
+  int64_t params, macs;
+  const char *macs_why;
+  rc_model_weight *w;
+  int n_w;
   rc_mask_mode mode;
   rc_mask_choice *masks; /* per weight; rule NULL for biases and normalisation */
+  rc_model_grid *gr;
+  int n_gr;
   rc_int_range *ranges;  /* per grid */
-} grid_facts;
+  int64_t **zero_points; /* per grid, n_scale each */
+} facts;
 
-static const rc_grid_info *grid_of_value(const rc_grid_info *gr, int n_gr, int v) {
-  for (int i = 0; i < n_gr; i++)
-    if (gr[i].is_weight && gr[i].value == v) return &gr[i];
-  return NULL;
-}
-
-static rc_status decide(const rc_model *m, const rc_weight_info *w, int n_w, const rc_grid_info *gr, int n_gr,
-                        grid_facts *f, rc_err *e) {
-  const rc_graph *g = &m->graph;
-  rc_file_notes notes;
-  RC_TRY(rc__file_notes_parse(&notes, rc_model_metadata(m, RC_RANGES_METADATA),
-                              rc_model_metadata(m, RC_PRUNED_METADATA), g->path, e));
-  rc_status s = RC_OK;
-  f->masks = rc__calloc((size_t)n_w + 1, sizeof *f->masks);
-  f->ranges = rc__calloc((size_t)n_gr + 1, sizeof *f->ranges);
-  if (!f->masks || !f->ranges) s = rc_err_set(e, RC_ERR_NOMEM, "out of memory");
-  for (int i = 0; s == RC_OK && i < n_gr; i++) {
-    s = rc__grid_range(g, &notes, gr[i].is_weight ? gr[i].value : -1, gr[i].dtype, g->values[gr[i].value].name,
-                       &f->ranges[i], e);
-    int q = g->values[gr[i].value].producer; /* a float weight quantized at run time */
-    if (s == RC_OK && !gr[i].is_weight && q >= 0 && !strcmp(g->nodes[q].op_type, "QuantizeLinear") &&
-        f->ranges[i].source == RC_RANGE_DTYPE)
-      rc__grid_range_of_float_weight(g, q, &f->ranges[i]);
-  }
-  for (int i = 0; s == RC_OK && i < n_w; i++) {
-    if (w[i].role != RC_ROLE_WEIGHT) continue;
-    const rc_value *v = &g->values[w[i].value];
-    const rc_grid_info *q = w[i].quantized ? grid_of_value(gr, n_gr, w[i].value) : NULL;
-    int64_t channels = 1, inner = 1;
-    if (q && q->axis >= 0) {
-      channels = q->n_scale;
-      for (int d = q->axis + 1; d < v->decl.rank; d++) inner *= v->decl.dims[d];
-    }
-    rc__mask_choose(f->mode, &notes, v->name, &v->decl, q != NULL, q ? q->zero_point : NULL, channels, inner,
-                    &f->masks[i]);
-  }
-  rc__file_notes_free(&notes);
-  return s;
-}
-
-static void print_json(const rc_model *m, const io_shape *ins, const io_shape *outs, const op_count *ops, int n_ops,
-                       const rc_weight_info *w, int n_w, const rc_grid_info *gr, int n_gr, int64_t macs,
-                       const grid_facts *f) {
-  const rc_graph *g = &m->graph;
+static void print_json(const rc_model *m, const facts *f) {
   cJSON *root = cJSON_CreateObject();
-  cJSON_AddStringToObject(root, "model", m->path);
-  cJSON_AddNumberToObject(root, "file_bytes", (double)m->file_bytes);
-  cJSON_AddNumberToObject(root, "ir_version", (double)g->ir_version);
-  cJSON_AddNumberToObject(root, "opset", g->opset);
-  cJSON_AddItemToObject(root, "inputs", io_json(m, 0, ins));
-  cJSON_AddItemToObject(root, "outputs", io_json(m, 1, outs));
+  cJSON_AddStringToObject(root, "model", rc_model_path(m));
+  cJSON_AddNumberToObject(root, "file_bytes", (double)rc_model_file_bytes(m));
+  cJSON_AddNumberToObject(root, "ir_version", (double)rc_model_ir_version(m));
+  cJSON_AddNumberToObject(root, "opset", rc_model_opset(m));
+  cJSON_AddItemToObject(root, "inputs", io_json(f->ins, f->n_ins));
+  cJSON_AddItemToObject(root, "outputs", io_json(f->outs, f->n_outs));
   cJSON *jops = cJSON_AddObjectToObject(root, "ops");
-  for (int i = 0; i < n_ops; i++) cJSON_AddNumberToObject(jops, ops[i].op, ops[i].n);
-  cJSON_AddNumberToObject(root, "nodes", g->n_nodes);
-  cJSON_AddNumberToObject(root, "parameters", (double)rc__graph_params(g));
-  if (macs >= 0)
-    cJSON_AddNumberToObject(root, "macs_batch_1", (double)macs);
+  for (int i = 0; i < f->n_ops; i++) cJSON_AddNumberToObject(jops, f->ops[i].op, f->ops[i].n);
+  cJSON_AddNumberToObject(root, "nodes", f->n_nodes);
+  cJSON_AddNumberToObject(root, "parameters", (double)f->params);
+  if (f->macs >= 0)
+    cJSON_AddNumberToObject(root, "macs_batch_1", (double)f->macs);
   else
     cJSON_AddNullToObject(root, "macs_batch_1");
   cJSON *jw = cJSON_AddArrayToObject(root, "weights");
-  for (int i = 0; i < n_w; i++) {
-    const rc_value *v = &g->values[w[i].value];
+  for (int i = 0; i < f->n_w; i++) {
+    const rc_model_weight *w = &f->w[i];
     cJSON *o = cJSON_CreateObject();
-    cJSON_AddStringToObject(o, "name", v->name);
-    cJSON_AddStringToObject(o, "layer", g->nodes[w[i].node].label);
-    cJSON_AddStringToObject(o, "role", role_name(w[i].role));
-    cJSON_AddStringToObject(o, "dtype", rc_dtype_name(v->decl.dtype));
-    cJSON_AddItemToObject(o, "shape", shape_json(&v->decl));
-    cJSON_AddNumberToObject(o, "zeros", (double)w[i].zeros);
-    cJSON_AddNumberToObject(o, "total", (double)w[i].numel);
-    cJSON_AddNumberToObject(o, "sparsity", w[i].numel ? (double)w[i].zeros / (double)w[i].numel : 0);
-    if (w[i].nm_m) {
+    cJSON_AddStringToObject(o, "name", w->name);
+    cJSON_AddStringToObject(o, "layer", w->layer);
+    cJSON_AddStringToObject(o, "role", role_name(w->kind));
+    cJSON_AddStringToObject(o, "dtype", rc_dtype_name(w->shape.dtype));
+    cJSON_AddItemToObject(o, "shape", shape_json(&w->shape));
+    cJSON_AddNumberToObject(o, "zeros", (double)w->zeros);
+    cJSON_AddNumberToObject(o, "total", (double)w->numel);
+    cJSON_AddNumberToObject(o, "sparsity", w->sparsity);
+    if (w->nm_m) {
       char nm[16];
-      snprintf(nm, sizeof nm, "%d:%d", w[i].nm_n, w[i].nm_m);
+      snprintf(nm, sizeof nm, "%d:%d", w->nm_n, w->nm_m);
       cJSON_AddStringToObject(o, "pattern", nm);
     } else {
       cJSON_AddNullToObject(o, "pattern");
     }
-    cJSON_AddBoolToObject(o, "quantized", w[i].quantized);
+    cJSON_AddBoolToObject(o, "quantized", w->quantized);
     if (f->masks[i].rule) cJSON_AddItemToObject(o, "mask", cli_mask_json(&f->masks[i]));
     else cJSON_AddNullToObject(o, "mask");
     cJSON_AddItemToArray(jw, o);
   }
-  cJSON_AddStringToObject(root, "mask_mode", rc__mask_mode_name(f->mode));
+  cJSON_AddStringToObject(root, "mask_mode", rc_mask_mode_name(f->mode));
   cJSON *jg = cJSON_AddArrayToObject(root, "grids");
-  for (int i = 0; i < n_gr; i++) {
+  for (int i = 0; i < f->n_gr; i++) {
+    const rc_model_grid *g = &f->gr[i];
     cJSON *o = cJSON_CreateObject();
-    cJSON_AddStringToObject(o, "tensor", g->values[gr[i].value].name);
-    cJSON_AddStringToObject(o, "node", g->nodes[gr[i].node].label);
-    cJSON_AddStringToObject(o, "kind", gr[i].is_weight ? "weight" : "activation");
-    cJSON_AddStringToObject(o, "dtype", rc_dtype_name(gr[i].dtype));
-    if (gr[i].axis >= 0)
-      cJSON_AddNumberToObject(o, "axis", gr[i].axis);
+    cJSON_AddStringToObject(o, "tensor", g->tensor);
+    cJSON_AddStringToObject(o, "node", g->node);
+    cJSON_AddStringToObject(o, "kind", g->is_weight ? "weight" : "activation");
+    cJSON_AddStringToObject(o, "dtype", rc_dtype_name(g->dtype));
+    if (g->axis >= 0)
+      cJSON_AddNumberToObject(o, "axis", g->axis);
     else
       cJSON_AddNullToObject(o, "axis");
     cJSON *sc = cJSON_AddArrayToObject(o, "scale");
     cJSON *zp = cJSON_AddArrayToObject(o, "zero_point");
-    for (int64_t k = 0; k < gr[i].n_scale; k++) {
-      cJSON_AddItemToArray(sc, cJSON_CreateNumber(gr[i].scale ? gr[i].scale[k] : 0));
-      cJSON_AddItemToArray(zp, cJSON_CreateNumber(zero_point_at(&gr[i], gr[i].zero_point &&
-                                                                       rc_tensor_numel(gr[i].zero_point) > 1
-                                                                   ? k
-                                                                   : 0)));
+    for (int64_t k = 0; k < g->n_scale; k++) {
+      cJSON_AddItemToArray(sc, cJSON_CreateNumber(g->scale ? g->scale[k] : 0));
+      cJSON_AddItemToArray(zp, cJSON_CreateNumber((double)f->zero_points[i][k]));
     }
     cJSON_AddItemToObject(o, "range", cli_range_json(&f->ranges[i]));
     cJSON_AddItemToArray(jg, o);
@@ -303,141 +267,201 @@ static void print_json(const rc_model *m, const io_shape *ins, const io_shape *o
   cJSON_Delete(root);
 }
 
-static int name_width(const rc_graph *g, const int *vals, int n, int lo, int hi) {
+static int name_width(const io_shape *sh, int n, int lo, int hi) {
   int w = lo;
   for (int i = 0; i < n; i++) {
     char nb[512];
-    int len = cli_text_width(cli_esc(g->values[vals[i]].name, nb, sizeof nb));
+    int len = cli_text_width(cli_esc(sh[i].d.name, nb, sizeof nb));
     if (len > w) w = len;
   }
   return w < hi ? w : hi;
 }
 
-static void print_io(const char *title, const rc_graph *g, const int *vals, const io_shape *sh, int n, int width) {
+static void print_io(const char *title, const io_shape *sh, int n, int width) {
   for (int i = 0; i < n; i++) {
     char buf[512], nb[512];
     printf("%-11s ", i ? "" : title);
-    cli_print_cell(stdout, cli_esc(g->values[vals[i]].name, nb, sizeof nb), width);
+    cli_print_cell(stdout, cli_esc(sh[i].d.name, nb, sizeof nb), width);
     printf("  %s\n", io_text(&sh[i], buf, sizeof buf));
   }
 }
 
-static void print_tables(const rc_model *m, const io_shape *ins, const io_shape *outs, const op_count *ops,
-                         int n_ops, const rc_weight_info *w, int n_w, const rc_grid_info *gr, int n_gr, int64_t macs,
-                         const char *macs_why, const grid_facts *f) {
-  const rc_graph *g = &m->graph;
+static void print_grids(const facts *f) {
+  char nb[512];
+  printf("\n%-36s %-10s %-6s %-5s %-30s %s\n", "grid (integer tensor)", "kind", "dtype", "axis",
+         "integer range (from; used)", "scale / zero point");
+  for (int i = 0; i < f->n_gr; i++) {
+    const rc_model_grid *g = &f->gr[i];
+    const rc_int_range *r = &f->ranges[i];
+    char axis[16] = "-", rg[96], used[48] = "";
+    if (g->axis >= 0) snprintf(axis, sizeof axis, "%d", g->axis);
+    if (r->has_used) snprintf(used, sizeof used, "; [%lld, %lld]", (long long)r->used_lo, (long long)r->used_hi);
+    snprintf(rg, sizeof rg, "[%d, %d] (%s%s)", r->lo, r->hi, rc_range_source_name(r->source), used);
+    printf("%-36s %-10s %-6s %-5s %-30s ", cli_esc(g->tensor, nb, sizeof nb),
+           g->is_weight ? "weight" : "activation", rc_dtype_name(g->dtype), axis, rg);
+    double zp0 = g->n_scale ? (double)f->zero_points[i][0] : 0.0;
+    if (g->n_scale == 1)
+      printf("%.9g / %g\n", g->scale ? g->scale[0] : 0.0, zp0);
+    else
+      printf("%lld per-axis scales, first %.9g / %g\n", (long long)g->n_scale, g->scale ? g->scale[0] : 0.0, zp0);
+  }
+}
+
+static void print_tables(const rc_model *m, const facts *f) {
   char b1[64], b2[64], nb[512];
-  printf("model       %s (%s bytes)\n", cli_esc(m->path, nb, sizeof nb),
-         cli_group_digits((long long)m->file_bytes, b1, sizeof b1));
-  printf("format      ONNX IR version %lld, default-domain opset %d\n", (long long)g->ir_version, g->opset);
-  int iow = name_width(g, g->inputs, g->n_inputs, 8, 60);
-  int w2 = name_width(g, g->outputs, g->n_outputs, 8, 60);
+  printf("model       %s (%s bytes)\n", cli_esc(rc_model_path(m), nb, sizeof nb),
+         cli_group_digits((long long)rc_model_file_bytes(m), b1, sizeof b1));
+  printf("format      ONNX IR version %lld, default-domain opset %d\n", (long long)rc_model_ir_version(m),
+         rc_model_opset(m));
+  int iow = name_width(f->ins, f->n_ins, 8, 60);
+  int w2 = name_width(f->outs, f->n_outs, 8, 60);
   if (w2 > iow) iow = w2;
-  print_io("inputs", g, g->inputs, ins, g->n_inputs, iow);
-  print_io("outputs", g, g->outputs, outs, g->n_outputs, iow);
-  printf("nodes       %d:", g->n_nodes);
-  for (int i = 0; i < n_ops; i++) printf("%s %s %d", i ? "," : "", cli_esc(ops[i].op, nb, sizeof nb), ops[i].n);
-  printf("\nparameters  %s\n", cli_group_digits(rc__graph_params(g), b1, sizeof b1));
-  if (macs >= 0)
-    printf("MACs        %s per sample\n", cli_group_digits(macs, b2, sizeof b2));
+  print_io("inputs", f->ins, f->n_ins, iow);
+  print_io("outputs", f->outs, f->n_outs, iow);
+  printf("nodes       %d:", f->n_nodes);
+  for (int i = 0; i < f->n_ops; i++)
+    printf("%s %s %d", i ? "," : "", cli_esc(f->ops[i].op, nb, sizeof nb), f->ops[i].n);
+  printf("\nparameters  %s\n", cli_group_digits(f->params, b1, sizeof b1));
+  if (f->macs >= 0)
+    printf("MACs        %s per sample\n", cli_group_digits(f->macs, b2, sizeof b2));
   else
-    printf("MACs        unknown (%s)\n", cli_esc(macs_why, nb, sizeof nb));
-  if (n_w) {
+    printf("MACs        unknown (%s)\n", cli_esc(f->macs_why, nb, sizeof nb));
+  if (f->n_w) {
     printf("\n%-36s %-7s %-18s %13s %9s %7s  zeros under --mask %s\n", "weight", "role", "shape", "zeros/total",
-           "sparsity", "N:M", rc__mask_mode_name(f->mode));
-    for (int i = 0; i < n_w; i++) {
-      const rc_value *v = &g->values[w[i].value];
+           "sparsity", "N:M", rc_mask_mode_name(f->mode));
+    for (int i = 0; i < f->n_w; i++) {
+      const rc_model_weight *w = &f->w[i];
       char shape[96], frac[48], nm[16] = "-";
-      if (w[i].nm_m) snprintf(nm, sizeof nm, "%d:%d", w[i].nm_n, w[i].nm_m);
-      snprintf(frac, sizeof frac, "%lld/%lld", (long long)w[i].zeros, (long long)w[i].numel);
+      if (w->nm_m) snprintf(nm, sizeof nm, "%d:%d", w->nm_n, w->nm_m);
+      snprintf(frac, sizeof frac, "%lld/%lld", (long long)w->zeros, (long long)w->numel);
       char mk[160] = "-";
       if (f->masks[i].rule) cli_mask_text(&f->masks[i], mk, sizeof mk);
-      printf("%-36s %-7s %-18s %13s %8.1f%% %7s  %s%s\n", cli_esc(v->name, nb, sizeof nb), role_name(w[i].role),
-             rc_shape_str(&v->decl, shape, sizeof shape), frac,
-             w[i].numel ? 100.0 * (double)w[i].zeros / (double)w[i].numel : 0.0, nm, mk,
-             w[i].quantized ? "  (quantized)" : "");
+      printf("%-36s %-7s %-18s %13s %8.1f%% %7s  %s%s\n", cli_esc(w->name, nb, sizeof nb), role_name(w->kind),
+             rc_shape_str(&w->shape, shape, sizeof shape), frac,
+             w->numel ? 100.0 * (double)w->zeros / (double)w->numel : 0.0, nm, mk,
+             w->quantized ? "  (quantized)" : "");
     }
   }
-  if (n_gr) {
-    printf("\n%-36s %-10s %-6s %-5s %-30s %s\n", "grid (integer tensor)", "kind", "dtype", "axis",
-           "integer range (from; used)", "scale / zero point");
-    for (int i = 0; i < n_gr; i++) {
-      char axis[16] = "-", rg[96], used[48] = "";
-      if (gr[i].axis >= 0) snprintf(axis, sizeof axis, "%d", gr[i].axis);
-      if (f->ranges[i].has_used)
-        snprintf(used, sizeof used, "; [%lld, %lld]", (long long)f->ranges[i].used_lo, (long long)f->ranges[i].used_hi);
-      snprintf(rg, sizeof rg, "[%d, %d] (%s%s)", f->ranges[i].lo, f->ranges[i].hi,
-               rc_range_source_name(f->ranges[i].source), used);
-      printf("%-36s %-10s %-6s %-5s %-30s ", cli_esc(g->values[gr[i].value].name, nb, sizeof nb), gr[i].is_weight ? "weight" : "activation",
-             rc_dtype_name(gr[i].dtype), axis, rg);
-      if (gr[i].n_scale == 1)
-        printf("%.9g / %g\n", gr[i].scale ? gr[i].scale[0] : 0.0, zero_point_at(&gr[i], 0));
-      else
-        printf("%lld per-axis scales, first %.9g / %g\n", (long long)gr[i].n_scale,
-               gr[i].scale ? gr[i].scale[0] : 0.0, zero_point_at(&gr[i], 0));
-    }
+  if (f->n_gr) print_grids(f);
+}
+
+static const char *matched_by(const rc_model_pair *p) {
+  return p->given ? "given" : p->by_name ? "name" : "position";
+}
+
+static void print_pairs_json(const rc_model_pair *pairs, int n) {
+  cJSON *arr = cJSON_CreateArray();
+  for (int i = 0; i < n; i++) {
+    const rc_model_pair *p = &pairs[i];
+    cJSON *o = cJSON_CreateObject();
+    cJSON_AddStringToObject(o, "teacher", p->teacher);
+    cJSON_AddStringToObject(o, "student", p->student);
+    cJSON_AddItemToObject(o, "teacher_shape", shape_json(&p->teacher_shape));
+    cJSON_AddItemToObject(o, "student_shape", shape_json(&p->student_shape));
+    cJSON_AddStringToObject(o, "matched_by", matched_by(p));
+    cJSON_AddBoolToObject(o, "projector", p->projector);
+    cJSON_AddItemToArray(arr, o);
   }
+  char *text = cli_json_print(arr);
+  if (text) puts(text);
+  free(text);
+  cJSON_Delete(arr);
+}
+
+static void print_pairs_table(const rc_model_pair *pairs, int n) {
+  /* Columns as wide as their longest entry, so long names keep the table aligned. */
+  int wt = (int)strlen("teacher tensor"), ws = (int)strlen("student tensor"), wts = 5, wss = 5;
+  for (int i = 0; i < n; i++) {
+    const rc_model_pair *p = &pairs[i];
+    char nb[512], a[96];
+    int l = cli_text_width(cli_esc(p->teacher, nb, sizeof nb));
+    if (l > wt) wt = l;
+    if ((l = cli_text_width(cli_esc(p->student, nb, sizeof nb))) > ws) ws = l;
+    if ((l = (int)strlen(rc_shape_str(&p->teacher_shape, a, sizeof a))) > wts) wts = l;
+    if ((l = (int)strlen(rc_shape_str(&p->student_shape, a, sizeof a))) > wss) wss = l;
+  }
+  printf("%-*s  %-*s  %-*s  %-*s  %-8s  %s\n", wt, "teacher tensor", wts, "shape", ws, "student tensor", wss,
+         "shape", "matched", "projector");
+  for (int i = 0; i < n; i++) {
+    const rc_model_pair *p = &pairs[i];
+    char a[96], b[96], n1[512], n2[512];
+    cli_print_cell(stdout, cli_esc(p->teacher, n1, sizeof n1), wt);
+    printf("  %-*s  ", wts, rc_shape_str(&p->teacher_shape, a, sizeof a));
+    cli_print_cell(stdout, cli_esc(p->student, n2, sizeof n2), ws);
+    printf("  %-*s  %-8s  %s\n", wss, rc_shape_str(&p->student_shape, b, sizeof b), matched_by(p),
+           p->projector ? "yes" : "no");
+  }
+  if (!n) printf("no pairs: give them with --pair TEACHER_TENSOR=STUDENT_TENSOR\n");
 }
 
 static int inspect_pairs(const char *tpath, const char *spath, const char *const *pairs, int n_pairs, int json) {
   rc_err e = {0};
   rc_model *t = NULL, *s = NULL;
-  rc_pairing pg = {0};
-  rc_tensor *ins = NULL;
-  int rc = RC_EXIT_FAIL;
-  if (rc_model_load(&t, tpath, NULL, &e) != RC_OK || rc_model_load(&s, spath, NULL, &e) != RC_OK) goto out;
-  if (!(ins = rc__batch1_inputs(&s->graph))) goto out;
-  if (rc_pairing_init(&pg, &t->graph, &s->graph, ins, pairs, n_pairs, 1, &e) != RC_OK) goto out;
-  if (json) {
-    cJSON *arr = cJSON_CreateArray();
-    for (int i = 0; i < pg.n; i++) {
-      const rc_pair *p = &pg.pairs[i];
-      cJSON *o = cJSON_CreateObject();
-      cJSON_AddStringToObject(o, "teacher", t->graph.values[p->teacher].name);
-      cJSON_AddStringToObject(o, "student", s->graph.values[p->student].name);
-      cJSON_AddItemToObject(o, "teacher_shape", shape_json(&p->t_shape));
-      cJSON_AddItemToObject(o, "student_shape", shape_json(&p->s_shape));
-      cJSON_AddStringToObject(o, "matched_by", p->explicit_pair ? "given" : p->by_name ? "name" : "position");
-      cJSON_AddBoolToObject(o, "projector", rc_pair_needs_projector(p));
-      cJSON_AddItemToArray(arr, o);
-    }
-    char *text = cli_json_print(arr);
-    if (text) puts(text);
-    free(text);
-    cJSON_Delete(arr);
-  } else {
-    /* Columns as wide as their longest entry, so long names keep the table aligned. */
-    int wt = (int)strlen("teacher tensor"), ws = (int)strlen("student tensor"), wts = 5, wss = 5;
-    for (int i = 0; i < pg.n; i++) {
-      const rc_pair *p = &pg.pairs[i];
-      char nb[512], a[96];
-      int l = cli_text_width(cli_esc(t->graph.values[p->teacher].name, nb, sizeof nb));
-      if (l > wt) wt = l;
-      if ((l = cli_text_width(cli_esc(s->graph.values[p->student].name, nb, sizeof nb))) > ws) ws = l;
-      if ((l = (int)strlen(rc_shape_str(&p->t_shape, a, sizeof a))) > wts) wts = l;
-      if ((l = (int)strlen(rc_shape_str(&p->s_shape, a, sizeof a))) > wss) wss = l;
-    }
-    printf("%-*s  %-*s  %-*s  %-*s  %-8s  %s\n", wt, "teacher tensor", wts, "shape", ws, "student tensor", wss,
-           "shape", "matched", "projector");
-    for (int i = 0; i < pg.n; i++) {
-      const rc_pair *p = &pg.pairs[i];
-      char a[96], b[96], n1[512], n2[512];
-      cli_print_cell(stdout, cli_esc(t->graph.values[p->teacher].name, n1, sizeof n1), wt);
-      printf("  %-*s  ", wts, rc_shape_str(&p->t_shape, a, sizeof a));
-      cli_print_cell(stdout, cli_esc(s->graph.values[p->student].name, n2, sizeof n2), ws);
-      printf("  %-*s  %-8s  %s\n", wss, rc_shape_str(&p->s_shape, b, sizeof b),
-             p->explicit_pair ? "given" : p->by_name ? "name" : "position", rc_pair_needs_projector(p) ? "yes" : "no");
-    }
-    if (!pg.n) printf("no pairs: give them with --pair TEACHER_TENSOR=STUDENT_TENSOR\n");
+  rc_model_pair *list = NULL;
+  int n = 0, rc = RC_EXIT_FAIL;
+  if (rc_model_load(&t, tpath, NULL, &e) == RC_OK && rc_model_load(&s, spath, NULL, &e) == RC_OK &&
+      rc_model_pairs(&list, &n, t, s, pairs, n_pairs, &e) == RC_OK) {
+    if (json)
+      print_pairs_json(list, n);
+    else
+      print_pairs_table(list, n);
+    rc = RC_EXIT_OK;
   }
-  rc = RC_EXIT_OK;
-out:
   if (rc != RC_EXIT_OK) cli_fail(&e);
-  rc_pairing_free(&pg);
-  rc__free(ins);
+  rc_model_list_free(list);
   rc_model_free(t);
   rc_model_free(s);
   return rc;
+}
+
+static void facts_free(facts *f) {
+  for (int i = 0; f->zero_points && i < f->n_gr; i++) free(f->zero_points[i]);
+  free(f->zero_points);
+  free(f->ins);
+  free(f->outs);
+  free(f->ops);
+  rc_model_list_free(f->w);
+  rc_model_list_free(f->masks);
+  rc_model_list_free(f->gr);
+  rc_model_list_free(f->ranges);
+}
+
+static rc_status collect_zero_points(facts *f, const rc_model *m, rc_err *e) {
+  f->zero_points = calloc((size_t)f->n_gr + 1, sizeof *f->zero_points);
+  if (!f->zero_points) return rc_err_set(e, RC_ERR_NOMEM, "out of memory");
+  for (int i = 0; i < f->n_gr; i++) {
+    if (!(f->zero_points[i] = calloc((size_t)f->gr[i].n_scale + 1, sizeof **f->zero_points)))
+      return rc_err_set(e, RC_ERR_NOMEM, "out of memory");
+    RC_TRY(rc_model_grid_zero_points(m, i, f->zero_points[i], e));
+  }
+  return RC_OK;
+}
+
+static rc_status collect(facts *f, const rc_model *m, rc_err *pe, rc_err *se, rc_err *e) {
+  rc_model_op_count *counts = NULL;
+  int n_counts = 0;
+  RC_TRY(rc_model_op_counts(m, &counts, &n_counts, e));
+  f->ops = calloc((size_t)n_counts + 1, sizeof *f->ops);
+  if (f->ops) f->n_ops = count_ops(counts, n_counts, f->ops);
+  for (int i = 0; i < n_counts; i++) f->n_nodes += counts[i].count;
+  rc_model_list_free(counts);
+  if (!f->ops) return rc_err_set(e, RC_ERR_NOMEM, "out of memory");
+  RC_TRY(rc_model_weights(m, &f->w, &f->n_w, e));
+  RC_TRY(rc_model_grids(m, &f->gr, &f->n_gr, e));
+  RC_TRY(rc_model_grid_ranges(m, &f->ranges, &f->n_gr, e));
+  RC_TRY(rc_model_masks(m, f->mode, &f->masks, &f->n_w, e));
+  RC_TRY(collect_zero_points(f, m, e));
+  f->params = rc_model_params(m);
+  if (rc_model_macs(m, &f->macs, pe) != RC_OK) f->macs = -1;
+  f->macs_why = pe->msg;
+  f->n_ins = rc_model_n_inputs(m);
+  f->n_outs = rc_model_n_outputs(m);
+  f->ins = calloc((size_t)f->n_ins + 1, sizeof *f->ins);
+  f->outs = calloc((size_t)f->n_outs + 1, sizeof *f->outs);
+  if (!f->ins || !f->outs) return rc_err_set(e, RC_ERR_NOMEM, "out of memory");
+  io_shapes(m, 0, f->ins, f->n_ins, se);
+  io_shapes(m, 1, f->outs, f->n_outs, se);
+  return RC_OK;
 }
 
 int rc_cmd_inspect(int argc, char **argv) {
@@ -448,13 +472,15 @@ int rc_cmd_inspect(int argc, char **argv) {
                                            {"help", no_argument, NULL, 'h'},
                                            {NULL, 0, NULL, 0}};
   int json = 0, want_pairs = 0, n_pairs = 0, c;
-  grid_facts facts = {RC_MASK_AUTO, NULL, NULL};
+  facts f;
+  memset(&f, 0, sizeof f);
+  f.mode = RC_MASK_AUTO;
   const char *pairs[64];
   optind = 1;
   while ((c = getopt_long(argc, argv, "h", longopts, NULL)) != -1) {
     if (c == 'j') json = 1;
     else if (c == 'M') {
-      if (!rc__mask_mode_parse(optarg, &facts.mode))
+      if (!rc_mask_mode_parse(optarg, &f.mode))
         return cli_usage_error("inspect", "--mask must be auto, zeros or none, not '%s'", optarg);
     }
     else if (c == 'p') want_pairs = 1;
@@ -473,43 +499,17 @@ int rc_cmd_inspect(int argc, char **argv) {
   }
   if (n_pairs) return cli_usage_error("inspect", "--pair needs --pairs");
   if (optind != argc - 1) return cli_usage_error("inspect", "expects exactly one MODEL.onnx");
-  rc_err e = {0};
+  rc_err e = {0}, pe = {0}, se = {0};
   rc_model *m = NULL;
   if (rc_model_load(&m, argv[optind], NULL, &e) != RC_OK) return cli_fail(&e);
-  const rc_graph *g = &m->graph;
-  op_count *ops = rc__calloc((size_t)g->n_nodes + 1, sizeof(op_count));
-  rc_weight_info *w = NULL;
-  rc_grid_info *gr = NULL;
-  int n_w = 0, n_gr = 0, rc = RC_EXIT_OK;
-  if (!ops || rc__weights_collect(g, &w, &n_w, &e) != RC_OK || rc__grids_collect(g, &gr, &n_gr, &e) != RC_OK ||
-      decide(m, w, n_w, gr, n_gr, &facts, &e) != RC_OK) {
+  int rc = RC_EXIT_OK;
+  if (collect(&f, m, &pe, &se, &e) != RC_OK)
     rc = cli_fail(&e);
-    goto out;
-  }
-  int n_ops = count_ops(g, ops);
-  rc_err pe = {0}, se = {0};
-  int64_t macs = rc__graph_macs_batch1(g, &pe);
-  io_shape *ins = rc__calloc((size_t)g->n_inputs + 1, sizeof *ins), *outs = rc__calloc((size_t)g->n_outputs + 1, sizeof *outs);
-  if (!ins || !outs) {
-    rc__free(ins);
-    rc__free(outs);
-    rc = cli_fail(&(rc_err){RC_ERR_NOMEM, "out of memory"});
-    goto out;
-  }
-  io_shapes(m, 0, ins, g->n_inputs, &se);
-  io_shapes(m, 1, outs, g->n_outputs, &se);
-  if (json)
-    print_json(m, ins, outs, ops, n_ops, w, n_w, gr, n_gr, macs, &facts);
+  else if (json)
+    print_json(m, &f);
   else
-    print_tables(m, ins, outs, ops, n_ops, w, n_w, gr, n_gr, macs, pe.msg, &facts);
-  rc__free(ins);
-  rc__free(outs);
-out:
-  rc__free(facts.masks);
-  rc__free(facts.ranges);
-  rc__free(ops);
-  rc__free(w);
-  rc__free(gr);
+    print_tables(m, &f);
+  facts_free(&f);
   rc_model_free(m);
   return rc;
 }

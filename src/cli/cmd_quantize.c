@@ -13,13 +13,10 @@
 
 #include "cli/cli.h"
 #include "cli/cli_data.h"
-#include "compress/quantize.h"
-#include "core/alloc.h"
-#include "core/fmt.h"
-#include "onnx/model.h"
-#include "plan/load.h"
-#include "plan/plan.h"
-#include "train/evaluate.h"
+#include "recoup/eval.h"
+#include "recoup/model.h"
+#include "recoup/quantize.h"
+#include "recoup/util.h"
 
 static void usage(FILE *f) {
   fprintf(f,
@@ -167,37 +164,17 @@ static rc_status check_output_path(const quantize_args *a, rc_err *e) {
   return cli_check_output("--out", a->out, inputs, labels, n, e);
 }
 
-/* The first output of a graph over every sample: owned buffer of n * per floats. */
-typedef struct first_output {
-  float *data;
-  int64_t per;   /* floats per sample */
-  int64_t k;     /* classes when the output is (N, K), else 0 */
-} first_output;
-
-static rc_status run_first_output(first_output *o, const rc_graph *g, const cli_samples *s, const rc_dataset *d,
-                                  int64_t batch, rc_err *e) {
-  memset(o, 0, sizeof *o);
-  rc_tensor shapes[CLI_MAX_DATA];
-  cli_samples_shapes(s, batch, shapes);
-  rc_plan *p = NULL;
-  RC_TRY(rc_plan_init(&p, g, shapes, NULL, e));
-  const rc_tensor *t = rc_plan_tensor(p, g->outputs[0]);
-  rc_status st = RC_OK;
-  if (t->dtype != RC_DTYPE_FLOAT || t->rank < 1 || t->dims[0] != batch)
-    st = rc_err_set(e, RC_ERR_SHAPE, "%s: first output '%s' is not float32 with the batch first", g->path,
-                  g->values[g->outputs[0]].name);
-  if (st == RC_OK) {
-    o->per = rc_tensor_numel(t) / batch;
-    o->k = t->rank == 2 ? t->dims[1] : 0;
-    o->data = rc__malloc(sizeof(float) * (size_t)(o->per * d->n) + 1);
-    if (!o->data) st = rc_err_set(e, RC_ERR_NOMEM, "out of memory for the outputs of %s", g->path);
-  }
-  if (st == RC_OK) {
-    void *outs[1] = {o->data};
-    st = rc__run_dataset(p, d, g->outputs, 1, outs, e);
-  }
-  rc_plan_free(p);
-  return st;
+/* A model's outputs over every sample of d; the first must be float32. */
+static rc_status run_outputs(rc_eval_result *r, rc_model *m, const rc_dataset *d, int64_t batch, rc_err *e) {
+  rc_eval_settings es;
+  rc_eval_settings_init(&es);
+  es.batch = batch;
+  es.keep_outputs = 1;
+  RC_TRY(rc_eval_run(r, m, NULL, d, &es, e));
+  if (r->outputs[0].dtype != RC_DTYPE_FLOAT)
+    return rc_err_set(e, RC_ERR_SHAPE, "%s: first output '%s' is not float32 with the batch first",
+                      rc_model_path(m), r->names[0]);
+  return RC_OK;
 }
 
 typedef struct comparison {
@@ -208,31 +185,37 @@ typedef struct comparison {
 
 /* Reload the written file (so what is reported is the file), run it and the
  * float model on the calibration samples and compare their first outputs. */
-static rc_status verify_written(comparison *c, const char *out, const rc_graph *dense, const cli_samples *s,
-                                const rc_dataset *d, int64_t batch, rc_err *e) {
+static rc_status verify_written(comparison *c, const char *out, rc_model *dense, const rc_dataset *d,
+                                int64_t batch, rc_err *e) {
   memset(c, 0, sizeof *c);
   rc_model *q = NULL;
-  first_output fo = {0}, qo = {0};
+  rc_eval_result fr, qr;
+  memset(&fr, 0, sizeof fr);
+  memset(&qr, 0, sizeof qr);
   rc_status st = rc_model_load(&q, out, NULL, e);
   if (st != RC_OK) rc_err_prefix(e, "the written model does not load back");
-  if (st == RC_OK) st = run_first_output(&fo, dense, s, d, batch, e);
-  if (st == RC_OK) st = run_first_output(&qo, &q->graph, s, d, batch, e);
-  if (st == RC_OK && qo.per != fo.per)
+  if (st == RC_OK) st = run_outputs(&fr, dense, d, batch, e);
+  if (st == RC_OK) st = run_outputs(&qr, q, d, batch, e);
+  int64_t f_per = st == RC_OK ? rc_tensor_numel(&fr.outputs[0]) / d->n : 0;
+  int64_t q_per = st == RC_OK ? rc_tensor_numel(&qr.outputs[0]) / d->n : 0;
+  if (st == RC_OK && q_per != f_per)
     st = rc_err_set(e, RC_ERR_SHAPE, "%s: first output has %lld values per sample, the float model %lld", out,
-                  (long long)qo.per, (long long)fo.per);
-  for (int64_t i = 0; st == RC_OK && i < fo.per * d->n; i++) {
-    double diff = fabs((double)qo.data[i] - fo.data[i]);
+                    (long long)q_per, (long long)f_per);
+  const float *fo = st == RC_OK ? fr.outputs[0].data : NULL, *qo = st == RC_OK ? qr.outputs[0].data : NULL;
+  for (int64_t i = 0; st == RC_OK && i < f_per * d->n; i++) {
+    double diff = fabs((double)qo[i] - fo[i]);
     if (!(diff == diff))
       st = rc_err_set(e, RC_ERR_NUMERIC, "%s: output value %lld is not finite", out, (long long)i);
     else if (diff > c->max_abs_diff)
       c->max_abs_diff = diff;
   }
-  if (st == RC_OK && fo.k > 1) {
-    st = rc__metrics_compute(&c->m, qo.data, NULL, fo.data, d->n, fo.k, e);
+  int64_t k = st == RC_OK && fr.outputs[0].rank == 2 ? fr.outputs[0].dims[1] : 0;
+  if (st == RC_OK && k > 1) {
+    st = rc_eval_metrics(&c->m, qo, NULL, fo, d->n, k, e);
     c->have_metrics = st == RC_OK;
   }
-  rc__free(fo.data);
-  rc__free(qo.data);
+  rc_eval_result_free(&fr);
+  rc_eval_result_free(&qr);
   rc_model_free(q);
   return st;
 }
@@ -345,7 +328,7 @@ static void print_table(const quantize_args *a, const rc_quant_report *r, const 
   if (c->have_metrics) {
     char kl[32];
     printf("vs float     top-1 agreement %.2f%%, mean KL(float||quantized) %s (calibration samples)\n",
-           100 * c->m.agreement, rc__fmt_sig(kl, sizeof kl, c->m.kl, RC_FMT_SIG, 0));
+           100 * c->m.agreement, rc_fmt_sig(kl, sizeof kl, c->m.kl, RC_FMT_SIG, 0));
   }
   printf("             largest output difference %.4g\n", c->max_abs_diff);
   printf("Validate on your own held-out data before deploying: these figures hold only for\nthe samples measured.\n");
@@ -376,9 +359,11 @@ int rc_cmd_quantize(int argc, char **argv) {
   if (rc_model_save(m, a.out, NULL, 0, &e) != RC_OK) goto out;
   written = 1;
   int64_t batch = a.cfg.batch < d.n ? a.cfg.batch : d.n;
-  if (verify_written(&cmp, a.out, &m->graph, &s, &d, batch, &e) != RC_OK) goto out;
-  if (a.json) print_json(&a, &rep, &cmp, (long long)m->file_bytes, file_size(a.out));
-  else print_table(&a, &rep, &cmp, (long long)m->file_bytes, file_size(a.out));
+  if (verify_written(&cmp, a.out, m, &d, batch, &e) != RC_OK) goto out;
+  if (a.json)
+    print_json(&a, &rep, &cmp, (long long)rc_model_file_bytes(m), file_size(a.out));
+  else
+    print_table(&a, &rep, &cmp, (long long)rc_model_file_bytes(m), file_size(a.out));
   rc = RC_EXIT_OK;
 out:
   if (rc != RC_EXIT_OK) {

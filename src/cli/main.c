@@ -3,13 +3,13 @@
 #define _DEFAULT_SOURCE /* setenv */
 #include <getopt.h>
 #include <signal.h>
-#include <stdlib.h>
-#include <unistd.h>
 #include <stdio.h>
+#include <stdlib.h>
 #include <string.h>
+#include <unistd.h>
 
 #include "cli/cli.h"
-#include "train/dist.h"
+#include "recoup/parallel.h"
 
 static const rc_command commands[] = {
     {"inspect", "show a model's inputs, outputs, ops, sparsity and quantization grids", rc_cmd_inspect},

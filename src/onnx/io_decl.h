@@ -6,12 +6,7 @@
 
 #include "onnx/model.h"
 
-typedef struct rc_io_decl {
-  rc_dtype dtype;                      /* 0 when the file declares no type */
-  int rank;                            /* -1 when it declares no shape */
-  int64_t dims[RC_MAX_RANK];           /* -1 where symbolic or unknown */
-  const char *dim_names[RC_MAX_RANK];  /* dim_param where given, else NULL; owned by the model */
-} rc_io_decl;
+/* rc_io_decl is public: recoup/model.h. */
 
 /* The declaration of graph output i (is_output) or of the graph input named
  * `name` (!is_output; i ignored). Fails only on an index out of range. */

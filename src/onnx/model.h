@@ -94,9 +94,6 @@ int rc_model_edit_drop_unused(rc_model *m);
  * ONNX requires; refuses cycles and values nobody produces. */
 rc_status rc_model_edit_sort(rc_model *m, rc_err *e);
 
-/* The value of a metadata_props entry of the model, or NULL. */
-const char *rc_model_metadata(const rc_model *m, const char *key);
-/* Set (replace or append) a metadata_props entry of the model. */
-rc_status rc_model_edit_set_metadata(rc_model *m, const char *key, const char *value, rc_err *e);
+/* rc_model_metadata and rc_model_edit_set_metadata are public: recoup/model.h. */
 
 #endif

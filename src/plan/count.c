@@ -38,9 +38,7 @@ int64_t rc__node_macs(rc_plan *p, const rc_node *n) {
 
 rc_tensor *rc__batch1_inputs(const rc_graph *g) { return rc__batch_inputs(g, 1); }
 
-rc_tensor *rc__batch_inputs(const rc_graph *g, int64_t b) {
-  rc_tensor *ins = rc__calloc((size_t)g->n_inputs + 1, sizeof(rc_tensor));
-  if (!ins) return NULL;
+void rc__input_shapes_declared(const rc_graph *g, int64_t b, rc_tensor *ins) {
   for (int i = 0; i < g->n_inputs; i++) {
     ins[i] = g->values[g->inputs[i]].decl;
     ins[i].data = NULL;
@@ -48,6 +46,11 @@ rc_tensor *rc__batch_inputs(const rc_graph *g, int64_t b) {
     for (int d = 0; d < ins[i].rank; d++)
       if (ins[i].dims[d] < 0) ins[i].dims[d] = b;
   }
+}
+
+rc_tensor *rc__batch_inputs(const rc_graph *g, int64_t b) {
+  rc_tensor *ins = rc__calloc((size_t)g->n_inputs + 1, sizeof(rc_tensor));
+  if (ins) rc__input_shapes_declared(g, b, ins);
   return ins;
 }
 

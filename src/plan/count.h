@@ -16,6 +16,8 @@ rc_tensor *rc__batch1_inputs(const rc_graph *g);
 /* The same with every symbolic dim taken as b (inspect plans at 1 and 2 to
  * see which output dims follow the batch). */
 rc_tensor *rc__batch_inputs(const rc_graph *g, int64_t b);
+/* The same into ins (one rc_tensor per graph input), allocating nothing. */
+void rc__input_shapes_declared(const rc_graph *g, int64_t b, rc_tensor *ins);
 /* The shapes of samples `data` (one tensor per graph input, dims[0] =
  * samples) taken b at a time: data's shapes with dims[0] = b, data NULL. */
 void rc__input_shapes(const rc_graph *g, const rc_tensor *data, int64_t b, rc_tensor *shapes);

@@ -5,7 +5,8 @@
  *
  * Reductions run in a fixed order (a ring whose sums start at a fixed rank
  * for each chunk), so the same number of ranks gives the same bits on every
- * run; the time spent in them is added up for reports. */
+ * run; the time spent in them is added up for reports. Joining, ranks,
+ * hosts and the point-to-point messages are public: recoup/parallel.h. */
 #ifndef RC_TRAIN_DIST_H
 #define RC_TRAIN_DIST_H
 
@@ -15,21 +16,6 @@
 #include "core/status.h"
 #include "recoup/parallel.h"
 
-/* rc_dist, rc_dist_rank and rc_dist_size are public: recoup/parallel.h. */
-
-/* 1 when this build can join an MPI job. */
-int rc_dist_built_with_mpi(void);
-
-/* Join the job when the environment says a launcher started us (mpirun,
- * srun with PMIx/PMI); otherwise *out is a group of one. */
-rc_status rc_dist_start(rc_dist **out, int *argc, char ***argv, rc_err *e);
-/* Leave the job (after every rank finished its collective calls). */
-void rc_dist_end(rc_dist *d);
-/* Stop every rank of the job with exit status code (never returns under MPI;
- * for a group of one it returns and the caller exits). */
-void rc_dist_abort(rc_dist *d, int code);
-
-const char *rc_dist_host(const rc_dist *d);
 /* Seconds spent in communication so far. */
 double rc_dist_comm_seconds(const rc_dist *d);
 
@@ -51,21 +37,5 @@ rc_status rc_dist_gather_rows(rc_dist *d, float *buf, int64_t n, int64_t block, 
 /* Fail on every rank, naming the first rank that differs from rank 0, when
  * the ranks' values of sum differ (what names the checked state). */
 rc_status rc_dist_check_equal(rc_dist *d, uint64_t sum, const char *what, rc_err *e);
-
-/* Point-to-point messages of int64 values for the work queue of batch
- * (tag: the caller's message kind). recv_any takes the next message of that
- * tag from any rank and gives its sender. */
-rc_status rc_dist_send(rc_dist *d, int to, int tag, const int64_t *v, int n, rc_err *e);
-rc_status rc_dist_recv(rc_dist *d, int from, int tag, int64_t *v, int n, rc_err *e);
-rc_status rc_dist_recv_any(rc_dist *d, int tag, int *from, int64_t *v, int n, rc_err *e);
-/* Bytes, for a job's printed results. recv_bytes takes up to cap bytes and
- * gives the count received. */
-rc_status rc_dist_send_bytes(rc_dist *d, int to, int tag, const void *buf, size_t n, rc_err *e);
-rc_status rc_dist_recv_bytes(rc_dist *d, int from, int tag, void *buf, size_t cap, size_t *n, rc_err *e);
-/* 1 when a message of that tag waits (its sender in *from); never blocks. */
-int rc_dist_probe(rc_dist *d, int tag, int *from);
-/* Host names of all ranks, MAX_HOST bytes each, rank order (out: size rows). */
-#define RC_DIST_MAX_HOST 256
-rc_status rc_dist_hosts(rc_dist *d, char *out, rc_err *e);
 
 #endif

@@ -1,0 +1,17 @@
+/* Per-output evaluation behind rc_eval_run (eval_outputs.c), and the batch
+ * shapes both parts of eval plan with (eval.c). */
+#ifndef RC_API_EVAL_OUTPUTS_H
+#define RC_API_EVAL_OUTPUTS_H
+
+#include "recoup/eval.h"
+
+/* The shapes of d's inputs taken `batch` samples at a time (float32 where
+ * d converts per batch): one per input into shapes. */
+void rc__eval_batch_shapes(rc_tensor *shapes, const rc_dataset *d, int64_t batch);
+
+/* The per-output metrics of model against ref (NULL: itself) over every
+ * sample of d, as rc_eval_settings describes them. */
+rc_status rc__eval_outputs(rc_metrics *m, rc_model *model, rc_model *ref, const rc_dataset *d, int64_t batch,
+                           const rc_eval_settings *s, rc_err *e);
+
+#endif
