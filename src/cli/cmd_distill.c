@@ -107,6 +107,7 @@ static int apply_option(distill_args *a, int c, const char *v) {
     case CLI_DISTILL_STD: return cli_data_option(&a->data, "distill", "std", v);
     case CLI_DISTILL_RESIZE: return cli_data_option(&a->data, "distill", "resize", v);
     case CLI_DISTILL_SKIP_BAD: return cli_data_option(&a->data, "distill", "skip-bad", v);
+    case CLI_DISTILL_IMAGE_MEMORY: return cli_data_option(&a->data, "distill", "image-memory", v);
     case CLI_DISTILL_CACHE_MB: a->cfg.cache_bytes = (size_t)l << 20; return 0;
     case CLI_DISTILL_EPOCHS: cfg->epochs = l; return 0;
     case CLI_DISTILL_STEPS: cfg->steps = l; return 0;
@@ -659,6 +660,7 @@ int rc_cmd_distill(int argc, char **argv) {
     goto out;
   }
   /* The student's recorded preprocessing, else the teacher's. */
+  a.data.ranks = rc_dist_size(cli_dist());
   if (cli_prep_apply(&a.data, student, &e) != RC_OK) goto out;
   if (!a.data.recorded && cli_prep_apply(&a.data, teacher, &e) != RC_OK) goto out;
   if (cli_synth_count(a.data.data[0]) > 0 ? synth_samples(&train, &a, teacher, &e) != RC_OK
@@ -699,6 +701,10 @@ int rc_cmd_distill(int argc, char **argv) {
   cache_dir = rc__path_dir(a.out); /* a spilled teacher cache goes beside the output */
   a.cfg.cache_dir = cache_dir;
   if (rc_distill_run(&r, teacher, student, &d, &a.cfg, &e) != RC_OK) goto out;
+  if (root) {
+    cli_images_finish(&train);
+    cli_images_finish(&val);
+  }
   if (!root) {
     rc = RC_EXIT_OK;
     goto out;

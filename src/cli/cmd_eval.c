@@ -66,6 +66,7 @@ static int parse_args(eval_args *a, int argc, char **argv) {
       {"threads", required_argument, NULL, 't'}, {"json", no_argument, NULL, 'j'},
       {"output-loss", required_argument, NULL, 'L'}, {"ignore-label", required_argument, NULL, 'I'},
       {"resize", required_argument, NULL, 'R'}, {"skip-bad", no_argument, NULL, 'K'},
+      {"image-memory", required_argument, NULL, 'G'},
       {"help", no_argument, NULL, 'h'},        {NULL, 0, NULL, 0}};
   memset(a, 0, sizeof *a);
   cli_data_opts_init(&a->data);
@@ -89,6 +90,7 @@ static int parse_args(eval_args *a, int argc, char **argv) {
       case 'D': if (cli_data_option(&a->data, "eval", "std", optarg)) return RC_EXIT_USAGE; break;
       case 'R': if (cli_data_option(&a->data, "eval", "resize", optarg)) return RC_EXIT_USAGE; break;
       case 'K': cli_data_option(&a->data, "eval", "skip-bad", NULL); break;
+      case 'G': if (cli_data_option(&a->data, "eval", "image-memory", optarg)) return RC_EXIT_USAGE; break;
       case 'r': a->ref = optarg; break;
       case 'o': a->out = optarg; break;
       case 't':
@@ -281,6 +283,7 @@ int rc_cmd_eval(int argc, char **argv) {
   int64_t batch = a.batch < s.n ? a.batch : s.n;
   if (cli_samples_dataset(&d, &s, NULL, 0, &e) != RC_OK) goto out;
   if (run_model(&r, a.model, &s, batch, &d, &e) != RC_OK) goto out;
+  cli_images_finish(&s); /* one pass read every image: the unreadable ones are known */
   int64_t k = 0;
   rc_metrics m;
   int want_metrics = a.data.labels || a.ref;

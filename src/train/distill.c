@@ -16,6 +16,7 @@
 #include "plan/inspect.h"
 #include "plan/load.h"
 #include "plan/plan.h"
+#include "train/batch_source.h"
 #include "train/bn_stats.h"
 #include "train/checkpoint.h"
 #include "train/dist.h"
@@ -450,6 +451,7 @@ typedef struct step_buffers {
   double *bn_scratch; /* per-channel sums for --bn train */
   int64_t max_c;
   float lr;           /* the last step's learning rate, for progress */
+  rc__batch_source source;
 } step_buffers;
 
 static rc_status loss_and_seed(run_state *st, const step_buffers *sb, const int32_t *labels, double *loss,
@@ -528,8 +530,11 @@ static uint64_t outputs_fingerprint(const run_state *st, uint64_t h) {
   for (int v = 0; v < tg->n_values; v++)
     if (tg->values[v].kind == RC_VALUE_INITIALIZER && tg->values[v].decl.data)
       h = rc__ckpt_fp_bytes(h, tg->values[v].decl.data, rc_tensor_nbytes(&tg->values[v].decl));
+  /* Images decoded per batch have no array to hash; their count is hashed
+   * with the pool's size below. */
   for (int i = 0; i < st->train.n_inputs; i++)
-    h = rc__ckpt_fp_bytes(h, st->train.inputs[i].data, rc_tensor_nbytes(&st->train.inputs[i]));
+    if (st->train.inputs[i].data)
+      h = rc__ckpt_fp_bytes(h, st->train.inputs[i].data, rc_tensor_nbytes(&st->train.inputs[i]));
   return h;
 }
 
@@ -614,10 +619,7 @@ static rc_status train_step(loop_ctx *lc, const loop_state *ls, step_buffers *sb
                             rc_err *e) {
   run_state *st = lc->st;
   int64_t count;
-  rc_dataset part = st->train; /* this rank's rows of global batch ls->batch */
-  part.order = st->train.order + ls->batch * st->batch + st->offset;
-  part.n = st->local;
-  RC_TRY(rc_dataset_gather(sb->in, sb->labels, &count, &part, 0, st->local, e));
+  RC_TRY(rc__batch_source_next(&sb->source, ls->batch, sb->in, sb->labels, &count, e));
   gather_teacher_rows(st, sb, ls->batch);
   rc_params_zero_grad(st->ps);
   rc_plan_zero_grad(st->train_plan);
@@ -697,6 +699,16 @@ static void trace_loss(loop_state *ls, double loss, int64_t total) {
   ls->window_steps = 0;
 }
 
+/* How long training waited for input batches, and the rate the workers
+ * delivered them at: when waiting is a visible share, that rate is what
+ * limits the step. */
+static void input_progress(rc__batch_source *bs, rc_distill_progress *pg) {
+  rc__prefetch_stats ps;
+  rc__batch_source_stats(bs, &ps);
+  pg->input_wait_share = pg->elapsed_s > 0 ? ps.wait_s / pg->elapsed_s : 0;
+  pg->input_samples_per_s = pg->elapsed_s > 0 ? (double)ps.samples / pg->elapsed_s : 0;
+}
+
 static rc_status train_loop(run_state *st, rc_distill_result *r, const rc_distill_data *d, rc_err *e) {
   const rc_distill_config *c = st->c;
   const rc_graph *g = st->sg;
@@ -741,6 +753,9 @@ static rc_status train_loop(run_state *st, rc_distill_result *r, const rc_distil
     if ((s = rc_params_save(st->ps, lc.good_slot, e)) != RC_OK) goto out;
     rc__log(&c->log, RC_LOG_INFO, "BatchNormalization running statistics re-estimated over the training samples");
   }
+  rc__batch_source_run run = {c->seed,  st->batch, st->offset,         st->local,         lc.spe,
+                              ls.epoch, ls.batch,  lc.total - ls.step, d->labels != NULL, 0};
+  if ((s = rc__batch_source_start(&sb.source, &st->train, &run, e)) != RC_OK) goto out;
   double t0 = now_s(), comm0 = rc_dist_comm_seconds(c->dist);
   int64_t start_step = ls.step, snap_every = lc.spe / 4 > 0 ? lc.spe / 4 : 1;
   rc_distill_progress pg = {0};
@@ -776,6 +791,7 @@ static rc_status train_loop(run_state *st, rc_distill_result *r, const rc_distil
     pg.elapsed_s = el;
     pg.samples_per_s = el > 0 ? (double)((ls.step - start_step) * st->batch) / el : 0;
     pg.eta_s = ls.step > start_step ? el / (double)(ls.step - start_step) * (double)(lc.total - ls.step) : 0;
+    input_progress(&sb.source, &pg);
     notify(c, &pg);
     int epoch_done = ls.batch == lc.spe || ls.step == lc.total || ls.stopped;
     if (epoch_done && (s = end_epoch(&lc, &ls, &pg, e)) != RC_OK) goto out;
@@ -812,6 +828,7 @@ static rc_status train_loop(run_state *st, rc_distill_result *r, const rc_distil
   if ((s = check_ranks_agree(st, ls.step, e)) != RC_OK) goto out;
   r->after = ls.best;
 out:
+  rc__batch_source_stop(&sb.source);
   rc__free(sb.teacher);
   rc__free(sb.samples);
   rc__free(sb.labels);
