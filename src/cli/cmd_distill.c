@@ -363,6 +363,10 @@ static void fmt_time(double s, char *buf, size_t n) {
   snprintf(buf, n, "%ld:%02ld:%02ld", t / 3600, t / 60 % 60, t % 60);
 }
 
+/* Reading input is shown once the step waits for it this share of the time:
+ * then the readers' rate, not the step, sets the pace. */
+#define CLI_INPUT_BOUND_SHARE 0.05
+
 static void on_progress(void *user, const rc_distill_progress *p) {
   progress_state *ps = user;
   char eta[32], loss[32], kl[32];
@@ -376,17 +380,21 @@ static void on_progress(void *user, const rc_distill_progress *p) {
     return;
   }
   fmt_time(p->eta_s, eta, sizeof eta);
+  char input[64] = "";
+  if (p->input_wait_share >= CLI_INPUT_BOUND_SHARE)
+    snprintf(input, sizeof input, "  input-bound: %.0f samples/s read, %.0f%% waiting", p->input_samples_per_s,
+             100 * p->input_wait_share);
   if (ps->tty) {
     if (p->elapsed_s - ps->last_print < 0.2 && p->step != p->steps) return;
     ps->last_print = p->elapsed_s;
-    fprintf(stderr, "\r\033[Kepoch %lld/%lld  step %lld/%lld  loss %s  %.0f samples/s  %s left",
+    fprintf(stderr, "\r\033[Kepoch %lld/%lld  step %lld/%lld  loss %s  %.0f samples/s  %s left%s",
             (long long)p->epoch, (long long)p->epochs, (long long)p->step, (long long)p->steps, loss,
-            p->samples_per_s, eta);
+            p->samples_per_s, eta, input);
     fflush(stderr);
   } else if (p->elapsed_s - ps->last_print >= 10 || p->step == p->steps) {
     ps->last_print = p->elapsed_s;
-    fprintf(stderr, "epoch %lld/%lld step %lld/%lld loss %s %.0f samples/s %s left\n", (long long)p->epoch,
-            (long long)p->epochs, (long long)p->step, (long long)p->steps, loss, p->samples_per_s, eta);
+    fprintf(stderr, "epoch %lld/%lld step %lld/%lld loss %s %.0f samples/s %s left%s\n", (long long)p->epoch,
+            (long long)p->epochs, (long long)p->step, (long long)p->steps, loss, p->samples_per_s, eta, input);
   }
 }
 
