@@ -69,8 +69,8 @@ typedef struct rc_distill_progress {
   int is_best;
   const char *note;          /* RC_DISTILL_NOTE: a line for the user */
   /* Inputs read from files per batch (image folders, mapped arrays) are
-   * prefetched by worker threads: the share of the elapsed time the step
-   * waited for them, and the samples per second the workers delivered
+   * prefetched by worker threads: the share of the training steps' time
+   * spent waiting for them, and the samples per second the workers delivered
    * (the rate that limits the step when the share is large); 0 otherwise. */
   double input_wait_share;
   double input_samples_per_s;

@@ -699,13 +699,13 @@ static void trace_loss(loop_state *ls, double loss, int64_t total) {
   ls->window_steps = 0;
 }
 
-/* How long training waited for input batches, and the rate the workers
- * delivered them at: when waiting is a visible share, that rate is what
- * limits the step. */
-static void input_progress(rc__batch_source *bs, rc_distill_progress *pg) {
+/* The share of the steps' time (step_s) spent waiting for input batches,
+ * and the rate the workers delivered them at: when waiting is a visible
+ * share, that rate is what limits the step. */
+static void input_progress(rc__batch_source *bs, double step_s, rc_distill_progress *pg) {
   rc__prefetch_stats ps;
   rc__batch_source_stats(bs, &ps);
-  pg->input_wait_share = pg->elapsed_s > 0 ? ps.wait_s / pg->elapsed_s : 0;
+  pg->input_wait_share = step_s > 0 ? ps.wait_s / step_s : 0;
   pg->input_samples_per_s = pg->elapsed_s > 0 ? (double)ps.samples / pg->elapsed_s : 0;
 }
 
@@ -756,16 +756,17 @@ static rc_status train_loop(run_state *st, rc_distill_result *r, const rc_distil
   rc__batch_source_run run = {c->seed,  st->batch, st->offset,         st->local,         lc.spe,
                               ls.epoch, ls.batch,  lc.total - ls.step, d->labels != NULL, 0};
   if ((s = rc__batch_source_start(&sb.source, &st->train, &run, e)) != RC_OK) goto out;
-  double t0 = now_s(), comm0 = rc_dist_comm_seconds(c->dist);
+  double t0 = now_s(), comm0 = rc_dist_comm_seconds(c->dist), step_s = 0;
   int64_t start_step = ls.step, snap_every = lc.spe / 4 > 0 ? lc.spe / 4 : 1;
   rc_distill_progress pg = {0};
   pg.epochs = lc.epochs;
   pg.steps = lc.total;
   while (ls.step < lc.total && !ls.stopped) {
     if (ls.batch == 0 || ls.step == start_step) rc_dataset_shuffle(&st->train, c->seed, (uint64_t)ls.epoch);
-    double loss = 0;
+    double loss = 0, ts = now_s();
     int bad = 0;
     if ((s = train_step(&lc, &ls, &sb, &loss, &bad, e)) != RC_OK) goto out;
+    step_s += now_s() - ts;
     ls.step++;
     ls.batch++;
     if (bad) {
@@ -791,7 +792,7 @@ static rc_status train_loop(run_state *st, rc_distill_result *r, const rc_distil
     pg.elapsed_s = el;
     pg.samples_per_s = el > 0 ? (double)((ls.step - start_step) * st->batch) / el : 0;
     pg.eta_s = ls.step > start_step ? el / (double)(ls.step - start_step) * (double)(lc.total - ls.step) : 0;
-    input_progress(&sb.source, &pg);
+    input_progress(&sb.source, step_s, &pg);
     notify(c, &pg);
     int epoch_done = ls.batch == lc.spe || ls.step == lc.total || ls.stopped;
     if (epoch_done && (s = end_epoch(&lc, &ls, &pg, e)) != RC_OK) goto out;
