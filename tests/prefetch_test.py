@@ -11,7 +11,8 @@ random and seeded (a scenario of our own, no published data).
    first 300: `distill --image-memory 0` (decoded per batch) peaks at the
    same resident memory for both (the kernel's count for each process,
    os.wait4's ru_maxrss), while decoding up front peaks at least 30 MB
-   higher; the per-batch and up-front runs write byte-identical models.
+   higher; the per-batch and up-front runs write byte-identical models,
+   and `eval` gives equal outputs both ways.
 2. Progress names the input rate when the step waits for decoding.
 3. An unreadable file in the middle of the list: an error naming it, or
    with --skip-bad the file in --json and byte-identical models from two
@@ -133,6 +134,16 @@ check("decoding up front holds the pixels: at least 30 MB more than per batch", 
       f"up front {runs['upfront_big'][1] / 1024:.1f} MB, per batch {runs['stream_big'][1] / 1024:.1f} MB ({held:+.1f} MB)")
 check("per batch and up front write byte-identical models (same seed and threads)",
       runs["stream_big"][0] == runs["upfront_big"][0], f"{len(runs['stream_big'][0])} bytes each")
+
+evals = []
+for extra in (["--image-memory", "0"], []):
+    out = os.path.join(work, f"eval{len(evals)}.npy")
+    r = subprocess.run([recoup, "eval", teacher, "--data", big, "--scale", "0.00392156862745098", "--threads", "2",
+                        "--out", out] + extra, capture_output=True, text=True)
+    evals.append(np.load(out) if r.returncode == 0 else r.stderr)
+check("eval: outputs from the set decoded per batch equal those decoded up front",
+      isinstance(evals[0], np.ndarray) and isinstance(evals[1], np.ndarray) and np.array_equal(evals[0], evals[1]),
+      f"{evals[0].shape if isinstance(evals[0], np.ndarray) else evals[0][-300:]}")
 
 # ---- 2. progress names the input rate -------------------------------------
 # Large pictures shrunk to the input (--resize) with one worker: decoding,

@@ -94,6 +94,31 @@ void rc_dataset_take_input(rc_dataset *to, int i, const rc_dataset *from, int j)
   to->stream[i] = from->stream[j];
 }
 
+/* Samples of an image stream, decoded in parallel (each writes only its own
+ * rows, so the bytes do not depend on the thread count); the error reported
+ * is the first failing sample's in batch order, whichever thread met it.
+ * Prefetch workers set their own OpenMP thread count to one. */
+static rc_status gather_decoded(float *dst, const rc_dataset *d, const rc_array *src, int i, int64_t start, int64_t k,
+                                int64_t per, rc_err *e) {
+  int64_t first_bad = k;
+  rc_status st = RC_OK;
+#pragma omp parallel for schedule(dynamic, 1)
+  for (int64_t j = 0; j < k; j++) {
+    rc_err je = {0};
+    int64_t s = d->index[d->order[start + j]];
+    rc_status sj = rc_data_to_float(dst + j * per, src, s, 1, &d->norm[i], &je);
+    if (sj != RC_OK) {
+#pragma omp critical(rc_gather_decoded)
+      if (j < first_bad) {
+        first_bad = j;
+        st = sj;
+        *e = je;
+      }
+    }
+  }
+  return st;
+}
+
 /* Convert samples of input i one at a time (they are scattered by the order). */
 static rc_status gather_float(float *dst, const rc_dataset *d, int i, int64_t start, int64_t k, rc_err *e) {
   rc_array src = {d->inputs[i], NULL, 0, d->stream[i]};
@@ -101,6 +126,7 @@ static rc_status gather_float(float *dst, const rc_dataset *d, int i, int64_t st
    * empty resident set, so passes do not pile up pages between them. */
   if (d->release[i] && start == 0) rc_array_release_pages(d->release[i]);
   int64_t per = rc_tensor_numel(&d->inputs[i]) / (d->inputs[i].dims[0] ? d->inputs[i].dims[0] : 1);
+  if (d->stream[i]) return gather_decoded(dst, d, &src, i, start, k, per, e);
   for (int64_t j = 0; j < k; j++) {
     int64_t s = d->index[d->order[start + j]];
     RC_TRY(rc_data_to_float(dst + j * per, &src, s, 1, &d->norm[i], e));

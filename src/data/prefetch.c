@@ -7,6 +7,7 @@
 
 #include "data/prefetch.h"
 
+#include <omp.h>
 #include <pthread.h>
 #include <string.h>
 #include <time.h>
@@ -48,6 +49,9 @@ static double now_s(void) {
 static void *worker(void *arg) {
   rc__prefetch *pf = arg;
   const rc__prefetch_plan *p = &pf->p;
+  /* The workers are the parallelism here: a gather inside one must not start
+   * a team of OpenMP threads beside the training step's own. */
+  omp_set_num_threads(1);
   for (;;) {
     pthread_mutex_lock(&pf->lock);
     while (!pf->stop && pf->taken >= pf->queued) pthread_cond_wait(&pf->work, &pf->lock);
