@@ -32,21 +32,15 @@ import onnx
 from onnx import TensorProto, helper, numpy_helper
 from PIL import Image
 
+from e2e import Run
+
 recoup, src, work = sys.argv[1], sys.argv[2], sys.argv[3]
 mpirun = sys.argv[4] if len(sys.argv) > 4 else ""
 shutil.rmtree(work, ignore_errors=True)
 os.makedirs(work)
-passed, failed = 0, []
+run = Run(recoup)
+check = run.check
 SIDE = 128
-
-
-def check(name, ok, detail=""):
-    global passed
-    print(("ok   " if ok else "FAIL ") + name + (" " + detail if detail else ""), flush=True)
-    if ok:
-        passed += 1
-    else:
-        failed.append(name)
 
 
 def model(path, seed, channels, side, prune=0.0):
@@ -205,5 +199,4 @@ if mpirun:
 else:
     print("skip MPI part: no mpirun given")
 
-print(f"{passed} passed, {len(failed)} failed")
-sys.exit(1 if failed else 0)
+run.finish()
