@@ -108,7 +108,7 @@ static rc_status gather_decoded(float *dst, const rc_dataset *d, const rc_array 
     int64_t s = d->index[d->order[start + j]];
     rc_status sj = rc_data_to_float(dst + j * per, src, s, 1, &d->norm[i], &je);
     if (sj != RC_OK) {
-#pragma omp critical(rc_gather_decoded)
+#pragma omp critical
       if (j < first_bad) {
         first_bad = j;
         st = sj;
