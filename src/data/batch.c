@@ -98,8 +98,8 @@ void rc_dataset_take_input(rc_dataset *to, int i, const rc_dataset *from, int j)
  * rows, so the bytes do not depend on the thread count); the error reported
  * is the first failing sample's in batch order, whichever thread met it.
  * Prefetch workers set their own OpenMP thread count to one. */
-static rc_status gather_decoded(float *dst, const rc_dataset *d, const rc_array *src, int i, int64_t start, int64_t k,
-                                int64_t per, rc_err *e) {
+static rc_status gather_decoded(float *dst, const rc_dataset *d, const rc_array *src, int i, int64_t start,
+                                int64_t k, int64_t per, rc_err *e) {
   int64_t first_bad = k;
   rc_status st = RC_OK;
 #pragma omp parallel for schedule(dynamic, 1)
