@@ -170,27 +170,42 @@ static void write_images(const char *dir, int bad) {
 
 static const rc_image_prep gray_prep = {1, IMG_H, IMG_W, 0};
 
+/* A folder or list opened as a set decoded per sample, gray IMG_H x IMG_W. */
+typedef struct images {
+  rc_image_set set;
+  rc_image_stream *st;
+  rc_array view;
+} images;
+
+static void images_open(images *im, const char *path, rc_image_labels labels, int skip_bad) {
+  rc_err e = {0};
+  im->st = NULL;
+  CHECK_STATUS(rc_image_set_open(&im->set, path, labels, &e), RC_OK);
+  CHECK_STATUS(rc_image_stream_open(&im->st, &im->view, &im->set, &gray_prep, skip_bad, &e), RC_OK);
+}
+
+static void images_close(images *im) {
+  rc_image_stream_free(im->st);
+  rc_image_set_free(&im->set);
+}
+
 static void stream_decodes_what_libpng_wrote(void) {
   char dir[600];
   snprintf(dir, sizeof dir, "%s/good", tmpdir);
   write_images(dir, -1);
-  rc_image_set set;
-  rc_err e = {0};
-  CHECK_STATUS(rc_image_set_open(&set, dir, RC_IMAGE_LABELS_NONE, &e), RC_OK);
-  rc_image_stream *st = NULL;
-  rc_array view;
-  CHECK_STATUS(rc_image_stream_open(&st, &view, &set, &gray_prep, 0, &e), RC_OK);
-  CHECK_EQ(view.t.dims[0], N_IMAGES);
-  CHECK_NULL(view.t.data);
+  images im;
+  images_open(&im, dir, RC_IMAGE_LABELS_NONE, 0);
+  CHECK_EQ(im.view.t.dims[0], N_IMAGES);
+  CHECK_NULL(im.view.t.data);
   float got[N_IMAGES * IMG_W * IMG_H];
-  CHECK_STATUS(rc_data_to_float(got, &view, 0, N_IMAGES, NULL, &e), RC_OK);
+  rc_err e = {0};
+  CHECK_STATUS(rc_data_to_float(got, &im.view, 0, N_IMAGES, NULL, &e), RC_OK);
   int wrong = 0;
   for (int i = 0; i < N_IMAGES; i++)
     for (int k = 0; k < IMG_W * IMG_H; k++) wrong += got[i * IMG_W * IMG_H + k] != (float)pixel(i, k);
   CHECK_EQ(wrong, 0);
-  CHECK_EQ(rc_image_stream_decoded(st), N_IMAGES);
-  rc_image_stream_free(st);
-  rc_image_set_free(&set);
+  CHECK_EQ(rc_image_stream_decoded(im.st), N_IMAGES);
+  images_close(&im);
 }
 
 /* A view over the stream with every image, converted per batch. */
@@ -215,14 +230,11 @@ static void unreadable_file_stops_at_its_batch(void) {
   char dir[600];
   snprintf(dir, sizeof dir, "%s/bad", tmpdir);
   write_images(dir, 7);
-  rc_image_set set;
-  rc_err e = {0};
-  CHECK_STATUS(rc_image_set_open(&set, dir, RC_IMAGE_LABELS_NONE, &e), RC_OK);
-  rc_image_stream *st = NULL;
-  rc_array view;
-  CHECK_STATUS(rc_image_stream_open(&st, &view, &set, &gray_prep, 0, &e), RC_OK);
+  images im;
+  images_open(&im, dir, RC_IMAGE_LABELS_NONE, 0);
   rc_dataset d;
-  stream_view(&d, &view);
+  stream_view(&d, &im.view);
+  rc_err e = {0};
   int64_t at = batch_holding(&d, 7);
   printf("image 7 is in batch %lld of epoch 0\n", (long long)at);
   rc__prefetch_plan p = {&d, 5, 4, 0, 4, 3, 0, 0, 3, 0, 2, 3};
@@ -242,8 +254,7 @@ static void unreadable_file_stops_at_its_batch(void) {
   }
   rc__prefetch_stop(pf);
   rc_dataset_free(&d);
-  rc_image_stream_free(st);
-  rc_image_set_free(&set);
+  images_close(&im);
 }
 
 /* With skip_bad, an epoch of batches from 1 and 3 workers: identical bytes;
@@ -254,17 +265,14 @@ static void skip_bad_epoch(int labels, int bad, int stand_in) {
   snprintf(dir, sizeof dir, "%s/skip%d", tmpdir, bad);
   write_images(dir, bad);
   snprintf(list, sizeof list, "%s/list.txt", dir);
-  rc_image_set set;
   rc_err e = {0};
-  CHECK_STATUS(rc_image_set_open(&set, list, labels ? RC_IMAGE_LABELS_LIST : RC_IMAGE_LABELS_NONE, &e), RC_OK);
   enum { PX = IMG_W * IMG_H };
   float epoch_bytes[2][N_IMAGES * PX];
   for (int run = 0; run < 2; run++) {
-    rc_image_stream *st = NULL;
-    rc_array view;
-    CHECK_STATUS(rc_image_stream_open(&st, &view, &set, &gray_prep, 1, &e), RC_OK);
+    images im;
+    images_open(&im, list, labels ? RC_IMAGE_LABELS_LIST : RC_IMAGE_LABELS_NONE, 1);
     rc_dataset d;
-    stream_view(&d, &view);
+    stream_view(&d, &im.view);
     rc__prefetch_plan p = {&d, 5, 4, 0, 4, 3, 0, 0, 3, 0, run ? 3 : 1, run ? 4 : 1};
     rc__prefetch *pf = NULL;
     CHECK_STATUS(rc__prefetch_start(&pf, &p, &e), RC_OK);
@@ -289,7 +297,7 @@ static void skip_bad_epoch(int labels, int bad, int stand_in) {
     }
     rc_image_load listed;
     memset(&listed, 0, sizeof listed);
-    CHECK_STATUS(rc_image_stream_skipped(st, &listed, &e), RC_OK);
+    CHECK_STATUS(rc_image_stream_skipped(im.st, &listed, &e), RC_OK);
     CHECK_EQ(listed.n_skipped, 1);
     if (listed.n_skipped == 1) {
       CHECK_EQ(listed.skipped[0], bad);
@@ -297,10 +305,9 @@ static void skip_bad_epoch(int labels, int bad, int stand_in) {
     }
     rc_image_load_free(&listed);
     rc_dataset_free(&d);
-    rc_image_stream_free(st);
+    images_close(&im);
   }
   CHECK_MEM_EQ(epoch_bytes[0], epoch_bytes[1], sizeof epoch_bytes[0]);
-  rc_image_set_free(&set);
 }
 
 static void skip_bad_stands_in_the_same_image(void) {
@@ -317,20 +324,16 @@ static void skip_bad_with_nothing_readable_left(void) {
   FILE *f = fopen(list, "w");
   fprintf(f, "img02.png 0\nimg05.png 1\n"); /* the unreadable image is alone in its label */
   fclose(f);
-  rc_image_set set;
-  rc_err e = {0};
-  CHECK_STATUS(rc_image_set_open(&set, list, RC_IMAGE_LABELS_LIST, &e), RC_OK);
-  rc_image_stream *st = NULL;
-  rc_array view;
-  CHECK_STATUS(rc_image_stream_open(&st, &view, &set, &gray_prep, 1, &e), RC_OK);
+  images im;
+  images_open(&im, list, RC_IMAGE_LABELS_LIST, 1);
   uint8_t px[IMG_W * IMG_H];
-  CHECK_STATUS(rc_image_stream_read(st, px, 0, &e), RC_ERR_INVALID);
+  rc_err e = {0};
+  CHECK_STATUS(rc_image_stream_read(im.st, px, 0, &e), RC_ERR_INVALID);
   printf("%s\n", e.msg);
   CHECK_NOT_NULL(strstr(e.msg, "img02.png"));
-  CHECK_STATUS(rc_image_stream_read(st, px, 1, &e), RC_OK);
+  CHECK_STATUS(rc_image_stream_read(im.st, px, 1, &e), RC_OK);
   CHECK_EQ(px[3], pixel(5, 3));
-  rc_image_stream_free(st);
-  rc_image_set_free(&set);
+  images_close(&im);
 }
 
 int main(int argc, char **argv) {
