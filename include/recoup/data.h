@@ -19,13 +19,19 @@
 #include "recoup/status.h"
 #include "recoup/tensor.h"
 
+struct rc_image_stream;
+
 /* An array that owns its data: t.data points into `owned` (or is `owned`).
  * When `mapped` is non-zero, `owned` is a read-only file mapping of that
- * many bytes (rc_array_map) rather than heap memory. */
+ * many bytes (rc_array_map) rather than heap memory. When `stream` is set
+ * (recoup/image.h), t is a uint8 (N, C, H, W) shape with no data: samples
+ * are decoded from their image files as they are converted, and the stream
+ * belongs to whoever opened it. */
 typedef struct rc_array {
   rc_tensor t;
   void *owned;
   size_t mapped;
+  const struct rc_image_stream *stream;
 } rc_array;
 
 /* Frees (or unmaps) the data and leaves an empty array; safe on a zeroed array. */
@@ -155,10 +161,14 @@ typedef struct rc_dataset {
   rc_data_norm norm[RC_DATASET_MAX_INPUTS];
   const rc_array *release[RC_DATASET_MAX_INPUTS];
   int64_t release_every[RC_DATASET_MAX_INPUTS];
+  /* Inputs whose samples are decoded from image files per batch (the
+   * source's stream, set by rc_dataset_convert); their tensors have no data. */
+  const struct rc_image_stream *stream[RC_DATASET_MAX_INPUTS];
 } rc_dataset;
 
-/* inputs: n_inputs arrays with equal dims[0]; labels NULL or int32 (N) as made
- * by rc_labels_to_int32. index NULL takes every sample 0..N-1 in order; else
+/* inputs: n_inputs arrays with equal dims[0] (data may be NULL for an input
+ * that rc_dataset_convert then binds to an image stream); labels NULL or
+ * int32 (N) as made by rc_labels_to_int32. index NULL takes every sample 0..N-1 in order; else
  * n_index indices, each checked to be in range. The order starts unshuffled. */
 RC_API rc_status rc_dataset_init(rc_dataset *d, const rc_tensor *inputs, int n_inputs,
                           const rc_tensor *labels, const int64_t *index, int64_t n_index,
@@ -169,7 +179,8 @@ RC_API void rc_dataset_free(rc_dataset *d);
  * and std arrays must outlive the view) instead of copying its raw dtype, so
  * a uint8 or float16 source costs its own size in memory, plus one batch.
  * `source` (may be NULL) is the array behind input i: when it is a file
- * mapping, its pages are released every 64 MiB of samples gathered. */
+ * mapping, its pages are released every 64 MiB of samples gathered; when it
+ * is an image stream, each gathered sample is decoded from its file. */
 RC_API void rc_dataset_convert(rc_dataset *d, int i, const rc_data_norm *norm, const rc_array *source);
 
 /* Make input i of `to` be input j of `from` (array, sample size, conversion):
@@ -189,7 +200,9 @@ RC_API int64_t rc_dataset_n_batches(const rc_dataset *d, int64_t batch_size, int
 /* Copy batch `batch` (samples [batch*batch_size, ...) of the current order)
  * into out[i] (one buffer per input, batch_size * sample bytes, the input's
  * dtype, or float32 after rc_dataset_convert) and labels_out (batch_size int32, may be NULL). *count receives the
- * samples copied (short for the last batch). Allocates nothing. */
+ * samples copied (short for the last batch). Allocates nothing, except
+ * what decoding an image-stream input takes for one image at a time.
+ * Safe to call from several threads at once on the same view. */
 RC_API rc_status rc_dataset_gather(void *const *out, int32_t *labels_out, int64_t *count,
                             const rc_dataset *d, int64_t batch, int64_t batch_size, rc_err *e);
 

@@ -59,6 +59,12 @@ typedef struct rc_distill_progress {
   rc_metrics val;            /* RC_DISTILL_EPOCH: validation of this epoch */
   int is_best;
   const char *note;          /* RC_DISTILL_NOTE: a line for the user */
+  /* Inputs read from files per batch (image folders, mapped arrays) are
+   * prefetched by worker threads: the share of the training steps' time
+   * spent waiting for them, and the samples per second the workers delivered
+   * (the rate that limits the step when the share is large); 0 otherwise. */
+  double input_wait_share;
+  double input_samples_per_s;
 } rc_distill_progress;
 
 typedef enum rc_distill_optimizer { RC_DISTILL_OPT_ADAMW = 0, RC_DISTILL_OPT_SGD = 1 } rc_distill_optimizer;

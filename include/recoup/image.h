@@ -112,4 +112,37 @@ RC_API rc_status rc_image_set_load(rc_image_load *out, const rc_image_set *s, co
                             int threads, rc_err *e);
 RC_API void rc_image_load_free(rc_image_load *l);
 
+/* ---- Images decoded as they are used -------------------------------------- */
+
+/* A set read per sample instead of up front: memory holds the images of the
+ * batches in flight, not the set. rc_image_stream_open fills `view` with a
+ * uint8 (N, C, H, W) shape and no data, bound to the stream; rc_data_to_float
+ * and dataset views built over it (rc_dataset_convert) decode each sample
+ * from its file. The set and prep must outlive the stream, and the stream
+ * every view of it. Reading is safe from several threads at once.
+ *
+ * Unreadable images: without skip_bad, reading one is an error naming the
+ * file. With skip_bad it is listed when first met, and its sample reads as
+ * the next readable image of the set (in set order, wrapping round) with the
+ * same label (any image when the set has no labels); the count N stays the
+ * set's. The substitute depends only on which files are unreadable, not on
+ * when or by which thread they were met, so runs stay byte-identical for a
+ * seed; they differ from rc_image_set_load, which leaves the files out. */
+typedef struct rc_image_stream rc_image_stream;
+
+RC_API rc_status rc_image_stream_open(rc_image_stream **out, rc_array *view, const rc_image_set *s,
+                                      const rc_image_prep *p, int skip_bad, rc_err *e);
+RC_API void rc_image_stream_free(rc_image_stream *st);
+
+/* Decode and prepare sample i into dst ((C, H, W) uint8). */
+RC_API rc_status rc_image_stream_read(const rc_image_stream *st, uint8_t *dst, int64_t i, rc_err *e);
+
+/* The images found unreadable so far, ascending by index, with their
+ * messages, into out->skipped/skipped_why/n_skipped (out's arrays are
+ * replaced; the images and labels members are left as they are). */
+RC_API rc_status rc_image_stream_skipped(const rc_image_stream *st, rc_image_load *out, rc_err *e);
+
+/* Images decoded so far (substitutes included), for throughput figures. */
+RC_API int64_t rc_image_stream_decoded(const rc_image_stream *st);
+
 #endif

@@ -15,12 +15,19 @@ const char *cli_data_file(const char *arg) {
 void cli_data_opts_init(cli_data_opts *o) {
   memset(o, 0, sizeof *o);
   o->scale = 1.0;
+  o->image_memory_mb = CLI_IMAGE_MEMORY_MB;
+  o->ranks = 1;
 }
 
 int cli_data_option(cli_data_opts *o, const char *cmd, const char *name, const char *value) {
   rc_err e = {0};
   if (!strcmp(name, "skip-bad")) {
     o->skip_bad = 1;
+    return 0;
+  }
+  if (!strcmp(name, "image-memory")) {
+    if (cli_parse_int(value, 0, 1L << 30, &o->image_memory_mb))
+      return cli_usage_error(cmd, "--image-memory expects a size in MB (0 or more), got '%s'", value);
     return 0;
   }
   if (!strcmp(name, "resize")) {
@@ -214,6 +221,7 @@ void cli_samples_free(cli_samples *s) {
   for (int i = 0; i < s->n_inputs; i++) rc_array_free(&s->inputs[i]);
   rc_array_free(&s->labels);
   rc_image_load_free(&s->decoded);
+  rc_image_stream_free(s->stream);
   rc_image_set_free(&s->images);
   memset(s, 0, sizeof *s);
 }

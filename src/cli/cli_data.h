@@ -8,6 +8,8 @@
 #include "recoup/model.h"
 
 #define CLI_MAX_DATA 8
+/* Default of --image-memory (MB). */
+#define CLI_IMAGE_MEMORY_MB 1024
 #define CLI_MAX_CHANNELS 64
 
 typedef struct cli_data_opts {
@@ -21,6 +23,12 @@ typedef struct cli_data_opts {
   int n_std;
   int resize;   /* --resize S: images' shorter side to S before the centre crop (0 = none) */
   int skip_bad; /* --skip-bad: leave unreadable images out, listed */
+  /* --image-memory MB: image sets whose decoded pixels fit are decoded once
+   * up front, larger ones per batch (0: always per batch). ranks: processes
+   * of an MPI job sharing the data (more than one: always per batch, so each
+   * rank decodes only its rows). */
+  long image_memory_mb;
+  int ranks;
   int given_scale, given_mean, given_std, given_resize; /* set on the command line */
   /* Preprocessing recorded in the model (cli_prep_apply): used for integer
    * sources (pixels, images) where the command line gives no value. */
@@ -45,6 +53,7 @@ typedef struct cli_samples {
   float mean[CLI_MAX_DATA][CLI_MAX_CHANNELS], std[CLI_MAX_DATA][CLI_MAX_CHANNELS];
   rc_image_set images;           /* when the data is a folder or list of images */
   rc_image_load decoded;         /* its labels, skipped images */
+  rc_image_stream *stream;       /* the set decoded per batch, or NULL (decoded up front) */
   int from_images;
 } cli_samples;
 
@@ -59,7 +68,9 @@ const char *cli_data_file(const char *arg);
   "  --labels folders|list    labels from the first level of subfolders (sorted, 0..K-1)\n" \
   "                           or from the list file's second column\n" \
   "  --resize S               images: shorter side to S (antialiased bilinear) before cropping\n" \
-  "  --skip-bad               images: skip unreadable files, list them, go on\n"
+  "  --skip-bad               images: skip unreadable files, list them, go on\n" \
+  "  --image-memory MB        images: decode once up front when the pixels fit in MB\n" \
+  "                           (default 1024), else per batch; 0: always per batch\n"
 
 void cli_data_opts_init(cli_data_opts *o);
 
@@ -94,6 +105,9 @@ rc_status cli_images_load(cli_samples *s, rc_array *out, const cli_data_opts *o,
 /* "--labels folders|list" for loaded images: take the set's labels. */
 int cli_images_labels_word(const char *labels);
 rc_status cli_images_take_labels(cli_samples *s, int64_t n_classes, rc_err *e);
+/* After the work on a set decoded per batch: the images found unreadable on
+ * the way (--skip-bad), listed on stderr and kept for cli_images_json. */
+void cli_images_finish(cli_samples *s);
 /* Class names and skipped images into a --json object (nothing without images). */
 struct cJSON;
 void cli_images_json(struct cJSON *root, const cli_samples *s);

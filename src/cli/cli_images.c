@@ -31,6 +31,8 @@ static const char *printable(const char *s, char *buf, size_t n) {
   return buf;
 }
 
+static void print_skipped(const cli_samples *s);
+
 static rc_status input_prep(rc_image_prep *p, const rc_model_io *input, const cli_data_opts *o, const char *file,
                             rc_err *e) {
   const rc_tensor *d = &input->shape;
@@ -57,14 +59,54 @@ static rc_status input_prep(rc_image_prep *p, const rc_model_io *input, const cl
   return RC_OK;
 }
 
-static void print_summary(const cli_samples *s, const rc_image_prep *p, const char *file) {
+static void print_summary(const cli_samples *s, const rc_image_prep *p, const char *file, int64_t n) {
   char buf[1024];
-  fprintf(stderr, "images: %lld from %s as %s %dx%d", (long long)s->decoded.images.t.dims[0],
-          printable(file, buf, sizeof buf), p->channels == 1 ? "gray" : "RGB", p->width, p->height);
+  fprintf(stderr, "images: %lld from %s as %s %dx%d", (long long)n, printable(file, buf, sizeof buf),
+          p->channels == 1 ? "gray" : "RGB", p->width, p->height);
   if (p->resize) fprintf(stderr, " (shorter side resized to %d, centre crop)", p->resize);
   fprintf(stderr, "\n");
   for (int k = 0; k < s->images.n_classes; k++)
     fprintf(stderr, "  class %d = %s\n", k, printable(s->images.classes[k], buf, sizeof buf));
+  print_skipped(s);
+}
+
+/* Decoded up front when the pixels fit in --image-memory and one process
+ * reads them; decoding once costs less than decoding every pass, so the
+ * only reason to decode per batch is memory (or, under MPI, that each rank
+ * then decodes only its own rows). */
+static int decode_up_front(const cli_data_opts *o, const rc_image_set *set, const rc_image_prep *p) {
+  double bytes = (double)set->n * p->channels * p->height * p->width;
+  return o->ranks <= 1 && o->image_memory_mb > 0 && bytes <= (double)o->image_memory_mb * 1048576.0;
+}
+
+/* A set decoded per batch: the view, and the labels the set gives. */
+static rc_status open_stream(cli_samples *s, rc_array *out, const cli_data_opts *o, const rc_image_prep *p,
+                             const char *file, rc_err *e) {
+  RC_TRY(rc_image_stream_open(&s->stream, out, &s->images, p, o->skip_bad, e));
+  print_summary(s, p, file, s->images.n);
+  fprintf(stderr, "images: decoded per batch (%.3g MB of pixels, over --image-memory %ld MB%s)\n",
+          (double)s->images.n * p->channels * p->height * p->width / 1048576.0, o->image_memory_mb,
+          o->ranks > 1 ? "; or shared by MPI ranks" : "");
+  /* Every image keeps its place (an unreadable one reads as a stand-in), so
+   * the labels are the set's own, borrowed. */
+  if (s->images.labels) s->decoded.labels.t = (rc_tensor){RC_DTYPE_INT32, 1, {s->images.n}, s->images.labels};
+  return RC_OK;
+}
+
+void cli_images_finish(cli_samples *s) {
+  rc_err e = {0};
+  if (!s->stream) return;
+  if (rc_image_stream_skipped(s->stream, &s->decoded, &e) != RC_OK) {
+    fprintf(stderr, "warning: %s\n", e.msg);
+    return;
+  }
+  print_skipped(s);
+  if (s->decoded.n_skipped)
+    fprintf(stderr, "images: each unreadable image's place was taken by the next readable one of its label\n");
+}
+
+static void print_skipped(const cli_samples *s) {
+  char buf[1024];
   for (int64_t i = 0; i < s->decoded.n_skipped; i++)
     fprintf(stderr, "  skipped: %s\n", printable(s->decoded.skipped_why[i], buf, sizeof buf));
   if (s->decoded.n_skipped)
@@ -83,11 +125,12 @@ rc_status cli_images_load(cli_samples *s, rc_array *out, const cli_data_opts *o,
   if (o->labels && !strcmp(o->labels, "list")) mode = RC_IMAGE_LABELS_LIST;
   RC_TRY(rc_image_set_open(&s->images, file, mode, e));
   s->from_images = 1;
+  if (!decode_up_front(o, &s->images, &p)) return open_stream(s, out, o, &p, file, e);
   struct timespec t0, t1;
   clock_gettime(CLOCK_MONOTONIC, &t0);
   RC_TRY(rc_image_set_load(&s->decoded, &s->images, &p, o->skip_bad, 0, e));
   clock_gettime(CLOCK_MONOTONIC, &t1);
-  print_summary(s, &p, file);
+  print_summary(s, &p, file, s->decoded.images.t.dims[0]);
   double secs = (double)(t1.tv_sec - t0.tv_sec) + 1e-9 * (double)(t1.tv_nsec - t0.tv_nsec);
   if (secs > 0) fprintf(stderr, "images: decoded in %.2f s (%.0f images/s)\n", secs, (double)s->images.n / secs);
   /* The array moves to the caller; the load keeps labels and skipped names. */
@@ -97,7 +140,7 @@ rc_status cli_images_load(cli_samples *s, rc_array *out, const cli_data_opts *o,
 }
 
 rc_status cli_images_take_labels(cli_samples *s, int64_t n_classes, rc_err *e) {
-  if (!s->from_images || !s->decoded.labels.owned)
+  if (!s->from_images || !s->decoded.labels.t.data)
     return rc_err_set(e, RC_ERR_INVALID, "--labels folders or list needs --data to be a folder or list of images");
   if (s->images.n_classes && s->images.n_classes != n_classes)
     return rc_err_set(e, RC_ERR_SHAPE, "%s: %d class folders, the model has %lld classes", s->images.root,
@@ -112,6 +155,7 @@ void cli_images_json(struct cJSON *root, const cli_samples *s) {
   if (!s->from_images) return;
   cJSON *img = cJSON_AddObjectToObject(root, "images");
   cJSON_AddNumberToObject(img, "count", (double)s->n);
+  cJSON_AddStringToObject(img, "decoded", s->stream ? "per batch" : "up front");
   if (s->images.n_classes) {
     cJSON *cls = cJSON_AddArrayToObject(img, "classes");
     for (int k = 0; k < s->images.n_classes; k++) cJSON_AddItemToArray(cls, cJSON_CreateString(s->images.classes[k]));

@@ -117,6 +117,7 @@ static int apply_option(distill_args *a, int c, const char *v) {
     case CLI_DISTILL_STD: return cli_data_option(&a->data, "distill", "std", v);
     case CLI_DISTILL_RESIZE: return cli_data_option(&a->data, "distill", "resize", v);
     case CLI_DISTILL_SKIP_BAD: return cli_data_option(&a->data, "distill", "skip-bad", v);
+    case CLI_DISTILL_IMAGE_MEMORY: return cli_data_option(&a->data, "distill", "image-memory", v);
     case CLI_DISTILL_CACHE_MB: a->cfg.cache_bytes = (size_t)l << 20; return 0;
     case CLI_DISTILL_AUGMENT: return add_augment(a, v);
     case CLI_DISTILL_EPOCHS: cfg->epochs = l; return 0;
@@ -368,6 +369,10 @@ static void fmt_time(double s, char *buf, size_t n) {
   snprintf(buf, n, "%ld:%02ld:%02ld", t / 3600, t / 60 % 60, t % 60);
 }
 
+/* Reading input is shown once the step waits for it this share of the time:
+ * then the readers' rate, not the step, sets the pace. */
+#define CLI_INPUT_BOUND_SHARE 0.05
+
 static void on_progress(void *user, const rc_distill_progress *p) {
   progress_state *ps = user;
   char eta[32], loss[32], kl[32];
@@ -381,17 +386,21 @@ static void on_progress(void *user, const rc_distill_progress *p) {
     return;
   }
   fmt_time(p->eta_s, eta, sizeof eta);
+  char input[64] = "";
+  if (p->input_wait_share >= CLI_INPUT_BOUND_SHARE)
+    snprintf(input, sizeof input, "  input-bound: %.0f samples/s read, %.0f%% waiting", p->input_samples_per_s,
+             100 * p->input_wait_share);
   if (ps->tty) {
     if (p->elapsed_s - ps->last_print < 0.2 && p->step != p->steps) return;
     ps->last_print = p->elapsed_s;
-    fprintf(stderr, "\r\033[Kepoch %lld/%lld  step %lld/%lld  loss %s  %.0f samples/s  %s left",
+    fprintf(stderr, "\r\033[Kepoch %lld/%lld  step %lld/%lld  loss %s  %.0f samples/s  %s left%s",
             (long long)p->epoch, (long long)p->epochs, (long long)p->step, (long long)p->steps, loss,
-            p->samples_per_s, eta);
+            p->samples_per_s, eta, input);
     fflush(stderr);
   } else if (p->elapsed_s - ps->last_print >= 10 || p->step == p->steps) {
     ps->last_print = p->elapsed_s;
-    fprintf(stderr, "epoch %lld/%lld step %lld/%lld loss %s %.0f samples/s %s left\n", (long long)p->epoch,
-            (long long)p->epochs, (long long)p->step, (long long)p->steps, loss, p->samples_per_s, eta);
+    fprintf(stderr, "epoch %lld/%lld step %lld/%lld loss %s %.0f samples/s %s left%s\n", (long long)p->epoch,
+            (long long)p->epochs, (long long)p->step, (long long)p->steps, loss, p->samples_per_s, eta, input);
   }
 }
 
@@ -688,6 +697,7 @@ int rc_cmd_distill(int argc, char **argv) {
     goto out;
   }
   /* The student's recorded preprocessing, else the teacher's. */
+  a.data.ranks = rc_dist_size(cli_dist());
   if (cli_prep_apply(&a.data, student, &e) != RC_OK) goto out;
   if (!a.data.recorded && cli_prep_apply(&a.data, teacher, &e) != RC_OK) goto out;
   if (cli_synth_count(a.data.data[0]) > 0 ? synth_samples(&train, &a, teacher, &e) != RC_OK
@@ -728,6 +738,10 @@ int rc_cmd_distill(int argc, char **argv) {
   output_dir(a.out, cache_dir, sizeof cache_dir); /* a spilled teacher cache goes beside the output */
   a.cfg.cache_dir = cache_dir;
   if (rc_distill_train(&r, teacher, student, &d, &a.cfg, &e) != RC_OK) goto out;
+  if (root) {
+    cli_images_finish(&train);
+    cli_images_finish(&val);
+  }
   if (!root) {
     rc = RC_EXIT_OK;
     goto out;

@@ -74,6 +74,7 @@ static int parse_args(eval_args *a, int argc, char **argv) {
       {"threads", required_argument, NULL, 't'}, {"json", no_argument, NULL, 'j'},
       {"output-loss", required_argument, NULL, 'L'}, {"ignore-label", required_argument, NULL, 'I'},
       {"resize", required_argument, NULL, 'R'}, {"skip-bad", no_argument, NULL, 'K'},
+      {"image-memory", required_argument, NULL, 'G'},
       {"help", no_argument, NULL, 'h'},        {NULL, 0, NULL, 0}};
   memset(a, 0, sizeof *a);
   cli_data_opts_init(&a->data);
@@ -97,6 +98,7 @@ static int parse_args(eval_args *a, int argc, char **argv) {
       case 'D': if (cli_data_option(&a->data, "eval", "std", optarg)) return RC_EXIT_USAGE; break;
       case 'R': if (cli_data_option(&a->data, "eval", "resize", optarg)) return RC_EXIT_USAGE; break;
       case 'K': cli_data_option(&a->data, "eval", "skip-bad", NULL); break;
+      case 'G': if (cli_data_option(&a->data, "eval", "image-memory", optarg)) return RC_EXIT_USAGE; break;
       case 'r': a->ref = optarg; break;
       case 'o': a->out = optarg; break;
       case 't':
@@ -265,6 +267,7 @@ int rc_cmd_eval(int argc, char **argv) {
     if (a.ref && rc_model_load(&ref, a.ref, NULL, &e) != RC_OK) goto out;
     if (cli_samples_dataset(&d, &s, NULL, 0, &e) != RC_OK) goto out;
     if (eval_per_output(&r, &a, model, ref, &d, &e) != RC_OK) goto out;
+    cli_images_finish(&s); /* one pass read every image: the unreadable ones are known */
     if (a.out && write_outputs(&r, a.out, &e) != RC_OK) goto out;
     print_outputs_result(&a, &s, &r.metrics);
     rc = RC_EXIT_OK;
@@ -278,6 +281,7 @@ int rc_cmd_eval(int argc, char **argv) {
   es.batch = a.batch;
   es.keep_outputs = a.out != NULL;
   if (rc_eval_run(&r, model, ref, &d, &es, &e) != RC_OK) goto out;
+  cli_images_finish(&s); /* one pass read every image: the unreadable ones are known */
   if (a.out && write_outputs(&r, a.out, &e) != RC_OK) goto out;
   print_result(&a, &s, want_metrics ? &r.metrics : NULL, want_metrics ? r.classes : 0);
   rc = RC_EXIT_OK;

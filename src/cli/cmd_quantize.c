@@ -67,7 +67,8 @@ typedef struct quantize_args {
 } quantize_args;
 
 enum { OPT_DATA = 256, OPT_OUT, OPT_WBITS, OPT_ABITS, OPT_CALIB, OPT_PCT, OPT_BATCH, OPT_SCALE, OPT_MEAN, OPT_STD,
-       OPT_THREADS, OPT_JSON, OPT_MARGIN, OPT_RESIZE, OPT_SKIP_BAD, OPT_LIMIT, OPT_SEED };
+       OPT_THREADS, OPT_JSON, OPT_MARGIN, OPT_RESIZE, OPT_SKIP_BAD, OPT_LIMIT, OPT_SEED,
+       OPT_IMAGE_MEMORY };
 
 static int apply_option(quantize_args *a, int c, const char *v);
 static int apply_option_ctx(void *a, int c, const char *v) { return apply_option(a, c, v); }
@@ -122,6 +123,7 @@ static int apply_option(quantize_args *a, int c, const char *v) {
       if (cli_parse_int(v, 0, LONG_MAX, &a->seed)) return cli_usage_error("quantize", "--seed expects a count, got '%s'", v);
       return 0;
     case OPT_SKIP_BAD: return cli_data_option(&a->data, "quantize", "skip-bad", v);
+    case OPT_IMAGE_MEMORY: return cli_data_option(&a->data, "quantize", "image-memory", v);
     case OPT_THREADS:
       if (cli_parse_int(v, 0, 1024, &l)) return cli_usage_error("quantize", "--threads expects a count, got '%s'", v);
       a->threads = l;
@@ -141,7 +143,7 @@ static int parse_args(quantize_args *a, int argc, char **argv) {
       {"resize", required_argument, NULL, OPT_RESIZE},     {"skip-bad", no_argument, NULL, OPT_SKIP_BAD},
       {"limit", required_argument, NULL, OPT_LIMIT},       {"seed", required_argument, NULL, OPT_SEED},
       {"threads", required_argument, NULL, OPT_THREADS},   {"json", no_argument, NULL, OPT_JSON},
-      {"output-margin", required_argument, NULL, OPT_MARGIN},
+      {"output-margin", required_argument, NULL, OPT_MARGIN}, {"image-memory", required_argument, NULL, OPT_IMAGE_MEMORY},
       {"help", no_argument, NULL, 'h'},                    {NULL, 0, NULL, 0}};
   memset(a, 0, sizeof *a);
   cli_data_opts_init(&a->data);
@@ -360,6 +362,7 @@ int rc_cmd_quantize(int argc, char **argv) {
   written = 1;
   int64_t batch = a.cfg.batch < d.n ? a.cfg.batch : d.n;
   if (verify_written(&cmp, a.out, m, &d, batch, &e) != RC_OK) goto out;
+  cli_images_finish(&s);
   if (a.json)
     print_json(&a, &rep, &cmp, (long long)rc_model_file_bytes(m), file_size(a.out));
   else

@@ -49,6 +49,9 @@
     "images: shorter side to S (antialiased bilinear) before the centre crop to the input's H x W")               \
   X(SKIP_BAD, "skip-bad", CLI_OPT_FLAG, 0, 0, NULL, CLI_OPT_ANYWHERE, CLI_GROUP_DATA, NULL, NULL,                 \
     "images: skip unreadable files, list them, go on")                                                            \
+  X(IMAGE_MEMORY, "image-memory", CLI_OPT_INT, 0, 1 << 30, NULL, CLI_OPT_ANYWHERE, CLI_GROUP_DATA, "MB", "1024",  \
+    "images: decode once up front when the pixels fit in MB, else per batch by worker threads; 0: always "        \
+    "per batch")                                                                                                   \
   X(CACHE_MB, "cache-mb", CLI_OPT_INT, 1, 1e9, NULL, CLI_OPT_ANYWHERE, CLI_GROUP_DATA, "N", NULL,                 \
     "keep the teacher's cached outputs in memory up to N MB, beyond that in a mapped temporary file next to "     \
     "--out (default: a quarter of physical memory)")                                                              \

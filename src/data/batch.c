@@ -19,8 +19,7 @@ rc_status rc_dataset_init(rc_dataset *d, const rc_tensor *inputs, int n_inputs, 
   int64_t n_all = -1;
   for (int i = 0; i < n_inputs; i++) {
     const rc_tensor *t = &inputs[i];
-    if (t->rank < 1 || !t->data)
-      return rc__fail(e, RC_ERR_INVALID, "input %d has no sample axis or no data", i);
+    if (t->rank < 1) return rc__fail(e, RC_ERR_INVALID, "input %d has no sample axis", i);
     if (n_all >= 0 && t->dims[0] != n_all)
       return rc__fail(e, RC_ERR_SHAPE, "input %d has %lld samples, input 0 has %lld", i, (long long)t->dims[0],
                       (long long)n_all);
@@ -76,6 +75,7 @@ void rc_dataset_convert(rc_dataset *d, int i, const rc_data_norm *norm, const rc
   else
     rc_data_norm_identity(&d->norm[i]);
   d->release[i] = source && source->mapped ? source : NULL;
+  d->stream[i] = source ? source->stream : NULL;
   size_t sb = d->sample_bytes[i] ? d->sample_bytes[i] : 1;
   d->release_every[i] = (int64_t)(RELEASE_BYTES / sb) + 1; /* in samples */
   rc_tensor one = d->inputs[i];
@@ -91,15 +91,42 @@ void rc_dataset_take_input(rc_dataset *to, int i, const rc_dataset *from, int j)
   to->norm[i] = from->norm[j];
   to->release[i] = from->release[j];
   to->release_every[i] = from->release_every[j];
+  to->stream[i] = from->stream[j];
+}
+
+/* Samples of an image stream, decoded in parallel (each writes only its own
+ * rows, so the bytes do not depend on the thread count); the error reported
+ * is the first failing sample's in batch order, whichever thread met it.
+ * Prefetch workers set their own OpenMP thread count to one. */
+static rc_status gather_decoded(float *dst, const rc_dataset *d, const rc_array *src, int i, int64_t start,
+                                int64_t k, int64_t per, rc_err *e) {
+  int64_t first_bad = k;
+  rc_status st = RC_OK;
+#pragma omp parallel for schedule(dynamic, 1)
+  for (int64_t j = 0; j < k; j++) {
+    rc_err je = {0};
+    int64_t s = d->index[d->order[start + j]];
+    rc_status sj = rc_data_to_float(dst + j * per, src, s, 1, &d->norm[i], &je);
+    if (sj != RC_OK) {
+#pragma omp critical
+      if (j < first_bad) {
+        first_bad = j;
+        st = sj;
+        *e = je;
+      }
+    }
+  }
+  return st;
 }
 
 /* Convert samples of input i one at a time (they are scattered by the order). */
 static rc_status gather_float(float *dst, const rc_dataset *d, int i, int64_t start, int64_t k, rc_err *e) {
-  rc_array src = {d->inputs[i], NULL, 0};
+  rc_array src = {d->inputs[i], NULL, 0, d->stream[i]};
   /* Views share one mapping: a new pass over any of them starts from an
    * empty resident set, so passes do not pile up pages between them. */
   if (d->release[i] && start == 0) rc_array_release_pages(d->release[i]);
   int64_t per = rc_tensor_numel(&d->inputs[i]) / (d->inputs[i].dims[0] ? d->inputs[i].dims[0] : 1);
+  if (d->stream[i]) return gather_decoded(dst, d, &src, i, start, k, per, e);
   for (int64_t j = 0; j < k; j++) {
     int64_t s = d->index[d->order[start + j]];
     RC_TRY(rc_data_to_float(dst + j * per, &src, s, 1, &d->norm[i], e));
@@ -145,6 +172,8 @@ rc_status rc_dataset_gather(void *const *out, int32_t *labels_out, int64_t *coun
   int64_t start = batch * batch_size;
   int64_t k = d->n - start < batch_size ? d->n - start : batch_size;
   for (int i = 0; i < d->n_inputs; i++) {
+    if (!d->inputs[i].data && !(d->to_float[i] && d->stream[i]))
+      return rc__fail(e, RC_ERR_INVALID, "input %d of the dataset has no data", i);
     if (d->to_float[i]) {
       RC_TRY(gather_float(out[i], d, i, start, k, e));
       continue;

@@ -7,6 +7,7 @@
 
 #include "core/alloc.h"
 #include "data/data_internal.h"
+#include "recoup/image.h"
 
 void rc_data_norm_identity(rc_data_norm *n) {
   memset(n, 0, sizeof *n);
@@ -128,6 +129,22 @@ static rc_status norm_channels(int64_t *channels, const rc_tensor *t, const rc_d
   return RC_OK;
 }
 
+/* Samples of an image stream, decoded one at a time through a buffer of one
+ * image, then cast as any uint8 source. */
+static rc_status decode_to_float(float *out, const rc_array *in, int64_t first, int64_t count, size_t per,
+                                 rc_err *e) {
+  if (in->t.dtype != RC_DTYPE_UINT8) return rc__fail(e, RC_ERR_INVALID, "an image stream holds uint8 samples");
+  uint8_t *px = rc__malloc(per);
+  if (!px) return rc__fail(e, RC_ERR_NOMEM, "out of memory for one image of %zu bytes", per);
+  rc_status s = RC_OK;
+  for (int64_t k = 0; k < count && s == RC_OK; k++) {
+    s = rc_image_stream_read(in->stream, px, first + k, e);
+    if (s == RC_OK) cast_to_float(out + (size_t)k * per, px, RC_DTYPE_UINT8, 0, per);
+  }
+  rc__free(px);
+  return s;
+}
+
 rc_status rc_data_to_float(float *out, const rc_array *in, int64_t first, int64_t count,
                            const rc_data_norm *norm, rc_err *e) {
   const rc_tensor *t = &in->t;
@@ -150,7 +167,10 @@ rc_status rc_data_to_float(float *out, const rc_array *in, int64_t first, int64_
   if (per == 0) return RC_OK;
   size_t inner = per / (size_t)channels;
   size_t total = per * (size_t)count;
-  cast_to_float(out, t->data, t->dtype, per * (size_t)first, total);
+  if (in->stream)
+    RC_TRY(decode_to_float(out, in, first, count, per, e));
+  else
+    cast_to_float(out, t->data, t->dtype, per * (size_t)first, total);
   const float scale = norm->scale;
   for (int64_t s = 0; s < count; s++) {
     float *x = out + (size_t)s * per;

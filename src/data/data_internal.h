@@ -40,6 +40,15 @@ rc_status rc__gunzip(unsigned char **out, size_t *out_n, const unsigned char *p,
 rc_status rc__take_payload(rc_array *out, rc__src *s, size_t offset, size_t nbytes,
                            size_t elem_size, int file_le, rc_err *e);
 
+/* Images (image_set.c): read, decode and prepare image i of s into dst,
+ * (C, H, W) uint8, the message naming the file; and the checks a
+ * preparation must pass before any image is read. */
+struct rc_image_set;
+struct rc_image_prep;
+rc_status rc__image_read_one(uint8_t *dst, const struct rc_image_set *s, int64_t i, const struct rc_image_prep *p,
+                             rc_err *e);
+rc_status rc__image_prep_check(const struct rc_image_prep *p, rc_err *e);
+
 /* Does s end with suffix (given in lower case), ignoring ASCII case? */
 int rc__ends_with_ci(const char *s, const char *suffix);
 

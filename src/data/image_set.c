@@ -251,8 +251,7 @@ const char *rc_image_set_path(const rc_image_set *s, int64_t i, char *buf, size_
   return buf;
 }
 
-/* Read, decode and prepare image i into dst; the message names the file. */
-static rc_status load_one(uint8_t *dst, const rc_image_set *s, int64_t i, const rc_image_prep *p, rc_err *e) {
+rc_status rc__image_read_one(uint8_t *dst, const rc_image_set *s, int64_t i, const rc_image_prep *p, rc_err *e) {
   char path[MAX_PATH_LEN * 2];
   rc_image_set_path(s, i, path, sizeof path);
   uint8_t *buf = NULL;
@@ -277,13 +276,18 @@ void rc_image_load_free(rc_image_load *l) {
   memset(l, 0, sizeof *l);
 }
 
-rc_status rc_image_set_load(rc_image_load *out, const rc_image_set *s, const rc_image_prep *p, int skip_bad,
-                            int threads, rc_err *e) {
-  memset(out, 0, sizeof *out);
+rc_status rc__image_prep_check(const rc_image_prep *p, rc_err *e) {
   if (p->channels != 1 && p->channels != 3)
     return rc__fail(e, RC_ERR_INVALID, "images feed inputs of 1 or 3 channels, this one has %d", p->channels);
   if (p->height <= 0 || p->width <= 0)
     return rc__fail(e, RC_ERR_INVALID, "no crop size for the images (the model's input height and width)");
+  return RC_OK;
+}
+
+rc_status rc_image_set_load(rc_image_load *out, const rc_image_set *s, const rc_image_prep *p, int skip_bad,
+                            int threads, rc_err *e) {
+  memset(out, 0, sizeof *out);
+  RC_TRY(rc__image_prep_check(p, e));
   size_t per = 0, total = 0;
   if (!rc__mul_size((size_t)p->channels * (size_t)p->height, (size_t)p->width, &per) ||
       !rc__mul_size(per, (size_t)s->n, &total))
@@ -301,7 +305,7 @@ rc_status rc_image_set_load(rc_image_load *out, const rc_image_set *s, const rc_
 #pragma omp parallel for schedule(dynamic, 8) num_threads(nt > 0 ? nt : omp_get_max_threads())
   for (int64_t i = 0; i < s->n; i++) {
     rc_err ie = {0};
-    sts[i] = load_one(px + (size_t)i * per, s, i, p, &ie);
+    sts[i] = rc__image_read_one(px + (size_t)i * per, s, i, p, &ie);
     if (sts[i] != RC_OK) why[i] = rc__strdup(ie.msg);
   }
   rc_status st = RC_OK;

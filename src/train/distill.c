@@ -17,6 +17,7 @@
 #include "plan/inspect.h"
 #include "plan/load.h"
 #include "plan/plan.h"
+#include "train/batch_source.h"
 #include "train/bn_stats.h"
 #include "train/checkpoint.h"
 #include "train/dist.h"
@@ -471,6 +472,7 @@ typedef struct step_buffers {
   /* Lazy teacher passes: per row of the teacher's plan, the training
    * position it reads and the sample it caches (-1: none). */
   int64_t *slot_pos, *slot_sample;
+  rc__batch_source source;
 } step_buffers;
 
 /* Labels of a mixed batch count with the mixing weight: lambda for the
@@ -717,8 +719,10 @@ static uint64_t outputs_fingerprint(const run_state *st, uint64_t h) {
 static uint64_t data_fingerprint(const run_state *st, uint64_t h) {
   const rc_dataset *d = &st->train;
   for (int i = 0; i < d->n_inputs; i++) {
+    /* Images decoded per batch have no array to hash: their count is
+     * hashed with the pool's size in run_fingerprint. */
     const unsigned char *p = d->inputs[i].data;
-    size_t n = rc_tensor_nbytes(&d->inputs[i]);
+    size_t n = p ? rc_tensor_nbytes(&d->inputs[i]) : 0;
     for (size_t at = 0; at < n; at += FP_CHUNK) {
       h = rc__ckpt_fp_bytes(h, p + at, n - at < FP_CHUNK ? n - at : FP_CHUNK);
       if (d->release[i]) rc_array_release_pages(d->release[i]);
@@ -829,10 +833,7 @@ static rc_status train_step(loop_ctx *lc, const loop_state *ls, step_buffers *sb
                             rc_err *e) {
   run_state *st = lc->st;
   int64_t count;
-  rc_dataset part = st->train; /* this rank's rows of global batch ls->batch */
-  part.order = st->train.order + ls->batch * st->batch + st->offset;
-  part.n = st->local;
-  RC_TRY(rc_dataset_gather(sb->in, sb->labels, &count, &part, 0, st->local, e));
+  RC_TRY(rc__batch_source_next(&sb->source, ls->batch, sb->in, sb->labels, &count, e));
   if (st->augmenting) RC_TRY(augment_batch(st, ls, sb, e));
   RC_TRY(teacher_rows(st, sb, ls->batch, lc->spe, e));
   rc_params_zero_grad(st->ps);
@@ -914,6 +915,16 @@ static void trace_loss(loop_state *ls, double loss, int64_t total) {
   ls->window_steps = 0;
 }
 
+/* The share of the steps' time (step_s) spent waiting for input batches,
+ * and the rate the workers delivered them at: when waiting is a visible
+ * share, that rate is what limits the step. */
+static void input_progress(rc__batch_source *bs, double step_s, rc_distill_progress *pg) {
+  rc__prefetch_stats ps;
+  rc__batch_source_stats(bs, &ps);
+  pg->input_wait_share = step_s > 0 ? ps.wait_s / step_s : 0;
+  pg->input_samples_per_s = pg->elapsed_s > 0 ? (double)ps.samples / pg->elapsed_s : 0;
+}
+
 static rc_status train_loop(run_state *st, rc_distill_result *r, const rc_distill_data *d, rc_err *e) {
   const rc_distill_config *c = st->c;
   const rc_graph *g = st->sg;
@@ -957,16 +968,20 @@ static rc_status train_loop(run_state *st, rc_distill_result *r, const rc_distil
     if ((s = rc_params_save(st->ps, lc.good_slot, e)) != RC_OK) goto out;
     rc__log(&c->log, RC_LOG_INFO, "BatchNormalization running statistics re-estimated over the training samples");
   }
-  double t0 = now_s(), comm0 = rc_dist_comm_seconds(c->dist);
+  rc__batch_source_run run = {c->seed,  st->batch, st->offset,         st->local,         lc.spe,
+                              ls.epoch, ls.batch,  lc.total - ls.step, d->labels != NULL, 0};
+  if ((s = rc__batch_source_start(&sb.source, &st->train, &run, e)) != RC_OK) goto out;
+  double t0 = now_s(), comm0 = rc_dist_comm_seconds(c->dist), step_s = 0;
   int64_t start_step = ls.step, snap_every = lc.spe / 4 > 0 ? lc.spe / 4 : 1;
   rc_distill_progress pg = {0};
   pg.epochs = lc.epochs;
   pg.steps = lc.total;
   while (ls.step < lc.total && !ls.stopped) {
     if (ls.batch == 0 || ls.step == start_step) rc_dataset_shuffle(&st->train, c->seed, (uint64_t)ls.epoch);
-    double loss = 0;
+    double loss = 0, ts = now_s();
     int bad = 0;
     if ((s = train_step(&lc, &ls, &sb, &loss, &bad, e)) != RC_OK) goto out;
+    step_s += now_s() - ts;
     ls.step++;
     ls.batch++;
     if (bad) {
@@ -992,6 +1007,7 @@ static rc_status train_loop(run_state *st, rc_distill_result *r, const rc_distil
     pg.elapsed_s = el;
     pg.samples_per_s = el > 0 ? (double)((ls.step - start_step) * st->batch) / el : 0;
     pg.eta_s = ls.step > start_step ? el / (double)(ls.step - start_step) * (double)(lc.total - ls.step) : 0;
+    input_progress(&sb.source, step_s, &pg);
     notify(c, &pg);
     int epoch_done = ls.batch == lc.spe || ls.step == lc.total || ls.stopped;
     if (epoch_done && (s = end_epoch(&lc, &ls, &pg, e)) != RC_OK) goto out;
@@ -1028,6 +1044,7 @@ static rc_status train_loop(run_state *st, rc_distill_result *r, const rc_distil
   if ((s = check_ranks_agree(st, ls.step, e)) != RC_OK) goto out;
   r->after = ls.best;
 out:
+  rc__batch_source_stop(&sb.source);
   rc__free(sb.teacher);
   rc__free(sb.samples);
   rc__free(sb.labels);
