@@ -382,7 +382,7 @@ static size_t conv_workspace(const rc_kernel *k, int backward) {
   /* Room for both paths, so that the reference path stays selectable. */
   const size_t per_sample = sizeof(float) * (size_t)t * thread_floats(&g, backward);
   const int64_t nb = rc__conv_chunk(&g);
-  const size_t chunk = nb > 1 ? rc__conv_chunk_bytes(&g, nb) : 0;
+  const size_t chunk = nb > 1 ? rc__conv_chunk_bytes(&g, nb, backward, (int)t) : 0;
   return chunk > per_sample ? chunk : per_sample;
 }
 
@@ -393,10 +393,10 @@ static int depthwise_direct(const rc_kernel *k, const rc__conv_geom *g, int back
 }
 
 /* Samples per GEMM for the chunked path, or 1 for the per-sample path. */
-static int64_t chunk_of(const rc_kernel *k, const rc__conv_geom *g) {
+static int64_t chunk_of(const rc_kernel *k, const rc__conv_geom *g, int backward) {
   if (rc__conv_reference()) return 1;
   const int64_t nb = rc__conv_chunk(g);
-  return nb > 1 && k->work_bytes >= rc__conv_chunk_bytes(g, nb) ? nb : 1;
+  return nb > 1 && k->work_bytes >= rc__conv_chunk_bytes(g, nb, backward, 1) ? nb : 1;
 }
 
 /* Set each of the `channels` rows of y (length len) to its bias, or to zero. */
@@ -499,9 +499,9 @@ static rc_status conv_forward(const rc_kernel *k, rc_err *e) {
     depthwise_forward(&g, y, x, w, b);
     return RC_OK;
   }
-  const int64_t nb = chunk_of(k, &g);
+  const int64_t nb = chunk_of(k, &g, 0);
   if (nb > 1) {
-    rc__conv_chunk_forward(&g, nb, y, x, w, b, k->work);
+    rc__conv_chunk_forward(&g, nb, rc__conv_chunk_threads(&g, nb, 0, k->work_bytes), y, x, w, b, k->work);
     return RC_OK;
   }
   const size_t per = col_floats(&g);
@@ -581,9 +581,10 @@ static void conv_backward(const rc_kernel *k) {
     depthwise_backward(&g, cg.dx, cg.dw, cg.x, cg.w, cg.dy);
     return;
   }
-  const int64_t nb = chunk_of(k, &g);
+  const int64_t nb = chunk_of(k, &g, 1);
   if (nb > 1) {
-    rc__conv_chunk_backward(&g, nb, cg.dx, cg.dw, cg.x, cg.w, cg.dy, k->work);
+    rc__conv_chunk_backward(&g, nb, rc__conv_chunk_threads(&g, nb, 1, k->work_bytes), cg.dx, cg.dw, cg.x, cg.w,
+                            cg.dy, k->work);
     return;
   }
   const size_t col = col_floats(&g), per = thread_floats(&g, 1), dw_n = per - col;

@@ -58,13 +58,15 @@ void rc__fold_add(float *img, const float *col, int64_t ld, const rc__patch *g, 
 /* Samples per chunk for Conv's batched GEMM path; 1 where the per-sample
  * path serves (depthwise, one sample, maps large enough on their own). */
 int64_t rc__conv_chunk(const rc__conv_geom *g);
-/* Workspace the chunked path needs for nb samples per chunk. */
-size_t rc__conv_chunk_bytes(const rc__conv_geom *g, int64_t nb);
+/* Workspace the chunked path needs for nb samples per chunk on `threads`
+ * threads, and the threads that fit in work_bytes (at least 1). */
+size_t rc__conv_chunk_bytes(const rc__conv_geom *g, int64_t nb, int backward, int threads);
+int rc__conv_chunk_threads(const rc__conv_geom *g, int64_t nb, int backward, size_t work_bytes);
 /* y = b + W * x, nb samples per GEMM. */
-void rc__conv_chunk_forward(const rc__conv_geom *g, int64_t nb, float *y, const float *x, const float *w,
-                            const float *b, float *work);
+void rc__conv_chunk_forward(const rc__conv_geom *g, int64_t nb, int threads, float *y, const float *x,
+                            const float *w, const float *b, float *work);
 /* dx += input gradient, dw += weight gradient (either may be NULL). */
-void rc__conv_chunk_backward(const rc__conv_geom *g, int64_t nb, float *dx, float *dw, const float *x,
+void rc__conv_chunk_backward(const rc__conv_geom *g, int64_t nb, int threads, float *dx, float *dw, const float *x,
                              const float *w, const float *dy, float *work);
 
 /* ---- depthwise.c ---- */
