@@ -116,36 +116,34 @@ static int team_size(int64_t items, size_t per, size_t work_bytes) {
   return t > 1 ? (int)t : 1;
 }
 
-/* Input cell (r, c) in the phase grid, or -1 when no window reads it. */
-static int64_t grid_index(const dw_plane *d, int64_t r, int64_t c) {
-  const int64_t R = r + d->ph, C = c + d->pw;
-  if (R >= d->Hp || C >= d->Wp) return -1;
-  return ((R % d->sh) * d->sw + C % d->sw) * d->Hq * d->Wq + (R / d->sh) * d->Wq + C / d->sw;
-}
-
-/* xq (phase grid) <- x (H, W), zeros where windows read padding. */
 /* Moves the cells of x (H, W) that windows read to or from the phase grid
- * xq; with unit column stride a row's cells are contiguous in both. */
+ * xq, one row and one column phase at a time: phase b of a row holds the
+ * input columns q*sw + b - pw, a strided run the compiler turns into
+ * vector loads or stores. */
 static void move_cells(float *xq, float *x, const dw_plane *d, int into_grid) {
   int64_t n = d->W;
   if (d->pw + n > d->Wp) n = d->Wp - d->pw;
+  const int64_t phase = d->Hq * d->Wq, sw = d->sw;
   for (int64_t r = 0; r < d->H && n > 0; r++) {
-    const int64_t at = grid_index(d, r, 0);
-    if (at < 0) continue;
-    float *xr = x + r * d->W;
-    if (d->sw == 1) {
+    const int64_t R = r + d->ph;
+    if (R >= d->Hp) break;
+    float *xr = x + r * d->W, *row = xq + (R % d->sh) * sw * phase + (R / d->sh) * d->Wq;
+    if (sw == 1) {
       if (into_grid)
-        memcpy(xq + at, xr, sizeof(float) * (size_t)n);
+        memcpy(row + d->pw, xr, sizeof(float) * (size_t)n);
       else
-        memcpy(xr, xq + at, sizeof(float) * (size_t)n);
+        memcpy(xr, row + d->pw, sizeof(float) * (size_t)n);
       continue;
     }
-    for (int64_t c = 0; c < n; c++) {
-      float *q = xq + grid_index(d, r, c);
+    for (int64_t b = 0; b < sw; b++) {
+      /* q with 0 <= q*sw + b - pw < n */
+      const int64_t lo = d->pw > b ? (d->pw - b + sw - 1) / sw : 0, hi = (n + d->pw - b + sw - 1) / sw;
+      float *dst = row + b * phase;
+      const int64_t shift = b - d->pw;
       if (into_grid)
-        *q = xr[c];
+        for (int64_t q = lo; q < hi; q++) dst[q] = xr[q * sw + shift];
       else
-        xr[c] = *q;
+        for (int64_t q = lo; q < hi; q++) xr[q * sw + shift] = dst[q];
     }
   }
 }
