@@ -18,10 +18,17 @@
 /* Columns a chunk aims at, and the most a chunk's buffers may take. */
 #define CHUNK_COLUMNS 256
 #define CHUNK_BYTES ((size_t)1 << 20)
+/* Output cells below which a 1x1 convolution takes chunks. */
+#define DIRECT_CHUNK_BELOW 16
 
 int64_t rc__conv_chunk(const rc__conv_geom *g) {
   const int64_t P = g->out_sp;
   if (rc__conv_depthwise(g) || P <= 0 || g->N <= 1 || g->Cg * g->K <= 0) return 1;
+  /* A 1x1 convolution needs no unfolding one sample at a time, while a
+   * chunk copies its input and output: instruction counts (callgrind, 64
+   * samples, mobilenet_v2 layers) favour the chunk at 2x2 maps (0.66x
+   * forward, 0.64x backward) and the plain GEMMs at 4x4 (1.37x, 1.08x). */
+  if (g->direct && P >= DIRECT_CHUNK_BELOW) return 1;
   int64_t nb = (CHUNK_COLUMNS + P - 1) / P;
   if (nb > g->N) nb = g->N;
   const size_t per = sizeof(float) * (size_t)(g->C * g->K + g->M) * (size_t)P;
