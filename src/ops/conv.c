@@ -424,7 +424,8 @@ static void bias_grad(float *db, const float *dy, int64_t N, int64_t M, int64_t 
 
 /* Depthwise convolution (one input and one output channel per group): each
  * plane is a K-tap stencil of its own channel. Planes are independent, so one
- * thread team covers the whole batch and no column matrix is needed. */
+ * thread team covers the whole batch and no column matrix is needed. This
+ * tap walk is the plain path: depthwise.c serves one and two spatial axes. */
 
 /* y (N,C,P) = b + sum_k w[c,k] * x shifted by tap k */
 static void depthwise_forward(const rc__conv_geom *g, float *y, const float *x, const float *w, const float *b) {
