@@ -81,6 +81,24 @@ def main():
     run_case(w, gen, "conv2d_1x1",
              lambda x, k, b: F.conv2d(x, k, b),
              [("x", draw(gen, 2, 5, 4, 4)), ("w", draw(gen, 3, 5, 1, 1)), ("b", draw(gen, 3))])
+    # Shapes that take Conv's fast paths (tests/test_ops_conv_ref.c names them):
+    # several samples per GEMM with a remainder chunk, a 1x1 over a batch,
+    # direct depthwise kernels at stride 1 and 2, batch 1 and 1-D.
+    run_case(w, gen, "conv2d_chunk",
+             lambda x, k, b: F.conv2d(x, k, b, padding=1),
+             [("x", draw(gen, 6, 3, 8, 8)), ("w", draw(gen, 5, 3, 3, 3)), ("b", draw(gen, 5))])
+    run_case(w, gen, "conv2d_1x1_batch",
+             lambda x, k, b: F.conv2d(x, k, b),
+             [("x", draw(gen, 5, 7, 3, 5)), ("w", draw(gen, 9, 7, 1, 1)), ("b", draw(gen, 9))])
+    run_case(w, gen, "conv2d_dw_s1",
+             lambda x, k, b: F.conv2d(x, k, b, padding=1, groups=5),
+             [("x", draw(gen, 3, 5, 9, 7)), ("w", draw(gen, 5, 1, 3, 3)), ("b", draw(gen, 5))])
+    run_case(w, gen, "conv2d_dw_s2_b1",
+             lambda x, k, b: F.conv2d(x, k, b, stride=2, padding=(1, 2), groups=6),
+             [("x", draw(gen, 1, 6, 9, 8)), ("w", draw(gen, 6, 1, 3, 3)), ("b", draw(gen, 6))])
+    run_case(w, gen, "conv1d_dw",
+             lambda x, k, b: F.conv1d(x, k, b, padding=2, dilation=2, groups=4),
+             [("x", draw(gen, 3, 4, 17)), ("w", draw(gen, 4, 1, 5)), ("b", draw(gen, 4))])
     run_case(w, gen, "conv1d",
              lambda x, k, b: F.conv1d(x, k, b, stride=2, padding=1),
              [("x", draw(gen, 3, 2, 10)), ("w", draw(gen, 4, 2, 3)), ("b", draw(gen, 4))])

@@ -27,6 +27,7 @@ typedef struct oh_case {
   rc_tensor din_t[OH_MAX_IO], dout_t[OH_MAX_IO];
   rc_tensor *din[OH_MAX_IO], *dout[OH_MAX_IO];
   void *work, *saved;
+  size_t work_bytes; /* what oh_run sized for forward and backward */
   int training;
   int n_out; /* outputs to create (default 1) */
 } oh_case;
@@ -120,6 +121,7 @@ static rc_status oh_run(oh_case *c, rc_err *e) {
   if (!c->saved) c->saved = rc__arena_zalloc(&c->arena, (n->def->saved ? n->def->saved(&k) : 0) + 64);
   k.work = c->work;
   k.work_bytes = ws > wb ? ws : wb;
+  if (!c->work_bytes) c->work_bytes = k.work_bytes;
   k.saved = c->saved;
   return n->def->forward(&k, e);
 }
@@ -160,8 +162,8 @@ static double oh_gradcheck(oh_case *c, const int *check, double eps) {
     c->din_t[i].data = rc__arena_zalloc(&c->arena, rc_tensor_nbytes(&c->in_t[i]));
     c->din[i] = &c->din_t[i];
   }
-  rc_kernel k = {n, n->params, n->n_in, n->n_out, c->in, c->out, c->din, c->dout, c->work, c->saved,
-                 c->training};
+  rc_kernel k = {n,      n->params, n->n_in, n->n_out, c->in,       c->out,
+                 c->din, c->dout,   c->work, c->saved, c->training, c->work_bytes};
   n->def->backward(&k);
   double worst = 0, worst_g = 0, worst_num = 0;
   int worst_in = -1;

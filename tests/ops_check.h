@@ -50,8 +50,8 @@ static void run_backward(oh_case *c, const float *g, const int *inputs) {
     c->din[i] = &c->din_t[i];
   }
   rc_node *n = &c->node;
-  rc_kernel k = {n, n->params, n->n_in, n->n_out, c->in, c->out, c->din, c->dout, c->work, c->saved,
-                 c->training};
+  rc_kernel k = {n,      n->params, n->n_in, n->n_out, c->in,       c->out,
+                 c->din, c->dout,   c->work, c->saved, c->training, c->work_bytes};
   n->def->backward(&k);
 }
 static const float *grad_of(oh_case *c, int i) { return (const float *)c->din_t[i].data; }

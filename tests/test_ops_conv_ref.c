@@ -113,6 +113,26 @@ static void a_conv2d_depthwise(oh_case *c) {
   oh_attr_int(c, "group", 3);
 }
 static void a_none(oh_case *c) { (void)c; }
+/* F.conv2d(padding=1) */
+static void a_pad1(oh_case *c) { ints(c, "pads", 4, 1, 1, 1, 1); }
+/* F.conv2d(padding=1, groups=5) */
+static void a_dw_s1(oh_case *c) {
+  a_pad1(c);
+  oh_attr_int(c, "group", 5);
+}
+/* F.conv2d(stride=2, padding=(1, 2), groups=6) */
+static void a_dw_s2(oh_case *c) {
+  ints(c, "strides", 2, 2, 2, 0, 0);
+  ints(c, "pads", 4, 1, 2, 1, 2);
+  oh_attr_int(c, "group", 6);
+}
+/* F.conv1d(padding=2, dilation=2, groups=4) */
+static void a_dw_1d(oh_case *c) {
+  ints(c, "pads", 2, 2, 2, 0, 0);
+  ints(c, "dilations", 1, 2, 0, 0, 0);
+  oh_attr_int(c, "group", 4);
+}
+
 /* F.conv1d(stride=2, padding=1) */
 static void a_conv1d(oh_case *c) {
   ints(c, "strides", 1, 2, 0, 0, 0);
@@ -176,6 +196,11 @@ static const ref_case cases[] = {
     {"conv2d_depthwise", "Conv", 13, {"x", "w", "b"}, a_conv2d_depthwise, 0},
     {"conv2d_1x1", "Conv", 13, {"x", "w", "b"}, a_none, 0},
     {"conv1d", "Conv", 13, {"x", "w", "b"}, a_conv1d, 0},
+    {"conv2d_chunk", "Conv", 13, {"x", "w", "b"}, a_pad1, 0},
+    {"conv2d_1x1_batch", "Conv", 13, {"x", "w", "b"}, a_none, 0},
+    {"conv2d_dw_s1", "Conv", 13, {"x", "w", "b"}, a_dw_s1, 0},
+    {"conv2d_dw_s2_b1", "Conv", 13, {"x", "w", "b"}, a_dw_s2, 0},
+    {"conv1d_dw", "Conv", 13, {"x", "w", "b"}, a_dw_1d, 0},
     {"convt2d_group", "ConvTranspose", 13, {"x", "w", "b"}, a_convt2d_group, 0},
     {"convt2d_dilated", "ConvTranspose", 13, {"x", "w", "b"}, a_convt2d_dilated, 0},
     {"maxpool_ceil", "MaxPool", 12, {"x"}, a_maxpool_ceil, 1},

@@ -1,23 +1,26 @@
 /* Op family: conv (Conv, ConvTranspose). Forward and backward side by side.
  *
- * Both ops work per sample through an unfolded-patch ("column") matrix and
- * one GEMM per group: Conv unfolds its input and multiplies by the weights;
- * ConvTranspose multiplies by the transposed weights and folds the columns
- * back into its output. The same helpers (unfold = im2col, writing each
- * column cell once; fold = col2im, a walk over one kernel tap) serve Conv's
- * forward and input gradient and ConvTranspose's forward and input
- * gradient, since each op is the other's adjoint. A 1x1, stride-1, unpadded convolution skips the
- * unfolding (the input already is the column matrix); depthwise Conv walks
- * the taps directly, one thread per plane, with no column matrix. Spatial
- * axes are canonicalised to 3 (missing leading axes have size 1), so 1-D,
- * 2-D and 3-D share one path. */
+ * Both ops work through an unfolded-patch ("column") matrix and GEMMs
+ * (patch.c: unfold = im2col, writing each column cell once; fold = col2im,
+ * a walk over one kernel tap). The same helpers serve Conv's forward and
+ * input gradient and ConvTranspose's forward and input gradient, since each
+ * op is the other's adjoint. Conv picks one of three paths: several samples
+ * per GEMM where feature maps are small (conv_batch.c; a 1x1 convolution's
+ * unfolding is then a copy), direct vector kernels for depthwise
+ * convolution (depthwise.c), and otherwise one sample per thread, with a
+ * 1x1, stride-1, unpadded convolution skipping the unfolding (the input
+ * already is the column matrix). That per-sample path, with the tap walk
+ * for depthwise, is also the plain path RECOUP_CONV_PATH=reference selects
+ * (kernel_choice.h). Spatial axes are canonicalised to 3 (missing leading
+ * axes have size 1), so 1-D, 2-D and 3-D share one path. */
 #include <cblas.h>
 #include <limits.h>
 #include <omp.h>
 #include <string.h>
 
+#include "ops/conv_impl.h"
+#include "ops/kernel_choice.h"
 #include "ops/op.h"
-#include "ops/window.h"
 
 #define AX RC_WIN_MAX_AXES
 
@@ -136,123 +139,6 @@ rc_status rc__window_resolve(const rc_node *n, const rc__window *w, int nsp, con
   return RC_OK;
 }
 
-/* ---- unfold / fold ---- */
-
-/* One unfolding: an image of `channels` planes of size img[], windows of
- * size k[] placed at positions pos[] (image cell = p*s - pad + kk*d). */
-typedef struct patch {
-  int64_t img[AX], pos[AX], k[AX], s[AX], d[AX], pad[AX];
-} patch;
-
-static int64_t prod3(const int64_t *v) { return v[0] * v[1] * v[2]; }
-
-/* Positions p in [0, npos) with 0 <= p*s + off < size, as [*lo, *hi). */
-static void valid_range(int64_t off, int64_t s, int64_t size, int64_t npos, int64_t *lo, int64_t *hi) {
-  int64_t l = off >= 0 ? 0 : (-off + s - 1) / s;
-  int64_t h = size - off <= 0 ? 0 : (size - off - 1) / s + 1;
-  if (h > npos) h = npos;
-  if (l > h) l = h;
-  *lo = l;
-  *hi = h;
-}
-
-/* Where kernel tap kr reads: the image offset on each axis and the valid
- * positions [lo, hi) whose cell lies inside the image. */
-static void tap_ranges(const patch *g, int64_t kr, int64_t *off0, int64_t *off1, int64_t *off2, int64_t *lo0,
-                       int64_t *hi0, int64_t *lo1, int64_t *hi1, int64_t *lo2, int64_t *hi2) {
-  int64_t ka = kr / (g->k[1] * g->k[2]), kb = (kr / g->k[2]) % g->k[1], kc = kr % g->k[2];
-  *off0 = ka * g->d[0] - g->pad[0];
-  *off1 = kb * g->d[1] - g->pad[1];
-  *off2 = kc * g->d[2] - g->pad[2];
-  valid_range(*off0, g->s[0], g->img[0], g->pos[0], lo0, hi0);
-  valid_range(*off1, g->s[1], g->img[1], g->pos[1], lo1, hi1);
-  valid_range(*off2, g->s[2], g->img[2], g->pos[2], lo2, hi2);
-}
-
-/* What a walk over one kernel tap does between a position plane (length P)
- * and one image plane. */
-typedef enum tap_mode {
-  TAP_SCATTER,    /* img[cell] += v * pos[p] (fold; depthwise input gradient) */
-  TAP_ACCUMULATE, /* pos[p] += v * img[cell] (depthwise forward) */
-  TAP_DOT         /* returns sum of pos[p] * img[cell] (depthwise weight gradient) */
-} tap_mode;
-
-/* Walks kernel tap kr (index into k[0]*k[1]*k[2]) over every position. */
-static double tap_walk(tap_mode mode, float *pos, float *img, const patch *g, int64_t kr, float v) {
-  int64_t off0, off1, off2, lo0, hi0, lo1, hi1, lo2, hi2;
-  tap_ranges(g, kr, &off0, &off1, &off2, &lo0, &hi0, &lo1, &hi1, &lo2, &hi2);
-  const int64_t st = g->s[2];
-  double dot = 0;
-  for (int64_t p0 = lo0; p0 < hi0; p0++)
-    for (int64_t p1 = lo1; p1 < hi1; p1++) {
-      float *irow = img + ((p0 * g->s[0] + off0) * g->img[1] + p1 * g->s[1] + off1) * g->img[2] + off2;
-      float *prow = pos + (p0 * g->pos[1] + p1) * g->pos[2];
-      switch (mode) {
-        case TAP_SCATTER:
-          for (int64_t p = lo2; p < hi2; p++) irow[p * st] += v * prow[p];
-          break;
-        case TAP_ACCUMULATE:
-          for (int64_t p = lo2; p < hi2; p++) prow[p] += v * irow[p * st];
-          break;
-        case TAP_DOT: {
-          /* Rows here are short (a few to 64 cells): a plain serial sum
-           * beats a vector reduction's set-up (perf, mobilenet_v2 step). */
-          float part = 0;
-          for (int64_t p = lo2; p < hi2; p++) part += prow[p] * irow[p * st];
-          dot += part;
-          break;
-        }
-      }
-    }
-  return dot;
-}
-
-static void zero(float *p, int64_t n) {
-  if (n > 0) memset(p, 0, sizeof(float) * (size_t)n);
-}
-
-/* pos[p] = img[cell] for kernel tap kr, 0 where the tap falls in padding.
- * Each output cell is written once: zeros go only where padding is, instead
- * of clearing the whole plane before the copy. */
-static void tap_gather(float *pos, const float *img, const patch *g, int64_t kr) {
-  int64_t off0, off1, off2, lo0, hi0, lo1, hi1, lo2, hi2;
-  tap_ranges(g, kr, &off0, &off1, &off2, &lo0, &hi0, &lo1, &hi1, &lo2, &hi2);
-  const int64_t P1 = g->pos[1], P2 = g->pos[2], st = g->s[2];
-  if (lo0 >= hi0 || lo1 >= hi1 || lo2 >= hi2) {
-    zero(pos, prod3(g->pos));
-    return;
-  }
-  zero(pos, lo0 * P1 * P2);
-  for (int64_t p0 = lo0; p0 < hi0; p0++) {
-    float *plane = pos + p0 * P1 * P2;
-    zero(plane, lo1 * P2);
-    for (int64_t p1 = lo1; p1 < hi1; p1++) {
-      const float *irow = img + ((p0 * g->s[0] + off0) * g->img[1] + p1 * g->s[1] + off1) * g->img[2] + off2;
-      float *prow = plane + p1 * P2;
-      zero(prow, lo2);
-      if (st == 1) memcpy(prow + lo2, irow + lo2, sizeof(float) * (size_t)(hi2 - lo2));
-      else for (int64_t p = lo2; p < hi2; p++) prow[p] = irow[p * st];
-      zero(prow + hi2, P2 - hi2);
-    }
-    zero(plane + hi1 * P2, (P1 - hi1) * P2);
-  }
-  zero(pos + hi0 * P1 * P2, (g->pos[0] - hi0) * P1 * P2);
-}
-
-/* col (channels*K, P) <- unfolded img (channels, img...). No threads of its
- * own: callers already run one sample per thread. */
-static void unfold(float *col, const float *img, const patch *g, int64_t channels) {
-  const int64_t K = prod3(g->k), P = prod3(g->pos), plane = prod3(g->img);
-  for (int64_t r = 0; r < channels * K; r++) tap_gather(col + r * P, img + (r / K) * plane, g, r % K);
-}
-
-/* img (channels, img...) += folded col (channels*K, P): the adjoint of unfold. */
-static void fold_add(float *img, const float *col, const patch *g, int64_t channels) {
-  const int64_t K = prod3(g->k), P = prod3(g->pos), plane = prod3(g->img);
-  for (int64_t r = 0; r < channels * K; r++)
-    tap_walk(TAP_SCATTER, (float *)(col + r * P), img + (r / K) * plane, g, r % K, 1.0f);
-}
-
 /* ---- Conv / ConvTranspose geometry ---- */
 
 typedef struct conv_params {
@@ -262,22 +148,6 @@ typedef struct conv_params {
   int n_out_pad, n_out_shape;
   int64_t out_pad[AX], out_shape[AX + 2]; /* output_shape as written: spatial, or (N, C, spatial...) */
 } conv_params;
-
-/* Everything a kernel needs, resolved from the input shapes. For Conv the
- * unfolded image is x and positions are y's cells; for ConvTranspose the
- * image is y and positions are x's cells. */
-typedef struct conv_geom {
-  int nsp;
-  int64_t N, C, M, G;   /* batch, input channels, output channels, groups */
-  int64_t Cg, Mg, K;    /* channels per group, kernel cells */
-  int64_t in_sp, out_sp; /* spatial cells of x and y */
-  int64_t out[AX];      /* y spatial dims (canonical) */
-  patch p;
-  int direct;           /* 1x1, stride 1, no padding: the column matrix is x itself */
-} conv_geom;
-
-/* One input and one output channel per group. */
-static int depthwise(const conv_geom *g) { return g->Cg == 1 && g->Mg == 1 && g->G > 1; }
 
 static rc_status conv_parse(rc_node *n, rc_arena *a, rc_err *e) {
   conv_params *p = rc__arena_zalloc(a, sizeof *p);
@@ -363,8 +233,8 @@ static rc_status transpose_resolve(const rc_node *n, const conv_params *cp, int 
   return RC_OK;
 }
 
-static rc_status conv_geometry(const rc_node *n, const conv_params *cp, const rc_tensor *x,
-                               const rc_tensor *w, const rc_tensor *b, conv_geom *g, rc_err *e) {
+static rc_status conv_geometry(const rc_node *n, const conv_params *cp, const rc_tensor *x, const rc_tensor *w,
+                               const rc_tensor *b, rc__conv_geom *g, rc_err *e) {
   memset(g, 0, sizeof *g);
   RC_TRY(need_float(n, x, "X", e));
   RC_TRY(need_float(n, w, "W", e));
@@ -419,7 +289,7 @@ static rc_status conv_geometry(const rc_node *n, const conv_params *cp, const rc
   else
     RC_TRY(transpose_resolve(n, cp, nsp, in, k, out, pb, s, d, e));
   /* Canonical 3 axes: leading axes of size 1. */
-  patch *p = &g->p;
+  rc__patch *p = &g->p;
   int64_t cin[AX], cout[AX];
   for (int j = 0; j < AX; j++) {
     int i = j - (AX - nsp);
@@ -435,14 +305,13 @@ static rc_status conv_geometry(const rc_node *n, const conv_params *cp, const rc
     p->img[j] = cp->transpose ? cout[j] : cin[j];
     p->pos[j] = cp->transpose ? cin[j] : cout[j];
   }
-  g->K = prod3(p->k);
-  g->in_sp = prod3(cin);
-  g->out_sp = prod3(cout);
-  g->direct = g->K == 1 && prod3(p->s) == 1 && !p->pad[0] && !p->pad[1] && !p->pad[2] &&
-              g->in_sp == g->out_sp;
+  g->K = rc__prod3(p->k);
+  g->in_sp = rc__prod3(cin);
+  g->out_sp = rc__prod3(cout);
+  g->direct = g->K == 1 && rc__prod3(p->s) == 1 && !p->pad[0] && !p->pad[1] && !p->pad[2] && g->in_sp == g->out_sp;
   /* The column matrix of one group must stay addressable. */
   int64_t rows = (cp->transpose ? g->M : g->C) * g->K;
-  if (rows > 0 && prod3(p->pos) > RC_MAX_ELEMENTS / rows)
+  if (rows > 0 && rc__prod3(p->pos) > RC_MAX_ELEMENTS / rows)
     return rc__fail(e, RC_ERR_LIMIT, "node '%s' (%s): unfolded patch matrix too large", n->label, n->op_type);
   /* GEMM sizes are ints. */
   if (rows > INT_MAX || g->in_sp > INT_MAX || g->out_sp > INT_MAX || g->C * g->K > INT_MAX ||
@@ -454,7 +323,7 @@ static rc_status conv_geometry(const rc_node *n, const conv_params *cp, const rc
 static rc_status conv_infer(const rc_node *n, const rc_tensor *const *in, rc_tensor *out, rc_err *e) {
   if (n->n_in < 2 || !in[0] || !in[1])
     return rc__fail(e, RC_ERR_INVALID, "node '%s' (%s): inputs X and W are required", n->label, n->op_type);
-  conv_geom g;
+  rc__conv_geom g;
   RC_TRY(conv_geometry(n, n->params, in[0], in[1], n->n_in > 2 ? in[2] : NULL, &g, e));
   out[0].dtype = RC_DTYPE_FLOAT;
   out[0].rank = in[0]->rank;
@@ -466,7 +335,7 @@ static rc_status conv_infer(const rc_node *n, const rc_tensor *const *in, rc_ten
 
 static const rc_tensor *opt_in(const rc_kernel *k, int i) { return i < k->n_in ? k->in[i] : NULL; }
 
-static void geometry_of(const rc_kernel *k, conv_geom *g) {
+static void geometry_of(const rc_kernel *k, rc__conv_geom *g) {
   rc_err e;
   /* Validated by infer for these very shapes; cannot fail here. */
   conv_geometry(k->node, k->params, k->in[0], k->in[1], opt_in(k, 2), g, &e);
@@ -478,17 +347,17 @@ static void geometry_of(const rc_kernel *k, conv_geom *g) {
  * two threads slower than one on small models. Per thread: one sample's
  * column matrix and, for backward, a private weight gradient that is summed
  * in thread order afterwards (deterministic for a given thread count). */
-static size_t col_floats(const conv_geom *g) {
-  return g->direct ? 0 : (size_t)(g->C * g->K) * (size_t)prod3(g->p.pos);
+static size_t col_floats(const rc__conv_geom *g) {
+  return g->direct ? 0 : (size_t)(g->C * g->K) * (size_t)rc__prod3(g->p.pos);
 }
 
-static size_t thread_floats(const conv_geom *g, int backward) {
+static size_t thread_floats(const rc__conv_geom *g, int backward) {
   return col_floats(g) + (backward ? (size_t)g->M * (size_t)(g->Cg * g->K) : 0);
 }
 
 /* Threads for the sample loop: no more than samples, cores, or workspace
  * copies. One means the plain serial loop (OpenBLAS may then thread). */
-static int sample_threads(const rc_kernel *k, const conv_geom *g, size_t per) {
+static int sample_threads(const rc_kernel *k, const rc__conv_geom *g, size_t per) {
   int64_t t = omp_get_max_threads();
   if (t > g->N) t = g->N;
   if (per && (size_t)t > k->work_bytes / (sizeof(float) * per)) t = (int64_t)(k->work_bytes / (sizeof(float) * per));
@@ -496,20 +365,38 @@ static int sample_threads(const rc_kernel *k, const conv_geom *g, size_t per) {
 }
 
 static size_t conv_workspace(const rc_kernel *k, int backward) {
-  conv_geom g;
+  rc__conv_geom g;
   geometry_of(k, &g);
   const conv_params *cp = k->params;
   if (cp->transpose) {
     /* One sample's column matrix, all groups: unfolding and folding then
      * run once per sample over every channel. */
     if (g.direct) return 0;
-    return sizeof(float) * (size_t)(g.M * g.K) * (size_t)prod3(g.p.pos);
+    return sizeof(float) * (size_t)(g.M * g.K) * (size_t)rc__prod3(g.p.pos);
   }
-  if (depthwise(&g)) return 0;
+  if (rc__conv_depthwise(&g))
+    return rc__depthwise_fits(&g) ? rc__depthwise_workspace(&g, backward, omp_get_max_threads()) : 0;
   int64_t t = omp_get_max_threads();
   if (t > g.N) t = g.N;
   if (t < 1) t = 1;
-  return sizeof(float) * (size_t)t * thread_floats(&g, backward);
+  /* Room for both paths, so that the reference path stays selectable. */
+  const size_t per_sample = sizeof(float) * (size_t)t * thread_floats(&g, backward);
+  const int64_t nb = rc__conv_chunk(&g);
+  const size_t chunk = nb > 1 ? rc__conv_chunk_bytes(&g, nb, backward, (int)t) : 0;
+  return chunk > per_sample ? chunk : per_sample;
+}
+
+/* Whether the direct depthwise kernels run (they need one thread's workspace). */
+static int depthwise_direct(const rc_kernel *k, const rc__conv_geom *g, int backward) {
+  return rc__depthwise_fits(g) && !rc__conv_reference() &&
+         k->work_bytes >= rc__depthwise_workspace(g, backward, 1);
+}
+
+/* Samples per GEMM for the chunked path, or 1 for the per-sample path. */
+static int64_t chunk_of(const rc_kernel *k, const rc__conv_geom *g, int backward) {
+  if (rc__conv_reference()) return 1;
+  const int64_t nb = rc__conv_chunk(g);
+  return nb > 1 && k->work_bytes >= rc__conv_chunk_bytes(g, nb, backward, 1) ? nb : 1;
 }
 
 /* Set each of the `channels` rows of y (length len) to its bias, or to zero. */
@@ -537,10 +424,11 @@ static void bias_grad(float *db, const float *dy, int64_t N, int64_t M, int64_t 
 
 /* Depthwise convolution (one input and one output channel per group): each
  * plane is a K-tap stencil of its own channel. Planes are independent, so one
- * thread team covers the whole batch and no column matrix is needed. */
+ * thread team covers the whole batch and no column matrix is needed. This
+ * tap walk is the plain path: depthwise.c serves one and two spatial axes. */
 
 /* y (N,C,P) = b + sum_k w[c,k] * x shifted by tap k */
-static void depthwise_forward(const conv_geom *g, float *y, const float *x, const float *w, const float *b) {
+static void depthwise_forward(const rc__conv_geom *g, float *y, const float *x, const float *w, const float *b) {
   const int64_t P = g->out_sp, S = g->in_sp, K = g->K, planes = g->N * g->C;
 #pragma omp parallel for schedule(static) if (planes * K * P > 32768)
   for (int64_t pl = 0; pl < planes; pl++) {
@@ -548,20 +436,21 @@ static void depthwise_forward(const conv_geom *g, float *y, const float *x, cons
     float *yp = y + pl * P;
     const float bias = b ? b[c] : 0.0f;
     for (int64_t i = 0; i < P; i++) yp[i] = bias;
-    for (int64_t kr = 0; kr < K; kr++) tap_walk(TAP_ACCUMULATE, yp, (float *)(x + pl * S), &g->p, kr, w[c * K + kr]);
+    for (int64_t kr = 0; kr < K; kr++)
+      rc__tap_walk(RC_TAP_ACCUMULATE, yp, (float *)(x + pl * S), &g->p, kr, w[c * K + kr]);
   }
 }
 
 /* dx += w-weighted scatter of dy; dw[c,k] += sum over the batch (in order) of
  * <dy plane, x shifted by tap k>. */
-static void depthwise_backward(const conv_geom *g, float *dx, float *dw, const float *x, const float *w,
+static void depthwise_backward(const rc__conv_geom *g, float *dx, float *dw, const float *x, const float *w,
                                const float *dy) {
   const int64_t P = g->out_sp, S = g->in_sp, K = g->K, planes = g->N * g->C;
   if (dx) {
 #pragma omp parallel for schedule(static) if (planes * K * P > 32768)
     for (int64_t pl = 0; pl < planes; pl++)
       for (int64_t kr = 0; kr < K; kr++)
-        tap_walk(TAP_SCATTER, (float *)(dy + pl * P), dx + pl * S, &g->p, kr, w[(pl % g->C) * K + kr]);
+        rc__tap_walk(RC_TAP_SCATTER, (float *)(dy + pl * P), dx + pl * S, &g->p, kr, w[(pl % g->C) * K + kr]);
   }
   if (dw) {
 #pragma omp parallel for schedule(static) if (planes * K * P > 32768)
@@ -569,8 +458,8 @@ static void depthwise_backward(const conv_geom *g, float *dx, float *dw, const f
       const int64_t c = r / K;
       double acc = 0;
       for (int64_t n = 0; n < g->N; n++)
-        acc += tap_walk(TAP_DOT, (float *)(dy + (n * g->C + c) * P), (float *)(x + (n * g->C + c) * S), &g->p,
-                        r % K, 1.0f);
+        acc += rc__tap_walk(RC_TAP_DOT, (float *)(dy + (n * g->C + c) * P), (float *)(x + (n * g->C + c) * S),
+                            &g->p, r % K, 1.0f);
       dw[r] += (float)acc;
     }
   }
@@ -580,12 +469,12 @@ static void depthwise_backward(const conv_geom *g, float *dx, float *dw, const f
  * Per sample: col (C*K, P) = unfold(x_n); per group
  * y_g (Mg, P) = W_g (Mg, Cg*K) . col_g (Cg*K, P). */
 /* y_n (M, P) = b + W . unfold(x_n), group by group. */
-static void forward_sample(const conv_geom *g, float *yn, const float *xn, const float *w, const float *b,
+static void forward_sample(const rc__conv_geom *g, float *yn, const float *xn, const float *w, const float *b,
                            float *work) {
   const int64_t CgK = g->Cg * g->K, P = g->out_sp;
   const float *col = xn;
   if (!g->direct && CgK) {
-    unfold(work, xn, &g->p, g->C);
+    rc__unfold(work, P, xn, &g->p, g->C);
     col = work;
   }
   fill_bias(yn, b, g->M, P);
@@ -596,15 +485,24 @@ static void forward_sample(const conv_geom *g, float *yn, const float *xn, const
 }
 
 static rc_status conv_forward(const rc_kernel *k, rc_err *e) {
-  conv_geom g;
+  rc__conv_geom g;
   geometry_of(k, &g);
   const float *x = k->in[0]->data, *w = k->in[1]->data;
   const rc_tensor *bt = opt_in(k, 2);
   const float *b = bt ? bt->data : NULL;
   float *y = k->out[0]->data;
   if (!g.N || !g.M || !g.out_sp) return RC_OK;
-  if (depthwise(&g)) {
+  if (depthwise_direct(k, &g, 0)) {
+    rc__depthwise_forward(&g, y, x, w, b, k->work, k->work_bytes);
+    return RC_OK;
+  }
+  if (rc__conv_depthwise(&g)) {
     depthwise_forward(&g, y, x, w, b);
+    return RC_OK;
+  }
+  const int64_t nb = chunk_of(k, &g, 0);
+  if (nb > 1) {
+    rc__conv_chunk_forward(&g, nb, rc__conv_chunk_threads(&g, nb, 0, k->work_bytes), y, x, w, b, k->work);
     return RC_OK;
   }
   const size_t per = col_floats(&g);
@@ -620,14 +518,14 @@ static rc_status conv_forward(const rc_kernel *k, rc_err *e) {
  * wanted; the bias gradient is taken here. Returns 0 when x and W need no
  * gradient (or there is none to give). */
 typedef struct conv_grads {
-  conv_geom g;
+  rc__conv_geom g;
   const float *x, *w, *dy;
   float *dx, *dw;
 } conv_grads;
 
 static int begin_backward(const rc_kernel *k, conv_grads *cg) {
   if (!k->dout[0]) return 0;
-  conv_geom *g = &cg->g;
+  rc__conv_geom *g = &cg->g;
   geometry_of(k, g);
   cg->x = k->in[0]->data;
   cg->w = k->in[1]->data;
@@ -642,14 +540,14 @@ static int begin_backward(const rc_kernel *k, conv_grads *cg) {
 
 /* One sample's share of backward: dw (M, CgK) += dy_n . unfold(x_n)^T and
  * dx_n += fold(W^T . dy_n), group by group. */
-static void backward_sample(const conv_geom *g, int64_t n, const float *x, const float *w, const float *dy,
+static void backward_sample(const rc__conv_geom *g, int64_t n, const float *x, const float *w, const float *dy,
                             float *dx, float *dw, float *work) {
   const int64_t CgK = g->Cg * g->K, P = g->out_sp;
   const float *dyn = dy + n * g->M * P;
   if (dw) {
     const float *col = x + n * g->C * g->in_sp;
     if (!g->direct) {
-      unfold(work, col, &g->p, g->C);
+      rc__unfold(work, P, col, &g->p, g->C);
       col = work;
     }
     for (int64_t grp = 0; grp < g->G; grp++)
@@ -669,15 +567,25 @@ static void backward_sample(const conv_geom *g, int64_t n, const float *x, const
   for (int64_t grp = 0; grp < g->G; grp++)
     cblas_sgemm(CblasRowMajor, CblasTrans, CblasNoTrans, (int)CgK, (int)P, (int)g->Mg, 1.0f, w + grp * g->Mg * CgK,
                 (int)CgK, dyn + grp * g->Mg * P, (int)P, 0.0f, work + grp * CgK * P, (int)P);
-  fold_add(dxn, work, &g->p, g->C);
+  rc__fold_add(dxn, work, P, &g->p, g->C);
 }
 
 static void conv_backward(const rc_kernel *k) {
   conv_grads cg;
   if (!begin_backward(k, &cg)) return;
-  const conv_geom g = cg.g;
-  if (depthwise(&g)) {
+  const rc__conv_geom g = cg.g;
+  if (depthwise_direct(k, &g, 1)) {
+    rc__depthwise_backward(&g, cg.dx, cg.dw, cg.x, cg.w, cg.dy, k->work, k->work_bytes);
+    return;
+  }
+  if (rc__conv_depthwise(&g)) {
     depthwise_backward(&g, cg.dx, cg.dw, cg.x, cg.w, cg.dy);
+    return;
+  }
+  const int64_t nb = chunk_of(k, &g, 1);
+  if (nb > 1) {
+    rc__conv_chunk_backward(&g, nb, rc__conv_chunk_threads(&g, nb, 1, k->work_bytes), cg.dx, cg.dw, cg.x, cg.w,
+                            cg.dy, k->work);
     return;
   }
   const size_t col = col_floats(&g), per = thread_floats(&g, 1), dw_n = per - col;
@@ -704,7 +612,7 @@ static void conv_backward(const rc_kernel *k) {
  * Per sample and group: col_g (Mg*K, D) = W_g^T . x_g (Cg, D); the column
  * matrix of all groups is then folded onto y_n at once. */
 static rc_status convt_forward(const rc_kernel *k, rc_err *e) {
-  conv_geom g;
+  rc__conv_geom g;
   geometry_of(k, &g);
   const float *x = k->in[0]->data, *w = k->in[1]->data;
   const rc_tensor *bt = opt_in(k, 2);
@@ -723,7 +631,7 @@ static rc_status convt_forward(const rc_kernel *k, rc_err *e) {
                   xg, (int)D, g.direct ? 1.0f : 0.0f, g.direct ? yn + grp * g.Mg * P : col + grp * MgK * D,
                   (int)D);
     }
-    if (!g.direct) fold_add(yn, col, &g.p, g.M);
+    if (!g.direct) rc__fold_add(yn, col, D, &g.p, g.M);
   }
   return RC_OK;
 }
@@ -731,14 +639,14 @@ static rc_status convt_forward(const rc_kernel *k, rc_err *e) {
 static void convt_backward(const rc_kernel *k) {
   conv_grads cg;
   if (!begin_backward(k, &cg)) return;
-  const conv_geom g = cg.g;
+  const rc__conv_geom g = cg.g;
   const float *x = cg.x, *w = cg.w, *dy = cg.dy;
   float *dx = cg.dx, *dw = cg.dw;
   const int64_t MgK = g.Mg * g.K, D = g.in_sp, P = g.out_sp;
   for (int64_t n = 0; n < g.N; n++) {
     const float *col = dy + n * g.M * P;
     if (!g.direct) {
-      unfold(k->work, col, &g.p, g.M);
+      rc__unfold(k->work, D, col, &g.p, g.M);
       col = k->work;
     }
     for (int64_t grp = 0; grp < g.G; grp++) {

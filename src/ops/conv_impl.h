@@ -1,0 +1,89 @@
+/* What the Conv kernels share across their files: the resolved geometry,
+ * unfolding and folding of patches (patch.c), the batched GEMM path
+ * (conv_batch.c) and the direct depthwise kernels (depthwise.c). conv.c
+ * resolves the geometry and picks a path. */
+#ifndef RC_OPS_CONV_IMPL_H
+#define RC_OPS_CONV_IMPL_H
+
+#include <stddef.h>
+#include <stdint.h>
+
+#include "ops/window.h"
+
+/* One unfolding: an image of `channels` planes of size img[], windows of
+ * size k[] placed at positions pos[] (image cell = p*s - pad + kk*d). */
+typedef struct rc__patch {
+  int64_t img[RC_WIN_MAX_AXES], pos[RC_WIN_MAX_AXES], k[RC_WIN_MAX_AXES], s[RC_WIN_MAX_AXES], d[RC_WIN_MAX_AXES],
+      pad[RC_WIN_MAX_AXES];
+} rc__patch;
+
+/* What a walk over one kernel tap does between a position plane (length P)
+ * and one image plane. */
+typedef enum tap_mode {
+  RC_TAP_SCATTER,    /* img[cell] += v * pos[p] (fold; depthwise input gradient) */
+  RC_TAP_ACCUMULATE, /* pos[p] += v * img[cell] (depthwise forward) */
+  RC_TAP_DOT         /* returns sum of pos[p] * img[cell] (depthwise weight gradient) */
+} rc__tap_mode;
+
+/* Everything a kernel needs, resolved from the input shapes. For Conv the
+ * unfolded image is x and positions are y's cells; for ConvTranspose the
+ * image is y and positions are x's cells. */
+typedef struct rc__conv_geom {
+  int nsp;
+  int64_t N, C, M, G;           /* batch, input channels, output channels, groups */
+  int64_t Cg, Mg, K;            /* channels per group, kernel cells */
+  int64_t in_sp, out_sp;        /* spatial cells of x and y */
+  int64_t out[RC_WIN_MAX_AXES]; /* y spatial dims (canonical) */
+  rc__patch p;
+  int direct; /* 1x1, stride 1, no padding: the column matrix is x itself */
+} rc__conv_geom;
+
+static inline int64_t rc__prod3(const int64_t *v) { return v[0] * v[1] * v[2]; }
+
+/* One input and one output channel per group. */
+static inline int rc__conv_depthwise(const rc__conv_geom *g) { return g->Cg == 1 && g->Mg == 1 && g->G > 1; }
+
+/* ---- patch.c ---- */
+
+/* Walks kernel tap kr (index into k[0]*k[1]*k[2]) over every position. */
+double rc__tap_walk(rc__tap_mode mode, float *pos, float *img, const rc__patch *g, int64_t kr, float v);
+/* col rows (channels*K, P), row r at col + r*ld, <- unfolded img (channels, img...).
+ * No threads of its own. */
+void rc__unfold(float *col, int64_t ld, const float *img, const rc__patch *g, int64_t channels);
+/* img (channels, img...) += folded col (rows as for rc__unfold): the adjoint of unfold. */
+void rc__fold_add(float *img, const float *col, int64_t ld, const rc__patch *g, int64_t channels);
+
+/* ---- conv_batch.c ---- */
+
+/* Samples per chunk for Conv's batched GEMM path; 1 where the per-sample
+ * path serves (depthwise, one sample, maps large enough on their own). */
+int64_t rc__conv_chunk(const rc__conv_geom *g);
+/* Workspace the chunked path needs for nb samples per chunk on `threads`
+ * threads, and the threads that fit in work_bytes (at least 1). */
+size_t rc__conv_chunk_bytes(const rc__conv_geom *g, int64_t nb, int backward, int threads);
+int rc__conv_chunk_threads(const rc__conv_geom *g, int64_t nb, int backward, size_t work_bytes);
+/* y = b + W * x, nb samples per GEMM. */
+void rc__conv_chunk_forward(const rc__conv_geom *g, int64_t nb, int threads, float *y, const float *x,
+                            const float *w, const float *b, float *work);
+/* dx += input gradient, dw += weight gradient (either may be NULL). */
+void rc__conv_chunk_backward(const rc__conv_geom *g, int64_t nb, int threads, float *dx, float *dw, const float *x,
+                             const float *w, const float *dy, float *work);
+
+/* ---- depthwise.c ---- */
+
+/* Kernel cells the direct depthwise kernels take (a 9x9 window is 81). */
+#define RC_DEPTHWISE_MAX_TAPS 128
+
+/* Non-zero when the direct kernels can serve this depthwise Conv: one or
+ * two spatial axes, at most RC_DEPTHWISE_MAX_TAPS cells. */
+int rc__depthwise_fits(const rc__conv_geom *g);
+/* Workspace for forward (backward = 0) or backward (1) on `threads` threads. */
+size_t rc__depthwise_workspace(const rc__conv_geom *g, int backward, int threads);
+/* y = b + depthwise conv of x; work holds work_bytes. */
+void rc__depthwise_forward(const rc__conv_geom *g, float *y, const float *x, const float *w, const float *b,
+                           float *work, size_t work_bytes);
+/* dx += input gradient, dw += weight gradient (either may be NULL). */
+void rc__depthwise_backward(const rc__conv_geom *g, float *dx, float *dw, const float *x, const float *w,
+                            const float *dy, float *work, size_t work_bytes);
+
+#endif

@@ -1,0 +1,181 @@
+/* Conv's fast paths against its plain per-sample path, forward and both
+ * backward products: the batched GEMM path (1x1 and general convolutions,
+ * several samples per GEMM, chunks with a remainder) and the direct
+ * depthwise kernels (stride 1 on the flat grid, other strides row by row),
+ * on odd sizes, padding, strides, dilations, groups and batch 1, at every
+ * instruction-set level this CPU has (RECOUP_KERNEL_ISA lowers it). The
+ * plain path is the one test_ops_conv checks against the ONNX specification
+ * and finite differences, and test_ops_conv_ref against PyTorch.
+ *
+ * Tolerances: the batched GEMMs sum in another order than the per-sample
+ * ones, so those compare within 1e-5 * (1 + |value|) (forward) and
+ * 1e-4 * (1 + |value|) (gradients, sums over the batch). The depthwise
+ * forward and input gradient add in the plain path's order and must agree
+ * exactly; its weight gradient sums in 16 lanes, within 1e-4. Instruction
+ * sets must agree bit for bit (no contraction into multiply-add, fixed lane
+ * order). */
+#define _POSIX_C_SOURCE 200112L
+#include <stdlib.h>
+
+#include "ops/kernel_choice.h"
+#include "ops_check.h"
+
+typedef struct path_case {
+  const char *name;
+  int64_t n, cin, cout, group;
+  int nsp;
+  int64_t in[2], k[2], s[2], d[2], pads[4];
+  int bias;
+  int depthwise; /* the direct depthwise kernels serve it */
+} path_case;
+
+/* Outputs of one run: y, then dx, dW, dB (dB only with a bias). */
+typedef struct run_out {
+  float *v[4];
+  int64_t n[4];
+} run_out;
+
+static void run_out_free(run_out *r) {
+  for (int i = 0; i < 4; i++) free(r->v[i]);
+}
+
+static float *copy_of(const float *p, int64_t n) {
+  float *q = malloc(sizeof(float) * (size_t)(n ? n : 1));
+  memcpy(q, p, sizeof(float) * (size_t)n);
+  return q;
+}
+
+/* Runs forward and backward (dy drawn from a fixed seed) under the current
+ * environment and keeps every result. The gradient buffers start from fixed
+ * non-zero values, so that "adds into" is checked along the way. */
+static int run_conv(const path_case *pc, run_out *r) {
+  oh_case c;
+  oh_init(&c, "Conv", 17);
+  int64_t xd[4] = {pc->n, pc->cin}, wd[4] = {pc->cout, pc->cin / pc->group};
+  for (int i = 0; i < pc->nsp; i++) xd[2 + i] = pc->in[i], wd[2 + i] = pc->k[i];
+  int64_t nx = 1, nw = 1;
+  for (int i = 0; i < 2 + pc->nsp; i++) nx *= xd[i], nw *= wd[i];
+  float *x = malloc(sizeof(float) * (size_t)nx), *w = malloc(sizeof(float) * (size_t)nw), b[256];
+  oh_fill(x, nx, 101);
+  oh_fill(w, nw, 202);
+  oh_fill(b, pc->cout, 303);
+  oh_input(&c, RC_DTYPE_FLOAT, 2 + pc->nsp, xd, x);
+  oh_input(&c, RC_DTYPE_FLOAT, 2 + pc->nsp, wd, w);
+  if (pc->bias) oh_input(&c, RC_DTYPE_FLOAT, 1, (int64_t[]){pc->cout}, b);
+  if (pc->group > 1) oh_attr_int(&c, "group", pc->group);
+  if (pc->s[0]) oh_attr_ints(&c, "strides", pc->nsp, pc->s);
+  if (pc->d[0]) oh_attr_ints(&c, "dilations", pc->nsp, pc->d);
+  oh_attr_ints(&c, "pads", 2 * pc->nsp, pc->pads);
+  memset(r, 0, sizeof *r);
+  int ok = run_ok(&c);
+  if (ok) {
+    const int64_t ny = rc_tensor_numel(&c.out_t[0]);
+    float *dy = malloc(sizeof(float) * (size_t)(ny ? ny : 1));
+    oh_fill(dy, ny, 404);
+    const int wanted[] = {0, 1, 2, -1}, wanted_nb[] = {0, 1, -1};
+    r->v[0] = copy_of(oh_out_f(&c, 0), ny);
+    r->n[0] = ny;
+    /* run_backward zeroes the gradients; seed them instead and run again. */
+    run_backward(&c, dy, pc->bias ? wanted : wanted_nb);
+    for (int i = 0; i < 2 + pc->bias; i++) {
+      const int64_t m = rc_tensor_numel(&c.in_t[i]);
+      oh_fill(c.din_t[i].data, m, 505 + (uint32_t)i);
+    }
+    rc_node *nd = &c.node;
+    rc_kernel k = {nd,    nd->params, nd->n_in, nd->n_out, c.in,       c.out,
+                   c.din, c.dout,     c.work,   c.saved,   c.training, c.work_bytes};
+    nd->def->backward(&k);
+    for (int i = 0; i < 2 + pc->bias; i++) {
+      r->n[1 + i] = rc_tensor_numel(&c.in_t[i]);
+      r->v[1 + i] = copy_of(grad_of(&c, i), r->n[1 + i]);
+    }
+    free(dy);
+  }
+  free(x);
+  free(w);
+  oh_free(&c);
+  return ok;
+}
+
+static const char *const what[4] = {"y", "dX", "dW", "dB"};
+
+/* Prints both sides of the worst element; returns the number out of tolerance. */
+static int64_t compare(const char *cs, const char *label, int i, const float *fast, const float *ref, int64_t n,
+                       double tol) {
+  int64_t bad = 0, worst_at = -1;
+  double worst = -1;
+  for (int64_t j = 0; j < n; j++) {
+    const double diff = fabs((double)fast[j] - ref[j]), lim = tol * (1 + fabs(ref[j]));
+    if (!(diff <= lim)) bad++;
+    if (!(diff <= worst)) worst = diff, worst_at = j;
+  }
+  if (worst_at >= 0)
+    printf("%-22s %-9s %-2s worst at %6lld: fast %.9g, plain %.9g (|diff| %.3g, tolerance %.1e), %lld off\n", cs,
+           label, what[i], (long long)worst_at, fast[worst_at], ref[worst_at], worst, tol, (long long)bad);
+  return bad;
+}
+
+static const char *const isa_env[3] = {"baseline", "avx2", "avx512"};
+
+static void one_case(const path_case *pc) {
+  run_out plain, fast[3];
+  setenv("RECOUP_CONV_PATH", "reference", 1);
+  CHECK(run_conv(pc, &plain));
+  unsetenv("RECOUP_CONV_PATH");
+  const rc__isa top = rc__isa_level();
+  for (int lv = 0; lv <= (int)top; lv++) {
+    setenv("RECOUP_KERNEL_ISA", isa_env[lv], 1);
+    CHECK_EQ((int)rc__isa_level(), lv);
+    CHECK(run_conv(pc, &fast[lv]));
+    for (int i = 0; i < 3 + pc->bias; i++) {
+      CHECK_EQ(fast[lv].n[i], plain.n[i]);
+      if (fast[lv].n[i] != plain.n[i]) continue;
+      double tol = i == 0 ? 1e-5 : 1e-4;
+      if (pc->depthwise && i < 2) tol = 0; /* same additions in the same order */
+      CHECK_EQ(compare(pc->name, isa_env[lv], i, fast[lv].v[i], plain.v[i], plain.n[i], tol), 0);
+      /* Every level gives the lowest level's bits. */
+      if (lv > 0) CHECK_MEM_EQ(fast[lv].v[i], fast[0].v[i], sizeof(float) * (size_t)plain.n[i]);
+    }
+  }
+  unsetenv("RECOUP_KERNEL_ISA");
+  for (int lv = 0; lv <= (int)top; lv++) run_out_free(&fast[lv]);
+  run_out_free(&plain);
+}
+
+static void paths_agree(void) {
+  const path_case cases[] = {
+      /* name                 n  cin cout grp nsp in       k       s       d       pads          bias dw */
+      {"1x1 batch 5", 5, 7, 9, 1, 2, {5, 3}, {1, 1}, {0}, {0}, {0, 0, 0, 0}, 1, 0},
+      {"1x1 batch 1", 1, 6, 4, 1, 2, {7, 5}, {1, 1}, {0}, {0}, {0, 0, 0, 0}, 1, 0},
+      {"1x1 groups 3", 4, 6, 9, 3, 2, {3, 3}, {1, 1}, {0}, {0}, {0, 0, 0, 0}, 0, 0},
+      {"1x1 stride 2", 3, 5, 6, 1, 2, {7, 6}, {1, 1}, {2, 2}, {0}, {0, 0, 0, 0}, 1, 0},
+      {"3x3 pad 1", 3, 5, 7, 1, 2, {9, 7}, {3, 3}, {0}, {0}, {1, 1, 1, 1}, 1, 0},
+      {"3x3 chunks 4+2", 6, 3, 5, 1, 2, {8, 8}, {3, 3}, {0}, {0}, {1, 1, 1, 1}, 1, 0},
+      {"stride dilation", 3, 4, 6, 1, 2, {11, 9}, {3, 2}, {2, 1}, {1, 2}, {1, 0, 2, 1}, 1, 0},
+      {"groups 2", 3, 4, 6, 2, 2, {6, 7}, {3, 3}, {0}, {0}, {1, 1, 1, 1}, 1, 0},
+      {"conv 1-D", 4, 3, 5, 1, 1, {13}, {3}, {2}, {0}, {1, 2}, 1, 0},
+      {"3x3 batch 1", 1, 3, 4, 1, 2, {6, 5}, {3, 3}, {0}, {0}, {1, 1, 1, 1}, 1, 0},
+      {"depthwise 3x3 s1", 3, 5, 5, 5, 2, {9, 7}, {3, 3}, {0}, {0}, {1, 1, 1, 1}, 1, 1},
+      {"depthwise 3x3 s2", 3, 6, 6, 6, 2, {9, 8}, {3, 3}, {2, 2}, {0}, {1, 1, 1, 1}, 1, 1},
+      {"depthwise dil asym", 2, 4, 4, 4, 2, {10, 9}, {3, 3}, {1, 2}, {2, 1}, {2, 0, 1, 3}, 0, 1},
+      {"depthwise 5x5 batch1", 1, 3, 3, 3, 2, {11, 13}, {5, 5}, {0}, {0}, {2, 2, 2, 2}, 1, 1},
+      {"depthwise 1-D", 3, 4, 4, 4, 1, {17}, {3}, {0}, {0}, {1, 1}, 1, 1},
+      {"depthwise 2x2 tiny", 2, 3, 3, 3, 2, {2, 2}, {3, 3}, {0}, {0}, {1, 1, 1, 1}, 1, 1},
+      {"depthwise 32x32", 2, 3, 3, 3, 2, {32, 32}, {3, 3}, {0}, {0}, {1, 1, 1, 1}, 1, 1},
+      {"depthwise big end pad", 2, 2, 2, 2, 2, {5, 6}, {3, 3}, {3, 1}, {0}, {0, 1, 4, 2}, 1, 1},
+      {"depth multiplier 2", 2, 3, 6, 3, 2, {6, 6}, {3, 3}, {0}, {0}, {1, 1, 1, 1}, 1, 0},
+  };
+  for (size_t i = 0; i < sizeof cases / sizeof cases[0]; i++) {
+    const int before = test_failed_checks_;
+    one_case(&cases[i]);
+    if (test_failed_checks_ != before) fprintf(stderr, "FAIL case %s\n", cases[i].name);
+  }
+}
+
+int main(void) {
+  unsetenv("RECOUP_KERNEL_ISA");
+  unsetenv("RECOUP_CONV_PATH");
+  printf("instruction-set levels on this CPU: up to %s\n", isa_env[rc__isa_level()]);
+  RUN(paths_agree);
+  return TEST_REPORT();
+}
