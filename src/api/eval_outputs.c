@@ -18,16 +18,15 @@ rc_status rc_eval_output_term_check(const char *text, rc_err *e) {
   return rc_output_loss_parse(&o, text, e);
 }
 
-/* The output's per-sample shape without skip_axis, as a tensor (for checks and messages). */
-static void sample_shape(rc_tensor *t, const int64_t *dims, int rank, int skip_axis) {
+void rc__output_sample_shape(rc_tensor *t, const int64_t *dims, int rank, int skip_axis) {
   memset(t, 0, sizeof *t);
   t->dtype = RC_DTYPE_FLOAT;
   for (int d = 1; d < rank; d++)
     if (d != skip_axis) t->dims[t->rank++] = dims[d];
 }
 
-static rc_status check_label_shape(const rc_array *a, const char *name, int64_t n, const rc_tensor *want,
-                                   rc_err *e) {
+rc_status rc__check_per_sample(const rc_array *a, const char *name, int64_t n, const rc_tensor *want,
+                               const char *what, rc_err *e) {
   char sa[128], sb[128];
   rc_tensor got = a->t;
   int ok = got.rank == want->rank + 1 && got.dims[0] == n;
@@ -37,16 +36,16 @@ static rc_status check_label_shape(const rc_array *a, const char *name, int64_t 
   full.rank = want->rank + 1;
   memmove(full.dims + 1, want->dims, sizeof(int64_t) * (size_t)want->rank);
   full.dims[0] = n;
-  return rc__fail(e, RC_ERR_SHAPE, "%s: dense labels of shape %s, expected %s", name,
-                  rc_shape_str(&got, sa, sizeof sa), rc_shape_str(&full, sb, sizeof sb));
+  return rc__fail(e, RC_ERR_SHAPE, "%s: %s of shape %s, expected %s", name, what, rc_shape_str(&got, sa, sizeof sa),
+                  rc_shape_str(&full, sb, sizeof sb));
 }
 
 rc_status rc_eval_dense_labels(rc_array *out, const rc_array *raw, const char *name, int64_t n,
                                const int64_t *dims, int rank, int axis, int32_t ignore, rc_err *e) {
   memset(out, 0, sizeof *out);
   rc_tensor want;
-  sample_shape(&want, dims, rank, axis);
-  RC_TRY(check_label_shape(raw, name, n, &want, e));
+  rc__output_sample_shape(&want, dims, rank, axis);
+  RC_TRY(rc__check_per_sample(raw, name, n, &want, "dense labels", e));
   rc_array f = {0};
   if (rc_data_to_float_array(&f, raw, NULL, e) != RC_OK) return rc_err_prefix(e, "%s", name);
   int64_t count = rc_tensor_numel(&f.t), k = dims[axis];

@@ -1,5 +1,6 @@
-/* Per-output evaluation behind rc_eval_run (eval_outputs.c), and the batch
- * shapes both parts of eval plan with (eval.c). */
+/* Per-output evaluation behind rc_eval_run (eval_outputs.c), the batch
+ * shapes both parts of eval plan with (eval.c), and the per-sample shape
+ * checks that labels and targets share (outputs.c). */
 #ifndef RC_API_EVAL_OUTPUTS_H
 #define RC_API_EVAL_OUTPUTS_H
 
@@ -13,5 +14,13 @@ void rc__eval_batch_shapes(rc_tensor *shapes, const rc_dataset *d, int64_t batch
  * sample of d, as rc_eval_settings describes them. */
 rc_status rc__eval_outputs(rc_metrics *m, rc_model *model, rc_model *ref, const rc_dataset *d, int64_t batch,
                            const rc_eval_settings *s, rc_err *e);
+
+/* The output's per-sample shape (dims without the batch axis and without
+ * skip_axis, -1: none), as a float tensor for checks and messages. */
+void rc__output_sample_shape(rc_tensor *t, const int64_t *dims, int rank, int skip_axis);
+/* a holds n samples of shape want; otherwise an error naming `name` and
+ * `what` (e.g. "dense labels", "targets") with both shapes. */
+rc_status rc__check_per_sample(const rc_array *a, const char *name, int64_t n, const rc_tensor *want,
+                               const char *what, rc_err *e);
 
 #endif

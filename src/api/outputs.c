@@ -3,10 +3,10 @@
  * terms of train/outputs.h). */
 #include "recoup/outputs.h"
 
-#include <math.h>
 #include <stdio.h>
 #include <string.h>
 
+#include "api/eval_outputs.h"
 #include "core/alloc.h"
 #include "core/status.h"
 #include "onnx/model.h"
@@ -46,72 +46,20 @@ rc_status rc_output_set_add_targets(rc_output_set *o, const char *text, int val,
   return RC_OK;
 }
 
-/* The output's per-sample shape as a tensor of rank - 1 (for messages and checks). */
-static void sample_shape(rc_tensor *t, const int64_t *dims, int rank, int skip_axis) {
-  memset(t, 0, sizeof *t);
-  t->dtype = RC_DTYPE_FLOAT;
-  for (int d = 1; d < rank; d++)
-    if (d != skip_axis) t->dims[t->rank++] = dims[d];
-}
-
-static rc_status check_per_sample(const rc_array *a, const char *path, int64_t n, const rc_tensor *want,
-                                  const char *what, rc_err *e) {
-  char sa[128], sb[128];
-  rc_tensor got = a->t;
-  int ok = got.rank == want->rank + 1 && got.dims[0] == n;
-  for (int d = 0; ok && d < want->rank; d++) ok = got.dims[d + 1] == want->dims[d];
-  if (!ok) {
-    rc_tensor full = *want;
-    full.rank = want->rank + 1;
-    memmove(full.dims + 1, want->dims, sizeof(int64_t) * (size_t)want->rank);
-    full.dims[0] = n;
-    return rc_err_set(e, RC_ERR_SHAPE, "%s: %s of shape %s, expected %s", path, what,
-                      rc_shape_str(&got, sa, sizeof sa), rc_shape_str(&full, sb, sizeof sb));
-  }
-  return RC_OK;
-}
-
 rc_status rc_output_labels_read(rc_array *out, const char *path, int64_t n, const int64_t *dims, int rank,
                                 int axis, long ignore, rc_err *e) {
-  rc_array raw = {0}, f = {0};
+  rc_array raw = {0};
   memset(out, 0, sizeof *out);
   RC_TRY(rc_array_read(&raw, path, NULL, 0, e));
-  rc_tensor want;
-  sample_shape(&want, dims, rank, axis);
-  rc_status s = check_per_sample(&raw, path, n, &want, "dense labels", e);
-  if (s == RC_OK && (s = rc_data_to_float_array(&f, &raw, NULL, e)) != RC_OK) rc_err_prefix(e, "%s", path);
+  rc_status s = rc_eval_dense_labels(out, &raw, path, n, dims, rank, axis, (int32_t)ignore, e);
   rc_array_free(&raw);
-  if (s != RC_OK) return s;
-  int64_t count = rc_tensor_numel(&f.t), k = dims[axis];
-  int32_t *lab = rc__malloc(sizeof(int32_t) * (size_t)count + 1);
-  if (!lab) {
-    rc_array_free(&f);
-    return rc_err_set(e, RC_ERR_NOMEM, "%s: out of memory", path);
-  }
-  const float *v = f.t.data;
-  for (int64_t i = 0; i < count; i++) {
-    if (v[i] != floorf(v[i]) || ((v[i] < 0 || v[i] >= (float)k) && v[i] != (float)ignore)) {
-      s = rc_err_set(e, RC_ERR_INVALID,
-                     "%s: label %g at element %lld is not a class in [0, %lld) nor the ignore value "
-                     "%ld",
-                     path, (double)v[i], (long long)i, (long long)k, ignore);
-      break;
-    }
-    lab[i] = (int32_t)v[i];
-  }
-  out->t = f.t;
-  out->t.dtype = RC_DTYPE_INT32;
-  out->t.data = lab;
-  out->owned = lab;
-  rc_array_free(&f);
-  if (s != RC_OK) rc_array_free(out);
   return s;
 }
 
 static rc_status read_targets(rc_array *out, const char *path, int64_t n, const rc_tensor *want, rc_err *e) {
   rc_array raw = {0};
   RC_TRY(rc_array_read(&raw, path, NULL, 0, e));
-  rc_status s = check_per_sample(&raw, path, n, want, "targets", e);
+  rc_status s = rc__check_per_sample(&raw, path, n, want, "targets", e);
   if (s == RC_OK && raw.t.dtype == RC_DTYPE_FLOAT) {
     *out = raw; /* float32 as is: NaN marks a position without a target */
     return RC_OK;
@@ -149,7 +97,7 @@ static rc_status load_targets(rc_output_set *o, const char *const *list, int n_l
     if (v < 0) return rc_err_set(e, RC_ERR_INVALID, "--targets: %s has no output '%s'", g->path, name);
     const rc_tensor *shape = rc_plan_tensor(p, v);
     rc_tensor want;
-    sample_shape(&want, shape->dims, shape->rank, -1);
+    rc__output_sample_shape(&want, shape->dims, shape->rank, -1);
     RC_TRY(read_targets(&arrays[i], eq + 1, n, &want, e));
     for (int j = 0; j < o->n; j++)
       if (!strcmp(o->specs[j].output, name) && rc_out_term_needs_targets(o->specs[j].term))
