@@ -223,7 +223,7 @@ refused(common + ["--augment", "rrc=0.5-0.2"], 2, "'rrc=0.5-0.2'", "an empty are
 targets = os.path.join(WORK, "targets.npy")
 np.save(targets, np.zeros((len(images), 10), np.float32))
 refused(common + ["--augment", "flip", "--output-loss", "logits=bounded-l2", "--targets", f"logits={targets}"], 1,
-        "does not move dense labels or --targets", "per-output losses with --targets: refused")
+        "does not move dense labels or regression targets", "per-output losses with --targets: refused")
 per_output = run.json(common[:-2] + ["--json", "--augment", "flip,mix=0.3", "--output-loss", "logits=kd",
                                      "--out", os.path.join(WORK, "per_output.onnx")])
 check("per-output losses against the teacher alone: accepted with augmentation",

@@ -23,6 +23,7 @@
 #include "train/dist.h"
 #include "train/dist_grads.h"
 #include "train/dist_stats.h"
+#include "train/distill_state.h"
 #include "train/features.h"
 #include "train/loss.h"
 #include "train/measure.h"
@@ -74,54 +75,6 @@ static int matches_any(const char *name, const char *const *globs, int n) {
     if (fnmatch(globs[i], name, 0) == 0) return 1;
   return 0;
 }
-
-typedef struct trainable {
-  int value;
-  unsigned flags;
-  int entry;
-  void *orig; /* the graph's own buffer, restored at the end */
-} trainable;
-
-typedef struct run_state {
-  const rc_distill_config *c;
-  rc_model *teacher, *student;
-  rc_graph *sg;
-  trainable *tr;
-  int n_tr;
-  int *bn_nodes;      /* BatchNormalization nodes of the student */
-  int n_bn;
-  rc_params *ps;
-  unsigned char *trainable_mask; /* per student value */
-  rc_plan *train_plan, *eval_plan, *teacher_plan;
-  int64_t batch, k;
-  rc_dataset train, val;
-  float *teacher_logits;     /* per training-pool sample (N_pool, K), in teacher_cache */
-  rc_spill teacher_cache;    /* memory, or a mapped file past config cache_bytes */
-  unsigned char *teacher_have; /* per pool sample: its row of teacher_logits is computed */
-  int64_t teacher_cached;      /* how many are */
-  rc_augment aug;              /* transforms of every training batch (data/augment.h) */
-  int augmenting;              /* any: the teacher runs on every batch, nothing is cached */
-  float *teacher_val_logits; /* (n_val, K) */
-  float *val_logits;
-  const int32_t *val_labels;
-  rc_data_split split;
-  int own_val;               /* val is a separate dataset */
-  rc_qat qat;                /* QDQ sites rewritten for training on their grids */
-  rc_features *feat;         /* feature-level terms, NULL when only logits are matched */
-  rc_plan *teacher_step;     /* teacher run every step for inner tensors */
-  rc_outputs *outs;          /* per-output losses, NULL: the logit terms */
-  const rc_output_side *train_side, *val_side;
-  unsigned char *tkeep, *skeep;
-  int projectors_started;    /* least-squares start done (or a resumed run) */
-  rc_distill_tensor_rule *rules; /* per trained weight, moved to the result */
-  int *rule_value;               /* the store's value of each rule */
-  int n_rules;
-  /* Under MPI (train/dist.h) each rank trains on rows [offset, offset +
-   * local) of every global batch; alone, offset 0 and local = batch. */
-  int64_t local, offset;
-  rc_grad_sync sync;
-  rc_dist_stats stats; /* batch statistics summed over the ranks (--bn train) */
-} run_state;
 
 /* Remember what the zeros of a trained weight mean; returns its store flags. */
 static rc_status add_rule(run_state *st, int v, const rc_mask_choice *m, const rc_int_range *range, rc_err *e) {
@@ -456,38 +409,6 @@ static double select_alpha(const run_state *st) {
 
 /* ---- One step --------------------------------------------------------------- */
 
-typedef struct step_buffers {
-  void *in[RC_DATASET_MAX_INPUTS];
-  int32_t *labels;
-  float *teacher;   /* (B, K) rows of the cached teacher logits */
-  int64_t *samples; /* the batch's sample numbers (per-output side data) */
-  double *bn_scratch; /* per-channel sums for --bn train */
-  float lr;           /* the last step's learning rate, for progress */
-  /* Augmentation: the batch's mixing, its partners (global batch
-   * positions), their rows and labels, and one plane of scratch. */
-  rc_augment_mix mix;
-  int64_t *partner, *partner_order;
-  float *mix_rows, *aug_work;
-  int32_t *partner_labels;
-  /* Lazy teacher passes: per row of the teacher's plan, the training
-   * position it reads and the sample it caches (-1: none). */
-  int64_t *slot_pos, *slot_sample;
-  rc__batch_source source;
-} step_buffers;
-
-/* Labels of a mixed batch count with the mixing weight: lambda for the
- * sample's own, 1 - lambda for its partner's (common practice with mixup
- * and CutMix). */
-static rc_status mixed_cross_entropy(const run_state *st, const step_buffers *sb, float *grad, float w,
-                                     const float *s, const int32_t *labels, double *ce, rc_err *e) {
-  double lam = sb->mix.lambda, own = 0, other = 0;
-  RC_TRY(rc_loss_cross_entropy(&own, NULL, grad, (float)(w * lam), s, labels, st->local, st->k, e));
-  RC_TRY(rc_loss_cross_entropy(&other, NULL, grad, (float)(w * (1 - lam)), s, sb->partner_labels, st->local, st->k,
-                               e));
-  *ce = lam * own + (1 - lam) * other;
-  return RC_OK;
-}
-
 static rc_status loss_and_seed(run_state *st, const step_buffers *sb, const int32_t *labels, double *loss,
                                rc_err *e) {
   const rc_distill_config *c = st->c;
@@ -506,7 +427,7 @@ static rc_status loss_and_seed(run_state *st, const step_buffers *sb, const int3
     RC_TRY(rc_loss_logit_mse(&dl, NULL, grad, alpha * wmse, s, sb->teacher, st->local, st->k, e));
   dl *= wkd > 0 ? wkd : wmse;
   if (labels && alpha < 1 && sb->mix.kind != RC_MIX_NONE) {
-    RC_TRY(mixed_cross_entropy(st, sb, grad, 1 - alpha, s, labels, &ce, e));
+    RC_TRY(rc__distill_mixed_cross_entropy(st, sb, grad, 1 - alpha, s, labels, &ce, e));
   } else if (labels && alpha < 1) {
     RC_TRY(rc_loss_cross_entropy(&ce, NULL, grad, 1 - alpha, s, labels, st->local, st->k, e));
   }
@@ -523,162 +444,6 @@ static rc_status outputs_loss(run_state *st, const step_buffers *sb, int64_t b, 
   float alpha = st->c->alpha >= 0 ? st->c->alpha : 0.9f;
   return rc__outputs_step(st->outs, st->teacher_step, st->train_plan, st->train_side, sb->samples, st->batch, alpha,
                           loss, e);
-}
-
-/* The teacher on this rank's rows of the step's batch, as the student sees
- * them, placed at their rows of the global batch (the other rows are
- * zeros) so that each gets the bits one process gives it. */
-static rc_status teacher_forward(run_state *st, const step_buffers *sb, rc_err *e) {
-  const rc_graph *tg = &st->teacher->graph, *sg = st->sg;
-  for (int i = 0; i < tg->n_inputs; i++) {
-    int j = rc__graph_find_in(sg, sg->inputs, sg->n_inputs, tg->values[tg->inputs[i]].name);
-    rc_tensor *t = rc_plan_tensor(st->teacher_plan, tg->inputs[i]);
-    size_t row = rc_tensor_nbytes(t) / (size_t)t->dims[0];
-    memset(t->data, 0, rc_tensor_nbytes(t));
-    memcpy((unsigned char *)t->data + row * (size_t)st->offset, sb->in[j], row * (size_t)st->local);
-  }
-  return rc_plan_forward(st->teacher_plan, e);
-}
-
-/* How far past this step's rows a teacher pass looks for samples to fill
- * its free rows with, in batches. */
-#define TEACHER_LOOKAHEAD 16
-
-/* One teacher pass over the samples at the training positions slot_pos
- * (one per row of the teacher's plan; a free row repeats another's
- * sample), caching the rows whose slot_sample is set. */
-static rc_status teacher_fill(run_state *st, const step_buffers *sb, rc_err *e) {
-  const rc_graph *tg = &st->teacher->graph, *sg = st->sg;
-  rc_dataset td = st->train;
-  void *in[RC_DATASET_MAX_INPUTS];
-  for (int i = 0; i < tg->n_inputs; i++) {
-    rc_dataset_take_input(&td, i, &st->train,
-                          rc__graph_find_in(sg, sg->inputs, sg->n_inputs, tg->values[tg->inputs[i]].name));
-    in[i] = rc_plan_tensor(st->teacher_plan, tg->inputs[i])->data;
-  }
-  td.order = sb->slot_pos;
-  td.n = st->batch;
-  memset(td.release, 0, sizeof td.release); /* the step's own gather manages a mapping's pages */
-  int64_t count;
-  RC_TRY(rc_dataset_gather(in, NULL, &count, &td, 0, st->batch, e));
-  RC_TRY(rc_plan_forward(st->teacher_plan, e));
-  const float *t = rc_plan_tensor(st->teacher_plan, tg->outputs[0])->data;
-  for (int64_t r = 0; r < st->batch; r++) {
-    int64_t sample = sb->slot_sample[r];
-    if (sample < 0) continue;
-    memcpy(st->teacher_logits + sample * st->k, t + r * st->k, sizeof(float) * (size_t)st->k);
-    st->teacher_have[sample] = 1;
-    st->teacher_cached++;
-  }
-  return RC_OK;
-}
-
-/* Give the sample at training position pos its row in the next teacher
- * pass, if it needs one and its row is free. */
-static void claim_slot(const run_state *st, const step_buffers *sb, int64_t pos, int *claimed) {
-  int64_t sample = st->train.index[pos], r = sample % st->batch;
-  if (st->teacher_have[sample] || sb->slot_sample[r] >= 0) return;
-  sb->slot_sample[r] = sample;
-  sb->slot_pos[r] = pos;
-  *claimed = 1;
-}
-
-/* Compute the teacher's rows that this rank's part of batch b lacks. A
- * row's bits depend on the sample and on its row in the teacher's plan
- * (the GEMM library picks kernels by position), so sample s always takes
- * row s mod batch, as a pass over the samples in order gives it: the cache
- * holds the same bits whichever steps draw it first. Rows this step leaves
- * free go to samples the next batches of the epoch draw. */
-static rc_status teacher_lazy(run_state *st, step_buffers *sb, int64_t b, int64_t spe, rc_err *e) {
-  const int64_t *order = st->train.order;
-  int64_t first = b * st->batch + st->offset;
-  for (;;) {
-    for (int64_t r = 0; r < st->batch; r++) sb->slot_sample[r] = -1;
-    int claimed = 0;
-    for (int64_t j = 0; j < st->local; j++) claim_slot(st, sb, order[first + j], &claimed);
-    if (!claimed) return RC_OK;
-    int64_t end = b + 1 + TEACHER_LOOKAHEAD < spe ? b + 1 + TEACHER_LOOKAHEAD : spe;
-    for (int64_t bb = b + 1; bb < end; bb++)
-      for (int64_t j = 0; j < st->local && bb * st->batch + st->offset + j < st->train.n; j++)
-        claim_slot(st, sb, order[bb * st->batch + st->offset + j], &claimed);
-    int64_t any = 0;
-    for (int64_t r = 0; r < st->batch; r++)
-      if (sb->slot_sample[r] >= 0) any = sb->slot_pos[r];
-    for (int64_t r = 0; r < st->batch; r++)
-      if (sb->slot_sample[r] < 0) sb->slot_pos[r] = any;
-    RC_TRY(teacher_fill(st, sb, e));
-  }
-}
-
-/* The teacher's rows for this rank's part of batch b: from the cache,
- * filled as steps first draw samples (a run of a few steps never runs the
- * teacher over the whole set), or, with augmentation, computed on the
- * augmented batch itself. */
-static rc_status teacher_rows(run_state *st, step_buffers *sb, int64_t b, int64_t spe, rc_err *e) {
-  if (!st->k) return RC_OK;
-  size_t row = sizeof(float) * (size_t)st->k;
-  if (st->augmenting) {
-    RC_TRY(teacher_forward(st, sb, e));
-    const float *t = rc_plan_tensor(st->teacher_plan, st->teacher->graph.outputs[0])->data;
-    memcpy(sb->teacher, t + st->offset * st->k, row * (size_t)st->local);
-    return RC_OK;
-  }
-  RC_TRY(teacher_lazy(st, sb, b, spe, e));
-  const int64_t *order = st->train.order + b * st->batch + st->offset;
-  for (int64_t j = 0; j < st->local; j++)
-    memcpy(sb->teacher + j * st->k, st->teacher_logits + st->train.index[order[j]] * st->k, row);
-  return RC_OK;
-}
-
-/* ---- Augmentation ------------------------------------------------------------- */
-
-/* Transforms of this rank's rows of batch b, drawn by global batch position
- * so that any split over ranks gives the rows one process gives. A mixing
- * partner may lie in another rank's rows: every rank gathers and transforms
- * the partners it needs itself. */
-static rc_status augment_batch(run_state *st, const loop_state *ls, step_buffers *sb, rc_err *e) {
-  const rc_tensor *in = rc_plan_tensor(st->train_plan, st->sg->inputs[0]);
-  int64_t c = in->dims[1], h = in->dims[2], w = in->dims[3], per = c * h * w;
-  const rc_augment *a = &st->aug;
-  uint64_t seed = st->c->seed;
-  float *x = sb->in[0];
-  rc_augment_draw d;
-  rc__augment_draw_mix(a, &sb->mix, sb->partner, st->batch, h, w, seed, ls->step);
-  if (sb->mix.kind != RC_MIX_NONE) {
-    for (int64_t j = 0; j < st->local; j++)
-      sb->partner_order[j] = st->train.order[ls->batch * st->batch + sb->partner[st->offset + j]];
-    rc_dataset pv = st->train;
-    pv.order = sb->partner_order;
-    pv.n = st->local;
-    memset(pv.release, 0, sizeof pv.release); /* the step's own gather manages the mapping's pages */
-    void *out[RC_DATASET_MAX_INPUTS] = {sb->mix_rows};
-    int64_t count;
-    RC_TRY(rc_dataset_gather(out, pv.labels ? sb->partner_labels : NULL, &count, &pv, 0, st->local, e));
-    for (int64_t j = 0; j < st->local; j++) {
-      rc__augment_draw_sample(a, &d, h, w, seed, ls->step, sb->partner[st->offset + j]);
-      rc__augment_apply_sample(&d, a->pad, sb->mix_rows + j * per, c, h, w, sb->aug_work);
-    }
-  }
-  for (int64_t j = 0; j < st->local; j++) {
-    rc__augment_draw_sample(a, &d, h, w, seed, ls->step, st->offset + j);
-    rc__augment_apply_sample(&d, a->pad, x + j * per, c, h, w, sb->aug_work);
-  }
-  for (int64_t j = 0; j < st->local && sb->mix.kind != RC_MIX_NONE; j++)
-    rc__augment_apply_mix(&sb->mix, x + j * per, sb->mix_rows + j * per, c, h, w);
-  return RC_OK;
-}
-
-static rc_status augment_buffers(const run_state *st, step_buffers *sb, rc_err *e) {
-  const rc_tensor *in = rc_plan_tensor(st->train_plan, st->sg->inputs[0]);
-  size_t plane = (size_t)(in->dims[2] * in->dims[3]);
-  sb->partner = rc__malloc(sizeof(int64_t) * (size_t)st->batch);
-  sb->partner_order = rc__malloc(sizeof(int64_t) * (size_t)st->local);
-  sb->partner_labels = rc__malloc(sizeof(int32_t) * (size_t)st->local);
-  sb->mix_rows = rc__malloc(rc_tensor_nbytes(in));
-  sb->aug_work = rc__malloc(sizeof(float) * plane);
-  if (!sb->partner || !sb->partner_order || !sb->partner_labels || !sb->mix_rows || !sb->aug_work)
-    return rc__fail(e, RC_ERR_NOMEM, "out of memory for augmentation");
-  return RC_OK;
 }
 
 /* ---- The run ------------------------------------------------------------------ */
@@ -834,8 +599,8 @@ static rc_status train_step(loop_ctx *lc, const loop_state *ls, step_buffers *sb
   run_state *st = lc->st;
   int64_t count;
   RC_TRY(rc__batch_source_next(&sb->source, ls->batch, sb->in, sb->labels, &count, e));
-  if (st->augmenting) RC_TRY(augment_batch(st, ls, sb, e));
-  RC_TRY(teacher_rows(st, sb, ls->batch, lc->spe, e));
+  if (st->augmenting) RC_TRY(rc__distill_augment_batch(st, ls->batch, ls->step, sb, e));
+  RC_TRY(rc__distill_teacher_rows(st, sb, ls->batch, lc->spe, e));
   rc_params_zero_grad(st->ps);
   rc_plan_zero_grad(st->train_plan);
   RC_TRY(rc_plan_forward(st->train_plan, e));
@@ -946,7 +711,7 @@ static rc_status train_loop(run_state *st, rc_distill_result *r, const rc_distil
   sb.bn_scratch = rc__malloc(sizeof(double) * rc__bn_scratch_count(g, st->train_plan, st->bn_nodes, st->n_bn));
   sb.slot_pos = rc__malloc(sizeof(int64_t) * (size_t)st->batch);
   sb.slot_sample = rc__malloc(sizeof(int64_t) * (size_t)st->batch);
-  rc_status s = st->augmenting ? augment_buffers(st, &sb, e) : RC_OK;
+  rc_status s = st->augmenting ? rc__distill_augment_buffers(st, &sb, e) : RC_OK;
   if (s != RC_OK) goto out;
   if (!r->epoch_loss || !r->epoch_val || !sb.teacher || !sb.samples || (d->labels && !sb.labels) ||
       !sb.bn_scratch || !sb.slot_pos || !sb.slot_sample) {
@@ -1157,34 +922,6 @@ static rc_status prepare_grids(run_state *st, const rc_tensor *data, rc_err *e) 
   return s;
 }
 
-/* --augment: parsed, checked against the student's input and the run's
- * side data, and announced (the teacher-output cache is off with it). */
-static rc_status setup_augment(run_state *st, const rc_distill_data *d, rc_distill_result *r, rc_err *e) {
-  RC_TRY(rc__augment_parse(&st->aug, st->c->augment, e));
-  st->augmenting = rc__augment_any(&st->aug);
-  if (!st->augmenting) return RC_OK;
-  const rc_graph *g = st->sg;
-  if (g->n_inputs != 1)
-    return rc__fail(e, RC_ERR_UNSUPPORTED, "--augment: %s has %d inputs; augmentation transforms one image input",
-                    g->path, g->n_inputs);
-  char what[300];
-  snprintf(what, sizeof what, "input '%s' of %s", g->values[g->inputs[0]].name, g->path);
-  RC_TRY(rc__augment_check(&st->aug, rc_plan_tensor(st->train_plan, g->inputs[0]), what, e));
-  for (int i = 0; i < RC_DISTILL_OUTPUTS_MAX; i++)
-    if (d->side.targets[i] || d->side.labels)
-      return rc__fail(e, RC_ERR_UNSUPPORTED,
-                      "--augment does not move dense labels or --targets with the pixels it "
-                      "transforms; give per-output losses without them (the teacher's outputs are transformed "
-                      "with the input), or no --augment");
-  rc__augment_describe(&st->aug, r->augment, sizeof r->augment);
-  r->teacher_cache_off = 1;
-  rc__log(&st->c->log, RC_LOG_INFO,
-          "augmentation %s: the teacher runs on every augmented batch (no teacher-output "
-          "cache)",
-          r->augment);
-  return RC_OK;
-}
-
 static rc_status record_changes(run_state *st, rc_distill_result *r, rc_err *e) {
   r->changed = rc__malloc(sizeof(int) * (size_t)(st->n_tr + st->qat.n + 1));
   if (!r->changed) return rc__fail(e, RC_ERR_NOMEM, "out of memory");
@@ -1223,12 +960,12 @@ static rc_status record_changes(run_state *st, rc_distill_result *r, rc_err *e) 
 /* What per-output runs do not combine with (yet): say so before training. */
 static rc_status check_outputs_mode(const rc_distill_config *c, const rc_distill_data *d, rc_err *e) {
   if (d->labels)
-    return rc__fail(e, RC_ERR_INVALID, "--output-loss: labels must be per position of a kd output (dense labels), "
-                    "not one class per sample");
+    return rc__fail(e, RC_ERR_INVALID, "per-output losses: labels must be per position of a kd output (dense "
+                    "labels), not one class per sample");
   for (int t = RC_TERM_HINT; t < RC_TERM_COUNT; t++)
     if (c->terms.weight[t] > 0)
-      return rc__fail(e, RC_ERR_UNSUPPORTED, "--output-loss replaces the logit terms and does not combine with the "
-                      "feature terms of --loss");
+      return rc__fail(e, RC_ERR_UNSUPPORTED, "per-output losses replace the logit terms and do not combine with "
+                      "feature terms");
   return RC_OK;
 }
 
@@ -1300,7 +1037,7 @@ rc_status rc_distill_run(rc_distill_result *r, rc_model *teacher, rc_model *stud
   r->n_val = st.val.n;
   if ((s = select_trainables(&st, e)) != RC_OK || (s = collect_bn(&st, e)) != RC_OK ||
       (s = build_store(&st, d->inputs, e)) != RC_OK || (s = build_plans(&st, d->inputs, e)) != RC_OK ||
-      (s = setup_ranks(&st, e)) != RC_OK || (s = setup_augment(&st, d, r, e)) != RC_OK)
+      (s = setup_ranks(&st, e)) != RC_OK || (s = rc__distill_setup_augment(&st, d, r, e)) != RC_OK)
     goto out;
   if ((s = val_labels_of(&st, d, &val_labels, e)) != RC_OK) goto out;
   if (st.outs) {
