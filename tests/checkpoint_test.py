@@ -135,8 +135,8 @@ with np.load(copy_a) as z:
     members = {k: (z[k].dtype.str, z[k].shape) for k in z.files}
 documented = {"format", "version", "fingerprint", "position", "data_order", "learning_rate", "rollbacks", "stopped",
               "best", "history", "trace", "snapshots", "arrays"}
-check("header: format recoup-checkpoint, version 3, the documented keys",
-      h["format"] == "recoup-checkpoint" and h["version"] == 3 and set(h) == documented,
+check("header: format recoup-checkpoint, version 4, the documented keys",
+      h["format"] == "recoup-checkpoint" and h["version"] == 4 and set(h) == documented,
       f"(format {h['format']}, version {h['version']}, keys {sorted(set(h) ^ documented)} differ)")
 check("header: a 16-hex-digit fingerprint and the data order's seed", re.fullmatch(r"[0-9a-f]{16}", h["fingerprint"])
       is not None and h["data_order"] == {"generator": "pcg32", "seed": "7", "stream": h["position"]["epoch"]},
@@ -184,7 +184,7 @@ def rewrite(src, dst, change=None):
         arrays = {a["name"]: np.asarray(z[a["name"]], dtype="<f4") for a in h["arrays"]}
     pos, lr, tr = h["position"], h["learning_rate"], h["trace"]
     doc = {
-        "version": 3,
+        "version": 4,
         "format": "recoup-checkpoint",
         "fingerprint": h["fingerprint"],
         "position": {"step": pos["step"], "epoch": pos["epoch"], "batch": pos["batch"],
@@ -244,7 +244,7 @@ with open(text, "w") as f:
     f.write("step 10\n")
 refused("a file that is no archive is refused", text, "not an .npz archive")
 refused("a newer format version is refused", variant("v99", lambda d, a: d.update(version=99)),
-        "format version 99; this recoup reads version 3")
+        "format version 99; this recoup reads version 4")
 refused("another format's header is refused", variant("other", lambda d, a: d.update(format="weights")),
         "not a recoup checkpoint")
 refused("a checkpoint of another run (fingerprint) is refused",

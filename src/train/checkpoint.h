@@ -21,8 +21,11 @@
 #include "train/params.h"
 
 /* The version this build writes and the only one it reads. Versions 1 and 2
- * were raw images of in-memory structs ("recoup-ckpt-v1/v2" magic). */
-#define RC_CKPT_VERSION 3
+ * were raw images of in-memory structs ("recoup-ckpt-v1/v2" magic); version
+ * 3 had the same fields but a run fingerprint that did not cover the
+ * teacher's weights and the training data (the teacher's outputs were then
+ * all computed before training and hashed instead). */
+#define RC_CKPT_VERSION 4
 
 /* Everything the loop needs to continue exactly where it stopped. */
 typedef struct loop_state {
