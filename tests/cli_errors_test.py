@@ -180,6 +180,19 @@ with open(w("pngs_nolabel.txt"), "w") as f:
 expect_error("eval --output-loss with an unknown term names the option",
              ["eval", dense, "--data", w("x.npy"), "--output-loss", "logits=zz"],
              "--output-loss: output loss 'logits=zz': unknown term 'zz'", code=2)
+np.save(w("targets.npy"), np.zeros((200, 4), np.float32))
+np.save(w("classes.npy"), np.arange(200) % 4)
+expect_error("bounded-l2 with training targets only: names --val-targets",
+             base + ["--data", w("x.npy"), "--val-data", w("x.npy"), "--output-loss", "logits=bounded-l2",
+                     "--targets", "logits=" + w("targets.npy"), "--out", out],
+             "--val-targets: output 'logits': bounded-l2 needs targets of the validation samples", absent=out)
+expect_error("dense labels without a kd term: names --labels",
+             base + ["--data", w("x.npy"), "--output-loss", "logits=mse", "--labels", w("classes.npy"), "--out", out],
+             "--labels: dense labels need a kd output loss term", absent=out)
+expect_error("dense labels for the training samples only: names --val-labels",
+             base + ["--data", w("x.npy"), "--val-data", w("x.npy"), "--output-loss", "logits=kd", "--labels",
+                     w("classes.npy"), "--out", out],
+             "--val-labels: dense labels of the training samples but none of the validation samples", absent=out)
 expect_error("--labels folders on a list file names the option",
              ["eval", img_dense, "--data", w("pngs.txt"), "--labels", "folders"],
              f"--labels folders: {w('pngs.txt')}: labels from folders need a folder of images")
