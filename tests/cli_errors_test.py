@@ -173,6 +173,7 @@ def grey_pngs(folder, side, count):
 img_dense, img_pruned = image_classifier(w("img.onnx")), image_classifier(w("img_pruned.onnx"), 0.5)
 small = grey_pngs(w("small_pngs"), 4, 3)  # smaller than the 8 x 8 input
 big = grey_pngs(w("pngs"), 8, 3)
+np.save(w("x_img.npy"), np.random.RandomState(2).rand(16, 1, 8, 8).astype(np.float32))
 with open(w("pngs.txt"), "w") as f:
     f.write("".join(f"pngs/{i}.png {i}\n" for i in range(3)))
 with open(w("pngs_nolabel.txt"), "w") as f:
@@ -205,7 +206,7 @@ expect_error("images smaller than the input without --resize: the message points
              ["eval", img_dense, "--data", small],
              (f"--resize: {small}/", "image of 4x4 is smaller than the model's 8x8 input and no resize is set"))
 expect_error("--val-labels folders on a list file names --val-labels",
-             ["distill", "--teacher", img_dense, "--student", img_pruned, "--steps", "2", "--data", big,
+             ["distill", "--teacher", img_dense, "--student", img_pruned, "--steps", "2", "--data", w("x_img.npy"),
               "--val-data", w("pngs.txt"), "--val-labels", "folders", "--out", out],
              f"--val-labels folders: {w('pngs.txt')}: labels from folders need", absent=out)
 
