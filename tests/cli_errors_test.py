@@ -38,8 +38,13 @@ def classifier(path, classes=4, zero_fraction=0.0, seed=0, batch="N"):
     nodes = [helper.make_node("Gemm", ["x", "w1", "b1"], ["h"], transB=1, name="fc1"),
              helper.make_node("Relu", ["h"], ["r"], name="act"),
              helper.make_node("Gemm", ["r", "w2", "b2"], ["logits"], transB=1, name="fc2")]
-    g = helper.make_graph(nodes, "clf", [helper.make_tensor_value_info("x", TensorProto.FLOAT, [batch, 6])],
-                          [helper.make_tensor_value_info("logits", TensorProto.FLOAT, [batch, classes])], inits)
+    return save_checked(path, nodes, inits, [batch, 6], [batch, classes])
+
+
+def save_checked(path, nodes, inits, x_dims, logits_dims):
+    """Graph x -> ... -> logits at opset 13, accepted by the ONNX checker, saved to path."""
+    g = helper.make_graph(nodes, "clf", [helper.make_tensor_value_info("x", TensorProto.FLOAT, x_dims)],
+                          [helper.make_tensor_value_info("logits", TensorProto.FLOAT, logits_dims)], inits)
     m = helper.make_model(g, opset_imports=[helper.make_opsetid("", 13)])
     m.ir_version = 8
     onnx.checker.check_model(m)
@@ -152,13 +157,7 @@ def image_classifier(path, zero_fraction=0.0):
     inits = [numpy_helper.from_array(w1, "w1"), numpy_helper.from_array(np.zeros(4, np.float32), "b1")]
     nodes = [helper.make_node("Flatten", ["x"], ["f"], name="flat"),
              helper.make_node("Gemm", ["f", "w1", "b1"], ["logits"], transB=1, name="fc")]
-    g = helper.make_graph(nodes, "img", [helper.make_tensor_value_info("x", TensorProto.FLOAT, ["N", 1, 8, 8])],
-                          [helper.make_tensor_value_info("logits", TensorProto.FLOAT, ["N", 4])], inits)
-    m = helper.make_model(g, opset_imports=[helper.make_opsetid("", 13)])
-    m.ir_version = 8
-    onnx.checker.check_model(m)
-    onnx.save(m, path)
-    return path
+    return save_checked(path, nodes, inits, ["N", 1, 8, 8], ["N", 4])
 
 
 def grey_pngs(folder, side, count):
