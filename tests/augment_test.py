@@ -217,9 +217,13 @@ common = ["distill", "--teacher", DENSE, "--student", PRUNED, "--data", small, "
           "--out", os.path.join(WORK, "never.onnx")]
 refused(common + ["--augment", "crop=28"], 1, "padding must be smaller than the 28 x 28 image",
         "crop padding as large as the image: refused, naming the input")
-refused(common + ["--augment", "flip,spin"], 2, "unknown transform 'spin'", "an unknown transform: usage error")
-refused(common + ["--augment", "mix=0"], 2, "'mix=0'", "a non-positive Beta parameter: usage error")
-refused(common + ["--augment", "rrc=0.5-0.2"], 2, "'rrc=0.5-0.2'", "an empty area range: usage error")
+# Usage errors start with the option (the CLI's words) in front of the library's own.
+refused(common + ["--augment", "flip,spin"], 2, "--augment: unknown augmentation transform 'spin'",
+        "an unknown transform: usage error")
+refused(common + ["--augment", "mix=0"], 2, "--augment: augmentation item 'mix=0'",
+        "a non-positive Beta parameter: usage error")
+refused(common + ["--augment", "rrc=0.5-0.2"], 2, "--augment: augmentation item 'rrc=0.5-0.2'",
+        "an empty area range: usage error")
 targets = os.path.join(WORK, "targets.npy")
 np.save(targets, np.zeros((len(images), 10), np.float32))
 refused(common + ["--augment", "flip", "--output-loss", "logits=bounded-l2", "--targets", f"logits={targets}"], 1,

@@ -38,8 +38,13 @@ def classifier(path, classes=4, zero_fraction=0.0, seed=0, batch="N"):
     nodes = [helper.make_node("Gemm", ["x", "w1", "b1"], ["h"], transB=1, name="fc1"),
              helper.make_node("Relu", ["h"], ["r"], name="act"),
              helper.make_node("Gemm", ["r", "w2", "b2"], ["logits"], transB=1, name="fc2")]
-    g = helper.make_graph(nodes, "clf", [helper.make_tensor_value_info("x", TensorProto.FLOAT, [batch, 6])],
-                          [helper.make_tensor_value_info("logits", TensorProto.FLOAT, [batch, classes])], inits)
+    return save_checked(path, nodes, inits, [batch, 6], [batch, classes])
+
+
+def save_checked(path, nodes, inits, x_dims, logits_dims):
+    """Graph x -> ... -> logits at opset 13, accepted by the ONNX checker, saved to path."""
+    g = helper.make_graph(nodes, "clf", [helper.make_tensor_value_info("x", TensorProto.FLOAT, x_dims)],
+                          [helper.make_tensor_value_info("logits", TensorProto.FLOAT, logits_dims)], inits)
     m = helper.make_model(g, opset_imports=[helper.make_opsetid("", 13)])
     m.ir_version = 8
     onnx.checker.check_model(m)
@@ -53,7 +58,7 @@ def digest(path):
 
 
 def expect_error(name, args, must_name, code=1, absent=None):
-    """Run recoup; require the exit code, one stderr line naming `must_name`."""
+    """Run recoup; require the exit code, one stderr line naming `must_name` (a tuple: each of them)."""
     global passed
     watched = [a for a in args if os.path.isfile(a)]
     before = {p: digest(p) for p in watched}
@@ -66,8 +71,9 @@ def expect_error(name, args, must_name, code=1, absent=None):
         problems.append(f"exit status {r.returncode}, expected {code}")
     if code == 1 and len(err_lines) != 1:
         problems.append(f"{len(err_lines)} stderr lines, expected one")
-    if must_name not in r.stderr:
-        problems.append(f"stderr does not name '{must_name}'")
+    for name_ in must_name if isinstance(must_name, tuple) else (must_name,):
+        if name_ not in r.stderr:
+            problems.append(f"stderr does not name '{name_}'")
     if absent and os.path.exists(absent):
         problems.append(f"{absent} was written")
     for p, d in before.items():
@@ -137,6 +143,71 @@ expect_error("student with a fixed batch size", ["distill", "--teacher", dense, 
 expect_error("attention-map without attention maps",
              base + ["--data", w("x.npy"), "--loss", "kd=1,attention-map=1", "--out", out], "attention maps",
              absent=out)
+
+
+# Values the command line passes to the library: the library's message says
+# what is wrong in its own words, and the command line puts the option the
+# value came from in front (src/cli: cli_option_context), so each line below
+# must start its message with the option typed.
+def image_classifier(path, zero_fraction=0.0):
+    """x (N, 1, 8, 8) -> Flatten -> Gemm -> logits (N, 4): fed by image folders and lists."""
+    w1 = np.random.RandomState(3).randn(4, 64).astype(np.float32)
+    if zero_fraction:
+        w1[np.abs(w1) < np.quantile(np.abs(w1), zero_fraction)] = 0
+    inits = [numpy_helper.from_array(w1, "w1"), numpy_helper.from_array(np.zeros(4, np.float32), "b1")]
+    nodes = [helper.make_node("Flatten", ["x"], ["f"], name="flat"),
+             helper.make_node("Gemm", ["f", "w1", "b1"], ["logits"], transB=1, name="fc")]
+    return save_checked(path, nodes, inits, ["N", 1, 8, 8], ["N", 4])
+
+
+def grey_pngs(folder, side, count):
+    """count grey PNG files of side x side pixels (python3-pil writes them)."""
+    from PIL import Image
+    os.makedirs(folder, exist_ok=True)
+    for i in range(count):
+        Image.fromarray(np.full((side, side), 40 * i, np.uint8), "L").save(os.path.join(folder, f"{i}.png"))
+    return folder
+
+
+img_dense, img_pruned = image_classifier(w("img.onnx")), image_classifier(w("img_pruned.onnx"), 0.5)
+small = grey_pngs(w("small_pngs"), 4, 3)  # smaller than the 8 x 8 input
+big = grey_pngs(w("pngs"), 8, 3)
+np.save(w("x_img.npy"), np.random.RandomState(2).rand(16, 1, 8, 8).astype(np.float32))
+with open(w("pngs.txt"), "w") as f:
+    f.write("".join(f"pngs/{i}.png {i}\n" for i in range(3)))
+with open(w("pngs_nolabel.txt"), "w") as f:
+    f.write("pngs/0.png\n")
+expect_error("eval --output-loss with an unknown term names the option",
+             ["eval", dense, "--data", w("x.npy"), "--output-loss", "logits=zz"],
+             "--output-loss: output loss 'logits=zz': unknown term 'zz'", code=2)
+np.save(w("targets.npy"), np.zeros((200, 4), np.float32))
+np.save(w("classes.npy"), np.arange(200) % 4)
+expect_error("bounded-l2 with training targets only: names --val-targets",
+             base + ["--data", w("x.npy"), "--val-data", w("x.npy"), "--output-loss", "logits=bounded-l2",
+                     "--targets", "logits=" + w("targets.npy"), "--out", out],
+             "--val-targets: output 'logits': bounded-l2 needs targets of the validation samples", absent=out)
+expect_error("dense labels without a kd term: names --labels",
+             base + ["--data", w("x.npy"), "--output-loss", "logits=mse", "--labels", w("classes.npy"), "--out", out],
+             "--labels: dense labels need a kd output loss term", absent=out)
+expect_error("dense labels for the training samples only: names --val-labels",
+             base + ["--data", w("x.npy"), "--val-data", w("x.npy"), "--output-loss", "logits=kd", "--labels",
+                     w("classes.npy"), "--out", out],
+             "--val-labels: dense labels of the training samples but none of the validation samples", absent=out)
+expect_error("--labels folders on a list file names the option",
+             ["eval", img_dense, "--data", w("pngs.txt"), "--labels", "folders"],
+             f"--labels folders: {w('pngs.txt')}: labels from folders need a folder of images")
+expect_error("--labels list on a folder names the option", ["eval", img_dense, "--data", big, "--labels", "list"],
+             f"--labels list: {big}: labels from a list need a list file")
+expect_error("--labels list with a line without a label names the option and the line",
+             ["eval", img_dense, "--data", w("pngs_nolabel.txt"), "--labels", "list"],
+             f"--labels list: {w('pngs_nolabel.txt')}:1: no label after the path")
+expect_error("images smaller than the input without --resize: the message points to --resize",
+             ["eval", img_dense, "--data", small],
+             (f"--resize: {small}/", "image of 4x4 is smaller than the model's 8x8 input and no resize is set"))
+expect_error("--val-labels folders on a list file names --val-labels",
+             ["distill", "--teacher", img_dense, "--student", img_pruned, "--steps", "2", "--data", w("x_img.npy"),
+              "--val-data", w("pngs.txt"), "--val-labels", "folders", "--out", out],
+             f"--val-labels folders: {w('pngs.txt')}: labels from folders need", absent=out)
 
 # A learning rate that blows up: non-finite steps roll back to the last good
 # state with half the rate, at most three times, then training stops and the

@@ -175,16 +175,27 @@ def refusals():
     np.save(wrong, np.zeros((1200, 4, 7, 8), np.float32))
     base = ["distill", "--teacher", teacher, "--student", student, "--data", data, "--steps", "1",
             "--out", os.path.join(WORK, "never.onnx")]
-    cases = (("an output that does not exist", ["--output-loss", "nope=kd"], "'nope'"),
-             ("an axis out of range", ["--output-loss", "scores=kd:axis=4"], "axis 4"),
+    # Each message starts with the option the culprit came from (the CLI adds
+    # it in front of the library's words), then names the culprit.
+    cases = (("an output that does not exist", ["--output-loss", "nope=kd"],
+              ("--output-loss: output loss term on 'nope'", "has no such output")),
+             ("an axis out of range", ["--output-loss", "scores=kd:axis=4"],
+              ("--output-loss: output 'scores'", "axis 4")),
+             ("a key the term does not take", ["--output-loss", "scores=kd:beta=1"],
+              ("--output-loss: output loss 'scores=kd:beta=1': kd takes no key 'beta'",)),
              ("targets of the wrong shape", ["--output-loss", "boxes=bounded-l2:axis=1", "--targets",
-                                             "boxes=" + wrong], "(1200, 4, 8, 8)"),
-             ("bounded-l2 without targets", ["--output-loss", "boxes=bounded-l2"], "--targets"))
-    for what, extra, needle in cases:
+                                             "boxes=" + wrong], ("--targets: ", "(1200, 4, 8, 8)")),
+             ("targets for an output without a term taking them",
+              ["--output-loss", "scores=kd", "--targets", "scores=" + wrong],
+              ("--targets: targets for output 'scores': no output loss term on it takes targets",)),
+             ("bounded-l2 without targets", ["--output-loss", "boxes=bounded-l2"],
+              ("--targets: output 'boxes': bounded-l2 needs targets of the training samples",)))
+    for what, extra, needles in cases:
         r = subprocess.run([RECOUP] + base + extra, capture_output=True, text=True)
         one = r.stderr.strip().count("\n") == 0
-        run.check(f"refused: {what}", r.returncode in (1, 2) and needle in r.stderr and one
-                  and not os.path.exists(os.path.join(WORK, "never.onnx")), r.stderr.strip())
+        run.check(f"refused: {what}", r.returncode in (1, 2) and all(n in r.stderr for n in needles) and one
+                  and not os.path.exists(os.path.join(WORK, "never.onnx")),
+                  f"(exit {r.returncode}, wanted {needles!r}, stderr {r.stderr.strip()!r})")
 
 
 def box_error(boxes, truth):

@@ -72,6 +72,18 @@ typedef struct rc_output_side {
 /* Segmentation datasets commonly mark unlabelled pixels with 255. */
 #define RC_OUTPUT_DEFAULT_IGNORE 255
 
+/* What a failed rc_output_set_load was checking or reading, so that a
+ * caller can say where it took that part from (a command line: which
+ * option). */
+typedef enum rc_output_part {
+  RC_OUTPUT_PART_NONE = 0,    /* no failure, or one of the model itself */
+  RC_OUTPUT_PART_TERMS,       /* a term against the model's outputs */
+  RC_OUTPUT_PART_TARGETS,     /* targets of the training samples */
+  RC_OUTPUT_PART_VAL_TARGETS, /* targets of the validation samples */
+  RC_OUTPUT_PART_LABELS,      /* dense labels of the training samples */
+  RC_OUTPUT_PART_VAL_LABELS   /* dense labels of the validation samples */
+} rc_output_part;
+
 /* A run's per-output terms and the side data read for them. Fill with
  * rc_output_set_init, add terms and targets, then rc_output_set_load. */
 typedef struct rc_output_set {
@@ -83,6 +95,7 @@ typedef struct rc_output_set {
   rc_array target_arrays[RC_DISTILL_OUTPUTS_MAX], val_target_arrays[RC_DISTILL_OUTPUTS_MAX];
   rc_array labels, val_labels; /* int32 dense labels */
   char label_output[128];      /* the kd output they belong to, "" when none */
+  rc_output_part failed;       /* set by rc_output_set_load when it fails */
 } rc_output_set;
 
 /* No terms, ignore value RC_OUTPUT_DEFAULT_IGNORE. */
@@ -100,7 +113,8 @@ RC_API rc_status rc_output_set_add_targets(rc_output_set *o, const char *text, i
  * output's per-sample shape without the class axis), integers in
  * [0, classes) or the ignore value), filling side and val_side. n_train,
  * n_val: samples of each set (n_val < 0: no validation set of its own);
- * labels_path, val_labels_path: dense labels or NULL. */
+ * labels_path, val_labels_path: dense labels or NULL. On failure o->failed
+ * says which part the message is about. */
 RC_API rc_status rc_output_set_load(rc_output_set *o, rc_model *m, const rc_tensor *input_shapes, int n_inputs,
                                     int64_t n_train, const char *labels_path, int64_t n_val,
                                     const char *val_labels_path, rc_output_side *side, rc_output_side *val_side,

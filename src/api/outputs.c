@@ -92,9 +92,12 @@ static rc_status load_targets(rc_output_set *o, const char *const *list, int n_l
     int i = spec_of(o, name, 1);
     if (i < 0)
       return rc_err_set(e, RC_ERR_INVALID,
-                        "--targets %s: no --output-loss term on '%s' takes targets (bounded-l2)", name, name);
+                        "targets for output '%s': no output loss term on it takes targets "
+                        "(bounded-l2)",
+                        name);
     int v = find_value(g, name);
-    if (v < 0) return rc_err_set(e, RC_ERR_INVALID, "--targets: %s has no output '%s'", g->path, name);
+    if (v < 0)
+      return rc_err_set(e, RC_ERR_INVALID, "targets for output '%s': %s has no such output", name, g->path);
     const rc_tensor *shape = rc_plan_tensor(p, v);
     rc_tensor want;
     rc__output_sample_shape(&want, shape->dims, shape->rank, -1);
@@ -118,9 +121,7 @@ static rc_status load_labels(rc_output_set *o, rc_plan *p, const rc_graph *g, co
     snprintf(o->label_output, sizeof o->label_output, "%s", r.output);
     return rc_output_labels_read(out, path, n, t->dims, t->rank, r.axis, o->ignore, e);
   }
-  return rc_err_set(e, RC_ERR_INVALID,
-                    "--labels with --output-loss: dense labels need a kd term on the output they "
-                    "label");
+  return rc_err_set(e, RC_ERR_INVALID, "dense labels need a kd output loss term on the output they label");
 }
 
 rc_status rc_output_set_load(rc_output_set *o, rc_model *m, const rc_tensor *input_shapes, int n_inputs,
@@ -132,35 +133,53 @@ rc_status rc_output_set_load(rc_output_set *o, rc_model *m, const rc_tensor *inp
   memset(side, 0, sizeof *side);
   memset(val_side, 0, sizeof *val_side);
   side->ignore = val_side->ignore = (int32_t)o->ignore;
+  o->failed = RC_OUTPUT_PART_NONE; /* a plan failure is the model's */
   rc_plan *p = NULL;
   RC_TRY(rc_plan_init(&p, g, input_shapes, NULL, e));
   rc_status s = RC_OK;
+  o->failed = RC_OUTPUT_PART_TERMS;
   for (int i = 0; i < o->n && s == RC_OK; i++) {
     int v = find_value(g, o->specs[i].output);
     if (v < 0) {
-      s = rc_err_set(e, RC_ERR_INVALID, "--output-loss: %s has no output '%s'", g->path, o->specs[i].output);
+      s = rc_err_set(e, RC_ERR_INVALID, "output loss term on '%s': %s has no such output", o->specs[i].output,
+                     g->path);
       break;
     }
     const rc_tensor *t = rc_plan_tensor(p, v);
     rc_output_loss r = o->specs[i];
     s = rc_output_loss_resolve(&r, t->dims, t->rank, 1.0f, e);
   }
-  if (s == RC_OK) s = load_targets(o, o->targets, o->n_targets, o->target_arrays, n_train, p, g, side, e);
-  if (s == RC_OK && val)
+  if (s == RC_OK) {
+    o->failed = RC_OUTPUT_PART_TARGETS;
+    s = load_targets(o, o->targets, o->n_targets, o->target_arrays, n_train, p, g, side, e);
+  }
+  if (s == RC_OK && val) {
+    o->failed = RC_OUTPUT_PART_VAL_TARGETS;
     s = load_targets(o, o->val_targets, o->n_val_targets, o->val_target_arrays, n_val, p, g, val_side, e);
-  if (s == RC_OK && labels_path && (s = load_labels(o, p, g, labels_path, n_train, &o->labels, e)) == RC_OK)
-    side->labels = o->labels.t.data;
-  if (s == RC_OK && val && val_labels_path &&
-      (s = load_labels(o, p, g, val_labels_path, n_val, &o->val_labels, e)) == RC_OK)
-    val_side->labels = o->val_labels.t.data;
+  }
+  if (s == RC_OK && labels_path) {
+    o->failed = RC_OUTPUT_PART_LABELS;
+    if ((s = load_labels(o, p, g, labels_path, n_train, &o->labels, e)) == RC_OK) side->labels = o->labels.t.data;
+  }
+  if (s == RC_OK && val && val_labels_path) {
+    o->failed = RC_OUTPUT_PART_VAL_LABELS;
+    if ((s = load_labels(o, p, g, val_labels_path, n_val, &o->val_labels, e)) == RC_OK)
+      val_side->labels = o->val_labels.t.data;
+  }
   for (int i = 0; i < o->n && s == RC_OK; i++) {
     int has = side->targets[i] != NULL, has_val = !val || val_side->targets[i] != NULL;
-    if (rc_out_term_needs_targets(o->specs[i].term) && (!has || !has_val))
-      s = rc_err_set(e, RC_ERR_INVALID, "output '%s': %s needs targets: --targets %s=FILE%s", o->specs[i].output,
-                     rc_out_term_name(o->specs[i].term), o->specs[i].output, val ? " and --val-targets" : "");
+    if (!rc_out_term_needs_targets(o->specs[i].term) || (has && has_val)) continue;
+    o->failed = has ? RC_OUTPUT_PART_VAL_TARGETS : RC_OUTPUT_PART_TARGETS;
+    s = rc_err_set(e, RC_ERR_INVALID, "output '%s': %s needs targets of the %s samples", o->specs[i].output,
+                   rc_out_term_name(o->specs[i].term), has ? "validation" : "training");
   }
-  if (s == RC_OK && val && !labels_path != !val_labels_path)
-    s = rc_err_set(e, RC_ERR_INVALID, "give dense labels for both --data and --val-data, or for neither");
+  if (s == RC_OK && val && !labels_path != !val_labels_path) {
+    o->failed = labels_path ? RC_OUTPUT_PART_VAL_LABELS : RC_OUTPUT_PART_LABELS;
+    s = rc_err_set(e, RC_ERR_INVALID,
+                   "dense labels of the %s samples but none of the %s samples: give both or neither",
+                   labels_path ? "training" : "validation", labels_path ? "validation" : "training");
+  }
+  if (s == RC_OK) o->failed = RC_OUTPUT_PART_NONE;
   rc_plan_free(p);
   return s;
 }
@@ -177,7 +196,9 @@ static rc_status default_specs(rc_output_set *o, rc_plan *p, const rc_graph *g, 
     o->n++;
   }
   if (!o->n)
-    return rc_err_set(e, RC_ERR_INVALID, "%s: no float output of rank 3 or more; name outputs with --output-loss",
+    return rc_err_set(e, RC_ERR_INVALID,
+                      "%s: no float output of rank 3 or more; name the outputs in output loss "
+                      "terms",
                       g->path);
   return RC_OK;
 }

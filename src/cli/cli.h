@@ -33,6 +33,13 @@ int rc_cmd_synthesize(int argc, char **argv);
 
 /* "recoup: error: <msg>" on stderr; returns RC_EXIT_FAIL. */
 int cli_fail(const rc_err *e);
+/* The library names a setting in its own words; where a command passes it an
+ * option's value, this puts the option in front of the library's message
+ * ("--augment: unknown augmentation transform 'spin'"), so a user reads the
+ * option they typed. Returns e's code. */
+rc_status cli_option_context(rc_err *e, const char *option);
+/* cli_option_context, then cli_usage_error with the message; returns RC_EXIT_USAGE. */
+int cli_option_usage_error(const char *cmd, const char *option, rc_err *e);
 /* "recoup <cmd>: <msg>" plus a pointer to --help on stderr; returns RC_EXIT_USAGE. */
 int cli_usage_error(const char *cmd, const char *fmt, ...)
 #if defined(__GNUC__)

@@ -48,7 +48,7 @@ int cli_data_option(cli_data_opts *o, const char *cmd, const char *name, const c
   float *dst = !strcmp(name, "mean") ? o->mean : o->std;
   int *n = !strcmp(name, "mean") ? &o->n_mean : &o->n_std;
   if (rc_data_parse_floats(value, dst, CLI_MAX_CHANNELS, n, &e) != RC_OK)
-    return cli_usage_error(cmd, "--%s: %s", name, e.msg);
+    return cli_option_usage_error(cmd, !strcmp(name, "mean") ? "--mean" : "--std", &e);
   if (!strcmp(name, "std"))
     for (int i = 0; i < *n; i++)
       if (dst[i] == 0) return cli_usage_error(cmd, "--std values must be non-zero");

@@ -16,6 +16,7 @@ typedef struct cli_data_opts {
   const char *data[CLI_MAX_DATA]; /* "FILE" or "NAME=FILE" */
   int n_data;
   const char *labels;
+  const char *labels_option; /* the option labels came from, for messages; NULL: "--labels" */
   double scale;
   float mean[CLI_MAX_CHANNELS];
   int n_mean;

@@ -114,6 +114,16 @@ static void print_skipped(const cli_samples *s) {
             s->decoded.n_skipped == 1 ? "" : "s");
 }
 
+/* A set that does not fit the labels asked for (not a folder or list, no
+ * class subfolders, a list line without a label) names the option; a file
+ * that cannot be read is the data's own error. */
+static rc_status labels_context(rc_err *e, const cli_data_opts *o, rc_image_labels mode) {
+  if (mode == RC_IMAGE_LABELS_NONE || (e->code != RC_ERR_INVALID && e->code != RC_ERR_FORMAT)) return e->code;
+  char option[64];
+  snprintf(option, sizeof option, "%s %s", o->labels_option ? o->labels_option : "--labels", o->labels);
+  return cli_option_context(e, option);
+}
+
 rc_status cli_images_load(cli_samples *s, rc_array *out, const cli_data_opts *o, const rc_model_io *input,
                           const char *file, rc_err *e) {
   if (s->from_images)
@@ -123,12 +133,16 @@ rc_status cli_images_load(cli_samples *s, rc_array *out, const cli_data_opts *o,
   rc_image_labels mode = RC_IMAGE_LABELS_NONE;
   if (o->labels && !strcmp(o->labels, "folders")) mode = RC_IMAGE_LABELS_FOLDERS;
   if (o->labels && !strcmp(o->labels, "list")) mode = RC_IMAGE_LABELS_LIST;
-  RC_TRY(rc_image_set_open(&s->images, file, mode, e));
+  rc_status st = rc_image_set_open(&s->images, file, mode, e);
+  if (st != RC_OK) return labels_context(e, o, mode);
   s->from_images = 1;
   if (!decode_up_front(o, &s->images, &p)) return open_stream(s, out, o, &p, file, e);
   struct timespec t0, t1;
   clock_gettime(CLOCK_MONOTONIC, &t0);
-  RC_TRY(rc_image_set_load(&s->decoded, &s->images, &p, o->skip_bad, 0, e));
+  st = rc_image_set_load(&s->decoded, &s->images, &p, o->skip_bad, 0, e);
+  /* The one shape error of decoding: an image smaller than the crop. */
+  if (st == RC_ERR_SHAPE && o->resize <= 0) return cli_option_context(e, "--resize");
+  if (st != RC_OK) return st;
   clock_gettime(CLOCK_MONOTONIC, &t1);
   print_summary(s, &p, file, s->decoded.images.t.dims[0]);
   double secs = (double)(t1.tv_sec - t0.tv_sec) + 1e-9 * (double)(t1.tv_nsec - t0.tv_nsec);

@@ -15,7 +15,7 @@ int cli_outputs_add_spec(cli_outputs *o, const char *cmd, const char *text) {
   if (o->n == RC_DISTILL_OUTPUTS_MAX)
     return cli_usage_error(cmd, "at most %d --output-loss terms", RC_DISTILL_OUTPUTS_MAX);
   rc_err e = {0};
-  if (rc_output_set_add(o, text, &e) != RC_OK) return cli_usage_error(cmd, "%s", e.msg);
+  if (rc_output_set_add(o, text, &e) != RC_OK) return cli_option_usage_error(cmd, "--output-loss", &e);
   return 0;
 }
 
@@ -28,13 +28,22 @@ int cli_outputs_add_targets(cli_outputs *o, const char *cmd, const char *text, i
   return 0;
 }
 
+/* The option each part of the side data comes from (rc_output_part). */
+static const char *const PART_OPTION[] = {
+    [RC_OUTPUT_PART_NONE] = NULL,           [RC_OUTPUT_PART_TERMS] = "--output-loss",
+    [RC_OUTPUT_PART_TARGETS] = "--targets", [RC_OUTPUT_PART_VAL_TARGETS] = "--val-targets",
+    [RC_OUTPUT_PART_LABELS] = "--labels",   [RC_OUTPUT_PART_VAL_LABELS] = "--val-labels",
+};
+
 rc_status cli_outputs_load(cli_outputs *o, rc_model *m, const cli_samples *train, const char *labels_path,
                            const cli_samples *val, const char *val_labels_path, rc_output_side *side,
                            rc_output_side *val_side, rc_err *e) {
   rc_tensor shapes[CLI_MAX_DATA];
   cli_samples_shapes(train, 1, shapes);
-  return rc_output_set_load(o, m, shapes, train->n_inputs, train->n, labels_path, val ? val->n : -1,
-                            val_labels_path, side, val_side, e);
+  rc_status s = rc_output_set_load(o, m, shapes, train->n_inputs, train->n, labels_path, val ? val->n : -1,
+                                   val_labels_path, side, val_side, e);
+  if (s != RC_OK && PART_OPTION[o->failed]) cli_option_context(e, PART_OPTION[o->failed]);
+  return s;
 }
 
 /* "-" where a figure does not apply (NaN: no output of that kind). */

@@ -38,6 +38,13 @@ int cli_usage_error(const char *cmd, const char *fmt, ...) {
   return RC_EXIT_USAGE;
 }
 
+rc_status cli_option_context(rc_err *e, const char *option) { return rc_err_prefix(e, "%s", option); }
+
+int cli_option_usage_error(const char *cmd, const char *option, rc_err *e) {
+  cli_option_context(e, option);
+  return cli_usage_error(cmd, "%s", e->msg);
+}
+
 const char *cli_esc(const char *s, char *buf, size_t n) { return rc_text_escape(buf, n, s); }
 
 int cli_text_width(const char *s) {

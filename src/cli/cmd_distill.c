@@ -86,7 +86,7 @@ static int add_augment(distill_args *a, const char *v) {
     return cli_usage_error("distill", "--augment: the list is too long");
   snprintf(a->augment + used, sizeof a->augment - used, "%s%s", used ? "," : "", v);
   rc_err e = {0};
-  if (rc_distill_augment_check(a->augment, &e) != RC_OK) return cli_usage_error("distill", "%s", e.msg);
+  if (rc_distill_augment_check(a->augment, &e) != RC_OK) return cli_option_usage_error("distill", "--augment", &e);
   a->cfg.augment = a->augment;
   return 0;
 }
@@ -142,7 +142,7 @@ static int apply_option(distill_args *a, int c, const char *v) {
     case CLI_DISTILL_CLIP: cfg->clip = d; return 0;
     case CLI_DISTILL_LOSS: {
       rc_err e = {0};
-      if (rc_distill_loss_check(v, &e) != RC_OK) return cli_usage_error("distill", "--loss: %s", e.msg);
+      if (rc_distill_loss_check(v, &e) != RC_OK) return cli_option_usage_error("distill", "--loss", &e);
       cfg->loss = v;
       return 0;
     }
@@ -667,6 +667,7 @@ static rc_status load_val(cli_samples *val, const distill_args *a, const rc_mode
   memcpy(vo.data, a->val_data, sizeof vo.data);
   vo.n_data = a->n_val_data;
   vo.labels = cli_images_labels_word(a->val_labels) ? a->val_labels : NULL; /* image sets read their own labels */
+  vo.labels_option = "--val-labels";
   return cli_samples_load(val, &vo, m, e);
 }
 

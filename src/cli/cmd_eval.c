@@ -60,7 +60,7 @@ static int add_term(eval_args *a, const char *text) {
   if (a->n_terms == RC_EVAL_OUTPUTS_MAX)
     return cli_usage_error("eval", "at most %d --output-loss terms", RC_EVAL_OUTPUTS_MAX);
   rc_err e = {0};
-  if (rc_eval_output_term_check(text, &e) != RC_OK) return cli_usage_error("eval", "%s", e.msg);
+  if (rc_eval_output_term_check(text, &e) != RC_OK) return cli_option_usage_error("eval", "--output-loss", &e);
   a->terms[a->n_terms++] = text;
   return 0;
 }

@@ -54,7 +54,7 @@ static rc_status parse_rrc(rc_augment *a, const char *v, const char *end, const 
   if (!parse_range(v, scale_end, &a->scale_lo, &a->scale_hi, 1.0) ||
       (colon && !parse_range(colon + 1, end, &a->ratio_lo, &a->ratio_hi, 1e3)))
     return rc__fail(e, RC_ERR_INVALID,
-                    "--augment: '%s': expected rrc, rrc=SMIN-SMAX or rrc=SMIN-SMAX:RMIN-RMAX "
+                    "augmentation item '%s': expected rrc, rrc=SMIN-SMAX or rrc=SMIN-SMAX:RMIN-RMAX "
                     "(area fractions in (0, 1], aspect ratios > 0, each minimum at most its maximum)",
                     item);
   return RC_OK;
@@ -69,28 +69,29 @@ static rc_status parse_item(rc_augment *a, const char *s, const char *end, rc_er
 #define NAME_IS(w) (name_n == strlen(w) && !memcmp(s, w, name_n))
   double x = 0;
   if (NAME_IS("flip")) {
-    if (v) return rc__fail(e, RC_ERR_INVALID, "--augment: '%s': flip takes no value", item);
+    if (v) return rc__fail(e, RC_ERR_INVALID, "augmentation item '%s': flip takes no value", item);
     a->flip = 1;
     return RC_OK;
   }
   if (NAME_IS("crop")) {
     if (!v || !parse_num(v, end, &x) || x < 1 || x > 4096 || x != floor(x))
-      return rc__fail(e, RC_ERR_INVALID, "--augment: '%s': expected crop=N, N whole pixels of padding (1 to 4096)",
-                      item);
+      return rc__fail(e, RC_ERR_INVALID,
+                      "augmentation item '%s': expected crop=N, N whole pixels of padding (1 to 4096)", item);
     a->pad = (int64_t)x;
     return RC_OK;
   }
   if (NAME_IS("rrc")) return parse_rrc(a, v, end, item, e);
   if (NAME_IS("mix") || NAME_IS("cutmix")) {
     if (!v || !parse_num(v, end, &x) || x <= 0 || x > 1e3)
-      return rc__fail(e, RC_ERR_INVALID, "--augment: '%s': expected %.*s=A, A > 0 (the Beta(A, A) parameter)",
-                      item, (int)name_n, s);
+      return rc__fail(e, RC_ERR_INVALID,
+                      "augmentation item '%s': expected %.*s=A, A > 0 (the Beta(A, A) parameter)", item,
+                      (int)name_n, s);
     *(NAME_IS("mix") ? &a->mix_alpha : &a->cutmix_alpha) = x;
     return RC_OK;
   }
 #undef NAME_IS
   return rc__fail(e, RC_ERR_INVALID,
-                  "--augment: unknown transform '%s' (known: flip, crop=N, rrc[=SMIN-SMAX[:RMIN-RMAX]], "
+                  "unknown augmentation transform '%s' (known: flip, crop=N, rrc[=SMIN-SMAX[:RMIN-RMAX]], "
                   "mix=A, cutmix=A)",
                   item);
 }
@@ -102,7 +103,7 @@ rc_status rc__augment_parse(rc_augment *a, const char *text, rc_err *e) {
   while (*s) {
     const char *end = strchr(s, ',');
     if (!end) end = s + strlen(s);
-    if (end == s) return rc__fail(e, RC_ERR_INVALID, "--augment '%s': empty item", text);
+    if (end == s) return rc__fail(e, RC_ERR_INVALID, "augmentation list '%s': empty item", text);
     RC_TRY(parse_item(a, s, end, e));
     s = *end ? end + 1 : end;
   }
@@ -128,12 +129,12 @@ void rc__augment_describe(const rc_augment *a, char *buf, size_t n) {
 rc_status rc__augment_check(const rc_augment *a, const rc_tensor *input, const char *what, rc_err *e) {
   if (!rc__augment_any(a)) return RC_OK;
   if (input->rank != 4 || input->dtype != RC_DTYPE_FLOAT)
-    return rc__fail(e, RC_ERR_INVALID, "--augment needs a float image input (N, C, H, W); %s is %s of rank %d",
+    return rc__fail(e, RC_ERR_INVALID, "augmentation needs a float image input (N, C, H, W); %s is %s of rank %d",
                     what, rc_dtype_name(input->dtype), input->rank);
   int64_t h = input->dims[2], w = input->dims[3];
   if (a->pad && (a->pad >= h || a->pad >= w))
     return rc__fail(e, RC_ERR_INVALID,
-                    "--augment crop=%lld: the padding must be smaller than the %lld x %lld image "
+                    "augmentation crop=%lld: the padding must be smaller than the %lld x %lld image "
                     "of %s",
                     (long long)a->pad, (long long)h, (long long)w, what);
   return RC_OK;

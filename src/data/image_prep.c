@@ -148,7 +148,7 @@ rc_status rc_image_prepare(uint8_t *out, rc_image *im, const rc_image_prep *p, r
   }
   if (im->w < p->width || im->h < p->height)
     return rc__fail(e, RC_ERR_SHAPE, "image of %dx%d is smaller than the model's %dx%d input%s", im->w, im->h,
-                    p->width, p->height, p->resize > 0 ? "" : ": resize it (--resize)");
+                    p->width, p->height, p->resize > 0 ? "" : " and no resize is set");
   int top = (im->h - p->height) / 2, left = (im->w - p->width) / 2;
   size_t plane = (size_t)p->height * (size_t)p->width;
   for (int ch = 0; ch < p->channels; ch++)

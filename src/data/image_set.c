@@ -118,7 +118,7 @@ static rc_status open_folder(rc_image_set *s, const char *path, rc_image_labels 
     }
     grow_free(&all);
     if (st == RC_OK && classes.n == 0)
-      st = rc__fail(e, RC_ERR_INVALID, "%s: --labels folders needs one subfolder per class, found none", path);
+      st = rc__fail(e, RC_ERR_INVALID, "%s: labels from folders need one subfolder per class, found none", path);
     if (st == RC_OK && classes.n > INT32_MAX / 2) st = rc__fail(e, RC_ERR_LIMIT, "%s: too many classes", path);
     for (int64_t k = 0; st == RC_OK && k < classes.n; k++) {
       int64_t before = found.n;
@@ -177,7 +177,8 @@ static rc_status parse_line(grow *out, char *line, int64_t lineno, const char *l
     }
   }
   if (want_labels && label < 0)
-    return rc__fail(e, RC_ERR_FORMAT, "%s:%lld: no label after the path (--labels list)", list, (long long)lineno);
+    return rc__fail(e, RC_ERR_FORMAT, "%s:%lld: no label after the path (labels from the list)", list,
+                    (long long)lineno);
   return grow_push(out, line, label, e);
 }
 
@@ -218,9 +219,9 @@ rc_status rc_image_set_open(rc_image_set *s, const char *path, rc_image_labels l
   if (stat(path, &sb) != 0) return rc__fail(e, RC_ERR_IO, "%s: %s", path, strerror(errno));
   int folder = S_ISDIR(sb.st_mode);
   if (labels == RC_IMAGE_LABELS_FOLDERS && !folder)
-    return rc__fail(e, RC_ERR_INVALID, "%s: --labels folders needs a folder of images", path);
+    return rc__fail(e, RC_ERR_INVALID, "%s: labels from folders need a folder of images", path);
   if (labels == RC_IMAGE_LABELS_LIST && folder)
-    return rc__fail(e, RC_ERR_INVALID, "%s: --labels list needs a list file", path);
+    return rc__fail(e, RC_ERR_INVALID, "%s: labels from a list need a list file", path);
   if (folder) {
     s->root = rc__strdup(path);
   } else {

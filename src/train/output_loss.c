@@ -52,7 +52,7 @@ static rc_status parse_key(rc_output_loss *o, const term_entry *te, const char *
   for (size_t i = 0; i < sizeof keys / sizeof keys[0]; i++)
     if (!strcmp(key, keys[i].name)) bit = keys[i].bit;
   if (!bit || !(te->keys & bit))
-    return rc__fail(e, RC_ERR_INVALID, "--output-loss '%s': %s takes no key '%s'", spec, te->name, key);
+    return rc__fail(e, RC_ERR_INVALID, "output loss '%s': %s takes no key '%s'", spec, te->name, key);
   double d = 0;
   if (bit == K_WEIGHTS) {
     const char *p = val;
@@ -61,32 +61,34 @@ static rc_status parse_key(rc_output_loss *o, const term_entry *te, const char *
       char *end;
       double w = strtod(p, &end);
       if (end == p || !isfinite(w) || w < 0 || o->n_class_weights == RC_OUT_MAX_CLASS_WEIGHTS)
-        return rc__fail(e, RC_ERR_INVALID, "--output-loss '%s': weights must be up to %d non-negative numbers",
-                        spec, RC_OUT_MAX_CLASS_WEIGHTS);
+        return rc__fail(e, RC_ERR_INVALID, "output loss '%s': weights must be up to %d non-negative numbers", spec,
+                        RC_OUT_MAX_CLASS_WEIGHTS);
       o->class_weights[o->n_class_weights++] = (float)w;
       p = *end == ',' ? end + 1 : end;
-      if (*end && *end != ',') return rc__fail(e, RC_ERR_INVALID, "--output-loss '%s': bad weights", spec);
+      if (*end && *end != ',') return rc__fail(e, RC_ERR_INVALID, "output loss '%s': bad weights", spec);
     }
-    if (!o->n_class_weights) return rc__fail(e, RC_ERR_INVALID, "--output-loss '%s': empty weights", spec);
+    if (!o->n_class_weights) return rc__fail(e, RC_ERR_INVALID, "output loss '%s': empty weights", spec);
     return RC_OK;
   }
   if (!parse_number(val, &d))
-    return rc__fail(e, RC_ERR_INVALID, "--output-loss '%s': %s needs a number, got '%s'", spec, key, val);
+    return rc__fail(e, RC_ERR_INVALID, "output loss '%s': %s needs a number, got '%s'", spec, key, val);
   switch (bit) {
     case K_AXIS:
-      if (d != floor(d) || fabs(d) > 8) return rc__fail(e, RC_ERR_INVALID, "--output-loss '%s': bad axis", spec);
+      if (d != floor(d) || fabs(d) > 8) return rc__fail(e, RC_ERR_INVALID, "output loss '%s': bad axis", spec);
       o->axis = (int)d;
       return RC_OK;
     case K_T:
-      if (!(d > 0) || d > 1e3) return rc__fail(e, RC_ERR_INVALID, "--output-loss '%s': t must lie in (0, 1000]", spec);
+      if (!(d > 0) || d > 1e3)
+        return rc__fail(e, RC_ERR_INVALID, "output loss '%s': t must lie in (0, 1000]", spec);
       o->temperature = (float)d;
       return RC_OK;
     case K_WEIGHT:
-      if (d < 0 || d > 1e6) return rc__fail(e, RC_ERR_INVALID, "--output-loss '%s': weight must lie in [0, 1e6]", spec);
+      if (d < 0 || d > 1e6)
+        return rc__fail(e, RC_ERR_INVALID, "output loss '%s': weight must lie in [0, 1e6]", spec);
       o->weight = (float)d;
       return RC_OK;
     case K_BETA:
-      if (d < 0 || d > 1e6) return rc__fail(e, RC_ERR_INVALID, "--output-loss '%s': beta must be >= 0", spec);
+      if (d < 0 || d > 1e6) return rc__fail(e, RC_ERR_INVALID, "output loss '%s': beta must be >= 0", spec);
       o->beta = (float)d;
       return RC_OK;
     case K_MARGIN:
@@ -94,7 +96,7 @@ static rc_status parse_key(rc_output_loss *o, const term_entry *te, const char *
       return RC_OK;
     default:
       if (d != floor(d) || d < 2 || d > 1 << 20)
-        return rc__fail(e, RC_ERR_INVALID, "--output-loss '%s': bins must be an integer >= 2", spec);
+        return rc__fail(e, RC_ERR_INVALID, "output loss '%s': bins must be an integer >= 2", spec);
       o->bins = (int)d;
       return RC_OK;
   }
@@ -106,11 +108,11 @@ rc_status rc_output_loss_parse(rc_output_loss *o, const char *spec, rc_err *e) {
   o->axis = RC_OUT_AXIS_DEFAULT;
   o->beta = 1.0f;
   char buf[2048];
-  if (strlen(spec) >= sizeof buf) return rc__fail(e, RC_ERR_INVALID, "--output-loss: text too long");
+  if (strlen(spec) >= sizeof buf) return rc__fail(e, RC_ERR_INVALID, "output loss: text too long");
   strcpy(buf, spec);
   char *eq = strchr(buf, '=');
   if (!eq || eq == buf || (size_t)(eq - buf) >= sizeof o->output)
-    return rc__fail(e, RC_ERR_INVALID, "--output-loss '%s': expected OUTPUT=TERM[:key=value...]", spec);
+    return rc__fail(e, RC_ERR_INVALID, "output loss '%s': expected OUTPUT=TERM[:key=value...]", spec);
   *eq = 0;
   strcpy(o->output, buf);
   char *term = eq + 1, *rest = strchr(term, ':');
@@ -119,20 +121,20 @@ rc_status rc_output_loss_parse(rc_output_loss *o, const char *spec, rc_err *e) {
   for (int i = 0; i < RC_OUT_TERM_COUNT; i++)
     if (!strcmp(term, TERMS[i].name)) found = i;
   if (found < 0)
-    return rc__fail(e, RC_ERR_INVALID, "--output-loss '%s': unknown term '%s' (known: %s)", spec, term,
+    return rc__fail(e, RC_ERR_INVALID, "output loss '%s': unknown term '%s' (known: %s)", spec, term,
                     rc_out_term_list());
   o->term = (rc_out_term)found;
   while (rest && *rest) {
     char *next = strchr(rest, ':');
     if (next) *next++ = 0;
     char *kv = strchr(rest, '=');
-    if (!kv) return rc__fail(e, RC_ERR_INVALID, "--output-loss '%s': expected key=value, got '%s'", spec, rest);
+    if (!kv) return rc__fail(e, RC_ERR_INVALID, "output loss '%s': expected key=value, got '%s'", spec, rest);
     *kv = 0;
     RC_TRY(parse_key(o, &TERMS[found], rest, kv + 1, spec, e));
     rest = next;
   }
   if (o->term == RC_OUT_EDGE_KD && !o->bins)
-    return rc__fail(e, RC_ERR_INVALID, "--output-loss '%s': edge-kd needs bins=N (entries per box edge)", spec);
+    return rc__fail(e, RC_ERR_INVALID, "output loss '%s': edge-kd needs bins=N (entries per box edge)", spec);
   return RC_OK;
 }
 
@@ -298,8 +300,8 @@ rc_status rc_output_loss_compute(double *loss, float *grad, float grad_scale, co
                                  rc_err *e) {
   if (!s || !t) return rc__fail(e, RC_ERR_INVALID, "output '%s': missing values", o->output);
   if (TERMS[o->term].needs_targets && !y)
-    return rc__fail(e, RC_ERR_INVALID, "output '%s': %s needs targets (--targets %s=FILE)", o->output,
-                    TERMS[o->term].name, o->output);
+    return rc__fail(e, RC_ERR_INVALID, "output '%s': %s needs targets, and none were given", o->output,
+                    TERMS[o->term].name);
   int64_t outer, k, inner;
   rc_out_layout(dims, rank, o->axis, &outer, &k, &inner);
   int64_t n = outer * k * inner;

@@ -36,7 +36,8 @@ static rc_status no_output(const rc_graph *g, const char *name, rc_err *e) {
   size_t used = 0;
   for (int i = 0; i < g->n_outputs && used < sizeof known; i++)
     used += (size_t)snprintf(known + used, sizeof known - used, "%s'%s'", i ? ", " : "", g->values[g->outputs[i]].name);
-  return rc__fail(e, RC_ERR_INVALID, "--output-loss: %s has no output '%s' (outputs: %s)", g->path, name, known);
+  return rc__fail(e, RC_ERR_INVALID, "output loss term on '%s': %s has no such output (outputs: %s)", name,
+                  g->path, known);
 }
 
 static rc_status bind_one(bound *b, const rc_output_loss *spec, float default_t, rc_plan *teacher, rc_plan *student,
@@ -74,7 +75,7 @@ rc_status rc__outputs_create(rc_outputs **out, const rc_output_loss *specs, int 
                              rc_plan *student, const char *label_output, rc_err *e) {
   *out = NULL;
   if (n < 1 || n > RC_OUTPUTS_MAX)
-    return rc__fail(e, RC_ERR_INVALID, "--output-loss: between 1 and %d terms, got %d", RC_OUTPUTS_MAX, n);
+    return rc__fail(e, RC_ERR_INVALID, "output losses: between 1 and %d terms, got %d", RC_OUTPUTS_MAX, n);
   rc_outputs *o = rc__calloc(1, sizeof *o);
   if (!o) return rc__fail(e, RC_ERR_NOMEM, "out of memory");
   *out = o;
@@ -82,7 +83,7 @@ rc_status rc__outputs_create(rc_outputs **out, const rc_output_loss *specs, int 
   for (int i = 0; i < n; i++) {
     for (int j = 0; j < i; j++)
       if (!strcmp(specs[i].output, specs[j].output) && specs[i].term == specs[j].term)
-        return rc__fail(e, RC_ERR_INVALID, "--output-loss: %s on '%s' given twice", rc_out_term_name(specs[i].term),
+        return rc__fail(e, RC_ERR_INVALID, "output loss %s on '%s' given twice", rc_out_term_name(specs[i].term),
                         specs[i].output);
     RC_TRY(bind_one(&o->b[i], &specs[i], default_t, teacher, student, e));
     o->n++;
@@ -144,8 +145,8 @@ static rc_status gather_side(rc_outputs *o, const rc_output_side *side, const in
     bound *b = &o->b[i];
     if (!b->target) continue;
     if (!side || !side->targets[i] || !samples)
-      return rc__fail(e, RC_ERR_INVALID, "output '%s': %s needs targets (--targets %s=FILE)", b->spec.output,
-                      rc_out_term_name(b->spec.term), b->spec.output);
+      return rc__fail(e, RC_ERR_INVALID, "output '%s': %s needs targets, and none were given", b->spec.output,
+                      rc_out_term_name(b->spec.term));
     for (int64_t r = 0; r < count; r++)
       memcpy(b->target + r * b->per_sample, side->targets[i] + samples[r] * b->per_sample,
              sizeof(float) * (size_t)b->per_sample);
