@@ -120,12 +120,20 @@ check("the 1,200-image list is decoded per batch with --image-memory 0, up front
       js["images"]["decoded"] == "per batch" and runs["upfront_big"][2]["images"]["decoded"] == "up front",
       f"{js['images']['decoded']} / {runs['upfront_big'][2]['images']['decoded']}")
 grow = (runs["stream_big"][1] - runs["stream_small"][1]) / 1024
-check("per batch: 4x the images, peak resident memory within 8 MB (ru_maxrss)", grow < 8,
-      f"1,200 images {runs['stream_big'][1] / 1024:.1f} MB, 300 images {runs['stream_small'][1] / 1024:.1f} MB "
-      f"({grow:+.1f} MB; the decoded pixels are {pixels_mb:.0f} MB)")
 held = (runs["upfront_big"][1] - runs["stream_big"][1]) / 1024
-check("decoding up front holds the pixels: at least 30 MB more than per batch", held >= 30,
-      f"up front {runs['upfront_big'][1] / 1024:.1f} MB, per batch {runs['stream_big'][1] / 1024:.1f} MB ({held:+.1f} MB)")
+if os.environ.get("RECOUP_SANITIZER_BUILD") == "1":
+    # AddressSanitizer keeps freed blocks in its quarantine, so a process that
+    # frees every decoded batch still grows with the images it has read: peak
+    # RSS measures the sanitizer's allocator there. The release build checks it.
+    print(f"memory bounds not checked under the sanitizers (per batch {grow:+.1f} MB for 4x the images, "
+          f"up front {held:+.1f} MB over per batch)")
+else:
+    check("per batch: 4x the images, peak resident memory within 8 MB (ru_maxrss)", grow < 8,
+          f"1,200 images {runs['stream_big'][1] / 1024:.1f} MB, 300 images {runs['stream_small'][1] / 1024:.1f} MB "
+          f"({grow:+.1f} MB; the decoded pixels are {pixels_mb:.0f} MB)")
+    check("decoding up front holds the pixels: at least 30 MB more than per batch", held >= 30,
+          f"up front {runs['upfront_big'][1] / 1024:.1f} MB, per batch {runs['stream_big'][1] / 1024:.1f} MB "
+          f"({held:+.1f} MB)")
 check("per batch and up front write byte-identical models (same seed and threads)",
       runs["stream_big"][0] == runs["upfront_big"][0], f"{len(runs['stream_big'][0])} bytes each")
 
