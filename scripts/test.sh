@@ -4,7 +4,7 @@
 # UndefinedBehaviorSanitizer (reusing the reference models the release run
 # exported), then every libFuzzer target for a bounded time.
 #
-# Environment: RECOUP_FUZZ_SECONDS (default 30) per fuzz target, 0 skips
+# Environment: RECOUP_FUZZ_SECONDS (default 20) per fuzz target, 0 skips
 # fuzzing. Every stage runs even when an earlier one fails; the exit status
 # is non-zero when any did.
 set -uo pipefail
@@ -44,7 +44,7 @@ sanitizer_suite() {
 "$here/scripts/setup.sh" || exit 1
 stage "release build and tests" release_suite
 stage "AddressSanitizer/UndefinedBehaviorSanitizer build and tests" sanitizer_suite
-fuzz_seconds=${RECOUP_FUZZ_SECONDS:-30}
+fuzz_seconds=${RECOUP_FUZZ_SECONDS:-20}
 if [ "$fuzz_seconds" -gt 0 ]; then
   stage "fuzzing (${fuzz_seconds} s per target)" "$here/scripts/fuzz.sh" "$fuzz_seconds"
 fi

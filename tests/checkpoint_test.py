@@ -42,11 +42,11 @@ PRUNED = os.path.join(SRC, "models", "garment_pruned90.onnx")
 # The first 3,000 test images (2,700 train, batch 64: 42 steps per epoch),
 # 150 steps: three finished epochs and a half, enough room for a SIGTERM
 # after the first. The sanitizer build, several times slower, takes the first
-# 2,000 (28 steps per epoch) and 80 steps so that it stays within the suite's
+# 1,000 (14 steps per epoch) and 48 steps so that it stays within the suite's
 # time.
 COUNT, STEPS = 3000, 150
 if os.environ.get("RECOUP_SANITIZER_BUILD") == "1":
-    COUNT, STEPS = 2000, 80
+    COUNT, STEPS = 1000, 48
 with gzip.open(TEST_IMAGES, "rb") as f:
     raw = f.read()
 images = np.frombuffer(raw, dtype=np.uint8, offset=16).reshape(-1, 1, 28, 28)  # IDX: 16-byte header
