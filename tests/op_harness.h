@@ -30,6 +30,7 @@ typedef struct oh_case {
   size_t work_bytes; /* what oh_run sized for forward and backward */
   int training;
   int n_out; /* outputs to create (default 1) */
+  const struct rc__wpattern *pattern; /* the weight pattern kernels see (sparse.h), or NULL */
 } oh_case;
 
 static void oh_init(oh_case *c, const char *op, int opset) {
@@ -123,6 +124,7 @@ static rc_status oh_run(oh_case *c, rc_err *e) {
   k.work_bytes = ws > wb ? ws : wb;
   if (!c->work_bytes) c->work_bytes = k.work_bytes;
   k.saved = c->saved;
+  k.pattern = c->pattern;
   return n->def->forward(&k, e);
 }
 
@@ -164,6 +166,7 @@ static double oh_gradcheck(oh_case *c, const int *check, double eps) {
   }
   rc_kernel k = {n,      n->params, n->n_in, n->n_out, c->in,       c->out,
                  c->din, c->dout,   c->work, c->saved, c->training, c->work_bytes};
+  k.pattern = c->pattern;
   n->def->backward(&k);
   double worst = 0, worst_g = 0, worst_num = 0;
   int worst_in = -1;

@@ -52,6 +52,7 @@ static void run_backward(oh_case *c, const float *g, const int *inputs) {
   rc_node *n = &c->node;
   rc_kernel k = {n,      n->params, n->n_in, n->n_out, c->in,       c->out,
                  c->din, c->dout,   c->work, c->saved, c->training, c->work_bytes};
+  k.pattern = c->pattern;
   n->def->backward(&k);
 }
 static const float *grad_of(oh_case *c, int i) { return (const float *)c->din_t[i].data; }

@@ -21,6 +21,7 @@
 #include "ops/conv_impl.h"
 #include "ops/kernel_choice.h"
 #include "ops/op.h"
+#include "ops/sparse.h"
 
 #define AX RC_WIN_MAX_AXES
 
@@ -392,6 +393,12 @@ static int depthwise_direct(const rc_kernel *k, const rc__conv_geom *g, int back
          k->work_bytes >= rc__depthwise_workspace(g, backward, 1);
 }
 
+/* The weight pattern when the sparse kernels serve this Conv (sparse_conv.c). */
+static const rc__wpattern *sparse_of(const rc_kernel *k, const rc__conv_geom *g) {
+  const rc__wpattern *p = rc__sparse_pick(k, rc__sparse_conv_max_density);
+  return rc__sparse_conv_fits(g, p) ? p : NULL;
+}
+
 /* Samples per GEMM for the chunked path, or 1 for the per-sample path. */
 static int64_t chunk_of(const rc_kernel *k, const rc__conv_geom *g, int backward) {
   if (rc__conv_reference()) return 1;
@@ -492,6 +499,11 @@ static rc_status conv_forward(const rc_kernel *k, rc_err *e) {
   const float *b = bt ? bt->data : NULL;
   float *y = k->out[0]->data;
   if (!g.N || !g.M || !g.out_sp) return RC_OK;
+  const rc__wpattern *sp = sparse_of(k, &g);
+  if (sp) {
+    rc__sparse_conv_forward(&g, sp, y, x, w, b);
+    return RC_OK;
+  }
   if (depthwise_direct(k, &g, 0)) {
     rc__depthwise_forward(&g, y, x, w, b, k->work, k->work_bytes);
     return RC_OK;
@@ -574,6 +586,11 @@ static void conv_backward(const rc_kernel *k) {
   conv_grads cg;
   if (!begin_backward(k, &cg)) return;
   const rc__conv_geom g = cg.g;
+  const rc__wpattern *sp = sparse_of(k, &g);
+  if (sp) {
+    rc__sparse_conv_backward(&g, sp, cg.dx, cg.dw, cg.x, cg.w, cg.dy);
+    return;
+  }
   if (depthwise_direct(k, &g, 1)) {
     rc__depthwise_backward(&g, cg.dx, cg.dw, cg.x, cg.w, cg.dy, k->work, k->work_bytes);
     return;
@@ -664,7 +681,7 @@ static void convt_backward(const rc_kernel *k) {
 }
 
 const rc_op_def rc__ops_conv[] = {
-    {"Conv", "", 1, 21, 0, conv_parse, conv_infer, conv_workspace, NULL, conv_forward, conv_backward},
+    {"Conv", "", 1, 21, RC_OP_SPARSE_WEIGHT, conv_parse, conv_infer, conv_workspace, NULL, conv_forward, conv_backward},
     {"ConvTranspose", "", 1, 21, 0, conv_parse, conv_infer, conv_workspace, NULL, convt_forward,
      convt_backward},
 };

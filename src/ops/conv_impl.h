@@ -45,6 +45,13 @@ static inline int rc__conv_depthwise(const rc__conv_geom *g) { return g->Cg == 1
 
 /* ---- patch.c ---- */
 
+/* Where one kernel tap reads: image offsets per axis and the positions
+ * [lo, hi) per axis whose cell lies inside the image. */
+typedef struct rc__tap_span {
+  int64_t off[RC_WIN_MAX_AXES], lo[RC_WIN_MAX_AXES], hi[RC_WIN_MAX_AXES];
+} rc__tap_span;
+void rc__tap_span_of(const rc__patch *g, int64_t kr, rc__tap_span *t);
+
 /* Walks kernel tap kr (index into k[0]*k[1]*k[2]) over every position. */
 double rc__tap_walk(rc__tap_mode mode, float *pos, float *img, const rc__patch *g, int64_t kr, float v);
 /* col rows (channels*K, P), row r at col + r*ld, <- unfolded img (channels, img...).
@@ -85,5 +92,21 @@ void rc__depthwise_forward(const rc__conv_geom *g, float *y, const float *x, con
 /* dx += input gradient, dw += weight gradient (either may be NULL). */
 void rc__depthwise_backward(const rc__conv_geom *g, float *dx, float *dw, const float *x, const float *w,
                             const float *dy, float *work, size_t work_bytes);
+
+/* ---- sparse_conv.c ---- */
+
+/* Kernel cells the sparse Conv kernels take (their tap spans sit on the stack). */
+#define RC_SPARSE_CONV_MAX_TAPS 64
+
+struct rc__wpattern;
+/* Non-zero when the sparse kernels can serve this Conv with pattern p
+ * (not depthwise, at most RC_SPARSE_CONV_MAX_TAPS cells, p shaped as W). */
+int rc__sparse_conv_fits(const rc__conv_geom *g, const struct rc__wpattern *p);
+/* y = b + conv of x with the kept weights of w. */
+void rc__sparse_conv_forward(const rc__conv_geom *g, const struct rc__wpattern *p, float *y, const float *x,
+                             const float *w, const float *b);
+/* dx += input gradient, dw += weight gradient at kept positions only (either may be NULL). */
+void rc__sparse_conv_backward(const rc__conv_geom *g, const struct rc__wpattern *p, float *dx, float *dw,
+                              const float *x, const float *w, const float *dy);
 
 #endif

@@ -25,3 +25,10 @@ int rc__conv_reference(void) {
   const char *path = getenv("RECOUP_CONV_PATH");
   return path && !strcmp(path, "reference");
 }
+
+rc__sparse_mode rc__sparse_choice(void) {
+  const char *path = getenv("RECOUP_CONV_PATH");
+  if (!path) return RC_SPARSE_AUTO;
+  if (!strcmp(path, "reference") || !strcmp(path, "dense")) return RC_SPARSE_NEVER;
+  return !strcmp(path, "sparse") ? RC_SPARSE_ALWAYS : RC_SPARSE_AUTO;
+}

@@ -20,4 +20,10 @@ rc__isa rc__isa_level(void);
 /* Non-zero when RECOUP_CONV_PATH is "reference". */
 int rc__conv_reference(void);
 
+/* When the sparse kernels of Conv, Gemm and MatMul (sparse.h) run for a
+ * weight with a pattern: by its density (the default), never
+ * (RECOUP_CONV_PATH "reference" or "dense") or at any density ("sparse"). */
+typedef enum rc__sparse_mode { RC_SPARSE_AUTO = 0, RC_SPARSE_NEVER = 1, RC_SPARSE_ALWAYS = 2 } rc__sparse_mode;
+rc__sparse_mode rc__sparse_choice(void);
+
 #endif

@@ -4,6 +4,7 @@
 #include <string.h>
 
 #include "ops/op.h"
+#include "ops/sparse.h"
 
 static rc_status need_float(const rc_node *n, const rc_tensor *t, const char *what, rc_err *e) {
   if (t->dtype != RC_DTYPE_FLOAT)
@@ -96,6 +97,29 @@ static gemm_dims gemm_dims_of(const rc_kernel *k) {
 
 static const rc_tensor *gemm_c(const rc_kernel *k) { return k->n_in > 2 ? k->in[2] : NULL; }
 
+/* B's pattern when the sparse kernels serve this Gemm: A untransposed (its
+ * rows are the samples), the pattern shaped as B is stored. */
+static const rc__wpattern *gemm_pattern(const rc_kernel *k) {
+  const gemm_params *p = k->params;
+  const rc__wpattern *sp = rc__sparse_pick(k, rc__sparse_gemm_max_density);
+  const rc_tensor *b = k->in[1];
+  return sp && !p->trans_a && sp->rows == b->dims[0] && sp->cols == b->dims[1] ? sp : NULL;
+}
+
+/* Gemm's backward products through B's pattern (A untransposed). */
+static void gemm_sparse_backward(const rc_kernel *k, const rc__wpattern *sp, const gemm_dims *d) {
+  const gemm_params *p = k->params;
+  const float *dy = k->dout[0]->data, *a = k->in[0]->data, *b = k->in[1]->data;
+  float *da = k->din[0] ? k->din[0]->data : NULL, *db = k->din[1] ? k->din[1]->data : NULL;
+  if (p->trans_b) { /* B (N, K): y_i = B a_i */
+    if (da) rc__sparse_rows_scatter(sp, b, p->alpha, d->M, dy, d->N, da, d->K);
+    if (db) rc__sparse_rows_wgrad(sp, db, p->alpha, d->M, dy, d->N, a, d->K);
+  } else { /* B (K, N): y_i = B^T a_i */
+    if (da) rc__sparse_rows_gather(sp, b, p->alpha, d->M, dy, d->N, da, d->K);
+    if (db) rc__sparse_rows_wgrad(sp, db, p->alpha, d->M, a, d->K, dy, d->N);
+  }
+}
+
 /* A (M,K) or (K,M), B (K,N) or (N,K), C broadcast to (M,N) -> y (M,N). */
 static rc_status gemm_forward(const rc_kernel *k, rc_err *e) {
   const gemm_params *p = k->params;
@@ -116,6 +140,15 @@ static rc_status gemm_forward(const rc_kernel *k, rc_err *e) {
     for (int64_t i = 0; i < d.M * d.N; i++) y[i] *= beta;
     return RC_OK;
   }
+  const rc__wpattern *sp = gemm_pattern(k);
+  if (sp) {
+    if (!c) memset(y, 0, sizeof(float) * (size_t)(d.M * d.N));
+    else if (beta != 1.0f)
+      for (int64_t i = 0; i < d.M * d.N; i++) y[i] *= beta;
+    if (p->trans_b) rc__sparse_rows_gather(sp, k->in[1]->data, p->alpha, d.M, k->in[0]->data, d.K, y, d.N);
+    else rc__sparse_rows_scatter(sp, k->in[1]->data, p->alpha, d.M, k->in[0]->data, d.K, y, d.N);
+    return RC_OK;
+  }
   cblas_sgemm(CblasRowMajor, p->trans_a ? CblasTrans : CblasNoTrans, p->trans_b ? CblasTrans : CblasNoTrans,
               (int)d.M, (int)d.N, (int)d.K, p->alpha, k->in[0]->data, (int)d.lda, k->in[1]->data, (int)d.ldb,
               beta, y, (int)d.N);
@@ -129,7 +162,9 @@ static void gemm_backward(const rc_kernel *k) {
   const float *dy = k->dout[0]->data, *a = k->in[0]->data, *b = k->in[1]->data;
   const rc_tensor *c = gemm_c(k);
   if (!d.M || !d.N) return;
-  if (k->din[0] && d.K) {
+  const rc__wpattern *sp = d.K ? gemm_pattern(k) : NULL;
+  if (sp) gemm_sparse_backward(k, sp, &d);
+  if (k->din[0] && d.K && !sp) {
     /* dA' = alpha dY B'^T; stored transposed when transA. */
     float *da = k->din[0]->data;
     if (!p->trans_a)
@@ -139,7 +174,7 @@ static void gemm_backward(const rc_kernel *k) {
       cblas_sgemm(CblasRowMajor, p->trans_b ? CblasTrans : CblasNoTrans, CblasTrans, (int)d.K, (int)d.M,
                   (int)d.N, p->alpha, b, (int)d.ldb, dy, (int)d.N, 1.0f, da, (int)d.M);
   }
-  if (k->din[1] && d.K) {
+  if (k->din[1] && d.K && !sp) {
     /* dB' = alpha A'^T dY; stored transposed when transB. */
     float *db = k->din[1]->data;
     if (!p->trans_b)
@@ -267,6 +302,13 @@ static void sgemm_rm(int ta, int tb, int64_t m, int64_t n, int64_t k, const floa
               (int)k, 1.0f, a, (int)lda, b, (int)ldb, beta, c, (int)n);
 }
 
+/* B's pattern when the sparse kernels serve this MatMul: B a (K, N) matrix
+ * shared by every batch entry. */
+static const rc__wpattern *matmul_pattern(const rc_kernel *k, const mm_geom *g) {
+  const rc__wpattern *sp = rc__sparse_pick(k, rc__sparse_gemm_max_density);
+  return sp && g->b_shared && k->in[1]->rank == 2 && sp->rows == g->K && sp->cols == g->N ? sp : NULL;
+}
+
 /* a (..., M, K), b (..., K, N) -> y (..., M, N), batch axes broadcast; rank-1
  * operands promoted to (1, K) / (K, 1) with the added axis dropped. */
 static rc_status matmul_forward(const rc_kernel *k, rc_err *e) {
@@ -277,6 +319,12 @@ static rc_status matmul_forward(const rc_kernel *k, rc_err *e) {
   if (!g.nb || !g.M || !g.N) return RC_OK;
   if (!g.K) {
     memset(y, 0, sizeof(float) * (size_t)(g.nb * g.M * g.N));
+    return RC_OK;
+  }
+  const rc__wpattern *sp = matmul_pattern(k, &g);
+  if (sp) {
+    memset(y, 0, sizeof(float) * (size_t)(g.nb * g.M * g.N));
+    rc__sparse_rows_scatter(sp, b, 1.0f, g.nb * g.M, a, g.K, y, g.N);
     return RC_OK;
   }
   if (g.b_shared) {
@@ -302,6 +350,12 @@ static void matmul_backward(const rc_kernel *k) {
   float *da = k->din[0] ? k->din[0]->data : NULL;
   float *db = k->din[1] ? k->din[1]->data : NULL;
   if (!g.nb || !g.M || !g.N || !g.K) return;
+  const rc__wpattern *sp = matmul_pattern(k, &g);
+  if (sp) {
+    if (da) rc__sparse_rows_gather(sp, b, 1.0f, g.nb * g.M, dy, g.N, da, g.K);
+    if (db) rc__sparse_rows_wgrad(sp, db, 1.0f, g.nb * g.M, a, g.K, dy, g.N);
+    return;
+  }
   if (g.b_shared) {
     const int64_t rows = g.nb * g.M;
     if (da) sgemm_rm(0, 1, rows, g.K, g.N, dy, g.N, b, g.N, 1.0f, da);  /* dA = dY B^T */
@@ -318,7 +372,7 @@ static void matmul_backward(const rc_kernel *k) {
 }
 
 const rc_op_def rc__ops_matmul[] = {
-    {"Gemm", "", 7, 21, 0, gemm_parse, gemm_infer, NULL, NULL, gemm_forward, gemm_backward},
-    {"MatMul", "", 1, 21, 0, NULL, matmul_infer, NULL, NULL, matmul_forward, matmul_backward},
+    {"Gemm", "", 7, 21, RC_OP_SPARSE_WEIGHT, gemm_parse, gemm_infer, NULL, NULL, gemm_forward, gemm_backward},
+    {"MatMul", "", 1, 21, RC_OP_SPARSE_WEIGHT, NULL, matmul_infer, NULL, NULL, matmul_forward, matmul_backward},
 };
 const int rc__ops_matmul_count = (int)(sizeof rc__ops_matmul / sizeof rc__ops_matmul[0]);

@@ -46,13 +46,19 @@ typedef struct rc_kernel {
   /* NULL when this process holds the whole batch; else batch statistics
    * (BatchNormalization in training mode) are summed through it. */
   const rc_op_reduce *reduce;
+  /* NULL, or the kept positions of the weight input of an op flagged
+   * RC_OP_SPARSE_WEIGHT (sparse.h), set by the plan from training masks. */
+  const struct rc__wpattern *pattern;
 } rc_kernel;
 
 typedef enum rc_op_flags {
   /* Output data depends only on input shapes (Shape, Size): always foldable. */
   RC_OP_SHAPE_ONLY = 1 << 0,
   /* No gradient flows through this op (integer results, comparisons). */
-  RC_OP_NO_GRAD = 1 << 1
+  RC_OP_NO_GRAD = 1 << 1,
+  /* Input 1 is a weight whose kept positions may be given as a pattern
+   * (rc_kernel.pattern): Conv, Gemm, MatMul. */
+  RC_OP_SPARSE_WEIGHT = 1 << 2
 } rc_op_flags;
 
 typedef struct rc_op_def {

@@ -29,6 +29,11 @@ static void tap_ranges(const rc__patch *g, int64_t kr, int64_t *off0, int64_t *o
   valid_range(*off2, g->s[2], g->img[2], g->pos[2], lo2, hi2);
 }
 
+void rc__tap_span_of(const rc__patch *g, int64_t kr, rc__tap_span *t) {
+  tap_ranges(g, kr, &t->off[0], &t->off[1], &t->off[2], &t->lo[0], &t->hi[0], &t->lo[1], &t->hi[1], &t->lo[2],
+             &t->hi[2]);
+}
+
 double rc__tap_walk(rc__tap_mode mode, float *pos, float *img, const rc__patch *g, int64_t kr, float v) {
   int64_t off0, off1, off2, lo0, hi0, lo1, hi1, lo2, hi2;
   tap_ranges(g, kr, &off0, &off1, &off2, &lo0, &hi0, &lo1, &hi1, &lo2, &hi2);

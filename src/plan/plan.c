@@ -8,6 +8,7 @@
 
 #include "core/alloc.h"
 #include "core/arena.h"
+#include "ops/sparse.h"
 
 /* A node that runs on every batch (folded nodes are not steps). */
 typedef struct plan_step {
@@ -79,7 +80,7 @@ static int node_is_foldable(const rc_plan *p, const rc_node *n, const unsigned c
 }
 
 static rc_status run_folded(rc_plan *p, const rc_node *n, rc_tensor **in, rc_tensor **out, rc_err *e) {
-  rc_kernel k = {n, n->params, n->n_in, n->n_out, in, out, NULL, NULL, NULL, NULL, 0, 0, NULL};
+  rc_kernel k = {n, n->params, n->n_in, n->n_out, in, out, NULL, NULL, NULL, NULL, 0, 0, NULL, NULL};
   size_t ws = n->def->workspace ? n->def->workspace(&k, 0) : 0;
   size_t sv = n->def->saved ? n->def->saved(&k) : 0;
   if (ws > p->max_bytes || sv > p->max_bytes - ws)
@@ -159,7 +160,7 @@ static rc_status infer_and_fold(rc_plan *p, const rc_plan_opts *o, unsigned char
     plan_step *s = &p->steps[p->n_steps++];
     s->node = ni;
     s->k = (rc_kernel){n, n->params, n->n_in, n->n_out, in, out, NULL, NULL, NULL, NULL,
-                       o->bn_batch_stats, 0, o->reduce};
+                       o->bn_batch_stats, 0, o->reduce, NULL};
   }
   return RC_OK;
 }
@@ -436,6 +437,30 @@ rc_status rc_plan_bind_grad(rc_plan *p, int value, float *buf, rc_err *e) {
   if (value < 0 || value >= p->g->n_values || !p->needs_grad[value])
     return rc__fail(e, RC_ERR_INVALID, "%s: value %d has no gradient in this plan", p->g->path, value);
   p->grad[value].data = buf;
+  return RC_OK;
+}
+
+rc_status rc_plan_set_weight_pattern(rc_plan *p, int value, const uint8_t *keep, int *steps, rc_err *e) {
+  const rc_graph *g = p->g;
+  if (steps) *steps = 0;
+  if (value < 0 || value >= g->n_values || p->is_const[value] || p->t[value].rank < 2 ||
+      p->t[value].dtype != RC_DTYPE_FLOAT)
+    return rc__fail(e, RC_ERR_INVALID, "%s: value %d cannot take a weight pattern (a float weight of rank 2 or more "
+                    "that the plan keeps trainable)", g->path, value);
+  const rc_tensor *t = &p->t[value];
+  rc__wpattern *pat = NULL;
+  for (int s = 0; s < p->n_steps; s++) {
+    const rc_node *n = &g->nodes[p->steps[s].node];
+    if (!(n->def->flags & RC_OP_SPARSE_WEIGHT) || n->n_in < 2 || n->in[1] != value) continue;
+    if (!pat) {
+      pat = rc__arena_zalloc(&p->meta, sizeof *pat);
+      if (!pat) return rc__fail(e, RC_ERR_NOMEM, "%s: out of memory for a weight pattern", g->path);
+      if (rc__wpattern_build(pat, &p->meta, keep, t->dims[0], rc_tensor_numel(t) / t->dims[0], e) != RC_OK)
+        return rc__wrap(e, "%s: value %d", g->path, value);
+    }
+    p->steps[s].k.pattern = pat;
+    if (steps) (*steps)++;
+  }
   return RC_OK;
 }
 

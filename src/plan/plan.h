@@ -6,6 +6,8 @@
 #ifndef RC_PLAN_PLAN_H
 #define RC_PLAN_PLAN_H
 
+#include <stdint.h>
+
 #include "core/status.h"
 #include "ir/ir.h"
 #include "ops/op.h"
@@ -53,6 +55,14 @@ rc_tensor *rc_plan_grad(rc_plan *p, int value);
 /* Make the gradient of a value (a trainable initializer) accumulate into buf,
  * e.g. the parameter store's gradient block; the caller zeroes it. */
 rc_status rc_plan_bind_grad(rc_plan *p, int value, float *buf, rc_err *e);
+/* Declare the kept positions of a weight (an initializer the plan does not
+ * fold): keep holds one byte per element, non-zero where the weight may be
+ * non-zero; the other positions are frozen zeros. Every step that reads the
+ * value as a weight able to take a pattern (ops flagged RC_OP_SPARSE_WEIGHT)
+ * gets the pattern, built here once; its kernel may then run sparse
+ * kernels and leaves the gradient at frozen positions untouched. keep is
+ * read during the call only. *steps (may be NULL) gets the steps reached. */
+rc_status rc_plan_set_weight_pattern(rc_plan *p, int value, const uint8_t *keep, int *steps, rc_err *e);
 /* 1 if the value is a constant known at plan time (folded). */
 int rc_plan_is_const(const rc_plan *p, int value);
 

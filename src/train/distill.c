@@ -253,6 +253,20 @@ static void teacher_order(const rc_graph *t, const rc_graph *s, const rc_tensor 
   }
 }
 
+/* Pruned weights' kept positions go to the student's plans, whose kernels
+ * may then run sparse (ops/sparse.h): only the masks tell a frozen zero
+ * from a trainable weight that happens to be zero. */
+static rc_status set_weight_patterns(run_state *st, rc_err *e) {
+  for (int i = 0; i < st->n_tr; i++) {
+    const int v = st->tr[i].value;
+    const uint8_t *mask = rc_params_entry(st->ps, st->tr[i].entry)->mask;
+    if (!mask || !st->trainable_mask[v] || st->sg->values[v].decl.rank < 2) continue;
+    RC_TRY(rc_plan_set_weight_pattern(st->train_plan, v, mask, NULL, e));
+    RC_TRY(rc_plan_set_weight_pattern(st->eval_plan, v, mask, NULL, e));
+  }
+  return RC_OK;
+}
+
 static rc_status build_plans(run_state *st, const rc_tensor *data, rc_err *e) {
   const rc_graph *tg = &st->teacher->graph, *sg = st->sg;
   rc_tensor shapes[RC_DATASET_MAX_INPUTS], tin[RC_DATASET_MAX_INPUTS];
@@ -311,7 +325,7 @@ static rc_status build_plans(run_state *st, const rc_tensor *data, rc_err *e) {
     if (!rc_plan_grad(st->train_plan, v)) continue; /* feeds no output: stays as it is */
     RC_TRY(rc_plan_bind_grad(st->train_plan, v, rc_params_grad(st->ps, st->tr[i].entry), e));
   }
-  return RC_OK;
+  return set_weight_patterns(st, e);
 }
 
 /* This rank's share of an unshuffled view (its order is the identity, so
