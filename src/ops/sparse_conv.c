@@ -35,43 +35,156 @@ static int64_t img_row(const rc__patch *g, const rc__tap_span *t, int64_t p0, in
 
 static int64_t pos_row(const rc__patch *g, int64_t p0, int64_t p1) { return (p0 * g->pos[1] + p1) * g->pos[2]; }
 
+/* Rows of one tap walk as one flat run: with unit strides on the two inner
+ * axes and rows as wide in the image as in the output, output cell q of a
+ * plane reads image cell q + offset, so the valid rows [lo1, hi1) form one
+ * contiguous run from (lo1, lo2) to (hi1-1, hi2) in which only the few cells
+ * past each row's valid columns do not belong. Those cells (at most
+ * FLAT_GAP per row) are saved before the run and put back after it, so the
+ * result is the row-by-row walk's, bit for bit, at one loop per plane
+ * instead of one per row (rows of 8 to 32 cells made loop overhead the
+ * main cost). */
+#define FLAT_GAP 4
+#define FLAT_ROWS 256
+
+typedef struct flat_run {
+  int64_t q0, q1, shift; /* output cells [q0, q1) of the slab read image cell q + shift */
+} flat_run;
+
+static int flat_fits(const rc__patch *g, const rc__tap_span *t) {
+  return g->s[1] == 1 && g->s[2] == 1 && g->pos[2] == g->img[2] && g->pos[2] - (t->hi[2] - t->lo[2]) <= FLAT_GAP &&
+         t->hi[1] - t->lo[1] <= FLAT_ROWS && t->lo[1] < t->hi[1] && t->lo[2] < t->hi[2];
+}
+
+/* The run of slab p0 (cells counted from the slab's start in pos). */
+static flat_run flat_of(const rc__patch *g, const rc__tap_span *t) {
+  const int64_t W = g->pos[2];
+  flat_run r = {t->lo[1] * W + t->lo[2], (t->hi[1] - 1) * W + t->hi[2], t->off[1] * W + t->off[2]};
+  return r;
+}
+
+/* Copies (save = 1) or restores the cells of buf (a slab of pos or img,
+ * shifted by `shift`) that the run crosses but does not own. */
+/* The gap after row p1's valid columns runs into row p1+1's first valid
+ * column: one segment of W - (hi2 - lo2) cells per row but the last. They
+ * are a cell or two each, so no library copy (GCC would turn the loop into
+ * memcpy calls that cost more than the cells). */
+#if defined(__GNUC__) && !defined(__clang__)
+__attribute__((optimize("no-tree-loop-distribute-patterns")))
+#endif
+static void flat_gaps(float *buf, int64_t shift, const rc__patch *g, const rc__tap_span *t, float *keep, int save) {
+  const int64_t W = g->pos[2], gap = W - (t->hi[2] - t->lo[2]);
+  if (!gap) return;
+  float *cell = buf + t->lo[1] * W + t->hi[2] + shift;
+  for (int64_t p1 = t->lo[1]; p1 < t->hi[1] - 1; p1++, cell += W, keep += gap)
+    for (int64_t j = 0; j < gap; j++)
+      if (save) keep[j] = cell[j];
+      else cell[j] = keep[j];
+}
+
+static void axpy(float *restrict y, const float *restrict x, float v, int64_t n) {
+  for (int64_t i = 0; i < n; i++) y[i] += v * x[i];
+}
+
 /* pos[p] += v * img[cell of p] over the tap's valid positions. */
-static void span_axpy(float *restrict pos, const float *restrict img, const rc__patch *g, const rc__tap_span *t,
-                      float v) {
-  const int64_t st = g->s[2], lo = t->lo[2], hi = t->hi[2];
+static void span_axpy(float *pos, const float *img, const rc__patch *g, const rc__tap_span *t, float v) {
+  const int64_t st = g->s[2], lo = t->lo[2], hi = t->hi[2], slab_pos = g->pos[1] * g->pos[2],
+                slab_img = g->img[1] * g->img[2];
+  if (flat_fits(g, t)) {
+    float keep[FLAT_GAP * FLAT_ROWS];
+    const flat_run r = flat_of(g, t);
+    for (int64_t p0 = t->lo[0]; p0 < t->hi[0]; p0++) {
+      float *ps = pos + p0 * slab_pos;
+      const float *is = img + (p0 * g->s[0] + t->off[0]) * slab_img;
+      flat_gaps(ps, 0, g, t, keep, 1);
+      axpy(ps + r.q0, is + r.q0 + r.shift, v, r.q1 - r.q0);
+      flat_gaps(ps, 0, g, t, keep, 0);
+    }
+    return;
+  }
   for (int64_t p0 = t->lo[0]; p0 < t->hi[0]; p0++)
     for (int64_t p1 = t->lo[1]; p1 < t->hi[1]; p1++) {
       float *restrict prow = pos + pos_row(g, p0, p1);
       const float *restrict irow = img + img_row(g, t, p0, p1);
-      if (st == 1)
-        for (int64_t p = lo; p < hi; p++) prow[p] += v * irow[p];
+      if (st == 1) axpy(prow + lo, irow + lo, v, hi - lo);
       else
         for (int64_t p = lo; p < hi; p++) prow[p] += v * irow[p * st];
     }
 }
 
 /* img[cell of p] += v * pos[p]: the adjoint of span_axpy. */
-static void span_scatter(float *restrict img, const float *restrict pos, const rc__patch *g, const rc__tap_span *t,
-                         float v) {
-  const int64_t st = g->s[2], lo = t->lo[2], hi = t->hi[2];
+static void span_scatter(float *img, const float *pos, const rc__patch *g, const rc__tap_span *t, float v) {
+  const int64_t st = g->s[2], lo = t->lo[2], hi = t->hi[2], slab_pos = g->pos[1] * g->pos[2],
+                slab_img = g->img[1] * g->img[2];
+  if (flat_fits(g, t)) {
+    float keep[FLAT_GAP * FLAT_ROWS];
+    const flat_run r = flat_of(g, t);
+    for (int64_t p0 = t->lo[0]; p0 < t->hi[0]; p0++) {
+      const float *ps = pos + p0 * slab_pos;
+      float *is = img + (p0 * g->s[0] + t->off[0]) * slab_img;
+      flat_gaps(is, r.shift, g, t, keep, 1);
+      axpy(is + r.q0 + r.shift, ps + r.q0, v, r.q1 - r.q0);
+      flat_gaps(is, r.shift, g, t, keep, 0);
+    }
+    return;
+  }
   for (int64_t p0 = t->lo[0]; p0 < t->hi[0]; p0++)
     for (int64_t p1 = t->lo[1]; p1 < t->hi[1]; p1++) {
       const float *restrict prow = pos + pos_row(g, p0, p1);
       float *restrict irow = img + img_row(g, t, p0, p1);
-      if (st == 1)
-        for (int64_t p = lo; p < hi; p++) irow[p] += v * prow[p];
+      if (st == 1) axpy(irow + lo, prow + lo, v, hi - lo);
       else
         for (int64_t p = lo; p < hi; p++) irow[p * st] += v * prow[p];
     }
 }
 
-/* sum of pos[p] * img[cell of p]; rows summed in float, rows added in double. */
-static double span_dot(const float *pos, const float *img, const rc__patch *g, const rc__tap_span *t) {
-  const int64_t st = g->s[2], lo = t->lo[2], hi = t->hi[2];
+/* sum of a[i] * b[i] in 8 lanes added in a fixed order (vectorisable without
+ * reassociation, the same bits on every run). */
+#define DOT_LANES 8
+static float dot(const float *a, const float *b, int64_t n) {
+  float acc[DOT_LANES] = {0};
+  int64_t i = 0;
+  for (; i + DOT_LANES <= n; i += DOT_LANES)
+    for (int l = 0; l < DOT_LANES; l++) acc[l] += a[i + l] * b[i + l];
+  for (int l = 0; i < n; i++, l++) acc[l] += a[i] * b[i];
+  for (int w = DOT_LANES / 2; w >= 1; w /= 2)
+    for (int l = 0; l < w; l++) acc[l] += acc[l + w];
+  return acc[0];
+}
+
+/* The products a flat run's dot takes at the gap cells (to be taken off). */
+static double flat_gap_dot(const float *pos, const float *img, int64_t shift, const rc__patch *g,
+                           const rc__tap_span *t) {
+  const int64_t W = g->pos[2], gap = W - (t->hi[2] - t->lo[2]);
   double acc = 0;
+  for (int64_t p1 = t->lo[1]; gap && p1 < t->hi[1] - 1; p1++) {
+    const int64_t q = p1 * W + t->hi[2];
+    for (int64_t j = 0; j < gap; j++) acc += (double)pos[q + j] * img[q + j + shift];
+  }
+  return acc;
+}
+
+/* sum of pos[p] * img[cell of p]: one flat run per slab where it fits (its
+ * gap products taken off again), else rows summed in float, added in double. */
+static double span_dot(const float *pos, const float *img, const rc__patch *g, const rc__tap_span *t) {
+  const int64_t st = g->s[2], lo = t->lo[2], hi = t->hi[2], slab_pos = g->pos[1] * g->pos[2],
+                slab_img = g->img[1] * g->img[2];
+  double acc = 0;
+  if (flat_fits(g, t)) {
+    const flat_run r = flat_of(g, t);
+    for (int64_t p0 = t->lo[0]; p0 < t->hi[0]; p0++) {
+      const float *ps = pos + p0 * slab_pos, *is = img + (p0 * g->s[0] + t->off[0]) * slab_img;
+      acc += dot(ps + r.q0, is + r.q0 + r.shift, r.q1 - r.q0) - flat_gap_dot(ps, is, r.shift, g, t);
+    }
+    return acc;
+  }
   for (int64_t p0 = t->lo[0]; p0 < t->hi[0]; p0++)
     for (int64_t p1 = t->lo[1]; p1 < t->hi[1]; p1++) {
       const float *prow = pos + pos_row(g, p0, p1), *irow = img + img_row(g, t, p0, p1);
+      if (st == 1) {
+        acc += dot(prow + lo, irow + lo, hi - lo);
+        continue;
+      }
       float part = 0;
       for (int64_t p = lo; p < hi; p++) part += prow[p] * irow[p * st];
       acc += part;
