@@ -57,4 +57,21 @@ static void run_backward(oh_case *c, const float *g, const int *inputs) {
 }
 static const float *grad_of(oh_case *c, int i) { return (const float *)c->din_t[i].data; }
 
+/* Results of one forward and backward kept for comparing paths: y, then the
+ * gradients of inputs 0..2. */
+typedef struct run_out {
+  float *v[4];
+  int64_t n[4];
+} run_out;
+
+static void run_out_free(run_out *r) {
+  for (int i = 0; i < 4; i++) free(r->v[i]);
+}
+
+static float *copy_of(const float *p, int64_t n) {
+  float *q = malloc(sizeof(float) * (size_t)(n ? n : 1));
+  memcpy(q, p, sizeof(float) * (size_t)n);
+  return q;
+}
+
 #endif

@@ -29,22 +29,6 @@ typedef struct path_case {
   int depthwise; /* the direct depthwise kernels serve it */
 } path_case;
 
-/* Outputs of one run: y, then dx, dW, dB (dB only with a bias). */
-typedef struct run_out {
-  float *v[4];
-  int64_t n[4];
-} run_out;
-
-static void run_out_free(run_out *r) {
-  for (int i = 0; i < 4; i++) free(r->v[i]);
-}
-
-static float *copy_of(const float *p, int64_t n) {
-  float *q = malloc(sizeof(float) * (size_t)(n ? n : 1));
-  memcpy(q, p, sizeof(float) * (size_t)n);
-  return q;
-}
-
 /* Runs forward and backward (dy drawn from a fixed seed) under the current
  * environment and keeps every result. The gradient buffers start from fixed
  * non-zero values, so that "adds into" is checked along the way. */

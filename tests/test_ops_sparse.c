@@ -69,22 +69,6 @@ typedef struct sp_case {
   float alpha, beta;
 } sp_case;
 
-/* Outputs of one run: y, then the gradients of inputs 0..2 (dX, dW, dB or dC). */
-typedef struct run_out {
-  float *v[4];
-  int64_t n[4];
-} run_out;
-
-static void run_out_free(run_out *r) {
-  for (int i = 0; i < 4; i++) free(r->v[i]);
-}
-
-static float *copy_of(const float *p, int64_t n) {
-  float *q = malloc(sizeof(float) * (size_t)(n ? n : 1));
-  memcpy(q, p, sizeof(float) * (size_t)n);
-  return q;
-}
-
 /* Weight shape of a case: dims, rank. */
 static int weight_dims(const sp_case *sc, int64_t *wd) {
   if (sc->op == OP_CONV) {

@@ -26,24 +26,20 @@ typedef struct ref_case {
   void (*attrs)(oh_case *c);
 } ref_case;
 
-static void ints(oh_case *c, const char *name, int n, int64_t a, int64_t b, int64_t cc, int64_t d) {
-  const int64_t v[4] = {a, b, cc, d};
-  oh_attr_ints(c, name, n, v);
-}
 /* F.conv2d(padding=1) */
-static void a_c3(oh_case *c) { ints(c, "pads", 4, 1, 1, 1, 1); }
+static void a_c3(oh_case *c) { oh_attr_ints(c, "pads", 4, (int64_t[]){1, 1, 1, 1}); }
 /* F.conv2d(stride=(2,1), padding=(1,0), dilation=(1,2), groups=2) */
 static void a_cg(oh_case *c) {
-  ints(c, "strides", 2, 2, 1, 0, 0);
-  ints(c, "pads", 4, 1, 0, 1, 0);
-  ints(c, "dilations", 2, 1, 2, 0, 0);
+  oh_attr_ints(c, "strides", 2, (int64_t[]){2, 1});
+  oh_attr_ints(c, "pads", 4, (int64_t[]){1, 0, 1, 0});
+  oh_attr_ints(c, "dilations", 2, (int64_t[]){1, 2});
   oh_attr_int(c, "group", 2);
 }
 static void a_none(oh_case *c) { (void)c; }
 /* F.conv1d(stride=2, padding=1) */
 static void a_cd(oh_case *c) {
-  ints(c, "strides", 1, 2, 0, 0, 0);
-  ints(c, "pads", 2, 1, 1, 0, 0);
+  oh_attr_ints(c, "strides", 1, (int64_t[]){2});
+  oh_attr_ints(c, "pads", 2, (int64_t[]){1, 1});
 }
 /* F.linear: Gemm(transB=1) */
 static void a_lin(oh_case *c) { oh_attr_int(c, "transB", 1); }

@@ -86,55 +86,32 @@ static void axpy(float *restrict y, const float *restrict x, float v, int64_t n)
   for (int64_t i = 0; i < n; i++) y[i] += v * x[i];
 }
 
-/* pos[p] += v * img[cell of p] over the tap's valid positions. */
-static void span_axpy(float *pos, const float *img, const rc__patch *g, const rc__tap_span *t, float v) {
+/* One tap walk that adds: into pos (pos[p] += v * img[cell of p], forward)
+ * or, its adjoint, into img (img[cell of p] += v * pos[p], input gradient). */
+static void span_add(int into_img, float *pos, float *img, const rc__patch *g, const rc__tap_span *t, float v) {
   const int64_t st = g->s[2], lo = t->lo[2], hi = t->hi[2], slab_pos = g->pos[1] * g->pos[2],
                 slab_img = g->img[1] * g->img[2];
   if (flat_fits(g, t)) {
     float keep[FLAT_GAP * FLAT_ROWS];
     const flat_run r = flat_of(g, t);
     for (int64_t p0 = t->lo[0]; p0 < t->hi[0]; p0++) {
-      float *ps = pos + p0 * slab_pos;
-      const float *is = img + (p0 * g->s[0] + t->off[0]) * slab_img;
-      flat_gaps(ps, 0, g, t, keep, 1);
-      axpy(ps + r.q0, is + r.q0 + r.shift, v, r.q1 - r.q0);
-      flat_gaps(ps, 0, g, t, keep, 0);
+      float *ps = pos + p0 * slab_pos + r.q0, *is = img + (p0 * g->s[0] + t->off[0]) * slab_img + r.q0 + r.shift;
+      float *dst = into_img ? is : ps;
+      const int64_t shift = into_img ? r.shift : 0;
+      flat_gaps(dst - r.q0 - shift, shift, g, t, keep, 1);
+      axpy(dst, into_img ? ps : is, v, r.q1 - r.q0);
+      flat_gaps(dst - r.q0 - shift, shift, g, t, keep, 0);
     }
     return;
   }
   for (int64_t p0 = t->lo[0]; p0 < t->hi[0]; p0++)
     for (int64_t p1 = t->lo[1]; p1 < t->hi[1]; p1++) {
-      float *restrict prow = pos + pos_row(g, p0, p1);
-      const float *restrict irow = img + img_row(g, t, p0, p1);
-      if (st == 1) axpy(prow + lo, irow + lo, v, hi - lo);
+      float *prow = pos + pos_row(g, p0, p1), *irow = img + img_row(g, t, p0, p1);
+      if (st == 1) axpy(into_img ? irow + lo : prow + lo, into_img ? prow + lo : irow + lo, v, hi - lo);
+      else if (into_img)
+        for (int64_t p = lo; p < hi; p++) irow[p * st] += v * prow[p];
       else
         for (int64_t p = lo; p < hi; p++) prow[p] += v * irow[p * st];
-    }
-}
-
-/* img[cell of p] += v * pos[p]: the adjoint of span_axpy. */
-static void span_scatter(float *img, const float *pos, const rc__patch *g, const rc__tap_span *t, float v) {
-  const int64_t st = g->s[2], lo = t->lo[2], hi = t->hi[2], slab_pos = g->pos[1] * g->pos[2],
-                slab_img = g->img[1] * g->img[2];
-  if (flat_fits(g, t)) {
-    float keep[FLAT_GAP * FLAT_ROWS];
-    const flat_run r = flat_of(g, t);
-    for (int64_t p0 = t->lo[0]; p0 < t->hi[0]; p0++) {
-      const float *ps = pos + p0 * slab_pos;
-      float *is = img + (p0 * g->s[0] + t->off[0]) * slab_img;
-      flat_gaps(is, r.shift, g, t, keep, 1);
-      axpy(is + r.q0 + r.shift, ps + r.q0, v, r.q1 - r.q0);
-      flat_gaps(is, r.shift, g, t, keep, 0);
-    }
-    return;
-  }
-  for (int64_t p0 = t->lo[0]; p0 < t->hi[0]; p0++)
-    for (int64_t p1 = t->lo[1]; p1 < t->hi[1]; p1++) {
-      const float *restrict prow = pos + pos_row(g, p0, p1);
-      float *restrict irow = img + img_row(g, t, p0, p1);
-      if (st == 1) axpy(irow + lo, prow + lo, v, hi - lo);
-      else
-        for (int64_t p = lo; p < hi; p++) irow[p * st] += v * prow[p];
     }
 }
 
@@ -206,7 +183,7 @@ void rc__sparse_conv_forward(const rc__conv_geom *g, const rc__wpattern *p, floa
     const float *xg = x + (n * g->C + (m / g->Mg) * g->Cg) * S, *wm = w + m * CgK;
     for (int64_t j = p->start[m]; j < p->start[m + 1]; j++) {
       const int64_t cc = p->col[j];
-      span_axpy(ym, xg + (cc / K) * S, &g->p, &sp[cc % K], wm[cc]);
+      span_add(0, ym, (float *)(xg + (cc / K) * S), &g->p, &sp[cc % K], wm[cc]);
     }
   }
 }
@@ -222,7 +199,7 @@ static void input_grad(const rc__conv_geom *g, const rc__wpattern *p, const rc__
       float *dxg = dx + (n * g->C + (m / g->Mg) * g->Cg) * S;
       for (int64_t j = p->start[m]; j < p->start[m + 1]; j++) {
         const int64_t cc = p->col[j];
-        span_scatter(dxg + (cc / K) * S, dym, &g->p, &sp[cc % K], wm[cc]);
+        span_add(1, (float *)dym, dxg + (cc / K) * S, &g->p, &sp[cc % K], wm[cc]);
       }
     }
 }

@@ -11,33 +11,37 @@
  * cblas_sgemm): see the table in the commit that set it. */
 const double rc__sparse_gemm_max_density = 0.30;
 
-void rc__sparse_rows_gather(const rc__wpattern *p, const float *w, float alpha, int64_t S, const float *v,
-                            int64_t ldv, float *out, int64_t ldo) {
+/* One pass of the sample rows: gather (out_i[r] += alpha * <W row r, in_i>)
+ * or scatter (out_i[c] += alpha * in_i[r] * W[r,c]). */
+static void rows_pass(int scatter, const rc__wpattern *p, const float *w, float alpha, int64_t S, const float *in,
+                      int64_t ldi, float *out, int64_t ldo) {
 #pragma omp parallel for schedule(static) if (S > 1)
   for (int64_t i = 0; i < S; i++) {
-    const float *vi = v + i * ldv;
+    const float *ii = in + i * ldi;
     float *oi = out + i * ldo;
     for (int64_t r = 0; r < p->rows; r++) {
       const float *wr = w + r * p->cols;
+      const int64_t j0 = p->start[r], j1 = p->start[r + 1];
+      if (scatter) {
+        const float a = alpha * ii[r];
+        for (int64_t j = j0; j < j1; j++) oi[p->col[j]] += a * wr[p->col[j]];
+        continue;
+      }
       float acc = 0;
-      for (int64_t j = p->start[r]; j < p->start[r + 1]; j++) acc += wr[p->col[j]] * vi[p->col[j]];
+      for (int64_t j = j0; j < j1; j++) acc += wr[p->col[j]] * ii[p->col[j]];
       oi[r] += alpha * acc;
     }
   }
 }
 
+void rc__sparse_rows_gather(const rc__wpattern *p, const float *w, float alpha, int64_t S, const float *v,
+                            int64_t ldv, float *out, int64_t ldo) {
+  rows_pass(0, p, w, alpha, S, v, ldv, out, ldo);
+}
+
 void rc__sparse_rows_scatter(const rc__wpattern *p, const float *w, float alpha, int64_t S, const float *u,
                              int64_t ldu, float *out, int64_t ldo) {
-#pragma omp parallel for schedule(static) if (S > 1)
-  for (int64_t i = 0; i < S; i++) {
-    const float *ui = u + i * ldu;
-    float *oi = out + i * ldo;
-    for (int64_t r = 0; r < p->rows; r++) {
-      const float *wr = w + r * p->cols;
-      const float a = alpha * ui[r];
-      for (int64_t j = p->start[r]; j < p->start[r + 1]; j++) oi[p->col[j]] += a * wr[p->col[j]];
-    }
-  }
+  rows_pass(1, p, w, alpha, S, u, ldu, out, ldo);
 }
 
 void rc__sparse_rows_wgrad(const rc__wpattern *p, float *dw, float alpha, int64_t S, const float *u, int64_t ldu,
