@@ -74,4 +74,32 @@ static float *copy_of(const float *p, int64_t n) {
   return q;
 }
 
+/* Forward, then backward with dy drawn from a fixed seed, keeping y and the
+ * gradients of inputs 0..n_grads-1 in r. The gradient buffers start from
+ * fixed non-zero values (seeds 505 + i), so that "adds into" is checked. */
+static int run_and_keep(oh_case *c, int n_grads, run_out *r) {
+  memset(r, 0, sizeof *r);
+  if (!run_ok(c)) return 0;
+  const int64_t ny = rc_tensor_numel(&c->out_t[0]);
+  float *dy = malloc(sizeof(float) * (size_t)(ny ? ny : 1));
+  oh_fill(dy, ny, 404);
+  const int wanted[] = {0, 1, 2, -1}, wanted_nb[] = {0, 1, -1};
+  r->v[0] = copy_of(oh_out_f(c, 0), ny);
+  r->n[0] = ny;
+  /* run_backward zeroes the gradients; seed them instead and run again. */
+  run_backward(c, dy, n_grads > 2 ? wanted : wanted_nb);
+  for (int i = 0; i < n_grads; i++) oh_fill(c->din_t[i].data, rc_tensor_numel(&c->in_t[i]), 505 + (uint32_t)i);
+  rc_node *nd = &c->node;
+  rc_kernel k = {nd,     nd->params, nd->n_in, nd->n_out, c->in,       c->out,
+                 c->din, c->dout,    c->work,  c->saved,  c->training, c->work_bytes};
+  k.pattern = c->pattern;
+  nd->def->backward(&k);
+  for (int i = 0; i < n_grads; i++) {
+    r->n[1 + i] = rc_tensor_numel(&c->in_t[i]);
+    r->v[1 + i] = copy_of(grad_of(c, i), r->n[1 + i]);
+  }
+  free(dy);
+  return 1;
+}
+
 #endif

@@ -50,31 +50,7 @@ static int run_conv(const path_case *pc, run_out *r) {
   if (pc->s[0]) oh_attr_ints(&c, "strides", pc->nsp, pc->s);
   if (pc->d[0]) oh_attr_ints(&c, "dilations", pc->nsp, pc->d);
   oh_attr_ints(&c, "pads", 2 * pc->nsp, pc->pads);
-  memset(r, 0, sizeof *r);
-  int ok = run_ok(&c);
-  if (ok) {
-    const int64_t ny = rc_tensor_numel(&c.out_t[0]);
-    float *dy = malloc(sizeof(float) * (size_t)(ny ? ny : 1));
-    oh_fill(dy, ny, 404);
-    const int wanted[] = {0, 1, 2, -1}, wanted_nb[] = {0, 1, -1};
-    r->v[0] = copy_of(oh_out_f(&c, 0), ny);
-    r->n[0] = ny;
-    /* run_backward zeroes the gradients; seed them instead and run again. */
-    run_backward(&c, dy, pc->bias ? wanted : wanted_nb);
-    for (int i = 0; i < 2 + pc->bias; i++) {
-      const int64_t m = rc_tensor_numel(&c.in_t[i]);
-      oh_fill(c.din_t[i].data, m, 505 + (uint32_t)i);
-    }
-    rc_node *nd = &c.node;
-    rc_kernel k = {nd,    nd->params, nd->n_in, nd->n_out, c.in,       c.out,
-                   c.din, c.dout,     c.work,   c.saved,   c.training, c.work_bytes};
-    nd->def->backward(&k);
-    for (int i = 0; i < 2 + pc->bias; i++) {
-      r->n[1 + i] = rc_tensor_numel(&c.in_t[i]);
-      r->v[1 + i] = copy_of(grad_of(&c, i), r->n[1 + i]);
-    }
-    free(dy);
-  }
+  const int ok = run_and_keep(&c, 2 + pc->bias, r);
   free(x);
   free(w);
   oh_free(&c);

@@ -127,28 +127,7 @@ static int run_op(const sp_case *sc, const float *w, const uint8_t *keep, int th
     c.pattern = &pat;
   }
   omp_set_num_threads(threads);
-  memset(r, 0, sizeof *r);
-  int ok = run_ok(&c);
-  if (ok) {
-    const int64_t ny = rc_tensor_numel(&c.out_t[0]);
-    float *dy = malloc(sizeof(float) * (size_t)(ny ? ny : 1));
-    oh_fill(dy, ny, 404);
-    const int n_in = c.node.n_in, wanted[] = {0, 1, 2, -1}, wanted_nb[] = {0, 1, -1};
-    r->v[0] = copy_of(oh_out_f(&c, 0), ny);
-    r->n[0] = ny;
-    run_backward(&c, dy, n_in > 2 ? wanted : wanted_nb); /* sets up the gradient views */
-    for (int i = 0; i < n_in; i++) oh_fill(c.din_t[i].data, rc_tensor_numel(&c.in_t[i]), 505 + (uint32_t)i);
-    rc_node *nd = &c.node;
-    rc_kernel k = {nd,    nd->params, nd->n_in, nd->n_out, c.in,       c.out,
-                   c.din, c.dout,     c.work,   c.saved,   c.training, c.work_bytes};
-    k.pattern = c.pattern;
-    nd->def->backward(&k);
-    for (int i = 0; i < n_in; i++) {
-      r->n[1 + i] = rc_tensor_numel(&c.in_t[i]);
-      r->v[1 + i] = copy_of(grad_of(&c, i), r->n[1 + i]);
-    }
-    free(dy);
-  }
+  const int ok = run_and_keep(&c, c.node.n_in, r);
   omp_set_num_threads(2);
   oh_free(&c);
   return ok;
