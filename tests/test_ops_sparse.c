@@ -226,14 +226,14 @@ static void choice_follows_density(void) {
   rc_kernel k = {0};
   unsetenv("RECOUP_CONV_PATH");
   k.pattern = &lo;
-  CHECK_PTR_EQ(rc__sparse_pick(&k, rc__sparse_conv_max_density), &lo);
+  CHECK_PTR_EQ(rc__sparse_pick(&k, rc__sparse_gemm_max_density), &lo);
   k.pattern = &hi;
-  CHECK_NULL(rc__sparse_pick(&k, rc__sparse_conv_max_density));
+  CHECK_NULL(rc__sparse_pick(&k, rc__sparse_gemm_max_density));
   setenv("RECOUP_CONV_PATH", "sparse", 1);
-  CHECK_PTR_EQ(rc__sparse_pick(&k, rc__sparse_conv_max_density), &hi);
+  CHECK_PTR_EQ(rc__sparse_pick(&k, rc__sparse_gemm_max_density), &hi);
   k.pattern = &lo;
   setenv("RECOUP_CONV_PATH", "dense", 1);
-  CHECK_NULL(rc__sparse_pick(&k, rc__sparse_conv_max_density));
+  CHECK_NULL(rc__sparse_pick(&k, rc__sparse_gemm_max_density));
   setenv("RECOUP_CONV_PATH", "reference", 1);
   CHECK_NULL(rc__sparse_pick(&k, rc__sparse_gemm_max_density));
   unsetenv("RECOUP_CONV_PATH");

@@ -395,7 +395,7 @@ static int depthwise_direct(const rc_kernel *k, const rc__conv_geom *g, int back
 
 /* The weight pattern when the sparse kernels serve this Conv (sparse_conv.c). */
 static const rc__wpattern *sparse_of(const rc_kernel *k, const rc__conv_geom *g) {
-  const rc__wpattern *p = rc__sparse_pick(k, rc__sparse_conv_max_density);
+  const rc__wpattern *p = rc__sparse_pick(k, rc__sparse_conv_density_limit(g));
   return rc__sparse_conv_fits(g, p) ? p : NULL;
 }
 

@@ -99,6 +99,8 @@ void rc__depthwise_backward(const rc__conv_geom *g, float *dx, float *dw, const 
 #define RC_SPARSE_CONV_MAX_TAPS 64
 
 struct rc__wpattern;
+/* Largest kept fraction at which the sparse kernels pay for this Conv. */
+double rc__sparse_conv_density_limit(const rc__conv_geom *g);
 /* Non-zero when the sparse kernels can serve this Conv with pattern p
  * (not depthwise, at most RC_SPARSE_CONV_MAX_TAPS cells, p shaped as W). */
 int rc__sparse_conv_fits(const rc__conv_geom *g, const struct rc__wpattern *p);

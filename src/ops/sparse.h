@@ -33,9 +33,9 @@ typedef struct rc__wpattern {
 rc_status rc__wpattern_build(rc__wpattern *p, rc_arena *a, const uint8_t *keep, int64_t rows, int64_t cols,
                              rc_err *e);
 
-/* Densities at or below which the sparse kernels run (measured; see the
- * comments at their definitions in sparse_conv.c and sparse_gemm.c). */
-extern const double rc__sparse_conv_max_density;
+/* Density at or below which the sparse Gemm/MatMul kernels run (measured;
+ * see sparse_gemm.c). Conv's limit depends on the map size
+ * (rc__sparse_conv_density_limit, sparse_conv.c). */
 extern const double rc__sparse_gemm_max_density;
 
 /* The pattern a kernel should use: k's pattern when it exists and its

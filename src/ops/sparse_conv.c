@@ -8,16 +8,28 @@
  * samples (input gradient) or output channels (weight gradient); each
  * element is summed by one thread in a fixed order, so results do not
  * depend on the thread count. No workspace. */
+#include <math.h>
 #include <omp.h>
 
 #include "ops/conv_impl.h"
 #include "ops/sparse.h"
 
-/* Chosen by measurement (min of 7 timings of forward plus backward, batch
- * 64, 2 threads, ResNet-8-like and mobilenet_v2-like 3x3 and 1x1 layers of
- * 16 to 128 channels on 8x8 to 32x32 maps, against the dense paths of
- * conv.c): see the table in the commit that set it. */
-const double rc__sparse_conv_max_density = 0.30;
+/* The density limit, from callgrind instruction counts of forward plus both
+ * gradients (batch 16, one thread, random patterns) against the dense paths
+ * of conv.c. Break-even kept fractions: 3x3 convolutions of 16/32/64
+ * channels on 32x32/16x16/8x8 maps 0.24/0.13/0.065 (at 5% kept: 13.6M vs
+ * 66.0M, 19.8M vs 55.1M, 39.6M vs 51.8M instructions); 1x1 convolutions
+ * 16->96 on 32x32, 96->24 on 16x16, 128->128 on 8x8 0.18/0.12/0.06. The
+ * cost of a kept weight has a part per output row, so break-even falls
+ * with the map's side: about 0.24 * sqrt(P / 1024) for P output cells.
+ * The limit takes half of that, as OpenBLAS's GEMM does more work per
+ * instruction than these loops (timings on the shared machine were too
+ * noisy to refine it), and at most 0.2. 2:4 patterns (half kept) stay
+ * dense: 2.2 to 7.8 times the dense instruction count through CSR. */
+double rc__sparse_conv_density_limit(const rc__conv_geom *g) {
+  const double limit = 0.12 * sqrt((double)g->out_sp / 1024.0);
+  return limit < 0.2 ? limit : 0.2;
+}
 
 int rc__sparse_conv_fits(const rc__conv_geom *g, const rc__wpattern *p) {
   return p && !rc__conv_depthwise(g) && g->K <= RC_SPARSE_CONV_MAX_TAPS && p->rows == g->M &&
