@@ -222,7 +222,7 @@ static void sparse_matches_dense(void) {
 /* The density threshold and RECOUP_CONV_PATH decide; "dense" and
  * "reference" turn the sparse kernels off whatever the density. */
 static void choice_follows_density(void) {
-  rc__wpattern lo = {.density = 0.05}, hi = {.density = 0.9};
+  rc__wpattern lo = {.density = 0.01}, hi = {.density = 0.9};
   rc_kernel k = {0};
   unsetenv("RECOUP_CONV_PATH");
   k.pattern = &lo;
