@@ -10,10 +10,11 @@
  * gradients (64 sample rows, one thread, random patterns, transB = 1)
  * against cblas_sgemm: 512 -> 256 took 6.9M instructions dense and 13.5M
  * at 5% kept, 1024 -> 1024 54.5M dense and 103.6M at 5% kept, so sparse
- * rows break even near 2.6% kept (their indexed loads do not vectorise).
- * The limit takes half of that, as for Conv (sparse_conv.c); 2:4 patterns
- * stay dense (18 times the dense count through CSR). */
-const double rc__sparse_gemm_max_density = 0.013;
+ * rows break even near 2.6% kept by count (their indexed loads do not
+ * vectorise). Timings of 512 -> 256 (min of 9, interleaved, one thread)
+ * put it a little higher: 1.60x at 2% kept, 0.73x at 5%. 2:4 patterns stay
+ * dense (18 times the dense count through CSR). */
+const double rc__sparse_gemm_max_density = 0.03;
 
 /* One pass of the sample rows: gather (out_i[r] += alpha * <W row r, in_i>)
  * or scatter (out_i[c] += alpha * in_i[r] * W[r,c]). */
