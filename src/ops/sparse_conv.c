@@ -24,9 +24,9 @@
  * with the map's side: about 0.24 * sqrt(P / 1024) for P output cells.
  * Timings (min of 9, dense and sparse interleaved, one thread, batch 64,
  * 16 for the 32x32 layer, on the shared machine) gave the same ratios:
- * 3x3 at 5% kept 3.96x (32x32),
- * 3.89x (16x16), 1.26x (8x8); at 10% kept 2.42x, 1.50x, 0.45x; 1x1 96->24
- * on 16x16 at 10% 0.98x, 128->128 on 8x8 at 5% 1.20x. The limit stays a
+ * 3x3 at 5% kept 3.96x (32x32), 3.89x (16x16), 1.26x (8x8); at 10% kept
+ * 2.42x, 1.50x, 0.45x; 1x1 96->24 on 16x16 at 10% 0.98x, 128->128 on 8x8
+ * at 5% 1.20x. The limit stays a
  * little below break-even, and at most 0.25. 2:4 patterns (half kept) stay
  * dense: 2.2 to 8.4 times the dense instruction count through CSR. */
 double rc__sparse_conv_density_limit(const rc__conv_geom *g) {
