@@ -62,9 +62,10 @@ int64_t rc__conv_chunk(const rc__conv_geom *g);
  * threads, and the threads that fit in work_bytes (at least 1). */
 size_t rc__conv_chunk_bytes(const rc__conv_geom *g, int64_t nb, int backward, int threads);
 int rc__conv_chunk_threads(const rc__conv_geom *g, int64_t nb, int backward, size_t work_bytes);
-/* y = b + W * x, nb samples per GEMM. */
+/* y = b + W * x, nb samples per GEMM; ep (or NULL) runs on each chunk's rows. */
+struct rc__epilogue;
 void rc__conv_chunk_forward(const rc__conv_geom *g, int64_t nb, int threads, float *y, const float *x,
-                            const float *w, const float *b, float *work);
+                            const float *w, const float *b, float *work, const struct rc__epilogue *ep);
 /* dx += input gradient, dw += weight gradient (either may be NULL). */
 void rc__conv_chunk_backward(const rc__conv_geom *g, int64_t nb, int threads, float *dx, float *dw, const float *x,
                              const float *w, const float *dy, float *work);

@@ -25,3 +25,8 @@ int rc__conv_reference(void) {
   const char *path = getenv("RECOUP_CONV_PATH");
   return path && !strcmp(path, "reference");
 }
+
+int rc__conv_fuse(void) {
+  const char *path = getenv("RECOUP_CONV_PATH");
+  return !path || (strcmp(path, "reference") && strcmp(path, "unfused"));
+}

@@ -1,0 +1,88 @@
+/* See epilogue.h. The expressions copy those of BatchNormalization's affine
+ * step (norm.c), Relu and Clip (activation.c), so that a fused chain and the
+ * separate ops give the same bits. */
+#include "ops/epilogue.h"
+
+#include <math.h>
+#include <omp.h>
+
+#include "ops/rowsum.h"
+
+/* u = y * a + c over one row, then the activation, into z. */
+static void apply_row(const rc__epilogue *ep, float *restrict z, const float *y, int64_t P, int64_t m) {
+  if (ep->a) {
+    const float a = ep->a[m], c = ep->c[m];
+    for (int64_t j = 0; j < P; j++) z[j] = y[j] * a + c;
+    y = z;
+  }
+  if (ep->act == RC_EPI_RELU) {
+    for (int64_t j = 0; j < P; j++) z[j] = y[j] > 0.0f ? y[j] : 0.0f;
+  } else if (ep->act == RC_EPI_CLIP) {
+    const float lo = isnan(ep->lo) ? -INFINITY : ep->lo, hi = isnan(ep->hi) ? INFINITY : ep->hi;
+    for (int64_t j = 0; j < P; j++) {
+      float v = y[j] >= lo ? y[j] : lo;
+      z[j] = hi < v ? hi : v;
+    }
+  } else if (!ep->a) {
+    for (int64_t j = 0; j < P; j++) z[j] = y[j];
+  }
+}
+
+void rc__epilogue_apply(const rc__epilogue *ep, const float *y, int64_t n0, int64_t cnt, int64_t M, int64_t P) {
+  for (int64_t r = n0 * M; r < (n0 + cnt) * M; r++) apply_row(ep, ep->z + r * P, y + r * P, P, r % M);
+}
+
+/* g (P) <- dz where the activation passes it at u = y * a + c, else 0. */
+static void mask_row(const rc__epilogue *ep, float *restrict g, const float *y, const float *dz, int64_t P,
+                     int64_t m) {
+  const float a = ep->a ? ep->a[m] : 1.0f, c = ep->a ? ep->c[m] : 0.0f;
+  const int affine = ep->a != NULL;
+  if (ep->act == RC_EPI_RELU) {
+    for (int64_t j = 0; j < P; j++) {
+      const float u = affine ? y[j] * a + c : y[j];
+      g[j] = u > 0.0f ? dz[j] : 0.0f;
+    }
+  } else if (ep->act == RC_EPI_CLIP) {
+    const float lo = ep->lo, hi = ep->hi;
+    for (int64_t j = 0; j < P; j++) {
+      const float u = affine ? y[j] * a + c : y[j];
+      g[j] = u >= lo && u <= hi ? dz[j] : 0.0f;
+    }
+  } else {
+    for (int64_t j = 0; j < P; j++) g[j] = dz[j];
+  }
+}
+
+/* y, dz (N, M, P) -> dy (N, M, P) += a * g; sums per channel. */
+void rc__epilogue_backward(const rc__epilogue *ep, float *dy, double *sdy, double *sdx, const float *mean,
+                           const float *y, const float *dz, int64_t N, int64_t M, int64_t P, float *rows,
+                           int threads) {
+  /* Channels are shared among threads; each channel's sums run over the
+   * batch in order, so the result does not depend on the thread count. */
+#pragma omp parallel for num_threads(threads) schedule(static) if (threads > 1)
+  for (int64_t m = 0; m < M; m++) {
+    float *g = rows + (size_t)omp_get_thread_num() * (size_t)P;
+    const float a = ep->a ? ep->a[m] : 1.0f;
+    double s = 0, sx = 0;
+    for (int64_t n = 0; n < N; n++) {
+      const int64_t off = (n * M + m) * P;
+      mask_row(ep, g, y + off, dz + off, P, m);
+      if (sdy) {
+        s += rc__row_sum(g, P);
+        sx += rc__row_dot_dev(g, y + off, P, mean[m]);
+      }
+      if (!dy) continue;
+      float *d = dy + off;
+      /* BatchNormalization's backward adds a * (g - 0 - xhat * 0) with its
+       * frozen means: the same value as a * g for finite inputs. */
+      if (ep->a)
+        for (int64_t j = 0; j < P; j++) d[j] += a * g[j];
+      else
+        for (int64_t j = 0; j < P; j++) d[j] += g[j];
+    }
+    if (sdy) {
+      sdy[m] = s;
+      sdx[m] = sx;
+    }
+  }
+}
