@@ -507,6 +507,12 @@ rc_status rc_plan_backward(rc_plan *p, rc_err *e) {
   return RC_OK;
 }
 
+int rc__plan_absorbed_steps(const rc_plan *p) {
+  int n = 0;
+  for (int s = 0; s < p->n_steps; s++) n += p->role[s] < 0;
+  return n;
+}
+
 size_t rc_plan_bytes(const rc_plan *p) { return p->block_bytes + p->meta.total; }
 
 const rc_graph *rc_plan_graph(const rc_plan *p) { return p->g; }
