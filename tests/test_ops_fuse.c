@@ -5,9 +5,10 @@
  * scripts/ref_ops_fuse.py writes each chain as an ONNX model with its input,
  * upstream gradients, PyTorch's outputs and PyTorch's gradients of
  * L = sum(out * dz) (a ctest fixture). Here recoup plans each model for
- * training with the input and every parameter trainable, and runs it three
- * ways: fused (the default), RECOUP_CONV_PATH=unfused (fast Conv paths,
- * separate steps) and RECOUP_CONV_PATH=reference (the plain Conv path).
+ * training with the input and every parameter trainable (and once for
+ * inference, whose buffers share memory), and runs it three ways: fused
+ * (the default), RECOUP_CONV_PATH=unfused (fast Conv paths, separate steps)
+ * and RECOUP_CONV_PATH=reference (the plain Conv path).
  * - fused and unfused give the same bits, outputs and every gradient
  *   (the epilogue repeats the separate ops' float expressions; the running
  *   mean and variance are trainable here so that their gradients count too);
@@ -77,12 +78,18 @@ static int run_chain(const char *dir, const rc_graph *g, const rc_array *x, cons
   rc_plan *p = NULL;
   rc_tensor shape = x->t;
   shape.data = NULL;
-  rc_plan_opts o = {.training = 1, .trainable = trainable, .keep = keep, .bn_batch_stats = 0};
+  rc_plan_opts o = {.training = trainable != NULL, .trainable = trainable, .keep = keep, .bn_batch_stats = 0};
   int ok = 0;
   memset(r, 0, sizeof *r);
   if (rc_plan_init(&p, g, &shape, &o, &e) != RC_OK) goto fail;
   memcpy(rc_plan_tensor(p, g->inputs[0])->data, x->t.data, rc_tensor_nbytes(&x->t));
   if (rc_plan_forward(p, &e) != RC_OK) goto fail;
+  if (!trainable) { /* an inference plan: outputs only (its buffers share memory) */
+    for (int i = 0; i < g->n_outputs; i++) keep_copy(r, g->outputs[i], rc_plan_tensor(p, g->outputs[i]));
+    r->absorbed = rc__plan_absorbed_steps(p);
+    ok = 1;
+    goto out;
+  }
   rc_plan_zero_grad(p);
   for (int i = 0; i < g->n_outputs; i++) {
     char file[300];
@@ -147,8 +154,8 @@ static void check_torch(const char *dir, const char *path, const rc_graph *g, co
       int64_t at;
       const float *t = want.t.data;
       double err = worst_error(r->data[i], t, r->numel[i], &at), tol = is_out ? 1e-4 : 1e-3;
-      printf("  %-10s %-8s %-6s worst %.2e at %lld: recoup %.7g, PyTorch %.7g\n", path, is_out ? "output" : "gradient",
-             name, err, (long long)at, r->data[i][at], t[at]);
+      printf("  %-10s %-8s %-6s worst %.2e at %lld: recoup %.7g, PyTorch %.7g\n", path,
+             is_out ? "output" : "gradient", name, err, (long long)at, r->data[i][at], t[at]);
       CHECK_LE(err, tol);
     }
     rc_array_free(&want);
@@ -157,22 +164,30 @@ static void check_torch(const char *dir, const char *path, const rc_graph *g, co
 
 static void check_same_bits(const rc_graph *g, const run_out *fused, const run_out *plain) {
   CHECK_EQ(fused->n, plain->n);
+  int64_t total = 0, differ = 0;
   for (int i = 0; i < fused->n && i < plain->n; i++) {
     CHECK_EQ(fused->value[i], plain->value[i]);
     CHECK_EQ(fused->numel[i], plain->numel[i]);
     if (fused->numel[i] != plain->numel[i]) continue;
     int64_t diff = 0;
-    for (int64_t j = 0; j < fused->numel[i]; j++) diff += memcmp(&fused->data[i][j], &plain->data[i][j], sizeof(float)) != 0;
-    if (diff) printf("  fused vs unfused: %s differs in %lld of %lld values\n", g->values[fused->value[i]].name,
-                     (long long)diff, (long long)fused->numel[i]);
+    for (int64_t j = 0; j < fused->numel[i]; j++)
+      diff += memcmp(&fused->data[i][j], &plain->data[i][j], sizeof(float)) != 0;
+    if (diff)
+      printf("  fused vs unfused: %s differs in %lld of %lld values\n", g->values[fused->value[i]].name,
+             (long long)diff, (long long)fused->numel[i]);
     CHECK_EQ(diff, 0);
+    total += fused->numel[i];
+    differ += diff;
   }
+  printf("  fused vs unfused: %lld of %lld output and gradient values differ in any bit\n", (long long)differ,
+         (long long)total);
 }
 
 /* Steps the fused plan should absorb into its Conv: the BatchNormalization
  * and the activation, unless a value between them is read elsewhere. */
 static int expected_absorbed(const char *name) {
-  if (!strcmp(name, "bias_relu") || !strcmp(name, "bn_only_then_add") || !strcmp(name, "bn_output_is_graph_output"))
+  if (!strcmp(name, "bias_relu") || !strcmp(name, "bn_only_then_add") ||
+      !strcmp(name, "bn_output_is_graph_output"))
     return 1;
   return 2;
 }
@@ -222,6 +237,18 @@ static void one_case(const char *name) {
   run_out_free(&plain);
   run_out_free(&ref);
 
+  /* An inference plan (teacher, evaluation), whose buffers share memory. */
+  CHECK(run_chain(dir, g, &x, NULL, NULL, &fused));
+  setenv("RECOUP_CONV_PATH", "unfused", 1);
+  CHECK(run_chain(dir, g, &x, NULL, NULL, &plain));
+  unsetenv("RECOUP_CONV_PATH");
+  printf("  inference plan: steps absorbed %d (expected %d)\n", fused.absorbed, expected_absorbed(name));
+  CHECK_EQ(fused.absorbed, expected_absorbed(name));
+  check_same_bits(g, &fused, &plain);
+  check_torch(dir, "inference", g, &fused);
+  run_out_free(&fused);
+  run_out_free(&plain);
+
   /* A feature-loss tap on the BatchNormalization output: the chain must end
    * there and the tap hold what the separate op computes. */
   const int bn_out = rc__graph_find_value(g, "bn_out");
@@ -249,8 +276,10 @@ static void chains_agree(void) {
   snprintf(path, sizeof path, "%s/cases.txt", ref_root);
   FILE *f = fopen(path, "r");
   if (!f) {
-    fprintf(stderr, "MISSING PyTorch reference data: %s (written by scripts/ref_ops_fuse.py, the ctest fixture "
-                    "ops_fuse_ref_data; run ctest, not this binary alone)\n", path);
+    fprintf(stderr,
+            "MISSING PyTorch reference data: %s (written by scripts/ref_ops_fuse.py, the ctest fixture "
+            "ops_fuse_ref_data; run ctest, not this binary alone)\n",
+            path);
     CHECK(0);
     return;
   }
