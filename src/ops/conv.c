@@ -485,12 +485,12 @@ static void forward_sample(const rc__conv_geom *g, float *yn, const float *xn, c
                 (int)CgK, col + grp * CgK * P, (int)P, 1.0f, yn + grp * g->Mg * P, (int)P);
 }
 
-/* Paths that write all of y before the epilogue can run: it then takes
- * one pass over the batch, a sample per thread. */
+/* The plain depthwise path writes all of y before the epilogue can run: it
+ * then takes one pass over the batch, a sample per thread. */
 static void epilogue_pass(const rc__epilogue *ep, const rc__conv_geom *g, const float *y) {
   if (!ep) return;
 #pragma omp parallel for schedule(static) if (g->N * g->M * g->out_sp > 32768)
-  for (int64_t n = 0; n < g->N; n++) rc__epilogue_apply(ep, y, n, 1, g->M, g->out_sp);
+  for (int64_t n = 0; n < g->N; n++) rc__epilogue_apply(ep, y, n * g->M, (n + 1) * g->M, g->M, g->out_sp);
 }
 
 static rc_status conv_forward(const rc_kernel *k, rc_err *e) { return rc__conv_forward_epilogue(k, NULL, e); }
@@ -505,8 +505,7 @@ rc_status rc__conv_forward_epilogue(const rc_kernel *k, const rc__epilogue *ep, 
   float *y = k->out[0]->data;
   if (!g.N || !g.M || !g.out_sp) return RC_OK;
   if (depthwise_direct(k, &g, 0)) {
-    rc__depthwise_forward(&g, y, x, w, b, k->work, k->work_bytes);
-    epilogue_pass(ep, &g, y);
+    rc__depthwise_forward(&g, y, x, w, b, k->work, k->work_bytes, ep);
     return RC_OK;
   }
   if (rc__conv_depthwise(&g)) {
@@ -525,7 +524,7 @@ rc_status rc__conv_forward_epilogue(const rc_kernel *k, const rc__epilogue *ep, 
   for (int64_t n = 0; n < g.N; n++) {
     forward_sample(&g, y + n * g.M * g.out_sp, x + n * g.C * g.in_sp, w, b,
                    (float *)k->work + (size_t)omp_get_thread_num() * per);
-    if (ep) rc__epilogue_apply(ep, y, n, 1, g.M, g.out_sp); /* the sample's rows are still in cache */
+    if (ep) rc__epilogue_apply(ep, y, n * g.M, (n + 1) * g.M, g.M, g.out_sp); /* rows still in cache */
   }
   return RC_OK;
 }

@@ -97,7 +97,8 @@ static void forward_chunk(const rc__conv_geom *g, int64_t nb, int64_t n0, float 
     cblas_sgemm(CblasRowMajor, CblasNoTrans, CblasNoTrans, (int)g->Mg, (int)L, (int)CgK, 1.0f,
                 w + grp * g->Mg * CgK, (int)CgK, col + grp * CgK * L, (int)L, 0.0f, yb + grp * g->Mg * L, (int)L);
   scatter_rows(y + n0 * g->M * P, yb, b, g, cnt);
-  if (ep) rc__epilogue_apply(ep, y, n0, cnt, g->M, P); /* the chunk's rows are still in cache */
+  if (ep)
+    rc__epilogue_apply(ep, y, n0 * g->M, (n0 + cnt) * g->M, g->M, P); /* the chunk's rows are still in cache */
 }
 
 /* x (N,C,in...), W (M,C/G,k...), B (M) -> y (N,M,out...). */

@@ -28,8 +28,8 @@ static void apply_row(const rc__epilogue *ep, float *restrict z, const float *y,
   }
 }
 
-void rc__epilogue_apply(const rc__epilogue *ep, const float *y, int64_t n0, int64_t cnt, int64_t M, int64_t P) {
-  for (int64_t r = n0 * M; r < (n0 + cnt) * M; r++) apply_row(ep, ep->z + r * P, y + r * P, P, r % M);
+void rc__epilogue_apply(const rc__epilogue *ep, const float *y, int64_t r0, int64_t r1, int64_t M, int64_t P) {
+  for (int64_t r = r0; r < r1; r++) apply_row(ep, ep->z + r * P, y + r * P, P, r % M);
 }
 
 /* g (P) <- dz where the activation passes it at u = y * a + c, else 0. */

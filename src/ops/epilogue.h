@@ -27,9 +27,9 @@ typedef struct rc__epilogue {
   float *z;     /* (N, M, P): the chain's result */
 } rc__epilogue;
 
-/* z rows of samples [n0, n0 + cnt) from the same rows of y (N, M, P).
- * y and z may be the same buffer. No threads of its own. */
-void rc__epilogue_apply(const rc__epilogue *ep, const float *y, int64_t n0, int64_t cnt, int64_t M, int64_t P);
+/* Rows [r0, r1) of z from the same rows of y, both seen as (N*M, P) (row r
+ * is channel r % M). y and z may be the same buffer. No threads of its own. */
+void rc__epilogue_apply(const rc__epilogue *ep, const float *y, int64_t r0, int64_t r1, int64_t M, int64_t P);
 
 /* The chain's backward from dz (N, M, P), one pass over each row:
  * g = dz where the activation passes it (else 0); dy += a[m] * g (dy may be
