@@ -31,7 +31,7 @@ static int bn_single_output(const rc_node *n) {
   return n->n_in >= 5;
 }
 
-/* Nodes along the chain from Conv step s: bn and act node indices (-1 when
+/* The chain that starts at node conv_node: bn and act node indices (-1 when
  * absent); returns 0 when there is no chain. */
 static int match(const rc_graph *g, int conv_node, const int *readers, const int *reader_node,
                  const unsigned char *held, const unsigned char *is_const, const int *step_of_node,
