@@ -5,6 +5,7 @@
 
 #include <math.h>
 #include <omp.h>
+#include <string.h>
 
 #include "ops/rowsum.h"
 
@@ -32,24 +33,32 @@ void rc__epilogue_apply(const rc__epilogue *ep, const float *y, int64_t r0, int6
   for (int64_t r = r0; r < r1; r++) apply_row(ep, ep->z + r * P, y + r * P, P, r % M);
 }
 
-/* g (P) <- dz where the activation passes it at u = y * a + c, else 0. */
+/* g (P) <- dz where the activation passes it at u = y * a + c, else 0.
+ * u goes through g first, so that each loop is one select the compiler
+ * vectorises (checked with -fopt-info-vec). */
 static void mask_row(const rc__epilogue *ep, float *restrict g, const float *y, const float *dz, int64_t P,
                      int64_t m) {
-  const float a = ep->a ? ep->a[m] : 1.0f, c = ep->a ? ep->c[m] : 0.0f;
-  const int affine = ep->a != NULL;
+  if (ep->act == RC_EPI_NONE) {
+    memcpy(g, dz, sizeof(float) * (size_t)P);
+    return;
+  }
+  if (ep->a) {
+    const float a = ep->a[m], c = ep->c[m];
+    for (int64_t j = 0; j < P; j++) g[j] = y[j] * a + c;
+  } else {
+    memcpy(g, y, sizeof(float) * (size_t)P);
+  }
   if (ep->act == RC_EPI_RELU) {
     for (int64_t j = 0; j < P; j++) {
-      const float u = affine ? y[j] * a + c : y[j];
-      g[j] = u > 0.0f ? dz[j] : 0.0f;
-    }
-  } else if (ep->act == RC_EPI_CLIP) {
-    const float lo = ep->lo, hi = ep->hi;
-    for (int64_t j = 0; j < P; j++) {
-      const float u = affine ? y[j] * a + c : y[j];
-      g[j] = u >= lo && u <= hi ? dz[j] : 0.0f;
+      const float d = dz[j]; /* read unconditionally: the select vectorises */
+      g[j] = g[j] > 0.0f ? d : 0.0f;
     }
   } else {
-    for (int64_t j = 0; j < P; j++) g[j] = dz[j];
+    const float lo = ep->lo, hi = ep->hi;
+    for (int64_t j = 0; j < P; j++) {
+      const float d = dz[j];
+      g[j] = (g[j] >= lo) & (g[j] <= hi) ? d : 0.0f;
+    }
   }
 }
 
