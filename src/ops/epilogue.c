@@ -9,23 +9,62 @@
 
 #include "ops/rowsum.h"
 
-/* u = y * a + c over one row, then the activation, into z. */
-static void apply_row(const rc__epilogue *ep, float *restrict z, const float *y, int64_t P, int64_t m) {
-  if (ep->a) {
-    const float a = ep->a[m], c = ep->c[m];
-    for (int64_t j = 0; j < P; j++) z[j] = y[j] * a + c;
-    y = z;
+/* Each row is one loop: u = y * a + c (or y itself when `affine` is 0;
+ * callers pass a constant, so the compiler makes two loops), then the
+ * activation, a select the compiler vectorises (checked with
+ * -fopt-info-vec). The gradient is read unconditionally for the same
+ * reason. */
+static inline void relu_row(float *z, const float *y, int64_t P, float a, float c, int affine) {
+  for (int64_t j = 0; j < P; j++) {
+    const float u = affine ? y[j] * a + c : y[j];
+    z[j] = u > 0.0f ? u : 0.0f;
   }
+}
+
+static inline void clip_row(float *z, const float *y, int64_t P, float a, float c, int affine, float lo,
+                            float hi) {
+  for (int64_t j = 0; j < P; j++) {
+    const float u = affine ? y[j] * a + c : y[j];
+    const float v = u >= lo ? u : lo;
+    z[j] = hi < v ? hi : v;
+  }
+}
+
+static inline void relu_mask(float *restrict g, const float *y, const float *dz, int64_t P, float a, float c,
+                             int affine) {
+  for (int64_t j = 0; j < P; j++) {
+    const float u = affine ? y[j] * a + c : y[j], d = dz[j];
+    g[j] = u > 0.0f ? d : 0.0f;
+  }
+}
+
+static inline void clip_mask(float *restrict g, const float *y, const float *dz, int64_t P, float a, float c,
+                             int affine, float lo, float hi) {
+  for (int64_t j = 0; j < P; j++) {
+    const float u = affine ? y[j] * a + c : y[j], d = dz[j];
+    g[j] = (u >= lo) & (u <= hi) ? d : 0.0f;
+  }
+}
+
+/* z (P) <- act(y * a[m] + c[m]). */
+static void apply_row(const rc__epilogue *ep, float *z, const float *y, int64_t P, int64_t m) {
+  const float a = ep->a ? ep->a[m] : 1.0f, c = ep->a ? ep->c[m] : 0.0f;
   if (ep->act == RC_EPI_RELU) {
-    for (int64_t j = 0; j < P; j++) z[j] = y[j] > 0.0f ? y[j] : 0.0f;
+    if (ep->a)
+      relu_row(z, y, P, a, c, 1);
+    else
+      relu_row(z, y, P, a, c, 0);
   } else if (ep->act == RC_EPI_CLIP) {
+    /* As Clip's forward: a NaN bound is no bound. */
     const float lo = isnan(ep->lo) ? -INFINITY : ep->lo, hi = isnan(ep->hi) ? INFINITY : ep->hi;
-    for (int64_t j = 0; j < P; j++) {
-      float v = y[j] >= lo ? y[j] : lo;
-      z[j] = hi < v ? hi : v;
-    }
-  } else if (!ep->a) {
-    for (int64_t j = 0; j < P; j++) z[j] = y[j];
+    if (ep->a)
+      clip_row(z, y, P, a, c, 1, lo, hi);
+    else
+      clip_row(z, y, P, a, c, 0, lo, hi);
+  } else if (ep->a) {
+    for (int64_t j = 0; j < P; j++) z[j] = y[j] * a + c;
+  } else if (z != y) {
+    memmove(z, y, sizeof(float) * (size_t)P);
   }
 }
 
@@ -33,32 +72,22 @@ void rc__epilogue_apply(const rc__epilogue *ep, const float *y, int64_t r0, int6
   for (int64_t r = r0; r < r1; r++) apply_row(ep, ep->z + r * P, y + r * P, P, r % M);
 }
 
-/* g (P) <- dz where the activation passes it at u = y * a + c, else 0.
- * u goes through g first, so that each loop is one select the compiler
- * vectorises (checked with -fopt-info-vec). */
+/* g (P) <- dz where the activation passes it at u = y * a + c, else 0. */
 static void mask_row(const rc__epilogue *ep, float *restrict g, const float *y, const float *dz, int64_t P,
                      int64_t m) {
-  if (ep->act == RC_EPI_NONE) {
-    memcpy(g, dz, sizeof(float) * (size_t)P);
-    return;
-  }
-  if (ep->a) {
-    const float a = ep->a[m], c = ep->c[m];
-    for (int64_t j = 0; j < P; j++) g[j] = y[j] * a + c;
-  } else {
-    memcpy(g, y, sizeof(float) * (size_t)P);
-  }
+  const float a = ep->a ? ep->a[m] : 1.0f, c = ep->a ? ep->c[m] : 0.0f;
   if (ep->act == RC_EPI_RELU) {
-    for (int64_t j = 0; j < P; j++) {
-      const float d = dz[j]; /* read unconditionally: the select vectorises */
-      g[j] = g[j] > 0.0f ? d : 0.0f;
-    }
+    if (ep->a)
+      relu_mask(g, y, dz, P, a, c, 1);
+    else
+      relu_mask(g, y, dz, P, a, c, 0);
+  } else if (ep->act == RC_EPI_CLIP) {
+    if (ep->a)
+      clip_mask(g, y, dz, P, a, c, 1, ep->lo, ep->hi);
+    else
+      clip_mask(g, y, dz, P, a, c, 0, ep->lo, ep->hi);
   } else {
-    const float lo = ep->lo, hi = ep->hi;
-    for (int64_t j = 0; j < P; j++) {
-      const float d = dz[j];
-      g[j] = (g[j] >= lo) & (g[j] <= hi) ? d : 0.0f;
-    }
+    memcpy(g, dz, sizeof(float) * (size_t)P);
   }
 }
 
