@@ -183,6 +183,16 @@ static void check_same_bits(const rc_graph *g, const run_out *fused, const run_o
          (long long)total);
 }
 
+/* The same plan run fused (the default) and with RECOUP_CONV_PATH=unfused. */
+static void run_both(const char *dir, const rc_graph *g, const rc_array *x, const unsigned char *trainable,
+                     const unsigned char *keep, run_out *fused, run_out *plain) {
+  unsetenv("RECOUP_CONV_PATH");
+  CHECK(run_chain(dir, g, x, trainable, keep, fused));
+  setenv("RECOUP_CONV_PATH", "unfused", 1);
+  CHECK(run_chain(dir, g, x, trainable, keep, plain));
+  unsetenv("RECOUP_CONV_PATH");
+}
+
 /* Steps the fused plan should absorb into its Conv: the BatchNormalization
  * and the activation, unless a value between them is read elsewhere. */
 static int expected_absorbed(const char *name) {
@@ -220,10 +230,7 @@ static void one_case(const char *name) {
         strcmp(g->values[v].name, "hi"))
       trainable[v] = 1;
   run_out fused, plain, ref;
-  unsetenv("RECOUP_CONV_PATH");
-  CHECK(run_chain(dir, g, &x, trainable, NULL, &fused));
-  setenv("RECOUP_CONV_PATH", "unfused", 1);
-  CHECK(run_chain(dir, g, &x, trainable, NULL, &plain));
+  run_both(dir, g, &x, trainable, NULL, &fused, &plain);
   setenv("RECOUP_CONV_PATH", "reference", 1);
   CHECK(run_chain(dir, g, &x, trainable, NULL, &ref));
   unsetenv("RECOUP_CONV_PATH");
@@ -238,10 +245,7 @@ static void one_case(const char *name) {
   run_out_free(&ref);
 
   /* An inference plan (teacher, evaluation), whose buffers share memory. */
-  CHECK(run_chain(dir, g, &x, NULL, NULL, &fused));
-  setenv("RECOUP_CONV_PATH", "unfused", 1);
-  CHECK(run_chain(dir, g, &x, NULL, NULL, &plain));
-  unsetenv("RECOUP_CONV_PATH");
+  run_both(dir, g, &x, NULL, NULL, &fused, &plain);
   printf("  inference plan: steps absorbed %d (expected %d)\n", fused.absorbed, expected_absorbed(name));
   CHECK_EQ(fused.absorbed, expected_absorbed(name));
   check_same_bits(g, &fused, &plain);
@@ -255,10 +259,7 @@ static void one_case(const char *name) {
   if (bn_out >= 0 && expected_absorbed(name) == 2) {
     unsigned char keep[256] = {0};
     keep[bn_out] = 1;
-    CHECK(run_chain(dir, g, &x, trainable, keep, &fused));
-    setenv("RECOUP_CONV_PATH", "unfused", 1);
-    CHECK(run_chain(dir, g, &x, trainable, keep, &plain));
-    unsetenv("RECOUP_CONV_PATH");
+    run_both(dir, g, &x, trainable, keep, &fused, &plain);
     printf("  with bn_out kept: steps absorbed %d (expected 1)\n", fused.absorbed);
     CHECK_EQ(fused.absorbed, 1);
     check_same_bits(g, &fused, &plain);
