@@ -10,7 +10,8 @@ package dataset-fashion-mnist), checked against outside references:
   recoup does not train byte-identical (read with Debian's python3-onnx);
 - the recovered file passes onnx.checker (python3-onnx) and, run in
   onnxruntime-web (npm), gives the accuracy recoup reports;
-- two runs with the same seed and thread count give byte-identical files;
+- two runs with the same seed and thread count give byte-identical files,
+  and so does a run with fusion off (RECOUP_CONV_PATH=unfused);
 - a 2:4 semi-structured student keeps its pattern and zeros.
 
 Usage: distill_test.py RECOUP SOURCE_DIR WORK_DIR
@@ -147,6 +148,15 @@ a, b = os.path.join(WORK, "det_a.onnx"), os.path.join(WORK, "det_b.onnx")
 distill(PRUNED, a, 60, data=SMALL)
 distill(PRUNED, b, 60, data=SMALL)
 check("same seed gives a byte-identical file", digest(a) == digest(b), f"(SHA-256 {digest(a)[:16]} vs {digest(b)[:16]})")
+# Each Conv -> BatchNormalization -> Relu chain of this model runs as one
+# step; that is how recoup runs, not what it computes: with the chains run
+# step by step (RECOUP_CONV_PATH=unfused) the file is the same.
+os.environ["RECOUP_CONV_PATH"] = "unfused"
+c = os.path.join(WORK, "det_unfused.onnx")
+distill(PRUNED, c, 60, data=SMALL)
+del os.environ["RECOUP_CONV_PATH"]
+check("chains run as one step or step by step give a byte-identical file", digest(a) == digest(c),
+      f"(SHA-256 {digest(a)[:16]} vs {digest(c)[:16]})")
 
 # 4b. Interrupted runs resume to the same bytes: SIGKILL once a checkpoint
 #     exists (losing the steps since), and SIGTERM (which checkpoints first).

@@ -9,6 +9,7 @@
 #include <string.h>
 
 #include "ops/broadcast.h"
+#include "ops/epilogue.h"
 #include "ops/op.h"
 
 static rc_status pw_params_alloc(rc_node *n, rc_arena *a, rc__pw_params **out, rc_err *e) {
@@ -153,7 +154,7 @@ static rc_status clip_infer(const rc_node *n, const rc_tensor *const *in, rc_ten
   return RC_OK;
 }
 
-static void clip_bounds(const rc_kernel *k, float *lo, float *hi) {
+void rc__clip_bounds(const rc_kernel *k, float *lo, float *hi) {
   const rc__pw_params *p = k->params;
   *lo = p->alpha;
   *hi = p->beta;
@@ -163,7 +164,7 @@ static void clip_bounds(const rc_kernel *k, float *lo, float *hi) {
 
 static rc_status clip_forward(const rc_kernel *k, rc_err *e) {
   float lo, hi;
-  clip_bounds(k, &lo, &hi);
+  rc__clip_bounds(k, &lo, &hi);
   const float *restrict x = k->in[0]->data;
   float *restrict y = k->out[0]->data;
   int64_t n = rc_tensor_numel(k->in[0]);
@@ -185,7 +186,7 @@ static rc_status clip_forward(const rc_kernel *k, rc_err *e) {
 static void clip_backward(const rc_kernel *k) {
   if (!k->dout[0]) return;
   float lo, hi;
-  clip_bounds(k, &lo, &hi);
+  rc__clip_bounds(k, &lo, &hi);
   const float *restrict x = k->in[0]->data, *restrict d = k->dout[0]->data;
   int64_t n = rc_tensor_numel(k->in[0]);
   if (k->din[0]) {

@@ -19,6 +19,7 @@
 #include <string.h>
 
 #include "ops/conv_impl.h"
+#include "ops/epilogue.h"
 #include "ops/kernel_choice.h"
 #include "ops/op.h"
 #include "ops/sparse.h"
@@ -491,7 +492,19 @@ static void forward_sample(const rc__conv_geom *g, float *yn, const float *xn, c
                 (int)CgK, col + grp * CgK * P, (int)P, 1.0f, yn + grp * g->Mg * P, (int)P);
 }
 
-static rc_status conv_forward(const rc_kernel *k, rc_err *e) {
+/* The plain depthwise and the sparse paths write all of y before the
+ * epilogue can run: it then takes one pass over the batch, a sample per
+ * thread. */
+static void epilogue_pass(const rc__epilogue *ep, const rc__conv_geom *g, const float *y) {
+  if (!ep) return;
+#pragma omp parallel for schedule(static) if (g->N * g->M * g->out_sp > 32768)
+  for (int64_t n = 0; n < g->N; n++) rc__epilogue_apply(ep, y, n * g->M, (n + 1) * g->M, g->M, g->out_sp);
+}
+
+static rc_status conv_forward(const rc_kernel *k, rc_err *e) { return rc__conv_forward_epilogue(k, NULL, e); }
+
+rc_status rc__conv_forward_epilogue(const rc_kernel *k, const rc__epilogue *ep, rc_err *e) {
+  (void)e;
   rc__conv_geom g;
   geometry_of(k, &g);
   const float *x = k->in[0]->data, *w = k->in[1]->data;
@@ -502,27 +515,31 @@ static rc_status conv_forward(const rc_kernel *k, rc_err *e) {
   const rc__wpattern *sp = sparse_of(k, &g);
   if (sp) {
     rc__sparse_conv_forward(&g, sp, y, x, w, b);
+    epilogue_pass(ep, &g, y);
     return RC_OK;
   }
   if (depthwise_direct(k, &g, 0)) {
-    rc__depthwise_forward(&g, y, x, w, b, k->work, k->work_bytes);
+    rc__depthwise_forward(&g, y, x, w, b, k->work, k->work_bytes, ep);
     return RC_OK;
   }
   if (rc__conv_depthwise(&g)) {
     depthwise_forward(&g, y, x, w, b);
+    epilogue_pass(ep, &g, y);
     return RC_OK;
   }
   const int64_t nb = chunk_of(k, &g, 0);
   if (nb > 1) {
-    rc__conv_chunk_forward(&g, nb, rc__conv_chunk_threads(&g, nb, 0, k->work_bytes), y, x, w, b, k->work);
+    rc__conv_chunk_forward(&g, nb, rc__conv_chunk_threads(&g, nb, 0, k->work_bytes), y, x, w, b, k->work, ep);
     return RC_OK;
   }
   const size_t per = col_floats(&g);
   const int T = sample_threads(k, &g, per);
 #pragma omp parallel for num_threads(T) schedule(static) if (T > 1)
-  for (int64_t n = 0; n < g.N; n++)
+  for (int64_t n = 0; n < g.N; n++) {
     forward_sample(&g, y + n * g.M * g.out_sp, x + n * g.C * g.in_sp, w, b,
                    (float *)k->work + (size_t)omp_get_thread_num() * per);
+    if (ep) rc__epilogue_apply(ep, y, n * g.M, (n + 1) * g.M, g.M, g.out_sp); /* rows still in cache */
+  }
   return RC_OK;
 }
 

@@ -14,6 +14,7 @@
 #include <string.h>
 
 #include "ops/conv_impl.h"
+#include "ops/epilogue.h"
 
 /* Columns a chunk aims at, and the most a chunk's buffers may take. */
 #define CHUNK_COLUMNS 256
@@ -88,7 +89,7 @@ static int64_t chunk_count(const rc__conv_geom *g, int64_t nb, int64_t n0) {
 
 /* Samples [n0, n0+cnt): y = b + W . unfold(x), group by group. */
 static void forward_chunk(const rc__conv_geom *g, int64_t nb, int64_t n0, float *y, const float *x, const float *w,
-                          const float *b, float *work) {
+                          const float *b, float *work, const rc__epilogue *ep) {
   const int64_t CgK = g->Cg * g->K, P = g->out_sp, cnt = chunk_count(g, nb, n0), L = cnt * P;
   float *col = work, *yb = work + g->C * g->K * nb * P;
   unfold_chunk(col, g, x + n0 * g->C * g->in_sp, cnt);
@@ -96,16 +97,18 @@ static void forward_chunk(const rc__conv_geom *g, int64_t nb, int64_t n0, float 
     cblas_sgemm(CblasRowMajor, CblasNoTrans, CblasNoTrans, (int)g->Mg, (int)L, (int)CgK, 1.0f,
                 w + grp * g->Mg * CgK, (int)CgK, col + grp * CgK * L, (int)L, 0.0f, yb + grp * g->Mg * L, (int)L);
   scatter_rows(y + n0 * g->M * P, yb, b, g, cnt);
+  if (ep)
+    rc__epilogue_apply(ep, y, n0 * g->M, (n0 + cnt) * g->M, g->M, P); /* the chunk's rows are still in cache */
 }
 
 /* x (N,C,in...), W (M,C/G,k...), B (M) -> y (N,M,out...). */
 void rc__conv_chunk_forward(const rc__conv_geom *g, int64_t nb, int threads, float *y, const float *x,
-                            const float *w, const float *b, float *work) {
+                            const float *w, const float *b, float *work, const rc__epilogue *ep) {
   const size_t per = chunk_floats(g, nb);
   const int64_t chunks = (g->N + nb - 1) / nb;
 #pragma omp parallel for num_threads(threads) schedule(static) if (threads > 1)
   for (int64_t ch = 0; ch < chunks; ch++)
-    forward_chunk(g, nb, ch * nb, y, x, w, b, work + (size_t)omp_get_thread_num() * per);
+    forward_chunk(g, nb, ch * nb, y, x, w, b, work + (size_t)omp_get_thread_num() * per, ep);
 }
 
 /* Samples [n0, n0+cnt): dw += dy . unfold(x)^T, then the column matrix

@@ -69,9 +69,10 @@ int64_t rc__conv_chunk(const rc__conv_geom *g);
  * threads, and the threads that fit in work_bytes (at least 1). */
 size_t rc__conv_chunk_bytes(const rc__conv_geom *g, int64_t nb, int backward, int threads);
 int rc__conv_chunk_threads(const rc__conv_geom *g, int64_t nb, int backward, size_t work_bytes);
-/* y = b + W * x, nb samples per GEMM. */
+/* y = b + W * x, nb samples per GEMM; ep (or NULL) runs on each chunk's rows. */
+struct rc__epilogue;
 void rc__conv_chunk_forward(const rc__conv_geom *g, int64_t nb, int threads, float *y, const float *x,
-                            const float *w, const float *b, float *work);
+                            const float *w, const float *b, float *work, const struct rc__epilogue *ep);
 /* dx += input gradient, dw += weight gradient (either may be NULL). */
 void rc__conv_chunk_backward(const rc__conv_geom *g, int64_t nb, int threads, float *dx, float *dw, const float *x,
                              const float *w, const float *dy, float *work);
@@ -86,9 +87,10 @@ void rc__conv_chunk_backward(const rc__conv_geom *g, int64_t nb, int threads, fl
 int rc__depthwise_fits(const rc__conv_geom *g);
 /* Workspace for forward (backward = 0) or backward (1) on `threads` threads. */
 size_t rc__depthwise_workspace(const rc__conv_geom *g, int backward, int threads);
-/* y = b + depthwise conv of x; work holds work_bytes. */
+/* y = b + depthwise conv of x; work holds work_bytes; ep (or NULL) runs on
+ * each plane as it is done. */
 void rc__depthwise_forward(const rc__conv_geom *g, float *y, const float *x, const float *w, const float *b,
-                           float *work, size_t work_bytes);
+                           float *work, size_t work_bytes, const struct rc__epilogue *ep);
 /* dx += input gradient, dw += weight gradient (either may be NULL). */
 void rc__depthwise_backward(const rc__conv_geom *g, float *dx, float *dw, const float *x, const float *w,
                             const float *dy, float *work, size_t work_bytes);

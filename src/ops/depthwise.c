@@ -23,6 +23,7 @@
 #include <string.h>
 
 #include "ops/conv_impl.h"
+#include "ops/epilogue.h"
 #include "ops/kernel_choice.h"
 
 #define LANES 16
@@ -167,7 +168,7 @@ static void plane_forward(const dw_prims *f, const dw_plane *d, float *y, const 
 }
 
 void rc__depthwise_forward(const rc__conv_geom *g, float *y, const float *x, const float *w, const float *b,
-                           float *work, size_t work_bytes) {
+                           float *work, size_t work_bytes, const rc__epilogue *ep) {
   const dw_plane d = plane_of(g);
   const dw_prims f = prims_for(rc__isa_level());
   const int64_t planes = g->N * g->C, K = g->K;
@@ -179,6 +180,7 @@ void rc__depthwise_forward(const rc__conv_geom *g, float *y, const float *x, con
     const int64_t c = pl % g->C;
     to_grid(xq, x + pl * g->in_sp, &d);
     plane_forward(&f, &d, y + pl * g->out_sp, xq, w + c * K, b ? b[c] : 0.0f, run);
+    if (ep) rc__epilogue_apply(ep, y, pl, pl + 1, g->C, g->out_sp); /* the plane is still in cache */
   }
 }
 

@@ -7,6 +7,7 @@
 #include <string.h>
 
 #include "ops/broadcast.h"
+#include "ops/epilogue.h"
 #include "ops/op.h"
 #include "ops/rowsum.h"
 
@@ -303,6 +304,37 @@ static void bn_backward(const rc_kernel *k) {
       float *gr = dx + (n * C + c) * S;
       for (int64_t j = 0; j < S; j++) gr[j] += a * (dr[j] - mdy - (xr[j] - mean) * inv * mdyx);
     }
+  }
+}
+
+/* For a Conv's epilogue (epilogue.h): the frozen normalisation as the
+ * affine step bn_forward takes, and its parameter gradients as bn_backward
+ * gives them from the same sums. */
+int rc__bn_frozen(const rc_kernel *k) { return !bn_batch_stats(k); }
+
+void rc__bn_fold(const rc_kernel *k, float *a, float *c, float *mean) {
+  const bn_params *p = k->params;
+  const float *scale = k->in[1]->data, *bias = k->in[2]->data, *rmean = k->in[3]->data, *rvar = k->in[4]->data;
+  for (int64_t ch = 0; ch < k->in[0]->dims[1]; ch++) {
+    float inv = 1.0f / sqrtf(rvar[ch] + p->epsilon);
+    a[ch] = scale[ch] * inv;
+    c[ch] = bias[ch] - rmean[ch] * a[ch];
+    if (mean) mean[ch] = rmean[ch];
+  }
+}
+
+void rc__bn_frozen_param_grads(const rc_kernel *k, const double *sdy, const double *sdx) {
+  const bn_params *p = k->params;
+  const float *scale = k->in[1]->data, *rvar = k->in[4]->data;
+  float *dscale = k->din[1] ? k->din[1]->data : NULL, *dbias = k->din[2] ? k->din[2]->data : NULL;
+  float *dmean = k->din[3] ? k->din[3]->data : NULL, *dvar = k->din[4] ? k->din[4]->data : NULL;
+  for (int64_t ch = 0; ch < k->in[0]->dims[1]; ch++) {
+    float inv = 1.0f / sqrtf(rvar[ch] + p->epsilon), a = scale[ch] * inv;
+    double sdyx = sdx[ch] * inv;
+    if (dscale) dscale[ch] += (float)sdyx;
+    if (dbias) dbias[ch] += (float)sdy[ch];
+    if (dmean) dmean[ch] += (float)(-sdy[ch] * a);
+    if (dvar) dvar[ch] += (float)(-0.5 * sdyx * scale[ch] * inv * inv);
   }
 }
 

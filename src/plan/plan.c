@@ -8,7 +8,9 @@
 
 #include "core/alloc.h"
 #include "core/arena.h"
+#include "ops/kernel_choice.h"
 #include "ops/sparse.h"
+#include "plan/fuse.h"
 
 /* A node that runs on every batch (folded nodes are not steps). */
 typedef struct plan_step {
@@ -34,6 +36,10 @@ struct rc_plan {
   int training;
   size_t max_bytes;    /* limit on folded constants and the block together */
   size_t folded_bytes; /* constants folded so far */
+  rc__chain *chains;   /* steps run as one (fuse.h) */
+  int n_chains;
+  int *role;     /* per step: 0, chain + 1 at its head, -1 absorbed */
+  int ran_fused; /* the last forward ran the chains (backward follows it) */
 };
 
 static const size_t ALIGN = 64;
@@ -266,6 +272,16 @@ static rc_status layout_memory(rc_plan *p, const rc_plan_opts *o, rc_err *e) {
     }
   }
   for (int i = 0; i < g->n_outputs; i++) sl[g->outputs[i]].last = end;
+  /* A chain writes its result when its Conv runs and reads the Conv's
+   * output until its last step: both stay in place over the whole chain. */
+  for (int s = 0; s < p->n_steps; s++) {
+    if (p->role[s] <= 0) continue;
+    const rc__chain *c = &p->chains[p->role[s] - 1];
+    const rc_node *tail = (c->act ? c->act : c->bn)->node;
+    int y = g->nodes[p->steps[s].node].out[0];
+    if (sl[y].last < c->last) sl[y].last = c->last;
+    sl[tail->out[0]].first = s;
+  }
   for (int v = 0; v < nv; v++) {
     if (g->values[v].kind == RC_VALUE_INITIALIZER || p->is_const[v] || sl[v].first < 0) continue;
     if ((o->keep && o->keep[v]) || p->training) sl[v].last = end; /* training keeps everything */
@@ -352,6 +368,25 @@ static rc_status layout_memory(rc_plan *p, const rc_plan_opts *o, rc_err *e) {
   return RC_OK;
 }
 
+/* Chains of steps that may run as one: see fuse.h. */
+static rc_status find_chains(rc_plan *p, const rc_plan_opts *o, rc_err *e) {
+  const rc_graph *g = p->g;
+  int *step_of_node = rc__arena_zalloc(&p->meta, sizeof(int) * (size_t)(g->n_nodes + 1));
+  rc_kernel **step_k = rc__arena_zalloc(&p->meta, sizeof(rc_kernel *) * (size_t)(p->n_steps + 1));
+  unsigned char *held = rc__arena_zalloc(&p->meta, (size_t)g->n_values + 1);
+  if (!step_of_node || !step_k || !held)
+    return rc__fail(e, RC_ERR_NOMEM, "%s: out of memory while planning", g->path);
+  for (int ni = 0; ni < g->n_nodes; ni++) step_of_node[ni] = -1;
+  for (int s = 0; s < p->n_steps; s++) {
+    step_of_node[p->steps[s].node] = s;
+    step_k[s] = &p->steps[s].k;
+  }
+  for (int i = 0; i < g->n_outputs; i++) held[g->outputs[i]] = 1;
+  for (int v = 0; o->keep && v < g->n_values; v++) held[v] |= o->keep[v];
+  return rc__chains_find(&p->chains, &p->n_chains, &p->role, g, step_k, p->n_steps, step_of_node, held,
+                         p->is_const, &p->meta, e);
+}
+
 static rc_status build_gradient_views(rc_plan *p, rc_err *e) {
   const rc_graph *g = p->g;
   for (int s = 0; s < p->n_steps; s++) {
@@ -406,6 +441,7 @@ rc_status rc_plan_init(rc_plan **out, const rc_graph *g, const rc_tensor *inputs
   if ((st = check_inputs(p, inputs, e)) != RC_OK) goto fail;
   if ((st = infer_and_fold(p, o, live, e)) != RC_OK) goto fail;
   if (p->training && (st = mark_gradients(p, o, e)) != RC_OK) goto fail;
+  if ((st = find_chains(p, o, e)) != RC_OK) goto fail;
   if ((st = layout_memory(p, o, e)) != RC_OK) goto fail;
   if ((st = build_gradient_views(p, e)) != RC_OK) goto fail;
   rc__free(live);
@@ -469,9 +505,13 @@ int rc_plan_is_const(const rc_plan *p, int value) {
 }
 
 rc_status rc_plan_forward(rc_plan *p, rc_err *e) {
+  const int fuse = p->n_chains && rc__conv_fuse();
+  p->ran_fused = fuse;
   for (int s = 0; s < p->n_steps; s++) {
     rc_kernel *k = &p->steps[s].k;
-    rc_status st = k->node->def->forward(k, e);
+    if (fuse && p->role[s] < 0) continue;
+    rc_status st =
+        fuse && p->role[s] > 0 ? rc__chain_forward(&p->chains[p->role[s] - 1], e) : k->node->def->forward(k, e);
     if (st != RC_OK) return rc__wrap(e, "%s", p->g->path);
   }
   return RC_OK;
@@ -484,9 +524,18 @@ void rc_plan_zero_grad(rc_plan *p) {
 rc_status rc_plan_backward(rc_plan *p, rc_err *e) {
   if (!p->training)
     return rc__fail(e, RC_ERR_INVALID, "%s: backward on a plan built without training", p->g->path);
-  for (int s = p->n_steps - 1; s >= 0; s--)
+  for (int s = p->n_steps - 1; s >= 0; s--) {
+    if (p->ran_fused && p->role[s] < 0) continue;
+    if (p->ran_fused && p->role[s] > 0) rc__chain_backward(&p->chains[p->role[s] - 1]);
     if (p->steps[s].wants_backward) p->steps[s].k.node->def->backward(&p->steps[s].k);
+  }
   return RC_OK;
+}
+
+int rc__plan_absorbed_steps(const rc_plan *p) {
+  int n = 0;
+  for (int s = 0; s < p->n_steps; s++) n += p->role[s] < 0;
+  return n;
 }
 
 size_t rc_plan_bytes(const rc_plan *p) { return p->block_bytes + p->meta.total; }

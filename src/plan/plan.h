@@ -74,6 +74,10 @@ void rc_plan_zero_grad(rc_plan *p);
  * initializers are then in rc_plan_grad(p, v). */
 rc_status rc_plan_backward(rc_plan *p, rc_err *e);
 
+/* Steps that run inside another's (a Conv's epilogue, plan/fuse.h) when
+ * the plan runs its chains; 0 when it has none. */
+int rc__plan_absorbed_steps(const rc_plan *p);
+
 /* Bytes held by the plan's arena (activations, gradients, workspace). */
 size_t rc_plan_bytes(const rc_plan *p);
 const rc_graph *rc_plan_graph(const rc_plan *p);
