@@ -17,6 +17,7 @@
 #define _POSIX_C_SOURCE 200112L
 #include <stdlib.h>
 
+#include "ops/conv_impl.h"
 #include "ops/kernel_choice.h"
 #include "ops_check.h"
 
@@ -29,10 +30,12 @@ typedef struct path_case {
   int depthwise; /* the direct depthwise kernels serve it */
 } path_case;
 
-/* Outputs of one run: y, then dx, dW, dB (dB only with a bias). */
+/* Outputs of one run: y, then dx, dW, dB (dB only with a bias); whether
+ * oneDNN's primitives were made and kept for the node. */
 typedef struct run_out {
   float *v[4];
   int64_t n[4];
+  int dnnl_kept;
 } run_out;
 
 static void run_out_free(run_out *r) {
@@ -81,14 +84,23 @@ static int run_conv(const path_case *pc, run_out *r) {
       const int64_t m = rc_tensor_numel(&c.in_t[i]);
       oh_fill(c.din_t[i].data, m, 505 + (uint32_t)i);
     }
+    /* This time with a state kept for the node, as a plan keeps it: a
+     * path that keeps primitives makes them here and reuses them below. */
     rc_node *nd = &c.node;
-    rc_kernel k = {nd,    nd->params, nd->n_in, nd->n_out, c.in,       c.out,
-                   c.din, c.dout,     c.work,   c.saved,   c.training, c.work_bytes};
+    rc_op_state state = {0};
+    rc_kernel k = {nd,    nd->params, nd->n_in,   nd->n_out,    c.in, c.out, c.din,
+                   c.dout, c.work,    c.saved,    c.training,   c.work_bytes, NULL, &state};
     nd->def->backward(&k);
     for (int i = 0; i < 2 + pc->bias; i++) {
       r->n[1 + i] = rc_tensor_numel(&c.in_t[i]);
       r->v[1 + i] = copy_of(grad_of(&c, i), r->n[1 + i]);
     }
+    /* Forward again through the kept state gives the first forward's bits. */
+    rc_err e = {0};
+    CHECK_INT(nd->def->forward(&k, &e), RC_OK);
+    CHECK_MEM_EQ(oh_out_f(&c, 0), r->v[0], sizeof(float) * (size_t)ny);
+    r->dnnl_kept = rc__conv_dnnl_ready(&state);
+    if (state.release) state.release(state.data);
     free(dy);
   }
   free(x);
@@ -138,6 +150,22 @@ static void one_case(const path_case *pc) {
     }
   }
   unsetenv("RECOUP_KERNEL_ISA");
+  CHECK(!fast[0].dnnl_kept);
+  setenv("RECOUP_CONV_PATH", "dnnl", 1);
+  if (rc__conv_path_choice() == RC_CONV_PATH_DNNL) {
+    /* oneDNN sums in its own order: the batched path's tolerances. It
+     * leaves depthwise convolution to depthwise.c. */
+    run_out dn;
+    CHECK(run_conv(pc, &dn));
+    CHECK_INT(dn.dnnl_kept, !pc->depthwise);
+    for (int i = 0; i < 3 + pc->bias; i++) {
+      CHECK_EQ(dn.n[i], plain.n[i]);
+      if (dn.n[i] == plain.n[i])
+        CHECK_EQ(compare(pc->name, "oneDNN", i, dn.v[i], plain.v[i], plain.n[i], i == 0 ? 1e-5 : 1e-4), 0);
+    }
+    run_out_free(&dn);
+  }
+  unsetenv("RECOUP_CONV_PATH");
   for (int lv = 0; lv <= (int)top; lv++) run_out_free(&fast[lv]);
   run_out_free(&plain);
 }
@@ -176,6 +204,9 @@ int main(void) {
   unsetenv("RECOUP_KERNEL_ISA");
   unsetenv("RECOUP_CONV_PATH");
   printf("instruction-set levels on this CPU: up to %s\n", isa_env[rc__isa_level()]);
+  setenv("RECOUP_CONV_PATH", "dnnl", 1);
+  printf("oneDNN path: %s\n", rc__conv_path_choice() == RC_CONV_PATH_DNNL ? "built in, checked" : "not built in");
+  unsetenv("RECOUP_CONV_PATH");
   RUN(paths_agree);
   return TEST_REPORT();
 }

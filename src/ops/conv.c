@@ -364,6 +364,11 @@ static int sample_threads(const rc_kernel *k, const rc__conv_geom *g, size_t per
   return t > 1 ? (int)t : 1;
 }
 
+/* Whether oneDNN is asked to take this Conv (it may still refuse a shape). */
+static int dnnl_chosen(const rc__conv_geom *g) {
+  return rc__conv_path_choice() == RC_CONV_PATH_DNNL && rc__conv_dnnl_fits(g);
+}
+
 static size_t conv_workspace(const rc_kernel *k, int backward) {
   rc__conv_geom g;
   geometry_of(k, &g);
@@ -376,6 +381,8 @@ static size_t conv_workspace(const rc_kernel *k, int backward) {
   }
   if (rc__conv_depthwise(&g))
     return rc__depthwise_fits(&g) ? rc__depthwise_workspace(&g, backward, omp_get_max_threads()) : 0;
+  /* oneDNN's primitives are made here, once per plan, when its path is chosen. */
+  const size_t dnnl = dnnl_chosen(&g) ? rc__conv_dnnl_workspace(k->state, &g, opt_in(k, 2) != NULL, backward) : 0;
   int64_t t = omp_get_max_threads();
   if (t > g.N) t = g.N;
   if (t < 1) t = 1;
@@ -383,7 +390,8 @@ static size_t conv_workspace(const rc_kernel *k, int backward) {
   const size_t per_sample = sizeof(float) * (size_t)t * thread_floats(&g, backward);
   const int64_t nb = rc__conv_chunk(&g);
   const size_t chunk = nb > 1 ? rc__conv_chunk_bytes(&g, nb, backward, (int)t) : 0;
-  return chunk > per_sample ? chunk : per_sample;
+  const size_t own = chunk > per_sample ? chunk : per_sample;
+  return dnnl > own ? dnnl : own;
 }
 
 /* Whether the direct depthwise kernels run (they need one thread's workspace). */
@@ -500,6 +508,7 @@ static rc_status conv_forward(const rc_kernel *k, rc_err *e) {
     depthwise_forward(&g, y, x, w, b);
     return RC_OK;
   }
+  if (dnnl_chosen(&g) && rc__conv_dnnl_forward(k->state, &g, y, x, w, b, k->work, k->work_bytes)) return RC_OK;
   const int64_t nb = chunk_of(k, &g, 0);
   if (nb > 1) {
     rc__conv_chunk_forward(&g, nb, rc__conv_chunk_threads(&g, nb, 0, k->work_bytes), y, x, w, b, k->work);
@@ -582,6 +591,9 @@ static void conv_backward(const rc_kernel *k) {
     depthwise_backward(&g, cg.dx, cg.dw, cg.x, cg.w, cg.dy);
     return;
   }
+  if (dnnl_chosen(&g) && rc__conv_dnnl_backward(k->state, &g, opt_in(k, 2) != NULL, cg.dx, cg.dw, cg.x, cg.w,
+                                                 cg.dy, k->work, k->work_bytes))
+    return;
   const int64_t nb = chunk_of(k, &g, 1);
   if (nb > 1) {
     rc__conv_chunk_backward(&g, nb, rc__conv_chunk_threads(&g, nb, 1, k->work_bytes), cg.dx, cg.dw, cg.x, cg.w,

@@ -1,6 +1,7 @@
 /* See kernel_choice.h. */
 #include "ops/kernel_choice.h"
 
+#include <stddef.h>
 #include <stdlib.h>
 #include <string.h>
 
@@ -21,7 +22,29 @@ rc__isa rc__isa_level(void) {
   return want < level ? want : level;
 }
 
-int rc__conv_reference(void) {
-  const char *path = getenv("RECOUP_CONV_PATH");
-  return path && !strcmp(path, "reference");
+/* The values of RECOUP_CONV_PATH. */
+static const struct {
+  const char *name;
+  rc__conv_path path;
+} conv_paths[] = {
+    {"builtin", RC_CONV_PATH_BUILTIN},
+    {"reference", RC_CONV_PATH_REFERENCE},
+    {"dnnl", RC_CONV_PATH_DNNL},
+};
+
+/* Without RECOUP_CONV_PATH: recoup's own paths (see README's note on
+ * oneDNN for the measurement behind this choice). */
+static const rc__conv_path default_conv_path = RC_CONV_PATH_BUILTIN;
+
+rc__conv_path rc__conv_path_choice(void) {
+  const char *want = getenv("RECOUP_CONV_PATH");
+  rc__conv_path path = default_conv_path;
+  for (size_t i = 0; want && i < sizeof conv_paths / sizeof conv_paths[0]; i++)
+    if (!strcmp(want, conv_paths[i].name)) path = conv_paths[i].path;
+#ifndef RECOUP_HAVE_DNNL
+  if (path == RC_CONV_PATH_DNNL) path = RC_CONV_PATH_BUILTIN;
+#endif
+  return path;
 }
+
+int rc__conv_reference(void) { return rc__conv_path_choice() == RC_CONV_PATH_REFERENCE; }

@@ -26,6 +26,15 @@ typedef struct rc_op_reduce {
   void *ctx;
 } rc_op_reduce;
 
+/* Memory a kernel keeps across calls for one node and shape, owned by the
+ * plan (a compute library's prepared primitives, say): data starts NULL,
+ * the kernel fills it on first use and sets release, which the plan calls
+ * when it is freed. */
+typedef struct rc_op_state {
+  void *data;
+  void (*release)(void *data);
+} rc_op_state;
+
 /* What a kernel sees for one node of one plan. Shapes are concrete. */
 typedef struct rc_kernel {
   const rc_node *node;
@@ -46,6 +55,8 @@ typedef struct rc_kernel {
   /* NULL when this process holds the whole batch; else batch statistics
    * (BatchNormalization in training mode) are summed through it. */
   const rc_op_reduce *reduce;
+  /* NULL where nothing is kept between calls (folding, single calls). */
+  rc_op_state *state;
 } rc_kernel;
 
 typedef enum rc_op_flags {

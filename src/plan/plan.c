@@ -13,6 +13,7 @@
 typedef struct plan_step {
   int node;
   rc_kernel k;
+  rc_op_state state; /* the kernel's own, kept for the plan's life */
   int wants_backward; /* some input needs a gradient and some output has one */
 } plan_step;
 
@@ -79,7 +80,7 @@ static int node_is_foldable(const rc_plan *p, const rc_node *n, const unsigned c
 }
 
 static rc_status run_folded(rc_plan *p, const rc_node *n, rc_tensor **in, rc_tensor **out, rc_err *e) {
-  rc_kernel k = {n, n->params, n->n_in, n->n_out, in, out, NULL, NULL, NULL, NULL, 0, 0, NULL};
+  rc_kernel k = {n, n->params, n->n_in, n->n_out, in, out, NULL, NULL, NULL, NULL, 0, 0, NULL, NULL};
   size_t ws = n->def->workspace ? n->def->workspace(&k, 0) : 0;
   size_t sv = n->def->saved ? n->def->saved(&k) : 0;
   if (ws > p->max_bytes || sv > p->max_bytes - ws)
@@ -159,7 +160,7 @@ static rc_status infer_and_fold(rc_plan *p, const rc_plan_opts *o, unsigned char
     plan_step *s = &p->steps[p->n_steps++];
     s->node = ni;
     s->k = (rc_kernel){n, n->params, n->n_in, n->n_out, in, out, NULL, NULL, NULL, NULL,
-                       o->bn_batch_stats, 0, o->reduce};
+                       o->bn_batch_stats, 0, o->reduce, &s->state};
   }
   return RC_OK;
 }
@@ -418,6 +419,8 @@ fail:
 
 void rc_plan_free(rc_plan *p) {
   if (!p) return;
+  for (int s = 0; s < p->n_steps; s++)
+    if (p->steps[s].state.release) p->steps[s].state.release(p->steps[s].state.data);
   rc__free(p->block);
   rc__arena_free(&p->meta);
   rc__free(p);
