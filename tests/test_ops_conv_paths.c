@@ -192,6 +192,10 @@ static void paths_agree(void) {
       {"depthwise 32x32", 2, 3, 3, 3, 2, {32, 32}, {3, 3}, {0}, {0}, {1, 1, 1, 1}, 1, 1},
       {"depthwise big end pad", 2, 2, 2, 2, 2, {5, 6}, {3, 3}, {3, 1}, {0}, {0, 1, 4, 2}, 1, 1},
       {"depth multiplier 2", 2, 3, 6, 3, 2, {6, 6}, {3, 3}, {0}, {0}, {1, 1, 1, 1}, 1, 0},
+      /* channels in oneDNN's blocks of 16: its direct kernels, with reorders */
+      {"blocked 16-32 s2", 3, 16, 32, 1, 2, {9, 9}, {3, 3}, {2, 2}, {0}, {1, 1, 1, 1}, 1, 0},
+      {"blocked groups 2 dil", 2, 32, 32, 2, 2, {7, 6}, {3, 3}, {0}, {2, 2}, {2, 2, 2, 2}, 0, 0},
+      {"blocked 1x1 batch 1", 1, 32, 16, 1, 2, {5, 5}, {1, 1}, {0}, {0}, {0, 0, 0, 0}, 1, 0},
   };
   for (size_t i = 0; i < sizeof cases / sizeof cases[0]; i++) {
     const int before = test_failed_checks_;
