@@ -91,7 +91,7 @@ void rc__depthwise_backward(const rc__conv_geom *g, float *dx, float *dw, const 
 struct rc_op_state;
 /* Built without oneDNN (RECOUP_HAVE_DNNL unset), fits and ready give 0. */
 /* Non-zero when the oneDNN path takes this Conv: one or two spatial axes,
- * not depthwise (depthwise.c serves that). */
+ * a window larger than 1x1, not depthwise (depthwise.c serves that). */
 int rc__conv_dnnl_fits(const rc__conv_geom *g);
 /* Workspace for forward (backward = 0) or backward (1); the primitives are
  * made into state (NULL: made, measured and dropped). 0 when oneDNN
