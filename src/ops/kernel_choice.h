@@ -27,8 +27,9 @@ typedef enum rc__conv_path {
   RC_CONV_PATH_DNNL = 2
 } rc__conv_path;
 
-/* The path RECOUP_CONV_PATH names, or the default. "dnnl" without the
- * library built in gives the built-in path. */
+/* The path RECOUP_CONV_PATH names ("builtin", "reference", "dnnl"), or
+ * the default: oneDNN where built in, else the built-in path. "dnnl"
+ * without the library built in gives the built-in path. */
 rc__conv_path rc__conv_path_choice(void);
 
 /* Non-zero when RECOUP_CONV_PATH is "reference". */
