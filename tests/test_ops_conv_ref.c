@@ -151,8 +151,7 @@ static void a_conv1d(oh_case *c) {
 }
 /* F.conv_transpose2d(stride=2, padding=1, output_padding=1, groups=2) */
 static void a_convt2d_group(oh_case *c) {
-  ints(c, "strides", 2, 2, 2, 0, 0);
-  ints(c, "pads", 4, 1, 1, 1, 1);
+  a_s2_pad1(c);
   ints(c, "output_padding", 2, 1, 1, 0, 0);
   oh_attr_int(c, "group", 2);
 }
