@@ -91,8 +91,8 @@ static int run_conv(const path_case *pc, run_out *r) {
      * path that keeps primitives makes them here and reuses them below. */
     rc_node *nd = &c.node;
     rc_op_state state = {0};
-    rc_kernel k = {nd,    nd->params, nd->n_in,   nd->n_out,    c.in, c.out, c.din,
-                   c.dout, c.work,    c.saved,    c.training,   c.work_bytes, NULL, &state};
+    rc_kernel k = {nd,     nd->params, nd->n_in, nd->n_out,  c.in,         c.out, c.din,
+                   c.dout, c.work,     c.saved,  c.training, c.work_bytes, NULL,  &state};
     nd->def->backward(&k);
     for (int i = 0; i < 2 + pc->bias; i++) {
       r->n[1 + i] = rc_tensor_numel(&c.in_t[i]);

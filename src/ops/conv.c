@@ -592,7 +592,7 @@ static void conv_backward(const rc_kernel *k) {
     return;
   }
   if (dnnl_chosen(&g) && rc__conv_dnnl_backward(k->state, &g, opt_in(k, 2) != NULL, cg.dx, cg.dw, cg.x, cg.w,
-                                                 cg.dy, k->work, k->work_bytes))
+                                                cg.dy, k->work, k->work_bytes))
     return;
   const int64_t nb = chunk_of(k, &g, 1);
   if (nb > 1) {

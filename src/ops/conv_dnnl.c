@@ -155,7 +155,8 @@ static int plain_layouts(dnnl_conv *c) {
 /* The descriptor a convolution is described with for a plain one. */
 static dnnl_memory_desc_t described(const dnnl_memory_desc_t *plain) {
   dnnl_memory_desc_t md = *plain;
-  if (let_library_choose_layouts) dnnl_memory_desc_init_by_tag(&md, plain->ndims, plain->dims, dnnl_f32, dnnl_format_tag_any);
+  if (let_library_choose_layouts)
+    dnnl_memory_desc_init_by_tag(&md, plain->ndims, plain->dims, dnnl_f32, dnnl_format_tag_any);
   return md;
 }
 
@@ -172,8 +173,8 @@ static int add_operand(dnnl_conv *c, dnnl_step *s, int arg, int output, const dn
   s->work_bytes += round_up(dnnl_memory_desc_get_size(chosen));
   dnnl_primitive_desc_t rpd = NULL;
   int fine = ok(dnnl_memory_create(&o->inner, chosen, c->engine, DNNL_MEMORY_NONE)) &&
-             ok(dnnl_reorder_primitive_desc_create(&rpd, output ? chosen : plain, c->engine, output ? plain : chosen,
-                                                   c->engine, NULL)) &&
+             ok(dnnl_reorder_primitive_desc_create(&rpd, output ? chosen : plain, c->engine,
+                                                   output ? plain : chosen, c->engine, NULL)) &&
              ok(dnnl_primitive_create(&o->reorder, rpd));
   if (rpd) dnnl_primitive_desc_destroy(rpd);
   return fine;
@@ -206,8 +207,10 @@ static int make_forward(dnnl_conv *c) {
   const dnnl_window w = window_of(&c->g);
   const dnnl_memory_desc_t src = described(&c->src_md), wei = described(&c->wei_md), dst = described(&c->dst_md);
   dnnl_convolution_desc_t d;
-  const operand_spec specs[] = {{DNNL_ARG_SRC, 0, &c->src_md}, {DNNL_ARG_WEIGHTS, 0, &c->wei_md},
-                                {DNNL_ARG_DST, 1, &c->dst_md}, {DNNL_ARG_BIAS, 0, &c->bias_md}};
+  const operand_spec specs[] = {{DNNL_ARG_SRC, 0, &c->src_md},
+                                {DNNL_ARG_WEIGHTS, 0, &c->wei_md},
+                                {DNNL_ARG_DST, 1, &c->dst_md},
+                                {DNNL_ARG_BIAS, 0, &c->bias_md}};
   return ok(dnnl_dilated_convolution_forward_desc_init(&d, dnnl_forward_training, dnnl_convolution_direct, &src,
                                                        &wei, c->has_bias ? &c->bias_md : NULL, &dst, w.strides,
                                                        w.dilates, w.pad_l, w.pad_r)) &&
@@ -218,10 +221,10 @@ static int make_backward(dnnl_conv *c) {
   const dnnl_window w = window_of(&c->g);
   const dnnl_memory_desc_t src = described(&c->src_md), wei = described(&c->wei_md), dst = described(&c->dst_md);
   dnnl_convolution_desc_t dd, dw;
-  const operand_spec data[] = {{DNNL_ARG_DIFF_DST, 0, &c->dst_md}, {DNNL_ARG_WEIGHTS, 0, &c->wei_md},
-                               {DNNL_ARG_DIFF_SRC, 1, &c->src_md}};
-  const operand_spec weights[] = {{DNNL_ARG_SRC, 0, &c->src_md}, {DNNL_ARG_DIFF_DST, 0, &c->dst_md},
-                                  {DNNL_ARG_DIFF_WEIGHTS, 1, &c->wei_md}};
+  const operand_spec data[] = {
+      {DNNL_ARG_DIFF_DST, 0, &c->dst_md}, {DNNL_ARG_WEIGHTS, 0, &c->wei_md}, {DNNL_ARG_DIFF_SRC, 1, &c->src_md}};
+  const operand_spec weights[] = {
+      {DNNL_ARG_SRC, 0, &c->src_md}, {DNNL_ARG_DIFF_DST, 0, &c->dst_md}, {DNNL_ARG_DIFF_WEIGHTS, 1, &c->wei_md}};
   return ok(dnnl_dilated_convolution_backward_data_desc_init(&dd, dnnl_convolution_direct, &src, &wei, &dst,
                                                              w.strides, w.dilates, w.pad_l, w.pad_r)) &&
          make_step(c, &c->bwd_data, &dd, c->fwd.pd, data, 3) &&
@@ -286,7 +289,9 @@ static void finish(dnnl_conv *c, const dnnl_conv *local) {
 
 /* The input and weight gradients' plain copies, ahead of the steps' own
  * workspace in backward. */
-static size_t dx_bytes(const rc__conv_geom *g) { return round_up(sizeof(float) * (size_t)(g->N * g->C * g->in_sp)); }
+static size_t dx_bytes(const rc__conv_geom *g) {
+  return round_up(sizeof(float) * (size_t)(g->N * g->C * g->in_sp));
+}
 static size_t grads_bytes(const rc__conv_geom *g) {
   return dx_bytes(g) + round_up(sizeof(float) * (size_t)(g->M * g->Cg * g->K));
 }
@@ -390,7 +395,8 @@ int rc__conv_dnnl_forward(struct rc_op_state *state, const rc__conv_geom *g, flo
 
 int rc__conv_dnnl_backward(struct rc_op_state *state, const rc__conv_geom *g, int has_bias, float *dx, float *dw,
                            const float *x, const float *w, const float *dy, void *work, size_t work_bytes) {
-  (void)state, (void)g, (void)has_bias, (void)dx, (void)dw, (void)x, (void)w, (void)dy, (void)work, (void)work_bytes;
+  (void)state, (void)g, (void)has_bias, (void)dx, (void)dw, (void)x, (void)w, (void)dy, (void)work,
+      (void)work_bytes;
   return 0;
 }
 

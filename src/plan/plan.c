@@ -13,7 +13,7 @@
 typedef struct plan_step {
   int node;
   rc_kernel k;
-  rc_op_state state; /* the kernel's own, kept for the plan's life */
+  rc_op_state state;  /* the kernel's own, kept for the plan's life */
   int wants_backward; /* some input needs a gradient and some output has one */
 } plan_step;
 
