@@ -11,8 +11,11 @@
  * 1x1, stride-1, unpadded convolution skipping the unfolding (the input
  * already is the column matrix). That per-sample path, with the tap walk
  * for depthwise, is also the plain path RECOUP_CONV_PATH=reference selects
- * (kernel_choice.h). Spatial axes are canonicalised to 3 (missing leading
- * axes have size 1), so 1-D, 2-D and 3-D share one path. */
+ * (kernel_choice.h). Where the build has oneDNN, its convolutions take
+ * the non-depthwise layers with windows larger than 1x1 first (conv_dnnl.c;
+ * a shape it refuses falls through to the paths above). Spatial axes are
+ * canonicalised to 3 (missing leading axes have size 1), so 1-D, 2-D and
+ * 3-D share one path. */
 #include <cblas.h>
 #include <limits.h>
 #include <omp.h>
