@@ -102,6 +102,17 @@ def main():
     run_case(w, gen, "conv1d",
              lambda x, k, b: F.conv1d(x, k, b, stride=2, padding=1),
              [("x", draw(gen, 3, 2, 10)), ("w", draw(gen, 4, 2, 3)), ("b", draw(gen, 4))])
+    # Channel counts in multiples of 16, the blocks in which oneDNN's direct
+    # kernels lay tensors out (RECOUP_CONV_PATH=dnnl reorders into them).
+    run_case(w, gen, "conv2d_blocked_s2",
+             lambda x, k, b: F.conv2d(x, k, b, stride=2, padding=1),
+             [("x", draw(gen, 3, 16, 9, 9)), ("w", draw(gen, 32, 16, 3, 3)), ("b", draw(gen, 32))])
+    run_case(w, gen, "conv2d_blocked_group_dil",
+             lambda x, k, b: F.conv2d(x, k, b, padding=2, dilation=2, groups=2),
+             [("x", draw(gen, 2, 32, 7, 6)), ("w", draw(gen, 32, 16, 3, 3)), ("b", draw(gen, 32))])
+    run_case(w, gen, "conv2d_blocked_b1",
+             lambda x, k, b: F.conv2d(x, k, b, padding=1),
+             [("x", draw(gen, 1, 16, 8, 8)), ("w", draw(gen, 16, 16, 3, 3)), ("b", draw(gen, 16))])
     # ConvTranspose: weight (C_in, C_out/groups, k...), as in ONNX.
     run_case(w, gen, "convt2d_group",
              lambda x, k, b: F.conv_transpose2d(x, k, b, stride=2, padding=1, output_padding=1, groups=2),

@@ -26,6 +26,7 @@ PACKAGES=(
   nettle-dev libzip-dev                            # SHA-256 of the batch ledger; the zip container of .npz
   libjpeg62-turbo-dev libpng-dev                   # image folders (JPEG, PNG)
   libopenmpi-dev openmpi-bin                       # optional: distill and batch over MPI ranks
+  libdnnl-dev                                      # optional: oneDNN as a path for Conv (RECOUP_CONV_PATH=dnnl)
   # reference tests and demo (Debian's /usr/bin/python3)
   python3 python3-numpy python3-torch python3-torchvision python3-onnx python3-pil python3-scipy
   dataset-fashion-mnist libonnx-testdata

@@ -4,6 +4,7 @@
 #define RC_OPS_CHECK_H
 
 #include "op_harness.h"
+#include "ops/conv_impl.h"
 #include "test.h"
 
 /* parse + infer + forward; prints the error on failure. */
@@ -58,10 +59,12 @@ static void run_backward(oh_case *c, const float *g, const int *inputs) {
 static const float *grad_of(oh_case *c, int i) { return (const float *)c->din_t[i].data; }
 
 /* Results of one forward and backward kept for comparing paths: y, then the
- * gradients of inputs 0..2. */
+ * gradients of inputs 0..2; whether oneDNN's primitives were made and kept
+ * for the node. */
 typedef struct run_out {
   float *v[4];
   int64_t n[4];
+  int dnnl_kept;
 } run_out;
 
 static void run_out_free(run_out *r) {
@@ -89,15 +92,25 @@ static int run_and_keep(oh_case *c, int n_grads, run_out *r) {
   /* run_backward zeroes the gradients; seed them instead and run again. */
   run_backward(c, dy, n_grads > 2 ? wanted : wanted_nb);
   for (int i = 0; i < n_grads; i++) oh_fill(c->din_t[i].data, rc_tensor_numel(&c->in_t[i]), 505 + (uint32_t)i);
+  /* This time with a state kept for the node, as a plan keeps it: a path
+   * that keeps primitives makes them here and reuses them below. */
   rc_node *nd = &c->node;
+  rc_op_state state = {0};
   rc_kernel k = {nd,     nd->params, nd->n_in, nd->n_out, c->in,       c->out,
                  c->din, c->dout,    c->work,  c->saved,  c->training, c->work_bytes};
   k.pattern = c->pattern;
+  k.state = &state;
   nd->def->backward(&k);
   for (int i = 0; i < n_grads; i++) {
     r->n[1 + i] = rc_tensor_numel(&c->in_t[i]);
     r->v[1 + i] = copy_of(grad_of(c, i), r->n[1 + i]);
   }
+  /* Forward again through the kept state gives the first forward's bits. */
+  rc_err e = {0};
+  CHECK_INT(nd->def->forward(&k, &e), RC_OK);
+  CHECK_MEM_EQ(oh_out_f(c, 0), r->v[0], sizeof(float) * (size_t)ny);
+  r->dnnl_kept = rc__conv_dnnl_ready(&state);
+  if (state.release) state.release(state.data);
   free(dy);
   return 1;
 }

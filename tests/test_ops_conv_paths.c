@@ -1,7 +1,10 @@
 /* Conv's fast paths against its plain per-sample path, forward and both
  * backward products: the batched GEMM path (1x1 and general convolutions,
- * several samples per GEMM, chunks with a remainder) and the direct
- * depthwise kernels (stride 1 on the flat grid, other strides row by row),
+ * several samples per GEMM, chunks with a remainder), the direct
+ * depthwise kernels (stride 1 on the flat grid, other strides row by row)
+ * and, in builds with oneDNN, its convolutions (RECOUP_CONV_PATH=dnnl;
+ * channels in blocks of 16 take its reordered blocked layouts), each run
+ * also through a kept state as a plan keeps it,
  * on odd sizes, padding, strides, dilations, groups and batch 1, at every
  * instruction-set level this CPU has (RECOUP_KERNEL_ISA lowers it). The
  * plain path is the one test_ops_conv checks against the ONNX specification
@@ -17,6 +20,7 @@
 #define _POSIX_C_SOURCE 200112L
 #include <stdlib.h>
 
+#include "ops/conv_impl.h"
 #include "ops/kernel_choice.h"
 #include "ops_check.h"
 
@@ -81,7 +85,7 @@ static void one_case(const path_case *pc) {
   run_out plain, fast[3];
   setenv("RECOUP_CONV_PATH", "reference", 1);
   CHECK(run_conv(pc, &plain));
-  unsetenv("RECOUP_CONV_PATH");
+  setenv("RECOUP_CONV_PATH", "builtin", 1);
   const rc__isa top = rc__isa_level();
   for (int lv = 0; lv <= (int)top; lv++) {
     setenv("RECOUP_KERNEL_ISA", isa_env[lv], 1);
@@ -98,6 +102,23 @@ static void one_case(const path_case *pc) {
     }
   }
   unsetenv("RECOUP_KERNEL_ISA");
+  CHECK(!fast[0].dnnl_kept);
+  setenv("RECOUP_CONV_PATH", "dnnl", 1);
+  if (rc__conv_path_choice() == RC_CONV_PATH_DNNL) {
+    /* oneDNN sums in its own order: the batched path's tolerances. It
+     * leaves depthwise and 1x1 convolutions to recoup's own paths. */
+    run_out dn;
+    CHECK(run_conv(pc, &dn));
+    const int one_by_one = pc->k[0] == 1 && (pc->nsp == 1 || pc->k[1] == 1);
+    CHECK_INT(dn.dnnl_kept, !pc->depthwise && !one_by_one);
+    for (int i = 0; i < 3 + pc->bias; i++) {
+      CHECK_EQ(dn.n[i], plain.n[i]);
+      if (dn.n[i] == plain.n[i])
+        CHECK_EQ(compare(pc->name, "oneDNN", i, dn.v[i], plain.v[i], plain.n[i], i == 0 ? 1e-5 : 1e-4), 0);
+    }
+    run_out_free(&dn);
+  }
+  unsetenv("RECOUP_CONV_PATH");
   for (int lv = 0; lv <= (int)top; lv++) run_out_free(&fast[lv]);
   run_out_free(&plain);
 }
@@ -124,6 +145,10 @@ static void paths_agree(void) {
       {"depthwise 32x32", 2, 3, 3, 3, 2, {32, 32}, {3, 3}, {0}, {0}, {1, 1, 1, 1}, 1, 1},
       {"depthwise big end pad", 2, 2, 2, 2, 2, {5, 6}, {3, 3}, {3, 1}, {0}, {0, 1, 4, 2}, 1, 1},
       {"depth multiplier 2", 2, 3, 6, 3, 2, {6, 6}, {3, 3}, {0}, {0}, {1, 1, 1, 1}, 1, 0},
+      /* channels in oneDNN's blocks of 16: its direct kernels, with reorders */
+      {"blocked 16-32 s2", 3, 16, 32, 1, 2, {9, 9}, {3, 3}, {2, 2}, {0}, {1, 1, 1, 1}, 1, 0},
+      {"blocked groups 2 dil", 2, 32, 32, 2, 2, {7, 6}, {3, 3}, {0}, {2, 2}, {2, 2, 2, 2}, 0, 0},
+      {"blocked 3x3 batch 1", 1, 32, 16, 1, 2, {5, 5}, {3, 3}, {0}, {0}, {1, 1, 1, 1}, 1, 0},
   };
   for (size_t i = 0; i < sizeof cases / sizeof cases[0]; i++) {
     const int before = test_failed_checks_;
@@ -136,6 +161,9 @@ int main(void) {
   unsetenv("RECOUP_KERNEL_ISA");
   unsetenv("RECOUP_CONV_PATH");
   printf("instruction-set levels on this CPU: up to %s\n", isa_env[rc__isa_level()]);
+  setenv("RECOUP_CONV_PATH", "dnnl", 1);
+  printf("oneDNN path: %s\n", rc__conv_path_choice() == RC_CONV_PATH_DNNL ? "built in, checked" : "not built in");
+  unsetenv("RECOUP_CONV_PATH");
   RUN(paths_agree);
   return TEST_REPORT();
 }

@@ -112,6 +112,17 @@ static void a_conv2d_depthwise(oh_case *c) {
   ints(c, "dilations", 2, 2, 2, 0, 0);
   oh_attr_int(c, "group", 3);
 }
+/* F.conv2d(stride=2, padding=1) */
+static void a_s2_pad1(oh_case *c) {
+  ints(c, "strides", 2, 2, 2, 0, 0);
+  ints(c, "pads", 4, 1, 1, 1, 1);
+}
+/* F.conv2d(padding=2, dilation=2, groups=2) */
+static void a_group_dil(oh_case *c) {
+  ints(c, "pads", 4, 2, 2, 2, 2);
+  ints(c, "dilations", 2, 2, 2, 0, 0);
+  oh_attr_int(c, "group", 2);
+}
 static void a_none(oh_case *c) { (void)c; }
 /* F.conv2d(padding=1) */
 static void a_pad1(oh_case *c) { ints(c, "pads", 4, 1, 1, 1, 1); }
@@ -140,8 +151,7 @@ static void a_conv1d(oh_case *c) {
 }
 /* F.conv_transpose2d(stride=2, padding=1, output_padding=1, groups=2) */
 static void a_convt2d_group(oh_case *c) {
-  ints(c, "strides", 2, 2, 2, 0, 0);
-  ints(c, "pads", 4, 1, 1, 1, 1);
+  a_s2_pad1(c);
   ints(c, "output_padding", 2, 1, 1, 0, 0);
   oh_attr_int(c, "group", 2);
 }
@@ -201,6 +211,9 @@ static const ref_case cases[] = {
     {"conv2d_dw_s1", "Conv", 13, {"x", "w", "b"}, a_dw_s1, 0},
     {"conv2d_dw_s2_b1", "Conv", 13, {"x", "w", "b"}, a_dw_s2, 0},
     {"conv1d_dw", "Conv", 13, {"x", "w", "b"}, a_dw_1d, 0},
+    {"conv2d_blocked_s2", "Conv", 13, {"x", "w", "b"}, a_s2_pad1, 0},
+    {"conv2d_blocked_group_dil", "Conv", 13, {"x", "w", "b"}, a_group_dil, 0},
+    {"conv2d_blocked_b1", "Conv", 13, {"x", "w", "b"}, a_pad1, 0},
     {"convt2d_group", "ConvTranspose", 13, {"x", "w", "b"}, a_convt2d_group, 0},
     {"convt2d_dilated", "ConvTranspose", 13, {"x", "w", "b"}, a_convt2d_dilated, 0},
     {"maxpool_ceil", "MaxPool", 12, {"x"}, a_maxpool_ceil, 1},

@@ -11,8 +11,11 @@
  * 1x1, stride-1, unpadded convolution skipping the unfolding (the input
  * already is the column matrix). That per-sample path, with the tap walk
  * for depthwise, is also the plain path RECOUP_CONV_PATH=reference selects
- * (kernel_choice.h). Spatial axes are canonicalised to 3 (missing leading
- * axes have size 1), so 1-D, 2-D and 3-D share one path. */
+ * (kernel_choice.h). Where the build has oneDNN, its convolutions take
+ * the non-depthwise layers with windows larger than 1x1 first (conv_dnnl.c;
+ * a shape it refuses falls through to the paths above). Spatial axes are
+ * canonicalised to 3 (missing leading axes have size 1), so 1-D, 2-D and
+ * 3-D share one path. */
 #include <cblas.h>
 #include <limits.h>
 #include <omp.h>
@@ -366,6 +369,11 @@ static int sample_threads(const rc_kernel *k, const rc__conv_geom *g, size_t per
   return t > 1 ? (int)t : 1;
 }
 
+/* Whether oneDNN is asked to take this Conv (it may still refuse a shape). */
+static int dnnl_chosen(const rc__conv_geom *g) {
+  return rc__conv_path_choice() == RC_CONV_PATH_DNNL && rc__conv_dnnl_fits(g);
+}
+
 static size_t conv_workspace(const rc_kernel *k, int backward) {
   rc__conv_geom g;
   geometry_of(k, &g);
@@ -378,6 +386,8 @@ static size_t conv_workspace(const rc_kernel *k, int backward) {
   }
   if (rc__conv_depthwise(&g))
     return rc__depthwise_fits(&g) ? rc__depthwise_workspace(&g, backward, omp_get_max_threads()) : 0;
+  /* oneDNN's primitives are made here, once per plan, when its path is chosen. */
+  const size_t dnnl = dnnl_chosen(&g) ? rc__conv_dnnl_workspace(k->state, &g, opt_in(k, 2) != NULL, backward) : 0;
   int64_t t = omp_get_max_threads();
   if (t > g.N) t = g.N;
   if (t < 1) t = 1;
@@ -385,7 +395,8 @@ static size_t conv_workspace(const rc_kernel *k, int backward) {
   const size_t per_sample = sizeof(float) * (size_t)t * thread_floats(&g, backward);
   const int64_t nb = rc__conv_chunk(&g);
   const size_t chunk = nb > 1 ? rc__conv_chunk_bytes(&g, nb, backward, (int)t) : 0;
-  return chunk > per_sample ? chunk : per_sample;
+  const size_t own = chunk > per_sample ? chunk : per_sample;
+  return dnnl > own ? dnnl : own;
 }
 
 /* Whether the direct depthwise kernels run (they need one thread's workspace). */
@@ -492,7 +503,7 @@ static void forward_sample(const rc__conv_geom *g, float *yn, const float *xn, c
                 (int)CgK, col + grp * CgK * P, (int)P, 1.0f, yn + grp * g->Mg * P, (int)P);
 }
 
-/* The plain depthwise and the sparse paths write all of y before the
+/* The plain depthwise, sparse and oneDNN paths write all of y before the
  * epilogue can run: it then takes one pass over the batch, a sample per
  * thread. */
 static void epilogue_pass(const rc__epilogue *ep, const rc__conv_geom *g, const float *y) {
@@ -524,6 +535,10 @@ rc_status rc__conv_forward_epilogue(const rc_kernel *k, const rc__epilogue *ep, 
   }
   if (rc__conv_depthwise(&g)) {
     depthwise_forward(&g, y, x, w, b);
+    epilogue_pass(ep, &g, y);
+    return RC_OK;
+  }
+  if (dnnl_chosen(&g) && rc__conv_dnnl_forward(k->state, &g, y, x, w, b, k->work, k->work_bytes)) {
     epilogue_pass(ep, &g, y);
     return RC_OK;
   }
@@ -616,6 +631,9 @@ static void conv_backward(const rc_kernel *k) {
     depthwise_backward(&g, cg.dx, cg.dw, cg.x, cg.w, cg.dy);
     return;
   }
+  if (dnnl_chosen(&g) && rc__conv_dnnl_backward(k->state, &g, opt_in(k, 2) != NULL, cg.dx, cg.dw, cg.x, cg.w,
+                                                cg.dy, k->work, k->work_bytes))
+    return;
   const int64_t nb = chunk_of(k, &g, 1);
   if (nb > 1) {
     rc__conv_chunk_backward(&g, nb, rc__conv_chunk_threads(&g, nb, 1, k->work_bytes), cg.dx, cg.dw, cg.x, cg.w,

@@ -112,5 +112,25 @@ void rc__sparse_conv_forward(const rc__conv_geom *g, const struct rc__wpattern *
 /* dx += input gradient, dw += weight gradient at kept positions only (either may be NULL). */
 void rc__sparse_conv_backward(const rc__conv_geom *g, const struct rc__wpattern *p, float *dx, float *dw,
                               const float *x, const float *w, const float *dy);
+/* ---- conv_dnnl.c: oneDNN's convolutions (RECOUP_HAVE_DNNL) ---- */
+
+struct rc_op_state;
+/* Built without oneDNN (RECOUP_HAVE_DNNL unset), fits and ready give 0. */
+/* Non-zero when the oneDNN path takes this Conv: one or two spatial axes,
+ * a window larger than 1x1, not depthwise (depthwise.c serves that). */
+int rc__conv_dnnl_fits(const rc__conv_geom *g);
+/* Workspace for forward (backward = 0) or backward (1); the primitives are
+ * made into state (NULL: made, measured and dropped). 0 when oneDNN
+ * refuses the shape. */
+size_t rc__conv_dnnl_workspace(struct rc_op_state *state, const rc__conv_geom *g, int has_bias, int backward);
+/* Non-zero when state holds primitives made for a Conv (for tests). */
+int rc__conv_dnnl_ready(const struct rc_op_state *state);
+/* y = b + conv(x). Returns 0, having written nothing, when it cannot run. */
+int rc__conv_dnnl_forward(struct rc_op_state *state, const rc__conv_geom *g, float *y, const float *x,
+                          const float *w, const float *b, void *work, size_t work_bytes);
+/* dx += input gradient, dw += weight gradient (either may be NULL).
+ * Returns 0, having added nothing, when it cannot run. */
+int rc__conv_dnnl_backward(struct rc_op_state *state, const rc__conv_geom *g, int has_bias, float *dx, float *dw,
+                           const float *x, const float *w, const float *dy, void *work, size_t work_bytes);
 
 #endif

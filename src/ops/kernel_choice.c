@@ -1,6 +1,7 @@
 /* See kernel_choice.h. */
 #include "ops/kernel_choice.h"
 
+#include <stddef.h>
 #include <stdlib.h>
 #include <string.h>
 
@@ -21,24 +22,30 @@ rc__isa rc__isa_level(void) {
   return want < level ? want : level;
 }
 
-/* RECOUP_CONV_PATH, one row per value: what each turns off or forces.
- * Unset or unknown values take the defaults (fast paths chosen by shape). */
+/* RECOUP_CONV_PATH, one row per value: which Conv path serves, whether
+ * patterned weights take the sparse kernels, whether Conv -> frozen BN ->
+ * Relu/Clip chains run as one step. Unset or unknown values take the
+ * defaults. */
 typedef struct conv_path_row {
   const char *value;
-  int reference;          /* plain unfold + GEMM path only */
+  rc__conv_path path;     /* RC_CONV_PATH_DEFAULT: oneDNN where built in */
   rc__sparse_mode sparse; /* sparse kernels for patterned weights */
-  int fuse;               /* Conv -> frozen BN -> Relu/Clip as one step */
+  int fuse;               /* chains as one step */
 } conv_path_row;
 
-static const conv_path_row k_conv_paths[] = {
-    {"reference", 1, RC_SPARSE_NEVER, 0},
-    {"dense", 0, RC_SPARSE_NEVER, 1},
-    {"sparse", 0, RC_SPARSE_ALWAYS, 1},
-    {"unfused", 0, RC_SPARSE_AUTO, 0},
-};
-static const conv_path_row k_conv_default = {NULL, 0, RC_SPARSE_AUTO, 1};
+#define RC_CONV_PATH_DEFAULT ((rc__conv_path)-1)
 
-static const conv_path_row *conv_path(void) {
+static const conv_path_row k_conv_paths[] = {
+    {"builtin", RC_CONV_PATH_BUILTIN, RC_SPARSE_AUTO, 1},
+    {"reference", RC_CONV_PATH_REFERENCE, RC_SPARSE_NEVER, 0},
+    {"dnnl", RC_CONV_PATH_DNNL, RC_SPARSE_AUTO, 1},
+    {"dense", RC_CONV_PATH_DEFAULT, RC_SPARSE_NEVER, 1},
+    {"sparse", RC_CONV_PATH_DEFAULT, RC_SPARSE_ALWAYS, 1},
+    {"unfused", RC_CONV_PATH_DEFAULT, RC_SPARSE_AUTO, 0},
+};
+static const conv_path_row k_conv_default = {NULL, RC_CONV_PATH_DEFAULT, RC_SPARSE_AUTO, 1};
+
+static const conv_path_row *conv_path_row_chosen(void) {
   const char *value = getenv("RECOUP_CONV_PATH");
   if (value)
     for (size_t i = 0; i < sizeof k_conv_paths / sizeof k_conv_paths[0]; i++)
@@ -46,8 +53,21 @@ static const conv_path_row *conv_path(void) {
   return &k_conv_default;
 }
 
-int rc__conv_reference(void) { return conv_path()->reference; }
+/* Without a path named: oneDNN where the build has it (the ResNet-8
+ * training step ran about twice as fast; README's note on oneDNN), else
+ * recoup's own paths. "dnnl" without the library gives recoup's own. */
+rc__conv_path rc__conv_path_choice(void) {
+  rc__conv_path path = conv_path_row_chosen()->path;
+#ifdef RECOUP_HAVE_DNNL
+  if (path == RC_CONV_PATH_DEFAULT) path = RC_CONV_PATH_DNNL;
+#else
+  if (path == RC_CONV_PATH_DEFAULT || path == RC_CONV_PATH_DNNL) path = RC_CONV_PATH_BUILTIN;
+#endif
+  return path;
+}
 
-rc__sparse_mode rc__sparse_choice(void) { return conv_path()->sparse; }
+int rc__conv_reference(void) { return rc__conv_path_choice() == RC_CONV_PATH_REFERENCE; }
 
-int rc__conv_fuse(void) { return conv_path()->fuse; }
+rc__sparse_mode rc__sparse_choice(void) { return conv_path_row_chosen()->sparse; }
+
+int rc__conv_fuse(void) { return conv_path_row_chosen()->fuse; }

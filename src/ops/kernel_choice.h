@@ -1,10 +1,10 @@
 /* Which implementation a kernel runs: the instruction set of the vector
  * kernels recoup writes itself (the best the CPU has, or a lower one named
- * by RECOUP_KERNEL_ISA), whether Conv takes its fast paths or the plain
- * per-sample path (RECOUP_CONV_PATH=reference), and whether a Conv runs the
- * ops after it as its epilogue (off with "reference" or "unfused"). Both
- * variables exist so that tests can run every path on one machine; results agree to float tolerance
- * (and bit for bit across instruction sets). Read at each call: no state. */
+ * by RECOUP_KERNEL_ISA) and which of Conv's paths serves (RECOUP_CONV_PATH,
+ * one of the names in kernel_choice.c's table). Both variables exist so
+ * that tests can run every path on one machine; results agree to float
+ * tolerance (and bit for bit across instruction sets). Read at each call:
+ * no state. */
 #ifndef RC_OPS_KERNEL_CHOICE_H
 #define RC_OPS_KERNEL_CHOICE_H
 
@@ -17,6 +17,21 @@ typedef enum rc__isa {
 /* The CPU's best level, lowered to RECOUP_KERNEL_ISA ("baseline", "avx2",
  * "avx512") when that names a lower one. */
 rc__isa rc__isa_level(void);
+
+/* Conv's paths: recoup's own fast paths (batched GEMMs, direct depthwise
+ * kernels), the plain per-sample path, and oneDNN's convolutions where the
+ * library was built in (a layer it does not take runs recoup's own). */
+typedef enum rc__conv_path {
+  RC_CONV_PATH_BUILTIN = 0,
+  RC_CONV_PATH_REFERENCE = 1,
+  RC_CONV_PATH_DNNL = 2
+} rc__conv_path;
+
+/* The path RECOUP_CONV_PATH names ("builtin", "reference", "dnnl"), or
+ * the default (also for "dense", "sparse", "unfused", which choose only
+ * the two switches below): oneDNN where built in, else the built-in path.
+ * "dnnl" without the library built in gives the built-in path. */
+rc__conv_path rc__conv_path_choice(void);
 
 /* Non-zero when RECOUP_CONV_PATH is "reference". */
 int rc__conv_reference(void);

@@ -26,6 +26,15 @@ typedef struct rc_op_reduce {
   void *ctx;
 } rc_op_reduce;
 
+/* Memory a kernel keeps across calls for one node and shape, owned by the
+ * plan (a compute library's prepared primitives, say): data starts NULL,
+ * the kernel fills it on first use and sets release, which the plan calls
+ * when it is freed. */
+typedef struct rc_op_state {
+  void *data;
+  void (*release)(void *data);
+} rc_op_state;
+
 /* What a kernel sees for one node of one plan. Shapes are concrete. */
 typedef struct rc_kernel {
   const rc_node *node;
@@ -49,6 +58,8 @@ typedef struct rc_kernel {
   /* NULL, or the kept positions of the weight input of an op flagged
    * RC_OP_SPARSE_WEIGHT (sparse.h), set by the plan from training masks. */
   const struct rc__wpattern *pattern;
+  /* NULL where nothing is kept between calls (folding, single calls). */
+  rc_op_state *state;
 } rc_kernel;
 
 typedef enum rc_op_flags {

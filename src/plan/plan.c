@@ -16,6 +16,7 @@
 typedef struct plan_step {
   int node;
   rc_kernel k;
+  rc_op_state state;  /* the kernel's own, kept for the plan's life */
   int wants_backward; /* some input needs a gradient and some output has one */
 } plan_step;
 
@@ -166,7 +167,7 @@ static rc_status infer_and_fold(rc_plan *p, const rc_plan_opts *o, unsigned char
     plan_step *s = &p->steps[p->n_steps++];
     s->node = ni;
     s->k = (rc_kernel){n, n->params, n->n_in, n->n_out, in, out, NULL, NULL, NULL, NULL,
-                       o->bn_batch_stats, 0, o->reduce, NULL};
+                       o->bn_batch_stats, 0, o->reduce, NULL, &s->state};
   }
   return RC_OK;
 }
@@ -455,6 +456,8 @@ fail:
 
 void rc_plan_free(rc_plan *p) {
   if (!p) return;
+  for (int s = 0; s < p->n_steps; s++)
+    if (p->steps[s].state.release) p->steps[s].state.release(p->steps[s].state.data);
   rc__free(p->block);
   rc__arena_free(&p->meta);
   rc__free(p);
