@@ -281,9 +281,12 @@ np.save(os.path.join(WORK, "big_changed.npy"), changed)
 np.save(os.path.join(WORK, "big_shorter.npy"), big[:-1])
 
 
+BIG_STEPS = 16 if os.environ.get("RECOUP_SANITIZER_BUILD") == "1" else 40  # SIGTERM comes after step 2
+
+
 def big_args(data, out, extra=()):
     return [RECOUP, "distill", "--teacher", DENSE, "--student", PRUNED, "--data", data, "--val-data", DATA,
-            "--scale", SCALE, "--steps", "40", "--seed", "7", "--threads", "2", "--checkpoint-every", "2",
+            "--scale", SCALE, "--steps", str(BIG_STEPS), "--seed", "7", "--threads", "2", "--checkpoint-every", "2",
             "--out", out] + list(extra)
 
 
