@@ -49,6 +49,11 @@ os.makedirs(WORK)
 FMNIST = "/usr/share/datasets/fashion-mnist/train-images-idx3-ubyte.gz"
 require_data(FMNIST)
 CHROMIUM = "/usr/bin/chromium"
+# The sanitizer build, several times slower per step, gives the long job 10
+# epochs instead of 30 (still far longer than the 4 steps before its first
+# checkpoint, where the kill and SIGTERM come) and leaves loading the report
+# in Chromium to the release build: Chromium runs none of recoup's code.
+SANITIZER = os.environ.get("RECOUP_SANITIZER_BUILD") == "1"
 failures = []
 passed = 0
 
@@ -123,7 +128,7 @@ def build_zoo(folder):
     jobs = [{"name": "p50", "student": "students/p50.onnx", "out": "recovered/p50.onnx"},
             {"name": "p70", "student": "students/p70.onnx", "out": "recovered/p70.onnx", "temperature": 2},
             # The long job: the one a kill interrupts.
-            {"name": "p90", "student": "students/p90.onnx", "out": "recovered/p90.onnx", "epochs": 30},
+            {"name": "p90", "student": "students/p90.onnx", "out": "recovered/p90.onnx", "epochs": 10 if SANITIZER else 30},
             {"name": "p60-broken", "student": "students/p60_corrupt.onnx", "out": "recovered/p60.onnx"},
             {"name": "p80", "student": "students/p80.onnx", "out": "recovered/p80.onnx", "optimizer": "sgd"},
             {"name": "p95", "student": "students/p95.onnx", "out": "recovered/p95.onnx", "lr": 0.001}]
@@ -348,7 +353,9 @@ links = re.findall(r'(?:src|href)\s*=', html)
 check("HTML has no script and fetches nothing", "<script" not in html.lower() and not links and "url(" not in html
       and not fetches, f"(script {'<script' in html.lower()}, src/href {links}, url( {'url(' in html}, addresses {fetches})")
 check("HTML carries the caution", "held-out data" in html, f"({len(html)} characters of HTML)")
-if not os.access(CHROMIUM, os.X_OK):
+if SANITIZER:
+    print("Chromium's checks of the page run in the release build")
+elif not os.access(CHROMIUM, os.X_OK):
     check("chromium installed (scripts/setup.sh installs Debian's chromium)", False, f"({CHROMIUM} is not executable)")
 else:
     def chromium(extra):

@@ -30,7 +30,7 @@ import time
 
 import numpy as np
 
-from e2e import SCALE, TEST_IMAGES, Run
+from e2e import SCALE, TEST_IMAGES, TRAIN_IMAGES, Run
 
 RECOUP, PADDED, SRC, WORK = sys.argv[1:5]
 if not os.path.exists(TEST_IMAGES):
@@ -135,8 +135,8 @@ with np.load(copy_a) as z:
     members = {k: (z[k].dtype.str, z[k].shape) for k in z.files}
 documented = {"format", "version", "fingerprint", "position", "data_order", "learning_rate", "rollbacks", "stopped",
               "best", "history", "trace", "snapshots", "arrays"}
-check("header: format recoup-checkpoint, version 4, the documented keys",
-      h["format"] == "recoup-checkpoint" and h["version"] == 4 and set(h) == documented,
+check("header: format recoup-checkpoint, version 5, the documented keys",
+      h["format"] == "recoup-checkpoint" and h["version"] == 5 and set(h) == documented,
       f"(format {h['format']}, version {h['version']}, keys {sorted(set(h) ^ documented)} differ)")
 check("header: a 16-hex-digit fingerprint and the data order's seed", re.fullmatch(r"[0-9a-f]{16}", h["fingerprint"])
       is not None and h["data_order"] == {"generator": "pcg32", "seed": "7", "stream": h["position"]["epoch"]},
@@ -184,7 +184,7 @@ def rewrite(src, dst, change=None):
         arrays = {a["name"]: np.asarray(z[a["name"]], dtype="<f4") for a in h["arrays"]}
     pos, lr, tr = h["position"], h["learning_rate"], h["trace"]
     doc = {
-        "version": 4,
+        "version": 5,
         "format": "recoup-checkpoint",
         "fingerprint": h["fingerprint"],
         "position": {"step": pos["step"], "epoch": pos["epoch"], "batch": pos["batch"],
@@ -244,7 +244,7 @@ with open(text, "w") as f:
     f.write("step 10\n")
 refused("a file that is no archive is refused", text, "not an .npz archive")
 refused("a newer format version is refused", variant("v99", lambda d, a: d.update(version=99)),
-        "format version 99; this recoup reads version 4")
+        "format version 99; this recoup reads version 5")
 refused("another format's header is refused", variant("other", lambda d, a: d.update(format="weights")),
         "not a recoup checkpoint")
 refused("a checkpoint of another run (fingerprint) is refused",
@@ -263,5 +263,56 @@ data[at] ^= 0x40
 with open(damaged, "wb") as f:
     f.write(bytes(data))
 refused("a checkpoint with one flipped bit in an array is refused (CRC-32)", damaged, "param.moment1")
+
+
+# 6. Training data above 8 MiB is fingerprinted by its size and a sample of
+#    its bytes (so a run's start does not read a large file whole): the same
+#    file resumes, one with a changed byte inside the sampled first MiB or
+#    with a row fewer is another run. 12,000 Fashion-MNIST training images as
+#    uint8 (9.4 MB); --val-data keeps every row in training.
+with gzip.open(TRAIN_IMAGES, "rb") as f:
+    train_raw = f.read(16 + 12000 * 784)
+big = np.frombuffer(train_raw, dtype=np.uint8, offset=16).reshape(-1, 1, 28, 28)
+BIG = os.path.join(WORK, "big.npy")
+np.save(BIG, big)
+changed = big.copy()
+changed[100, 0, 14, 14] ^= 0x01  # row 100 starts 78,400 bytes in: inside the first MiB
+np.save(os.path.join(WORK, "big_changed.npy"), changed)
+np.save(os.path.join(WORK, "big_shorter.npy"), big[:-1])
+
+
+BIG_STEPS = 16 if os.environ.get("RECOUP_SANITIZER_BUILD") == "1" else 40  # SIGTERM comes after step 2
+
+
+def big_args(data, out, extra=()):
+    return [RECOUP, "distill", "--teacher", DENSE, "--student", PRUNED, "--data", data, "--val-data", DATA,
+            "--scale", SCALE, "--steps", str(BIG_STEPS), "--seed", "7", "--threads", "2", "--checkpoint-every", "2",
+            "--out", out] + list(extra)
+
+
+big_out = os.path.join(WORK, "big.onnx")
+clean(big_out)
+p = subprocess.Popen(big_args(BIG, big_out), stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
+deadline = time.time() + 600
+while not os.path.exists(big_out + ".ckpt") and p.poll() is None and time.time() < deadline:
+    time.sleep(0.02)
+p.send_signal(signal.SIGTERM)
+p.communicate(timeout=600)
+big_ckpt = os.path.join(WORK, "big_saved.ckpt")
+have = os.path.exists(big_out + ".ckpt")
+if have:
+    shutil.copyfile(big_out + ".ckpt", big_ckpt)
+check("a 9.4 MB training file: a checkpoint is written", have and not os.path.exists(big_out),
+      f"(status {p.returncode}, checkpoint {have})")
+for name, data in (("a changed byte in its first MiB", "big_changed.npy"), ("a row fewer", "big_shorter.npy")):
+    never = os.path.join(WORK, "never_big.onnx")
+    r = subprocess.run(big_args(os.path.join(WORK, data), never, ["--resume", big_ckpt]), capture_output=True,
+                       text=True, timeout=600)
+    check(f"the 9.4 MB training file with {name}: refused as another run",
+          r.returncode == 1 and "checkpoint of a different run" in r.stderr and not os.path.exists(never),
+          f"(status {r.returncode}: {r.stderr.strip()[-200:]})")
+r = subprocess.run(big_args(BIG, big_out, ["--resume", big_ckpt]), capture_output=True, text=True, timeout=600)
+check("the same 9.4 MB training file resumes", r.returncode == 0 and os.path.exists(big_out),
+      f"(status {r.returncode}: {r.stderr.strip()[-200:]})")
 
 run.finish()

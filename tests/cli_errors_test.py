@@ -193,6 +193,17 @@ expect_error("dense labels for the training samples only: names --val-labels",
              base + ["--data", w("x.npy"), "--val-data", w("x.npy"), "--output-loss", "logits=kd", "--labels",
                      w("classes.npy"), "--out", out],
              "--val-labels: dense labels of the training samples but none of the validation samples", absent=out)
+# eval's per-output messages: the library names the part (terms, dense
+# labels) that failed, the command puts the option it came from in front.
+expect_error("eval --output-loss on an output the model lacks: names --output-loss",
+             ["eval", dense, "--data", w("x.npy"), "--labels", w("classes.npy"), "--output-loss", "scores=kd"],
+             ("--output-loss: output term on 'scores'", "has no such output"))
+expect_error("eval dense labels without a kd term: names --labels",
+             ["eval", dense, "--data", w("x.npy"), "--labels", w("classes.npy"), "--output-loss", "logits=mse"],
+             "--labels: dense labels need a kd output term")
+expect_error("eval dense labels of the wrong count: names --labels and the file",
+             ["eval", dense, "--data", w("x.npy"), "--labels", w("labels_short.npy"), "--output-loss", "logits=kd"],
+             ("--labels: ", "labels_short.npy"))
 expect_error("--labels folders on a list file names the option",
              ["eval", img_dense, "--data", w("pngs.txt"), "--labels", "folders"],
              f"--labels folders: {w('pngs.txt')}: labels from folders need a folder of images")

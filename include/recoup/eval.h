@@ -25,6 +25,18 @@ typedef struct rc_metrics {
   double value_mad;      /* mean absolute difference of value outputs to the reference */
 } rc_metrics;
 
+/* What a failed per-output evaluation (rc_eval_run) or rc_output_set_load
+ * was checking or reading, so that a caller can say where it took that part
+ * from (a command line: which option). */
+typedef enum rc_output_part {
+  RC_OUTPUT_PART_NONE = 0,    /* no failure, or one of the model or data itself */
+  RC_OUTPUT_PART_TERMS,       /* a term against the model's outputs */
+  RC_OUTPUT_PART_TARGETS,     /* targets of the training samples */
+  RC_OUTPUT_PART_VAL_TARGETS, /* targets of the validation samples */
+  RC_OUTPUT_PART_LABELS,      /* dense labels of the training samples */
+  RC_OUTPUT_PART_VAL_LABELS   /* dense labels of the validation samples */
+} rc_output_part;
+
 /* Most output terms per-output evaluation takes. */
 #define RC_EVAL_OUTPUTS_MAX 16
 
@@ -51,9 +63,6 @@ typedef struct rc_eval_settings {
   const rc_array *dense_labels;
   const char *dense_labels_name;
   int32_t ignore_label;
-  /* How messages call the terms and the labels (a command-line tool: its
-   * option names); NULL: "output terms", "dense labels". */
-  const char *terms_label, *labels_label;
 } rc_eval_settings;
 
 /* Segmentation data sets commonly mark unlabelled positions with 255. */
@@ -68,6 +77,7 @@ typedef struct rc_eval_result {
   int n_outputs;
   const char **names;    /* keep_outputs: output names (point into the model) */
   rc_tensor *outputs;    /* keep_outputs: (N, ...) per output, data owned by the result */
+  rc_output_part failed; /* when per-output evaluation failed: the terms, the labels or neither */
 } rc_eval_result;
 
 /* Run m over every sample of d in d's current order. With labels in d the

@@ -72,18 +72,6 @@ typedef struct rc_output_side {
 /* Segmentation datasets commonly mark unlabelled pixels with 255. */
 #define RC_OUTPUT_DEFAULT_IGNORE 255
 
-/* What a failed rc_output_set_load was checking or reading, so that a
- * caller can say where it took that part from (a command line: which
- * option). */
-typedef enum rc_output_part {
-  RC_OUTPUT_PART_NONE = 0,    /* no failure, or one of the model itself */
-  RC_OUTPUT_PART_TERMS,       /* a term against the model's outputs */
-  RC_OUTPUT_PART_TARGETS,     /* targets of the training samples */
-  RC_OUTPUT_PART_VAL_TARGETS, /* targets of the validation samples */
-  RC_OUTPUT_PART_LABELS,      /* dense labels of the training samples */
-  RC_OUTPUT_PART_VAL_LABELS   /* dense labels of the validation samples */
-} rc_output_part;
-
 /* A run's per-output terms and the side data read for them. Fill with
  * rc_output_set_init, add terms and targets, then rc_output_set_load. */
 typedef struct rc_output_set {

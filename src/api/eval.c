@@ -102,7 +102,7 @@ static rc_status eval_both(rc_eval_result *res, eval_run *r, eval_run *rr, rc_mo
   RC_TRY(eval_run_model(r, m, d, batch, e));
   res->classes = classes_of(r, m);
   if (s->per_output || s->n_output_terms > 0) {
-    RC_TRY(rc__eval_outputs(&res->metrics, m, ref, d, batch, s, e));
+    RC_TRY(rc__eval_outputs(&res->metrics, m, ref, d, batch, s, &res->failed, e));
   } else if (d->labels || ref) {
     RC_TRY(need_logits(r, m, e));
     const float *ref_logits = NULL;
@@ -133,7 +133,11 @@ rc_status rc_eval_run(rc_eval_result *res, rc_model *m, rc_model *ref, const rc_
   rc_status st = eval_both(res, &r, &rr, m, ref, d, s, e);
   eval_run_free(&r);
   eval_run_free(&rr);
-  if (st != RC_OK) rc_eval_result_free(res);
+  if (st != RC_OK) {
+    rc_output_part failed = res->failed;
+    rc_eval_result_free(res);
+    res->failed = failed;
+  }
   return st;
 }
 

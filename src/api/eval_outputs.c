@@ -74,8 +74,6 @@ rc_status rc_eval_dense_labels(rc_array *out, const rc_array *raw, const char *n
   return s;
 }
 
-static const char *or_default(const char *label, const char *dflt) { return label ? label : dflt; }
-
 static int find_output(const rc_graph *g, const char *name) {
   for (int j = 0; j < g->n_outputs; j++)
     if (!strcmp(g->values[g->outputs[j]].name, name)) return g->outputs[j];
@@ -83,8 +81,7 @@ static int find_output(const rc_graph *g, const char *name) {
 }
 
 /* The default terms: kd over axis 1 of every float output of rank >= 3. */
-static rc_status default_terms(rc_output_loss *specs, int *n, rc_plan *p, const rc_model *m, const char *terms,
-                               rc_err *e) {
+static rc_status default_terms(rc_output_loss *specs, int *n, rc_plan *p, const rc_model *m, rc_err *e) {
   const rc_graph *g = &m->graph;
   for (int j = 0; j < g->n_outputs && *n < RC_OUTPUTS_MAX; j++) {
     const rc_tensor *t = rc_plan_tensor(p, g->outputs[j]);
@@ -96,8 +93,8 @@ static rc_status default_terms(rc_output_loss *specs, int *n, rc_plan *p, const 
     (*n)++;
   }
   if (!*n)
-    return rc__fail(e, RC_ERR_INVALID, "%s: no float output of rank 3 or more; name outputs with %s", m->path,
-                    terms);
+    return rc__fail(e, RC_ERR_INVALID, "%s: no float output of rank 3 or more; name the outputs with output terms",
+                    m->path);
   return RC_OK;
 }
 
@@ -105,16 +102,16 @@ static rc_status default_terms(rc_output_loss *specs, int *n, rc_plan *p, const 
  * terms that need targets become mse (evaluation has no targets). */
 static rc_status terms_of(rc_output_loss *specs, int *n, rc_plan *p, const rc_model *m, const rc_eval_settings *s,
                           rc_err *e) {
-  const char *terms = or_default(s->terms_label, "output terms");
   *n = 0;
   if (s->n_output_terms > RC_OUTPUTS_MAX)
-    return rc__fail(e, RC_ERR_INVALID, "at most %d %s, got %d", RC_OUTPUTS_MAX, terms, s->n_output_terms);
+    return rc__fail(e, RC_ERR_INVALID, "at most %d output terms, got %d", RC_OUTPUTS_MAX, s->n_output_terms);
   for (int i = 0; i < s->n_output_terms; i++) RC_TRY(rc_output_loss_parse(&specs[(*n)++], s->output_terms[i], e));
-  if (!*n) RC_TRY(default_terms(specs, n, p, m, terms, e));
+  if (!*n) RC_TRY(default_terms(specs, n, p, m, e));
   for (int i = 0; i < *n; i++) {
     if (rc_out_term_needs_targets(specs[i].term)) specs[i].term = RC_OUT_MSE;
     int v = find_output(&m->graph, specs[i].output);
-    if (v < 0) return rc__fail(e, RC_ERR_INVALID, "%s: %s has no output '%s'", terms, m->path, specs[i].output);
+    if (v < 0)
+      return rc__fail(e, RC_ERR_INVALID, "output term on '%s': %s has no such output", specs[i].output, m->path);
     const rc_tensor *t = rc_plan_tensor(p, v);
     rc_output_loss r = specs[i];
     RC_TRY(rc_output_loss_resolve(&r, t->dims, t->rank, 1.0f, e));
@@ -132,15 +129,14 @@ static rc_status labels_of(rc_array *out, char *label_output, size_t cap, const 
     rc_output_loss r = specs[i];
     RC_TRY(rc_output_loss_resolve(&r, t->dims, t->rank, 1.0f, e));
     snprintf(label_output, cap, "%s", r.output);
-    return rc_eval_dense_labels(out, s->dense_labels, or_default(s->dense_labels_name, "dense labels"),
+    return rc_eval_dense_labels(out, s->dense_labels, s->dense_labels_name ? s->dense_labels_name : "dense labels",
                                 d->inputs[0].dims[0], t->dims, t->rank, r.axis, s->ignore_label, e);
   }
-  return rc__fail(e, RC_ERR_INVALID, "%s with %s: dense labels need a kd term on the output they label",
-                  or_default(s->labels_label, "dense labels"), or_default(s->terms_label, "output terms"));
+  return rc__fail(e, RC_ERR_INVALID, "dense labels need a kd output term on the output they label");
 }
 
 rc_status rc__eval_outputs(rc_metrics *m, rc_model *model, rc_model *ref, const rc_dataset *d, int64_t batch,
-                           const rc_eval_settings *s, rc_err *e) {
+                           const rc_eval_settings *s, rc_output_part *failed, rc_err *e) {
   rc_tensor shapes[RC_DATASET_MAX_INPUTS];
   rc__eval_batch_shapes(shapes, d, batch);
   rc_plan *pm = NULL, *pr = NULL;
@@ -154,10 +150,12 @@ rc_status rc__eval_outputs(rc_metrics *m, rc_model *model, rc_model *ref, const 
   side.ignore = s->ignore_label;
   rc_status st = rc_plan_init(&pm, &model->graph, shapes, NULL, e);
   if (st == RC_OK && ref) st = rc_plan_init(&pr, &ref->graph, shapes, NULL, e);
-  if (st == RC_OK) st = terms_of(specs, &n, pm, model, s, e);
-  if (st == RC_OK && s->dense_labels &&
-      (st = labels_of(&labels, label_output, sizeof label_output, specs, n, pm, model, d, s, e)) == RC_OK)
-    side.labels = labels.t.data;
+  if (st == RC_OK && (st = terms_of(specs, &n, pm, model, s, e)) != RC_OK) *failed = RC_OUTPUT_PART_TERMS;
+  if (st == RC_OK && s->dense_labels) {
+    st = labels_of(&labels, label_output, sizeof label_output, specs, n, pm, model, d, s, e);
+    if (st == RC_OK) side.labels = labels.t.data;
+    else *failed = RC_OUTPUT_PART_LABELS;
+  }
   if (st == RC_OK)
     st = rc__outputs_create(&bound, specs, n, 1.0f, pr ? pr : pm, pm, label_output[0] ? label_output : NULL, e);
   if (st == RC_OK) st = rc__outputs_validate(bound, pr ? pr : pm, pm, d, &side, d->index, m, e);

@@ -11,9 +11,10 @@
 void rc__eval_batch_shapes(rc_tensor *shapes, const rc_dataset *d, int64_t batch);
 
 /* The per-output metrics of model against ref (NULL: itself) over every
- * sample of d, as rc_eval_settings describes them. */
+ * sample of d, as rc_eval_settings describes them. On failure *failed says
+ * whether the terms or the dense labels were at fault (else it is left). */
 rc_status rc__eval_outputs(rc_metrics *m, rc_model *model, rc_model *ref, const rc_dataset *d, int64_t batch,
-                           const rc_eval_settings *s, rc_err *e);
+                           const rc_eval_settings *s, rc_output_part *failed, rc_err *e);
 
 /* The output's per-sample shape (dims without the batch axis and without
  * skip_axis, -1: none), as a float tensor for checks and messages. */

@@ -42,8 +42,12 @@ rc_status cli_outputs_load(cli_outputs *o, rc_model *m, const cli_samples *train
   cli_samples_shapes(train, 1, shapes);
   rc_status s = rc_output_set_load(o, m, shapes, train->n_inputs, train->n, labels_path, val ? val->n : -1,
                                    val_labels_path, side, val_side, e);
-  if (s != RC_OK && PART_OPTION[o->failed]) cli_option_context(e, PART_OPTION[o->failed]);
+  if (s != RC_OK) cli_outputs_part_context(e, o->failed);
   return s;
+}
+
+void cli_outputs_part_context(rc_err *e, rc_output_part part) {
+  if (PART_OPTION[part]) cli_option_context(e, PART_OPTION[part]);
 }
 
 /* "-" where a figure does not apply (NaN: no output of that kind). */

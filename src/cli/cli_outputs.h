@@ -26,6 +26,10 @@ rc_status cli_outputs_load(cli_outputs *o, rc_model *m, const cli_samples *train
                            const cli_samples *val, const char *val_labels_path, rc_output_side *side,
                            rc_output_side *val_side, rc_err *e);
 
+/* When a library call failed on one part of the per-output data (`part`),
+ * the option that part came from in front of e's message. */
+void cli_outputs_part_context(rc_err *e, rc_output_part part);
+
 /* Validation figures of a per-output run (rc_metrics.outputs): a table with
  * one row per model, and the same as JSON members of o. */
 struct cJSON;

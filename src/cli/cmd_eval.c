@@ -235,9 +235,8 @@ static rc_status eval_per_output(rc_eval_result *r, const eval_args *a, rc_model
   es.dense_labels = a->data.labels ? &labels : NULL;
   es.dense_labels_name = a->data.labels;
   es.ignore_label = (int32_t)a->ignore;
-  es.terms_label = "--output-loss";
-  es.labels_label = "--labels";
   rc_status st = rc_eval_run(r, model, ref, d, &es, e);
+  if (st != RC_OK) cli_outputs_part_context(e, r->failed);
   rc_array_free(&labels);
   return st;
 }

@@ -24,8 +24,10 @@
  * were raw images of in-memory structs ("recoup-ckpt-v1/v2" magic); version
  * 3 had the same fields but a run fingerprint that did not cover the
  * teacher's weights and the training data (the teacher's outputs were then
- * all computed before training and hashed instead). */
-#define RC_CKPT_VERSION 4
+ * all computed before training and hashed instead); version 4 hashed every
+ * byte of the training data, where 5 hashes each array's size and, above
+ * 8 MiB, a sample of its bytes. */
+#define RC_CKPT_VERSION 5
 
 /* Everything the loop needs to continue exactly where it stopped. */
 typedef struct loop_state {
