@@ -87,7 +87,7 @@ static int node_is_foldable(const rc_plan *p, const rc_node *n, const unsigned c
 }
 
 static rc_status run_folded(rc_plan *p, const rc_node *n, rc_tensor **in, rc_tensor **out, rc_err *e) {
-  rc_kernel k = {n, n->params, n->n_in, n->n_out, in, out, NULL, NULL, NULL, NULL, 0, 0, NULL, NULL};
+  rc_kernel k = {n, n->params, n->n_in, n->n_out, in, out, NULL, NULL, NULL, NULL, 0, 0, NULL, NULL, NULL};
   size_t ws = n->def->workspace ? n->def->workspace(&k, 0) : 0;
   size_t sv = n->def->saved ? n->def->saved(&k) : 0;
   if (ws > p->max_bytes || sv > p->max_bytes - ws)
