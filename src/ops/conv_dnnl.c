@@ -268,6 +268,7 @@ static dnnl_conv *conv_for(struct rc_op_state *state, dnnl_conv *local, const rc
     if (!state->data) {
       state->data = rc__calloc(1, sizeof(dnnl_conv));
       state->release = state_release;
+      state->out_of_memory |= !state->data; /* kept: a later call may succeed */
     }
     c = state->data;
     if (!c) return NULL;

@@ -29,10 +29,13 @@ typedef struct rc_op_reduce {
 /* Memory a kernel keeps across calls for one node and shape, owned by the
  * plan (a compute library's prepared primitives, say): data starts NULL,
  * the kernel fills it on first use and sets release, which the plan calls
- * when it is freed. */
+ * when it is freed. A kernel that could not allocate it sets out_of_memory
+ * (workspace callbacks cannot return a status); the plan then fails with
+ * RC_ERR_NOMEM rather than run a slower path unnoticed. */
 typedef struct rc_op_state {
   void *data;
   void (*release)(void *data);
+  int out_of_memory;
 } rc_op_state;
 
 /* What a kernel sees for one node of one plan. Shapes are concrete. */

@@ -309,6 +309,10 @@ static rc_status layout_memory(rc_plan *p, const rc_plan_opts *o, rc_err *e) {
     size_t w1 = d->workspace && p->steps[s].wants_backward ? d->workspace(k, 1) : 0;
     if (w0 > work) work = w0;
     if (w1 > work) work = w1;
+    if (p->steps[s].state.out_of_memory) {
+      rc__free(sl);
+      return rc__fail(e, RC_ERR_NOMEM, "node '%s' (%s): out of memory", k->node->label, k->node->op_type);
+    }
   }
   work = round_up(work);
   size_t total = act + extra + grads + saved + work + ALIGN;
