@@ -43,8 +43,16 @@ def draw(gen, *shape):
 
 
 def mask_of(gen, w, pruned, empty_row=None):
-    """pruned: fraction pruned at random, or "2:4"."""
-    if pruned == "2:4":
+    """pruned: fraction pruned at random, "2:4" (groups of consecutive
+    weights), or (n, m): n kept of every m input channels (axis 1) at each
+    kernel cell, as `recoup prune --pattern n:m` groups them."""
+    if isinstance(pruned, tuple):
+        n, m = pruned
+        groups = w.reshape(w.shape[0], w.shape[1] // m, m, -1).abs()
+        keep = torch.zeros_like(groups)
+        keep.scatter_(2, groups.topk(n, dim=2).indices, 1.0)
+        keep = keep.reshape(w.shape)
+    elif pruned == "2:4":
         groups = w.reshape(-1, 4).abs()
         keep = torch.zeros_like(groups)
         keep.scatter_(1, groups.topk(2, dim=1).indices, 1.0)
@@ -94,6 +102,15 @@ def main():
     # MatMul with a shared (K, N) weight; b is unused by the op (kept for a uniform layout).
     case(out, gen, "mm", lambda a, w, b: torch.matmul(a, w) + 0 * b.sum(),
          draw(gen, 2, 3, 16), draw(gen, 16, 7), draw(gen, 1), "2:4")
+    # N:M along input channels (the N:M Conv kernels take these).
+    case(out, gen, "n3", lambda x, w, b: F.conv2d(x, w, b, padding=1),
+         draw(gen, 2, 8, 9, 11), draw(gen, 12, 8, 3, 3), draw(gen, 12), (2, 4))
+    case(out, gen, "ns", lambda x, w, b: F.conv2d(x, w, b, stride=(2, 1), padding=(1, 0), dilation=(1, 2)),
+         draw(gen, 1, 8, 11, 12), draw(gen, 6, 8, 3, 2), draw(gen, 6), (2, 4))
+    case(out, gen, "n1", lambda x, w, b: F.conv2d(x, w, b),
+         draw(gen, 3, 16, 9, 8), draw(gen, 10, 16, 1, 1), draw(gen, 10), (2, 4))
+    case(out, gen, "nd", lambda x, w, b: F.conv1d(x, w, b, padding=1),
+         draw(gen, 2, 8, 70), draw(gen, 5, 8, 3), draw(gen, 5), (4, 8))
     out.close()
 
 

@@ -1,5 +1,6 @@
 /* The sparse kernels of Conv, Gemm and MatMul (src/ops/sparse_conv.c,
- * sparse_gemm.c) against PyTorch (Debian python3-torch):
+ * sparse_gemm.c) and the N:M Conv kernels (nm_conv.c) against PyTorch
+ * (Debian python3-torch):
  * scripts/ref_ops_sparse.py prunes each case's weight with a mask, computes
  * torch's output and autograd gradients in float64 and writes them into the
  * build folder (the ctest fixture ops_sparse_ref); here the same inputs run
@@ -15,6 +16,7 @@
 #define _POSIX_C_SOURCE 200112L
 #include <stdlib.h>
 
+#include "ops/nm.h"
 #include "ops/sparse.h"
 #include "ops_check.h"
 #include "ref_arrays.h"
@@ -69,7 +71,8 @@ static long kept_only(float *out, const float *a, const float *mask, int64_t n) 
   return k;
 }
 
-static void one_case(const ref_case *rc) {
+/* with_nm: the N:M format is attached too (and must be made). */
+static void one_case(const ref_case *rc, int with_nm) {
   const int64_t nx = numel(rc->x, rc->x_rank), nw = numel(rc->w, rc->w_rank);
   const float *x = arr(rc, "x", nx), *w = arr(rc, "w", nw), *b = arr(rc, "b", rc->c), *mask = arr(rc, "mask", nw);
   if (!x || !w || !b || !mask) return;
@@ -84,6 +87,10 @@ static void one_case(const ref_case *rc) {
   rc__wpattern pat;
   rc_err e = {0};
   CHECK_STATUS(rc__wpattern_build(&pat, &c.arena, keep, rc->w[0], nw / rc->w[0], &e), RC_OK);
+  if (with_nm) {
+    CHECK_STATUS(rc__nm_attach(&pat, &c.arena, keep, nw / (rc->w[0] * rc->w[1]), &e), RC_OK);
+    CHECK(pat.nm != NULL);
+  }
   c.pattern = &pat;
   if (run_ok(&c)) {
     const int64_t ny = rc_tensor_numel(&c.out_t[0]);
@@ -135,15 +142,45 @@ static void sparse_matches_torch(void) {
   };
   for (size_t i = 0; i < sizeof cases / sizeof cases[0]; i++) {
     const int before = test_failed_checks_;
-    one_case(&cases[i]);
+    one_case(&cases[i], 0);
     if (test_failed_checks_ != before) fprintf(stderr, "FAIL case %s\n", cases[i].name);
   }
+}
+
+/* N:M masks along input channels (2:4, and 4:8 for the 1-D case) through
+ * the N:M kernels (RECOUP_CONV_PATH=nm-on): 3x3 with padding and a map
+ * of 99 cells (a 64-column strip and a tail), strides and dilation at
+ * batch 1, a 1x1 convolution read in place, and 1-D. */
+/* F.conv2d(stride=(2,1), padding=(1,0), dilation=(1,2)) */
+static void a_ns(oh_case *c) {
+  oh_attr_ints(c, "strides", 2, (int64_t[]){2, 1});
+  oh_attr_ints(c, "pads", 4, (int64_t[]){1, 0, 1, 0});
+  oh_attr_ints(c, "dilations", 2, (int64_t[]){1, 2});
+}
+/* F.conv1d(padding=1) */
+static void a_nd(oh_case *c) { oh_attr_ints(c, "pads", 2, (int64_t[]){1, 1}); }
+
+static void nm_matches_torch(void) {
+  const ref_case cases[] = {
+      {"n3", "Conv", 4, 4, 1, {2, 8, 9, 11}, {12, 8, 3, 3}, 12, a_c3},
+      {"ns", "Conv", 4, 4, 1, {1, 8, 11, 12}, {6, 8, 3, 2}, 6, a_ns},
+      {"n1", "Conv", 4, 4, 1, {3, 16, 9, 8}, {10, 16, 1, 1}, 10, a_none},
+      {"nd", "Conv", 3, 3, 1, {2, 8, 70}, {5, 8, 3}, 5, a_nd},
+  };
+  setenv("RECOUP_CONV_PATH", "nm-on", 1);
+  for (size_t i = 0; i < sizeof cases / sizeof cases[0]; i++) {
+    const int before = test_failed_checks_;
+    one_case(&cases[i], 1);
+    if (test_failed_checks_ != before) fprintf(stderr, "FAIL case %s\n", cases[i].name);
+  }
+  setenv("RECOUP_CONV_PATH", "sparse", 1);
 }
 
 int main(void) {
   if (!ref_load("ops_sparse_ref", "ops_sparse_ref_data")) return 1;
   setenv("RECOUP_CONV_PATH", "sparse", 1);
   RUN(sparse_matches_torch);
+  RUN(nm_matches_torch);
   ref_free();
   return TEST_REPORT();
 }

@@ -411,6 +411,18 @@ static const rc__wpattern *sparse_of(const rc_kernel *k, const rc__conv_geom *g)
   return rc__sparse_conv_fits(g, p) ? p : NULL;
 }
 
+/* The N:M pattern when the N:M kernels serve this Conv (nm_conv.c) and
+ * T threads' workspace fits; T is then set. */
+static const rc__wpattern *nm_of(const rc_kernel *k, const rc__conv_geom *g, int backward, int *T) {
+  const rc__sparse_mode mode = rc__nm_choice();
+  const rc__wpattern *p = k->pattern;
+  if (mode == RC_SPARSE_NEVER || !rc__nm_conv_fits(g, p) || (mode == RC_SPARSE_AUTO && !rc__nm_conv_pays(g)))
+    return NULL;
+  const size_t per = rc__nm_conv_thread_floats(g, backward);
+  *T = sample_threads(k, g, per);
+  return k->work_bytes >= sizeof(float) * per ? p : NULL;
+}
+
 /* Samples per GEMM for the chunked path, or 1 for the per-sample path. */
 static int64_t chunk_of(const rc_kernel *k, const rc__conv_geom *g, int backward) {
   if (rc__conv_reference()) return 1;
@@ -529,6 +541,11 @@ rc_status rc__conv_forward_epilogue(const rc_kernel *k, const rc__epilogue *ep, 
     epilogue_pass(ep, &g, y);
     return RC_OK;
   }
+  int nm_threads = 1;
+  if ((sp = nm_of(k, &g, 0, &nm_threads))) {
+    rc__nm_conv_forward(&g, sp, nm_threads, y, x, w, b, k->work, ep);
+    return RC_OK;
+  }
   if (depthwise_direct(k, &g, 0)) {
     rc__depthwise_forward(&g, y, x, w, b, k->work, k->work_bytes, ep);
     return RC_OK;
@@ -621,6 +638,11 @@ static void conv_backward(const rc_kernel *k) {
   const rc__wpattern *sp = sparse_of(k, &g);
   if (sp) {
     rc__sparse_conv_backward(&g, sp, cg.dx, cg.dw, cg.x, cg.w, cg.dy);
+    return;
+  }
+  int nm_threads = 1;
+  if ((sp = nm_of(k, &g, 1, &nm_threads))) {
+    rc__nm_conv_backward(&g, sp, nm_threads, cg.dx, cg.dw, cg.x, cg.w, cg.dy, k->work);
     return;
   }
   if (depthwise_direct(k, &g, 1)) {

@@ -112,6 +112,23 @@ void rc__sparse_conv_forward(const rc__conv_geom *g, const struct rc__wpattern *
 /* dx += input gradient, dw += weight gradient at kept positions only (either may be NULL). */
 void rc__sparse_conv_backward(const rc__conv_geom *g, const struct rc__wpattern *p, float *dx, float *dw,
                               const float *x, const float *w, const float *dy);
+/* ---- nm_conv.c: N:M-patterned weights (nm.h) ---- */
+
+/* Non-zero when p has N:M structure (p->nm) matching this Conv (one group,
+ * not depthwise, shaped as W); whether it runs is nm_conv_chosen's rule. */
+int rc__nm_conv_fits(const rc__conv_geom *g, const struct rc__wpattern *p);
+/* Non-zero where the N:M kernels beat the path that would otherwise run. */
+int rc__nm_conv_pays(const rc__conv_geom *g);
+/* Floats of workspace per thread (a column matrix; for backward also a
+ * weight gradient). */
+size_t rc__nm_conv_thread_floats(const rc__conv_geom *g, int backward);
+/* y = b + W . x, samples split among `threads`; ep (or NULL) runs per sample. */
+void rc__nm_conv_forward(const rc__conv_geom *g, const struct rc__wpattern *p, int threads, float *y,
+                         const float *x, const float *w, const float *b, float *work,
+                         const struct rc__epilogue *ep);
+/* dx += input gradient, dw += weight gradient at kept positions only (either may be NULL). */
+void rc__nm_conv_backward(const rc__conv_geom *g, const struct rc__wpattern *p, int threads, float *dx, float *dw,
+                          const float *x, const float *w, const float *dy, float *work);
 /* ---- conv_dnnl.c: oneDNN's convolutions (RECOUP_HAVE_DNNL) ---- */
 
 struct rc_op_state;

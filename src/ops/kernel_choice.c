@@ -31,19 +31,22 @@ typedef struct conv_path_row {
   rc__conv_path path;     /* RC_CONV_PATH_DEFAULT: oneDNN where built in */
   rc__sparse_mode sparse; /* sparse kernels for patterned weights */
   int fuse;               /* chains as one step */
+  rc__sparse_mode nm;     /* N:M kernels (nm.h) for N:M-patterned weights */
 } conv_path_row;
 
 #define RC_CONV_PATH_DEFAULT ((rc__conv_path)-1)
 
 static const conv_path_row k_conv_paths[] = {
-    {"builtin", RC_CONV_PATH_BUILTIN, RC_SPARSE_AUTO, 1},
-    {"reference", RC_CONV_PATH_REFERENCE, RC_SPARSE_NEVER, 0},
-    {"dnnl", RC_CONV_PATH_DNNL, RC_SPARSE_AUTO, 1},
-    {"dense", RC_CONV_PATH_DEFAULT, RC_SPARSE_NEVER, 1},
-    {"sparse", RC_CONV_PATH_DEFAULT, RC_SPARSE_ALWAYS, 1},
-    {"unfused", RC_CONV_PATH_DEFAULT, RC_SPARSE_AUTO, 0},
+    {"builtin", RC_CONV_PATH_BUILTIN, RC_SPARSE_AUTO, 1, RC_SPARSE_AUTO},
+    {"reference", RC_CONV_PATH_REFERENCE, RC_SPARSE_NEVER, 0, RC_SPARSE_NEVER},
+    {"dnnl", RC_CONV_PATH_DNNL, RC_SPARSE_AUTO, 1, RC_SPARSE_AUTO},
+    {"dense", RC_CONV_PATH_DEFAULT, RC_SPARSE_NEVER, 1, RC_SPARSE_NEVER},
+    {"sparse", RC_CONV_PATH_DEFAULT, RC_SPARSE_ALWAYS, 1, RC_SPARSE_AUTO},
+    {"unfused", RC_CONV_PATH_DEFAULT, RC_SPARSE_AUTO, 0, RC_SPARSE_AUTO},
+    {"nm-off", RC_CONV_PATH_DEFAULT, RC_SPARSE_AUTO, 1, RC_SPARSE_NEVER},
+    {"nm-on", RC_CONV_PATH_DEFAULT, RC_SPARSE_AUTO, 1, RC_SPARSE_ALWAYS},
 };
-static const conv_path_row k_conv_default = {NULL, RC_CONV_PATH_DEFAULT, RC_SPARSE_AUTO, 1};
+static const conv_path_row k_conv_default = {NULL, RC_CONV_PATH_DEFAULT, RC_SPARSE_AUTO, 1, RC_SPARSE_AUTO};
 
 static const conv_path_row *conv_path_row_chosen(void) {
   const char *value = getenv("RECOUP_CONV_PATH");
@@ -69,5 +72,7 @@ rc__conv_path rc__conv_path_choice(void) {
 int rc__conv_reference(void) { return rc__conv_path_choice() == RC_CONV_PATH_REFERENCE; }
 
 rc__sparse_mode rc__sparse_choice(void) { return conv_path_row_chosen()->sparse; }
+
+rc__sparse_mode rc__nm_choice(void) { return conv_path_row_chosen()->nm; }
 
 int rc__conv_fuse(void) { return conv_path_row_chosen()->fuse; }

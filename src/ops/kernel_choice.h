@@ -28,8 +28,8 @@ typedef enum rc__conv_path {
 } rc__conv_path;
 
 /* The path RECOUP_CONV_PATH names ("builtin", "reference", "dnnl"), or
- * the default (also for "dense", "sparse", "unfused", which choose only
- * the two switches below): oneDNN where built in, else the built-in path.
+ * the default (also for "dense", "sparse", "unfused", "nm-off", "nm-on",
+ * which choose only the switches below): oneDNN where built in, else the built-in path.
  * "dnnl" without the library built in gives the built-in path. */
 rc__conv_path rc__conv_path_choice(void);
 
@@ -41,6 +41,10 @@ int rc__conv_reference(void);
  * (RECOUP_CONV_PATH "reference" or "dense") or at any density ("sparse"). */
 typedef enum rc__sparse_mode { RC_SPARSE_AUTO = 0, RC_SPARSE_NEVER = 1, RC_SPARSE_ALWAYS = 2 } rc__sparse_mode;
 rc__sparse_mode rc__sparse_choice(void);
+/* When the N:M kernels (nm.h) run for a weight with N:M structure: where
+ * they were measured to pay (the default), never ("nm-off", "dense",
+ * "reference") or wherever they fit ("nm-on"). */
+rc__sparse_mode rc__nm_choice(void);
 /* Non-zero when plans may run a Conv with its following frozen
  * BatchNormalization and Relu/Clip as one step (ops/epilogue.h): not when
  * RECOUP_CONV_PATH is "reference" or "unfused" (fast Conv paths, separate

@@ -27,6 +27,7 @@ typedef struct rc__wpattern {
   const int64_t *start; /* rows + 1 offsets into col */
   const int32_t *col;   /* kept columns of each row, ascending */
   double density;       /* nnz / (rows * cols) */
+  const struct rc__nm *nm; /* N:M structure (nm.h), or NULL */
 } rc__wpattern;
 
 /* Pattern of keep (rows * cols bytes, non-zero = kept), arrays in arena a. */

@@ -28,6 +28,7 @@ rc_status rc__wpattern_build(rc__wpattern *p, rc_arena *a, const uint8_t *keep, 
   p->start = start;
   p->col = col;
   p->density = (double)nnz / ((double)rows * (double)cols);
+  p->nm = NULL;
   return RC_OK;
 }
 

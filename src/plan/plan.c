@@ -9,6 +9,7 @@
 #include "core/alloc.h"
 #include "core/arena.h"
 #include "ops/kernel_choice.h"
+#include "ops/nm.h"
 #include "ops/sparse.h"
 #include "plan/fuse.h"
 
@@ -498,7 +499,8 @@ rc_status rc_plan_set_weight_pattern(rc_plan *p, int value, const uint8_t *keep,
     if (!pat) {
       pat = rc__arena_zalloc(&p->meta, sizeof *pat);
       if (!pat) return rc__fail(e, RC_ERR_NOMEM, "%s: out of memory for a weight pattern", g->path);
-      if (rc__wpattern_build(pat, &p->meta, keep, t->dims[0], rc_tensor_numel(t) / t->dims[0], e) != RC_OK)
+      if (rc__wpattern_build(pat, &p->meta, keep, t->dims[0], rc_tensor_numel(t) / t->dims[0], e) != RC_OK ||
+          rc__nm_attach(pat, &p->meta, keep, rc_tensor_numel(t) / (t->dims[0] * t->dims[1]), e) != RC_OK)
         return rc__wrap(e, "%s: value %d", g->path, value);
     }
     p->steps[s].k.pattern = pat;

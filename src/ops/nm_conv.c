@@ -1,0 +1,124 @@
+/* Conv of an N:M-patterned weight (nm.h) on recoup's per-sample path: each
+ * thread takes whole samples, unfolds one (a 1x1, stride-1, unpadded
+ * convolution reads x itself) and runs the strip kernels in place of the
+ * three GEMMs: y_n = W . col, dcol = W^T . dy_n (folded back onto dx_n) and
+ * dW += dy_n . col^T at kept positions. The workspace is the per-sample
+ * path's own (conv.c): a column matrix per thread and, for backward, a
+ * private weight gradient per thread, added in thread order afterwards at
+ * kept positions only, so results are the same bits for a thread count
+ * and frozen positions of dW are never written. */
+#include <omp.h>
+#include <string.h>
+
+#include "ops/conv_impl.h"
+#include "ops/epilogue.h"
+#include "ops/nm.h"
+#include "ops/sparse.h"
+
+int rc__nm_conv_fits(const rc__conv_geom *g, const rc__wpattern *p) {
+  return p && p->nm && g->G == 1 && !rc__conv_depthwise(g) && p->rows == g->M && p->cols == g->Cg * g->K &&
+         p->nm->cells == g->K;
+}
+
+static size_t col_floats(const rc__conv_geom *g) { return g->direct ? 0 : (size_t)(g->C * g->K) * (size_t)g->out_sp; }
+
+size_t rc__nm_conv_thread_floats(const rc__conv_geom *g, int backward) {
+  return col_floats(g) + (backward ? (size_t)g->M * (size_t)(g->Cg * g->K) : 0);
+}
+
+/* y_n (M, P) = b + W . col(x_n). */
+static void forward_sample(const rc__conv_geom *g, const rc__wpattern *p, float *yn, const float *xn,
+                           const float *w, const float *b, float *col) {
+  const int64_t P = g->out_sp;
+  const float *src = xn;
+  if (!g->direct) {
+    rc__unfold(col, P, xn, &g->p, g->C);
+    src = col;
+  }
+  if (b)
+    for (int64_t m = 0; m < g->M; m++)
+      for (int64_t i = 0; i < P; i++) yn[m * P + i] = b[m];
+  rc__nm_gather(p->start, p->col, 0, g->M, w, p->cols, 1, src, P, yn, P, P, b != NULL);
+}
+
+void rc__nm_conv_forward(const rc__conv_geom *g, const rc__wpattern *p, int threads, float *y, const float *x,
+                         const float *w, const float *b, float *work, const rc__epilogue *ep) {
+  const size_t per = rc__nm_conv_thread_floats(g, 0);
+  const int64_t P = g->out_sp;
+#pragma omp parallel for num_threads(threads) schedule(static) if (threads > 1)
+  for (int64_t n = 0; n < g->N; n++) {
+    forward_sample(g, p, y + n * g->M * P, x + n * g->C * g->in_sp, w, b,
+                   work + (size_t)omp_get_thread_num() * per);
+    if (ep) rc__epilogue_apply(ep, y, n * g->M, (n + 1) * g->M, g->M, P); /* rows still in cache */
+  }
+}
+
+/* Sample n (unfolded): dw += dy_n . col(x_n)^T at kept positions; dx_n += fold(W^T . dy_n). */
+static void backward_sample(const rc__conv_geom *g, const rc__wpattern *p, int64_t n, float *dx, float *dw,
+                            const float *x, const float *w, const float *dy, float *col) {
+  const int64_t P = g->out_sp, CK = g->Cg * g->K;
+  const float *dyn = dy + n * g->M * P;
+  if (dw) {
+    rc__unfold(col, P, x + n * g->C * g->in_sp, &g->p, g->C);
+    rc__nm_wgrad(p, 0, g->M, dw, dyn, P, 0, col, P, 0, P, 1);
+  }
+  if (!dx) return;
+  float *dxn = dx + n * g->C * g->in_sp;
+  rc__nm_gather(p->nm->cstart, p->nm->crow, 0, CK, w, 1, CK, dyn, P, col, P, P, 0);
+  rc__fold_add(dxn, col, P, &g->p, g->C);
+}
+
+/* A 1x1 convolution read in place needs no column matrix: threads split the
+ * weight's rows for dW (each kept weight summed over the whole batch, so
+ * the bits do not depend on the thread count) and the samples for dx. */
+static void backward_direct(const rc__conv_geom *g, const rc__wpattern *p, int threads, float *dx, float *dw,
+                            const float *x, const float *w, const float *dy) {
+  const int64_t P = g->out_sp, C = g->C;
+#pragma omp parallel num_threads(threads) if (threads > 1)
+  {
+    if (dw) {
+#pragma omp for schedule(static) nowait
+      for (int64_t r = 0; r < g->M; r++) rc__nm_wgrad(p, r, r + 1, dw, dy, P, g->M * P, x, P, C * P, P, g->N);
+    }
+    if (dx) {
+#pragma omp for schedule(static)
+      for (int64_t n = 0; n < g->N; n++)
+        rc__nm_gather(p->nm->cstart, p->nm->crow, 0, C, w, 1, C, dy + n * g->M * P, P, dx + n * C * P, P, P, 1);
+    }
+  }
+}
+
+void rc__nm_conv_backward(const rc__conv_geom *g, const rc__wpattern *p, int threads, float *dx, float *dw,
+                          const float *x, const float *w, const float *dy, float *work) {
+  if (g->direct) {
+    backward_direct(g, p, threads, dx, dw, x, w, dy);
+    return;
+  }
+  const size_t per = rc__nm_conv_thread_floats(g, 1), col = col_floats(g);
+  if (threads <= 1) {
+    for (int64_t n = 0; n < g->N; n++) backward_sample(g, p, n, dx, dw, x, w, dy, work);
+    return;
+  }
+#pragma omp parallel num_threads(threads)
+  {
+    float *mine = work + (size_t)omp_get_thread_num() * per, *part = dw ? mine + col : NULL;
+    if (part)
+      for (int64_t r = 0; r < p->rows; r++)
+        for (int64_t e = p->start[r]; e < p->start[r + 1]; e++) part[r * p->cols + p->col[e]] = 0.0f;
+#pragma omp for schedule(static)
+    for (int64_t n = 0; n < g->N; n++) backward_sample(g, p, n, dx, part, x, w, dy, mine);
+  }
+  if (dw)
+    for (int t = 0; t < threads; t++) {
+      const float *part = work + (size_t)t * per + col;
+      for (int64_t r = 0; r < p->rows; r++)
+        for (int64_t e = p->start[r]; e < p->start[r + 1]; e++) dw[r * p->cols + p->col[e]] += part[r * p->cols + p->col[e]];
+    }
+}
+
+/* Not yet measured against the other paths: only RECOUP_CONV_PATH=nm-on
+ * runs the N:M kernels. */
+int rc__nm_conv_pays(const rc__conv_geom *g) {
+  (void)g;
+  return 0;
+}
