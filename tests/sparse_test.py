@@ -1,7 +1,9 @@
 """Sparse students end to end: a 95%-pruned student of the bundled garment
 classifier (Fashion-MNIST, Xiao, Rasul and Vollgraf 2017; Debian package
 dataset-fashion-mnist) distilled with the sparse kernels forced on
-(RECOUP_CONV_PATH=sparse) and forced off (=dense) recovers the same
+(RECOUP_CONV_PATH=sparse) and forced off (=dense) or, with the argument
+"2:4", a 2:4 student (`prune --pattern 2:4`) with the N:M kernels forced on
+(=nm-on) and off (=nm-off), recovers the same
 accuracy within float tolerance (the kernels add in another order, so the
 trained weights differ in their last bits; we allow 0.002, 20 of the
 10,000 test images), keeps every pruned zero, and two runs with the same
@@ -9,7 +11,7 @@ seed and threads write byte-identical files. Like the property runs of
 distill_test.py it trains on the 10,000 test images to stay short: the
 figures compare two runs with each other, they are no recovery claim.
 
-Usage: sparse_test.py RECOUP SOURCE_DIR WORK_DIR"""
+Usage: sparse_test.py RECOUP SOURCE_DIR WORK_DIR [2:4]"""
 import hashlib
 import os
 import sys
@@ -21,6 +23,10 @@ from onnx import numpy_helper
 from e2e import SCALE, TEST_IMAGES, Run, require_data
 
 RECOUP, SRC, WORK = sys.argv[1:4]
+NM = sys.argv[4:5] == ["2:4"]
+# (label, RECOUP_CONV_PATH) of the run with the kernels on and off; how the student is pruned
+ON, OFF = (("nm", "nm-on"), ("dense", "nm-off")) if NM else (("sparse", "sparse"), ("dense", "dense"))
+PRUNE = ["--pattern", "2:4"] if NM else ["--sparsity", "0.95"]
 os.makedirs(WORK, exist_ok=True)
 require_data(TEST_IMAGES)
 DENSE = os.path.join(SRC, "models", "garment_dense.onnx")
@@ -54,20 +60,21 @@ def distill(mode, out):
     return time.monotonic() - start
 
 
-student = os.path.join(WORK, "pruned95.onnx")
-run(["prune", DENSE, "--out", student, "--sparsity", "0.95", "--json"])
+student = os.path.join(WORK, "pruned_2of4.onnx" if NM else "pruned95.onnx")
+run(["prune", DENSE, "--out", student] + PRUNE + ["--json"])
 before = zeros(student)
-outs = {m: os.path.join(WORK, f"recovered_{m}.onnx") for m in ("sparse", "sparse_again", "dense")}
-secs = {m: distill("dense" if m == "dense" else "sparse", outs[m]) for m in outs}
+on, off = ON[0], OFF[0]
+modes = {on: ON[1], on + "_again": ON[1], off: OFF[1]}
+outs = {m: os.path.join(WORK, f"recovered_{m}.onnx") for m in modes}
+secs = {m: distill(modes[m], outs[m]) for m in outs}
 print("whole command, seconds (one run each, not a benchmark): " +
       ", ".join(f"{m} {s:.1f}" for m, s in secs.items()))
 
-acc = {m: run.test_accuracy(outs[m]) for m in ("sparse", "dense")}
-check("sparse and dense kernels recover the same accuracy within 0.002",
-      abs(acc["sparse"] - acc["dense"]) <= 0.002, f"(sparse {acc['sparse']:.4f}, dense {acc['dense']:.4f})")
-check("same seed and threads with sparse kernels: byte-identical files",
-      digest(outs["sparse"]) == digest(outs["sparse_again"]))
-for m in ("sparse", "dense"):
+acc = {m: run.test_accuracy(outs[m]) for m in (on, off)}
+check(f"{on} and {off} kernels recover the same accuracy within 0.002",
+      abs(acc[on] - acc[off]) <= 0.002, f"({on} {acc[on]:.4f}, {off} {acc[off]:.4f})")
+check(f"same seed and threads with {on} kernels: byte-identical files", digest(outs[on]) == digest(outs[on + "_again"]))
+for m in (on, off):
     after = zeros(outs[m])
     kept = all(after[k] >= v for k, v in before.items())
     check(f"{m} kernels: every pruned zero is still zero", kept,

@@ -416,7 +416,8 @@ static const rc__wpattern *sparse_of(const rc_kernel *k, const rc__conv_geom *g)
 static const rc__wpattern *nm_of(const rc_kernel *k, const rc__conv_geom *g, int backward, int *T) {
   const rc__sparse_mode mode = rc__nm_choice();
   const rc__wpattern *p = k->pattern;
-  if (mode == RC_SPARSE_NEVER || !rc__nm_conv_fits(g, p) || (mode == RC_SPARSE_AUTO && !rc__nm_conv_pays(g)))
+  if (mode == RC_SPARSE_NEVER || !rc__nm_conv_fits(g, p) ||
+      (mode == RC_SPARSE_AUTO && !rc__nm_conv_pays(g, backward, dnnl_chosen(g))))
     return NULL;
   const size_t per = rc__nm_conv_thread_floats(g, backward);
   *T = sample_threads(k, g, per);

@@ -117,8 +117,9 @@ void rc__sparse_conv_backward(const rc__conv_geom *g, const struct rc__wpattern 
 /* Non-zero when p has N:M structure (p->nm) matching this Conv (one group,
  * not depthwise, shaped as W); whether it runs is nm_conv_chosen's rule. */
 int rc__nm_conv_fits(const rc__conv_geom *g, const struct rc__wpattern *p);
-/* Non-zero where the N:M kernels beat the path that would otherwise run. */
-int rc__nm_conv_pays(const rc__conv_geom *g);
+/* Non-zero where the N:M kernels beat the path that would otherwise run
+ * for forward or backward (dnnl: oneDNN would take this Conv). */
+int rc__nm_conv_pays(const rc__conv_geom *g, int backward, int dnnl);
 /* Floats of workspace per thread (a column matrix; for backward also a
  * weight gradient). */
 size_t rc__nm_conv_thread_floats(const rc__conv_geom *g, int backward);

@@ -68,22 +68,35 @@ static void backward_sample(const rc__conv_geom *g, const rc__wpattern *p, int64
   rc__fold_add(dxn, col, P, &g->p, g->C);
 }
 
+/* Samples whose weight-gradient sums are kept in lanes before they are
+ * added to dW: as many as fill about 4096 columns, while that block of x
+ * stays within 256 KiB (the core's cache). */
+static int64_t wgrad_block(const rc__conv_geom *g) {
+  int64_t b = (4096 + g->out_sp - 1) / g->out_sp;
+  const int64_t fit = (int64_t)((256 << 10) / (sizeof(float) * (size_t)(g->C * g->out_sp)));
+  if (b > fit) b = fit;
+  return b < 1 ? 1 : b;
+}
+
 /* A 1x1 convolution read in place needs no column matrix: threads split the
- * weight's rows for dW (each kept weight summed over the whole batch, so
- * the bits do not depend on the thread count) and the samples for dx. */
+ * weight's rows for dW (each kept weight summed over a block of samples in
+ * lanes, blocks added in order, so the bits do not depend on the thread
+ * count) and the samples for dx. */
 static void backward_direct(const rc__conv_geom *g, const rc__wpattern *p, int threads, float *dx, float *dw,
                             const float *x, const float *w, const float *dy) {
-  const int64_t P = g->out_sp, C = g->C;
+  const int64_t P = g->out_sp, C = g->C, M = g->M, B = wgrad_block(g);
 #pragma omp parallel num_threads(threads) if (threads > 1)
   {
-    if (dw) {
-#pragma omp for schedule(static) nowait
-      for (int64_t r = 0; r < g->M; r++) rc__nm_wgrad(p, r, r + 1, dw, dy, P, g->M * P, x, P, C * P, P, g->N);
+    for (int64_t n0 = 0; dw && n0 < g->N; n0 += B) {
+      const int64_t cnt = g->N - n0 < B ? g->N - n0 : B;
+#pragma omp for schedule(static)
+      for (int64_t r = 0; r < M; r++)
+        rc__nm_wgrad(p, r, r + 1, dw, dy + n0 * M * P, P, M * P, x + n0 * C * P, P, C * P, P, cnt);
     }
     if (dx) {
 #pragma omp for schedule(static)
       for (int64_t n = 0; n < g->N; n++)
-        rc__nm_gather(p->nm->cstart, p->nm->crow, 0, C, w, 1, C, dy + n * g->M * P, P, dx + n * C * P, P, P, 1);
+        rc__nm_gather(p->nm->cstart, p->nm->crow, 0, C, w, 1, C, dy + n * M * P, P, dx + n * C * P, P, P, 1);
     }
   }
 }
@@ -116,9 +129,24 @@ void rc__nm_conv_backward(const rc__conv_geom *g, const rc__wpattern *p, int thr
     }
 }
 
-/* Not yet measured against the other paths: only RECOUP_CONV_PATH=nm-on
- * runs the N:M kernels. */
-int rc__nm_conv_pays(const rc__conv_geom *g) {
-  (void)g;
-  return 0;
+/* Where the N:M kernels run by default: CPU time of one layer's forward
+ * and backward (min of 9, one thread, batch 64, a 2:4 weight, on the
+ * shared 2-core machine; ratio = N:M / the path that would otherwise run).
+ * Forward: 1x1 layers with 64 or more output cells, 0.45 to 0.80 (16->96
+ * on 32x32 0.65, 96->24 on 16x16 0.80, 144->32 on 8x8 0.45, stride-2
+ * 16->32 and 32->64 0.80 and 0.61), but 1.2 to 1.3 on 4x4 maps; 3x3 layers
+ * only against recoup's own GEMMs (0.60 for 64->64 on 8x8, 0.75 and 0.90
+ * with 32 input channels, 0.99 and 1.25 with 16), never against oneDNN
+ * (2.0 to 2.8 times its time). Backward: 1x1 layers read in place that
+ * narrow or keep their channels, 0.83 to 0.88 (96->24 on 16x16, 144->32 on
+ * 8x8, 96->16 on 32x32), but 1.39 for 16->96 on 32x32, 1.8 to 1.9 on 4x4
+ * maps, 0.95 to 1.9 for 3x3 and 2.0 to 4.5 against oneDNN. */
+#define NM_MIN_CELLS 64
+#define NM_MIN_CHANNELS_3X3 32
+
+int rc__nm_conv_pays(const rc__conv_geom *g, int backward, int dnnl) {
+  if (g->out_sp < NM_MIN_CELLS) return 0;
+  if (backward) return g->direct && g->C >= g->M;
+  if (g->K == 1) return 1;
+  return !dnnl && g->C >= NM_MIN_CHANNELS_3X3;
 }

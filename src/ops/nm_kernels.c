@@ -44,10 +44,10 @@ static float lane_total(float *lane) {
 
 /* Adds columns [j0, j1) to the weight gradient's lanes one at a time
  * (lane = column mod LANES counted from 0). */
-static inline void wgrad_cols(float lanes[GROUP][LANES], int cnt, const float *u, const float *const *v, int64_t j0,
-                       int64_t j1) {
+static inline void wgrad_cols(float lanes[GROUP][LANES], int cnt, const float *u, const float *const *v, int64_t o,
+                              int64_t j0, int64_t j1) {
   for (int64_t j = j0; j < j1; j++)
-    for (int q = 0; q < cnt; q++) lanes[q][j % LANES] = fmaf(u[j], v[q][j], lanes[q][j % LANES]);
+    for (int q = 0; q < cnt; q++) lanes[q][j % LANES] = fmaf(u[j], v[q][o + j], lanes[q][j % LANES]);
 }
 
 #ifdef NM_X86
@@ -79,45 +79,57 @@ static inline void wgrad_cols(float lanes[GROUP][LANES], int cnt, const float *u
     for (int64_t r = r0; r < r1; r++) {                                                                              \
       const float *wr = w + r * wrow;                                                                                \
       float *o = out + (r - r0) * ldo + full;                                                                        \
-      VT acc[NV];                                                                                                    \
-      for (int v = 0; v < nv; v++)                                                                                   \
-        acc[v] = !accumulate ? ZERO() : v < nv - 1 ? LOADU(o + v * VW) : MLOAD(o + v * VW, mask);                    \
-      for (int64_t e = start[r]; e < start[r + 1]; e++) {                                                            \
-        const VT wv = SET1(wr[idx[e] * wstep]);                                                                      \
-        const float *s = src + idx[e] * lds + full;                                                                  \
-        for (int v = 0; v < nv - 1; v++) acc[v] = FMA(wv, LOADU(s + v * VW), acc[v]);                               \
-        acc[nv - 1] = FMA(wv, MLOAD(s + (nv - 1) * VW, mask), acc[nv - 1]);                                          \
+      /* one register at a time: a loop over a run-time count kept sums in memory */                                 \
+      for (int v = 0; v < nv - 1; v++) {                                                                             \
+        VT acc = accumulate ? LOADU(o + v * VW) : ZERO();                                                            \
+        for (int64_t e = start[r]; e < start[r + 1]; e++)                                                            \
+          acc = FMA(SET1(wr[idx[e] * wstep]), LOADU(src + idx[e] * lds + full + v * VW), acc);                       \
+        STOREU(o + v * VW, acc);                                                                                     \
       }                                                                                                              \
-      for (int v = 0; v < nv - 1; v++) STOREU(o + v * VW, acc[v]);                                                   \
-      MSTORE(o + (nv - 1) * VW, mask, acc[nv - 1]);                                                                  \
+      const int64_t last = (nv - 1) * VW;                                                                            \
+      VT acc = accumulate ? MLOAD(o + last, mask) : ZERO();                                                          \
+      for (int64_t e = start[r]; e < start[r + 1]; e++)                                                              \
+        acc = FMA(SET1(wr[idx[e] * wstep]), MLOAD(src + idx[e] * lds + full + last, mask), acc);                     \
+      MSTORE(o + last, mask, acc);                                                                                   \
     }                                                                                                                \
   }
 
-/* Adds to the weight-gradient lanes of up to GROUP entries, full LANES
- * blocks in registers, the rest one column at a time. */
+/* Adds to the weight-gradient lanes of up to GROUP entries over S samples
+ * (u and the v[q] step by us and vs), full LANES blocks in registers, the
+ * rest one column at a time. */
 #define NM_WGRAD(isa, attr, VT, VW, LOADU, STOREU, FMA)                                                         \
-  static attr void wgrad_lanes_##isa(float lanes[GROUP][LANES], int cnt, const float *u, const float *const *v, \
-                                     int64_t L) {                                                               \
+  static attr void wgrad_lanes_##isa(float lanes[GROUP][LANES], int cnt, const float *u, int64_t us,            \
+                                     const float *const *v, int64_t vs, int64_t L, int64_t S) {                 \
     enum { NV = LANES / VW };                                                                                   \
     VT acc[GROUP][NV];                                                                                          \
     for (int q = 0; q < cnt; q++)                                                                               \
       for (int k = 0; k < NV; k++) acc[q][k] = LOADU(lanes[q] + k * VW);                                        \
     const int64_t full = L - L % LANES;                                                                         \
-    if (cnt == GROUP)                                                                                           \
-      for (int64_t j = 0; j < full; j += LANES)                                                                 \
-        for (int k = 0; k < NV; k++) {                                                                          \
-          const VT uu = LOADU(u + j + k * VW);                                                                  \
-          for (int q = 0; q < GROUP; q++) acc[q][k] = FMA(uu, LOADU(v[q] + j + k * VW), acc[q][k]);             \
-        }                                                                                                       \
-    else                                                                                                        \
-      for (int64_t j = 0; j < full; j += LANES)                                                                 \
-        for (int k = 0; k < NV; k++) {                                                                          \
-          const VT uu = LOADU(u + j + k * VW);                                                                  \
-          for (int q = 0; q < cnt; q++) acc[q][k] = FMA(uu, LOADU(v[q] + j + k * VW), acc[q][k]);               \
-        }                                                                                                       \
+    for (int64_t i = 0; i < S; i++) {                                                                           \
+      const float *ui = u + i * us;                                                                             \
+      const int64_t o = i * vs;                                                                                 \
+      if (cnt == GROUP)                                                                                         \
+        for (int64_t j = 0; j < full; j += LANES)                                                               \
+          for (int k = 0; k < NV; k++) {                                                                        \
+            const VT uu = LOADU(ui + j + k * VW);                                                               \
+            for (int q = 0; q < GROUP; q++) acc[q][k] = FMA(uu, LOADU(v[q] + o + j + k * VW), acc[q][k]);      \
+          }                                                                                                     \
+      else                                                                                                      \
+        for (int64_t j = 0; j < full; j += LANES)                                                               \
+          for (int k = 0; k < NV; k++) {                                                                        \
+            const VT uu = LOADU(ui + j + k * VW);                                                               \
+            for (int q = 0; q < cnt; q++) acc[q][k] = FMA(uu, LOADU(v[q] + o + j + k * VW), acc[q][k]);        \
+          }                                                                                                     \
+      if (full < L) {                                                                                           \
+        for (int q = 0; q < cnt; q++)                                                                           \
+          for (int k = 0; k < NV; k++) STOREU(lanes[q] + k * VW, acc[q][k]);                                    \
+        wgrad_cols(lanes, cnt, ui, v, o, full, L);                                                              \
+        for (int q = 0; q < cnt; q++)                                                                           \
+          for (int k = 0; k < NV; k++) acc[q][k] = LOADU(lanes[q] + k * VW);                                    \
+      }                                                                                                         \
+    }                                                                                                           \
     for (int q = 0; q < cnt; q++)                                                                               \
       for (int k = 0; k < NV; k++) STOREU(lanes[q] + k * VW, acc[q][k]);                                        \
-    wgrad_cols(lanes, cnt, u, v, full, L);                                                                      \
   }
 
 #define AVX512_ATTR __attribute__((target("avx512f")))
@@ -143,9 +155,9 @@ static void gather_base(const int64_t *start, const int32_t *idx, int64_t r0, in
     gather_cols(start, idx, w + r * wrow, wstep, r, src, lds, out + (r - r0) * ldo, 0, L, accumulate);
 }
 
-static void wgrad_lanes_base(float lanes[GROUP][LANES], int cnt, const float *u, const float *const *v,
-                             int64_t L) {
-  wgrad_cols(lanes, cnt, u, v, 0, L);
+static void wgrad_lanes_base(float lanes[GROUP][LANES], int cnt, const float *u, int64_t us, const float *const *v,
+                             int64_t vs, int64_t L, int64_t S) {
+  for (int64_t i = 0; i < S; i++) wgrad_cols(lanes, cnt, u + i * us, v, i * vs, 0, L);
 }
 
 void rc__nm_gather(const int64_t *start, const int32_t *idx, int64_t r0, int64_t r1, const float *w, int64_t wrow,
@@ -164,8 +176,8 @@ void rc__nm_gather(const int64_t *start, const int32_t *idx, int64_t r0, int64_t
   gather_base(start, idx, r0, r1, w, wrow, wstep, src, lds, out, ldo, L, accumulate);
 }
 
-typedef void (*wgrad_lanes_fn)(float lanes[GROUP][LANES], int cnt, const float *u, const float *const *v,
-                               int64_t L);
+typedef void (*wgrad_lanes_fn)(float lanes[GROUP][LANES], int cnt, const float *u, int64_t us,
+                               const float *const *v, int64_t vs, int64_t L, int64_t S);
 
 static wgrad_lanes_fn wgrad_lanes_for(rc__isa level) {
 #ifdef NM_X86
@@ -185,11 +197,9 @@ void rc__nm_wgrad(const rc__wpattern *p, int64_t r0, int64_t r1, float *dw, cons
       const int cnt = p->start[r + 1] - e < GROUP ? (int)(p->start[r + 1] - e) : GROUP;
       for (int q = 0; q < cnt; q++)
         for (int l = 0; l < LANES; l++) lanes[q][l] = 0.0f;
-      for (int64_t i = 0; i < S; i++) {
-        const float *vs_[GROUP];
-        for (int q = 0; q < cnt; q++) vs_[q] = v + i * vs + p->col[e + q] * ldv;
-        lanes_of(lanes, cnt, u + i * us + r * ldu, vs_, L);
-      }
+      const float *vq[GROUP];
+      for (int q = 0; q < cnt; q++) vq[q] = v + p->col[e + q] * ldv;
+      lanes_of(lanes, cnt, u + r * ldu, us, vq, vs, L, S);
       for (int q = 0; q < cnt; q++) dw[r * p->cols + p->col[e + q]] += lane_total(lanes[q]);
     }
 }
