@@ -115,4 +115,23 @@ static int run_and_keep(oh_case *c, int n_grads, run_out *r) {
   return 1;
 }
 
+/* One path's result against another's (got_name, want_name): prints
+ * both sides of the worst element and returns the number of elements off by
+ * more than tol * (1 + |want|); with keep, only kept positions count. */
+static int64_t compare_paths(const char *label, const char *what, const char *got_name, const char *want_name,
+                             const float *got, const float *want, int64_t n, double tol, const uint8_t *keep) {
+  int64_t bad = 0, worst_at = -1;
+  double worst = -1;
+  for (int64_t j = 0; j < n; j++) {
+    if (keep && !keep[j]) continue;
+    const double diff = fabs((double)got[j] - want[j]), lim = tol * (1 + fabs(want[j]));
+    if (!(diff <= lim)) bad++;
+    if (!(diff <= worst)) worst = diff, worst_at = j;
+  }
+  if (worst_at >= 0)
+    printf("%-30s %-5s worst at %6lld: %s %.9g, %s %.9g (|diff| %.3g, tolerance %.1e), %lld off\n", label, what,
+           (long long)worst_at, got_name, got[worst_at], want_name, want[worst_at], worst, tol, (long long)bad);
+  return bad;
+}
+
 #endif

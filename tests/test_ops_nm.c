@@ -105,23 +105,6 @@ static int run_op(const nm_case *sc, const float *w, const uint8_t *keep, int th
 
 static const char *const what[4] = {"y", "dX", "dW", "dB"};
 
-/* Prints both sides of the worst element; returns the number out of tolerance. */
-static int64_t compare(const char *label, int i, const float *got, const float *want, int64_t n, double tol,
-                       const uint8_t *keep) {
-  int64_t bad = 0, worst_at = -1;
-  double worst = -1;
-  for (int64_t j = 0; j < n; j++) {
-    if (keep && !keep[j]) continue;
-    const double diff = fabs((double)got[j] - want[j]), lim = tol * (1 + fabs(want[j]));
-    if (!(diff <= lim)) bad++;
-    if (!(diff <= worst)) worst = diff, worst_at = j;
-  }
-  if (worst_at >= 0)
-    printf("%-26s %-3s worst at %6lld: N:M %.9g, dense %.9g (|diff| %.3g, tolerance %.1e), %lld off\n", label,
-           what[i], (long long)worst_at, got[worst_at], want[worst_at], worst, tol, (long long)bad);
-  return bad;
-}
-
 /* expect_nm: an N:M format is made; serves: the N:M kernels then run. */
 static void one_case(const nm_case *sc, int expect_nm, int serves) {
   char label[96];
@@ -131,8 +114,10 @@ static void one_case(const nm_case *sc, int expect_nm, int serves) {
   float *w = malloc(sizeof(float) * (size_t)nw), *seed_dw = malloc(sizeof(float) * (size_t)nw);
   uint8_t *keep = malloc((size_t)nw);
   oh_fill(w, nw, 202);
-  if (channels % sc->keep_m == 0) nm_mask(w, keep, sc->cout, channels, cells, sc->keep_n, sc->keep_m);
-  else memset(keep, 1, (size_t)nw); /* the pruner leaves such a layer dense */
+  if (channels % sc->keep_m == 0)
+    nm_mask(w, keep, sc->cout, channels, cells, sc->keep_n, sc->keep_m);
+  else
+    memset(keep, 1, (size_t)nw); /* the pruner leaves such a layer dense */
   run_out dense, nm, nm1, isa[2];
   int has_nm = 0;
   setenv("RECOUP_CONV_PATH", "nm-on", 1);
@@ -142,16 +127,22 @@ static void one_case(const nm_case *sc, int expect_nm, int serves) {
   CHECK(run_op(sc, w, keep, 2, "avx2", &isa[0], NULL));
   CHECK(run_op(sc, w, keep, 2, "baseline", &isa[1], NULL));
   unsetenv("RECOUP_CONV_PATH");
-  printf("%-26s N:M format %s (expected %s)\n", label, has_nm ? "made" : "not made", expect_nm ? "made" : "not made");
+  printf("%-26s N:M format %s (expected %s)\n", label, has_nm ? "made" : "not made",
+         expect_nm ? "made" : "not made");
   CHECK_EQ(has_nm, expect_nm);
   oh_fill(seed_dw, nw, 506);
   for (int i = 0; i < 4; i++) {
     if (!dense.v[i]) continue;
     CHECK_EQ(nm.n[i], dense.n[i]);
-    CHECK_EQ(compare(label, i, nm.v[i], dense.v[i], dense.n[i], i ? 1e-4 : 1e-5, i == 2 ? keep : NULL), 0);
+    const double tol = i ? 1e-4 : 1e-5;
+    CHECK_EQ(
+        compare_paths(label, what[i], "N:M", "dense", nm.v[i], dense.v[i], dense.n[i], tol, i == 2 ? keep : NULL),
+        0);
     for (int j = 0; j < 2; j++) CHECK_MEM_EQ(isa[j].v[i], nm.v[i], sizeof(float) * (size_t)dense.n[i]);
-    if (i == 2) CHECK_EQ(compare(label, i, nm1.v[i], nm.v[i], dense.n[i], 1e-5, keep), 0);
-    else CHECK_MEM_EQ(nm1.v[i], nm.v[i], sizeof(float) * (size_t)dense.n[i]);
+    if (i == 2)
+      CHECK_EQ(compare_paths(label, what[i], "1 thread", "2 threads", nm1.v[i], nm.v[i], nm.n[i], 1e-5, keep), 0);
+    else
+      CHECK_MEM_EQ(nm1.v[i], nm.v[i], sizeof(float) * (size_t)dense.n[i]);
   }
   int64_t touched = 0, frozen = 0;
   for (int64_t j = 0; j < nw; j++)

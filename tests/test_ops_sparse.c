@@ -135,24 +135,6 @@ static int run_op(const sp_case *sc, const float *w, const uint8_t *keep, int th
 
 static const char *const what[4] = {"y", "dX", "dW", "dB/dC"};
 
-/* Prints both sides of the worst element; returns the number out of tolerance.
- * With keep, only kept positions are compared. */
-static int64_t compare(const char *label, int i, const float *got, const float *want, int64_t n, double tol,
-                       const uint8_t *keep) {
-  int64_t bad = 0, worst_at = -1;
-  double worst = -1;
-  for (int64_t j = 0; j < n; j++) {
-    if (keep && !keep[j]) continue;
-    const double diff = fabs((double)got[j] - want[j]), lim = tol * (1 + fabs(want[j]));
-    if (!(diff <= lim)) bad++;
-    if (!(diff <= worst)) worst = diff, worst_at = j;
-  }
-  if (worst_at >= 0)
-    printf("%-30s %-5s worst at %6lld: sparse %.9g, dense %.9g (|diff| %.3g, tolerance %.1e), %lld off\n", label,
-           what[i], (long long)worst_at, got[worst_at], want[worst_at], worst, tol, (long long)bad);
-  return bad;
-}
-
 static void one_case(const sp_case *sc, const prune_kind *pk) {
   char label[96];
   snprintf(label, sizeof label, "%s %s", sc->name, pk->name);
@@ -174,7 +156,10 @@ static void one_case(const sp_case *sc, const prune_kind *pk) {
   for (int i = 0; i < 4; i++) {
     if (!dense.v[i]) continue;
     CHECK_EQ(sparse.n[i], dense.n[i]);
-    CHECK_EQ(compare(label, i, sparse.v[i], dense.v[i], dense.n[i], i ? 1e-4 : 1e-5, i == 2 ? keep : NULL), 0);
+    const double tol = i ? 1e-4 : 1e-5;
+    CHECK_EQ(compare_paths(label, what[i], "sparse", "dense", sparse.v[i], dense.v[i], dense.n[i], tol,
+                           i == 2 ? keep : NULL),
+             0);
     /* The thread count changes no bit. */
     CHECK_MEM_EQ(sparse1.v[i], sparse.v[i], sizeof(float) * (size_t)dense.n[i]);
   }

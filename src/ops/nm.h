@@ -41,7 +41,8 @@ rc_status rc__nm_attach(struct rc__wpattern *p, rc_arena *a, const uint8_t *keep
  * transposed lists (wrow = 1, wstep = cols). Single-threaded; the
  * instruction set is chosen at run time (kernel_choice.h). */
 void rc__nm_gather(const int64_t *start, const int32_t *idx, int64_t r0, int64_t r1, const float *w, int64_t wrow,
-                   int64_t wstep, const float *src, int64_t lds, float *out, int64_t ldo, int64_t L, int accumulate);
+                   int64_t wstep, const float *src, int64_t lds, float *out, int64_t ldo, int64_t L,
+                   int accumulate);
 
 /* dw[r * cols + k] += sum over samples i < S and j < L of
  * u[i * us + r * ldu + j] * v[i * vs + k * ldv + j] for the kept k of rows

@@ -20,7 +20,9 @@ int rc__nm_conv_fits(const rc__conv_geom *g, const rc__wpattern *p) {
          p->nm->cells == g->K;
 }
 
-static size_t col_floats(const rc__conv_geom *g) { return g->direct ? 0 : (size_t)(g->C * g->K) * (size_t)g->out_sp; }
+static size_t col_floats(const rc__conv_geom *g) {
+  return g->direct ? 0 : (size_t)(g->C * g->K) * (size_t)g->out_sp;
+}
 
 size_t rc__nm_conv_thread_floats(const rc__conv_geom *g, int backward) {
   return col_floats(g) + (backward ? (size_t)g->M * (size_t)(g->Cg * g->K) : 0);
@@ -125,7 +127,8 @@ void rc__nm_conv_backward(const rc__conv_geom *g, const rc__wpattern *p, int thr
     for (int t = 0; t < threads; t++) {
       const float *part = work + (size_t)t * per + col;
       for (int64_t r = 0; r < p->rows; r++)
-        for (int64_t e = p->start[r]; e < p->start[r + 1]; e++) dw[r * p->cols + p->col[e]] += part[r * p->cols + p->col[e]];
+        for (int64_t e = p->start[r]; e < p->start[r + 1]; e++)
+          dw[r * p->cols + p->col[e]] += part[r * p->cols + p->col[e]];
     }
 }
 

@@ -27,7 +27,7 @@
 
 /* The baseline level: one column at a time, the same order of fused adds. */
 static inline void gather_cols(const int64_t *start, const int32_t *idx, const float *wr, int64_t wstep, int64_t r,
-                        const float *src, int64_t lds, float *o, int64_t j0, int64_t j1, int accumulate) {
+                               const float *src, int64_t lds, float *o, int64_t j0, int64_t j1, int accumulate) {
   for (int64_t j = j0; j < j1; j++) {
     float acc = accumulate ? o[j] : 0.0f;
     for (int64_t e = start[r]; e < start[r + 1]; e++) acc = fmaf(wr[idx[e] * wstep], src[idx[e] * lds + j], acc);
@@ -54,82 +54,82 @@ static inline void wgrad_cols(float lanes[GROUP][LANES], int cnt, const float *u
 /* Gather with VW-float registers of type VT: full strips with the count of
  * registers known at compile time, then the last strip with a masked last
  * register (MLOAD/MSTORE of the first `rem` lanes, MASK(rem) making the mask). */
-#define NM_GATHER(isa, attr, VT, VW, MT, LOADU, STOREU, SET1, FMA, ZERO, MASK, MLOAD, MSTORE)                       \
-  static attr void gather_##isa(const int64_t *start, const int32_t *idx, int64_t r0, int64_t r1, const float *w,    \
-                                int64_t wrow, int64_t wstep, const float *src, int64_t lds, float *out, int64_t ldo, \
-                                int64_t L, int accumulate) {                                                         \
-    enum { NV = STRIP / VW };                                                                                        \
-    const int64_t full = L - L % STRIP;                                                                              \
-    for (int64_t j0 = 0; j0 < full; j0 += STRIP)                                                                     \
-      for (int64_t r = r0; r < r1; r++) {                                                                            \
-        const float *wr = w + r * wrow;                                                                              \
-        float *o = out + (r - r0) * ldo + j0;                                                                        \
-        VT acc[NV];                                                                                                  \
-        for (int v = 0; v < NV; v++) acc[v] = accumulate ? LOADU(o + v * VW) : ZERO();                               \
-        for (int64_t e = start[r]; e < start[r + 1]; e++) {                                                          \
-          const VT wv = SET1(wr[idx[e] * wstep]);                                                                    \
-          const float *s = src + idx[e] * lds + j0;                                                                  \
-          for (int v = 0; v < NV; v++) acc[v] = FMA(wv, LOADU(s + v * VW), acc[v]);                                  \
-        }                                                                                                            \
-        for (int v = 0; v < NV; v++) STOREU(o + v * VW, acc[v]);                                                     \
-      }                                                                                                              \
-    if (full == L) return;                                                                                           \
-    const int rest = (int)(L - full), nv = (rest + VW - 1) / VW, rem = rest - (nv - 1) * VW;                         \
-    const MT mask = MASK(rem);                                                                                       \
-    for (int64_t r = r0; r < r1; r++) {                                                                              \
-      const float *wr = w + r * wrow;                                                                                \
-      float *o = out + (r - r0) * ldo + full;                                                                        \
-      /* one register at a time: a loop over a run-time count kept sums in memory */                                 \
-      for (int v = 0; v < nv - 1; v++) {                                                                             \
-        VT acc = accumulate ? LOADU(o + v * VW) : ZERO();                                                            \
-        for (int64_t e = start[r]; e < start[r + 1]; e++)                                                            \
-          acc = FMA(SET1(wr[idx[e] * wstep]), LOADU(src + idx[e] * lds + full + v * VW), acc);                       \
-        STOREU(o + v * VW, acc);                                                                                     \
-      }                                                                                                              \
-      const int64_t last = (nv - 1) * VW;                                                                            \
-      VT acc = accumulate ? MLOAD(o + last, mask) : ZERO();                                                          \
-      for (int64_t e = start[r]; e < start[r + 1]; e++)                                                              \
-        acc = FMA(SET1(wr[idx[e] * wstep]), MLOAD(src + idx[e] * lds + full + last, mask), acc);                     \
-      MSTORE(o + last, mask, acc);                                                                                   \
-    }                                                                                                                \
+#define NM_GATHER(isa, attr, VT, VW, MT, LOADU, STOREU, SET1, FMA, ZERO, MASK, MLOAD, MSTORE)                     \
+  static attr void gather_##isa(const int64_t *start, const int32_t *idx, int64_t r0, int64_t r1, const float *w, \
+                                int64_t wrow, int64_t wstep, const float *src, int64_t lds, float *out,           \
+                                int64_t ldo, int64_t L, int accumulate) {                                         \
+    enum { NV = STRIP / VW };                                                                                     \
+    const int64_t full = L - L % STRIP;                                                                           \
+    for (int64_t j0 = 0; j0 < full; j0 += STRIP)                                                                  \
+      for (int64_t r = r0; r < r1; r++) {                                                                         \
+        const float *wr = w + r * wrow;                                                                           \
+        float *o = out + (r - r0) * ldo + j0;                                                                     \
+        VT acc[NV];                                                                                               \
+        for (int v = 0; v < NV; v++) acc[v] = accumulate ? LOADU(o + v * VW) : ZERO();                            \
+        for (int64_t e = start[r]; e < start[r + 1]; e++) {                                                       \
+          const VT wv = SET1(wr[idx[e] * wstep]);                                                                 \
+          const float *s = src + idx[e] * lds + j0;                                                               \
+          for (int v = 0; v < NV; v++) acc[v] = FMA(wv, LOADU(s + v * VW), acc[v]);                               \
+        }                                                                                                         \
+        for (int v = 0; v < NV; v++) STOREU(o + v * VW, acc[v]);                                                  \
+      }                                                                                                           \
+    if (full == L) return;                                                                                        \
+    const int rest = (int)(L - full), nv = (rest + VW - 1) / VW, rem = rest - (nv - 1) * VW;                      \
+    const MT mask = MASK(rem);                                                                                    \
+    for (int64_t r = r0; r < r1; r++) {                                                                           \
+      const float *wr = w + r * wrow;                                                                             \
+      float *o = out + (r - r0) * ldo + full;                                                                     \
+      /* one register at a time: a loop over a run-time count kept sums in memory */                              \
+      for (int v = 0; v < nv - 1; v++) {                                                                          \
+        VT acc = accumulate ? LOADU(o + v * VW) : ZERO();                                                         \
+        for (int64_t e = start[r]; e < start[r + 1]; e++)                                                         \
+          acc = FMA(SET1(wr[idx[e] * wstep]), LOADU(src + idx[e] * lds + full + v * VW), acc);                    \
+        STOREU(o + v * VW, acc);                                                                                  \
+      }                                                                                                           \
+      const int64_t last = (nv - 1) * VW;                                                                         \
+      VT acc = accumulate ? MLOAD(o + last, mask) : ZERO();                                                       \
+      for (int64_t e = start[r]; e < start[r + 1]; e++)                                                           \
+        acc = FMA(SET1(wr[idx[e] * wstep]), MLOAD(src + idx[e] * lds + full + last, mask), acc);                  \
+      MSTORE(o + last, mask, acc);                                                                                \
+    }                                                                                                             \
   }
 
 /* Adds to the weight-gradient lanes of up to GROUP entries over S samples
  * (u and the v[q] step by us and vs), full LANES blocks in registers, the
  * rest one column at a time. */
-#define NM_WGRAD(isa, attr, VT, VW, LOADU, STOREU, FMA)                                                         \
-  static attr void wgrad_lanes_##isa(float lanes[GROUP][LANES], int cnt, const float *u, int64_t us,            \
-                                     const float *const *v, int64_t vs, int64_t L, int64_t S) {                 \
-    enum { NV = LANES / VW };                                                                                   \
-    VT acc[GROUP][NV];                                                                                          \
-    for (int q = 0; q < cnt; q++)                                                                               \
-      for (int k = 0; k < NV; k++) acc[q][k] = LOADU(lanes[q] + k * VW);                                        \
-    const int64_t full = L - L % LANES;                                                                         \
-    for (int64_t i = 0; i < S; i++) {                                                                           \
-      const float *ui = u + i * us;                                                                             \
-      const int64_t o = i * vs;                                                                                 \
-      if (cnt == GROUP)                                                                                         \
-        for (int64_t j = 0; j < full; j += LANES)                                                               \
-          for (int k = 0; k < NV; k++) {                                                                        \
-            const VT uu = LOADU(ui + j + k * VW);                                                               \
-            for (int q = 0; q < GROUP; q++) acc[q][k] = FMA(uu, LOADU(v[q] + o + j + k * VW), acc[q][k]);      \
-          }                                                                                                     \
-      else                                                                                                      \
-        for (int64_t j = 0; j < full; j += LANES)                                                               \
-          for (int k = 0; k < NV; k++) {                                                                        \
-            const VT uu = LOADU(ui + j + k * VW);                                                               \
-            for (int q = 0; q < cnt; q++) acc[q][k] = FMA(uu, LOADU(v[q] + o + j + k * VW), acc[q][k]);        \
-          }                                                                                                     \
-      if (full < L) {                                                                                           \
-        for (int q = 0; q < cnt; q++)                                                                           \
-          for (int k = 0; k < NV; k++) STOREU(lanes[q] + k * VW, acc[q][k]);                                    \
-        wgrad_cols(lanes, cnt, ui, v, o, full, L);                                                              \
-        for (int q = 0; q < cnt; q++)                                                                           \
-          for (int k = 0; k < NV; k++) acc[q][k] = LOADU(lanes[q] + k * VW);                                    \
-      }                                                                                                         \
-    }                                                                                                           \
-    for (int q = 0; q < cnt; q++)                                                                               \
-      for (int k = 0; k < NV; k++) STOREU(lanes[q] + k * VW, acc[q][k]);                                        \
+#define NM_WGRAD(isa, attr, VT, VW, LOADU, STOREU, FMA)                                                   \
+  static attr void wgrad_lanes_##isa(float lanes[GROUP][LANES], int cnt, const float *u, int64_t us,      \
+                                     const float *const *v, int64_t vs, int64_t L, int64_t S) {           \
+    enum { NV = LANES / VW };                                                                             \
+    VT acc[GROUP][NV];                                                                                    \
+    for (int q = 0; q < cnt; q++)                                                                         \
+      for (int k = 0; k < NV; k++) acc[q][k] = LOADU(lanes[q] + k * VW);                                  \
+    const int64_t full = L - L % LANES;                                                                   \
+    for (int64_t i = 0; i < S; i++) {                                                                     \
+      const float *ui = u + i * us;                                                                       \
+      const int64_t o = i * vs;                                                                           \
+      if (cnt == GROUP)                                                                                   \
+        for (int64_t j = 0; j < full; j += LANES)                                                         \
+          for (int k = 0; k < NV; k++) {                                                                  \
+            const VT uu = LOADU(ui + j + k * VW);                                                         \
+            for (int q = 0; q < GROUP; q++) acc[q][k] = FMA(uu, LOADU(v[q] + o + j + k * VW), acc[q][k]); \
+          }                                                                                               \
+      else                                                                                                \
+        for (int64_t j = 0; j < full; j += LANES)                                                         \
+          for (int k = 0; k < NV; k++) {                                                                  \
+            const VT uu = LOADU(ui + j + k * VW);                                                         \
+            for (int q = 0; q < cnt; q++) acc[q][k] = FMA(uu, LOADU(v[q] + o + j + k * VW), acc[q][k]);   \
+          }                                                                                               \
+      if (full < L) {                                                                                     \
+        for (int q = 0; q < cnt; q++)                                                                     \
+          for (int k = 0; k < NV; k++) STOREU(lanes[q] + k * VW, acc[q][k]);                              \
+        wgrad_cols(lanes, cnt, ui, v, o, full, L);                                                        \
+        for (int q = 0; q < cnt; q++)                                                                     \
+          for (int k = 0; k < NV; k++) acc[q][k] = LOADU(lanes[q] + k * VW);                              \
+      }                                                                                                   \
+    }                                                                                                     \
+    for (int q = 0; q < cnt; q++)                                                                         \
+      for (int k = 0; k < NV; k++) STOREU(lanes[q] + k * VW, acc[q][k]);                                  \
   }
 
 #define AVX512_ATTR __attribute__((target("avx512f")))
@@ -161,7 +161,8 @@ static void wgrad_lanes_base(float lanes[GROUP][LANES], int cnt, const float *u,
 }
 
 void rc__nm_gather(const int64_t *start, const int32_t *idx, int64_t r0, int64_t r1, const float *w, int64_t wrow,
-                   int64_t wstep, const float *src, int64_t lds, float *out, int64_t ldo, int64_t L, int accumulate) {
+                   int64_t wstep, const float *src, int64_t lds, float *out, int64_t ldo, int64_t L,
+                   int accumulate) {
 #ifdef NM_X86
   const rc__isa level = rc__isa_level();
   if (level == RC_ISA_AVX512) {
