@@ -52,27 +52,50 @@ static inline void wgrad_cols(float lanes[GROUP][LANES], int cnt, const float *u
 
 #ifdef NM_X86
 /* Gather with VW-float registers of type VT: full strips with the count of
- * registers known at compile time, then the last strip with a masked last
- * register (MLOAD/MSTORE of the first `rem` lanes, MASK(rem) making the mask). */
-#define NM_GATHER(isa, attr, VT, VW, MT, LOADU, STOREU, SET1, FMA, ZERO, MASK, MLOAD, MSTORE)                     \
+ * registers known at compile time, NR rows at a time (their sums are
+ * independent, so more of them keep the multiply-add units busy while
+ * loads wait), then the last strip with a masked last register
+ * (MLOAD/MSTORE of the first `rem` lanes, MASK(rem) making the mask). */
+#define NM_GATHER(isa, attr, NR, VT, VW, MT, LOADU, STOREU, SET1, FMA, ZERO, MASK, MLOAD, MSTORE)                 \
+  /* rows [r, r + nr) of one full strip at column j0 (nr is a constant after inlining) */                         \
+  static inline __attribute__((always_inline)) attr void strip_##isa(                                             \
+      int nr, const int64_t *start, const int32_t *idx, int64_t r, int64_t r0, const float *w, int64_t wrow,      \
+      int64_t wstep, const float *src, int64_t lds, float *out, int64_t ldo, int64_t j0, int accumulate) {        \
+    enum { NV = STRIP / VW };                                                                                     \
+    VT acc[NR][NV];                                                                                               \
+    int64_t n = start[r + 1] - start[r];                                                                          \
+    for (int q = 0; q < nr; q++) {                                                                                \
+      const float *o = out + (r + q - r0) * ldo + j0;                                                             \
+      for (int v = 0; v < NV; v++) acc[q][v] = accumulate ? LOADU(o + v * VW) : ZERO();                           \
+      if (start[r + q + 1] - start[r + q] < n) n = start[r + q + 1] - start[r + q];                               \
+    }                                                                                                             \
+    for (int64_t t = 0; t < n; t++)                                                                               \
+      for (int q = 0; q < nr; q++) {                                                                              \
+        const int64_t e = start[r + q] + t;                                                                       \
+        const VT wv = SET1(w[(r + q) * wrow + idx[e] * wstep]);                                                   \
+        const float *s = src + idx[e] * lds + j0;                                                                 \
+        for (int v = 0; v < NV; v++) acc[q][v] = FMA(wv, LOADU(s + v * VW), acc[q][v]);                           \
+      }                                                                                                           \
+    for (int q = 0; q < nr; q++) {                                                                                \
+      for (int64_t e = start[r + q] + n; e < start[r + q + 1]; e++) {                                             \
+        const VT wv = SET1(w[(r + q) * wrow + idx[e] * wstep]);                                                   \
+        const float *s = src + idx[e] * lds + j0;                                                                 \
+        for (int v = 0; v < NV; v++) acc[q][v] = FMA(wv, LOADU(s + v * VW), acc[q][v]);                           \
+      }                                                                                                           \
+      float *o = out + (r + q - r0) * ldo + j0;                                                                   \
+      for (int v = 0; v < NV; v++) STOREU(o + v * VW, acc[q][v]);                                                 \
+    }                                                                                                             \
+  }                                                                                                               \
   static attr void gather_##isa(const int64_t *start, const int32_t *idx, int64_t r0, int64_t r1, const float *w, \
                                 int64_t wrow, int64_t wstep, const float *src, int64_t lds, float *out,           \
                                 int64_t ldo, int64_t L, int accumulate) {                                         \
-    enum { NV = STRIP / VW };                                                                                     \
     const int64_t full = L - L % STRIP;                                                                           \
-    for (int64_t j0 = 0; j0 < full; j0 += STRIP)                                                                  \
-      for (int64_t r = r0; r < r1; r++) {                                                                         \
-        const float *wr = w + r * wrow;                                                                           \
-        float *o = out + (r - r0) * ldo + j0;                                                                     \
-        VT acc[NV];                                                                                               \
-        for (int v = 0; v < NV; v++) acc[v] = accumulate ? LOADU(o + v * VW) : ZERO();                            \
-        for (int64_t e = start[r]; e < start[r + 1]; e++) {                                                       \
-          const VT wv = SET1(wr[idx[e] * wstep]);                                                                 \
-          const float *s = src + idx[e] * lds + j0;                                                               \
-          for (int v = 0; v < NV; v++) acc[v] = FMA(wv, LOADU(s + v * VW), acc[v]);                               \
-        }                                                                                                         \
-        for (int v = 0; v < NV; v++) STOREU(o + v * VW, acc[v]);                                                  \
-      }                                                                                                           \
+    for (int64_t j0 = 0; j0 < full; j0 += STRIP) {                                                                \
+      int64_t r = r0;                                                                                             \
+      for (; r + NR <= r1; r += NR)                                                                               \
+        strip_##isa(NR, start, idx, r, r0, w, wrow, wstep, src, lds, out, ldo, j0, accumulate);                   \
+      for (; r < r1; r++) strip_##isa(1, start, idx, r, r0, w, wrow, wstep, src, lds, out, ldo, j0, accumulate);  \
+    }                                                                                                             \
     if (full == L) return;                                                                                        \
     const int rest = (int)(L - full), nv = (rest + VW - 1) / VW, rem = rest - (nv - 1) * VW;                      \
     const MT mask = MASK(rem);                                                                                    \
@@ -140,10 +163,10 @@ static inline void wgrad_cols(float lanes[GROUP][LANES], int cnt, const float *u
 #define MASK256(rem) _mm256_cmpgt_epi32(_mm256_set1_epi32(rem), _mm256_setr_epi32(0, 1, 2, 3, 4, 5, 6, 7))
 #define MLOAD256(p, mk) _mm256_maskload_ps((p), (mk))
 #define MSTORE256(p, mk, v) _mm256_maskstore_ps((p), (mk), (v))
-NM_GATHER(avx512, AVX512_ATTR, __m512, 16, __mmask16, _mm512_loadu_ps, _mm512_storeu_ps, _mm512_set1_ps,
+NM_GATHER(avx512, AVX512_ATTR, 2, __m512, 16, __mmask16, _mm512_loadu_ps, _mm512_storeu_ps, _mm512_set1_ps,
           _mm512_fmadd_ps, _mm512_setzero_ps, MASK512, MLOAD512, MSTORE512)
-NM_GATHER(avx2, AVX2_ATTR, __m256, 8, __m256i, _mm256_loadu_ps, _mm256_storeu_ps, _mm256_set1_ps, _mm256_fmadd_ps,
-          _mm256_setzero_ps, MASK256, MLOAD256, MSTORE256)
+NM_GATHER(avx2, AVX2_ATTR, 1, __m256, 8, __m256i, _mm256_loadu_ps, _mm256_storeu_ps, _mm256_set1_ps,
+          _mm256_fmadd_ps, _mm256_setzero_ps, MASK256, MLOAD256, MSTORE256)
 NM_WGRAD(avx512, AVX512_ATTR, __m512, 16, _mm512_loadu_ps, _mm512_storeu_ps, _mm512_fmadd_ps)
 NM_WGRAD(avx2, AVX2_ATTR, __m256, 8, _mm256_loadu_ps, _mm256_storeu_ps, _mm256_fmadd_ps)
 #endif
