@@ -4,9 +4,15 @@
  * rc__malloc/calloc/realloc) is read at step 10 and at step 60 of a run on
  * the bundled garment pair with Fashion-MNIST training images (Debian's
  * dataset-fashion-mnist): the 50 steps between must make no allocation, in
- * frozen and in training BatchNormalization mode. */
+ * frozen and in training BatchNormalization mode, and with a 2:4 student
+ * (the dense model pruned in memory) on the N:M kernels
+ * (RECOUP_CONV_PATH=nm-on; skipped when a run sets another path). */
+#define _POSIX_C_SOURCE 200112L
 #include <stdint.h>
+#include <stdlib.h>
 
+#include "compress/prune.h"
+#include "core/alloc.h"
 #include "onnx/model.h"
 #include "plan/load.h"
 #include "recoup/alloc.h"
@@ -40,13 +46,28 @@ static char *source_path(char *buf, size_t n, const char *rel) {
   return buf;
 }
 
-static void run_steps(rc_bn_mode bn) {
+/* two_of_four: the student is the dense model pruned 2:4 here. */
+static void run_steps(rc_bn_mode bn, int two_of_four) {
   char tpath[4096], spath[4096];
   rc_err e = {0};
   rc_model *teacher = NULL, *student = NULL;
   rc_array raw = {0}, x = {0};
   CHECK(rc_model_load(&teacher, source_path(tpath, sizeof tpath, "models/garment_dense.onnx"), NULL, &e) == RC_OK);
-  CHECK(rc_model_load(&student, source_path(spath, sizeof spath, "models/garment_pruned90.onnx"), NULL, &e) == RC_OK);
+  CHECK(rc_model_load(&student,
+                      source_path(spath, sizeof spath,
+                                  two_of_four ? "models/garment_dense.onnx" : "models/garment_pruned90.onnx"),
+                      NULL, &e) == RC_OK);
+  if (two_of_four && student) {
+    rc_prune_opts o;
+    rc_prune_opts_init(&o);
+    o.nm_n = 2, o.nm_m = 4;
+    rc_prune_report rep;
+    int *changed = NULL, n_changed = 0;
+    CHECK(rc_prune_model(student, &o, &rep, &changed, &n_changed, &e) == RC_OK);
+    CHECK(n_changed > 0);
+    rc__free(changed);
+    rc_prune_report_free(&rep);
+  }
   CHECK(rc_array_read(&raw, "/usr/share/datasets/fashion-mnist/train-images-idx3-ubyte.gz", NULL,
                       RC_DATA_DEFAULT_MAX_BYTES, &e) == RC_OK);
   if (!teacher || !student || !raw.t.data) {
@@ -76,8 +97,8 @@ static void run_steps(rc_bn_mode bn) {
   rc_distill_result r = {0};
   CHECK(rc_distill_run(&r, teacher, student, &d, &c, &e) == RC_OK);
   rc_alloc_set_fail_after(0);
-  printf("bn mode %d: %ld allocations in steps %d..%d (expected 0)\n", (int)bn, counts.allocations,
-         FIRST_STEP + 1, LAST_STEP);
+  printf("bn mode %d, %s: %ld allocations in steps %d..%d (expected 0)\n", (int)bn,
+         two_of_four ? "2:4 student" : "90% student", counts.allocations, FIRST_STEP + 1, LAST_STEP);
   CHECK(counts.seen_first && counts.seen_last);
   CHECK_INT(counts.allocations, 0);
   rc_distill_result_free(&r);
@@ -88,11 +109,21 @@ out:
   rc_model_free(student);
 }
 
-static void steady_state_frozen_bn(void) { run_steps(RC_BN_FROZEN); }
-static void steady_state_training_bn(void) { run_steps(RC_BN_TRAIN); }
+static void steady_state_frozen_bn(void) { run_steps(RC_BN_FROZEN, 0); }
+static void steady_state_training_bn(void) { run_steps(RC_BN_TRAIN, 0); }
+static void steady_state_nm_kernels(void) {
+  if (getenv("RECOUP_CONV_PATH")) {
+    printf("skipped: RECOUP_CONV_PATH is set by this run\n");
+    return;
+  }
+  setenv("RECOUP_CONV_PATH", "nm-on", 1);
+  run_steps(RC_BN_TRAIN, 1);
+  unsetenv("RECOUP_CONV_PATH");
+}
 
 int main(void) {
   RUN(steady_state_frozen_bn);
   RUN(steady_state_training_bn);
+  RUN(steady_state_nm_kernels);
   return TEST_REPORT();
 }
