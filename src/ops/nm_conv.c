@@ -6,9 +6,10 @@
  * path's own (conv.c): a column matrix per thread and, for backward, a
  * private weight gradient per thread, added in thread order afterwards at
  * kept positions only, so results are the same bits for a thread count
- * and frozen positions of dW are never written. */
+ * and frozen positions of dW are never written. A 1x1 convolution read in
+ * place splits dW by rows instead (backward_direct): the same bits for any
+ * thread count. Where these kernels run by default: rc__nm_conv_pays. */
 #include <omp.h>
-#include <string.h>
 
 #include "ops/conv_impl.h"
 #include "ops/epilogue.h"
