@@ -544,7 +544,7 @@ rc_status rc__conv_forward_epilogue(const rc_kernel *k, const rc__epilogue *ep, 
   }
   int nm_threads = 1;
   if ((sp = nm_of(k, &g, 0, &nm_threads))) {
-    rc__nm_conv_forward(&g, sp, nm_threads, y, x, w, b, k->work, ep);
+    rc__nm_conv_forward(&g, sp, nm_threads, y, x, w, b, k->work, k->work_bytes, ep);
     return RC_OK;
   }
   if (depthwise_direct(k, &g, 0)) {

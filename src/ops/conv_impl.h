@@ -123,9 +123,11 @@ int rc__nm_conv_pays(const rc__conv_geom *g, int backward, int dnnl);
 /* Floats of workspace per thread (a column matrix; for backward also a
  * weight gradient). */
 size_t rc__nm_conv_thread_floats(const rc__conv_geom *g, int backward);
-/* y = b + W . x, samples split among `threads`; ep (or NULL) runs per sample. */
+/* y = b + W . x, samples split among `threads`; ep (or NULL) runs per
+ * sample. Stride-1 windows read zero-bordered copies of the input planes
+ * instead of a column matrix where work_bytes holds them. */
 void rc__nm_conv_forward(const rc__conv_geom *g, const struct rc__wpattern *p, int threads, float *y,
-                         const float *x, const float *w, const float *b, float *work,
+                         const float *x, const float *w, const float *b, float *work, size_t work_bytes,
                          const struct rc__epilogue *ep);
 /* dx += input gradient, dw += weight gradient at kept positions only (either may be NULL). */
 void rc__nm_conv_backward(const rc__conv_geom *g, const struct rc__wpattern *p, int threads, float *dx, float *dw,

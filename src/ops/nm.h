@@ -35,14 +35,16 @@ typedef struct rc__nm {
 rc_status rc__nm_attach(struct rc__wpattern *p, rc_arena *a, const uint8_t *keep, int64_t cells, rc_err *e);
 
 /* out[r][j] (= or +=) sum over e in [start[r], start[r+1]) of
- * w[r * wrow + idx[e] * wstep] * src[idx[e] * lds + j], for rows r in
- * [r0, r1) and j < L; out row r starts at out + (r - r0) * ldo. Forward
- * takes the pattern's rows (wrow = cols, wstep = 1); the input gradient the
- * transposed lists (wrow = 1, wstep = cols). Single-threaded; the
- * instruction set is chosen at run time (kernel_choice.h). */
+ * w[r * wrow + idx[e] * wstep] * src[row(idx[e]) + j], for rows r in
+ * [r0, r1) and j < L, where row(i) is roff[i], or i * lds when roff is NULL
+ * (a table lets source rows overlap: shifted views of one padded plane);
+ * out row r starts at out + (r - r0) * ldo. Forward takes the pattern's rows
+ * (wrow = cols, wstep = 1); the input gradient the transposed lists
+ * (wrow = 1, wstep = cols). Single-threaded; the instruction set is chosen
+ * at run time (kernel_choice.h). */
 void rc__nm_gather(const int64_t *start, const int32_t *idx, int64_t r0, int64_t r1, const float *w, int64_t wrow,
-                   int64_t wstep, const float *src, int64_t lds, float *out, int64_t ldo, int64_t L,
-                   int accumulate);
+                   int64_t wstep, const float *src, const int64_t *roff, int64_t lds, float *out, int64_t ldo,
+                   int64_t L, int accumulate);
 
 /* dw[r * cols + k] += sum over samples i < S and j < L of
  * u[i * us + r * ldu + j] * v[i * vs + k * ldv + j] for the kept k of rows

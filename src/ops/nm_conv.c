@@ -10,6 +10,7 @@
  * place splits dW by rows instead (backward_direct): the same bits for any
  * thread count. Where these kernels run by default: rc__nm_conv_pays. */
 #include <omp.h>
+#include <string.h>
 
 #include "ops/conv_impl.h"
 #include "ops/epilogue.h"
@@ -41,11 +42,75 @@ static void forward_sample(const rc__conv_geom *g, const rc__wpattern *p, float 
   if (b)
     for (int64_t m = 0; m < g->M; m++)
       for (int64_t i = 0; i < P; i++) yn[m * P + i] = b[m];
-  rc__nm_gather(p->start, p->col, 0, g->M, w, p->cols, 1, src, P, yn, P, P, b != NULL);
+  rc__nm_gather(p->start, p->col, 0, g->M, w, p->cols, 1, src, NULL, P, yn, P, P, b != NULL);
+}
+
+/* Stride-1 windows need no column matrix: with each input plane copied
+ * into a zero-bordered plane of Wp = Wo + (kw-1)*dw columns, the column
+ * row of (channel c, cell t) is that plane read from offset
+ * (kh(t)*dh) * Wp + kw(t)*dw, and the output comes out Wp wide, its last
+ * Wp - Wo columns of each row unused. The kernels then read about one
+ * K-th of what an unfolded matrix holds. */
+typedef struct padded_geom {
+  int64_t Hp, Wp, plane, L, x_floats, per; /* per: floats per thread */
+} padded_geom;
+
+static int padded_of(const rc__conv_geom *g, padded_geom *q) {
+  const rc__patch *p = &g->p;
+  if (g->direct || p->img[0] != 1 || p->k[0] != 1 || p->s[1] != 1 || p->s[2] != 1) return 0;
+  q->Hp = p->pos[1] + (p->k[1] - 1) * p->d[1];
+  q->Wp = p->pos[2] + (p->k[2] - 1) * p->d[2];
+  q->plane = q->Hp * q->Wp;
+  q->L = p->pos[1] * q->Wp;
+  /* the last plane's shifted rows run (kw-1)*dw cells past its end */
+  q->x_floats = g->C * q->plane + (p->k[2] - 1) * p->d[2];
+  q->per = q->x_floats + g->M * q->L;
+  return 1;
+}
+
+/* Floats before the threads' buffers: the row-offset table (int64 each). */
+static size_t table_floats(const rc__conv_geom *g) { return ((size_t)(2 * g->C * g->K) + 15) & ~(size_t)15; }
+
+static int forward_padded(const rc__conv_geom *g, const rc__wpattern *p, int threads, float *y, const float *x,
+                          const float *w, const float *b, float *work, size_t work_bytes, const rc__epilogue *ep) {
+  padded_geom q;
+  if (!padded_of(g, &q) || work_bytes < sizeof(float) * (table_floats(g) + (size_t)threads * (size_t)q.per))
+    return 0;
+  const rc__patch *pp = &g->p;
+  const int64_t K = g->K, kw = pp->k[2], H = pp->img[1], W = pp->img[2], Ho = pp->pos[1], Wo = pp->pos[2],
+                P = g->out_sp;
+  int64_t *roff = (int64_t *)(void *)work;
+  for (int64_t c = 0; c < g->C; c++)
+    for (int64_t t = 0; t < K; t++)
+      roff[c * K + t] = c * q.plane + (t / kw) * pp->d[1] * q.Wp + (t % kw) * pp->d[2];
+  float *base = work + table_floats(g);
+#pragma omp parallel num_threads(threads) if (threads > 1)
+  {
+    float *xp = base + (size_t)omp_get_thread_num() * (size_t)q.per, *yp = xp + q.x_floats;
+    memset(xp, 0, sizeof(float) * (size_t)q.x_floats); /* borders stay zero: only the interior is copied */
+#pragma omp for schedule(static)
+    for (int64_t n = 0; n < g->N; n++) {
+      const float *xn = x + n * g->C * g->in_sp;
+      for (int64_t c = 0; c < g->C; c++)
+        for (int64_t i = 0; i < H; i++)
+          memcpy(xp + c * q.plane + (i + pp->pad[1]) * q.Wp + pp->pad[2], xn + (c * H + i) * W,
+                 sizeof(float) * (size_t)W);
+      rc__nm_gather(p->start, p->col, 0, g->M, w, p->cols, 1, xp, roff, 0, yp, q.L, q.L, 0);
+      float *yn = y + n * g->M * P;
+      for (int64_t m = 0; m < g->M; m++) {
+        const float bias = b ? b[m] : 0.0f;
+        for (int64_t i = 0; i < Ho; i++)
+          for (int64_t j = 0; j < Wo; j++) yn[(m * Ho + i) * Wo + j] = yp[m * q.L + i * q.Wp + j] + bias;
+      }
+      if (ep) rc__epilogue_apply(ep, y, n * g->M, (n + 1) * g->M, g->M, P);
+    }
+  }
+  return 1;
 }
 
 void rc__nm_conv_forward(const rc__conv_geom *g, const rc__wpattern *p, int threads, float *y, const float *x,
-                         const float *w, const float *b, float *work, const rc__epilogue *ep) {
+                         const float *w, const float *b, float *work, size_t work_bytes, const rc__epilogue *ep) {
+  if (forward_padded(g, p, threads, y, x, w, b, work, work_bytes, ep)) return;
   const size_t per = rc__nm_conv_thread_floats(g, 0);
   const int64_t P = g->out_sp;
 #pragma omp parallel for num_threads(threads) schedule(static) if (threads > 1)
@@ -67,7 +132,7 @@ static void backward_sample(const rc__conv_geom *g, const rc__wpattern *p, int64
   }
   if (!dx) return;
   float *dxn = dx + n * g->C * g->in_sp;
-  rc__nm_gather(p->nm->cstart, p->nm->crow, 0, CK, w, 1, CK, dyn, P, col, P, P, 0);
+  rc__nm_gather(p->nm->cstart, p->nm->crow, 0, CK, w, 1, CK, dyn, NULL, P, col, P, P, 0);
   rc__fold_add(dxn, col, P, &g->p, g->C);
 }
 
@@ -99,7 +164,7 @@ static void backward_direct(const rc__conv_geom *g, const rc__wpattern *p, int t
     if (dx) {
 #pragma omp for schedule(static)
       for (int64_t n = 0; n < g->N; n++)
-        rc__nm_gather(p->nm->cstart, p->nm->crow, 0, C, w, 1, C, dy + n * M * P, P, dx + n * C * P, P, P, 1);
+        rc__nm_gather(p->nm->cstart, p->nm->crow, 0, C, w, 1, C, dy + n * M * P, NULL, P, dx + n * C * P, P, P, 1);
     }
   }
 }
@@ -138,21 +203,22 @@ void rc__nm_conv_backward(const rc__conv_geom *g, const rc__wpattern *p, int thr
  * shared 2-core machine; ratio = N:M / the path that would otherwise run).
  * Forward: 1x1 layers with 64 or more output cells, 0.45 to 0.80 (16->96
  * on 32x32 0.65, 96->24 on 16x16 0.80, 144->32 on 8x8 0.45, stride-2
- * 16->32 and 32->64 0.80 and 0.61), but 1.2 to 1.3 on 4x4 maps; 3x3 layers
- * only against recoup's own GEMMs (0.60 for 64->64 on 8x8, 0.75 and 0.90
- * with 32 input channels, 0.99 and 1.25 with 16), never against oneDNN
- * (2.0 to 2.8 times its time). Backward: 1x1 layers read in place that
- * narrow or keep their channels, 0.83 to 0.88 (96->24 on 16x16, 144->32 on
- * 8x8, 96->16 on 32x32), but 1.39 for 16->96 on 32x32, 1.8 to 1.9 on 4x4
- * maps, 0.95 to 1.9 for 3x3 and 2.0 to 4.5 against oneDNN. At two threads
- * (wall time, min of 21) the forward of those 1x1 layers gave 0.43 to 0.90
- * and 1.2 to 1.4 on 4x4 maps again. */
+ * 16->32 and 32->64 0.80 and 0.61), but 1.2 to 1.3 on 4x4 maps. Stride-1
+ * 3x3 layers through the padded planes 0.52 (16->16 on 32x32), 0.62
+ * (32->32 on 16x16), 0.71 (64->64 on 8x8) of recoup's own GEMMs, but 1.13,
+ * 1.79 and 2.25 of oneDNN's time; stride-2 3x3 layers (unfolded) 0.77 to
+ * 1.02 of the GEMMs. Backward: 1x1 layers read in place that narrow or keep
+ * their channels, 0.83 to 0.88 (96->24 on 16x16, 144->32 on 8x8, 96->16 on
+ * 32x32), but 1.39 for 16->96 on 32x32, 1.8 to 1.9 on 4x4 maps, 0.8 to 1.9
+ * for 3x3 and 1.8 to 5.6 against oneDNN. At two threads (wall time, min of
+ * 21) the forward of those 1x1 layers gave 0.43 to 0.90 and 1.2 to 1.4 on
+ * 4x4 maps again. */
 #define NM_MIN_CELLS 64
-#define NM_MIN_CHANNELS_3X3 32
 
 int rc__nm_conv_pays(const rc__conv_geom *g, int backward, int dnnl) {
+  padded_geom q;
   if (g->out_sp < NM_MIN_CELLS) return 0;
   if (backward) return g->direct && g->C >= g->M;
   if (g->K == 1) return 1;
-  return !dnnl && g->C >= NM_MIN_CHANNELS_3X3;
+  return !dnnl && padded_of(g, &q);
 }

@@ -27,10 +27,12 @@
 
 /* The baseline level: one column at a time, the same order of fused adds. */
 static inline void gather_cols(const int64_t *start, const int32_t *idx, const float *wr, int64_t wstep, int64_t r,
-                               const float *src, int64_t lds, float *o, int64_t j0, int64_t j1, int accumulate) {
+                               const float *src, const int64_t *roff, int64_t lds, float *o, int64_t j0,
+                               int64_t j1, int accumulate) {
   for (int64_t j = j0; j < j1; j++) {
     float acc = accumulate ? o[j] : 0.0f;
-    for (int64_t e = start[r]; e < start[r + 1]; e++) acc = fmaf(wr[idx[e] * wstep], src[idx[e] * lds + j], acc);
+    for (int64_t e = start[r]; e < start[r + 1]; e++)
+      acc = fmaf(wr[idx[e] * wstep], src[(roff ? roff[idx[e]] : idx[e] * lds) + j], acc);
     o[j] = acc;
   }
 }
@@ -58,9 +60,10 @@ static inline void wgrad_cols(float lanes[GROUP][LANES], int cnt, const float *u
  * (MLOAD/MSTORE of the first `rem` lanes, MASK(rem) making the mask). */
 #define NM_GATHER(isa, attr, NR, VT, VW, MT, LOADU, STOREU, SET1, FMA, ZERO, MASK, MLOAD, MSTORE)                 \
   /* rows [r, r + nr) of one full strip at column j0 (nr is a constant after inlining) */                         \
-  static inline __attribute__((always_inline)) attr void strip_##isa(                                             \
-      int nr, const int64_t *start, const int32_t *idx, int64_t r, int64_t r0, const float *w, int64_t wrow,      \
-      int64_t wstep, const float *src, int64_t lds, float *out, int64_t ldo, int64_t j0, int accumulate) {        \
+  static inline __attribute__((always_inline))                                                                    \
+  attr void strip_##isa(int nr, const int64_t *start, const int32_t *idx, int64_t r, int64_t r0, const float *w,  \
+                        int64_t wrow, int64_t wstep, const float *src, const int64_t *roff, int64_t lds,          \
+                        float *out, int64_t ldo, int64_t j0, int accumulate) {                                    \
     enum { NV = STRIP / VW };                                                                                     \
     VT acc[NR][NV];                                                                                               \
     int64_t n = start[r + 1] - start[r];                                                                          \
@@ -73,13 +76,13 @@ static inline void wgrad_cols(float lanes[GROUP][LANES], int cnt, const float *u
       for (int q = 0; q < nr; q++) {                                                                              \
         const int64_t e = start[r + q] + t;                                                                       \
         const VT wv = SET1(w[(r + q) * wrow + idx[e] * wstep]);                                                   \
-        const float *s = src + idx[e] * lds + j0;                                                                 \
+        const float *s = src + (roff ? roff[idx[e]] : idx[e] * lds) + j0;                                         \
         for (int v = 0; v < NV; v++) acc[q][v] = FMA(wv, LOADU(s + v * VW), acc[q][v]);                           \
       }                                                                                                           \
     for (int q = 0; q < nr; q++) {                                                                                \
       for (int64_t e = start[r + q] + n; e < start[r + q + 1]; e++) {                                             \
         const VT wv = SET1(w[(r + q) * wrow + idx[e] * wstep]);                                                   \
-        const float *s = src + idx[e] * lds + j0;                                                                 \
+        const float *s = src + (roff ? roff[idx[e]] : idx[e] * lds) + j0;                                         \
         for (int v = 0; v < NV; v++) acc[q][v] = FMA(wv, LOADU(s + v * VW), acc[q][v]);                           \
       }                                                                                                           \
       float *o = out + (r + q - r0) * ldo + j0;                                                                   \
@@ -87,14 +90,15 @@ static inline void wgrad_cols(float lanes[GROUP][LANES], int cnt, const float *u
     }                                                                                                             \
   }                                                                                                               \
   static attr void gather_##isa(const int64_t *start, const int32_t *idx, int64_t r0, int64_t r1, const float *w, \
-                                int64_t wrow, int64_t wstep, const float *src, int64_t lds, float *out,           \
-                                int64_t ldo, int64_t L, int accumulate) {                                         \
+                                int64_t wrow, int64_t wstep, const float *src, const int64_t *roff, int64_t lds,  \
+                                float *out, int64_t ldo, int64_t L, int accumulate) {                             \
     const int64_t full = L - L % STRIP;                                                                           \
     for (int64_t j0 = 0; j0 < full; j0 += STRIP) {                                                                \
       int64_t r = r0;                                                                                             \
       for (; r + NR <= r1; r += NR)                                                                               \
-        strip_##isa(NR, start, idx, r, r0, w, wrow, wstep, src, lds, out, ldo, j0, accumulate);                   \
-      for (; r < r1; r++) strip_##isa(1, start, idx, r, r0, w, wrow, wstep, src, lds, out, ldo, j0, accumulate);  \
+        strip_##isa(NR, start, idx, r, r0, w, wrow, wstep, src, roff, lds, out, ldo, j0, accumulate);             \
+      for (; r < r1; r++)                                                                                         \
+        strip_##isa(1, start, idx, r, r0, w, wrow, wstep, src, roff, lds, out, ldo, j0, accumulate);              \
     }                                                                                                             \
     if (full == L) return;                                                                                        \
     const int rest = (int)(L - full), nv = (rest + VW - 1) / VW, rem = rest - (nv - 1) * VW;                      \
@@ -106,13 +110,15 @@ static inline void wgrad_cols(float lanes[GROUP][LANES], int cnt, const float *u
       for (int v = 0; v < nv - 1; v++) {                                                                          \
         VT acc = accumulate ? LOADU(o + v * VW) : ZERO();                                                         \
         for (int64_t e = start[r]; e < start[r + 1]; e++)                                                         \
-          acc = FMA(SET1(wr[idx[e] * wstep]), LOADU(src + idx[e] * lds + full + v * VW), acc);                    \
+          acc = FMA(SET1(wr[idx[e] * wstep]), LOADU(src + (roff ? roff[idx[e]] : idx[e] * lds) + full + v * VW),  \
+                    acc);                                                                                         \
         STOREU(o + v * VW, acc);                                                                                  \
       }                                                                                                           \
       const int64_t last = (nv - 1) * VW;                                                                         \
       VT acc = accumulate ? MLOAD(o + last, mask) : ZERO();                                                       \
       for (int64_t e = start[r]; e < start[r + 1]; e++)                                                           \
-        acc = FMA(SET1(wr[idx[e] * wstep]), MLOAD(src + idx[e] * lds + full + last, mask), acc);                  \
+        acc = FMA(SET1(wr[idx[e] * wstep]),                                                                       \
+                  MLOAD(src + (roff ? roff[idx[e]] : idx[e] * lds) + full + last, mask), acc);                    \
       MSTORE(o + last, mask, acc);                                                                                \
     }                                                                                                             \
   }
@@ -172,10 +178,10 @@ NM_WGRAD(avx2, AVX2_ATTR, __m256, 8, _mm256_loadu_ps, _mm256_storeu_ps, _mm256_f
 #endif
 
 static void gather_base(const int64_t *start, const int32_t *idx, int64_t r0, int64_t r1, const float *w,
-                        int64_t wrow, int64_t wstep, const float *src, int64_t lds, float *out, int64_t ldo,
-                        int64_t L, int accumulate) {
+                        int64_t wrow, int64_t wstep, const float *src, const int64_t *roff, int64_t lds,
+                        float *out, int64_t ldo, int64_t L, int accumulate) {
   for (int64_t r = r0; r < r1; r++)
-    gather_cols(start, idx, w + r * wrow, wstep, r, src, lds, out + (r - r0) * ldo, 0, L, accumulate);
+    gather_cols(start, idx, w + r * wrow, wstep, r, src, roff, lds, out + (r - r0) * ldo, 0, L, accumulate);
 }
 
 static void wgrad_lanes_base(float lanes[GROUP][LANES], int cnt, const float *u, int64_t us, const float *const *v,
@@ -184,20 +190,20 @@ static void wgrad_lanes_base(float lanes[GROUP][LANES], int cnt, const float *u,
 }
 
 void rc__nm_gather(const int64_t *start, const int32_t *idx, int64_t r0, int64_t r1, const float *w, int64_t wrow,
-                   int64_t wstep, const float *src, int64_t lds, float *out, int64_t ldo, int64_t L,
-                   int accumulate) {
+                   int64_t wstep, const float *src, const int64_t *roff, int64_t lds, float *out, int64_t ldo,
+                   int64_t L, int accumulate) {
 #ifdef NM_X86
   const rc__isa level = rc__isa_level();
   if (level == RC_ISA_AVX512) {
-    gather_avx512(start, idx, r0, r1, w, wrow, wstep, src, lds, out, ldo, L, accumulate);
+    gather_avx512(start, idx, r0, r1, w, wrow, wstep, src, roff, lds, out, ldo, L, accumulate);
     return;
   }
   if (level == RC_ISA_AVX2) {
-    gather_avx2(start, idx, r0, r1, w, wrow, wstep, src, lds, out, ldo, L, accumulate);
+    gather_avx2(start, idx, r0, r1, w, wrow, wstep, src, roff, lds, out, ldo, L, accumulate);
     return;
   }
 #endif
-  gather_base(start, idx, r0, r1, w, wrow, wstep, src, lds, out, ldo, L, accumulate);
+  gather_base(start, idx, r0, r1, w, wrow, wstep, src, roff, lds, out, ldo, L, accumulate);
 }
 
 typedef void (*wgrad_lanes_fn)(float lanes[GROUP][LANES], int cnt, const float *u, int64_t us,
