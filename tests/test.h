@@ -151,6 +151,25 @@ static int test_passed_, test_failed_;
     }                                                                                     \
   } while (0)
 
+/* Opens `file` in the reference folder $RECOUP_BINARY_DIR/dir written by a
+ * PyTorch script run as a ctest fixture; the folder's path goes into
+ * folder (n bytes). When it cannot, says which script and fixture write
+ * the file and returns NULL. */
+static inline FILE *test_ref_open(char *folder, size_t n, const char *dir, const char *file, const char *script,
+                                  const char *fixture) {
+  const char *bin = getenv("RECOUP_BINARY_DIR");
+  snprintf(folder, n, "%s/%s", bin ? bin : ".", dir);
+  char path[4352];
+  snprintf(path, sizeof path, "%s/%s", folder, file);
+  FILE *f = fopen(path, "r");
+  if (!f)
+    fprintf(stderr,
+            "MISSING PyTorch reference data: %s\n(written by %s with Debian's /usr/bin/python3, the ctest "
+            "fixture %s; run ctest, not this binary alone)\n",
+            path, script, fixture);
+  return f;
+}
+
 /* ctest's skip status (SKIP_RETURN_CODE on every C test): a test whose cases
  * were all skipped, e.g. for want of an installed data set, says so. */
 #define TEST_SKIP_CODE 77

@@ -20,19 +20,9 @@ static int n_entries;
 static char ref_dir[1024];
 
 static int load_index(void) {
-  const char *bin = getenv("RECOUP_BINARY_DIR");
-  snprintf(ref_dir, sizeof ref_dir, "%s/ref_ops_conv", bin ? bin : ".");
-  char path[1200];
-  snprintf(path, sizeof path, "%s/index.txt", ref_dir);
-  FILE *f = fopen(path, "r");
-  if (!f) {
-    fprintf(stderr,
-            "MISSING PyTorch reference data: %s\n"
-            "(written by scripts/ref_ops_conv.py, the ctest fixture ops_conv_ref_data; run ctest, "
-            "not this binary alone)\n",
-            path);
-    return 0;
-  }
+  FILE *f = test_ref_open(ref_dir, sizeof ref_dir, "ref_ops_conv", "index.txt", "scripts/ref_ops_conv.py",
+                          "ops_conv_ref_data");
+  if (!f) return 0;
   char line[512];
   while (fgets(line, sizeof line, f) && n_entries < MAX_ENTRIES) {
     ref_entry *r = &entries[n_entries];

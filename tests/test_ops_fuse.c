@@ -271,16 +271,9 @@ static void one_case(const char *name) {
 }
 
 static void chains_agree(void) {
-  const char *bin = getenv("RECOUP_BINARY_DIR");
-  snprintf(ref_root, sizeof ref_root, "%s/ref_ops_fuse", bin ? bin : ".");
-  char path[1100];
-  snprintf(path, sizeof path, "%s/cases.txt", ref_root);
-  FILE *f = fopen(path, "r");
+  FILE *f = test_ref_open(ref_root, sizeof ref_root, "ref_ops_fuse", "cases.txt", "scripts/ref_ops_fuse.py",
+                          "ops_fuse_ref_data");
   if (!f) {
-    fprintf(stderr,
-            "MISSING PyTorch reference data: %s (written by scripts/ref_ops_fuse.py, the ctest fixture "
-            "ops_fuse_ref_data; run ctest, not this binary alone)\n",
-            path);
     CHECK(0);
     return;
   }

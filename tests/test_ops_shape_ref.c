@@ -7,7 +7,6 @@
  *   forward   |ours - torch| <= 1e-4 * (1 + |torch|)
  *   gradient  |ours - torch| <= 1e-3 * (1 + |torch|)
  * It fails loudly when the reference files are missing. */
-#include <errno.h>
 
 #include "ops/quant.h"
 #include "ops_expect.h"
@@ -27,16 +26,10 @@ static int n_refs;
 static char ref_dir[4096];
 
 static int load_refs(void) {
-  const char *bin = getenv("RECOUP_BINARY_DIR");
-  snprintf(ref_dir, sizeof ref_dir, "%s/ref_ops_shape", bin ? bin : ".");
+  FILE *f = test_ref_open(ref_dir, sizeof ref_dir, "ref_ops_shape", "cases.txt", "scripts/ref_ops_shape.py",
+                          "ops_shape_ref_data");
+  if (!f) return 0;
   char path[4352];
-  snprintf(path, sizeof path, "%s/cases.txt", ref_dir);
-  FILE *f = fopen(path, "r");
-  if (!f) {
-    fprintf(stderr, "missing %s (%s): the ctest fixture ops_shape_ref_data runs scripts/ref_ops_shape.py "
-            "with Debian's /usr/bin/python3 to write it\n", path, strerror(errno));
-    return 0;
-  }
   char line[512];
   while (n_refs < 128 && fgets(line, sizeof line, f)) {
     ref_tensor *r = &refs[n_refs];
