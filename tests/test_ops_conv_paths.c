@@ -1,7 +1,8 @@
 /* Conv's fast paths against its plain per-sample path, forward and both
  * backward products: the batched GEMM path (1x1 and general convolutions,
  * several samples per GEMM, chunks with a remainder), the direct
- * depthwise kernels (stride 1 on the flat grid, other strides row by row)
+ * depthwise kernels (short rows as one flat run, rows of 16 or more one by
+ * one; input gradient straight into dx at stride 1, phase by phase otherwise)
  * and, in builds with oneDNN, its convolutions (RECOUP_CONV_PATH=dnnl;
  * channels in blocks of 16 take its reordered blocked layouts), each run
  * also through a kept state as a plan keeps it,
@@ -144,6 +145,14 @@ static void paths_agree(void) {
       {"depthwise 2x2 tiny", 2, 3, 3, 3, 2, {2, 2}, {3, 3}, {0}, {0}, {1, 1, 1, 1}, 1, 1},
       {"depthwise 32x32", 2, 3, 3, 3, 2, {32, 32}, {3, 3}, {0}, {0}, {1, 1, 1, 1}, 1, 1},
       {"depthwise big end pad", 2, 2, 2, 2, 2, {5, 6}, {3, 3}, {3, 1}, {0}, {0, 1, 4, 2}, 1, 1},
+      /* rows of 16 outputs or more: computed row by row (stride 1 input gradient too) */
+      {"depthwise rows s2", 2, 3, 3, 3, 2, {35, 33}, {3, 3}, {2, 2}, {0}, {1, 1, 1, 1}, 1, 1},
+      {"depthwise rows dil2 pad0", 2, 4, 4, 4, 2, {9, 21}, {3, 3}, {0}, {2, 2}, {0, 0, 0, 0}, 1, 1},
+      {"depthwise rows pad2 b1", 1, 3, 3, 3, 2, {7, 20}, {3, 3}, {0}, {0}, {2, 2, 2, 2}, 0, 1},
+      {"depthwise 1-D rows s2", 2, 3, 3, 3, 1, {40}, {3}, {2}, {0}, {1, 1}, 1, 1},
+      {"depthwise 7x7 pad0", 3, 4, 4, 4, 2, {7, 7}, {3, 3}, {0}, {0}, {0, 0, 0, 0}, 1, 1},
+      {"depthwise 5x9 s2 pad2", 2, 3, 3, 3, 2, {5, 9}, {3, 3}, {2, 2}, {0}, {2, 2, 2, 2}, 1, 1},
+      {"depthwise 7x7 s2 dil2", 2, 3, 3, 3, 2, {7, 7}, {3, 3}, {2, 2}, {2, 2}, {1, 1, 1, 1}, 1, 1},
       {"depth multiplier 2", 2, 3, 6, 3, 2, {6, 6}, {3, 3}, {0}, {0}, {1, 1, 1, 1}, 1, 0},
       /* channels in oneDNN's blocks of 16: its direct kernels, with reorders */
       {"blocked 16-32 s2", 3, 16, 32, 1, 2, {9, 9}, {3, 3}, {2, 2}, {0}, {1, 1, 1, 1}, 1, 0},
