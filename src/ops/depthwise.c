@@ -221,9 +221,9 @@ static void move_cells(float *xq, float *x, const dw_plane *d, int into_grid) {
     float *xr = x + r * d->W, *row = xq + (R % d->sh) * sw * phase + (R / d->sh) * d->Wq;
     if (sw == 1) {
       if (into_grid)
-        for (int64_t q = 0; q < n; q++) row[d->pw + q] = xr[q];
+        memcpy(row + d->pw, xr, sizeof(float) * (size_t)n);
       else
-        for (int64_t q = 0; q < n; q++) xr[q] = row[d->pw + q];
+        memcpy(xr, row + d->pw, sizeof(float) * (size_t)n);
       continue;
     }
     for (int64_t b = 0; b < sw; b++) {
