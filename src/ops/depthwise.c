@@ -42,6 +42,93 @@
 /* Rows at least this long are computed row by row, shorter ones as a flat run. */
 #define ROW_MIN LANES
 
+#if defined(__GNUC__)
+#define RC_DW_INLINE __attribute__((always_inline))
+#else
+#define RC_DW_INLINE
+#endif
+
+/* One plane's geometry on the phase grid. */
+typedef struct dw_plane {
+  int64_t H, W, Ho, Wo, KH, KW, sh, sw, dh, dw, ph, pw;
+  int64_t Hp, Wp;   /* the bordered plane */
+  int64_t Hq, Wq;   /* one phase */
+  int64_t grid;     /* floats of all phases: sh*sw*Hq*Wq */
+  int64_t flat;     /* cells of one tap's run: (Ho-1)*Wq + Wo */
+  int64_t margin;   /* zeros before the output gradient's run: the largest tap shift */
+  int64_t run_size; /* floats of that run with its margin: margin + Hq*Wq */
+} dw_plane;
+
+/* Stride 2: input column j is bordered column J = j + pw, in column phase
+ * J % 2 at J / 2. Both phases at once, so that loads and stores run over
+ * whole input rows (interleaving shuffles instead of single floats). */
+static inline RC_DW_INLINE void move_pairs(float *p0, float *p1, float *xr, int64_t pw, int64_t n, int into_grid) {
+  int64_t j = 0;
+  if (pw % 2 && n > 0) { /* J odd: phase 1 */
+    if (into_grid)
+      p1[pw / 2] = xr[0];
+    else
+      xr[0] = p1[pw / 2];
+    j = 1;
+  }
+  const int64_t q0 = (j + pw) / 2, pairs = (n - j) / 2;
+  float *a = p0 + q0, *b = p1 + q0, *x = xr + j;
+  if (into_grid)
+    for (int64_t k = 0; k < pairs; k++) a[k] = x[2 * k], b[k] = x[2 * k + 1];
+  else
+    for (int64_t k = 0; k < pairs; k++) x[2 * k] = a[k], x[2 * k + 1] = b[k];
+  j += 2 * pairs;
+  if (j < n) { /* J even: phase 0 */
+    if (into_grid)
+      p0[(j + pw) / 2] = xr[j];
+    else
+      xr[j] = p0[(j + pw) / 2];
+  }
+}
+
+/* Moves the cells of x (H, W) that windows read to or from the phase grid
+ * xq, one row and one column phase at a time: phase b of a row holds the
+ * input columns q*sw + b - pw, a strided run the compiler turns into
+ * vector loads or stores (each instruction-set level has its copy). The
+ * grid's other cells are left as they are. */
+static inline RC_DW_INLINE void move_body(float *xq, float *x, const dw_plane *d, int into_grid) {
+  int64_t n = d->W;
+  if (d->pw + n > d->Wp) n = d->Wp - d->pw;
+  const int64_t phase = d->Hq * d->Wq, sw = d->sw;
+  for (int64_t r = 0; r < d->H && n > 0; r++) {
+    const int64_t R = r + d->ph;
+    if (R >= d->Hp) break;
+    float *xr = x + r * d->W, *row = xq + (R % d->sh) * sw * phase + (R / d->sh) * d->Wq;
+    if (sw == 1) {
+      if (into_grid)
+        memcpy(row + d->pw, xr, sizeof(float) * (size_t)n);
+      else
+        memcpy(xr, row + d->pw, sizeof(float) * (size_t)n);
+      continue;
+    }
+    if (sw == 2) {
+      move_pairs(row, row + phase, xr, d->pw, n, into_grid);
+      continue;
+    }
+    for (int64_t b = 0; b < sw; b++) {
+      /* q with 0 <= q*sw + b - pw < n */
+      const int64_t lo = d->pw > b ? (d->pw - b + sw - 1) / sw : 0, hi = (n + d->pw - b + sw - 1) / sw;
+      float *dst = row + b * phase;
+      const int64_t shift = b - d->pw;
+      if (into_grid)
+        for (int64_t q = lo; q < hi; q++) dst[q] = xr[q * sw + shift];
+      else
+        for (int64_t q = lo; q < hi; q++) xr[q * sw + shift] = dst[q];
+    }
+  }
+}
+
+/* run <- dy (Ho, Wo) at row stride Wq; the cells around stay zero. */
+static inline RC_DW_INLINE void to_run_body(float *run, const float *dy, const dw_plane *d) {
+  for (int64_t oy = 0; oy < d->Ho; oy++)
+    for (int64_t ox = 0; ox < d->Wo; ox++) run[oy * d->Wq + ox] = dy[oy * d->Wo + ox];
+}
+
 /* One stencil: out[i] = init[i] (or init_c) + sum over taps t, in order, of
  * wt[t] * src[i + off[t]], for i < n. out may be init. */
 typedef struct dw_stencil {
@@ -55,6 +142,8 @@ typedef struct dw_kernels {
   void (*apply)(float *out, const float *init, float init_c, const dw_stencil *s, int64_t n);
   /* lanes[t*LANES + l] += a[i] * src[i + off[t]] over i < n, i % LANES == l */
   void (*dots)(float *lanes, const float *a, const dw_stencil *s, int64_t n);
+  void (*move)(float *xq, float *x, const dw_plane *d, int into_grid); /* move_body */
+  void (*to_run)(float *run, const float *dy, const dw_plane *d);    /* to_run_body */
 } dw_kernels;
 
 #if defined(__GNUC__)
@@ -128,31 +217,31 @@ static inline __attribute__((always_inline)) void dots_body(float *lanes, const 
   }
 #endif
 
+/* The copies in and out of the grids, per level too. */
+#define DW_COPIES(isa, attr)                                                                            \
+  static attr void move_##isa(float *xq, float *x, const dw_plane *d, int into_grid) {                 \
+    move_body(xq, x, d, into_grid);                                                                    \
+  }                                                                                                    \
+  static attr void to_run_##isa(float *run, const float *dy, const dw_plane *d) { to_run_body(run, dy, d); }
+
 #if defined(__GNUC__) && defined(__x86_64__)
+DW_COPIES(avx512, __attribute__((target("avx512f"))))
+DW_COPIES(avx2, __attribute__((target("avx2"))))
 DW_KERNELS(avx512, __attribute__((target("avx512f"))))
 DW_KERNELS(avx2, __attribute__((target("avx2"))))
 #endif
 DW_KERNELS(base, )
+DW_COPIES(base, )
 
 static dw_kernels kernels_for(rc__isa level) {
 #if defined(__GNUC__) && defined(__x86_64__)
-  if (level == RC_ISA_AVX512) return (dw_kernels){apply_avx512, dots_avx512};
-  if (level == RC_ISA_AVX2) return (dw_kernels){apply_avx2, dots_avx2};
+  if (level == RC_ISA_AVX512) return (dw_kernels){apply_avx512, dots_avx512, move_avx512, to_run_avx512};
+  if (level == RC_ISA_AVX2) return (dw_kernels){apply_avx2, dots_avx2, move_avx2, to_run_avx2};
 #endif
   (void)level;
-  return (dw_kernels){apply_base, dots_base};
+  return (dw_kernels){apply_base, dots_base, move_base, to_run_base};
 }
 
-/* One plane's geometry on the phase grid. */
-typedef struct dw_plane {
-  int64_t H, W, Ho, Wo, KH, KW, sh, sw, dh, dw, ph, pw;
-  int64_t Hp, Wp;   /* the bordered plane */
-  int64_t Hq, Wq;   /* one phase */
-  int64_t grid;     /* floats of all phases: sh*sw*Hq*Wq */
-  int64_t flat;     /* cells of one tap's run: (Ho-1)*Wq + Wo */
-  int64_t margin;   /* zeros before the output gradient's run: the largest tap shift */
-  int64_t run_size; /* floats of that run with its margin: margin + Hq*Wq */
-} dw_plane;
 
 static dw_plane plane_of(const rc__conv_geom *g) {
   const rc__patch *p = &g->p;
@@ -207,38 +296,6 @@ static int team_size(int64_t items, size_t per, size_t work_bytes) {
   return t > 1 ? (int)t : 1;
 }
 
-/* Moves the cells of x (H, W) that windows read to or from the phase grid
- * xq, one row and one column phase at a time: phase b of a row holds the
- * input columns q*sw + b - pw, a strided run the compiler turns into
- * vector loads or stores. The grid's other cells are left as they are. */
-static void move_cells(float *xq, float *x, const dw_plane *d, int into_grid) {
-  int64_t n = d->W;
-  if (d->pw + n > d->Wp) n = d->Wp - d->pw;
-  const int64_t phase = d->Hq * d->Wq, sw = d->sw;
-  for (int64_t r = 0; r < d->H && n > 0; r++) {
-    const int64_t R = r + d->ph;
-    if (R >= d->Hp) break;
-    float *xr = x + r * d->W, *row = xq + (R % d->sh) * sw * phase + (R / d->sh) * d->Wq;
-    if (sw == 1) {
-      if (into_grid)
-        memcpy(row + d->pw, xr, sizeof(float) * (size_t)n);
-      else
-        memcpy(xr, row + d->pw, sizeof(float) * (size_t)n);
-      continue;
-    }
-    for (int64_t b = 0; b < sw; b++) {
-      /* q with 0 <= q*sw + b - pw < n */
-      const int64_t lo = d->pw > b ? (d->pw - b + sw - 1) / sw : 0, hi = (n + d->pw - b + sw - 1) / sw;
-      float *dst = row + b * phase;
-      const int64_t shift = b - d->pw;
-      if (into_grid)
-        for (int64_t q = lo; q < hi; q++) dst[q] = xr[q * sw + shift];
-      else
-        for (int64_t q = lo; q < hi; q++) xr[q * sw + shift] = dst[q];
-    }
-  }
-}
-
 /* The taps of a window in order, as offsets into the phase grid. */
 static void forward_taps(const dw_plane *d, int64_t *off) {
   for (int64_t kh = 0; kh < d->KH; kh++)
@@ -278,7 +335,7 @@ void rc__depthwise_forward(const rc__conv_geom *g, float *y, const float *x, con
     for (int64_t pl = 0; pl < planes; pl++) {
       const int64_t c = pl % g->C;
       dw_stencil s = {xq, off, w + c * K, (int)K};
-      move_cells(xq, (float *)(x + pl * g->in_sp), &d, 1);
+      f.move(xq, (float *)(x + pl * g->in_sp), &d, 1);
       plane_forward(&f, &d, y + pl * g->out_sp, &s, b ? b[c] : 0.0f, run);
       if (ep) rc__epilogue_apply(ep, y, pl, pl + 1, g->C, g->out_sp); /* the plane is still in cache */
     }
@@ -310,12 +367,6 @@ static void backward_taps(const dw_plane *d, dw_back_taps *bt) {
   bt->start[bt->phases] = k;
 }
 
-/* run <- dy (Ho, Wo) at row stride Wq; the cells around stay zero. */
-static void to_run(float *run, const float *dy, const dw_plane *d) {
-  for (int64_t oy = 0; oy < d->Ho; oy++)
-    for (int64_t ox = 0; ox < d->Wo; ox++) run[oy * d->Wq + ox] = dy[oy * d->Wo + ox];
-}
-
 /* dx += the taps' w-weighted gather of the run. At stride 1 with rows long
  * enough, straight into dx's rows (those windows reach); otherwise through
  * dx's phase grid, one phase at a time. */
@@ -333,7 +384,7 @@ static void plane_input_grad(const dw_kernels *f, const dw_plane *d, const dw_ba
     }
     return;
   }
-  move_cells(dxq, dx, d, 1);
+  f->move(dxq, dx, d, 1);
   const int64_t phase = d->Hq * d->Wq;
   for (int ph = 0; ph < bt->phases; ph++) {
     const int lo = bt->start[ph];
@@ -341,7 +392,7 @@ static void plane_input_grad(const dw_kernels *f, const dw_plane *d, const dw_ba
     dw_stencil s = {run, bt->off + lo, wt + lo, bt->start[ph + 1] - lo};
     f->apply(dxq + ph * phase, dxq + ph * phase, 0.0f, &s, phase);
   }
-  move_cells(dxq, dx, d, 0);
+  f->move(dxq, dx, d, 0);
 }
 
 /* acc[tap] += the plane's 16 lanes of <run of dy, tap's run of xq>, summed. */
@@ -383,10 +434,10 @@ void rc__depthwise_backward(const rc__conv_geom *g, float *dx, float *dw, const 
       const dw_stencil s = {xq, off, NULL, (int)K};
       for (int64_t n = 0; n < g->N; n++) {
         const int64_t pl = n * C + c;
-        to_run(run, dy + pl * g->out_sp, &d);
+        f.to_run(run, dy + pl * g->out_sp, &d);
         if (dx) plane_input_grad(&f, &d, &bt, dx + pl * g->in_sp, dxq, run, w + c * K);
         if (dw) {
-          move_cells(xq, (float *)(x + pl * g->in_sp), &d, 1);
+          f.move(xq, (float *)(x + pl * g->in_sp), &d, 1);
           plane_weight_grad(&f, &d, acc, &s, run);
         }
       }
