@@ -1,5 +1,6 @@
-/* Depthwise convolution (one input and one output channel per group) with
- * direct vector kernels, for one or two spatial axes.
+/* Depthwise convolution (one input channel per group, one or more output
+ * channels per group) with direct vector kernels, for one or two spatial
+ * axes.
  *
  * Each input plane is copied into a zero-bordered grid that covers every
  * cell a window reads, split by stride phase: cell (R, C) of the bordered
@@ -30,7 +31,9 @@
  * taps in order, starting from the bias or dx's own value) and give its
  * bits too; the weight gradient sums in another order.
  *
- * Shapes: x (N,C,H,W), w (C,1,KH,KW), b (C), y (N,C,Ho,Wo); 1-D is H = 1. */
+ * Shapes: x (N,C,H,W), w (M,1,KH,KW), b (M), y (N,M,Ho,Wo) with M a multiple
+ * of C (group = C; output channel m reads input channel m / (M/C)); 1-D is
+ * H = 1. */
 #include <omp.h>
 #include <string.h>
 
@@ -271,8 +274,8 @@ static int64_t tap_shift(const dw_plane *d, int64_t kh, int64_t kw) {
 }
 
 int rc__depthwise_fits(const rc__conv_geom *g) {
-  return rc__conv_depthwise(g) && g->p.k[0] == 1 && g->p.img[0] == 1 && g->p.pos[0] == 1 && g->out_sp > 0 &&
-         g->K <= RC_DEPTHWISE_MAX_TAPS;
+  return g->Cg == 1 && g->G == g->C && g->G > 1 && g->Mg >= 1 && g->p.k[0] == 1 && g->p.img[0] == 1 &&
+         g->p.pos[0] == 1 && g->out_sp > 0 && g->Mg * g->K <= RC_DEPTHWISE_MAX_TAPS;
 }
 
 /* Floats per thread. Forward: the input's phase grid and a flat run.
@@ -322,9 +325,9 @@ void rc__depthwise_forward(const rc__conv_geom *g, float *y, const float *x, con
                            float *work, size_t work_bytes, const rc__epilogue *ep) {
   const dw_plane d = plane_of(g);
   const dw_kernels f = kernels_for(rc__isa_level());
-  const int64_t planes = g->N * g->C, K = g->K;
+  const int64_t planes = g->N * g->C, K = g->K, mult = g->Mg;
   const size_t per = thread_floats(&d, 0);
-  const int T = planes * K * g->out_sp > 32768 ? team_size(planes, per, work_bytes) : 1;
+  const int T = planes * mult * K * g->out_sp > 32768 ? team_size(planes, per, work_bytes) : 1;
   int64_t off[RC_DEPTHWISE_MAX_TAPS];
   forward_taps(&d, off);
 #pragma omp parallel num_threads(T) if (T > 1)
@@ -333,11 +336,13 @@ void rc__depthwise_forward(const rc__conv_geom *g, float *y, const float *x, con
     memset(xq, 0, sizeof(float) * (size_t)d.grid);
 #pragma omp for schedule(static)
     for (int64_t pl = 0; pl < planes; pl++) {
-      const int64_t c = pl % g->C;
-      dw_stencil s = {xq, off, w + c * K, (int)K};
       f.move(xq, (float *)(x + pl * g->in_sp), &d, 1);
-      plane_forward(&f, &d, y + pl * g->out_sp, &s, b ? b[c] : 0.0f, run);
-      if (ep) rc__epilogue_apply(ep, y, pl, pl + 1, g->C, g->out_sp); /* the plane is still in cache */
+      /* input plane (n, c) feeds output planes (n, c*mult + j) */
+      for (int64_t j = 0, m = (pl % g->C) * mult, out = pl * mult; j < mult; j++, m++, out++) {
+        dw_stencil s = {xq, off, w + m * K, (int)K};
+        plane_forward(&f, &d, y + out * g->out_sp, &s, b ? b[m] : 0.0f, run);
+        if (ep) rc__epilogue_apply(ep, y, out, out + 1, g->M, g->out_sp); /* the plane is still in cache */
+      }
     }
   }
 }
@@ -417,9 +422,9 @@ void rc__depthwise_backward(const rc__conv_geom *g, float *dx, float *dw, const 
                             const float *dy, float *work, size_t work_bytes) {
   const dw_plane d = plane_of(g);
   const dw_kernels f = kernels_for(rc__isa_level());
-  const int64_t K = g->K, C = g->C;
+  const int64_t K = g->K, C = g->C, mult = g->Mg;
   const size_t per = thread_floats(&d, 1);
-  const int T = g->N * C * K * g->out_sp > 32768 ? team_size(C, per, work_bytes) : 1;
+  const int T = g->N * C * mult * K * g->out_sp > 32768 ? team_size(C, per, work_bytes) : 1;
   int64_t off[RC_DEPTHWISE_MAX_TAPS];
   forward_taps(&d, off);
   dw_back_taps bt;
@@ -430,19 +435,19 @@ void rc__depthwise_backward(const rc__conv_geom *g, float *dx, float *dw, const 
     memset(xq, 0, sizeof(float) * per);
 #pragma omp for schedule(static)
     for (int64_t c = 0; c < C; c++) {
-      double acc[RC_DEPTHWISE_MAX_TAPS] = {0};
+      double acc[RC_DEPTHWISE_MAX_TAPS] = {0}; /* (mult, K): the channel's output channels */
       const dw_stencil s = {xq, off, NULL, (int)K};
       for (int64_t n = 0; n < g->N; n++) {
         const int64_t pl = n * C + c;
-        f.to_run(run, dy + pl * g->out_sp, &d);
-        if (dx) plane_input_grad(&f, &d, &bt, dx + pl * g->in_sp, dxq, run, w + c * K);
-        if (dw) {
-          f.move(xq, (float *)(x + pl * g->in_sp), &d, 1);
-          plane_weight_grad(&f, &d, acc, &s, run);
+        if (dw) f.move(xq, (float *)(x + pl * g->in_sp), &d, 1);
+        for (int64_t j = 0, m = c * mult; j < mult; j++, m++) {
+          f.to_run(run, dy + (n * g->M + m) * g->out_sp, &d);
+          if (dx) plane_input_grad(&f, &d, &bt, dx + pl * g->in_sp, dxq, run, w + m * K);
+          if (dw) plane_weight_grad(&f, &d, acc + j * K, &s, run);
         }
       }
       if (dw)
-        for (int64_t k = 0; k < K; k++) dw[c * K + k] += (float)acc[k];
+        for (int64_t k = 0; k < mult * K; k++) dw[c * mult * K + k] += (float)acc[k];
     }
   }
 }
