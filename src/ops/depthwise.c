@@ -101,12 +101,21 @@ static inline RC_DW_INLINE void move_body(float *xq, float *x, const dw_plane *d
   for (int64_t r = 0; r < d->H && n > 0; r++) {
     const int64_t R = r + d->ph;
     if (R >= d->Hp) break;
-    float *xr = x + r * d->W, *row = xq + (R % d->sh) * sw * phase + (R / d->sh) * d->Wq;
-    if (sw == 1) {
+    /* no divisions at stride 1: small planes are mostly per-row cost */
+    float *xr = x + r * d->W, *row = d->sh == 1 ? xq + R * d->Wq : xq + (R % d->sh) * sw * phase + (R / d->sh) * d->Wq;
+    if (sw == 1 && n >= 4 * LANES) {
       if (into_grid)
         memcpy(row + d->pw, xr, sizeof(float) * (size_t)n);
       else
         memcpy(xr, row + d->pw, sizeof(float) * (size_t)n);
+      continue;
+    }
+    if (sw == 1) { /* short rows: an inline loop costs less than the call */
+      float *g = row + d->pw;
+      if (into_grid)
+        for (int64_t q = 0; q < n; q++) g[q] = xr[q];
+      else
+        for (int64_t q = 0; q < n; q++) xr[q] = g[q];
       continue;
     }
     if (sw == 2) {
@@ -400,17 +409,25 @@ static void plane_input_grad(const dw_kernels *f, const dw_plane *d, const dw_ba
   f->move(dxq, dx, d, 0);
 }
 
-/* acc[tap] += the plane's 16 lanes of <run of dy, tap's run of xq>, summed. */
+/* acc[tap][lane] += the plane's 16 lanes of <run of dy, tap's run of xq>:
+ * lanes are summed over the batch in double and folded once per channel
+ * (fold_lanes), not per plane, which cost more than the dots on 4x4 maps. */
 static void plane_weight_grad(const dw_kernels *f, const dw_plane *d, double *acc, const dw_stencil *s,
                               const float *run) {
   float lanes[RC_DEPTHWISE_MAX_TAPS * LANES];
-  memset(lanes, 0, sizeof(float) * LANES * (size_t)s->taps);
+  const int cells = s->taps * LANES;
+  memset(lanes, 0, sizeof(float) * (size_t)cells);
   f->dots(lanes, run, s, d->flat);
-  for (int t = 0; t < s->taps; t++) {
-    float *l = lanes + t * LANES;
+  for (int i = 0; i < cells; i++) acc[i] += lanes[i];
+}
+
+/* dw[tap] += the sum of the tap's lanes, in a fixed order. */
+static void fold_lanes(float *dw, double *acc, int64_t taps) {
+  for (int64_t t = 0; t < taps; t++) {
+    double *l = acc + t * LANES;
     for (int half = LANES / 2; half >= 1; half /= 2)
       for (int i = 0; i < half; i++) l[i] += l[i + half];
-    acc[t] += l[0];
+    dw[t] += (float)l[0];
   }
 }
 
@@ -435,7 +452,8 @@ void rc__depthwise_backward(const rc__conv_geom *g, float *dx, float *dw, const 
     memset(xq, 0, sizeof(float) * per);
 #pragma omp for schedule(static)
     for (int64_t c = 0; c < C; c++) {
-      double acc[RC_DEPTHWISE_MAX_TAPS] = {0}; /* (mult, K): the channel's output channels */
+      double acc[RC_DEPTHWISE_MAX_TAPS * LANES]; /* (mult, K, LANES): the channel's output channels */
+      if (dw) memset(acc, 0, sizeof(double) * (size_t)(mult * K * LANES));
       const dw_stencil s = {xq, off, NULL, (int)K};
       for (int64_t n = 0; n < g->N; n++) {
         const int64_t pl = n * C + c;
@@ -443,11 +461,10 @@ void rc__depthwise_backward(const rc__conv_geom *g, float *dx, float *dw, const 
         for (int64_t j = 0, m = c * mult; j < mult; j++, m++) {
           f.to_run(run, dy + (n * g->M + m) * g->out_sp, &d);
           if (dx) plane_input_grad(&f, &d, &bt, dx + pl * g->in_sp, dxq, run, w + m * K);
-          if (dw) plane_weight_grad(&f, &d, acc + j * K, &s, run);
+          if (dw) plane_weight_grad(&f, &d, acc + j * K * LANES, &s, run);
         }
       }
-      if (dw)
-        for (int64_t k = 0; k < mult * K; k++) dw[c * mult * K + k] += (float)acc[k];
+      if (dw) fold_lanes(dw + c * mult * K, acc, mult * K);
     }
   }
 }
