@@ -287,12 +287,15 @@ int rc__depthwise_fits(const rc__conv_geom *g) {
          g->p.pos[0] == 1 && g->out_sp > 0 && g->Mg * g->K <= RC_DEPTHWISE_MAX_TAPS;
 }
 
-/* Floats per thread. Forward: the input's phase grid and a flat run.
+static int64_t round_lanes(int64_t n) { return (n + LANES - 1) / LANES * LANES; }
+
+/* Floats per thread. Forward: the input's phase grid and a flat run (in
+ * whole vectors).
  * Backward: the input's and the input gradient's phase grids and the output
  * gradient's run with its margin. */
 static size_t thread_floats(const dw_plane *d, int backward) {
   if (backward) return (size_t)d->grid * 2 + (size_t)d->run_size;
-  return (size_t)d->grid + (size_t)d->Hq * (size_t)d->Wq;
+  return (size_t)d->grid + (size_t)round_lanes(d->Hq * d->Wq);
 }
 
 size_t rc__depthwise_workspace(const rc__conv_geom *g, int backward, int threads) {
@@ -325,7 +328,10 @@ static void plane_forward(const dw_kernels *f, const dw_plane *d, float *y, dw_s
     s->src = xq;
     return;
   }
-  f->apply(run, NULL, bias, s, d->flat);
+  /* Whole vectors: lanes past the run read at most LANES - 1 floats past the
+   * grid (into run) and are dropped; 8x8 maps and below otherwise ran the
+   * one-lane tail loop for most of their cells. */
+  f->apply(run, NULL, bias, s, round_lanes(d->flat));
   for (int64_t oy = 0; oy < d->Ho; oy++)
     for (int64_t ox = 0; ox < d->Wo; ox++) y[oy * d->Wo + ox] = run[oy * d->Wq + ox];
 }
