@@ -139,8 +139,7 @@ static void a_dw_s2(oh_case *c) {
 }
 /* F.conv2d(stride=2, padding=1, groups=3), also with 6 output channels */
 static void a_dw_rows_s2(oh_case *c) {
-  ints(c, "strides", 2, 2, 2, 0, 0);
-  ints(c, "pads", 4, 1, 1, 1, 1);
+  a_s2_pad1(c);
   oh_attr_int(c, "group", 3);
 }
 /* F.conv2d(dilation=2, groups=4) */
