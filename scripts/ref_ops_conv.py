@@ -99,6 +99,18 @@ def main():
     run_case(w, gen, "conv1d_dw",
              lambda x, k, b: F.conv1d(x, k, b, padding=2, dilation=2, groups=4),
              [("x", draw(gen, 3, 4, 17)), ("w", draw(gen, 4, 1, 5)), ("b", draw(gen, 4))])
+    # Depthwise: a channel multiplier of 2 (group = in channels, out = 2x in);
+    # rows of 16 outputs or more (computed row by row): stride 2, and stride 1
+    # with dilation 2 and no padding.
+    run_case(w, gen, "conv2d_dw_rows_s2",
+             lambda x, k, b: F.conv2d(x, k, b, stride=2, padding=1, groups=3),
+             [("x", draw(gen, 2, 3, 35, 33)), ("w", draw(gen, 3, 1, 3, 3)), ("b", draw(gen, 3))])
+    run_case(w, gen, "conv2d_dw_mult2",
+             lambda x, k, b: F.conv2d(x, k, b, stride=2, padding=1, groups=3),
+             [("x", draw(gen, 2, 3, 7, 9)), ("w", draw(gen, 6, 1, 3, 3)), ("b", draw(gen, 6))])
+    run_case(w, gen, "conv2d_dw_rows_dil2",
+             lambda x, k, b: F.conv2d(x, k, b, dilation=2, groups=4),
+             [("x", draw(gen, 2, 4, 9, 21)), ("w", draw(gen, 4, 1, 3, 3)), ("b", draw(gen, 4))])
     run_case(w, gen, "conv1d",
              lambda x, k, b: F.conv1d(x, k, b, stride=2, padding=1),
              [("x", draw(gen, 3, 2, 10)), ("w", draw(gen, 4, 2, 3)), ("b", draw(gen, 4))])

@@ -1,7 +1,8 @@
 /* Conv's fast paths against its plain per-sample path, forward and both
  * backward products: the batched GEMM path (1x1 and general convolutions,
  * several samples per GEMM, chunks with a remainder), the direct
- * depthwise kernels (stride 1 on the flat grid, other strides row by row)
+ * depthwise kernels (short rows as one flat run, rows of 16 or more one by
+ * one; input gradient straight into dx at stride 1, phase by phase otherwise)
  * and, in builds with oneDNN, its convolutions (RECOUP_CONV_PATH=dnnl;
  * channels in blocks of 16 take its reordered blocked layouts), each run
  * also through a kept state as a plan keeps it,
@@ -14,7 +15,9 @@
  * ones, so those compare within 1e-5 * (1 + |value|) (forward) and
  * 1e-4 * (1 + |value|) (gradients, sums over the batch). The depthwise
  * forward and input gradient add in the plain path's order and must agree
- * exactly; its weight gradient sums in 16 lanes, within 1e-4. Instruction
+ * exactly; its weight gradient sums in 16 lanes, within 1e-4. With several
+ * output channels per group (a channel multiplier) the plain path is the
+ * GEMMs: the batched tolerances. Instruction
  * sets must agree bit for bit (no contraction into multiply-add, fixed lane
  * order). */
 #define _POSIX_C_SOURCE 200112L
@@ -95,7 +98,9 @@ static void one_case(const path_case *pc) {
       CHECK_EQ(fast[lv].n[i], plain.n[i]);
       if (fast[lv].n[i] != plain.n[i]) continue;
       double tol = i == 0 ? 1e-5 : 1e-4;
-      if (pc->depthwise && i < 2) tol = 0; /* same additions in the same order */
+      /* same additions in the same order (one output channel per group: the
+       * plain path's tap walk; with more, it takes the GEMMs) */
+      if (pc->depthwise && pc->cout == pc->group && i < 2) tol = 0;
       CHECK_EQ(compare(pc->name, isa_env[lv], i, fast[lv].v[i], plain.v[i], plain.n[i], tol), 0);
       /* Every level gives the lowest level's bits. */
       if (lv > 0) CHECK_MEM_EQ(fast[lv].v[i], fast[0].v[i], sizeof(float) * (size_t)plain.n[i]);
@@ -144,7 +149,17 @@ static void paths_agree(void) {
       {"depthwise 2x2 tiny", 2, 3, 3, 3, 2, {2, 2}, {3, 3}, {0}, {0}, {1, 1, 1, 1}, 1, 1},
       {"depthwise 32x32", 2, 3, 3, 3, 2, {32, 32}, {3, 3}, {0}, {0}, {1, 1, 1, 1}, 1, 1},
       {"depthwise big end pad", 2, 2, 2, 2, 2, {5, 6}, {3, 3}, {3, 1}, {0}, {0, 1, 4, 2}, 1, 1},
-      {"depth multiplier 2", 2, 3, 6, 3, 2, {6, 6}, {3, 3}, {0}, {0}, {1, 1, 1, 1}, 1, 0},
+      /* rows of 16 outputs or more: computed row by row (stride 1 input gradient too) */
+      {"depthwise rows s2", 2, 3, 3, 3, 2, {35, 33}, {3, 3}, {2, 2}, {0}, {1, 1, 1, 1}, 1, 1},
+      {"depthwise rows dil2 pad0", 2, 4, 4, 4, 2, {9, 21}, {3, 3}, {0}, {2, 2}, {0, 0, 0, 0}, 1, 1},
+      {"depthwise rows pad2 b1", 1, 3, 3, 3, 2, {7, 20}, {3, 3}, {0}, {0}, {2, 2, 2, 2}, 0, 1},
+      {"depthwise 1-D rows s2", 2, 3, 3, 3, 1, {40}, {3}, {2}, {0}, {1, 1}, 1, 1},
+      {"depthwise 7x7 pad0", 3, 4, 4, 4, 2, {7, 7}, {3, 3}, {0}, {0}, {0, 0, 0, 0}, 1, 1},
+      {"depthwise 5x9 s2 pad2", 2, 3, 3, 3, 2, {5, 9}, {3, 3}, {2, 2}, {0}, {2, 2, 2, 2}, 1, 1},
+      {"depthwise 7x7 s2 dil2", 2, 3, 3, 3, 2, {7, 7}, {3, 3}, {2, 2}, {2, 2}, {1, 1, 1, 1}, 1, 1},
+      {"depth multiplier 2", 2, 3, 6, 3, 2, {6, 6}, {3, 3}, {0}, {0}, {1, 1, 1, 1}, 1, 1},
+      {"depth mult 3 s2 rows", 2, 2, 6, 2, 2, {9, 34}, {3, 3}, {2, 2}, {0}, {1, 1, 1, 1}, 1, 1},
+      {"depth mult 2 dil2 b1", 1, 4, 8, 4, 2, {7, 5}, {3, 3}, {0}, {2, 2}, {2, 2, 2, 2}, 0, 1},
       /* channels in oneDNN's blocks of 16: its direct kernels, with reorders */
       {"blocked 16-32 s2", 3, 16, 32, 1, 2, {9, 9}, {3, 3}, {2, 2}, {0}, {1, 1, 1, 1}, 1, 0},
       {"blocked groups 2 dil", 2, 32, 32, 2, 2, {7, 6}, {3, 3}, {0}, {2, 2}, {2, 2, 2, 2}, 0, 0},

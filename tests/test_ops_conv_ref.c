@@ -127,6 +127,16 @@ static void a_dw_s2(oh_case *c) {
   ints(c, "pads", 4, 1, 2, 1, 2);
   oh_attr_int(c, "group", 6);
 }
+/* F.conv2d(stride=2, padding=1, groups=3), also with 6 output channels */
+static void a_dw_rows_s2(oh_case *c) {
+  a_s2_pad1(c);
+  oh_attr_int(c, "group", 3);
+}
+/* F.conv2d(dilation=2, groups=4) */
+static void a_dw_rows_dil2(oh_case *c) {
+  ints(c, "dilations", 2, 2, 2, 0, 0);
+  oh_attr_int(c, "group", 4);
+}
 /* F.conv1d(padding=2, dilation=2, groups=4) */
 static void a_dw_1d(oh_case *c) {
   ints(c, "pads", 2, 2, 2, 0, 0);
@@ -201,6 +211,9 @@ static const ref_case cases[] = {
     {"conv2d_dw_s1", "Conv", 13, {"x", "w", "b"}, a_dw_s1, 0},
     {"conv2d_dw_s2_b1", "Conv", 13, {"x", "w", "b"}, a_dw_s2, 0},
     {"conv1d_dw", "Conv", 13, {"x", "w", "b"}, a_dw_1d, 0},
+    {"conv2d_dw_mult2", "Conv", 13, {"x", "w", "b"}, a_dw_rows_s2, 0},
+    {"conv2d_dw_rows_s2", "Conv", 13, {"x", "w", "b"}, a_dw_rows_s2, 0},
+    {"conv2d_dw_rows_dil2", "Conv", 13, {"x", "w", "b"}, a_dw_rows_dil2, 0},
     {"conv2d_blocked_s2", "Conv", 13, {"x", "w", "b"}, a_s2_pad1, 0},
     {"conv2d_blocked_group_dil", "Conv", 13, {"x", "w", "b"}, a_group_dil, 0},
     {"conv2d_blocked_b1", "Conv", 13, {"x", "w", "b"}, a_pad1, 0},

@@ -371,7 +371,7 @@ static int sample_threads(const rc_kernel *k, const rc__conv_geom *g, size_t per
 
 /* Whether oneDNN is asked to take this Conv (it may still refuse a shape). */
 static int dnnl_chosen(const rc__conv_geom *g) {
-  return rc__conv_path_choice() == RC_CONV_PATH_DNNL && rc__conv_dnnl_fits(g);
+  return rc__conv_path_choice() == RC_CONV_PATH_DNNL && rc__conv_dnnl_fits(g) && !rc__depthwise_fits(g);
 }
 
 static size_t conv_workspace(const rc_kernel *k, int backward) {
@@ -395,7 +395,11 @@ static size_t conv_workspace(const rc_kernel *k, int backward) {
   const size_t per_sample = sizeof(float) * (size_t)t * thread_floats(&g, backward);
   const int64_t nb = rc__conv_chunk(&g);
   const size_t chunk = nb > 1 ? rc__conv_chunk_bytes(&g, nb, backward, (int)t) : 0;
-  const size_t own = chunk > per_sample ? chunk : per_sample;
+  size_t own = chunk > per_sample ? chunk : per_sample;
+  /* A depthwise Conv with several output channels per group: the direct
+   * kernels, or the per-sample path (reference) */
+  const size_t direct = rc__depthwise_fits(&g) ? rc__depthwise_workspace(&g, backward, omp_get_max_threads()) : 0;
+  if (direct > own) own = direct;
   return dnnl > own ? dnnl : own;
 }
 

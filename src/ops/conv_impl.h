@@ -82,8 +82,10 @@ void rc__conv_chunk_backward(const rc__conv_geom *g, int64_t nb, int threads, fl
 /* Kernel cells the direct depthwise kernels take (a 9x9 window is 81). */
 #define RC_DEPTHWISE_MAX_TAPS 128
 
-/* Non-zero when the direct kernels can serve this depthwise Conv: one or
- * two spatial axes, at most RC_DEPTHWISE_MAX_TAPS cells. */
+/* Non-zero when the direct kernels can serve this depthwise Conv (one
+ * input channel per group, one or more output channels): one or two
+ * spatial axes, at most RC_DEPTHWISE_MAX_TAPS cells for all output channels
+ * of a group. */
 int rc__depthwise_fits(const rc__conv_geom *g);
 /* Workspace for forward (backward = 0) or backward (1) on `threads` threads. */
 size_t rc__depthwise_workspace(const rc__conv_geom *g, int backward, int threads);
