@@ -39,6 +39,15 @@ void rc__epilogue_row(const rc__epilogue *ep, float *z, const float *y, int64_t 
 void rc__epilogue_mask_row(const rc__epilogue *ep, float *g, const float *y, const float *dz, int64_t P, float a,
                            float c);
 
+/* A normalisation's input gradient for one row of channel m, from its
+ * activation's output gradient dz: dx (P) += a * (g - mdy - (x - mean) *
+ * inv * mdyx) with g = dz where the activation passes it at x * a + c. */
+typedef struct rc__norm_dx {
+  float a, c, mean, inv, mdy, mdyx;
+} rc__norm_dx;
+void rc__epilogue_norm_dx_row(const rc__epilogue *ep, float *dx, const float *x, const float *dz, int64_t P,
+                              const rc__norm_dx *r);
+
 /* The chain's backward from dz (N, M, P), one pass over each row:
  * g = dz where the activation passes it (else 0); dy += a[m] * g (dy may be
  * NULL); when sdy is given, per channel sdy[m] = sum g and

@@ -334,14 +334,20 @@ static void bn_channel_grad_sums(const bn_back *t, int64_t c, double *sg, double
   *sgx = sx;
 }
 
-/* dx += a * (g - mean(g) - xhat * mean(g * xhat)) over channel c. */
+/* dx += a * (g - mean(g) - xhat * mean(g * xhat)) over channel c; with a
+ * fused activation the mask is taken inside the same loop. */
 static void bn_channel_dx(const bn_back *t, int64_t c, float mdy, float mdyx) {
   const float mean = t->mean[c], inv = t->inv[c], a = t->scale[c] * inv;
+  const rc__norm_dx r = {a, t->bias[c] - mean * a, mean, inv, mdy, mdyx};
+  const int64_t S = t->S;
   for (int64_t n = 0; n < t->N; n++) {
-    const int64_t off = (n * t->C + c) * t->S;
-    const float *gr = bn_grad_row(t, c, off), *xr = t->x + off;
-    float *d = t->dx + off;
-    for (int64_t j = 0; j < t->S; j++) d[j] += a * (gr[j] - mdy - (xr[j] - mean) * inv * mdyx);
+    const int64_t off = (n * t->C + c) * S;
+    const float *gr = t->dy + off, *xr = t->x + off;
+    float *restrict d = t->dx + off;
+    if (t->ep)
+      rc__epilogue_norm_dx_row(t->ep, d, xr, gr, S, &r);
+    else
+      for (int64_t j = 0; j < S; j++) d[j] += a * (gr[j] - mdy - (xr[j] - mean) * inv * mdyx);
   }
 }
 
