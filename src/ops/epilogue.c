@@ -104,39 +104,6 @@ void rc__epilogue_mask_row(const rc__epilogue *ep, float *restrict g, const floa
   act_mask(ep, g, y, dz, P, a, c, 1);
 }
 
-/* dx (P) += a * (g - mdy - (x - mean) * inv * mdyx), g = dz where the
- * activation passes it at u = x * a + c: the expression of
- * BatchNormalization's backward (norm.c) with the mask taken in the same
- * loop, so that g is never stored. */
-static inline void relu_norm_dx(float *restrict dx, const float *x, const float *dz, int64_t P,
-                                const rc__norm_dx *r) {
-  const float a = r->a, c = r->c, mean = r->mean, inv = r->inv, mdy = r->mdy, mdyx = r->mdyx;
-  for (int64_t j = 0; j < P; j++) {
-    const float u = x[j] * a + c, d = dz[j], g = u > 0.0f ? d : 0.0f;
-    dx[j] += a * (g - mdy - (x[j] - mean) * inv * mdyx);
-  }
-}
-
-static inline void clip_norm_dx(float *restrict dx, const float *x, const float *dz, int64_t P, const rc__norm_dx *r,
-                                float lo, float hi) {
-  const float a = r->a, c = r->c, mean = r->mean, inv = r->inv, mdy = r->mdy, mdyx = r->mdyx;
-  for (int64_t j = 0; j < P; j++) {
-    const float u = x[j] * a + c, d = dz[j], g = (u >= lo) & (u <= hi) ? d : 0.0f;
-    dx[j] += a * (g - mdy - (x[j] - mean) * inv * mdyx);
-  }
-}
-
-void rc__epilogue_norm_dx_row(const rc__epilogue *ep, float *dx, const float *x, const float *dz, int64_t P,
-                              const rc__norm_dx *r) {
-  if (ep->act == RC_EPI_RELU) {
-    relu_norm_dx(dx, x, dz, P, r);
-  } else if (ep->act == RC_EPI_CLIP) {
-    clip_norm_dx(dx, x, dz, P, r, ep->lo, ep->hi);
-  } else {
-    for (int64_t j = 0; j < P; j++) dx[j] += r->a * (dz[j] - r->mdy - (x[j] - r->mean) * r->inv * r->mdyx);
-  }
-}
-
 /* y, dz (N, M, P) -> dy (N, M, P) += a * g; sums per channel. */
 void rc__epilogue_backward(const rc__epilogue *ep, float *dy, double *sdy, double *sdx, const float *mean,
                            const float *y, const float *dz, int64_t N, int64_t M, int64_t P, float *rows,

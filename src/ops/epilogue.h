@@ -39,15 +39,6 @@ void rc__epilogue_row(const rc__epilogue *ep, float *z, const float *y, int64_t 
 void rc__epilogue_mask_row(const rc__epilogue *ep, float *g, const float *y, const float *dz, int64_t P, float a,
                            float c);
 
-/* A normalisation's input gradient for one row of channel m, from its
- * activation's output gradient dz: dx (P) += a * (g - mdy - (x - mean) *
- * inv * mdyx) with g = dz where the activation passes it at x * a + c. */
-typedef struct rc__norm_dx {
-  float a, c, mean, inv, mdy, mdyx;
-} rc__norm_dx;
-void rc__epilogue_norm_dx_row(const rc__epilogue *ep, float *dx, const float *x, const float *dz, int64_t P,
-                              const rc__norm_dx *r);
-
 /* The chain's backward from dz (N, M, P), one pass over each row:
  * g = dz where the activation passes it (else 0); dy += a[m] * g (dy may be
  * NULL); when sdy is given, per channel sdy[m] = sum g and
@@ -74,11 +65,10 @@ void rc__bn_frozen_param_grads(const rc_kernel *k, const double *sdy, const doub
 /* A BatchNormalization with batch statistics and the activation after it
  * as one step (norm.c): forward writes only ep->z = act(normalised x);
  * backward takes dz, the activation's output gradient, and gives what the
- * two ops' backward would (rows: `threads` scratch rows of the spatial
- * size). ep->a and ep->c are not used: the batch gives them. */
+ * two ops' backward would (its own output gradient set to the masked dz on
+ * the way). ep->a and ep->c are not used: the batch gives them. */
 rc_status rc__bn_batch_forward_fused(const rc_kernel *k, const rc__epilogue *ep, rc_err *e);
-void rc__bn_batch_backward_fused(const rc_kernel *k, const rc__epilogue *ep, const float *dz, float *rows,
-                                 int threads);
+void rc__bn_batch_backward_fused(const rc_kernel *k, const rc__epilogue *ep, const float *dz);
 
 /* Clip's bounds as the node gives them (activation.c), NaN left as it is. */
 void rc__clip_bounds(const rc_kernel *k, float *lo, float *hi);

@@ -5,7 +5,6 @@
  * takes both from one read of each row (bn_channel_moments). Per-row or
  * per-channel mean and 1/sqrt(var + eps) are kept in k->saved for backward. */
 #include <math.h>
-#include <omp.h>
 #include <string.h>
 
 #include "ops/broadcast.h"
@@ -302,52 +301,47 @@ static rc_status bn_forward(const rc_kernel *k, rc_err *e) {
 
 /* What the backward of one normalisation reads: g is dy, or with a fused
  * activation (ep) dz masked where the activation passed it, its input
- * recomputed from x with forward's own a and b (the same bits). rows:
- * scratch of one row of S floats per thread when ep is given. */
+ * recomputed from x with forward's own a and b (the same bits). The masked
+ * gradient is written where the activation's backward would put it, the
+ * normalisation's own output gradient (dy), row by row as the sums reach
+ * it, so the input-gradient pass reads it like the unfused one. */
 typedef struct bn_back {
   int64_t N, C, S;
-  const float *x, *dy, *scale, *bias, *mean, *inv;
-  float *dx;
+  const float *x, *dz, *scale, *bias, *mean, *inv;
+  float *dy, *dx;
   const rc__epilogue *ep;
-  float *rows;
 } bn_back;
 
 static const float *bn_grad_row(const bn_back *t, int64_t c, int64_t off) {
   if (!t->ep) return t->dy + off;
-  float *g = t->rows + (size_t)omp_get_thread_num() * (size_t)t->S;
   const float a = t->scale[c] * t->inv[c];
-  rc__epilogue_mask_row(t->ep, g, t->x + off, t->dy + off, t->S, a, t->bias[c] - t->mean[c] * a);
-  return g;
+  rc__epilogue_mask_row(t->ep, t->dy + off, t->x + off, t->dz + off, t->S, a, t->bias[c] - t->mean[c] * a);
+  return t->dy + off;
 }
 
-/* Σg and Σg·(x - mean) over channel c, one read of each row. */
+/* Σg and Σg·(x - mean) over channel c: a row's second sum reads it while
+ * it is still in cache. */
 static void bn_channel_grad_sums(const bn_back *t, int64_t c, double *sg, double *sgx) {
   double s = 0, sx = 0;
   for (int64_t n = 0; n < t->N; n++) {
     const int64_t off = (n * t->C + c) * t->S;
-    double rs, rx;
-    rc__row_sum_dot_dev(bn_grad_row(t, c, off), t->x + off, t->S, t->mean[c], &rs, &rx);
-    s += rs;
-    sx += rx;
+    const float *g = bn_grad_row(t, c, off);
+    s += rc__row_sum(g, t->S);
+    sx += rc__row_dot_dev(g, t->x + off, t->S, t->mean[c]);
   }
   *sg = s;
   *sgx = sx;
 }
 
-/* dx += a * (g - mean(g) - xhat * mean(g * xhat)) over channel c; with a
- * fused activation the mask is taken inside the same loop. */
+/* dx += a * (g - mean(g) - xhat * mean(g * xhat)) over channel c. */
 static void bn_channel_dx(const bn_back *t, int64_t c, float mdy, float mdyx) {
   const float mean = t->mean[c], inv = t->inv[c], a = t->scale[c] * inv;
-  const rc__norm_dx r = {a, t->bias[c] - mean * a, mean, inv, mdy, mdyx};
   const int64_t S = t->S;
   for (int64_t n = 0; n < t->N; n++) {
     const int64_t off = (n * t->C + c) * S;
     const float *gr = t->dy + off, *xr = t->x + off;
     float *restrict d = t->dx + off;
-    if (t->ep)
-      rc__epilogue_norm_dx_row(t->ep, d, xr, gr, S, &r);
-    else
-      for (int64_t j = 0; j < S; j++) d[j] += a * (gr[j] - mdy - (xr[j] - mean) * inv * mdyx);
+    for (int64_t j = 0; j < S; j++) d[j] += a * (gr[j] - mdy - (xr[j] - mean) * inv * mdyx);
   }
 }
 
@@ -359,20 +353,19 @@ static void bn_channel_dx(const bn_back *t, int64_t c, float mdy, float mdyx) {
  * whole batch: Σdy and Σdy·x̂ are summed across processes first. Alone, each
  * channel's sums and dx come in one go while its rows are in cache. A
  * failed sum is kept by the hook's owner (backward returns no status). */
-static void bn_backward_run(const rc_kernel *k, const rc__epilogue *ep, const float *dy, float *rows,
-                            int threads) {
+static void bn_backward_run(const rc_kernel *k, const rc__epilogue *ep, const float *dz) {
   int64_t N, C, S;
   bn_dims(k->in[0], &N, &C, &S);
   norm_grads g;
   norm_grads_init(k, &g);
   bn_bufs b;
   bn_bufs_of(k, C, &b);
-  const bn_back t = {N, C, S, g.x, dy, g.scale, k->in[2]->data, b.mean, b.inv, g.dx, ep, rows};
+  const bn_back t = {N, C, S, g.x, dz, g.scale, k->in[2]->data, b.mean, b.inv, k->dout[0]->data, g.dx, ep};
   float *dmean = k->din[3] ? k->din[3]->data : NULL, *dvar = k->din[4] ? k->din[4]->data : NULL;
   double *sdy = b.sums, *sdyx = b.sums + C;
   const int batch = bn_batch_stats(k), together = !(batch && k->reduce);
   const double m = *b.count;
-#pragma omp parallel for num_threads(threads) schedule(static) if (N * C * S > RC__PAR_MIN)
+#pragma omp parallel for schedule(static) if (N * C * S > RC__PAR_MIN)
   for (int64_t c = 0; c < C; c++) {
     const float inv = b.inv[c];
     bn_channel_grad_sums(&t, c, &sdy[c], &sdyx[c]);
@@ -390,13 +383,13 @@ static void bn_backward_run(const rc_kernel *k, const rc__epilogue *ep, const fl
   if (!g.dx || together) return;
   rc_err e;
   if (bn_sum_across(k, b.sums, 2 * (size_t)C, 1, &e) != RC_OK) return;
-#pragma omp parallel for num_threads(threads) schedule(static) if (N * C * S > RC__PAR_MIN)
+#pragma omp parallel for schedule(static) if (N * C * S > RC__PAR_MIN)
   for (int64_t c = 0; c < C; c++)
     bn_channel_dx(&t, c, m > 0 ? (float)(sdy[c] / m) : 0.0f, m > 0 ? (float)(sdyx[c] / m) : 0.0f);
 }
 
 static void bn_backward(const rc_kernel *k) {
-  if (k->dout[0]) bn_backward_run(k, NULL, k->dout[0]->data, NULL, omp_get_max_threads());
+  if (k->dout[0]) bn_backward_run(k, NULL, NULL);
 }
 
 /* For a training-mode BatchNormalization whose activation the plan fuses
@@ -406,9 +399,8 @@ rc_status rc__bn_batch_forward_fused(const rc_kernel *k, const rc__epilogue *ep,
   return bn_batch_forward(k, ep, e);
 }
 
-void rc__bn_batch_backward_fused(const rc_kernel *k, const rc__epilogue *ep, const float *dz, float *rows,
-                                 int threads) {
-  bn_backward_run(k, ep, dz, rows, threads);
+void rc__bn_batch_backward_fused(const rc_kernel *k, const rc__epilogue *ep, const float *dz) {
+  if (k->dout[0]) bn_backward_run(k, ep, dz);
 }
 
 /* For a Conv's epilogue (epilogue.h): the frozen normalisation as the

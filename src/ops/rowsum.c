@@ -55,30 +55,8 @@ static RC_DISPATCH double row_dot_dev(const float *dy, const float *x, int64_t n
   return combine(acc);
 }
 
-/* row_sum(dy) and row_dot_dev(dy, x, m) from one read of dy: the same lanes
- * in the same order, so the same bits as the two calls. */
-static RC_DISPATCH void row_sum_dot_dev(const float *dy, const float *x, int64_t n, float m, double *sum,
-                                        double *dot) {
-  float acc[LANES] = {0}, accx[LANES] = {0};
-  int64_t j = 0;
-  /* Two loops per block: as one, GCC 12 left it scalar (-fopt-info-vec). */
-  for (; j + LANES <= n; j += LANES) {
-    for (int l = 0; l < LANES; l++) acc[l] += dy[j + l];
-    for (int l = 0; l < LANES; l++) accx[l] += dy[j + l] * (x[j + l] - m);
-  }
-  for (int l = 0; j < n; j++, l++) {
-    acc[l] += dy[j];
-    accx[l] += dy[j] * (x[j] - m);
-  }
-  *sum = combine(acc);
-  *dot = combine(accx);
-}
-
 /* The dispatched functions are file-local: GCC gives an exported cloned
  * symbol default visibility whatever the preset, and these are internal. */
 double rc__row_sum(const float *x, int64_t n) { return row_sum(x, n); }
 double rc__row_sq_dev(const float *x, int64_t n, float m) { return row_sq_dev(x, n, m); }
 double rc__row_dot_dev(const float *dy, const float *x, int64_t n, float m) { return row_dot_dev(dy, x, n, m); }
-void rc__row_sum_dot_dev(const float *dy, const float *x, int64_t n, float m, double *sum, double *dot) {
-  row_sum_dot_dev(dy, x, n, m, sum, dot);
-}

@@ -13,7 +13,5 @@ double rc__row_sum(const float *x, int64_t n);
 double rc__row_sq_dev(const float *x, int64_t n, float m);
 /* sum dy[j] * (x[j] - m) */
 double rc__row_dot_dev(const float *dy, const float *x, int64_t n, float m);
-/* both of sum dy[j] and sum dy[j] * (x[j] - m), from one read of dy */
-void rc__row_sum_dot_dev(const float *dy, const float *x, int64_t n, float m, double *sum, double *dot);
 
 #endif

@@ -89,7 +89,7 @@ static rc_status count_readers(const rc_graph *g, int **readers, int **reader_no
 }
 
 static rc_status chain_buffers(rc__chain *c, rc_arena *a) {
-  const rc_tensor *y = c->conv ? c->conv->out[0] : c->bn->in[0];
+  const rc_tensor *y = c->conv->out[0];
   const int64_t M = y->dims[1];
   int64_t P = 1;
   for (int d = 2; d < y->rank; d++) P *= y->dims[d];
@@ -134,7 +134,7 @@ rc_status rc__chains_find(rc__chain **chains, int *n_chains, int **role, const r
     c->act = act >= 0 ? step_k[step_of_node[act]] : NULL;
     c->last = step_of_node[act >= 0 ? act : bn];
     c->ep.act = act < 0 ? RC_EPI_NONE : is_op(&g->nodes[act], "Relu") ? RC_EPI_RELU : RC_EPI_CLIP;
-    if (chain_buffers(c, a) != RC_OK) {
+    if (conv_head && chain_buffers(c, a) != RC_OK) {
       st = rc__fail(e, RC_ERR_NOMEM, "%s: out of memory while planning", g->path);
       break;
     }
@@ -163,7 +163,7 @@ int rc__chain_backward(rc__chain *c) {
   if (!c->conv) {
     /* The chain is the normalisation's step: its own backward is this. */
     if (c->bn->din && tail->dout && tail->dout[0])
-      rc__bn_batch_backward_fused(c->bn, &c->ep, tail->dout[0]->data, c->rows, c->threads);
+      rc__bn_batch_backward_fused(c->bn, &c->ep, tail->dout[0]->data);
     return 0;
   }
   if (!tail->dout || !tail->dout[0]) return 1;
