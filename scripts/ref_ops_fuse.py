@@ -12,8 +12,9 @@ it writes into OUT_DIR/<case>/:
   grad_<name>.npy PyTorch's gradient of L = sum(out * dz_out) over the outputs,
                   for the input ("x") and every initializer
 BatchNormalization runs as torch.nn.functional.batch_norm(training=False),
-i.e. with the running statistics; all arithmetic is float64 from float32
-inputs. tests/test_ops_fuse.c plans each model with recoup, fused and not.
+i.e. with the running statistics, except in the bntrain_ cases (training_mode=1:
+batch statistics, running statistics as extra outputs in some); all
+arithmetic is float64 from float32 inputs. tests/test_ops_fuse.c plans each model with recoup, fused and not.
 
 Usage: ref_ops_fuse.py OUT_DIR
 """
@@ -43,20 +44,37 @@ CASES = [
     ("bn_output_is_graph_output", 2, 4, 9, 9, 6, 3, 1, 1, 1, False, "relu", True, False),
 ]
 
+# BatchNormalization with batch statistics (training_mode=1), as a training
+# run uses it: the normalisation and the activation run as one step. Same
+# columns, then the running mean and variance as graph outputs (momentum
+# 0.7 in ONNX terms), and the Conv bias's offset: 1e4 gives activations with
+# a mean four orders of magnitude above their spread.
+TRAIN_CASES = [
+    ("bntrain_relu_odd", 3, 5, 9, 9, 7, 3, 1, 1, 1, False, "relu", False, False, True, 0.0),
+    ("bntrain_clip_stride2", 2, 4, 11, 7, 5, 3, 2, 1, 1, True, "clip", False, False, False, 0.0),
+    ("bntrain_clip_depthwise", 2, 6, 10, 10, 6, 3, 1, 1, 6, False, "clip", False, False, True, 0.0),
+    ("bntrain_relu_batch1", 1, 3, 8, 8, 6, 3, 1, 1, 1, False, "relu", False, False, True, 0.0),
+    ("bntrain_large_mean", 2, 4, 8, 8, 3, 3, 1, 1, 1, True, "relu", False, False, True, 1e4),
+    ("bntrain_output_is_graph_output", 2, 4, 9, 9, 6, 3, 1, 1, 1, False, "relu", True, False, False, 0.0),
+]
+MOMENTUM = 0.7  # ONNX's: running = running * momentum + batch * (1 - momentum)
+
 
 def draw(gen, *shape, lo=-1.0, hi=1.0):
     return torch.rand(*shape, generator=gen, dtype=torch.float32) * (hi - lo) + lo
 
 
 def write_case(out_dir, seed, case):
-    name, N, C, H, W, M, k, s, pad, group, has_bias, act, bn_out, add = case
+    name, N, C, H, W, M, k, s, pad, group, has_bias, act, bn_out, add = case[:14]
+    train = name.startswith("bntrain_")
+    running_out, offset = case[14:] if train else (False, 0.0)
     gen = torch.Generator().manual_seed(seed)
     x = draw(gen, N, C, H, W)
     w = draw(gen, M, C // group, k, k) * 0.5
     params = {"W": w}
     if has_bias:
-        params["B"] = draw(gen, M)
-    use_bn = name.startswith("bn_")
+        params["B"] = draw(gen, M) + offset
+    use_bn = name.startswith("bn_") or train
     if use_bn:
         params["scale"] = draw(gen, M, lo=0.5, hi=1.5)
         params["beta"] = draw(gen, M, lo=-0.5, hi=0.5)
@@ -75,7 +93,20 @@ def write_case(out_dir, seed, case):
     outs = {}
     h = y
     if use_bn:
-        h = F.batch_norm(y, leaves["mean"], leaves["var"], leaves["scale"], leaves["beta"], training=False, eps=EPS)
+        if train:
+            # Batch statistics: the biased variance normalises (PyTorch and
+            # ONNX alike). The running update follows ONNX's formula with the
+            # biased variance, as recoup does (PyTorch's own running update
+            # would use the unbiased one), so it is computed here by hand.
+            h = F.batch_norm(y, None, None, leaves["scale"], leaves["beta"], training=True, eps=EPS)
+            if running_out:
+                yd = y.detach()
+                bmean, bvar = yd.mean(dim=(0, 2, 3)), yd.var(dim=(0, 2, 3), unbiased=False)
+                running = {"running_mean": params["mean"].double() * MOMENTUM + bmean * (1 - MOMENTUM),
+                           "running_var": params["var"].double() * MOMENTUM + bvar * (1 - MOMENTUM)}
+        else:
+            h = F.batch_norm(y, leaves["mean"], leaves["var"], leaves["scale"], leaves["beta"], training=False,
+                             eps=EPS)
         if bn_out:
             outs["bn_out"] = h
         if add:
@@ -88,6 +119,10 @@ def write_case(out_dir, seed, case):
         dzs[key] = draw(gen, *t.shape)
         loss = loss + (t * dzs[key].double()).sum()
     loss.backward()
+    if train and running_out:  # no gradient flows from the running statistics
+        for key, t in running.items():
+            outs[key] = t
+            dzs[key] = torch.zeros(t.shape, dtype=torch.float32)
 
     case_dir = os.path.join(out_dir, name)
     os.makedirs(case_dir, exist_ok=True)
@@ -105,8 +140,13 @@ def write_case(out_dir, seed, case):
                                   pads=[pad] * 4, group=group))
     last = "y"
     if use_bn:
-        nodes.append(helper.make_node("BatchNormalization", ["y", "scale", "beta", "mean", "var"], ["bn_out"],
-                                      name="bn", epsilon=EPS))
+        if train:
+            nodes.append(helper.make_node("BatchNormalization", ["y", "scale", "beta", "mean", "var"],
+                                          ["bn_out"] + (["running_mean", "running_var"] if running_out else []),
+                                          name="bn", epsilon=EPS, momentum=MOMENTUM, training_mode=1))
+        else:
+            nodes.append(helper.make_node("BatchNormalization", ["y", "scale", "beta", "mean", "var"], ["bn_out"],
+                                          name="bn", epsilon=EPS))
         last = "bn_out"
         if add:
             nodes.append(helper.make_node("Add", ["bn_out", "shortcut"], ["sum"], name="add"))
@@ -136,7 +176,7 @@ def main():
         sys.exit(__doc__)
     out_dir = sys.argv[1]
     os.makedirs(out_dir, exist_ok=True)
-    names = [write_case(out_dir, 100 + i, c) for i, c in enumerate(CASES)]
+    names = [write_case(out_dir, 100 + i, c) for i, c in enumerate(CASES + TRAIN_CASES)]
     tmp = os.path.join(out_dir, "cases.txt.tmp")
     with open(tmp, "w") as f:
         f.write("\n".join(names) + "\n")

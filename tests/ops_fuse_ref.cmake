@@ -1,4 +1,5 @@
-# PyTorch reference values for Conv -> BatchNormalization -> Relu/Clip chains:
+# PyTorch reference values for Conv -> BatchNormalization -> Relu/Clip chains
+# (running statistics, and batch statistics as in training):
 # the script writes models and tensors into the build folder (a fixture),
 # test_ops_fuse runs them fused, unfused and on the plain Conv path.
 add_test(NAME ops_fuse_ref_data

@@ -16,7 +16,11 @@
  *   gradients <= 1e-3 * (1 + |torch|), the tolerances of test_ops_conv_ref;
  * - the plan absorbs the steps it should and no more: a BatchNormalization
  *   output that is a graph output, or kept for a loss, stays a step of its own
- *   and its value is the one the separate op computes. */
+ *   and its value is the one the separate op computes.
+ * The bntrain_ cases run BatchNormalization with batch statistics
+ * (training_mode=1), which fuses with the activation after it instead: the
+ * same checks, plus the running mean and variance where the model outputs
+ * them, batch 1, and activations with a mean of 1e4 (variance accuracy). */
 #define _POSIX_C_SOURCE 200112L /* setenv, unsetenv */
 #include <math.h>
 #include <stdio.h>
@@ -131,9 +135,19 @@ static double worst_error(const float *ours, const float *torch, int64_t n, int6
   return worst;
 }
 
+/* The tolerance for values computed from activations near 1e4
+ * (bntrain_large_mean): float32's spacing there is 2^-10 (IEEE 754), so the
+ * Conv's output, its float batch mean and everything normalised from them
+ * carry up to ~5e-4 of rounding that PyTorch's float64 does not; four
+ * spacings. The running statistics keep the tight tolerance: they show that
+ * the variance (about 1.5, beside a mean of 3e3 to 1e4) is not lost to
+ * cancellation. */
+#define LARGE_MEAN_TOL 4e-3
+
 /* Each output against want_<name>.npy and each gradient with a
  * grad_<name>.npy against it. */
 static void check_torch(const char *dir, const char *path, const rc_graph *g, const run_out *r) {
+  const int large_mean = strstr(dir, "large_mean") != NULL;
   for (int i = 0; i < r->n; i++) {
     const char *name = g->values[r->value[i]].name;
     const int is_out = i < g->n_outputs;
@@ -154,6 +168,7 @@ static void check_torch(const char *dir, const char *path, const rc_graph *g, co
       int64_t at;
       const float *t = want.t.data;
       double err = worst_error(r->data[i], t, r->numel[i], &at), tol = is_out ? 1e-4 : 1e-3;
+      if (large_mean && strncmp(name, "running_", 8)) tol = LARGE_MEAN_TOL;
       printf("  %-10s %-8s %-6s worst %.2e at %lld: recoup %.7g, PyTorch %.7g\n", path,
              is_out ? "output" : "gradient", name, err, (long long)at, r->data[i][at], t[at]);
       CHECK_LE(err, tol);
@@ -194,8 +209,12 @@ static void run_both(const char *dir, const rc_graph *g, const rc_array *x, cons
 }
 
 /* Steps the fused plan should absorb into its Conv: the BatchNormalization
- * and the activation, unless a value between them is read elsewhere. */
+ * and the activation, unless a value between them is read elsewhere. With
+ * batch statistics (bntrain_) the normalisation heads the chain and absorbs
+ * the activation, unless its output is read elsewhere. */
 static int expected_absorbed(const char *name) {
+  if (!strcmp(name, "bntrain_output_is_graph_output")) return 0;
+  if (!strncmp(name, "bntrain_", 8)) return 1;
   if (!strcmp(name, "bias_relu") || !strcmp(name, "bn_only_then_add") ||
       !strcmp(name, "bn_output_is_graph_output"))
     return 1;
@@ -256,12 +275,14 @@ static void one_case(const char *name) {
   /* A feature-loss tap on the BatchNormalization output: the chain must end
    * there and the tap hold what the separate op computes. */
   const int bn_out = rc__graph_find_value(g, "bn_out");
-  if (bn_out >= 0 && expected_absorbed(name) == 2) {
+  const int chain = expected_absorbed(name) == 2 || (!strncmp(name, "bntrain_", 8) && expected_absorbed(name));
+  if (bn_out >= 0 && chain) {
     unsigned char keep[256] = {0};
     keep[bn_out] = 1;
     run_both(dir, g, &x, trainable, keep, &fused, &plain);
-    printf("  with bn_out kept: steps absorbed %d (expected 1)\n", fused.absorbed);
-    CHECK_EQ(fused.absorbed, 1);
+    const int want = expected_absorbed(name) - 1;
+    printf("  with bn_out kept: steps absorbed %d (expected %d)\n", fused.absorbed, want);
+    CHECK_EQ(fused.absorbed, want);
     check_same_bits(g, &fused, &plain);
     run_out_free(&fused);
     run_out_free(&plain);

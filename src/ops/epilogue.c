@@ -46,49 +46,62 @@ static inline void clip_mask(float *restrict g, const float *y, const float *dz,
   }
 }
 
-/* z (P) <- act(y * a[m] + c[m]). */
-static void apply_row(const rc__epilogue *ep, float *z, const float *y, int64_t P, int64_t m) {
-  const float a = ep->a ? ep->a[m] : 1.0f, c = ep->a ? ep->c[m] : 0.0f;
+/* z (P) <- act(y * a + c), or act(y) when `affine` is 0 (a constant at
+ * every call, so each variant compiles to its own vector loop). */
+static inline void act_row(const rc__epilogue *ep, float *z, const float *y, int64_t P, float a, float c,
+                           int affine) {
   if (ep->act == RC_EPI_RELU) {
-    if (ep->a)
-      relu_row(z, y, P, a, c, 1);
-    else
-      relu_row(z, y, P, a, c, 0);
+    relu_row(z, y, P, a, c, affine);
   } else if (ep->act == RC_EPI_CLIP) {
     /* As Clip's forward: a NaN bound is no bound. */
     const float lo = isnan(ep->lo) ? -INFINITY : ep->lo, hi = isnan(ep->hi) ? INFINITY : ep->hi;
-    if (ep->a)
-      clip_row(z, y, P, a, c, 1, lo, hi);
-    else
-      clip_row(z, y, P, a, c, 0, lo, hi);
-  } else if (ep->a) {
+    clip_row(z, y, P, a, c, affine, lo, hi);
+  } else if (affine) {
     for (int64_t j = 0; j < P; j++) z[j] = y[j] * a + c;
   } else if (z != y) {
     memmove(z, y, sizeof(float) * (size_t)P);
   }
 }
 
+/* z (P) <- act(y * a[m] + c[m]). */
+static void apply_row(const rc__epilogue *ep, float *z, const float *y, int64_t P, int64_t m) {
+  if (ep->a)
+    act_row(ep, z, y, P, ep->a[m], ep->c[m], 1);
+  else
+    act_row(ep, z, y, P, 1.0f, 0.0f, 0);
+}
+
+void rc__epilogue_row(const rc__epilogue *ep, float *z, const float *y, int64_t P, float a, float c) {
+  act_row(ep, z, y, P, a, c, 1);
+}
+
 void rc__epilogue_apply(const rc__epilogue *ep, const float *y, int64_t r0, int64_t r1, int64_t M, int64_t P) {
   for (int64_t r = r0; r < r1; r++) apply_row(ep, ep->z + r * P, y + r * P, P, r % M);
 }
 
-/* g (P) <- dz where the activation passes it at u = y * a + c, else 0. */
+/* g (P) <- dz where the activation passes it at u = y * a + c (u = y when
+ * `affine` is 0), else 0. */
+static inline void act_mask(const rc__epilogue *ep, float *restrict g, const float *y, const float *dz, int64_t P,
+                            float a, float c, int affine) {
+  if (ep->act == RC_EPI_RELU)
+    relu_mask(g, y, dz, P, a, c, affine);
+  else if (ep->act == RC_EPI_CLIP)
+    clip_mask(g, y, dz, P, a, c, affine, ep->lo, ep->hi);
+  else
+    memcpy(g, dz, sizeof(float) * (size_t)P);
+}
+
 static void mask_row(const rc__epilogue *ep, float *restrict g, const float *y, const float *dz, int64_t P,
                      int64_t m) {
-  const float a = ep->a ? ep->a[m] : 1.0f, c = ep->a ? ep->c[m] : 0.0f;
-  if (ep->act == RC_EPI_RELU) {
-    if (ep->a)
-      relu_mask(g, y, dz, P, a, c, 1);
-    else
-      relu_mask(g, y, dz, P, a, c, 0);
-  } else if (ep->act == RC_EPI_CLIP) {
-    if (ep->a)
-      clip_mask(g, y, dz, P, a, c, 1, ep->lo, ep->hi);
-    else
-      clip_mask(g, y, dz, P, a, c, 0, ep->lo, ep->hi);
-  } else {
-    memcpy(g, dz, sizeof(float) * (size_t)P);
-  }
+  if (ep->a)
+    act_mask(ep, g, y, dz, P, ep->a[m], ep->c[m], 1);
+  else
+    act_mask(ep, g, y, dz, P, 1.0f, 0.0f, 0);
+}
+
+void rc__epilogue_mask_row(const rc__epilogue *ep, float *restrict g, const float *y, const float *dz, int64_t P,
+                           float a, float c) {
+  act_mask(ep, g, y, dz, P, a, c, 1);
 }
 
 /* y, dz (N, M, P) -> dy (N, M, P) += a * g; sums per channel. */

@@ -31,6 +31,14 @@ typedef struct rc__epilogue {
  * is channel r % M). y and z may be the same buffer. No threads of its own. */
 void rc__epilogue_apply(const rc__epilogue *ep, const float *y, int64_t r0, int64_t r1, int64_t M, int64_t P);
 
+/* One row of one channel with the affine step's a and c given: z (P) <-
+ * act(y * a + c); and the backward's mask g (P) <- dz where the activation
+ * passes it at y * a + c, else 0. For a training-mode BatchNormalization,
+ * whose a and c come from the batch (norm.c). */
+void rc__epilogue_row(const rc__epilogue *ep, float *z, const float *y, int64_t P, float a, float c);
+void rc__epilogue_mask_row(const rc__epilogue *ep, float *g, const float *y, const float *dz, int64_t P, float a,
+                           float c);
+
 /* The chain's backward from dz (N, M, P), one pass over each row:
  * g = dz where the activation passes it (else 0); dy += a[m] * g (dy may be
  * NULL); when sdy is given, per channel sdy[m] = sum g and
@@ -53,6 +61,14 @@ void rc__bn_fold(const rc_kernel *k, float *a, float *c, float *mean);
 /* Adds the parameter gradients of a frozen normalisation from the sums
  * rc__epilogue_backward gives (sdx taken around the running mean). */
 void rc__bn_frozen_param_grads(const rc_kernel *k, const double *sdy, const double *sdx);
+
+/* A BatchNormalization with batch statistics and the activation after it
+ * as one step (norm.c): forward writes only ep->z = act(normalised x);
+ * backward takes dz, the activation's output gradient, and gives what the
+ * two ops' backward would (its own output gradient set to the masked dz on
+ * the way). ep->a and ep->c are not used: the batch gives them. */
+rc_status rc__bn_batch_forward_fused(const rc_kernel *k, const rc__epilogue *ep, rc_err *e);
+void rc__bn_batch_backward_fused(const rc_kernel *k, const rc__epilogue *ep, const float *dz);
 
 /* Clip's bounds as the node gives them (activation.c), NaN left as it is. */
 void rc__clip_bounds(const rc_kernel *k, float *lo, float *hi);

@@ -1,7 +1,8 @@
 /* Op family: norm. Forward and backward side by side.
  *
  * Statistics are computed in two passes with double accumulators (mean, then
- * squared deviations) so that large offsets do not cancel. Per-row or
+ * squared deviations) so that large offsets do not cancel; BatchNormalization
+ * takes both from one read of each row (bn_channel_moments). Per-row or
  * per-channel mean and 1/sqrt(var + eps) are kept in k->saved for backward. */
 #include <math.h>
 #include <string.h>
@@ -139,14 +140,16 @@ static int bn_batch_stats(const rc_kernel *k) {
 /* Buffers: saved (training plans) holds the batch's element count per
  * channel over every process (a double, for backward's means), then mean[C]
  * and invstd[C]; without saved that block follows the per-channel sums in
- * the workspace. The sums: C + 1 doubles forward, 2C backward. */
+ * the workspace. The sums: forward 3C + 1 doubles (per channel the sum, the
+ * count, then the squared deviations and the mean of this process's share),
+ * backward 2C. */
 typedef struct bn_bufs {
-  double *count, *sums;
+  double *count, *sums, *m2, *local_mean;
   float *mean, *inv;
 } bn_bufs;
 
 static size_t bn_sums_bytes(int64_t c, int backward) {
-  return sizeof(double) * (size_t)(backward ? 2 * c : c + 1);
+  return sizeof(double) * (size_t)(backward ? 2 * c : 3 * c + 1);
 }
 static size_t bn_saved(const rc_kernel *k) {
   return sizeof(double) + 2 * (size_t)k->in[0]->dims[1] * sizeof(float);
@@ -161,6 +164,8 @@ static void bn_bufs_of(const rc_kernel *k, int64_t c, bn_bufs *b) {
   b->mean = (float *)(void *)(st + sizeof(double));
   b->inv = b->mean + c;
   b->sums = k->work;
+  b->m2 = b->sums + c + 1;
+  b->local_mean = b->m2 + c;
 }
 
 static void bn_dims(const rc_tensor *x, int64_t *n, int64_t *c, int64_t *s) {
@@ -174,18 +179,29 @@ static void write_vec(const rc_kernel *k, int o, int64_t c, float v) {
   if (o < k->n_out && k->out[o]) ((float *)k->out[o]->data)[c] = v;
 }
 
-/* Per channel, over the batch and spatial dims: the sum of x (mean NULL) or
- * of its squared deviations from mean[c]. */
-static void bn_channel_sums(double *out, const float *x, int64_t N, int64_t C, int64_t S, const float *mean) {
-#pragma omp parallel for schedule(static) if (N * C * S > RC__PAR_MIN)
-  for (int64_t c = 0; c < C; c++) {
-    double s = 0;
-    for (int64_t n = 0; n < N; n++) {
-      const float *xr = x + (n * C + c) * S;
-      s += mean ? rc__row_sq_dev(xr, S, mean[c]) : rc__row_sum(xr, S);
-    }
-    out[c] = s;
+/* Channel c's moments over this process's share of the batch, each row read
+ * from memory once: its sum, then its squared deviations around its own
+ * mean while the row is still in cache. Rows merge in order by the pairwise
+ * update of Chan, Golub and LeVeque (1979; formula from memory) in double.
+ * Every square is taken around a mean of the data it sums, so a large mean
+ * does not cancel the variance (tests/test_ops_bn_train.c checks a mean of
+ * 1e4 against a spread of 1). Gives the sum, the mean and the squared
+ * deviations around that mean. */
+static void bn_channel_moments(const float *x, int64_t N, int64_t C, int64_t S, int64_t c, double *sum,
+                               double *mean, double *m2) {
+  double s = 0, mu = 0, q = 0;
+  for (int64_t n = 0; n < N && S > 0; n++) {
+    const float *xr = x + (n * C + c) * S;
+    const double rs = rc__row_sum(xr, S), rm = rs / (double)S;
+    const double rq = rc__row_sq_dev(xr, S, (float)rm);
+    const double seen = (double)(n * S), both = seen + (double)S, d = rm - mu;
+    mu += d * ((double)S / both);
+    q += rq + d * d * (seen * (double)S / both);
+    s += rs;
   }
+  *sum = s;
+  *mean = mu;
+  *m2 = q;
 }
 
 /* Sums over every process holding a share of the batch (no-op alone). */
@@ -193,63 +209,140 @@ static rc_status bn_sum_across(const rc_kernel *k, double *buf, size_t n, int gr
   return k->reduce ? k->reduce->sum(k->reduce->ctx, buf, n, grads, e) : RC_OK;
 }
 
-/* Batch mean (into b->mean) and biased variance (into b->sums) per channel
- * over the whole batch, however it is split: two passes, each summed across
- * processes, the second around the global mean so large offsets do not
- * cancel. The population variance, as the spec's ReduceVar, both for
- * normalising and for the running update (PyTorch would use the unbiased one
- * there). */
-static rc_status bn_batch_moments(const rc_kernel *k, const bn_bufs *b, int64_t N, int64_t C, int64_t S,
-                                  rc_err *e) {
-  const float *x = k->in[0]->data;
-  bn_channel_sums(b->sums, x, N, C, S, NULL);
-  b->sums[C] = (double)(N * S);
-  RC_TRY(bn_sum_across(k, b->sums, (size_t)C + 1, 0, e));
-  double m = b->sums[C];
-  *b->count = m;
-  for (int64_t c = 0; c < C; c++) b->mean[c] = m > 0 ? (float)(b->sums[c] / m) : 0.0f;
-  bn_channel_sums(b->sums, x, N, C, S, b->mean);
-  RC_TRY(bn_sum_across(k, b->sums, (size_t)C, 0, e));
-  for (int64_t c = 0; c < C; c++) b->sums[c] = m > 0 ? b->sums[c] / m : 0;
-  return RC_OK;
-}
-
-static rc_status bn_forward(const rc_kernel *k, rc_err *e) {
+/* Channel c with its statistics known: the running and saved outputs, the
+ * statistics backward reads, then y = x * a + b per row, or the fused
+ * activation's z = act(x * a + b) (ep, see fuse.h). */
+static void bn_normalise_channel(const rc_kernel *k, const bn_bufs *b, const rc__epilogue *ep, int64_t c,
+                                 float mean, float var, int batch) {
   const bn_params *p = k->params;
   int64_t N, C, S;
   bn_dims(k->in[0], &N, &C, &S);
   const float *x = k->in[0]->data, *scale = k->in[1]->data, *bias = k->in[2]->data;
   const float *rmean = k->in[3]->data, *rvar = k->in[4]->data;
-  float *y = k->out[0]->data;
+  if (batch) {
+    /* running = input * momentum + batch * (1 - momentum) (spec text). */
+    write_vec(k, 1, c, rmean[c] * p->momentum + mean * (1.0f - p->momentum));
+    write_vec(k, 2, c, rvar[c] * p->momentum + var * (1.0f - p->momentum));
+  } else {
+    /* Inference: running statistics pass through unchanged. */
+    write_vec(k, 1, c, mean);
+    write_vec(k, 2, c, var);
+  }
+  write_vec(k, 3, c, mean); /* opsets < 14: saved_mean, saved_var */
+  write_vec(k, 4, c, var);
+  float inv = 1.0f / sqrtf(var + p->epsilon);
+  b->mean[c] = mean;
+  b->inv[c] = inv;
+  float a = scale[c] * inv, shift = bias[c] - mean * a;
+  for (int64_t n = 0; n < N; n++) {
+    const int64_t off = (n * C + c) * S;
+    if (ep)
+      rc__epilogue_row(ep, ep->z + off, x + off, S, a, shift);
+    else
+      affine_run((float *)k->out[0]->data + off, x + off, S, a, shift);
+  }
+}
+
+/* Batch mean and biased variance per channel over the whole batch, however
+ * it is split, then the normalisation. The population variance, as the
+ * spec's ReduceVar, both for normalising and for the running update
+ * (PyTorch would use the unbiased one there). Alone, each channel is done
+ * in one go while its rows are still in cache. Split over processes: the
+ * sums and counts are summed across them, then each process's squared
+ * deviations moved to the global mean (Σ(x-M)² = M2 + n (m - M)², both
+ * terms non-negative) and summed too; x is still read once. */
+static rc_status bn_batch_forward(const rc_kernel *k, const rc__epilogue *ep, rc_err *e) {
+  int64_t N, C, S;
+  bn_dims(k->in[0], &N, &C, &S);
+  const float *x = k->in[0]->data;
+  const double count = (double)(N * S);
   bn_bufs b;
   bn_bufs_of(k, C, &b);
-  int batch = bn_batch_stats(k);
-  if (batch) RC_TRY(bn_batch_moments(k, &b, N, C, S, e));
+  *b.count = count;
+  if (!k->reduce) {
 #pragma omp parallel for schedule(static) if (N * C * S > RC__PAR_MIN)
-  for (int64_t c = 0; c < C; c++) {
-    float mean, var;
-    if (batch) {
-      mean = b.mean[c];
-      var = (float)b.sums[c];
-      /* running = input * momentum + batch * (1 - momentum) (spec text). */
-      write_vec(k, 1, c, rmean[c] * p->momentum + mean * (1.0f - p->momentum));
-      write_vec(k, 2, c, rvar[c] * p->momentum + var * (1.0f - p->momentum));
-    } else {
-      mean = rmean[c];
-      var = rvar[c];
-      /* Inference: running statistics pass through unchanged. */
-      write_vec(k, 1, c, mean);
-      write_vec(k, 2, c, var);
+    for (int64_t c = 0; c < C; c++) {
+      double sum, mu, q;
+      bn_channel_moments(x, N, C, S, c, &sum, &mu, &q);
+      const double mean = count > 0 ? sum / count : 0, d = mu - mean;
+      bn_normalise_channel(k, &b, ep, c, (float)mean, count > 0 ? (float)((q + count * d * d) / count) : 0.0f,
+                           1);
     }
-    write_vec(k, 3, c, mean); /* opsets < 14: saved_mean, saved_var */
-    write_vec(k, 4, c, var);
-    float inv = 1.0f / sqrtf(var + p->epsilon);
-    b.mean[c] = mean;
-    b.inv[c] = inv;
-    float a = scale[c] * inv;
-    for (int64_t n = 0; n < N; n++) affine_run(y + (n * C + c) * S, x + (n * C + c) * S, S, a, bias[c] - mean * a);
+    return RC_OK;
   }
+#pragma omp parallel for schedule(static) if (N * C * S > RC__PAR_MIN)
+  for (int64_t c = 0; c < C; c++) bn_channel_moments(x, N, C, S, c, &b.sums[c], &b.local_mean[c], &b.m2[c]);
+  b.sums[C] = count;
+  RC_TRY(bn_sum_across(k, b.sums, (size_t)C + 1, 0, e));
+  const double m = b.sums[C];
+  *b.count = m;
+  for (int64_t c = 0; c < C; c++) {
+    const double mean = m > 0 ? b.sums[c] / m : 0, d = b.local_mean[c] - mean;
+    b.mean[c] = (float)mean;
+    b.sums[c] = b.m2[c] + count * d * d;
+  }
+  RC_TRY(bn_sum_across(k, b.sums, (size_t)C, 0, e));
+#pragma omp parallel for schedule(static) if (N * C * S > RC__PAR_MIN)
+  for (int64_t c = 0; c < C; c++) bn_normalise_channel(k, &b, ep, c, b.mean[c], m > 0 ? (float)(b.sums[c] / m) : 0.0f, 1);
   return RC_OK;
+}
+
+static rc_status bn_forward(const rc_kernel *k, rc_err *e) {
+  if (bn_batch_stats(k)) return bn_batch_forward(k, NULL, e);
+  int64_t N, C, S;
+  bn_dims(k->in[0], &N, &C, &S);
+  const float *rmean = k->in[3]->data, *rvar = k->in[4]->data;
+  bn_bufs b;
+  bn_bufs_of(k, C, &b);
+#pragma omp parallel for schedule(static) if (N * C * S > RC__PAR_MIN)
+  for (int64_t c = 0; c < C; c++) bn_normalise_channel(k, &b, NULL, c, rmean[c], rvar[c], 0);
+  return RC_OK;
+}
+
+/* What the backward of one normalisation reads: g is dy, or with a fused
+ * activation (ep) dz masked where the activation passed it, its input
+ * recomputed from x with forward's own a and b (the same bits). The masked
+ * gradient is written where the activation's backward would put it, the
+ * normalisation's own output gradient (dy), row by row as the sums reach
+ * it, so the input-gradient pass reads it like the unfused one. */
+typedef struct bn_back {
+  int64_t N, C, S;
+  const float *x, *dz, *scale, *bias, *mean, *inv;
+  float *dy, *dx;
+  const rc__epilogue *ep;
+} bn_back;
+
+static const float *bn_grad_row(const bn_back *t, int64_t c, int64_t off) {
+  if (!t->ep) return t->dy + off;
+  const float a = t->scale[c] * t->inv[c];
+  rc__epilogue_mask_row(t->ep, t->dy + off, t->x + off, t->dz + off, t->S, a, t->bias[c] - t->mean[c] * a);
+  return t->dy + off;
+}
+
+/* Σg and Σg·(x - mean) over channel c: a row's second sum reads it while
+ * it is still in cache. */
+static void bn_channel_grad_sums(const bn_back *t, int64_t c, double *sg, double *sgx) {
+  double s = 0, sx = 0;
+  for (int64_t n = 0; n < t->N; n++) {
+    const int64_t off = (n * t->C + c) * t->S;
+    const float *g = bn_grad_row(t, c, off);
+    s += rc__row_sum(g, t->S);
+    sx += rc__row_dot_dev(g, t->x + off, t->S, t->mean[c]);
+  }
+  *sg = s;
+  *sgx = sx;
+}
+
+/* dx += a * (g - mean(g) - xhat * mean(g * xhat)) over channel c. */
+static void bn_channel_dx(const bn_back *t, int64_t c, float mdy, float mdyx) {
+  const float mean = t->mean[c], inv = t->inv[c], a = t->scale[c] * inv;
+  const int64_t S = t->S;
+  for (int64_t n = 0; n < t->N; n++) {
+    const int64_t off = (n * t->C + c) * S;
+    const float *gr = t->dy + off, *xr = t->x + off;
+    float *restrict d = t->dx + off;
+    for (int64_t j = 0; j < S; j++) d[j] += a * (gr[j] - mdy - (xr[j] - mean) * inv * mdyx);
+  }
 }
 
 /* Batch statistics: the full normalisation backward (the statistics depend
@@ -257,54 +350,57 @@ static rc_status bn_forward(const rc_kernel *k, rc_err *e) {
  * input_mean / input_var receive their gradients too. With the batch split
  * over processes, the scale and B gradients stay this process's own (the
  * caller sums parameter gradients), while dx's two means are taken over the
- * whole batch: Σdy and Σdy·x̂ are summed across processes first. A failed
- * sum is kept by the hook's owner (backward returns no status). */
-static void bn_backward(const rc_kernel *k) {
-  if (!k->dout[0]) return;
+ * whole batch: Σdy and Σdy·x̂ are summed across processes first. Alone, each
+ * channel's sums and dx come in one go while its rows are in cache. A
+ * failed sum is kept by the hook's owner (backward returns no status). */
+static void bn_backward_run(const rc_kernel *k, const rc__epilogue *ep, const float *dz) {
   int64_t N, C, S;
   bn_dims(k->in[0], &N, &C, &S);
   norm_grads g;
   norm_grads_init(k, &g);
   bn_bufs b;
   bn_bufs_of(k, C, &b);
-  const float *x = g.x, *scale = g.scale, *dy = g.dy;
-  float *dx = g.dx, *dmean = k->din[3] ? k->din[3]->data : NULL, *dvar = k->din[4] ? k->din[4]->data : NULL;
+  const bn_back t = {N, C, S, g.x, dz, g.scale, k->in[2]->data, b.mean, b.inv, k->dout[0]->data, g.dx, ep};
+  float *dmean = k->din[3] ? k->din[3]->data : NULL, *dvar = k->din[4] ? k->din[4]->data : NULL;
   double *sdy = b.sums, *sdyx = b.sums + C;
-  int batch = bn_batch_stats(k);
+  const int batch = bn_batch_stats(k), together = !(batch && k->reduce);
+  const double m = *b.count;
 #pragma omp parallel for schedule(static) if (N * C * S > RC__PAR_MIN)
   for (int64_t c = 0; c < C; c++) {
-    float mean = b.mean[c], inv = b.inv[c];
-    double s = 0, sx = 0;
-    for (int64_t n = 0; n < N; n++) {
-      const float *xr = x + (n * C + c) * S, *dr = dy + (n * C + c) * S;
-      s += rc__row_sum(dr, S);
-      sx += rc__row_dot_dev(dr, xr, S, mean);
-    }
-    sdy[c] = s;
-    sdyx[c] = sx * inv;
+    const float inv = b.inv[c];
+    bn_channel_grad_sums(&t, c, &sdy[c], &sdyx[c]);
+    sdyx[c] *= inv;
     if (g.dscale) g.dscale[c] += (float)sdyx[c];
     if (g.dbias) g.dbias[c] += (float)sdy[c];
     if (!batch) {
-      float a = scale[c] * inv;
+      float a = g.scale[c] * inv;
       if (dmean) dmean[c] += (float)(-sdy[c] * a);
-      if (dvar) dvar[c] += (float)(-0.5 * sdyx[c] * scale[c] * inv * inv);
+      if (dvar) dvar[c] += (float)(-0.5 * sdyx[c] * g.scale[c] * inv * inv);
     }
+    if (g.dx && together)
+      bn_channel_dx(&t, c, batch && m > 0 ? (float)(sdy[c] / m) : 0.0f, batch && m > 0 ? (float)(sdyx[c] / m) : 0.0f);
   }
-  if (!dx) return;
+  if (!g.dx || together) return;
   rc_err e;
-  if (batch && bn_sum_across(k, b.sums, 2 * (size_t)C, 1, &e) != RC_OK) return;
-  double m = *b.count;
+  if (bn_sum_across(k, b.sums, 2 * (size_t)C, 1, &e) != RC_OK) return;
 #pragma omp parallel for schedule(static) if (N * C * S > RC__PAR_MIN)
-  for (int64_t c = 0; c < C; c++) {
-    float mean = b.mean[c], inv = b.inv[c], a = scale[c] * inv;
-    float mdy = batch && m > 0 ? (float)(sdy[c] / m) : 0.0f;
-    float mdyx = batch && m > 0 ? (float)(sdyx[c] / m) : 0.0f;
-    for (int64_t n = 0; n < N; n++) {
-      const float *xr = x + (n * C + c) * S, *dr = dy + (n * C + c) * S;
-      float *gr = dx + (n * C + c) * S;
-      for (int64_t j = 0; j < S; j++) gr[j] += a * (dr[j] - mdy - (xr[j] - mean) * inv * mdyx);
-    }
-  }
+  for (int64_t c = 0; c < C; c++)
+    bn_channel_dx(&t, c, m > 0 ? (float)(sdy[c] / m) : 0.0f, m > 0 ? (float)(sdyx[c] / m) : 0.0f);
+}
+
+static void bn_backward(const rc_kernel *k) {
+  if (k->dout[0]) bn_backward_run(k, NULL, NULL);
+}
+
+/* For a training-mode BatchNormalization whose activation the plan fuses
+ * (fuse.h): forward writes ep->z only; backward reads dz, the activation's
+ * output gradient. */
+rc_status rc__bn_batch_forward_fused(const rc_kernel *k, const rc__epilogue *ep, rc_err *e) {
+  return bn_batch_forward(k, ep, e);
+}
+
+void rc__bn_batch_backward_fused(const rc_kernel *k, const rc__epilogue *ep, const float *dz) {
+  if (k->dout[0]) bn_backward_run(k, ep, dz);
 }
 
 /* For a Conv's epilogue (epilogue.h): the frozen normalisation as the

@@ -55,6 +55,23 @@ static int match(const rc_graph *g, int conv_node, const int *readers, const int
   return *bn >= 0 || *act >= 0;
 }
 
+/* A BatchNormalization with batch statistics whose output only a Relu or
+ * Clip reads: the normalisation applies the activation in its own passes.
+ * Its further outputs (running statistics) it writes as always. */
+static int match_bn_act(const rc_graph *g, int bn_node, const int *readers, const int *reader_node,
+                        const unsigned char *held, const unsigned char *is_const, const int *step_of_node,
+                        rc_kernel *const *step_k, int *act) {
+  *act = -1;
+  const rc_node *n = &g->nodes[bn_node];
+  if (!is_op(n, "BatchNormalization") || n->n_in < 5 || rc__bn_frozen(step_k[step_of_node[bn_node]])) return 0;
+  const int v = n->out[0], r = only_reader(readers, reader_node, held, v);
+  if (r < 0 || step_of_node[r] < 0) return 0;
+  const rc_node *m = &g->nodes[r];
+  if (m->in[0] != v || m->n_out != 1 || !fusable_act(m, is_const)) return 0;
+  *act = r;
+  return 1;
+}
+
 /* Readers per value, and the last node seen reading it. */
 static rc_status count_readers(const rc_graph *g, int **readers, int **reader_node, rc_err *e) {
   *readers = rc__calloc((size_t)g->n_values + 1, sizeof(int));
@@ -83,7 +100,7 @@ static rc_status chain_buffers(rc__chain *c, rc_arena *a) {
   c->rows = rc__arena_zalloc(a, sizeof(float) * (size_t)(P * c->threads + 1));
   if (!ac || !c->sums || !c->rows) return RC_ERR_NOMEM;
   c->mean = ac + 2 * M;
-  if (c->bn) {
+  if (c->conv && c->bn) {
     c->ep.a = ac;
     c->ep.c = ac + M;
   }
@@ -103,21 +120,26 @@ rc_status rc__chains_find(rc__chain **chains, int *n_chains, int **role, const r
   if (st == RC_OK && !list) st = rc__fail(e, RC_ERR_NOMEM, "%s: out of memory while planning", g->path);
   for (int s = 0; st == RC_OK && s < n_steps; s++) {
     int bn, act;
-    if (!match(g, (int)(step_k[s]->node - g->nodes), readers, reader_node, held, is_const, step_of_node, step_k,
-               &bn, &act))
-      continue;
+    const int node = (int)(step_k[s]->node - g->nodes);
+    if ((*role)[s] < 0) continue; /* absorbed by an earlier chain */
+    const int conv_head =
+        match(g, node, readers, reader_node, held, is_const, step_of_node, step_k, &bn, &act);
+    if (!conv_head) {
+      if (!match_bn_act(g, node, readers, reader_node, held, is_const, step_of_node, step_k, &act)) continue;
+      bn = node;
+    }
     rc__chain *c = &list[*n_chains];
-    c->conv = step_k[s];
+    c->conv = conv_head ? step_k[s] : NULL;
     c->bn = bn >= 0 ? step_k[step_of_node[bn]] : NULL;
     c->act = act >= 0 ? step_k[step_of_node[act]] : NULL;
     c->last = step_of_node[act >= 0 ? act : bn];
     c->ep.act = act < 0 ? RC_EPI_NONE : is_op(&g->nodes[act], "Relu") ? RC_EPI_RELU : RC_EPI_CLIP;
-    if (chain_buffers(c, a) != RC_OK) {
+    if (conv_head && chain_buffers(c, a) != RC_OK) {
       st = rc__fail(e, RC_ERR_NOMEM, "%s: out of memory while planning", g->path);
       break;
     }
     (*role)[s] = ++*n_chains;
-    if (bn >= 0) (*role)[step_of_node[bn]] = -1;
+    if (conv_head && bn >= 0) (*role)[step_of_node[bn]] = -1;
     if (act >= 0) (*role)[step_of_node[act]] = -1;
   }
   rc__free(readers);
@@ -129,15 +151,22 @@ rc_status rc__chains_find(rc__chain **chains, int *n_chains, int **role, const r
 static rc_kernel *chain_tail(const rc__chain *c) { return c->act ? c->act : c->bn; }
 
 rc_status rc__chain_forward(rc__chain *c, rc_err *e) {
-  if (c->bn) rc__bn_fold(c->bn, (float *)c->ep.a, (float *)c->ep.c, c->mean);
   if (c->act && c->ep.act == RC_EPI_CLIP) rc__clip_bounds(c->act, &c->ep.lo, &c->ep.hi);
   c->ep.z = chain_tail(c)->out[0]->data;
+  if (!c->conv) return rc__bn_batch_forward_fused(c->bn, &c->ep, e);
+  if (c->bn) rc__bn_fold(c->bn, (float *)c->ep.a, (float *)c->ep.c, c->mean);
   return rc__conv_forward_epilogue(c->conv, &c->ep, e);
 }
 
-void rc__chain_backward(rc__chain *c) {
+int rc__chain_backward(rc__chain *c) {
   const rc_kernel *tail = chain_tail(c);
-  if (!tail->dout || !tail->dout[0]) return;
+  if (!c->conv) {
+    /* The chain is the normalisation's step: its own backward is this. */
+    if (c->bn->din && tail->dout && tail->dout[0])
+      rc__bn_batch_backward_fused(c->bn, &c->ep, tail->dout[0]->data);
+    return 0;
+  }
+  if (!tail->dout || !tail->dout[0]) return 1;
   const rc_tensor *y = c->conv->out[0];
   int64_t P = 1;
   for (int d = 2; d < y->rank; d++) P *= y->dims[d];
@@ -146,4 +175,5 @@ void rc__chain_backward(rc__chain *c) {
   rc__epilogue_backward(&c->ep, dy, sums ? c->sums : NULL, sums ? c->sums + y->dims[1] : NULL, c->mean, y->data,
                         tail->dout[0]->data, y->dims[0], y->dims[1], P, c->rows, c->threads);
   if (sums) rc__bn_frozen_param_grads(c->bn, c->sums, c->sums + y->dims[1]);
+  return 1;
 }

@@ -5,7 +5,11 @@
  * feature-loss tap). The Conv applies the rest as its epilogue
  * (ops/epilogue.h) in forward; backward turns the chain's output gradient
  * into the Conv's in one pass and adds the normalisation's parameter
- * gradients. The graph keeps every node, so written models are unchanged:
+ * gradients. Likewise a BatchNormalization with batch statistics (training
+ * mode) and the Relu or Clip that alone reads its output: the activation
+ * runs inside the normalisation's pass and its mask inside the
+ * normalisation's backward (ops/norm.c), and the normalised values are never
+ * written. The graph keeps every node, so written models are unchanged:
  * fusion is how a plan runs, and RECOUP_CONV_PATH=reference or unfused
  * (ops/kernel_choice.h) runs the steps one by one instead. */
 #ifndef RC_PLAN_FUSE_H
@@ -15,7 +19,8 @@
 #include "ops/epilogue.h"
 
 typedef struct rc__chain {
-  rc_kernel *conv, *bn, *act; /* bn or act NULL when absent */
+  rc_kernel *conv, *bn, *act; /* bn or act NULL when absent; conv NULL: the
+                                 chain starts at a training-mode bn */
   int last;                   /* step index of the chain's last node */
   rc__epilogue ep;
   float *mean;  /* the running mean, per channel */
@@ -35,8 +40,9 @@ rc_status rc__chains_find(rc__chain **chains, int *n_chains, int **role, const r
 
 rc_status rc__chain_forward(rc__chain *c, rc_err *e);
 /* From the gradient of the chain's output: the Conv's output gradient
- * (when it has one) and the normalisation's parameter gradients. The Conv's
- * own backward then runs as a plain step. */
-void rc__chain_backward(rc__chain *c);
+ * (when it has one) and the normalisation's parameter gradients. Returns 1
+ * when the head step's own backward runs after it as a plain step (a Conv),
+ * 0 when this was that backward (a training-mode normalisation). */
+int rc__chain_backward(rc__chain *c);
 
 #endif

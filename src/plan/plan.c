@@ -535,8 +535,8 @@ rc_status rc_plan_backward(rc_plan *p, rc_err *e) {
     return rc__fail(e, RC_ERR_INVALID, "%s: backward on a plan built without training", p->g->path);
   for (int s = p->n_steps - 1; s >= 0; s--) {
     if (p->ran_fused && p->role[s] < 0) continue;
-    if (p->ran_fused && p->role[s] > 0) rc__chain_backward(&p->chains[p->role[s] - 1]);
-    if (p->steps[s].wants_backward) p->steps[s].k.node->def->backward(&p->steps[s].k);
+    const int own = p->ran_fused && p->role[s] > 0 ? rc__chain_backward(&p->chains[p->role[s] - 1]) : 1;
+    if (own && p->steps[s].wants_backward) p->steps[s].k.node->def->backward(&p->steps[s].k);
   }
   return RC_OK;
 }
