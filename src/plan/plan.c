@@ -9,7 +9,6 @@
 #include "core/alloc.h"
 #include "core/arena.h"
 #include "ops/kernel_choice.h"
-#include "ops/sparse.h"
 #include "plan/fuse.h"
 
 /* A node that runs on every batch (folded nodes are not steps). */
@@ -410,6 +409,28 @@ static rc_status build_gradient_views(rc_plan *p, rc_err *e) {
   return RC_OK;
 }
 
+/* Hand opts.patterns to the steps that read a patterned value as their
+ * weight, before workspaces are sized (layout_memory). */
+static rc_status attach_patterns(rc_plan *p, const rc__wpattern *const *patterns, rc_err *e) {
+  const rc_graph *g = p->g;
+  for (int v = 0; patterns && v < g->n_values; v++) {
+    const rc__wpattern *pat = patterns[v];
+    if (!pat) continue;
+    const rc_tensor *t = &p->t[v];
+    if (p->is_const[v] || t->rank < 2 || t->dtype != RC_DTYPE_FLOAT || !t->dims[0] || pat->rows != t->dims[0] ||
+        pat->cols != rc_tensor_numel(t) / t->dims[0])
+      return rc__fail(e, RC_ERR_INVALID, "%s: '%s' cannot take its weight pattern (it needs a float weight of "
+                      "rank 2 or more that the plan keeps trainable, of %lld rows and %lld columns)",
+                      g->path, g->values[v].name, (long long)pat->rows, (long long)pat->cols);
+  }
+  for (int s = 0; patterns && s < p->n_steps; s++) {
+    const rc_node *n = &g->nodes[p->steps[s].node];
+    if ((n->def->flags & RC_OP_SPARSE_WEIGHT) && n->n_in >= 2 && n->in[1] >= 0)
+      p->steps[s].k.pattern = patterns[n->in[1]];
+  }
+  return RC_OK;
+}
+
 rc_status rc_plan_init(rc_plan **out, const rc_graph *g, const rc_tensor *inputs,
                        const rc_plan_opts *opts, rc_err *e) {
   *out = NULL;
@@ -446,6 +467,7 @@ rc_status rc_plan_init(rc_plan **out, const rc_graph *g, const rc_tensor *inputs
   if ((st = check_inputs(p, inputs, e)) != RC_OK) goto fail;
   if ((st = infer_and_fold(p, o, live, e)) != RC_OK) goto fail;
   if (p->training && (st = mark_gradients(p, o, e)) != RC_OK) goto fail;
+  if ((st = attach_patterns(p, o->patterns, e)) != RC_OK) goto fail;
   if ((st = find_chains(p, o, e)) != RC_OK) goto fail;
   if ((st = layout_memory(p, o, e)) != RC_OK) goto fail;
   if ((st = build_gradient_views(p, e)) != RC_OK) goto fail;
@@ -483,28 +505,20 @@ rc_status rc_plan_bind_grad(rc_plan *p, int value, float *buf, rc_err *e) {
   return RC_OK;
 }
 
-rc_status rc_plan_set_weight_pattern(rc_plan *p, int value, const uint8_t *keep, int *steps, rc_err *e) {
-  const rc_graph *g = p->g;
-  if (steps) *steps = 0;
-  if (value < 0 || value >= g->n_values || p->is_const[value] || p->t[value].rank < 2 ||
-      p->t[value].dtype != RC_DTYPE_FLOAT)
-    return rc__fail(e, RC_ERR_INVALID, "%s: value %d cannot take a weight pattern (a float weight of rank 2 or more "
-                    "that the plan keeps trainable)", g->path, value);
-  const rc_tensor *t = &p->t[value];
-  rc__wpattern *pat = NULL;
-  for (int s = 0; s < p->n_steps; s++) {
-    const rc_node *n = &g->nodes[p->steps[s].node];
-    if (!(n->def->flags & RC_OP_SPARSE_WEIGHT) || n->n_in < 2 || n->in[1] != value) continue;
-    if (!pat) {
-      pat = rc__arena_zalloc(&p->meta, sizeof *pat);
-      if (!pat) return rc__fail(e, RC_ERR_NOMEM, "%s: out of memory for a weight pattern", g->path);
-      if (rc__wpattern_build(pat, &p->meta, keep, t->dims[0], rc_tensor_numel(t) / t->dims[0], e) != RC_OK)
-        return rc__wrap(e, "%s: value %d", g->path, value);
-    }
-    p->steps[s].k.pattern = pat;
-    if (steps) (*steps)++;
-  }
-  return RC_OK;
+static const plan_step *step_of(const rc_plan *p, int node) {
+  for (int s = 0; s < p->n_steps; s++)
+    if (p->steps[s].node == node) return &p->steps[s];
+  return NULL;
+}
+
+const rc__wpattern *rc__plan_step_pattern(const rc_plan *p, int node) {
+  const plan_step *s = step_of(p, node);
+  return s ? s->k.pattern : NULL;
+}
+
+int rc__plan_step_has_state(const rc_plan *p, int node) {
+  const plan_step *s = step_of(p, node);
+  return s && s->state.data != NULL;
 }
 
 int rc_plan_is_const(const rc_plan *p, int value) {

@@ -13,6 +13,7 @@
 #include "core/log.h"
 #include "data/augment.h"
 #include "data/spill.h"
+#include "ops/sparse.h"
 #include "plan/count.h"
 #include "plan/inspect.h"
 #include "plan/load.h"
@@ -253,16 +254,25 @@ static void teacher_order(const rc_graph *t, const rc_graph *s, const rc_tensor 
   }
 }
 
-/* Pruned weights' kept positions go to the student's plans, whose kernels
+/* Pruned weights' kept positions, for the student's plans, whose kernels
  * may then run sparse (ops/sparse.h): only the masks tell a frozen zero
- * from a trainable weight that happens to be zero. */
-static rc_status set_weight_patterns(run_state *st, rc_err *e) {
+ * from a trainable weight that happens to be zero. Built once for the run:
+ * the training, evaluation and measuring plans share them. */
+static rc_status build_patterns(run_state *st, rc_err *e) {
+  const rc_graph *sg = st->sg;
+  rc__arena_init(&st->patterns_mem, 1 << 16);
+  st->patterns = rc__calloc((size_t)sg->n_values + 1, sizeof *st->patterns);
+  if (!st->patterns) return rc__fail(e, RC_ERR_NOMEM, "out of memory for weight patterns");
   for (int i = 0; i < st->n_tr; i++) {
     const int v = st->tr[i].value;
     const uint8_t *mask = rc_params_entry(st->ps, st->tr[i].entry)->mask;
-    if (!mask || !st->trainable_mask[v] || st->sg->values[v].decl.rank < 2) continue;
-    RC_TRY(rc_plan_set_weight_pattern(st->train_plan, v, mask, NULL, e));
-    RC_TRY(rc_plan_set_weight_pattern(st->eval_plan, v, mask, NULL, e));
+    const rc_tensor *t = &sg->values[v].decl;
+    if (!mask || !st->trainable_mask[v] || t->rank < 2 || t->dtype != RC_DTYPE_FLOAT || !t->dims[0]) continue;
+    rc__wpattern *pat = rc__arena_zalloc(&st->patterns_mem, sizeof *pat);
+    if (!pat) return rc__fail(e, RC_ERR_NOMEM, "out of memory for a weight pattern");
+    if (rc__wpattern_build(pat, &st->patterns_mem, mask, t->dims[0], rc_tensor_numel(t) / t->dims[0], e) != RC_OK)
+      return rc__wrap(e, "%s: '%s'", sg->path, sg->values[v].name);
+    st->patterns[v] = pat;
   }
   return RC_OK;
 }
@@ -285,15 +295,22 @@ static rc_status build_plans(run_state *st, const rc_tensor *data, rc_err *e) {
     for (int k = 3; k <= 4 && k < n->n_in; k++)
       if (n->in[k] >= 0) st->trainable_mask[n->in[k]] = 0;
   }
-  rc_plan_opts eval_opts = {.training = 0, .trainable = live, .keep = NULL, .bn_batch_stats = 0};
-  rc_status s = rc_plan_init(&st->eval_plan, sg, shapes, &eval_opts, e);
+  rc_status s = build_patterns(st, e);
+  if (s != RC_OK) {
+    rc__free(live);
+    return s;
+  }
+  rc_plan_opts eval_opts = {
+      .training = 0, .trainable = live, .keep = NULL, .bn_batch_stats = 0, .patterns = st->patterns};
+  s = rc_plan_init(&st->eval_plan, sg, shapes, &eval_opts, e);
   rc__free(live);
   RC_TRY(s);
   rc_plan_opts train_opts = {.training = 1,
                              .trainable = st->trainable_mask,
                              .keep = st->skeep,
                              .bn_batch_stats = st->c->bn == RC_BN_TRAIN,
-                             .reduce = rc__dist_stats_hook(&st->stats)};
+                             .reduce = rc__dist_stats_hook(&st->stats),
+                             .patterns = st->patterns};
   teacher_order(tg, sg, shapes, tin);
   RC_TRY(rc_plan_init(&st->teacher_plan, tg, tin, NULL, e));
   /* The step's plans take this rank's part of the global batch. */
@@ -325,7 +342,7 @@ static rc_status build_plans(run_state *st, const rc_tensor *data, rc_err *e) {
     if (!rc_plan_grad(st->train_plan, v)) continue; /* feeds no output: stays as it is */
     RC_TRY(rc_plan_bind_grad(st->train_plan, v, rc_params_grad(st->ps, st->tr[i].entry), e));
   }
-  return set_weight_patterns(st, e);
+  return RC_OK;
 }
 
 /* This rank's share of an unshuffled view (its order is the identity, so
@@ -866,7 +883,7 @@ static rc_status measure_setup(run_state *st, rc_measure_setup *m, rc_tensor *sh
   rc__input_shapes(st->sg, st->val.inputs, st->batch, shapes);
   teacher_order(&st->teacher->graph, st->sg, shapes, tin);
   *m = (rc_measure_setup){&st->teacher->graph, st->sg, shapes,   tin,        &st->val,
-                          st->batch,           *live,  &st->qat, st->c->dist};
+                          st->batch,           *live,  &st->qat, st->c->dist, st->patterns};
   return RC_OK;
 }
 
@@ -920,6 +937,8 @@ static void free_state(run_state *st) {
   rc_plan_free(st->eval_plan);
   rc_plan_free(st->teacher_plan);
   rc_plan_free(st->teacher_step);
+  rc__free(st->patterns);
+  rc__arena_free(&st->patterns_mem);
   rc__outputs_free(st->outs);
   rc__features_free(st->feat);
   rc__free(st->tkeep);

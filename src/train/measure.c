@@ -182,7 +182,8 @@ static rc_status make_plans(const rc_measure_setup *m, const rc_pairing *pg, rc_
   for (int i = 0; i < m->qat->n; i++)
     if (is_activation_grid(&m->qat->sites[i])) skeep[sg->nodes[m->qat->sites[i].q].in[0]] = 1;
   rc_plan_opts to = {.training = 0, .trainable = NULL, .keep = tkeep, .bn_batch_stats = 0};
-  rc_plan_opts so = {.training = 0, .trainable = m->live, .keep = skeep, .bn_batch_stats = 0};
+  rc_plan_opts so = {
+      .training = 0, .trainable = m->live, .keep = skeep, .bn_batch_stats = 0, .patterns = m->patterns};
   if ((s = rc_plan_init(tp, tg, m->teacher_shapes, &to, e)) == RC_OK) s = rc_plan_init(sp, sg, m->student_shapes, &so, e);
 out:
   rc__free(tkeep);

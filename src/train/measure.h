@@ -19,6 +19,7 @@
 
 #include "core/status.h"
 #include "ir/ir.h"
+#include "ops/sparse.h"
 #include "recoup/data.h"
 #include "train/dist.h"
 #include "train/distill.h"
@@ -37,6 +38,7 @@ typedef struct rc_measure_setup {
   const unsigned char *live;          /* per student value: changes during the run (never folded) */
   const rc_qat *qat;
   rc_dist *dist; /* the ranks sharing the work (NULL: one process) */
+  const rc__wpattern *const *patterns; /* per student value or NULL (plan.h) */
 } rc_measure_setup;
 
 /* Pairs of equal shape, student side moved past its QDQ pair; fills
