@@ -42,6 +42,9 @@ typedef struct run_state {
    * shared by every student plan of the run (ops/sparse.h); in patterns_mem. */
   const rc__wpattern **patterns;
   rc_arena patterns_mem;
+  /* eval_plan and teacher_plan keep what the layer table reads, so its
+   * passes run through them (train/measure.h) */
+  int measure_shared;
   int64_t batch, k;
   rc_dataset train, val;
   float *teacher_logits;     /* per training-pool sample (N_pool, K), in teacher_cache */

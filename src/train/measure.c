@@ -167,6 +167,15 @@ static double sqnr_db(double sig, double noise, int64_t rows) {
   return 10.0 * log10(sig / noise);
 }
 
+void rc__measure_keep(const rc_measure_setup *m, const rc_pairing *pg, unsigned char *tkeep, unsigned char *skeep) {
+  for (int i = 0; i < pg->n; i++) {
+    tkeep[pg->pairs[i].teacher] = 1;
+    skeep[pg->pairs[i].student] = 1;
+  }
+  for (int i = 0; i < m->qat->n; i++)
+    if (is_activation_grid(&m->qat->sites[i])) skeep[m->student->nodes[m->qat->sites[i].q].in[0]] = 1;
+}
+
 static rc_status make_plans(const rc_measure_setup *m, const rc_pairing *pg, rc_plan **tp, rc_plan **sp, rc_err *e) {
   const rc_graph *tg = m->teacher, *sg = m->student;
   unsigned char *tkeep = rc__calloc((size_t)tg->n_values + 1, 1), *skeep = rc__calloc((size_t)sg->n_values + 1, 1);
@@ -175,12 +184,7 @@ static rc_status make_plans(const rc_measure_setup *m, const rc_pairing *pg, rc_
     s = rc__fail(e, RC_ERR_NOMEM, "out of memory");
     goto out;
   }
-  for (int i = 0; i < pg->n; i++) {
-    tkeep[pg->pairs[i].teacher] = 1;
-    skeep[pg->pairs[i].student] = 1;
-  }
-  for (int i = 0; i < m->qat->n; i++)
-    if (is_activation_grid(&m->qat->sites[i])) skeep[sg->nodes[m->qat->sites[i].q].in[0]] = 1;
+  rc__measure_keep(m, pg, tkeep, skeep);
   rc_plan_opts to = {.training = 0, .trainable = NULL, .keep = tkeep, .bn_batch_stats = 0};
   rc_plan_opts so = {
       .training = 0, .trainable = m->live, .keep = skeep, .bn_batch_stats = 0, .patterns = m->patterns};
@@ -266,7 +270,7 @@ rc_status rc__measure_run(const rc_measure_setup *m, const rc_pairing *pg, rc_di
                           rc_err *e) {
   if (!pg->n && !r->n_ranges) return RC_OK;
   const rc_graph *tg = m->teacher, *sg = m->student;
-  rc_plan *tp = NULL, *sp = NULL;
+  rc_plan *tp = m->teacher_plan, *sp = m->student_plan, *own_tp = NULL, *own_sp = NULL;
   sums acc = {rc__calloc((size_t)pg->n + 1, sizeof(double)), rc__calloc((size_t)pg->n + 1, sizeof(double)),
               rc__calloc((size_t)pg->n + 1, sizeof(int64_t))};
   rc_status s = RC_OK;
@@ -274,7 +278,11 @@ rc_status rc__measure_run(const rc_measure_setup *m, const rc_pairing *pg, rc_di
     s = rc__fail(e, RC_ERR_NOMEM, "out of memory");
     goto out;
   }
-  if ((s = make_plans(m, pg, &tp, &sp, e)) != RC_OK) goto out;
+  if (!tp || !sp) {
+    if ((s = make_plans(m, pg, &own_tp, &own_sp, e)) != RC_OK) goto out;
+    tp = own_tp;
+    sp = own_sp;
+  }
   for (int i = 0; i < r->n_ranges; i++) {
     rc_range_stats *rs = after ? &r->ranges[i].after : &r->ranges[i].before;
     memset(rs, 0, sizeof *rs);
@@ -317,8 +325,8 @@ rc_status rc__measure_run(const rc_measure_setup *m, const rc_pairing *pg, rc_di
     else l->sqnr_before_db = db, l->samples_before = acc.rows[i];
   }
 out:
-  rc_plan_free(tp);
-  rc_plan_free(sp);
+  rc_plan_free(own_tp);
+  rc_plan_free(own_sp);
   rc__free(acc.sig);
   rc__free(acc.noise);
   rc__free(acc.rows);
