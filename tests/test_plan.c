@@ -1,6 +1,7 @@
 /* The planner: folding of shape subgraphs, memory reuse in inference plans,
  * the reverse pass against finite differences, and clear errors. Graphs are
  * built by hand in the IR, without files. */
+#define _POSIX_C_SOURCE 200809L /* setenv */
 #include <math.h>
 #include <stdint.h>
 
@@ -397,6 +398,62 @@ static void patterns_reach_steps_before_sizing(void) {
   rc__arena_free(&b.g.arena);
 }
 
+/* y = Relu^8(x * w), w (1000) trainable: the inner values' gradients share
+ * memory by lifetime (at most three live at once, not eight), every step's
+ * backward still starts from a cleared gradient, and two steps in a row give
+ * the same weight gradient as the formula: sum over rows of r * x where
+ * x * w > 0. */
+static void inner_gradients_share_memory(void) {
+  builder b;
+  b_init(&b);
+  int64_t d[2] = {-1, 1000}, dw[1] = {1000};
+  static float w[1000];
+  fill(w, 1000, 31);
+  int v = b_input(&b, "x", 2, d);
+  int mul_in[2] = {v, b_init_tensor(&b, "w", RC_DTYPE_FLOAT, 1, dw, w)};
+  v = b_node(&b, "Mul", "mul", 2, mul_in, 1);
+  static const char *names[] = {"r0", "r1", "r2", "r3", "r4", "r5", "r6", "r7"};
+  for (int i = 0; i < 8; i++) v = b_node(&b, "Relu", names[i], 1, &v, 1);
+  b_output(&b, v);
+  rc_err e = {0};
+  CHECK_INT(rc__graph_finalize(&b.g, &e), RC_OK);
+  const int wv = rc__graph_find_value(&b.g, "w");
+  unsigned char *trainable = rc__calloc((size_t)b.g.n_values, 1);
+  trainable[wv] = 1;
+  rc_tensor in = {RC_DTYPE_FLOAT, 2, {16, 1000}, NULL};
+  rc_plan_opts o = {.training = 1, .trainable = trainable};
+  rc_plan *p = NULL;
+  CHECK_INT(rc_plan_init(&p, &b.g, &in, &o, &e), RC_OK);
+  if (p) {
+    const size_t one = 16 * 1000 * sizeof(float);
+    /* x and 9 kept activations, the output's and w's gradients, and at
+     * most 3 inner gradients (8 without sharing) */
+    CHECK_LT(rc_plan_bytes(p), 14 * one);
+    float *x = rc_plan_tensor(p, b.g.inputs[0])->data;
+    static float r[16 * 1000];
+    fill(x, 16 * 1000, 32);
+    fill(r, 16 * 1000, 33);
+    double worst = 0;
+    for (int step = 0; step < 2; step++) {
+      CHECK_INT(rc_plan_forward(p, &e), RC_OK);
+      rc_plan_zero_grad(p);
+      memcpy(rc_plan_grad(p, b.g.outputs[0])->data, r, sizeof r);
+      CHECK_INT(rc_plan_backward(p, &e), RC_OK);
+      const float *gw = rc_plan_grad(p, wv)->data;
+      for (int j = 0; j < 1000; j++) {
+        double want = 0;
+        for (int i = 0; i < 16; i++)
+          if (x[i * 1000 + j] * w[j] > 0) want += (double)r[i * 1000 + j] * x[i * 1000 + j];
+        worst = fmax(worst, fabs(gw[j] - want));
+      }
+    }
+    CHECK_LT(worst, 1e-4);
+  }
+  rc_plan_free(p);
+  rc__free(trainable);
+  rc__arena_free(&b.g.arena);
+}
+
 int main(void) {
   RUN(shape_subgraph_is_folded);
   RUN(reverse_pass_matches_finite_differences);
@@ -404,5 +461,6 @@ int main(void) {
   RUN(errors_name_what_is_wrong);
   RUN(allocation_failures_end_cleanly);
   RUN(patterns_reach_steps_before_sizing);
+  RUN(inner_gradients_share_memory);
   return TEST_REPORT();
 }

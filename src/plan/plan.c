@@ -32,6 +32,11 @@ struct rc_plan {
   size_t block_bytes;
   unsigned char *grad_block; /* inside block: the part rc_plan_zero_grad clears */
   size_t grad_bytes;
+  /* Gradients of inner values share room by lifetime; backward clears each
+   * just before the first step (in reverse order) that may add into it:
+   * those of step s are clear_value[clear_start[s] .. clear_start[s + 1]). */
+  int *clear_start;
+  int *clear_value;
   void *work;
   int training;
   size_t max_bytes;    /* limit on folded constants and the block together */
@@ -39,6 +44,7 @@ struct rc_plan {
   rc__chain *chains;   /* steps run as one (fuse.h) */
   int n_chains;
   int *role;     /* per step: 0, chain + 1 at its head, -1 absorbed */
+  unsigned char *inner_grad; /* per value: its gradient is inner (mark_inner_grads) */
   int ran_fused; /* the last forward ran the chains (backward follows it) */
 };
 
@@ -247,6 +253,74 @@ static size_t place_slots(slot *sl, int n) {
   return top;
 }
 
+/* Gradients of inner values: produced by a step, neither a graph output
+ * nor kept, so no caller seeds or reads them (rc_plan_zero_grad leaves them
+ * to backward). */
+static rc_status mark_inner_grads(rc_plan *p, const rc_plan_opts *o, rc_err *e) {
+  const rc_graph *g = p->g;
+  p->inner_grad = rc__arena_zalloc(&p->meta, (size_t)g->n_values + 1);
+  if (!p->inner_grad) return rc__fail(e, RC_ERR_NOMEM, "%s: out of memory while planning", g->path);
+  for (int s = 0; s < p->n_steps; s++) {
+    const rc_node *n = &g->nodes[p->steps[s].node];
+    for (int j = 0; j < n->n_out; j++)
+      if (n->out[j] >= 0 && p->needs_grad[n->out[j]]) p->inner_grad[n->out[j]] = 1;
+  }
+  for (int i = 0; i < g->n_outputs; i++) p->inner_grad[g->outputs[i]] = 0;
+  for (int v = 0; o->keep && v < g->n_values; v++)
+    if (o->keep[v]) p->inner_grad[v] = 0;
+  return RC_OK;
+}
+
+static void widen(slot *sl, int v, int first, int last) {
+  if (v < 0) return;
+  if (sl[v].first < 0 || first < sl[v].first) sl[v].first = first;
+  if (last > sl[v].last) sl[v].last = last;
+}
+
+/* Room for the inner gradients, placed like activations by lifetime in step
+ * indices: from the step producing the value (its backward reads the
+ * gradient last) to the last step reading it (the first, in reverse order,
+ * to add into it); a chain's values live over the whole chain, whose
+ * backward runs at its head. Builds the clearing lists backward follows. */
+static rc_status place_inner_grads(rc_plan *p, slot *sl, size_t *bytes) {
+  const rc_graph *g = p->g;
+  const int nv = g->n_values, ns = p->n_steps;
+  for (int v = 0; v < nv; v++) sl[v].first = sl[v].last = -1;
+  for (int s = 0; s < ns; s++) {
+    const rc_node *n = &g->nodes[p->steps[s].node];
+    for (int j = 0; j < n->n_out; j++) widen(sl, n->out[j], s, s);
+    for (int i = 0; i < n->n_in; i++) widen(sl, n->in[i], s, s);
+  }
+  for (int s = 0; s < ns; s++) {
+    if (p->role[s] <= 0) continue;
+    const rc__chain *c = &p->chains[p->role[s] - 1];
+    const rc_kernel *member[3] = {c->conv, c->bn, c->act};
+    for (int m = 0; m < 3; m++) {
+      if (!member[m]) continue;
+      const rc_node *n = member[m]->node;
+      for (int j = 0; j < n->n_out; j++) widen(sl, n->out[j], s, c->last);
+      for (int i = 0; i < n->n_in; i++) widen(sl, n->in[i], s, c->last);
+    }
+  }
+  for (int v = 0; v < nv; v++) sl[v].size = p->inner_grad[v] ? round_up(rc_tensor_nbytes(&p->t[v])) : 0;
+  *bytes = place_slots(sl, nv);
+  p->clear_start = rc__arena_zalloc(&p->meta, sizeof(int) * (size_t)(ns + 2));
+  p->clear_value = rc__arena_zalloc(&p->meta, sizeof(int) * (size_t)(nv + 1));
+  if (!p->clear_start || !p->clear_value) return RC_ERR_NOMEM;
+  for (int v = 0; v < nv; v++)
+    if (p->inner_grad[v]) p->clear_start[sl[v].last + 1]++;
+  for (int s = 0; s < ns; s++) p->clear_start[s + 1] += p->clear_start[s];
+  int *fill = rc__calloc((size_t)ns + 1, sizeof(int));
+  if (!fill) return RC_ERR_NOMEM;
+  for (int v = 0; v < nv; v++)
+    if (p->inner_grad[v]) {
+      const int s = sl[v].last;
+      p->clear_value[p->clear_start[s] + fill[s]++] = v;
+    }
+  rc__free(fill);
+  return RC_OK;
+}
+
 static rc_status layout_memory(rc_plan *p, const rc_plan_opts *o, rc_err *e) {
   const rc_graph *g = p->g;
   int nv = g->n_values;
@@ -295,10 +369,17 @@ static rc_status layout_memory(rc_plan *p, const rc_plan_opts *o, rc_err *e) {
       if (n->out[j] < 0) extra += round_up(rc_tensor_nbytes(p->steps[s].k.out[j]));
   }
   size_t act = place_slots(sl, nv);
-  /* Gradients: one contiguous block so zeroing is one memset. */
-  size_t grads = 0;
+  /* Gradients the caller seeds or reads: one contiguous block, so zeroing
+   * is one memset; those of inner values share room by lifetime. */
+  size_t grads = 0, inner = 0;
   for (int v = 0; v < nv; v++)
-    if (p->needs_grad[v]) grads += round_up(rc_tensor_nbytes(&p->t[v]));
+    if (p->needs_grad[v] && !p->inner_grad[v]) grads += round_up(rc_tensor_nbytes(&p->t[v]));
+  slot *gsl = p->training ? rc__calloc((size_t)nv + 1, sizeof(slot)) : NULL;
+  if (p->training && (!gsl || place_inner_grads(p, gsl, &inner) != RC_OK)) {
+    rc__free(gsl);
+    rc__free(sl);
+    return rc__fail(e, RC_ERR_NOMEM, "%s: out of memory while planning", g->path);
+  }
   size_t saved = 0, work = 0;
   for (int s = 0; s < p->n_steps; s++) {
     rc_kernel *k = &p->steps[s].k;
@@ -309,19 +390,22 @@ static rc_status layout_memory(rc_plan *p, const rc_plan_opts *o, rc_err *e) {
     if (w0 > work) work = w0;
     if (w1 > work) work = w1;
     if (p->steps[s].state.out_of_memory) {
+      rc__free(gsl);
       rc__free(sl);
       return rc__fail(e, RC_ERR_NOMEM, "node '%s' (%s): out of memory", k->node->label, k->node->op_type);
     }
   }
   work = round_up(work);
-  size_t total = act + extra + grads + saved + work + ALIGN;
+  size_t total = act + extra + grads + inner + saved + work + ALIGN;
   if (total > p->max_bytes - p->folded_bytes) {
+    rc__free(gsl);
     rc__free(sl);
     return rc__fail(e, RC_ERR_LIMIT, "%s: the plan needs %zu bytes, over its limit of %zu", g->path,
                     total + p->folded_bytes, p->max_bytes);
   }
   p->block = rc__malloc(total);
   if (!p->block) {
+    rc__free(gsl);
     rc__free(sl);
     return rc__fail(e, RC_ERR_NOMEM, "%s: cannot allocate %zu bytes for a plan", g->path, total);
   }
@@ -349,12 +433,16 @@ static rc_status layout_memory(rc_plan *p, const rc_plan_opts *o, rc_err *e) {
   for (int v = 0; v < nv; v++) {
     p->grad[v] = p->t[v];
     p->grad[v].data = NULL;
-    if (p->needs_grad[v]) {
+    if (p->needs_grad[v] && !p->inner_grad[v]) {
       p->grad[v].data = cur;
       cur += round_up(rc_tensor_nbytes(&p->t[v]));
     }
   }
   memset(p->grad_block, 0, grads);
+  for (int v = 0; v < nv; v++)
+    if (p->inner_grad[v]) p->grad[v].data = cur + gsl[v].offset;
+  cur += inner;
+  rc__free(gsl);
   for (int s = 0; s < p->n_steps; s++) {
     rc_kernel *k = &p->steps[s].k;
     const rc_op_def *d = k->node->def;
@@ -469,6 +557,7 @@ rc_status rc_plan_init(rc_plan **out, const rc_graph *g, const rc_tensor *inputs
   if (p->training && (st = mark_gradients(p, o, e)) != RC_OK) goto fail;
   if ((st = attach_patterns(p, o->patterns, e)) != RC_OK) goto fail;
   if ((st = find_chains(p, o, e)) != RC_OK) goto fail;
+  if ((st = mark_inner_grads(p, o, e)) != RC_OK) goto fail;
   if ((st = layout_memory(p, o, e)) != RC_OK) goto fail;
   if ((st = build_gradient_views(p, e)) != RC_OK) goto fail;
   rc__free(live);
@@ -546,6 +635,10 @@ rc_status rc_plan_backward(rc_plan *p, rc_err *e) {
   if (!p->training)
     return rc__fail(e, RC_ERR_INVALID, "%s: backward on a plan built without training", p->g->path);
   for (int s = p->n_steps - 1; s >= 0; s--) {
+    for (int i = p->clear_start[s]; i < p->clear_start[s + 1]; i++) {
+      const rc_tensor *gt = &p->grad[p->clear_value[i]];
+      memset(gt->data, 0, rc_tensor_nbytes(gt));
+    }
     if (p->ran_fused && p->role[s] < 0) continue;
     if (p->ran_fused && p->role[s] > 0) rc__chain_backward(&p->chains[p->role[s] - 1]);
     if (p->steps[s].wants_backward) p->steps[s].k.node->def->backward(&p->steps[s].k);

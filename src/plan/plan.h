@@ -60,7 +60,10 @@ void rc_plan_free(rc_plan *p);
  * NULL data for values not kept (intermediate values of inference plans
  * share memory). */
 rc_tensor *rc_plan_tensor(rc_plan *p, int value);
-/* Gradient of a value (training plans), or NULL where none is tracked. */
+/* Gradient of a value (training plans), or NULL where none is tracked.
+ * Gradients of graph outputs, kept values (opts.keep), inputs and
+ * initializers are the caller's to seed and read; those of inner values
+ * share memory by lifetime and hold their sums only while backward runs. */
 rc_tensor *rc_plan_grad(rc_plan *p, int value);
 /* Make the gradient of a value (a trainable initializer) accumulate into buf,
  * e.g. the parameter store's gradient block; the caller zeroes it. */
@@ -75,7 +78,9 @@ int rc__plan_step_has_state(const rc_plan *p, int node);
 int rc_plan_is_const(const rc_plan *p, int value);
 
 rc_status rc_plan_forward(rc_plan *p, rc_err *e);
-/* Zero every gradient buffer (one memset over the gradient block). */
+/* Zero the gradients a caller may seed or read (one memset); backward
+ * clears each inner value's gradient itself, just before the first step
+ * that adds into it. */
 void rc_plan_zero_grad(rc_plan *p);
 /* Reverse pass. The caller has written d(loss)/d(value) into the gradient
  * buffers of the values it computed the loss from. Gradients of trainable
