@@ -4,7 +4,6 @@
 #define _POSIX_C_SOURCE 200809L /* setenv */
 #include <math.h>
 #include <stdint.h>
-
 #include <stdlib.h>
 
 #include "core/alloc.h"
@@ -374,8 +373,10 @@ static void patterns_reach_steps_before_sizing(void) {
     double worst_y = 0, worst_g = 0;
     for (int i = 0; i < 2 * 16 * 36; i++) worst_y = fmax(worst_y, fabs(outs[1][0][i] - outs[0][0][i]));
     for (int i = 0; i < 16 * 8 * 9; i++) {
-      if (keep1[i]) worst_g = fmax(worst_g, fabs(outs[1][1][i] - outs[0][1][i]) / (1 + fabs(outs[0][1][i])));
-      else CHECK_EQ(outs[1][1][i], 0.0f);
+      if (keep1[i])
+        worst_g = fmax(worst_g, fabs(outs[1][1][i] - outs[0][1][i]) / (1 + fabs(outs[0][1][i])));
+      else
+        CHECK_EQ(outs[1][1][i], 0.0f);
     }
     CHECK_LT(worst_y, 1e-4);
     CHECK_LT(worst_g, 1e-4);

@@ -526,7 +526,8 @@ static rc_status attach_patterns(rc_plan *p, const rc__wpattern *const *patterns
     const rc_tensor *t = &p->t[v];
     if (p->is_const[v] || t->rank < 2 || t->dtype != RC_DTYPE_FLOAT || !t->dims[0] || pat->rows != t->dims[0] ||
         pat->cols != rc_tensor_numel(t) / t->dims[0])
-      return rc__fail(e, RC_ERR_INVALID, "%s: '%s' cannot take its weight pattern (it needs a float weight of "
+      return rc__fail(e, RC_ERR_INVALID,
+                      "%s: '%s' cannot take its weight pattern (it needs a float weight of "
                       "rank 2 or more that the plan keeps trainable, of %lld rows and %lld columns)",
                       g->path, g->values[v].name, (long long)pat->rows, (long long)pat->cols);
   }

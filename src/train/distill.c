@@ -286,9 +286,18 @@ static rc_status measure_setup(run_state *st, rc_measure_setup *m, rc_tensor *sh
   for (int i = 0; i < st->n_tr; i++) (*live)[st->tr[i].value] = 1;
   rc__input_shapes(st->sg, st->val.inputs, st->batch, shapes);
   teacher_order(&st->teacher->graph, st->sg, shapes, tin);
-  *m = (rc_measure_setup){&st->teacher->graph, st->sg, shapes,   tin,        &st->val,
-                          st->batch,           *live,  &st->qat, st->c->dist, st->patterns,
-                          st->measure_shared ? st->teacher_plan : NULL, st->measure_shared ? st->eval_plan : NULL};
+  *m = (rc_measure_setup){&st->teacher->graph,
+                          st->sg,
+                          shapes,
+                          tin,
+                          &st->val,
+                          st->batch,
+                          *live,
+                          &st->qat,
+                          st->c->dist,
+                          st->patterns,
+                          st->measure_shared ? st->teacher_plan : NULL,
+                          st->measure_shared ? st->eval_plan : NULL};
   return RC_OK;
 }
 
@@ -310,8 +319,10 @@ static rc_status measure_pairs(run_state *st, const rc_tensor *shapes, const rc_
   if (s == RC_OK && same && (pg->n || r->n_ranges)) {
     *tkeep = rc__calloc((size_t)st->teacher->graph.n_values + 1, 1);
     *skeep = rc__calloc((size_t)st->sg->n_values + 1, 1);
-    if (!*tkeep || !*skeep) s = rc__fail(e, RC_ERR_NOMEM, "out of memory");
-    else rc__measure_keep(&m, pg, *tkeep, *skeep);
+    if (!*tkeep || !*skeep)
+      s = rc__fail(e, RC_ERR_NOMEM, "out of memory");
+    else
+      rc__measure_keep(&m, pg, *tkeep, *skeep);
   }
   rc__free(live);
   return s;

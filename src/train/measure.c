@@ -199,7 +199,8 @@ static double sqnr_db(double sig, double noise, int64_t rows) {
   return 10.0 * log10(sig / noise);
 }
 
-void rc__measure_keep(const rc_measure_setup *m, const rc_pairing *pg, unsigned char *tkeep, unsigned char *skeep) {
+void rc__measure_keep(const rc_measure_setup *m, const rc_pairing *pg, unsigned char *tkeep,
+                      unsigned char *skeep) {
   for (int i = 0; i < pg->n; i++) {
     tkeep[pg->pairs[i].teacher] = 1;
     skeep[pg->pairs[i].student] = 1;
