@@ -1,10 +1,14 @@
 /* The planner: folding of shape subgraphs, memory reuse in inference plans,
  * the reverse pass against finite differences, and clear errors. Graphs are
  * built by hand in the IR, without files. */
+#define _POSIX_C_SOURCE 200809L /* setenv */
 #include <math.h>
 #include <stdint.h>
+#include <stdlib.h>
 
 #include "core/alloc.h"
+#include "ops/kernel_choice.h"
+#include "ops/sparse.h"
 #include "plan/load.h"
 #include "plan/plan.h"
 #include "recoup/alloc.h"
@@ -296,11 +300,168 @@ static void allocation_failures_end_cleanly(void) {
   rc__arena_free(&b.g.arena);
 }
 
+/* x (2,8,10,10) -> Conv w1 (16,8,3,3) -> Conv w2 (16,16,3,3) -> y (2,16,6,6);
+ * w1 keeps one position in 24 (a pruned layer), w2 is dense. */
+static void build_two_convs(builder *b, float *w1, uint8_t *keep1, float *w2) {
+  b_init(b);
+  int64_t dx[4] = {-1, 8, 10, 10}, d1[4] = {16, 8, 3, 3}, d2[4] = {16, 16, 3, 3};
+  int x = b_input(b, "x", 4, dx);
+  fill(w1, 16 * 8 * 9, 21);
+  fill(w2, 16 * 16 * 9, 22);
+  for (int i = 0; i < 16 * 8 * 9; i++) {
+    keep1[i] = i % 24 == 5;
+    if (!keep1[i]) w1[i] = 0;
+  }
+  int in1[2] = {x, b_init_tensor(b, "w1", RC_DTYPE_FLOAT, 4, d1, w1)};
+  int y1 = b_node(b, "Conv", "conv1", 2, in1, 1);
+  int in2[2] = {y1, b_init_tensor(b, "w2", RC_DTYPE_FLOAT, 4, d2, w2)};
+  b_output(b, b_node(b, "Conv", "conv2", 2, in2, 1));
+}
+
+/* Weight patterns reach the steps before workspaces are sized: the pruned
+ * Conv runs sparse and keeps no oneDNN state; one pattern built by the caller
+ * serves a training and an inference plan (same pointer, not rebuilt); the
+ * results equal those of plans without patterns (the dense path). */
+static void patterns_reach_steps_before_sizing(void) {
+  static float w1[16 * 8 * 9], w2[16 * 16 * 9];
+  static uint8_t keep1[16 * 8 * 9];
+  builder b;
+  build_two_convs(&b, w1, keep1, w2);
+  rc_err e = {0};
+  CHECK_INT(rc__graph_finalize(&b.g, &e), RC_OK);
+  const int v1 = rc__graph_find_value(&b.g, "w1"), v2 = rc__graph_find_value(&b.g, "w2");
+  unsigned char *trainable = rc__calloc((size_t)b.g.n_values, 1);
+  const rc__wpattern **pats = rc__calloc((size_t)b.g.n_values, sizeof *pats);
+  rc_arena a;
+  rc__arena_init(&a, 1 << 12);
+  rc__wpattern pat;
+  CHECK_INT(rc__wpattern_build(&pat, &a, keep1, 16, 8 * 9, &e), RC_OK);
+  trainable[v1] = trainable[v2] = 1;
+  pats[v1] = &pat;
+  setenv("RECOUP_CONV_PATH", "dnnl", 1);
+  const int have_dnnl = rc__conv_path_choice() == RC_CONV_PATH_DNNL;
+  rc_tensor in = {RC_DTYPE_FLOAT, 4, {2, 8, 10, 10}, NULL};
+  rc_plan *p[2][2] = {{NULL}}; /* [with patterns][training] */
+  for (int with = 0; with < 2; with++)
+    for (int tr = 0; tr < 2; tr++) {
+      rc_plan_opts o = {.training = tr, .trainable = trainable, .patterns = with ? pats : NULL};
+      CHECK_INT(rc_plan_init(&p[with][tr], &b.g, &in, &o, &e), RC_OK);
+    }
+  if (p[0][0] && p[0][1] && p[1][0] && p[1][1]) {
+    for (int tr = 0; tr < 2; tr++) {
+      CHECK_PTR_EQ(rc__plan_step_pattern(p[1][tr], 0), &pat);
+      CHECK_NULL(rc__plan_step_pattern(p[1][tr], 1));
+      CHECK_NULL(rc__plan_step_pattern(p[0][tr], 0));
+      CHECK_INT(rc__plan_step_has_state(p[1][tr], 0), 0);
+      /* oneDNN's primitives exist where its path runs (builds with it). */
+      CHECK_INT(rc__plan_step_has_state(p[1][tr], 1), have_dnnl);
+      CHECK_INT(rc__plan_step_has_state(p[0][tr], 0), have_dnnl);
+    }
+    float *outs[2][2];
+    for (int with = 0; with < 2; with++) {
+      rc_plan *t = p[with][1];
+      fill(rc_plan_tensor(t, b.g.inputs[0])->data, 2 * 8 * 100, 23);
+      CHECK_INT(rc_plan_forward(t, &e), RC_OK);
+      rc_plan_zero_grad(t);
+      fill(rc_plan_grad(t, b.g.outputs[0])->data, 2 * 16 * 36, 24);
+      CHECK_INT(rc_plan_backward(t, &e), RC_OK);
+      outs[with][0] = rc_plan_tensor(t, b.g.outputs[0])->data;
+      outs[with][1] = rc_plan_grad(t, v1)->data;
+    }
+    /* The sparse path leaves frozen positions of the weight gradient alone
+     * (sparse.h); kept positions and the output match the dense path. */
+    double worst_y = 0, worst_g = 0;
+    for (int i = 0; i < 2 * 16 * 36; i++) worst_y = fmax(worst_y, fabs(outs[1][0][i] - outs[0][0][i]));
+    for (int i = 0; i < 16 * 8 * 9; i++) {
+      if (keep1[i])
+        worst_g = fmax(worst_g, fabs(outs[1][1][i] - outs[0][1][i]) / (1 + fabs(outs[0][1][i])));
+      else
+        CHECK_EQ(outs[1][1][i], 0.0f);
+    }
+    CHECK_LT(worst_y, 1e-4);
+    CHECK_LT(worst_g, 1e-4);
+  }
+  unsetenv("RECOUP_CONV_PATH");
+  /* A pattern whose shape is not its value's is refused, naming the value. */
+  rc__wpattern wrong = pat;
+  wrong.rows = 8;
+  pats[v1] = &wrong;
+  rc_plan_opts o = {.training = 1, .trainable = trainable, .patterns = pats};
+  rc_plan *bad = NULL;
+  CHECK_INT(rc_plan_init(&bad, &b.g, &in, &o, &e), RC_ERR_INVALID);
+  CHECK_NULL(bad);
+  CHECK_STR_CONTAINS(e.msg, "'w1'");
+  for (int with = 0; with < 2; with++)
+    for (int tr = 0; tr < 2; tr++) rc_plan_free(p[with][tr]);
+  rc__arena_free(&a);
+  rc__free(pats);
+  rc__free(trainable);
+  rc__arena_free(&b.g.arena);
+}
+
+/* y = Relu^8(x * w), w (1000) trainable: the inner values' gradients share
+ * memory by lifetime (at most three live at once, not eight), every step's
+ * backward still starts from a cleared gradient, and two steps in a row give
+ * the same weight gradient as the formula: sum over rows of r * x where
+ * x * w > 0. */
+static void inner_gradients_share_memory(void) {
+  builder b;
+  b_init(&b);
+  int64_t d[2] = {-1, 1000}, dw[1] = {1000};
+  static float w[1000];
+  fill(w, 1000, 31);
+  int v = b_input(&b, "x", 2, d);
+  int mul_in[2] = {v, b_init_tensor(&b, "w", RC_DTYPE_FLOAT, 1, dw, w)};
+  v = b_node(&b, "Mul", "mul", 2, mul_in, 1);
+  static const char *names[] = {"r0", "r1", "r2", "r3", "r4", "r5", "r6", "r7"};
+  for (int i = 0; i < 8; i++) v = b_node(&b, "Relu", names[i], 1, &v, 1);
+  b_output(&b, v);
+  rc_err e = {0};
+  CHECK_INT(rc__graph_finalize(&b.g, &e), RC_OK);
+  const int wv = rc__graph_find_value(&b.g, "w");
+  unsigned char *trainable = rc__calloc((size_t)b.g.n_values, 1);
+  trainable[wv] = 1;
+  rc_tensor in = {RC_DTYPE_FLOAT, 2, {16, 1000}, NULL};
+  rc_plan_opts o = {.training = 1, .trainable = trainable};
+  rc_plan *p = NULL;
+  CHECK_INT(rc_plan_init(&p, &b.g, &in, &o, &e), RC_OK);
+  if (p) {
+    const size_t one = 16 * 1000 * sizeof(float);
+    /* x and 9 kept activations, the output's and w's gradients, and at
+     * most 3 inner gradients (8 without sharing) */
+    CHECK_LT(rc_plan_bytes(p), 14 * one);
+    float *x = rc_plan_tensor(p, b.g.inputs[0])->data;
+    static float r[16 * 1000];
+    fill(x, 16 * 1000, 32);
+    fill(r, 16 * 1000, 33);
+    double worst = 0;
+    for (int step = 0; step < 2; step++) {
+      CHECK_INT(rc_plan_forward(p, &e), RC_OK);
+      rc_plan_zero_grad(p);
+      memcpy(rc_plan_grad(p, b.g.outputs[0])->data, r, sizeof r);
+      CHECK_INT(rc_plan_backward(p, &e), RC_OK);
+      const float *gw = rc_plan_grad(p, wv)->data;
+      for (int j = 0; j < 1000; j++) {
+        double want = 0;
+        for (int i = 0; i < 16; i++)
+          if (x[i * 1000 + j] * w[j] > 0) want += (double)r[i * 1000 + j] * x[i * 1000 + j];
+        worst = fmax(worst, fabs(gw[j] - want));
+      }
+    }
+    CHECK_LT(worst, 1e-4);
+  }
+  rc_plan_free(p);
+  rc__free(trainable);
+  rc__arena_free(&b.g.arena);
+}
+
 int main(void) {
   RUN(shape_subgraph_is_folded);
   RUN(reverse_pass_matches_finite_differences);
   RUN(inference_plans_reuse_memory);
   RUN(errors_name_what_is_wrong);
   RUN(allocation_failures_end_cleanly);
+  RUN(patterns_reach_steps_before_sizing);
+  RUN(inner_gradients_share_memory);
   return TEST_REPORT();
 }

@@ -374,6 +374,12 @@ static int dnnl_chosen(const rc__conv_geom *g) {
   return rc__conv_path_choice() == RC_CONV_PATH_DNNL && rc__conv_dnnl_fits(g) && !rc__depthwise_fits(g);
 }
 
+/* The weight pattern when the sparse kernels serve this Conv (sparse_conv.c). */
+static const rc__wpattern *sparse_of(const rc_kernel *k, const rc__conv_geom *g) {
+  const rc__wpattern *p = rc__sparse_pick(k, rc__sparse_conv_density_limit(g));
+  return rc__sparse_conv_fits(g, p) ? p : NULL;
+}
+
 static size_t conv_workspace(const rc_kernel *k, int backward) {
   rc__conv_geom g;
   geometry_of(k, &g);
@@ -386,8 +392,12 @@ static size_t conv_workspace(const rc_kernel *k, int backward) {
   }
   if (rc__conv_depthwise(&g))
     return rc__depthwise_fits(&g) ? rc__depthwise_workspace(&g, backward, omp_get_max_threads()) : 0;
-  /* oneDNN's primitives are made here, once per plan, when its path is chosen. */
-  const size_t dnnl = dnnl_chosen(&g) ? rc__conv_dnnl_workspace(k->state, &g, opt_in(k, 2) != NULL, backward) : 0;
+  /* oneDNN's primitives are made here, once per plan, when its path is
+   * chosen; a layer the sparse kernels serve never takes it (the plan hands
+   * patterns over before sizing), so it keeps no primitives or reorder room. */
+  const size_t dnnl = dnnl_chosen(&g) && !sparse_of(k, &g)
+                          ? rc__conv_dnnl_workspace(k->state, &g, opt_in(k, 2) != NULL, backward)
+                          : 0;
   int64_t t = omp_get_max_threads();
   if (t > g.N) t = g.N;
   if (t < 1) t = 1;
@@ -407,12 +417,6 @@ static size_t conv_workspace(const rc_kernel *k, int backward) {
 static int depthwise_direct(const rc_kernel *k, const rc__conv_geom *g, int backward) {
   return rc__depthwise_fits(g) && !rc__conv_reference() &&
          k->work_bytes >= rc__depthwise_workspace(g, backward, 1);
-}
-
-/* The weight pattern when the sparse kernels serve this Conv (sparse_conv.c). */
-static const rc__wpattern *sparse_of(const rc_kernel *k, const rc__conv_geom *g) {
-  const rc__wpattern *p = rc__sparse_pick(k, rc__sparse_conv_density_limit(g));
-  return rc__sparse_conv_fits(g, p) ? p : NULL;
 }
 
 /* The N:M pattern when the N:M kernels serve this Conv (nm_conv.c) and

@@ -2,7 +2,7 @@
  *
  * A pruned weight's frozen zeros cannot be told from trainable weights that
  * happen to be zero by looking at values, so the pattern comes from the
- * training masks: the plan (rc_plan_set_weight_pattern) builds it once and
+ * training masks: the run builds it once (rc_plan_opts.patterns) and
  * hands it to the kernel through rc_kernel.pattern. The pattern lists the
  * kept positions of the weight's storage as rows (its first axis) of
  * columns (the rest, flattened): compressed sparse rows. Values stay in the

@@ -1,16 +1,16 @@
 /* The planner: shape inference over concrete input shapes, folding of
  * everything that is known before the first batch, memory layout, and the
  * forward and reverse passes over the remaining steps. */
+#define _DEFAULT_SOURCE /* madvise */
 #include "plan/plan.h"
 
 #include <stdint.h>
 #include <string.h>
+#include <sys/mman.h>
 
 #include "core/alloc.h"
 #include "core/arena.h"
 #include "ops/kernel_choice.h"
-#include "ops/nm.h"
-#include "ops/sparse.h"
 #include "plan/fuse.h"
 
 /* A node that runs on every batch (folded nodes are not steps). */
@@ -34,6 +34,11 @@ struct rc_plan {
   size_t block_bytes;
   unsigned char *grad_block; /* inside block: the part rc_plan_zero_grad clears */
   size_t grad_bytes;
+  /* Gradients of inner values share room by lifetime; backward clears each
+   * just before the first step (in reverse order) that may add into it:
+   * those of step s are clear_value[clear_start[s] .. clear_start[s + 1]). */
+  int *clear_start;
+  int *clear_value;
   void *work;
   int training;
   size_t max_bytes;    /* limit on folded constants and the block together */
@@ -41,6 +46,7 @@ struct rc_plan {
   rc__chain *chains;   /* steps run as one (fuse.h) */
   int n_chains;
   int *role;     /* per step: 0, chain + 1 at its head, -1 absorbed */
+  unsigned char *inner_grad; /* per value: its gradient is inner (mark_inner_grads) */
   int ran_fused; /* the last forward ran the chains (backward follows it) */
 };
 
@@ -249,6 +255,90 @@ static size_t place_slots(slot *sl, int n) {
   return top;
 }
 
+/* Gradients of inner values: produced by a step, neither a graph output
+ * nor kept, so no caller seeds or reads them (rc_plan_zero_grad leaves them
+ * to backward). */
+static rc_status mark_inner_grads(rc_plan *p, const rc_plan_opts *o, rc_err *e) {
+  const rc_graph *g = p->g;
+  p->inner_grad = rc__arena_zalloc(&p->meta, (size_t)g->n_values + 1);
+  if (!p->inner_grad) return rc__fail(e, RC_ERR_NOMEM, "%s: out of memory while planning", g->path);
+  for (int s = 0; s < p->n_steps; s++) {
+    const rc_node *n = &g->nodes[p->steps[s].node];
+    for (int j = 0; j < n->n_out; j++)
+      if (n->out[j] >= 0 && p->needs_grad[n->out[j]]) p->inner_grad[n->out[j]] = 1;
+  }
+  for (int i = 0; i < g->n_outputs; i++) p->inner_grad[g->outputs[i]] = 0;
+  for (int v = 0; o->keep && v < g->n_values; v++)
+    if (o->keep[v]) p->inner_grad[v] = 0;
+  return RC_OK;
+}
+
+static void widen(slot *sl, int v, int first, int last) {
+  if (v < 0) return;
+  if (sl[v].first < 0 || first < sl[v].first) sl[v].first = first;
+  if (last > sl[v].last) sl[v].last = last;
+}
+
+/* Room for the inner gradients, placed like activations by lifetime in step
+ * indices: from the step producing the value (its backward reads the
+ * gradient last) to the last step reading it (the first, in reverse order,
+ * to add into it); a chain's values live over the whole chain, whose
+ * backward runs at its head. Builds the clearing lists backward follows. */
+static rc_status place_inner_grads(rc_plan *p, slot *sl, size_t *bytes) {
+  const rc_graph *g = p->g;
+  const int nv = g->n_values, ns = p->n_steps;
+  for (int v = 0; v < nv; v++) sl[v].first = sl[v].last = -1;
+  for (int s = 0; s < ns; s++) {
+    const rc_node *n = &g->nodes[p->steps[s].node];
+    for (int j = 0; j < n->n_out; j++) widen(sl, n->out[j], s, s);
+    for (int i = 0; i < n->n_in; i++) widen(sl, n->in[i], s, s);
+  }
+  for (int s = 0; s < ns; s++) {
+    if (p->role[s] <= 0) continue;
+    const rc__chain *c = &p->chains[p->role[s] - 1];
+    const rc_kernel *member[3] = {c->conv, c->bn, c->act};
+    for (int m = 0; m < 3; m++) {
+      if (!member[m]) continue;
+      const rc_node *n = member[m]->node;
+      for (int j = 0; j < n->n_out; j++) widen(sl, n->out[j], s, c->last);
+      for (int i = 0; i < n->n_in; i++) widen(sl, n->in[i], s, c->last);
+    }
+  }
+  for (int v = 0; v < nv; v++) sl[v].size = p->inner_grad[v] ? round_up(rc_tensor_nbytes(&p->t[v])) : 0;
+  *bytes = place_slots(sl, nv);
+  p->clear_start = rc__arena_zalloc(&p->meta, sizeof(int) * (size_t)(ns + 2));
+  p->clear_value = rc__arena_zalloc(&p->meta, sizeof(int) * (size_t)(nv + 1));
+  if (!p->clear_start || !p->clear_value) return RC_ERR_NOMEM;
+  for (int v = 0; v < nv; v++)
+    if (p->inner_grad[v]) p->clear_start[sl[v].last + 1]++;
+  for (int s = 0; s < ns; s++) p->clear_start[s + 1] += p->clear_start[s];
+  int *fill = rc__calloc((size_t)ns + 1, sizeof(int));
+  if (!fill) return RC_ERR_NOMEM;
+  for (int v = 0; v < nv; v++)
+    if (p->inner_grad[v]) {
+      const int s = sl[v].last;
+      p->clear_value[p->clear_start[s] + fill[s]++] = v;
+    }
+  rc__free(fill);
+  return RC_OK;
+}
+
+/* A plan's block is written all over by the first batch, and every 4 KiB
+ * page first touched costs a fault, which is dear under a hypervisor (5-7%
+ * of a whole distill run in perf, most of the kernel time). Asking for
+ * large pages turns them into one fault per 2 MiB where the system grants
+ * them (Linux, transparent huge pages in "madvise" mode). Advice only:
+ * nothing depends on it being taken. */
+static void advise_large_pages(void *p, size_t n) {
+#if defined(__linux__) && defined(MADV_HUGEPAGE)
+  const uintptr_t huge = (uintptr_t)2 << 20;
+  const uintptr_t lo = ((uintptr_t)p + huge - 1) & ~(huge - 1), hi = ((uintptr_t)p + n) & ~(huge - 1);
+  if (hi > lo) (void)madvise((void *)lo, hi - lo, MADV_HUGEPAGE);
+#else
+  (void)p, (void)n;
+#endif
+}
+
 static rc_status layout_memory(rc_plan *p, const rc_plan_opts *o, rc_err *e) {
   const rc_graph *g = p->g;
   int nv = g->n_values;
@@ -297,10 +387,17 @@ static rc_status layout_memory(rc_plan *p, const rc_plan_opts *o, rc_err *e) {
       if (n->out[j] < 0) extra += round_up(rc_tensor_nbytes(p->steps[s].k.out[j]));
   }
   size_t act = place_slots(sl, nv);
-  /* Gradients: one contiguous block so zeroing is one memset. */
-  size_t grads = 0;
+  /* Gradients the caller seeds or reads: one contiguous block, so zeroing
+   * is one memset; those of inner values share room by lifetime. */
+  size_t grads = 0, inner = 0;
   for (int v = 0; v < nv; v++)
-    if (p->needs_grad[v]) grads += round_up(rc_tensor_nbytes(&p->t[v]));
+    if (p->needs_grad[v] && !p->inner_grad[v]) grads += round_up(rc_tensor_nbytes(&p->t[v]));
+  slot *gsl = p->training ? rc__calloc((size_t)nv + 1, sizeof(slot)) : NULL;
+  if (p->training && (!gsl || place_inner_grads(p, gsl, &inner) != RC_OK)) {
+    rc__free(gsl);
+    rc__free(sl);
+    return rc__fail(e, RC_ERR_NOMEM, "%s: out of memory while planning", g->path);
+  }
   size_t saved = 0, work = 0;
   for (int s = 0; s < p->n_steps; s++) {
     rc_kernel *k = &p->steps[s].k;
@@ -311,23 +408,27 @@ static rc_status layout_memory(rc_plan *p, const rc_plan_opts *o, rc_err *e) {
     if (w0 > work) work = w0;
     if (w1 > work) work = w1;
     if (p->steps[s].state.out_of_memory) {
+      rc__free(gsl);
       rc__free(sl);
       return rc__fail(e, RC_ERR_NOMEM, "node '%s' (%s): out of memory", k->node->label, k->node->op_type);
     }
   }
   work = round_up(work);
-  size_t total = act + extra + grads + saved + work + ALIGN;
+  size_t total = act + extra + grads + inner + saved + work + ALIGN;
   if (total > p->max_bytes - p->folded_bytes) {
+    rc__free(gsl);
     rc__free(sl);
     return rc__fail(e, RC_ERR_LIMIT, "%s: the plan needs %zu bytes, over its limit of %zu", g->path,
                     total + p->folded_bytes, p->max_bytes);
   }
   p->block = rc__malloc(total);
   if (!p->block) {
+    rc__free(gsl);
     rc__free(sl);
     return rc__fail(e, RC_ERR_NOMEM, "%s: cannot allocate %zu bytes for a plan", g->path, total);
   }
   p->block_bytes = total;
+  advise_large_pages(p->block, total);
   unsigned char *base = (unsigned char *)(((uintptr_t)p->block + ALIGN - 1) & ~(uintptr_t)(ALIGN - 1));
   for (int v = 0; v < nv; v++) {
     if (sl[v].size) p->t[v].data = base + sl[v].offset;
@@ -351,12 +452,16 @@ static rc_status layout_memory(rc_plan *p, const rc_plan_opts *o, rc_err *e) {
   for (int v = 0; v < nv; v++) {
     p->grad[v] = p->t[v];
     p->grad[v].data = NULL;
-    if (p->needs_grad[v]) {
+    if (p->needs_grad[v] && !p->inner_grad[v]) {
       p->grad[v].data = cur;
       cur += round_up(rc_tensor_nbytes(&p->t[v]));
     }
   }
   memset(p->grad_block, 0, grads);
+  for (int v = 0; v < nv; v++)
+    if (p->inner_grad[v]) p->grad[v].data = cur + gsl[v].offset;
+  cur += inner;
+  rc__free(gsl);
   for (int s = 0; s < p->n_steps; s++) {
     rc_kernel *k = &p->steps[s].k;
     const rc_op_def *d = k->node->def;
@@ -411,6 +516,29 @@ static rc_status build_gradient_views(rc_plan *p, rc_err *e) {
   return RC_OK;
 }
 
+/* Hand opts.patterns to the steps that read a patterned value as their
+ * weight, before workspaces are sized (layout_memory). */
+static rc_status attach_patterns(rc_plan *p, const rc__wpattern *const *patterns, rc_err *e) {
+  const rc_graph *g = p->g;
+  for (int v = 0; patterns && v < g->n_values; v++) {
+    const rc__wpattern *pat = patterns[v];
+    if (!pat) continue;
+    const rc_tensor *t = &p->t[v];
+    if (p->is_const[v] || t->rank < 2 || t->dtype != RC_DTYPE_FLOAT || !t->dims[0] || pat->rows != t->dims[0] ||
+        pat->cols != rc_tensor_numel(t) / t->dims[0])
+      return rc__fail(e, RC_ERR_INVALID,
+                      "%s: '%s' cannot take its weight pattern (it needs a float weight of "
+                      "rank 2 or more that the plan keeps trainable, of %lld rows and %lld columns)",
+                      g->path, g->values[v].name, (long long)pat->rows, (long long)pat->cols);
+  }
+  for (int s = 0; patterns && s < p->n_steps; s++) {
+    const rc_node *n = &g->nodes[p->steps[s].node];
+    if ((n->def->flags & RC_OP_SPARSE_WEIGHT) && n->n_in >= 2 && n->in[1] >= 0)
+      p->steps[s].k.pattern = patterns[n->in[1]];
+  }
+  return RC_OK;
+}
+
 rc_status rc_plan_init(rc_plan **out, const rc_graph *g, const rc_tensor *inputs,
                        const rc_plan_opts *opts, rc_err *e) {
   *out = NULL;
@@ -447,7 +575,9 @@ rc_status rc_plan_init(rc_plan **out, const rc_graph *g, const rc_tensor *inputs
   if ((st = check_inputs(p, inputs, e)) != RC_OK) goto fail;
   if ((st = infer_and_fold(p, o, live, e)) != RC_OK) goto fail;
   if (p->training && (st = mark_gradients(p, o, e)) != RC_OK) goto fail;
+  if ((st = attach_patterns(p, o->patterns, e)) != RC_OK) goto fail;
   if ((st = find_chains(p, o, e)) != RC_OK) goto fail;
+  if ((st = mark_inner_grads(p, o, e)) != RC_OK) goto fail;
   if ((st = layout_memory(p, o, e)) != RC_OK) goto fail;
   if ((st = build_gradient_views(p, e)) != RC_OK) goto fail;
   rc__free(live);
@@ -484,29 +614,20 @@ rc_status rc_plan_bind_grad(rc_plan *p, int value, float *buf, rc_err *e) {
   return RC_OK;
 }
 
-rc_status rc_plan_set_weight_pattern(rc_plan *p, int value, const uint8_t *keep, int *steps, rc_err *e) {
-  const rc_graph *g = p->g;
-  if (steps) *steps = 0;
-  if (value < 0 || value >= g->n_values || p->is_const[value] || p->t[value].rank < 2 ||
-      p->t[value].dtype != RC_DTYPE_FLOAT)
-    return rc__fail(e, RC_ERR_INVALID, "%s: value %d cannot take a weight pattern (a float weight of rank 2 or more "
-                    "that the plan keeps trainable)", g->path, value);
-  const rc_tensor *t = &p->t[value];
-  rc__wpattern *pat = NULL;
-  for (int s = 0; s < p->n_steps; s++) {
-    const rc_node *n = &g->nodes[p->steps[s].node];
-    if (!(n->def->flags & RC_OP_SPARSE_WEIGHT) || n->n_in < 2 || n->in[1] != value) continue;
-    if (!pat) {
-      pat = rc__arena_zalloc(&p->meta, sizeof *pat);
-      if (!pat) return rc__fail(e, RC_ERR_NOMEM, "%s: out of memory for a weight pattern", g->path);
-      if (rc__wpattern_build(pat, &p->meta, keep, t->dims[0], rc_tensor_numel(t) / t->dims[0], e) != RC_OK ||
-          rc__nm_attach(pat, &p->meta, keep, rc_tensor_numel(t) / (t->dims[0] * t->dims[1]), e) != RC_OK)
-        return rc__wrap(e, "%s: value %d", g->path, value);
-    }
-    p->steps[s].k.pattern = pat;
-    if (steps) (*steps)++;
-  }
-  return RC_OK;
+static const plan_step *step_of(const rc_plan *p, int node) {
+  for (int s = 0; s < p->n_steps; s++)
+    if (p->steps[s].node == node) return &p->steps[s];
+  return NULL;
+}
+
+const rc__wpattern *rc__plan_step_pattern(const rc_plan *p, int node) {
+  const plan_step *s = step_of(p, node);
+  return s ? s->k.pattern : NULL;
+}
+
+int rc__plan_step_has_state(const rc_plan *p, int node) {
+  const plan_step *s = step_of(p, node);
+  return s && s->state.data != NULL;
 }
 
 int rc_plan_is_const(const rc_plan *p, int value) {
@@ -534,6 +655,10 @@ rc_status rc_plan_backward(rc_plan *p, rc_err *e) {
   if (!p->training)
     return rc__fail(e, RC_ERR_INVALID, "%s: backward on a plan built without training", p->g->path);
   for (int s = p->n_steps - 1; s >= 0; s--) {
+    for (int i = p->clear_start[s]; i < p->clear_start[s + 1]; i++) {
+      const rc_tensor *gt = &p->grad[p->clear_value[i]];
+      memset(gt->data, 0, rc_tensor_nbytes(gt));
+    }
     if (p->ran_fused && p->role[s] < 0) continue;
     const int own = p->ran_fused && p->role[s] > 0 ? rc__chain_backward(&p->chains[p->role[s] - 1]) : 1;
     if (own && p->steps[s].wants_backward) p->steps[s].k.node->def->backward(&p->steps[s].k);

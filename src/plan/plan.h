@@ -11,6 +11,7 @@
 #include "core/status.h"
 #include "ir/ir.h"
 #include "ops/op.h"
+#include "ops/sparse.h"
 
 typedef struct rc_plan_opts {
   /* Training plan: keeps every activation backward needs and allocates
@@ -33,6 +34,15 @@ typedef struct rc_plan_opts {
    * Sizes follow from the file, so a hostile model is refused with
    * RC_ERR_LIMIT before it can make the planner allocate without bound. */
   size_t max_bytes;
+  /* Per value or NULL: the kept positions of a pruned weight (ops/sparse.h),
+   * NULL entries for the rest. Every step that reads such a value as a
+   * weight able to take a pattern (ops flagged RC_OP_SPARSE_WEIGHT) gets it
+   * before the plan sizes workspaces, so a layer that will run sparse
+   * prepares no state for a dense path it never takes. The caller builds
+   * each pattern once (rc__wpattern_build), may hand the same array to
+   * several plans, and keeps the patterns alive until the plans are freed;
+   * a pattern must match its value's shape (rows = first axis). */
+  const rc__wpattern *const *patterns;
 } rc_plan_opts;
 
 #define RC_PLAN_DEFAULT_MAX_BYTES ((size_t)64 << 30)
@@ -50,24 +60,27 @@ void rc_plan_free(rc_plan *p);
  * NULL data for values not kept (intermediate values of inference plans
  * share memory). */
 rc_tensor *rc_plan_tensor(rc_plan *p, int value);
-/* Gradient of a value (training plans), or NULL where none is tracked. */
+/* Gradient of a value (training plans), or NULL where none is tracked.
+ * Gradients of graph outputs, kept values (opts.keep), inputs and
+ * initializers are the caller's to seed and read; those of inner values
+ * share memory by lifetime and hold their sums only while backward runs. */
 rc_tensor *rc_plan_grad(rc_plan *p, int value);
 /* Make the gradient of a value (a trainable initializer) accumulate into buf,
  * e.g. the parameter store's gradient block; the caller zeroes it. */
 rc_status rc_plan_bind_grad(rc_plan *p, int value, float *buf, rc_err *e);
-/* Declare the kept positions of a weight (an initializer the plan does not
- * fold): keep holds one byte per element, non-zero where the weight may be
- * non-zero; the other positions are frozen zeros. Every step that reads the
- * value as a weight able to take a pattern (ops flagged RC_OP_SPARSE_WEIGHT)
- * gets the pattern, built here once; its kernel may then run sparse
- * kernels and leaves the gradient at frozen positions untouched. keep is
- * read during the call only. *steps (may be NULL) gets the steps reached. */
-rc_status rc_plan_set_weight_pattern(rc_plan *p, int value, const uint8_t *keep, int *steps, rc_err *e);
+/* The weight pattern the step of node `node` was given (opts.patterns), or
+ * NULL (no pattern, or the node is folded). */
+const rc__wpattern *rc__plan_step_pattern(const rc_plan *p, int node);
+/* 1 if the kernel of node `node` keeps prepared state in the plan (oneDNN's
+ * primitives for a Conv), 0 otherwise. */
+int rc__plan_step_has_state(const rc_plan *p, int node);
 /* 1 if the value is a constant known at plan time (folded). */
 int rc_plan_is_const(const rc_plan *p, int value);
 
 rc_status rc_plan_forward(rc_plan *p, rc_err *e);
-/* Zero every gradient buffer (one memset over the gradient block). */
+/* Zero the gradients a caller may seed or read (one memset); backward
+ * clears each inner value's gradient itself, just before the first step
+ * that adds into it. */
 void rc_plan_zero_grad(rc_plan *p);
 /* Reverse pass. The caller has written d(loss)/d(value) into the gradient
  * buffers of the values it computed the loss from. Gradients of trainable

@@ -13,6 +13,8 @@
 #include "core/log.h"
 #include "data/augment.h"
 #include "data/spill.h"
+#include "ops/nm.h"
+#include "ops/sparse.h"
 #include "plan/count.h"
 #include "plan/inspect.h"
 #include "plan/load.h"
@@ -253,21 +255,83 @@ static void teacher_order(const rc_graph *t, const rc_graph *s, const rc_tensor 
   }
 }
 
-/* Pruned weights' kept positions go to the student's plans, whose kernels
+/* Pruned weights' kept positions, for the student's plans, whose kernels
  * may then run sparse (ops/sparse.h): only the masks tell a frozen zero
- * from a trainable weight that happens to be zero. */
-static rc_status set_weight_patterns(run_state *st, rc_err *e) {
+ * from a trainable weight that happens to be zero. Built once for the run:
+ * the training, evaluation and measuring plans share them. */
+static rc_status build_patterns(run_state *st, rc_err *e) {
+  const rc_graph *sg = st->sg;
+  rc__arena_init(&st->patterns_mem, 1 << 16);
+  st->patterns = rc__calloc((size_t)sg->n_values + 1, sizeof *st->patterns);
+  if (!st->patterns) return rc__fail(e, RC_ERR_NOMEM, "out of memory for weight patterns");
   for (int i = 0; i < st->n_tr; i++) {
     const int v = st->tr[i].value;
     const uint8_t *mask = rc_params_entry(st->ps, st->tr[i].entry)->mask;
-    if (!mask || !st->trainable_mask[v] || st->sg->values[v].decl.rank < 2) continue;
-    RC_TRY(rc_plan_set_weight_pattern(st->train_plan, v, mask, NULL, e));
-    RC_TRY(rc_plan_set_weight_pattern(st->eval_plan, v, mask, NULL, e));
+    const rc_tensor *t = &sg->values[v].decl;
+    if (!mask || !st->trainable_mask[v] || t->rank < 2 || t->dtype != RC_DTYPE_FLOAT || !t->dims[0]) continue;
+    rc__wpattern *pat = rc__arena_zalloc(&st->patterns_mem, sizeof *pat);
+    if (!pat) return rc__fail(e, RC_ERR_NOMEM, "out of memory for a weight pattern");
+    if (rc__wpattern_build(pat, &st->patterns_mem, mask, t->dims[0], rc_tensor_numel(t) / t->dims[0], e) != RC_OK ||
+        rc__nm_attach(pat, &st->patterns_mem, mask, rc_tensor_numel(t) / (t->dims[0] * t->dims[1]), e) != RC_OK)
+      return rc__wrap(e, "%s: '%s'", sg->path, sg->values[v].name);
+    st->patterns[v] = pat;
   }
   return RC_OK;
 }
 
-static rc_status build_plans(run_state *st, const rc_tensor *data, rc_err *e) {
+/* What train/measure.c needs of the run: plans at the run's batch size over
+ * the validation samples, with the student as rewritten for training. */
+static rc_status measure_setup(run_state *st, rc_measure_setup *m, rc_tensor *shapes, rc_tensor *tin,
+                               unsigned char **live, rc_err *e) {
+  *live = rc__calloc((size_t)st->sg->n_values + 1, 1);
+  if (!*live) return rc__fail(e, RC_ERR_NOMEM, "out of memory");
+  for (int i = 0; i < st->n_tr; i++) (*live)[st->tr[i].value] = 1;
+  rc__input_shapes(st->sg, st->val.inputs, st->batch, shapes);
+  teacher_order(&st->teacher->graph, st->sg, shapes, tin);
+  *m = (rc_measure_setup){&st->teacher->graph,
+                          st->sg,
+                          shapes,
+                          tin,
+                          &st->val,
+                          st->batch,
+                          *live,
+                          &st->qat,
+                          st->c->dist,
+                          st->patterns,
+                          st->measure_shared ? st->teacher_plan : NULL,
+                          st->measure_shared ? st->eval_plan : NULL};
+  return RC_OK;
+}
+
+/* The layer table's pairs (r->layers), and what the run's inference plans
+ * keep so that its passes run through them: the teacher's and the student's
+ * values it reads (NULL when its shapes are not the plans', so it builds
+ * its own). The caller frees *tkeep and *skeep. */
+static rc_status measure_pairs(run_state *st, const rc_tensor *shapes, const rc_tensor *tin, rc_distill_result *r,
+                               rc_pairing *pg, unsigned char **tkeep, unsigned char **skeep, rc_err *e) {
+  rc_measure_setup m;
+  rc_tensor ms[RC_DATASET_MAX_INPUTS], mt[RC_DATASET_MAX_INPUTS];
+  unsigned char *live = NULL;
+  *tkeep = *skeep = NULL;
+  rc_status s = measure_setup(st, &m, ms, mt, &live, e);
+  if (s == RC_OK) s = rc__measure_prepare(&m, pg, r, e);
+  int same = 1;
+  for (int i = 0; i < st->sg->n_inputs; i++) same &= rc_shape_equal(&ms[i], &shapes[i]);
+  for (int i = 0; i < st->teacher->graph.n_inputs; i++) same &= rc_shape_equal(&mt[i], &tin[i]);
+  if (s == RC_OK && same && (pg->n || r->n_ranges)) {
+    *tkeep = rc__calloc((size_t)st->teacher->graph.n_values + 1, 1);
+    *skeep = rc__calloc((size_t)st->sg->n_values + 1, 1);
+    if (!*tkeep || !*skeep)
+      s = rc__fail(e, RC_ERR_NOMEM, "out of memory");
+    else
+      rc__measure_keep(&m, pg, *tkeep, *skeep);
+  }
+  rc__free(live);
+  return s;
+}
+
+static rc_status build_plans(run_state *st, const rc_tensor *data, rc_distill_result *r, rc_pairing *pg,
+                             rc_err *e) {
   const rc_graph *tg = &st->teacher->graph, *sg = st->sg;
   rc_tensor shapes[RC_DATASET_MAX_INPUTS], tin[RC_DATASET_MAX_INPUTS];
   rc__input_shapes(sg, data, st->batch, shapes);
@@ -285,17 +349,26 @@ static rc_status build_plans(run_state *st, const rc_tensor *data, rc_err *e) {
     for (int k = 3; k <= 4 && k < n->n_in; k++)
       if (n->in[k] >= 0) st->trainable_mask[n->in[k]] = 0;
   }
-  rc_plan_opts eval_opts = {.training = 0, .trainable = live, .keep = NULL, .bn_batch_stats = 0};
-  rc_status s = rc_plan_init(&st->eval_plan, sg, shapes, &eval_opts, e);
+  teacher_order(tg, sg, shapes, tin);
+  unsigned char *tkeep = NULL, *skeep = NULL;
+  rc_status s = build_patterns(st, e);
+  if (s == RC_OK) s = measure_pairs(st, shapes, tin, r, pg, &tkeep, &skeep, e);
+  rc_plan_opts eval_opts = {
+      .training = 0, .trainable = live, .keep = skeep, .bn_batch_stats = 0, .patterns = st->patterns};
+  rc_plan_opts teacher_opts = {.keep = tkeep};
+  if (s == RC_OK) s = rc_plan_init(&st->eval_plan, sg, shapes, &eval_opts, e);
+  if (s == RC_OK) s = rc_plan_init(&st->teacher_plan, tg, tin, &teacher_opts, e);
+  st->measure_shared = s == RC_OK && skeep;
   rc__free(live);
+  rc__free(tkeep);
+  rc__free(skeep);
   RC_TRY(s);
   rc_plan_opts train_opts = {.training = 1,
                              .trainable = st->trainable_mask,
                              .keep = st->skeep,
                              .bn_batch_stats = st->c->bn == RC_BN_TRAIN,
-                             .reduce = rc__dist_stats_hook(&st->stats)};
-  teacher_order(tg, sg, shapes, tin);
-  RC_TRY(rc_plan_init(&st->teacher_plan, tg, tin, NULL, e));
+                             .reduce = rc__dist_stats_hook(&st->stats),
+                             .patterns = st->patterns};
   /* The step's plans take this rank's part of the global batch. */
   rc_tensor part[RC_DATASET_MAX_INPUTS], tpart[RC_DATASET_MAX_INPUTS];
   rc__input_shapes(sg, data, st->local, part);
@@ -325,7 +398,7 @@ static rc_status build_plans(run_state *st, const rc_tensor *data, rc_err *e) {
     if (!rc_plan_grad(st->train_plan, v)) continue; /* feeds no output: stays as it is */
     RC_TRY(rc_plan_bind_grad(st->train_plan, v, rc_params_grad(st->ps, st->tr[i].entry), e));
   }
-  return set_weight_patterns(st, e);
+  return RC_OK;
 }
 
 /* This rank's share of an unshuffled view (its order is the identity, so
@@ -856,26 +929,11 @@ out:
 
 /* ---- Inside the models -------------------------------------------------------- */
 
-/* What train/measure.c needs of the run: plans at the run's batch size over
- * the validation samples, with the student as rewritten for training. */
-static rc_status measure_setup(run_state *st, rc_measure_setup *m, rc_tensor *shapes, rc_tensor *tin,
-                               unsigned char **live, rc_err *e) {
-  *live = rc__calloc((size_t)st->sg->n_values + 1, 1);
-  if (!*live) return rc__fail(e, RC_ERR_NOMEM, "out of memory");
-  for (int i = 0; i < st->n_tr; i++) (*live)[st->tr[i].value] = 1;
-  rc__input_shapes(st->sg, st->val.inputs, st->batch, shapes);
-  teacher_order(&st->teacher->graph, st->sg, shapes, tin);
-  *m = (rc_measure_setup){&st->teacher->graph, st->sg, shapes,   tin,        &st->val,
-                          st->batch,           *live,  &st->qat, st->c->dist};
-  return RC_OK;
-}
-
 static rc_status measure_inside(run_state *st, rc_distill_result *r, rc_pairing *pg, int after, rc_err *e) {
   rc_measure_setup m;
   rc_tensor shapes[RC_DATASET_MAX_INPUTS], tin[RC_DATASET_MAX_INPUTS];
   unsigned char *live = NULL;
   rc_status s = measure_setup(st, &m, shapes, tin, &live, e);
-  if (s == RC_OK && !after) s = rc__measure_prepare(&m, pg, r, e);
   if (s == RC_OK) s = rc__measure_run(&m, pg, r, after, e);
   rc__free(live);
   return s;
@@ -920,6 +978,8 @@ static void free_state(run_state *st) {
   rc_plan_free(st->eval_plan);
   rc_plan_free(st->teacher_plan);
   rc_plan_free(st->teacher_step);
+  rc__free(st->patterns);
+  rc__arena_free(&st->patterns_mem);
   rc__outputs_free(st->outs);
   rc__features_free(st->feat);
   rc__free(st->tkeep);
@@ -1066,7 +1126,7 @@ rc_status rc_distill_run(rc_distill_result *r, rc_model *teacher, rc_model *stud
   r->n_train = st.train.n;
   r->n_val = st.val.n;
   if ((s = select_trainables(&st, e)) != RC_OK || (s = collect_bn(&st, e)) != RC_OK ||
-      (s = build_store(&st, d->inputs, e)) != RC_OK || (s = build_plans(&st, d->inputs, e)) != RC_OK ||
+      (s = build_store(&st, d->inputs, e)) != RC_OK || (s = build_plans(&st, d->inputs, r, &layers, e)) != RC_OK ||
       (s = setup_ranks(&st, e)) != RC_OK || (s = rc__distill_setup_augment(&st, d, r, e)) != RC_OK)
     goto out;
   if ((s = val_labels_of(&st, d, &val_labels, e)) != RC_OK) goto out;
@@ -1082,6 +1142,9 @@ rc_status rc_distill_run(rc_distill_result *r, rc_model *teacher, rc_model *stud
   /* The layer table: every rank measures its share of the samples. */
   if ((s = measure_inside(&st, r, &layers, 0, e)) != RC_OK) goto out;
   if ((s = train_loop(&st, r, d, e)) != RC_OK) goto out;
+  /* Training is over: the run's largest plan goes before the last pass. */
+  rc_plan_free(st.train_plan);
+  st.train_plan = NULL;
   if ((s = measure_inside(&st, r, &layers, 1, e)) != RC_OK) goto out;
   r->ranks = rc_dist_size(c->dist);
   r->teacher_cached_samples = st.teacher_cached;

@@ -38,6 +38,13 @@ typedef struct run_state {
   rc_params *ps;
   unsigned char *trainable_mask; /* per student value */
   rc_plan *train_plan, *eval_plan, *teacher_plan;
+  /* Per student value: the kept positions of pruned weights, built once and
+   * shared by every student plan of the run (ops/sparse.h); in patterns_mem. */
+  const rc__wpattern **patterns;
+  rc_arena patterns_mem;
+  /* eval_plan and teacher_plan keep what the layer table reads, so its
+   * passes run through them (train/measure.h) */
+  int measure_shared;
   int64_t batch, k;
   rc_dataset train, val;
   float *teacher_logits;     /* per training-pool sample (N_pool, K), in teacher_cache */

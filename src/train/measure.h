@@ -19,6 +19,8 @@
 
 #include "core/status.h"
 #include "ir/ir.h"
+#include "ops/sparse.h"
+#include "plan/plan.h"
 #include "recoup/data.h"
 #include "train/dist.h"
 #include "train/distill.h"
@@ -37,11 +39,20 @@ typedef struct rc_measure_setup {
   const unsigned char *live;          /* per student value: changes during the run (never folded) */
   const rc_qat *qat;
   rc_dist *dist; /* the ranks sharing the work (NULL: one process) */
+  const rc__wpattern *const *patterns; /* per student value or NULL (plan.h) */
+  /* NULL, or the run's own inference plans at `batch` over the shapes above
+   * that keep every value rc__measure_keep marks: the pass runs through
+   * them instead of building (and first touching) two plans of its own. */
+  rc_plan *teacher_plan, *student_plan;
 } rc_measure_setup;
 
 /* Pairs of equal shape, student side moved past its QDQ pair; fills
  * r->layers (names) and r->ranges (one per activation grid). */
 rc_status rc__measure_prepare(const rc_measure_setup *m, rc_pairing *pg, rc_distill_result *r, rc_err *e);
+
+/* Mark (set to 1) the teacher and student values the pass reads: the pairs'
+ * tensors and the inputs of activation grids. */
+void rc__measure_keep(const rc_measure_setup *m, const rc_pairing *pg, unsigned char *tkeep, unsigned char *skeep);
 
 /* One pass over the validation samples; `after` selects which half of the
  * result's figures is filled. */
