@@ -8,13 +8,19 @@
 
 static int64_t channels_of(const rc_tensor *x) { return x->rank > 1 ? x->dims[1] : 1; }
 
-/* Per-channel mean and biased variance of x (N, C, ...) accumulated in double. */
+/* Per-channel mean and biased variance of x (N, C, ...) accumulated in double.
+ * Channels are split over threads; each channel still adds its rows in
+ * sample order, so the sums do not depend on the thread count. (This runs
+ * after every training step: serial, it left a core idle for 3% of a
+ * ResNet-8 run.) */
 static void channel_moments(double *sum, double *sq, const rc_tensor *x, int64_t rows) {
-  int64_t c = channels_of(x), inner = 1;
+  const int64_t c = channels_of(x);
+  int64_t inner = 1;
   for (int d = 2; d < x->rank; d++) inner *= x->dims[d];
   const float *p = x->data;
-  for (int64_t n = 0; n < rows; n++)
-    for (int64_t ch = 0; ch < c; ch++) {
+#pragma omp parallel for schedule(static) if (c > 1 && rows * c * inner >= 32768)
+  for (int64_t ch = 0; ch < c; ch++)
+    for (int64_t n = 0; n < rows; n++) {
       const float *q = p + (n * c + ch) * inner;
       double s = 0, s2 = 0;
       for (int64_t i = 0; i < inner; i++) {
