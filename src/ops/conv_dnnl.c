@@ -280,7 +280,7 @@ static dnnl_conv *conv_for(struct rc_op_state *state, dnnl_conv *local, const rc
 }
 
 int rc__conv_dnnl_ready(const struct rc_op_state *state) {
-  const dnnl_conv *c = state ? state->data : NULL;
+  const dnnl_conv *c = state && state->release == state_release ? state->data : NULL;
   return c && c->fwd.prim;
 }
 
