@@ -23,30 +23,12 @@
 #include "onnx/model.h"
 #include "recoup/alloc.h"
 #include "recoup/data.h"
+#include "step_allocs.h"
 #include "test.h"
 #include "train/distill.h"
 
-#define FIRST_STEP 10
-#define LAST_STEP 60
 #define SIDE 64
 #define IMAGES 320 /* 288 training after the 10% hold-out: 72 steps of 4 per epoch */
-
-typedef struct step_counts {
-  long allocations;
-  int seen_first, seen_last;
-} step_counts;
-
-static void count_at_steps(void *user, const rc_distill_progress *p) {
-  step_counts *c = user;
-  if (p->event != RC_DISTILL_STEP) return;
-  if (p->step == FIRST_STEP) {
-    rc_alloc_set_fail_after(0); /* resets the count */
-    c->seen_first = 1;
-  } else if (p->step == LAST_STEP) {
-    c->allocations = rc_alloc_set_fail_after(0);
-    c->seen_last = 1;
-  }
-}
 
 /* x (IMAGES, 3, 64, 64) from the 28x28 images of raw, nearest neighbour. */
 static float *enlarge(const rc_array *raw) {

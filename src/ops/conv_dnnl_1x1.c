@@ -47,13 +47,9 @@ int rc__conv_mm_pays(const rc__conv_geom *g, int data_grad) {
 
 #ifdef RECOUP_HAVE_DNNL
 
-#include <oneapi/dnnl/dnnl.h>
 #include <string.h>
 
-#include "core/alloc.h"
-#include "ops/op.h"
-
-#define ALIGN 64
+#include "ops/dnnl_kit.h"
 
 /* One matmul: c = a . b (batched, a broadcast), with its scratchpad. */
 typedef struct mm_step {
@@ -73,20 +69,11 @@ typedef struct conv_mm {
   int refused; /* oneDNN refused this shape (or offered only its reference code) */
 } conv_mm;
 
-static int ok(dnnl_status_t st) { return st == dnnl_success; }
-
-static size_t round_up(size_t n) { return (n + ALIGN - 1) & ~(size_t)(ALIGN - 1); }
-
-static void destroy_memory(dnnl_memory_t *m) {
-  if (*m) dnnl_memory_destroy(*m);
-  *m = NULL;
-}
-
 static void step_release(mm_step *s) {
-  destroy_memory(&s->a);
-  destroy_memory(&s->b);
-  destroy_memory(&s->c);
-  destroy_memory(&s->pad);
+  rc__dnnl_memory_drop(&s->a);
+  rc__dnnl_memory_drop(&s->b);
+  rc__dnnl_memory_drop(&s->c);
+  rc__dnnl_memory_drop(&s->pad);
   if (s->prim) dnnl_primitive_destroy(s->prim);
   if (s->pd) dnnl_primitive_desc_destroy(s->pd);
   memset(s, 0, sizeof *s);
@@ -95,10 +82,7 @@ static void step_release(mm_step *s) {
 static void mm_release(conv_mm *c) {
   step_release(&c->fwd);
   step_release(&c->bwd_data);
-  if (c->stream) dnnl_stream_destroy(c->stream);
-  if (c->engine) dnnl_engine_destroy(c->engine);
-  c->stream = NULL;
-  c->engine = NULL;
+  rc__dnnl_close(&c->engine, &c->stream);
 }
 
 static void state_release(void *data) {
@@ -111,19 +95,19 @@ static void state_release(void *data) {
  * column at stride cs: W itself, or W^T through swapped strides. */
 static int shared_matrix(dnnl_memory_desc_t *md, int64_t rows, int64_t cols, int64_t rs, int64_t cs) {
   dnnl_dims_t dims = {1, rows, cols}, strides = {rows * cols, rs, cs};
-  return ok(dnnl_memory_desc_init_by_strides(md, 3, dims, dnnl_f32, strides));
+  return rc__dnnl_ok(dnnl_memory_desc_init_by_strides(md, 3, dims, dnnl_f32, strides));
 }
 
 static int batch_matrix(dnnl_memory_desc_t *md, int64_t n, int64_t rows, int64_t cols) {
   dnnl_dims_t dims = {n, rows, cols};
-  return ok(dnnl_memory_desc_init_by_tag(md, 3, dims, dnnl_f32, dnnl_abc));
+  return rc__dnnl_ok(dnnl_memory_desc_init_by_tag(md, 3, dims, dnnl_f32, dnnl_abc));
 }
 
 /* oneDNN's reference matmul is far slower than recoup's GEMMs: a shape that
  * only it takes stays on recoup's path. */
 static int optimised(const_dnnl_primitive_desc_t pd) {
   const char *impl = NULL;
-  return ok(dnnl_primitive_desc_query(pd, dnnl_query_impl_info_str, 0, &impl)) && impl && strncmp(impl, "ref", 3);
+  return rc__dnnl_ok(dnnl_primitive_desc_query(pd, dnnl_query_impl_info_str, 0, &impl)) && impl && strncmp(impl, "ref", 3);
 }
 
 /* The matmul c = a . b with a user scratchpad; `accumulate` adds into c. */
@@ -132,21 +116,21 @@ static int make_step(conv_mm *c, mm_step *s, const dnnl_memory_desc_t *a, const 
   dnnl_matmul_desc_t d;
   dnnl_primitive_attr_t attr = NULL;
   dnnl_post_ops_t po = NULL;
-  if (!ok(dnnl_matmul_desc_init(&d, a, b, NULL, out)) || !ok(dnnl_primitive_attr_create(&attr))) return 0;
-  int fine = ok(dnnl_primitive_attr_set_scratchpad_mode(attr, dnnl_scratchpad_mode_user));
+  if (!rc__dnnl_ok(dnnl_matmul_desc_init(&d, a, b, NULL, out)) || !rc__dnnl_ok(dnnl_primitive_attr_create(&attr))) return 0;
+  int fine = rc__dnnl_ok(dnnl_primitive_attr_set_scratchpad_mode(attr, dnnl_scratchpad_mode_user));
   if (fine && accumulate)
-    fine = ok(dnnl_post_ops_create(&po)) && ok(dnnl_post_ops_append_sum(po, 1.0f)) &&
-           ok(dnnl_primitive_attr_set_post_ops(attr, po));
-  fine = fine && ok(dnnl_primitive_desc_create(&s->pd, &d, attr, c->engine, NULL));
+    fine = rc__dnnl_ok(dnnl_post_ops_create(&po)) && rc__dnnl_ok(dnnl_post_ops_append_sum(po, 1.0f)) &&
+           rc__dnnl_ok(dnnl_primitive_attr_set_post_ops(attr, po));
+  fine = fine && rc__dnnl_ok(dnnl_primitive_desc_create(&s->pd, &d, attr, c->engine, NULL));
   if (po) dnnl_post_ops_destroy(po);
   dnnl_primitive_attr_destroy(attr);
-  if (!fine || !optimised(s->pd) || !ok(dnnl_primitive_create(&s->prim, s->pd))) return 0;
+  if (!fine || !optimised(s->pd) || !rc__dnnl_ok(dnnl_primitive_create(&s->prim, s->pd))) return 0;
   const dnnl_memory_desc_t *pad = dnnl_primitive_desc_query_md(s->pd, dnnl_query_scratchpad_md, 0);
   s->pad_bytes = pad ? dnnl_memory_desc_get_size(pad) : 0;
-  return ok(dnnl_memory_create(&s->a, a, c->engine, DNNL_MEMORY_NONE)) &&
-         ok(dnnl_memory_create(&s->b, b, c->engine, DNNL_MEMORY_NONE)) &&
-         ok(dnnl_memory_create(&s->c, out, c->engine, DNNL_MEMORY_NONE)) &&
-         (!s->pad_bytes || ok(dnnl_memory_create(&s->pad, pad, c->engine, DNNL_MEMORY_NONE)));
+  return rc__dnnl_ok(dnnl_memory_create(&s->a, a, c->engine, DNNL_MEMORY_NONE)) &&
+         rc__dnnl_ok(dnnl_memory_create(&s->b, b, c->engine, DNNL_MEMORY_NONE)) &&
+         rc__dnnl_ok(dnnl_memory_create(&s->c, out, c->engine, DNNL_MEMORY_NONE)) &&
+         (!s->pad_bytes || rc__dnnl_ok(dnnl_memory_create(&s->pad, pad, c->engine, DNNL_MEMORY_NONE)));
 }
 
 /* Y (N, M, P) = W (M, C) . X (N, C, P). */
@@ -181,9 +165,7 @@ static int prepare(conv_mm *c, const rc__conv_geom *g, int which_pass) {
   }
   if (!c->engine) {
     c->g = *g;
-    if (!ok(dnnl_engine_create(&c->engine, dnnl_cpu, 0)) ||
-        !ok(dnnl_stream_create(&c->stream, c->engine, dnnl_stream_default_flags)))
-      return 0;
+    if (!rc__dnnl_open(&c->engine, &c->stream)) return 0;
   }
   if (!which_pass) return c->fwd.prim || make_forward(c);
   return c->bwd_data.prim || make_backward(c);
@@ -194,16 +176,7 @@ static int prepare(conv_mm *c, const rc__conv_geom *g, int which_pass) {
 static conv_mm *mm_for(struct rc_op_state *state, conv_mm *local, const rc__conv_geom *g, int which_pass) {
   conv_mm *c = local;
   memset(local, 0, sizeof *local);
-  if (state) {
-    if (!state->data) {
-      state->data = rc__calloc(1, sizeof(conv_mm));
-      state->release = state_release;
-      state->out_of_memory |= !state->data; /* kept: a later call may succeed */
-    }
-    if (state->release != state_release) return NULL; /* another path's state */
-    c = state->data;
-    if (!c) return NULL;
-  }
+  if (state && !(c = rc__dnnl_state_data(state, sizeof(conv_mm), state_release))) return NULL;
   if (prepare(c, g, which_pass)) return c;
   mm_release(c);
   c->refused = 1;
@@ -222,24 +195,24 @@ int rc__conv_mm_ready(const struct rc_op_state *state) {
 size_t rc__conv_mm_workspace(struct rc_op_state *state, const rc__conv_geom *g, int which_pass) {
   conv_mm local, *c = mm_for(state, &local, g, which_pass);
   if (!c) return 0;
-  const size_t need = round_up(which_pass ? c->bwd_data.pad_bytes : c->fwd.pad_bytes);
+  const size_t need = rc__dnnl_round_up(which_pass ? c->bwd_data.pad_bytes : c->fwd.pad_bytes);
   finish(c, &local);
-  return need ? need : ALIGN;
+  return need ? need : RC_DNNL_ALIGN;
 }
 
 /* c = a . b (or c += a . b) on the given data, scratchpad at work. */
 static int run(conv_mm *c, mm_step *s, const float *a, const float *b, float *out, void *work, size_t work_bytes) {
   if (work_bytes < s->pad_bytes) return 0;
-  if (!ok(dnnl_memory_set_data_handle(s->a, (void *)a)) || !ok(dnnl_memory_set_data_handle(s->b, (void *)b)) ||
-      !ok(dnnl_memory_set_data_handle(s->c, out)))
+  if (!rc__dnnl_ok(dnnl_memory_set_data_handle(s->a, (void *)a)) || !rc__dnnl_ok(dnnl_memory_set_data_handle(s->b, (void *)b)) ||
+      !rc__dnnl_ok(dnnl_memory_set_data_handle(s->c, out)))
     return 0;
   dnnl_exec_arg_t args[4] = {{DNNL_ARG_SRC, s->a}, {DNNL_ARG_WEIGHTS, s->b}, {DNNL_ARG_DST, s->c}};
   int n = 3;
   if (s->pad) {
-    if (!ok(dnnl_memory_set_data_handle(s->pad, work))) return 0;
+    if (!rc__dnnl_ok(dnnl_memory_set_data_handle(s->pad, work))) return 0;
     args[n++] = (dnnl_exec_arg_t){DNNL_ARG_SCRATCHPAD, s->pad};
   }
-  return ok(dnnl_primitive_execute(s->prim, c->stream, n, args)) && ok(dnnl_stream_wait(c->stream));
+  return rc__dnnl_ok(dnnl_primitive_execute(s->prim, c->stream, n, args)) && rc__dnnl_ok(dnnl_stream_wait(c->stream));
 }
 
 int rc__conv_mm_forward(struct rc_op_state *state, const rc__conv_geom *g, float *y, const float *x, const float *w,
