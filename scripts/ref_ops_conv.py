@@ -125,6 +125,21 @@ def main():
     run_case(w, gen, "conv2d_blocked_b1",
              lambda x, k, b: F.conv2d(x, k, b, padding=1),
              [("x", draw(gen, 1, 16, 8, 8)), ("w", draw(gen, 16, 16, 3, 3)), ("b", draw(gen, 16))])
+    # 1x1 convolutions for the batched matmul path (RECOUP_CONV_PATH=dnnl takes
+    # it at every map size): odd channel counts, maps 1x1, 2x2, 7x7 and 32x32,
+    # batch 1, with and without bias.
+    run_case(w, gen, "conv2d_1x1_map1",
+             lambda x, k, b: F.conv2d(x, k, b),
+             [("x", draw(gen, 4, 3, 1, 1)), ("w", draw(gen, 5, 3, 1, 1)), ("b", draw(gen, 5))])
+    run_case(w, gen, "conv2d_1x1_map2_nobias",
+             lambda x, k: F.conv2d(x, k),
+             [("x", draw(gen, 3, 17, 2, 2)), ("w", draw(gen, 33, 17, 1, 1))])
+    run_case(w, gen, "conv2d_1x1_map7_b1",
+             lambda x, k, b: F.conv2d(x, k, b),
+             [("x", draw(gen, 1, 17, 7, 7)), ("w", draw(gen, 33, 17, 1, 1)), ("b", draw(gen, 33))])
+    run_case(w, gen, "conv2d_1x1_map32_nobias",
+             lambda x, k: F.conv2d(x, k),
+             [("x", draw(gen, 2, 3, 32, 32)), ("w", draw(gen, 5, 3, 1, 1))])
     # ConvTranspose: weight (C_in, C_out/groups, k...), as in ONNX.
     run_case(w, gen, "convt2d_group",
              lambda x, k, b: F.conv_transpose2d(x, k, b, stride=2, padding=1, output_padding=1, groups=2),

@@ -38,6 +38,8 @@ CASES = [
     ("bn_clip_depthwise", 2, 8, 13, 13, 8, 3, 2, 1, 8, False, "clip", False, False),
     ("bn_clip_depthwise_s1", 3, 6, 7, 9, 6, 3, 1, 1, 6, True, "clip", False, False),
     ("bn_relu_1x1_batch1", 1, 16, 20, 20, 12, 1, 1, 0, 1, False, "relu", False, False),
+    # 1x1 with a bias on a 7x7 map: the batched matmul's bias-and-epilogue pass
+    ("bn_clip_1x1_bias", 3, 17, 7, 7, 33, 1, 1, 0, 1, True, "clip", False, False),
     ("bn_relu_large_map", 2, 3, 24, 24, 5, 3, 1, 1, 1, False, "relu", False, False),
     ("bias_relu", 2, 4, 6, 6, 6, 3, 1, 1, 1, True, "relu", False, False),
     ("bn_only_then_add", 2, 4, 6, 6, 4, 3, 1, 1, 1, False, "relu", False, True),

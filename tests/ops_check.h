@@ -65,6 +65,7 @@ typedef struct run_out {
   float *v[4];
   int64_t n[4];
   int dnnl_kept;
+  int mm_kept;   /* the state holds conv_dnnl_1x1.c's batched matmuls */
 } run_out;
 
 static void run_out_free(run_out *r) {
@@ -110,6 +111,7 @@ static int run_and_keep(oh_case *c, int n_grads, run_out *r) {
   CHECK_INT(nd->def->forward(&k, &e), RC_OK);
   CHECK_MEM_EQ(oh_out_f(c, 0), r->v[0], sizeof(float) * (size_t)ny);
   r->dnnl_kept = rc__conv_dnnl_ready(&state);
+  r->mm_kept = rc__conv_mm_ready(&state);
   if (state.release) state.release(state.data);
   free(dy);
   return 1;

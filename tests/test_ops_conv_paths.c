@@ -4,7 +4,9 @@
  * depthwise kernels (short rows as one flat run, rows of 16 or more one by
  * one; input gradient straight into dx at stride 1, phase by phase otherwise)
  * and, in builds with oneDNN, its convolutions (RECOUP_CONV_PATH=dnnl;
- * channels in blocks of 16 take its reordered blocked layouts), each run
+ * channels in blocks of 16 take its reordered blocked layouts) and its
+ * batched matmul for 1x1 layers (conv_dnnl_1x1.c; "dnnl" sends every map
+ * size there, the default only maps below 32x32), each run
  * also through a kept state as a plan keeps it,
  * on odd sizes, padding, strides, dilations, groups and batch 1, at every
  * instruction-set level this CPU has (RECOUP_KERNEL_ISA lowers it). The
@@ -108,19 +110,34 @@ static void one_case(const path_case *pc) {
   }
   unsetenv("RECOUP_KERNEL_ISA");
   CHECK(!fast[0].dnnl_kept);
+  CHECK(!fast[0].mm_kept);
   setenv("RECOUP_CONV_PATH", "dnnl", 1);
   if (rc__conv_path_choice() == RC_CONV_PATH_DNNL) {
-    /* oneDNN sums in its own order: the batched path's tolerances. It
-     * leaves depthwise and 1x1 convolutions to recoup's own paths. */
+    /* oneDNN sums in its own order: the batched path's tolerances. Its
+     * convolutions leave depthwise and 1x1 layers to the other paths; a 1x1
+     * layer of one group at stride 1 takes the batched matmul, at any map
+     * size when "dnnl" is named. */
     run_out dn;
     CHECK(run_conv(pc, &dn));
     const int one_by_one = pc->k[0] == 1 && (pc->nsp == 1 || pc->k[1] == 1);
+    const int matmul = one_by_one && pc->group == 1 && !pc->s[0] && !pc->pads[0];
     CHECK_INT(dn.dnnl_kept, !pc->depthwise && !one_by_one);
+    CHECK_INT(dn.mm_kept, matmul);
     for (int i = 0; i < 3 + pc->bias; i++) {
       CHECK_EQ(dn.n[i], plain.n[i]);
       if (dn.n[i] == plain.n[i])
-        CHECK_EQ(compare(pc->name, "oneDNN", i, dn.v[i], plain.v[i], plain.n[i], i == 0 ? 1e-5 : 1e-4), 0);
+        CHECK_EQ(compare(pc->name, matmul ? "matmul" : "oneDNN", i, dn.v[i], plain.v[i], plain.n[i],
+                         i == 0 ? 1e-5 : 1e-4),
+                 0);
     }
+    run_out_free(&dn);
+    /* By default both passes take the matmul on maps of 16 to 1023 cells,
+     * none at 32x32 and more (its measured rule, conv_dnnl_1x1.c; smaller
+     * maps depend on the channel counts). */
+    unsetenv("RECOUP_CONV_PATH");
+    CHECK(run_conv(pc, &dn));
+    const int64_t cells = pc->in[0] * (pc->nsp == 2 ? pc->in[1] : 1);
+    if (cells >= 16) CHECK_INT(dn.mm_kept, matmul && cells < 1024);
     run_out_free(&dn);
   }
   unsetenv("RECOUP_CONV_PATH");
@@ -164,6 +181,13 @@ static void paths_agree(void) {
       {"blocked 16-32 s2", 3, 16, 32, 1, 2, {9, 9}, {3, 3}, {2, 2}, {0}, {1, 1, 1, 1}, 1, 0},
       {"blocked groups 2 dil", 2, 32, 32, 2, 2, {7, 6}, {3, 3}, {0}, {2, 2}, {2, 2, 2, 2}, 0, 0},
       {"blocked 3x3 batch 1", 1, 32, 16, 1, 2, {5, 5}, {3, 3}, {0}, {0}, {1, 1, 1, 1}, 1, 0},
+      /* 1x1 layers for the batched matmul: odd channel counts, maps 1x1 to 32x32, batch 1 */
+      {"1x1 3-5 map 1x1", 4, 3, 5, 1, 2, {1, 1}, {1, 1}, {0}, {0}, {0, 0, 0, 0}, 1, 0},
+      {"1x1 17-33 map 2x2", 3, 17, 33, 1, 2, {2, 2}, {1, 1}, {0}, {0}, {0, 0, 0, 0}, 0, 0},
+      {"1x1 17-33 7x7 b1", 1, 17, 33, 1, 2, {7, 7}, {1, 1}, {0}, {0}, {0, 0, 0, 0}, 1, 0},
+      {"1x1 3-5 32x32", 2, 3, 5, 1, 2, {32, 32}, {1, 1}, {0}, {0}, {0, 0, 0, 0}, 0, 0},
+      {"1x1 33-17 16x16 b1", 1, 33, 17, 1, 2, {16, 16}, {1, 1}, {0}, {0}, {0, 0, 0, 0}, 1, 0},
+      {"1x1 1-D", 3, 5, 3, 1, 1, {9}, {1}, {0}, {0}, {0, 0}, 0, 0},
   };
   for (size_t i = 0; i < sizeof cases / sizeof cases[0]; i++) {
     const int before = test_failed_checks_;

@@ -153,6 +153,11 @@ static void one_case(const nm_case *sc, int expect_nm, int serves) {
   printf("%-26s dW  %lld frozen positions, %lld touched%s\n", label, (long long)frozen, (long long)touched,
          serves ? "" : " (dense path: all written)");
   if (serves) CHECK_EQ(touched, 0);
+  /* A layer the N:M kernels serve gets none of the 1x1 matmul's primitives
+   * (conv_dnnl_1x1.c), which the dense run may keep. */
+  printf("%-26s 1x1 matmul kept: dense %d, N:M %d%s\n", label, dense.mm_kept, nm.mm_kept,
+         serves ? " (expected 0)" : "");
+  if (serves) CHECK_INT(nm.mm_kept, 0);
   run_out_free(&dense);
   run_out_free(&nm);
   run_out_free(&nm1);

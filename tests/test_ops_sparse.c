@@ -172,6 +172,10 @@ static void one_case(const sp_case *sc, const prune_kind *pk) {
     }
   printf("%-30s dW    %lld frozen positions, %lld touched\n", label, (long long)frozen, (long long)touched);
   CHECK_EQ(touched, 0);
+  /* A layer the sparse kernels serve gets none of the 1x1 matmul's
+   * primitives (conv_dnnl_1x1.c), which the dense run may keep. */
+  printf("%-30s 1x1 matmul kept: dense %d, sparse %d (expected 0)\n", label, dense.mm_kept, sparse.mm_kept);
+  CHECK_INT(sparse.mm_kept, 0);
   free(seed_dw);
   run_out_free(&dense);
   run_out_free(&sparse);
@@ -188,6 +192,7 @@ static void sparse_matches_dense(void) {
       {"conv stride dilation", OP_CONV, 3, 4, 6, 1, 2, {11, 9}, {3, 2}, {2, 1}, {1, 2}, {1, 0, 2, 1}, 1, 0, 0, 0},
       {"conv groups 2", OP_CONV, 3, 4, 6, 2, 2, {6, 7}, {3, 3}, {0}, {0}, {1, 1, 1, 1}, 0, 0, 0, 0},
       {"conv 1x1", OP_CONV, 5, 9, 11, 1, 2, {5, 3}, {1, 1}, {0}, {0}, {0, 0, 0, 0}, 1, 0, 0, 0},
+      {"conv 1x1 7x7", OP_CONV, 3, 9, 11, 1, 2, {7, 7}, {1, 1}, {0}, {0}, {0, 0, 0, 0}, 0, 0, 0, 0},
       {"conv 1x1 stride 2", OP_CONV, 2, 6, 5, 1, 2, {7, 6}, {1, 1}, {2, 2}, {0}, {0, 0, 0, 0}, 1, 0, 0, 0},
       {"conv 1-D", OP_CONV, 4, 3, 5, 1, 1, {13}, {3}, {2}, {0}, {1, 2}, 1, 0, 0, 0},
       {"conv 16ch 8x8", OP_CONV, 4, 16, 16, 1, 2, {8, 8}, {3, 3}, {0}, {0}, {1, 1, 1, 1}, 1, 0, 0, 0},

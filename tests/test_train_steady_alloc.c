@@ -17,28 +17,10 @@
 #include "plan/load.h"
 #include "recoup/alloc.h"
 #include "recoup/data.h"
+#include "step_allocs.h"
 #include "test.h"
 #include "train/distill.h"
 
-#define FIRST_STEP 10
-#define LAST_STEP 60
-
-typedef struct step_counts {
-  long allocations; /* made between FIRST_STEP and LAST_STEP */
-  int seen_first, seen_last;
-} step_counts;
-
-static void count_at_steps(void *user, const rc_distill_progress *p) {
-  step_counts *c = user;
-  if (p->event != RC_DISTILL_STEP) return;
-  if (p->step == FIRST_STEP) {
-    rc_alloc_set_fail_after(0); /* resets the count */
-    c->seen_first = 1;
-  } else if (p->step == LAST_STEP) {
-    c->allocations = rc_alloc_set_fail_after(0);
-    c->seen_last = 1;
-  }
-}
 
 static char *source_path(char *buf, size_t n, const char *rel) {
   const char *root = getenv("RECOUP_SOURCE_DIR");

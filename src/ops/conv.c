@@ -13,7 +13,9 @@
  * for depthwise, is also the plain path RECOUP_CONV_PATH=reference selects
  * (kernel_choice.h). Where the build has oneDNN, its convolutions take
  * the non-depthwise layers with windows larger than 1x1 first (conv_dnnl.c;
- * a shape it refuses falls through to the paths above). Spatial axes are
+ * a shape it refuses falls through to the paths above), and a batched
+ * matmul takes the forward and input gradient of 1x1 layers on small maps
+ * (conv_dnnl_1x1.c). Spatial axes are
  * canonicalised to 3 (missing leading axes have size 1), so 1-D, 2-D and
  * 3-D share one path. */
 #include <cblas.h>
@@ -380,6 +382,8 @@ static const rc__wpattern *sparse_of(const rc_kernel *k, const rc__conv_geom *g)
   return rc__sparse_conv_fits(g, p) ? p : NULL;
 }
 
+static int mm_chosen(const rc_kernel *k, const rc__conv_geom *g, int data_grad);
+
 static size_t conv_workspace(const rc_kernel *k, int backward) {
   rc__conv_geom g;
   geometry_of(k, &g);
@@ -395,9 +399,11 @@ static size_t conv_workspace(const rc_kernel *k, int backward) {
   /* oneDNN's primitives are made here, once per plan, when its path is
    * chosen; a layer the sparse kernels serve never takes it (the plan hands
    * patterns over before sizing), so it keeps no primitives or reorder room. */
-  const size_t dnnl = dnnl_chosen(&g) && !sparse_of(k, &g)
-                          ? rc__conv_dnnl_workspace(k->state, &g, opt_in(k, 2) != NULL, backward)
-                          : 0;
+  size_t dnnl = dnnl_chosen(&g) && !sparse_of(k, &g)
+                    ? rc__conv_dnnl_workspace(k->state, &g, opt_in(k, 2) != NULL, backward)
+                    : 0;
+  const size_t mm = mm_chosen(k, &g, backward) ? rc__conv_mm_workspace(k->state, &g, backward) : 0;
+  if (mm > dnnl) dnnl = mm;
   int64_t t = omp_get_max_threads();
   if (t > g.N) t = g.N;
   if (t < 1) t = 1;
@@ -421,15 +427,28 @@ static int depthwise_direct(const rc_kernel *k, const rc__conv_geom *g, int back
 
 /* The N:M pattern when the N:M kernels serve this Conv (nm_conv.c) and
  * T threads' workspace fits; T is then set. */
-static const rc__wpattern *nm_of(const rc_kernel *k, const rc__conv_geom *g, int backward, int *T) {
+static int nm_wanted(const rc_kernel *k, const rc__conv_geom *g, int backward) {
   const rc__sparse_mode mode = rc__nm_choice();
-  const rc__wpattern *p = k->pattern;
-  if (mode == RC_SPARSE_NEVER || !rc__nm_conv_fits(g, p) ||
-      (mode == RC_SPARSE_AUTO && !rc__nm_conv_pays(g, backward, dnnl_chosen(g))))
-    return NULL;
+  return mode != RC_SPARSE_NEVER && rc__nm_conv_fits(g, k->pattern) &&
+         (mode == RC_SPARSE_ALWAYS || rc__nm_conv_pays(g, backward, dnnl_chosen(g)));
+}
+
+static const rc__wpattern *nm_of(const rc_kernel *k, const rc__conv_geom *g, int backward, int *T) {
+  if (!nm_wanted(k, g, backward)) return NULL;
   const size_t per = rc__nm_conv_thread_floats(g, backward);
   *T = sample_threads(k, g, per);
-  return k->work_bytes >= sizeof(float) * per ? p : NULL;
+  return k->work_bytes >= sizeof(float) * per ? k->pattern : NULL;
+}
+
+/* Whether the 1x1 batched matmul serves this Conv's forward (data_grad =
+ * 0) or input gradient (1) (conv_dnnl_1x1.c): oneDNN's path, a shape where
+ * it was measured to pay (any shape it fits under RECOUP_CONV_PATH=dnnl),
+ * and weights that neither the sparse nor the N:M kernels take in either
+ * pass, so that their layers get no primitives. */
+static int mm_chosen(const rc_kernel *k, const rc__conv_geom *g, int data_grad) {
+  return rc__conv_path_choice() == RC_CONV_PATH_DNNL && rc__conv_mm_fits(g) &&
+         (rc__conv_dnnl_everywhere() || rc__conv_mm_pays(g, data_grad)) && !sparse_of(k, g) &&
+         !nm_wanted(k, g, 0) && !nm_wanted(k, g, 1);
 }
 
 /* Samples per GEMM for the chunked path, or 1 for the per-sample path. */
@@ -533,6 +552,22 @@ static void epilogue_pass(const rc__epilogue *ep, const rc__conv_geom *g, const 
   for (int64_t n = 0; n < g->N; n++) rc__epilogue_apply(ep, y, n * g->M, (n + 1) * g->M, g->M, g->out_sp);
 }
 
+/* The 1x1 matmul writes W . x for the whole batch: the bias and the
+ * epilogue then take one pass, a sample per thread, each sample's rows
+ * biased and finished while in cache. */
+static void bias_epilogue_pass(const rc__epilogue *ep, const rc__conv_geom *g, float *y, const float *b) {
+  if (!ep && !b) return;
+  const int64_t P = g->out_sp;
+#pragma omp parallel for schedule(static) if (g->N * g->M * P > 32768)
+  for (int64_t n = 0; n < g->N; n++) {
+    for (int64_t m = 0; b && m < g->M; m++) {
+      float *row = y + (n * g->M + m) * P;
+      for (int64_t i = 0; i < P; i++) row[i] += b[m];
+    }
+    if (ep) rc__epilogue_apply(ep, y, n * g->M, (n + 1) * g->M, g->M, P);
+  }
+}
+
 static rc_status conv_forward(const rc_kernel *k, rc_err *e) { return rc__conv_forward_epilogue(k, NULL, e); }
 
 rc_status rc__conv_forward_epilogue(const rc_kernel *k, const rc__epilogue *ep, rc_err *e) {
@@ -566,6 +601,10 @@ rc_status rc__conv_forward_epilogue(const rc_kernel *k, const rc__epilogue *ep, 
   }
   if (dnnl_chosen(&g) && rc__conv_dnnl_forward(k->state, &g, y, x, w, b, k->work, k->work_bytes)) {
     epilogue_pass(ep, &g, y);
+    return RC_OK;
+  }
+  if (mm_chosen(k, &g, 0) && rc__conv_mm_forward(k->state, &g, y, x, w, k->work, k->work_bytes)) {
+    bias_epilogue_pass(ep, &g, y, b);
     return RC_OK;
   }
   const int64_t nb = chunk_of(k, &g, 0);
@@ -665,6 +704,13 @@ static void conv_backward(const rc_kernel *k) {
   if (dnnl_chosen(&g) && rc__conv_dnnl_backward(k->state, &g, opt_in(k, 2) != NULL, cg.dx, cg.dw, cg.x, cg.w,
                                                 cg.dy, k->work, k->work_bytes))
     return;
+  /* The 1x1 matmul gives the input gradient; the weight gradient, a sum
+   * over the batch, stays on the OpenBLAS paths below. */
+  if (cg.dx && mm_chosen(k, &g, 1) &&
+      rc__conv_mm_backward_data(k->state, &g, cg.dx, cg.w, cg.dy, k->work, k->work_bytes)) {
+    cg.dx = NULL;
+    if (!cg.dw) return;
+  }
   const int64_t nb = chunk_of(k, &g, 1);
   if (nb > 1) {
     rc__conv_chunk_backward(&g, nb, rc__conv_chunk_threads(&g, nb, 1, k->work_bytes), cg.dx, cg.dw, cg.x, cg.w,

@@ -20,13 +20,11 @@
 
 #ifdef RECOUP_HAVE_DNNL
 
-#include <oneapi/dnnl/dnnl.h>
 #include <string.h>
 
-#include "core/alloc.h"
-#include "ops/op.h"
+#include "ops/dnnl_kit.h"
 
-#define ALIGN 64
+#define ALIGN RC_DNNL_ALIGN
 #define MAX_OPERANDS 4
 
 /* One tensor of a convolution: the user's memory in recoup's plain layout
@@ -69,7 +67,6 @@ typedef struct dnnl_conv {
  * times slower on ResNet-8's 3x3 layers; README's note on oneDNN). */
 static const int let_library_choose_layouts = 1;
 
-static size_t round_up(size_t n) { return (n + ALIGN - 1) & ~(size_t)(ALIGN - 1); }
 
 int rc__conv_dnnl_fits(const rc__conv_geom *g) {
   /* A 1x1 convolution is one GEMM on recoup's own path, and oneDNN's reorders
@@ -80,18 +77,13 @@ int rc__conv_dnnl_fits(const rc__conv_geom *g) {
          g->Mg > 0;
 }
 
-static void destroy_memory(dnnl_memory_t *m) {
-  if (*m) dnnl_memory_destroy(*m);
-  *m = NULL;
-}
-
 static void step_release(dnnl_step *s) {
   for (int i = 0; i < s->n_ops; i++) {
-    destroy_memory(&s->ops[i].user);
-    destroy_memory(&s->ops[i].inner);
+    rc__dnnl_memory_drop(&s->ops[i].user);
+    rc__dnnl_memory_drop(&s->ops[i].inner);
     if (s->ops[i].reorder) dnnl_primitive_destroy(s->ops[i].reorder);
   }
-  destroy_memory(&s->pad);
+  rc__dnnl_memory_drop(&s->pad);
   if (s->prim) dnnl_primitive_destroy(s->prim);
   if (s->pd) dnnl_primitive_desc_destroy(s->pd);
   memset(s, 0, sizeof *s);
@@ -101,10 +93,7 @@ static void conv_release(dnnl_conv *c) {
   step_release(&c->fwd);
   step_release(&c->bwd_data);
   step_release(&c->bwd_weights);
-  if (c->stream) dnnl_stream_destroy(c->stream);
-  if (c->engine) dnnl_engine_destroy(c->engine);
-  c->stream = NULL;
-  c->engine = NULL;
+  rc__dnnl_close(&c->engine, &c->stream);
 }
 
 static void state_release(void *data) {
@@ -134,7 +123,7 @@ static dnnl_window window_of(const rc__conv_geom *g) {
   return w;
 }
 
-static int ok(dnnl_status_t st) { return st == dnnl_success; }
+static int ok(dnnl_status_t st) { return rc__dnnl_ok(st); }
 
 /* Memory descriptors of the plain layouts. */
 static int plain_layouts(dnnl_conv *c) {
@@ -170,7 +159,7 @@ static int add_operand(dnnl_conv *c, dnnl_step *s, int arg, int output, const dn
   const dnnl_memory_desc_t *chosen = dnnl_primitive_desc_query_md(s->pd, dnnl_query_exec_arg_md, arg);
   if (!chosen || dnnl_memory_desc_equal(chosen, plain)) return 1;
   o->offset = s->work_bytes;
-  s->work_bytes += round_up(dnnl_memory_desc_get_size(chosen));
+  s->work_bytes += rc__dnnl_round_up(dnnl_memory_desc_get_size(chosen));
   dnnl_primitive_desc_t rpd = NULL;
   int fine = ok(dnnl_memory_create(&o->inner, chosen, c->engine, DNNL_MEMORY_NONE)) &&
              ok(dnnl_reorder_primitive_desc_create(&rpd, output ? chosen : plain, c->engine,
@@ -199,7 +188,7 @@ static int make_step(dnnl_conv *c, dnnl_step *s, const void *desc, const_dnnl_pr
   const dnnl_memory_desc_t *pad = dnnl_primitive_desc_query_md(s->pd, dnnl_query_scratchpad_md, 0);
   const size_t pad_bytes = pad ? dnnl_memory_desc_get_size(pad) : 0;
   s->pad_offset = s->work_bytes;
-  s->work_bytes += round_up(pad_bytes);
+  s->work_bytes += rc__dnnl_round_up(pad_bytes);
   return !pad_bytes || ok(dnnl_memory_create(&s->pad, pad, c->engine, DNNL_MEMORY_NONE));
 }
 
@@ -250,9 +239,7 @@ static int prepare(dnnl_conv *c, const rc__conv_geom *g, int has_bias, int backw
   if (!c->engine) {
     c->g = *g;
     c->has_bias = has_bias;
-    if (!ok(dnnl_engine_create(&c->engine, dnnl_cpu, 0)) ||
-        !ok(dnnl_stream_create(&c->stream, c->engine, dnnl_stream_default_flags)) || !plain_layouts(c))
-      return 0;
+    if (!rc__dnnl_open(&c->engine, &c->stream) || !plain_layouts(c)) return 0;
   }
   if (!c->fwd.prim && !make_forward(c)) return 0;
   return !backward || c->bwd_weights.prim || make_backward(c);
@@ -264,15 +251,7 @@ static dnnl_conv *conv_for(struct rc_op_state *state, dnnl_conv *local, const rc
                            int backward) {
   dnnl_conv *c = local;
   memset(local, 0, sizeof *local);
-  if (state) {
-    if (!state->data) {
-      state->data = rc__calloc(1, sizeof(dnnl_conv));
-      state->release = state_release;
-      state->out_of_memory |= !state->data; /* kept: a later call may succeed */
-    }
-    c = state->data;
-    if (!c) return NULL;
-  }
+  if (state && !(c = rc__dnnl_state_data(state, sizeof(dnnl_conv), state_release))) return NULL;
   if (prepare(c, g, has_bias, backward)) return c;
   conv_release(c);
   c->refused = 1;
@@ -280,7 +259,7 @@ static dnnl_conv *conv_for(struct rc_op_state *state, dnnl_conv *local, const rc
 }
 
 int rc__conv_dnnl_ready(const struct rc_op_state *state) {
-  const dnnl_conv *c = state ? state->data : NULL;
+  const dnnl_conv *c = state && state->release == state_release ? state->data : NULL;
   return c && c->fwd.prim;
 }
 
@@ -291,10 +270,10 @@ static void finish(dnnl_conv *c, const dnnl_conv *local) {
 /* The input and weight gradients' plain copies, ahead of the steps' own
  * workspace in backward. */
 static size_t dx_bytes(const rc__conv_geom *g) {
-  return round_up(sizeof(float) * (size_t)(g->N * g->C * g->in_sp));
+  return rc__dnnl_round_up(sizeof(float) * (size_t)(g->N * g->C * g->in_sp));
 }
 static size_t grads_bytes(const rc__conv_geom *g) {
-  return dx_bytes(g) + round_up(sizeof(float) * (size_t)(g->M * g->Cg * g->K));
+  return dx_bytes(g) + rc__dnnl_round_up(sizeof(float) * (size_t)(g->M * g->Cg * g->K));
 }
 
 static size_t backward_bytes(const dnnl_conv *c) {

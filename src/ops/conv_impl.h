@@ -154,5 +154,25 @@ int rc__conv_dnnl_forward(struct rc_op_state *state, const rc__conv_geom *g, flo
  * Returns 0, having added nothing, when it cannot run. */
 int rc__conv_dnnl_backward(struct rc_op_state *state, const rc__conv_geom *g, int has_bias, float *dx, float *dw,
                            const float *x, const float *w, const float *dy, void *work, size_t work_bytes);
+/* ---- conv_dnnl_1x1.c: 1x1 Conv as one oneDNN batched matmul (RECOUP_HAVE_DNNL) ---- */
+
+/* Non-zero when the matmul can serve this Conv: 1x1, stride 1, unpadded,
+ * one group. Built without oneDNN, ready and workspace give 0. */
+int rc__conv_mm_fits(const rc__conv_geom *g);
+/* Non-zero where the matmul was measured to beat recoup's GEMMs, for the
+ * forward (data_grad = 0) or the input gradient (1). */
+int rc__conv_mm_pays(const rc__conv_geom *g, int data_grad);
+/* Workspace (oneDNN's scratchpad) of one pass, forward (which_pass = 0)
+ * or input gradient (1), whose matmul is made into state (NULL: made,
+ * measured and dropped). 0 when oneDNN refuses the shape. */
+size_t rc__conv_mm_workspace(struct rc_op_state *state, const rc__conv_geom *g, int which_pass);
+/* Non-zero when state holds a matmul made for a 1x1 Conv (for tests). */
+int rc__conv_mm_ready(const struct rc_op_state *state);
+/* y = W . x, no bias. Returns 0 when it cannot run. */
+int rc__conv_mm_forward(struct rc_op_state *state, const rc__conv_geom *g, float *y, const float *x, const float *w,
+                        void *work, size_t work_bytes);
+/* dx += W^T . dy. Returns 0, having added nothing, when it cannot run. */
+int rc__conv_mm_backward_data(struct rc_op_state *state, const rc__conv_geom *g, float *dx, const float *w,
+                              const float *dy, void *work, size_t work_bytes);
 
 #endif

@@ -32,21 +32,22 @@ typedef struct conv_path_row {
   rc__sparse_mode sparse; /* sparse kernels for patterned weights */
   int fuse;               /* chains as one step */
   rc__sparse_mode nm;     /* N:M kernels (nm.h) for N:M-patterned weights */
+  int everywhere;         /* oneDNN takes every shape it fits, not only where measured to pay */
 } conv_path_row;
 
 #define RC_CONV_PATH_DEFAULT ((rc__conv_path)-1)
 
 static const conv_path_row k_conv_paths[] = {
-    {"builtin", RC_CONV_PATH_BUILTIN, RC_SPARSE_AUTO, 1, RC_SPARSE_AUTO},
-    {"reference", RC_CONV_PATH_REFERENCE, RC_SPARSE_NEVER, 0, RC_SPARSE_NEVER},
-    {"dnnl", RC_CONV_PATH_DNNL, RC_SPARSE_AUTO, 1, RC_SPARSE_AUTO},
-    {"dense", RC_CONV_PATH_DEFAULT, RC_SPARSE_NEVER, 1, RC_SPARSE_NEVER},
-    {"sparse", RC_CONV_PATH_DEFAULT, RC_SPARSE_ALWAYS, 1, RC_SPARSE_AUTO},
-    {"unfused", RC_CONV_PATH_DEFAULT, RC_SPARSE_AUTO, 0, RC_SPARSE_AUTO},
-    {"nm-off", RC_CONV_PATH_DEFAULT, RC_SPARSE_AUTO, 1, RC_SPARSE_NEVER},
-    {"nm-on", RC_CONV_PATH_DEFAULT, RC_SPARSE_AUTO, 1, RC_SPARSE_ALWAYS},
+    {"builtin", RC_CONV_PATH_BUILTIN, RC_SPARSE_AUTO, 1, RC_SPARSE_AUTO, 0},
+    {"reference", RC_CONV_PATH_REFERENCE, RC_SPARSE_NEVER, 0, RC_SPARSE_NEVER, 0},
+    {"dnnl", RC_CONV_PATH_DNNL, RC_SPARSE_AUTO, 1, RC_SPARSE_AUTO, 1},
+    {"dense", RC_CONV_PATH_DEFAULT, RC_SPARSE_NEVER, 1, RC_SPARSE_NEVER, 0},
+    {"sparse", RC_CONV_PATH_DEFAULT, RC_SPARSE_ALWAYS, 1, RC_SPARSE_AUTO, 0},
+    {"unfused", RC_CONV_PATH_DEFAULT, RC_SPARSE_AUTO, 0, RC_SPARSE_AUTO, 0},
+    {"nm-off", RC_CONV_PATH_DEFAULT, RC_SPARSE_AUTO, 1, RC_SPARSE_NEVER, 0},
+    {"nm-on", RC_CONV_PATH_DEFAULT, RC_SPARSE_AUTO, 1, RC_SPARSE_ALWAYS, 0},
 };
-static const conv_path_row k_conv_default = {NULL, RC_CONV_PATH_DEFAULT, RC_SPARSE_AUTO, 1, RC_SPARSE_AUTO};
+static const conv_path_row k_conv_default = {NULL, RC_CONV_PATH_DEFAULT, RC_SPARSE_AUTO, 1, RC_SPARSE_AUTO, 0};
 
 static const conv_path_row *conv_path_row_chosen(void) {
   const char *value = getenv("RECOUP_CONV_PATH");
@@ -76,3 +77,5 @@ rc__sparse_mode rc__sparse_choice(void) { return conv_path_row_chosen()->sparse;
 rc__sparse_mode rc__nm_choice(void) { return conv_path_row_chosen()->nm; }
 
 int rc__conv_fuse(void) { return conv_path_row_chosen()->fuse; }
+
+int rc__conv_dnnl_everywhere(void) { return conv_path_row_chosen()->everywhere; }

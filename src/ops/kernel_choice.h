@@ -50,5 +50,9 @@ rc__sparse_mode rc__nm_choice(void);
  * RECOUP_CONV_PATH is "reference" or "unfused" (fast Conv paths, separate
  * passes after them). */
 int rc__conv_fuse(void);
+/* Non-zero when RECOUP_CONV_PATH is "dnnl": oneDNN then takes every shape
+ * it can (tests reach it on all sizes); by default only shapes where it was
+ * measured to pay (the 1x1 matmul of conv_dnnl_1x1.c). */
+int rc__conv_dnnl_everywhere(void);
 
 #endif
