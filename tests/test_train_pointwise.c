@@ -18,6 +18,7 @@
 #include <stdio.h>
 #include <stdlib.h>
 #include <string.h>
+#include <unistd.h>
 
 #include "core/alloc.h"
 #include "onnx/model.h"
@@ -98,8 +99,10 @@ static void pointwise_steady_and_deterministic(void) {
   const char *bin = getenv("RECOUP_BINARY_DIR");
   char model[4096], out_a[4096], out_b[4096];
   snprintf(model, sizeof model, "%s/reference/mobilenet_v2_op17_bn/model.onnx", bin ? bin : ".");
-  snprintf(out_a, sizeof out_a, "%s/pointwise_a.onnx", bin ? bin : ".");
-  snprintf(out_b, sizeof out_b, "%s/pointwise_b.onnx", bin ? bin : ".");
+  /* Named by process: ctest runs this entry and its _builtin twin side by
+   * side, and a shared name let one remove or overwrite the other's file. */
+  snprintf(out_a, sizeof out_a, "%s/pointwise_%ld_a.onnx", bin ? bin : ".", (long)getpid());
+  snprintf(out_b, sizeof out_b, "%s/pointwise_%ld_b.onnx", bin ? bin : ".", (long)getpid());
   rc_err e = {0};
   rc_array raw = {0};
   CHECK_INT(rc_array_read(&raw, "/usr/share/datasets/fashion-mnist/train-images-idx3-ubyte.gz", NULL,
@@ -109,7 +112,17 @@ static void pointwise_steady_and_deterministic(void) {
   CHECK_NOT_NULL(data);
   if (!data) goto out;
   rc_tensor x = {RC_DTYPE_FLOAT, 4, {IMAGES, 3, SIDE, SIDE}, data};
-  const long first = run_once(model, &x, out_a), second = run_once(model, &x, out_b);
+  const long first = run_once(model, &x, out_a);
+  if (getenv("RECOUP_SANITIZER_BUILD")) {
+    /* The sanitizers watch one run's memory use; two runs writing the same
+     * bytes is the release build's check (a second run here cost a minute). */
+    printf("allocations in steps %d..%d: %ld (expected 0); one run in the sanitizer build\n", FIRST_STEP + 1,
+           LAST_STEP, first);
+    CHECK_INT(first, 0);
+    remove(out_a);
+    goto out;
+  }
+  const long second = run_once(model, &x, out_b);
   printf("allocations in steps %d..%d: first run %ld, second run %ld (expected 0)\n", FIRST_STEP + 1, LAST_STEP,
          first, second);
   CHECK_INT(first, 0);
