@@ -425,14 +425,16 @@ static int depthwise_direct(const rc_kernel *k, const rc__conv_geom *g, int back
          k->work_bytes >= rc__depthwise_workspace(g, backward, 1);
 }
 
-/* The N:M pattern when the N:M kernels serve this Conv (nm_conv.c) and
- * T threads' workspace fits; T is then set. */
+/* Whether the N:M kernels (nm_conv.c) are chosen for this Conv's pass:
+ * the switch, a pattern they fit, and a shape where they were measured to pay. */
 static int nm_wanted(const rc_kernel *k, const rc__conv_geom *g, int backward) {
   const rc__sparse_mode mode = rc__nm_choice();
   return mode != RC_SPARSE_NEVER && rc__nm_conv_fits(g, k->pattern) &&
          (mode == RC_SPARSE_ALWAYS || rc__nm_conv_pays(g, backward, dnnl_chosen(g)));
 }
 
+/* The N:M pattern when those kernels serve this pass and T threads'
+ * workspace fits; T is then set. */
 static const rc__wpattern *nm_of(const rc_kernel *k, const rc__conv_geom *g, int backward, int *T) {
   if (!nm_wanted(k, g, backward)) return NULL;
   const size_t per = rc__nm_conv_thread_floats(g, backward);
